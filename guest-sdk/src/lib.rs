@@ -1,0 +1,144 @@
+//! Write a paddock model in Rust.
+//!
+//! A paddock model is a WebAssembly component that targets the `estimator`
+//! world in `wit/estimator.wit`. This crate hides the bindings: a model author
+//! implements [`Estimator`] and calls [`export!`] once.
+//!
+//! ```ignore
+//! use paddock_guest::{Estimator, Contract, Fault, Linear, LinearParams};
+//! use ndarray::{ArrayView2, ArrayViewMut2};
+//!
+//! struct Risk(Linear);
+//!
+//! impl Estimator for Risk {
+//!     type Params = LinearParams;
+//!     fn init(params: LinearParams) -> Result<Self, String> { Linear::new(params).map(Risk) }
+//!     fn contract(&self) -> Contract { /* names, domains, units, bounds */ todo!() }
+//!     fn score(&self, rows: ArrayView2<f64>, out: ArrayViewMut2<f64>) -> Result<(), Fault> {
+//!         self.0.evaluate(rows, out);
+//!         Ok(())
+//!     }
+//! }
+//!
+//! paddock_guest::export!(Risk);
+//! ```
+//!
+//! What the crate gives you:
+//! - the contract types ([`Contract`], [`Feature`], [`Domain`], [`Bounds`],
+//!   [`Output`], [`Fault`]), generated from the WIT file so guest and host can
+//!   never disagree, with small builders ([`Feature::real`], [`Output::new`]…);
+//! - params decoding: the artifact's parameter blob is bincode (standard
+//!   configuration) of your `Params` type; [`encode_params`] makes one from
+//!   training code;
+//! - row-major views: `score` receives the rows as an `ndarray` view, one row
+//!   per model row, one column per feature, absent optional features as NaN;
+//! - built-in estimators driven entirely by params ([`Linear`], [`Trees`]) and
+//!   [`Generic`], which carries its contract in the params too, so one compiled
+//!   module serves any number of trained models.
+//!
+//! Everything except [`export!`] compiles natively as well, so training code,
+//! tests and benchmarks evaluate exactly the code that runs in the sandbox.
+//!
+//! What it is not: a training library. Fit models wherever you like and write
+//! their parameters into these types.
+
+mod contract;
+mod generic;
+mod linear;
+mod params;
+mod trees;
+
+#[doc(hidden)]
+pub mod glue;
+
+pub use contract::{Bounds, Contract, Domain, Fault, Feature, Output};
+pub use generic::{Evaluate, Generic, Packaged, build_for};
+pub use linear::{Linear, LinearParams, Link};
+pub use params::{decode_params, encode_params};
+pub use trees::{Branch, Combine, Node, SplitRule, Tree, Trees, TreesParams};
+
+/// Re-exported so model crates need no direct ndarray dependency.
+pub use ndarray;
+
+/// The bindings generated from `wit/estimator.wit`. Model authors do not
+/// need them; [`export!`] wires them up.
+#[doc(hidden)]
+#[allow(missing_docs, unsafe_code)]
+pub mod bindings {
+    wit_bindgen::generate!({
+        path: "../wit",
+        world: "estimator",
+        pub_export_macro: true,
+        export_macro_name: "export_estimator",
+        default_bindings_module: "paddock_guest::bindings",
+        additional_derives: [serde::Serialize, serde::Deserialize, PartialEq],
+    });
+}
+
+/// A model, as its author writes it.
+///
+/// The host creates instances of the model as it needs them; each instance
+/// calls [`Estimator::init`] once with the artifact's parameters, then serves
+/// any number of [`Estimator::score`] calls.
+pub trait Estimator: Sized + 'static {
+    /// The parameters this model reads from the artifact. Use `()` for a
+    /// model with everything built in.
+    type Params: serde::de::DeserializeOwned;
+
+    /// Builds the model from its decoded parameters.
+    ///
+    /// # Errors
+    /// Returns a message when the parameters do not describe a usable model;
+    /// the host then refuses the artifact and shows the message.
+    fn init(params: Self::Params) -> Result<Self, String>;
+
+    /// The contract: features in row order, outputs in row order. Must be
+    /// the same on every call.
+    fn contract(&self) -> Contract;
+
+    /// Scores rows. `rows` has one row per request row and one column per
+    /// feature; `out` has one row per request row and one column per output,
+    /// filled with NaN on entry.
+    ///
+    /// # Errors
+    /// [`Fault::Rejected`] when valid rows cannot be scored by this model,
+    /// [`Fault::Failed`] when the model itself failed.
+    fn score(
+        &self,
+        rows: ndarray::ArrayView2<'_, f64>,
+        out: ndarray::ArrayViewMut2<'_, f64>,
+    ) -> Result<(), Fault>;
+}
+
+/// Exports a type implementing [`Estimator`] as the model of this crate.
+///
+/// Call it once, at the top level of a `cdylib` crate built for
+/// `wasm32-unknown-unknown`. On other targets it expands to nothing, so the
+/// same crate also builds natively for tests and training code.
+#[macro_export]
+macro_rules! export {
+    ($model:ty) => {
+        #[cfg(target_arch = "wasm32")]
+        const _: () = {
+            ::std::thread_local! {
+                static SLOT: $crate::glue::Slot<$model> = $crate::glue::Slot::new();
+            }
+            struct PaddockExports;
+            impl $crate::bindings::Guest for PaddockExports {
+                fn init(params: ::std::vec::Vec<u8>) -> ::std::result::Result<(), ::std::string::String> {
+                    SLOT.with(|slot| slot.init(&params))
+                }
+                fn describe() -> $crate::Contract {
+                    SLOT.with(|slot| slot.describe())
+                }
+                fn score(
+                    rows: u32,
+                    cells: ::std::vec::Vec<f64>,
+                ) -> ::std::result::Result<::std::vec::Vec<f64>, $crate::Fault> {
+                    SLOT.with(|slot| slot.score(rows, &cells))
+                }
+            }
+            $crate::bindings::export_estimator!(PaddockExports with_types_in $crate::bindings);
+        };
+    };
+}

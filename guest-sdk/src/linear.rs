@@ -1,0 +1,201 @@
+//! Linear models: `link(intercept + Σ weight × feature)`, one set of
+//! coefficients per output.
+
+use ndarray::{ArrayView2, ArrayViewMut2};
+use serde::{Deserialize, Serialize};
+
+use crate::generic::Evaluate;
+
+/// How the linear score becomes an output.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub enum Link {
+    /// The output is the linear score itself (linear regression).
+    Identity,
+    /// The output is `1 / (1 + e^-score)` (logistic regression, a probability).
+    Logistic,
+}
+
+/// Parameters of a linear model, as training code writes them.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct LinearParams {
+    /// Link applied to every output.
+    pub link: Link,
+    /// One intercept per output.
+    pub intercepts: Vec<f64>,
+    /// One row per output, one weight per feature, in contract order.
+    pub weights: Vec<Vec<f64>>,
+    /// Empty, or one value per feature that replaces an absent (NaN) input
+    /// (mean imputation, say). When empty, an absent input makes the output
+    /// NaN, which the host reports as a model fault.
+    pub impute: Vec<f64>,
+}
+
+/// A linear model ready to evaluate.
+#[derive(Clone, Debug)]
+pub struct Linear {
+    link: Link,
+    features: usize,
+    intercepts: Vec<f64>,
+    /// outputs × features, row-major.
+    weights: Vec<f64>,
+    impute: Option<Vec<f64>>,
+}
+
+impl Linear {
+    /// Checks the parameters and builds the model.
+    ///
+    /// # Errors
+    /// When there is no output, the weight rows differ in length or do not
+    /// match the intercepts, the impute list has the wrong length, or any
+    /// number is not finite.
+    pub fn new(params: LinearParams) -> Result<Self, String> {
+        let outputs = params.intercepts.len();
+        if outputs == 0 {
+            return Err("linear params: no intercepts (at least one output is needed)".into());
+        }
+        if params.weights.len() != outputs {
+            return Err(format!(
+                "linear params: {} weight rows for {outputs} intercepts",
+                params.weights.len()
+            ));
+        }
+        let features = params.weights[0].len();
+        let mut weights = Vec::with_capacity(outputs * features);
+        for (k, row) in params.weights.iter().enumerate() {
+            if row.len() != features {
+                return Err(format!(
+                    "linear params: weight row {k} has {} weights, row 0 has {features}",
+                    row.len()
+                ));
+            }
+            weights.extend_from_slice(row);
+        }
+        if !params.impute.is_empty() && params.impute.len() != features {
+            return Err(format!(
+                "linear params: {} impute values for {features} features",
+                params.impute.len()
+            ));
+        }
+        let all = params.intercepts.iter().chain(&weights).chain(&params.impute);
+        if let Some(bad) = all.into_iter().find(|v| !v.is_finite()) {
+            return Err(format!("linear params: non-finite coefficient {bad}"));
+        }
+        Ok(Linear {
+            link: params.link,
+            features,
+            intercepts: params.intercepts,
+            weights,
+            impute: (!params.impute.is_empty()).then_some(params.impute),
+        })
+    }
+
+    fn row(&self, x: &[f64], out: &mut [f64]) {
+        for ((o, &b), w) in out.iter_mut().zip(&self.intercepts).zip(self.weights.chunks_exact(self.features)) {
+            let z = match &self.impute {
+                None => x.iter().zip(w).fold(b, |acc, (x, w)| acc + w * x),
+                Some(fill) => x
+                    .iter()
+                    .zip(w)
+                    .zip(fill)
+                    .fold(b, |acc, ((x, w), f)| acc + w * if x.is_nan() { *f } else { *x }),
+            };
+            *o = match self.link {
+                Link::Identity => z,
+                // libm, not std: the same bits natively and in the sandbox.
+                Link::Logistic => 1.0 / (1.0 + libm::exp(-z)),
+            };
+        }
+    }
+}
+
+impl Evaluate for Linear {
+    type Params = LinearParams;
+
+    fn build(params: LinearParams) -> Result<Self, String> {
+        Linear::new(params)
+    }
+
+    fn features(&self) -> usize {
+        self.features
+    }
+
+    fn outputs(&self) -> usize {
+        self.intercepts.len()
+    }
+
+    fn evaluate(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) {
+        match (rows.as_slice(), out.as_slice_mut()) {
+            (Some(cells), Some(dest)) if self.features > 0 => {
+                for (x, o) in cells.chunks_exact(self.features).zip(dest.chunks_exact_mut(self.outputs())) {
+                    self.row(x, o);
+                }
+            }
+            _ => {
+                for (x, mut o) in rows.outer_iter().zip(out.outer_iter_mut()) {
+                    let x = x.to_vec();
+                    let mut buf = vec![0.0; self.outputs()];
+                    self.row(&x, &mut buf);
+                    o.assign(&ndarray::ArrayView1::from(&buf));
+                }
+            }
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use ndarray::{Array2, array};
+
+    #[test]
+    fn identity_and_logistic_match_hand_computation() {
+        // Hand-computed: 0.5 + 2·1 − 1·3 = −0.5; logistic(−0.5) = 0.3775406687981454 (from memory, checked with a calculator).
+        let params = |link| LinearParams {
+            link,
+            intercepts: vec![0.5],
+            weights: vec![vec![2.0, -1.0]],
+            impute: vec![],
+        };
+        let rows = array![[1.0, 3.0]];
+        let mut out = Array2::zeros((1, 1));
+        Linear::new(params(Link::Identity)).unwrap().evaluate(rows.view(), out.view_mut());
+        assert_eq!(out[[0, 0]], -0.5);
+        Linear::new(params(Link::Logistic)).unwrap().evaluate(rows.view(), out.view_mut());
+        assert!((out[[0, 0]] - 0.377_540_668_798_145_4).abs() < 1e-15);
+    }
+
+    #[test]
+    fn impute_replaces_absent_inputs() {
+        let model = Linear::new(LinearParams {
+            link: Link::Identity,
+            intercepts: vec![1.0],
+            weights: vec![vec![1.0, 10.0]],
+            impute: vec![0.0, 0.25],
+        })
+        .unwrap();
+        let rows = array![[2.0, f64::NAN]];
+        let mut out = Array2::zeros((1, 1));
+        model.evaluate(rows.view(), out.view_mut());
+        assert_eq!(out[[0, 0]], 1.0 + 2.0 + 2.5);
+    }
+
+    #[test]
+    fn malformed_params_are_refused_with_the_reason() {
+        let err = Linear::new(LinearParams {
+            link: Link::Identity,
+            intercepts: vec![1.0, 2.0],
+            weights: vec![vec![1.0]],
+            impute: vec![],
+        })
+        .unwrap_err();
+        assert!(err.contains("1 weight rows for 2 intercepts"), "{err}");
+        let err = Linear::new(LinearParams {
+            link: Link::Identity,
+            intercepts: vec![f64::INFINITY],
+            weights: vec![vec![1.0]],
+            impute: vec![],
+        })
+        .unwrap_err();
+        assert!(err.contains("non-finite"), "{err}");
+    }
+}

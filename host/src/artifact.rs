@@ -1,0 +1,492 @@
+//! The artifact file: one WebAssembly component per model version, carrying
+//! its parameters and its checks in custom sections of our own naming.
+//!
+//! This module reads artifacts (size cap, structure, imports, exports, our
+//! sections, sha256 identity) and writes them ([`pack`]). It never runs
+//! anything: compiling and running are the sandbox's job.
+
+use std::fmt;
+use std::ops::Range;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use serde::Serialize;
+use sha2::{Digest as _, Sha256};
+use wasmparser::{Encoding, Parser, Payload};
+
+use crate::checks::Checks;
+use crate::limits::LimitHit;
+
+/// Name of the custom section that carries the parameter blob.
+pub const PARAMS_SECTION: &str = "paddock-params";
+/// Name of the custom section that carries the checks (JSON, see [`Checks`]).
+pub const CHECKS_SECTION: &str = "paddock-checks";
+/// Every section name this crate owns starts with this.
+const OWN_PREFIX: &str = "paddock-";
+
+/// Why an artifact cannot be read or packed.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ArtifactError {
+    /// The file could not be read.
+    #[error("cannot read {path}: {source}")]
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The file is larger than the configured cap.
+    #[error("{0}")]
+    TooLarge(LimitHit),
+    /// The file is empty.
+    #[error("the artifact is empty (0 bytes)")]
+    Empty,
+    /// The file does not start like WebAssembly.
+    #[error("not WebAssembly: the file does not start with the `\\0asm` magic bytes")]
+    NotWasm,
+    /// A core module where a packed component is expected.
+    #[error("this is a core WebAssembly module, not a component: pack it first (`paddock pack`)")]
+    CoreModule,
+    /// The bytes are not well-formed WebAssembly.
+    #[error("malformed WebAssembly at byte {offset}: {message}")]
+    Malformed {
+        /// Byte offset of the problem.
+        offset: usize,
+        /// What is wrong.
+        message: String,
+    },
+    /// One of our sections appears more than once.
+    #[error("custom section `{name}` appears {count} times; an artifact carries it at most once")]
+    DuplicateSection {
+        /// Section name.
+        name: String,
+        /// How many times it appears.
+        count: usize,
+    },
+    /// A section name starts with our prefix but is not one we know.
+    #[error("unknown custom section `{name}`: names starting with `{OWN_PREFIX}` are reserved")]
+    UnknownSection {
+        /// Section name.
+        name: String,
+    },
+    /// The checks section (or file) does not parse.
+    #[error("checks do not parse: {0}")]
+    Checks(String),
+    /// A core module could not be turned into a component.
+    #[error("cannot make a component from this module: {0}")]
+    Componentize(String),
+}
+
+/// The sha256 of an artifact file: its identity.
+#[derive(Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub struct Digest(pub [u8; 32]);
+
+impl Digest {
+    /// The digest of some bytes.
+    pub fn of(bytes: &[u8]) -> Self {
+        Digest(Sha256::digest(bytes).into())
+    }
+
+    /// Lowercase hex, without prefix.
+    pub fn hex(&self) -> String {
+        self.0.iter().map(|b| format!("{b:02x}")).collect()
+    }
+
+    /// The first 12 hex digits, for tables and logs.
+    pub fn short(&self) -> String {
+        self.hex()[..12].to_owned()
+    }
+}
+
+impl fmt::Display for Digest {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        write!(f, "sha256:{}", self.hex())
+    }
+}
+
+impl fmt::Debug for Digest {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        fmt::Display::fmt(self, f)
+    }
+}
+
+impl Serialize for Digest {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        s.collect_str(self)
+    }
+}
+
+/// A top-level custom section: its name and size.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct SectionInfo {
+    /// Section name.
+    pub name: String,
+    /// Size of its contents in bytes.
+    pub bytes: usize,
+}
+
+/// A parsed artifact, ready to be compiled by the sandbox.
+#[derive(Clone)]
+pub struct Artifact {
+    bytes: Arc<[u8]>,
+    digest: Digest,
+    params: Option<Range<usize>>,
+    checks: Option<Range<usize>>,
+    sections: Vec<SectionInfo>,
+    imports: Vec<String>,
+    exports: Vec<String>,
+}
+
+impl fmt::Debug for Artifact {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("Artifact")
+            .field("digest", &self.digest)
+            .field("bytes", &self.bytes.len())
+            .field("sections", &self.sections)
+            .field("imports", &self.imports)
+            .field("exports", &self.exports)
+            .finish()
+    }
+}
+
+impl Artifact {
+    /// Reads an artifact file, refusing it before reading when it is larger
+    /// than `max_bytes`.
+    ///
+    /// # Errors
+    /// [`ArtifactError::Io`] when the file cannot be read, otherwise as
+    /// [`Artifact::from_bytes`].
+    pub fn read(path: &Path, max_bytes: u64) -> Result<Self, ArtifactError> {
+        let io = |source| ArtifactError::Io { path: path.to_owned(), source };
+        let size = std::fs::metadata(path).map_err(io)?.len();
+        check_size(size, max_bytes)?;
+        Self::from_bytes(std::fs::read(path).map_err(io)?, max_bytes)
+    }
+
+    /// Parses artifact bytes: size cap, structure, top-level imports,
+    /// exports and custom sections.
+    ///
+    /// # Errors
+    /// [`ArtifactError::TooLarge`], [`Empty`](ArtifactError::Empty),
+    /// [`NotWasm`](ArtifactError::NotWasm),
+    /// [`CoreModule`](ArtifactError::CoreModule),
+    /// [`Malformed`](ArtifactError::Malformed), or
+    /// [`DuplicateSection`](ArtifactError::DuplicateSection) /
+    /// [`UnknownSection`](ArtifactError::UnknownSection) for our own sections.
+    pub fn from_bytes(bytes: Vec<u8>, max_bytes: u64) -> Result<Self, ArtifactError> {
+        check_size(bytes.len() as u64, max_bytes)?;
+        let shape = Shape::of(&bytes)?;
+        if shape.encoding == Encoding::Module {
+            return Err(ArtifactError::CoreModule);
+        }
+        let mut params = None;
+        let mut checks = None;
+        for (name, range) in &shape.custom {
+            let slot = match name.as_str() {
+                PARAMS_SECTION => &mut params,
+                CHECKS_SECTION => &mut checks,
+                other if other.starts_with(OWN_PREFIX) => {
+                    return Err(ArtifactError::UnknownSection { name: other.to_owned() });
+                }
+                _ => continue,
+            };
+            if slot.is_some() {
+                let count = shape.custom.iter().filter(|(n, _)| n == name).count();
+                return Err(ArtifactError::DuplicateSection { name: name.clone(), count });
+            }
+            *slot = Some(range.clone());
+        }
+        let sections = shape
+            .custom
+            .iter()
+            .map(|(name, range)| SectionInfo { name: name.clone(), bytes: range.len() })
+            .collect();
+        Ok(Artifact {
+            digest: Digest::of(&bytes),
+            bytes: bytes.into(),
+            params,
+            checks,
+            sections,
+            imports: shape.imports,
+            exports: shape.exports,
+        })
+    }
+
+    /// The whole file.
+    pub fn bytes(&self) -> &[u8] {
+        &self.bytes
+    }
+
+    /// The sha256 of the whole file: the artifact's identity.
+    pub fn digest(&self) -> Digest {
+        self.digest
+    }
+
+    /// The parameter blob (empty when the artifact carries none).
+    pub fn params(&self) -> &[u8] {
+        self.params.clone().map_or(&[], |r| &self.bytes[r])
+    }
+
+    /// The checks the artifact carries, if any.
+    ///
+    /// # Errors
+    /// [`ArtifactError::Checks`] when the section does not parse.
+    pub fn checks(&self) -> Result<Option<Checks>, ArtifactError> {
+        self.checks.clone().map(|r| Checks::from_json(&self.bytes[r])).transpose()
+    }
+
+    /// Top-level custom sections, in file order.
+    pub fn sections(&self) -> &[SectionInfo] {
+        &self.sections
+    }
+
+    /// Names of the component's top-level imports. A model must have none.
+    pub fn imports(&self) -> &[String] {
+        &self.imports
+    }
+
+    /// Names of the component's top-level exports.
+    pub fn exports(&self) -> &[String] {
+        &self.exports
+    }
+}
+
+fn check_size(actual: u64, limit: u64) -> Result<(), ArtifactError> {
+    if actual > limit {
+        return Err(ArtifactError::TooLarge(LimitHit::ArtifactSize { limit, actual }));
+    }
+    if actual == 0 {
+        return Err(ArtifactError::Empty);
+    }
+    Ok(())
+}
+
+/// What a structural pass over a binary finds at its top level.
+struct Shape {
+    encoding: Encoding,
+    imports: Vec<String>,
+    exports: Vec<String>,
+    /// Top-level custom sections: name and range of their contents.
+    custom: Vec<(String, Range<usize>)>,
+}
+
+impl Shape {
+    fn of(bytes: &[u8]) -> Result<Shape, ArtifactError> {
+        if !bytes.starts_with(b"\0asm") {
+            return Err(ArtifactError::NotWasm);
+        }
+        let malformed = |e: wasmparser::BinaryReaderError| ArtifactError::Malformed {
+            offset: e.offset(),
+            message: e.message().to_owned(),
+        };
+        let mut shape =
+            Shape { encoding: Encoding::Component, imports: vec![], exports: vec![], custom: vec![] };
+        // Nesting depth: payloads of nested modules and components come
+        // inline; only depth 0 is the artifact's own surface.
+        let mut depth = 0usize;
+        for payload in Parser::new(0).parse_all(bytes) {
+            match payload.map_err(malformed)? {
+                Payload::Version { encoding, .. } if depth == 0 => shape.encoding = encoding,
+                Payload::ModuleSection { .. } | Payload::ComponentSection { .. } => depth += 1,
+                Payload::End(_) => depth = depth.saturating_sub(1),
+                _ if depth > 0 => {}
+                Payload::ComponentImportSection(reader) => {
+                    for import in reader {
+                        shape.imports.push(import.map_err(malformed)?.name.name.to_owned());
+                    }
+                }
+                Payload::ComponentExportSection(reader) => {
+                    for export in reader {
+                        shape.exports.push(export.map_err(malformed)?.name.name.to_owned());
+                    }
+                }
+                Payload::ImportSection(reader) => {
+                    for import in reader.into_imports() {
+                        let import = import.map_err(malformed)?;
+                        shape.imports.push(format!("{}::{}", import.module, import.name));
+                    }
+                }
+                Payload::ExportSection(reader) => {
+                    for export in reader {
+                        shape.exports.push(export.map_err(malformed)?.name.to_owned());
+                    }
+                }
+                Payload::CustomSection(reader) => {
+                    let start = reader.data_offset();
+                    shape.custom.push((reader.name().to_owned(), start..start + reader.data().len()));
+                }
+                _ => {}
+            }
+        }
+        Ok(shape)
+    }
+}
+
+/// What [`inspect_bytes`] reports about any WebAssembly binary.
+#[derive(Clone, Debug, Serialize)]
+pub struct Surface {
+    /// `component` or `module`.
+    pub encoding: &'static str,
+    /// Top-level imports.
+    pub imports: Vec<String>,
+    /// Top-level exports.
+    pub exports: Vec<String>,
+    /// Top-level custom sections.
+    pub sections: Vec<SectionInfo>,
+}
+
+/// Reads the surface of any WebAssembly binary, component or core module,
+/// without requiring it to be a valid artifact.
+///
+/// # Errors
+/// [`ArtifactError::NotWasm`] or [`ArtifactError::Malformed`].
+pub fn inspect_bytes(bytes: &[u8]) -> Result<Surface, ArtifactError> {
+    let shape = Shape::of(bytes)?;
+    Ok(Surface {
+        encoding: match shape.encoding {
+            Encoding::Component => "component",
+            Encoding::Module => "module",
+        },
+        imports: shape.imports,
+        exports: shape.exports,
+        sections: shape
+            .custom
+            .iter()
+            .map(|(name, range)| SectionInfo { name: name.clone(), bytes: range.len() })
+            .collect(),
+    })
+}
+
+/// Makes an artifact: turns a core module built for `wasm32-unknown-unknown`
+/// into a component (or takes a component as it is), drops any of our
+/// sections it already carries, and appends the params and checks.
+///
+/// # Errors
+/// [`ArtifactError::NotWasm`] / [`Malformed`](ArtifactError::Malformed) for
+/// bad input, [`ArtifactError::Componentize`] when the module lacks the
+/// component type information or does not validate.
+pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Result<Vec<u8>, ArtifactError> {
+    let shape = Shape::of(wasm)?;
+    let component = match shape.encoding {
+        Encoding::Component => wasm.to_vec(),
+        Encoding::Module => wit_component::ComponentEncoder::default()
+            .module(wasm)
+            .and_then(|e| e.validate(true).encode())
+            .map_err(|e| ArtifactError::Componentize(format!("{e:#}")))?,
+    };
+    let mut out = strip_own_sections(&component)?;
+    if let Some(params) = params {
+        append_custom(&mut out, PARAMS_SECTION, params);
+    }
+    if let Some(checks) = checks {
+        append_custom(&mut out, CHECKS_SECTION, &checks.to_json());
+    }
+    Ok(out)
+}
+
+/// Copies a binary without its top-level `paddock-*` custom sections.
+fn strip_own_sections(bytes: &[u8]) -> Result<Vec<u8>, ArtifactError> {
+    let mut out = bytes[..8].to_vec();
+    let mut pos = 8;
+    while pos < bytes.len() {
+        let start = pos;
+        let id = bytes[pos];
+        let (len, n) = read_u32_leb(&bytes[pos + 1..]).ok_or(ArtifactError::Malformed {
+            offset: pos + 1,
+            message: "bad section length".into(),
+        })?;
+        let body = pos + 1 + n;
+        let end = body + len as usize;
+        if end > bytes.len() {
+            return Err(ArtifactError::Malformed { offset: start, message: "section runs past the end".into() });
+        }
+        let ours = id == 0
+            && read_u32_leb(&bytes[body..end]).is_some_and(|(name_len, m)| {
+                bytes.get(body + m..body + m + name_len as usize).is_some_and(|name| name.starts_with(OWN_PREFIX.as_bytes()))
+            });
+        if !ours {
+            out.extend_from_slice(&bytes[start..end]);
+        }
+        pos = end;
+    }
+    Ok(out)
+}
+
+fn read_u32_leb(bytes: &[u8]) -> Option<(u32, usize)> {
+    let mut value: u64 = 0;
+    for (i, &b) in bytes.iter().take(5).enumerate() {
+        value |= u64::from(b & 0x7f) << (7 * i);
+        if b & 0x80 == 0 {
+            return u32::try_from(value).ok().map(|v| (v, i + 1));
+        }
+    }
+    None
+}
+
+fn write_u32_leb(out: &mut Vec<u8>, mut value: u32) {
+    loop {
+        let byte = (value & 0x7f) as u8;
+        value >>= 7;
+        if value == 0 {
+            out.push(byte);
+            return;
+        }
+        out.push(byte | 0x80);
+    }
+}
+
+fn append_custom(out: &mut Vec<u8>, name: &str, data: &[u8]) {
+    let mut body = Vec::with_capacity(name.len() + data.len() + 5);
+    write_u32_leb(&mut body, name.len() as u32);
+    body.extend_from_slice(name.as_bytes());
+    body.extend_from_slice(data);
+    out.push(0);
+    write_u32_leb(out, body.len() as u32);
+    out.extend_from_slice(&body);
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    const EMPTY_COMPONENT: &[u8] = b"\0asm\x0d\0\x01\0";
+
+    #[test]
+    fn pack_appends_and_replaces_our_sections() {
+        let once = pack(EMPTY_COMPONENT, Some(b"abc"), None).unwrap();
+        let art = Artifact::from_bytes(once.clone(), 1 << 20).unwrap();
+        assert_eq!(art.params(), b"abc");
+        let twice = pack(&once, Some(b"xyz!"), None).unwrap();
+        let art = Artifact::from_bytes(twice, 1 << 20).unwrap();
+        assert_eq!(art.params(), b"xyz!");
+        assert_eq!(art.sections().len(), 1);
+        assert_ne!(art.digest(), Digest::of(&once));
+    }
+
+    #[test]
+    fn duplicate_sections_are_refused() {
+        let mut bytes = EMPTY_COMPONENT.to_vec();
+        append_custom(&mut bytes, PARAMS_SECTION, b"a");
+        append_custom(&mut bytes, PARAMS_SECTION, b"b");
+        let err = Artifact::from_bytes(bytes, 1 << 20).unwrap_err();
+        assert_eq!(err.to_string(), "custom section `paddock-params` appears 2 times; an artifact carries it at most once");
+    }
+
+    #[test]
+    fn size_cap_and_empty_and_non_wasm_are_named() {
+        let err = Artifact::from_bytes(vec![0; 100], 10).unwrap_err();
+        assert!(err.to_string().contains("artifact size cap of 10 bytes exceeded (file has 100 bytes)"), "{err}");
+        assert!(matches!(Artifact::from_bytes(vec![], 10), Err(ArtifactError::Empty)));
+        assert!(matches!(Artifact::from_bytes(b"hello world".to_vec(), 100), Err(ArtifactError::NotWasm)));
+    }
+
+    #[test]
+    fn leb_round_trips() {
+        for v in [0u32, 1, 127, 128, 300, 16_384, u32::MAX] {
+            let mut buf = vec![];
+            write_u32_leb(&mut buf, v);
+            assert_eq!(read_u32_leb(&buf), Some((v, buf.len())));
+        }
+    }
+}

@@ -1,0 +1,56 @@
+//! Load sandboxed paddock models, check rows against their contract, and
+//! score them under hard limits.
+//!
+//! A request travels artifact → contract → sandbox:
+//!
+//! ```no_run
+//! use paddock_host::{Artifact, Model, Row, Runtime};
+//!
+//! # fn main() -> Result<(), Box<dyn std::error::Error>> {
+//! let runtime = Runtime::new()?;
+//! let artifact = Artifact::read("charge-minutes.wasm".as_ref(), 64 << 20)?;
+//! let model = Model::load(&runtime, artifact)?;
+//! let row = Row::new()
+//!     .with("charger_kw", 11.0)
+//!     .with("battery_kwh", 64.0)
+//!     .with("soc_start", 0.2)
+//!     .with("soc_target", 0.8)
+//!     .with("hour_of_week", 42i64)
+//!     .with("connector", "type2")
+//!     .with("fleet", false);
+//! let estimates = model.score(&[row])?;
+//! println!("{} minutes", estimates.row(0)[0]);
+//! # Ok(()) }
+//! ```
+//!
+//! Core concepts:
+//! - [`Artifact`]: one model version as a file — a WebAssembly component
+//!   with its params and checks in custom sections; identity is its sha256.
+//! - [`Contract`] / [`Schema`]: what the model reads and writes, validated
+//!   on load; every row is checked against it before it enters the sandbox.
+//! - [`Runtime`]: the engine and its clock; one per process.
+//! - [`Model`]: a loaded artifact serving many threads under its
+//!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
+//! - [`Checks`]: example rows with recorded outputs, run by [`checks::run`].
+//!
+//! What it is not: a training library, or a feature store. It scores the
+//! rows it is given, exactly as the artifact says, and nothing else.
+
+#![deny(missing_docs)]
+
+pub mod artifact;
+mod bindings;
+pub mod checks;
+pub mod contract;
+pub mod limits;
+pub mod model;
+pub mod rows;
+pub mod sandbox;
+
+pub use artifact::{Artifact, ArtifactError, Digest, pack};
+pub use checks::{CheckReport, Checks, Tolerance};
+pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output, Schema};
+pub use limits::{LimitHit, Limits};
+pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError, Usage};
+pub use rows::{OutputFault, Row, RowError, Rule, Value};
+pub use sandbox::{Runtime, RuntimeConfig, SandboxError};

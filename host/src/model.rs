@@ -1,0 +1,413 @@
+//! A loaded model: one artifact, compiled once, served from a pool of warm
+//! instances (or a fresh instance per call) to any number of threads.
+
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use serde::Serialize;
+use wasmtime::component::Component;
+
+use crate::artifact::{Artifact, Digest};
+use crate::bindings::EstimatorPre;
+use crate::contract::{Contract, ContractError, Fault, Schema};
+use crate::limits::{LimitHit, Limits};
+use crate::rows::{OutputFault, Row, RowError};
+use crate::sandbox::{Instance, Runtime, SandboxError, StartError, State};
+
+/// Whether instances are reused between calls.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Isolation {
+    /// Keep instances warm and reuse them for later calls (fast). An
+    /// instance that trapped, hit a limit or returned a bad answer is
+    /// discarded, never reused. Default.
+    #[default]
+    Reuse,
+    /// A fresh instance for every call, dropped afterwards: no state can
+    /// pass from one call to the next. Several µs slower per call.
+    FreshPerCall,
+}
+
+/// How to load a model.
+#[derive(Clone, Debug, Default, PartialEq, Serialize)]
+pub struct ModelOptions {
+    /// The limits that bind it.
+    pub limits: Limits,
+    /// Instance reuse.
+    pub isolation: Isolation,
+}
+
+/// Why a model could not be loaded.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum LoadError {
+    /// The artifact is larger than the model's size cap.
+    #[error("{0}")]
+    TooLarge(LimitHit),
+    /// The artifact imports something; models must import nothing.
+    #[error("the artifact imports {}; a model may import nothing", list(.0))]
+    Imports(Vec<String>),
+    /// wasmtime refused to compile the component.
+    #[error("the component does not compile: {0}")]
+    Compile(String),
+    /// The component's exports do not match the `estimator` world.
+    #[error("the component does not implement the paddock:model/estimator world: {0}")]
+    World(String),
+    /// The first instance failed to start.
+    #[error("the model failed to start: {0}")]
+    Start(StartError),
+    /// The declared contract is invalid.
+    #[error("{0}")]
+    Contract(ContractError),
+    /// The options ask for something the runtime cannot give.
+    #[error("{0}")]
+    Options(String),
+}
+
+/// Refuses limits the runtime cannot enforce.
+fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
+    let rc = runtime.config();
+    if limits.fuel.is_some() && !rc.fuel {
+        return Err(LoadError::Options("a fuel limit needs a runtime that meters fuel (RuntimeConfig::fuel)".into()));
+    }
+    if limits.memory_bytes > rc.max_memory_bytes {
+        return Err(LoadError::Options(format!(
+            "memory cap of {} bytes is above the runtime's maximum of {} bytes",
+            limits.memory_bytes, rc.max_memory_bytes
+        )));
+    }
+    if limits.table_elements > rc.max_table_elements {
+        return Err(LoadError::Options(format!(
+            "table cap of {} elements is above the runtime's maximum of {}",
+            limits.table_elements, rc.max_table_elements
+        )));
+    }
+    Ok(())
+}
+
+fn list(names: &[String]) -> String {
+    names.iter().map(|n| format!("`{n}`")).collect::<Vec<_>>().join(", ")
+}
+
+/// Why a call did not produce estimates.
+#[derive(Debug, Clone, PartialEq, Serialize, thiserror::Error)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum ScoreError {
+    /// One or more rows break the contract; nothing entered the sandbox.
+    #[error("{} invalid row(s): {}", .errors.len(), .errors.first().map(ToString::to_string).unwrap_or_default())]
+    InvalidRows {
+        /// Every invalid row.
+        errors: Vec<RowError>,
+    },
+    /// Dense cells that do not make whole rows.
+    #[error("{cells} cells do not make {rows} rows of {width} features")]
+    Shape {
+        /// Cells given.
+        cells: usize,
+        /// Rows claimed.
+        rows: usize,
+        /// Features per row.
+        width: usize,
+    },
+    /// The call carried more rows than the model's limit.
+    #[error("{0}")]
+    TooManyRows(LimitHit),
+    /// A limit stopped the call, or the model trapped.
+    #[error("{0}")]
+    Sandbox(SandboxError),
+    /// A fresh instance for this call failed to start.
+    #[error("a new instance failed to start: {0}")]
+    Start(StartError),
+    /// A new instance declared a different contract from the loaded one.
+    #[error("a new instance declared a different contract from the one loaded")]
+    ContractChanged,
+    /// The model returned a fault.
+    #[error("{0}")]
+    Fault(Fault),
+    /// The model's answer breaks the contract.
+    #[error("model fault: {0}")]
+    Output(OutputFault),
+}
+
+impl ScoreError {
+    /// A short stable name for the kind of error, for metrics and logs.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            ScoreError::InvalidRows { .. } => "invalid_rows",
+            ScoreError::Shape { .. } => "shape",
+            ScoreError::TooManyRows(_) => "too_many_rows",
+            ScoreError::Sandbox(SandboxError::Limit(_)) => "limit",
+            ScoreError::Sandbox(SandboxError::Trap { .. }) => "trap",
+            ScoreError::Start(_) => "start",
+            ScoreError::ContractChanged => "contract_changed",
+            ScoreError::Fault(_) => "fault",
+            ScoreError::Output(_) => "output",
+        }
+    }
+
+    /// The limit this error reports, if it is a limit hit.
+    pub fn limit(&self) -> Option<&LimitHit> {
+        match self {
+            ScoreError::Sandbox(SandboxError::Limit(hit))
+            | ScoreError::TooManyRows(hit)
+            | ScoreError::Start(StartError::Sandbox { error: SandboxError::Limit(hit), .. }) => Some(hit),
+            _ => None,
+        }
+    }
+}
+
+/// What one call cost.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize)]
+pub struct Usage {
+    /// Rows scored.
+    pub rows: usize,
+    /// Wall time from taking an instance to checking the outputs.
+    #[serde(serialize_with = "ser_micros")]
+    pub wall: Duration,
+    /// Fuel the call used, when the runtime meters fuel.
+    pub fuel: Option<u64>,
+    /// Whether the call started a new instance.
+    pub fresh_instance: bool,
+    /// Largest linear memory of the instance so far, in bytes.
+    pub peak_memory_bytes: u64,
+}
+
+fn ser_micros<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_f64(d.as_secs_f64() * 1e6)
+}
+
+/// The estimates for one call: `rows × outputs` values, row-major, in the
+/// contract's output order.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Estimates {
+    values: Vec<f64>,
+    outputs: usize,
+    usage: Usage,
+}
+
+impl Estimates {
+    /// Number of rows.
+    pub fn rows(&self) -> usize {
+        self.values.len() / self.outputs
+    }
+
+    /// The outputs of one row, in contract order.
+    ///
+    /// # Panics
+    /// When `row` is out of range.
+    pub fn row(&self, row: usize) -> &[f64] {
+        &self.values[row * self.outputs..(row + 1) * self.outputs]
+    }
+
+    /// All values, row-major.
+    pub fn values(&self) -> &[f64] {
+        &self.values
+    }
+
+    /// What the call cost.
+    pub fn usage(&self) -> &Usage {
+        &self.usage
+    }
+}
+
+/// A loaded model. `Send + Sync`: share it (it is cheap to clone) and call
+/// it from any number of threads.
+#[derive(Clone)]
+pub struct Model {
+    inner: Arc<Inner>,
+}
+
+struct Inner {
+    runtime: Runtime,
+    artifact: Artifact,
+    pre: EstimatorPre<State>,
+    schema: Schema,
+    options: ModelOptions,
+    idle: Mutex<Vec<Instance>>,
+    max_idle: usize,
+}
+
+impl std::fmt::Debug for Model {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Model")
+            .field("name", &self.contract().name)
+            .field("version", &self.contract().version)
+            .field("digest", &self.digest())
+            .finish()
+    }
+}
+
+impl Model {
+    /// Loads a model with default options: size cap, refuse imports,
+    /// compile, instantiate, `init(params)`, `describe()`, validate the
+    /// contract.
+    ///
+    /// # Errors
+    /// See [`Model::load_with`].
+    pub fn load(runtime: &Runtime, artifact: Artifact) -> Result<Model, LoadError> {
+        Self::load_with(runtime, artifact, ModelOptions::default())
+    }
+
+    /// Loads a model with the given options.
+    ///
+    /// # Errors
+    /// [`LoadError::TooLarge`] over the size cap, [`LoadError::Imports`]
+    /// naming every import, [`LoadError::Compile`] / [`LoadError::World`]
+    /// for components wasmtime refuses, [`LoadError::Start`] when
+    /// instantiation, `init` or `describe` trap, hit a limit or refuse the
+    /// params, [`LoadError::Contract`] listing every problem with the
+    /// declared contract, [`LoadError::Options`] for limits the runtime
+    /// cannot enforce.
+    pub fn load_with(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<Model, LoadError> {
+        let limits = &options.limits;
+        let size = artifact.bytes().len() as u64;
+        if size > limits.artifact_bytes {
+            return Err(LoadError::TooLarge(LimitHit::ArtifactSize { limit: limits.artifact_bytes, actual: size }));
+        }
+        if !artifact.imports().is_empty() {
+            return Err(LoadError::Imports(artifact.imports().to_vec()));
+        }
+        check_options(runtime, limits)?;
+        let component =
+            Component::new(runtime.engine(), artifact.bytes()).map_err(|e| LoadError::Compile(format!("{e:#}")))?;
+        let pre = runtime.prepare(&component).map_err(LoadError::World)?;
+        let (first, contract) =
+            Instance::start(runtime, &pre, limits, artifact.params()).map_err(LoadError::Start)?;
+        let schema = Schema::new(contract).map_err(LoadError::Contract)?;
+        let max_idle = std::thread::available_parallelism().map_or(4, |n| n.get() * 2);
+        let idle = if options.isolation == Isolation::Reuse { vec![first] } else { vec![] };
+        Ok(Model {
+            inner: Arc::new(Inner {
+                runtime: runtime.clone(),
+                artifact,
+                pre,
+                schema,
+                options,
+                idle: Mutex::new(idle),
+                max_idle,
+            }),
+        })
+    }
+
+    /// The contract the model declared.
+    pub fn contract(&self) -> &Contract {
+        self.inner.schema.contract()
+    }
+
+    /// The contract with its lookups: encode rows and check outputs with it.
+    pub fn schema(&self) -> &Schema {
+        &self.inner.schema
+    }
+
+    /// The artifact's identity.
+    pub fn digest(&self) -> Digest {
+        self.inner.artifact.digest()
+    }
+
+    /// The artifact the model was loaded from.
+    pub fn artifact(&self) -> &Artifact {
+        &self.inner.artifact
+    }
+
+    /// The options the model was loaded with.
+    pub fn options(&self) -> &ModelOptions {
+        &self.inner.options
+    }
+
+    /// Checks every row against the contract, then scores them in one call.
+    ///
+    /// # Errors
+    /// [`ScoreError::InvalidRows`] listing every invalid row (nothing is
+    /// scored), otherwise as [`Model::score_cells`].
+    pub fn score(&self, rows: &[Row]) -> Result<Estimates, ScoreError> {
+        let schema = &self.inner.schema;
+        self.check_row_count(rows.len())?;
+        let mut cells = Vec::with_capacity(rows.len() * schema.width());
+        let mut errors = Vec::new();
+        for (i, row) in rows.iter().enumerate() {
+            if let Err(e) = schema.encode_row(i, row, &mut cells) {
+                errors.push(e);
+            }
+        }
+        if !errors.is_empty() {
+            return Err(ScoreError::InvalidRows { errors });
+        }
+        self.score_cells(rows.len(), &cells)
+    }
+
+    /// Scores rows already encoded as dense cells (row-major, contract
+    /// order, NaN for absent). Skips the row checks: use it only with cells
+    /// from [`Schema::encode_row`] or an equally careful encoder.
+    ///
+    /// # Errors
+    /// [`ScoreError::Shape`] when `cells` is not `rows × features` long;
+    /// [`ScoreError::TooManyRows`]; [`ScoreError::Start`] when a new instance
+    /// fails to start; [`ScoreError::Sandbox`] for a limit hit or trap;
+    /// [`ScoreError::Fault`] when the model declines; [`ScoreError::Output`]
+    /// when its answer breaks the contract.
+    pub fn score_cells(&self, rows: usize, cells: &[f64]) -> Result<Estimates, ScoreError> {
+        let inner = &*self.inner;
+        let width = inner.schema.width();
+        if cells.len() != rows * width {
+            return Err(ScoreError::Shape { cells: cells.len(), rows, width });
+        }
+        self.check_row_count(rows)?;
+        let started = Instant::now();
+        let (mut instance, fresh) = self.take()?;
+        let limits = &inner.options.limits;
+        let (answer, fuel) = instance.score(&inner.runtime, limits, rows as u32, cells).map_err(ScoreError::Sandbox)?;
+        let values = match answer {
+            Ok(values) => values,
+            Err(fault) => {
+                // A rejection is an ordinary answer; a failure may have left
+                // the instance in a bad state, so it is not reused.
+                if matches!(fault, Fault::Rejected(_)) {
+                    self.give_back(instance);
+                }
+                return Err(ScoreError::Fault(fault));
+            }
+        };
+        inner.schema.check_outputs(rows, &values).map_err(ScoreError::Output)?;
+        let peak_memory_bytes = instance.peak_memory();
+        self.give_back(instance);
+        let usage = Usage { rows, wall: started.elapsed(), fuel, fresh_instance: fresh, peak_memory_bytes };
+        Ok(Estimates { values, outputs: inner.schema.outputs(), usage })
+    }
+
+    fn check_row_count(&self, rows: usize) -> Result<(), ScoreError> {
+        let limit = self.inner.options.limits.rows_per_call;
+        if rows > limit {
+            return Err(ScoreError::TooManyRows(LimitHit::Rows { limit, actual: rows }));
+        }
+        Ok(())
+    }
+
+    /// An idle instance, or a new one (checked to declare the same contract).
+    fn take(&self) -> Result<(Instance, bool), ScoreError> {
+        let inner = &*self.inner;
+        if let Some(instance) = inner.idle.lock().unwrap_or_else(|p| p.into_inner()).pop() {
+            return Ok((instance, false));
+        }
+        let (instance, contract) =
+            Instance::start(&inner.runtime, &inner.pre, &inner.options.limits, inner.artifact.params())
+                .map_err(ScoreError::Start)?;
+        if &contract != inner.schema.contract() {
+            return Err(ScoreError::ContractChanged);
+        }
+        Ok((instance, true))
+    }
+
+    /// Returns a healthy instance to the pool when reuse is on and the pool
+    /// has room; drops it otherwise.
+    fn give_back(&self, instance: Instance) {
+        let inner = &*self.inner;
+        if inner.options.isolation == Isolation::FreshPerCall {
+            return;
+        }
+        let mut idle = inner.idle.lock().unwrap_or_else(|p| p.into_inner());
+        if idle.len() < inner.max_idle {
+            idle.push(instance);
+        }
+    }
+}

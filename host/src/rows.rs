@@ -1,0 +1,505 @@
+//! Typed rows in, dense cells out: every row is checked against the
+//! contract before anything enters the sandbox, and every output is checked
+//! against the contract before anything leaves the host.
+
+use std::fmt;
+
+use serde::{Deserialize, Serialize};
+
+use crate::contract::{Bounds, Domain, Schema};
+
+/// One feature value in a request row.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(untagged)]
+pub enum Value {
+    /// A whole number.
+    Integer(i64),
+    /// A real number.
+    Number(f64),
+    /// A yes/no value.
+    Flag(bool),
+    /// A label (one of a label feature's allowed texts).
+    Label(String),
+    /// No value (JSON `null`, an empty CSV cell).
+    Absent,
+}
+
+impl fmt::Display for Value {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Value::Integer(v) => write!(f, "{v}"),
+            Value::Number(v) => write!(f, "{v}"),
+            Value::Flag(v) => write!(f, "{v}"),
+            Value::Label(v) => write!(f, "{v:?}"),
+            Value::Absent => write!(f, "absent"),
+        }
+    }
+}
+
+impl From<f64> for Value {
+    fn from(v: f64) -> Self {
+        Value::Number(v)
+    }
+}
+impl From<i64> for Value {
+    fn from(v: i64) -> Self {
+        Value::Integer(v)
+    }
+}
+impl From<bool> for Value {
+    fn from(v: bool) -> Self {
+        Value::Flag(v)
+    }
+}
+impl From<&str> for Value {
+    fn from(v: &str) -> Self {
+        Value::Label(v.to_owned())
+    }
+}
+
+/// One request row: feature name → value. Features the row leaves out are
+/// absent.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct Row(Vec<(String, Value)>);
+
+impl Serialize for Row {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut map = s.serialize_map(Some(self.0.len()))?;
+        for (k, v) in &self.0 {
+            map.serialize_entry(k, v)?;
+        }
+        map.end()
+    }
+}
+
+impl<'de> Deserialize<'de> for Row {
+    fn deserialize<D: serde::Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        Row::from_json(serde_json::Value::deserialize(d)?).map_err(serde::de::Error::custom)
+    }
+}
+
+impl Row {
+    /// An empty row.
+    pub fn new() -> Self {
+        Row(Vec::new())
+    }
+
+    /// Adds a feature value (builder style).
+    pub fn with(mut self, name: &str, value: impl Into<Value>) -> Self {
+        self.0.push((name.to_owned(), value.into()));
+        self
+    }
+
+    /// Adds a feature value.
+    pub fn insert(&mut self, name: String, value: Value) {
+        self.0.push((name, value));
+    }
+
+    /// The values, in insertion order.
+    pub fn fields(&self) -> &[(String, Value)] {
+        &self.0
+    }
+
+    /// Reads a row from a JSON object: numbers, strings (labels), booleans
+    /// (flags) and nulls (absent).
+    ///
+    /// # Errors
+    /// A message naming the key whose value is an array or object, or
+    /// saying the row is not an object.
+    pub fn from_json(value: serde_json::Value) -> Result<Row, String> {
+        let serde_json::Value::Object(map) = value else {
+            return Err(format!("a row must be a JSON object, not {}", json_kind(&value)));
+        };
+        let mut row = Row(Vec::with_capacity(map.len()));
+        for (key, v) in map {
+            let value = match v {
+                serde_json::Value::Null => Value::Absent,
+                serde_json::Value::Bool(b) => Value::Flag(b),
+                serde_json::Value::Number(n) => match n.as_i64() {
+                    Some(i) => Value::Integer(i),
+                    None => Value::Number(n.as_f64().unwrap_or(f64::NAN)),
+                },
+                serde_json::Value::String(s) => Value::Label(s),
+                other => return Err(format!("feature `{key}`: {} is not a feature value", json_kind(&other))),
+            };
+            row.0.push((key, value));
+        }
+        Ok(row)
+    }
+}
+
+fn json_kind(v: &serde_json::Value) -> &'static str {
+    match v {
+        serde_json::Value::Null => "null",
+        serde_json::Value::Bool(_) => "a boolean",
+        serde_json::Value::Number(_) => "a number",
+        serde_json::Value::String(_) => "a string",
+        serde_json::Value::Array(_) => "an array",
+        serde_json::Value::Object(_) => "an object",
+    }
+}
+
+impl<K: Into<String>, V: Into<Value>> FromIterator<(K, V)> for Row {
+    fn from_iter<I: IntoIterator<Item = (K, V)>>(iter: I) -> Self {
+        Row(iter.into_iter().map(|(k, v)| (k.into(), v.into())).collect())
+    }
+}
+
+/// The rule a row broke.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[serde(tag = "rule", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum Rule {
+    /// The contract has no feature of this name.
+    UnknownFeature,
+    /// The row gives the same feature twice.
+    Repeated,
+    /// A required feature is absent.
+    MissingRequired,
+    /// The value is of the wrong kind for the feature's domain.
+    WrongKind {
+        /// What the domain takes.
+        expected: &'static str,
+    },
+    /// A number outside the feature's bounds.
+    OutOfBounds {
+        /// The bounds, as text.
+        bounds: String,
+    },
+    /// NaN or infinite.
+    NonFinite,
+    /// A label the feature does not list.
+    UnknownLabel {
+        /// The labels it takes.
+        allowed: Vec<String>,
+    },
+}
+
+impl fmt::Display for Rule {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match self {
+            Rule::UnknownFeature => write!(f, "unknown feature"),
+            Rule::Repeated => write!(f, "feature given twice"),
+            Rule::MissingRequired => write!(f, "required feature is missing"),
+            Rule::WrongKind { expected } => write!(f, "wrong kind: expected {expected}"),
+            Rule::OutOfBounds { bounds } => write!(f, "out of bounds {bounds}"),
+            Rule::NonFinite => write!(f, "not a finite number"),
+            Rule::UnknownLabel { allowed } => write!(f, "unknown label; allowed: {}", allowed.join(", ")),
+        }
+    }
+}
+
+/// A row that breaks the contract: which row, which feature, what value,
+/// which rule.
+#[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[error("row {row}, feature `{feature}` = {value}: {rule}")]
+pub struct RowError {
+    /// 0-based row position in the request.
+    pub row: usize,
+    /// The feature name.
+    pub feature: String,
+    /// The offending value, as text (`absent` when missing).
+    pub value: String,
+    /// The rule it broke.
+    pub rule: Rule,
+}
+
+impl Schema {
+    /// Checks one row and appends its dense cells (one per feature, in
+    /// contract order; absent optional features as NaN) to `cells`. On error
+    /// `cells` is left as it was.
+    ///
+    /// # Errors
+    /// The first [`RowError`] found, with `row` set to `row_number`.
+    pub fn encode_row(&self, row_number: usize, row: &Row, cells: &mut Vec<f64>) -> Result<(), RowError> {
+        let start = cells.len();
+        cells.resize(start + self.width(), f64::NAN);
+        let result = self.fill(row_number, row, &mut cells[start..]);
+        if result.is_err() {
+            cells.truncate(start);
+        }
+        result
+    }
+
+    fn fill(&self, row_number: usize, row: &Row, dest: &mut [f64]) -> Result<(), RowError> {
+        let features = &self.contract().features;
+        let fail = |feature: &str, value: &Value, rule| RowError {
+            row: row_number,
+            feature: feature.to_owned(),
+            value: value.to_string(),
+            rule,
+        };
+        // Seen-set as a bit mask for the common case, a vector beyond 64.
+        let mut seen_small = 0u64;
+        let mut seen_big = if features.len() > 64 { vec![false; features.len()] } else { Vec::new() };
+        for (name, value) in &row.0 {
+            let i = self.feature_index(name).ok_or_else(|| fail(name, value, Rule::UnknownFeature))?;
+            let repeated = if seen_big.is_empty() {
+                let bit = 1u64 << i;
+                let r = seen_small & bit != 0;
+                seen_small |= bit;
+                r
+            } else {
+                std::mem::replace(&mut seen_big[i], true)
+            };
+            if repeated {
+                return Err(fail(name, value, Rule::Repeated));
+            }
+            let feature = &features[i];
+            dest[i] = match (value, &feature.domain) {
+                (Value::Absent, _) if feature.required => return Err(fail(name, value, Rule::MissingRequired)),
+                (Value::Absent, _) => f64::NAN,
+                (_, Domain::Real(bounds)) => {
+                    let v = match value {
+                        Value::Number(v) => *v,
+                        Value::Integer(v) => *v as f64,
+                        _ => return Err(fail(name, value, Rule::WrongKind { expected: "a number" })),
+                    };
+                    bounded(v, bounds).map_err(|rule| fail(name, value, rule))?
+                }
+                (_, Domain::Whole(bounds)) => {
+                    let v = match value {
+                        Value::Integer(v) => *v as f64,
+                        Value::Number(v) if v.fract() == 0.0 => *v,
+                        Value::Number(v) if !v.is_finite() => return Err(fail(name, value, Rule::NonFinite)),
+                        _ => return Err(fail(name, value, Rule::WrongKind { expected: "a whole number" })),
+                    };
+                    bounded(v, bounds).map_err(|rule| fail(name, value, rule))?
+                }
+                (Value::Label(label), Domain::Label(allowed)) => match self.label_index(i, label) {
+                    Some(k) => k as f64,
+                    None => return Err(fail(name, value, Rule::UnknownLabel { allowed: allowed.clone() })),
+                },
+                (_, Domain::Label(_)) => return Err(fail(name, value, Rule::WrongKind { expected: "a label" })),
+                (Value::Flag(b), Domain::Flag) => f64::from(u8::from(*b)),
+                (_, Domain::Flag) => return Err(fail(name, value, Rule::WrongKind { expected: "true or false" })),
+            };
+        }
+        for (i, feature) in features.iter().enumerate() {
+            let seen = if seen_big.is_empty() { seen_small & (1u64 << i) != 0 } else { seen_big[i] };
+            if !seen && feature.required {
+                return Err(fail(&feature.name, &Value::Absent, Rule::MissingRequired));
+            }
+        }
+        Ok(())
+    }
+
+    /// Reads a feature value from text (a CSV cell) according to the
+    /// feature's domain. An empty cell is absent. The value is checked later
+    /// by [`Schema::encode_row`]; text that is not of the domain's kind is
+    /// kept as a label so that check names it.
+    pub fn value_from_text(&self, feature: &str, text: &str) -> Value {
+        let text = text.trim();
+        if text.is_empty() {
+            return Value::Absent;
+        }
+        let domain = self.feature_index(feature).map(|i| &self.contract().features[i].domain);
+        let parsed = match domain {
+            Some(Domain::Real(_)) => text.parse::<f64>().ok().map(Value::Number),
+            Some(Domain::Whole(_)) => {
+                text.parse::<i64>().ok().map(Value::Integer).or_else(|| text.parse::<f64>().ok().map(Value::Number))
+            }
+            Some(Domain::Flag) => match text.to_ascii_lowercase().as_str() {
+                "true" | "yes" | "1" => Some(Value::Flag(true)),
+                "false" | "no" | "0" => Some(Value::Flag(false)),
+                _ => None,
+            },
+            Some(Domain::Label(_)) | None => None,
+        };
+        parsed.unwrap_or_else(|| Value::Label(text.to_owned()))
+    }
+}
+
+fn bounded(v: f64, bounds: &Bounds) -> Result<f64, Rule> {
+    if !v.is_finite() {
+        return Err(Rule::NonFinite);
+    }
+    if !bounds.contains(v) {
+        return Err(Rule::OutOfBounds { bounds: bounds.to_string() });
+    }
+    Ok(v)
+}
+
+/// An output that breaks the contract: a model fault, never passed on.
+#[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[serde(tag = "fault", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum OutputFault {
+    /// The model returned the wrong number of values.
+    #[error("the model returned {actual} values; {rows} rows × {outputs} outputs needs {expected}")]
+    WrongLength {
+        /// Values expected.
+        expected: usize,
+        /// Values returned.
+        actual: usize,
+        /// Rows in the call.
+        rows: usize,
+        /// Outputs per row.
+        outputs: usize,
+    },
+    /// NaN or infinite output.
+    #[error("row {row}, output `{output}` = {value}: not a finite number")]
+    NonFinite {
+        /// Row position.
+        row: usize,
+        /// Output name.
+        output: String,
+        /// The value.
+        value: f64,
+    },
+    /// Output outside the declared bounds.
+    #[error("row {row}, output `{output}` = {value}: outside its declared bounds {bounds}")]
+    OutOfBounds {
+        /// Row position.
+        row: usize,
+        /// Output name.
+        output: String,
+        /// The value.
+        value: f64,
+        /// The declared bounds.
+        bounds: String,
+    },
+}
+
+impl Schema {
+    /// Checks the model's answer for `rows` rows: its length, and every
+    /// value finite and within its output's bounds.
+    ///
+    /// # Errors
+    /// The first [`OutputFault`] found.
+    pub fn check_outputs(&self, rows: usize, values: &[f64]) -> Result<(), OutputFault> {
+        let outputs = &self.contract().outputs;
+        let expected = rows * outputs.len();
+        if values.len() != expected {
+            return Err(OutputFault::WrongLength { expected, actual: values.len(), rows, outputs: outputs.len() });
+        }
+        for (r, row) in values.chunks_exact(outputs.len()).enumerate() {
+            for (&value, out) in row.iter().zip(outputs) {
+                if !value.is_finite() {
+                    return Err(OutputFault::NonFinite { row: r, output: out.name.clone(), value });
+                }
+                if !out.bounds.contains(value) {
+                    return Err(OutputFault::OutOfBounds {
+                        row: r,
+                        output: out.name.clone(),
+                        value,
+                        bounds: out.bounds.to_string(),
+                    });
+                }
+            }
+        }
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::contract::{Contract, Feature, Output};
+
+    fn schema() -> Schema {
+        let f = |name: &str, domain, required| Feature {
+            name: name.into(),
+            domain,
+            unit: None,
+            required,
+            about: String::new(),
+        };
+        Schema::new(Contract {
+            name: "t".into(),
+            version: "1.0.0".into(),
+            about: String::new(),
+            features: vec![
+                f("kw", Domain::Real(Bounds { min: Some(0.0), max: Some(350.0) }), true),
+                f("hour", Domain::Whole(Bounds { min: Some(0.0), max: Some(23.0) }), true),
+                f("plug", Domain::Label(vec!["type2".into(), "ccs2".into()]), true),
+                f("fleet", Domain::Flag, false),
+            ],
+            outputs: vec![Output {
+                name: "p".into(),
+                unit: None,
+                bounds: Bounds { min: Some(0.0), max: Some(1.0) },
+                about: String::new(),
+            }],
+        })
+        .unwrap()
+    }
+
+    fn good() -> Row {
+        Row::new().with("kw", 11.0).with("hour", 7i64).with("plug", "ccs2")
+    }
+
+    #[test]
+    fn encodes_in_contract_order_with_labels_flags_and_absent() {
+        let mut cells = vec![];
+        schema().encode_row(0, &good().with("fleet", true), &mut cells).unwrap();
+        schema().encode_row(1, &good(), &mut cells).unwrap();
+        assert_eq!(&cells[..4], &[11.0, 7.0, 1.0, 1.0]);
+        assert_eq!(&cells[4..7], &[11.0, 7.0, 1.0]);
+        assert!(cells[7].is_nan());
+    }
+
+    #[test]
+    fn each_rule_is_named_with_row_feature_and_value() {
+        let s = schema();
+        let cases: Vec<(Row, &str)> = vec![
+            (good().with("volts", 230.0), "row 4, feature `volts` = 230: unknown feature"),
+            (Row::new().with("kw", 11.0).with("hour", 7i64), "row 4, feature `plug` = absent: required feature is missing"),
+            (good().with("kw", 1.0), "row 4, feature `kw` = 1: feature given twice"),
+            (
+                Row::new().with("kw", "fast").with("hour", 7i64).with("plug", "ccs2"),
+                "row 4, feature `kw` = \"fast\": wrong kind: expected a number",
+            ),
+            (
+                Row::new().with("kw", 11.0).with("hour", 7.5).with("plug", "ccs2"),
+                "row 4, feature `hour` = 7.5: wrong kind: expected a whole number",
+            ),
+            (
+                Row::new().with("kw", 400.0).with("hour", 7i64).with("plug", "ccs2"),
+                "row 4, feature `kw` = 400: out of bounds [0, 350]",
+            ),
+            (
+                Row::new().with("kw", f64::INFINITY).with("hour", 7i64).with("plug", "ccs2"),
+                "row 4, feature `kw` = inf: not a finite number",
+            ),
+            (
+                Row::new().with("kw", 11.0).with("hour", 7i64).with("plug", "chademo"),
+                "row 4, feature `plug` = \"chademo\": unknown label; allowed: type2, ccs2",
+            ),
+            (good().with("fleet", 1i64), "row 4, feature `fleet` = 1: wrong kind: expected true or false"),
+        ];
+        for (row, expected) in cases {
+            let mut cells = vec![1.0];
+            let err = s.encode_row(4, &row, &mut cells).unwrap_err();
+            assert_eq!(err.to_string(), expected);
+            assert_eq!(cells, vec![1.0], "cells untouched on error");
+        }
+    }
+
+    #[test]
+    fn text_cells_follow_the_domain() {
+        let s = schema();
+        assert_eq!(s.value_from_text("kw", " 7.4 "), Value::Number(7.4));
+        assert_eq!(s.value_from_text("hour", "7"), Value::Integer(7));
+        assert_eq!(s.value_from_text("fleet", "yes"), Value::Flag(true));
+        assert_eq!(s.value_from_text("plug", "ccs2"), Value::Label("ccs2".into()));
+        assert_eq!(s.value_from_text("kw", ""), Value::Absent);
+        assert_eq!(s.value_from_text("kw", "n/a"), Value::Label("n/a".into()));
+    }
+
+    #[test]
+    fn outputs_are_checked() {
+        let s = schema();
+        assert!(s.check_outputs(2, &[0.1, 0.9]).is_ok());
+        assert_eq!(
+            s.check_outputs(2, &[0.1]).unwrap_err().to_string(),
+            "the model returned 1 values; 2 rows × 1 outputs needs 2"
+        );
+        assert_eq!(s.check_outputs(1, &[f64::NAN]).unwrap_err().to_string(), "row 0, output `p` = NaN: not a finite number");
+        assert_eq!(
+            s.check_outputs(2, &[0.5, 1.5]).unwrap_err().to_string(),
+            "row 1, output `p` = 1.5: outside its declared bounds [0, 1]"
+        );
+    }
+}

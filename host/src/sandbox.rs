@@ -1,0 +1,352 @@
+//! The sandbox: one wasmtime engine per [`Runtime`], one store per model
+//! instance, and every call armed with its limits.
+//!
+//! Models import nothing, so the linker is empty: a model can compute on
+//! the bytes it is given and nothing else. Each instance lives in its own
+//! `Store`, which is dropped (never reused) after a trap or a limit hit.
+
+use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::thread::JoinHandle;
+use std::time::Duration;
+
+use serde::Serialize;
+use wasmtime::component::Linker;
+use wasmtime::{Config, Engine, InstanceAllocationStrategy, PoolingAllocationConfig, ResourceLimiter, Store, Trap};
+
+use crate::bindings::{Estimator, EstimatorPre};
+use crate::contract::{Contract, Fault};
+use crate::limits::{LimitHit, Limits};
+
+/// How often the runtime's clock ticks; deadlines are exact to one tick.
+pub const TICK: Duration = Duration::from_millis(1);
+
+/// Engine-wide settings, fixed when a [`Runtime`] is created.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct RuntimeConfig {
+    /// Meter fuel (WebAssembly instructions) so models can have a fuel
+    /// limit. Costs roughly a tenth to a half of the model's speed; off by
+    /// default.
+    pub fuel: bool,
+    /// Pre-reserve instance slots (the pooling allocator): fresh instances
+    /// start several times faster. On by default; if the system refuses
+    /// the reservation the runtime falls back to on-demand allocation.
+    pub pooling: bool,
+    /// Most model instances alive at once across all models (pooling only).
+    /// Default 256.
+    pub max_instances: u32,
+    /// Largest memory cap any model may be given, in bytes. Default 1 GiB.
+    pub max_memory_bytes: u64,
+    /// Largest table cap any model may be given, in elements. Default 100 000.
+    pub max_table_elements: u64,
+    /// Stack a model may use, in bytes. Default 512 KiB.
+    pub stack_bytes: usize,
+}
+
+impl Default for RuntimeConfig {
+    fn default() -> Self {
+        RuntimeConfig {
+            fuel: false,
+            pooling: true,
+            max_instances: 256,
+            max_memory_bytes: 1 << 30,
+            max_table_elements: 100_000,
+            stack_bytes: 512 << 10,
+        }
+    }
+}
+
+/// Why the runtime could not start.
+#[derive(Debug, thiserror::Error)]
+#[error("cannot start the WebAssembly engine: {0}")]
+pub struct RuntimeError(String);
+
+/// What the sandbox reports when a call does not return normally.
+#[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum SandboxError {
+    /// A limit stopped the call.
+    #[error("{0}")]
+    Limit(LimitHit),
+    /// The model trapped (`unreachable`, a bad memory access, a panic…).
+    #[error("the model trapped: {message}")]
+    Trap {
+        /// What wasmtime reported.
+        message: String,
+    },
+}
+
+/// The engine that compiles and runs models, with its clock. Cheap to clone;
+/// share one per process.
+#[derive(Clone)]
+pub struct Runtime {
+    inner: Arc<RuntimeInner>,
+}
+
+struct RuntimeInner {
+    engine: Engine,
+    config: RuntimeConfig,
+    pooled: bool,
+    stop: Arc<AtomicBool>,
+    ticker: Option<JoinHandle<()>>,
+}
+
+impl Drop for RuntimeInner {
+    fn drop(&mut self) {
+        self.stop.store(true, Ordering::Relaxed);
+        if let Some(t) = self.ticker.take() {
+            let _ = t.join();
+        }
+    }
+}
+
+impl std::fmt::Debug for Runtime {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Runtime").field("config", &self.inner.config).field("pooled", &self.inner.pooled).finish()
+    }
+}
+
+impl Runtime {
+    /// A runtime with the default [`RuntimeConfig`].
+    ///
+    /// # Errors
+    /// [`RuntimeError`] when wasmtime cannot build an engine on this host.
+    pub fn new() -> Result<Self, RuntimeError> {
+        Self::with_config(RuntimeConfig::default())
+    }
+
+    /// A runtime with the given settings.
+    ///
+    /// # Errors
+    /// [`RuntimeError`] when wasmtime cannot build an engine on this host.
+    pub fn with_config(config: RuntimeConfig) -> Result<Self, RuntimeError> {
+        let (engine, pooled) = match config.pooling.then(|| Engine::new(&engine_config(&config, true))) {
+            Some(Ok(engine)) => (engine, true),
+            _ => (Engine::new(&engine_config(&config, false)).map_err(|e| RuntimeError(format!("{e:#}")))?, false),
+        };
+        let stop = Arc::new(AtomicBool::new(false));
+        let ticker = {
+            let engine = engine.clone();
+            let stop = stop.clone();
+            std::thread::Builder::new()
+                .name("paddock-clock".into())
+                .spawn(move || {
+                    while !stop.load(Ordering::Relaxed) {
+                        std::thread::sleep(TICK);
+                        engine.increment_epoch();
+                    }
+                })
+                .map_err(|e| RuntimeError(format!("cannot start the clock thread: {e}")))?
+        };
+        Ok(Runtime { inner: Arc::new(RuntimeInner { engine, config, pooled, stop, ticker: Some(ticker) }) })
+    }
+
+    /// The wasmtime engine.
+    pub fn engine(&self) -> &Engine {
+        &self.inner.engine
+    }
+
+    /// The settings this runtime was created with.
+    pub fn config(&self) -> &RuntimeConfig {
+        &self.inner.config
+    }
+
+    /// Whether instance slots are pre-reserved (the pooling allocator is in use).
+    pub fn pooled(&self) -> bool {
+        self.inner.pooled
+    }
+
+    /// Pre-resolves a compiled component against the empty linker.
+    pub(crate) fn prepare(&self, component: &wasmtime::component::Component) -> Result<EstimatorPre<State>, String> {
+        let linker = Linker::<State>::new(self.engine());
+        let pre = linker.instantiate_pre(component).map_err(|e| format!("{e:#}"))?;
+        EstimatorPre::new(pre).map_err(|e| format!("{e:#}"))
+    }
+}
+
+fn engine_config(rc: &RuntimeConfig, pooling: bool) -> Config {
+    let mut c = Config::new();
+    c.epoch_interruption(true);
+    c.consume_fuel(rc.fuel);
+    // Same bits on every run and every machine.
+    c.cranelift_nan_canonicalization(true);
+    c.relaxed_simd_deterministic(true);
+    c.max_wasm_stack(rc.stack_bytes);
+    if pooling {
+        let mut p = PoolingAllocationConfig::default();
+        p.total_component_instances(rc.max_instances)
+            .total_core_instances(rc.max_instances)
+            .total_memories(rc.max_instances)
+            .total_tables(rc.max_instances)
+            .max_memory_size(rc.max_memory_bytes as usize)
+            .table_elements(rc.max_table_elements as usize);
+        c.allocation_strategy(InstanceAllocationStrategy::Pooling(p));
+    }
+    c
+}
+
+/// What a store carries: the limiter, and the peak memory it has seen.
+pub(crate) struct State {
+    memory_cap: u64,
+    table_cap: u64,
+    peak_memory: u64,
+    /// Deadline and fuel of the call under way, for error messages.
+    deadline: Duration,
+    fuel: Option<u64>,
+}
+
+impl ResourceLimiter for State {
+    fn memory_growing(&mut self, _current: usize, desired: usize, _maximum: Option<usize>) -> wasmtime::Result<bool> {
+        let desired = desired as u64;
+        if desired > self.memory_cap {
+            return Err(wasmtime::Error::new(LimitHit::Memory { limit: self.memory_cap, requested: desired }));
+        }
+        self.peak_memory = self.peak_memory.max(desired);
+        Ok(true)
+    }
+
+    fn table_growing(&mut self, _current: usize, desired: usize, _maximum: Option<usize>) -> wasmtime::Result<bool> {
+        let desired = desired as u64;
+        if desired > self.table_cap {
+            return Err(wasmtime::Error::new(LimitHit::Table { limit: self.table_cap, requested: desired }));
+        }
+        Ok(true)
+    }
+}
+
+/// One live model instance in its own store.
+pub(crate) struct Instance {
+    store: Store<State>,
+    api: Estimator,
+}
+
+/// Where in an instance's start-up something went wrong.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Stage {
+    /// Creating the instance (memory, tables, start function).
+    Instantiate,
+    /// The model's `init`.
+    Init,
+    /// The model's `describe`.
+    Describe,
+}
+
+impl std::fmt::Display for Stage {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            Stage::Instantiate => "instantiate",
+            Stage::Init => "init",
+            Stage::Describe => "describe",
+        })
+    }
+}
+
+/// Why a new instance could not start.
+#[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum StartError {
+    /// The sandbox stopped it at some stage.
+    #[error("{stage}: {error}")]
+    Sandbox {
+        /// The stage.
+        stage: Stage,
+        /// What stopped it.
+        error: SandboxError,
+    },
+    /// The model's `init` refused its params.
+    #[error("init refused the params: {0}")]
+    Refused(String),
+}
+
+impl Instance {
+    /// Instantiates, calls `init(params)` and `describe()` under the init
+    /// deadline, and returns the instance with the contract it declared.
+    pub(crate) fn start(
+        runtime: &Runtime,
+        pre: &EstimatorPre<State>,
+        limits: &Limits,
+        params: &[u8],
+    ) -> Result<(Instance, Contract), StartError> {
+        let state = State {
+            memory_cap: limits.memory_bytes,
+            table_cap: limits.table_elements,
+            peak_memory: 0,
+            deadline: limits.init_deadline,
+            fuel: limits.fuel,
+        };
+        let mut store = Store::new(runtime.engine(), state);
+        store.limiter(|s| s as &mut dyn ResourceLimiter);
+        arm(&mut store, runtime, limits.init_deadline, limits.fuel);
+        let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
+        let api = match pre.instantiate(&mut store) {
+            Ok(api) => api,
+            Err(e) => return Err(fail(Stage::Instantiate, &store, e)),
+        };
+        match api.call_init(&mut store, params) {
+            Ok(Ok(())) => {}
+            Ok(Err(message)) => return Err(StartError::Refused(message)),
+            Err(e) => return Err(fail(Stage::Init, &store, e)),
+        }
+        let contract = match api.call_describe(&mut store) {
+            Ok(c) => c,
+            Err(e) => return Err(fail(Stage::Describe, &store, e)),
+        };
+        Ok((Instance { store, api }, contract))
+    }
+
+    /// Calls `score(rows, cells)` under the call limits. Returns the model's
+    /// answer and the fuel it used (when fuel is metered).
+    pub(crate) fn score(
+        &mut self,
+        runtime: &Runtime,
+        limits: &Limits,
+        rows: u32,
+        cells: &[f64],
+    ) -> Result<(Result<Vec<f64>, Fault>, Option<u64>), SandboxError> {
+        let budget = arm(&mut self.store, runtime, limits.deadline, limits.fuel);
+        let answer =
+            self.api.call_score(&mut self.store, rows, cells).map_err(|e| classify(e, runtime, &self.store))?;
+        let used = budget.map(|b| b.saturating_sub(self.store.get_fuel().unwrap_or(0)));
+        Ok((answer, used))
+    }
+
+    /// The largest linear memory this instance has had, in bytes.
+    pub(crate) fn peak_memory(&self) -> u64 {
+        self.store.data().peak_memory
+    }
+}
+
+/// Sets the deadline and fuel for the next call; returns the fuel budget.
+fn arm(store: &mut Store<State>, runtime: &Runtime, deadline: Duration, fuel: Option<u64>) -> Option<u64> {
+    store.data_mut().deadline = deadline;
+    store.data_mut().fuel = fuel;
+    let ticks = deadline.as_nanos().div_ceil(TICK.as_nanos()) as u64 + 1;
+    store.set_epoch_deadline(ticks);
+    if runtime.config().fuel {
+        let budget = fuel.unwrap_or(i64::MAX as u64);
+        // Cannot fail: fuel metering is on.
+        let _ = store.set_fuel(budget);
+        Some(budget)
+    } else {
+        None
+    }
+}
+
+/// Turns a wasmtime error into the limit it hit, or a trap.
+fn classify(err: wasmtime::Error, runtime: &Runtime, store: &Store<State>) -> SandboxError {
+    let armed = store.data();
+    if let Some(hit) = err.downcast_ref::<LimitHit>() {
+        return SandboxError::Limit(hit.clone());
+    }
+    match err.downcast_ref::<Trap>() {
+        Some(Trap::Interrupt) => SandboxError::Limit(LimitHit::Deadline { limit: armed.deadline }),
+        Some(Trap::OutOfFuel) => SandboxError::Limit(LimitHit::Fuel { limit: armed.fuel.unwrap_or(u64::MAX) }),
+        Some(Trap::StackOverflow) => {
+            SandboxError::Limit(LimitHit::Stack { limit: runtime.config().stack_bytes as u64 })
+        }
+        Some(trap) => SandboxError::Trap { message: trap.to_string() },
+        None => SandboxError::Trap { message: format!("{err:#}") },
+    }
+}
