@@ -12,7 +12,7 @@ use std::sync::Arc;
 
 use serde::Serialize;
 use sha2::{Digest as _, Sha256};
-use wasmparser::{Encoding, Parser, Payload};
+use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 
 use crate::checks::Checks;
 use crate::limits::LimitHit;
@@ -241,7 +241,8 @@ impl Artifact {
         &self.sections
     }
 
-    /// Names of the component's top-level imports. A model must have none.
+    /// Names of the component's top-level imports, other than type
+    /// definitions (see [`Surface::type_names`]). A model must have none.
     pub fn imports(&self) -> &[String] {
         &self.imports
     }
@@ -267,6 +268,8 @@ struct Shape {
     encoding: Encoding,
     imports: Vec<String>,
     exports: Vec<String>,
+    /// Names of the world's own types, imported with an equality bound.
+    type_names: Vec<String>,
     /// Top-level custom sections: name and range of their contents.
     custom: Vec<(String, Range<usize>)>,
 }
@@ -281,7 +284,7 @@ impl Shape {
             message: e.message().to_owned(),
         };
         let mut shape =
-            Shape { encoding: Encoding::Component, imports: vec![], exports: vec![], custom: vec![] };
+            Shape { encoding: Encoding::Component, imports: vec![], exports: vec![], type_names: vec![], custom: vec![] };
         // Nesting depth: payloads of nested modules and components come
         // inline; only depth 0 is the artifact's own surface.
         let mut depth = 0usize;
@@ -293,7 +296,15 @@ impl Shape {
                 _ if depth > 0 => {}
                 Payload::ComponentImportSection(reader) => {
                     for import in reader {
-                        shape.imports.push(import.map_err(malformed)?.name.name.to_owned());
+                        let import = import.map_err(malformed)?;
+                        let name = import.name.name.to_owned();
+                        // A type imported with an equality bound is how WIT
+                        // names a world's own types: a definition that
+                        // grants nothing. Every other import is a capability.
+                        match import.ty {
+                            ComponentTypeRef::Type(TypeBounds::Eq(_)) => shape.type_names.push(name),
+                            _ => shape.imports.push(name),
+                        }
                     }
                 }
                 Payload::ComponentExportSection(reader) => {
@@ -328,8 +339,11 @@ impl Shape {
 pub struct Surface {
     /// `component` or `module`.
     pub encoding: &'static str,
-    /// Top-level imports.
+    /// Top-level imports (capabilities; a model must have none).
     pub imports: Vec<String>,
+    /// Type names the component imports with an equality bound: the
+    /// world's own type definitions, which grant nothing.
+    pub type_names: Vec<String>,
     /// Top-level exports.
     pub exports: Vec<String>,
     /// Top-level custom sections.
@@ -349,6 +363,7 @@ pub fn inspect_bytes(bytes: &[u8]) -> Result<Surface, ArtifactError> {
             Encoding::Module => "module",
         },
         imports: shape.imports,
+        type_names: shape.type_names,
         exports: shape.exports,
         sections: shape
             .custom

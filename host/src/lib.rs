@@ -46,6 +46,7 @@ pub mod limits;
 pub mod model;
 pub mod rows;
 pub mod sandbox;
+pub mod table;
 
 pub use artifact::{Artifact, ArtifactError, Digest, pack};
 pub use checks::{CheckReport, Checks, Tolerance};

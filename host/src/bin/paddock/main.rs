@@ -1,1 +1,58 @@
-fn main() {}
+//! `paddock`: pack, inspect, check and score sandboxed model artifacts.
+//!
+//! Each subcommand lives in its own file under `cmd/` and is a thin
+//! wrapper over the `paddock_host` library.
+
+mod cmd;
+mod common;
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// Run sandboxed WebAssembly models next to your data.
+#[derive(Parser)]
+#[command(name = "paddock", version, about, long_about = None)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand)]
+enum Command {
+    Pack(cmd::pack::Args),
+    Inspect(cmd::inspect::Args),
+    Score(cmd::score::Args),
+    Check(cmd::check::Args),
+    Demo(cmd::demo::Args),
+}
+
+/// What a command reports back to `main`.
+pub enum Outcome {
+    /// Everything worked.
+    Ok,
+    /// The command ran but found a failure (checks failed).
+    Failed,
+    /// Some input rows were rejected; the rest were processed.
+    Partial,
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let result = match cli.command {
+        Command::Pack(a) => cmd::pack::run(a),
+        Command::Inspect(a) => cmd::inspect::run(a),
+        Command::Score(a) => cmd::score::run(a),
+        Command::Check(a) => cmd::check::run(a),
+        Command::Demo(a) => cmd::demo::run(a),
+    };
+    match result {
+        Ok(Outcome::Ok) => ExitCode::SUCCESS,
+        Ok(Outcome::Failed) => ExitCode::from(1),
+        Ok(Outcome::Partial) => ExitCode::from(3),
+        Err(e) => {
+            eprintln!("error: {e:#}");
+            ExitCode::from(1)
+        }
+    }
+}

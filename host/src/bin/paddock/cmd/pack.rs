@@ -1,0 +1,86 @@
+//! `paddock pack`: make an artifact from a component or core module.
+
+use std::path::PathBuf;
+
+use anyhow::{Context, Result};
+use paddock_host::{Artifact, Checks, checks};
+use serde::Serialize;
+
+use crate::Outcome;
+use crate::common::{LimitArgs, print_json};
+
+/// Make an artifact: componentize a core module built for
+/// wasm32-unknown-unknown (or take a component), add params and checks,
+/// then load it and run its checks.
+#[derive(clap::Args)]
+pub struct Args {
+    /// The component, or core module, to pack.
+    input: PathBuf,
+    /// Parameter blob to carry (the model decodes it in `init`).
+    #[arg(long, value_name = "FILE")]
+    params: Option<PathBuf>,
+    /// Checks to carry (JSON: example rows with recorded outputs).
+    #[arg(long, value_name = "FILE")]
+    checks: Option<PathBuf>,
+    /// Where to write the artifact.
+    #[arg(long, short, value_name = "FILE")]
+    out: PathBuf,
+    /// Do not load the result and run its checks.
+    #[arg(long)]
+    no_verify: bool,
+    /// Print the result as JSON.
+    #[arg(long)]
+    json: bool,
+    #[command(flatten)]
+    limits: LimitArgs,
+}
+
+#[derive(Serialize)]
+struct Packed {
+    artifact: PathBuf,
+    digest: String,
+    bytes: usize,
+    model: Option<String>,
+    checks: Option<paddock_host::CheckReport>,
+}
+
+/// Packs, then verifies unless told not to.
+pub fn run(args: Args) -> Result<Outcome> {
+    let read = |p: &PathBuf| std::fs::read(p).with_context(|| format!("reading {}", p.display()));
+    let wasm = read(&args.input)?;
+    let params = args.params.as_ref().map(read).transpose()?;
+    let checks = match &args.checks {
+        Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
+        None => None,
+    };
+    let bytes = paddock_host::pack(&wasm, params.as_deref(), checks.as_ref())
+        .with_context(|| format!("packing {}", args.input.display()))?;
+    std::fs::write(&args.out, &bytes).with_context(|| format!("writing {}", args.out.display()))?;
+    let artifact = Artifact::from_bytes(bytes, u64::MAX)?;
+    let mut packed =
+        Packed { artifact: args.out.clone(), digest: artifact.digest().to_string(), bytes: artifact.bytes().len(), model: None, checks: None };
+    let mut outcome = Outcome::Ok;
+    if !args.no_verify {
+        let (_runtime, model) = args.limits.load(&args.out)?;
+        packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
+        if let Some(checks) = &checks {
+            let report = checks::run(&model, checks)?;
+            if !report.ok() {
+                outcome = Outcome::Failed;
+            }
+            packed.checks = Some(report);
+        }
+    }
+    if args.json {
+        print_json(&packed)?;
+    } else {
+        println!("wrote {} ({} bytes, {})", packed.artifact.display(), packed.bytes, packed.digest);
+        if let Some(m) = &packed.model {
+            println!("loads as {m}");
+        }
+        if let Some(r) = &packed.checks {
+            println!("checks: {}/{} passed (max abs error {:e}, max rel error {:e})", r.passed, r.cases, r.max_abs_error, r.max_rel_error);
+        }
+    }
+    Ok(outcome)
+}

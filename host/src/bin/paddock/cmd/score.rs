@@ -1,0 +1,247 @@
+//! `paddock score`: score rows from a CSV or NDJSON file (or stdin).
+
+use std::fs::File;
+use std::io::{self, BufWriter, Read, Write};
+use std::path::PathBuf;
+
+use anyhow::{Context, Result, bail};
+use indicatif::{ProgressBar, ProgressStyle};
+use paddock_host::table::{self, Format, Record};
+use paddock_host::{Model, ScoreError};
+
+use crate::Outcome;
+use crate::common::LimitArgs;
+
+#[derive(clap::ValueEnum, Clone, Copy, Debug)]
+enum FormatArg {
+    Csv,
+    Ndjson,
+}
+
+impl From<FormatArg> for Format {
+    fn from(f: FormatArg) -> Format {
+        match f {
+            FormatArg::Csv => Format::Csv,
+            FormatArg::Ndjson => Format::Ndjson,
+        }
+    }
+}
+
+/// Score rows. A row that breaks the contract gets an error line with its
+/// row number and the rest are scored. Exits 3 when some rows failed.
+#[derive(clap::Args)]
+pub struct Args {
+    /// The artifact.
+    artifact: PathBuf,
+    /// Rows to score: a .csv or .ndjson file, or `-` for stdin.
+    #[arg(default_value = "-")]
+    input: PathBuf,
+    /// Input format [default: from the extension; csv for stdin].
+    #[arg(long, value_enum)]
+    from: Option<FormatArg>,
+    /// Output format [default: the input's].
+    #[arg(long, value_enum)]
+    to: Option<FormatArg>,
+    /// Write results here instead of stdout.
+    #[arg(long, short, value_name = "FILE")]
+    out: Option<PathBuf>,
+    /// A column (CSV) or key (NDJSON) that identifies the row; copied to the output.
+    #[arg(long, value_name = "NAME")]
+    id: Option<String>,
+    /// Rows per call into the sandbox.
+    #[arg(long, default_value_t = 512)]
+    batch: usize,
+    /// Same as --to ndjson (for programs reading the output).
+    #[arg(long)]
+    json: bool,
+    #[command(flatten)]
+    limits: LimitArgs,
+}
+
+/// One output line.
+struct Line {
+    number: usize,
+    id: Option<String>,
+    result: Result<Vec<f64>, String>,
+}
+
+/// Reads, scores in batches, writes in input order.
+pub fn run(args: Args) -> Result<Outcome> {
+    let (_runtime, model) = args.limits.load(&args.artifact)?;
+    let stdin = args.input.as_os_str() == "-";
+    let format: Format = match (args.from, stdin) {
+        (Some(f), _) => f.into(),
+        (None, true) => Format::Csv,
+        (None, false) => match Format::from_path(&args.input) {
+            Some(f) => f,
+            None => bail!("cannot tell the format of {}: use --from csv or --from ndjson", args.input.display()),
+        },
+    };
+    let to: Format = if args.json { Format::Ndjson } else { args.to.map_or(format, Format::from) };
+    let (input, progress): (Box<dyn Read>, ProgressBar) = if stdin {
+        (Box::new(io::stdin().lock()), ProgressBar::hidden())
+    } else {
+        let file = File::open(&args.input).with_context(|| format!("opening {}", args.input.display()))?;
+        let len = file.metadata().map(|m| m.len()).unwrap_or(0);
+        let bar = if len > 1 << 20 { ProgressBar::new(len) } else { ProgressBar::hidden() };
+        bar.set_style(ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}").unwrap_or_else(|_| ProgressStyle::default_bar()));
+        (Box::new(bar.wrap_read(file)), bar)
+    };
+    let out: Box<dyn Write> = match &args.out {
+        Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
+        None => Box::new(io::stdout().lock()),
+    };
+    let mut writer = Writer::new(out, to, &model, args.id.is_some())?;
+    let schema = model.schema();
+    let mut batch: Vec<Record> = Vec::with_capacity(args.batch.max(1));
+    let (mut scored, mut failed) = (0usize, 0usize);
+    for record in table::records(input, format, schema, args.id.as_deref()) {
+        batch.push(record);
+        if batch.len() >= args.batch.max(1) {
+            for line in score_batch(&model, std::mem::take(&mut batch)) {
+                if line.result.is_ok() { scored += 1 } else { failed += 1 }
+                writer.write(&line)?;
+            }
+        }
+    }
+    for line in score_batch(&model, batch) {
+        if line.result.is_ok() { scored += 1 } else { failed += 1 }
+        writer.write(&line)?;
+    }
+    writer.finish()?;
+    progress.finish_and_clear();
+    eprintln!("{scored} rows scored, {failed} rows failed");
+    Ok(if failed == 0 { Outcome::Ok } else { Outcome::Partial })
+}
+
+/// Scores the valid records of a batch in one call; if that call fails as
+/// a whole, scores them one by one so one bad row cannot sink the others.
+fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
+    let schema = model.schema();
+    let mut cells = Vec::with_capacity(records.len() * schema.width());
+    let mut lines: Vec<Line> = Vec::with_capacity(records.len());
+    let mut valid = Vec::new();
+    for record in records {
+        let result = match &record.row {
+            Ok(row) => match schema.encode_row(record.number, row, &mut cells) {
+                Ok(()) => {
+                    valid.push(lines.len());
+                    Ok(Vec::new())
+                }
+                Err(e) => Err(e.to_string()),
+            },
+            Err(e) => Err(format!("row {}: {e}", record.number)),
+        };
+        lines.push(Line { number: record.number, id: record.id, result });
+    }
+    if valid.is_empty() {
+        return lines;
+    }
+    let width = schema.width();
+    match model.score_cells(valid.len(), &cells) {
+        Ok(estimates) => {
+            for (r, &i) in valid.iter().enumerate() {
+                lines[i].result = Ok(estimates.row(r).to_vec());
+            }
+        }
+        Err(_) if valid.len() > 1 => {
+            for (r, &i) in valid.iter().enumerate() {
+                lines[i].result = model
+                    .score_cells(1, &cells[r * width..(r + 1) * width])
+                    .map(|e| e.row(0).to_vec())
+                    .map_err(|e| describe(lines[i].number, &e));
+            }
+        }
+        Err(e) => {
+            for &i in &valid {
+                lines[i].result = Err(describe(lines[i].number, &e));
+            }
+        }
+    }
+    lines
+}
+
+fn describe(number: usize, e: &ScoreError) -> String {
+    format!("row {number}: {e}")
+}
+
+enum Sink {
+    Csv(csv::Writer<Box<dyn Write>>),
+    Ndjson(BufWriter<Box<dyn Write>>),
+}
+
+struct Writer {
+    sink: Sink,
+    outputs: Vec<String>,
+    with_id: bool,
+}
+
+impl Writer {
+    fn new(out: Box<dyn Write>, format: Format, model: &Model, with_id: bool) -> Result<Self> {
+        let outputs: Vec<String> = model.contract().outputs.iter().map(|o| o.name.clone()).collect();
+        let sink = match format {
+            Format::Csv => {
+                let mut csv = csv::Writer::from_writer(out);
+                let mut header = vec!["row".to_owned()];
+                if with_id {
+                    header.push("id".into());
+                }
+                header.extend(outputs.iter().cloned());
+                header.push("error".into());
+                csv.write_record(&header)?;
+                Sink::Csv(csv)
+            }
+            Format::Ndjson => Sink::Ndjson(BufWriter::new(out)),
+        };
+        Ok(Writer { sink, outputs, with_id })
+    }
+
+    fn write(&mut self, line: &Line) -> Result<()> {
+        match &mut self.sink {
+            Sink::Csv(csv) => {
+                let mut record = vec![line.number.to_string()];
+                if self.with_id {
+                    record.push(line.id.clone().unwrap_or_default());
+                }
+                match &line.result {
+                    Ok(values) => {
+                        record.extend(values.iter().map(f64::to_string));
+                        record.push(String::new());
+                    }
+                    Err(e) => {
+                        record.extend(self.outputs.iter().map(|_| String::new()));
+                        record.push(e.clone());
+                    }
+                }
+                csv.write_record(&record)?;
+            }
+            Sink::Ndjson(out) => {
+                let mut obj = serde_json::Map::new();
+                obj.insert("row".into(), line.number.into());
+                if let Some(id) = &line.id {
+                    obj.insert("id".into(), id.clone().into());
+                }
+                match &line.result {
+                    Ok(values) => {
+                        for (name, v) in self.outputs.iter().zip(values) {
+                            obj.insert(name.clone(), (*v).into());
+                        }
+                    }
+                    Err(e) => {
+                        obj.insert("error".into(), e.clone().into());
+                    }
+                }
+                writeln!(out, "{}", serde_json::Value::Object(obj))?;
+            }
+        }
+        Ok(())
+    }
+
+    fn finish(self) -> Result<()> {
+        match self.sink {
+            Sink::Csv(mut csv) => csv.flush()?,
+            Sink::Ndjson(mut out) => out.flush()?,
+        }
+        Ok(())
+    }
+}

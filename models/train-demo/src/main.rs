@@ -1,0 +1,158 @@
+//! Trains the two demo models on simulated sessions and writes, for each,
+//! its params blob and its checks:
+//!
+//! ```text
+//! cargo run -p paddock-train-demo -- OUT_DIR
+//! ```
+//!
+//! writes `OUT_DIR/charge-minutes.params`, `OUT_DIR/charge-minutes.checks.json`,
+//! `OUT_DIR/overstay-risk.params`, `OUT_DIR/overstay-risk.checks.json`.
+//! The sessions are invented (see `simulate.rs`): demo only. The checks'
+//! expected values come from evaluating the trained params natively, with
+//! the same estimator code the sandbox runs, so a packed artifact that
+//! passes them computes what this program computed.
+
+mod boost;
+mod simulate;
+
+use std::path::{Path, PathBuf};
+
+use anyhow::{Context, Result};
+use paddock_guest::ndarray::Array2;
+use paddock_guest::{Evaluate, Linear, LinearParams, Link, Trees, encode_params};
+use paddock_host::checks::{Case, Checks, Tolerance};
+use paddock_host::{Row, Value};
+use rand::SeedableRng;
+use smartcore::linalg::basic::matrix::DenseMatrix;
+use smartcore::linalg::basic::arrays::Array;
+use smartcore::linear::logistic_regression::LogisticRegression;
+
+use simulate::Session;
+
+const TRAIN: usize = 20_000;
+const CHECKS: usize = 40;
+
+fn main() -> Result<()> {
+    let out = PathBuf::from(std::env::args().nth(1).context("usage: paddock-train-demo OUT_DIR")?);
+    std::fs::create_dir_all(&out).with_context(|| format!("creating {}", out.display()))?;
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2026);
+    let train: Vec<Session> = (0..TRAIN).map(|_| simulate::session(&mut rng)).collect();
+    let held_out: Vec<Session> = (0..CHECKS).map(|_| simulate::session(&mut rng)).collect();
+
+    let minutes = train_minutes(&train)?;
+    let overstay = train_overstay(&train, &minutes)?;
+
+    let source = "paddock-train-demo: native evaluation of the trained params on held-out simulated sessions";
+    let minutes_checks = record(&held_out, source, |s| minutes_row(s), |s| predict(&minutes, &s.minutes_features()));
+    let overstay_checks = record(&held_out, source, |s| overstay_row(s, &minutes), |s| {
+        predict(&overstay, &s.overstay_features(predict(&minutes, &s.minutes_features())))
+    });
+    write(&out, "charge-minutes", &encode_params(&minutes.1), &minutes_checks)?;
+    write(&out, "overstay-risk", &encode_params(&overstay.1), &overstay_checks)?;
+    println!("trained on {TRAIN} simulated sessions; params and checks in {}", out.display());
+    Ok(())
+}
+
+/// A built estimator with the params it was built from.
+type Trained<E> = (E, <E as Evaluate>::Params);
+
+fn predict<E: Evaluate>(model: &Trained<E>, features: &[f64]) -> f64 {
+    let rows = Array2::from_shape_vec((1, features.len()), features.to_vec()).expect("one row");
+    let mut out = Array2::zeros((1, 1));
+    model.0.evaluate(rows.view(), out.view_mut());
+    out[[0, 0]]
+}
+
+fn train_minutes(train: &[Session]) -> Result<Trained<Trees>> {
+    let x: Vec<Vec<f64>> = train.iter().map(|s| s.minutes_features().to_vec()).collect();
+    let y: Vec<f64> = train.iter().map(|s| s.minutes).collect();
+    let settings = boost::Settings { trees: 80, depth: 5, learning_rate: 0.15, min_leaf: 20, bins: 64, lambda: 1.0 };
+    let params = boost::fit(&x, &y, 8, &settings);
+    let trees = paddock_guest::build_for::<Trees>(&charge_minutes::contract(), params.clone()).map_err(anyhow::Error::msg)?;
+    Ok((trees, params))
+}
+
+fn train_overstay(train: &[Session], minutes: &Trained<Trees>) -> Result<Trained<Linear>> {
+    let raw: Vec<[f64; 6]> = train.iter().map(|s| s.overstay_features(predict(minutes, &s.minutes_features()))).collect();
+    // Mean imputation for the optional member rate, then standardise so the
+    // optimiser behaves; the scaling is folded back into the coefficients.
+    let k = 6;
+    let mean: Vec<f64> = (0..k)
+        .map(|j| {
+            let v: Vec<f64> = raw.iter().map(|r| r[j]).filter(|v| !v.is_nan()).collect();
+            v.iter().sum::<f64>() / v.len() as f64
+        })
+        .collect();
+    let filled: Vec<Vec<f64>> = raw.iter().map(|r| (0..k).map(|j| if r[j].is_nan() { mean[j] } else { r[j] }).collect()).collect();
+    let sd: Vec<f64> = (0..k)
+        .map(|j| (filled.iter().map(|r| (r[j] - mean[j]).powi(2)).sum::<f64>() / filled.len() as f64).sqrt().max(1e-12))
+        .collect();
+    let z: Vec<Vec<f64>> = filled.iter().map(|r| (0..k).map(|j| (r[j] - mean[j]) / sd[j]).collect()).collect();
+    let x = DenseMatrix::from_2d_vec(&z).map_err(|e| anyhow::anyhow!("{e}"))?;
+    let y: Vec<i32> = train.iter().map(|s| i32::from(s.overstayed)).collect();
+    let fit = LogisticRegression::fit(&x, &y, Default::default()).map_err(|e| anyhow::anyhow!("logistic fit: {e}"))?;
+    let coef: Vec<f64> = (0..k).map(|j| *fit.coefficients().get((0, j))).collect();
+    let intercept = *fit.intercept().get((0, 0));
+    let weights: Vec<f64> = (0..k).map(|j| coef[j] / sd[j]).collect();
+    let intercept = intercept - (0..k).map(|j| coef[j] * mean[j] / sd[j]).sum::<f64>();
+    let params = LinearParams { link: Link::Logistic, intercepts: vec![intercept], weights: vec![weights], impute: mean };
+    let linear = paddock_guest::build_for::<Linear>(&overstay_risk::contract(), params.clone()).map_err(anyhow::Error::msg)?;
+    Ok((linear, params))
+}
+
+fn opt(v: Option<f64>) -> Value {
+    v.map_or(Value::Absent, Value::Number)
+}
+
+/// The request row a caller would send for `charge-minutes`.
+pub fn minutes_row(s: &Session) -> Row {
+    Row::new()
+        .with("charger_kw", s.charger_kw)
+        .with("battery_kwh", s.battery_kwh)
+        .with("soc_start", s.soc_start)
+        .with("soc_target", s.soc_target)
+        .with("ambient_c", opt(s.ambient_c))
+        .with("hour_of_week", s.hour_of_week)
+        .with("connector", charge_minutes::CONNECTORS[s.connector])
+        .with("fleet", s.fleet)
+}
+
+fn overstay_row(s: &Session, minutes: &Trained<Trees>) -> Row {
+    Row::new()
+        .with("expected_minutes", predict(minutes, &s.minutes_features()))
+        .with("plugin_hour", s.hour_of_week % 24)
+        .with("member_overstay_rate", opt(s.member_overstay_rate))
+        .with("site_occupancy", s.site_occupancy)
+        .with("weekend", s.hour_of_week >= 120)
+        .with("fleet", s.fleet)
+}
+
+fn record(
+    sessions: &[Session],
+    source: &str,
+    row: impl Fn(&Session) -> Row,
+    expect: impl Fn(&Session) -> f64,
+) -> Checks {
+    Checks {
+        source: source.to_owned(),
+        // The sandbox runs the same code on the same params: bit-identical
+        // results are expected, so the tolerance only absorbs nothing.
+        tolerance: Tolerance { abs: 0.0, rel: 1e-12 },
+        cases: sessions
+            .iter()
+            .map(|s| {
+                let model = row(s);
+                let name = if model.fields().iter().any(|(k, _)| k == "charger_kw") { "minutes" } else { "overstay_probability" };
+                Case { row: model, expect: [(name.to_owned(), expect(s))].into() }
+            })
+            .collect(),
+    }
+}
+
+fn write(dir: &Path, name: &str, params: &[u8], checks: &Checks) -> Result<()> {
+    let p = dir.join(format!("{name}.params"));
+    std::fs::write(&p, params).with_context(|| format!("writing {}", p.display()))?;
+    let c = dir.join(format!("{name}.checks.json"));
+    std::fs::write(&c, checks.to_json()).with_context(|| format!("writing {}", c.display()))?;
+    Ok(())
+}

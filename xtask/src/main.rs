@@ -1,0 +1,126 @@
+//! The project's build step, run as `cargo xtask <task>`:
+//!
+//! - `build`: installs the `wasm32-unknown-unknown` target if missing,
+//!   builds every guest in `models/`, trains the demo models, and packs the
+//!   artifacts into `target/paddock/artifacts/`. Guests are always built
+//!   from source; no compiled guest is committed.
+//! - `demo`: `build`, then `paddock demo` on those artifacts.
+//! - `test`: `build`, then every test in the workspace.
+//!
+//! Anything after the task name is passed on to the command it ends with.
+
+use std::path::{Path, PathBuf};
+use std::process::Command;
+
+use anyhow::{Context, Result, bail};
+
+/// Guests: (package, library file stem).
+const GUESTS: [(&str, &str); 4] = [
+    ("charge-minutes", "charge_minutes"),
+    ("overstay-risk", "overstay_risk"),
+    ("paddock-model-linear", "paddock_model_linear"),
+    ("paddock-model-trees", "paddock_model_trees"),
+];
+const TARGET: &str = "wasm32-unknown-unknown";
+
+fn main() -> Result<()> {
+    let mut args = std::env::args().skip(1);
+    let task = args.next().unwrap_or_else(|| "help".into());
+    let rest: Vec<String> = args.collect();
+    let root = root()?;
+    match task.as_str() {
+        "build" => build(&root),
+        "demo" => {
+            build(&root)?;
+            let artifacts = root.join("target/paddock/artifacts");
+            let mut cmd = cargo(&root);
+            cmd.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "demo", "--artifacts"]);
+            cmd.arg(&artifacts).args(&rest);
+            run(cmd)
+        }
+        "test" => {
+            build(&root)?;
+            let mut cmd = cargo(&root);
+            cmd.args(["test", "--workspace", "--all-targets"]).args(&rest);
+            run(cmd)
+        }
+        _ => {
+            eprintln!("usage: cargo xtask <build|demo|test> [args for the final command]");
+            if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
+        }
+    }
+}
+
+fn root() -> Result<PathBuf> {
+    let manifest = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
+    Ok(manifest.parent().context("xtask lives in the workspace")?.to_owned())
+}
+
+fn cargo(root: &Path) -> Command {
+    let mut cmd = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
+    cmd.current_dir(root);
+    cmd
+}
+
+fn run(mut cmd: Command) -> Result<()> {
+    let status = cmd.status().with_context(|| format!("starting {cmd:?}"))?;
+    if !status.success() {
+        bail!("{cmd:?} failed with {status}");
+    }
+    Ok(())
+}
+
+/// Adds the wasm32 target through rustup when it is not installed.
+fn ensure_target() -> Result<()> {
+    let out = Command::new("rustup").args(["target", "list", "--installed"]).output();
+    match out {
+        Ok(o) if String::from_utf8_lossy(&o.stdout).lines().any(|l| l.trim() == TARGET) => Ok(()),
+        Ok(_) => {
+            eprintln!("xtask: installing the {TARGET} target");
+            run({
+                let mut c = Command::new("rustup");
+                c.args(["target", "add", TARGET]);
+                c
+            })
+        }
+        Err(e) => {
+            eprintln!("xtask: rustup not found ({e}); assuming the {TARGET} target is installed");
+            Ok(())
+        }
+    }
+}
+
+fn build(root: &Path) -> Result<()> {
+    ensure_target()?;
+    let mut cmd = cargo(root);
+    cmd.args(["build", "--quiet", "--profile", "wasm", "--target", TARGET]);
+    for (package, _) in GUESTS {
+        cmd.args(["-p", package]);
+    }
+    run(cmd)?;
+    let out = root.join("target/paddock");
+    let guests = out.join("guests");
+    let train = out.join("train");
+    let artifacts = out.join("artifacts");
+    for dir in [&guests, &train, &artifacts] {
+        std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    }
+    for (package, stem) in GUESTS {
+        let built = root.join(format!("target/{TARGET}/wasm/{stem}.wasm"));
+        let copy = guests.join(format!("{package}.wasm"));
+        std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
+    }
+    let mut trainer = cargo(root);
+    trainer.args(["run", "--quiet", "-p", "paddock-train-demo", "--"]).arg(&train);
+    run(trainer)?;
+    for model in ["charge-minutes", "overstay-risk"] {
+        let mut pack = cargo(root);
+        pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]);
+        pack.arg(guests.join(format!("{model}.wasm")));
+        pack.arg("--params").arg(train.join(format!("{model}.params")));
+        pack.arg("--checks").arg(train.join(format!("{model}.checks.json")));
+        pack.arg("--out").arg(artifacts.join(format!("{model}.wasm")));
+        run(pack)?;
+    }
+    Ok(())
+}
