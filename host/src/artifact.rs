@@ -373,22 +373,44 @@ pub fn inspect_bytes(bytes: &[u8]) -> Result<Surface, ArtifactError> {
     })
 }
 
-/// Makes an artifact: turns a core module built for `wasm32-unknown-unknown`
-/// into a component (or takes a component as it is), drops any of our
-/// sections it already carries, and appends the params and checks.
+/// The contract every model implements, as WIT text.
+pub const WIT: &str = include_str!("../../wit/estimator.wit");
+
+/// Makes an artifact: takes a component as it is, or turns a core module
+/// built for `wasm32-unknown-unknown` into a component (embedding the
+/// `estimator` world first when the module does not carry its own component
+/// type, as a hand-written module would not); accepts WebAssembly text too.
+/// Drops any of our sections the input already carries, and appends the
+/// params and checks.
 ///
 /// # Errors
 /// [`ArtifactError::NotWasm`] / [`Malformed`](ArtifactError::Malformed) for
-/// bad input, [`ArtifactError::Componentize`] when the module lacks the
-/// component type information or does not validate.
+/// bad input, [`ArtifactError::Componentize`] when the module's exports do
+/// not fit the world or it does not validate.
 pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Result<Vec<u8>, ArtifactError> {
+    let binary;
+    let wasm = if wasm.starts_with(b"\0asm") {
+        wasm
+    } else {
+        binary = wat::parse_bytes(wasm).map_err(|e| match std::str::from_utf8(wasm) {
+            Ok(_) => ArtifactError::Malformed { offset: 0, message: format!("WebAssembly text does not parse: {e}") },
+            Err(_) => ArtifactError::NotWasm,
+        })?;
+        &binary[..]
+    };
     let shape = Shape::of(wasm)?;
     let component = match shape.encoding {
         Encoding::Component => wasm.to_vec(),
-        Encoding::Module => wit_component::ComponentEncoder::default()
-            .module(wasm)
-            .and_then(|e| e.validate(true).encode())
-            .map_err(|e| ArtifactError::Componentize(format!("{e:#}")))?,
+        Encoding::Module => {
+            let mut module = wasm.to_vec();
+            if !shape.custom.iter().any(|(name, _)| name.starts_with("component-type")) {
+                embed_world(&mut module)?;
+            }
+            wit_component::ComponentEncoder::default()
+                .module(&module)
+                .and_then(|e| e.validate(true).encode())
+                .map_err(|e| ArtifactError::Componentize(format!("{e:#}")))?
+        }
     };
     let mut out = strip_own_sections(&component)?;
     if let Some(params) = params {
@@ -398,6 +420,16 @@ pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Resu
         append_custom(&mut out, CHECKS_SECTION, &checks.to_json());
     }
     Ok(out)
+}
+
+/// Embeds the `estimator` world's component type into a core module.
+fn embed_world(module: &mut Vec<u8>) -> Result<(), ArtifactError> {
+    let fail = |e: anyhow::Error| ArtifactError::Componentize(format!("{e:#}"));
+    let mut resolve = wit_parser::Resolve::default();
+    let package = resolve.push_str("estimator.wit", WIT).map_err(fail)?;
+    let world = resolve.select_world(&[package], Some("estimator")).map_err(fail)?;
+    wit_component::embed_component_metadata(module, &resolve, world, wit_component::StringEncoding::UTF8)
+        .map_err(fail)
 }
 
 /// Copies a binary without its top-level `paddock-*` custom sections.

@@ -53,6 +53,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     let none = |v: &[String]| if v.is_empty() { "none".to_owned() } else { v.join(", ") };
     println!("  imports  {}", none(&report.surface.imports));
     println!("  exports  {}", none(&report.surface.exports));
+    if !report.surface.type_names.is_empty() {
+        println!("  types    {} (type definitions, not capabilities)", report.surface.type_names.join(", "));
+    }
     for s in &report.surface.sections {
         println!("  section  {} ({} bytes)", s.name, s.bytes);
     }
