@@ -1,0 +1,155 @@
+//! The sandbox computes what outside references compute.
+//!
+//! - Linear: smartcore's `LinearRegression` fitted on the diabetes dataset
+//!   (Efron, Hastie, Johnstone & Tibshirani, "Least Angle Regression",
+//!   Annals of Statistics 2004; the copy shipped in smartcore's `datasets`).
+//! - Trees: the sandbox against native evaluation of the same params, bit
+//!   for bit, and a small ensemble against values computed by hand.
+//! - A hand-written WAT model, no SDK: the contract is language-neutral.
+
+use paddock_guest::{
+    Bounds, Branch, Combine, Contract, Evaluate, Feature, LinearParams, Link, Node, Output, Packaged, SplitRule,
+    Tree, Trees, TreesParams, encode_params,
+};
+use paddock_guest::ndarray::{Array2, ArrayView2};
+use paddock_host::{Model, ModelOptions, Row, Runtime, checks};
+use paddock_tests::{demo_artifact, fixture, guest, load, random_cells, random_ensemble};
+use smartcore::linalg::basic::arrays::Array;
+use smartcore::linalg::basic::matrix::DenseMatrix;
+use smartcore::linear::linear_regression::LinearRegression;
+
+
+fn contract(name: &str, features: &[String], output: &str) -> Contract {
+    Contract {
+        name: name.into(),
+        version: "1.0.0".into(),
+        about: String::new(),
+        features: features.iter().map(|f| Feature::real(f, Bounds::OPEN)).collect(),
+        outputs: vec![Output::new(output, Bounds::OPEN)],
+    }
+}
+
+#[test]
+fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
+    let data = smartcore::dataset::diabetes::load_dataset();
+    let (n, k) = (data.num_samples, data.num_features);
+    let rows: Vec<Vec<f64>> = (0..n).map(|i| (0..k).map(|j| f64::from(data.data[i * k + j])).collect()).collect();
+    let y: Vec<f64> = data.target.iter().map(|&v| f64::from(v)).collect();
+    let x = DenseMatrix::from_2d_vec(&rows).unwrap();
+    let fit = LinearRegression::<f64, f64, DenseMatrix<f64>, Vec<f64>>::fit(&x, &y, Default::default()).unwrap();
+    let reference = fit.predict(&x).unwrap();
+    let weights: Vec<f64> = (0..k).map(|j| *fit.coefficients().get((j, 0))).collect();
+
+    let names: Vec<String> = data.feature_names.iter().map(|s| s.to_lowercase()).collect();
+    let params = encode_params(&Packaged {
+        contract: contract("diabetes-progression", &names, "progression"),
+        params: LinearParams { link: Link::Identity, intercepts: vec![*fit.intercept()], weights: vec![weights], impute: vec![] },
+    });
+    let runtime = Runtime::new().unwrap();
+    let model = load(&runtime, &guest("paddock-model-linear"), &params, ModelOptions::default());
+    let requests: Vec<Row> = rows
+        .iter()
+        .map(|r| names.iter().cloned().zip(r.iter().copied()).collect())
+        .collect();
+    let estimates = model.score(&requests).unwrap();
+    assert_eq!(estimates.rows(), n);
+    let worst = reference
+        .iter()
+        .enumerate()
+        .map(|(i, want)| ((estimates.row(i)[0] - want) / want).abs())
+        .fold(0.0, f64::max);
+    eprintln!("diabetes: largest relative difference from smartcore {worst:e}");
+    assert!(worst <= 1e-12, "largest relative difference from smartcore: {worst:e}");
+}
+
+fn native(params: &TreesParams, rows: usize, cells: &[f64]) -> Vec<f64> {
+    let trees = Trees::new(params.clone()).unwrap();
+    let view = ArrayView2::from_shape((rows, params.features as usize), cells).unwrap();
+    let mut out = Array2::zeros((rows, 1));
+    trees.evaluate(view, out.view_mut());
+    out.into_raw_vec_and_offset().0
+}
+
+#[test]
+fn tree_ensemble_in_the_sandbox_equals_native_bit_for_bit() {
+    let features = 9;
+    let params = random_ensemble(7, 200, 6, features);
+    let names: Vec<String> = (0..features).map(|i| format!("f{i}")).collect();
+    let mut named = contract("random-forest", &names, "score");
+    named.features.iter_mut().for_each(|f| f.required = false);
+    let blob = encode_params(&Packaged { contract: named, params: params.clone() });
+    let runtime = Runtime::new().unwrap();
+    let model = load(&runtime, &guest("paddock-model-trees"), &blob, ModelOptions::default());
+    let rows = 2000;
+    let cells = random_cells(11, rows, features as usize, 0.1);
+    let sandboxed = model.score_cells(rows, &cells).unwrap();
+    let expected = native(&params, rows, &cells);
+    for (i, (a, b)) in sandboxed.values().iter().zip(&expected).enumerate() {
+        assert_eq!(a.to_bits(), b.to_bits(), "row {i}: sandbox {a} native {b}");
+    }
+}
+
+/// base 10; stump A adds 1 if x0 < 5 else 2 (absent → right); stump B adds
+/// 0.5 if x1 < 0 else −0.25 (absent → left). By hand: (4, −1) → 11.5;
+/// (5, 0) → 11.75; (absent, absent) → 12.5; (−3, 9) → 10.75.
+#[test]
+fn small_ensemble_in_the_sandbox_matches_hand_computed_values() {
+    let stump = |feature, threshold, lo, hi, missing| Tree {
+        output: 0,
+        nodes: vec![
+            Node::Split { feature, threshold, left: 1, right: 2, missing },
+            Node::Leaf { value: lo },
+            Node::Leaf { value: hi },
+        ],
+    };
+    let params = TreesParams {
+        features: 2,
+        base: vec![10.0],
+        combine: Combine::Sum,
+        split: SplitRule::Less,
+        trees: vec![stump(0, 5.0, 1.0, 2.0, Branch::Right), stump(1, 0.0, 0.5, -0.25, Branch::Left)],
+    };
+    let mut named = contract("stumps", &["a".into(), "b".into()], "y");
+    named.features.iter_mut().for_each(|f| f.required = false);
+    let runtime = Runtime::new().unwrap();
+    let model = load(
+        &runtime,
+        &guest("paddock-model-trees"),
+        &encode_params(&Packaged { contract: named, params }),
+        ModelOptions::default(),
+    );
+    let rows = vec![
+        Row::new().with("a", 4.0).with("b", -1.0),
+        Row::new().with("a", 5.0).with("b", 0.0),
+        Row::new(),
+        Row::new().with("a", -3.0).with("b", 9i64),
+    ];
+    assert_eq!(model.score(&rows).unwrap().values(), &[11.5, 11.75, 12.5, 10.75]);
+}
+
+#[test]
+fn hand_written_wat_model_scores_through_the_same_contract() {
+    let runtime = Runtime::new().unwrap();
+    let model = load(&runtime, &fixture("affine.wat"), &[], ModelOptions::default());
+    let c = model.contract();
+    assert_eq!((c.name.as_str(), c.version.as_str()), ("affine", "1.0.0"));
+    assert_eq!(c.features.len(), 1);
+    assert_eq!(c.features[0].name, "x");
+    assert_eq!(c.outputs[0].name, "y");
+    let rows = [Row::new().with("x", 1.5), Row::new().with("x", -2i64), Row::new().with("x", 1e6)];
+    assert_eq!(model.score(&rows).unwrap().values(), &[4.0, -3.0, 2_000_001.0]);
+}
+
+#[test]
+fn demo_artifacts_reproduce_their_training_outputs_exactly() {
+    let runtime = Runtime::new().unwrap();
+    for name in ["charge-minutes", "overstay-risk"] {
+        let artifact = paddock_host::Artifact::read(&demo_artifact(name), u64::MAX).unwrap();
+        let model = Model::load(&runtime, artifact).unwrap();
+        let carried = model.artifact().checks().unwrap().expect("demo artifacts carry checks");
+        assert!(carried.cases.len() >= 20);
+        let report = checks::run(&model, &carried).unwrap();
+        assert!(report.ok(), "{name}: {report:?}");
+        assert_eq!(report.max_abs_error, 0.0, "{name}: same code, same params, same bits");
+    }
+}

@@ -1,0 +1,190 @@
+//! The sandbox holds: imports are refused by name, limits stop a model with
+//! a typed error naming the limit, a failed instance is never reused, bad
+//! answers are faults, and the host keeps serving throughout.
+
+use std::time::{Duration, Instant};
+
+use paddock_host::model::Isolation;
+use paddock_host::rows::OutputFault;
+use paddock_host::{
+    Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError,
+};
+use paddock_tests::{demo_artifact, fixture, load};
+
+/// The hand-written fixture with a behaviour byte (see tests/fixtures/affine.wat).
+fn affine(runtime: &Runtime, mode: u8, limits: Limits) -> Model {
+    load(runtime, &fixture("affine.wat"), &[mode], ModelOptions { limits, ..ModelOptions::default() })
+}
+
+fn x(v: f64) -> Vec<Row> {
+    vec![Row::new().with("x", v)]
+}
+
+#[test]
+fn a_component_that_imports_anything_is_refused_naming_each_import() {
+    let runtime = Runtime::new().unwrap();
+    let wat = r#"(component
+        (import "wasi:clocks/wall-clock@0.2.0" (instance))
+        (import "phone-home" (func))
+    )"#;
+    let bytes = wat::parse_str(wat).unwrap();
+    let artifact = Artifact::from_bytes(bytes, u64::MAX).unwrap();
+    assert_eq!(artifact.imports(), ["wasi:clocks/wall-clock@0.2.0", "phone-home"]);
+    let err = Model::load(&runtime, artifact).unwrap_err();
+    assert!(matches!(&err, LoadError::Imports(names) if names.len() == 2), "{err:?}");
+    assert_eq!(
+        err.to_string(),
+        "the artifact imports `wasi:clocks/wall-clock@0.2.0`, `phone-home`; a model may import nothing"
+    );
+}
+
+#[test]
+fn a_model_past_its_deadline_gets_the_deadline_error_and_the_host_keeps_serving() {
+    let runtime = Runtime::new().unwrap();
+    let limits = Limits { deadline: Duration::from_millis(20), ..Limits::default() };
+    let spinner = affine(&runtime, 1, limits);
+    let healthy = affine(&runtime, 0, Limits::default());
+    for _ in 0..2 {
+        let started = Instant::now();
+        let err = spinner.score(&x(1.0)).unwrap_err();
+        assert_eq!(err, ScoreError::Sandbox(SandboxError::Limit(LimitHit::Deadline { limit: Duration::from_millis(20) })));
+        assert_eq!(err.to_string(), "deadline of 20ms exceeded");
+        // Generous slack: the point is that it stops, not how precisely.
+        assert!(started.elapsed() < Duration::from_secs(5), "took {:?}", started.elapsed());
+        assert_eq!(healthy.score(&x(2.0)).unwrap().values(), &[5.0]);
+    }
+}
+
+#[test]
+fn a_model_past_its_memory_cap_gets_the_memory_error_and_the_host_keeps_serving() {
+    let runtime = Runtime::new().unwrap();
+    let cap = 4 << 20;
+    let grower = affine(&runtime, 2, Limits { memory_bytes: cap, ..Limits::default() });
+    let err = grower.score(&x(1.0)).unwrap_err();
+    match err.limit() {
+        Some(LimitHit::Memory { limit, requested }) => {
+            assert_eq!(*limit, cap);
+            assert!(*requested > cap);
+        }
+        other => panic!("expected the memory limit, got {other:?} from {err:?}"),
+    }
+    assert!(err.to_string().starts_with("memory cap of 4194304 bytes exceeded"), "{err}");
+    assert_eq!(affine(&runtime, 0, Limits::default()).score(&x(0.0)).unwrap().values(), &[1.0]);
+}
+
+#[test]
+fn a_model_out_of_fuel_gets_the_fuel_error() {
+    let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
+    let spinner = affine(&runtime, 1, Limits { fuel: Some(100_000), ..Limits::default() });
+    let err = spinner.score(&x(1.0)).unwrap_err();
+    assert_eq!(err, ScoreError::Sandbox(SandboxError::Limit(LimitHit::Fuel { limit: 100_000 })));
+    let metered = affine(&runtime, 0, Limits { fuel: Some(100_000), ..Limits::default() });
+    let used = metered.score(&x(1.0)).unwrap().usage().fuel.expect("fuel is metered");
+    assert!(used > 0 && used < 100_000, "{used}");
+}
+
+#[test]
+fn a_fuel_limit_without_metering_is_refused_at_load() {
+    let runtime = Runtime::new().unwrap();
+    let artifact = paddock_tests::packed(&fixture("affine.wat"), &[], None);
+    let options = ModelOptions { limits: Limits { fuel: Some(10), ..Limits::default() }, ..ModelOptions::default() };
+    let err = Model::load_with(&runtime, artifact, options).unwrap_err();
+    assert!(matches!(err, LoadError::Options(_)), "{err:?}");
+}
+
+#[test]
+fn a_trapped_instance_is_discarded_and_its_state_never_reaches_the_next_call() {
+    let runtime = Runtime::new().unwrap();
+    // Mode 3 answers with the number of calls its instance has served.
+    let counter = affine(&runtime, 3, Limits::default());
+    assert_eq!(counter.score(&x(1.0)).unwrap().values(), &[1.0]);
+    assert_eq!(counter.score(&x(1.0)).unwrap().values(), &[2.0], "a healthy instance is reused");
+    let err = counter.score(&x(-1.0)).unwrap_err();
+    assert!(matches!(&err, ScoreError::Sandbox(SandboxError::Trap { message }) if message.contains("unreachable")), "{err:?}");
+    let after = counter.score(&x(1.0)).unwrap();
+    assert_eq!(after.values(), &[1.0], "the trapped instance (3 calls) was not reused");
+    assert!(after.usage().fresh_instance);
+}
+
+#[test]
+fn fresh_per_call_isolation_never_reuses_an_instance() {
+    let runtime = Runtime::new().unwrap();
+    let options = ModelOptions { isolation: Isolation::FreshPerCall, ..ModelOptions::default() };
+    let counter = load(&runtime, &fixture("affine.wat"), &[3], options);
+    for _ in 0..3 {
+        let e = counter.score(&x(1.0)).unwrap();
+        assert_eq!(e.values(), &[1.0]);
+        assert!(e.usage().fresh_instance);
+    }
+}
+
+#[test]
+fn non_finite_and_short_answers_are_model_faults() {
+    let runtime = Runtime::new().unwrap();
+    let nan = affine(&runtime, 4, Limits::default());
+    let err = nan.score(&x(1.0)).unwrap_err();
+    assert!(
+        matches!(&err, ScoreError::Output(OutputFault::NonFinite { row: 0, output, value }) if output == "y" && value.is_nan()),
+        "{err:?}"
+    );
+    let err = nan.score(&x(1.0)).unwrap_err();
+    assert_eq!(err.to_string(), "model fault: row 0, output `y` = NaN: not a finite number");
+    let short = affine(&runtime, 5, Limits::default());
+    let err = short.score(&[Row::new().with("x", 1.0), Row::new().with("x", 2.0)]).unwrap_err();
+    assert_eq!(
+        err,
+        ScoreError::Output(OutputFault::WrongLength { expected: 2, actual: 1, rows: 2, outputs: 1 })
+    );
+}
+
+#[test]
+fn invalid_rows_never_enter_the_sandbox_and_every_one_is_named() {
+    let runtime = Runtime::new().unwrap();
+    let counter = affine(&runtime, 3, Limits::default());
+    let rows = vec![Row::new().with("x", 1.0), Row::new().with("x", "one"), Row::new().with("z", 1.0)];
+    let ScoreError::InvalidRows { errors } = counter.score(&rows).unwrap_err() else { panic!("expected invalid rows") };
+    let text: Vec<String> = errors.iter().map(ToString::to_string).collect();
+    assert_eq!(
+        text,
+        [
+            "row 1, feature `x` = \"one\": wrong kind: expected a number",
+            "row 2, feature `z` = 1: unknown feature",
+        ]
+    );
+    // Nothing was scored: the instance's first call is still to come.
+    assert_eq!(counter.score(&x(1.0)).unwrap().values(), &[1.0]);
+}
+
+#[test]
+fn rows_per_call_cap_is_enforced_before_the_sandbox() {
+    let runtime = Runtime::new().unwrap();
+    let model = affine(&runtime, 0, Limits { rows_per_call: 2, ..Limits::default() });
+    let err = model.score(&vec![Row::new().with("x", 1.0); 3]).unwrap_err();
+    assert_eq!(err.to_string(), "rows-per-call cap of 2 exceeded (call has 3 rows)");
+}
+
+#[test]
+fn an_artifact_over_the_size_cap_is_refused_before_reading() {
+    let err = Artifact::read(&demo_artifact("charge-minutes"), 1000).unwrap_err();
+    assert!(err.to_string().starts_with("artifact size cap of 1000 bytes exceeded"), "{err}");
+}
+
+#[test]
+fn one_model_serves_many_threads_with_the_same_answers() {
+    let runtime = Runtime::new().unwrap();
+    let model = Model::load(&runtime, Artifact::read(&demo_artifact("charge-minutes"), u64::MAX).unwrap()).unwrap();
+    let checks = model.artifact().checks().unwrap().unwrap();
+    let rows: Vec<Row> = checks.cases.iter().map(|c| c.row.clone()).collect();
+    let expected: Vec<f64> = checks.cases.iter().map(|c| c.expect["minutes"]).collect();
+    std::thread::scope(|s| {
+        for _ in 0..4 {
+            s.spawn(|| {
+                for i in 0..200 {
+                    let r = i % rows.len();
+                    let got = model.score(std::slice::from_ref(&rows[r])).unwrap();
+                    assert_eq!(got.values()[0].to_bits(), expected[r].to_bits());
+                }
+            });
+        }
+    });
+}

@@ -1,0 +1,81 @@
+//! Helpers shared by the cross-crate tests and benchmarks: where the built
+//! guests are, how to pack them with params, and random ensembles.
+
+use std::path::PathBuf;
+
+use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams};
+use paddock_host::{Artifact, Checks, Model, ModelOptions, Runtime};
+use rand::{Rng, SeedableRng};
+
+/// The workspace root.
+pub fn root() -> PathBuf {
+    PathBuf::from(env!("CARGO_MANIFEST_DIR")).parent().expect("tests/ is in the workspace").to_owned()
+}
+
+/// Bytes of a guest module built by `cargo xtask build`.
+///
+/// # Panics
+/// When the guest has not been built, saying how to build it.
+pub fn guest(package: &str) -> Vec<u8> {
+    let path = root().join("target/paddock/guests").join(format!("{package}.wasm"));
+    std::fs::read(&path).unwrap_or_else(|e| {
+        panic!("{}: {e}. Build the guests first: `cargo xtask build` (or run the tests with `cargo xtask test`)", path.display())
+    })
+}
+
+/// Path of a demo artifact packed by `cargo xtask build`.
+pub fn demo_artifact(name: &str) -> PathBuf {
+    root().join("target/paddock/artifacts").join(format!("{name}.wasm"))
+}
+
+/// Bytes of a test fixture under `tests/fixtures`.
+pub fn fixture(name: &str) -> Vec<u8> {
+    let path = root().join("tests/fixtures").join(name);
+    std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e}", path.display()))
+}
+
+/// Packs a module with params (and checks) into a parsed artifact.
+pub fn packed(module: &[u8], params: &[u8], checks: Option<&Checks>) -> Artifact {
+    let bytes = paddock_host::pack(module, Some(params), checks).expect("packs");
+    Artifact::from_bytes(bytes, u64::MAX).expect("parses")
+}
+
+/// Loads a module packed with params, with the given options.
+pub fn load(runtime: &Runtime, module: &[u8], params: &[u8], options: ModelOptions) -> Model {
+    Model::load_with(runtime, packed(module, params, None), options).expect("loads")
+}
+
+/// A random boosted ensemble: `trees` full trees of `depth`, over
+/// `features` features, thresholds in [0, 1), random missing directions.
+pub fn random_ensemble(seed: u64, trees: usize, depth: u32, features: u32) -> TreesParams {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    let inner = (1usize << depth) - 1;
+    let trees = (0..trees)
+        .map(|_| {
+            // Heap order: node i has children 2i+1 and 2i+2.
+            let nodes = (0..2 * inner + 1)
+                .map(|i| {
+                    if i < inner {
+                        Node::Split {
+                            feature: rng.random_range(0..features),
+                            threshold: rng.random(),
+                            left: (2 * i + 1) as u32,
+                            right: (2 * i + 2) as u32,
+                            missing: if rng.random_bool(0.5) { Branch::Left } else { Branch::Right },
+                        }
+                    } else {
+                        Node::Leaf { value: rng.random_range(-1.0..1.0) }
+                    }
+                })
+                .collect();
+            Tree { output: 0, nodes }
+        })
+        .collect();
+    TreesParams { features, base: vec![0.5], combine: Combine::Sum, split: SplitRule::Less, trees }
+}
+
+/// Random rows in [0, 1) with about `missing` of the cells NaN.
+pub fn random_cells(seed: u64, rows: usize, features: usize, missing: f64) -> Vec<f64> {
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
+    (0..rows * features).map(|_| if rng.random_bool(missing) { f64::NAN } else { rng.random() }).collect()
+}
