@@ -76,19 +76,17 @@ fn csv_records<'a, R: Read + 'a>(input: R, schema: &'a Schema, id: Option<&'a st
             Ok(r) => r,
             Err(e) => return Some(Record { number, id: None, row: Err(format!("unreadable CSV record: {e}")) }),
         };
+        let id_value = id.and_then(|id| header.iter().position(|h| h == id)).and_then(|i| record.get(i)).map(str::to_owned);
         if record.len() != header.len() {
             let row = Err(format!("{} fields but the header has {}", record.len(), header.len()));
-            return Some(Record { number, id: None, row });
+            return Some(Record { number, id: id_value, row });
         }
-        let mut row = Row::new();
-        let mut id_value = None;
-        for (name, cell) in header.iter().zip(record.iter()) {
-            if Some(name.as_str()) == id {
-                id_value = Some(cell.to_owned());
-            } else {
-                row.insert(name.clone(), schema.value_from_text(name, cell));
-            }
-        }
+        let row = header
+            .iter()
+            .zip(record.iter())
+            .filter(|(name, _)| Some(name.as_str()) != id)
+            .map(|(name, cell)| (name.clone(), schema.value_from_text(name, cell)))
+            .collect();
         Some(Record { number, id: id_value, row: Ok(row) })
     })
 }

@@ -1,0 +1,157 @@
+//! The `paddock` command on the demo artifacts (built by `cargo xtask build`).
+
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output};
+
+fn root() -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap().to_owned()
+}
+
+fn artifact(name: &str) -> PathBuf {
+    let p = root().join("target/paddock/artifacts").join(format!("{name}.wasm"));
+    assert!(p.exists(), "{} is missing: run `cargo xtask build` first", p.display());
+    p
+}
+
+fn paddock(args: &[&str], stdin: Option<&str>) -> Output {
+    use std::io::Write;
+    let mut cmd = Command::new(env!("CARGO_BIN_EXE_paddock"));
+    cmd.args(args).current_dir(root());
+    cmd.stdin(std::process::Stdio::piped()).stdout(std::process::Stdio::piped()).stderr(std::process::Stdio::piped());
+    let mut child = cmd.spawn().unwrap();
+    let mut input = child.stdin.take().unwrap();
+    input.write_all(stdin.unwrap_or("").as_bytes()).unwrap();
+    drop(input);
+    child.wait_with_output().unwrap()
+}
+
+fn text(o: &[u8]) -> String {
+    String::from_utf8_lossy(o).into_owned()
+}
+
+fn tmp(name: &str) -> PathBuf {
+    let dir = std::env::temp_dir().join(format!("paddock-cli-{}", std::process::id()));
+    std::fs::create_dir_all(&dir).unwrap();
+    dir.join(name)
+}
+
+#[test]
+fn inspect_shows_digest_imports_and_the_contract_table() {
+    let a = artifact("charge-minutes");
+    let out = paddock(&["inspect", a.to_str().unwrap()], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    let digest = paddock_host::Digest::of(&std::fs::read(&a).unwrap()).to_string();
+    assert!(s.contains(&digest), "{s}");
+    assert!(s.contains("imports  none"), "{s}");
+    assert!(s.contains("section  paddock-params"), "{s}");
+    let line = |name: &str| s.lines().find(|l| l.split_whitespace().nth(1) == Some(name)).unwrap_or_default().to_owned();
+    assert!(line("connector").contains("label {type2, ccs2, chademo}"), "{s}");
+    assert!(line("ambient_c").contains("real [-40, 50]") && line("ambient_c").contains("°C"), "{s}");
+    assert!(line("minutes").contains("[0, 2880]"), "{s}");
+
+    let out = paddock(&["inspect", a.to_str().unwrap(), "--json"], None);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["digest"], digest);
+    assert_eq!(v["contract"]["features"].as_array().unwrap().len(), 8);
+}
+
+#[test]
+fn score_reports_bad_rows_by_number_and_scores_the_rest() {
+    let a = artifact("charge-minutes");
+    let csv = "\
+session,charger_kw,battery_kwh,soc_start,soc_target,ambient_c,hour_of_week,connector,fleet
+s1,11,64,0.2,0.8,12,40,type2,false
+s2,11,64,1.7,0.8,12,40,type2,false
+s3,50,77,0.1,0.8,,100,ccs2,true
+s4,11,64,0.2,0.8,12,40,tesla,false
+s5,11,64
+s6,7.4,40,0.5,1.0,20,150,type2,no
+";
+    let input = tmp("sessions.csv");
+    std::fs::write(&input, csv).unwrap();
+    let out = paddock(&["score", a.to_str().unwrap(), input.to_str().unwrap(), "--id", "session"], None);
+    assert_eq!(out.status.code(), Some(3), "some rows failed: {}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("3 rows scored, 3 rows failed"));
+    let lines: Vec<String> = text(&out.stdout).lines().map(str::to_owned).collect();
+    assert_eq!(lines[0], "row,id,minutes,error");
+    assert_eq!(lines.len(), 7);
+    for (line, id) in lines[1..].iter().zip(["s1", "s2", "s3", "s4", "s5", "s6"]) {
+        assert!(line.contains(&format!(",{id},")), "{line}");
+    }
+    assert!(lines[2].contains("row 2, feature `soc_start` = 1.7: out of bounds [0, 1]"), "{}", lines[2]);
+    assert!(lines[4].contains("row 4, feature `connector` = \"\"tesla\"\": unknown label; allowed: type2, ccs2, chademo"), "{}", lines[4]);
+    assert!(lines[5].contains("row 5: 3 fields but the header has 9"), "{}", lines[5]);
+    for good in [1, 3, 6] {
+        let minutes: f64 = lines[good].split(',').nth(2).unwrap().parse().unwrap();
+        assert!((0.0..=2880.0).contains(&minutes) && minutes > 1.0, "{}", lines[good]);
+    }
+}
+
+#[test]
+fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
+    let a = artifact("overstay-risk");
+    let input = "{\"expected_minutes\": 120, \"plugin_hour\": 18, \"member_overstay_rate\": null, \"site_occupancy\": 0.5, \"weekend\": false, \"fleet\": false}\nnot json\n";
+    let out = paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json"], Some(input));
+    assert_eq!(out.status.code(), Some(3));
+    let lines: Vec<serde_json::Value> = text(&out.stdout).lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    let p = lines[0]["overstay_probability"].as_f64().unwrap();
+    assert!((0.0..=1.0).contains(&p));
+    assert_eq!(lines[1]["row"], 2);
+    assert!(lines[1]["error"].as_str().unwrap().starts_with("row 2: not JSON"));
+}
+
+#[test]
+fn check_passes_on_carried_checks_and_fails_on_altered_ones() {
+    let a = artifact("charge-minutes");
+    let out = paddock(&["check", a.to_str().unwrap(), "--json"], None);
+    assert!(out.status.success(), "{}", text(&out.stdout));
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(report["passed"], report["cases"]);
+    assert_eq!(report["max_abs_error"], 0.0);
+
+    let trained = root().join("target/paddock/train/charge-minutes.checks.json");
+    let mut checks: serde_json::Value = serde_json::from_slice(&std::fs::read(trained).unwrap()).unwrap();
+    let first = &mut checks["cases"][0]["expect"]["minutes"];
+    *first = serde_json::json!(first.as_f64().unwrap() + 0.5);
+    let altered = tmp("altered.checks.json");
+    std::fs::write(&altered, serde_json::to_vec(&checks).unwrap()).unwrap();
+    let out = paddock(&["check", a.to_str().unwrap(), "--checks", altered.to_str().unwrap()], None);
+    assert_eq!(out.status.code(), Some(1));
+    let s = text(&out.stdout);
+    assert!(s.contains("cases passed"), "{s}");
+    assert!(s.contains("case 0: minutes ="), "{s}");
+    assert!(s.contains("max abs error 5e-1"), "{s}");
+}
+
+#[test]
+fn pack_makes_a_loadable_artifact_from_a_wat_module() {
+    let out_path = tmp("affine.wasm");
+    let wat = root().join("tests/fixtures/affine.wat");
+    let out = paddock(&["pack", wat.to_str().unwrap(), "--out", out_path.to_str().unwrap(), "--json"], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["model"], "affine 1.0.0");
+    let bytes = std::fs::read(&out_path).unwrap();
+    assert_eq!(v["digest"], paddock_host::Digest::of(&bytes).to_string());
+}
+
+#[test]
+fn demo_scores_the_co_op_plug_ins_with_both_models() {
+    let dir = root().join("target/paddock/artifacts");
+    let out = paddock(&["demo", "--artifacts", dir.to_str().unwrap()], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    assert!(s.contains("Harbour Lot") && s.contains("Depot North"), "{s}");
+    assert!(s.contains("charge-minutes 0.1.0") && s.contains("overstay-risk 0.1.0"), "{s}");
+    let out = paddock(&["demo", "--artifacts", dir.to_str().unwrap(), "--json"], None);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v.as_array().unwrap().len(), 10);
+}
+
+#[test]
+fn a_missing_demo_directory_says_how_to_build_it() {
+    let out = paddock(&["demo", "--artifacts", "/nonexistent"], None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stderr).contains("run `cargo xtask demo`"), "{}", text(&out.stderr));
+}
