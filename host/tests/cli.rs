@@ -45,7 +45,7 @@ fn inspect_shows_digest_imports_and_the_contract_table() {
     assert!(s.contains(&digest), "{s}");
     assert!(s.contains("imports  none"), "{s}");
     assert!(s.contains("section  paddock-params"), "{s}");
-    let line = |name: &str| s.lines().find(|l| l.split_whitespace().nth(1) == Some(name)).unwrap_or_default().to_owned();
+    let line = |name: &str| s.lines().rev().find(|l| l.split_whitespace().nth(1) == Some(name)).unwrap_or_default().to_owned();
     assert!(line("connector").contains("label {type2, ccs2, chademo}"), "{s}");
     assert!(line("ambient_c").contains("real [-40, 50]") && line("ambient_c").contains("°C"), "{s}");
     assert!(line("minutes").contains("[0, 2880]"), "{s}");
