@@ -273,7 +273,8 @@ impl Model {
             Component::new(runtime.engine(), artifact.bytes()).map_err(|e| LoadError::Compile(format!("{e:#}")))?;
         let pre = runtime.prepare(&component).map_err(LoadError::World)?;
         let (first, contract) =
-            Instance::start(runtime, &pre, limits, artifact.params()).map_err(LoadError::Start)?;
+            Instance::start(runtime, &pre, limits, artifact.params(), true).map_err(LoadError::Start)?;
+        let contract = contract.expect("describe was asked for");
         let schema = Schema::new(contract).map_err(LoadError::Contract)?;
         let max_idle = std::thread::available_parallelism().map_or(4, |n| n.get() * 2);
         let idle = if options.isolation == Isolation::Reuse { vec![first] } else { vec![] };
@@ -383,16 +384,20 @@ impl Model {
         Ok(())
     }
 
-    /// An idle instance, or a new one (checked to declare the same contract).
+    /// An idle instance, or a new one. A new instance for the warm pool is
+    /// checked to declare the same contract; a fresh per-call instance is
+    /// not (it serves one call, and the host only ever uses the contract
+    /// read at load).
     fn take(&self) -> Result<(Instance, bool), ScoreError> {
         let inner = &*self.inner;
         if let Some(instance) = inner.idle.lock().unwrap_or_else(|p| p.into_inner()).pop() {
             return Ok((instance, false));
         }
+        let verify = inner.options.isolation == Isolation::Reuse;
         let (instance, contract) =
-            Instance::start(&inner.runtime, &inner.pre, &inner.options.limits, inner.artifact.params())
+            Instance::start(&inner.runtime, &inner.pre, &inner.options.limits, inner.artifact.params(), verify)
                 .map_err(ScoreError::Start)?;
-        if &contract != inner.schema.contract() {
+        if contract.is_some_and(|c| &c != inner.schema.contract()) {
             return Err(ScoreError::ContractChanged);
         }
         Ok((instance, true))

