@@ -191,6 +191,8 @@ pub struct Schema {
     contract: Contract,
     index: HashMap<String, usize>,
     labels: Vec<HashMap<String, usize>>,
+    /// Each output's bounds as a closed interval (open sides infinite).
+    output_ranges: Vec<(f64, f64)>,
 }
 
 impl Schema {
@@ -209,7 +211,12 @@ impl Schema {
                 _ => HashMap::new(),
             })
             .collect();
-        Ok(Schema { contract, index, labels })
+        let output_ranges = contract
+            .outputs
+            .iter()
+            .map(|o| (o.bounds.min.unwrap_or(f64::NEG_INFINITY), o.bounds.max.unwrap_or(f64::INFINITY)))
+            .collect();
+        Ok(Schema { contract, index, labels, output_ranges })
     }
 
     /// The contract.
@@ -235,6 +242,11 @@ impl Schema {
     /// Number of outputs per row.
     pub fn outputs(&self) -> usize {
         self.contract.outputs.len()
+    }
+
+    /// Each output's bounds as a closed interval.
+    pub(crate) fn output_ranges(&self) -> &[(f64, f64)] {
+        &self.output_ranges
     }
 }
 

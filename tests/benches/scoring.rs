@@ -11,6 +11,8 @@
 //! - `single_fresh`: the same with a fresh instance per call (pooling
 //!   allocator, pre-instantiated);
 //! - `batch_1024`: 1024 dense rows through the sandbox;
+//! - `batch_nans_as_is_1024`: the same on a runtime that does not
+//!   canonicalize NaNs (the cost of bit-identical floats across machines);
 //! - `native_1024` / `native_single`: the same estimator code natively.
 
 use std::hint::black_box;
@@ -21,7 +23,7 @@ use paddock_guest::{
     Bounds, Contract, Evaluate, Feature, Linear, LinearParams, Link, Output, Packaged, Trees, encode_params,
 };
 use paddock_host::model::Isolation;
-use paddock_host::{ModelOptions, Row, Runtime};
+use paddock_host::{ModelOptions, Row, Runtime, RuntimeConfig};
 use paddock_tests::{guest, load, random_cells, random_ensemble};
 
 const FEATURES: usize = 9;
@@ -55,9 +57,11 @@ where
     E::Params: Clone,
 {
     let runtime = Runtime::new().unwrap();
+    let loose = Runtime::with_config(RuntimeConfig { canonical_nans: false, ..RuntimeConfig::default() }).unwrap();
     let blob = encode_params(&Packaged { contract: contract(), params: params.clone() });
     let warm = load(&runtime, &guest(module), &blob, ModelOptions::default());
     let fresh = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, ..Default::default() });
+    let uncanonical = load(&loose, &guest(module), &blob, ModelOptions::default());
     let native = E::build(params).unwrap();
     let cells = random_cells(3, BATCH, FEATURES, 0.0);
     let one = row(&cells[..FEATURES]);
@@ -76,6 +80,9 @@ where
     g.throughput(Throughput::Elements(BATCH as u64));
     g.bench_with_input(BenchmarkId::new("batch", BATCH), &cells, |b, cells| {
         b.iter(|| black_box(warm.score_cells(BATCH, black_box(cells)).unwrap()))
+    });
+    g.bench_with_input(BenchmarkId::new("batch_nans_as_is", BATCH), &cells, |b, cells| {
+        b.iter(|| black_box(uncanonical.score_cells(BATCH, black_box(cells)).unwrap()))
     });
     g.bench_with_input(BenchmarkId::new("native", BATCH), &cells, |b, cells| {
         let mut out = Array2::zeros((BATCH, 1));
