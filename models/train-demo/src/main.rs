@@ -135,8 +135,9 @@ fn record(
 ) -> Checks {
     Checks {
         source: source.to_owned(),
-        // The sandbox runs the same code on the same params: bit-identical
-        // results are expected, so the tolerance only absorbs nothing.
+        // The sandbox runs the same code on the same params, so the results
+        // are expected bit for bit; 1e-12 relative leaves room only for a
+        // different summation order, never for a different model.
         tolerance: Tolerance { abs: 0.0, rel: 1e-12 },
         cases: sessions
             .iter()
