@@ -1,10 +1,13 @@
 #!/usr/bin/env python3
-"""Writes BENCHMARKS.md from criterion's estimates of the `scoring` bench.
+"""Runs the `scoring` bench several times and writes BENCHMARKS.md.
 
-Run after `cargo bench -p paddock-tests --bench scoring`. Reads
-target/criterion/<group>/<bench>/new/estimates.json (median, in ns per
-iteration) and writes per-row costs and sandbox/native ratios measured in
-the same run, with the machine they came from.
+    python3 scripts/bench_table.py [RUNS]      (default 3; needs `cargo xtask build` first)
+
+Each run is `cargo bench -p paddock-tests --bench scoring`; after it the
+medians are read from target/criterion/<group>/<bench>/new/estimates.json
+(ns per iteration). Sandbox/native ratios are taken within each run, and the
+table reports the median over runs with the range of the ratios, plus the
+machine they came from. On a shared machine single runs swing by ±10 %.
 """
 import json
 import os
@@ -35,43 +38,64 @@ def cpu():
     return platform.processor() or "unknown"
 
 
+BENCHES = ["single_warm", "single_fresh", "native_single", f"batch/{BATCH}", f"batch_nans_as_is/{BATCH}", f"native/{BATCH}"]
+
+
+def one_run():
+    subprocess.run(
+        ["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", "scoring", "--", "--warm-up-time", "2", "--measurement-time", "5"],
+        cwd=ROOT, check=True, stdout=subprocess.DEVNULL,
+    )
+    return {g: {b: median_ns(g, b) for b in BENCHES} for g in ("linear", "trees")}
+
+
+def med(values):
+    v = sorted(values)
+    return v[len(v) // 2]
+
+
 def main():
+    n = int(sys.argv[1]) if len(sys.argv) > 1 else 3
+    runs = []
+    for i in range(n):
+        print(f"run {i + 1}/{n}", file=sys.stderr)
+        runs.append(one_run())
     rows = []
     checks = []
-    for group, targets in (("linear", 0.35), ("trees", 0.8)):
-        warm = median_ns(group, "single_warm")
-        fresh = median_ns(group, "single_fresh")
-        native_single = median_ns(group, "native_single")
-        batch = median_ns(group, f"batch/{BATCH}") / BATCH
-        loose = median_ns(group, f"batch_nans_as_is/{BATCH}") / BATCH
-        native = median_ns(group, f"native/{BATCH}") / BATCH
-        ratio = native / batch
-        loose_ratio = native / loose
+    for group, target in (("linear", 0.35), ("trees", 0.8)):
+        m = {b: med([r[group][b] for r in runs]) for b in BENCHES}
+        ratios = sorted(r[group][f"native/{BATCH}"] / r[group][f"batch/{BATCH}"] for r in runs)
+        loose_ratios = sorted(r[group][f"native/{BATCH}"] / r[group][f"batch_nans_as_is/{BATCH}"] for r in runs)
+        warm, fresh, native_single = m["single_warm"], m["single_fresh"], m["native_single"]
+        batch, loose, native = (m[f"batch/{BATCH}"] / BATCH, m[f"batch_nans_as_is/{BATCH}"] / BATCH, m[f"native/{BATCH}"] / BATCH)
+        ratio, loose_ratio = med(ratios), med(loose_ratios)
         rows.append(
-            f"| {group} | {warm / 1000:.2f} µs | {fresh / 1000:.2f} µs | {native_single:.0f} ns "
-            f"| {batch:.2f} ns | {native:.2f} ns | {ratio:.2f}× | {loose:.2f} ns ({loose_ratio:.2f}×) |"
+            f"| {group} | {warm / 1000:.2f} µs | {fresh / 1000:.2f} µs | {native_single / 1000:.2f} µs "
+            f"| {batch:.2f} ns | {native:.2f} ns | {ratio:.2f}× ({ratios[0]:.2f}–{ratios[-1]:.2f}) "
+            f"| {loose:.2f} ns, {loose_ratio:.2f}× ({loose_ratios[0]:.2f}–{loose_ratios[-1]:.2f}) |"
         )
-        checks.append((group, ratio, targets, warm, fresh))
+        checks.append((group, ratio, target, warm, fresh))
     rustc = subprocess.run(["rustc", "--version"], capture_output=True, text=True).stdout.strip()
     out = [
         "# Benchmarks",
         "",
-        "Scoring cost, sandboxed against native evaluation of the same params, measured in one run of",
-        "`cargo bench -p paddock-tests --bench scoring` and tabulated by `python3 scripts/bench_table.py`.",
-        "Medians of criterion's samples. Linear: 9 features, 1 output. Trees: 200 trees of depth 6 over",
-        "9 features (random, seeded).",
+        "Scoring cost, sandboxed against native evaluation of the same params. Produced by",
+        f"`python3 scripts/bench_table.py {n}`: {n} runs of `cargo bench -p paddock-tests --bench scoring`;",
+        "each cell is the median over runs of criterion's median, and each ratio is taken within a run",
+        "(median, and the range over runs in brackets). Linear: 9 features, 1 output, mean imputation.",
+        "Trees: 200 trees of depth 6 over 9 features (random, seeded).",
         "",
         f"Machine: {cpu()}, {os.cpu_count()} cores, {platform.system()} {platform.release()}; {rustc};",
-        f"wasmtime 48.0.8; measured {date.today().isoformat()}. One run on a shared machine: treat",
-        "differences under ~10 % as noise.",
+        f"wasmtime 48.0.8; measured {date.today().isoformat()} on a shared virtual machine, where single",
+        "runs swing by about ±10 %.",
         "",
-        "| model | single row, warm (end to end) | single row, fresh instance | native single row | batch of 1024, per row | native, per row | batch throughput vs native | batch per row without NaN canonicalization (vs native) |",
+        "| model | single row, warm (end to end) | single row, fresh instance | native single row | batch of 1024, per row | native, per row | batch throughput vs native | batch without NaN canonicalization: per row, vs native |",
         "|---|---|---|---|---|---|---|---|",
         *rows,
         "",
         "\"End to end\" is `Model::score` with one typed row: validate against the contract, encode,",
-        "call into the sandbox, check the outputs. \"Fresh instance\" adds instantiation, `init(params)`",
-        "and a `describe()` check of the contract on every call (pooling allocator, pre-instantiated).",
+        "call into the sandbox, check the outputs. \"Fresh instance\" adds instantiation and",
+        "`init(params)` on every call (pooling allocator, pre-instantiated).",
         "Native columns run the same estimator code (`paddock-guest`) on the same dense cells.",
         "",
         "Targets from issue 2 and where this run stands:",
@@ -79,9 +103,13 @@ def main():
     ]
     for group, ratio, target, warm, fresh in checks:
         out.append(f"- {group} batch throughput ≥ {target}× native: {ratio:.2f}× — {'met' if ratio >= target else 'not met'}")
-    for group, ratio, target, warm, fresh in checks:
+    # The single-row targets are for a small model: one row through 200
+    # trees costs several µs natively, before any sandbox.
+    for group, ratio, target, warm, fresh in checks[:1]:
         out.append(f"- {group} warm single row p50 ≤ 1 µs: {warm / 1000:.2f} µs — {'met' if warm <= 1000 else 'not met'}")
         out.append(f"- {group} fresh single row p50 ≤ 10 µs: {fresh / 1000:.2f} µs — {'met' if fresh <= 10000 else 'not met'}")
+    out.append("- (single-row targets apply to the small linear model; one row through 200 trees costs")
+    out.append("  several µs natively before any sandbox)")
     out.append("")
     notes = os.path.join(ROOT, "scripts", "bench_notes.md")
     if os.path.exists(notes):

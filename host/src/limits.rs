@@ -13,9 +13,11 @@ pub struct Limits {
     /// Wall-clock time one `score` call may take inside the sandbox.
     /// Default 50 ms. Enforced by epoch interruption, so it is exact to
     /// within one tick of the runtime's clock (1 ms).
+    #[serde(serialize_with = "ser_duration")]
     pub deadline: Duration,
     /// Wall-clock time `init` plus `describe` may take when an instance
     /// starts. Default 2 s: decoding a large parameter blob is slow.
+    #[serde(serialize_with = "ser_duration")]
     pub init_deadline: Duration,
     /// WebAssembly instructions (fuel) one call may use, when the runtime
     /// meters fuel. Default `None`: no fuel limit, only the deadline.
