@@ -38,7 +38,7 @@ def cpu():
     return platform.processor() or "unknown"
 
 
-BENCHES = ["single_warm", "single_fresh", "native_single", f"batch/{BATCH}", f"batch_nans_as_is/{BATCH}", f"native/{BATCH}"]
+BENCHES = ["single_warm", "single_fresh", "single_warm_2_threads", "single_fresh_2_threads", "native_single", f"batch/{BATCH}", f"batch_nans_as_is/{BATCH}", f"native/{BATCH}"]
 
 
 def one_run():
@@ -61,6 +61,7 @@ def main():
         print(f"run {i + 1}/{n}", file=sys.stderr)
         runs.append(one_run())
     rows = []
+    threads = []
     checks = []
     for group, target in (("linear", 0.35), ("trees", 0.8)):
         m = {b: med([r[group][b] for r in runs]) for b in BENCHES}
@@ -75,6 +76,10 @@ def main():
             f"| {loose:.2f} ns, {loose_ratio:.2f}× ({loose_ratios[0]:.2f}–{loose_ratios[-1]:.2f}) |"
         )
         checks.append((group, ratio, target, warm, fresh))
+        threads.append(
+            f"| {group} | {warm / 1000:.2f} µs | {m['single_warm_2_threads'] / 1000:.2f} µs "
+            f"| {fresh / 1000:.2f} µs | {m['single_fresh_2_threads'] / 1000:.2f} µs |"
+        )
     rustc = subprocess.run(["rustc", "--version"], capture_output=True, text=True).stdout.strip()
     out = [
         "# Benchmarks",
@@ -97,6 +102,13 @@ def main():
         "call into the sandbox, check the outputs. \"Fresh instance\" adds instantiation and",
         "`init(params)` on every call (pooling allocator, pre-instantiated).",
         "Native columns run the same estimator code (`paddock-guest`) on the same dense cells.",
+        "",
+        "Two threads sharing one `Model` (time per call at full load; half the single-thread time",
+        "would be perfect scaling on 2 cores):",
+        "",
+        "| model | warm, 1 thread | warm, 2 threads | fresh, 1 thread | fresh, 2 threads |",
+        "|---|---|---|---|---|",
+        *threads,
         "",
         "Targets from issue 2 and where this run stands:",
         "",

@@ -73,6 +73,15 @@ fn a_model_past_its_memory_cap_gets_the_memory_error_and_the_host_keeps_serving(
 }
 
 #[test]
+fn a_model_past_its_table_cap_gets_the_table_error() {
+    let runtime = Runtime::new().unwrap();
+    let grower = affine(&runtime, 6, Limits { table_elements: 1000, ..Limits::default() });
+    let err = grower.score(&x(1.0)).unwrap_err();
+    assert_eq!(err.limit(), Some(&LimitHit::Table { limit: 1000, requested: 100_001 }), "{err:?}");
+    assert_eq!(err.to_string(), "table cap of 1000 elements exceeded (asked for 100001 elements)");
+}
+
+#[test]
 fn a_model_out_of_fuel_gets_the_fuel_error() {
     let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
     let spinner = affine(&runtime, 1, Limits { fuel: Some(100_000), ..Limits::default() });
@@ -81,6 +90,50 @@ fn a_model_out_of_fuel_gets_the_fuel_error() {
     let metered = affine(&runtime, 0, Limits { fuel: Some(100_000), ..Limits::default() });
     let used = metered.score(&x(1.0)).unwrap().usage().fuel.expect("fuel is metered");
     assert!(used > 0 && used < 100_000, "{used}");
+}
+
+#[test]
+fn a_declared_contract_that_breaks_the_rules_is_refused_with_every_problem() {
+    use paddock_guest::{Bounds, Contract, Feature, Linear, LinearParams, Link, Output, Packaged, encode_params};
+    let runtime = Runtime::new().unwrap();
+    let contract = Contract {
+        name: "twice".into(),
+        version: "v2".into(),
+        about: String::new(),
+        features: vec![Feature::real("a", Bounds::OPEN), Feature::real("a", Bounds::between(1.0, 0.0))],
+        outputs: vec![Output::new("y", Bounds::OPEN)],
+    };
+    let params = LinearParams { link: Link::Identity, intercepts: vec![0.0], weights: vec![vec![1.0, 1.0]], impute: vec![] };
+    let blob = encode_params(&Packaged::<<Linear as paddock_guest::Evaluate>::Params> { contract, params });
+    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("paddock-model-linear"), &blob, None)).unwrap_err();
+    let LoadError::Contract(e) = &err else { panic!("expected a contract error, got {err:?}") };
+    assert_eq!(e.problems.len(), 3, "{err}");
+    let text = err.to_string();
+    assert!(text.contains("version `v2` is not semver"), "{text}");
+    assert!(text.contains("feature `a` has bounds that no value can meet"), "{text}");
+    assert!(text.contains("feature name `a` is used more than once"), "{text}");
+}
+
+#[test]
+fn init_refusing_its_params_is_a_load_error_with_the_models_message() {
+    use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams, encode_params};
+    let runtime = Runtime::new().unwrap();
+    // A split on feature 9 of charge-minutes' 8 features.
+    let tree = Tree {
+        output: 0,
+        nodes: vec![
+            Node::Split { feature: 9, threshold: 0.0, left: 1, right: 2, missing: Branch::Left },
+            Node::Leaf { value: 1.0 },
+            Node::Leaf { value: 2.0 },
+        ],
+    };
+    let params = TreesParams { features: 8, base: vec![0.0], combine: Combine::Sum, split: SplitRule::Less, trees: vec![tree] };
+    let artifact = paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &encode_params(&params), None);
+    let err = Model::load(&runtime, artifact).unwrap_err();
+    assert_eq!(err.to_string(), "the model failed to start: init refused the params: tree 0 node 0: feature 9 but rows have 8");
+    // Params that do not decode at all.
+    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &[0xff; 3], None)).unwrap_err();
+    assert!(err.to_string().starts_with("the model failed to start: init refused the params: params do not decode"), "{err}");
 }
 
 #[test]

@@ -44,6 +44,7 @@ pub mod checks;
 pub mod contract;
 pub mod limits;
 pub mod model;
+mod pool;
 pub mod rows;
 pub mod sandbox;
 pub mod table;

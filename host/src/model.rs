@@ -1,7 +1,7 @@
 //! A loaded model: one artifact, compiled once, served from a pool of warm
 //! instances (or a fresh instance per call) to any number of threads.
 
-use std::sync::{Arc, Mutex};
+use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
@@ -11,6 +11,7 @@ use crate::artifact::{Artifact, Digest};
 use crate::bindings::EstimatorPre;
 use crate::contract::{Contract, ContractError, Fault, Schema};
 use crate::limits::{LimitHit, Limits};
+use crate::pool::Pool;
 use crate::rows::{OutputFault, Row, RowError};
 use crate::sandbox::{Instance, Runtime, SandboxError, StartError, State};
 
@@ -224,8 +225,7 @@ struct Inner {
     pre: EstimatorPre<State>,
     schema: Schema,
     options: ModelOptions,
-    idle: Mutex<Vec<Instance>>,
-    max_idle: usize,
+    idle: Pool<Instance>,
 }
 
 impl std::fmt::Debug for Model {
@@ -276,8 +276,10 @@ impl Model {
             Instance::start(runtime, &pre, limits, artifact.params(), true).map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
         let schema = Schema::new(contract).map_err(LoadError::Contract)?;
-        let max_idle = std::thread::available_parallelism().map_or(4, |n| n.get() * 2);
-        let idle = if options.isolation == Isolation::Reuse { vec![first] } else { vec![] };
+        let idle = Pool::new(std::thread::available_parallelism().map_or(4, |n| n.get() * 2));
+        if options.isolation == Isolation::Reuse {
+            idle.put(first);
+        }
         Ok(Model {
             inner: Arc::new(Inner {
                 runtime: runtime.clone(),
@@ -285,8 +287,7 @@ impl Model {
                 pre,
                 schema,
                 options,
-                idle: Mutex::new(idle),
-                max_idle,
+                idle,
             }),
         })
     }
@@ -390,7 +391,7 @@ impl Model {
     /// read at load).
     fn take(&self) -> Result<(Instance, bool), ScoreError> {
         let inner = &*self.inner;
-        if let Some(instance) = inner.idle.lock().unwrap_or_else(|p| p.into_inner()).pop() {
+        if let Some(instance) = inner.idle.take() {
             return Ok((instance, false));
         }
         let verify = inner.options.isolation == Isolation::Reuse;
@@ -410,9 +411,6 @@ impl Model {
         if inner.options.isolation == Isolation::FreshPerCall {
             return;
         }
-        let mut idle = inner.idle.lock().unwrap_or_else(|p| p.into_inner());
-        if idle.len() < inner.max_idle {
-            idle.push(instance);
-        }
+        inner.idle.put(instance);
     }
 }

@@ -13,6 +13,8 @@
 //! - `batch_1024`: 1024 dense rows through the sandbox;
 //! - `batch_nans_as_is_1024`: the same on a runtime that does not
 //!   canonicalize NaNs (the cost of bit-identical floats across machines);
+//! - `single_warm_2_threads` / `single_fresh_2_threads`: two threads
+//!   sharing one model, time per call;
 //! - `native_1024` / `native_single`: the same estimator code natively.
 
 use std::hint::black_box;
@@ -70,6 +72,25 @@ where
     g.throughput(Throughput::Elements(1));
     g.bench_function("single_warm", |b| b.iter(|| black_box(warm.score(std::slice::from_ref(black_box(&one))).unwrap())));
     g.bench_function("single_fresh", |b| b.iter(|| black_box(fresh.score(std::slice::from_ref(black_box(&one))).unwrap())));
+    // Two threads sharing one model: time per call at full load (half the
+    // single-thread figure would be perfect scaling on two cores).
+    for (label, model) in [("single_warm_2_threads", &warm), ("single_fresh_2_threads", &fresh)] {
+        g.bench_function(label, |b| {
+            b.iter_custom(|iters| {
+                let started = std::time::Instant::now();
+                std::thread::scope(|s| {
+                    for _ in 0..2 {
+                        s.spawn(|| {
+                            for _ in 0..iters.div_ceil(2) {
+                                black_box(model.score(std::slice::from_ref(&one)).unwrap());
+                            }
+                        });
+                    }
+                });
+                started.elapsed()
+            })
+        });
+    }
     g.bench_function("native_single", |b| {
         let mut out = Array2::zeros((1, 1));
         b.iter(|| {
