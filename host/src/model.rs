@@ -60,6 +60,9 @@ pub enum LoadError {
     /// The declared contract is invalid.
     #[error("{0}")]
     Contract(ContractError),
+    /// `describe()` answered differently when asked twice.
+    #[error("the model's contract changed between two calls to describe")]
+    ContractUnstable,
     /// The options ask for something the runtime cannot give.
     #[error("{0}")]
     Options(String),
@@ -257,8 +260,9 @@ impl Model {
     /// for components wasmtime refuses, [`LoadError::Start`] when
     /// instantiation, `init` or `describe` trap, hit a limit or refuse the
     /// params, [`LoadError::Contract`] listing every problem with the
-    /// declared contract, [`LoadError::Options`] for limits the runtime
-    /// cannot enforce.
+    /// declared contract, [`LoadError::ContractUnstable`] when a second
+    /// `describe()` answers differently, [`LoadError::Options`] for limits
+    /// the runtime cannot enforce.
     pub fn load_with(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<Model, LoadError> {
         let limits = &options.limits;
         let size = artifact.bytes().len() as u64;
@@ -272,9 +276,13 @@ impl Model {
         let component =
             Component::new(runtime.engine(), artifact.bytes()).map_err(|e| LoadError::Compile(format!("{e:#}")))?;
         let pre = runtime.prepare(&component).map_err(LoadError::World)?;
-        let (first, contract) =
+        let (mut first, contract) =
             Instance::start(runtime, &pre, limits, artifact.params(), true).map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
+        // A contract is a promise: it must not change from one call to the next.
+        if first.describe(runtime, limits).map_err(LoadError::Start)? != contract {
+            return Err(LoadError::ContractUnstable);
+        }
         let schema = Schema::new(contract).map_err(LoadError::Contract)?;
         let idle = Pool::new(std::thread::available_parallelism().map_or(4, |n| n.get() * 2));
         if options.isolation == Isolation::Reuse {

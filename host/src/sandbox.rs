@@ -315,6 +315,14 @@ impl Instance {
         Ok((Instance { store, api }, contract))
     }
 
+    /// Calls `describe()` again under the init deadline.
+    pub(crate) fn describe(&mut self, runtime: &Runtime, limits: &Limits) -> Result<Contract, StartError> {
+        arm(&mut self.store, runtime, limits.init_deadline, limits.fuel);
+        self.api
+            .call_describe(&mut self.store)
+            .map_err(|e| StartError::Sandbox { stage: Stage::Describe, error: classify(e, runtime, &self.store) })
+    }
+
     /// Calls `score(rows, cells)` under the call limits. Returns the model's
     /// answer and the fuel it used (when fuel is metered).
     pub(crate) fn score(

@@ -79,3 +79,27 @@ pub fn random_cells(seed: u64, rows: usize, features: usize, missing: f64) -> Ve
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(seed);
     (0..rows * features).map(|_| if rng.random_bool(missing) { f64::NAN } else { rng.random() }).collect()
 }
+
+/// Whether WAT text defines the function `name` (`(func $name` followed by
+/// a space, a newline or `)`).
+fn defines(text: &str, name: &str) -> bool {
+    let head = format!("(func {name}");
+    text.match_indices(&head)
+        .any(|(i, _)| text[i + head.len()..].starts_with(|c: char| c.is_whitespace() || c == ')'))
+}
+
+/// A hostile-corpus module: `tests/hostile/base.wat` with `case` spliced in
+/// at `;; @case`, keeping the default of every `$hook_…` function the case
+/// does not define itself.
+pub fn hostile_module(case: &str) -> String {
+    let base = std::fs::read_to_string(root().join("tests/hostile/base.wat")).expect("tests/hostile/base.wat");
+    let (module, defaults) = base.split_once(";; @defaults").expect("base.wat has a `;; @defaults` marker");
+    let kept: Vec<&str> = defaults
+        .lines()
+        .filter(|l| {
+            let hook = l.trim_start().strip_prefix("(func ").and_then(|r| r.split([' ', ')']).next());
+            hook.is_some_and(|h| !defines(case, h))
+        })
+        .collect();
+    module.replace(";; @case", &format!("{case}\n{}", kept.join("\n")))
+}

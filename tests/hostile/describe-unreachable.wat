@@ -1,0 +1,3 @@
+;; expect: load: describe trap
+;; what: `unreachable` in describe
+(func $hook_describe (result i32) unreachable)

@@ -1,0 +1,6 @@
+;; expect: load: imports wasi:filesystem/preopens@0.2.0
+;; what: a component that imports a WASI interface
+;; kind: component
+(component
+  (import "wasi:filesystem/preopens@0.2.0" (instance))
+)

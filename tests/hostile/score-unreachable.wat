@@ -1,0 +1,3 @@
+;; expect: score: trap
+;; what: `unreachable` in score
+(func $hook_score unreachable)
