@@ -111,6 +111,23 @@ impl fmt::Debug for Digest {
     }
 }
 
+impl std::str::FromStr for Digest {
+    type Err = String;
+
+    /// Parses `sha256:` followed by 64 hex digits.
+    fn from_str(s: &str) -> Result<Self, Self::Err> {
+        let hex = s.strip_prefix("sha256:").ok_or_else(|| format!("`{s}` is not a digest: expected `sha256:` and 64 hex digits"))?;
+        let mut out = [0u8; 32];
+        if hex.len() != 64 || !hex.is_ascii() {
+            return Err(format!("`{s}` is not a digest: expected 64 hex digits after `sha256:`"));
+        }
+        for (i, byte) in out.iter_mut().enumerate() {
+            *byte = u8::from_str_radix(&hex[2 * i..2 * i + 2], 16).map_err(|_| format!("`{s}` is not a digest: bad hex"))?;
+        }
+        Ok(Digest(out))
+    }
+}
+
 impl Serialize for Digest {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         s.collect_str(self)

@@ -32,6 +32,8 @@
 //! - [`Model`]: a loaded artifact serving many threads under its
 //!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
 //! - [`Checks`]: example rows with recorded outputs, run by [`checks::run`].
+//! - [`TrustPolicy`]: which signers and digests a host accepts, checked
+//!   before an artifact is loaded.
 //!
 //! What it is not: a training library, or a feature store. It scores the
 //! rows it is given, exactly as the artifact says, and nothing else.
@@ -48,6 +50,7 @@ mod pool;
 pub mod rows;
 pub mod sandbox;
 pub mod table;
+pub mod trust;
 
 pub use artifact::{Artifact, ArtifactError, Digest, pack};
 pub use checks::{CheckReport, Checks, Tolerance};
@@ -56,3 +59,4 @@ pub use limits::{LimitHit, Limits};
 pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError, Usage};
 pub use rows::{OutputFault, Row, RowError, Rule, Value};
 pub use sandbox::{Runtime, RuntimeConfig, SandboxError};
+pub use trust::{PublicKey, SecretKey, Signature, TrustError, TrustPolicy, Vouch};

@@ -7,7 +7,7 @@ fn root() -> PathBuf {
     Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap().to_owned()
 }
 
-fn artifact(name: &str) -> PathBuf {
+fn artifact_path(name: &str) -> PathBuf {
     let p = root().join("target/paddock/artifacts").join(format!("{name}.wasm"));
     assert!(p.exists(), "{} is missing: run `cargo xtask build` first", p.display());
     p
@@ -37,7 +37,7 @@ fn tmp(name: &str) -> PathBuf {
 
 #[test]
 fn inspect_shows_digest_imports_and_the_contract_table() {
-    let a = artifact("charge-minutes");
+    let a = artifact_path("charge-minutes");
     let out = paddock(&["inspect", a.to_str().unwrap()], None);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let s = text(&out.stdout);
@@ -58,7 +58,7 @@ fn inspect_shows_digest_imports_and_the_contract_table() {
 
 #[test]
 fn score_reports_bad_rows_by_number_and_scores_the_rest() {
-    let a = artifact("charge-minutes");
+    let a = artifact_path("charge-minutes");
     let csv = "\
 session,charger_kw,battery_kwh,soc_start,soc_target,ambient_c,hour_of_week,connector,fleet
 s1,11,64,0.2,0.8,12,40,type2,false
@@ -90,7 +90,7 @@ s6,7.4,40,0.5,1.0,20,150,type2,no
 
 #[test]
 fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
-    let a = artifact("overstay-risk");
+    let a = artifact_path("overstay-risk");
     let input = "{\"expected_minutes\": 120, \"plugin_hour\": 18, \"member_overstay_rate\": null, \"site_occupancy\": 0.5, \"weekend\": false, \"fleet\": false}\nnot json\n";
     let out = paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json"], Some(input));
     assert_eq!(out.status.code(), Some(3));
@@ -103,7 +103,7 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
 
 #[test]
 fn check_passes_on_carried_checks_and_fails_on_altered_ones() {
-    let a = artifact("charge-minutes");
+    let a = artifact_path("charge-minutes");
     let out = paddock(&["check", a.to_str().unwrap(), "--json"], None);
     assert!(out.status.success(), "{}", text(&out.stdout));
     let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
@@ -154,4 +154,66 @@ fn a_missing_demo_directory_says_how_to_build_it() {
     let out = paddock(&["demo", "--artifacts", "/nonexistent"], None);
     assert_eq!(out.status.code(), Some(1));
     assert!(text(&out.stderr).contains("run `cargo xtask demo`"), "{}", text(&out.stderr));
+}
+
+#[test]
+fn keygen_sign_and_verify_follow_the_policy() {
+    let dir = tmp("trust");
+    let _ = std::fs::remove_dir_all(&dir);
+    let keys = dir.join("keys");
+    let other = dir.join("other");
+    for (d, name) in [(&keys, "alice"), (&other, "mallory")] {
+        let out = paddock(&["keygen", "--dir", d.to_str().unwrap(), "--name", name], None);
+        assert!(out.status.success(), "{}", text(&out.stderr));
+    }
+    let again = paddock(&["keygen", "--dir", keys.to_str().unwrap(), "--name", "alice"], None);
+    assert_eq!(again.status.code(), Some(1), "never overwrites a key");
+
+    let artifact = dir.join("overstay.wasm");
+    std::fs::copy(artifact_path("overstay-risk"), &artifact).unwrap();
+    let a = artifact.to_str().unwrap();
+    let trust = ["--trust", keys.to_str().unwrap()];
+
+    // Unsigned: refused under --trust, accepted without a policy.
+    let out = paddock(&[&["verify", a][..], &trust[..]].concat(), None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stdout).contains("refused") && text(&out.stdout).contains("is not signed"), "{}", text(&out.stdout));
+    assert!(paddock(&["verify", a], None).status.success());
+
+    // Signed by a trusted key: accepted, and `score` loads it.
+    let key = keys.join("alice.key");
+    assert!(paddock(&["sign", a, "--key", key.to_str().unwrap()], None).status.success());
+    let out = paddock(&[&["verify", a, "--json"][..], &trust[..]].concat(), None);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["accepted"], true, "{v}");
+    assert_eq!(v["vouch"]["by"], "signature");
+    let row = "{\"expected_minutes\": 90, \"plugin_hour\": 9, \"member_overstay_rate\": 0.1, \"site_occupancy\": 0.2, \"weekend\": false, \"fleet\": false}\n";
+    let out = paddock(&[&["score", a, "-", "--from", "ndjson"][..], &trust[..]].concat(), Some(row));
+    assert!(out.status.success(), "{}", text(&out.stderr));
+
+    // Signed by a key that is not trusted: refused naming the key.
+    let mallory = other.join("mallory.key");
+    assert!(paddock(&["sign", a, "--key", mallory.to_str().unwrap()], None).status.success());
+    let out = paddock(&[&["score", a, "-", "--from", "ndjson"][..], &trust[..]].concat(), Some(row));
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stderr).contains("which is not among the trusted keys"), "{}", text(&out.stderr));
+
+    // Tampered after signing: refused naming both digests.
+    assert!(paddock(&["sign", a, "--key", key.to_str().unwrap()], None).status.success());
+    let mut bytes = std::fs::read(&artifact).unwrap();
+    let last = bytes.len() - 1;
+    bytes[last] ^= 1;
+    std::fs::write(&artifact, &bytes).unwrap();
+    let out = paddock(&[&["verify", a][..], &trust[..]].concat(), None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stdout).contains("the signature is for sha256:"), "{}", text(&out.stdout));
+
+    // A pin accepts exactly its digest.
+    let digest = paddock_host::Digest::of(&bytes).to_string();
+    let _ = std::fs::remove_file(paddock_host::Signature::path_for(&artifact));
+    assert!(paddock(&["verify", a, "--pin", &digest], None).status.success());
+    let wrong = paddock_host::Digest::of(b"other").to_string();
+    let out = paddock(&["verify", a, "--pin", &wrong], None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stdout).contains(&format!("the artifact is {digest}, which is not pinned (pinned: {wrong})")), "{}", text(&out.stdout));
 }

@@ -1,14 +1,21 @@
 //! What several subcommands share: limit flags, loading a model, printing.
 
-use std::path::Path;
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig};
+use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, Signature, TrustPolicy, Vouch};
 
-/// Flags that set a model's limits; defaults are the library's.
+/// Flags that say how to load a model: its limits (defaults are the
+/// library's) and what must vouch for the artifact.
 #[derive(clap::Args, Clone, Debug)]
-pub struct LimitArgs {
+pub struct LoadArgs {
+    /// Require a valid signature (ARTIFACT.sig) by a key in this directory of `.pub` files.
+    #[arg(long, value_name = "DIR")]
+    pub trust: Option<PathBuf>,
+    /// Accept an artifact with this digest (`sha256:…`) without a signature; repeatable.
+    #[arg(long, value_name = "DIGEST")]
+    pub pin: Vec<String>,
     /// Wall-clock deadline per call, in milliseconds [default: 50].
     #[arg(long, value_name = "MS")]
     pub deadline_ms: Option<u64>,
@@ -26,7 +33,7 @@ pub struct LimitArgs {
     pub fresh: bool,
 }
 
-impl LimitArgs {
+impl LoadArgs {
     /// The model options these flags describe.
     pub fn options(&self) -> ModelOptions {
         let mut limits = Limits::default();
@@ -49,11 +56,35 @@ impl LimitArgs {
         Ok(Runtime::with_config(RuntimeConfig { fuel: self.fuel.is_some(), ..RuntimeConfig::default() })?)
     }
 
-    /// Reads and loads an artifact under these limits.
+    /// The trust policy these flags describe: nothing required unless
+    /// `--trust` or `--pin` is given.
+    pub fn policy(&self) -> Result<TrustPolicy> {
+        let mut policy = TrustPolicy::default();
+        if let Some(dir) = &self.trust {
+            policy = policy.trust_dir(dir)?;
+        }
+        for pin in &self.pin {
+            policy.pinned.push(pin.parse().map_err(anyhow::Error::msg).with_context(|| format!("--pin {pin}"))?);
+            policy.required = true;
+        }
+        Ok(policy)
+    }
+
+    /// Checks an artifact against the trust policy, reading its signature
+    /// from ARTIFACT.sig when that file exists.
+    pub fn vouch(&self, path: &Path, artifact: &Artifact) -> Result<Vouch> {
+        let sig_path = Signature::path_for(path);
+        let signature = if sig_path.exists() { Some(Signature::read(&sig_path)?) } else { None };
+        Ok(self.policy()?.check(artifact.digest(), signature.as_ref()).with_context(|| format!("refusing {}", path.display()))?)
+    }
+
+    /// Reads an artifact, checks it against the trust policy, and loads it
+    /// under these limits.
     pub fn load(&self, path: &Path) -> Result<(Runtime, Model)> {
         let runtime = self.runtime()?;
         let options = self.options();
         let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
+        self.vouch(path, &artifact)?;
         let model = Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
         Ok((runtime, model))
     }

@@ -25,6 +25,9 @@ enum Command {
     Score(cmd::score::Args),
     Check(cmd::check::Args),
     Demo(cmd::demo::Args),
+    Keygen(cmd::keygen::Args),
+    Sign(cmd::sign::Args),
+    Verify(cmd::verify::Args),
 }
 
 /// What a command reports back to `main`.
@@ -45,6 +48,9 @@ fn main() -> ExitCode {
         Command::Score(a) => cmd::score::run(a),
         Command::Check(a) => cmd::check::run(a),
         Command::Demo(a) => cmd::demo::run(a),
+        Command::Keygen(a) => cmd::keygen::run(a),
+        Command::Sign(a) => cmd::sign::run(a),
+        Command::Verify(a) => cmd::verify::run(a),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

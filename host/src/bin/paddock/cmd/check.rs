@@ -7,7 +7,7 @@ use paddock_host::checks::{self, CaseFailure};
 use paddock_host::Checks;
 
 use crate::Outcome;
-use crate::common::{LimitArgs, print_json};
+use crate::common::{LoadArgs, print_json};
 
 /// Run the checks an artifact carries (or a given checks file) and report
 /// the largest errors. Exits 1 when any case fails.
@@ -22,7 +22,7 @@ pub struct Args {
     #[arg(long)]
     json: bool,
     #[command(flatten)]
-    limits: LimitArgs,
+    limits: LoadArgs,
 }
 
 /// Loads the model, runs the checks, prints the report.

@@ -8,7 +8,7 @@ use paddock_host::{Contract, Digest};
 use serde::Serialize;
 
 use crate::Outcome;
-use crate::common::{LimitArgs, print_json, table};
+use crate::common::{LoadArgs, print_json, table};
 
 /// Show an artifact's digest, size, sections, imports, exports and (when it
 /// loads) its contract.
@@ -20,7 +20,7 @@ pub struct Args {
     #[arg(long)]
     json: bool,
     #[command(flatten)]
-    limits: LimitArgs,
+    limits: LoadArgs,
 }
 
 #[derive(Serialize)]

@@ -3,5 +3,8 @@
 pub mod check;
 pub mod demo;
 pub mod inspect;
+pub mod keygen;
 pub mod pack;
 pub mod score;
+pub mod sign;
+pub mod verify;

@@ -7,7 +7,7 @@ use paddock_host::{Artifact, Checks, checks};
 use serde::Serialize;
 
 use crate::Outcome;
-use crate::common::{LimitArgs, print_json};
+use crate::common::{LoadArgs, print_json};
 
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
@@ -32,7 +32,7 @@ pub struct Args {
     #[arg(long)]
     json: bool,
     #[command(flatten)]
-    limits: LimitArgs,
+    limits: LoadArgs,
 }
 
 #[derive(Serialize)]

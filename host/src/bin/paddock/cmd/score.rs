@@ -10,7 +10,7 @@ use paddock_host::table::{self, Format, Record};
 use paddock_host::{Model, ScoreError};
 
 use crate::Outcome;
-use crate::common::LimitArgs;
+use crate::common::LoadArgs;
 
 #[derive(clap::ValueEnum, Clone, Copy, Debug)]
 enum FormatArg {
@@ -55,7 +55,7 @@ pub struct Args {
     #[arg(long)]
     json: bool,
     #[command(flatten)]
-    limits: LimitArgs,
+    limits: LoadArgs,
 }
 
 /// One output line.
