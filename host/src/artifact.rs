@@ -289,6 +289,12 @@ struct Shape {
     type_names: Vec<String>,
     /// Top-level custom sections: name and range of their contents.
     custom: Vec<(String, Range<usize>)>,
+    /// Linear memories declared by the core modules inside.
+    memories: Vec<Limit>,
+    /// Tables declared by the core modules inside.
+    tables: Vec<Limit>,
+    /// Data segments in the core modules inside, and their total bytes.
+    data: (usize, usize),
 }
 
 impl Shape {
@@ -301,7 +307,16 @@ impl Shape {
             message: e.message().to_owned(),
         };
         let mut shape =
-            Shape { encoding: Encoding::Component, imports: vec![], exports: vec![], type_names: vec![], custom: vec![] };
+            Shape {
+            encoding: Encoding::Component,
+            imports: vec![],
+            exports: vec![],
+            type_names: vec![],
+            custom: vec![],
+            memories: vec![],
+            tables: vec![],
+            data: (0, 0),
+        };
         // Nesting depth: payloads of nested modules and components come
         // inline; only depth 0 is the artifact's own surface.
         let mut depth = 0usize;
@@ -310,6 +325,24 @@ impl Shape {
                 Payload::Version { encoding, .. } if depth == 0 => shape.encoding = encoding,
                 Payload::ModuleSection { .. } | Payload::ComponentSection { .. } => depth += 1,
                 Payload::End(_) => depth = depth.saturating_sub(1),
+                Payload::MemorySection(reader) => {
+                    for m in reader {
+                        let m = m.map_err(malformed)?;
+                        shape.memories.push(Limit { initial: m.initial, maximum: m.maximum, unit: "pages of 64 KiB" });
+                    }
+                }
+                Payload::TableSection(reader) => {
+                    for t in reader {
+                        let t = t.map_err(malformed)?.ty;
+                        shape.tables.push(Limit { initial: t.initial, maximum: t.maximum, unit: "elements" });
+                    }
+                }
+                Payload::DataSection(reader) => {
+                    for d in reader {
+                        shape.data.0 += 1;
+                        shape.data.1 += d.map_err(malformed)?.data.len();
+                    }
+                }
                 _ if depth > 0 => {}
                 Payload::ComponentImportSection(reader) => {
                     for import in reader {
@@ -351,6 +384,17 @@ impl Shape {
     }
 }
 
+/// A declared memory or table size: initial and optional maximum.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct Limit {
+    /// Size at instantiation.
+    pub initial: u64,
+    /// Largest size the module declares, if any (the host's caps apply too).
+    pub maximum: Option<u64>,
+    /// What the numbers count.
+    pub unit: &'static str,
+}
+
 /// What [`inspect_bytes`] reports about any WebAssembly binary.
 #[derive(Clone, Debug, Serialize)]
 pub struct Surface {
@@ -365,6 +409,14 @@ pub struct Surface {
     pub exports: Vec<String>,
     /// Top-level custom sections.
     pub sections: Vec<SectionInfo>,
+    /// Linear memories the core modules inside declare.
+    pub memories: Vec<Limit>,
+    /// Tables the core modules inside declare.
+    pub tables: Vec<Limit>,
+    /// Data segments in the core modules inside.
+    pub data_segments: usize,
+    /// Bytes of data those segments carry.
+    pub data_bytes: usize,
 }
 
 /// Reads the surface of any WebAssembly binary, component or core module,
@@ -387,6 +439,10 @@ pub fn inspect_bytes(bytes: &[u8]) -> Result<Surface, ArtifactError> {
             .iter()
             .map(|(name, range)| SectionInfo { name: name.clone(), bytes: range.len() })
             .collect(),
+        memories: shape.memories,
+        tables: shape.tables,
+        data_segments: shape.data.0,
+        data_bytes: shape.data.1,
     })
 }
 

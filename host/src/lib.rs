@@ -41,6 +41,7 @@
 #![deny(missing_docs)]
 
 pub mod artifact;
+pub mod audit;
 mod bindings;
 pub mod checks;
 pub mod contract;

@@ -217,3 +217,74 @@ fn keygen_sign_and_verify_follow_the_policy() {
     assert_eq!(out.status.code(), Some(1));
     assert!(text(&out.stdout).contains(&format!("the artifact is {digest}, which is not pinned (pinned: {wrong})")), "{}", text(&out.stdout));
 }
+
+#[test]
+fn audit_passes_the_example_models_and_reports_the_limits_and_probe() {
+    for name in ["charge-minutes", "overstay-risk"] {
+        let a = artifact_path(name);
+        let out = paddock(&["audit", a.to_str().unwrap()], None);
+        let s = text(&out.stdout);
+        assert!(out.status.success(), "{s}");
+        assert!(s.contains("imports      none"), "{s}");
+        assert!(s.contains("deadline     50ms per call"), "{s}");
+        assert!(s.contains("40/40 checks passed"), "{s}");
+        assert!(s.contains("verdict: passes"), "{s}");
+        let out = paddock(&["audit", a.to_str().unwrap(), "--json"], None);
+        let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+        assert!(v["probe"]["fuel_per_row"].as_f64().unwrap() > 0.0, "{v}");
+        assert!(v["probe"]["peak_memory_bytes"].as_u64().unwrap() > 0, "{v}");
+        assert_eq!(v["surface"]["memories"].as_array().unwrap().len(), 1, "{v}");
+        assert_eq!(v["violations"].as_array().unwrap().len(), 0);
+    }
+}
+
+#[test]
+fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
+    let dir = tmp("audit");
+    std::fs::create_dir_all(&dir).unwrap();
+    let checks = dir.join("affine.checks.json");
+    std::fs::write(
+        &checks,
+        r#"{"source": "by hand: y = 2x + 1", "tolerance": {"abs": 0, "rel": 0}, "cases": [{"row": {"x": 1}, "expect": {"y": 3}}]}"#,
+    )
+    .unwrap();
+    let fixture = root().join("tests/fixtures/affine.wat");
+    let pack = |mode: u8, out: &str| {
+        let params = dir.join(format!("mode{mode}.params"));
+        std::fs::write(&params, [mode]).unwrap();
+        let out_path = dir.join(out);
+        let status = paddock(
+            &["pack", fixture.to_str().unwrap(), "--params", params.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap(), "--no-verify"],
+            None,
+        );
+        assert!(status.status.success(), "{}", text(&status.stderr));
+        out_path
+    };
+    let audit = |path: &Path, extra: &[&str]| {
+        let out = paddock(&[&["audit", path.to_str().unwrap()][..], extra].concat(), None);
+        assert_eq!(out.status.code(), Some(1), "{}", text(&out.stdout));
+        text(&out.stdout)
+    };
+
+    let healthy = pack(0, "affine.wasm");
+    let ok = paddock(&["audit", healthy.to_str().unwrap()], None);
+    assert!(ok.status.success(), "{}", text(&ok.stdout));
+
+    let spinner = pack(1, "spinner.wasm");
+    assert!(audit(&spinner, &["--deadline-ms", "20"]).contains("its checks do not run: deadline of 20ms exceeded"));
+
+    let nan = pack(4, "nan.wasm");
+    assert!(audit(&nan, &[]).contains("its checks do not run: model fault: row 0, output `y` = NaN: not a finite number"));
+
+    let importer = dir.join("importer.wasm");
+    let wat = root().join("tests/hostile/import-made-up-host-function.wat");
+    let out = paddock(&["pack", wat.to_str().unwrap(), "--out", importer.to_str().unwrap(), "--no-verify"], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let s = audit(&importer, &[]);
+    assert!(s.contains("imports      phone-home, read-secrets") && s.contains("- imports `phone-home`"), "{s}");
+
+    let keys = dir.join("keys");
+    assert!(paddock(&["keygen", "--dir", keys.to_str().unwrap(), "--name", "reviewer"], None).status.success());
+    let s = audit(&healthy, &["--trust", keys.to_str().unwrap()]);
+    assert!(s.contains("is not signed, and the policy requires a signature"), "{s}");
+}

@@ -1,5 +1,6 @@
 //! One file per subcommand: its arguments, and a `run` that calls the library.
 
+pub mod audit;
 pub mod check;
 pub mod demo;
 pub mod inspect;

@@ -1,0 +1,228 @@
+//! The reviewer's report on one artifact: what it is, who vouches for it,
+//! what it can touch, which limits bind it, and how it behaves when run
+//! under those limits on its own checks.
+//!
+//! [`audit`] never fails: every problem becomes a line in
+//! [`AuditReport::violations`], so one report shows all of them.
+
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+
+use crate::artifact::{Artifact, Digest, Surface, inspect_bytes};
+use crate::checks;
+use crate::contract::Contract;
+use crate::limits::{Limits, fmt_duration};
+use crate::model::{Model, ModelOptions};
+use crate::sandbox::{Runtime, RuntimeConfig};
+use crate::trust::{Signature, TrustPolicy, Vouch};
+
+/// The wasmtime release this host is built on (keep in step with Cargo.toml).
+pub const WASMTIME_VERSION: &str = "48.0.8";
+
+/// Who vouches for the artifact.
+#[derive(Clone, Debug, Serialize)]
+pub struct TrustFinding {
+    /// `signed`, `pinned`, `unvouched` (no policy) or `refused`.
+    pub status: &'static str,
+    /// The key that signed, when a signature was present.
+    pub signer: Option<String>,
+    /// Why the policy refused it.
+    pub error: Option<String>,
+}
+
+/// What running the artifact's own checks under its limits showed.
+#[derive(Clone, Debug, Serialize)]
+pub struct Probe {
+    /// Cases run.
+    pub cases: usize,
+    /// Cases that passed.
+    pub passed: usize,
+    /// Largest absolute error over the cases.
+    pub max_abs_error: f64,
+    /// Largest linear memory the instance reached, in bytes.
+    pub peak_memory_bytes: u64,
+    /// Fuel (instructions) per row, scoring all cases in one call.
+    pub fuel_per_row: f64,
+    /// Wall time per row, scoring all cases in one call, in µs.
+    pub micros_per_row: f64,
+}
+
+/// The engine settings that bind every model, as a reviewer reads them.
+#[derive(Clone, Debug, Serialize)]
+pub struct EngineFacts {
+    /// wasmtime release.
+    pub wasmtime: &'static str,
+    /// Stack limit, bytes.
+    pub stack_bytes: usize,
+    /// Whether NaNs are canonicalized.
+    pub canonical_nans: bool,
+    /// How the deadline is enforced.
+    pub interruption: String,
+    /// What the model may import.
+    pub imports_allowed: &'static str,
+}
+
+/// The audit of one artifact.
+#[derive(Clone, Debug, Serialize)]
+pub struct AuditReport {
+    /// The file.
+    pub path: PathBuf,
+    /// Its sha256, when it could be read.
+    pub digest: Option<Digest>,
+    /// Its size in bytes.
+    pub bytes: u64,
+    /// Who vouches for it.
+    pub trust: TrustFinding,
+    /// Imports, exports, memories, tables, data and custom sections.
+    pub surface: Option<Surface>,
+    /// The declared contract, when it loads.
+    pub contract: Option<Contract>,
+    /// The limits that will bind each call.
+    pub limits: Limits,
+    /// The engine settings.
+    pub engine: EngineFacts,
+    /// Its checks, run under those limits.
+    pub probe: Option<Probe>,
+    /// Everything that breaks the policy; empty means the artifact passes.
+    pub violations: Vec<String>,
+}
+
+impl AuditReport {
+    /// Whether the artifact passes: no violations.
+    pub fn passed(&self) -> bool {
+        self.violations.is_empty()
+    }
+}
+
+/// Audits an artifact file under the given load options and trust policy.
+/// Reads `ARTIFACT.sig` when it exists.
+pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> AuditReport {
+    let config = RuntimeConfig { fuel: true, ..RuntimeConfig::default() };
+    let mut report = AuditReport {
+        path: path.to_owned(),
+        digest: None,
+        bytes: 0,
+        trust: TrustFinding { status: "refused", signer: None, error: None },
+        surface: None,
+        contract: None,
+        limits: options.limits.clone(),
+        engine: EngineFacts {
+            wasmtime: WASMTIME_VERSION,
+            stack_bytes: config.stack_bytes,
+            canonical_nans: config.canonical_nans,
+            interruption: format!("epoch, {} tick", fmt_duration(crate::sandbox::TICK)),
+            imports_allowed: "none",
+        },
+        probe: None,
+        violations: Vec::new(),
+    };
+    let artifact = match Artifact::read(path, options.limits.artifact_bytes) {
+        Ok(a) => a,
+        Err(e) => {
+            report.violations.push(e.to_string());
+            return report;
+        }
+    };
+    report.digest = Some(artifact.digest());
+    report.bytes = artifact.bytes().len() as u64;
+    report.surface = inspect_bytes(artifact.bytes()).ok();
+    for import in artifact.imports() {
+        report.violations.push(format!("imports `{import}`"));
+    }
+    trust(&mut report, path, &artifact, policy);
+
+    let runtime = match Runtime::with_config(config) {
+        Ok(r) => r,
+        Err(e) => {
+            report.violations.push(e.to_string());
+            return report;
+        }
+    };
+    let model = match Model::load_with(&runtime, artifact, options.clone()) {
+        Ok(m) => m,
+        Err(e) => {
+            if !matches!(e, crate::model::LoadError::Imports(_)) {
+                report.violations.push(format!("does not load: {e}"));
+            }
+            return report;
+        }
+    };
+    report.contract = Some(model.contract().clone());
+    probe(&mut report, &model);
+    report
+}
+
+fn trust(report: &mut AuditReport, path: &Path, artifact: &Artifact, policy: &TrustPolicy) {
+    let sig_path = Signature::path_for(path);
+    let signature = if sig_path.exists() {
+        match Signature::read(&sig_path) {
+            Ok(s) => Some(s),
+            Err(e) => {
+                report.trust.error = Some(e.to_string());
+                report.violations.push(e.to_string());
+                return;
+            }
+        }
+    } else {
+        None
+    };
+    report.trust.signer = signature.as_ref().map(|s| s.key_id.clone());
+    match policy.check(artifact.digest(), signature.as_ref()) {
+        Ok(Vouch::Signature { .. }) => report.trust.status = "signed",
+        Ok(Vouch::Pin) => report.trust.status = "pinned",
+        Ok(Vouch::Nobody) => report.trust.status = "unvouched",
+        Err(e) => {
+            report.trust.error = Some(e.to_string());
+            report.violations.push(e.to_string());
+        }
+    }
+}
+
+fn probe(report: &mut AuditReport, model: &Model) {
+    let carried = match model.artifact().checks() {
+        Ok(Some(c)) => c,
+        Ok(None) => {
+            report.violations.push("carries no checks: nothing shows it computes what its training computed".into());
+            return;
+        }
+        Err(e) => {
+            report.violations.push(e.to_string());
+            return;
+        }
+    };
+    let result = match checks::run(model, &carried) {
+        Ok(r) => r,
+        Err(e) => {
+            report.violations.push(format!("its checks do not run: {e}"));
+            return;
+        }
+    };
+    if !result.ok() {
+        report.violations.push(format!("{} of {} checks fail", result.cases - result.passed, result.cases));
+    }
+    // Cost: every valid case row in one call.
+    let schema = model.schema();
+    let mut cells = Vec::new();
+    let rows = carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i, &c.row, &mut cells).is_ok()).count();
+    let (mut fuel, mut micros, mut peak) = (0.0, 0.0, 0);
+    if rows > 0 {
+        match model.score_cells(rows, &cells) {
+            Ok(e) => {
+                let u = e.usage();
+                fuel = u.fuel.unwrap_or(0) as f64 / rows as f64;
+                micros = u.wall.as_secs_f64() * 1e6 / rows as f64;
+                peak = u.peak_memory_bytes;
+            }
+            Err(e) => report.violations.push(format!("scoring its checks in one call fails: {e}")),
+        }
+    }
+    report.probe = Some(Probe {
+        cases: result.cases,
+        passed: result.passed,
+        max_abs_error: result.max_abs_error,
+        peak_memory_bytes: peak,
+        fuel_per_row: fuel,
+        micros_per_row: micros,
+    });
+}
