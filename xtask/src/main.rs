@@ -7,6 +7,9 @@
 //! - `demo`: `build`, then `paddock demo` on those artifacts.
 //! - `test`: `build`, then every test in the workspace (benchmarks run
 //!   once each, as tests), then every example.
+//! - `fuzz [SECONDS]`: `build`, installs cargo-fuzz if missing, then runs
+//!   each fuzz target in `fuzz/` for SECONDS (default 30), seeded with the
+//!   demo artifacts and sample rows. Any crash fails the task.
 //!
 //! Anything after the task name is passed on to the command it ends with.
 
@@ -52,8 +55,13 @@ fn main() -> Result<()> {
             }
             Ok(())
         }
+        "fuzz" => {
+            build(&root)?;
+            let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
+            fuzz(&root, seconds)
+        }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|test> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|test|fuzz> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
@@ -129,6 +137,38 @@ fn build(root: &Path) -> Result<()> {
         pack.arg("--checks").arg(train.join(format!("{model}.checks.json")));
         pack.arg("--out").arg(artifacts.join(format!("{model}.wasm")));
         run(pack)?;
+    }
+    Ok(())
+}
+
+/// Runs every fuzz target for a bounded time, from seeds.
+fn fuzz(root: &Path, seconds: u64) -> Result<()> {
+    let have = Command::new("cargo").args(["fuzz", "--version"]).output().is_ok_and(|o| o.status.success());
+    if !have {
+        eprintln!("xtask: installing cargo-fuzz");
+        let mut c = Command::new("cargo");
+        c.args(["install", "cargo-fuzz", "--locked"]);
+        run(c)?;
+    }
+    let seeds = root.join("target/paddock/fuzz-seeds");
+    let artifact_seeds = seeds.join("artifact");
+    let row_seeds = seeds.join("rows");
+    for dir in [&artifact_seeds, &row_seeds] {
+        std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    }
+    for model in ["charge-minutes", "overstay-risk"] {
+        let from = root.join(format!("target/paddock/artifacts/{model}.wasm"));
+        std::fs::copy(&from, artifact_seeds.join(format!("{model}.wasm"))).with_context(|| format!("copying {}", from.display()))?;
+    }
+    std::fs::write(row_seeds.join("ndjson"), "{\"kw\": 11, \"hour\": 3, \"plug\": \"ccs2\", \"fleet\": true, \"id\": \"a\"}\n")?;
+    std::fs::write(row_seeds.join("csv"), "id,kw,hour,plug,fleet\na,11,3,ccs2,yes\nb,,x,,\n")?;
+    for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds)] {
+        let mut c = cargo(&root.join("fuzz"));
+        // cargo-fuzz passes nightly-only flags; this toolchain is stable.
+        c.env("RUSTC_BOOTSTRAP", "1");
+        c.args(["fuzz", "run", "-O", target]).arg(seed);
+        c.args(["--", &format!("-max_total_time={seconds}"), "-max_len=262144", "-print_final_stats=1"]);
+        run(c)?;
     }
     Ok(())
 }
