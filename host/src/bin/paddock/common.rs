@@ -6,6 +6,19 @@ use std::time::Duration;
 use anyhow::{Context, Result};
 use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, Signature, TrustPolicy, Vouch};
 
+/// What every command about one artifact takes: the file, `--json`, and
+/// how to load it.
+#[derive(clap::Args, Clone, Debug)]
+pub struct ArtifactArgs {
+    /// The artifact (its signature is read from ARTIFACT.sig if present).
+    pub artifact: PathBuf,
+    /// Print the result as JSON.
+    #[arg(long)]
+    pub json: bool,
+    #[command(flatten)]
+    pub load: LoadArgs,
+}
+
 /// Flags that say how to load a model: its limits (defaults are the
 /// library's) and what must vouch for the artifact.
 #[derive(clap::Args, Clone, Debug)]
@@ -123,5 +136,33 @@ pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
     for row in rows {
         out.push_str(&line(row.iter().map(String::as_str).collect()));
     }
+    out
+}
+
+/// A contract as text: name and version, what it is for, then its
+/// features and outputs as tables.
+pub fn contract_text(c: &paddock_host::Contract) -> String {
+    let mut out = format!("{} {}\n", c.name, c.version);
+    if !c.about.is_empty() {
+        out.push_str(&format!("{}\n", c.about));
+    }
+    let opt = |u: &Option<String>| u.clone().unwrap_or_default();
+    let features: Vec<Vec<String>> = c
+        .features
+        .iter()
+        .enumerate()
+        .map(|(i, f)| {
+            let req = if f.required { "yes" } else { "no" };
+            vec![i.to_string(), f.name.clone(), f.domain.to_string(), opt(&f.unit), req.into(), f.about.clone()]
+        })
+        .collect();
+    out.push_str(&format!("\nfeatures\n{}", table(&["#", "name", "domain", "unit", "required", "about"], &features)));
+    let outputs: Vec<Vec<String>> = c
+        .outputs
+        .iter()
+        .enumerate()
+        .map(|(i, o)| vec![i.to_string(), o.name.clone(), o.bounds.to_string(), opt(&o.unit), o.about.clone()])
+        .collect();
+    out.push_str(&format!("\noutputs\n{}", table(&["#", "name", "bounds", "unit", "about"], &outputs)));
     out
 }

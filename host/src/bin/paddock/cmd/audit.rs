@@ -1,30 +1,24 @@
 //! `paddock audit`: the security reviewer's report on one artifact.
 
-use std::path::PathBuf;
-
 use anyhow::Result;
 use paddock_host::audit::{AuditReport, audit};
 use paddock_host::limits::fmt_duration;
 
 use crate::Outcome;
-use crate::common::{LoadArgs, print_json};
+use crate::common::{ArtifactArgs, contract_text, print_json};
 
 /// Report what an artifact is, who vouches for it, what it can touch, which
 /// limits bind it, and how it behaves on its own checks under those limits.
 /// Exits 1 when anything breaks the policy.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The artifact (its signature is read from ARTIFACT.sig if present).
-    artifact: PathBuf,
-    /// Print the report as JSON.
-    #[arg(long)]
-    json: bool,
     #[command(flatten)]
-    load: LoadArgs,
+    target: ArtifactArgs,
 }
 
 /// Audits and prints; exit code follows the verdict.
 pub fn run(args: Args) -> Result<Outcome> {
+    let args = args.target;
     let report = audit(&args.artifact, &args.load.options(), &args.load.policy()?);
     if args.json {
         print_json(&report)?;
@@ -74,6 +68,9 @@ fn text(r: &AuditReport) -> String {
             "{}/{} checks passed (max abs error {:e}); peak memory {} bytes; {:.0} fuel and {:.2} µs per row",
             p.passed, p.cases, p.max_abs_error, p.peak_memory_bytes, p.fuel_per_row, p.micros_per_row
         ));
+    }
+    if let Some(c) = &r.contract {
+        out.push_str(&format!("\ncontract: {}\n", contract_text(c)));
     }
     if r.violations.is_empty() {
         out.push_str("verdict: passes\n");

@@ -8,19 +8,14 @@ use paddock_host::{Contract, Digest};
 use serde::Serialize;
 
 use crate::Outcome;
-use crate::common::{LoadArgs, print_json, table};
+use crate::common::{ArtifactArgs, contract_text, print_json};
 
 /// Show an artifact's digest, size, sections, imports, exports and (when it
 /// loads) its contract.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The artifact (or any WebAssembly file).
-    artifact: PathBuf,
-    /// Print as JSON.
-    #[arg(long)]
-    json: bool,
     #[command(flatten)]
-    limits: LoadArgs,
+    target: ArtifactArgs,
 }
 
 #[derive(Serialize)]
@@ -36,9 +31,10 @@ struct Report {
 
 /// Reads the file, tries to load it, prints what it found.
 pub fn run(args: Args) -> Result<Outcome> {
+    let args = args.target;
     let bytes = std::fs::read(&args.artifact).with_context(|| format!("reading {}", args.artifact.display()))?;
     let surface = inspect_bytes(&bytes).with_context(|| format!("in {}", args.artifact.display()))?;
-    let (contract, load_error) = match args.limits.load(&args.artifact) {
+    let (contract, load_error) = match args.load.load(&args.artifact) {
         Ok((_, model)) => (Some(model.contract().clone()), None),
         Err(e) => (None, Some(format!("{e:#}"))),
     };
@@ -64,28 +60,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         return Ok(Outcome::Failed);
     }
     if let Some(c) = &report.contract {
-        println!("\n{} {}", c.name, c.version);
-        if !c.about.is_empty() {
-            println!("{}", c.about);
-        }
-        let opt = |u: &Option<String>| u.clone().unwrap_or_default();
-        let features: Vec<Vec<String>> = c
-            .features
-            .iter()
-            .enumerate()
-            .map(|(i, f)| {
-                let req = if f.required { "yes" } else { "no" };
-                vec![i.to_string(), f.name.clone(), f.domain.to_string(), opt(&f.unit), req.into(), f.about.clone()]
-            })
-            .collect();
-        println!("\nfeatures\n{}", table(&["#", "name", "domain", "unit", "required", "about"], &features));
-        let outputs: Vec<Vec<String>> = c
-            .outputs
-            .iter()
-            .enumerate()
-            .map(|(i, o)| vec![i.to_string(), o.name.clone(), o.bounds.to_string(), opt(&o.unit), o.about.clone()])
-            .collect();
-        println!("outputs\n{}", table(&["#", "name", "bounds", "unit", "about"], &outputs));
+        print!("\n{}", contract_text(c));
     }
     Ok(Outcome::Ok)
 }

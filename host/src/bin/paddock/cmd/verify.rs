@@ -1,28 +1,22 @@
 //! `paddock verify`: would a host with this policy accept the artifact?
 
-use std::path::PathBuf;
-
 use anyhow::Result;
 use paddock_host::{Artifact, Vouch};
 
 use crate::Outcome;
-use crate::common::{LoadArgs, print_json};
+use crate::common::{ArtifactArgs, print_json};
 
 /// Check an artifact (and ARTIFACT.sig, if present) against a trust policy:
 /// `--trust DIR` of public keys and/or `--pin DIGEST`. Exits 1 when refused.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The artifact.
-    artifact: PathBuf,
-    /// Print the verdict as JSON.
-    #[arg(long)]
-    json: bool,
     #[command(flatten)]
-    load: LoadArgs,
+    target: ArtifactArgs,
 }
 
 /// Applies the policy and reports who vouched.
 pub fn run(args: Args) -> Result<Outcome> {
+    let args = args.target;
     let artifact = Artifact::read(&args.artifact, u64::MAX)?;
     let verdict = args.load.vouch(&args.artifact, &artifact);
     let (ok, text) = match &verdict {
