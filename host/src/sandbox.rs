@@ -28,8 +28,8 @@ pub const TICK: Duration = Duration::from_millis(1);
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct RuntimeConfig {
     /// Meter fuel (WebAssembly instructions) so models can have a fuel
-    /// limit. Costs roughly a tenth to a half of the model's speed; off by
-    /// default.
+    /// limit. Metering slows guest code (wasmtime's own figures put it at
+    /// about twice the cost of the epoch checks); off by default.
     pub fuel: bool,
     /// Pre-reserve instance slots (the pooling allocator): fresh instances
     /// start several times faster. On by default; if the system refuses
