@@ -92,6 +92,18 @@ pub enum CaseFailure {
     },
 }
 
+impl std::fmt::Display for CaseFailure {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            CaseFailure::InvalidRow { error } => write!(f, "invalid row: {error}"),
+            CaseFailure::UnknownOutput { output } => write!(f, "no output named `{output}`"),
+            CaseFailure::Mismatch { output, expected, actual, abs_error, .. } => {
+                write!(f, "{output} = {actual}, expected {expected} (off by {abs_error:e})")
+            }
+        }
+    }
+}
+
 /// The outcome of running checks.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct CheckReport {

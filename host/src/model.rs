@@ -5,9 +5,8 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
-use wasmtime::component::Component;
-
 use crate::artifact::{Artifact, Digest};
+use crate::codecache::{self, CodeCache, CodeSource};
 use crate::bindings::EstimatorPre;
 use crate::contract::{Contract, ContractError, Fault, Schema};
 use crate::limits::{LimitHit, Limits};
@@ -228,6 +227,7 @@ struct Inner {
     pre: EstimatorPre<State>,
     schema: Schema,
     options: ModelOptions,
+    code: CodeSource,
     idle: Pool<Instance>,
 }
 
@@ -264,6 +264,31 @@ impl Model {
     /// `describe()` answers differently, [`LoadError::Options`] for limits
     /// the runtime cannot enforce.
     pub fn load_with(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<Model, LoadError> {
+        Self::load_inner(runtime, artifact, options, None)
+    }
+
+    /// Loads a model as [`Model::load_with`] does, taking its compiled code
+    /// from `cache` when the cache holds a sound entry for it, and writing
+    /// the entry otherwise. [`Model::code_source`] says which happened.
+    ///
+    /// # Errors
+    /// As [`Model::load_with`]; a broken or missing cache entry is never an
+    /// error (the artifact is compiled instead).
+    pub fn load_cached(
+        runtime: &Runtime,
+        artifact: Artifact,
+        options: ModelOptions,
+        cache: &CodeCache,
+    ) -> Result<Model, LoadError> {
+        Self::load_inner(runtime, artifact, options, Some(cache))
+    }
+
+    fn load_inner(
+        runtime: &Runtime,
+        artifact: Artifact,
+        options: ModelOptions,
+        cache: Option<&CodeCache>,
+    ) -> Result<Model, LoadError> {
         let limits = &options.limits;
         let size = artifact.bytes().len() as u64;
         if size > limits.artifact_bytes {
@@ -273,8 +298,11 @@ impl Model {
             return Err(LoadError::Imports(artifact.imports().to_vec()));
         }
         check_options(runtime, limits)?;
-        let component =
-            Component::new(runtime.engine(), artifact.bytes()).map_err(|e| LoadError::Compile(format!("{e:#}")))?;
+        let (component, code) = match cache {
+            Some(cache) => cache.component(runtime, &artifact),
+            None => codecache::compile(runtime, &artifact).map(|c| (c, CodeSource::Compiled)),
+        }
+        .map_err(LoadError::Compile)?;
         let pre = runtime.prepare(&component).map_err(LoadError::World)?;
         let (mut first, contract) =
             Instance::start(runtime, &pre, limits, artifact.params(), true).map_err(LoadError::Start)?;
@@ -295,6 +323,7 @@ impl Model {
                 pre,
                 schema,
                 options,
+                code,
                 idle,
             }),
         })
@@ -318,6 +347,11 @@ impl Model {
     /// The artifact the model was loaded from.
     pub fn artifact(&self) -> &Artifact {
         &self.inner.artifact
+    }
+
+    /// Where the model's compiled code came from.
+    pub fn code_source(&self) -> &CodeSource {
+        &self.inner.code
     }
 
     /// The options the model was loaded with.

@@ -14,7 +14,8 @@ pub(crate) struct Pool<T> {
     slots: Box<[Mutex<Option<T>>]>,
 }
 
-fn home() -> usize {
+/// A small number unique to the calling thread, for spreading threads over slots.
+pub(crate) fn home() -> usize {
     static NEXT: AtomicUsize = AtomicUsize::new(0);
     thread_local!(static HOME: usize = NEXT.fetch_add(1, Ordering::Relaxed));
     HOME.with(|h| *h)

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use paddock_host::checks::{self, CaseFailure};
+use paddock_host::checks;
 use paddock_host::Checks;
 
 use crate::Outcome;
@@ -52,13 +52,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             report.passed, report.cases, report.max_abs_error, report.max_rel_error, report.tolerance.abs, report.tolerance.rel
         );
         for (case, failure) in &report.failures {
-            match failure {
-                CaseFailure::InvalidRow { error } => println!("case {case}: invalid row: {error}"),
-                CaseFailure::UnknownOutput { output } => println!("case {case}: no output named `{output}`"),
-                CaseFailure::Mismatch { output, expected, actual, abs_error, .. } => {
-                    println!("case {case}: {output} = {actual}, expected {expected} (off by {abs_error:e})")
-                }
-            }
+            println!("case {case}: {failure}");
         }
     }
     Ok(if report.ok() { Outcome::Ok } else { Outcome::Failed })

@@ -1,0 +1,232 @@
+//! Compiled code kept on disk, so a restart does not recompile every model.
+//!
+//! An entry is the machine code wasmtime made for one artifact under one
+//! engine configuration. Its file name is a sha256 over the artifact's
+//! digest, the wasmtime version and the engine's compatibility hash (every
+//! setting that changes the code), so a changed artifact, a new wasmtime or
+//! a different [`RuntimeConfig`](crate::RuntimeConfig) simply misses.
+//!
+//! Loading machine code is trusting it: wasmtime cannot check it. So the
+//! cache only ever loads entries it wrote itself, and guards them:
+//! - the directory is created private (0700) and refused if anyone but its
+//!   owner may write to it;
+//! - each entry starts with the sha256 of the code that follows; an entry
+//!   whose checksum does not hold (a torn write, a flipped bit, an edit) is
+//!   deleted and the artifact compiled again;
+//! - entries are written to a temporary file and renamed into place, so a
+//!   reader never sees half an entry.
+//!
+//! What it does not defend against: someone who can write to the cache
+//! directory as the host's own user. Such a user can already replace the
+//! host binary; keep the cache on a path only the host's user can write.
+
+use std::fs;
+use std::hash::{Hash, Hasher};
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use serde::Serialize;
+use sha2::{Digest as _, Sha256};
+use wasmtime::component::Component;
+
+use crate::artifact::Artifact;
+use crate::sandbox::Runtime;
+
+/// Tag mixed into every key: bump it if the entry format changes.
+const FORMAT: &[u8] = b"paddock-code-v1";
+
+/// A directory of compiled models.
+#[derive(Clone, Debug)]
+pub struct CodeCache {
+    dir: PathBuf,
+}
+
+/// Why the cache cannot be used.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum CacheError {
+    /// The directory cannot be created or read.
+    #[error("code cache {path}: {source}")]
+    Io {
+        /// The directory.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// Someone other than its owner may write to the directory.
+    #[error("code cache {path}: others may write to it (mode {mode:o}); it holds machine code, so it must be writable by its owner only")]
+    Unsafe {
+        /// The directory.
+        path: PathBuf,
+        /// Its permission bits.
+        mode: u32,
+    },
+}
+
+/// Where a model's code came from.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+#[serde(tag = "from", rename_all = "snake_case")]
+pub enum CodeSource {
+    /// Compiled now (no cache).
+    Compiled,
+    /// Loaded from a cache entry.
+    Cache,
+    /// Compiled now and written to the cache.
+    CompiledAndCached,
+    /// Compiled now; the cache entry could not be used or written (why).
+    CompiledCacheFailed {
+        /// What went wrong with the entry.
+        reason: String,
+    },
+}
+
+impl CodeCache {
+    /// Opens (creating, private) a cache directory.
+    ///
+    /// # Errors
+    /// [`CacheError::Io`] when it cannot be created or read;
+    /// [`CacheError::Unsafe`] when group or others may write to it.
+    pub fn open(dir: &Path) -> Result<CodeCache, CacheError> {
+        let io = |source| CacheError::Io { path: dir.to_owned(), source };
+        if !dir.exists() {
+            create_private(dir).map_err(io)?;
+        }
+        let meta = fs::metadata(dir).map_err(io)?;
+        if !meta.is_dir() {
+            return Err(io(std::io::Error::new(std::io::ErrorKind::NotADirectory, "not a directory")));
+        }
+        check_private(dir, &meta)?;
+        Ok(CodeCache { dir: dir.to_owned() })
+    }
+
+    /// The directory.
+    pub fn dir(&self) -> &Path {
+        &self.dir
+    }
+
+    /// Where the entry for this artifact under this runtime lives.
+    pub fn entry_path(&self, runtime: &Runtime, artifact: &Artifact) -> PathBuf {
+        let mut key = KeyHasher(Sha256::new());
+        key.0.update(FORMAT);
+        key.0.update(artifact.digest().0);
+        key.0.update(crate::audit::WASMTIME_VERSION.as_bytes());
+        runtime.engine().precompile_compatibility_hash().hash(&mut key);
+        let hex: String = key.0.finalize().iter().map(|b| format!("{b:02x}")).collect();
+        self.dir.join(format!("{hex}.code"))
+    }
+
+    /// The compiled component for an artifact: from its entry if there is a
+    /// sound one, otherwise compiled and written back.
+    ///
+    /// # Errors
+    /// Only when compiling fails (the message wasmtime gave); problems with
+    /// the entry itself are reported in the [`CodeSource`], never fatal.
+    pub fn component(&self, runtime: &Runtime, artifact: &Artifact) -> Result<(Component, CodeSource), String> {
+        let path = self.entry_path(runtime, artifact);
+        let mut trouble = None;
+        match fs::read(&path) {
+            Ok(bytes) => match load(runtime, &bytes) {
+                Ok(component) => return Ok((component, CodeSource::Cache)),
+                Err(reason) => {
+                    let _ = fs::remove_file(&path);
+                    trouble = Some(format!("entry {} dropped: {reason}", path.display()));
+                }
+            },
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
+            Err(e) => trouble = Some(format!("entry {}: {e}", path.display())),
+        }
+        let component = compile(runtime, artifact)?;
+        let source = match store(&path, &component) {
+            Ok(()) => match trouble {
+                None => CodeSource::CompiledAndCached,
+                Some(reason) => CodeSource::CompiledCacheFailed { reason },
+            },
+            Err(e) => CodeSource::CompiledCacheFailed { reason: format!("writing {}: {e}", path.display()) },
+        };
+        Ok((component, source))
+    }
+}
+
+/// Compiles an artifact's component.
+pub(crate) fn compile(runtime: &Runtime, artifact: &Artifact) -> Result<Component, String> {
+    Component::new(runtime.engine(), artifact.bytes()).map_err(|e| format!("{e:#}"))
+}
+
+/// Feeds `Hash` output into sha256, so the key is stable across processes
+/// (std's default hasher is randomly seeded).
+struct KeyHasher(Sha256);
+
+impl Hasher for KeyHasher {
+    fn write(&mut self, bytes: &[u8]) {
+        self.0.update(bytes);
+    }
+    fn finish(&self) -> u64 {
+        0
+    }
+}
+
+fn load(runtime: &Runtime, bytes: &[u8]) -> Result<Component, String> {
+    if bytes.len() < 32 {
+        return Err("shorter than its checksum".into());
+    }
+    let (sum, code) = bytes.split_at(32);
+    if Sha256::digest(code).as_slice() != sum {
+        return Err("checksum does not match its contents".into());
+    }
+    deserialize(runtime, code)
+}
+
+/// The one unsafe call in paddock.
+#[allow(unsafe_code)]
+fn deserialize(runtime: &Runtime, code: &[u8]) -> Result<Component, String> {
+    // SAFETY: wasmtime requires that `code` came from `Component::serialize`
+    // on a compatible engine and was not altered. The bytes come from an
+    // entry this cache wrote (`store`), in a directory only its owner may
+    // write (`check_private`), and their sha256 was checked against the
+    // checksum written with them just now. wasmtime itself refuses code from
+    // another version or configuration.
+    unsafe { Component::deserialize(runtime.engine(), code) }.map_err(|e| format!("{e:#}"))
+}
+
+fn store(path: &Path, component: &Component) -> Result<(), String> {
+    let code = component.serialize().map_err(|e| format!("{e:#}"))?;
+    let sum = Sha256::digest(&code);
+    let tmp = path.with_extension(format!("tmp{}", std::process::id()));
+    let write = || -> std::io::Result<()> {
+        let mut f = fs::File::create(&tmp)?;
+        f.write_all(&sum)?;
+        f.write_all(&code)?;
+        f.sync_all()?;
+        fs::rename(&tmp, path)
+    };
+    write().map_err(|e| {
+        let _ = fs::remove_file(&tmp);
+        e.to_string()
+    })
+}
+
+#[cfg(unix)]
+fn create_private(dir: &Path) -> std::io::Result<()> {
+    use std::os::unix::fs::DirBuilderExt;
+    fs::DirBuilder::new().recursive(true).mode(0o700).create(dir)
+}
+
+#[cfg(not(unix))]
+fn create_private(dir: &Path) -> std::io::Result<()> {
+    fs::create_dir_all(dir)
+}
+
+#[cfg(unix)]
+fn check_private(dir: &Path, meta: &fs::Metadata) -> Result<(), CacheError> {
+    use std::os::unix::fs::PermissionsExt;
+    let mode = meta.permissions().mode() & 0o777;
+    if mode & 0o022 != 0 {
+        return Err(CacheError::Unsafe { path: dir.to_owned(), mode });
+    }
+    Ok(())
+}
+
+#[cfg(not(unix))]
+fn check_private(_dir: &Path, _meta: &fs::Metadata) -> Result<(), CacheError> {
+    Ok(())
+}

@@ -1,0 +1,93 @@
+//! The store directory on disk.
+//!
+//! ```text
+//! store/
+//!   routes.toml                       which version answers which request
+//!   charge-minutes/                   one directory per model, named as its contract
+//!     1.0.0.wasm                      one artifact per version, named by its semver
+//!     1.0.0.wasm.sig                  its detached signature (optional)
+//!     1.1.0.wasm
+//!   overstay-risk/
+//!     2.0.0.wasm
+//!   .paddock/                         state the host writes: code cache, usage ledger
+//! ```
+//!
+//! Entries whose names start with `.` are never read as models. Other files
+//! are ignored, except `*.wasm` files, which must sit one level down and be
+//! named by a semver version.
+
+use std::path::{Path, PathBuf};
+
+use semver::Version;
+
+/// The routes file's name inside a store.
+pub const ROUTES_FILE: &str = "routes.toml";
+
+/// The directory inside a store where the host keeps its state.
+pub const STATE_DIR: &str = ".paddock";
+
+/// One `.wasm` file found in the store.
+#[derive(Clone, Debug)]
+pub(crate) struct Found {
+    /// Its path.
+    pub path: PathBuf,
+    /// Its path relative to the store, for reports.
+    pub rel: PathBuf,
+    /// The model and version its place names, or why it names none.
+    pub identity: Result<(String, Version), String>,
+}
+
+/// Lists every artifact file in the store, sorted by path.
+///
+/// # Errors
+/// The I/O error of the store directory itself; unreadable model
+/// directories become [`Found`] entries with the reason.
+pub(crate) fn scan(store: &Path) -> std::io::Result<Vec<Found>> {
+    let mut found = Vec::new();
+    for entry in std::fs::read_dir(store)? {
+        let Ok(entry) = entry else { continue };
+        let name = entry.file_name().to_string_lossy().into_owned();
+        let path = entry.path();
+        if name.starts_with('.') {
+            continue;
+        }
+        if path.is_dir() {
+            let model = name;
+            let files = match std::fs::read_dir(&path) {
+                Ok(files) => files,
+                Err(e) => {
+                    found.push(Found {
+                        rel: PathBuf::from(&model),
+                        path,
+                        identity: Err(format!("cannot read the model directory: {e}")),
+                    });
+                    continue;
+                }
+            };
+            for file in files.flatten() {
+                let file_name = file.file_name().to_string_lossy().into_owned();
+                let Some(stem) = file_name.strip_suffix(".wasm") else { continue };
+                if file_name.starts_with('.') {
+                    continue;
+                }
+                let identity = Version::parse(stem)
+                    .map(|v| (model.clone(), v))
+                    .map_err(|e| format!("the file name `{file_name}` is not `<semver>.wasm` ({e})"));
+                found.push(Found { path: file.path(), rel: Path::new(&model).join(&file_name), identity });
+            }
+        } else if name.ends_with(".wasm") {
+            found.push(Found {
+                path,
+                rel: PathBuf::from(&name),
+                identity: Err("artifacts go in a directory named after their model: `<model>/<version>.wasm`".into()),
+            });
+        }
+    }
+    found.sort_by(|a, b| a.rel.cmp(&b.rel));
+    Ok(found)
+}
+
+/// The path of a version's artifact inside a store.
+pub fn artifact_path(store: &Path, model: &str, version: &Version) -> PathBuf {
+    store.join(model).join(format!("{version}.wasm"))
+}

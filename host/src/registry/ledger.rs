@@ -1,0 +1,295 @@
+//! The usage ledger: what each model version has cost, since the registry
+//! opened.
+//!
+//! Per model and version: calls, rows, errors by kind, limit hits by limit,
+//! fuel, wall time (a histogram: p50/p90/p99/max), peak memory. Per shadow:
+//! how its answers differed from the served ones. Counting is lock-free
+//! except for the histogram, which is split into shards so threads rarely
+//! meet on a lock.
+
+use std::collections::BTreeMap;
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::time::Duration;
+
+use hdrhistogram::Histogram;
+use semver::Version;
+use serde::{Deserialize, Serialize};
+
+use crate::model::{ScoreError, Usage};
+
+/// Longest wall time the histogram resolves (longer calls count as this).
+const MAX_WALL_NS: u64 = 3_600_000_000_000;
+
+fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
+    m.lock().unwrap_or_else(|e| e.into_inner())
+}
+
+fn histogram() -> Histogram<u64> {
+    Histogram::new_with_bounds(1, MAX_WALL_NS, 2).expect("valid histogram bounds")
+}
+
+/// The counters of one model version.
+#[derive(Debug)]
+pub struct VersionLedger {
+    calls: AtomicU64,
+    rows: AtomicU64,
+    fuel: AtomicU64,
+    fuel_metered: AtomicU64,
+    peak_memory: AtomicU64,
+    errors: Mutex<BTreeMap<&'static str, u64>>,
+    limit_hits: Mutex<BTreeMap<&'static str, u64>>,
+    wall: Box<[Mutex<Histogram<u64>>]>,
+}
+
+impl Default for VersionLedger {
+    fn default() -> Self {
+        let shards = std::thread::available_parallelism().map_or(4, |n| n.get()).clamp(1, 8);
+        VersionLedger {
+            calls: AtomicU64::new(0),
+            rows: AtomicU64::new(0),
+            fuel: AtomicU64::new(0),
+            fuel_metered: AtomicU64::new(0),
+            peak_memory: AtomicU64::new(0),
+            errors: Mutex::default(),
+            limit_hits: Mutex::default(),
+            wall: (0..shards).map(|_| Mutex::new(histogram())).collect(),
+        }
+    }
+}
+
+impl VersionLedger {
+    /// Records a call that produced estimates.
+    pub fn record_ok(&self, usage: &Usage) {
+        self.calls.fetch_add(1, Ordering::Relaxed);
+        self.rows.fetch_add(usage.rows as u64, Ordering::Relaxed);
+        if let Some(f) = usage.fuel {
+            self.fuel.fetch_add(f, Ordering::Relaxed);
+            self.fuel_metered.fetch_add(1, Ordering::Relaxed);
+        }
+        self.peak_memory.fetch_max(usage.peak_memory_bytes, Ordering::Relaxed);
+        self.record_wall(usage.wall);
+    }
+
+    /// Records a call that failed after `wall`.
+    pub fn record_error(&self, rows: usize, error: &ScoreError, wall: Duration) {
+        self.calls.fetch_add(1, Ordering::Relaxed);
+        self.rows.fetch_add(rows as u64, Ordering::Relaxed);
+        *lock(&self.errors).entry(error.kind()).or_default() += 1;
+        if let Some(hit) = error.limit() {
+            *lock(&self.limit_hits).entry(hit.name()).or_default() += 1;
+        }
+        self.record_wall(wall);
+    }
+
+    fn record_wall(&self, wall: Duration) {
+        let ns = (wall.as_nanos() as u64).clamp(1, MAX_WALL_NS);
+        let shard = crate::pool::home() % self.wall.len();
+        let _ = lock(&self.wall[shard]).record(ns);
+    }
+
+    /// The counters now.
+    pub fn snapshot(&self, model: &str, version: &Version) -> VersionUsage {
+        let mut wall = histogram();
+        for shard in &*self.wall {
+            let _ = wall.add(&*lock(shard));
+        }
+        let us = |ns: u64| ns as f64 / 1000.0;
+        let q = |q: f64| if wall.is_empty() { 0.0 } else { us(wall.value_at_quantile(q)) };
+        let metered = self.fuel_metered.load(Ordering::Relaxed) > 0;
+        VersionUsage {
+            model: model.to_owned(),
+            version: version.to_string(),
+            calls: self.calls.load(Ordering::Relaxed),
+            rows: self.rows.load(Ordering::Relaxed),
+            errors: lock(&self.errors).iter().map(|(k, v)| ((*k).to_owned(), *v)).collect(),
+            limit_hits: lock(&self.limit_hits).iter().map(|(k, v)| ((*k).to_owned(), *v)).collect(),
+            fuel: metered.then(|| self.fuel.load(Ordering::Relaxed)),
+            wall_us: Wall {
+                p50: q(0.5),
+                p90: q(0.9),
+                p99: q(0.99),
+                max: if wall.is_empty() { 0.0 } else { us(wall.max()) },
+                mean: if wall.is_empty() { 0.0 } else { wall.mean() / 1000.0 },
+            },
+            peak_memory_bytes: self.peak_memory.load(Ordering::Relaxed),
+        }
+    }
+}
+
+/// Wall-time figures, in microseconds (histogram precision: 2 significant
+/// digits, so within 1 %).
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Wall {
+    /// Median.
+    pub p50: f64,
+    /// 90th percentile.
+    pub p90: f64,
+    /// 99th percentile.
+    pub p99: f64,
+    /// Slowest call.
+    pub max: f64,
+    /// Mean.
+    pub mean: f64,
+}
+
+/// What one model version has cost.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct VersionUsage {
+    /// The model.
+    pub model: String,
+    /// The version.
+    pub version: String,
+    /// Calls, successful or not.
+    pub calls: u64,
+    /// Rows in those calls.
+    pub rows: u64,
+    /// Failed calls by kind ([`ScoreError::kind`]).
+    pub errors: BTreeMap<String, u64>,
+    /// Limit hits by limit ([`crate::LimitHit::name`]).
+    pub limit_hits: BTreeMap<String, u64>,
+    /// Fuel used by successful calls, when the runtime meters fuel.
+    pub fuel: Option<u64>,
+    /// Wall time per call.
+    pub wall_us: Wall,
+    /// Largest linear memory any of its instances reached.
+    pub peak_memory_bytes: u64,
+}
+
+/// How a shadow's answers compared with the served ones.
+#[derive(Debug, Default)]
+pub struct ShadowLedger {
+    inner: Mutex<ShadowUsage>,
+}
+
+/// A shadow's comparison figures.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct ShadowUsage {
+    /// The model.
+    pub model: String,
+    /// The shadow version.
+    pub version: String,
+    /// Requests the shadow scored and compared.
+    pub compared: u64,
+    /// Output values compared (rows × shared outputs).
+    pub values: u64,
+    /// Largest absolute difference seen.
+    pub max_abs_diff: f64,
+    /// Values whose difference was over the tolerance (a NaN on one side
+    /// only counts as over).
+    pub over_tolerance: u64,
+    /// Requests the shadow could not score, by error kind.
+    pub errors: BTreeMap<String, u64>,
+    /// Requests sampled but dropped because the shadow queue was full.
+    pub dropped: u64,
+}
+
+impl ShadowLedger {
+    pub(crate) fn new(model: &str, version: &Version) -> Self {
+        ShadowLedger {
+            inner: Mutex::new(ShadowUsage { model: model.into(), version: version.to_string(), ..Default::default() }),
+        }
+    }
+
+    /// Compares served and shadow values output by output.
+    pub(crate) fn record_diff(&self, pairs: impl Iterator<Item = (f64, f64)>, tolerance: f64) {
+        let mut s = lock(&self.inner);
+        s.compared += 1;
+        for (served, shadow) in pairs {
+            s.values += 1;
+            let diff = (served - shadow).abs();
+            let same_nan = served.is_nan() && shadow.is_nan();
+            if !same_nan {
+                if diff.is_nan() || diff > tolerance {
+                    s.over_tolerance += 1;
+                }
+                if !diff.is_nan() {
+                    s.max_abs_diff = s.max_abs_diff.max(diff);
+                }
+            }
+        }
+    }
+
+    pub(crate) fn record_error(&self, kind: &str) {
+        *lock(&self.inner).errors.entry(kind.to_owned()).or_default() += 1;
+    }
+
+    pub(crate) fn record_dropped(&self) {
+        lock(&self.inner).dropped += 1;
+    }
+
+    /// The figures now.
+    pub fn snapshot(&self) -> ShadowUsage {
+        lock(&self.inner).clone()
+    }
+}
+
+/// Every version's ledger, kept across reloads: a version that is swapped
+/// out and back in keeps counting where it left off.
+#[derive(Debug, Default)]
+pub struct Ledger {
+    versions: Mutex<BTreeMap<(String, Version), Arc<VersionLedger>>>,
+    shadows: Mutex<BTreeMap<(String, Version), Arc<ShadowLedger>>>,
+}
+
+/// The whole ledger at one moment.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct UsageReport {
+    /// Per model version, ordered by model then version.
+    pub versions: Vec<VersionUsage>,
+    /// Per shadow.
+    pub shadows: Vec<ShadowUsage>,
+}
+
+impl Ledger {
+    /// The ledger of one version, created on first use.
+    pub fn version(&self, model: &str, version: &Version) -> Arc<VersionLedger> {
+        lock(&self.versions).entry((model.to_owned(), version.clone())).or_default().clone()
+    }
+
+    /// The ledger of one shadow, created on first use.
+    pub fn shadow(&self, model: &str, version: &Version) -> Arc<ShadowLedger> {
+        lock(&self.shadows)
+            .entry((model.to_owned(), version.clone()))
+            .or_insert_with(|| Arc::new(ShadowLedger::new(model, version)))
+            .clone()
+    }
+
+    /// Every figure now.
+    pub fn report(&self) -> UsageReport {
+        UsageReport {
+            versions: lock(&self.versions).iter().map(|((m, v), l)| l.snapshot(m, v)).collect(),
+            shadows: lock(&self.shadows).values().map(|s| s.snapshot()).collect(),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn percentiles_come_from_the_recorded_calls() {
+        let l = VersionLedger::default();
+        for us in 1..=100u64 {
+            let usage = Usage { rows: 2, wall: Duration::from_micros(us), ..Usage::default() };
+            l.record_ok(&usage);
+        }
+        let s = l.snapshot("m", &Version::new(1, 0, 0));
+        assert_eq!((s.calls, s.rows), (100, 200));
+        // 2 significant digits: within 1 % of the exact order statistic.
+        assert!((s.wall_us.p50 - 50.0).abs() <= 0.5, "{:?}", s.wall_us);
+        assert!((s.wall_us.p99 - 99.0).abs() <= 1.0, "{:?}", s.wall_us);
+        assert!((s.wall_us.max - 100.0).abs() <= 1.0, "{:?}", s.wall_us);
+        assert_eq!(s.fuel, None);
+    }
+
+    #[test]
+    fn shadow_differences_count_nan_on_one_side_as_over() {
+        let s = ShadowLedger::new("m", &Version::new(1, 0, 0));
+        s.record_diff([(1.0, 1.5), (2.0, 2.0), (f64::NAN, 3.0), (f64::NAN, f64::NAN)].into_iter(), 0.25);
+        let u = s.snapshot();
+        assert_eq!((u.compared, u.values, u.over_tolerance), (1, 4, 2));
+        assert_eq!(u.max_abs_diff, 0.5);
+    }
+}
