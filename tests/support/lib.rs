@@ -103,3 +103,45 @@ pub fn hostile_module(case: &str) -> String {
         .collect();
     module.replace(";; @case", &format!("{case}\n{}", kept.join("\n")))
 }
+
+/// Artifact bytes of a one-feature line, `y = slope·x + intercept`, as model
+/// `name` at `version`, packed from the generic linear guest. With `checks`,
+/// it carries checks at x = 0, 1, 2 — recorded honestly, or off by one when
+/// `honest` is false (a version that must fail its own checks).
+pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, checks: Option<bool>) -> Vec<u8> {
+    use paddock_guest::{Bounds, Contract, Feature, LinearParams, Link, Output, Packaged, encode_params};
+    let contract = Contract {
+        name: name.into(),
+        version: version.into(),
+        about: String::new(),
+        features: vec![Feature::real("x", Bounds::OPEN)],
+        outputs: vec![Output::new("y", Bounds::OPEN)],
+    };
+    let params = LinearParams { link: Link::Identity, intercepts: vec![intercept], weights: vec![vec![slope]], impute: vec![] };
+    let blob = encode_params(&Packaged { contract, params });
+    let checks = checks.map(|honest| paddock_host::Checks {
+        source: "y = slope·x + intercept, computed in the test".into(),
+        tolerance: paddock_host::Tolerance { abs: 0.0, rel: 1e-12 },
+        cases: (0..3)
+            .map(|x| {
+                let y = slope * f64::from(x) + intercept + if honest { 0.0 } else { 1.0 };
+                paddock_host::checks::Case {
+                    row: paddock_host::Row::new().with("x", f64::from(x)),
+                    expect: [("y".to_owned(), y)].into_iter().collect(),
+                }
+            })
+            .collect(),
+    });
+    paddock_host::pack(&guest("paddock-model-linear"), Some(&blob), checks.as_ref()).expect("packs")
+}
+
+/// Writes a file by writing a temporary one beside it and renaming it into
+/// place, the way a store should be updated.
+pub fn write_atomically(path: &std::path::Path, bytes: &[u8]) {
+    if let Some(dir) = path.parent() {
+        std::fs::create_dir_all(dir).expect("creates the directory");
+    }
+    let tmp = path.with_extension("partial");
+    std::fs::write(&tmp, bytes).expect("writes");
+    std::fs::rename(&tmp, path).expect("renames");
+}

@@ -1,0 +1,483 @@
+//! The registry: a store of versions, routes, hot swap behind a gate, the
+//! code cache and the usage ledger.
+//!
+//! The models here are lines `y = slope·x + intercept` packed from the
+//! generic linear guest, so every answer says by its value alone which
+//! bytes produced it.
+
+use std::collections::BTreeMap;
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use paddock_host::registry::{ArtifactState, ManualClock, RoutesState, Stage, artifact_path};
+use paddock_host::{
+    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, SecretKey, TrustPolicy,
+};
+use paddock_tests::{line_artifact, write_atomically};
+use semver::Version;
+
+fn put(store: &Path, model: &str, version: &str, bytes: &[u8]) -> Digest {
+    write_atomically(&artifact_path(store, model, &Version::parse(version).unwrap()), bytes);
+    Digest::of(bytes)
+}
+
+fn routes(store: &Path, text: &str) {
+    write_atomically(&store.join("routes.toml"), text.as_bytes());
+}
+
+fn ctx(pairs: &[(&str, &str)]) -> Context {
+    pairs.iter().map(|(k, v)| ((*k).to_owned(), (*v).to_owned())).collect()
+}
+
+fn x(v: f64) -> Vec<Row> {
+    vec![Row::new().with("x", v)]
+}
+
+/// Scores one row; returns (version, route, value).
+fn ask(reg: &Registry, model: &str, context: &Context, at: Option<&str>, xv: f64) -> (String, String, f64) {
+    let rows = x(xv);
+    let at = at.map(|t| t.parse().unwrap());
+    let a = reg.score(&Request { model, context, at, rows: &rows }).unwrap_or_else(|e| panic!("{e}"));
+    (a.version.to_string(), a.reason.route().to_owned(), a.estimates.row(0)[0])
+}
+
+fn open(store: &Path) -> Registry {
+    Registry::open(&Runtime::new().unwrap(), store, RegistryOptions::default()).unwrap()
+}
+
+#[test]
+fn swap_under_load_a_hundred_times_without_a_failed_request() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    // Every byte variant written, by digest: its line, to check each answer.
+    let lines: Arc<Mutex<BTreeMap<Digest, (f64, f64)>>> = Arc::default();
+    let write = |version: &str, slope: f64, intercept: f64| {
+        let d = put(store, "m", version, &line_artifact("m", version, slope, intercept, Some(true)));
+        lines.lock().unwrap().insert(d, (slope, intercept));
+        d
+    };
+    write("1.0.0", 1.0, 0.0);
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+    let reg = open(store);
+
+    // What each generation must answer, for the two contexts the scorers use:
+    // generation → (version for `south`, version for `north`).
+    let expected: Arc<Mutex<BTreeMap<u64, (String, String)>>> = Arc::default();
+    expected.lock().unwrap().insert(reg.generation(), ("1.0.0".into(), "1.0.0".into()));
+    let stop = Arc::new(AtomicBool::new(false));
+    let scorers: Vec<_> = (0..2)
+        .map(|t| {
+            let (reg, stop) = (reg.clone(), stop.clone());
+            std::thread::spawn(move || {
+                let contexts = [ctx(&[("region", "south")]), ctx(&[("region", "north")])];
+                // Kept for checking: every failure, every first answer of a
+                // generation, and one in 16 of the rest (to bound memory).
+                let mut seen = Vec::new();
+                let (mut i, mut last_generation) = (0usize, 0);
+                while !stop.load(Ordering::Relaxed) {
+                    let c = &contexts[(i + t) % 2];
+                    let xv = (i % 7) as f64;
+                    let rows = x(xv);
+                    let a = reg.score(&Request { model: "m", context: c, at: None, rows: &rows });
+                    let keep = a.as_ref().map_or(true, |a| a.generation != last_generation || i % 16 == 0);
+                    if keep {
+                        last_generation = a.as_ref().map_or(last_generation, |a| a.generation);
+                        seen.push(a.map(|a| (a.generation, (i + t) % 2, a.version.to_string(), a.digest, xv, a.estimates.row(0)[0])));
+                    }
+                    i += 1;
+                }
+                (i, seen)
+            })
+        })
+        .collect();
+
+    let mut versions = vec!["1.0.0".to_owned()];
+    let mut north = "1.0.0".to_owned();
+    for step in 1..=100u32 {
+        let default = versions.last().unwrap().clone();
+        match step % 4 {
+            // A new version becomes the default.
+            0 | 1 => {
+                let v = format!("1.{step}.0");
+                write(&v, f64::from(step), 0.0);
+                versions.push(v.clone());
+                routes(store, &format!("[models.m]\ndefault = \"{v}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"));
+            }
+            // The routes change: north moves to the default.
+            2 => {
+                north = default.clone();
+                routes(store, &format!("[models.m]\ndefault = \"{default}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"));
+            }
+            // The default's artifact is replaced by new bytes (same version).
+            _ => {
+                write(&default, f64::from(step), 1.0);
+            }
+        }
+        // Versions nobody routes to any more are deleted.
+        for v in &versions[..versions.len().saturating_sub(1)] {
+            if *v != north {
+                let _ = std::fs::remove_file(artifact_path(store, "m", &Version::parse(v).unwrap()));
+            }
+        }
+        let report = reg.reload().unwrap();
+        assert!(report.changed && report.refused.is_empty(), "step {step}: {report:?}");
+        let south = versions.last().unwrap().clone();
+        expected.lock().unwrap().insert(report.generation, (south, north.clone()));
+        std::thread::sleep(Duration::from_millis(2));
+    }
+    stop.store(true, Ordering::Relaxed);
+
+    let expected = expected.lock().unwrap();
+    let lines = lines.lock().unwrap();
+    let (mut answers, mut checked) = (0, 0);
+    let mut generations = std::collections::BTreeSet::new();
+    for scorer in scorers {
+        let (total, kept) = scorer.join().unwrap();
+        answers += total;
+        for answer in kept {
+            let (generation, which, version, digest, xv, y) = answer.unwrap_or_else(|e| panic!("a request failed: {e}"));
+            let (south, north) = &expected[&generation];
+            let want = if which == 0 { south } else { north };
+            assert_eq!(&version, want, "generation {generation}");
+            let (slope, intercept) = lines[&digest];
+            assert_eq!(y, slope * xv + intercept, "answer from {version} {digest}");
+            checked += 1;
+            generations.insert(generation);
+        }
+    }
+    let status = reg.status();
+    assert!(answers > 1000, "only {answers} answers");
+    // Requests ran across many generations, not just the first and last.
+    assert!(generations.len() > 20, "answers came from {} generations", generations.len());
+    assert!(status.problems().all(|a| a.state == ArtifactState::KeptAfterRemoval), "{status:#?}");
+    eprintln!("{answers} answers ({checked} checked one by one) across {} of 101 generations, zero failures", generations.len());
+}
+
+#[test]
+fn time_windows_follow_the_injected_clock_or_the_requests_own_time() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, None));
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, None));
+    routes(
+        store,
+        "zone = \"Europe/Oslo\"\n[models.m]\ndefault = \"1.0.0\"\n[[models.m.rules]]\nname = \"weekend\"\nversion = \"2.0.0\"\ndays = \"sat-sun\"\n",
+    );
+    // Friday 2026-12-04 22:59 UTC is 23:59 in Oslo (CET, UTC+1).
+    let clock = Arc::new(ManualClock::new("2026-12-04T22:59:00Z".parse().unwrap()));
+    let options = RegistryOptions { clock: clock.clone(), ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    let none = Context::new();
+    assert_eq!(ask(&reg, "m", &none, None, 3.0), ("1.0.0".into(), "default".into(), 3.0));
+    clock.set("2026-12-04T23:00:00Z".parse().unwrap()); // Saturday 00:00 in Oslo
+    assert_eq!(ask(&reg, "m", &none, None, 3.0), ("2.0.0".into(), "weekend".into(), 6.0));
+    // A request's own timestamp wins over the clock: Monday 00:00 in Oslo.
+    assert_eq!(ask(&reg, "m", &none, Some("2026-12-06T23:00:00Z"), 3.0).0, "1.0.0");
+}
+
+#[test]
+fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 2.0, 1.0, None));
+    // The candidate differs by exactly |x|: y = 3x + 1.
+    put(store, "m", "1.1.0-rc.1", &line_artifact("m", "1.1.0-rc.1", 3.0, 1.0, None));
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.m.shadow]\nversion = \"1.1.0-rc.1\"\nsample = 0.5\ntolerance = 10.0\n");
+    let reg = open(store);
+    for i in 0..200 {
+        // x = 0..99, each twice in a row; the sample takes every other request.
+        let (version, _, y) = ask(&reg, "m", &Context::new(), None, f64::from(i / 2));
+        assert_eq!((version.as_str(), y), ("1.0.0", 2.0 * f64::from(i / 2) + 1.0));
+    }
+    assert!(reg.drain_shadows(Duration::from_secs(30)));
+    let usage = reg.usage();
+    let shadow = &usage.shadows[0];
+    assert_eq!((shadow.model.as_str(), shadow.version.as_str()), ("m", "1.1.0-rc.1"));
+    // Exactly half sampled: one request per x in 0..100.
+    assert_eq!((shadow.compared, shadow.values, shadow.dropped), (100, 100, 0), "{shadow:?}");
+    assert_eq!(shadow.max_abs_diff, 99.0);
+    // |x| > 10 for x = 11..=99.
+    assert_eq!(shadow.over_tolerance, 89);
+    // The shadow's own calls are in its ledger; the served version's too.
+    let by_version: BTreeMap<_, _> = usage.versions.iter().map(|v| (v.version.as_str(), v)).collect();
+    assert_eq!((by_version["1.0.0"].calls, by_version["1.1.0-rc.1"].calls), (200, 100));
+}
+
+/// A store serving `m` 1.0.0 (y = x) by default; returns the registry.
+fn serving_one(store: &Path, options: RegistryOptions) -> Registry {
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    reg
+}
+
+fn route_default_to(store: &Path, version: &str) {
+    routes(store, &format!("[models.m]\ndefault = \"{version}\"\n"));
+}
+
+fn refusal_of(reg: &Registry, path: &str) -> (Stage, String) {
+    let status = reg.status();
+    let a = status.artifacts.iter().find(|a| a.path == Path::new(path)).unwrap_or_else(|| panic!("{path} in {status:#?}"));
+    match &a.state {
+        ArtifactState::Refused { refusal } | ArtifactState::KeptAfterRefusal { refusal, .. } => {
+            (refusal.stage, refusal.reason.clone())
+        }
+        other => panic!("{path} was not refused: {other:?}"),
+    }
+}
+
+#[test]
+fn an_artifact_failing_its_checks_is_refused_and_the_old_state_keeps_serving() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(false)));
+    route_default_to(store, "2.0.0");
+    let report = reg.reload().unwrap();
+    assert_eq!(report.refused.len(), 1, "{report:?}");
+    let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
+    assert_eq!(stage, Stage::Checks);
+    assert!(reason.contains("3 of 3 checks failed") && reason.contains("expected 1"), "{reason}");
+    // The routes name a refused version, so they are refused too.
+    let RoutesState::Refused { problems } = reg.status().routes else { panic!("routes accepted") };
+    assert!(problems[0].contains("version 2.0.0 (used by default) is not loaded"), "{problems:?}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+
+    // New bytes for the serving version that fail their checks: the old bytes keep serving.
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 7.0, 0.0, Some(false)));
+    reg.reload().unwrap();
+    let status = reg.status();
+    let a = status.artifacts.iter().find(|a| a.path == Path::new("m/1.0.0.wasm")).unwrap();
+    assert!(matches!(a.state, ArtifactState::KeptAfterRefusal { .. }), "{a:?}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+}
+
+#[test]
+fn a_bad_signature_is_refused_and_the_old_state_keeps_serving() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let trusted = SecretKey::generate().unwrap();
+    let stranger = SecretKey::generate().unwrap();
+    let policy = TrustPolicy { trusted: vec![trusted.public()], pinned: vec![], required: true };
+    let options = RegistryOptions { trust: policy, ..RegistryOptions::default() };
+    let one = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
+    let path = artifact_path(store, "m", &Version::new(1, 0, 0));
+    write_atomically(&paddock_host::Signature::path_for(&path), trusted.sign(Digest::of(&one)).to_json().as_bytes());
+    let reg = serving_one(store, options);
+    assert_eq!(reg.status().artifacts[0].vouch, Some(paddock_host::Vouch::Signature { key_id: trusted.public().id() }));
+
+    // Signed by a key the host does not trust.
+    let two = line_artifact("m", "2.0.0", 2.0, 0.0, Some(true));
+    let d2 = put(store, "m", "2.0.0", &two);
+    let path2 = artifact_path(store, "m", &Version::new(2, 0, 0));
+    write_atomically(&paddock_host::Signature::path_for(&path2), stranger.sign(d2).to_json().as_bytes());
+    // Signed by the trusted key, but over other bytes.
+    let three = line_artifact("m", "3.0.0", 3.0, 0.0, Some(true));
+    put(store, "m", "3.0.0", &three);
+    let path3 = artifact_path(store, "m", &Version::new(3, 0, 0));
+    write_atomically(&paddock_host::Signature::path_for(&path3), trusted.sign(Digest::of(&two)).to_json().as_bytes());
+    route_default_to(store, "2.0.0");
+    reg.reload().unwrap();
+    let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
+    assert_eq!(stage, Stage::Trust);
+    assert!(reason.contains(&stranger.public().id()), "{reason}");
+    let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
+    assert_eq!(stage, Stage::Trust);
+    assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+}
+
+#[test]
+fn a_contract_version_that_differs_from_the_file_name_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    // Claims 1.0.0 inside, sits at 2.0.0.
+    put(store, "m", "2.0.0", &line_artifact("m", "1.0.0", 2.0, 0.0, Some(true)));
+    // Another model's artifact in m's directory.
+    put(store, "m", "3.0.0", &line_artifact("other", "3.0.0", 2.0, 0.0, Some(true)));
+    std::fs::write(store.join("m/latest.wasm"), b"not even wasm").unwrap();
+    route_default_to(store, "2.0.0");
+    reg.reload().unwrap();
+    let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
+    assert_eq!(stage, Stage::Identity);
+    assert!(reason.contains("the contract says m 1.0.0, but the file is at m/2.0.0.wasm"), "{reason}");
+    assert_eq!(refusal_of(&reg, "m/3.0.0.wasm").0, Stage::Identity);
+    let (stage, reason) = refusal_of(&reg, "m/latest.wasm");
+    assert_eq!(stage, Stage::Layout);
+    assert!(reason.contains("`latest.wasm` is not `<semver>.wasm`"), "{reason}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+}
+
+#[test]
+fn a_broken_routes_file_is_refused_whole_and_the_old_routes_keep_serving() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+    // One good change and one bad rule: nothing of it is taken.
+    routes(
+        store,
+        "[models.m]\ndefault = \"2.0.0\"\n[[models.m.rules]]\nname = \"late\"\nversion = \"2.0.0\"\nhours = \"18:00-30:00\"\n",
+    );
+    let report = reg.reload().unwrap();
+    assert!(report.routes_refused[0].contains("rule 1 (`late`): hours `18:00-30:00`"), "{report:?}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    // Not TOML at all.
+    routes(store, "[models.m\n");
+    reg.reload().unwrap();
+    let RoutesState::Refused { problems } = reg.status().routes else { panic!("routes accepted") };
+    assert!(problems[0].contains("line 1"), "{problems:?}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "1.0.0");
+    // Fixed: taken.
+    route_default_to(store, "2.0.0");
+    reg.reload().unwrap();
+    assert_eq!(reg.status().routes, RoutesState::Accepted);
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "2.0.0");
+}
+
+#[test]
+fn removing_an_artifact_the_routes_use_is_refused_until_they_stop() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    std::fs::remove_file(artifact_path(store, "m", &Version::new(1, 0, 0))).unwrap();
+    reg.reload().unwrap();
+    let status = reg.status();
+    assert_eq!(status.artifacts[0].state, ArtifactState::KeptAfterRemoval);
+    assert_eq!(status.artifacts[0].used_by, vec!["default".to_owned()]);
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+    route_default_to(store, "2.0.0");
+    let report = reg.reload().unwrap();
+    assert_eq!(report.unloaded, vec!["m 1.0.0".to_owned()]);
+    assert_eq!(reg.status().artifacts.len(), 1);
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 10.0);
+}
+
+#[test]
+fn unknown_models_and_unrouted_versions_are_named() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    put(store, "n", "1.0.0", &line_artifact("n", "1.0.0", 1.0, 0.0, None));
+    reg.reload().unwrap();
+    assert_eq!(reg.status().unrouted, vec!["n".to_owned()]);
+    let rows = x(1.0);
+    let err = reg.score(&Request { model: "n", context: &Context::new(), at: None, rows: &rows }).unwrap_err();
+    assert_eq!(err, RequestError::UnknownModel { model: "n".into(), served: vec!["m".into()] });
+    assert_eq!(err.to_string(), "no model `n` is served (served: m)");
+}
+
+#[test]
+fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    // The hand-written affine fixture, mode 1: `score` spins forever.
+    let spin = paddock_host::pack(&paddock_tests::fixture("affine.wat"), Some(&[1]), None).unwrap();
+    put(store, "affine", "1.0.0", &spin);
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n");
+    reg.reload().unwrap();
+    let none = Context::new();
+    let three: Vec<Row> = (0..3).map(|i| Row::new().with("x", f64::from(i))).collect();
+    reg.score(&Request { model: "m", context: &none, at: None, rows: &three }).unwrap();
+    let bad = vec![Row::new().with("x", "seven")];
+    let err = reg.score(&Request { model: "m", context: &none, at: None, rows: &bad }).unwrap_err();
+    assert_eq!(err.kind(), "invalid_rows");
+    let err = reg.score(&Request { model: "affine", context: &none, at: None, rows: &x(1.0) }).unwrap_err();
+    assert_eq!(err.kind(), "limit", "{err}");
+
+    let usage = reg.usage();
+    let m = usage.versions.iter().find(|v| v.model == "m").unwrap();
+    // serving_one scored one row before this test's calls.
+    assert_eq!((m.calls, m.rows), (3, 5));
+    assert_eq!(m.errors, [("invalid_rows".to_owned(), 1)].into_iter().collect());
+    assert!(m.wall_us.p50 > 0.0 && m.wall_us.max >= m.wall_us.p99 && m.wall_us.p99 >= m.wall_us.p50, "{m:?}");
+    assert!(m.peak_memory_bytes > 0);
+    let a = usage.versions.iter().find(|v| v.model == "affine").unwrap();
+    assert_eq!(a.limit_hits, [("deadline".to_owned(), 1)].into_iter().collect());
+    // The deadline is 50 ms by default; the call took at least that.
+    assert!(a.wall_us.max >= 50_000.0, "{a:?}");
+    let saved = reg.save_usage().unwrap();
+    let back: paddock_host::registry::SavedUsage = serde_json::from_slice(&std::fs::read(saved).unwrap()).unwrap();
+    assert_eq!(back.usage, usage);
+}
+
+#[test]
+fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
+    use paddock_host::CodeSource;
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    assert_eq!(reg.status().artifacts[0].code, Some(CodeSource::CompiledAndCached));
+    drop(reg);
+    let reg = open(store);
+    assert_eq!(reg.status().artifacts[0].code, Some(CodeSource::Cache));
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    drop(reg);
+
+    // Flip one byte of the entry: its checksum no longer holds.
+    let runtime = Runtime::new().unwrap();
+    let cache = paddock_host::CodeCache::open(&store.join(".paddock/code")).unwrap();
+    let bytes = std::fs::read(artifact_path(store, "m", &Version::new(1, 0, 0))).unwrap();
+    let entry = cache.entry_path(&runtime, &Artifact::from_bytes(bytes, u64::MAX).unwrap());
+    let mut code = std::fs::read(&entry).unwrap();
+    let mid = code.len() / 2;
+    code[mid] ^= 0x40;
+    std::fs::write(&entry, code).unwrap();
+    let reg = open(store);
+    let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
+        panic!("{:?}", reg.status().artifacts[0].code)
+    };
+    assert!(reason.contains("checksum does not match"), "{reason}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    drop(reg);
+    assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
+}
+
+#[cfg(unix)]
+#[test]
+fn a_cache_directory_others_may_write_is_refused() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().unwrap();
+    let cache = dir.path().join("code");
+    std::fs::create_dir(&cache).unwrap();
+    std::fs::set_permissions(&cache, std::fs::Permissions::from_mode(0o777)).unwrap();
+    let err = paddock_host::CodeCache::open(&cache).unwrap_err();
+    assert!(err.to_string().contains("others may write to it (mode 777)"), "{err}");
+}
+
+#[test]
+fn the_watcher_picks_up_changes_by_event_and_by_rescan() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let reg = serving_one(store, RegistryOptions::default());
+    let wait_for = |version: &str| {
+        let until = Instant::now() + Duration::from_secs(20);
+        while Instant::now() < until {
+            if reg.route("m", &Context::new(), None).is_some_and(|(v, _)| v.to_string() == version) {
+                return true;
+            }
+            std::thread::sleep(Duration::from_millis(20));
+        }
+        false
+    };
+    {
+        // File system events, with an hour between rescans.
+        let _watch = reg.watch(Duration::from_millis(50), Duration::from_secs(3600)).unwrap();
+        put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+        route_default_to(store, "2.0.0");
+        assert!(wait_for("2.0.0"), "no reload after the store changed: {:#?}", reg.status());
+    }
+    {
+        // Rescans only.
+        let _watch = paddock_host::registry::Watcher::polling(reg.clone(), Duration::from_millis(100)).unwrap();
+        route_default_to(store, "1.0.0");
+        assert!(wait_for("1.0.0"), "no reload by rescan: {:#?}", reg.status());
+    }
+}
