@@ -1,4 +1,4 @@
-//! The `paddock` command on the demo artifacts (built by `cargo xtask build`).
+//! The `paddock` command on the demo artifacts and store (built by `cargo xtask build`).
 
 use std::path::{Path, PathBuf};
 use std::process::{Command, Output};
@@ -137,23 +137,68 @@ fn pack_makes_a_loadable_artifact_from_a_wat_module() {
 }
 
 #[test]
-fn demo_scores_the_co_op_plug_ins_with_both_models() {
-    let dir = root().join("target/paddock/artifacts");
-    let out = paddock(&["demo", "--artifacts", dir.to_str().unwrap()], None);
+fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
+    let store = root().join("target/paddock/store");
+    let out = paddock(&["demo", "--store", store.to_str().unwrap()], None);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let s = text(&out.stdout);
-    assert!(s.contains("Harbour Lot") && s.contains("Depot North"), "{s}");
-    assert!(s.contains("charge-minutes 0.1.0") && s.contains("overstay-risk 0.1.0"), "{s}");
-    let out = paddock(&["demo", "--artifacts", dir.to_str().unwrap(), "--json"], None);
+    let line = |needle: &str| s.lines().find(|l| l.contains(needle)).unwrap_or_else(|| panic!("no {needle:?} in {s}")).to_owned();
+    // Weekday default, weekend rule, the site in the 10 % canary, the north rule.
+    assert!(line("Harbour Lot    coast   Mon 08:12").contains("1.0.0 · default"), "{s}");
+    assert!(line("Station Road   north   Sun 17:44").contains("1.1.0 · rule `weekend`"), "{s}");
+    assert!(line("Library Green  centre  Sat 08:27").contains("1.2.0 · canary (10% by `site`, instead of rule `weekend`)"), "{s}");
+    assert!(line("Depot North    north   Thu 01:50").ends_with("1.1.0 · rule `north`"), "{s}");
+    // Monday 00:20 in Oslo is still Sunday in UTC: the weekday version answers.
+    assert!(line("Mon 00:20").contains("1.0.0 · default"), "{s}");
+    assert!(line("shadow charge-minutes 2.0.0-rc.1").contains("10 requests compared"), "{s}");
+
+    let out = paddock(&["demo", "--store", store.to_str().unwrap(), "--json"], None);
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
-    assert_eq!(v.as_array().unwrap().len(), 10);
+    assert_eq!(v["answers"].as_array().unwrap().len(), 10);
+
+    // The demo wrote its ledger; `paddock usage` reads it.
+    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--json"], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let u: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let calls: u64 = u["usage"]["versions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|v| v["model"] == "overstay-risk")
+        .map(|v| v["calls"].as_u64().unwrap())
+        .sum();
+    assert_eq!(calls, 10, "{u}");
+    let out = paddock(&["usage", "--store", store.to_str().unwrap()], None);
+    assert!(text(&out.stdout).contains("p99 µs"), "{}", text(&out.stdout));
 }
 
 #[test]
-fn a_missing_demo_directory_says_how_to_build_it() {
-    let out = paddock(&["demo", "--artifacts", "/nonexistent"], None);
+fn a_missing_demo_store_says_how_to_build_it() {
+    let out = paddock(&["demo", "--store", "/nonexistent"], None);
     assert_eq!(out.status.code(), Some(1));
     assert!(text(&out.stderr).contains("run `cargo xtask demo`"), "{}", text(&out.stderr));
+}
+
+#[test]
+fn status_lists_every_artifact_and_fails_when_one_is_refused() {
+    let demo = root().join("target/paddock/store");
+    let out = paddock(&["status", "--store", demo.to_str().unwrap()], None);
+    assert_eq!(out.status.code(), Some(0), "{}", text(&out.stderr));
+    let s = text(&out.stdout);
+    assert!(s.contains("charge-minutes/2.0.0-rc.1.wasm") && s.contains("shadow") && s.contains("40/40 passed"), "{s}");
+    assert!(s.contains("routes: routes.toml accepted"), "{s}");
+
+    // A copy of 1.0.0 filed as 9.9.9: its contract disagrees with its place.
+    let store = tmp("store");
+    std::fs::create_dir_all(store.join("charge-minutes")).unwrap();
+    std::fs::copy(demo.join("charge-minutes/1.0.0.wasm"), store.join("charge-minutes/9.9.9.wasm")).unwrap();
+    std::fs::write(store.join("routes.toml"), "[models.charge-minutes]\ndefault = \"9.9.9\"\n").unwrap();
+    let out = paddock(&["status", "--store", store.to_str().unwrap(), "--json"], None);
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["artifacts"][0]["state"], "refused");
+    assert_eq!(v["artifacts"][0]["refusal"]["stage"], "identity");
+    assert_eq!(v["routes"]["state"], "refused");
 }
 
 #[test]

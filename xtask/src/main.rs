@@ -1,10 +1,12 @@
 //! The project's build step, run as `cargo xtask <task>`:
 //!
 //! - `build`: installs the `wasm32-unknown-unknown` target if missing,
-//!   builds every guest in `models/`, trains the demo models, and packs the
-//!   artifacts into `target/paddock/artifacts/`. Guests are always built
-//!   from source; no compiled guest is committed.
-//! - `demo`: `build`, then `paddock demo` on those artifacts.
+//!   builds every guest in `models/`, trains the demo models, packs the
+//!   artifacts into `target/paddock/artifacts/`, and assembles the demo
+//!   store (several versions of each model, and routes) in
+//!   `target/paddock/store/`. Guests are always built from source; no
+//!   compiled guest is committed.
+//! - `demo`: `build`, then `paddock demo` on the demo store.
 //! - `test`: `build`, then every test in the workspace (benchmarks run
 //!   once each, as tests), then every example.
 //! - `fuzz [SECONDS]`: `build`, installs cargo-fuzz if missing, then runs
@@ -36,10 +38,10 @@ fn main() -> Result<()> {
         "build" => build(&root),
         "demo" => {
             build(&root)?;
-            let artifacts = root.join("target/paddock/artifacts");
+            let store = root.join("target/paddock/store");
             let mut cmd = cargo(&root);
-            cmd.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "demo", "--artifacts"]);
-            cmd.arg(&artifacts).args(&rest);
+            cmd.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "demo", "--store"]);
+            cmd.arg(&store).args(&rest);
             run(cmd)
         }
         "test" => {
@@ -138,6 +140,32 @@ fn build(root: &Path) -> Result<()> {
         pack.arg("--out").arg(artifacts.join(format!("{model}.wasm")));
         run(pack)?;
     }
+    demo_store(root, &guests, &train.join("store"), &out.join("store"))
+}
+
+/// Packs the demo store's versions (params carrying their own contract) with
+/// the generic guests, and copies its routes file.
+fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Result<()> {
+    for (model, guest) in [("charge-minutes", "paddock-model-trees"), ("overstay-risk", "paddock-model-linear")] {
+        let dir = store.join(model);
+        std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
+        let mut versions: Vec<String> = std::fs::read_dir(trained.join(model))
+            .with_context(|| format!("reading {}", trained.join(model).display()))?
+            .filter_map(|e| e.ok()?.file_name().to_str()?.strip_suffix(".params").map(str::to_owned))
+            .collect();
+        versions.sort();
+        for version in versions {
+            let mut pack = cargo(root);
+            pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]);
+            pack.arg(guests.join(format!("{guest}.wasm")));
+            pack.arg("--params").arg(trained.join(model).join(format!("{version}.params")));
+            pack.arg("--checks").arg(trained.join(model).join(format!("{version}.checks.json")));
+            pack.arg("--out").arg(dir.join(format!("{version}.wasm")));
+            run(pack)?;
+        }
+    }
+    let routes = root.join("models/train-demo/routes.toml");
+    std::fs::copy(&routes, store.join("routes.toml")).with_context(|| format!("copying {}", routes.display()))?;
     Ok(())
 }
 

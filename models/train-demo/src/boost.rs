@@ -5,6 +5,7 @@
 use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams};
 
 /// Training settings.
+#[derive(Clone)]
 pub struct Settings {
     pub trees: usize,
     pub depth: usize,

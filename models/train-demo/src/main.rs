@@ -6,7 +6,10 @@
 //! ```
 //!
 //! writes `OUT_DIR/charge-minutes.params`, `OUT_DIR/charge-minutes.checks.json`,
-//! `OUT_DIR/overstay-risk.params`, `OUT_DIR/overstay-risk.checks.json`.
+//! `OUT_DIR/overstay-risk.params`, `OUT_DIR/overstay-risk.checks.json`, and
+//! the versions of the demo store under `OUT_DIR/store/<model>/<version>.*`
+//! (params carrying their contract, for the generic `trees` and `linear`
+//! guests; see `routes.toml` beside this crate for how they are routed).
 //! The sessions are invented (see `simulate.rs`): demo only. The checks'
 //! expected values come from evaluating the trained params natively, with
 //! the same estimator code the sandbox runs, so a packed artifact that
@@ -19,7 +22,7 @@ use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
 use paddock_guest::ndarray::Array2;
-use paddock_guest::{Evaluate, Linear, LinearParams, Link, Trees, encode_params};
+use paddock_guest::{Contract, Evaluate, Linear, LinearParams, Link, Packaged, Trees, encode_params};
 use paddock_host::checks::{Case, Checks, Tolerance};
 use paddock_host::{Row, Value};
 use rand::SeedableRng;
@@ -49,7 +52,49 @@ fn main() -> Result<()> {
     });
     write(&out, "charge-minutes", &encode_params(&minutes.1), &minutes_checks)?;
     write(&out, "overstay-risk", &encode_params(&overstay.1), &overstay_checks)?;
+    store_versions(&out.join("store"), &train, &held_out, &minutes)?;
     println!("trained on {TRAIN} simulated sessions; params and checks in {}", out.display());
+    Ok(())
+}
+
+/// The demo store's versions. Every one is trained on the same invented
+/// sessions, cut or tuned differently, so the versions really differ:
+/// - `charge-minutes` 1.0.0 on weekday sessions, 1.1.0 on weekend ones,
+///   1.2.0 (the canary) on all with more, slower-learning trees, and
+///   2.0.0-rc.1 (the shadow candidate) with deeper trees;
+/// - `overstay-risk` 1.0.0 on every session, 1.1.0 refit on a second
+///   simulated sample that stands in for the north region's data.
+fn store_versions(dir: &Path, train: &[Session], held_out: &[Session], served_minutes: &Trained<Trees>) -> Result<()> {
+    let base = boost::Settings { trees: 80, depth: 5, learning_rate: 0.15, min_leaf: 20, bins: 64, lambda: 1.0 };
+    let weekday: Vec<Session> = train.iter().filter(|s| s.hour_of_week < 120).cloned().collect();
+    let weekend: Vec<Session> = train.iter().filter(|s| s.hour_of_week >= 120).cloned().collect();
+    let minutes_versions = [
+        ("1.0.0", weekday.as_slice(), base.clone()),
+        ("1.1.0", weekend.as_slice(), base.clone()),
+        ("1.2.0", train, boost::Settings { trees: 140, learning_rate: 0.1, ..base.clone() }),
+        ("2.0.0-rc.1", train, boost::Settings { trees: 60, depth: 7, ..base.clone() }),
+    ];
+    let source = "paddock-train-demo: native evaluation of the trained params on held-out simulated sessions";
+    for (version, sessions, settings) in minutes_versions {
+        let mut contract = charge_minutes::contract();
+        contract.version = version.into();
+        let trained = fit_minutes(sessions, &settings, &contract)?;
+        let checks = record(held_out, source, minutes_row, |s| predict(&trained, &s.minutes_features()));
+        let packaged = Packaged { contract, params: trained.1 };
+        write(&dir.join("charge-minutes"), version, &encode_params(&packaged), &checks)?;
+    }
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+    let north: Vec<Session> = (0..TRAIN).map(|_| simulate::session(&mut rng)).collect();
+    for (version, sessions) in [("1.0.0", train), ("1.1.0", north.as_slice())] {
+        let mut contract = overstay_risk::contract();
+        contract.version = version.into();
+        let trained = train_overstay(sessions, served_minutes)?;
+        let checks = record(held_out, source, |s| overstay_row(s, served_minutes), |s| {
+            predict(&trained, &s.overstay_features(predict(served_minutes, &s.minutes_features())))
+        });
+        let packaged = Packaged { contract, params: trained.1 };
+        write(&dir.join("overstay-risk"), version, &encode_params(&packaged), &checks)?;
+    }
     Ok(())
 }
 
@@ -64,11 +109,15 @@ fn predict<E: Evaluate>(model: &Trained<E>, features: &[f64]) -> f64 {
 }
 
 fn train_minutes(train: &[Session]) -> Result<Trained<Trees>> {
+    let settings = boost::Settings { trees: 80, depth: 5, learning_rate: 0.15, min_leaf: 20, bins: 64, lambda: 1.0 };
+    fit_minutes(train, &settings, &charge_minutes::contract())
+}
+
+fn fit_minutes(train: &[Session], settings: &boost::Settings, contract: &Contract) -> Result<Trained<Trees>> {
     let x: Vec<Vec<f64>> = train.iter().map(|s| s.minutes_features().to_vec()).collect();
     let y: Vec<f64> = train.iter().map(|s| s.minutes).collect();
-    let settings = boost::Settings { trees: 80, depth: 5, learning_rate: 0.15, min_leaf: 20, bins: 64, lambda: 1.0 };
-    let params = boost::fit(&x, &y, 8, &settings);
-    let trees = paddock_guest::build_for::<Trees>(&charge_minutes::contract(), params.clone()).map_err(anyhow::Error::msg)?;
+    let params = boost::fit(&x, &y, 8, settings);
+    let trees = paddock_guest::build_for::<Trees>(contract, params.clone()).map_err(anyhow::Error::msg)?;
     Ok((trees, params))
 }
 
@@ -151,6 +200,7 @@ fn record(
 }
 
 fn write(dir: &Path, name: &str, params: &[u8], checks: &Checks) -> Result<()> {
+    std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     let p = dir.join(format!("{name}.params"));
     std::fs::write(&p, params).with_context(|| format!("writing {}", p.display()))?;
     let c = dir.join(format!("{name}.checks.json"));

@@ -4,7 +4,10 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, Signature, TrustPolicy, Vouch};
+use paddock_host::{
+    Artifact, Isolation, Limits, Model, ModelOptions, Registry, RegistryOptions, Runtime, RuntimeConfig, Signature, TrustPolicy,
+    Vouch,
+};
 
 /// What every command about one artifact takes: the file, `--json`, and
 /// how to load it.
@@ -101,6 +104,52 @@ impl LoadArgs {
         let model = Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
         Ok((runtime, model))
     }
+}
+
+/// What every command about a store takes.
+#[derive(clap::Args, Clone, Debug)]
+pub struct StoreArgs {
+    /// The store: `<model>/<version>.wasm` files and `routes.toml`.
+    #[arg(long, value_name = "DIR")]
+    pub store: PathBuf,
+    /// Where the host keeps its state (code cache, usage file) [default: STORE/.paddock].
+    #[arg(long, value_name = "DIR")]
+    pub state: Option<PathBuf>,
+    /// Refuse artifacts that carry no checks.
+    #[arg(long)]
+    pub require_checks: bool,
+    /// Compile every artifact afresh instead of using the code cache.
+    #[arg(long)]
+    pub no_code_cache: bool,
+    #[command(flatten)]
+    pub load: LoadArgs,
+}
+
+impl StoreArgs {
+    /// The registry options these flags describe.
+    pub fn options(&self) -> Result<RegistryOptions> {
+        Ok(RegistryOptions {
+            model: self.load.options(),
+            trust: self.load.policy()?,
+            require_checks: self.require_checks,
+            state_dir: self.state.clone(),
+            code_cache: !self.no_code_cache,
+            ..RegistryOptions::default()
+        })
+    }
+
+    /// Opens the store: every artifact through the gate, then the routes.
+    pub fn open(&self) -> Result<Registry> {
+        let runtime = self.load.runtime()?;
+        Registry::open(&runtime, &self.store, self.options()?).with_context(|| format!("opening the store {}", self.store.display()))
+    }
+}
+
+/// Sends the library's log lines to stderr: warnings and errors, or the
+/// level named by `PADDOCK_LOG` (`error`, `warn`, `info`, `debug`, `trace`).
+pub fn init_logging() {
+    let level = std::env::var("PADDOCK_LOG").ok().and_then(|l| l.parse().ok()).unwrap_or(tracing::Level::WARN);
+    let _ = tracing_subscriber::fmt().with_writer(std::io::stderr).with_max_level(level).with_target(false).try_init();
 }
 
 /// Prints a value as pretty JSON on stdout.

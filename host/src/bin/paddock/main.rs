@@ -1,4 +1,5 @@
-//! `paddock`: pack, inspect, check and score sandboxed model artifacts.
+//! `paddock`: pack, inspect, check and score sandboxed model artifacts, and
+//! serve a store of versions.
 //!
 //! Each subcommand lives in its own file under `cmd/` and is a thin
 //! wrapper over the `paddock_host` library.
@@ -26,6 +27,8 @@ enum Command {
     Check(cmd::check::Args),
     Audit(cmd::audit::Args),
     Demo(cmd::demo::Args),
+    Status(cmd::status::Args),
+    Usage(cmd::usage::Args),
     Keygen(cmd::keygen::Args),
     Sign(cmd::sign::Args),
     Verify(cmd::verify::Args),
@@ -43,6 +46,7 @@ pub enum Outcome {
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
+    common::init_logging();
     let result = match cli.command {
         Command::Pack(a) => cmd::pack::run(a),
         Command::Inspect(a) => cmd::inspect::run(a),
@@ -50,6 +54,8 @@ fn main() -> ExitCode {
         Command::Check(a) => cmd::check::run(a),
         Command::Audit(a) => cmd::audit::run(a),
         Command::Demo(a) => cmd::demo::run(a),
+        Command::Status(a) => cmd::status::run(a),
+        Command::Usage(a) => cmd::usage::run(a),
         Command::Keygen(a) => cmd::keygen::run(a),
         Command::Sign(a) => cmd::sign::run(a),
         Command::Verify(a) => cmd::verify::run(a),

@@ -1,13 +1,19 @@
-//! `paddock demo`: the built-in demo. Scores ten invented plug-ins at the
-//! EV-charging co-op's sites with both example models: `charge-minutes`
-//! estimates how long each session charges, and its estimate feeds
-//! `overstay-risk`.
+//! `paddock demo`: the built-in demo. Serves the demo store — several
+//! versions of two models, and routes — and scores ten invented plug-ins at
+//! the EV-charging co-op's sites: `charge-minutes` estimates how long each
+//! session charges, and its estimate feeds `overstay-risk`. Each answer
+//! says which version produced it and why (the weekend rule, the north
+//! region's rule, the 10 % canary by site…); a candidate version runs in
+//! the shadow of every `charge-minutes` request.
 
 use std::collections::HashMap;
 use std::path::PathBuf;
+use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Model, Row, Runtime};
+use jiff::Timestamp;
+use jiff::tz::TimeZone;
+use paddock_host::{Model, Registry, Request, Row, Runtime};
 use serde::Serialize;
 
 use crate::Outcome;
@@ -16,13 +22,17 @@ use crate::common::{print_json, table as text_table};
 /// The demo plug-ins (invented data).
 const PLUGINS: &str = include_str!("../demo/plugins.csv");
 
-/// Score the built-in EV-charging demo rows with the example models.
+const DAYS: [&str; 7] = ["Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun"];
+
+/// The co-op's time zone: `hour_of_week` is local time.
+const ZONE: &str = "Europe/Oslo";
+
+/// Serve the demo store and score the built-in EV-charging plug-ins.
 #[derive(clap::Args)]
 pub struct Args {
-    /// Directory holding charge-minutes.wasm and overstay-risk.wasm
-    /// (`cargo xtask build` writes them to target/paddock/artifacts).
-    #[arg(long, default_value = "target/paddock/artifacts", value_name = "DIR")]
-    artifacts: PathBuf,
+    /// The demo store (`cargo xtask build` assembles it in target/paddock/store).
+    #[arg(long, default_value = "target/paddock/store", value_name = "DIR")]
+    store: PathBuf,
     /// Print the results as JSON.
     #[arg(long)]
     json: bool,
@@ -31,20 +41,15 @@ pub struct Args {
 #[derive(Serialize)]
 struct Answer {
     site: String,
+    region: String,
     member: String,
-    hour_of_week: i64,
-    charger_kw: f64,
+    plugged_in: String,
     minutes: f64,
+    minutes_version: String,
+    minutes_reason: String,
     overstay_probability: f64,
-    minutes_model: String,
-    overstay_model: String,
-}
-
-fn load(runtime: &Runtime, dir: &std::path::Path, name: &str) -> Result<Model> {
-    let path = dir.join(format!("{name}.wasm"));
-    let artifact = Artifact::read(&path, paddock_host::Limits::default().artifact_bytes)
-        .with_context(|| format!("the demo needs {} (run `cargo xtask demo`)", path.display()))?;
-    Model::load(runtime, artifact).with_context(|| format!("loading {}", path.display()))
+    overstay_version: String,
+    overstay_reason: String,
 }
 
 /// Builds a model's row from named text cells, taking only its features.
@@ -57,60 +62,107 @@ fn row_for(model: &Model, cells: &HashMap<String, String>) -> Row {
         .collect()
 }
 
-/// Loads the two models, scores the plug-ins, prints a table.
+/// The model version a request would get, to build its row by its contract.
+fn routed_model(registry: &Registry, name: &str, context: &paddock_host::Context, at: Timestamp) -> Result<Model> {
+    let (version, _) = registry.route(name, context, Some(at)).with_context(|| format!("the demo store serves no `{name}`"))?;
+    registry.model(name, &version).with_context(|| format!("{name} {version} is not loaded"))
+}
+
+/// Opens the store, scores the plug-ins, prints a table.
 pub fn run(args: Args) -> Result<Outcome> {
     let runtime = Runtime::new()?;
-    let minutes = load(&runtime, &args.artifacts, "charge-minutes")?;
-    let overstay = load(&runtime, &args.artifacts, "overstay-risk")?;
+    if !args.store.join(paddock_host::registry::ROUTES_FILE).exists() {
+        anyhow::bail!("the demo needs the demo store in {} (run `cargo xtask demo`)", args.store.display());
+    }
+    let registry = Registry::open(&runtime, &args.store, paddock_host::RegistryOptions::default())?;
+    let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
+    anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), args.store.display());
+    let zone = TimeZone::get(ZONE)?;
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
     let mut answers = Vec::new();
     for record in reader.records() {
         let mut cells: HashMap<String, String> =
             header.iter().zip(record?.iter()).map(|(k, v)| (k.to_owned(), v.to_owned())).collect();
-        let m = minutes.score(&[row_for(&minutes, &cells)])?.row(0)[0];
-        let hour: i64 = cells["hour_of_week"].parse()?;
-        cells.insert("expected_minutes".into(), m.to_string());
-        cells.insert("plugin_hour".into(), (hour % 24).to_string());
-        cells.insert("weekend".into(), (hour >= 120).to_string());
-        let p = overstay.score(&[row_for(&overstay, &cells)])?.row(0)[0];
+        let at: Timestamp = cells["plugged_in"].parse().with_context(|| format!("plugged_in {}", cells["plugged_in"]))?;
+        let local = zone.to_datetime(at);
+        let hour_of_week = i64::from(local.weekday().to_monday_zero_offset()) * 24 + i64::from(local.hour());
+        cells.insert("hour_of_week".into(), hour_of_week.to_string());
+        let context: paddock_host::Context =
+            ["site", "region"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
+
+        let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
+        let rows = [row_for(&minutes_model, &cells)];
+        let m = registry.score(&Request { model: "charge-minutes", context: &context, at: Some(at), rows: &rows })?;
+        let minutes = m.estimates.row(0)[0];
+        cells.insert("expected_minutes".into(), minutes.to_string());
+        cells.insert("plugin_hour".into(), local.hour().to_string());
+        cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
+        let overstay_model = routed_model(&registry, "overstay-risk", &context, at)?;
+        let rows = [row_for(&overstay_model, &cells)];
+        let o = registry.score(&Request { model: "overstay-risk", context: &context, at: Some(at), rows: &rows })?;
         answers.push(Answer {
             site: cells["site"].clone(),
+            region: cells["region"].clone(),
             member: cells["member"].clone(),
-            hour_of_week: hour,
-            charger_kw: cells["charger_kw"].parse()?,
-            minutes: m,
-            overstay_probability: p,
-            minutes_model: format!("{} {}", minutes.contract().name, minutes.contract().version),
-            overstay_model: format!("{} {}", overstay.contract().name, overstay.contract().version),
+            plugged_in: format!("{} {:02}:{:02}", DAYS[hour_of_week as usize / 24], local.hour(), local.minute()),
+            minutes,
+            minutes_version: m.version.to_string(),
+            minutes_reason: m.reason.to_string(),
+            overstay_probability: o.estimates.row(0)[0],
+            overstay_version: o.version.to_string(),
+            overstay_reason: o.reason.to_string(),
         });
     }
+    registry.drain_shadows(Duration::from_secs(10));
+    let usage = registry.usage();
+    let saved = registry.save_usage()?;
     if args.json {
-        print_json(&answers)?;
+        #[derive(Serialize)]
+        struct Demo<'a> {
+            answers: &'a [Answer],
+            usage: &'a paddock_host::registry::UsageReport,
+        }
+        print_json(&Demo { answers: &answers, usage: &usage })?;
         return Ok(Outcome::Ok);
     }
-    const DAYS: [&str; 7] = ["Mon", "Tue", "Wed", "Thu", "Fri", "Sat", "Sun"];
     let rows: Vec<Vec<String>> = answers
         .iter()
         .map(|a| {
             vec![
                 a.site.clone(),
-                a.member.clone(),
-                format!("{} {:02}:00", DAYS[(a.hour_of_week / 24) as usize % 7], a.hour_of_week % 24),
-                format!("{} kW", a.charger_kw),
+                a.region.clone(),
+                a.plugged_in.clone(),
                 format!("{:.0} min", a.minutes),
+                format!("{} · {}", a.minutes_version, a.minutes_reason),
                 format!("{:.0} %", a.overstay_probability * 100.0),
+                format!("{} · {}", a.overstay_version, a.overstay_reason),
             ]
         })
         .collect();
-    println!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)\n");
-    print!("{}", text_table(&["site", "member", "plug-in", "charger", "charging", "overstay risk"], &rows));
+    println!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)");
+    println!("times in {ZONE}; store {}\n", args.store.display());
+    print!(
+        "{}",
+        text_table(&["site", "region", "plug-in", "charging", "answered by", "overstay risk", "answered by"], &rows)
+    );
+    for s in &usage.shadows {
+        println!(
+            "\nshadow {} {}: {} requests compared, largest difference {:.1} min, {} over the {} min tolerance",
+            s.model,
+            s.version,
+            s.compared,
+            s.max_abs_diff,
+            s.over_tolerance,
+            registry.routes().model(&s.model).and_then(|r| r.shadow()).map_or(0.0, |sh| sh.tolerance)
+        );
+    }
+    let status = registry.status();
     println!(
-        "\nmodels: {} ({}), {} ({}), each in its own sandbox",
-        answers[0].minutes_model,
-        minutes.digest().short(),
-        answers[0].overstay_model,
-        overstay.digest().short()
+        "{} versions loaded, each in its own sandbox; usage written to {} (see `paddock usage --store {}`)",
+        status.artifacts.len(),
+        saved.display(),
+        args.store.display()
     );
     Ok(Outcome::Ok)
 }

@@ -8,4 +8,6 @@ pub mod keygen;
 pub mod pack;
 pub mod score;
 pub mod sign;
+pub mod status;
+pub mod usage;
 pub mod verify;

@@ -1,0 +1,74 @@
+//! `paddock status`: open a store as a host would, and list every artifact
+//! (loaded, refused and why, kept), which routes use it, and whether the
+//! routes file was taken. Exits 1 when anything was refused: run it before
+//! publishing a store.
+
+use anyhow::Result;
+use paddock_host::CodeSource;
+use paddock_host::registry::{ArtifactState, RoutesState};
+
+use crate::Outcome;
+use crate::common::{StoreArgs, print_json, table};
+
+/// Load a store and list what it would serve and what it refuses.
+#[derive(clap::Args)]
+pub struct Args {
+    #[command(flatten)]
+    store: StoreArgs,
+    /// Print the status as JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+/// Opens the store and prints its status.
+pub fn run(args: Args) -> Result<Outcome> {
+    let registry = args.store.open()?;
+    let status = registry.status();
+    let refused = status.problems().any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
+        || matches!(status.routes, RoutesState::Refused { .. });
+    if args.json {
+        print_json(&status)?;
+    } else {
+        let rows: Vec<Vec<String>> = status
+            .artifacts
+            .iter()
+            .map(|a| {
+                let state = match &a.state {
+                    ArtifactState::Loaded => "loaded".to_owned(),
+                    ArtifactState::Refused { refusal } => format!("refused: {refusal}"),
+                    ArtifactState::KeptAfterRefusal { refusal, .. } => format!("old bytes kept; new {refusal}"),
+                    ArtifactState::KeptAfterRemoval => "file removed; kept while routed".to_owned(),
+                };
+                vec![
+                    a.path.display().to_string(),
+                    a.digest.map(|d| d.short()).unwrap_or_default(),
+                    state,
+                    if a.used_by.is_empty() { "-".into() } else { a.used_by.join(", ") },
+                    a.checks.clone().unwrap_or_default(),
+                    match &a.code {
+                        Some(CodeSource::Cache) => "from cache".into(),
+                        Some(CodeSource::Compiled | CodeSource::CompiledAndCached) => "compiled".into(),
+                        Some(CodeSource::CompiledCacheFailed { reason }) => format!("compiled ({reason})"),
+                        None => "-".into(),
+                    },
+                ]
+            })
+            .collect();
+        println!("store {} (generation {})\n", status.store.display(), status.generation);
+        print!("{}", table(&["artifact", "digest", "state", "used by", "checks", "code"], &rows));
+        match &status.routes {
+            RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_host::registry::ROUTES_FILE),
+            RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_host::registry::ROUTES_FILE),
+            RoutesState::Refused { problems } => {
+                println!("\nroutes: refused (the previous routes would keep serving):");
+                for p in problems {
+                    println!("  - {p}");
+                }
+            }
+        }
+        if !status.unrouted.is_empty() {
+            println!("loaded but not routed: {}", status.unrouted.join(", "));
+        }
+    }
+    Ok(if refused { Outcome::Failed } else { Outcome::Ok })
+}
