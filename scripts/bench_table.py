@@ -128,7 +128,14 @@ def main():
         with open(notes) as f:
             out.append(f.read().rstrip())
             out.append("")
-    with open(os.path.join(ROOT, "BENCHMARKS.md"), "w") as f:
+    # Keep the section bench_store.py writes.
+    path = os.path.join(ROOT, "BENCHMARKS.md")
+    if os.path.exists(path):
+        old = open(path).read()
+        if "<!-- store-bench -->" in old:
+            out.append("<!-- store-bench -->" + old.split("<!-- store-bench -->", 1)[1].rstrip())
+            out.append("")
+    with open(path, "w") as f:
         f.write("\n".join(out))
     print("\n".join(out))
 

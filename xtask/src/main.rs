@@ -50,7 +50,7 @@ fn main() -> Result<()> {
             cmd.args(["test", "--workspace", "--all-targets"]).args(&rest);
             run(cmd)?;
             // Examples must run as-is, not just compile.
-            for example in ["embed", "limits"] {
+            for example in ["embed", "limits", "store"] {
                 let mut cmd = cargo(&root);
                 cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
                 run(cmd)?;
