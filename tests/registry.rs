@@ -184,16 +184,27 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 2.0, 1.0, None));
     // The candidate differs by exactly |x|: y = 3x + 1.
     put(store, "m", "1.1.0-rc.1", &line_artifact("m", "1.1.0-rc.1", 3.0, 1.0, None));
-    routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.m.shadow]\nversion = \"1.1.0-rc.1\"\nsample = 0.5\ntolerance = 10.0\n");
+    // A second model with its own shadow, asked in turn with `m`: each
+    // shadow samples its own model's requests, however they interleave.
+    put(store, "k", "1.0.0", &line_artifact("k", "1.0.0", 1.0, 0.0, None));
+    routes(
+        store,
+        "[models.m]\ndefault = \"1.0.0\"\n[models.m.shadow]\nversion = \"1.1.0-rc.1\"\nsample = 0.5\ntolerance = 10.0\n\
+         [models.k]\ndefault = \"1.0.0\"\n[models.k.shadow]\nversion = \"1.0.0\"\nsample = 0.5\n",
+    );
     let reg = open(store);
     for i in 0..200 {
         // x = 0..99, each twice in a row; the sample takes every other request.
         let (version, _, y) = ask(&reg, "m", &Context::new(), None, f64::from(i / 2));
         assert_eq!((version.as_str(), y), ("1.0.0", 2.0 * f64::from(i / 2) + 1.0));
+        ask(&reg, "k", &Context::new(), None, 1.0);
     }
     assert!(reg.drain_shadows(Duration::from_secs(30)));
     let usage = reg.usage();
-    let shadow = &usage.shadows[0];
+    // A version compared with itself never differs.
+    let k = usage.shadows.iter().find(|s| s.model == "k").unwrap();
+    assert_eq!((k.compared, k.max_abs_diff, k.over_tolerance), (100, 0.0, 0), "{k:?}");
+    let shadow = usage.shadows.iter().find(|s| s.model == "m").unwrap();
     assert_eq!((shadow.model.as_str(), shadow.version.as_str()), ("m", "1.1.0-rc.1"));
     // Exactly half sampled: one request per x in 0..100.
     assert_eq!((shadow.compared, shadow.values, shadow.dropped), (100, 100, 0), "{shadow:?}");
@@ -201,7 +212,7 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     // |x| > 10 for x = 11..=99.
     assert_eq!(shadow.over_tolerance, 89);
     // The shadow's own calls are in its ledger; the served version's too.
-    let by_version: BTreeMap<_, _> = usage.versions.iter().map(|v| (v.version.as_str(), v)).collect();
+    let by_version: BTreeMap<_, _> = usage.versions.iter().filter(|v| v.model == "m").map(|v| (v.version.as_str(), v)).collect();
     assert_eq!((by_version["1.0.0"].calls, by_version["1.1.0-rc.1"].calls), (200, 100));
 }
 
@@ -480,4 +491,26 @@ fn the_watcher_picks_up_changes_by_event_and_by_rescan() {
         route_default_to(store, "1.0.0");
         assert!(wait_for("1.0.0"), "no reload by rescan: {:#?}", reg.status());
     }
+}
+
+#[test]
+fn with_a_metering_runtime_the_ledger_sums_fuel() {
+    use paddock_host::{Limits, ModelOptions, RuntimeConfig};
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, None));
+    route_default_to(store, "1.0.0");
+    let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
+    let limits = Limits { fuel: Some(10_000_000), ..Limits::default() };
+    let options = RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let reg = Registry::open(&runtime, store, options).unwrap();
+    let mut fuel = 0;
+    for i in 0..5 {
+        let rows = x(f64::from(i));
+        let a = reg.score(&Request { model: "m", context: &Context::new(), at: None, rows: &rows }).unwrap();
+        fuel += a.estimates.usage().fuel.expect("metered");
+    }
+    let usage = reg.usage();
+    assert!(fuel > 0);
+    assert_eq!(usage.versions[0].fuel, Some(fuel));
 }

@@ -160,6 +160,8 @@ pub struct VersionUsage {
 #[derive(Debug, Default)]
 pub struct ShadowLedger {
     inner: Mutex<ShadowUsage>,
+    /// Requests seen for this shadow, for exact sampling.
+    seen: AtomicU64,
 }
 
 /// A shadow's comparison figures.
@@ -188,7 +190,16 @@ impl ShadowLedger {
     pub(crate) fn new(model: &str, version: &Version) -> Self {
         ShadowLedger {
             inner: Mutex::new(ShadowUsage { model: model.into(), version: version.to_string(), ..Default::default() }),
+            seen: AtomicU64::new(0),
         }
+    }
+
+    /// Whether this request is in a sample of `share`: exactly
+    /// `floor(n × share)` of this shadow's first `n` requests are, however
+    /// requests to other models interleave.
+    pub(crate) fn sampled(&self, share: f64) -> bool {
+        let n = self.seen.fetch_add(1, Ordering::Relaxed) as f64;
+        ((n + 1.0) * share).floor() > (n * share).floor()
     }
 
     /// Compares served and shadow values output by output.

@@ -315,7 +315,17 @@ struct Snapshot {
     generation: u64,
     routes: Arc<Routes>,
     versions: BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>,
+    /// Per model with a shadow: everything a request needs, resolved once.
+    shadows: BTreeMap<String, ShadowPlan>,
     status: Status,
+}
+
+/// A model's shadow, resolved when the snapshot is built.
+struct ShadowPlan {
+    loaded: Arc<Loaded>,
+    ledger: Arc<ledger::ShadowLedger>,
+    sample: f64,
+    tolerance: f64,
 }
 
 /// What a reload saw last time, so unchanged files are not gated again.
@@ -402,6 +412,7 @@ impl Registry {
             generation: 0,
             routes: Arc::new(Routes::empty()),
             versions: BTreeMap::new(),
+            shadows: BTreeMap::new(),
             status: Status {
                 store: dir.clone(),
                 generation: 0,
@@ -465,9 +476,11 @@ impl Registry {
         // Routes are only accepted when every version they name is loaded.
         let served = versions[route.version].clone();
         let (version, reason) = (route.version.clone(), route.reason.clone());
-        let shadow = routes.shadow().filter(|s| shared.shadows.sampled(s.sample)).map(|s| {
-            (versions[&s.version].clone(), s.tolerance, shared.ledger.shadow(request.model, &s.version))
-        });
+        let shadow = snapshot
+            .shadows
+            .get(request.model)
+            .filter(|s| s.ledger.sampled(s.sample))
+            .map(|s| (s.loaded.clone(), s.tolerance, s.ledger.clone()));
         let generation = snapshot.generation;
         drop(snapshot);
 
@@ -736,7 +749,20 @@ impl Registry {
                 routes: routes_state,
                 unrouted,
             };
-            shared.current.store(Arc::new(Snapshot { generation, routes, versions, status }));
+            let shadows = routes
+                .models()
+                .filter_map(|m| {
+                    let s = routes.model(m)?.shadow()?;
+                    let plan = ShadowPlan {
+                        loaded: versions.get(m)?.get(&s.version)?.clone(),
+                        ledger: shared.ledger.shadow(m, &s.version),
+                        sample: s.sample,
+                        tolerance: s.tolerance,
+                    };
+                    Some((m.to_owned(), plan))
+                })
+                .collect();
+            shared.current.store(Arc::new(Snapshot { generation, routes, versions, shadows, status }));
             for v in &report.loaded {
                 tracing::info!(version = %v, generation, "serving");
             }

@@ -31,8 +31,6 @@ pub(crate) struct Job {
 pub(crate) struct Shadows {
     queue: Mutex<Option<SyncSender<Job>>>,
     pending: Arc<AtomicU64>,
-    /// Requests seen, for exact sampling.
-    seen: AtomicU64,
 }
 
 impl Shadows {
@@ -48,14 +46,7 @@ impl Shadows {
         if !started {
             tracing::warn!("cannot start the shadow thread; shadow runs are off");
         }
-        Shadows { queue: Mutex::new(started.then_some(tx)), pending, seen: AtomicU64::new(0) }
-    }
-
-    /// Whether this request is in a sample of `share`: exactly
-    /// `floor(n × share)` of the first `n` requests are.
-    pub(crate) fn sampled(&self, share: f64) -> bool {
-        let n = self.seen.fetch_add(1, Ordering::Relaxed) as f64;
-        ((n + 1.0) * share).floor() > (n * share).floor()
+        Shadows { queue: Mutex::new(started.then_some(tx)), pending }
     }
 
     /// Queues a job, or counts it dropped when the queue is full.
