@@ -124,6 +124,16 @@ pub enum RequestError {
         /// The models that are served.
         served: Vec<String>,
     },
+    /// The routes named a version that is not loaded. The registry only
+    /// accepts routes whose versions are all loaded, so this is a bug in
+    /// paddock; it is an error rather than a crash of the caller.
+    #[error("{model} {version} was routed to but is not loaded")]
+    NotLoaded {
+        /// The model.
+        model: String,
+        /// The version the routes named.
+        version: Version,
+    },
     /// The chosen version failed to score the rows.
     #[error("{model} {version} ({reason}): {error}")]
     Score {
@@ -143,6 +153,7 @@ impl RequestError {
     pub fn kind(&self) -> &'static str {
         match self {
             RequestError::UnknownModel { .. } => "unknown_model",
+            RequestError::NotLoaded { .. } => "not_loaded",
             RequestError::Score { error, .. } => error.kind(),
         }
     }
@@ -472,9 +483,10 @@ impl Registry {
         };
         let at = request.at.unwrap_or_else(|| shared.options.clock.now());
         let route = routes.route(request.model, request.context, at);
-        let versions = &snapshot.versions[request.model];
         // Routes are only accepted when every version they name is loaded.
-        let served = versions[route.version].clone();
+        let Some(served) = snapshot.versions.get(request.model).and_then(|v| v.get(route.version)).cloned() else {
+            return Err(RequestError::NotLoaded { model: request.model.to_owned(), version: route.version.clone() });
+        };
         let (version, reason) = (route.version.clone(), route.reason.clone());
         let shadow = snapshot
             .shadows

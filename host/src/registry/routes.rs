@@ -433,6 +433,9 @@ impl Window {
 /// model: the first 8 bytes of sha256(model, value) as a fraction of 2^64.
 /// Stable across processes and machines; raising the share only adds keys.
 pub fn in_share(model: &str, value: &str, share: f64) -> bool {
+    if share >= 1.0 {
+        return true;
+    }
     let mut h = Sha256::new();
     h.update(model.as_bytes());
     h.update([0]);
