@@ -52,6 +52,7 @@ mod pool;
 pub mod registry;
 pub mod rows;
 pub mod sandbox;
+pub mod surface;
 pub mod table;
 pub mod trust;
 

@@ -21,6 +21,13 @@ use crate::model::{ScoreError, Usage};
 /// Longest wall time the histogram resolves (longer calls count as this).
 const MAX_WALL_NS: u64 = 3_600_000_000_000;
 
+/// Upper bounds of the wall-time buckets reported for OpenMetrics, in
+/// seconds (1 µs to 2.5 s in 1–2.5–5 steps; `+Inf` is implied).
+pub const WALL_BUCKETS: [f64; 20] = [
+    1e-6, 2.5e-6, 5e-6, 1e-5, 2.5e-5, 5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 1e-2, 2.5e-2, 5e-2, 0.1, 0.25, 0.5,
+    1.0, 2.5,
+];
+
 fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
     m.lock().unwrap_or_else(|e| e.into_inner())
 }
@@ -37,6 +44,7 @@ pub struct VersionLedger {
     fuel: AtomicU64,
     fuel_metered: AtomicU64,
     peak_memory: AtomicU64,
+    wall_sum_ns: AtomicU64,
     errors: Mutex<BTreeMap<&'static str, u64>>,
     limit_hits: Mutex<BTreeMap<&'static str, u64>>,
     wall: Box<[Mutex<Histogram<u64>>]>,
@@ -51,6 +59,7 @@ impl Default for VersionLedger {
             fuel: AtomicU64::new(0),
             fuel_metered: AtomicU64::new(0),
             peak_memory: AtomicU64::new(0),
+            wall_sum_ns: AtomicU64::new(0),
             errors: Mutex::default(),
             limit_hits: Mutex::default(),
             wall: (0..shards).map(|_| Mutex::new(histogram())).collect(),
@@ -84,6 +93,7 @@ impl VersionLedger {
 
     fn record_wall(&self, wall: Duration) {
         let ns = (wall.as_nanos() as u64).clamp(1, MAX_WALL_NS);
+        self.wall_sum_ns.fetch_add(ns, Ordering::Relaxed);
         let shard = crate::pool::home() % self.wall.len();
         let _ = lock(&self.wall[shard]).record(ns);
     }
@@ -111,6 +121,8 @@ impl VersionLedger {
                 p99: q(0.99),
                 max: if wall.is_empty() { 0.0 } else { us(wall.max()) },
                 mean: if wall.is_empty() { 0.0 } else { wall.mean() / 1000.0 },
+                sum_seconds: self.wall_sum_ns.load(Ordering::Relaxed) as f64 / 1e9,
+                buckets: WALL_BUCKETS.iter().map(|&le| wall.count_between(0, (le * 1e9) as u64)).collect(),
             },
             peak_memory_bytes: self.peak_memory.load(Ordering::Relaxed),
         }
@@ -121,6 +133,11 @@ impl VersionLedger {
 /// digits, so within 1 %).
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct Wall {
+    /// Sum of every call's wall time, in seconds (exact).
+    pub sum_seconds: f64,
+    /// Calls that took at most each bound of [`WALL_BUCKETS`], cumulative
+    /// (at the histogram's precision).
+    pub buckets: Vec<u64>,
     /// Median.
     pub p50: f64,
     /// 90th percentile.

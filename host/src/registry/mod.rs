@@ -21,6 +21,7 @@
 
 pub mod layout;
 pub mod ledger;
+pub mod metrics;
 pub mod routes;
 mod shadow;
 mod watch;
@@ -186,6 +187,8 @@ pub struct Answer {
     pub reason: Reason,
     /// The registry generation the request was routed in.
     pub generation: u64,
+    /// The names of the estimates' columns: the answering version's outputs.
+    pub outputs: Arc<[String]>,
     /// The estimates.
     pub estimates: Estimates,
 }
@@ -193,6 +196,7 @@ pub struct Answer {
 /// A version that passed the gate.
 pub(crate) struct Loaded {
     pub model: Model,
+    pub outputs: Arc<[String]>,
     pub rel: PathBuf,
     pub vouch: Vouch,
     pub checks: Option<CheckReport>,
@@ -516,6 +520,7 @@ impl Registry {
                     digest: served.model.digest(),
                     reason,
                     generation,
+                    outputs: served.outputs.clone(),
                     estimates,
                 })
             }
@@ -839,6 +844,7 @@ impl Registry {
         };
         Ok(Loaded {
             ledger: shared.ledger.version(model, version),
+            outputs: loaded.contract().outputs.iter().map(|o| o.name.clone()).collect(),
             model: loaded,
             rel: f.rel.clone(),
             vouch,

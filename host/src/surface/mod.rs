@@ -1,0 +1,13 @@
+//! Surfaces: how a service reaches a [`Registry`](crate::Registry) from
+//! outside the process. The library API is the first surface; these are
+//! the others.
+//!
+//! - [`wire`]: the JSON shapes every surface shares (request, answer, error);
+//! - [`stream`]: NDJSON in, NDJSON out, one answer per line, in order;
+//! - [`http`] (feature `http`, on by default): an HTTP API described by an
+//!   OpenAPI 3.1 document.
+
+#[cfg(feature = "http")]
+pub mod http;
+pub mod stream;
+pub mod wire;

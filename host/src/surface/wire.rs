@@ -1,0 +1,239 @@
+//! The JSON shapes the stream and HTTP surfaces share: a scoring request,
+//! its answer, and an error body. The HTTP API's OpenAPI document
+//! (`surface/openapi.json`) describes exactly these.
+
+use std::collections::BTreeMap;
+
+use jiff::Timestamp;
+use serde::ser::SerializeMap;
+use serde::{Deserialize, Serialize, Serializer};
+
+use crate::artifact::Digest;
+use crate::model::{ScoreError, Usage};
+use crate::registry::{Answer, Context, Reason, RequestError};
+use crate::rows::{Row, RowError};
+
+/// A request to score rows with a model (the model is named elsewhere: in
+/// the URL, or the stream line).
+#[derive(Clone, Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ScoreRequest {
+    /// Rows: feature name → value (number, string label, boolean; `null` or
+    /// left out for absent).
+    #[serde(default)]
+    pub rows: Vec<Row>,
+    /// Context for the routes (`region`, `site`…).
+    #[serde(default)]
+    pub context: Context,
+    /// When the request happened (RFC 3339, e.g. `2026-12-05T08:27:00+01:00`),
+    /// for time windows; the server's clock when left out.
+    pub at: Option<String>,
+}
+
+/// One line of a stream: a [`ScoreRequest`] plus the model, an optional id
+/// echoed back, and `row` as a shorthand for one row.
+#[derive(Clone, Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct StreamLine {
+    /// Echoed in the answer line.
+    pub id: Option<serde_json::Value>,
+    /// The model's name.
+    pub model: String,
+    /// One row.
+    pub row: Option<Row>,
+    /// Rows.
+    pub rows: Option<Vec<Row>>,
+    /// Context for the routes.
+    #[serde(default)]
+    pub context: Context,
+    /// When the request happened (RFC 3339).
+    pub at: Option<String>,
+}
+
+/// Parses an `at` field.
+///
+/// # Errors
+/// An [`ErrorBody`] of kind `bad_request` naming the field and value.
+pub fn parse_at(at: Option<&str>) -> Result<Option<Timestamp>, ErrorBody> {
+    at.map(|t| {
+        t.parse::<Timestamp>()
+            .map_err(|e| ErrorBody::bad_request(format!("`at`: `{t}` is not an RFC 3339 time with an offset ({e})")))
+    })
+    .transpose()
+}
+
+/// The answer to a scoring request.
+#[derive(Clone, Debug, Serialize)]
+pub struct ScoreAnswer {
+    /// The model.
+    pub model: String,
+    /// The version that answered.
+    pub version: String,
+    /// Its artifact's digest.
+    pub digest: Digest,
+    /// The route that picked it: `default`, a rule's name, or `canary`.
+    pub route: String,
+    /// Why, in full.
+    pub reason: Reason,
+    /// The registry generation the request was routed in.
+    pub generation: u64,
+    /// One object per row: output name → value, in contract order.
+    pub estimates: Vec<Estimate>,
+    /// What the call cost.
+    pub usage: Usage,
+}
+
+/// One row's outputs.
+#[derive(Clone, Debug)]
+pub struct Estimate {
+    names: std::sync::Arc<[String]>,
+    values: Vec<f64>,
+}
+
+impl Serialize for Estimate {
+    fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        let mut m = s.serialize_map(Some(self.values.len()))?;
+        for (k, v) in self.names.iter().zip(&self.values) {
+            m.serialize_entry(k, v)?;
+        }
+        m.end()
+    }
+}
+
+impl ScoreAnswer {
+    /// The wire form of an [`Answer`].
+    pub fn new(answer: Answer) -> Self {
+        let names = answer.outputs.clone();
+        let estimates = (0..answer.estimates.rows())
+            .map(|r| Estimate { names: names.clone(), values: answer.estimates.row(r).to_vec() })
+            .collect();
+        ScoreAnswer {
+            model: answer.model,
+            version: answer.version.to_string(),
+            digest: answer.digest,
+            route: answer.reason.route().to_owned(),
+            reason: answer.reason,
+            generation: answer.generation,
+            usage: *answer.estimates.usage(),
+            estimates,
+        }
+    }
+}
+
+/// An error, as every surface reports it: `{"error": {...}}`.
+#[derive(Clone, Debug, Serialize)]
+pub struct ErrorBody {
+    /// The error.
+    pub error: ErrorDetail,
+}
+
+/// What went wrong.
+#[derive(Clone, Debug, Serialize)]
+pub struct ErrorDetail {
+    /// A stable name: `bad_request`, `unknown_model`, `invalid_rows`,
+    /// `shape`, `too_many_rows`, `too_large`, `limit`, `trap`, `fault`,
+    /// `output`, `start`, `contract_changed`, `not_loaded`, `overloaded`,
+    /// `unauthorized`, `admin_disabled`, `not_ready`.
+    pub kind: String,
+    /// One line for people.
+    pub message: String,
+    /// The model, when one was named.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub model: Option<String>,
+    /// The version the request was routed to.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub version: Option<String>,
+    /// The route that picked it.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub route: Option<String>,
+    /// The limit hit, for `limit` and `too_many_rows`.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub limit: Option<String>,
+    /// Every invalid row, for `invalid_rows`: row number (0-based), feature,
+    /// value and the rule it broke.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub rows: Vec<RowError>,
+    /// Other facts, by name (models served, for `unknown_model`).
+    #[serde(skip_serializing_if = "BTreeMap::is_empty")]
+    pub details: BTreeMap<String, serde_json::Value>,
+}
+
+impl ErrorBody {
+    /// An error of `kind` with a message and nothing else.
+    pub fn new(kind: &str, message: impl Into<String>) -> Self {
+        ErrorBody {
+            error: ErrorDetail {
+                kind: kind.into(),
+                message: message.into(),
+                model: None,
+                version: None,
+                route: None,
+                limit: None,
+                rows: Vec::new(),
+                details: BTreeMap::new(),
+            },
+        }
+    }
+
+    /// A malformed request.
+    pub fn bad_request(message: impl Into<String>) -> Self {
+        Self::new("bad_request", message)
+    }
+
+    /// The wire form of a registry error.
+    pub fn from_request(e: RequestError) -> Self {
+        let mut body = Self::new(e.kind(), e.to_string());
+        match e {
+            RequestError::UnknownModel { model, served } => {
+                body.error.model = Some(model);
+                body.error.details.insert("served".into(), served.into());
+            }
+            RequestError::NotLoaded { model, version } => {
+                body.error.model = Some(model);
+                body.error.version = Some(version.to_string());
+            }
+            RequestError::Score { model, version, reason, error } => {
+                body.error.model = Some(model);
+                body.error.version = Some(version.to_string());
+                body.error.route = Some(reason.route().to_owned());
+                body.error.limit = error.limit().map(|l| l.name().to_owned());
+                body.error.message = error.to_string();
+                if let ScoreError::InvalidRows { errors } = error {
+                    body.error.rows = errors;
+                }
+            }
+        }
+        body
+    }
+}
+
+/// Which side is at fault for an error kind, for status codes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Blame {
+    /// The request was wrong (4xx).
+    Request,
+    /// No such model (404).
+    NotFound,
+    /// A limit stopped the model (500, kind `limit`).
+    Limit,
+    /// The model failed: trapped, declined, answered outside its contract, or failed to start (502).
+    Model,
+    /// The server (a bug, 500).
+    Server,
+}
+
+/// Who is at fault for a registry error.
+pub fn blame(e: &RequestError) -> Blame {
+    match e {
+        RequestError::UnknownModel { .. } => Blame::NotFound,
+        RequestError::NotLoaded { .. } => Blame::Server,
+        RequestError::Score { error, .. } => match error {
+            ScoreError::InvalidRows { .. } | ScoreError::Shape { .. } | ScoreError::TooManyRows(_) => Blame::Request,
+            ScoreError::Sandbox(crate::sandbox::SandboxError::Limit(_)) => Blame::Limit,
+            ScoreError::Start(crate::sandbox::StartError::Sandbox { error: crate::sandbox::SandboxError::Limit(_), .. }) => {
+                Blame::Limit
+            }
+            _ => Blame::Model,
+        },
+    }
+}
