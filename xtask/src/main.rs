@@ -8,7 +8,9 @@
 //!   compiled guest is committed.
 //! - `demo`: `build`, then `paddock demo` on the demo store.
 //! - `test`: `build`, then every test in the workspace (benchmarks run
-//!   once each, as tests), then every example.
+//!   once each, as tests), then every example, then the HTTP API against
+//!   schemathesis and an OpenMetrics parser (`tests/api/check_api.py`;
+//!   installs its pinned Python packages with pip).
 //! - `fuzz [SECONDS]`: `build`, installs cargo-fuzz if missing, then runs
 //!   each fuzz target in `fuzz/` for SECONDS (default 30), seeded with the
 //!   demo artifacts and sample rows. Any crash fails the task.
@@ -55,7 +57,7 @@ fn main() -> Result<()> {
                 cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
                 run(cmd)?;
             }
-            Ok(())
+            api_check(&root)
         }
         "fuzz" => {
             build(&root)?;
@@ -167,6 +169,25 @@ fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Resul
     let routes = root.join("models/train-demo/routes.toml");
     std::fs::copy(&routes, store.join("routes.toml")).with_context(|| format!("copying {}", routes.display()))?;
     Ok(())
+}
+
+/// Python packages the API check needs, pinned.
+const API_CHECK_PACKAGES: [&str; 2] = ["schemathesis==4.32.5", "prometheus-client==0.26.0"];
+
+/// The HTTP API against outside tools (`tests/api/check_api.py`):
+/// schemathesis on the served OpenAPI document, and the OpenMetrics parser
+/// on `/metrics`. Installs the pinned Python packages first.
+fn api_check(root: &Path) -> Result<()> {
+    let mut pip = Command::new("python3");
+    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(API_CHECK_PACKAGES);
+    run(pip).context("installing the API check's Python packages (needs python3 with pip)")?;
+    let mut build = cargo(root);
+    build.args(["build", "--quiet", "-p", "paddock-host", "--bin", "paddock"]);
+    run(build)?;
+    let mut check = Command::new("python3");
+    check.arg(root.join("tests/api/check_api.py"));
+    check.arg(root.join("target/debug/paddock")).arg(root.join("target/paddock/store")).arg("50");
+    run(check)
 }
 
 /// Runs every fuzz target for a bounded time, from seeds.

@@ -1,0 +1,272 @@
+#!/usr/bin/env python3
+"""Load and soak figures for `paddock serve`, measured with wrk on loopback.
+
+    python3 scripts/http_load.py load [SECONDS]     single-row and 64-row requests (default 15 s each)
+    python3 scripts/http_load.py soak [REQUESTS]    REQUESTS (default 1 000 000) with 100 swaps under way
+
+Needs `cargo xtask build` first (the demo store) and wrk (Debian package
+`wrk`; installed with apt-get when missing). Builds the release binary,
+serves a copy of the demo store's `overstay-risk` versions (logistic
+regression, 6 features) on a free loopback port, and drives it.
+
+`load` writes its section of BENCHMARKS.md: requests/s, rows/s, p50/p99
+latency for 1-row and 64-row requests, with the machine noted. wrk and the
+server share the machine's cores, as a sidecar and its caller would.
+
+`soak` sends at least REQUESTS requests while the store changes 100 times
+(routes flipping the default between two versions, an extra version added
+and removed) through the file watcher, samples the server's RSS every
+second, and fails unless no request failed (wrk's non-2xx count and socket
+errors are both zero), every swap was taken (the generation rose by at
+least 100), and RSS after warm-up stays within 10 % of its first post-warm-up
+sample. It writes its section of BENCHMARKS.md.
+"""
+import json
+import os
+import platform
+import re
+import shutil
+import subprocess
+import sys
+import tempfile
+import threading
+import time
+import urllib.request
+
+ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
+DEMO = os.path.join(ROOT, "target", "paddock", "store")
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+from bench_table import cpu  # noqa: E402
+
+ROW = {"expected_minutes": 95.0, "plugin_hour": 18, "member_overstay_rate": 0.2, "site_occupancy": 0.7,
+       "weekend": False, "fleet": False}
+ROUTES = '[models.overstay-risk]\ndefault = "{v}"\n'
+
+
+def ensure_wrk():
+    if shutil.which("wrk"):
+        return
+    print("installing wrk (apt-get)", file=sys.stderr)
+    subprocess.run(["apt-get", "install", "-y", "wrk"], check=False, stdout=subprocess.DEVNULL)
+    if not shutil.which("wrk"):
+        subprocess.run(["apt-get", "update"], check=True, stdout=subprocess.DEVNULL)
+        subprocess.run(["apt-get", "install", "-y", "wrk"], check=True, stdout=subprocess.DEVNULL)
+
+
+def build():
+    subprocess.run(["cargo", "build", "--release", "-q", "-p", "paddock-host", "--bin", "paddock"], cwd=ROOT, check=True)
+    return os.path.join(ROOT, "target", "release", "paddock")
+
+
+def make_store(dir):
+    os.makedirs(os.path.join(dir, "overstay-risk"))
+    for v in ("1.0.0", "1.1.0"):
+        shutil.copy(os.path.join(DEMO, "overstay-risk", f"{v}.wasm"), os.path.join(dir, "overstay-risk", f"{v}.wasm"))
+    write(os.path.join(dir, "routes.toml"), ROUTES.format(v="1.0.0"))
+
+
+def write(path, text):
+    tmp = path + ".partial"
+    with open(tmp, "w") as f:
+        f.write(text)
+    os.replace(tmp, path)
+
+
+class Server:
+    def __init__(self, binary, store):
+        self.proc = subprocess.Popen(
+            [binary, "serve", "--store", store, "--listen", "127.0.0.1:0", "--queue", "4096", "--rescan-secs", "5"],
+            stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
+        line = self.proc.stdout.readline().strip()
+        if not line.startswith("listening on "):
+            raise SystemExit(f"the server did not start: {line!r}")
+        self.base = line.removeprefix("listening on ")
+
+    def get(self, path):
+        return json.load(urllib.request.urlopen(self.base + path))
+
+    def rss_kib(self):
+        with open(f"/proc/{self.proc.pid}/status") as f:
+            for line in f:
+                if line.startswith("VmRSS:"):
+                    return int(line.split()[1])
+        return 0
+
+    def stop(self):
+        self.proc.terminate()
+        self.proc.wait(timeout=30)
+
+
+def wrk(url, rows, seconds, connections=64, threads=2):
+    body = json.dumps({"rows": [ROW] * rows, "context": {"region": "centre"}})
+    lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
+    lua.write('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n')
+    lua.write(f"wrk.body = {json.dumps(body)}\n")
+    lua.close()
+    out = subprocess.run(
+        ["wrk", "-t", str(threads), "-c", str(connections), "-d", f"{seconds}s", "--latency", "-s", lua.name, url],
+        capture_output=True, text=True, check=True).stdout
+    os.unlink(lua.name)
+    return parse_wrk(out)
+
+
+def to_ms(text):
+    value, unit = re.match(r"([\d.]+)(us|ms|s)", text).groups()
+    return float(value) * {"us": 1e-3, "ms": 1.0, "s": 1e3}[unit]
+
+
+def parse_wrk(out):
+    r = {"raw": out}
+    r["requests"] = int(re.search(r"(\d+) requests in", out).group(1))
+    r["rps"] = float(re.search(r"Requests/sec:\s+([\d.]+)", out).group(1))
+    for p in ("50", "99"):
+        r[f"p{p}_ms"] = to_ms(re.search(rf"^\s+{p}%\s+(\S+)", out, re.M).group(1))
+    m = re.search(r"Non-2xx or 3xx responses: (\d+)", out)
+    r["non2xx"] = int(m.group(1)) if m else 0
+    m = re.search(r"Socket errors: connect (\d+), read (\d+), write (\d+), timeout (\d+)", out)
+    r["socket_errors"] = sum(int(x) for x in m.groups()) if m else 0
+    return r
+
+
+def replace_section(name, lines):
+    start, end = f"<!-- {name} -->", f"<!-- /{name} -->"
+    path = os.path.join(ROOT, "BENCHMARKS.md")
+    text = open(path).read() if os.path.exists(path) else "# Benchmarks\n"
+    block = "\n".join([start, *lines, end])
+    if start in text:
+        before, rest = text.split(start, 1)
+        text = before + block + rest.split(end, 1)[1]
+    else:
+        text = text.rstrip() + "\n\n" + block + "\n"
+    with open(path, "w") as f:
+        f.write(text)
+    print("\n".join(lines))
+
+
+def machine():
+    return f"{cpu()}, {os.cpu_count()} cores, {platform.system()} {platform.release()}"
+
+
+def load(seconds):
+    binary = build()
+    with tempfile.TemporaryDirectory() as store:
+        make_store(store)
+        server = Server(binary, store)
+        try:
+            url = server.base + "/v1/models/overstay-risk/score"
+            wrk(url, 1, 3)  # warm-up
+            results = [(rows, wrk(url, rows, seconds)) for rows in (1, 64)]
+        finally:
+            server.stop()
+    table = []
+    for rows, r in results:
+        if r["non2xx"] or r["socket_errors"]:
+            raise SystemExit(f"{rows}-row load: {r['non2xx']} non-2xx, {r['socket_errors']} socket errors\n{r['raw']}")
+        table.append(f"| {rows} | {r['rps']:,.0f} | {r['rps'] * rows:,.0f} | {r['p50_ms']:.2f} ms | {r['p99_ms']:.2f} ms | {r['requests']:,} |")
+    single = results[0][1]
+    replace_section("http-load", [
+        "## HTTP: load",
+        "",
+        f"`python3 scripts/http_load.py load {seconds}`: `paddock serve` (release build) on loopback serving",
+        "`overstay-risk` (logistic regression, 6 features) from the demo store; wrk with 2 threads and 64",
+        f"connections for {seconds} s per row count, on the same machine (wrk and the server share its cores).",
+        f"Machine: {machine()}.",
+        "",
+        "| rows per request | requests/s | rows/s | p50 latency | p99 latency | requests |",
+        "|---|---|---|---|---|---|",
+        *table,
+        "",
+        f"Targets from issue 5: ≥ 20 000 single-row requests/s on 2 cores — {single['rps']:,.0f}, "
+        f"{'met' if single['rps'] >= 20000 else 'not met'}; p99 ≤ 5 ms — {single['p99_ms']:.2f} ms, "
+        f"{'met' if single['p99_ms'] <= 5 else 'not met'}.",
+    ])
+
+
+def soak(total):
+    binary = build()
+    with tempfile.TemporaryDirectory() as store:
+        make_store(store)
+        server = Server(binary, store)
+        url = server.base + "/v1/models/overstay-risk/score"
+        try:
+            rate = wrk(url, 1, 3)["rps"]
+            # Long enough for REQUESTS at the measured rate, and for swaps
+            # at least 0.6 s apart, so the watcher (which lets changes
+            # settle for 0.2 s) sees each one on its own.
+            seconds = max(int(total / (rate * 0.9)) + 5, 70)
+            start_generation = server.get("/v1/status")["generation"]
+            rss = []
+            done = threading.Event()
+
+            def sample():
+                while not done.is_set():
+                    rss.append(server.rss_kib())
+                    time.sleep(1)
+
+            def swap():
+                gap = seconds / 110
+                extra = os.path.join(store, "charge-minutes")
+                for i in range(100):
+                    time.sleep(gap)
+                    if i % 2 == 0:
+                        write(os.path.join(store, "routes.toml"), ROUTES.format(v="1.1.0" if i % 4 == 0 else "1.0.0"))
+                    elif i % 4 == 1:
+                        os.makedirs(extra, exist_ok=True)
+                        shutil.copy(os.path.join(DEMO, "charge-minutes", "1.0.0.wasm"), os.path.join(extra, "1.0.0.wasm.partial"))
+                        os.replace(os.path.join(extra, "1.0.0.wasm.partial"), os.path.join(extra, "1.0.0.wasm"))
+                    else:
+                        os.remove(os.path.join(extra, "1.0.0.wasm"))
+
+            sampler = threading.Thread(target=sample)
+            swapper = threading.Thread(target=swap)
+            sampler.start()
+            swapper.start()
+            r = wrk(url, 1, seconds)
+            swapper.join()
+            time.sleep(1)
+            done.set()
+            sampler.join()
+            generations = server.get("/v1/status")["generation"] - start_generation
+        finally:
+            server.stop()
+    with open(os.path.join(ROOT, "target", "paddock", "soak-rss.txt"), "w") as f:
+        f.write("\n".join(str(k) for k in rss) + "\n")
+    warm = rss[len(rss) // 5:] or rss
+    base, top, low = warm[0], max(warm), min(warm)
+    drift = max(top - base, base - low) / base
+    failed = r["non2xx"] + r["socket_errors"]
+    ok = failed == 0 and r["requests"] >= total and generations >= 100 and drift <= 0.10
+    replace_section("http-soak", [
+        "## HTTP: soak",
+        "",
+        f"`python3 scripts/http_load.py soak {total}`: {r['requests']:,} single-row requests over {seconds} s",
+        "(wrk, 2 threads, 64 connections) while the store changed 100 times through the file watcher (the",
+        "default route flipping between two versions; an extra artifact added and removed).",
+        f"Machine: {machine()}.",
+        "",
+        f"- failed requests: {r['non2xx']} non-2xx, {r['socket_errors']} socket errors",
+        f"- store generations taken during the run: {generations}",
+        f"- throughput {r['rps']:,.0f} requests/s; p50 {r['p50_ms']:.2f} ms, p99 {r['p99_ms']:.2f} ms",
+        f"- RSS sampled every second ({len(rss)} samples): {rss[0] / 1024:.1f} MiB at start, "
+        f"{base / 1024:.1f} MiB after warm-up (first fifth dropped), max {top / 1024:.1f} MiB, min {low / 1024:.1f} MiB, "
+        f"end {rss[-1] / 1024:.1f} MiB: largest drift from the post-warm-up sample {drift * 100:.1f} % "
+        f"({'within' if drift <= 0.10 else 'over'} 10 %)",
+        f"- verdict: {'passed' if ok else 'FAILED'}",
+    ])
+    if not ok:
+        raise SystemExit("soak failed")
+
+
+def main():
+    ensure_wrk()
+    mode = sys.argv[1] if len(sys.argv) > 1 else "load"
+    if mode == "load":
+        load(int(sys.argv[2]) if len(sys.argv) > 2 else 15)
+    elif mode == "soak":
+        soak(int(sys.argv[2]) if len(sys.argv) > 2 else 1_000_000)
+    else:
+        raise SystemExit(__doc__)
+
+
+if __name__ == "__main__":
+    main()
