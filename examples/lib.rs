@@ -1,5 +1,5 @@
-//! Embedding examples for paddock; see `embed.rs`, `limits.rs` and
-//! `store.rs`. This library only finds the demo artifacts for them.
+//! Embedding examples for paddock; see `embed.rs`, `limits.rs`,
+//! `store.rs` and `service.rs`. This library only finds the demo artifacts for them.
 
 use std::path::PathBuf;
 

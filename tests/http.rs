@@ -110,13 +110,17 @@ fn put(store: &Path, model: &str, version: &str, bytes: &[u8]) -> Digest {
 /// A store with `m` (y = 2x + 1) and `affine` (the hand-written fixture in
 /// mode 1: `score` never returns), both routed when `routes` is set.
 fn store(dir: &Path, routes: bool) -> Registry {
+    store_with_deadline(dir, routes, Duration::from_millis(300))
+}
+
+fn store_with_deadline(dir: &Path, routes: bool, deadline: Duration) -> Registry {
     put(dir, "m", "1.0.0", &line_artifact("m", "1.0.0", 2.0, 1.0, None));
     put(dir, "affine", "1.0.0", &paddock_host::pack(&fixture("affine.wat"), Some(&[1]), None).unwrap());
     let text = "[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n";
     if routes {
         write_atomically(&dir.join("routes.toml"), text.as_bytes());
     }
-    let limits = Limits { deadline: Duration::from_millis(300), ..Limits::default() };
+    let limits = Limits { deadline, ..Limits::default() };
     let options = RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
     Registry::open(&Runtime::new().unwrap(), dir, options).unwrap()
 }
@@ -224,18 +228,24 @@ fn a_limit_hit_is_500_and_a_model_fault_is_502() {
 fn a_full_queue_is_503_with_retry_after() {
     let dir = tempfile::tempdir().unwrap();
     let options = ServeOptions { concurrency: 1, queue: 0, retry_after_secs: 2, ..ServeOptions::default() };
-    let s = Server::start(store(dir.path(), true), options);
-    let url = score_url(&s, "affine");
-    // The spinning model holds the only permit for its 300 ms deadline.
-    let busy = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None).status);
-    std::thread::sleep(Duration::from_millis(100));
-    let r = call("POST", &score_url(&s, "affine"), Some(r#"{"rows": [{"x": 1}]}"#), None);
-    assert_eq!((r.status, r.kind().as_str()), (503, "overloaded"), "{}", r.body);
-    assert_eq!(r.retry_after.as_deref(), Some("2"));
-    // Another model has its own limit and is not held up.
+    // The spinning model holds the only permit for its whole 1 s deadline;
+    // of two calls started together, one must find it taken.
+    let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(1)), options);
+    let calls: Vec<_> = (0..2)
+        .map(|_| {
+            let url = score_url(&s, "affine");
+            std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None))
+        })
+        .collect();
+    // Meanwhile another model has its own limit and is not held up.
+    std::thread::sleep(Duration::from_millis(50));
     let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
     assert_eq!(r.status, 200);
-    assert_eq!(busy.join().unwrap(), 500);
+    let mut replies: Vec<Reply> = calls.into_iter().map(|c| c.join().unwrap()).collect();
+    replies.sort_by_key(|r| r.status);
+    assert_eq!((replies[0].status, replies[0].kind().as_str()), (500, "limit"), "{}", replies[0].body);
+    assert_eq!((replies[1].status, replies[1].kind().as_str()), (503, "overloaded"), "{}", replies[1].body);
+    assert_eq!(replies[1].retry_after.as_deref(), Some("2"));
 }
 
 #[test]
@@ -326,11 +336,11 @@ fn the_openapi_document_is_served_and_names_every_route() {
 #[test]
 fn shutdown_lets_the_request_in_flight_finish() {
     let dir = tempfile::tempdir().unwrap();
-    let mut s = Server::start(store(dir.path(), true), ServeOptions::default());
+    let mut s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(2)), ServeOptions::default());
     let url = score_url(&s, "affine");
-    // This call runs for its whole 300 ms deadline.
+    // This call runs for its whole 2 s deadline; shut down a quarter of the way in.
     let in_flight = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None));
-    std::thread::sleep(Duration::from_millis(80));
+    std::thread::sleep(Duration::from_millis(500));
     s.stop();
     let r = in_flight.join().unwrap();
     assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);

@@ -333,3 +333,20 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     let s = audit(&healthy, &["--trust", keys.to_str().unwrap()]);
     assert!(s.contains("is not signed, and the policy requires a signature"), "{s}");
 }
+
+#[test]
+fn stream_answers_each_line_in_order_and_exits_3_when_one_failed() {
+    let store = root().join("target/paddock/store");
+    let row = r#""row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}"#;
+    let input = format!(
+        "{{\"id\": \"a\", \"model\": \"overstay-risk\", \"context\": {{\"region\": \"north\"}}, {row}}}\nnonsense\n{{\"id\": \"c\", \"model\": \"overstay-risk\", {row}}}\n"
+    );
+    let out = paddock(&["stream", "--store", store.to_str().unwrap()], Some(&input));
+    assert_eq!(out.status.code(), Some(3), "{}", text(&out.stderr));
+    let lines: Vec<serde_json::Value> = text(&out.stdout).lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(lines.len(), 3);
+    assert_eq!((lines[0]["id"].clone(), lines[0]["answer"]["route"].clone()), ("a".into(), "north".into()));
+    assert_eq!(lines[1]["error"]["kind"], "bad_request");
+    assert_eq!((lines[2]["id"].clone(), lines[2]["answer"]["route"].clone()), ("c".into(), "default".into()));
+    assert!(text(&out.stderr).contains("3 lines: 2 answered, 1 failed"), "{}", text(&out.stderr));
+}

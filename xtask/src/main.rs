@@ -52,7 +52,7 @@ fn main() -> Result<()> {
             cmd.args(["test", "--workspace", "--all-targets"]).args(&rest);
             run(cmd)?;
             // Examples must run as-is, not just compile.
-            for example in ["embed", "limits", "store"] {
+            for example in ["embed", "limits", "store", "service"] {
                 let mut cmd = cargo(&root);
                 cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
                 run(cmd)?;
