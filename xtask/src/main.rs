@@ -7,10 +7,11 @@
 //!   `target/paddock/store/`. Guests are always built from source; no
 //!   compiled guest is committed.
 //! - `demo`: `build`, then `paddock demo` on the demo store.
-//! - `test`: `build`, then every test in the workspace (benchmarks run
-//!   once each, as tests), then every example, then the HTTP API against
-//!   schemathesis and an OpenMetrics parser (`tests/api/check_api.py`;
-//!   installs its pinned Python packages with pip).
+//! - `test`: `build`; installs the pinned Python packages the tests use as
+//!   outside references (pip) and exports scikit-learn's reference models;
+//!   then every test in the workspace (benchmarks run once each, as tests),
+//!   every example, and the HTTP API against schemathesis and an
+//!   OpenMetrics parser (`tests/api/check_api.py`).
 //! - `fuzz [SECONDS]`: `build`, installs cargo-fuzz if missing, then runs
 //!   each fuzz target in `fuzz/` for SECONDS (default 30), seeded with the
 //!   demo artifacts and sample rows. Any crash fails the task.
@@ -48,6 +49,11 @@ fn main() -> Result<()> {
         }
         "test" => {
             build(&root)?;
+            python_packages()?;
+            // scikit-learn's reference models and predictions, for tests/sklearn.rs.
+            let mut export = Command::new("python3");
+            export.arg(root.join("tests/sklearn/export.py")).arg(root.join("target/paddock/sklearn"));
+            run(export)?;
             let mut cmd = cargo(&root);
             cmd.args(["test", "--workspace", "--all-targets"]).args(&rest);
             run(cmd)?;
@@ -171,16 +177,22 @@ fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Resul
     Ok(())
 }
 
-/// Python packages the API check needs, pinned.
-const API_CHECK_PACKAGES: [&str; 2] = ["schemathesis==4.32.5", "prometheus-client==0.26.0"];
+/// Python packages the tests use as outside references, pinned:
+/// schemathesis and the OpenMetrics parser for the HTTP API, scikit-learn
+/// for fidelity.
+const PYTHON_PACKAGES: [&str; 3] = ["schemathesis==4.32.5", "prometheus-client==0.26.0", "scikit-learn==1.9.1"];
+
+/// Installs [`PYTHON_PACKAGES`] with pip (quick when they are there).
+fn python_packages() -> Result<()> {
+    let mut pip = Command::new("python3");
+    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
+    run(pip).context("installing the tests' Python packages (needs python3 with pip)")
+}
 
 /// The HTTP API against outside tools (`tests/api/check_api.py`):
 /// schemathesis on the served OpenAPI document, and the OpenMetrics parser
-/// on `/metrics`. Installs the pinned Python packages first.
+/// on `/metrics`.
 fn api_check(root: &Path) -> Result<()> {
-    let mut pip = Command::new("python3");
-    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(API_CHECK_PACKAGES);
-    run(pip).context("installing the API check's Python packages (needs python3 with pip)")?;
     let mut build = cargo(root);
     build.args(["build", "--quiet", "-p", "paddock-host", "--bin", "paddock"]);
     run(build)?;

@@ -1,0 +1,129 @@
+//! Fidelity against scikit-learn (an outside reference): models trained by
+//! scikit-learn, exported to the built-in estimators' params, packed with the
+//! generic guests and scored in the sandbox, must give scikit-learn's own
+//! predictions within 1e-9 relative.
+//!
+//! Dataset: the diabetes data shipped inside scikit-learn
+//! (`sklearn.datasets.load_diabetes`; Efron et al., Annals of Statistics 2004),
+//! all 442 rows. The reference models and predictions come from
+//! `tests/sklearn/export.py`, which `cargo xtask test` runs with the pinned
+//! scikit-learn (1.9.1; the exported files record the exact scikit-learn,
+//! numpy and Python versions, and each assertion message repeats them).
+
+use paddock_guest::{
+    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, Packaged, SplitRule, Tree, TreesParams,
+    encode_params,
+};
+use paddock_host::{Model, ModelOptions, Row, Runtime};
+use paddock_tests::{guest, load, root};
+use serde_json::Value;
+
+/// The export for one model, written by tests/sklearn/export.py.
+fn export(name: &str) -> Value {
+    let path = root().join("target/paddock/sklearn").join(format!("{name}.json"));
+    let text = std::fs::read(&path).unwrap_or_else(|e| {
+        panic!(
+            "{}: {e}. Export the scikit-learn references first: `python3 tests/sklearn/export.py target/paddock/sklearn` \
+             (needs scikit-learn; `cargo xtask test` does both)",
+            path.display()
+        )
+    });
+    serde_json::from_slice(&text).unwrap()
+}
+
+fn floats(v: &Value) -> Vec<f64> {
+    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
+}
+
+fn contract(name: &str, features: &[String], output: &str) -> Contract {
+    Contract {
+        name: name.into(),
+        version: "1.0.0".into(),
+        about: String::new(),
+        features: features.iter().map(|f| Feature::real(f, Bounds::OPEN)).collect(),
+        outputs: vec![Output::new(output, Bounds::OPEN)],
+    }
+}
+
+/// Scores every exported row in one call and returns the largest relative
+/// difference from scikit-learn's predictions.
+fn worst_relative_error(model: &Model, e: &Value, features: &[String]) -> f64 {
+    let rows: Vec<Row> = e["rows"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| features.iter().cloned().zip(floats(r)).collect())
+        .collect();
+    let want = floats(&e["predictions"]);
+    assert_eq!(rows.len(), 442);
+    let got = model.score(&rows).unwrap();
+    (0..rows.len()).map(|i| ((got.row(i)[0] - want[i]) / want[i]).abs()).fold(0.0, f64::max)
+}
+
+fn versions(e: &Value) -> String {
+    format!("{} on {}", e["model"], e["versions"])
+}
+
+#[test]
+fn linear_regression_from_scikit_learn_matches_its_predictions_within_1e_9() {
+    let e = export("linear");
+    let features: Vec<String> = e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
+    let params = LinearParams {
+        link: Link::Identity,
+        intercepts: vec![e["intercept"].as_f64().unwrap()],
+        weights: vec![floats(&e["coef"])],
+        impute: vec![],
+    };
+    let blob = encode_params(&Packaged { contract: contract("diabetes-linear", &features, "progression"), params });
+    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-linear"), &blob, ModelOptions::default());
+    let worst = worst_relative_error(&model, &e, &features);
+    assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
+    eprintln!("LinearRegression: largest relative error {worst:e} over 442 rows ({})", versions(&e));
+}
+
+#[test]
+fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
+    let e = export("boosted");
+    let features: Vec<String> = e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
+    let rate = e["learning_rate"].as_f64().unwrap();
+    // scikit-learn adds `learning_rate × leaf value` to the initial
+    // prediction tree by tree, and sends a row left when
+    // `x <= threshold`: the same products, added in the same order.
+    let trees = e["trees"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|t| {
+            let left = t["children_left"].as_array().unwrap();
+            let right = t["children_right"].as_array().unwrap();
+            let feature = t["feature"].as_array().unwrap();
+            let threshold = floats(&t["threshold"]);
+            let value = floats(&t["value"]);
+            let nodes = (0..left.len())
+                .map(|i| match left[i].as_i64().unwrap() {
+                    -1 => Node::Leaf { value: rate * value[i] },
+                    l => Node::Split {
+                        feature: feature[i].as_u64().unwrap() as u32,
+                        threshold: threshold[i],
+                        left: l as u32,
+                        right: right[i].as_u64().unwrap() as u32,
+                        missing: Branch::Left,
+                    },
+                })
+                .collect();
+            Tree { output: 0, nodes }
+        })
+        .collect();
+    let params = TreesParams {
+        features: features.len() as u32,
+        base: vec![e["init"].as_f64().unwrap()],
+        combine: Combine::Sum,
+        split: SplitRule::LessOrEqual,
+        trees,
+    };
+    let blob = encode_params(&Packaged { contract: contract("diabetes-boosted", &features, "progression"), params });
+    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, ModelOptions::default());
+    let worst = worst_relative_error(&model, &e, &features);
+    assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
+    eprintln!("GradientBoostingRegressor: largest relative error {worst:e} over 442 rows ({})", versions(&e));
+}
