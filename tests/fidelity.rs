@@ -8,26 +8,17 @@
 //! - A hand-written WAT model, no SDK: the contract is language-neutral.
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Evaluate, Feature, LinearParams, Link, Node, Output, Packaged, SplitRule,
+    Branch, Combine, Evaluate, LinearParams, Link, Node, Packaged, SplitRule,
     Tree, Trees, TreesParams, encode_params,
 };
 use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_host::{Model, ModelOptions, Row, Runtime, checks};
-use paddock_tests::{demo_artifact, fixture, guest, load, random_cells, random_ensemble};
+use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble};
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linear::linear_regression::LinearRegression;
 
 
-fn contract(name: &str, features: &[String], output: &str) -> Contract {
-    Contract {
-        name: name.into(),
-        version: "1.0.0".into(),
-        about: String::new(),
-        features: features.iter().map(|f| Feature::real(f, Bounds::OPEN)).collect(),
-        outputs: vec![Output::new(output, Bounds::OPEN)],
-    }
-}
 
 #[test]
 fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
@@ -42,7 +33,7 @@ fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
 
     let names: Vec<String> = data.feature_names.iter().map(|s| s.to_lowercase()).collect();
     let params = encode_params(&Packaged {
-        contract: contract("diabetes-progression", &names, "progression"),
+        contract: open_contract("diabetes-progression", &names, "progression"),
         params: LinearParams { link: Link::Identity, intercepts: vec![*fit.intercept()], weights: vec![weights], impute: vec![] },
     });
     let runtime = Runtime::new().unwrap();
@@ -75,7 +66,7 @@ fn tree_ensemble_in_the_sandbox_equals_native_bit_for_bit() {
     let features = 9;
     let params = random_ensemble(7, 200, 6, features);
     let names: Vec<String> = (0..features).map(|i| format!("f{i}")).collect();
-    let mut named = contract("random-forest", &names, "score");
+    let mut named = open_contract("random-forest", &names, "score");
     named.features.iter_mut().for_each(|f| f.required = false);
     let blob = encode_params(&Packaged { contract: named, params: params.clone() });
     let runtime = Runtime::new().unwrap();
@@ -109,7 +100,7 @@ fn small_ensemble_in_the_sandbox_matches_hand_computed_values() {
         split: SplitRule::Less,
         trees: vec![stump(0, 5.0, 1.0, 2.0, Branch::Right), stump(1, 0.0, 0.5, -0.25, Branch::Left)],
     };
-    let mut named = contract("stumps", &["a".into(), "b".into()], "y");
+    let mut named = open_contract("stumps", &["a".into(), "b".into()], "y");
     named.features.iter_mut().for_each(|f| f.required = false);
     let runtime = Runtime::new().unwrap();
     let model = load(

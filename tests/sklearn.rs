@@ -10,12 +10,9 @@
 //! scikit-learn (1.9.1; the exported files record the exact scikit-learn,
 //! numpy and Python versions, and each assertion message repeats them).
 
-use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, Packaged, SplitRule, Tree, TreesParams,
-    encode_params,
-};
+use paddock_guest::{Branch, Combine, LinearParams, Link, Node, Packaged, SplitRule, Tree, TreesParams, encode_params};
 use paddock_host::{Model, ModelOptions, Row, Runtime};
-use paddock_tests::{guest, load, root};
+use paddock_tests::{guest, load, open_contract, root};
 use serde_json::Value;
 
 /// The export for one model, written by tests/sklearn/export.py.
@@ -35,15 +32,6 @@ fn floats(v: &Value) -> Vec<f64> {
     v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
 }
 
-fn contract(name: &str, features: &[String], output: &str) -> Contract {
-    Contract {
-        name: name.into(),
-        version: "1.0.0".into(),
-        about: String::new(),
-        features: features.iter().map(|f| Feature::real(f, Bounds::OPEN)).collect(),
-        outputs: vec![Output::new(output, Bounds::OPEN)],
-    }
-}
 
 /// Scores every exported row in one call and returns the largest relative
 /// difference from scikit-learn's predictions.
@@ -74,7 +62,7 @@ fn linear_regression_from_scikit_learn_matches_its_predictions_within_1e_9() {
         weights: vec![floats(&e["coef"])],
         impute: vec![],
     };
-    let blob = encode_params(&Packaged { contract: contract("diabetes-linear", &features, "progression"), params });
+    let blob = encode_params(&Packaged { contract: open_contract("diabetes-linear", &features, "progression"), params });
     let model = load(&Runtime::new().unwrap(), &guest("paddock-model-linear"), &blob, ModelOptions::default());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
@@ -121,7 +109,7 @@ fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
         split: SplitRule::LessOrEqual,
         trees,
     };
-    let blob = encode_params(&Packaged { contract: contract("diabetes-boosted", &features, "progression"), params });
+    let blob = encode_params(&Packaged { contract: open_contract("diabetes-boosted", &features, "progression"), params });
     let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, ModelOptions::default());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));

@@ -104,19 +104,27 @@ pub fn hostile_module(case: &str) -> String {
     module.replace(";; @case", &format!("{case}\n{}", kept.join("\n")))
 }
 
+/// A contract `name` 1.0.0 over real, unbounded `features` with one
+/// unbounded real `output`: the shape of a fitted regression.
+pub fn open_contract(name: &str, features: &[String], output: &str) -> paddock_guest::Contract {
+    use paddock_guest::{Bounds, Contract, Feature, Output};
+    Contract {
+        name: name.into(),
+        version: "1.0.0".into(),
+        about: String::new(),
+        features: features.iter().map(|f| Feature::real(f, Bounds::OPEN)).collect(),
+        outputs: vec![Output::new(output, Bounds::OPEN)],
+    }
+}
+
 /// Artifact bytes of a one-feature line, `y = slope·x + intercept`, as model
 /// `name` at `version`, packed from the generic linear guest. With `checks`,
 /// it carries checks at x = 0, 1, 2 — recorded honestly, or off by one when
 /// `honest` is false (a version that must fail its own checks).
 pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, checks: Option<bool>) -> Vec<u8> {
-    use paddock_guest::{Bounds, Contract, Feature, LinearParams, Link, Output, Packaged, encode_params};
-    let contract = Contract {
-        name: name.into(),
-        version: version.into(),
-        about: String::new(),
-        features: vec![Feature::real("x", Bounds::OPEN)],
-        outputs: vec![Output::new("y", Bounds::OPEN)],
-    };
+    use paddock_guest::{LinearParams, Link, Packaged, encode_params};
+    let mut contract = open_contract(name, &["x".to_owned()], "y");
+    contract.version = version.into();
     let params = LinearParams { link: Link::Identity, intercepts: vec![intercept], weights: vec![vec![slope]], impute: vec![] };
     let blob = encode_params(&Packaged { contract, params });
     let checks = checks.map(|honest| paddock_host::Checks {

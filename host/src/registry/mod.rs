@@ -143,7 +143,7 @@ pub enum RequestError {
         /// The version that was asked.
         version: Version,
         /// Why that version.
-        reason: Reason,
+        reason: Arc<Reason>,
         /// What went wrong.
         error: ScoreError,
     },
@@ -183,8 +183,8 @@ pub struct Answer {
     pub version: Version,
     /// Its artifact's digest.
     pub digest: Digest,
-    /// Why that version.
-    pub reason: Reason,
+    /// Why that version (shared with the routes: no copy per request).
+    pub reason: Arc<Reason>,
     /// The registry generation the request was routed in.
     pub generation: u64,
     /// The names of the estimates' columns: the answering version's outputs.
@@ -543,7 +543,7 @@ impl Registry {
 
     /// The version a request would be routed to now, and why, without
     /// scoring anything.
-    pub fn route(&self, model: &str, context: &Context, at: Option<Timestamp>) -> Option<(Version, Reason)> {
+    pub fn route(&self, model: &str, context: &Context, at: Option<Timestamp>) -> Option<(Version, Arc<Reason>)> {
         let snapshot = self.inner.current.load();
         let at = at.unwrap_or_else(|| self.inner.options.clock.now());
         let route = snapshot.routes.model(model)?.route(model, context, at);

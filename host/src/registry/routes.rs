@@ -42,7 +42,7 @@
 
 use std::collections::BTreeMap;
 use std::fmt;
-use std::sync::Mutex;
+use std::sync::{Arc, Mutex};
 
 use jiff::Timestamp;
 use jiff::tz::TimeZone;
@@ -162,9 +162,9 @@ pub struct ModelRoutes {
     shadow: Option<Shadow>,
     /// Reasons, precomputed so routing allocates nothing: index 0 is the
     /// default, `i + 1` rule `i`.
-    reasons: Vec<Reason>,
+    reasons: Vec<Arc<Reason>>,
     /// The canary's reason for each of the above.
-    canary_reasons: Vec<Reason>,
+    canary_reasons: Vec<Arc<Reason>>,
 }
 
 #[derive(Clone, Debug)]
@@ -212,7 +212,7 @@ pub struct Route<'a> {
     /// The version that answers.
     pub version: &'a Version,
     /// Why.
-    pub reason: &'a Reason,
+    pub reason: &'a Arc<Reason>,
 }
 
 impl Routes {
@@ -311,12 +311,12 @@ impl Routes {
                 Some(Shadow { version: version?, sample: s.sample, tolerance: s.tolerance })
             });
             let Some(default) = default else { continue };
-            let mut reasons = vec![Reason::Default];
-            reasons.extend(rules.iter().map(|r| Reason::Rule { name: r.name.clone() }));
+            let mut reasons = vec![Arc::new(Reason::Default)];
+            reasons.extend(rules.iter().map(|r| Arc::new(Reason::Rule { name: r.name.clone() })));
             let canary_reasons = match &canary {
                 Some(c) => reasons
                     .iter()
-                    .map(|base| Reason::Canary { key: c.key.clone(), share: c.share, instead_of: base.to_string() })
+                    .map(|base| Arc::new(Reason::Canary { key: c.key.clone(), share: c.share, instead_of: base.to_string() }))
                     .collect(),
                 None => Vec::new(),
             };

@@ -74,7 +74,7 @@ pub struct ScoreAnswer {
     /// The route that picked it: `default`, a rule's name, or `canary`.
     pub route: String,
     /// Why, in full.
-    pub reason: Reason,
+    pub reason: std::sync::Arc<Reason>,
     /// The registry generation the request was routed in.
     pub generation: u64,
     /// One object per row: output name → value, in contract order.
