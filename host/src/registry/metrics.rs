@@ -57,42 +57,67 @@ fn num(v: f64) -> String {
     }
 }
 
+/// A family with one sample per model version (or shadow): its name, type,
+/// help, and the sample's value (none: no sample).
+type Single<T> = (&'static str, &'static str, &'static str, fn(&T) -> Option<String>);
+
+/// A family with one sample per model version (or shadow) and key of a
+/// count map: its name, help, the extra label's name, and the map.
+type Keyed<T> = (&'static str, &'static str, &'static str, fn(&T) -> &BTreeMap<String, u64>);
+
+/// Writes `# TYPE` and `# HELP` for a family.
+fn declare(out: &mut String, name: &str, kind: &str, help: &str) {
+    let _ = writeln!(out, "# TYPE paddock_{name} {kind}\n# HELP paddock_{name} {help}");
+}
+
+/// Writes the families of `singles` and `keyed` for `items`, each named by
+/// its model and version. Counter samples take the `_total` suffix.
+fn families<T>(out: &mut String, items: &[T], id: fn(&T) -> (&str, &str), singles: &[Single<T>], keyed: &[Keyed<T>]) {
+    for (name, kind, help, value) in singles {
+        declare(out, name, kind, help);
+        let suffix = if *kind == "counter" { "_total" } else { "" };
+        for item in items {
+            if let Some(v) = value(item) {
+                let (model, version) = id(item);
+                let _ = writeln!(out, "paddock_{name}{suffix}{} {v}", labels(model, version, None));
+            }
+        }
+    }
+    for (name, help, label, counts) in keyed {
+        declare(out, name, "counter", help);
+        for item in items {
+            let (model, version) = id(item);
+            for (key, n) in counts(item) {
+                let _ = writeln!(out, "paddock_{name}_total{} {n}", labels(model, version, Some((label, key))));
+            }
+        }
+    }
+}
+
 /// Renders the ledger and the registry's state.
 pub fn render(usage: &UsageReport, status: &Status) -> String {
     let mut out = String::new();
-    let family = |out: &mut String, name: &str, kind: &str, help: &str| {
-        let _ = writeln!(out, "# TYPE paddock_{name} {kind}\n# HELP paddock_{name} {help}");
-    };
-    let v = &usage.versions;
-
-    family(&mut out, "calls", "counter", "Calls to a model version, successful or not.");
-    for u in v {
-        let _ = writeln!(out, "paddock_calls_total{} {}", labels(&u.model, &u.version, None), u.calls);
-    }
-    family(&mut out, "rows", "counter", "Rows in the calls to a model version.");
-    for u in v {
-        let _ = writeln!(out, "paddock_rows_total{} {}", labels(&u.model, &u.version, None), u.rows);
-    }
-    family(&mut out, "errors", "counter", "Failed calls to a model version, by kind of error.");
-    for u in v {
-        for (kind, n) in &u.errors {
-            let _ = writeln!(out, "paddock_errors_total{} {n}", labels(&u.model, &u.version, Some(("kind", kind))));
-        }
-    }
-    family(&mut out, "limit_hits", "counter", "Calls stopped by a limit, by limit.");
-    for u in v {
-        for (limit, n) in &u.limit_hits {
-            let _ = writeln!(out, "paddock_limit_hits_total{} {n}", labels(&u.model, &u.version, Some(("limit", limit))));
-        }
-    }
-    family(&mut out, "fuel", "counter", "Fuel (WebAssembly instructions, roughly) used by successful calls.");
-    for u in v {
-        if let Some(f) = u.fuel {
-            let _ = writeln!(out, "paddock_fuel_total{} {f}", labels(&u.model, &u.version, None));
-        }
-    }
-    family(&mut out, "call_seconds", "histogram", "Wall time per call, from taking an instance to checking the outputs.");
-    for u in v {
+    families(
+        &mut out,
+        &usage.versions,
+        |u| (&u.model, &u.version),
+        &[
+            ("calls", "counter", "Calls to a model version, successful or not.", |u| Some(u.calls.to_string())),
+            ("rows", "counter", "Rows in the calls to a model version.", |u| Some(u.rows.to_string())),
+            ("fuel", "counter", "Fuel (WebAssembly instructions, roughly) used by successful calls.", |u| {
+                u.fuel.map(|f| f.to_string())
+            }),
+            ("peak_memory_bytes", "gauge", "Largest linear memory any instance of the version reached.", |u| {
+                Some(u.peak_memory_bytes.to_string())
+            }),
+        ],
+        &[
+            ("errors", "Failed calls to a model version, by kind of error.", "kind", |u| &u.errors),
+            ("limit_hits", "Calls stopped by a limit, by limit.", "limit", |u| &u.limit_hits),
+        ],
+    );
+    declare(&mut out, "call_seconds", "histogram", "Wall time per call, from taking an instance to checking the outputs.");
+    for u in &usage.versions {
         let base = format!("model=\"{}\",version=\"{}\"", escape(&u.model), escape(&u.version));
         for (le, count) in WALL_BUCKETS.iter().zip(&u.wall_us.buckets) {
             let _ = writeln!(out, "paddock_call_seconds_bucket{{{base},le=\"{}\"}} {count}", num(*le));
@@ -101,38 +126,33 @@ pub fn render(usage: &UsageReport, status: &Status) -> String {
         let _ = writeln!(out, "paddock_call_seconds_count{{{base}}} {}", u.calls);
         let _ = writeln!(out, "paddock_call_seconds_sum{{{base}}} {}", num(u.wall_us.sum_seconds));
     }
-    family(&mut out, "peak_memory_bytes", "gauge", "Largest linear memory any instance of the version reached.");
-    for u in v {
-        let _ = writeln!(out, "paddock_peak_memory_bytes{} {}", labels(&u.model, &u.version, None), u.peak_memory_bytes);
-    }
+    families(
+        &mut out,
+        &usage.shadows,
+        |s| (&s.model, &s.version),
+        &[
+            ("shadow_compared", "counter", "Requests a shadow version scored and compared with the served answer.", |s| {
+                Some(s.compared.to_string())
+            }),
+            (
+                "shadow_over_tolerance",
+                "counter",
+                "Output values where the shadow differed from the served answer by more than the tolerance.",
+                |s| Some(s.over_tolerance.to_string()),
+            ),
+            ("shadow_max_abs_diff", "gauge", "Largest absolute difference between a shadow's and the served answer.", |s| {
+                Some(num(s.max_abs_diff))
+            }),
+            ("shadow_dropped", "counter", "Shadow samples dropped because the shadow queue was full.", |s| {
+                Some(s.dropped.to_string())
+            }),
+        ],
+        &[("shadow_errors", "Shadow calls that failed, by kind of error.", "kind", |s| &s.errors)],
+    );
 
-    let s = &usage.shadows;
-    family(&mut out, "shadow_compared", "counter", "Requests a shadow version scored and compared with the served answer.");
-    for u in s {
-        let _ = writeln!(out, "paddock_shadow_compared_total{} {}", labels(&u.model, &u.version, None), u.compared);
-    }
-    family(&mut out, "shadow_over_tolerance", "counter", "Output values where the shadow differed from the served answer by more than the tolerance.");
-    for u in s {
-        let _ = writeln!(out, "paddock_shadow_over_tolerance_total{} {}", labels(&u.model, &u.version, None), u.over_tolerance);
-    }
-    family(&mut out, "shadow_max_abs_diff", "gauge", "Largest absolute difference between a shadow's and the served answer.");
-    for u in s {
-        let _ = writeln!(out, "paddock_shadow_max_abs_diff{} {}", labels(&u.model, &u.version, None), num(u.max_abs_diff));
-    }
-    family(&mut out, "shadow_dropped", "counter", "Shadow samples dropped because the shadow queue was full.");
-    for u in s {
-        let _ = writeln!(out, "paddock_shadow_dropped_total{} {}", labels(&u.model, &u.version, None), u.dropped);
-    }
-    family(&mut out, "shadow_errors", "counter", "Shadow calls that failed, by kind of error.");
-    for u in s {
-        for (kind, n) in &u.errors {
-            let _ = writeln!(out, "paddock_shadow_errors_total{} {n}", labels(&u.model, &u.version, Some(("kind", kind))));
-        }
-    }
-
-    family(&mut out, "generation", "gauge", "The registry generation serving.");
+    declare(&mut out, "generation", "gauge", "The registry generation serving.");
     let _ = writeln!(out, "paddock_generation {}", status.generation);
-    family(&mut out, "artifacts", "gauge", "Artifacts in the store, by state.");
+    declare(&mut out, "artifacts", "gauge", "Artifacts in the store, by state.");
     let mut states: BTreeMap<&str, u64> =
         ["loaded", "refused", "kept_after_refusal", "kept_after_removal"].iter().map(|s| (*s, 0)).collect();
     for a in &status.artifacts {
