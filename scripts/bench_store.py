@@ -9,21 +9,17 @@ the median over runs with the range. The section sits between the markers
 below and replaces the previous one; `bench_table.py` keeps it.
 """
 import os
-import subprocess
 import sys
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_table import ROOT, cpu, med, median_ns  # noqa: E402
+from bench_table import ROOT, cpu, med, median_ns, run_bench  # noqa: E402
 
 START = "<!-- store-bench -->"
 END = "<!-- /store-bench -->"
 
 
 def one_run():
-    subprocess.run(
-        ["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", "store", "--", "--warm-up-time", "1", "--measurement-time", "5"],
-        cwd=ROOT, check=True, stdout=subprocess.DEVNULL,
-    )
+    run_bench("store", 1)
     return {
         "cold": median_ns("store_open", "cold"),
         "warm": median_ns("store_open", "warm"),

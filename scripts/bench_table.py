@@ -41,11 +41,16 @@ def cpu():
 BENCHES = ["single_warm", "single_fresh", "single_warm_2_threads", "single_fresh_2_threads", "native_single", f"batch/{BATCH}", f"batch_nans_as_is/{BATCH}", f"native/{BATCH}"]
 
 
-def one_run():
+def run_bench(bench, warm_up):
+    """One `cargo bench -p paddock-tests --bench BENCH`, 5 s of measurement per case."""
     subprocess.run(
-        ["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", "scoring", "--", "--warm-up-time", "2", "--measurement-time", "5"],
+        ["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", bench, "--", "--warm-up-time", str(warm_up), "--measurement-time", "5"],
         cwd=ROOT, check=True, stdout=subprocess.DEVNULL,
     )
+
+
+def one_run():
+    run_bench("scoring", 2)
     return {g: {b: median_ns(g, b) for b in BENCHES} for g in ("linear", "trees")}
 
 
