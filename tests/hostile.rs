@@ -81,6 +81,7 @@ fn outcome(runtime: &Runtime, case: &Case) -> String {
         Err(e) => {
             return match e {
                 LoadError::Imports(names) => format!("load: imports {}", names.join(", ")),
+                LoadError::WasiImports(names) => format!("load: wasi imports {}", names.join(", ")),
                 LoadError::Start(StartError::Sandbox { stage, error }) => format!("load: {stage} {}", sandbox(&error)),
                 LoadError::Start(StartError::Refused(_)) => "load: refused".into(),
                 LoadError::Contract(c) => {

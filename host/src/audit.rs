@@ -13,7 +13,8 @@ use crate::artifact::{Artifact, Digest, Surface, inspect_bytes};
 use crate::checks;
 use crate::contract::Contract;
 use crate::limits::{Limits, fmt_duration};
-use crate::model::{Model, ModelOptions};
+use crate::model::{LoadError, Model, ModelOptions};
+use crate::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
 use crate::trust::{Signature, TrustPolicy, Vouch};
 
@@ -60,7 +61,17 @@ pub struct EngineFacts {
     /// How the deadline is enforced.
     pub interruption: String,
     /// What the model may import.
-    pub imports_allowed: &'static str,
+    pub imports_allowed: String,
+}
+
+/// One WASI interface the artifact imports, and how the policy answers it.
+#[derive(Clone, Debug, Serialize)]
+pub struct WasiImport {
+    /// The import, with its version (`wasi:cli/stdout@0.2.9`).
+    pub interface: String,
+    /// What the policy gives it; `None` when no policy is set or the
+    /// interface is not one the host provides.
+    pub satisfied_by: Option<String>,
 }
 
 /// The audit of one artifact.
@@ -76,6 +87,10 @@ pub struct AuditReport {
     pub trust: TrustFinding,
     /// Imports, exports, memories, tables, data and custom sections.
     pub surface: Option<Surface>,
+    /// The WASI policy the audit ran under, if any.
+    pub wasi_policy: Option<WasiPolicy>,
+    /// Every WASI interface imported, and what satisfies it.
+    pub wasi: Vec<WasiImport>,
     /// The declared contract, when it loads.
     pub contract: Option<Contract>,
     /// The limits that will bind each call.
@@ -105,6 +120,8 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         bytes: 0,
         trust: TrustFinding { status: "refused", signer: None, error: None },
         surface: None,
+        wasi_policy: options.wasi.clone(),
+        wasi: Vec::new(),
         contract: None,
         limits: options.limits.clone(),
         engine: EngineFacts {
@@ -112,7 +129,10 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
             stack_bytes: config.stack_bytes,
             canonical_nans: config.canonical_nans,
             interruption: format!("epoch, {} tick", fmt_duration(crate::sandbox::TICK)),
-            imports_allowed: "none",
+            imports_allowed: match &options.wasi {
+                None => "none".into(),
+                Some(_) => format!("WASI {} only, over an empty world (WASI policy)", wasi::WASI_VERSION),
+            },
         },
         probe: None,
         violations: Vec::new(),
@@ -128,7 +148,17 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
     report.bytes = artifact.bytes().len() as u64;
     report.surface = inspect_bytes(artifact.bytes()).ok();
     for import in artifact.imports() {
-        report.violations.push(format!("imports `{import}`"));
+        if !wasi::is_wasi(import) {
+            report.violations.push(format!("imports `{import}`"));
+            continue;
+        }
+        let satisfied_by = options.wasi.as_ref().and_then(|p| wasi::satisfied_by(import, p));
+        match (&options.wasi, &satisfied_by) {
+            (None, _) => report.violations.push(format!("imports `{import}` (WASI loads only under a WASI policy)")),
+            (Some(_), None) => report.violations.push(format!("imports `{import}`, which the WASI policy does not provide")),
+            _ => {}
+        }
+        report.wasi.push(WasiImport { interface: import.clone(), satisfied_by });
     }
     trust(&mut report, path, &artifact, policy);
 
@@ -142,7 +172,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
     let model = match Model::load_with(&runtime, artifact, options.clone()) {
         Ok(m) => m,
         Err(e) => {
-            if !matches!(e, crate::model::LoadError::Imports(_)) {
+            if !matches!(e, LoadError::Imports(_) | LoadError::WasiImports(_)) {
                 report.violations.push(format!("does not load: {e}"));
             }
             return report;

@@ -34,6 +34,8 @@
 //! - [`Checks`]: example rows with recorded outputs, run by [`checks::run`].
 //! - [`TrustPolicy`]: which signers and digests a host accepts, checked
 //!   before an artifact is loaded.
+//! - [`WasiPolicy`]: off by default; lets models built by toolchains that
+//!   import WASI (Python, JavaScript) load into an empty WASI world.
 //!
 //! What it is not: a training library, or a feature store. It scores the
 //! rows it is given, exactly as the artifact says, and nothing else.
@@ -55,6 +57,7 @@ pub mod sandbox;
 pub mod surface;
 pub mod table;
 pub mod trust;
+pub mod wasi;
 
 pub use artifact::{Artifact, ArtifactError, Digest, pack};
 pub use checks::{CheckReport, Checks, Tolerance};
@@ -66,3 +69,4 @@ pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Re
 pub use rows::{OutputFault, Row, RowError, Rule, Value};
 pub use sandbox::{Runtime, RuntimeConfig, SandboxError};
 pub use trust::{PublicKey, SecretKey, Signature, TrustError, TrustPolicy, Vouch};
+pub use wasi::WasiPolicy;

@@ -13,6 +13,7 @@ use crate::limits::{LimitHit, Limits};
 use crate::pool::Pool;
 use crate::rows::{OutputFault, Row, RowError};
 use crate::sandbox::{Instance, Runtime, SandboxError, StartError, State};
+use crate::wasi::{self, WasiPolicy};
 
 /// Whether instances are reused between calls.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
@@ -35,6 +36,9 @@ pub struct ModelOptions {
     pub limits: Limits,
     /// Instance reuse.
     pub isolation: Isolation,
+    /// Lets a model that imports WASI load into an empty WASI world. `None`
+    /// (the default) refuses every import.
+    pub wasi: Option<WasiPolicy>,
 }
 
 /// Why a model could not be loaded.
@@ -44,9 +48,13 @@ pub enum LoadError {
     /// The artifact is larger than the model's size cap.
     #[error("{0}")]
     TooLarge(LimitHit),
-    /// The artifact imports something; models must import nothing.
-    #[error("the artifact imports {}; a model may import nothing", list(.0))]
+    /// The artifact imports something other than WASI; models may import
+    /// nothing else.
+    #[error("the artifact imports {}; a model may import nothing (WASI aside, under a WASI policy)", list(.0))]
     Imports(Vec<String>),
+    /// The artifact imports WASI interfaces and no WASI policy was given.
+    #[error("the artifact imports {}; WASI imports load only under a WASI policy (`--wasi`)", list(.0))]
+    WasiImports(Vec<String>),
     /// wasmtime refused to compile the component.
     #[error("the component does not compile: {0}")]
     Compile(String),
@@ -84,6 +92,18 @@ fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
             "table cap of {} elements is above the runtime's maximum of {}",
             limits.table_elements, rc.max_table_elements
         )));
+    }
+    Ok(())
+}
+
+/// Refuses imports other than WASI, and WASI without a policy.
+fn check_imports(imports: &[String], policy: Option<&WasiPolicy>) -> Result<(), LoadError> {
+    let (wasi, other): (Vec<_>, Vec<_>) = imports.iter().cloned().partition(|i| wasi::is_wasi(i));
+    if !other.is_empty() {
+        return Err(LoadError::Imports(other));
+    }
+    if !wasi.is_empty() && policy.is_none() {
+        return Err(LoadError::WasiImports(wasi));
     }
     Ok(())
 }
@@ -229,6 +249,7 @@ struct Inner {
     options: ModelOptions,
     code: CodeSource,
     idle: Pool<Instance>,
+    who: Arc<str>,
 }
 
 impl std::fmt::Debug for Model {
@@ -294,18 +315,18 @@ impl Model {
         if size > limits.artifact_bytes {
             return Err(LoadError::TooLarge(LimitHit::ArtifactSize { limit: limits.artifact_bytes, actual: size }));
         }
-        if !artifact.imports().is_empty() {
-            return Err(LoadError::Imports(artifact.imports().to_vec()));
-        }
+        check_imports(artifact.imports(), options.wasi.as_ref())?;
         check_options(runtime, limits)?;
         let (component, code) = match cache {
             Some(cache) => cache.component(runtime, &artifact),
             None => codecache::compile(runtime, &artifact).map(|c| (c, CodeSource::Compiled)),
         }
         .map_err(LoadError::Compile)?;
-        let pre = runtime.prepare(&component).map_err(LoadError::World)?;
+        let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
+        let who: Arc<str> = artifact.digest().to_string().into();
         let (mut first, contract) =
-            Instance::start(runtime, &pre, limits, artifact.params(), true).map_err(LoadError::Start)?;
+            Instance::start(runtime, &pre, limits, artifact.params(), true, options.wasi.as_ref(), &who)
+                .map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
         // A contract is a promise: it must not change from one call to the next.
         if first.describe(runtime, limits).map_err(LoadError::Start)? != contract {
@@ -316,8 +337,11 @@ impl Model {
         if options.isolation == Isolation::Reuse {
             idle.put(first);
         }
+        // What the model prints is logged under its name and version.
+        let who = format!("{}@{}", schema.contract().name, schema.contract().version).into();
         Ok(Model {
             inner: Arc::new(Inner {
+                who,
                 runtime: runtime.clone(),
                 artifact,
                 pre,
@@ -437,9 +461,17 @@ impl Model {
             return Ok((instance, false));
         }
         let verify = inner.options.isolation == Isolation::Reuse;
-        let (instance, contract) =
-            Instance::start(&inner.runtime, &inner.pre, &inner.options.limits, inner.artifact.params(), verify)
-                .map_err(ScoreError::Start)?;
+        let options = &inner.options;
+        let (instance, contract) = Instance::start(
+            &inner.runtime,
+            &inner.pre,
+            &options.limits,
+            inner.artifact.params(),
+            verify,
+            options.wasi.as_ref(),
+            &inner.who,
+        )
+        .map_err(ScoreError::Start)?;
         if contract.is_some_and(|c| &c != inner.schema.contract()) {
             return Err(ScoreError::ContractChanged);
         }

@@ -2,13 +2,15 @@
 //! instance, and every call armed with its limits.
 //!
 //! Models import nothing, so the linker is empty: a model can compute on
-//! the bytes it is given and nothing else. Each instance lives in its own
-//! `Store`, which is dropped (never reused) after a trap or a limit hit.
+//! the bytes it is given and nothing else. The one exception is a model
+//! loaded under a [`WasiPolicy`]: its linker has WASI 0.2 over an empty
+//! world (see [`crate::wasi`]). Each instance lives in its own `Store`,
+//! which is dropped (never reused) after a trap or a limit hit.
 
 use std::sync::Arc;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::thread::JoinHandle;
-use std::time::Duration;
+use std::time::{Duration, Instant};
 
 use serde::Serialize;
 use wasmtime::component::Linker;
@@ -17,6 +19,7 @@ use wasmtime::{Config, Engine, InstanceAllocationStrategy, PoolingAllocationConf
 use crate::bindings::{Estimator, EstimatorPre};
 use crate::contract::{Contract, Fault};
 use crate::limits::{LimitHit, Limits};
+use crate::wasi::{self, WasiPolicy, WasiState};
 
 /// Bytes of each instance slot's memory kept resident between instances.
 const KEEP_RESIDENT: usize = 256 << 10;
@@ -172,9 +175,17 @@ impl Runtime {
         self.inner.pooled
     }
 
-    /// Pre-resolves a compiled component against the empty linker.
-    pub(crate) fn prepare(&self, component: &wasmtime::component::Component) -> Result<EstimatorPre<State>, String> {
-        let linker = Linker::<State>::new(self.engine());
+    /// Pre-resolves a compiled component against the empty linker, or
+    /// against WASI over an empty world when a policy is given.
+    pub(crate) fn prepare(
+        &self,
+        component: &wasmtime::component::Component,
+        wasi: Option<&WasiPolicy>,
+    ) -> Result<EstimatorPre<State>, String> {
+        let mut linker = Linker::<State>::new(self.engine());
+        if wasi.is_some() {
+            wasi::link(&mut linker)?;
+        }
         let pre = linker.instantiate_pre(component).map_err(|e| format!("{e:#}"))?;
         EstimatorPre::new(pre).map_err(|e| format!("{e:#}"))
     }
@@ -208,7 +219,8 @@ fn engine_config(rc: &RuntimeConfig, pooling: bool) -> Config {
     c
 }
 
-/// What a store carries: the limiter, and the peak memory it has seen.
+/// What a store carries: the limiter, the peak memory it has seen, and
+/// the WASI world when the model was loaded under a policy.
 pub(crate) struct State {
     memory_cap: u64,
     table_cap: u64,
@@ -216,6 +228,26 @@ pub(crate) struct State {
     /// Deadline and fuel of the call under way, for error messages.
     deadline: Duration,
     fuel: Option<u64>,
+    /// When the call under way was armed.
+    armed: Instant,
+    wasi: Option<WasiState>,
+}
+
+impl wasmtime_wasi::WasiView for State {
+    fn ctx(&mut self) -> wasmtime_wasi::WasiCtxView<'_> {
+        wasi::WasiHost::wasi(self).view()
+    }
+}
+
+impl wasi::WasiHost for State {
+    fn wasi(&mut self) -> &mut WasiState {
+        // WASI is linked only for models loaded with a policy, and their
+        // stores always carry the state (`Instance::start`).
+        self.wasi.as_mut().expect("WASI functions are linked only for stores that carry WASI state")
+    }
+    fn call_ends(&self) -> Instant {
+        self.armed + self.deadline
+    }
 }
 
 impl ResourceLimiter for State {
@@ -241,6 +273,8 @@ impl ResourceLimiter for State {
 pub(crate) struct Instance {
     store: Store<State>,
     api: Estimator,
+    /// Names the model in what it prints (WASI only).
+    who: Arc<str>,
 }
 
 /// Where in an instance's start-up something went wrong.
@@ -286,12 +320,17 @@ impl Instance {
     /// Instantiates and calls `init(params)` under the init deadline, then
     /// (when `describe` is set) `describe()`, and returns the instance with
     /// the contract it declared.
+    ///
+    /// `wasi` gives the instance an empty WASI world (the model must have
+    /// been prepared with the same policy); `who` names it in the log.
     pub(crate) fn start(
         runtime: &Runtime,
         pre: &EstimatorPre<State>,
         limits: &Limits,
         params: &[u8],
         describe: bool,
+        wasi: Option<&WasiPolicy>,
+        who: &Arc<str>,
     ) -> Result<(Instance, Option<Contract>), StartError> {
         let state = State {
             memory_cap: limits.memory_bytes,
@@ -299,18 +338,26 @@ impl Instance {
             peak_memory: 0,
             deadline: limits.init_deadline,
             fuel: limits.fuel,
+            armed: Instant::now(),
+            wasi: wasi.map(WasiState::new),
         };
         let mut store = Store::new(runtime.engine(), state);
         store.limiter(|s| s as &mut dyn ResourceLimiter);
         arm(&mut store, runtime, limits.init_deadline, limits.fuel);
-        let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
+        let fail = |stage, store: &Store<State>, e| {
+            drain(store, who);
+            StartError::Sandbox { stage, error: classify(e, runtime, store) }
+        };
         let api = match pre.instantiate(&mut store) {
             Ok(api) => api,
             Err(e) => return Err(fail(Stage::Instantiate, &store, e)),
         };
         match api.call_init(&mut store, params) {
             Ok(Ok(())) => {}
-            Ok(Err(message)) => return Err(StartError::Refused(message)),
+            Ok(Err(message)) => {
+                drain(&store, who);
+                return Err(StartError::Refused(message));
+            }
             Err(e) => return Err(fail(Stage::Init, &store, e)),
         }
         let contract = if describe {
@@ -321,15 +368,19 @@ impl Instance {
         } else {
             None
         };
-        Ok((Instance { store, api }, contract))
+        drain(&store, who);
+        Ok((Instance { store, api, who: who.clone() }, contract))
     }
 
     /// Calls `describe()` again under the init deadline.
     pub(crate) fn describe(&mut self, runtime: &Runtime, limits: &Limits) -> Result<Contract, StartError> {
         arm(&mut self.store, runtime, limits.init_deadline, limits.fuel);
-        self.api
+        let contract = self
+            .api
             .call_describe(&mut self.store)
-            .map_err(|e| StartError::Sandbox { stage: Stage::Describe, error: classify(e, runtime, &self.store) })
+            .map_err(|e| StartError::Sandbox { stage: Stage::Describe, error: classify(e, runtime, &self.store) });
+        drain(&self.store, &self.who);
+        contract
     }
 
     /// Calls `score(rows, cells)` under the call limits. Returns the model's
@@ -342,8 +393,9 @@ impl Instance {
         cells: &[f64],
     ) -> Result<(Result<Vec<f64>, Fault>, Option<u64>), SandboxError> {
         let budget = arm(&mut self.store, runtime, limits.deadline, limits.fuel);
-        let answer =
-            self.api.call_score(&mut self.store, rows, cells).map_err(|e| classify(e, runtime, &self.store))?;
+        let answer = self.api.call_score(&mut self.store, rows, cells);
+        drain(&self.store, &self.who);
+        let answer = answer.map_err(|e| classify(e, runtime, &self.store))?;
         let used = budget.map(|b| b.saturating_sub(self.store.get_fuel().unwrap_or(0)));
         Ok((answer, used))
     }
@@ -354,10 +406,20 @@ impl Instance {
     }
 }
 
+/// Writes what a WASI model printed during the last call to the log.
+fn drain(store: &Store<State>, who: &str) {
+    if let Some(w) = &store.data().wasi {
+        w.drain(who);
+    }
+}
+
 /// Sets the deadline and fuel for the next call; returns the fuel budget.
 fn arm(store: &mut Store<State>, runtime: &Runtime, deadline: Duration, fuel: Option<u64>) -> Option<u64> {
     store.data_mut().deadline = deadline;
     store.data_mut().fuel = fuel;
+    if store.data().wasi.is_some() {
+        store.data_mut().armed = Instant::now();
+    }
     let ticks = deadline.as_nanos().div_ceil(TICK.as_nanos()) as u64 + 1;
     store.set_epoch_deadline(ticks);
     if runtime.config().fuel {

@@ -6,7 +6,7 @@ use std::time::Duration;
 use anyhow::{Context, Result};
 use paddock_host::{
     Artifact, Isolation, Limits, Model, ModelOptions, Registry, RegistryOptions, Runtime, RuntimeConfig, Signature, TrustPolicy,
-    Vouch,
+    Vouch, WasiPolicy, wasi,
 };
 
 /// What every command about one artifact takes: the file, `--json`, and
@@ -47,6 +47,17 @@ pub struct LoadArgs {
     /// Start a fresh instance for every call instead of reusing warm ones.
     #[arg(long)]
     pub fresh: bool,
+    /// Let models that import WASI (Python, JavaScript guests) load into an
+    /// empty WASI world: no files, environment, arguments or sockets;
+    /// output captured into the log.
+    #[arg(long)]
+    pub wasi: bool,
+    /// Under `--wasi`, give models the host's real clocks instead of fixed ones.
+    #[arg(long, requires = "wasi")]
+    pub wasi_real_clocks: bool,
+    /// Under `--wasi`, give models real randomness instead of a fixed stream.
+    #[arg(long, requires = "wasi")]
+    pub wasi_real_random: bool,
 }
 
 impl LoadArgs {
@@ -64,7 +75,13 @@ impl LoadArgs {
             limits.artifact_bytes = mib << 20;
         }
         let isolation = if self.fresh { Isolation::FreshPerCall } else { Isolation::Reuse };
-        ModelOptions { limits, isolation }
+        let source = |real| if real { wasi::Source::Real } else { wasi::Source::Fixed };
+        let wasi = self.wasi.then(|| WasiPolicy {
+            clocks: source(self.wasi_real_clocks),
+            random: source(self.wasi_real_random),
+            ..WasiPolicy::default()
+        });
+        ModelOptions { limits, isolation, wasi }
     }
 
     /// A runtime able to enforce these limits.

@@ -38,6 +38,15 @@ fn text(r: &AuditReport) -> String {
     if let Some(s) = &r.surface {
         line("imports", if s.imports.is_empty() { "none".into() } else { s.imports.join(", ") });
         line("exports", s.exports.join(", "));
+        if let Some(p) = &r.wasi_policy {
+            line("wasi policy", format!(
+                "empty world; clocks {:?}, randomness {:?}, {} bytes of stdout/stderr kept per call",
+                p.clocks, p.random, p.output_bytes
+            ).to_lowercase());
+        }
+        for w in &r.wasi {
+            line("wasi", format!("{}: {}", w.interface, w.satisfied_by.as_deref().unwrap_or("not provided")));
+        }
         for m in &s.memories {
             line("memory", format!("{} initial, {} maximum ({})", m.initial, m.maximum.map_or("no".into(), |v| v.to_string()), m.unit));
         }
