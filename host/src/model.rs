@@ -333,12 +333,13 @@ impl Model {
             return Err(LoadError::ContractUnstable);
         }
         let schema = Schema::new(contract).map_err(LoadError::Contract)?;
+        // What the model prints is logged under its name and version.
+        let who: Arc<str> = format!("{}@{}", schema.contract().name, schema.contract().version).into();
+        first.rename(who.clone());
         let idle = Pool::new(std::thread::available_parallelism().map_or(4, |n| n.get() * 2));
         if options.isolation == Isolation::Reuse {
             idle.put(first);
         }
-        // What the model prints is logged under its name and version.
-        let who = format!("{}@{}", schema.contract().name, schema.contract().version).into();
         Ok(Model {
             inner: Arc::new(Inner {
                 who,

@@ -248,6 +248,9 @@ impl wasi::WasiHost for State {
     fn call_ends(&self) -> Instant {
         self.armed + self.deadline
     }
+    fn deadline(&self) -> Duration {
+        self.deadline
+    }
 }
 
 impl ResourceLimiter for State {
@@ -398,6 +401,11 @@ impl Instance {
         let answer = answer.map_err(|e| classify(e, runtime, &self.store))?;
         let used = budget.map(|b| b.saturating_sub(self.store.get_fuel().unwrap_or(0)));
         Ok((answer, used))
+    }
+
+    /// Names the model in what it prints from now on.
+    pub(crate) fn rename(&mut self, who: Arc<str>) {
+        self.who = who;
     }
 
     /// The largest linear memory this instance has had, in bytes.

@@ -13,8 +13,8 @@
 //!   call, and written to the log (target `paddock::guest`);
 //! - clocks and randomness fixed (the default: same answers on every run)
 //!   or real, by setting;
-//! - a timer the model waits on never outlasts the call's deadline, so a
-//!   model cannot stall its host thread by sleeping.
+//! - a wait that would outlast the call's deadline stops the call at once
+//!   with the deadline limit: a model cannot stall its host thread asleep.
 //!
 //! This module is not a general WASI host: it links exactly what
 //! wasmtime-wasi provides for WASI 0.2 and takes every capability away.
@@ -25,6 +25,8 @@ use std::pin::Pin;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
+
+use crate::limits::LimitHit;
 use sha2::{Digest as _, Sha256};
 use wasmtime::component::{Linker, Resource, ResourceTable};
 use wasmtime_wasi::cli::{IsTerminal, StdoutStream};
@@ -99,7 +101,7 @@ pub fn satisfied_by(import: &str, policy: &WasiPolicy) -> Option<String> {
         }
         "wasi:clocks/wall-clock" => source(policy.clocks, format!("fixed at {} s after the Unix epoch", policy.fixed_time)),
         "wasi:clocks/monotonic-clock" => source(policy.clocks, "fixed, 1 µs per reading".into())
-            + "; waits end at the call's deadline",
+            + "; a wait past the call's deadline stops the call",
         "wasi:random/random" | "wasi:random/insecure" | "wasi:random/insecure-seed" => {
             source(policy.random, format!("fixed stream from seed {}", policy.seed))
         }
@@ -216,6 +218,8 @@ pub(crate) trait WasiHost: wasmtime_wasi::WasiView + 'static {
     fn wasi(&mut self) -> &mut WasiState;
     /// When the call under way must end.
     fn call_ends(&self) -> Instant;
+    /// The deadline of the call under way.
+    fn deadline(&self) -> Duration;
 }
 
 /// Links WASI 0.2 into `linker`, with the monotonic clock's waits cut off at
@@ -245,8 +249,14 @@ pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), String> {
     Ok(())
 }
 
+/// A wait of `wanted`. A wait that would end after the call's deadline can
+/// never finish in time: the call stops at once with the deadline limit,
+/// instead of holding its host thread asleep.
 fn nap<T: WasiHost>(host: &mut T, wanted: Duration) -> wasmtime::Result<(Resource<DynPollable>,)> {
-    let until = (Instant::now() + wanted).min(host.call_ends());
+    let until = Instant::now() + wanted;
+    if until > host.call_ends() {
+        return Err(wasmtime::Error::new(LimitHit::Deadline { limit: host.deadline() }));
+    }
     let nap = host.wasi().table().push(Nap(tokio::time::Instant::from_std(until)))?;
     Ok((wasmtime_wasi::p2::subscribe(host.wasi().table(), nap)?,))
 }

@@ -153,3 +153,31 @@ pub fn write_atomically(path: &std::path::Path, bytes: &[u8]) {
     std::fs::write(&tmp, bytes).expect("writes");
     std::fs::rename(&tmp, path).expect("renames");
 }
+
+/// An artifact built from another language by `cargo xtask guests`
+/// (`charge-taper-py`, `charge-taper-js`, `wasi-probe`).
+///
+/// # Panics
+/// When it has not been built, saying how to build it.
+pub fn foreign_artifact(name: &str) -> Artifact {
+    let path = root().join("target/paddock/artifacts").join(format!("{name}.wasm"));
+    Artifact::read(&path, u64::MAX).unwrap_or_else(|e| {
+        panic!(
+            "{}: {e}. Build the Python and JavaScript guests first: `cargo xtask guests` (needs python3 with pip, \
+             Node.js with npm; `cargo xtask test` does it)",
+            path.display()
+        )
+    })
+}
+
+/// Loads an artifact from [`foreign_artifact`], its compiled code kept in
+/// a cache under target/ (a Python guest takes seconds to compile; the
+/// tests share one compilation).
+pub fn load_foreign(
+    runtime: &Runtime,
+    name: &str,
+    options: ModelOptions,
+) -> Result<Model, paddock_host::LoadError> {
+    let cache = paddock_host::CodeCache::open(&root().join("target/paddock/test-code-cache")).expect("code cache opens");
+    Model::load_cached(runtime, foreign_artifact(name), options, &cache)
+}

@@ -7,8 +7,12 @@
 //!   `target/paddock/store/`. Guests are always built from source; no
 //!   compiled guest is committed.
 //! - `demo`: `build`, then `paddock demo` on the demo store.
-//! - `test`: `build`; installs the pinned Python packages the tests use as
-//!   outside references (pip) and exports scikit-learn's reference models;
+//! - `guests`: the guests in other languages. Installs the pinned Python
+//!   packages (pip) and the JavaScript build tools (`npm ci`), builds the
+//!   Python and JavaScript `charge-taper` guests and the WASI probe with
+//!   componentize-py and componentize-js, and packs them (under a WASI
+//!   policy) with SciPy's reference values as their checks.
+//! - `test`: `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
 //!   OpenMetrics parser (`tests/api/check_api.py`).
@@ -47,9 +51,15 @@ fn main() -> Result<()> {
             cmd.arg(&store).args(&rest);
             run(cmd)
         }
+        "guests" => {
+            build(&root)?;
+            python_packages()?;
+            foreign_guests(&root)
+        }
         "test" => {
             build(&root)?;
             python_packages()?;
+            foreign_guests(&root)?;
             // scikit-learn's reference models and predictions, for tests/sklearn.rs.
             let mut export = Command::new("python3");
             export.arg(root.join("tests/sklearn/export.py")).arg(root.join("target/paddock/sklearn"));
@@ -71,7 +81,7 @@ fn main() -> Result<()> {
             fuzz(&root, seconds)
         }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|test|fuzz> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|guests|test|fuzz> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
@@ -177,10 +187,93 @@ fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Resul
     Ok(())
 }
 
-/// Python packages the tests use as outside references, pinned:
-/// schemathesis and the OpenMetrics parser for the HTTP API, scikit-learn
-/// for fidelity.
-const PYTHON_PACKAGES: [&str; 3] = ["schemathesis==4.32.5", "prometheus-client==0.26.0", "scikit-learn==1.9.1"];
+/// Python packages the tests use, pinned: schemathesis and the OpenMetrics
+/// parser for the HTTP API, scikit-learn (with SciPy) and skl2onnx for
+/// fidelity, componentize-py to build the Python guests.
+const PYTHON_PACKAGES: [&str; 6] = [
+    "schemathesis==4.32.5",
+    "prometheus-client==0.26.0",
+    "scikit-learn==1.9.1",
+    "skl2onnx==1.20.0",
+    "onnx==1.23.2",
+    "componentize-py==0.25.1",
+];
+
+/// Python guests: (source directory, module, artifact name, carries the
+/// charge-taper params and checks).
+const PYTHON_GUESTS: [(&str, &str, &str, bool); 2] = [
+    ("models/charge-taper/python", "charge_taper", "charge-taper-py", true),
+    ("tests/guests", "wasi_probe", "wasi-probe", false),
+];
+
+/// Builds the guests written in Python and JavaScript into
+/// `target/paddock/artifacts/`: componentize-py and componentize-js make
+/// the components, `paddock pack --wasi` adds the params and SciPy's
+/// reference values as checks, and runs them.
+fn foreign_guests(root: &Path) -> Result<()> {
+    let out = root.join("target/paddock");
+    let components = out.join("components");
+    let reference = out.join("reference");
+    std::fs::create_dir_all(&components).with_context(|| format!("creating {}", components.display()))?;
+    let params = root.join("models/charge-taper/params.json");
+    let mut refs = Command::new("python3");
+    refs.arg(root.join("tests/guests/taper_reference.py")).arg(&params).arg(&reference);
+    run(refs)?;
+
+    let scripts = Command::new("python3")
+        .args(["-c", "import sysconfig; print(sysconfig.get_path('scripts'))"])
+        .output()
+        .context("asking python3 where pip puts scripts")?;
+    let componentize_py = PathBuf::from(String::from_utf8_lossy(&scripts.stdout).trim()).join("componentize-py");
+    for (dir, module, name, _) in PYTHON_GUESTS {
+        let mut c = Command::new(&componentize_py);
+        c.current_dir(root).args(["--wit-path", "wit", "--world", "estimator", "componentize", module, "-p", dir, "-o"]);
+        c.arg(components.join(format!("{name}.wasm")));
+        run(c).context("componentize-py (pip install componentize-py==0.25.1)")?;
+    }
+
+    // componentize-js and its pinned tools, installed from the lock file
+    // into target/ (the source tree stays clean).
+    let npm_dir = out.join("npm");
+    std::fs::create_dir_all(&npm_dir).with_context(|| format!("creating {}", npm_dir.display()))?;
+    let js = root.join("models/charge-taper/js");
+    let lock = std::fs::read(js.join("package-lock.json")).context("reading the JavaScript lock file")?;
+    let installed = std::fs::read(npm_dir.join("package-lock.json")).ok();
+    if installed.as_deref() != Some(&lock[..]) || !npm_dir.join("node_modules").exists() {
+        std::fs::copy(js.join("package.json"), npm_dir.join("package.json"))?;
+        std::fs::write(npm_dir.join("package-lock.json"), &lock)?;
+        let mut npm = Command::new("npm");
+        npm.current_dir(&npm_dir).args(["ci", "--no-audit", "--no-fund", "--loglevel=error"]);
+        run(npm).context("npm ci for componentize-js (needs Node.js and npm)")?;
+    }
+    let mut c = Command::new("node");
+    c.current_dir(root).arg(npm_dir.join("node_modules/@bytecodealliance/componentize-js/src/cli.js"));
+    c.arg(js.join("charge-taper.js")).args(["--wit", "wit", "--world-name", "estimator"]);
+    // No outbound HTTP and no incoming-request handler: the JavaScript
+    // engine then imports only stdio, clocks, random and (empty) files.
+    c.args(["--disable", "http", "fetch-event", "-o"]).arg(components.join("charge-taper-js.wasm"));
+    run(c).context("componentize-js")?;
+
+    let artifacts = out.join("artifacts");
+    let checks = reference.join("charge-taper.checks.json");
+    let taper = PYTHON_GUESTS.iter().filter(|g| g.3).map(|g| g.2).chain(["charge-taper-js"]);
+    for name in taper {
+        pack_wasi(root, &components.join(format!("{name}.wasm")), Some((&params, &checks)), &artifacts.join(format!("{name}.wasm")))?;
+    }
+    pack_wasi(root, &components.join("wasi-probe.wasm"), None, &artifacts.join("wasi-probe.wasm"))
+}
+
+/// `paddock pack --wasi`, with params and checks when given.
+fn pack_wasi(root: &Path, component: &Path, with: Option<(&Path, &Path)>, out: &Path) -> Result<()> {
+    let mut pack = cargo(root);
+    pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack", "--wasi", "--max-artifact-mib", "64"]);
+    pack.arg(component);
+    if let Some((params, checks)) = with {
+        pack.arg("--params").arg(params).arg("--checks").arg(checks);
+    }
+    pack.arg("--out").arg(out);
+    run(pack)
+}
 
 /// Installs [`PYTHON_PACKAGES`] with pip (quick when they are there).
 fn python_packages() -> Result<()> {
