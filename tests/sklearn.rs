@@ -115,3 +115,49 @@ fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
     eprintln!("GradientBoostingRegressor: largest relative error {worst:e} over 442 rows ({})", versions(&e));
 }
+
+/// Largest ONNX error allowed, relative to the prediction's size (at least
+/// 1). skl2onnx exports float32 graphs: inputs and weights are rounded to 24
+/// significant bits (6e-8 relative each) and the graph sums float32
+/// products, so the ONNX answer differs from scikit-learn's float64 one by
+/// a few 1e-7 relative on this data. 1e-5 (about 170 float32 steps) leaves
+/// headroom for the order of the sums and still catches any real mistake: a
+/// wrong weight or feature order moves predictions by 1e-3 or more.
+const FLOAT32_TOLERANCE: f64 = 1e-5;
+
+/// Packs an skl2onnx export with the ONNX evaluator guest, as
+/// `paddock pack MODEL.onnx --manifest MODEL.toml` does.
+fn onnx_model(name: &str) -> Model {
+    let dir = root().join("target/paddock/sklearn");
+    let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
+    let manifest = String::from_utf8(read("toml")).unwrap();
+    let params = paddock_host::onnx::params(&manifest, &read("onnx")).unwrap();
+    load(&Runtime::new().unwrap(), &guest("paddock-model-onnx"), &params, ModelOptions::default())
+}
+
+#[test]
+fn onnx_exports_from_skl2onnx_match_scikit_learn_within_float32_tolerance() {
+    for (name, op) in [("onnx-linear", "ONNX-ML LinearRegressor"), ("onnx-mlp", "MatMul, Add, Relu")] {
+        let e = export(name);
+        let model = onnx_model(name);
+        let features: Vec<String> = model.contract().features.iter().map(|f| f.name.clone()).collect();
+        assert_eq!(features, e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap()).collect::<Vec<_>>());
+        let rows: Vec<Row> = e["rows"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|r| features.iter().cloned().zip(floats(r)).collect())
+            .collect();
+        let want = floats(&e["predictions"]);
+        let got = model.score(&rows).unwrap();
+        let mut worst = 0.0f64;
+        for (i, w) in want.iter().enumerate() {
+            let err = (got.row(i)[0] - w).abs() / w.abs().max(1.0);
+            assert!(err <= FLOAT32_TOLERANCE, "{name} row {i}: {} vs scikit-learn {w} ({})", got.row(i)[0], versions(&e));
+            worst = worst.max(err);
+        }
+        // Not bit-equal either: the graph really ran in float32.
+        assert!(worst > 0.0, "{name}: identical to float64 scikit-learn, so the graph did not run in float32");
+        eprintln!("{name} ({op}): largest relative error {worst:e} over 442 rows ({})", versions(&e));
+    }
+}

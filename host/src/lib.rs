@@ -50,6 +50,7 @@ pub mod codecache;
 pub mod contract;
 pub mod limits;
 pub mod model;
+pub mod onnx;
 mod pool;
 pub mod registry;
 pub mod rows;

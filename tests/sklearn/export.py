@@ -17,6 +17,13 @@ Writes, with the library versions that produced them:
   learning rate and every tree's nodes (feature, threshold, children, value);
 each with the feature names, all 442 rows, and scikit-learn's own
 `predict()` on them — the values the sandbox must reproduce.
+
+Through skl2onnx (ONNX, float32), for the ONNX evaluator guest:
+- `onnx-linear.onnx`: `LinearRegression` (ONNX-ML `LinearRegressor`);
+- `onnx-mlp.onnx`: `MLPRegressor` (16 ReLU units, lbfgs, random_state 0;
+  standard ONNX MatMul/Add/Relu);
+each with a paddock manifest (`.toml`) and a `.json` of the rows and
+scikit-learn's float64 predictions.
 """
 import json
 import os
@@ -24,14 +31,18 @@ import platform
 import sys
 
 import numpy
+import onnx
+import skl2onnx
 import sklearn
 from sklearn.datasets import load_diabetes
 from sklearn.ensemble import GradientBoostingRegressor
 from sklearn.linear_model import LinearRegression
+from sklearn.neural_network import MLPRegressor
 
 
 def versions():
-    return {"python": platform.python_version(), "scikit-learn": sklearn.__version__, "numpy": numpy.__version__}
+    return {"python": platform.python_version(), "scikit-learn": sklearn.__version__, "numpy": numpy.__version__,
+            "skl2onnx": skl2onnx.__version__, "onnx": onnx.__version__}
 
 
 def main():
@@ -66,7 +77,28 @@ def main():
         json.dump({**common, "model": "GradientBoostingRegressor(n_estimators=120, max_depth=3, learning_rate=0.1, random_state=0)",
                    "init": init, "learning_rate": boosted.learning_rate, "trees": trees,
                    "predictions": boosted.predict(X).tolist()}, f)
-    print(f"exported LinearRegression and GradientBoostingRegressor on diabetes to {out} ({versions()})")
+    mlp = MLPRegressor(hidden_layer_sizes=(16,), solver="lbfgs", max_iter=5000, random_state=0).fit(X, y)
+    for name, model, about in [("onnx-linear", linear, "LinearRegression()"),
+                               ("onnx-mlp", mlp, "MLPRegressor(hidden_layer_sizes=(16,), solver='lbfgs', random_state=0)")]:
+        graph = skl2onnx.to_onnx(model, X[:1].astype(numpy.float32), target_opset={"": 17, "ai.onnx.ml": 3})
+        with open(os.path.join(out, f"{name}.onnx"), "wb") as f:
+            f.write(graph.SerializeToString())
+        with open(os.path.join(out, f"{name}.toml"), "w") as f:
+            f.write(manifest(name, names, about))
+        with open(os.path.join(out, f"{name}.json"), "w") as f:
+            json.dump({**common, "model": about, "predictions": model.predict(X).tolist()}, f)
+    print(f"exported LinearRegression, GradientBoostingRegressor and (ONNX) MLPRegressor on diabetes to {out} ({versions()})")
+
+
+def manifest(name, features, about):
+    """A paddock ONNX manifest: every feature a real number, one output."""
+    lines = [f'name = "{name}"', 'version = "1.0.0"',
+             f'about = "{about} on the diabetes data, exported by skl2onnx"', 'input = "X"', ""]
+    for feature in features:
+        lines += ["[[features]]", f'name = "{feature}"', 'domain = { real = {} }', ""]
+    lines += ["[[outputs]]", 'name = "progression"', 'tensor = "variable"', "column = 0",
+              'about = "disease progression one year later"', ""]
+    return "\n".join(lines)
 
 
 if __name__ == "__main__":

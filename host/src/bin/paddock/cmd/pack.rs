@@ -11,14 +11,23 @@ use crate::common::{LoadArgs, print_json};
 
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
-/// then load it and run its checks.
+/// then load it and run its checks. An ONNX model (`MODEL.onnx`) is packed
+/// with the ONNX evaluator guest, its manifest giving the contract.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The component, or core module, to pack.
+    /// The component or core module to pack, or an ONNX model (`.onnx`).
     input: PathBuf,
     /// Parameter blob to carry (the model decodes it in `init`).
-    #[arg(long, value_name = "FILE")]
+    #[arg(long, value_name = "FILE", conflicts_with = "manifest")]
     params: Option<PathBuf>,
+    /// For an ONNX model: its manifest (TOML: name, version, features,
+    /// outputs; see the README).
+    #[arg(long, value_name = "FILE")]
+    manifest: Option<PathBuf>,
+    /// For an ONNX model: the ONNX evaluator guest
+    /// [default: target/paddock/guests/paddock-model-onnx.wasm, as `cargo xtask build` leaves it].
+    #[arg(long, value_name = "FILE", requires = "manifest")]
+    evaluator: Option<PathBuf>,
     /// Checks to carry (JSON: example rows with recorded outputs).
     #[arg(long, value_name = "FILE")]
     checks: Option<PathBuf>,
@@ -35,6 +44,9 @@ pub struct Args {
     limits: LoadArgs,
 }
 
+/// Where `cargo xtask build` leaves the ONNX evaluator guest.
+const DEFAULT_EVALUATOR: &str = "target/paddock/guests/paddock-model-onnx.wasm";
+
 #[derive(Serialize)]
 struct Packed {
     artifact: PathBuf,
@@ -47,8 +59,20 @@ struct Packed {
 /// Packs, then verifies unless told not to.
 pub fn run(args: Args) -> Result<Outcome> {
     let read = |p: &PathBuf| std::fs::read(p).with_context(|| format!("reading {}", p.display()));
-    let wasm = read(&args.input)?;
-    let params = args.params.as_ref().map(read).transpose()?;
+    let input = read(&args.input)?;
+    let is_onnx = args.input.extension().is_some_and(|e| e.eq_ignore_ascii_case("onnx"));
+    let (wasm, params) = match (&args.manifest, is_onnx) {
+        (Some(manifest), true) => {
+            let text = std::fs::read_to_string(manifest).with_context(|| format!("reading {}", manifest.display()))?;
+            let params = paddock_host::onnx::params(&text, &input).with_context(|| format!("in {}", manifest.display()))?;
+            let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_EVALUATOR));
+            let guest = read(&evaluator).context("the ONNX evaluator guest (build it with `cargo xtask build`, or pass --evaluator)")?;
+            (guest, Some(params))
+        }
+        (None, true) => anyhow::bail!("{}: an ONNX model needs its manifest (--manifest FILE)", args.input.display()),
+        (Some(_), false) => anyhow::bail!("--manifest is for ONNX models (a `.onnx` file); {} is not one", args.input.display()),
+        (None, false) => (input, args.params.as_ref().map(read).transpose()?),
+    };
     let checks = match &args.checks {
         Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
         None => None,
