@@ -34,8 +34,15 @@ fn a_component_that_imports_anything_is_refused_naming_each_import() {
     assert!(matches!(&err, LoadError::Imports(names) if names.len() == 2), "{err:?}");
     assert_eq!(
         err.to_string(),
-        "the artifact imports `wasi:clocks/wall-clock@0.2.0`, `phone-home`; a model may import nothing"
+        "the artifact imports `wasi:clocks/wall-clock@0.2.0`, `phone-home`; a model may import nothing (but WASI, under a WASI policy)"
     );
+    // A WASI policy lets the WASI import through, never the other.
+    let artifact = Artifact::from_bytes(wat::parse_str(wat).unwrap(), u64::MAX).unwrap();
+    let options = ModelOptions { wasi: Some(paddock_host::WasiPolicy::default()), ..ModelOptions::default() };
+    match Model::load_with(&runtime, artifact, options) {
+        Err(LoadError::Imports(names)) => assert_eq!(names, ["phone-home"]),
+        other => panic!("expected `phone-home` refused, got {other:?}"),
+    }
 }
 
 #[test]

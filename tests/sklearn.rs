@@ -33,15 +33,15 @@ fn floats(v: &Value) -> Vec<f64> {
 }
 
 
+/// The exported rows, as named rows.
+fn rows(e: &Value, features: &[String]) -> Vec<Row> {
+    e["rows"].as_array().unwrap().iter().map(|r| features.iter().cloned().zip(floats(r)).collect()).collect()
+}
+
 /// Scores every exported row in one call and returns the largest relative
 /// difference from scikit-learn's predictions.
 fn worst_relative_error(model: &Model, e: &Value, features: &[String]) -> f64 {
-    let rows: Vec<Row> = e["rows"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .map(|r| features.iter().cloned().zip(floats(r)).collect())
-        .collect();
+    let rows = rows(e, features);
     let want = floats(&e["predictions"]);
     assert_eq!(rows.len(), 442);
     let got = model.score(&rows).unwrap();
@@ -142,12 +142,7 @@ fn onnx_exports_from_skl2onnx_match_scikit_learn_within_float32_tolerance() {
         let model = onnx_model(name);
         let features: Vec<String> = model.contract().features.iter().map(|f| f.name.clone()).collect();
         assert_eq!(features, e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap()).collect::<Vec<_>>());
-        let rows: Vec<Row> = e["rows"]
-            .as_array()
-            .unwrap()
-            .iter()
-            .map(|r| features.iter().cloned().zip(floats(r)).collect())
-            .collect();
+        let rows = rows(&e, &features);
         let want = floats(&e["predictions"]);
         let got = model.score(&rows).unwrap();
         let mut worst = 0.0f64;

@@ -48,9 +48,10 @@ pub enum LoadError {
     /// The artifact is larger than the model's size cap.
     #[error("{0}")]
     TooLarge(LimitHit),
-    /// The artifact imports something other than WASI; models may import
+    /// The artifact imports something other than WASI (named, with every
+    /// WASI import too when no WASI policy is set); models may import
     /// nothing else.
-    #[error("the artifact imports {}; a model may import nothing (WASI aside, under a WASI policy)", list(.0))]
+    #[error("the artifact imports {}; a model may import nothing (but WASI, under a WASI policy)", list(.0))]
     Imports(Vec<String>),
     /// The artifact imports WASI interfaces and no WASI policy was given.
     #[error("the artifact imports {}; WASI imports load only under a WASI policy (`--wasi`)", list(.0))]
@@ -96,16 +97,16 @@ fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
     Ok(())
 }
 
-/// Refuses imports other than WASI, and WASI without a policy.
+/// Refuses imports other than WASI, and WASI without a policy. Without a
+/// policy every import is named; with one, those it does not cover.
 fn check_imports(imports: &[String], policy: Option<&WasiPolicy>) -> Result<(), LoadError> {
-    let (wasi, other): (Vec<_>, Vec<_>) = imports.iter().cloned().partition(|i| wasi::is_wasi(i));
-    if !other.is_empty() {
-        return Err(LoadError::Imports(other));
+    let other: Vec<String> = imports.iter().filter(|i| !wasi::is_wasi(i)).cloned().collect();
+    match (other.is_empty(), policy) {
+        (true, _) if imports.is_empty() || policy.is_some() => Ok(()),
+        (true, _) => Err(LoadError::WasiImports(imports.to_vec())),
+        (false, None) => Err(LoadError::Imports(imports.to_vec())),
+        (false, Some(_)) => Err(LoadError::Imports(other)),
     }
-    if !wasi.is_empty() && policy.is_none() {
-        return Err(LoadError::WasiImports(wasi));
-    }
-    Ok(())
 }
 
 fn list(names: &[String]) -> String {

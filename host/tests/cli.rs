@@ -350,3 +350,53 @@ fn stream_answers_each_line_in_order_and_exits_3_when_one_failed() {
     assert_eq!((lines[2]["id"].clone(), lines[2]["answer"]["route"].clone()), ("c".into(), "default".into()));
     assert!(text(&out.stderr).contains("3 lines: 2 answered, 1 failed"), "{}", text(&out.stderr));
 }
+
+#[test]
+fn pack_takes_an_onnx_model_with_its_manifest_and_names_what_is_wrong() {
+    // The skl2onnx export of an MLPRegressor on scikit-learn's diabetes data
+    // (tests/sklearn/export.py, run by `cargo xtask test`).
+    let dir = root().join("target/paddock/sklearn");
+    let onnx = dir.join("onnx-mlp.onnx");
+    assert!(onnx.exists(), "{} is missing: run `python3 tests/sklearn/export.py target/paddock/sklearn`", onnx.display());
+    let manifest = dir.join("onnx-mlp.toml");
+    let out = tmp("onnx-mlp.wasm");
+    let (onnx, manifest, out) = (onnx.to_str().unwrap(), manifest.to_str().unwrap(), out.to_str().unwrap());
+    let packed = paddock(&["pack", onnx, "--manifest", manifest, "--out", out], None);
+    assert!(packed.status.success(), "{}", text(&packed.stderr));
+    assert!(text(&packed.stdout).contains("loads as onnx-mlp 1.0.0"), "{}", text(&packed.stdout));
+
+    let features = ["age", "sex", "bmi", "bp", "s1", "s2", "s3", "s4", "s5", "s6"];
+    let csv = format!("{}\n{}\n", features.join(","), ["0.01"; 10].join(","));
+    let scored = paddock(&["score", out, "-", "--to", "ndjson"], Some(&csv));
+    assert!(scored.status.success(), "{}", text(&scored.stderr));
+    let line: serde_json::Value = serde_json::from_str(text(&scored.stdout).lines().next().unwrap()).unwrap();
+    assert!(line["progression"].as_f64().is_some_and(f64::is_finite), "{line}");
+
+    let missing = paddock(&["pack", onnx, "--out", out], None);
+    assert!(!missing.status.success());
+    assert!(text(&missing.stderr).contains("needs its manifest (--manifest FILE)"), "{}", text(&missing.stderr));
+
+    let wrong = tmp("wrong.toml");
+    std::fs::write(&wrong, std::fs::read_to_string(manifest).unwrap().replace("tensor = \"variable\"", "tensor = \"nope\"")).unwrap();
+    let refused = paddock(&["pack", onnx, "--manifest", wrong.to_str().unwrap(), "--out", out], None);
+    assert!(!refused.status.success());
+    let err = text(&refused.stderr);
+    assert!(err.contains("manifest output `progression`: the graph has no output `nope`"), "{err}");
+}
+
+#[test]
+fn a_python_guest_scores_only_under_wasi() {
+    let py = root().join("target/paddock/artifacts/charge-taper-py.wasm");
+    assert!(py.exists(), "{} is missing: run `cargo xtask guests`", py.display());
+    let py = py.to_str().unwrap();
+    let csv = "charger_kw,battery_kwh,soc_start,soc_target\n11,64,0.2,0.95\n";
+    let refused = paddock(&["score", py, "-"], Some(csv));
+    assert!(!refused.status.success());
+    let err = text(&refused.stderr);
+    assert!(err.contains("wasi:cli/stdout@0.2.") && err.contains("WASI policy"), "{err}");
+    let scored = paddock(&["score", "--wasi", py, "-", "--to", "ndjson"], Some(csv));
+    assert!(scored.status.success(), "{}", text(&scored.stderr));
+    let line: serde_json::Value = serde_json::from_str(text(&scored.stdout).lines().next().unwrap()).unwrap();
+    // SciPy's quad gives 398.21580754150… for this row (tests/guests/taper_reference.py, its first row).
+    assert!((line["session_minutes"].as_f64().unwrap() - 398.215_807_541_5).abs() < 1e-6, "{line}");
+}

@@ -38,6 +38,9 @@ const GUESTS: [(&str, &str); 6] = [
     ("charge-taper", "charge_taper"),
 ];
 const TARGET: &str = "wasm32-unknown-unknown";
+/// Guests built optimised for size (see the `wasm-small` profile).
+const SMALL: [&str; 1] = ["paddock-model-onnx"];
+const SMALL_PROFILE: &str = "wasm-small";
 
 fn main() -> Result<()> {
     let mut args = std::env::args().skip(1);
@@ -134,12 +137,14 @@ fn ensure_target() -> Result<()> {
 
 fn build(root: &Path) -> Result<()> {
     ensure_target()?;
-    let mut cmd = cargo(root);
-    cmd.args(["build", "--quiet", "--profile", "wasm", "--target", TARGET]);
-    for (package, _) in GUESTS {
-        cmd.args(["-p", package]);
+    for profile in ["wasm", SMALL_PROFILE] {
+        let mut cmd = cargo(root);
+        cmd.args(["build", "--quiet", "--profile", profile, "--target", TARGET]);
+        for (package, _) in GUESTS.iter().filter(|(p, _)| (profile == SMALL_PROFILE) == SMALL.contains(p)) {
+            cmd.args(["-p", package]);
+        }
+        run(cmd)?;
     }
-    run(cmd)?;
     let out = root.join("target/paddock");
     let guests = out.join("guests");
     let train = out.join("train");
@@ -148,7 +153,8 @@ fn build(root: &Path) -> Result<()> {
         std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     }
     for (package, stem) in GUESTS {
-        let built = root.join(format!("target/{TARGET}/wasm/{stem}.wasm"));
+        let profile = if SMALL.contains(&package) { SMALL_PROFILE } else { "wasm" };
+        let built = root.join(format!("target/{TARGET}/{profile}/{stem}.wasm"));
         let copy = guests.join(format!("{package}.wasm"));
         std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
     }
