@@ -19,6 +19,7 @@ fn probe(model: &Model, sleep_ms: f64, print_bytes: f64) -> Result<std::collecti
 }
 
 fn load(policy: WasiPolicy) -> Model {
+    log();
     load_foreign(&Runtime::new().unwrap(), "wasi-probe", ModelOptions { wasi: Some(policy), ..ModelOptions::default() })
         .unwrap()
 }
@@ -58,6 +59,7 @@ fn real_clocks_and_randomness_are_the_hosts() {
 
 #[test]
 fn a_wait_past_the_deadline_stops_the_call_with_the_deadline_limit() {
+    log();
     let runtime = Runtime::new().unwrap();
     let limits = Limits { deadline: Duration::from_millis(50), ..Limits::default() };
     let options = ModelOptions { limits, wasi: Some(WasiPolicy::default()), ..ModelOptions::default() };
@@ -90,17 +92,29 @@ impl Write for Sink {
     }
 }
 
+/// The log of this test binary: one global subscriber, installed before
+/// any test loads a model (a per-thread subscriber would miss events whose
+/// call site another test's thread reached first).
+fn log() -> &'static Sink {
+    static LOG: std::sync::OnceLock<Sink> = std::sync::OnceLock::new();
+    LOG.get_or_init(|| {
+        let sink = Sink::default();
+        let writer = sink.clone();
+        let subscriber = tracing_subscriber::fmt().with_writer(move || writer.clone()).with_ansi(false).finish();
+        tracing::subscriber::set_global_default(subscriber).expect("the only subscriber");
+        sink
+    })
+}
+
 #[test]
 fn output_is_captured_into_the_log_up_to_the_cap_and_the_model_never_sees_a_failed_write() {
-    let sink = Sink::default();
-    let writer = sink.clone();
-    let subscriber = tracing_subscriber::fmt().with_writer(move || writer.clone()).with_ansi(false).finish();
-    let _guard = tracing::subscriber::set_default(subscriber);
+    let sink = log();
     let model = load(WasiPolicy { output_bytes: 1000, ..WasiPolicy::default() });
     probe(&model, 0.0, 10_000.0).expect("printing past the cap is not an error");
     let log = String::from_utf8(sink.0.lock().unwrap().clone()).unwrap();
     assert!(log.contains("probe: started"), "what init printed is logged: {log}");
-    let line = log.lines().find(|l| l.contains("xxxx")).expect("the printed bytes are logged");
+    // Only this test prints, and only it sets a 1000-byte cap.
+    let line = log.lines().find(|l| l.contains("cap=1000")).expect("the printed bytes are logged");
     assert_eq!(line.matches('x').count(), 1000, "exactly the cap is kept: {line}");
     assert!(line.contains("dropped=9000") && line.contains("cap=1000"), "the rest is counted: {line}");
     assert!(line.contains("model=\"wasi-probe@0.1.0\"") && line.contains("stream=\"stdout\""), "{line}");
@@ -108,6 +122,7 @@ fn output_is_captured_into_the_log_up_to_the_cap_and_the_model_never_sees_a_fail
 
 #[test]
 fn the_audit_lists_every_wasi_import_and_what_satisfies_it() {
+    log();
     let path = root().join("target/paddock/artifacts/wasi-probe.wasm");
     let with = ModelOptions { wasi: Some(WasiPolicy::default()), ..ModelOptions::default() };
     let report = audit(&path, &with, &TrustPolicy::default());
