@@ -347,32 +347,32 @@ impl Instance {
         let mut store = Store::new(runtime.engine(), state);
         store.limiter(|s| s as &mut dyn ResourceLimiter);
         arm(&mut store, runtime, limits.init_deadline, limits.fuel);
-        let fail = |stage, store: &Store<State>, e| {
-            drain(store, who);
-            StartError::Sandbox { stage, error: classify(e, runtime, store) }
-        };
-        let api = match pre.instantiate(&mut store) {
-            Ok(api) => api,
-            Err(e) => return Err(fail(Stage::Instantiate, &store, e)),
-        };
-        match api.call_init(&mut store, params) {
-            Ok(Ok(())) => {}
-            Ok(Err(message)) => {
-                drain(&store, who);
-                return Err(StartError::Refused(message));
-            }
-            Err(e) => return Err(fail(Stage::Init, &store, e)),
-        }
-        let contract = if describe {
-            match api.call_describe(&mut store) {
-                Ok(c) => Some(c),
-                Err(e) => return Err(fail(Stage::Describe, &store, e)),
-            }
-        } else {
-            None
-        };
+        let started = Self::init(&mut store, runtime, pre, params, describe);
         drain(&store, who);
+        let (api, contract) = started?;
         Ok((Instance { store, api, who: who.clone() }, contract))
+    }
+
+    /// The start-up calls of [`Instance::start`], on an armed store.
+    fn init(
+        store: &mut Store<State>,
+        runtime: &Runtime,
+        pre: &EstimatorPre<State>,
+        params: &[u8],
+        describe: bool,
+    ) -> Result<(Estimator, Option<Contract>), StartError> {
+        let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
+        let api = pre.instantiate(&mut *store).map_err(|e| fail(Stage::Instantiate, store, e))?;
+        match api.call_init(&mut *store, params) {
+            Ok(Ok(())) => {}
+            Ok(Err(message)) => return Err(StartError::Refused(message)),
+            Err(e) => return Err(fail(Stage::Init, store, e)),
+        }
+        let contract = match describe {
+            true => Some(api.call_describe(&mut *store).map_err(|e| fail(Stage::Describe, store, e))?),
+            false => None,
+        };
+        Ok((api, contract))
     }
 
     /// Calls `describe()` again under the init deadline.

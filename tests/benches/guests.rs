@@ -157,7 +157,7 @@ fn main() {
     ];
     for (k, m) in kinds.iter().zip(&results) {
         let ratio = k.baseline.map_or("baseline".to_owned(), |b| {
-            format!("{:.0}×", m.per_row.as_secs_f64() / results[b].per_row.as_secs_f64())
+            format!("{:.1}×", m.per_row.as_secs_f64() / results[b].per_row.as_secs_f64())
         });
         table.push(format!(
             "| {} | {} | {:.2} MiB | {} ms | {} ms | {} µs | {:.1} MiB | {} µs | {} µs | {ratio} |",
