@@ -101,12 +101,13 @@ fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
 /// policy every import is named; with one, those it does not cover.
 fn check_imports(imports: &[String], policy: Option<&WasiPolicy>) -> Result<(), LoadError> {
     let other: Vec<String> = imports.iter().filter(|i| !wasi::is_wasi(i)).cloned().collect();
-    match (other.is_empty(), policy) {
-        (true, _) if imports.is_empty() || policy.is_some() => Ok(()),
-        (true, _) => Err(LoadError::WasiImports(imports.to_vec())),
-        (false, None) => Err(LoadError::Imports(imports.to_vec())),
-        (false, Some(_)) => Err(LoadError::Imports(other)),
+    if !other.is_empty() {
+        return Err(LoadError::Imports(if policy.is_some() { other } else { imports.to_vec() }));
     }
+    if !imports.is_empty() && policy.is_none() {
+        return Err(LoadError::WasiImports(imports.to_vec()));
+    }
+    Ok(())
 }
 
 fn list(names: &[String]) -> String {

@@ -78,11 +78,9 @@ pub fn is_wasi(import: &str) -> bool {
     import.starts_with("wasi:")
 }
 
-/// How the policy answers one WASI interface, for the audit report.
-///
-/// # Errors
-/// `None` for an interface wasmtime-wasi 0.2 does not provide (the artifact
-/// will not link).
+/// How the policy answers one WASI interface, for the audit report;
+/// `None` for an interface the host does not provide (the artifact will
+/// not link).
 pub fn satisfied_by(import: &str, policy: &WasiPolicy) -> Option<String> {
     let name = import.split('@').next().unwrap_or(import);
     let source = |s: Source, fixed: String| match s {
