@@ -191,18 +191,11 @@ fn deserialize(runtime: &Runtime, code: &[u8]) -> Result<Component, String> {
 fn store(path: &Path, component: &Component) -> Result<(), String> {
     let code = component.serialize().map_err(|e| format!("{e:#}"))?;
     let sum = Sha256::digest(&code);
-    let tmp = path.with_extension(format!("tmp{}", std::process::id()));
-    let write = || -> std::io::Result<()> {
-        let mut f = fs::File::create(&tmp)?;
+    crate::atomic_file::write_with(path, |f| {
         f.write_all(&sum)?;
-        f.write_all(&code)?;
-        f.sync_all()?;
-        fs::rename(&tmp, path)
-    };
-    write().map_err(|e| {
-        let _ = fs::remove_file(&tmp);
-        e.to_string()
+        f.write_all(&code)
     })
+    .map_err(|e| format!("{}: {e}", path.display()))
 }
 
 #[cfg(unix)]
