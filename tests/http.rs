@@ -152,7 +152,7 @@ fn malformed_requests_are_400_naming_the_problem() {
     for (body, needle) in [
         ("{not json", "not a score request"),
         (r#"{"rows": [{"x": 1}], "colour": "red"}"#, "unknown field `colour`"),
-        (r#"{"rows": []}"#, "`rows` is empty"),
+        (r#"{"rows": []}"#, "rows is empty"),
         (r#"{"rows": [{"x": 1}], "at": "yesterday"}"#, "`at`: `yesterday` is not an RFC 3339 time"),
         (r#"{"rows": [{"x": [1, 2]}]}"#, "not a score request"),
     ] {
@@ -188,18 +188,32 @@ fn a_body_over_the_limit_is_413() {
 }
 
 #[test]
-fn rows_that_break_the_contract_are_422_with_every_row_named() {
+fn valid_rows_are_answered_beside_invalid_ones_and_422_only_when_none_is_valid() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": "seven"}, {"y": 1}]}"#), None);
+    // Rows are numbered from 1; row 3 has two problems, both reported.
+    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": "seven"}, {"y": 1}, {"x": 2}]}"#), None);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let v = r.json();
+    assert_eq!(v["estimates"], serde_json::json!([{"y": 3.0}, null, null, {"y": 5.0}]));
+    let problems: Vec<(u64, String, String)> = v["problems"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|p| (p["row"].as_u64().unwrap(), p["feature"].as_str().unwrap().into(), p["rule"]["rule"].as_str().unwrap().into()))
+        .collect();
+    assert_eq!(
+        problems,
+        [(2, "x".into(), "wrong_kind".into()), (3, "y".into(), "unknown_feature".into()), (3, "x".into(), "missing_required".into())]
+    );
+    assert_eq!(v["usage"]["rows"], 2);
+
+    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": "seven"}, {"y": 1}]}"#), None);
     assert_eq!((r.status, r.kind().as_str()), (422, "invalid_rows"), "{}", r.body);
     let rows = r.json()["error"]["rows"].clone();
-    assert_eq!(rows[0]["row"], 1);
-    assert_eq!(rows[0]["feature"], "x");
-    assert_eq!(rows[0]["rule"]["rule"], "wrong_kind");
-    assert_eq!(rows[1]["row"], 2);
-    assert_eq!(rows[1]["feature"], "y");
-    assert_eq!(rows[1]["rule"]["rule"], "unknown_feature");
+    assert_eq!(rows.as_array().unwrap().len(), 3);
+    assert_eq!((rows[0]["row"].clone(), rows[0]["feature"].clone()), (1.into(), "x".into()));
+    assert_eq!((rows[1]["row"].clone(), rows[1]["feature"].clone()), (2.into(), "y".into()));
     assert_eq!(r.json()["error"]["version"], "1.0.0");
 }
 
@@ -224,28 +238,105 @@ fn a_limit_hit_is_500_and_a_model_fault_is_502() {
     assert_eq!(r.status, 200, "{}", r.body);
 }
 
+/// A gauge or counter sample from `/metrics`, 0 when absent.
+fn metric(s: &Server, sample: &str) -> f64 {
+    let r = call("GET", &format!("{}/metrics", s.base), None, None);
+    r.body.lines().find_map(|l| l.strip_prefix(sample).and_then(|v| v.strip_prefix(' '))).map_or(0.0, |v| v.parse().unwrap())
+}
+
+/// Waits until `/metrics` shows `sample` at `value` (the server's own
+/// account of what is running), failing after a minute.
+fn wait_for(s: &Server, sample: &str, value: f64) {
+    let give_up = std::time::Instant::now() + Duration::from_secs(60);
+    while metric(s, sample) != value {
+        assert!(std::time::Instant::now() < give_up, "{sample} never reached {value}");
+        std::thread::sleep(Duration::from_millis(5));
+    }
+}
+
+const AFFINE_IN_FLIGHT: &str = r#"paddock_in_flight{model="affine",version="1.0.0"}"#;
+
 #[test]
 fn a_full_queue_is_503_with_retry_after() {
     let dir = tempfile::tempdir().unwrap();
     let options = ServeOptions { concurrency: 1, queue: 0, retry_after_secs: 2, ..ServeOptions::default() };
-    // The spinning model holds the only permit for its whole 1 s deadline;
-    // of two calls started together, one must find it taken.
-    let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(1)), options);
-    let calls: Vec<_> = (0..2)
+    // The spinning model holds the only permit for its whole deadline.
+    let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), options);
+    let url = score_url(&s, "affine");
+    let first = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None));
+    wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
+    // The permit is taken and nothing may wait: 503 at once.
+    let r = call("POST", &score_url(&s, "affine"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    assert_eq!((r.status, r.kind().as_str()), (503, "overloaded"), "{}", r.body);
+    assert_eq!(r.retry_after.as_deref(), Some("2"));
+    // Another model has its own limit and is not held up.
+    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    assert_eq!(r.status, 200);
+    let r = first.join().unwrap();
+    assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);
+    assert_eq!(metric(&s, r#"paddock_rejected_requests_total{kind="overloaded"}"#), 1.0);
+}
+
+#[test]
+fn a_model_spinning_with_all_its_permits_leaves_the_others_their_workers() {
+    let dir = tempfile::tempdir().unwrap();
+    // 2 async workers (Server::start); the spinning model may take 2 calls.
+    let options = ServeOptions { concurrency: 2, score_threads: 4, ..ServeOptions::default() };
+    let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), options);
+    let spinning: Vec<_> = (0..2)
         .map(|_| {
             let url = score_url(&s, "affine");
             std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None))
         })
         .collect();
-    // Meanwhile another model has its own limit and is not held up.
-    std::thread::sleep(Duration::from_millis(50));
+    // Metrics answer while both calls spin (that is how we know they do).
+    wait_for(&s, AFFINE_IN_FLIGHT, 2.0);
     let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
-    assert_eq!(r.status, 200);
-    let mut replies: Vec<Reply> = calls.into_iter().map(|c| c.join().unwrap()).collect();
-    replies.sort_by_key(|r| r.status);
-    assert_eq!((replies[0].status, replies[0].kind().as_str()), (500, "limit"), "{}", replies[0].body);
-    assert_eq!((replies[1].status, replies[1].kind().as_str()), (503, "overloaded"), "{}", replies[1].body);
-    assert_eq!(replies[1].retry_after.as_deref(), Some("2"));
+    assert_eq!(r.status, 200, "{}", r.body);
+    assert_eq!(r.json()["estimates"], serde_json::json!([{"y": 3.0}]));
+    assert_eq!(call("GET", &format!("{}/healthz", s.base), None, None).status, 200);
+    assert_eq!(call("GET", &format!("{}/readyz", s.base), None, None).status, 200);
+    // All of that happened while the spinning calls were still running.
+    assert_eq!(metric(&s, AFFINE_IN_FLIGHT), 2.0);
+    assert!(spinning.iter().all(|t| !t.is_finished()));
+    for t in spinning {
+        let r = t.join().unwrap();
+        assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);
+    }
+    assert_eq!(metric(&s, AFFINE_IN_FLIGHT), 0.0);
+}
+
+#[test]
+fn names_no_model_has_keep_no_state() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = Server::start(store(dir.path(), true), ServeOptions::default());
+    call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let versions_before = metric(&s, r#"paddock_calls_total{model="m",version="1.0.0"}"#);
+    for i in 0..500 {
+        let r = call("POST", &score_url(&s, &format!("random-{i}")), Some(r#"{"rows": [{"x": 1}]}"#), None);
+        assert_eq!((r.status, r.kind().as_str()), (404, "unknown_model"));
+    }
+    // One gate (for m), whatever was asked; the refusals are counted by kind only.
+    assert_eq!(metric(&s, "paddock_serve_gates"), 1.0);
+    assert_eq!(metric(&s, r#"paddock_rejected_requests_total{kind="unknown_model"}"#), 500.0);
+    assert_eq!(metric(&s, r#"paddock_calls_total{model="m",version="1.0.0"}"#), versions_before);
+    let text = call("GET", &format!("{}/metrics", s.base), None, None).body;
+    assert!(!text.contains("random-"), "{text}");
+}
+
+#[test]
+fn framework_errors_have_the_same_json_body() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = Server::start(store(dir.path(), true), ServeOptions::default());
+    let r = call("POST", &format!("{}/healthz", s.base), None, None);
+    assert_eq!((r.status, r.kind().as_str()), (405, "method_not_allowed"), "{}", r.body);
+    assert_eq!(r.content_type, "application/json");
+    let r = call("GET", &score_url(&s, "m"), None, None);
+    assert_eq!((r.status, r.kind().as_str()), (405, "method_not_allowed"), "{}", r.body);
+    let r = call("GET", &format!("{}/v1/models/%FF/contract", s.base), None, None);
+    assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{}", r.body);
+    let r = call("GET", &format!("{}/v1/models/m/contract?version=1&version=2", s.base), None, None);
+    assert_eq!(r.content_type, "application/json", "{}", r.body);
 }
 
 #[test]
@@ -290,7 +381,10 @@ fn health_readiness_status_models_and_contract() {
     assert_eq!(c["name"], "m");
     assert_eq!(c["features"][0]["name"], "x");
     let c = call("GET", &format!("{}/v1/models/m/contract?version=9.0.0", s.base), None, None);
-    assert_eq!(c.status, 404);
+    assert_eq!((c.status, c.kind().as_str()), (404, "unknown_version"), "{}", c.body);
+    assert_eq!(c.json()["error"]["details"]["loaded"], serde_json::json!(["1.0.0"]));
+    let c = call("GET", &format!("{}/v1/models/nope/contract?version=1.0.0", s.base), None, None);
+    assert_eq!((c.status, c.kind().as_str()), (404, "unknown_model"), "{}", c.body);
     let c = call("GET", &format!("{}/v1/models/m/contract?version=latest", s.base), None, None);
     assert_eq!(c.status, 400);
     let st = call("GET", &format!("{}/v1/status", s.base), None, None).json();
@@ -305,17 +399,23 @@ fn metrics_are_openmetrics_text_with_the_calls_made() {
         call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": 2}]}"#), None);
     }
     call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": "bad"}]}"#), None);
+    call("POST", &score_url(&s, "nope"), Some(r#"{"rows": [{"x": 1}]}"#), None);
     let r = call("GET", &format!("{}/metrics", s.base), None, None);
     assert_eq!(r.content_type, "application/openmetrics-text; version=1.0.0; charset=utf-8");
+    // The invalid request is the client's fault: counted apart, not as a
+    // call or an error of the version.
     for line in [
-        r#"paddock_calls_total{model="m",version="1.0.0"} 4"#,
-        r#"paddock_rows_total{model="m",version="1.0.0"} 7"#,
-        r#"paddock_errors_total{model="m",version="1.0.0",kind="invalid_rows"} 1"#,
-        r#"paddock_call_seconds_count{model="m",version="1.0.0"} 4"#,
-        r#"paddock_call_seconds_bucket{model="m",version="1.0.0",le="+Inf"} 4"#,
+        r#"paddock_calls_total{model="m",version="1.0.0"} 3"#,
+        r#"paddock_rows_total{model="m",version="1.0.0"} 6"#,
+        r#"paddock_refused_rows_total{model="m",version="1.0.0",kind="invalid_rows"} 1"#,
+        r#"paddock_call_seconds_count{model="m",version="1.0.0"} 3"#,
+        r#"paddock_call_seconds_bucket{model="m",version="1.0.0",le="+Inf"} 3"#,
+        r#"paddock_rejected_requests_total{kind="unknown_model"} 1"#,
+        r#"paddock_in_flight{model="m",version="1.0.0"} 0"#,
     ] {
         assert!(r.body.lines().any(|l| l == line), "no {line:?} in\n{}", r.body);
     }
+    assert!(!r.body.lines().any(|l| l.starts_with("paddock_errors_total")), "{}", r.body);
     assert!(r.body.ends_with("# EOF\n"));
 }
 
@@ -336,11 +436,11 @@ fn the_openapi_document_is_served_and_names_every_route() {
 #[test]
 fn shutdown_lets_the_request_in_flight_finish() {
     let dir = tempfile::tempdir().unwrap();
-    let mut s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(2)), ServeOptions::default());
+    let mut s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), ServeOptions::default());
     let url = score_url(&s, "affine");
-    // This call runs for its whole 2 s deadline; shut down a quarter of the way in.
+    // This call runs for its whole deadline; shut down once it is running.
     let in_flight = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None));
-    std::thread::sleep(Duration::from_millis(500));
+    wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
     s.stop();
     let r = in_flight.join().unwrap();
     assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);

@@ -405,9 +405,11 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
 
     let usage = reg.usage();
     let m = usage.versions.iter().find(|v| v.model == "m").unwrap();
-    // serving_one scored one row before this test's calls.
-    assert_eq!((m.calls, m.rows), (3, 5));
-    assert_eq!(m.errors, [("invalid_rows".to_owned(), 1)].into_iter().collect());
+    // serving_one scored one row before this test's calls. The invalid row
+    // is the request's fault: refused, not a call or an error of m.
+    assert_eq!((m.calls, m.rows), (2, 4));
+    assert!(m.errors.is_empty(), "{m:?}");
+    assert_eq!(m.refused_rows, [("invalid_rows".to_owned(), 1)].into_iter().collect());
     assert!(m.wall_us.p50 > 0.0 && m.wall_us.max >= m.wall_us.p99 && m.wall_us.p99 >= m.wall_us.p50, "{m:?}");
     assert!(m.peak_memory_bytes > 0);
     let a = usage.versions.iter().find(|v| v.model == "affine").unwrap();
@@ -417,6 +419,47 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
     let saved = reg.save_usage().unwrap();
     let back: paddock_host::registry::SavedUsage = serde_json::from_slice(&std::fs::read(saved).unwrap()).unwrap();
     assert_eq!(back.usage, usage);
+}
+
+#[test]
+fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let none = Context::new();
+    let reg = serving_one(store, RegistryOptions::default());
+    // A second registry on the same state directory is refused, naming the holder.
+    let err = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions::default()).unwrap_err();
+    let text = err.to_string();
+    assert!(text.contains(&format!("process {}", std::process::id())) && text.contains("--state"), "{text}");
+    // One that keeps no usage may look at the store beside it.
+    let look = RegistryOptions { usage_flush: None, ..RegistryOptions::default() };
+    let side = Registry::open(&Runtime::new().unwrap(), store, look).unwrap();
+    assert!(side.save_usage().is_err(), "a registry without a usage file must not overwrite it");
+    drop(side);
+    for _ in 0..4 {
+        reg.score(&Request { model: "m", context: &none, at: None, rows: &x(2.0) }).unwrap();
+    }
+    // Dropped: the ledger is written and the lock given back.
+    drop(reg);
+    let reg = open(store);
+    reg.score(&Request { model: "m", context: &none, at: None, rows: &x(3.0) }).unwrap();
+    let m = reg.usage().versions.into_iter().find(|v| v.model == "m").unwrap();
+    // serving_one's own call, four, then one after the restart.
+    assert_eq!((m.calls, m.rows), (6, 6));
+    assert_eq!(m.wall_us.buckets.last().copied(), Some(6), "the histogram carried over: {:?}", m.wall_us);
+}
+
+#[test]
+fn an_unreadable_usage_file_is_kept_aside_not_overwritten() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let state = store.join(paddock_host::registry::STATE_DIR);
+    std::fs::create_dir_all(&state).unwrap();
+    std::fs::write(state.join("usage.json"), b"{ half a file").unwrap();
+    let reg = serving_one(store, RegistryOptions::default());
+    assert_eq!(std::fs::read(state.join("usage.json.unreadable")).unwrap(), b"{ half a file");
+    let m = reg.usage().versions.into_iter().find(|v| v.model == "m").unwrap();
+    assert_eq!(m.calls, 1);
 }
 
 #[test]

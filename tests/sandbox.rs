@@ -184,7 +184,7 @@ fn non_finite_and_short_answers_are_model_faults() {
     let nan = affine(&runtime, 4, Limits::default());
     let err = nan.score(&x(1.0)).unwrap_err();
     assert!(
-        matches!(&err, ScoreError::Output(OutputFault::NonFinite { row: 0, output, value }) if output == "y" && value.is_nan()),
+        matches!(&err, ScoreError::Output(OutputFault::NonFinite { row: 1, output, value }) if output == "y" && value.is_nan()),
         "{err:?}"
     );
     let err = nan.score(&x(1.0)).unwrap_err();
@@ -207,8 +207,9 @@ fn invalid_rows_never_enter_the_sandbox_and_every_one_is_named() {
     assert_eq!(
         text,
         [
-            "row 1, feature `x` = \"one\": wrong kind: expected a number",
-            "row 2, feature `z` = 1: unknown feature",
+            "row 2, feature `x` = \"one\": wrong kind: expected a number",
+            "row 3, feature `z` = 1: unknown feature",
+            "row 3, feature `x` = absent: required feature is missing",
         ]
     );
     // Nothing was scored: the instance's first call is still to come.
@@ -227,6 +228,14 @@ fn rows_per_call_cap_is_enforced_before_the_sandbox() {
 fn an_artifact_over_the_size_cap_is_refused_before_reading() {
     let err = Artifact::read(&demo_artifact("charge-minutes"), 1000).unwrap_err();
     assert!(err.to_string().starts_with("artifact size cap of 1000 bytes exceeded"), "{err}");
+    // A sparse file of 1 TiB: reading it, or allocating room for it, would
+    // fail or take the machine's memory; refused from its size alone, it
+    // is answered at once, naming its size.
+    let dir = tempfile::tempdir().unwrap();
+    let huge = dir.path().join("huge.wasm");
+    std::fs::File::create(&huge).unwrap().set_len(1 << 40).unwrap();
+    let err = Artifact::read(&huge, 64 << 20).unwrap_err();
+    assert!(err.to_string().contains("1099511627776"), "{err}");
 }
 
 #[test]

@@ -33,7 +33,10 @@ fuzz_target!(|data: &[u8]| {
                 let before = cells.len();
                 match schema.encode_row(i, &row, &mut cells) {
                     Ok(()) => assert_eq!(cells.len(), before + schema.width()),
-                    Err(_) => assert_eq!(cells.len(), before),
+                    Err(errors) => {
+                        assert!(!errors.is_empty());
+                        assert_eq!(cells.len(), before);
+                    }
                 }
             }
         }

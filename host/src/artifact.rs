@@ -175,10 +175,15 @@ impl Artifact {
     /// [`ArtifactError::Io`] when the file cannot be read, otherwise as
     /// [`Artifact::from_bytes`].
     pub fn read(path: &Path, max_bytes: u64) -> Result<Self, ArtifactError> {
+        use std::io::Read as _;
         let io = |source| ArtifactError::Io { path: path.to_owned(), source };
-        let size = std::fs::metadata(path).map_err(io)?.len();
+        let file = std::fs::File::open(path).map_err(io)?;
+        let size = file.metadata().map_err(io)?.len();
         check_size(size, max_bytes)?;
-        Self::from_bytes(std::fs::read(path).map_err(io)?, max_bytes)
+        // Never more than the cap, even if the file grows after the check.
+        let mut bytes = Vec::with_capacity(size as usize);
+        file.take(max_bytes.saturating_add(1)).read_to_end(&mut bytes).map_err(io)?;
+        Self::from_bytes(bytes, max_bytes)
     }
 
     /// Parses artifact bytes: size cap, structure, top-level imports,

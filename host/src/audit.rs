@@ -234,7 +234,7 @@ fn probe(report: &mut AuditReport, model: &Model) {
     // Cost: every valid case row in one call.
     let schema = model.schema();
     let mut cells = Vec::new();
-    let rows = carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i, &c.row, &mut cells).is_ok()).count();
+    let rows = carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i + 1, &c.row, &mut cells).is_ok()).count();
     let (mut fuel, mut micros, mut peak) = (0.0, 0.0, 0);
     if rows > 0 {
         match model.score_cells(rows, &cells) {

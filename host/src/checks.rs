@@ -147,9 +147,12 @@ pub fn run(model: &Model, checks: &Checks) -> Result<CheckReport, ScoreError> {
     let mut cells = Vec::new();
     let mut scored = Vec::new();
     for (i, case) in checks.cases.iter().enumerate() {
-        match schema.encode_row(i, &case.row, &mut cells) {
+        match schema.encode_row(i + 1, &case.row, &mut cells) {
             Ok(()) => scored.push(i),
-            Err(e) => report.failures.push((i, CaseFailure::InvalidRow { error: e.to_string() })),
+            Err(e) => {
+                let error = e.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ");
+                report.failures.push((i, CaseFailure::InvalidRow { error }));
+            }
         }
     }
     let chunk = model.options().limits.rows_per_call.max(1);

@@ -43,6 +43,7 @@
 #![deny(missing_docs)]
 
 pub mod artifact;
+mod atomic_file;
 pub mod audit;
 mod bindings;
 pub mod checks;
@@ -65,7 +66,7 @@ pub use checks::{CheckReport, Checks, Tolerance};
 pub use codecache::{CacheError, CodeCache, CodeSource};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output, Schema};
 pub use limits::{LimitHit, Limits};
-pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError, Usage};
+pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError, Scored, Usage};
 pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
 pub use rows::{OutputFault, Row, RowError, Rule, Value};
 pub use sandbox::{Runtime, RuntimeConfig, SandboxError};

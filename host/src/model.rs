@@ -110,6 +110,17 @@ fn check_imports(imports: &[String], policy: Option<&WasiPolicy>) -> Result<(), 
     Ok(())
 }
 
+fn invalid_rows(errors: &[RowError]) -> String {
+    let mut rows: Vec<usize> = errors.iter().map(|e| e.row).collect();
+    rows.dedup();
+    let first = errors.first().map(ToString::to_string).unwrap_or_default();
+    match (rows.len(), errors.len()) {
+        (1, 1) => first,
+        (1, n) => format!("{n} problems in row {}; first: {first}", rows[0]),
+        (r, n) => format!("{n} problems in {r} rows; first: {first}"),
+    }
+}
+
 fn list(names: &[String]) -> String {
     names.iter().map(|n| format!("`{n}`")).collect::<Vec<_>>().join(", ")
 }
@@ -120,7 +131,7 @@ fn list(names: &[String]) -> String {
 #[non_exhaustive]
 pub enum ScoreError {
     /// One or more rows break the contract; nothing entered the sandbox.
-    #[error("{} invalid row(s): {}", .errors.len(), .errors.first().map(ToString::to_string).unwrap_or_default())]
+    #[error("{}", invalid_rows(.errors))]
     InvalidRows {
         /// Every invalid row.
         errors: Vec<RowError>,
@@ -168,6 +179,30 @@ impl ScoreError {
             ScoreError::ContractChanged => "contract_changed",
             ScoreError::Fault(_) => "fault",
             ScoreError::Output(_) => "output",
+        }
+    }
+
+    /// Whether the request, not the model, is at fault: rows that break
+    /// the contract, cells that do not make rows, too many rows. Nothing
+    /// entered the sandbox.
+    pub fn is_request_fault(&self) -> bool {
+        matches!(self, ScoreError::InvalidRows { .. } | ScoreError::Shape { .. } | ScoreError::TooManyRows(_))
+    }
+
+    /// The same error with the rows it names renumbered by `f` (from the
+    /// call's own numbering, 1 to n, to the caller's: a file's record
+    /// numbers, a request's rows).
+    #[must_use]
+    pub fn renumber(self, f: impl Fn(usize) -> usize) -> Self {
+        match self {
+            ScoreError::Output(fault) => ScoreError::Output(fault.renumber(f)),
+            ScoreError::InvalidRows { mut errors } => {
+                for e in &mut errors {
+                    e.row = f(e.row);
+                }
+                ScoreError::InvalidRows { errors }
+            }
+            other => other,
         }
     }
 
@@ -234,6 +269,18 @@ impl Estimates {
     pub fn usage(&self) -> &Usage {
         &self.usage
     }
+}
+
+/// The answer to rows of which some may break the contract.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Scored {
+    /// Estimates of the valid rows, in the order given.
+    pub estimates: Estimates,
+    /// The number (from 1) of the request row behind each estimate row.
+    pub scored: Vec<usize>,
+    /// Every problem of the rows that broke the contract (none entered the
+    /// sandbox), each naming its row.
+    pub problems: Vec<RowError>,
 }
 
 /// A loaded model. `Send + Sync`: share it (it is cheap to clone) and call
@@ -386,25 +433,46 @@ impl Model {
         &self.inner.options
     }
 
-    /// Checks every row against the contract, then scores them in one call.
+    /// Checks every row against the contract, then scores them in one call;
+    /// all or nothing.
     ///
     /// # Errors
-    /// [`ScoreError::InvalidRows`] listing every invalid row (nothing is
-    /// scored), otherwise as [`Model::score_cells`].
+    /// [`ScoreError::InvalidRows`] listing every problem of every invalid
+    /// row (nothing is scored), otherwise as [`Model::score_cells`].
     pub fn score(&self, rows: &[Row]) -> Result<Estimates, ScoreError> {
+        let scored = self.score_valid(rows)?;
+        if !scored.problems.is_empty() {
+            return Err(ScoreError::InvalidRows { errors: scored.problems });
+        }
+        Ok(scored.estimates)
+    }
+
+    /// Checks every row against the contract and scores the valid ones in
+    /// one call: every valid row is answered, every problem of the others
+    /// reported. Rows are numbered from 1 in the order given.
+    ///
+    /// # Errors
+    /// [`ScoreError::InvalidRows`] when no row is valid; otherwise as
+    /// [`Model::score_cells`], with the rows an output fault names
+    /// numbered as in `rows`.
+    pub fn score_valid(&self, rows: &[Row]) -> Result<Scored, ScoreError> {
         let schema = &self.inner.schema;
         self.check_row_count(rows.len())?;
         let mut cells = Vec::with_capacity(rows.len() * schema.width());
-        let mut errors = Vec::new();
+        let mut problems = Vec::new();
+        let mut scored = Vec::with_capacity(rows.len());
         for (i, row) in rows.iter().enumerate() {
-            if let Err(e) = schema.encode_row(i, row, &mut cells) {
-                errors.push(e);
+            match schema.encode_row(i + 1, row, &mut cells) {
+                Ok(()) => scored.push(i + 1),
+                Err(e) => problems.extend(e),
             }
         }
-        if !errors.is_empty() {
-            return Err(ScoreError::InvalidRows { errors });
+        if scored.is_empty() && !rows.is_empty() {
+            return Err(ScoreError::InvalidRows { errors: problems });
         }
-        self.score_cells(rows.len(), &cells)
+        let estimates =
+            self.score_cells(scored.len(), &cells).map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
+        Ok(Scored { estimates, scored, problems })
     }
 
     /// Scores rows already encoded as dense cells (row-major, contract
@@ -439,7 +507,9 @@ impl Model {
                 return Err(ScoreError::Fault(fault));
             }
         };
-        inner.schema.check_outputs(rows, &values).map_err(ScoreError::Output)?;
+        if let Err(fault) = inner.schema.check_outputs(rows, &values) {
+            return Err(ScoreError::Output(fault));
+        }
         let peak_memory_bytes = instance.peak_memory();
         self.give_back(instance);
         let usage = Usage { rows, wall: started.elapsed(), fuel, fresh_instance: fresh, peak_memory_bytes };

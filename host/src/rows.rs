@@ -195,7 +195,8 @@ impl fmt::Display for Rule {
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
 #[error("row {row}, feature `{feature}` = {value}: {rule}")]
 pub struct RowError {
-    /// 0-based row position in the request.
+    /// The row's number: from 1, in the order the rows were given (a CSV
+    /// file's header is not a row).
     pub row: usize,
     /// The feature name.
     pub feature: String,
@@ -210,31 +211,39 @@ impl Schema {
     /// contract order; absent optional features as NaN) to `cells`. On error
     /// `cells` is left as it was.
     ///
+    /// `row_number` is how the caller numbers the row (every surface numbers
+    /// rows from 1, in the order given); each error carries it.
+    ///
     /// # Errors
-    /// The first [`RowError`] found, with `row` set to `row_number`.
-    pub fn encode_row(&self, row_number: usize, row: &Row, cells: &mut Vec<f64>) -> Result<(), RowError> {
+    /// Every [`RowError`] of the row, in the row's order, then missing
+    /// required features in contract order: a row with five bad cells gets
+    /// five errors.
+    pub fn encode_row(&self, row_number: usize, row: &Row, cells: &mut Vec<f64>) -> Result<(), Vec<RowError>> {
         let start = cells.len();
         cells.resize(start + self.width(), f64::NAN);
-        let result = self.fill(row_number, row, &mut cells[start..]);
-        if result.is_err() {
+        let mut errors = Vec::new();
+        self.fill(row_number, row, &mut cells[start..], &mut errors);
+        if errors.is_empty() {
+            Ok(())
+        } else {
             cells.truncate(start);
+            Err(errors)
         }
-        result
     }
 
-    fn fill(&self, row_number: usize, row: &Row, dest: &mut [f64]) -> Result<(), RowError> {
+    fn fill(&self, row_number: usize, row: &Row, dest: &mut [f64], errors: &mut Vec<RowError>) {
         let features = &self.contract().features;
-        let fail = |feature: &str, value: &Value, rule| RowError {
-            row: row_number,
-            feature: feature.to_owned(),
-            value: value.to_string(),
-            rule,
+        let mut fail = |feature: &str, value: &Value, rule| {
+            errors.push(RowError { row: row_number, feature: feature.to_owned(), value: value.to_string(), rule });
         };
         // Seen-set as a bit mask for the common case, a vector beyond 64.
         let mut seen_small = 0u64;
         let mut seen_big = if features.len() > 64 { vec![false; features.len()] } else { Vec::new() };
         for (name, value) in &row.0 {
-            let i = self.feature_index(name).ok_or_else(|| fail(name, value, Rule::UnknownFeature))?;
+            let Some(i) = self.feature_index(name) else {
+                fail(name, value, Rule::UnknownFeature);
+                continue;
+            };
             let repeated = if seen_big.is_empty() {
                 let bit = 1u64 << i;
                 let r = seen_small & bit != 0;
@@ -244,45 +253,43 @@ impl Schema {
                 std::mem::replace(&mut seen_big[i], true)
             };
             if repeated {
-                return Err(fail(name, value, Rule::Repeated));
+                fail(name, value, Rule::Repeated);
+                continue;
             }
             let feature = &features[i];
-            dest[i] = match (value, &feature.domain) {
-                (Value::Absent, _) if feature.required => return Err(fail(name, value, Rule::MissingRequired)),
-                (Value::Absent, _) => f64::NAN,
-                (_, Domain::Real(bounds)) => {
-                    let v = match value {
-                        Value::Number(v) => *v,
-                        Value::Integer(v) => *v as f64,
-                        _ => return Err(fail(name, value, Rule::WrongKind { expected: "a number" })),
-                    };
-                    bounded(v, bounds).map_err(|rule| fail(name, value, rule))?
-                }
-                (_, Domain::Whole(bounds)) => {
-                    let v = match value {
-                        Value::Integer(v) => *v as f64,
-                        Value::Number(v) if v.fract() == 0.0 => *v,
-                        Value::Number(v) if !v.is_finite() => return Err(fail(name, value, Rule::NonFinite)),
-                        _ => return Err(fail(name, value, Rule::WrongKind { expected: "a whole number" })),
-                    };
-                    bounded(v, bounds).map_err(|rule| fail(name, value, rule))?
-                }
-                (Value::Label(label), Domain::Label(allowed)) => match self.label_index(i, label) {
-                    Some(k) => k as f64,
-                    None => return Err(fail(name, value, Rule::UnknownLabel { allowed: allowed.clone() })),
+            let cell = match (value, &feature.domain) {
+                (Value::Absent, _) if feature.required => Err(Rule::MissingRequired),
+                (Value::Absent, _) => Ok(f64::NAN),
+                (_, Domain::Real(bounds)) => match value {
+                    Value::Number(v) => bounded(*v, bounds),
+                    Value::Integer(v) => bounded(*v as f64, bounds),
+                    _ => Err(Rule::WrongKind { expected: "a number" }),
                 },
-                (_, Domain::Label(_)) => return Err(fail(name, value, Rule::WrongKind { expected: "a label" })),
-                (Value::Flag(b), Domain::Flag) => f64::from(u8::from(*b)),
-                (_, Domain::Flag) => return Err(fail(name, value, Rule::WrongKind { expected: "true or false" })),
+                (_, Domain::Whole(bounds)) => match value {
+                    Value::Integer(v) => bounded(*v as f64, bounds),
+                    Value::Number(v) if v.fract() == 0.0 => bounded(*v, bounds),
+                    Value::Number(v) if !v.is_finite() => Err(Rule::NonFinite),
+                    _ => Err(Rule::WrongKind { expected: "a whole number" }),
+                },
+                (Value::Label(label), Domain::Label(allowed)) => match self.label_index(i, label) {
+                    Some(k) => Ok(k as f64),
+                    None => Err(Rule::UnknownLabel { allowed: allowed.clone() }),
+                },
+                (_, Domain::Label(_)) => Err(Rule::WrongKind { expected: "a label" }),
+                (Value::Flag(b), Domain::Flag) => Ok(f64::from(u8::from(*b))),
+                (_, Domain::Flag) => Err(Rule::WrongKind { expected: "true or false" }),
             };
+            match cell {
+                Ok(v) => dest[i] = v,
+                Err(rule) => fail(name, value, rule),
+            }
         }
         for (i, feature) in features.iter().enumerate() {
             let seen = if seen_big.is_empty() { seen_small & (1u64 << i) != 0 } else { seen_big[i] };
             if !seen && feature.required {
-                return Err(fail(&feature.name, &Value::Absent, Rule::MissingRequired));
+                fail(&feature.name, &Value::Absent, Rule::MissingRequired);
             }
         }
-        Ok(())
     }
 
     /// Reads a feature value from text (a CSV cell) according to the
@@ -341,7 +348,7 @@ pub enum OutputFault {
     /// NaN or infinite output.
     #[error("row {row}, output `{output}` = {value}: not a finite number")]
     NonFinite {
-        /// Row position.
+        /// Row number, from 1.
         row: usize,
         /// Output name.
         output: String,
@@ -351,7 +358,7 @@ pub enum OutputFault {
     /// Output outside the declared bounds.
     #[error("row {row}, output `{output}` = {value}: outside its declared bounds {bounds}")]
     OutOfBounds {
-        /// Row position.
+        /// Row number, from 1.
         row: usize,
         /// Output name.
         output: String,
@@ -362,12 +369,24 @@ pub enum OutputFault {
     },
 }
 
+impl OutputFault {
+    /// The same fault with its row number mapped by `f`.
+    #[must_use]
+    pub fn renumber(self, f: impl Fn(usize) -> usize) -> Self {
+        match self {
+            OutputFault::NonFinite { row, output, value } => OutputFault::NonFinite { row: f(row), output, value },
+            OutputFault::OutOfBounds { row, output, value, bounds } => OutputFault::OutOfBounds { row: f(row), output, value, bounds },
+            other => other,
+        }
+    }
+}
+
 impl Schema {
     /// Checks the model's answer for `rows` rows: its length, and every
     /// value finite and within its output's bounds.
     ///
     /// # Errors
-    /// The first [`OutputFault`] found.
+    /// The first [`OutputFault`] found; rows are numbered from 1.
     pub fn check_outputs(&self, rows: usize, values: &[f64]) -> Result<(), OutputFault> {
         let outputs = &self.contract().outputs;
         let expected = rows * outputs.len();
@@ -383,11 +402,11 @@ impl Schema {
         for (r, row) in values.chunks_exact(outputs.len()).enumerate() {
             for (&value, out) in row.iter().zip(outputs) {
                 if !value.is_finite() {
-                    return Err(OutputFault::NonFinite { row: r, output: out.name.clone(), value });
+                    return Err(OutputFault::NonFinite { row: r + 1, output: out.name.clone(), value });
                 }
                 if !out.bounds.contains(value) {
                     return Err(OutputFault::OutOfBounds {
-                        row: r,
+                        row: r + 1,
                         output: out.name.clone(),
                         value,
                         bounds: out.bounds.to_string(),
@@ -477,10 +496,44 @@ mod tests {
         ];
         for (row, expected) in cases {
             let mut cells = vec![1.0];
-            let err = s.encode_row(4, &row, &mut cells).unwrap_err();
-            assert_eq!(err.to_string(), expected);
+            let errs = s.encode_row(4, &row, &mut cells).unwrap_err();
+            assert_eq!(errs.len(), 1, "{errs:?}");
+            assert_eq!(errs[0].to_string(), expected);
             assert_eq!(cells, vec![1.0], "cells untouched on error");
         }
+    }
+
+    #[test]
+    fn every_problem_in_a_row_is_reported() {
+        // Five bad cells: unknown, wrong kind, out of bounds, unknown label,
+        // and a required feature left out.
+        let row = Row::new().with("volts", 230.0).with("hour", "seven").with("kw", 400.0).with("plug", "chademo");
+        let row = row.with("fleet", 2i64);
+        let mut cells = vec![];
+        let errs = schema().encode_row(3, &row, &mut cells).unwrap_err();
+        let got: Vec<String> = errs.iter().map(ToString::to_string).collect();
+        assert_eq!(
+            got,
+            [
+                "row 3, feature `volts` = 230: unknown feature",
+                "row 3, feature `hour` = \"seven\": wrong kind: expected a whole number",
+                "row 3, feature `kw` = 400: out of bounds [0, 350]",
+                "row 3, feature `plug` = \"chademo\": unknown label; allowed: type2, ccs2",
+                "row 3, feature `fleet` = 2: wrong kind: expected true or false",
+            ]
+        );
+        assert!(cells.is_empty());
+        // A required feature given nowhere is named once, after the cells.
+        let errs = schema().encode_row(1, &Row::new().with("kw", -1.0), &mut cells).unwrap_err();
+        let got: Vec<String> = errs.iter().map(ToString::to_string).collect();
+        assert_eq!(
+            got,
+            [
+                "row 1, feature `kw` = -1: out of bounds [0, 350]",
+                "row 1, feature `hour` = absent: required feature is missing",
+                "row 1, feature `plug` = absent: required feature is missing",
+            ]
+        );
     }
 
     #[test]
@@ -502,10 +555,10 @@ mod tests {
             s.check_outputs(2, &[0.1]).unwrap_err().to_string(),
             "the model returned 1 values; 2 rows × 1 outputs needs 2"
         );
-        assert_eq!(s.check_outputs(1, &[f64::NAN]).unwrap_err().to_string(), "row 0, output `p` = NaN: not a finite number");
+        assert_eq!(s.check_outputs(1, &[f64::NAN]).unwrap_err().to_string(), "row 1, output `p` = NaN: not a finite number");
         assert_eq!(
             s.check_outputs(2, &[0.5, 1.5]).unwrap_err().to_string(),
-            "row 1, output `p` = 1.5: outside its declared bounds [0, 1]"
+            "row 2, output `p` = 1.5: outside its declared bounds [0, 1]"
         );
     }
 }

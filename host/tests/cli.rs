@@ -156,8 +156,15 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["answers"].as_array().unwrap().len(), 10);
 
-    // The demo wrote its ledger; `paddock usage` reads it.
-    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--json"], None);
+    // A host keeps its ledger across runs; `paddock usage` reads it.
+    let state = tempfile::tempdir().unwrap();
+    let line = r#"{"model": "overstay-risk", "row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}}"#;
+    let input = format!("{line}\n{line}\n{line}\n");
+    for _ in 0..2 {
+        let out = paddock(&["stream", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()], Some(&input));
+        assert!(out.status.success(), "{}", text(&out.stderr));
+    }
+    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap(), "--json"], None);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let u: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     let calls: u64 = u["usage"]["versions"]
@@ -167,8 +174,8 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
         .filter(|v| v["model"] == "overstay-risk")
         .map(|v| v["calls"].as_u64().unwrap())
         .sum();
-    assert_eq!(calls, 10, "{u}");
-    let out = paddock(&["usage", "--store", store.to_str().unwrap()], None);
+    assert_eq!(calls, 6, "two runs of three calls each: {u}");
+    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()], None);
     assert!(text(&out.stdout).contains("p99 µs"), "{}", text(&out.stdout));
 }
 
@@ -319,7 +326,7 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     assert!(audit(&spinner, &["--deadline-ms", "20"]).contains("its checks do not run: deadline of 20ms exceeded"));
 
     let nan = pack(4, "nan.wasm");
-    assert!(audit(&nan, &[]).contains("its checks do not run: model fault: row 0, output `y` = NaN: not a finite number"));
+    assert!(audit(&nan, &[]).contains("its checks do not run: model fault: row 1, output `y` = NaN: not a finite number"));
 
     let importer = dir.join("importer.wasm");
     let wat = root().join("tests/hostile/import-made-up-host-function.wat");

@@ -32,6 +32,22 @@ fn lock<T>(m: &Mutex<T>) -> MutexGuard<'_, T> {
     m.lock().unwrap_or_else(|e| e.into_inner())
 }
 
+/// Adds `n` to a count, allocating its key only the first time.
+fn bump(map: &mut BTreeMap<String, u64>, key: &str, n: u64) {
+    match map.get_mut(key) {
+        Some(v) => *v += n,
+        None => {
+            map.insert(key.to_owned(), n);
+        }
+    }
+}
+
+fn add_counts(map: &mut BTreeMap<String, u64>, from: &BTreeMap<String, u64>) {
+    for (k, v) in from {
+        bump(map, k, *v);
+    }
+}
+
 fn histogram() -> Histogram<u64> {
     Histogram::new_with_bounds(1, MAX_WALL_NS, 2).expect("valid histogram bounds")
 }
@@ -45,8 +61,10 @@ pub struct VersionLedger {
     fuel_metered: AtomicU64,
     peak_memory: AtomicU64,
     wall_sum_ns: AtomicU64,
-    errors: Mutex<BTreeMap<&'static str, u64>>,
-    limit_hits: Mutex<BTreeMap<&'static str, u64>>,
+    in_flight: AtomicU64,
+    errors: Mutex<BTreeMap<String, u64>>,
+    refused_rows: Mutex<BTreeMap<String, u64>>,
+    limit_hits: Mutex<BTreeMap<String, u64>>,
     wall: Box<[Mutex<Histogram<u64>>]>,
 }
 
@@ -60,7 +78,9 @@ impl Default for VersionLedger {
             fuel_metered: AtomicU64::new(0),
             peak_memory: AtomicU64::new(0),
             wall_sum_ns: AtomicU64::new(0),
+            in_flight: AtomicU64::new(0),
             errors: Mutex::default(),
+            refused_rows: Mutex::default(),
             limit_hits: Mutex::default(),
             wall: (0..shards).map(|_| Mutex::new(histogram())).collect(),
         }
@@ -84,11 +104,24 @@ impl VersionLedger {
     pub fn record_error(&self, rows: usize, error: &ScoreError, wall: Duration) {
         self.calls.fetch_add(1, Ordering::Relaxed);
         self.rows.fetch_add(rows as u64, Ordering::Relaxed);
-        *lock(&self.errors).entry(error.kind()).or_default() += 1;
+        bump(&mut lock(&self.errors), error.kind(), 1);
         if let Some(hit) = error.limit() {
-            *lock(&self.limit_hits).entry(hit.name()).or_default() += 1;
+            bump(&mut lock(&self.limit_hits), hit.name(), 1);
         }
         self.record_wall(wall);
+    }
+
+    /// Records `rows` rows refused before the sandbox (they broke the
+    /// contract, or were too many): the request's fault, not the model's,
+    /// so neither a call nor an error of the version.
+    pub fn record_refused(&self, rows: usize, kind: &'static str) {
+        bump(&mut lock(&self.refused_rows), kind, rows as u64);
+    }
+
+    /// Counts a call in flight until the guard is dropped.
+    pub fn enter(&self) -> InFlight<'_> {
+        self.in_flight.fetch_add(1, Ordering::SeqCst);
+        InFlight(&self.in_flight)
     }
 
     fn record_wall(&self, wall: Duration) {
@@ -96,6 +129,36 @@ impl VersionLedger {
         self.wall_sum_ns.fetch_add(ns, Ordering::Relaxed);
         let shard = crate::pool::home() % self.wall.len();
         let _ = lock(&self.wall[shard]).record(ns);
+    }
+
+    /// Adds figures saved by an earlier process (see [`Ledger::absorb`]).
+    fn absorb(&self, u: &VersionUsage, recorded: &[[u64; 2]]) {
+        self.calls.fetch_add(u.calls, Ordering::Relaxed);
+        self.rows.fetch_add(u.rows, Ordering::Relaxed);
+        if let Some(f) = u.fuel {
+            self.fuel.fetch_add(f, Ordering::Relaxed);
+            self.fuel_metered.fetch_add(1, Ordering::Relaxed);
+        }
+        self.peak_memory.fetch_max(u.peak_memory_bytes, Ordering::Relaxed);
+        self.wall_sum_ns.fetch_add((u.wall_us.sum_seconds * 1e9).round() as u64, Ordering::Relaxed);
+        add_counts(&mut lock(&self.errors), &u.errors);
+        add_counts(&mut lock(&self.limit_hits), &u.limit_hits);
+        add_counts(&mut lock(&self.refused_rows), &u.refused_rows);
+        let mut h = lock(&self.wall[0]);
+        for &[ns, n] in recorded {
+            let _ = h.record_n(ns.clamp(1, MAX_WALL_NS), n);
+        }
+    }
+
+    /// The wall-time histogram as (value in ns, count) pairs, at its
+    /// precision: what a usage file keeps so that percentiles survive a
+    /// restart.
+    fn recorded(&self) -> Vec<[u64; 2]> {
+        let mut wall = histogram();
+        for shard in &*self.wall {
+            let _ = wall.add(&*lock(shard));
+        }
+        wall.iter_recorded().map(|v| [v.value_iterated_to(), v.count_at_value()]).collect()
     }
 
     /// The counters now.
@@ -112,8 +175,10 @@ impl VersionLedger {
             version: version.to_string(),
             calls: self.calls.load(Ordering::Relaxed),
             rows: self.rows.load(Ordering::Relaxed),
-            errors: lock(&self.errors).iter().map(|(k, v)| ((*k).to_owned(), *v)).collect(),
-            limit_hits: lock(&self.limit_hits).iter().map(|(k, v)| ((*k).to_owned(), *v)).collect(),
+            in_flight: self.in_flight.load(Ordering::SeqCst),
+            errors: lock(&self.errors).clone(),
+            refused_rows: lock(&self.refused_rows).clone(),
+            limit_hits: lock(&self.limit_hits).clone(),
             fuel: metered.then(|| self.fuel.load(Ordering::Relaxed)),
             wall_us: Wall {
                 p50: q(0.5),
@@ -126,6 +191,16 @@ impl VersionLedger {
             },
             peak_memory_bytes: self.peak_memory.load(Ordering::Relaxed),
         }
+    }
+}
+
+/// A call in flight; counted until dropped.
+#[derive(Debug)]
+pub struct InFlight<'a>(&'a AtomicU64);
+
+impl Drop for InFlight<'_> {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::SeqCst);
     }
 }
 
@@ -161,8 +236,17 @@ pub struct VersionUsage {
     pub calls: u64,
     /// Rows in those calls.
     pub rows: u64,
-    /// Failed calls by kind ([`ScoreError::kind`]).
+    /// Calls running now.
+    #[serde(default)]
+    pub in_flight: u64,
+    /// Failed calls by kind ([`ScoreError::kind`]): the model's own
+    /// failures (traps, limits, faults, bad answers).
     pub errors: BTreeMap<String, u64>,
+    /// Rows refused before the sandbox, by kind (`invalid_rows`, `shape`,
+    /// `too_many_rows`): the requests' faults, counted apart from the
+    /// model's errors.
+    #[serde(default)]
+    pub refused_rows: BTreeMap<String, u64>,
     /// Limit hits by limit ([`crate::LimitHit::name`]).
     pub limit_hits: BTreeMap<String, u64>,
     /// Fuel used by successful calls, when the runtime meters fuel.
@@ -239,7 +323,17 @@ impl ShadowLedger {
     }
 
     pub(crate) fn record_error(&self, kind: &str) {
-        *lock(&self.inner).errors.entry(kind.to_owned()).or_default() += 1;
+        bump(&mut lock(&self.inner).errors, kind, 1);
+    }
+
+    fn absorb(&self, u: &ShadowUsage) {
+        let mut s = lock(&self.inner);
+        s.compared += u.compared;
+        s.values += u.values;
+        s.max_abs_diff = s.max_abs_diff.max(u.max_abs_diff);
+        s.over_tolerance += u.over_tolerance;
+        s.dropped += u.dropped;
+        add_counts(&mut s.errors, &u.errors);
     }
 
     pub(crate) fn record_dropped(&self) {
@@ -258,6 +352,20 @@ impl ShadowLedger {
 pub struct Ledger {
     versions: Mutex<BTreeMap<(String, Version), Arc<VersionLedger>>>,
     shadows: Mutex<BTreeMap<(String, Version), Arc<ShadowLedger>>>,
+    rejected: Mutex<BTreeMap<&'static str, u64>>,
+    /// Rejections counted by earlier processes (kinds they wrote).
+    rejected_before: Mutex<BTreeMap<String, u64>>,
+}
+
+/// One version's wall-time histogram in a usage file.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct SavedWall {
+    /// The model.
+    pub model: String,
+    /// The version.
+    pub version: String,
+    /// (wall time in ns, calls) pairs, at the histogram's precision.
+    pub recorded: Vec<[u64; 2]>,
 }
 
 /// The whole ledger at one moment.
@@ -267,6 +375,11 @@ pub struct UsageReport {
     pub versions: Vec<VersionUsage>,
     /// Per shadow.
     pub shadows: Vec<ShadowUsage>,
+    /// Requests refused before any model version was chosen, by kind
+    /// (`unknown_model`, `bad_request`, `too_large`, `overloaded`…). Not
+    /// by model name: a name no model has must not grow the ledger.
+    #[serde(default)]
+    pub rejected: BTreeMap<String, u64>,
 }
 
 impl Ledger {
@@ -283,18 +396,90 @@ impl Ledger {
             .clone()
     }
 
+    /// Counts a request refused before any version was chosen.
+    pub fn record_rejected(&self, kind: &'static str) {
+        *lock(&self.rejected).entry(kind).or_default() += 1;
+    }
+
     /// Every figure now.
     pub fn report(&self) -> UsageReport {
         UsageReport {
             versions: lock(&self.versions).iter().map(|((m, v), l)| l.snapshot(m, v)).collect(),
             shadows: lock(&self.shadows).values().map(|s| s.snapshot()).collect(),
+            rejected: {
+                let mut all = lock(&self.rejected_before).clone();
+                for (k, v) in lock(&self.rejected).iter() {
+                    bump(&mut all, k, *v);
+                }
+                all
+            },
         }
+    }
+
+    /// Every version's wall-time histogram, for a usage file.
+    pub fn walls(&self) -> Vec<SavedWall> {
+        lock(&self.versions)
+            .iter()
+            .map(|((m, v), l)| SavedWall { model: m.clone(), version: v.to_string(), recorded: l.recorded() })
+            .collect()
+    }
+
+    /// Adds the figures an earlier process saved (its usage file), so that
+    /// usage accumulates across restarts. Versions that are not loaded now
+    /// keep their figures. Entries whose version is not semver are skipped
+    /// and named in the returned list.
+    pub fn absorb(&self, usage: &UsageReport, walls: &[SavedWall]) -> Vec<String> {
+        let mut skipped = Vec::new();
+        for u in &usage.versions {
+            let Ok(version) = Version::parse(&u.version) else {
+                skipped.push(format!("{} {}", u.model, u.version));
+                continue;
+            };
+            let recorded = walls.iter().find(|w| w.model == u.model && w.version == u.version).map_or(&[][..], |w| &w.recorded);
+            self.version(&u.model, &version).absorb(u, recorded);
+        }
+        for s in &usage.shadows {
+            let Ok(version) = Version::parse(&s.version) else {
+                skipped.push(format!("shadow {} {}", s.model, s.version));
+                continue;
+            };
+            self.shadow(&s.model, &version).absorb(s);
+        }
+        add_counts(&mut lock(&self.rejected_before), &usage.rejected);
+        skipped
     }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn saved_figures_add_up_with_new_ones_percentiles_included() {
+        let v = Version::new(1, 0, 0);
+        let first = Ledger::default();
+        for us in 1..=50u64 {
+            first.version("m", &v).record_ok(&Usage { rows: 1, wall: Duration::from_micros(us), ..Usage::default() });
+        }
+        first.version("m", &v).record_refused(3, "invalid_rows");
+        first.record_rejected("unknown_model");
+        let (report, walls) = (first.report(), first.walls());
+
+        let second = Ledger::default();
+        assert!(second.absorb(&report, &walls).is_empty());
+        for us in 51..=100u64 {
+            second.version("m", &v).record_ok(&Usage { rows: 1, wall: Duration::from_micros(us), ..Usage::default() });
+        }
+        second.record_rejected("unknown_model");
+        let r = second.report();
+        let u = &r.versions[0];
+        assert_eq!((u.calls, u.rows), (100, 100));
+        assert_eq!(u.refused_rows["invalid_rows"], 3);
+        assert_eq!(r.rejected["unknown_model"], 2);
+        // The median of 1..=100 µs, from both processes' calls (within 1 %).
+        assert!((u.wall_us.p50 - 50.0).abs() <= 0.5, "{:?}", u.wall_us);
+        assert!((u.wall_us.sum_seconds - 5050e-6).abs() < 1e-9, "{:?}", u.wall_us);
+    }
 
     #[test]
     fn percentiles_come_from_the_recorded_calls() {

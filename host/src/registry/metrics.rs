@@ -9,11 +9,14 @@
 //! |---|---|---|
 //! | `calls` | counter | calls, successful or not |
 //! | `rows` | counter | rows in those calls |
-//! | `errors` | counter | failed calls, label `kind` |
+//! | `errors` | counter | failed calls (the model's own failures), label `kind` |
 //! | `limit_hits` | counter | calls stopped by a limit, label `limit` |
 //! | `fuel` | counter | fuel used (when the runtime meters fuel) |
 //! | `call_seconds` | histogram | wall time per call |
 //! | `peak_memory_bytes` | gauge | largest linear memory of any instance |
+//! | `in_flight` | gauge | calls running now |
+//! | `refused_rows` | counter | rows refused before the sandbox (the request's fault), label `kind` |
+//! | `rejected_requests` | counter | requests refused before a version was chosen, label `kind` only |
 //! | `shadow_compared` | counter | requests a shadow scored and compared |
 //! | `shadow_over_tolerance` | counter | values that differed by more than the tolerance |
 //! | `shadow_max_abs_diff` | gauge | largest difference seen |
@@ -110,9 +113,16 @@ pub fn render(usage: &UsageReport, status: &Status) -> String {
             ("peak_memory_bytes", "gauge", "Largest linear memory any instance of the version reached.", |u| {
                 Some(u.peak_memory_bytes.to_string())
             }),
+            ("in_flight", "gauge", "Calls to a model version running now.", |u| Some(u.in_flight.to_string())),
         ],
         &[
-            ("errors", "Failed calls to a model version, by kind of error.", "kind", |u| &u.errors),
+            ("errors", "Failed calls to a model version, by kind of error: the model's own failures.", "kind", |u| &u.errors),
+            (
+                "refused_rows",
+                "Rows refused before the sandbox, by kind: the request's fault, not the model's.",
+                "kind",
+                |u| &u.refused_rows,
+            ),
             ("limit_hits", "Calls stopped by a limit, by limit.", "limit", |u| &u.limit_hits),
         ],
     );
@@ -150,6 +160,10 @@ pub fn render(usage: &UsageReport, status: &Status) -> String {
         &[("shadow_errors", "Shadow calls that failed, by kind of error.", "kind", |s| &s.errors)],
     );
 
+    declare(&mut out, "rejected_requests", "counter", "Requests refused before a model version was chosen, by kind.");
+    for (kind, n) in &usage.rejected {
+        let _ = writeln!(out, "paddock_rejected_requests_total{{kind=\"{}\"}} {n}", escape(kind));
+    }
     declare(&mut out, "generation", "gauge", "The registry generation serving.");
     let _ = writeln!(out, "paddock_generation {}", status.generation);
     declare(&mut out, "artifacts", "gauge", "Artifacts in the store, by state.");
@@ -184,13 +198,16 @@ mod tests {
                 version: "1.0.0".into(),
                 calls: 3,
                 rows: 5,
+                in_flight: 0,
                 errors: [("trap".to_owned(), 1)].into_iter().collect(),
+                refused_rows: BTreeMap::new(),
                 limit_hits: BTreeMap::new(),
                 fuel: None,
                 wall_us: Wall { sum_seconds: 0.5, buckets: vec![1; WALL_BUCKETS.len()], ..Wall::default() },
                 peak_memory_bytes: 65536,
             }],
             shadows: vec![],
+            rejected: BTreeMap::new(),
         };
         let status = Status {
             store: "s".into(),

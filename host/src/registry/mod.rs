@@ -24,6 +24,7 @@ pub mod ledger;
 pub mod metrics;
 pub mod routes;
 mod shadow;
+mod usage_file;
 mod watch;
 
 use std::collections::{BTreeMap, BTreeSet, HashMap};
@@ -42,12 +43,13 @@ use crate::artifact::{Artifact, Digest};
 use crate::checks::{self, CheckReport};
 use crate::codecache::{CacheError, CodeCache, CodeSource};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
-use crate::rows::Row;
+use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
 use crate::trust::{Signature, TrustPolicy, Vouch};
 
 pub use layout::{ROUTES_FILE, STATE_DIR, artifact_path};
-pub use ledger::{ShadowUsage, UsageReport, VersionUsage, Wall};
+pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
+pub use usage_file::{SavedUsage, usage_path};
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
 pub use watch::Watcher;
 
@@ -70,6 +72,12 @@ pub struct RegistryOptions {
     /// Shadow requests waiting at most; more are dropped (and counted).
     /// Default 1024.
     pub shadow_queue: usize,
+    /// Keep the usage ledger in `<state>/usage.json`: add what it holds at
+    /// open, write it back this often and when the registry is dropped.
+    /// Keeping usage takes the state directory's lock: a second process on
+    /// it is refused. `None`: no usage file, no lock (a read-only look at a
+    /// store, as `paddock status` takes). Default 10 s.
+    pub usage_flush: Option<Duration>,
 }
 
 impl Default for RegistryOptions {
@@ -82,6 +90,7 @@ impl Default for RegistryOptions {
             code_cache: true,
             clock: Arc::new(SystemClock),
             shadow_queue: 1024,
+            usage_flush: Some(Duration::from_secs(10)),
         }
     }
 }
@@ -102,6 +111,25 @@ pub enum RegistryError {
     /// The code cache cannot be used.
     #[error(transparent)]
     Cache(#[from] CacheError),
+    /// Another process keeps its state in this state directory.
+    #[error(
+        "{path} is held by {} (a serving host keeps its code cache and usage there); stop it, or give this one its own state directory (--state)",
+        holder.map_or("another process".to_owned(), |p| format!("process {p}"))
+    )]
+    Locked {
+        /// The lock file.
+        path: PathBuf,
+        /// The process id written in it, when readable.
+        holder: Option<u32>,
+    },
+    /// The state directory or its lock file cannot be used.
+    #[error("{path}: {source}")]
+    State {
+        /// The directory or file.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
     /// The directory watcher cannot start.
     #[error("cannot watch {path}: {reason}")]
     Watch {
@@ -189,8 +217,30 @@ pub struct Answer {
     pub generation: u64,
     /// The names of the estimates' columns: the answering version's outputs.
     pub outputs: Arc<[String]>,
-    /// The estimates.
+    /// Rows in the request.
+    pub requested: usize,
+    /// The estimates of the valid rows, in request order.
     pub estimates: Estimates,
+    /// The number (from 1) of the request row behind each estimate row.
+    pub scored: Vec<usize>,
+    /// Every problem of the rows that broke the contract, each naming its
+    /// row; those rows got no estimate.
+    pub problems: Vec<RowError>,
+}
+
+impl Answer {
+    /// Every request row in order: its outputs, or `None` when it broke the
+    /// contract (see [`Answer::problems`]).
+    pub fn rows(&self) -> impl Iterator<Item = Option<&[f64]>> {
+        let mut next = self.scored.iter().copied().enumerate().peekable();
+        (1..=self.requested).map(move |n| match next.peek() {
+            Some(&(k, m)) if m == n => {
+                next.next();
+                Some(self.estimates.row(k))
+            }
+            _ => None,
+        })
+    }
 }
 
 /// A version that passed the gate.
@@ -377,6 +427,20 @@ struct Shared {
     ledger: ledger::Ledger,
     shadows: shadow::Shadows,
     reloads: AtomicU64,
+    /// Held while usage is kept (the state directory's lock).
+    lock: Option<usage_file::StateLock>,
+    /// Dropping it stops the flush thread.
+    flush_stop: Mutex<Option<std::sync::mpsc::Sender<()>>>,
+}
+
+impl Drop for Shared {
+    fn drop(&mut self) {
+        if self.lock.is_some() {
+            if let Err(e) = usage_file::save(&self.state_dir, &self.dir, &self.ledger) {
+                tracing::warn!(error = %e, "cannot write the usage file");
+            }
+        }
+    }
 }
 
 impl std::fmt::Debug for Registry {
@@ -422,7 +486,15 @@ impl Registry {
         let dir = dir.to_owned();
         std::fs::read_dir(&dir).map_err(|source| RegistryError::Store { path: dir.clone(), source })?;
         let state_dir = options.state_dir.clone().unwrap_or_else(|| dir.join(STATE_DIR));
+        let lock = match options.usage_flush {
+            Some(_) => Some(usage_file::StateLock::take(&state_dir)?),
+            None => None,
+        };
         let cache = if options.code_cache { Some(CodeCache::open(&state_dir.join("code"))?) } else { None };
+        let ledger = ledger::Ledger::default();
+        if lock.is_some() {
+            usage_file::merge(&state_dir, &ledger);
+        }
         let empty = Snapshot {
             generation: 0,
             routes: Arc::new(Routes::empty()),
@@ -447,12 +519,36 @@ impl Registry {
                 cache,
                 current: ArcSwap::from_pointee(empty),
                 memory: Mutex::new(Memory::default()),
-                ledger: ledger::Ledger::default(),
+                ledger,
                 reloads: AtomicU64::new(0),
+                lock,
+                flush_stop: Mutex::new(None),
             }),
         };
+        if let Some(every) = registry.inner.options.usage_flush {
+            registry.flush_every(every);
+        }
         registry.reload()?;
         Ok(registry)
+    }
+
+    /// Starts the thread that writes the usage file every `every`; it
+    /// holds no strong reference, and ends when the registry is dropped.
+    fn flush_every(&self, every: Duration) {
+        let (tx, rx) = std::sync::mpsc::channel::<()>();
+        let weak = Arc::downgrade(&self.inner);
+        let started = std::thread::Builder::new().name("paddock-usage".into()).spawn(move || {
+            while let Err(std::sync::mpsc::RecvTimeoutError::Timeout) = rx.recv_timeout(every) {
+                let Some(shared) = weak.upgrade() else { return };
+                if let Err(e) = usage_file::save(&shared.state_dir, &shared.dir, &shared.ledger) {
+                    tracing::warn!(error = %e, "cannot write the usage file");
+                }
+            }
+        });
+        match started {
+            Ok(_) => *self.inner.flush_stop.lock().unwrap_or_else(|e| e.into_inner()) = Some(tx),
+            Err(e) => tracing::warn!(error = %e, "cannot start the usage flush thread; usage is written at shutdown only"),
+        }
     }
 
     /// The store directory.
@@ -480,6 +576,7 @@ impl Registry {
         let shared = &*self.inner;
         let snapshot = shared.current.load();
         let Some(routes) = snapshot.routes.model(request.model) else {
+            shared.ledger.record_rejected("unknown_model");
             return Err(RequestError::UnknownModel {
                 model: request.model.to_owned(),
                 served: snapshot.routes.models().map(str::to_owned).collect(),
@@ -501,15 +598,27 @@ impl Registry {
         drop(snapshot);
 
         let started = Instant::now();
-        match served.model.score(request.rows) {
-            Ok(estimates) => {
-                served.ledger.record_ok(estimates.usage());
+        let in_flight = served.ledger.enter();
+        let result = served.model.score_valid(request.rows);
+        drop(in_flight);
+        match result {
+            Ok(scored) => {
+                served.ledger.record_ok(scored.estimates.usage());
+                if !scored.problems.is_empty() {
+                    served.ledger.record_refused(request.rows.len() - scored.scored.len(), "invalid_rows");
+                }
                 if let Some((shadow, tolerance, ledger)) = shadow {
+                    // The shadow sees the rows that were served.
+                    let rows = if scored.problems.is_empty() {
+                        request.rows.to_vec()
+                    } else {
+                        scored.scored.iter().map(|&n| request.rows[n - 1].clone()).collect()
+                    };
                     shared.shadows.submit(shadow::Job {
                         served: served.clone(),
                         shadow,
-                        rows: request.rows.to_vec(),
-                        answer: estimates.clone(),
+                        rows,
+                        answer: scored.estimates.clone(),
                         tolerance,
                         ledger,
                     });
@@ -521,11 +630,18 @@ impl Registry {
                     reason,
                     generation,
                     outputs: served.outputs.clone(),
-                    estimates,
+                    requested: request.rows.len(),
+                    estimates: scored.estimates,
+                    scored: scored.scored,
+                    problems: scored.problems,
                 })
             }
             Err(error) => {
-                served.ledger.record_error(request.rows.len(), &error, started.elapsed());
+                if error.is_request_fault() {
+                    served.ledger.record_refused(request.rows.len(), error.kind());
+                } else {
+                    served.ledger.record_error(request.rows.len(), &error, started.elapsed());
+                }
                 Err(RequestError::Score {
                     model: request.model.to_owned(),
                     version,
@@ -539,6 +655,12 @@ impl Registry {
     /// The loaded model of one version, e.g. to read its contract.
     pub fn model(&self, model: &str, version: &Version) -> Option<Model> {
         self.inner.current.load().versions.get(model)?.get(version).map(|l| l.model.clone())
+    }
+
+    /// The loaded versions of a model, oldest first (none for a name no
+    /// model has).
+    pub fn versions(&self, model: &str) -> Vec<Version> {
+        self.inner.current.load().versions.get(model).map(|v| v.keys().cloned().collect()).unwrap_or_default()
     }
 
     /// The version a request would be routed to now, and why, without
@@ -560,29 +682,39 @@ impl Registry {
         self.inner.current.load().status.clone()
     }
 
+    /// Counts a request a surface refused before asking the registry
+    /// (malformed, too large, overloaded), under a fixed `kind`.
+    pub fn count_rejected(&self, kind: &'static str) {
+        self.inner.ledger.record_rejected(kind);
+    }
+
     /// The usage ledger now.
     pub fn usage(&self) -> UsageReport {
         self.inner.ledger.report()
     }
 
+    /// Whether this registry keeps the usage file (and holds the state
+    /// directory's lock).
+    pub fn keeps_usage(&self) -> bool {
+        self.inner.lock.is_some()
+    }
+
     /// Writes the usage ledger to `<state>/usage.json` (atomically), for
-    /// `paddock usage`.
+    /// `paddock usage`. With [`RegistryOptions::usage_flush`] set this also
+    /// happens every interval and when the registry is dropped.
     ///
     /// # Errors
     /// The I/O error.
+    /// [`std::io::ErrorKind::Unsupported`] when this registry keeps no
+    /// usage (writing would replace the figures of earlier processes).
     pub fn save_usage(&self) -> std::io::Result<PathBuf> {
-        let path = usage_path(&self.inner.state_dir);
-        std::fs::create_dir_all(&self.inner.state_dir)?;
-        let saved = SavedUsage {
-            store: self.inner.dir.clone(),
-            pid: std::process::id(),
-            written: Timestamp::now().to_string(),
-            usage: self.usage(),
-        };
-        let tmp = path.with_extension(format!("tmp{}", std::process::id()));
-        std::fs::write(&tmp, serde_json::to_vec_pretty(&saved).map_err(std::io::Error::other)?)?;
-        std::fs::rename(&tmp, &path)?;
-        Ok(path)
+        if !self.keeps_usage() {
+            return Err(std::io::Error::new(
+                std::io::ErrorKind::Unsupported,
+                "this registry keeps no usage file (opened without RegistryOptions::usage_flush)",
+            ));
+        }
+        usage_file::save(&self.inner.state_dir, &self.inner.dir, &self.inner.ledger)
     }
 
     /// Waits until every queued shadow request has been compared, at most
@@ -851,24 +983,6 @@ impl Registry {
             checks: report,
         })
     }
-}
-
-/// The path of the usage file in a state directory.
-pub fn usage_path(state_dir: &Path) -> PathBuf {
-    state_dir.join("usage.json")
-}
-
-/// The usage file: a registry's ledger, written by [`Registry::save_usage`].
-#[derive(Clone, Debug, PartialEq, Serialize, serde::Deserialize)]
-pub struct SavedUsage {
-    /// The store served.
-    pub store: PathBuf,
-    /// The process that wrote it.
-    pub pid: u32,
-    /// When (RFC 3339).
-    pub written: String,
-    /// The figures, since that process opened the store.
-    pub usage: UsageReport,
 }
 
 fn flatten(versions: &BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>) -> BTreeSet<(String, Version, Digest)> {

@@ -96,9 +96,6 @@ impl Watcher {
                         Ok(_) => {}
                         Err(e) => tracing::warn!(error = %e, "store reload failed; the current snapshot keeps serving"),
                     }
-                    if let Err(e) = registry.save_usage() {
-                        tracing::warn!(error = %e, "cannot write the usage file");
-                    }
                     next_rescan = Instant::now() + rescan;
                 }
             })

@@ -19,10 +19,13 @@
 //! (trapped, declined, answered outside its contract), 503 with
 //! `Retry-After` when the model's queue is full or the server is not ready.
 //!
-//! Each model has its own concurrency limit and a bounded queue: a burst on
-//! one model cannot take every worker from the others. Scoring runs on the
-//! request's worker thread (a call takes microseconds; handing it to
-//! another thread would cost more than the call).
+//! Sandbox calls never run on the async workers that accept connections:
+//! each runs on a blocking thread, at most [`ServeOptions::score_threads`]
+//! at once for the whole server, and each model has its own concurrency
+//! limit drawn from those and a bounded queue. A model that spins until its
+//! deadline on every call holds only its own permits: other models, health
+//! and metrics answer as before. A name no model has is answered 404
+//! before anything is kept for it.
 
 use std::collections::HashMap;
 use std::future::Future;
@@ -31,6 +34,7 @@ use std::sync::{Arc, RwLock};
 
 use axum::Router;
 use axum::body::{Body, to_bytes};
+use axum::extract::rejection::{PathRejection, QueryRejection};
 use axum::extract::{Path, Query, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
 use axum::response::{IntoResponse, Response};
@@ -51,7 +55,12 @@ pub struct ServeOptions {
     /// Largest request body, in bytes. Default 1 MiB.
     pub max_body_bytes: usize,
     /// Requests scored at once per model. Default: the number of cores.
+    /// Capped at `score_threads`.
     pub concurrency: usize,
+    /// Sandbox calls running at once across every model, each on a thread
+    /// of its own (tokio's blocking pool), never on the async workers.
+    /// Default: four per core, at least 4.
+    pub score_threads: usize,
     /// Requests waiting per model beyond those; more get 503. Default 256.
     pub queue: usize,
     /// Seconds a client is told to wait (`Retry-After`) after a 503. Default 1.
@@ -65,6 +74,7 @@ impl Default for ServeOptions {
         ServeOptions {
             max_body_bytes: 1 << 20,
             concurrency: std::thread::available_parallelism().map_or(2, |n| n.get()),
+            score_threads: std::thread::available_parallelism().map_or(2, |n| n.get()).saturating_mul(4).max(4),
             queue: 256,
             retry_after_secs: 1,
             admin_token: None,
@@ -75,6 +85,10 @@ impl Default for ServeOptions {
 struct App {
     registry: Registry,
     options: ServeOptions,
+    /// Sandbox calls running across every model.
+    pool: Arc<Semaphore>,
+    /// One gate per model that was routed when a request named it: bounded
+    /// by the store, never by what clients send.
     gates: RwLock<HashMap<String, Arc<Gate>>>,
     token_digest: Option<[u8; 32]>,
 }
@@ -86,6 +100,7 @@ struct Gate {
 }
 
 impl App {
+    /// The gate of a routed model. Call only after checking the name.
     fn gate(&self, model: &str) -> Arc<Gate> {
         if let Some(g) = self.gates.read().unwrap_or_else(|e| e.into_inner()).get(model) {
             return g.clone();
@@ -94,7 +109,8 @@ impl App {
         gates
             .entry(model.to_owned())
             .or_insert_with(|| {
-                Arc::new(Gate { permits: Semaphore::new(self.options.concurrency.max(1)), waiting: AtomicUsize::new(0) })
+                let permits = self.options.concurrency.clamp(1, self.options.score_threads.max(1));
+                Arc::new(Gate { permits: Semaphore::new(permits), waiting: AtomicUsize::new(0) })
             })
             .clone()
     }
@@ -103,7 +119,8 @@ impl App {
 /// The API as an axum router, ready to serve.
 pub fn router(registry: Registry, options: ServeOptions) -> Router {
     let token_digest = options.admin_token.as_ref().map(|t| Sha256::digest(t.as_bytes()).into());
-    let app = Arc::new(App { registry, options, gates: RwLock::default(), token_digest });
+    let pool = Arc::new(Semaphore::new(options.score_threads.max(1)));
+    let app = Arc::new(App { registry, options, pool, gates: RwLock::default(), token_digest });
     Router::new()
         .route("/v1/models/{model}/score", post(score))
         .route("/v1/models", get(models))
@@ -115,6 +132,7 @@ pub fn router(registry: Registry, options: ServeOptions) -> Router {
         .route("/metrics", get(metrics_text))
         .route("/openapi.json", get(openapi))
         .fallback(not_found)
+        .method_not_allowed_fallback(method_not_allowed)
         .with_state(app)
 }
 
@@ -144,7 +162,24 @@ fn overloaded(app: &App, message: String) -> Response {
     r
 }
 
-async fn score(State(app): State<Arc<App>>, Path(model): Path<String>, body: Body) -> Response {
+fn rejected(app: &App, kind: &'static str, status: StatusCode, body: ErrorBody) -> Response {
+    app.registry.count_rejected(kind);
+    error(status, body)
+}
+
+/// The model named in the path, or the 400 answer for a path that does not
+/// decode (axum's own rejection would be plain text).
+fn model_name(app: &App, path: Result<Path<String>, PathRejection>) -> Result<String, Response> {
+    path.map(|Path(m)| m).map_err(|e| {
+        rejected(app, "bad_request", StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("the path does not name a model: {e}")))
+    })
+}
+
+async fn score(State(app): State<Arc<App>>, path: Result<Path<String>, PathRejection>, body: Body) -> Response {
+    let model = match model_name(&app, path) {
+        Ok(m) => m,
+        Err(r) => return r,
+    };
     let limit = app.options.max_body_bytes;
     let bytes = match to_bytes(body, limit).await {
         Ok(b) => b,
@@ -155,23 +190,37 @@ async fn score(State(app): State<Arc<App>>, Path(model): Path<String>, body: Bod
             return if too_large {
                 let mut b = ErrorBody::new("too_large", format!("the request body is over the limit of {limit} bytes"));
                 b.error.limit = Some("body_bytes".into());
-                error(StatusCode::PAYLOAD_TOO_LARGE, b)
+                rejected(&app, "too_large", StatusCode::PAYLOAD_TOO_LARGE, b)
             } else {
-                error(StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("cannot read the request body: {e}")))
+                let b = ErrorBody::bad_request(format!("cannot read the request body: {e}"));
+                rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b)
             };
         }
     };
     let request: ScoreRequest = match serde_json::from_slice(&bytes) {
         Ok(r) => r,
-        Err(e) => return error(StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("not a score request: {e}"))),
+        Err(e) => {
+            let b = ErrorBody::bad_request(format!("not a score request: {e}"));
+            return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b);
+        }
     };
     if request.rows.is_empty() {
-        return error(StatusCode::BAD_REQUEST, ErrorBody::bad_request("`rows` is empty: give at least one row"));
+        let b = ErrorBody::bad_request("rows is empty: give at least one row");
+        return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b);
     }
     let at = match parse_at(request.at.as_deref()) {
         Ok(at) => at,
-        Err(e) => return error(StatusCode::BAD_REQUEST, e),
+        Err(e) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, e),
     };
+    // A name no model has gets its 404 here, before any state is kept for it.
+    if app.registry.routes().model(&model).is_none() {
+        let e = app.registry.score(&Request { model: &model, context: &request.context, at, rows: &[] });
+        return match e {
+            Err(e) => answer_error(e),
+            // Routed in the meantime: ask again.
+            Ok(_) => overloaded(&app, format!("model {model} was just added; try again")),
+        };
+    }
 
     let gate = app.gate(&model);
     let _permit = match gate.permits.try_acquire() {
@@ -179,7 +228,8 @@ async fn score(State(app): State<Arc<App>>, Path(model): Path<String>, body: Bod
         Err(_) => {
             if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
                 gate.waiting.fetch_sub(1, Ordering::SeqCst);
-                return overloaded(&app, format!("model `{model}` has {} requests waiting; try again later", app.options.queue));
+                app.registry.count_rejected("overloaded");
+                return overloaded(&app, format!("model {model} has {} requests waiting; try again later", app.options.queue));
             }
             let permit = gate.permits.acquire().await;
             gate.waiting.fetch_sub(1, Ordering::SeqCst);
@@ -189,19 +239,31 @@ async fn score(State(app): State<Arc<App>>, Path(model): Path<String>, body: Bod
             }
         }
     };
-    let result = app.registry.score(&Request { model: &model, context: &request.context, at, rows: &request.rows });
-    match result {
-        Ok(answer) => json(StatusCode::OK, &ScoreAnswer::new(answer)),
-        Err(e) => {
-            let status = match blame(&e) {
-                Blame::Request => StatusCode::UNPROCESSABLE_ENTITY,
-                Blame::NotFound => StatusCode::NOT_FOUND,
-                Blame::Limit | Blame::Server => StatusCode::INTERNAL_SERVER_ERROR,
-                Blame::Model => StatusCode::BAD_GATEWAY,
-            };
-            error(status, ErrorBody::from_request(e))
-        }
+    // A thread of the scoring pool: the call never holds an async worker.
+    let Ok(thread) = app.pool.clone().acquire_owned().await else {
+        return overloaded(&app, "the server is shutting down".into());
+    };
+    let registry = app.registry.clone();
+    let call = tokio::task::spawn_blocking(move || {
+        let _thread = thread;
+        let ScoreRequest { rows, context, .. } = request;
+        registry.score(&Request { model: &model, context: &context, at, rows: &rows }).map(ScoreAnswer::new)
+    });
+    match call.await {
+        Ok(Ok(answer)) => json(StatusCode::OK, &answer),
+        Ok(Err(e)) => answer_error(e),
+        Err(e) => error(StatusCode::INTERNAL_SERVER_ERROR, ErrorBody::new("server", format!("the scoring thread failed: {e}"))),
     }
+}
+
+fn answer_error(e: crate::registry::RequestError) -> Response {
+    let status = match blame(&e) {
+        Blame::Request => StatusCode::UNPROCESSABLE_ENTITY,
+        Blame::NotFound => StatusCode::NOT_FOUND,
+        Blame::Limit | Blame::Server => StatusCode::INTERNAL_SERVER_ERROR,
+        Blame::Model => StatusCode::BAD_GATEWAY,
+    };
+    error(status, ErrorBody::from_request(e))
 }
 
 #[derive(Serialize)]
@@ -240,30 +302,48 @@ struct VersionQuery {
     version: Option<String>,
 }
 
-async fn contract(State(app): State<Arc<App>>, Path(model): Path<String>, Query(q): Query<VersionQuery>) -> Response {
+async fn contract(
+    State(app): State<Arc<App>>,
+    path: Result<Path<String>, PathRejection>,
+    query: Result<Query<VersionQuery>, QueryRejection>,
+) -> Response {
+    let model = match model_name(&app, path) {
+        Ok(m) => m,
+        Err(r) => return r,
+    };
+    let q = match query {
+        Ok(Query(q)) => q,
+        Err(e) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("the query: {e}"))),
+    };
     let version = match &q.version {
         Some(v) => match semver::Version::parse(v) {
             Ok(v) => v,
-            Err(e) => return error(StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("`version`: `{v}` is not semver ({e})"))),
+            Err(e) => return error(StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("version: {v:?} is not a semver version ({e})"))),
         },
         None => match app.registry.routes().model(&model) {
             Some(r) => r.default_version().clone(),
             None => {
-                let mut b = ErrorBody::new("unknown_model", format!("no model `{model}` is served"));
+                let mut b = ErrorBody::new("unknown_model", format!("no model {model} is served"));
                 b.error.model = Some(model);
                 return error(StatusCode::NOT_FOUND, b);
             }
         },
     };
-    match app.registry.model(&model, &version) {
-        Some(m) => json(StatusCode::OK, m.contract()),
-        None => {
-            let mut b = ErrorBody::new("unknown_model", format!("no version {version} of `{model}` is loaded"));
-            b.error.model = Some(model);
-            b.error.version = Some(version.to_string());
-            error(StatusCode::NOT_FOUND, b)
-        }
+    if let Some(m) = app.registry.model(&model, &version) {
+        return json(StatusCode::OK, m.contract());
     }
+    let loaded = app.registry.versions(&model);
+    let mut b = if loaded.is_empty() {
+        ErrorBody::new("unknown_model", format!("no model {model} is loaded"))
+    } else {
+        let list: Vec<String> = loaded.iter().map(ToString::to_string).collect();
+        let mut b = ErrorBody::new("unknown_version", format!("model {model} has no version {version} loaded (loaded: {})", list.join(", ")));
+        b.error.details.insert("loaded".into(), list.into());
+        b.error.version = Some(version.to_string());
+        b
+    };
+    b.error.model = Some(model);
+    error(StatusCode::NOT_FOUND, b)
 }
 
 async fn status(State(app): State<Arc<App>>) -> Response {
@@ -286,7 +366,15 @@ async fn readyz(State(app): State<Arc<App>>) -> Response {
 }
 
 async fn metrics_text(State(app): State<Arc<App>>) -> Response {
-    let text = metrics::render(&app.registry.usage(), &app.registry.status());
+    let mut text = metrics::render(&app.registry.usage(), &app.registry.status());
+    // The server's own state, before the end marker.
+    let gates = app.gates.read().unwrap_or_else(|e| e.into_inner()).len();
+    let busy = app.options.score_threads.max(1) - app.pool.available_permits();
+    text.truncate(text.len() - "# EOF\n".len());
+    text.push_str(&format!(
+        "# TYPE paddock_serve_gates gauge\n# HELP paddock_serve_gates Models holding a concurrency gate: only models routed when a request named them.\npaddock_serve_gates {gates}\n\
+         # TYPE paddock_serve_score_threads_busy gauge\n# HELP paddock_serve_score_threads_busy Scoring threads running a sandbox call now.\npaddock_serve_score_threads_busy {busy}\n# EOF\n"
+    ));
     (StatusCode::OK, [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)], text).into_response()
 }
 
@@ -316,6 +404,15 @@ async fn reload(State(app): State<Arc<App>>, headers: HeaderMap) -> Response {
     }
 }
 
-async fn not_found() -> Response {
+async fn not_found(State(app): State<Arc<App>>) -> Response {
+    app.registry.count_rejected("not_found");
     error(StatusCode::NOT_FOUND, ErrorBody::new("not_found", "no such route; the API is described at /openapi.json"))
+}
+
+async fn method_not_allowed(State(app): State<Arc<App>>, method: axum::http::Method) -> Response {
+    app.registry.count_rejected("method_not_allowed");
+    error(
+        StatusCode::METHOD_NOT_ALLOWED,
+        ErrorBody::new("method_not_allowed", format!("{method} is not allowed on this route; the API is described at /openapi.json")),
+    )
 }

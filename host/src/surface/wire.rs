@@ -77,8 +77,13 @@ pub struct ScoreAnswer {
     pub reason: std::sync::Arc<Reason>,
     /// The registry generation the request was routed in.
     pub generation: u64,
-    /// One object per row: output name → value, in contract order.
-    pub estimates: Vec<Estimate>,
+    /// One entry per request row, in order: an object of output name →
+    /// value (in contract order), or `null` when the row broke the contract
+    /// (its problems are in `problems`).
+    pub estimates: Vec<Option<Estimate>>,
+    /// Every problem of the rows that got `null`, each naming its row
+    /// (from 1), feature, value and rule. Empty when every row was valid.
+    pub problems: Vec<RowError>,
     /// What the call cost.
     pub usage: Usage,
 }
@@ -104,9 +109,8 @@ impl ScoreAnswer {
     /// The wire form of an [`Answer`].
     pub fn new(answer: Answer) -> Self {
         let names = answer.outputs.clone();
-        let estimates = (0..answer.estimates.rows())
-            .map(|r| Estimate { names: names.clone(), values: answer.estimates.row(r).to_vec() })
-            .collect();
+        let estimates =
+            answer.rows().map(|row| row.map(|values| Estimate { names: names.clone(), values: values.to_vec() })).collect();
         ScoreAnswer {
             model: answer.model,
             version: answer.version.to_string(),
@@ -116,6 +120,7 @@ impl ScoreAnswer {
             generation: answer.generation,
             usage: *answer.estimates.usage(),
             estimates,
+            problems: answer.problems,
         }
     }
 }
@@ -149,8 +154,8 @@ pub struct ErrorDetail {
     /// The limit hit, for `limit` and `too_many_rows`.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub limit: Option<String>,
-    /// Every invalid row, for `invalid_rows`: row number (0-based), feature,
-    /// value and the rule it broke.
+    /// Every problem, for `invalid_rows` (no row was valid): row number
+    /// (from 1), feature, value and the rule it broke.
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub rows: Vec<RowError>,
     /// Other facts, by name (models served, for `unknown_model`).
@@ -228,7 +233,7 @@ pub fn blame(e: &RequestError) -> Blame {
         RequestError::UnknownModel { .. } => Blame::NotFound,
         RequestError::NotLoaded { .. } => Blame::Server,
         RequestError::Score { error, .. } => match error {
-            ScoreError::InvalidRows { .. } | ScoreError::Shape { .. } | ScoreError::TooManyRows(_) => Blame::Request,
+            e if e.is_request_fault() => Blame::Request,
             ScoreError::Sandbox(crate::sandbox::SandboxError::Limit(_)) => Blame::Limit,
             ScoreError::Start(crate::sandbox::StartError::Sandbox { error: crate::sandbox::SandboxError::Limit(_), .. }) => {
                 Blame::Limit

@@ -138,6 +138,10 @@ pub struct StoreArgs {
     /// Compile every artifact afresh instead of using the code cache.
     #[arg(long)]
     pub no_code_cache: bool,
+    /// Seconds between writes of the usage file (STATE/usage.json); a
+    /// crash loses at most this much usage.
+    #[arg(long, default_value_t = 10, value_name = "SECS", value_parser = clap::value_parser!(u64).range(1..=86_400))]
+    pub usage_every_secs: u64,
     #[command(flatten)]
     pub load: LoadArgs,
 }
@@ -151,14 +155,26 @@ impl StoreArgs {
             require_checks: self.require_checks,
             state_dir: self.state.clone(),
             code_cache: !self.no_code_cache,
+            usage_flush: Some(std::time::Duration::from_secs(self.usage_every_secs)),
             ..RegistryOptions::default()
         })
     }
 
-    /// Opens the store: every artifact through the gate, then the routes.
+    /// Opens the store to serve it: every artifact through the gate, then
+    /// the routes; takes the state directory and keeps its usage file.
     pub fn open(&self) -> Result<Registry> {
+        self.open_with(self.options()?)
+    }
+
+    /// Opens the store to look at it: no usage file, no lock, so it works
+    /// beside a host serving the same store.
+    pub fn open_to_look(&self) -> Result<Registry> {
+        self.open_with(RegistryOptions { usage_flush: None, ..self.options()? })
+    }
+
+    fn open_with(&self, options: RegistryOptions) -> Result<Registry> {
         let runtime = self.load.runtime()?;
-        Registry::open(&runtime, &self.store, self.options()?).with_context(|| format!("opening the store {}", self.store.display()))
+        Registry::open(&runtime, &self.store, options).with_context(|| format!("opening the store {}", self.store.display()))
     }
 }
 

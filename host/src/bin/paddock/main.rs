@@ -69,8 +69,26 @@ fn main() -> ExitCode {
         Ok(Outcome::Failed) => ExitCode::from(1),
         Ok(Outcome::Partial) => ExitCode::from(3),
         Err(e) => {
-            eprintln!("error: {e:#}");
+            eprintln!("error: {}", message(&e));
             ExitCode::from(1)
         }
     }
+}
+
+/// The error and its causes on one line, each cause said once: library
+/// errors already name their cause (`cannot read F: No such file…`), so a
+/// cause whose text the line holds already is not repeated.
+fn message(e: &anyhow::Error) -> String {
+    let mut line = String::new();
+    for cause in e.chain() {
+        let text = cause.to_string();
+        if line.contains(&text) {
+            continue;
+        }
+        if !line.is_empty() {
+            line.push_str(": ");
+        }
+        line.push_str(&text);
+    }
+    line
 }

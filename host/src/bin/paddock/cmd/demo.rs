@@ -74,7 +74,10 @@ pub fn run(args: Args) -> Result<Outcome> {
     if !args.store.join(paddock_host::registry::ROUTES_FILE).exists() {
         anyhow::bail!("the demo needs the demo store in {} (run `cargo xtask demo`)", args.store.display());
     }
-    let registry = Registry::open(&runtime, &args.store, paddock_host::RegistryOptions::default())?;
+    // The demo shows this run's figures: it keeps no usage file (and so
+    // also runs beside a host serving the same store).
+    let options = paddock_host::RegistryOptions { usage_flush: None, ..paddock_host::RegistryOptions::default() };
+    let registry = Registry::open(&runtime, &args.store, options)?;
     let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
     anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), args.store.display());
     let zone = TimeZone::get(ZONE)?;
@@ -116,7 +119,6 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     registry.drain_shadows(Duration::from_secs(10));
     let usage = registry.usage();
-    let saved = registry.save_usage()?;
     if args.json {
         #[derive(Serialize)]
         struct Demo<'a> {
@@ -159,9 +161,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     let status = registry.status();
     println!(
-        "{} versions loaded, each in its own sandbox; usage written to {} (see `paddock usage --store {}`)",
+        "{} versions loaded, each in its own sandbox; `paddock serve --store {}` serves the same store over HTTP",
         status.artifacts.len(),
-        saved.display(),
         args.store.display()
     );
     Ok(Outcome::Ok)

@@ -128,7 +128,7 @@ fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
                     valid.push(lines.len());
                     Ok(Vec::new())
                 }
-                Err(e) => Err(e.to_string()),
+                Err(problems) => Err(problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ")),
             },
             Err(e) => Err(format!("row {}: {e}", record.number)),
         };
@@ -138,6 +138,7 @@ fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
         return lines;
     }
     let width = schema.width();
+    let numbers: Vec<usize> = valid.iter().map(|&i| lines[i].number).collect();
     match model.score_cells(valid.len(), &cells) {
         Ok(estimates) => {
             for (r, &i) in valid.iter().enumerate() {
@@ -153,6 +154,7 @@ fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
             }
         }
         Err(e) => {
+            let e = e.renumber(|r| numbers.get(r - 1).copied().unwrap_or(r));
             for &i in &valid {
                 lines[i].result = Err(describe(lines[i].number, &e));
             }
@@ -161,8 +163,13 @@ fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
     lines
 }
 
+/// An error for one row, numbered as the file numbers it. Output faults
+/// name their row already.
 fn describe(number: usize, e: &ScoreError) -> String {
-    format!("row {number}: {e}")
+    match e {
+        ScoreError::Output(_) => e.clone().renumber(|_| number).to_string(),
+        _ => format!("row {number}: {e}"),
+    }
 }
 
 enum Sink {

@@ -22,7 +22,7 @@ pub struct Args {
 
 /// Opens the store and prints its status.
 pub fn run(args: Args) -> Result<Outcome> {
-    let registry = args.store.open()?;
+    let registry = args.store.open_to_look()?;
     let status = registry.status();
     let refused = status.problems().any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
         || matches!(status.routes, RoutesState::Refused { .. });
