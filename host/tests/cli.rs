@@ -137,6 +137,34 @@ fn pack_makes_a_loadable_artifact_from_a_wat_module() {
 }
 
 #[test]
+fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
+    let dir = tempfile::tempdir().unwrap();
+    let guest = root().join("target/paddock/guests/paddock-model-linear.wasm");
+    let params = dir.path().join("junk.params");
+    std::fs::write(&params, b"these bytes are not linear params").unwrap();
+    let out_path = dir.path().join("broken.wasm");
+    let args = ["pack", guest.to_str().unwrap(), "--params", params.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
+    let out = paddock(&args, None);
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stdout));
+    let err = text(&out.stderr);
+    assert!(err.starts_with(&format!("error: {} was not written: the packed artifact does not load", out_path.display())), "{err}");
+    assert_eq!(err.lines().count(), 1, "{err}");
+    // Nothing at --out, and no temporary file left beside it.
+    let left: Vec<_> = std::fs::read_dir(dir.path()).unwrap().map(|e| e.unwrap().file_name()).collect();
+    assert_eq!(left, vec![std::ffi::OsString::from("junk.params")]);
+
+    // Checks that fail: not written either.
+    let wat = root().join("tests/fixtures/affine.wat");
+    let checks = dir.path().join("wrong.checks.json");
+    std::fs::write(&checks, r#"{"source": "by hand, wrong on purpose", "tolerance": {"abs": 0, "rel": 0}, "cases": [{"row": {"x": 1}, "expect": {"y": 99}}]}"#).unwrap();
+    let args = ["pack", wat.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
+    let out = paddock(&args, None);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(text(&out.stderr).contains("was not written: 1 of 1 checks fail; first: case 0"), "{}", text(&out.stderr));
+    assert!(!out_path.exists());
+}
+
+#[test]
 fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let store = root().join("target/paddock/store");
     let out = paddock(&["demo", "--store", store.to_str().unwrap()], None);
