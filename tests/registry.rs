@@ -450,6 +450,29 @@ fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
 }
 
 #[test]
+fn a_reload_that_changes_nothing_keeps_its_generation() {
+    for with_routes in [false, true] {
+        let dir = tempfile::tempdir().unwrap();
+        let store = dir.path();
+        put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, None));
+        if with_routes {
+            routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+        }
+        let reg = open(store);
+        let generation = reg.generation();
+        for _ in 0..3 {
+            let report = reg.reload().unwrap();
+            assert!(!report.changed, "routes file: {with_routes}: {report:?}");
+            assert_eq!(report.generation, generation);
+        }
+        assert_eq!(reg.generation(), generation);
+        // A real change still makes one.
+        put(store, "m", "1.1.0", &line_artifact("m", "1.1.0", 1.0, 0.0, None));
+        assert_eq!(reg.reload().unwrap().generation, generation + 1);
+    }
+}
+
+#[test]
 fn an_unreadable_usage_file_is_kept_aside_not_overwritten() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();

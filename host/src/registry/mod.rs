@@ -824,7 +824,11 @@ impl Registry {
             versions.get(m).is_some_and(|vs| vs.contains_key(v)) || removed.get(m).is_some_and(|vs| vs.contains_key(v))
         };
         let (routes, routes_state) = match std::fs::read(&routes_path) {
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => (Arc::new(Routes::empty()), RoutesState::Missing),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                // Still no routes file: the same (empty) routes, no new generation.
+                let routes = if matches!(old.status.routes, RoutesState::Missing) { old.routes.clone() } else { Arc::new(Routes::empty()) };
+                (routes, RoutesState::Missing)
+            }
             Err(e) => {
                 (old.routes.clone(), RoutesState::Refused { problems: vec![format!("{}: {e}", routes_path.display())] })
             }
