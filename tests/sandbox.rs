@@ -188,7 +188,7 @@ fn non_finite_and_short_answers_are_model_faults() {
         "{err:?}"
     );
     let err = nan.score(&x(1.0)).unwrap_err();
-    assert_eq!(err.to_string(), "model fault: row 0, output `y` = NaN: not a finite number");
+    assert_eq!(err.to_string(), "model fault: row 1, output `y` = NaN: not a finite number");
     let short = affine(&runtime, 5, Limits::default());
     let err = short.score(&[Row::new().with("x", 1.0), Row::new().with("x", 2.0)]).unwrap_err();
     assert_eq!(
@@ -256,4 +256,54 @@ fn one_model_serves_many_threads_with_the_same_answers() {
             });
         }
     });
+}
+
+#[test]
+fn starting_an_instance_has_its_own_fuel_budget_apart_from_the_calls() {
+    let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
+    let artifact = || Artifact::read(&demo_artifact("charge-minutes"), u64::MAX).unwrap();
+    let with = |limits: Limits| ModelOptions { limits, ..ModelOptions::default() };
+    let budget = 100_000;
+    // Decoding 200 trees takes more than one call's budget: as a start
+    // budget it stops the start, naming the fuel limit...
+    let err = Model::load_with(&runtime, artifact(), with(Limits { init_fuel: Some(budget), ..Limits::default() })).unwrap_err();
+    assert!(err.to_string().contains(&format!("fuel limit of {budget} exhausted")), "{err}");
+    // ...but as the per-call budget it is not charged to the start.
+    let model = Model::load_with(&runtime, artifact(), with(Limits { fuel: Some(budget), ..Limits::default() })).unwrap();
+    let row = model.artifact().checks().unwrap().unwrap().cases[0].row.clone();
+    let used = model.score(&[row]).unwrap().usage().fuel.expect("metered");
+    assert!(used > 0 && used <= budget, "{used}");
+}
+
+#[test]
+fn limits_that_cannot_mean_what_they_say_are_refused_naming_the_field() {
+    let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
+    for (limits, field) in [
+        (Limits { deadline: Duration::ZERO, ..Limits::default() }, "deadline is 0s"),
+        (Limits { init_deadline: Duration::from_secs(7200), ..Limits::default() }, "init_deadline is 7200s"),
+        (Limits { fuel: Some(0), ..Limits::default() }, "fuel is 0"),
+        (Limits { rows_per_call: 0, ..Limits::default() }, "rows_per_call is 0"),
+        (Limits { memory_bytes: 1000, ..Limits::default() }, "memory_bytes is 1000"),
+    ] {
+        let artifact = Artifact::read(&demo_artifact("charge-minutes"), u64::MAX).unwrap();
+        let err = Model::load_with(&runtime, artifact, ModelOptions { limits, ..ModelOptions::default() }).unwrap_err();
+        assert!(matches!(err, LoadError::Options(_)) && err.to_string().contains(field), "{field}: {err}");
+    }
+}
+
+#[test]
+fn a_model_fault_names_the_row_as_the_request_numbers_it() {
+    let runtime = Runtime::new().unwrap();
+    // Mode 4 answers NaN: the first row the model sees is request row 2,
+    // as row 1 broke the contract and never entered the sandbox.
+    let nan = affine(&runtime, 4, Limits::default());
+    let err = nan.score_valid(&[Row::new().with("x", "one"), Row::new().with("x", 1.0)]).unwrap_err();
+    assert_eq!(err.to_string(), "model fault: row 2, output `y` = NaN: not a finite number");
+    // And with every row valid, partial scoring answers them all.
+    let ok = affine(&runtime, 0, Limits::default());
+    let scored = ok.score_valid(&[Row::new().with("x", 1.0), Row::new().with("x", "two"), Row::new().with("x", 3.0)]).unwrap();
+    assert_eq!(scored.scored, [1, 3]);
+    assert_eq!(scored.problems.len(), 1);
+    assert_eq!(scored.problems[0].row, 2);
+    assert_eq!(scored.estimates.rows(), 2);
 }

@@ -19,9 +19,14 @@ pub struct Limits {
     /// starts. Default 2 s: decoding a large parameter blob is slow.
     #[serde(serialize_with = "ser_duration")]
     pub init_deadline: Duration,
-    /// WebAssembly instructions (fuel) one call may use, when the runtime
-    /// meters fuel. Default `None`: no fuel limit, only the deadline.
+    /// WebAssembly instructions (fuel) one `score` call may use, when the
+    /// runtime meters fuel. Default `None`: no fuel limit, only the
+    /// deadline. Not charged to starting an instance (see `init_fuel`).
     pub fuel: Option<u64>,
+    /// Fuel `init` plus `describe` may use when an instance starts, when
+    /// the runtime meters fuel. Default `None`: no fuel limit at start, only
+    /// `init_deadline` (decoding params costs far more than one call).
+    pub init_fuel: Option<u64>,
     /// Largest linear memory the model may have, in bytes. Default 64 MiB.
     pub memory_bytes: u64,
     /// Largest table the model may have, in elements. Default 10 000.
@@ -38,11 +43,46 @@ impl Default for Limits {
             deadline: Duration::from_millis(50),
             init_deadline: Duration::from_secs(2),
             fuel: None,
+            init_fuel: None,
             memory_bytes: 64 << 20,
             table_elements: 10_000,
             artifact_bytes: 64 << 20,
             rows_per_call: 65_536,
         }
+    }
+}
+
+impl Limits {
+    /// Refuses limits that cannot mean what they say: zero deadlines, fuel,
+    /// memory, rows or artifact size, and deadlines over an hour.
+    ///
+    /// # Errors
+    /// A sentence naming each field that is out of range.
+    pub fn check(&self) -> Result<(), String> {
+        const HOUR: Duration = Duration::from_secs(3600);
+        let mut problems = Vec::new();
+        if self.deadline.is_zero() || self.deadline > HOUR {
+            problems.push(format!("deadline is {}; give 1 ms to 1 hour", fmt_duration(self.deadline)));
+        }
+        if self.init_deadline.is_zero() || self.init_deadline > HOUR {
+            problems.push(format!("init_deadline is {}; give 1 ms to 1 hour", fmt_duration(self.init_deadline)));
+        }
+        if self.fuel == Some(0) {
+            problems.push("fuel is 0: no call could run; leave it unset for no fuel limit".into());
+        }
+        if self.init_fuel == Some(0) {
+            problems.push("init_fuel is 0: no instance could start; leave it unset for no fuel limit".into());
+        }
+        if self.memory_bytes < 65_536 {
+            problems.push(format!("memory_bytes is {}; one WebAssembly page (65536) is the least", self.memory_bytes));
+        }
+        if self.rows_per_call == 0 {
+            problems.push("rows_per_call is 0: no call could carry a row".into());
+        }
+        if self.artifact_bytes == 0 {
+            problems.push("artifact_bytes is 0: no artifact could load".into());
+        }
+        if problems.is_empty() { Ok(()) } else { Err(problems.join("; ")) }
     }
 }
 

@@ -79,7 +79,8 @@ pub enum LoadError {
 /// Refuses limits the runtime cannot enforce.
 fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
     let rc = runtime.config();
-    if limits.fuel.is_some() && !rc.fuel {
+    limits.check().map_err(LoadError::Options)?;
+    if (limits.fuel.is_some() || limits.init_fuel.is_some()) && !rc.fuel {
         return Err(LoadError::Options("a fuel limit needs a runtime that meters fuel (RuntimeConfig::fuel)".into()));
     }
     if limits.memory_bytes > rc.max_memory_bytes {
@@ -440,11 +441,11 @@ impl Model {
     /// [`ScoreError::InvalidRows`] listing every problem of every invalid
     /// row (nothing is scored), otherwise as [`Model::score_cells`].
     pub fn score(&self, rows: &[Row]) -> Result<Estimates, ScoreError> {
-        let scored = self.score_valid(rows)?;
-        if !scored.problems.is_empty() {
-            return Err(ScoreError::InvalidRows { errors: scored.problems });
+        let (cells, _, problems) = self.encode(rows)?;
+        if !problems.is_empty() {
+            return Err(ScoreError::InvalidRows { errors: problems });
         }
-        Ok(scored.estimates)
+        self.score_cells(rows.len(), &cells)
     }
 
     /// Checks every row against the contract and scores the valid ones in
@@ -456,6 +457,18 @@ impl Model {
     /// [`Model::score_cells`], with the rows an output fault names
     /// numbered as in `rows`.
     pub fn score_valid(&self, rows: &[Row]) -> Result<Scored, ScoreError> {
+        let (cells, scored, problems) = self.encode(rows)?;
+        if scored.is_empty() && !rows.is_empty() {
+            return Err(ScoreError::InvalidRows { errors: problems });
+        }
+        let estimates =
+            self.score_cells(scored.len(), &cells).map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
+        Ok(Scored { estimates, scored, problems })
+    }
+
+    /// The cells of the valid rows, their numbers (from 1), and every
+    /// problem of the others.
+    fn encode(&self, rows: &[Row]) -> Result<(Vec<f64>, Vec<usize>, Vec<RowError>), ScoreError> {
         let schema = &self.inner.schema;
         self.check_row_count(rows.len())?;
         let mut cells = Vec::with_capacity(rows.len() * schema.width());
@@ -467,12 +480,7 @@ impl Model {
                 Err(e) => problems.extend(e),
             }
         }
-        if scored.is_empty() && !rows.is_empty() {
-            return Err(ScoreError::InvalidRows { errors: problems });
-        }
-        let estimates =
-            self.score_cells(scored.len(), &cells).map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
-        Ok(Scored { estimates, scored, problems })
+        Ok((cells, scored, problems))
     }
 
     /// Scores rows already encoded as dense cells (row-major, contract

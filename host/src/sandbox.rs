@@ -340,13 +340,13 @@ impl Instance {
             table_cap: limits.table_elements,
             peak_memory: 0,
             deadline: limits.init_deadline,
-            fuel: limits.fuel,
+            fuel: limits.init_fuel,
             armed: Instant::now(),
             wasi: wasi.map(WasiState::new),
         };
         let mut store = Store::new(runtime.engine(), state);
         store.limiter(|s| s as &mut dyn ResourceLimiter);
-        arm(&mut store, runtime, limits.init_deadline, limits.fuel);
+        arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
         let started = Self::init(&mut store, runtime, pre, params, describe);
         drain(&store, who);
         let (api, contract) = started?;
@@ -377,7 +377,7 @@ impl Instance {
 
     /// Calls `describe()` again under the init deadline.
     pub(crate) fn describe(&mut self, runtime: &Runtime, limits: &Limits) -> Result<Contract, StartError> {
-        arm(&mut self.store, runtime, limits.init_deadline, limits.fuel);
+        arm(&mut self.store, runtime, limits.init_deadline, limits.init_fuel);
         let contract = self
             .api
             .call_describe(&mut self.store)

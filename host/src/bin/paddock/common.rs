@@ -33,16 +33,22 @@ pub struct LoadArgs {
     #[arg(long, value_name = "DIGEST")]
     pub pin: Vec<String>,
     /// Wall-clock deadline per call, in milliseconds [default: 50].
-    #[arg(long, value_name = "MS")]
+    #[arg(long, value_name = "MS", value_parser = clap::value_parser!(u64).range(1..=3_600_000))]
     pub deadline_ms: Option<u64>,
-    /// Fuel (instructions) per call; turns on fuel metering.
-    #[arg(long, value_name = "UNITS")]
+    /// Wall-clock deadline for `init` + `describe` when an instance starts, in milliseconds [default: 2000].
+    #[arg(long, value_name = "MS", value_parser = clap::value_parser!(u64).range(1..=3_600_000))]
+    pub start_deadline_ms: Option<u64>,
+    /// Fuel (instructions) per scoring call; turns on fuel metering.
+    #[arg(long, value_name = "UNITS", value_parser = clap::value_parser!(u64).range(1..))]
     pub fuel: Option<u64>,
+    /// Fuel for `init` + `describe` when an instance starts [default: no limit, the start deadline binds].
+    #[arg(long, value_name = "UNITS", value_parser = clap::value_parser!(u64).range(1..), requires = "fuel")]
+    pub start_fuel: Option<u64>,
     /// Linear memory cap, in MiB [default: 64].
-    #[arg(long, value_name = "MIB")]
+    #[arg(long, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=4096))]
     pub memory_mib: Option<u64>,
     /// Largest artifact accepted, in MiB [default: 64].
-    #[arg(long, value_name = "MIB")]
+    #[arg(long, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=4096))]
     pub max_artifact_mib: Option<u64>,
     /// Start a fresh instance for every call instead of reusing warm ones.
     #[arg(long)]
@@ -67,7 +73,11 @@ impl LoadArgs {
         if let Some(ms) = self.deadline_ms {
             limits.deadline = Duration::from_millis(ms);
         }
+        if let Some(ms) = self.start_deadline_ms {
+            limits.init_deadline = Duration::from_millis(ms);
+        }
         limits.fuel = self.fuel;
+        limits.init_fuel = self.start_fuel;
         if let Some(mib) = self.memory_mib {
             limits.memory_bytes = mib << 20;
         }
