@@ -39,9 +39,18 @@ fn nan_bits_cannot_leak_machine_differences() {
     let answer = model.score(&[Row::new().with("x", 1.0)]).unwrap();
     assert_eq!(answer.values(), &[f64::from(0x7ff8_0000u32)]);
 
-    // Without canonicalization the hardware's own NaN shows through.
+    // Without canonicalization the hardware's own NaN shows through, bit
+    // for bit: on x86-64 the "QNaN floating-point indefinite" of SSE
+    // division, sign bit set (Intel SDM vol. 1, 4.8.3.7; from memory); on
+    // AArch64 the "default NaN", sign clear (Arm ARM, FPCR.DN; from memory).
+    #[cfg(target_arch = "x86_64")]
+    const HARDWARE: u32 = 0xfff8_0000;
+    #[cfg(target_arch = "aarch64")]
+    const HARDWARE: u32 = 0x7ff8_0000;
     let loose = Runtime::with_config(RuntimeConfig { canonical_nans: false, ..RuntimeConfig::default() }).unwrap();
     let model = Model::load(&loose, packed(module.as_bytes(), &[], None)).unwrap();
-    let raw = model.score(&[Row::new().with("x", 1.0)]).unwrap().values()[0] as u64;
-    assert_eq!(raw & 0x7ff8_0000, 0x7ff8_0000, "still a NaN pattern: {raw:#x}");
+    let raw = model.score(&[Row::new().with("x", 1.0)]).unwrap().values()[0];
+    assert_eq!(raw, f64::from(HARDWARE), "hardware NaN's high bits: {:#x}", raw as u64);
+    #[cfg(target_arch = "x86_64")]
+    assert_ne!(raw, answer.values()[0], "on x86-64 canonicalization must change the bits");
 }
