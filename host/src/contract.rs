@@ -44,7 +44,7 @@ pub enum ContractProblem {
         name: String,
     },
     /// Bounds with min > max, or a NaN bound.
-    #[error("{kind} `{name}` has bounds that no value can meet: min {min:?}, max {max:?}")]
+    #[error("{kind} `{name}` has bounds that no value can meet: min {}, max {}", opt(*.min), opt(*.max))]
     BadBounds {
         /// `feature` or `output`.
         kind: &'static str,
@@ -63,6 +63,10 @@ pub enum ContractProblem {
         /// What is wrong.
         reason: String,
     },
+}
+
+fn opt(v: Option<f64>) -> String {
+    v.map_or_else(|| "none".to_owned(), |v| v.to_string())
 }
 
 /// Every problem found in a contract.
@@ -274,7 +278,7 @@ mod tests {
         let text = err.to_string();
         assert!(text.contains("version `one` is not semver"), "{text}");
         assert!(text.contains("no outputs"), "{text}");
-        assert!(text.contains("feature `a` has bounds that no value can meet: min Some(2.0), max Some(1.0)"), "{text}");
+        assert!(text.contains("feature `a` has bounds that no value can meet: min 2, max 1"), "{text}");
         assert!(text.contains("feature name `a` is used more than once"), "{text}");
         assert!(text.contains("feature `a` has a bad label list: no labels"), "{text}");
         assert_eq!(err.problems.len(), 5);

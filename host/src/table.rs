@@ -39,44 +39,110 @@ pub struct Record {
     pub row: Result<Row, String>,
 }
 
-/// Reads records from `input`. With `id`, that column (CSV) or key (NDJSON)
-/// is taken out of the row and returned as the record's id.
+/// Which columns (CSV) or keys (NDJSON) are not features.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct Columns<'a> {
+    /// The column or key that identifies a row: taken out of the row and
+    /// returned as the record's id.
+    pub id: Option<&'a str>,
+    /// Columns or keys to leave out of every row.
+    pub ignore: &'a [String],
+}
+
+/// Why a file cannot be read as rows at all (a bad record is not this: it
+/// is reported with its number and the rest carry on).
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum TableError {
+    /// The CSV header cannot be read.
+    #[error("cannot read the CSV header: {0}")]
+    Header(String),
+    /// Header columns that are neither features, the id, nor ignored.
+    #[error(
+        "{} not {} of {model}: name the row's id column with --id NAME, or leave columns out with --ignore NAME",
+        list(.columns), if .columns.len() == 1 { "a feature" } else { "features" }
+    )]
+    UnknownColumns {
+        /// The columns.
+        columns: Vec<String>,
+        /// The model (`name version`).
+        model: String,
+    },
+    /// The id column named is not in the header.
+    #[error("the id column `{column}` is not in the CSV header (columns: {})", .header.join(", "))]
+    MissingId {
+        /// The column asked for.
+        column: String,
+        /// The header.
+        header: Vec<String>,
+    },
+}
+
+fn list(columns: &[String]) -> String {
+    let quoted: Vec<String> = columns.iter().map(|c| format!("`{c}`")).collect();
+    match quoted.len() {
+        1 => format!("column {} is", quoted[0]),
+        _ => format!("columns {} are", quoted.join(", ")),
+    }
+}
+
+/// Reads records from `input`: a CSV file's header is checked at once
+/// against the contract; each record is then read on its own.
+///
+/// # Errors
+/// [`TableError`] for a CSV header that cannot be read, names a column
+/// that is not a feature (and is neither `columns.id` nor ignored), or
+/// lacks the id column.
 pub fn records<'a, R: Read + 'a>(
     input: R,
     format: Format,
     schema: &'a Schema,
-    id: Option<&'a str>,
-) -> Box<dyn Iterator<Item = Record> + 'a> {
-    match format {
-        Format::Csv => Box::new(csv_records(input, schema, id)),
-        Format::Ndjson => Box::new(ndjson_records(input, id)),
-    }
+    columns: Columns<'a>,
+) -> Result<Box<dyn Iterator<Item = Record> + 'a>, TableError> {
+    Ok(match format {
+        Format::Csv => Box::new(csv_records(input, schema, columns)?),
+        Format::Ndjson => Box::new(ndjson_records(input, columns)),
+    })
 }
 
-fn csv_records<'a, R: Read + 'a>(input: R, schema: &'a Schema, id: Option<&'a str>) -> impl Iterator<Item = Record> + 'a {
+fn csv_records<'a, R: Read + 'a>(
+    input: R,
+    schema: &'a Schema,
+    columns: Columns<'a>,
+) -> Result<impl Iterator<Item = Record> + 'a, TableError> {
     let mut reader = csv::ReaderBuilder::new().flexible(true).trim(csv::Trim::All).from_reader(input);
-    let header: Result<Vec<String>, String> = reader
-        .headers()
-        .map(|h| h.iter().map(str::to_owned).collect())
-        .map_err(|e| format!("cannot read the CSV header: {e}"));
-    let mut header_failed = false;
+    let header: Vec<String> =
+        reader.headers().map(|h| h.iter().map(str::to_owned).collect()).map_err(|e| TableError::Header(e.to_string()))?;
+    let id = columns.id;
+    let id_at = match id {
+        Some(column) => Some(
+            header
+                .iter()
+                .position(|h| h == column)
+                .ok_or_else(|| TableError::MissingId { column: column.to_owned(), header: header.clone() })?,
+        ),
+        None => None,
+    };
+    let unknown: Vec<String> = header
+        .iter()
+        .enumerate()
+        .filter(|(i, h)| Some(*i) != id_at && !columns.ignore.contains(h) && schema.feature_index(h).is_none())
+        .map(|(_, h)| h.clone())
+        .collect();
+    if !unknown.is_empty() {
+        let c = schema.contract();
+        return Err(TableError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
+    }
+    let keep: Vec<bool> = header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
     let mut records = reader.into_records().enumerate();
-    std::iter::from_fn(move || {
-        let header = match &header {
-            Ok(h) => h,
-            Err(e) if !header_failed => {
-                header_failed = true;
-                return Some(Record { number: 0, id: None, row: Err(e.clone()) });
-            }
-            Err(_) => return None,
-        };
+    Ok(std::iter::from_fn(move || {
         let (i, result) = records.next()?;
         let number = i + 1;
         let record = match result {
             Ok(r) => r,
-            Err(e) => return Some(Record { number, id: None, row: Err(format!("unreadable CSV record: {e}")) }),
+            Err(e) => return Some(Record { number, id: None, row: Err(csv_problem(&e)) }),
         };
-        let id_value = id.and_then(|id| header.iter().position(|h| h == id)).and_then(|i| record.get(i)).map(str::to_owned);
+        let id_value = id_at.and_then(|i| record.get(i)).map(str::to_owned);
         if record.len() != header.len() {
             let row = Err(format!("{} fields but the header has {}", record.len(), header.len()));
             return Some(Record { number, id: id_value, row });
@@ -84,14 +150,28 @@ fn csv_records<'a, R: Read + 'a>(input: R, schema: &'a Schema, id: Option<&'a st
         let row = header
             .iter()
             .zip(record.iter())
-            .filter(|(name, _)| Some(name.as_str()) != id)
-            .map(|(name, cell)| (name.clone(), schema.value_from_text(name, cell)))
+            .zip(&keep)
+            .filter(|(_, keep)| **keep)
+            .map(|((name, cell), _)| (name.clone(), schema.value_from_text(name, cell)))
             .collect();
         Some(Record { number, id: id_value, row: Ok(row) })
-    })
+    }))
 }
 
-fn ndjson_records<'a, R: Read + 'a>(input: R, id: Option<&'a str>) -> impl Iterator<Item = Record> + 'a {
+/// A CSV record's problem in words, naming the field.
+fn csv_problem(e: &csv::Error) -> String {
+    match e.kind() {
+        csv::ErrorKind::Utf8 { pos, err } => {
+            let line = pos.as_ref().map_or(String::new(), |p| format!(" (line {})", p.line()));
+            format!("field {} is not UTF-8 text{line}", err.field() + 1)
+        }
+        csv::ErrorKind::Io(io) => format!("cannot read the record: {io}"),
+        _ => format!("unreadable CSV record: {e}"),
+    }
+}
+
+fn ndjson_records<'a, R: Read + 'a>(input: R, columns: Columns<'a>) -> impl Iterator<Item = Record> + 'a {
+    let id = columns.id;
     BufReader::new(input).lines().enumerate().filter_map(move |(i, line)| {
         let number = i + 1;
         let line = match line {
@@ -109,6 +189,11 @@ fn ndjson_records<'a, R: Read + 'a>(input: R, id: Option<&'a str>) -> impl Itera
             serde_json::Value::String(s) => s,
             other => other.to_string(),
         });
+        if let Some(map) = value.as_object_mut() {
+            for key in columns.ignore {
+                map.remove(key);
+            }
+        }
         Some(Record { number, id: id_value, row: Row::from_json(value) })
     })
 }
@@ -136,11 +221,39 @@ mod tests {
         .unwrap()
     }
 
+    fn id(name: &str) -> Columns<'_> {
+        Columns { id: Some(name), ignore: &[] }
+    }
+
+    #[test]
+    fn csv_columns_that_are_not_features_are_named_with_the_way_out() {
+        let s = schema();
+        let err = records("site,kw,plate\na,1,b\n".as_bytes(), Format::Csv, &s, Columns::default()).err().unwrap();
+        assert_eq!(
+            err.to_string(),
+            "columns `site`, `plate` are not features of t 1.0.0: name the row's id column with --id NAME, or leave columns out with --ignore NAME"
+        );
+        let ignore = ["plate".to_owned()];
+        let got: Vec<Record> =
+            records("site,kw,plate\na,1,b\n".as_bytes(), Format::Csv, &s, Columns { id: Some("site"), ignore: &ignore }).unwrap().collect();
+        assert_eq!(got[0].id.as_deref(), Some("a"));
+        assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(1.0))]);
+        let err = records("kw\n1\n".as_bytes(), Format::Csv, &s, id("site")).err().unwrap();
+        assert_eq!(err.to_string(), "the id column `site` is not in the CSV header (columns: kw)");
+    }
+
+    #[test]
+    fn a_field_that_is_not_utf8_is_named_in_words() {
+        let s = schema();
+        let got: Vec<Record> = records(&b"kw\n1\n\xff\n"[..], Format::Csv, &s, Columns::default()).unwrap().collect();
+        assert_eq!(got[1].row.as_ref().unwrap_err(), "field 1 is not UTF-8 text (line 3)");
+    }
+
     #[test]
     fn csv_bad_records_are_numbered_and_the_rest_read() {
         let s = schema();
         let input = "id,kw\na,7.4\nb\nc,11\n";
-        let got: Vec<Record> = records(input.as_bytes(), Format::Csv, &s, Some("id")).collect();
+        let got: Vec<Record> = records(input.as_bytes(), Format::Csv, &s, id("id")).unwrap().collect();
         assert_eq!(got.len(), 3);
         assert_eq!(got[0].id.as_deref(), Some("a"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(7.4))]);
@@ -153,7 +266,7 @@ mod tests {
     fn ndjson_bad_lines_are_numbered_and_the_rest_read() {
         let s = schema();
         let input = "{\"id\": 7, \"kw\": 3}\n\nnot json\n[1]\n";
-        let got: Vec<Record> = records(input.as_bytes(), Format::Ndjson, &s, Some("id")).collect();
+        let got: Vec<Record> = records(input.as_bytes(), Format::Ndjson, &s, id("id")).unwrap().collect();
         assert_eq!(got.len(), 3);
         assert_eq!(got[0].id.as_deref(), Some("7"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Integer(3))]);

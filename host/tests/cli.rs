@@ -57,6 +57,34 @@ fn inspect_shows_digest_imports_and_the_contract_table() {
 }
 
 #[test]
+fn score_names_columns_that_are_not_features_and_how_to_mark_them() {
+    let a = artifact_path("charge-minutes");
+    let csv = "session,plate,charger_kw,battery_kwh,soc_start,soc_target,ambient_c,hour_of_week,connector,fleet\n\
+               s1,EV-1,11,64,0.2,0.8,12,40,type2,false\n";
+    let input = tmp("with-extra-columns.csv");
+    std::fs::write(&input, csv).unwrap();
+    let out_file = tmp("with-extra-columns.out.csv");
+    let _ = std::fs::remove_file(&out_file);
+    let run = |extra: &[&str]| {
+        let mut args = vec!["score", a.to_str().unwrap(), input.to_str().unwrap(), "--out", out_file.to_str().unwrap()];
+        args.extend_from_slice(extra);
+        paddock(&args, None)
+    };
+    let out = run(&[]);
+    assert_eq!(out.status.code(), Some(1));
+    let err = text(&out.stderr);
+    assert!(err.contains("columns `session`, `plate` are not features of charge-minutes") && err.contains("--id NAME") && err.contains("--ignore NAME"), "{err}");
+    // Refused before any output was created.
+    assert!(!out_file.exists());
+    let out = run(&["--id", "sesion"]);
+    assert!(text(&out.stderr).contains("the id column `sesion` is not in the CSV header"), "{}", text(&out.stderr));
+    let out = run(&["--id", "session", "--ignore", "plate"]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("1 row scored, 0 rows failed"), "{}", text(&out.stderr));
+    assert!(std::fs::read_to_string(&out_file).unwrap().lines().nth(1).unwrap().starts_with("1,s1,"));
+}
+
+#[test]
 fn score_reports_bad_rows_by_number_and_scores_the_rest() {
     let a = artifact_path("charge-minutes");
     let csv = "\

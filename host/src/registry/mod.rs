@@ -284,7 +284,16 @@ pub struct Refusal {
 
 impl std::fmt::Display for Refusal {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        write!(f, "refused at {:?}: {}", self.stage, self.reason)
+        let stage = match self.stage {
+            Stage::Layout => "its place in the store",
+            Stage::Read => "reading it",
+            Stage::Trust => "the trust check",
+            Stage::Parse => "parsing it",
+            Stage::Load => "loading it",
+            Stage::Identity => "matching its name and version to its place",
+            Stage::Checks => "its checks",
+        };
+        write!(f, "refused at {stage}: {}", self.reason)
     }
 }
 

@@ -40,9 +40,9 @@ fn text(r: &AuditReport) -> String {
         line("exports", s.exports.join(", "));
         if let Some(p) = &r.wasi_policy {
             line("wasi policy", format!(
-                "empty world; clocks {:?}, randomness {:?}, {} bytes of stdout/stderr kept per call",
-                p.clocks, p.random, p.output_bytes
-            ).to_lowercase());
+                "empty world; clocks {}, randomness {}, {} bytes of stdout/stderr kept per call",
+                source(p.clocks), source(p.random), p.output_bytes
+            ));
         }
         for w in &r.wasi {
             line("wasi", format!("{}: {}", w.interface, w.satisfied_by.as_deref().unwrap_or("not provided")));
@@ -90,4 +90,11 @@ fn text(r: &AuditReport) -> String {
         }
     }
     out
+}
+
+fn source(s: paddock_host::wasi::Source) -> &'static str {
+    match s {
+        paddock_host::wasi::Source::Fixed => "fixed",
+        paddock_host::wasi::Source::Real => "real",
+    }
 }

@@ -48,9 +48,12 @@ pub struct Args {
     /// A column (CSV) or key (NDJSON) that identifies the row; copied to the output.
     #[arg(long, value_name = "NAME")]
     id: Option<String>,
+    /// A column (CSV) or key (NDJSON) that is not a feature: left out of every row. Repeatable.
+    #[arg(long, value_name = "NAME")]
+    ignore: Vec<String>,
     /// Rows per call into the sandbox.
-    #[arg(long, default_value_t = 512)]
-    batch: usize,
+    #[arg(long, default_value_t = 512, value_parser = clap::value_parser!(u32).range(1..=65_536))]
+    batch: u32,
     /// Same as --to ndjson (for programs reading the output).
     #[arg(long)]
     json: bool,
@@ -87,17 +90,20 @@ pub fn run(args: Args) -> Result<Outcome> {
         bar.set_style(ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}").unwrap_or_else(|_| ProgressStyle::default_bar()));
         (Box::new(bar.wrap_read(file)), bar)
     };
+    // The header is checked before any output is created.
+    let schema = model.schema();
+    let columns = table::Columns { id: args.id.as_deref(), ignore: &args.ignore };
+    let records = table::records(input, format, schema, columns).with_context(|| format!("reading {}", args.input.display()))?;
     let out: Box<dyn Write> = match &args.out {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
         None => Box::new(io::stdout().lock()),
     };
     let mut writer = Writer::new(out, to, &model, args.id.is_some())?;
-    let schema = model.schema();
-    let mut batch: Vec<Record> = Vec::with_capacity(args.batch.max(1));
+    let mut batch: Vec<Record> = Vec::with_capacity(args.batch as usize);
     let (mut scored, mut failed) = (0usize, 0usize);
-    for record in table::records(input, format, schema, args.id.as_deref()) {
+    for record in records {
         batch.push(record);
-        if batch.len() >= args.batch.max(1) {
+        if batch.len() >= args.batch as usize {
             for line in score_batch(&model, std::mem::take(&mut batch)) {
                 if line.result.is_ok() { scored += 1 } else { failed += 1 }
                 writer.write(&line)?;
@@ -110,7 +116,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     writer.finish()?;
     progress.finish_and_clear();
-    eprintln!("{scored} rows scored, {failed} rows failed");
+    eprintln!("{} scored, {} failed", rows(scored), rows(failed));
     Ok(if failed == 0 { Outcome::Ok } else { Outcome::Partial })
 }
 
@@ -172,6 +178,38 @@ fn describe(number: usize, e: &ScoreError) -> String {
     }
 }
 
+/// "1 row", "2 rows".
+fn rows(n: usize) -> String {
+    if n == 1 { "1 row".into() } else { format!("{n} rows") }
+}
+
+/// An NDJSON output line: `row`, `id`, the outputs in contract order, or
+/// `error`.
+struct JsonLine<'a> {
+    line: &'a Line,
+    outputs: &'a [String],
+}
+
+impl serde::Serialize for JsonLine<'_> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut m = s.serialize_map(None)?;
+        m.serialize_entry("row", &self.line.number)?;
+        if let Some(id) = &self.line.id {
+            m.serialize_entry("id", id)?;
+        }
+        match &self.line.result {
+            Ok(values) => {
+                for (name, v) in self.outputs.iter().zip(values) {
+                    m.serialize_entry(name, v)?;
+                }
+            }
+            Err(e) => m.serialize_entry("error", e)?,
+        }
+        m.end()
+    }
+}
+
 enum Sink {
     Csv(csv::Writer<Box<dyn Write>>),
     Ndjson(BufWriter<Box<dyn Write>>),
@@ -223,22 +261,8 @@ impl Writer {
                 csv.write_record(&record)?;
             }
             Sink::Ndjson(out) => {
-                let mut obj = serde_json::Map::new();
-                obj.insert("row".into(), line.number.into());
-                if let Some(id) = &line.id {
-                    obj.insert("id".into(), id.clone().into());
-                }
-                match &line.result {
-                    Ok(values) => {
-                        for (name, v) in self.outputs.iter().zip(values) {
-                            obj.insert(name.clone(), (*v).into());
-                        }
-                    }
-                    Err(e) => {
-                        obj.insert("error".into(), e.clone().into());
-                    }
-                }
-                writeln!(out, "{}", serde_json::Value::Object(obj))?;
+                serde_json::to_writer(&mut *out, &JsonLine { line, outputs: &self.outputs })?;
+                out.write_all(b"\n")?;
             }
         }
         Ok(())
