@@ -2,7 +2,7 @@
 //! a typed error naming the limit, a failed instance is never reused, bad
 //! answers are faults, and the host keeps serving throughout.
 
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use paddock_host::model::Isolation;
 use paddock_host::rows::OutputFault;
@@ -52,12 +52,10 @@ fn a_model_past_its_deadline_gets_the_deadline_error_and_the_host_keeps_serving(
     let spinner = affine(&runtime, 1, limits);
     let healthy = affine(&runtime, 0, Limits::default());
     for _ in 0..2 {
-        let started = Instant::now();
+        // It returns at all (the fixture spins forever): the deadline stopped it.
         let err = spinner.score(&x(1.0)).unwrap_err();
         assert_eq!(err, ScoreError::Sandbox(SandboxError::Limit(LimitHit::Deadline { limit: Duration::from_millis(20) })));
         assert_eq!(err.to_string(), "deadline of 20ms exceeded");
-        // Generous slack: the point is that it stops, not how precisely.
-        assert!(started.elapsed() < Duration::from_secs(5), "took {:?}", started.elapsed());
         assert_eq!(healthy.score(&x(2.0)).unwrap().values(), &[5.0]);
     }
 }

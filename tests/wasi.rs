@@ -5,7 +5,7 @@
 
 use std::io::Write;
 use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant, SystemTime, UNIX_EPOCH};
+use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use paddock_host::audit::audit;
 use paddock_host::wasi::Source;
@@ -64,15 +64,14 @@ fn a_wait_past_the_deadline_stops_the_call_with_the_deadline_limit() {
     let limits = Limits { deadline: Duration::from_millis(50), ..Limits::default() };
     let options = ModelOptions { limits, wasi: Some(WasiPolicy::default()), ..ModelOptions::default() };
     let model = load_foreign(&runtime, "wasi-probe", options).unwrap();
-    let started = Instant::now();
-    // Asks to sleep 100 s: the host must not hold a thread that long.
-    match probe(&model, 100_000.0, 0.0) {
+    // Asks to sleep 11 days: this test ends only if the host stops the
+    // wait at the deadline instead of holding the thread.
+    match probe(&model, 1e9, 0.0) {
         Err(ScoreError::Sandbox(SandboxError::Limit(LimitHit::Deadline { limit }))) => {
             assert_eq!(limit, Duration::from_millis(50))
         }
         other => panic!("expected the deadline limit, got {other:?}"),
     }
-    assert!(started.elapsed() < Duration::from_secs(10), "the sleep held the thread {:?}", started.elapsed());
     // A sleep within the deadline is a sleep, and the model keeps serving.
     let got = probe(&model, 5.0, 0.0).unwrap();
     assert_eq!(got["env_vars"], 0.0);

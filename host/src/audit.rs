@@ -160,6 +160,16 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         }
         report.wasi.push(WasiImport { interface: import.clone(), satisfied_by });
     }
+    if options.wasi.is_none() && !report.wasi.is_empty() {
+        report.violations.insert(
+            0,
+            format!(
+                "needs the WASI policy: it imports {} WASI interface{} and loads only under the policy (audit it with --wasi to see what each gets)",
+                report.wasi.len(),
+                if report.wasi.len() == 1 { "" } else { "s" }
+            ),
+        );
+    }
     trust(&mut report, path, &artifact, policy);
 
     let runtime = match Runtime::with_config(config) {

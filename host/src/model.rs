@@ -223,8 +223,9 @@ impl ScoreError {
 pub struct Usage {
     /// Rows scored.
     pub rows: usize,
-    /// Wall time from taking an instance to checking the outputs.
-    #[serde(serialize_with = "ser_micros")]
+    /// Wall time from taking an instance to checking the outputs
+    /// (in JSON: `wall_us`, microseconds).
+    #[serde(rename = "wall_us", serialize_with = "ser_micros")]
     pub wall: Duration,
     /// Fuel the call used, when the runtime meters fuel.
     pub fuel: Option<u64>,

@@ -457,6 +457,10 @@ fn a_python_guest_scores_only_under_wasi() {
     assert!(!refused.status.success());
     let err = text(&refused.stderr);
     assert!(err.contains("wasi:cli/stdout@0.2.") && err.contains("WASI policy"), "{err}");
+    // The audit says so too, as its first finding.
+    let audit = paddock(&["audit", py], None);
+    let findings = text(&audit.stdout);
+    assert!(findings.contains("needs the WASI policy") && findings.contains("--wasi"), "{findings}");
     let scored = paddock(&["score", "--wasi", py, "-", "--to", "ndjson"], Some(csv));
     assert!(scored.status.success(), "{}", text(&scored.stderr));
     let line: serde_json::Value = serde_json::from_str(text(&scored.stdout).lines().next().unwrap()).unwrap();

@@ -6,7 +6,8 @@
 //!   store (several versions of each model, and routes) in
 //!   `target/paddock/store/`. Guests are always built from source; no
 //!   compiled guest is committed.
-//! - `demo`: `build`, then `paddock demo` on the demo store.
+//! - `demo`: only what the demo serves — the two generic guests, the
+//!   trainer, the demo store — then `paddock demo` on it.
 //! - `guests`: the guests in other languages. Installs the pinned Python
 //!   packages (pip) and the JavaScript build tools (`npm ci`), builds the
 //!   Python and JavaScript `charge-taper` guests and the WASI probe with
@@ -50,8 +51,20 @@ fn main() -> Result<()> {
     match task.as_str() {
         "build" => build(&root),
         "demo" => {
-            build(&root)?;
-            let store = root.join("target/paddock/store");
+            // Only the guests the demo store is packed with: the others
+            // (the ONNX evaluator above all) take most of a full build.
+            ensure_target()?;
+            build_guests(&root, &DEMO_GUESTS)?;
+            // The trainer and the host in one build, so cargo keeps both cores busy.
+            let mut both = cargo(&root);
+            both.args(["build", "--quiet", "-p", "paddock-train-demo", "-p", "paddock-host"]);
+            run(both)?;
+            let out = root.join("target/paddock");
+            let train = out.join("train");
+            std::fs::create_dir_all(&train).with_context(|| format!("creating {}", train.display()))?;
+            train_demo(&root, &train)?;
+            demo_store(&root, &out.join("guests"), &train.join("store"), &out.join("store"))?;
+            let store = out.join("store");
             let mut cmd = cargo(&root);
             cmd.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "demo", "--store"]);
             cmd.arg(&store).args(&rest);
@@ -135,32 +148,53 @@ fn ensure_target() -> Result<()> {
     }
 }
 
-fn build(root: &Path) -> Result<()> {
-    ensure_target()?;
+/// The guests the demo store is packed with.
+const DEMO_GUESTS: [(&str, &str); 2] = [("paddock-model-linear", "paddock_model_linear"), ("paddock-model-trees", "paddock_model_trees")];
+
+/// Builds `guests` for wasm32 and copies them to `target/paddock/guests/`.
+fn build_guests(root: &Path, guests: &[(&str, &str)]) -> Result<()> {
     for profile in ["wasm", SMALL_PROFILE] {
+        let packages: Vec<&str> =
+            guests.iter().map(|(p, _)| *p).filter(|p| (profile == SMALL_PROFILE) == SMALL.contains(p)).collect();
+        if packages.is_empty() {
+            continue;
+        }
         let mut cmd = cargo(root);
         cmd.args(["build", "--quiet", "--profile", profile, "--target", TARGET]);
-        for (package, _) in GUESTS.iter().filter(|(p, _)| (profile == SMALL_PROFILE) == SMALL.contains(p)) {
+        for package in packages {
             cmd.args(["-p", package]);
         }
         run(cmd)?;
     }
+    let dir = root.join("target/paddock/guests");
+    std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
+    for (package, stem) in guests {
+        let profile = if SMALL.contains(package) { SMALL_PROFILE } else { "wasm" };
+        let built = root.join(format!("target/{TARGET}/{profile}/{stem}.wasm"));
+        let copy = dir.join(format!("{package}.wasm"));
+        std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
+    }
+    Ok(())
+}
+
+/// Trains the demo models into `train`.
+fn train_demo(root: &Path, train: &Path) -> Result<()> {
+    let mut trainer = cargo(root);
+    trainer.args(["run", "--quiet", "-p", "paddock-train-demo", "--"]).arg(train);
+    run(trainer)
+}
+
+fn build(root: &Path) -> Result<()> {
+    ensure_target()?;
+    build_guests(root, &GUESTS)?;
     let out = root.join("target/paddock");
     let guests = out.join("guests");
     let train = out.join("train");
     let artifacts = out.join("artifacts");
-    for dir in [&guests, &train, &artifacts] {
+    for dir in [&train, &artifacts] {
         std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     }
-    for (package, stem) in GUESTS {
-        let profile = if SMALL.contains(&package) { SMALL_PROFILE } else { "wasm" };
-        let built = root.join(format!("target/{TARGET}/{profile}/{stem}.wasm"));
-        let copy = guests.join(format!("{package}.wasm"));
-        std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
-    }
-    let mut trainer = cargo(root);
-    trainer.args(["run", "--quiet", "-p", "paddock-train-demo", "--"]).arg(&train);
-    run(trainer)?;
+    train_demo(root, &train)?;
     for model in ["charge-minutes", "overstay-risk"] {
         let mut pack = cargo(root);
         pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]);

@@ -476,7 +476,7 @@ pub struct ReloadReport {
     /// The routes file's problems, when it was refused in this reload.
     pub routes_refused: Vec<String>,
     /// How long the reload took.
-    #[serde(serialize_with = "ser_ms")]
+    #[serde(rename = "took_ms", serialize_with = "ser_ms")]
     pub took: Duration,
 }
 

@@ -119,7 +119,8 @@ pub enum Reason {
         key: String,
         /// The canary's share of requests.
         share: f64,
-        /// What the request would have been routed by without the canary.
+        /// The route that would have answered without the canary:
+        /// `default` or a rule's name.
         instead_of: String,
     },
 }
@@ -141,7 +142,8 @@ impl fmt::Display for Reason {
             Reason::Default => f.write_str("default"),
             Reason::Rule { name } => write!(f, "rule `{name}`"),
             Reason::Canary { key, share, instead_of } => {
-                write!(f, "canary ({}% by `{key}`, instead of {instead_of})", share * 100.0)
+                let instead = if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule `{instead_of}`") };
+                write!(f, "canary ({}% by `{key}`, instead of {instead})", share * 100.0)
             }
         }
     }
@@ -316,7 +318,7 @@ impl Routes {
             let canary_reasons = match &canary {
                 Some(c) => reasons
                     .iter()
-                    .map(|base| Arc::new(Reason::Canary { key: c.key.clone(), share: c.share, instead_of: base.to_string() }))
+                    .map(|base| Arc::new(Reason::Canary { key: c.key.clone(), share: c.share, instead_of: base.route().to_owned() }))
                     .collect(),
                 None => Vec::new(),
             };

@@ -84,7 +84,8 @@ fn text(r: &AuditReport) -> String {
     if r.violations.is_empty() {
         out.push_str("verdict: passes\n");
     } else {
-        out.push_str(&format!("verdict: {} violation(s)\n", r.violations.len()));
+        let n = r.violations.len();
+        out.push_str(&format!("verdict: {n} violation{}\n", if n == 1 { "" } else { "s" }));
         for v in &r.violations {
             out.push_str(&format!("  - {v}\n"));
         }

@@ -30,9 +30,10 @@ const ZONE: &str = "Europe/Oslo";
 /// Serve the demo store and score the built-in EV-charging plug-ins.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The demo store (`cargo xtask build` assembles it in target/paddock/store).
-    #[arg(long, default_value = "target/paddock/store", value_name = "DIR")]
-    store: PathBuf,
+    /// The demo store [default: target/paddock/store of the paddock clone
+    /// this binary was built in, as `cargo xtask demo` assembles it].
+    #[arg(long, value_name = "DIR")]
+    store: Option<PathBuf>,
     /// Print the results as JSON.
     #[arg(long)]
     json: bool,
@@ -68,18 +69,40 @@ fn routed_model(registry: &Registry, name: &str, context: &paddock_host::Context
     registry.model(name, &version).with_context(|| format!("{name} {version} is not loaded"))
 }
 
+/// The store to serve: the one given, else the demo store of the clone
+/// this binary was built in (found from its own path, so the demo runs from
+/// any directory), else the current directory's.
+fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
+    let has_routes = |p: &std::path::Path| p.join(paddock_host::registry::ROUTES_FILE).exists();
+    if let Some(store) = given {
+        anyhow::ensure!(
+            has_routes(&store),
+            "{} is not a store with routes (build the demo store with `cargo xtask demo` in a paddock clone)",
+            store.display()
+        );
+        return Ok(store);
+    }
+    // The binary lives in <clone>/target/<profile>/paddock.
+    let beside_binary = std::env::current_exe().ok().and_then(|exe| Some(exe.parent()?.parent()?.join("paddock/store")));
+    let candidates: Vec<PathBuf> = beside_binary.into_iter().chain([PathBuf::from("target/paddock/store")]).collect();
+    match candidates.iter().find(|c| has_routes(c)) {
+        Some(found) => Ok(found.clone()),
+        None => anyhow::bail!(
+            "the demo store is not built yet: run `cargo xtask demo` in the paddock clone (it builds the store into target/paddock/store), or pass --store DIR"
+        ),
+    }
+}
+
 /// Opens the store, scores the plug-ins, prints a table.
 pub fn run(args: Args) -> Result<Outcome> {
     let runtime = Runtime::new()?;
-    if !args.store.join(paddock_host::registry::ROUTES_FILE).exists() {
-        anyhow::bail!("the demo needs the demo store in {} (run `cargo xtask demo`)", args.store.display());
-    }
+    let store = demo_store(args.store.clone())?;
     // The demo shows this run's figures: it keeps no usage file (and so
     // also runs beside a host serving the same store).
     let options = paddock_host::RegistryOptions { usage_flush: None, ..paddock_host::RegistryOptions::default() };
-    let registry = Registry::open(&runtime, &args.store, options)?;
+    let registry = Registry::open(&runtime, &store, options)?;
     let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
-    anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), args.store.display());
+    anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), store.display());
     let zone = TimeZone::get(ZONE)?;
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
@@ -143,7 +166,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         })
         .collect();
     println!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)");
-    println!("times in {ZONE}; store {}\n", args.store.display());
+    println!("times in {ZONE}; store {}\n", store.display());
     print!(
         "{}",
         text_table(&["site", "region", "plug-in", "charging", "answered by", "overstay risk", "answered by"], &rows)
@@ -163,7 +186,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     println!(
         "{} versions loaded, each in its own sandbox; `paddock serve --store {}` serves the same store over HTTP",
         status.artifacts.len(),
-        args.store.display()
+        store.display()
     );
     Ok(Outcome::Ok)
 }

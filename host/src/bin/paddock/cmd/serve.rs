@@ -57,7 +57,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     let registry = args.store.open()?;
     let refused = registry.status().problems().count();
     if refused > 0 {
-        eprintln!("warning: {refused} artifact(s) not loaded as they are on disk; see GET /v1/status or `paddock status`");
+        let what = if refused == 1 { "1 artifact is" } else { &format!("{refused} artifacts are") };
+        eprintln!("warning: {what} not loaded as on disk; see GET /v1/status or `paddock status`");
     }
     let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
     let defaults = ServeOptions::default();
