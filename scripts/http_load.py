@@ -3,6 +3,8 @@
 
     python3 scripts/http_load.py load [SECONDS]     single-row and 64-row requests (default 15 s each)
     python3 scripts/http_load.py soak [REQUESTS]    REQUESTS (default 1 000 000) with 100 swaps under way
+    python3 scripts/http_load.py isolation [SECONDS] a healthy model's latency while another spins, before/after
+    python3 scripts/http_load.py unknown [REQUESTS]  RSS across REQUESTS (default 100 000) naming unknown models
 
 Needs `cargo xtask build` first (the demo store) and wrk (Debian package
 `wrk`; installed with apt-get when missing). Builds the release binary,
@@ -257,6 +259,150 @@ def soak(total):
         raise SystemExit("soak failed")
 
 
+# The last commit before the scoring pool and the unknown-name check
+# (issue 11): the "before" of the isolation and unknown-name figures.
+BEFORE = "5315b94"
+SPIN_MODE = b"\x01"  # tests/fixtures/affine.wat mode 1: `score` never returns
+
+
+def build_before():
+    """The release binary of BEFORE, built in a worktree of its own."""
+    base = os.path.join(ROOT, "target", "bench-before")
+    src = os.path.join(base, "src")
+    if not os.path.exists(src):
+        os.makedirs(base, exist_ok=True)
+        subprocess.run(["git", "worktree", "add", "--detach", src, BEFORE], cwd=ROOT, check=True,
+                       stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    env = dict(os.environ, CARGO_TARGET_DIR=os.path.join(base, "target"))
+    subprocess.run(["cargo", "build", "--release", "-q", "-p", "paddock-host", "--bin", "paddock"], cwd=src, env=env, check=True)
+    return os.path.join(base, "target", "release", "paddock")
+
+
+def make_spin_store(binary, dir):
+    """overstay-risk (healthy) and affine (spins until its deadline)."""
+    make_store(dir)
+    os.makedirs(os.path.join(dir, "affine"))
+    params = os.path.join(dir, ".spin.params")
+    with open(params, "wb") as f:
+        f.write(SPIN_MODE)
+    subprocess.run([binary, "pack", os.path.join(ROOT, "tests", "fixtures", "affine.wat"), "--params", params,
+                    "--out", os.path.join(dir, "affine", "1.0.0.wasm"), "--no-verify"],
+                   check=True, stdout=subprocess.DEVNULL)
+    os.remove(params)
+    write(os.path.join(dir, "routes.toml"), ROUTES.format(v="1.0.0") + '[models.affine]\ndefault = "1.0.0"\n')
+
+
+def spinners(base, clients, stop):
+    """`clients` threads each calling the spinning model back to back."""
+    body = json.dumps({"rows": [{"x": 1.0}]}).encode()
+
+    def loop():
+        while not stop.is_set():
+            req = urllib.request.Request(base + "/v1/models/affine/score", data=body,
+                                         headers={"Content-Type": "application/json"})
+            try:
+                urllib.request.urlopen(req, timeout=30).read()
+            except Exception:  # 500 (deadline) is the expected answer
+                pass
+
+    threads = [threading.Thread(target=loop) for _ in range(clients)]
+    for t in threads:
+        t.start()
+    return threads
+
+
+def isolation(seconds):
+    after, before = build(), build_before()
+    rows = []
+    for label, binary in (("before (scoring on the async workers)", before), ("after (scoring pool)", after)):
+        with tempfile.TemporaryDirectory() as store:
+            make_spin_store(after, store)
+            server = Server(binary, store)
+            try:
+                url = server.base + "/v1/models/overstay-risk/score"
+                wrk(url, 1, 2, connections=4)  # warm-up
+                alone = wrk(url, 1, seconds, connections=4)
+                stop = threading.Event()
+                threads = spinners(server.base, 4, stop)
+                time.sleep(1)  # let the spinning calls take every permit
+                spun = wrk(url, 1, seconds, connections=4)
+                stop.set()
+                for t in threads:
+                    t.join()
+            finally:
+                server.stop()
+        rows.append(f"| {label} | {alone['p50_ms']:.2f} ms | {alone['p99_ms']:.2f} ms | {spun['p50_ms']:.2f} ms | "
+                    f"{spun['p99_ms']:.2f} ms | {spun['rps']:,.0f} |")
+    replace_section("http-isolation", [
+        "## HTTP: one model spinning, another served",
+        "",
+        f"`python3 scripts/http_load.py isolation {seconds}`: `paddock serve` (release, default options: 2 async",
+        "workers and a per-model concurrency of 2 on this machine) serving `overstay-risk` (healthy) and",
+        "`affine` in its spinning mode (`score` never returns; stopped at the default 50 ms deadline). wrk",
+        f"drives the healthy model with 4 connections for {seconds} s, first alone, then while 4 clients call",
+        f"the spinning model back to back (its 2 permits always taken, the rest queued). \"Before\" is commit",
+        f"{BEFORE}, built in the same run. Machine: {machine()}.",
+        "",
+        "| server | healthy alone p50 | alone p99 | while the other spins p50 | spinning p99 | requests/s while spinning |",
+        "|---|---|---|---|---|---|",
+        *rows,
+    ])
+
+
+def unknown(total):
+    after, before = build(), build_before()
+    lines = []
+    for label, binary in (("before", before), ("after", after)):
+        with tempfile.TemporaryDirectory() as store:
+            make_store(store)
+            server = Server(binary, store)
+            try:
+                lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
+                lua.write('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n')
+                lua.write('wrk.body = \'{"rows": [{"x": 1}]}\'\n')
+                lua.write('counter = 0\nrequest = function()\n  counter = counter + 1\n'
+                          '  return wrk.format(nil, "/v1/models/no-such-model-" .. math.random(1, 2000000000) .. "-" .. counter .. "/score")\nend\n')
+                lua.close()
+
+                def run(seconds):
+                    out = subprocess.run(["wrk", "-t", "2", "-c", "16", "-d", f"{seconds}s", "-s", lua.name, server.base],
+                                         capture_output=True, text=True, check=True).stdout
+                    return int(re.search(r"(\d+) requests in", out).group(1)), out
+
+                warm, _ = run(2)
+                rss_warm = server.rss_kib()
+                rate = warm / 2
+                sent = warm
+                samples = [rss_warm]
+                while sent < total:
+                    n, _ = run(max(1, min(10, int((total - sent) / rate) + 1)))
+                    sent += n
+                    samples.append(server.rss_kib())
+                os.unlink(lua.name)
+            finally:
+                server.stop()
+        growth = (samples[-1] - rss_warm) / rss_warm
+        lines.append(f"| {label} | {sent:,} | {rss_warm / 1024:.1f} MiB | {max(samples) / 1024:.1f} MiB | "
+                     f"{samples[-1] / 1024:.1f} MiB | {growth * 100:+.1f} % |")
+        if label == "after" and abs(growth) > 0.05:
+            raise SystemExit(f"RSS grew {growth * 100:.1f} % across {sent} unknown-model requests")
+    replace_section("http-unknown", [
+        "## HTTP: requests naming models that do not exist",
+        "",
+        f"`python3 scripts/http_load.py unknown {total}`: at least {total:,} POSTs to",
+        "`/v1/models/<a new random name each time>/score` (wrk, 2 threads, 16 connections) against `paddock",
+        "serve` on the `overstay-risk` store; the server's RSS read from /proc after a 2 s warm-up and after",
+        f"each burst. \"Before\" is commit {BEFORE}, built in the same run. Machine: {machine()}.",
+        "",
+        "| server | requests | RSS after warm-up | max | end | end vs warm-up |",
+        "|---|---|---|---|---|---|",
+        *lines,
+        "",
+        "After the change a name no model has is answered 404 before anything is kept for it: RSS stays within",
+        "5 % (the script fails otherwise).",
+    ])
+
+
 def main():
     ensure_wrk()
     mode = sys.argv[1] if len(sys.argv) > 1 else "load"
@@ -264,6 +410,10 @@ def main():
         load(int(sys.argv[2]) if len(sys.argv) > 2 else 15)
     elif mode == "soak":
         soak(int(sys.argv[2]) if len(sys.argv) > 2 else 1_000_000)
+    elif mode == "isolation":
+        isolation(int(sys.argv[2]) if len(sys.argv) > 2 else 10)
+    elif mode == "unknown":
+        unknown(int(sys.argv[2]) if len(sys.argv) > 2 else 100_000)
     else:
         raise SystemExit(__doc__)
 

@@ -467,3 +467,105 @@ fn a_python_guest_scores_only_under_wasi() {
     // SciPy's quad gives 398.21580754150… for this row (tests/guests/taper_reference.py, its first row).
     assert!((line["session_minutes"].as_f64().unwrap() - 398.215_807_541_5).abs() < 1e-6, "{line}");
 }
+
+/// `paddock serve` on a copy of the demo store's overstay-risk versions,
+/// its address read from its first line.
+struct Served {
+    child: std::process::Child,
+    base: String,
+}
+
+impl Served {
+    fn start(store: &Path, state: &Path) -> Served {
+        use std::io::BufRead;
+        let mut child = Command::new(env!("CARGO_BIN_EXE_paddock"))
+            .args(["serve", "--listen", "127.0.0.1:0", "--usage-every-secs", "1", "--store"])
+            .arg(store)
+            .arg("--state")
+            .arg(state)
+            .stdout(std::process::Stdio::piped())
+            .stderr(std::process::Stdio::null())
+            .spawn()
+            .unwrap();
+        let mut line = String::new();
+        std::io::BufReader::new(child.stdout.take().unwrap()).read_line(&mut line).unwrap();
+        let base = line.trim().strip_prefix("listening on ").unwrap_or_else(|| panic!("{line:?}")).to_owned();
+        Served { child, base }
+    }
+
+    fn score(&self) {
+        let body = r#"{"rows": [{"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}]}"#;
+        let agent = ureq::Agent::config_builder().http_status_as_error(false).build().new_agent();
+        let mut r = agent.post(&format!("{}/v1/models/overstay-risk/score", self.base)).header("content-type", "application/json").send(body).unwrap();
+        assert_eq!(r.status().as_u16(), 200, "{}", r.body_mut().read_to_string().unwrap());
+    }
+}
+
+impl Drop for Served {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// Calls of overstay-risk in a usage file, 0 while there is none.
+fn calls_in(state: &Path) -> u64 {
+    let Ok(bytes) = std::fs::read(state.join("usage.json")) else { return 0 };
+    let saved: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
+    saved["usage"]["versions"].as_array().unwrap().iter().filter(|v| v["model"] == "overstay-risk").map(|v| v["calls"].as_u64().unwrap()).sum()
+}
+
+#[test]
+fn a_killed_server_loses_at_most_one_flush_of_usage_and_a_second_one_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    let state = dir.path().join("state");
+    let demo = root().join("target/paddock/store/overstay-risk");
+    std::fs::create_dir_all(store.join("overstay-risk")).unwrap();
+    std::fs::copy(demo.join("1.0.0.wasm"), store.join("overstay-risk/1.0.0.wasm")).unwrap();
+    std::fs::write(store.join("routes.toml"), "[models.overstay-risk]\ndefault = \"1.0.0\"\n").unwrap();
+
+    let first = Served::start(&store, &state);
+    // A second server on the same state directory is refused, naming the first.
+    let second = Command::new(env!("CARGO_BIN_EXE_paddock"))
+        .args(["serve", "--listen", "127.0.0.1:0", "--store"])
+        .arg(&store)
+        .arg("--state")
+        .arg(&state)
+        .output()
+        .unwrap();
+    assert_eq!(second.status.code(), Some(1));
+    let err = text(&second.stderr);
+    assert!(err.contains(&format!("held by process {}", first.child.id())), "{err}");
+
+    for _ in 0..5 {
+        first.score();
+    }
+    // Wait for the flush that carries all five (the server's own event: the
+    // file it writes every second), then kill it without a chance to write.
+    let give_up = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    while calls_in(&state) < 5 {
+        assert!(std::time::Instant::now() < give_up, "the usage file never showed the 5 calls");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    let mut first = first;
+    kill_9(&mut first.child);
+    assert_eq!(calls_in(&state), 5);
+
+    // Restarted, the server adds what the file holds: usage accumulates.
+    let again = Served::start(&store, &state);
+    again.score();
+    let give_up = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    while calls_in(&state) < 6 {
+        assert!(std::time::Instant::now() < give_up, "the restarted server's usage file never showed 6 calls");
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+    assert_eq!(calls_in(&state), 6);
+}
+
+/// SIGKILL: the process gets no chance to flush anything.
+fn kill_9(child: &mut std::process::Child) {
+    // std's `Child::kill` sends SIGKILL on Unix.
+    child.kill().unwrap();
+    child.wait().unwrap();
+}

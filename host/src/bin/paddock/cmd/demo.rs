@@ -77,7 +77,7 @@ fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
     if let Some(store) = given {
         anyhow::ensure!(
             has_routes(&store),
-            "{} is not a store with routes (build the demo store with `cargo xtask demo` in a paddock clone)",
+            "{} is not a store with routes: run `cargo xtask demo` in a paddock clone to build the demo store there",
             store.display()
         );
         return Ok(store);
