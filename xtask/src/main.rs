@@ -49,36 +49,33 @@ fn main() -> Result<()> {
     let rest: Vec<String> = args.collect();
     let root = root()?;
     match task.as_str() {
-        "build" => build(&root),
+        "build" => build(&root).map(drop),
         "demo" => {
             // Only the guests the demo store is packed with: the others
             // (the ONNX evaluator above all) take most of a full build.
             ensure_target()?;
-            build_guests(&root, &DEMO_GUESTS)?;
-            // The trainer and the host in one build, so cargo keeps both cores busy.
-            let mut both = cargo(&root);
-            both.args(["build", "--quiet", "-p", "paddock-train-demo", "-p", "paddock-host"]);
-            run(both)?;
+            let guests = build_guests(&root, &DEMO_GUESTS)?;
+            let tools = tools(&root)?;
+            guests.finish()?;
             let out = root.join("target/paddock");
             let train = out.join("train");
             std::fs::create_dir_all(&train).with_context(|| format!("creating {}", train.display()))?;
-            train_demo(&root, &train)?;
-            demo_store(&root, &out.join("guests"), &train.join("store"), &out.join("store"))?;
+            train_demo(&tools, &train)?;
+            demo_store(&root, &tools, &out.join("guests"), &train.join("store"), &out.join("store"))?;
             let store = out.join("store");
-            let mut cmd = cargo(&root);
-            cmd.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "demo", "--store"]);
-            cmd.arg(&store).args(&rest);
+            let mut cmd = Command::new(&tools.paddock);
+            cmd.arg("demo").arg("--store").arg(&store).args(&rest);
             run(cmd)
         }
         "guests" => {
-            build(&root)?;
+            let tools = build(&root)?;
             python_packages()?;
-            foreign_guests(&root)
+            foreign_guests(&root, &tools)
         }
         "test" => {
-            build(&root)?;
+            let tools = build(&root)?;
             python_packages()?;
-            foreign_guests(&root)?;
+            foreign_guests(&root, &tools)?;
             // scikit-learn's reference models and predictions, for tests/sklearn.rs.
             let mut export = Command::new("python3");
             export.arg(root.join("tests/sklearn/export.py")).arg(root.join("target/paddock/sklearn"));
@@ -95,7 +92,7 @@ fn main() -> Result<()> {
                 cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
                 run(cmd)?;
             }
-            api_check(&root)
+            api_check(&root, &tools)
         }
         "fuzz" => {
             build(&root)?;
@@ -151,8 +148,21 @@ fn ensure_target() -> Result<()> {
 /// The guests the demo store is packed with.
 const DEMO_GUESTS: [(&str, &str); 2] = [("paddock-model-linear", "paddock_model_linear"), ("paddock-model-trees", "paddock_model_trees")];
 
-/// Builds `guests` for wasm32 and copies them to `target/paddock/guests/`.
-fn build_guests(root: &Path, guests: &[(&str, &str)]) -> Result<()> {
+/// Where guests are built: a target directory of their own, so that their
+/// build runs beside the host's instead of waiting for its lock.
+const GUEST_TARGET_DIR: &str = "target/guests";
+
+/// A guest build running in the background; [`GuestBuild::finish`] waits
+/// for it and copies the guests to `target/paddock/guests/`.
+struct GuestBuild<'a> {
+    root: PathBuf,
+    guests: &'a [(&'a str, &'a str)],
+    children: Vec<(std::process::Child, String)>,
+}
+
+/// Starts building `guests` for wasm32 (one cargo per profile).
+fn build_guests<'a>(root: &Path, guests: &'a [(&'a str, &'a str)]) -> Result<GuestBuild<'a>> {
+    let mut children = Vec::new();
     for profile in ["wasm", SMALL_PROFILE] {
         let packages: Vec<&str> =
             guests.iter().map(|(p, _)| *p).filter(|p| (profile == SMALL_PROFILE) == SMALL.contains(p)).collect();
@@ -160,33 +170,66 @@ fn build_guests(root: &Path, guests: &[(&str, &str)]) -> Result<()> {
             continue;
         }
         let mut cmd = cargo(root);
+        cmd.env("CARGO_TARGET_DIR", root.join(GUEST_TARGET_DIR));
         cmd.args(["build", "--quiet", "--profile", profile, "--target", TARGET]);
         for package in packages {
             cmd.args(["-p", package]);
         }
-        run(cmd)?;
+        let child = cmd.spawn().with_context(|| format!("starting {cmd:?}"))?;
+        children.push((child, format!("{cmd:?}")));
     }
-    let dir = root.join("target/paddock/guests");
-    std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
-    for (package, stem) in guests {
-        let profile = if SMALL.contains(package) { SMALL_PROFILE } else { "wasm" };
-        let built = root.join(format!("target/{TARGET}/{profile}/{stem}.wasm"));
-        let copy = dir.join(format!("{package}.wasm"));
-        std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
+    Ok(GuestBuild { root: root.to_owned(), guests, children })
+}
+
+impl GuestBuild<'_> {
+    fn finish(self) -> Result<()> {
+        for (mut child, what) in self.children {
+            let status = child.wait().with_context(|| format!("waiting for {what}"))?;
+            if !status.success() {
+                bail!("{what} failed with {status}");
+            }
+        }
+        let dir = self.root.join("target/paddock/guests");
+        std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
+        for (package, stem) in self.guests {
+            let profile = if SMALL.contains(package) { SMALL_PROFILE } else { "wasm" };
+            let built = self.root.join(format!("{GUEST_TARGET_DIR}/{TARGET}/{profile}/{stem}.wasm"));
+            let copy = dir.join(format!("{package}.wasm"));
+            std::fs::copy(&built, &copy).with_context(|| format!("copying {}", built.display()))?;
+        }
+        Ok(())
     }
-    Ok(())
+}
+
+/// The `paddock` command and the demo trainer, built once in one cargo
+/// invocation (one feature set: separate `cargo run`s of each would build
+/// wasmtime twice).
+struct Tools {
+    paddock: PathBuf,
+    trainer: PathBuf,
+}
+
+fn tools(root: &Path) -> Result<Tools> {
+    let mut cmd = cargo(root);
+    cmd.args(["build", "--quiet", "-p", "paddock-host", "-p", "paddock-train-demo", "--bins"]);
+    run(cmd)?;
+    let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);
+    let exe = |name: &str| target.join("debug").join(format!("{name}{}", std::env::consts::EXE_SUFFIX));
+    Ok(Tools { paddock: exe("paddock"), trainer: exe("paddock-train-demo") })
 }
 
 /// Trains the demo models into `train`.
-fn train_demo(root: &Path, train: &Path) -> Result<()> {
-    let mut trainer = cargo(root);
-    trainer.args(["run", "--quiet", "-p", "paddock-train-demo", "--"]).arg(train);
+fn train_demo(tools: &Tools, train: &Path) -> Result<()> {
+    let mut trainer = Command::new(&tools.trainer);
+    trainer.arg(train);
     run(trainer)
 }
 
-fn build(root: &Path) -> Result<()> {
+fn build(root: &Path) -> Result<Tools> {
     ensure_target()?;
-    build_guests(root, &GUESTS)?;
+    let guest_build = build_guests(root, &GUESTS)?;
+    let tools = tools(root)?;
+    guest_build.finish()?;
     let out = root.join("target/paddock");
     let guests = out.join("guests");
     let train = out.join("train");
@@ -194,22 +237,23 @@ fn build(root: &Path) -> Result<()> {
     for dir in [&train, &artifacts] {
         std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     }
-    train_demo(root, &train)?;
+    train_demo(&tools, &train)?;
     for model in ["charge-minutes", "overstay-risk"] {
-        let mut pack = cargo(root);
-        pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]);
+        let mut pack = Command::new(&tools.paddock);
+        pack.arg("pack");
         pack.arg(guests.join(format!("{model}.wasm")));
         pack.arg("--params").arg(train.join(format!("{model}.params")));
         pack.arg("--checks").arg(train.join(format!("{model}.checks.json")));
         pack.arg("--out").arg(artifacts.join(format!("{model}.wasm")));
         run(pack)?;
     }
-    demo_store(root, &guests, &train.join("store"), &out.join("store"))
+    demo_store(root, &tools, &guests, &train.join("store"), &out.join("store"))?;
+    Ok(tools)
 }
 
 /// Packs the demo store's versions (params carrying their own contract) with
 /// the generic guests, and copies its routes file.
-fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Result<()> {
+fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: &Path) -> Result<()> {
     for (model, guest) in [("charge-minutes", "paddock-model-trees"), ("overstay-risk", "paddock-model-linear")] {
         let dir = store.join(model);
         std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
@@ -219,8 +263,8 @@ fn demo_store(root: &Path, guests: &Path, trained: &Path, store: &Path) -> Resul
             .collect();
         versions.sort();
         for version in versions {
-            let mut pack = cargo(root);
-            pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]);
+            let mut pack = Command::new(&tools.paddock);
+            pack.arg("pack");
             pack.arg(guests.join(format!("{guest}.wasm")));
             pack.arg("--params").arg(trained.join(model).join(format!("{version}.params")));
             pack.arg("--checks").arg(trained.join(model).join(format!("{version}.checks.json")));
@@ -256,7 +300,7 @@ const PYTHON_GUESTS: [(&str, &str, &str, bool); 2] = [
 /// `target/paddock/artifacts/`: componentize-py and componentize-js make
 /// the components, `paddock pack --wasi` adds the params and SciPy's
 /// reference values as checks, and runs them.
-fn foreign_guests(root: &Path) -> Result<()> {
+fn foreign_guests(root: &Path, tools: &Tools) -> Result<()> {
     let out = root.join("target/paddock");
     let components = out.join("components");
     let reference = out.join("reference");
@@ -306,19 +350,19 @@ fn foreign_guests(root: &Path) -> Result<()> {
     let os = |s: &str| OsString::from(s);
     for name in taper {
         let args = vec![os("--wasi"), os("--params"), params.clone().into(), os("--checks"), checks.clone().into()];
-        pack_with(root, &components.join(format!("{name}.wasm")), args, &artifacts.join(format!("{name}.wasm")))?;
+        pack_with(tools, &components.join(format!("{name}.wasm")), args, &artifacts.join(format!("{name}.wasm")))?;
     }
     // The Rust version of the same model (its params compiled in), with the
     // same checks: the baseline the others are measured against.
     let rust = out.join("guests/charge-taper.wasm");
-    pack_with(root, &rust, vec![os("--checks"), checks.clone().into()], &artifacts.join("charge-taper-rs.wasm"))?;
-    pack_with(root, &components.join("wasi-probe.wasm"), vec![os("--wasi")], &artifacts.join("wasi-probe.wasm"))
+    pack_with(tools, &rust, vec![os("--checks"), checks.clone().into()], &artifacts.join("charge-taper-rs.wasm"))?;
+    pack_with(tools, &components.join("wasi-probe.wasm"), vec![os("--wasi")], &artifacts.join("wasi-probe.wasm"))
 }
 
 /// `paddock pack INPUT ARGS --out OUT`.
-fn pack_with(root: &Path, input: &Path, args: Vec<OsString>, out: &Path) -> Result<()> {
-    let mut pack = cargo(root);
-    pack.args(["run", "--quiet", "-p", "paddock-host", "--bin", "paddock", "--", "pack"]).arg(input).args(args);
+fn pack_with(tools: &Tools, input: &Path, args: Vec<OsString>, out: &Path) -> Result<()> {
+    let mut pack = Command::new(&tools.paddock);
+    pack.arg("pack").arg(input).args(args);
     pack.arg("--out").arg(out);
     run(pack)
 }
@@ -333,13 +377,10 @@ fn python_packages() -> Result<()> {
 /// The HTTP API against outside tools (`tests/api/check_api.py`):
 /// schemathesis on the served OpenAPI document, and the OpenMetrics parser
 /// on `/metrics`.
-fn api_check(root: &Path) -> Result<()> {
-    let mut build = cargo(root);
-    build.args(["build", "--quiet", "-p", "paddock-host", "--bin", "paddock"]);
-    run(build)?;
+fn api_check(root: &Path, tools: &Tools) -> Result<()> {
     let mut check = Command::new("python3");
     check.arg(root.join("tests/api/check_api.py"));
-    check.arg(root.join("target/debug/paddock")).arg(root.join("target/paddock/store")).arg("50");
+    check.arg(&tools.paddock).arg(root.join("target/paddock/store")).arg("50");
     run(check)
 }
 
