@@ -142,6 +142,8 @@ fn scoring_answers_with_estimates_version_route_and_usage() {
     assert_eq!(v["reason"]["by"], "default");
     assert_eq!(v["estimates"], serde_json::json!([{"y": 3.0}, {"y": 6.0}]));
     assert_eq!(v["usage"]["rows"], 2);
+    // Durations carry their unit in the field's name.
+    assert!(v["usage"]["wall_us"].as_f64().unwrap() > 0.0, "{v}");
     assert!(v["digest"].as_str().unwrap().starts_with("sha256:"));
 }
 

@@ -127,6 +127,18 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
     assert!((0.0..=1.0).contains(&p));
     assert_eq!(lines[1]["row"], 2);
     assert!(lines[1]["error"].as_str().unwrap().starts_with("row 2: not JSON"));
+    // Keys in a fixed order: the row, then the outputs in contract order.
+    assert!(text(&out.stdout).starts_with("{\"row\":1,\"overstay_probability\":"), "{}", text(&out.stdout));
+}
+
+#[test]
+fn a_file_error_names_the_file_and_says_the_cause_once() {
+    let out = paddock(&["check", "/nonexistent/model.wasm"], None);
+    assert_eq!(out.status.code(), Some(1));
+    let err = text(&out.stderr);
+    assert!(err.contains("/nonexistent/model.wasm"), "{err}");
+    assert_eq!(err.matches("No such file or directory").count(), 1, "{err}");
+    assert_eq!(err.lines().count(), 1, "{err}");
 }
 
 #[test]
@@ -211,6 +223,10 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let out = paddock(&["demo", "--store", store.to_str().unwrap(), "--json"], None);
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["answers"].as_array().unwrap().len(), 10);
+    // Machine-readable fields carry names, not prose with backticks.
+    let canary = v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["by"] == "canary").unwrap();
+    assert_eq!(canary["minutes_reason"]["instead_of"], "weekend", "{canary}");
+    assert!(!v.to_string().contains('`'), "{v}");
 
     // A host keeps its ledger across runs; `paddock usage` reads it.
     let state = tempfile::tempdir().unwrap();

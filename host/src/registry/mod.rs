@@ -1063,3 +1063,14 @@ fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, digest: Opt
         code: None,
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_refusal_names_its_stage_in_words() {
+        let r = Refusal { stage: Stage::Checks, reason: "3 of 40 checks failed".into() };
+        assert_eq!(r.to_string(), "refused at its checks: 3 of 40 checks failed");
+    }
+}

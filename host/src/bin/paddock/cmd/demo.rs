@@ -47,10 +47,11 @@ struct Answer {
     plugged_in: String,
     minutes: f64,
     minutes_version: String,
-    minutes_reason: String,
+    /// Why that version (structured: `by`, and the rule or canary).
+    minutes_reason: std::sync::Arc<paddock_host::registry::Reason>,
     overstay_probability: f64,
     overstay_version: String,
-    overstay_reason: String,
+    overstay_reason: std::sync::Arc<paddock_host::registry::Reason>,
 }
 
 /// Builds a model's row from named text cells, taking only its features.
@@ -134,10 +135,10 @@ pub fn run(args: Args) -> Result<Outcome> {
             plugged_in: format!("{} {:02}:{:02}", DAYS[hour_of_week as usize / 24], local.hour(), local.minute()),
             minutes,
             minutes_version: m.version.to_string(),
-            minutes_reason: m.reason.to_string(),
+            minutes_reason: m.reason.clone(),
             overstay_probability: o.estimates.row(0)[0],
             overstay_version: o.version.to_string(),
-            overstay_reason: o.reason.to_string(),
+            overstay_reason: o.reason.clone(),
         });
     }
     registry.drain_shadows(Duration::from_secs(10));
