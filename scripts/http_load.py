@@ -33,6 +33,7 @@ import sys
 import tempfile
 import threading
 import time
+import urllib.error
 import urllib.request
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
@@ -369,15 +370,23 @@ def unknown(total):
                                          capture_output=True, text=True, check=True).stdout
                     return int(re.search(r"(\d+) requests in", out).group(1)), out
 
-                warm, _ = run(2)
+                # Warm-up: 500 requests one by one, then the baseline.
+                for i in range(500):
+                    req = urllib.request.Request(f"{server.base}/v1/models/warm-up-{i}/score", data=b'{"rows": [{"x": 1}]}',
+                                                 headers={"Content-Type": "application/json"})
+                    try:
+                        urllib.request.urlopen(req).read()
+                    except urllib.error.HTTPError:
+                        pass  # 404: the expected answer
                 rss_warm = server.rss_kib()
-                rate = warm / 2
-                sent = warm
                 samples = [rss_warm]
+                sent, seconds = 0, 1
                 while sent < total:
-                    n, _ = run(max(1, min(10, int((total - sent) / rate) + 1)))
+                    n, _ = run(seconds)
                     sent += n
                     samples.append(server.rss_kib())
+                    rate = n / seconds
+                    seconds = max(1, min(10, int((total - sent) / rate) + 1))
                 os.unlink(lua.name)
             finally:
                 server.stop()
@@ -391,8 +400,9 @@ def unknown(total):
         "",
         f"`python3 scripts/http_load.py unknown {total}`: at least {total:,} POSTs to",
         "`/v1/models/<a new random name each time>/score` (wrk, 2 threads, 16 connections) against `paddock",
-        "serve` on the `overstay-risk` store; the server's RSS read from /proc after a 2 s warm-up and after",
-        f"each burst. \"Before\" is commit {BEFORE}, built in the same run. Machine: {machine()}.",
+        "serve` on the `overstay-risk` store; the server's RSS read from /proc after a warm-up of 500 such",
+        "requests and after each burst of wrk; the requests counted are those after the warm-up.",
+        f"\"Before\" is commit {BEFORE}, built in the same run. Machine: {machine()}.",
         "",
         "| server | requests | RSS after warm-up | max | end | end vs warm-up |",
         "|---|---|---|---|---|---|",
