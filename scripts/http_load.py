@@ -57,7 +57,7 @@ def ensure_wrk():
 
 
 def build():
-    subprocess.run(["cargo", "build", "--release", "-q", "-p", "paddock-host", "--bin", "paddock"], cwd=ROOT, check=True)
+    subprocess.run(["cargo", "build", "--release", "-q", "-p", "paddock-cli", "--bin", "paddock"], cwd=ROOT, check=True)
     return os.path.join(ROOT, "target", "release", "paddock")
 
 
@@ -275,7 +275,9 @@ def build_before():
         subprocess.run(["git", "worktree", "add", "--detach", src, BEFORE], cwd=ROOT, check=True,
                        stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     env = dict(os.environ, CARGO_TARGET_DIR=os.path.join(base, "target"))
-    subprocess.run(["cargo", "build", "--release", "-q", "-p", "paddock-host", "--bin", "paddock"], cwd=src, env=env, check=True)
+    # The command moved from paddock-host to its own crate, paddock-cli.
+    package = "paddock-cli" if os.path.exists(os.path.join(src, "cli", "Cargo.toml")) else "paddock-host"
+    subprocess.run(["cargo", "build", "--release", "-q", "-p", package, "--bin", "paddock"], cwd=src, env=env, check=True)
     return os.path.join(base, "target", "release", "paddock")
 
 

@@ -4,7 +4,7 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use paddock_host::table::{Columns, Format, TableError, records};
+use paddock_host::row_file::{Columns, Format, RowFileError, records};
 use paddock_host::{Bounds, Contract, Domain, Feature, Output, Schema};
 
 fn schema() -> Schema {
@@ -31,7 +31,7 @@ fuzz_target!(|data: &[u8]| {
         // Columns that are not features are refused whole; ignore them and
         // read on, so the records themselves are still fuzzed.
         let ignore = match records(data, format, &schema, Columns::default()) {
-            Err(TableError::UnknownColumns { columns, .. }) => columns,
+            Err(RowFileError::UnknownColumns { columns, .. }) => columns,
             _ => Vec::new(),
         };
         let Ok(records) = records(data, format, &schema, Columns { id: None, ignore: &ignore }) else { continue };

@@ -502,7 +502,10 @@ pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Resu
 
 /// Embeds the `estimator` world's component type into a core module.
 fn embed_world(module: &mut Vec<u8>) -> Result<(), ArtifactError> {
-    let fail = |e: anyhow::Error| ArtifactError::Componentize(format!("{e:#}"));
+    // `{:#}` prints the whole chain of wit-component's errors.
+    fn fail(e: impl std::fmt::Display) -> ArtifactError {
+        ArtifactError::Componentize(format!("{e:#}"))
+    }
     let mut resolve = wit_parser::Resolve::default();
     let package = resolve.push_str("estimator.wit", WIT).map_err(fail)?;
     let world = resolve.select_world(&[package], Some("estimator")).map_err(fail)?;

@@ -18,9 +18,6 @@ use crate::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
 use crate::trust::{Signature, TrustPolicy, Vouch};
 
-/// The wasmtime release this host is built on (keep in step with Cargo.toml).
-pub const WASMTIME_VERSION: &str = "48.0.8";
-
 /// Who vouches for the artifact.
 #[derive(Clone, Debug, Serialize)]
 pub struct TrustFinding {
@@ -125,7 +122,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         contract: None,
         limits: options.limits.clone(),
         engine: EngineFacts {
-            wasmtime: WASMTIME_VERSION,
+            wasmtime: crate::sandbox::WASMTIME_VERSION,
             stack_bytes: config.stack_bytes,
             canonical_nans: config.canonical_nans,
             interruption: format!("epoch, {} tick", fmt_duration(crate::sandbox::TICK)),

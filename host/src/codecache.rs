@@ -109,7 +109,7 @@ impl CodeCache {
         let mut key = KeyHasher(Sha256::new());
         key.0.update(FORMAT);
         key.0.update(artifact.digest().0);
-        key.0.update(crate::audit::WASMTIME_VERSION.as_bytes());
+        key.0.update(crate::sandbox::WASMTIME_VERSION.as_bytes());
         runtime.engine().precompile_compatibility_hash().hash(&mut key);
         let hex: String = key.0.finalize().iter().map(|b| format!("{b:02x}")).collect();
         self.dir.join(format!("{hex}.code"))

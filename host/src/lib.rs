@@ -57,7 +57,7 @@ pub mod registry;
 pub mod rows;
 pub mod sandbox;
 pub mod surface;
-pub mod table;
+pub mod row_file;
 pub mod trust;
 pub mod wasi;
 

@@ -21,6 +21,10 @@ use crate::contract::{Contract, Fault};
 use crate::limits::{LimitHit, Limits};
 use crate::wasi::{self, WasiPolicy, WasiState};
 
+/// The wasmtime release this host is built on, as the build resolved it
+/// (read from Cargo.lock by the build script; `unknown` when there was none).
+pub const WASMTIME_VERSION: &str = env!("PADDOCK_WASMTIME_VERSION");
+
 /// Bytes of each instance slot's memory kept resident between instances.
 const KEEP_RESIDENT: usize = 256 << 10;
 
@@ -454,5 +458,23 @@ fn classify(err: wasmtime::Error, runtime: &Runtime, store: &Store<State>) -> Sa
         }
         Some(trap) => SandboxError::Trap { message: trap.to_string() },
         None => SandboxError::Trap { message: format!("{err:#}") },
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    /// The version the audit names is the one cargo resolved: checked
+    /// against `cargo tree`, not against the file the build script read.
+    #[test]
+    fn the_wasmtime_version_is_the_one_cargo_resolved() {
+        let cargo = std::env::var("CARGO").unwrap_or_else(|_| "cargo".into());
+        let out = std::process::Command::new(cargo)
+            .args(["tree", "--offline", "-i", "wasmtime", "--depth", "0", "--prefix", "none", "--manifest-path"])
+            .arg(concat!(env!("CARGO_MANIFEST_DIR"), "/Cargo.toml"))
+            .output()
+            .unwrap();
+        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        let text = String::from_utf8(out.stdout).unwrap();
+        assert_eq!(text.trim(), format!("wasmtime v{}", super::WASMTIME_VERSION));
     }
 }

@@ -13,7 +13,9 @@
 //!   Python and JavaScript `charge-taper` guests and the WASI probe with
 //!   componentize-py and componentize-js, and packs them (under a WASI
 //!   policy) with SciPy's reference values as their checks.
-//! - `test`: `build` and `guests`; exports scikit-learn's reference models;
+//! - `deps`: checks that the library an embedder links (`paddock-host`
+//!   without default features) pulls in none of the command's crates.
+//! - `test`: `deps`, `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
 //!   OpenMetrics parser (`tests/api/check_api.py`).
@@ -73,6 +75,7 @@ fn main() -> Result<()> {
             foreign_guests(&root, &tools)
         }
         "test" => {
+            library_deps(&root)?;
             let tools = build(&root)?;
             python_packages()?;
             foreign_guests(&root, &tools)?;
@@ -94,13 +97,14 @@ fn main() -> Result<()> {
             }
             api_check(&root, &tools)
         }
+        "deps" => library_deps(&root),
         "fuzz" => {
             build(&root)?;
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
             fuzz(&root, seconds)
         }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|guests|test|fuzz> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
@@ -211,7 +215,7 @@ struct Tools {
 
 fn tools(root: &Path) -> Result<Tools> {
     let mut cmd = cargo(root);
-    cmd.args(["build", "--quiet", "-p", "paddock-host", "-p", "paddock-train-demo", "--bins"]);
+    cmd.args(["build", "--quiet", "-p", "paddock-cli", "-p", "paddock-train-demo", "--bins"]);
     run(cmd)?;
     let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);
     let exe = |name: &str| target.join("debug").join(format!("{name}{}", std::env::consts::EXE_SUFFIX));
@@ -372,6 +376,40 @@ fn python_packages() -> Result<()> {
     let mut pip = Command::new("python3");
     pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
     run(pip).context("installing the tests' Python packages (needs python3 with pip)")
+}
+
+/// Crates only the `paddock` command needs, which the library an embedder
+/// links must not pull in.
+const CLI_ONLY: [&str; 4] = ["clap", "indicatif", "tracing-subscriber", "anyhow"];
+
+/// Checks what `paddock-host` without its default features links: none of
+/// [`CLI_ONLY`] anywhere in its tree, except `anyhow`, which wasmtime and
+/// wit-component use for their own errors: the library must not depend on
+/// it directly.
+fn library_deps(root: &Path) -> Result<()> {
+    let tree = |depth: Option<&str>| -> Result<Vec<String>> {
+        let mut cmd = cargo(root);
+        cmd.args(["tree", "-p", "paddock-host", "--no-default-features", "-e", "normal", "--prefix", "none"]);
+        if let Some(d) = depth {
+            cmd.args(["--depth", d]);
+        }
+        let out = cmd.output().with_context(|| format!("starting {cmd:?}"))?;
+        if !out.status.success() {
+            bail!("{cmd:?} failed: {}", String::from_utf8_lossy(&out.stderr));
+        }
+        Ok(String::from_utf8_lossy(&out.stdout).lines().filter_map(|l| l.split_whitespace().next()).map(str::to_owned).collect())
+    };
+    let all = tree(None)?;
+    let direct = tree(Some("1"))?;
+    let mut found: Vec<&str> = CLI_ONLY.iter().copied().filter(|c| *c != "anyhow" && all.iter().any(|n| n == c)).collect();
+    if direct.iter().any(|n| n == "anyhow") {
+        found.push("anyhow (as a direct dependency)");
+    }
+    if !found.is_empty() {
+        bail!("paddock-host without default features links crates only the command needs: {}", found.join(", "));
+    }
+    eprintln!("xtask: paddock-host links none of {} (anyhow only through wasmtime and wit-component)", CLI_ONLY.join(", "));
+    Ok(())
 }
 
 /// The HTTP API against outside tools (`tests/api/check_api.py`):

@@ -8,7 +8,7 @@ use paddock_host::CodeSource;
 use paddock_host::registry::{ArtifactState, RoutesState};
 
 use crate::Outcome;
-use crate::common::{StoreArgs, print_json, table};
+use crate::common::{StoreArgs, print_json, text_table};
 
 /// Load a store and list what it would serve and what it refuses.
 #[derive(clap::Args)]
@@ -55,7 +55,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             })
             .collect();
         println!("store {} (generation {})\n", status.store.display(), status.generation);
-        print!("{}", table(&["artifact", "digest", "state", "used by", "checks", "code"], &rows));
+        print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code"], &rows));
         match &status.routes {
             RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_host::registry::ROUTES_FILE),
             RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_host::registry::ROUTES_FILE),

@@ -202,7 +202,7 @@ pub fn print_json<T: serde::Serialize>(value: &T) -> Result<()> {
 }
 
 /// Lays out rows of cells as a plain text table with a header rule.
-pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
+pub fn text_table(header: &[&str], rows: &[Vec<String>]) -> String {
     let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
     for row in rows {
         for (w, cell) in widths.iter_mut().zip(row) {
@@ -248,13 +248,13 @@ pub fn contract_text(c: &paddock_host::Contract) -> String {
             vec![i.to_string(), f.name.clone(), f.domain.to_string(), opt(&f.unit), req.into(), f.about.clone()]
         })
         .collect();
-    out.push_str(&format!("\nfeatures\n{}", table(&["#", "name", "domain", "unit", "required", "about"], &features)));
+    out.push_str(&format!("\nfeatures\n{}", text_table(&["#", "name", "domain", "unit", "required", "about"], &features)));
     let outputs: Vec<Vec<String>> = c
         .outputs
         .iter()
         .enumerate()
         .map(|(i, o)| vec![i.to_string(), o.name.clone(), o.bounds.to_string(), opt(&o.unit), o.about.clone()])
         .collect();
-    out.push_str(&format!("\noutputs\n{}", table(&["#", "name", "bounds", "unit", "about"], &outputs)));
+    out.push_str(&format!("\noutputs\n{}", text_table(&["#", "name", "bounds", "unit", "about"], &outputs)));
     out
 }

@@ -17,7 +17,7 @@ use paddock_host::{Model, Registry, Request, Row, Runtime};
 use serde::Serialize;
 
 use crate::Outcome;
-use crate::common::{print_json, table as text_table};
+use crate::common::{print_json, text_table};
 
 /// The demo plug-ins (invented data).
 const PLUGINS: &str = include_str!("../demo/plugins.csv");

@@ -53,7 +53,7 @@ pub struct Columns<'a> {
 /// is reported with its number and the rest carry on).
 #[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
 #[non_exhaustive]
-pub enum TableError {
+pub enum RowFileError {
     /// The CSV header cannot be read.
     #[error("cannot read the CSV header: {0}")]
     Header(String),
@@ -90,7 +90,7 @@ fn list(columns: &[String]) -> String {
 /// against the contract; each record is then read on its own.
 ///
 /// # Errors
-/// [`TableError`] for a CSV header that cannot be read, names a column
+/// [`RowFileError`] for a CSV header that cannot be read, names a column
 /// that is not a feature (and is neither `columns.id` nor ignored), or
 /// lacks the id column.
 pub fn records<'a, R: Read + 'a>(
@@ -98,7 +98,7 @@ pub fn records<'a, R: Read + 'a>(
     format: Format,
     schema: &'a Schema,
     columns: Columns<'a>,
-) -> Result<Box<dyn Iterator<Item = Record> + 'a>, TableError> {
+) -> Result<Box<dyn Iterator<Item = Record> + 'a>, RowFileError> {
     Ok(match format {
         Format::Csv => Box::new(csv_records(input, schema, columns)?),
         Format::Ndjson => Box::new(ndjson_records(input, columns)),
@@ -109,17 +109,17 @@ fn csv_records<'a, R: Read + 'a>(
     input: R,
     schema: &'a Schema,
     columns: Columns<'a>,
-) -> Result<impl Iterator<Item = Record> + 'a, TableError> {
+) -> Result<impl Iterator<Item = Record> + 'a, RowFileError> {
     let mut reader = csv::ReaderBuilder::new().flexible(true).trim(csv::Trim::All).from_reader(input);
     let header: Vec<String> =
-        reader.headers().map(|h| h.iter().map(str::to_owned).collect()).map_err(|e| TableError::Header(e.to_string()))?;
+        reader.headers().map(|h| h.iter().map(str::to_owned).collect()).map_err(|e| RowFileError::Header(e.to_string()))?;
     let id = columns.id;
     let id_at = match id {
         Some(column) => Some(
             header
                 .iter()
                 .position(|h| h == column)
-                .ok_or_else(|| TableError::MissingId { column: column.to_owned(), header: header.clone() })?,
+                .ok_or_else(|| RowFileError::MissingId { column: column.to_owned(), header: header.clone() })?,
         ),
         None => None,
     };
@@ -131,7 +131,7 @@ fn csv_records<'a, R: Read + 'a>(
         .collect();
     if !unknown.is_empty() {
         let c = schema.contract();
-        return Err(TableError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
+        return Err(RowFileError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
     }
     let keep: Vec<bool> = header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
     let mut records = reader.into_records().enumerate();

@@ -6,7 +6,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
 use indicatif::{ProgressBar, ProgressStyle};
-use paddock_host::table::{self, Format, Record};
+use paddock_host::row_file::{self, Format, Record};
 use paddock_host::{Model, ScoreError};
 
 use crate::Outcome;
@@ -92,8 +92,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     };
     // The header is checked before any output is created.
     let schema = model.schema();
-    let columns = table::Columns { id: args.id.as_deref(), ignore: &args.ignore };
-    let records = table::records(input, format, schema, columns).with_context(|| format!("reading {}", args.input.display()))?;
+    let columns = row_file::Columns { id: args.id.as_deref(), ignore: &args.ignore };
+    let records = row_file::records(input, format, schema, columns).with_context(|| format!("reading {}", args.input.display()))?;
     let out: Box<dyn Write> = match &args.out {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
         None => Box::new(io::stdout().lock()),

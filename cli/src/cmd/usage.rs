@@ -8,7 +8,7 @@ use anyhow::{Context, Result};
 use paddock_host::registry::{STATE_DIR, SavedUsage, usage_path};
 
 use crate::Outcome;
-use crate::common::{print_json, table};
+use crate::common::{print_json, text_table};
 
 /// Show what each model version has cost, from the usage file a host wrote.
 #[derive(clap::Args)]
@@ -63,7 +63,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         })
         .collect();
     let header = ["model", "version", "calls", "rows", "errors", "limit hits", "p50 µs", "p90 µs", "p99 µs", "max µs", "fuel", "peak memory"];
-    print!("{}", table(&header, &rows));
+    print!("{}", text_table(&header, &rows));
     if !saved.usage.shadows.is_empty() {
         let rows: Vec<Vec<String>> = saved
             .usage
@@ -82,7 +82,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             })
             .collect();
         println!("\nshadows:");
-        print!("{}", table(&["model", "shadow", "compared", "max |diff|", "over tolerance", "errors", "dropped"], &rows));
+        print!("{}", text_table(&["model", "shadow", "compared", "max |diff|", "over tolerance", "errors", "dropped"], &rows));
     }
     Ok(Outcome::Ok)
 }
