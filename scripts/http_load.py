@@ -84,6 +84,22 @@ class Server:
         if not line.startswith("listening on "):
             raise SystemExit(f"the server did not start: {line!r}")
         self.base = line.removeprefix("listening on ")
+        # The "before" binaries of the isolation and unknown-name figures
+        # predate the current path tree (model and version in the path).
+        try:
+            urllib.request.urlopen(self.base + "/alive").read()
+            self.paths = "current"
+        except urllib.error.HTTPError:
+            self.paths = "old"
+
+    def estimate(self, model, fields):
+        """The URL and JSON body of a request for estimates from `model`."""
+        if self.paths == "old":
+            return f"{self.base}/v1/models/{model}/score", json.dumps(fields)
+        return f"{self.base}/estimate", json.dumps({"model": model, **fields})
+
+    def store_state(self):
+        return self.get("/v1/status" if self.paths == "old" else "/store")
 
     def get(self, path):
         return json.load(urllib.request.urlopen(self.base + path))
@@ -100,8 +116,8 @@ class Server:
         self.proc.wait(timeout=30)
 
 
-def wrk(url, rows, seconds, connections=64, threads=2):
-    body = json.dumps({"rows": [ROW] * rows, "context": {"region": "centre"}})
+def wrk(server, rows, seconds, connections=64, threads=2):
+    url, body = server.estimate("overstay-risk", {"rows": [ROW] * rows, "context": {"region": "centre"}})
     lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
     lua.write('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n')
     lua.write(f"wrk.body = {json.dumps(body)}\n")
@@ -156,9 +172,8 @@ def load(seconds):
         make_store(store)
         server = Server(binary, store)
         try:
-            url = server.base + "/v1/models/overstay-risk/score"
-            wrk(url, 1, 3)  # warm-up
-            results = [(rows, wrk(url, rows, seconds)) for rows in (1, 64)]
+            wrk(server, 1, 3)  # warm-up
+            results = [(rows, wrk(server, rows, seconds)) for rows in (1, 64)]
         finally:
             server.stop()
     table = []
@@ -190,14 +205,13 @@ def soak(total):
     with tempfile.TemporaryDirectory() as store:
         make_store(store)
         server = Server(binary, store)
-        url = server.base + "/v1/models/overstay-risk/score"
         try:
-            rate = wrk(url, 1, 3)["rps"]
+            rate = wrk(server, 1, 3)["rps"]
             # Long enough for REQUESTS at the measured rate, and for swaps
             # at least 0.6 s apart, so the watcher (which lets changes
             # settle for 0.2 s) sees each one on its own.
             seconds = max(int(total / (rate * 0.9)) + 5, 70)
-            start_generation = server.get("/v1/status")["generation"]
+            start_generation = server.store_state()["generation"]
             rss = []
             done = threading.Event()
 
@@ -224,12 +238,12 @@ def soak(total):
             swapper = threading.Thread(target=swap)
             sampler.start()
             swapper.start()
-            r = wrk(url, 1, seconds)
+            r = wrk(server, 1, seconds)
             swapper.join()
             time.sleep(1)
             done.set()
             sampler.join()
-            generations = server.get("/v1/status")["generation"] - start_generation
+            generations = server.store_state()["generation"] - start_generation
         finally:
             server.stop()
     with open(os.path.join(ROOT, "target", "paddock", "soak-rss.txt"), "w") as f:
@@ -295,13 +309,13 @@ def make_spin_store(binary, dir):
     write(os.path.join(dir, "routes.toml"), ROUTES.format(v="1.0.0") + '[models.affine]\ndefault = "1.0.0"\n')
 
 
-def spinners(base, clients, stop):
+def spinners(server, clients, stop):
     """`clients` threads each calling the spinning model back to back."""
-    body = json.dumps({"rows": [{"x": 1.0}]}).encode()
+    url, body = server.estimate("affine", {"rows": [{"x": 1.0}]})
 
     def loop():
         while not stop.is_set():
-            req = urllib.request.Request(base + "/v1/models/affine/score", data=body,
+            req = urllib.request.Request(url, data=body.encode(),
                                          headers={"Content-Type": "application/json"})
             try:
                 urllib.request.urlopen(req, timeout=30).read()
@@ -322,13 +336,12 @@ def isolation(seconds):
             make_spin_store(after, store)
             server = Server(binary, store)
             try:
-                url = server.base + "/v1/models/overstay-risk/score"
-                wrk(url, 1, 2, connections=4)  # warm-up
-                alone = wrk(url, 1, seconds, connections=4)
+                wrk(server, 1, 2, connections=4)  # warm-up
+                alone = wrk(server, 1, seconds, connections=4)
                 stop = threading.Event()
-                threads = spinners(server.base, 4, stop)
+                threads = spinners(server, 4, stop)
                 time.sleep(1)  # let the spinning calls take every permit
-                spun = wrk(url, 1, seconds, connections=4)
+                spun = wrk(server, 1, seconds, connections=4)
                 stop.set()
                 for t in threads:
                     t.join()
@@ -362,9 +375,12 @@ def unknown(total):
             try:
                 lua = tempfile.NamedTemporaryFile("w", suffix=".lua", delete=False)
                 lua.write('wrk.method = "POST"\nwrk.headers["Content-Type"] = "application/json"\n')
-                lua.write('wrk.body = \'{"rows": [{"x": 1}]}\'\n')
                 lua.write('counter = 0\nrequest = function()\n  counter = counter + 1\n'
-                          '  return wrk.format(nil, "/v1/models/no-such-model-" .. math.random(1, 2000000000) .. "-" .. counter .. "/score")\nend\n')
+                          '  local name = "no-such-model-" .. math.random(1, 2000000000) .. "-" .. counter\n')
+                if server.paths == "old":
+                    lua.write('  return wrk.format(nil, "/v1/models/" .. name .. "/score", nil, \'{"rows": [{"x": 1}]}\')\nend\n')
+                else:
+                    lua.write('  return wrk.format(nil, "/estimate", nil, \'{"model": "\' .. name .. \'", "rows": [{"x": 1}]}\')\nend\n')
                 lua.close()
 
                 def run(seconds):
@@ -374,8 +390,8 @@ def unknown(total):
 
                 # Warm-up: 500 requests one by one, then the baseline.
                 for i in range(500):
-                    req = urllib.request.Request(f"{server.base}/v1/models/warm-up-{i}/score", data=b'{"rows": [{"x": 1}]}',
-                                                 headers={"Content-Type": "application/json"})
+                    url, body = server.estimate(f"warm-up-{i}", {"rows": [{"x": 1}]})
+                    req = urllib.request.Request(url, data=body.encode(), headers={"Content-Type": "application/json"})
                     try:
                         urllib.request.urlopen(req).read()
                     except urllib.error.HTTPError:
@@ -400,8 +416,8 @@ def unknown(total):
     replace_section("http-unknown", [
         "## HTTP: requests naming models that do not exist",
         "",
-        f"`python3 scripts/http_load.py unknown {total}`: at least {total:,} POSTs to",
-        "`/v1/models/<a new random name each time>/score` (wrk, 2 threads, 16 connections) against `paddock",
+        f"`python3 scripts/http_load.py unknown {total}`: at least {total:,} requests naming a new random model",
+        "each time (wrk, 2 threads, 16 connections; `POST /estimate`, or the old path tree for \"before\") against `paddock",
         "serve` on the `overstay-risk` store; the server's RSS read from /proc after a warm-up of 500 such",
         "requests and after each burst of wrk; the requests counted are those after the warm-up.",
         f"\"Before\" is commit {BEFORE}, built in the same run. Machine: {machine()}.",

@@ -7,7 +7,8 @@ use std::sync::mpsc;
 use std::time::Duration;
 
 use paddock_host::registry::artifact_path;
-use paddock_host::surface::http::{self, OPENAPI, ServeOptions};
+use paddock_host::surface::http::{self, ServeOptions};
+use paddock_host::surface::openapi;
 use paddock_host::{Digest, Limits, ModelOptions, Registry, RegistryOptions, Runtime};
 use paddock_tests::{fixture, line_artifact, write_atomically};
 use semver::Version;
@@ -125,21 +126,32 @@ fn store_with_deadline(dir: &Path, routes: bool, deadline: Duration) -> Registry
     Registry::open(&Runtime::new().unwrap(), dir, options).unwrap()
 }
 
-fn score_url(s: &Server, model: &str) -> String {
-    format!("{}/v1/models/{model}/score", s.base)
+fn estimate_url(s: &Server) -> String {
+    format!("{}/estimate", s.base)
+}
+
+/// `POST /estimate` for `model` with the other fields of `rest` (a JSON object).
+fn estimate(s: &Server, model: &str, rest: &str) -> Reply {
+    call("POST", &estimate_url(s), Some(&with_model(model, rest)), None)
+}
+
+fn with_model(model: &str, rest: &str) -> String {
+    let mut v: serde_json::Value = serde_json::from_str(rest).unwrap();
+    v["model"] = model.into();
+    v.to_string()
 }
 
 #[test]
 fn scoring_answers_with_estimates_version_route_and_usage() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": 2.5}], "context": {"site": "a"}, "at": "2026-12-05T08:27:00+01:00"}"#), None);
+    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}, {"x": 2.5}], "context": {"site": "a"}, "at": "2026-12-05T08:27:00+01:00"}"#);
     assert_eq!(r.status, 200, "{}", r.body);
     assert_eq!(r.content_type, "application/json");
     let v = r.json();
     assert_eq!(v["version"], "1.0.0");
     assert_eq!(v["route"], "default");
-    assert_eq!(v["reason"]["by"], "default");
+    assert_eq!(v["reason"]["picked_by"], "default");
     assert_eq!(v["estimates"], serde_json::json!([{"y": 3.0}, {"y": 6.0}]));
     assert_eq!(v["usage"]["rows"], 2);
     // Durations carry their unit in the field's name.
@@ -152,13 +164,14 @@ fn malformed_requests_are_400_naming_the_problem() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
     for (body, needle) in [
-        ("{not json", "not a score request"),
-        (r#"{"rows": [{"x": 1}], "colour": "red"}"#, "unknown field `colour`"),
-        (r#"{"rows": []}"#, "rows is empty"),
-        (r#"{"rows": [{"x": 1}], "at": "yesterday"}"#, "`at`: `yesterday` is not an RFC 3339 time"),
-        (r#"{"rows": [{"x": [1, 2]}]}"#, "not a score request"),
+        ("{not json", "not an estimate request"),
+        (r#"{"model": "m", "rows": [{"x": 1}], "colour": "red"}"#, "unknown field `colour`"),
+        (r#"{"model": "m", "rows": []}"#, "rows is empty"),
+        (r#"{"model": "m"}"#, "give `row` (one row) or `rows` (a list)"),
+        (r#"{"model": "m", "rows": [{"x": 1}], "at": "yesterday"}"#, "`at`: `yesterday` is not an RFC 3339 time"),
+        (r#"{"model": "m", "rows": [{"x": [1, 2]}]}"#, "not an estimate request"),
     ] {
-        let r = call("POST", &score_url(&s, "m"), Some(body), None);
+        let r = call("POST", &estimate_url(&s), Some(body), None);
         assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{body}: {}", r.body);
         assert!(r.json()["error"]["message"].as_str().unwrap().contains(needle), "{body}: {}", r.body);
     }
@@ -168,12 +181,13 @@ fn malformed_requests_are_400_naming_the_problem() {
 fn unknown_models_and_routes_are_404() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = call("POST", &score_url(&s, "nope"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s, "nope", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!((r.status, r.kind().as_str()), (404, "unknown_model"), "{}", r.body);
     assert_eq!(r.json()["error"]["details"]["served"], serde_json::json!(["affine", "m"]));
-    let r = call("GET", &format!("{}/v1/models/nope/contract", s.base), None, None);
+    let r = call("GET", &format!("{}/contract?model=nope", s.base), None, None);
     assert_eq!(r.status, 404);
-    let r = call("GET", &format!("{}/v2/anything", s.base), None, None);
+    // No path names a model or a version.
+    let r = call("GET", &format!("{}/m/contract", s.base), None, None);
     assert_eq!((r.status, r.kind().as_str()), (404, "not_found"));
 }
 
@@ -184,7 +198,7 @@ fn a_body_over_the_limit_is_413() {
     let rows: Vec<String> = (0..200).map(|i| format!("{{\"x\": {i}}}")).collect();
     let body = format!("{{\"rows\": [{}]}}", rows.join(","));
     assert!(body.len() > 1024);
-    let r = call("POST", &score_url(&s, "m"), Some(&body), None);
+    let r = estimate(&s, "m", &body);
     assert_eq!((r.status, r.kind().as_str()), (413, "too_large"), "{}", r.body);
     assert_eq!(r.json()["error"]["limit"], "body_bytes");
 }
@@ -194,7 +208,7 @@ fn valid_rows_are_answered_beside_invalid_ones_and_422_only_when_none_is_valid()
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
     // Rows are numbered from 1; row 3 has two problems, both reported.
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": "seven"}, {"y": 1}, {"x": 2}]}"#), None);
+    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}, {"x": "seven"}, {"y": 1}, {"x": 2}]}"#);
     assert_eq!(r.status, 200, "{}", r.body);
     let v = r.json();
     assert_eq!(v["estimates"], serde_json::json!([{"y": 3.0}, null, null, {"y": 5.0}]));
@@ -210,7 +224,7 @@ fn valid_rows_are_answered_beside_invalid_ones_and_422_only_when_none_is_valid()
     );
     assert_eq!(v["usage"]["rows"], 2);
 
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": "seven"}, {"y": 1}]}"#), None);
+    let r = estimate(&s, "m", r#"{"rows": [{"x": "seven"}, {"y": 1}]}"#);
     assert_eq!((r.status, r.kind().as_str()), (422, "invalid_rows"), "{}", r.body);
     let rows = r.json()["error"]["rows"].clone();
     assert_eq!(rows.as_array().unwrap().len(), 3);
@@ -223,7 +237,7 @@ fn valid_rows_are_answered_beside_invalid_ones_and_422_only_when_none_is_valid()
 fn a_limit_hit_is_500_and_a_model_fault_is_502() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = call("POST", &score_url(&s, "affine"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s, "affine", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);
     assert_eq!(r.json()["error"]["limit"], "deadline");
 
@@ -233,10 +247,10 @@ fn a_limit_hit_is_500_and_a_model_fault_is_502() {
     write_atomically(&other.path().join("routes.toml"), b"[models.affine]\ndefault = \"1.0.0\"\n");
     let reg = Registry::open(&Runtime::new().unwrap(), other.path(), RegistryOptions::default()).unwrap();
     let s2 = Server::start(reg, ServeOptions::default());
-    let r = call("POST", &score_url(&s2, "affine"), Some(r#"{"rows": [{"x": -1}]}"#), None);
+    let r = estimate(&s2, "affine", r#"{"rows": [{"x": -1}]}"#);
     assert_eq!((r.status, r.kind().as_str()), (502, "trap"), "{}", r.body);
     // The server goes on: the next call starts a new instance.
-    let r = call("POST", &score_url(&s2, "affine"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s2, "affine", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!(r.status, 200, "{}", r.body);
 }
 
@@ -264,15 +278,15 @@ fn a_full_queue_is_503_with_retry_after() {
     let options = ServeOptions { concurrency: 1, queue: 0, retry_after_secs: 2, ..ServeOptions::default() };
     // The spinning model holds the only permit for its whole deadline.
     let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), options);
-    let url = score_url(&s, "affine");
-    let first = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None));
+    let url = estimate_url(&s);
+    let first = std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
     wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
     // The permit is taken and nothing may wait: 503 at once.
-    let r = call("POST", &score_url(&s, "affine"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s, "affine", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!((r.status, r.kind().as_str()), (503, "overloaded"), "{}", r.body);
     assert_eq!(r.retry_after.as_deref(), Some("2"));
     // Another model has its own limit and is not held up.
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!(r.status, 200);
     let r = first.join().unwrap();
     assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);
@@ -287,17 +301,17 @@ fn a_model_spinning_with_all_its_permits_leaves_the_others_their_workers() {
     let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), options);
     let spinning: Vec<_> = (0..2)
         .map(|_| {
-            let url = score_url(&s, "affine");
-            std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None))
+            let url = estimate_url(&s);
+            std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None))
         })
         .collect();
     // Metrics answer while both calls spin (that is how we know they do).
     wait_for(&s, AFFINE_IN_FLIGHT, 2.0);
-    let r = call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}]}"#);
     assert_eq!(r.status, 200, "{}", r.body);
     assert_eq!(r.json()["estimates"], serde_json::json!([{"y": 3.0}]));
-    assert_eq!(call("GET", &format!("{}/healthz", s.base), None, None).status, 200);
-    assert_eq!(call("GET", &format!("{}/readyz", s.base), None, None).status, 200);
+    assert_eq!(call("GET", &format!("{}/alive", s.base), None, None).status, 200);
+    assert_eq!(call("GET", &format!("{}/ready", s.base), None, None).status, 200);
     // All of that happened while the spinning calls were still running.
     assert_eq!(metric(&s, AFFINE_IN_FLIGHT), 2.0);
     assert!(spinning.iter().all(|t| !t.is_finished()));
@@ -312,10 +326,10 @@ fn a_model_spinning_with_all_its_permits_leaves_the_others_their_workers() {
 fn names_no_model_has_keep_no_state() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    estimate(&s, "m", r#"{"rows": [{"x": 1}]}"#);
     let versions_before = metric(&s, r#"paddock_calls_total{model="m",version="1.0.0"}"#);
     for i in 0..500 {
-        let r = call("POST", &score_url(&s, &format!("random-{i}")), Some(r#"{"rows": [{"x": 1}]}"#), None);
+        let r = estimate(&s, &format!("random-{i}"), r#"{"rows": [{"x": 1}]}"#);
         assert_eq!((r.status, r.kind().as_str()), (404, "unknown_model"));
     }
     // One gate (for m), whatever was asked; the refusals are counted by kind only.
@@ -330,21 +344,23 @@ fn names_no_model_has_keep_no_state() {
 fn framework_errors_have_the_same_json_body() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = call("POST", &format!("{}/healthz", s.base), None, None);
+    let r = call("POST", &format!("{}/alive", s.base), None, None);
     assert_eq!((r.status, r.kind().as_str()), (405, "method_not_allowed"), "{}", r.body);
     assert_eq!(r.content_type, "application/json");
-    let r = call("GET", &score_url(&s, "m"), None, None);
+    let r = call("GET", &estimate_url(&s), None, None);
     assert_eq!((r.status, r.kind().as_str()), (405, "method_not_allowed"), "{}", r.body);
-    let r = call("GET", &format!("{}/v1/models/%FF/contract", s.base), None, None);
+    let r = call("GET", &format!("{}/contract", s.base), None, None);
     assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{}", r.body);
-    let r = call("GET", &format!("{}/v1/models/m/contract?version=1&version=2", s.base), None, None);
+    assert!(r.json()["error"]["message"].as_str().unwrap().contains("model"), "{}", r.body);
+    let r = call("GET", &format!("{}/contract?model=m&version=1&version=2", s.base), None, None);
+    assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{}", r.body);
     assert_eq!(r.content_type, "application/json", "{}", r.body);
 }
 
 #[test]
-fn admin_reload_needs_the_bearer_token() {
+fn a_store_rescan_needs_the_bearer_token() {
     let dir = tempfile::tempdir().unwrap();
-    let url = |s: &Server| format!("{}/v1/admin/reload", s.base);
+    let url = |s: &Server| format!("{}/store/rescan", s.base);
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
     let r = call("POST", &url(&s), None, Some("anything"));
     assert_eq!((r.status, r.kind().as_str()), (403, "admin_disabled"));
@@ -364,32 +380,34 @@ fn admin_reload_needs_the_bearer_token() {
 }
 
 #[test]
-fn health_readiness_status_models_and_contract() {
+fn alive_ready_store_catalogue_and_contract() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), false), ServeOptions::default());
-    assert_eq!(call("GET", &format!("{}/healthz", s.base), None, None).status, 200);
-    let r = call("GET", &format!("{}/readyz", s.base), None, None);
+    let r = call("GET", &format!("{}/alive", s.base), None, None);
+    assert_eq!((r.status, r.json()["state"].clone()), (200, "alive".into()), "{}", r.body);
+    let r = call("GET", &format!("{}/ready", s.base), None, None);
     assert_eq!((r.status, r.kind().as_str()), (503, "not_ready"));
     assert!(r.retry_after.is_some());
     drop(s);
 
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    assert_eq!(call("GET", &format!("{}/readyz", s.base), None, None).status, 200);
-    let models = call("GET", &format!("{}/v1/models", s.base), None, None).json();
-    let m = models["models"].as_array().unwrap().iter().find(|m| m["name"] == "m").unwrap().clone();
+    assert_eq!(call("GET", &format!("{}/ready", s.base), None, None).status, 200);
+    let catalogue = call("GET", &format!("{}/catalogue", s.base), None, None).json();
+    assert_eq!(catalogue["api_revision"], http::API_REVISION);
+    let m = catalogue["models"].as_array().unwrap().iter().find(|m| m["name"] == "m").unwrap().clone();
     assert_eq!((m["routed"].clone(), m["default_version"].clone()), (true.into(), "1.0.0".into()));
     assert_eq!(m["versions"][0]["used_by"], serde_json::json!(["default"]));
-    let c = call("GET", &format!("{}/v1/models/m/contract", s.base), None, None).json();
+    let c = call("GET", &format!("{}/contract?model=m", s.base), None, None).json();
     assert_eq!(c["name"], "m");
     assert_eq!(c["features"][0]["name"], "x");
-    let c = call("GET", &format!("{}/v1/models/m/contract?version=9.0.0", s.base), None, None);
+    let c = call("GET", &format!("{}/contract?model=m&version=9.0.0", s.base), None, None);
     assert_eq!((c.status, c.kind().as_str()), (404, "unknown_version"), "{}", c.body);
     assert_eq!(c.json()["error"]["details"]["loaded"], serde_json::json!(["1.0.0"]));
-    let c = call("GET", &format!("{}/v1/models/nope/contract?version=1.0.0", s.base), None, None);
+    let c = call("GET", &format!("{}/contract?model=nope&version=1.0.0", s.base), None, None);
     assert_eq!((c.status, c.kind().as_str()), (404, "unknown_model"), "{}", c.body);
-    let c = call("GET", &format!("{}/v1/models/m/contract?version=latest", s.base), None, None);
+    let c = call("GET", &format!("{}/contract?model=m&version=latest", s.base), None, None);
     assert_eq!(c.status, 400);
-    let st = call("GET", &format!("{}/v1/status", s.base), None, None).json();
+    let st = call("GET", &format!("{}/store", s.base), None, None).json();
     assert_eq!(st["routes"]["state"], "accepted");
 }
 
@@ -398,10 +416,10 @@ fn metrics_are_openmetrics_text_with_the_calls_made() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
     for _ in 0..3 {
-        call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": 1}, {"x": 2}]}"#), None);
+        estimate(&s, "m", r#"{"rows": [{"x": 1}, {"x": 2}]}"#);
     }
-    call("POST", &score_url(&s, "m"), Some(r#"{"rows": [{"x": "bad"}]}"#), None);
-    call("POST", &score_url(&s, "nope"), Some(r#"{"rows": [{"x": 1}]}"#), None);
+    estimate(&s, "m", r#"{"rows": [{"x": "bad"}]}"#);
+    estimate(&s, "nope", r#"{"rows": [{"x": 1}]}"#);
     let r = call("GET", &format!("{}/metrics", s.base), None, None);
     assert_eq!(r.content_type, "application/openmetrics-text; version=1.0.0; charset=utf-8");
     // The invalid request is the client's fault: counted apart, not as a
@@ -426,27 +444,47 @@ fn the_openapi_document_is_served_and_names_every_route() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
     let served = call("GET", &format!("{}/openapi.json", s.base), None, None).json();
-    let doc: serde_json::Value = serde_json::from_str(OPENAPI).unwrap();
+    let doc: serde_json::Value = serde_json::from_str(&openapi::document()).unwrap();
     assert_eq!(served, doc);
     assert_eq!(doc["openapi"], "3.1.0");
-    let paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
-    for p in ["/v1/models/{model}/score", "/v1/models", "/v1/models/{model}/contract", "/v1/status", "/v1/admin/reload", "/healthz", "/readyz", "/metrics", "/openapi.json"] {
-        assert!(paths.contains(&p), "{p} is not documented");
+    let mut paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
+    paths.sort();
+    assert_eq!(paths, ["/alive", "/catalogue", "/contract", "/estimate", "/metrics", "/openapi.json", "/ready", "/store", "/store/rescan"]);
+    // Every documented route answers something other than "no such route".
+    for p in &paths {
+        let method = if doc["paths"][p]["post"].is_object() { "POST" } else { "GET" };
+        let r = call(method, &format!("{}{p}", s.base), None, None);
+        assert!(!r.body.contains(r#""kind":"not_found""#), "{method} {p}: {}", r.body);
     }
+}
+
+#[test]
+fn the_id_is_echoed_and_a_single_row_may_be_given_as_row() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = Server::start(store(dir.path(), true), ServeOptions::default());
+    let r = estimate(&s, "m", r#"{"id": {"event": 7}, "row": {"x": 2}}"#);
+    assert_eq!(r.status, 200, "{}", r.body);
+    assert_eq!(r.json()["id"], serde_json::json!({"event": 7}));
+    assert_eq!(r.json()["estimates"], serde_json::json!([{"y": 5.0}]));
+    let r = estimate(&s, "m", r#"{"row": {"x": 2}, "rows": [{"x": 2}]}"#);
+    assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{}", r.body);
+    let r = call("POST", &estimate_url(&s), Some(r#"{"rows": [{"x": 2}]}"#), None);
+    assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{}", r.body);
+    assert!(r.body.contains("missing field `model`"), "{}", r.body);
 }
 
 #[test]
 fn shutdown_lets_the_request_in_flight_finish() {
     let dir = tempfile::tempdir().unwrap();
     let mut s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), ServeOptions::default());
-    let url = score_url(&s, "affine");
+    let url = estimate_url(&s);
     // This call runs for its whole deadline; shut down once it is running.
-    let in_flight = std::thread::spawn(move || call("POST", &url, Some(r#"{"rows": [{"x": 1}]}"#), None));
+    let in_flight = std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
     wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
     s.stop();
     let r = in_flight.join().unwrap();
     assert_eq!((r.status, r.kind().as_str()), (500, "limit"), "{}", r.body);
     // And nothing new is accepted.
-    let refused = agent().get(&format!("{}/healthz", s.base)).call();
+    let refused = agent().get(&format!("{}/alive", s.base)).call();
     assert!(refused.is_err(), "{:?}", refused.map(|r| r.status()));
 }

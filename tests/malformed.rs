@@ -103,19 +103,19 @@ fn a_checks_section_that_does_not_parse_is_named() {
 
 /// Flips one byte at a time across the whole file: the result is refused
 /// with an error, or (a byte in data the model ignores) loads and scores —
-/// and a host that pins the original, or trusts the key that signed it,
+/// and a host that pins the original, or trusts the voucher that vouched for it,
 /// refuses every flipped file. Never a panic.
 #[test]
-fn single_byte_flips_never_panic_and_never_pass_for_the_signed_original() {
-    use paddock_host::{SecretKey, TrustError, TrustPolicy};
+fn single_byte_flips_never_panic_and_never_pass_for_the_vouched_original() {
+    use paddock_host::{TrustError, TrustPolicy, VouchingKey};
     let runtime = Runtime::new().unwrap();
     let original = demo_bytes();
     let digest = paddock_host::Digest::of(&original);
-    let key = SecretKey::generate().unwrap();
-    let signature = key.sign(digest);
+    let key = VouchingKey::generate("release").unwrap();
+    let vouch = key.vouch(digest);
     let pinned = TrustPolicy { pinned: vec![digest], required: true, ..TrustPolicy::default() };
-    let signed = TrustPolicy { trusted: vec![key.public()], required: true, ..TrustPolicy::default() };
-    assert!(pinned.check(digest, None).is_ok() && signed.check(digest, Some(&signature)).is_ok());
+    let vouched = TrustPolicy { trusted: vec![key.voucher()], required: true, ..TrustPolicy::default() };
+    assert!(pinned.admit(digest, None).is_ok() && vouched.admit(digest, Some(&vouch)).is_ok());
     let row = Row::new()
         .with("charger_kw", 11.0)
         .with("battery_kwh", 64.0)
@@ -130,11 +130,11 @@ fn single_byte_flips_never_panic_and_never_pass_for_the_signed_original() {
         let mut bytes = original.clone();
         bytes[pos] ^= 0x5a;
         let flipped = paddock_host::Digest::of(&bytes);
-        assert!(matches!(pinned.check(flipped, None), Err(TrustError::NotPinned { .. })), "byte {pos} passed the pin");
-        // The original's signature, carried beside the flipped file.
+        assert!(matches!(pinned.admit(flipped, None), Err(TrustError::NotPinned { .. })), "byte {pos} passed the pin");
+        // The original's vouch, carried beside the flipped file.
         assert!(
-            matches!(signed.check(flipped, Some(&signature)), Err(TrustError::DigestMismatch { .. })),
-            "byte {pos} passed the signature"
+            matches!(vouched.admit(flipped, Some(&vouch)), Err(TrustError::DigestMismatch { .. })),
+            "byte {pos} passed the vouch"
         );
         match parse(bytes).map_err(|e| e.to_string()).and_then(|a| Model::load(&runtime, a).map_err(|e| e.to_string())) {
             Err(message) => {

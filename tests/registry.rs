@@ -13,7 +13,7 @@ use std::time::{Duration, Instant};
 
 use paddock_host::registry::{ArtifactState, ManualClock, RoutesState, Stage, artifact_path};
 use paddock_host::{
-    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, SecretKey, TrustPolicy,
+    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, TrustPolicy, VouchingKey,
 };
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
@@ -267,34 +267,34 @@ fn an_artifact_failing_its_checks_is_refused_and_the_old_state_keeps_serving() {
 }
 
 #[test]
-fn a_bad_signature_is_refused_and_the_old_state_keeps_serving() {
+fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    let trusted = SecretKey::generate().unwrap();
-    let stranger = SecretKey::generate().unwrap();
-    let policy = TrustPolicy { trusted: vec![trusted.public()], pinned: vec![], required: true };
+    let trusted = VouchingKey::generate("release").unwrap();
+    let stranger = VouchingKey::generate("stranger").unwrap();
+    let policy = TrustPolicy { trusted: vec![trusted.voucher()], pinned: vec![], required: true };
     let options = RegistryOptions { trust: policy, ..RegistryOptions::default() };
     let one = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
     let path = artifact_path(store, "m", &Version::new(1, 0, 0));
-    write_atomically(&paddock_host::Signature::path_for(&path), trusted.sign(Digest::of(&one)).to_json().as_bytes());
+    write_atomically(&paddock_host::Vouch::path_for(&path), trusted.vouch(Digest::of(&one)).to_text().as_bytes());
     let reg = serving_one(store, options);
-    assert_eq!(reg.status().artifacts[0].vouch, Some(paddock_host::Vouch::Signature { key_id: trusted.public().id() }));
+    assert_eq!(reg.status().artifacts[0].admission, Some(paddock_host::Admission::Vouch { voucher: trusted.voucher().id(), name: "release".into() }));
 
-    // Signed by a key the host does not trust.
+    // Vouched for by a voucher the host does not trust.
     let two = line_artifact("m", "2.0.0", 2.0, 0.0, Some(true));
     let d2 = put(store, "m", "2.0.0", &two);
     let path2 = artifact_path(store, "m", &Version::new(2, 0, 0));
-    write_atomically(&paddock_host::Signature::path_for(&path2), stranger.sign(d2).to_json().as_bytes());
-    // Signed by the trusted key, but over other bytes.
+    write_atomically(&paddock_host::Vouch::path_for(&path2), stranger.vouch(d2).to_text().as_bytes());
+    // Vouched for by the trusted voucher, but over other bytes.
     let three = line_artifact("m", "3.0.0", 3.0, 0.0, Some(true));
     put(store, "m", "3.0.0", &three);
     let path3 = artifact_path(store, "m", &Version::new(3, 0, 0));
-    write_atomically(&paddock_host::Signature::path_for(&path3), trusted.sign(Digest::of(&two)).to_json().as_bytes());
+    write_atomically(&paddock_host::Vouch::path_for(&path3), trusted.vouch(Digest::of(&two)).to_text().as_bytes());
     route_default_to(store, "2.0.0");
     reg.reload().unwrap();
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
     assert_eq!(stage, Stage::Trust);
-    assert!(reason.contains(&stranger.public().id()), "{reason}");
+    assert!(reason.contains(&stranger.voucher().id()), "{reason}");
     let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
     assert_eq!(stage, Stage::Trust);
     assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");

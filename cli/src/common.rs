@@ -5,15 +5,15 @@ use std::time::Duration;
 
 use anyhow::{Context, Result};
 use paddock_host::{
-    Artifact, Isolation, Limits, Model, ModelOptions, Registry, RegistryOptions, Runtime, RuntimeConfig, Signature, TrustPolicy,
-    Vouch, WasiPolicy, wasi,
+    Artifact, Isolation, Limits, Model, ModelOptions, Registry, RegistryOptions, Runtime, RuntimeConfig, TrustPolicy,
+    Vouch, Admission, WasiPolicy, wasi,
 };
 
 /// What every command about one artifact takes: the file, `--json`, and
 /// how to load it.
 #[derive(clap::Args, Clone, Debug)]
 pub struct ArtifactArgs {
-    /// The artifact (its signature is read from ARTIFACT.sig if present).
+    /// The artifact (its vouch is read from ARTIFACT.vouch if present).
     pub artifact: PathBuf,
     /// Print the result as JSON.
     #[arg(long)]
@@ -26,10 +26,10 @@ pub struct ArtifactArgs {
 /// library's) and what must vouch for the artifact.
 #[derive(clap::Args, Clone, Debug)]
 pub struct LoadArgs {
-    /// Require a valid signature (ARTIFACT.sig) by a key in this directory of `.pub` files.
+    /// Admit only artifacts vouched for (ARTIFACT.vouch) by a voucher in this directory of `.voucher` files.
     #[arg(long, value_name = "DIR")]
     pub trust: Option<PathBuf>,
-    /// Accept an artifact with this digest (`sha256:…`) without a signature; repeatable.
+    /// Admit an artifact with this digest (`sha256:…`) without a vouch; repeatable.
     #[arg(long, value_name = "DIGEST")]
     pub pin: Vec<String>,
     /// Wall-clock deadline per call, in milliseconds [default: 50].
@@ -113,12 +113,12 @@ impl LoadArgs {
         Ok(policy)
     }
 
-    /// Checks an artifact against the trust policy, reading its signature
-    /// from ARTIFACT.sig when that file exists.
-    pub fn vouch(&self, path: &Path, artifact: &Artifact) -> Result<Vouch> {
-        let sig_path = Signature::path_for(path);
-        let signature = if sig_path.exists() { Some(Signature::read(&sig_path)?) } else { None };
-        Ok(self.policy()?.check(artifact.digest(), signature.as_ref()).with_context(|| format!("refusing {}", path.display()))?)
+    /// Checks an artifact against the trust policy, reading its vouch from
+    /// ARTIFACT.vouch when that file exists.
+    pub fn admit(&self, path: &Path, artifact: &Artifact) -> Result<Admission> {
+        let vouch_path = Vouch::path_for(path);
+        let vouch = if vouch_path.exists() { Some(Vouch::read(&vouch_path)?) } else { None };
+        Ok(self.policy()?.admit(artifact.digest(), vouch.as_ref()).with_context(|| format!("refusing {}", path.display()))?)
     }
 
     /// Reads an artifact, checks it against the trust policy, and loads it
@@ -127,7 +127,7 @@ impl LoadArgs {
         let runtime = self.runtime()?;
         let options = self.options();
         let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
-        self.vouch(path, &artifact)?;
+        self.admit(path, &artifact)?;
         let model = Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
         Ok((runtime, model))
     }

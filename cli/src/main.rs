@@ -31,9 +31,9 @@ enum Command {
     Serve(cmd::serve::Args),
     Stream(cmd::stream::Args),
     Usage(cmd::usage::Args),
-    Keygen(cmd::keygen::Args),
-    Sign(cmd::sign::Args),
-    Verify(cmd::verify::Args),
+    Voucher(cmd::voucher::Args),
+    Vouch(cmd::vouch::Args),
+    Admit(cmd::admit::Args),
 }
 
 /// What a command reports back to `main`.
@@ -60,9 +60,9 @@ fn main() -> ExitCode {
         Command::Serve(a) => cmd::serve::run(a),
         Command::Stream(a) => cmd::stream::run(a),
         Command::Usage(a) => cmd::usage::run(a),
-        Command::Keygen(a) => cmd::keygen::run(a),
-        Command::Sign(a) => cmd::sign::run(a),
-        Command::Verify(a) => cmd::verify::run(a),
+        Command::Voucher(a) => cmd::voucher::run(a),
+        Command::Vouch(a) => cmd::vouch::run(a),
+        Command::Admit(a) => cmd::admit::run(a),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

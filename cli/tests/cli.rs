@@ -213,9 +213,9 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let line = |needle: &str| s.lines().find(|l| l.contains(needle)).unwrap_or_else(|| panic!("no {needle:?} in {s}")).to_owned();
     // Weekday default, weekend rule, the site in the 10 % canary, the north rule.
     assert!(line("Harbour Lot    coast   Mon 08:12").contains("1.0.0 · default"), "{s}");
-    assert!(line("Station Road   north   Sun 17:44").contains("1.1.0 · rule `weekend`"), "{s}");
-    assert!(line("Library Green  centre  Sat 08:27").contains("1.2.0 · canary (10% by `site`, instead of rule `weekend`)"), "{s}");
-    assert!(line("Depot North    north   Thu 01:50").ends_with("1.1.0 · rule `north`"), "{s}");
+    assert!(line("Station Road   north   Sun 17:44").contains("1.1.0 · rule weekend"), "{s}");
+    assert!(line("Library Green  centre  Sat 08:27").contains("1.2.0 · canary: site in its 10% (else rule weekend)"), "{s}");
+    assert!(line("Depot North    north   Thu 01:50").ends_with("1.1.0 · rule north"), "{s}");
     // Monday 00:20 in Oslo is still Sunday in UTC: the weekday version answers.
     assert!(line("Mon 00:20").contains("1.0.0 · default"), "{s}");
     assert!(line("shadow charge-minutes 2.0.0-rc.1").contains("10 requests compared"), "{s}");
@@ -224,7 +224,7 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["answers"].as_array().unwrap().len(), 10);
     // Machine-readable fields carry names, not prose with backticks.
-    let canary = v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["by"] == "canary").unwrap();
+    let canary = v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["picked_by"] == "canary").unwrap();
     assert_eq!(canary["minutes_reason"]["instead_of"], "weekend", "{canary}");
     assert!(!v.to_string().contains('`'), "{v}");
 
@@ -281,63 +281,66 @@ fn status_lists_every_artifact_and_fails_when_one_is_refused() {
 }
 
 #[test]
-fn keygen_sign_and_verify_follow_the_policy() {
+fn voucher_vouch_and_admit_follow_the_policy() {
     let dir = tmp("trust");
     let _ = std::fs::remove_dir_all(&dir);
     let keys = dir.join("keys");
     let other = dir.join("other");
     for (d, name) in [(&keys, "alice"), (&other, "mallory")] {
-        let out = paddock(&["keygen", "--dir", d.to_str().unwrap(), "--name", name], None);
+        let out = paddock(&["voucher", name, "--dir", d.to_str().unwrap()], None);
         assert!(out.status.success(), "{}", text(&out.stderr));
     }
-    let again = paddock(&["keygen", "--dir", keys.to_str().unwrap(), "--name", "alice"], None);
-    assert_eq!(again.status.code(), Some(1), "never overwrites a key");
+    let again = paddock(&["voucher", "alice", "--dir", keys.to_str().unwrap()], None);
+    assert_eq!(again.status.code(), Some(1), "never overwrites a voucher");
+    assert!(text(&again.stderr).contains("alice.vouching-key exists"), "{}", text(&again.stderr));
 
     let artifact = dir.join("overstay.wasm");
     std::fs::copy(artifact_path("overstay-risk"), &artifact).unwrap();
     let a = artifact.to_str().unwrap();
     let trust = ["--trust", keys.to_str().unwrap()];
 
-    // Unsigned: refused under --trust, accepted without a policy.
-    let out = paddock(&[&["verify", a][..], &trust[..]].concat(), None);
+    // Unvouched: refused under --trust, admitted without a policy.
+    let out = paddock(&[&["admit", a][..], &trust[..]].concat(), None);
     assert_eq!(out.status.code(), Some(1));
-    assert!(text(&out.stdout).contains("refused") && text(&out.stdout).contains("is not signed"), "{}", text(&out.stdout));
-    assert!(paddock(&["verify", a], None).status.success());
+    assert!(text(&out.stdout).contains("refused: ") && text(&out.stdout).contains("nobody vouched for the artifact"), "{}", text(&out.stdout));
+    assert!(paddock(&["admit", a], None).status.success());
 
-    // Signed by a trusted key: accepted, and `score` loads it.
-    let key = keys.join("alice.key");
-    assert!(paddock(&["sign", a, "--key", key.to_str().unwrap()], None).status.success());
-    let out = paddock(&[&["verify", a, "--json"][..], &trust[..]].concat(), None);
+    // Vouched for by a trusted voucher: admitted, and `score` loads it.
+    let key = keys.join("alice.vouching-key");
+    assert!(paddock(&["vouch", a, "--as", key.to_str().unwrap()], None).status.success());
+    assert!(dir.join("overstay.wasm.vouch").exists());
+    let out = paddock(&[&["admit", a, "--json"][..], &trust[..]].concat(), None);
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
-    assert_eq!(v["accepted"], true, "{v}");
-    assert_eq!(v["vouch"]["by"], "signature");
+    assert_eq!(v["admitted"], true, "{v}");
+    assert_eq!(v["admission"]["admitted_by"], "vouch");
+    assert_eq!(v["admission"]["name"], "alice");
     let row = "{\"expected_minutes\": 90, \"plugin_hour\": 9, \"member_overstay_rate\": 0.1, \"site_occupancy\": 0.2, \"weekend\": false, \"fleet\": false}\n";
     let out = paddock(&[&["score", a, "-", "--from", "ndjson"][..], &trust[..]].concat(), Some(row));
     assert!(out.status.success(), "{}", text(&out.stderr));
 
-    // Signed by a key that is not trusted: refused naming the key.
-    let mallory = other.join("mallory.key");
-    assert!(paddock(&["sign", a, "--key", mallory.to_str().unwrap()], None).status.success());
+    // Vouched for by a voucher that is not trusted: refused naming it.
+    let mallory = other.join("mallory.vouching-key");
+    assert!(paddock(&["vouch", a, "--as", mallory.to_str().unwrap()], None).status.success());
     let out = paddock(&[&["score", a, "-", "--from", "ndjson"][..], &trust[..]].concat(), Some(row));
     assert_eq!(out.status.code(), Some(1));
-    assert!(text(&out.stderr).contains("which is not among the trusted keys"), "{}", text(&out.stderr));
+    assert!(text(&out.stderr).contains("who is not among the trusted vouchers"), "{}", text(&out.stderr));
 
-    // Tampered after signing: refused naming both digests.
-    assert!(paddock(&["sign", a, "--key", key.to_str().unwrap()], None).status.success());
+    // Tampered after vouching: refused naming both digests.
+    assert!(paddock(&["vouch", a, "--as", key.to_str().unwrap()], None).status.success());
     let mut bytes = std::fs::read(&artifact).unwrap();
     let last = bytes.len() - 1;
     bytes[last] ^= 1;
     std::fs::write(&artifact, &bytes).unwrap();
-    let out = paddock(&[&["verify", a][..], &trust[..]].concat(), None);
+    let out = paddock(&[&["admit", a][..], &trust[..]].concat(), None);
     assert_eq!(out.status.code(), Some(1));
-    assert!(text(&out.stdout).contains("the signature is for sha256:"), "{}", text(&out.stdout));
+    assert!(text(&out.stdout).contains("the vouch is for sha256:"), "{}", text(&out.stdout));
 
-    // A pin accepts exactly its digest.
+    // A pin admits exactly its digest.
     let digest = paddock_host::Digest::of(&bytes).to_string();
-    let _ = std::fs::remove_file(paddock_host::Signature::path_for(&artifact));
-    assert!(paddock(&["verify", a, "--pin", &digest], None).status.success());
+    let _ = std::fs::remove_file(paddock_host::Vouch::path_for(&artifact));
+    assert!(paddock(&["admit", a, "--pin", &digest], None).status.success());
     let wrong = paddock_host::Digest::of(b"other").to_string();
-    let out = paddock(&["verify", a, "--pin", &wrong], None);
+    let out = paddock(&["admit", a, "--pin", &wrong], None);
     assert_eq!(out.status.code(), Some(1));
     assert!(text(&out.stdout).contains(&format!("the artifact is {digest}, which is not pinned (pinned: {wrong})")), "{}", text(&out.stdout));
 }
@@ -408,9 +411,9 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     assert!(s.contains("imports      phone-home, read-secrets") && s.contains("- imports `phone-home`"), "{s}");
 
     let keys = dir.join("keys");
-    assert!(paddock(&["keygen", "--dir", keys.to_str().unwrap(), "--name", "reviewer"], None).status.success());
+    assert!(paddock(&["voucher", "reviewer", "--dir", keys.to_str().unwrap()], None).status.success());
     let s = audit(&healthy, &["--trust", keys.to_str().unwrap()]);
-    assert!(s.contains("is not signed, and the policy requires a signature"), "{s}");
+    assert!(s.contains("nobody vouched for the artifact") && s.contains("the policy requires a trusted voucher or a pin"), "{s}");
 }
 
 #[test]
@@ -510,9 +513,9 @@ impl Served {
     }
 
     fn score(&self) {
-        let body = r#"{"rows": [{"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}]}"#;
+        let body = r#"{"model": "overstay-risk", "rows": [{"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}]}"#;
         let agent = ureq::Agent::config_builder().http_status_as_error(false).build().new_agent();
-        let mut r = agent.post(&format!("{}/v1/models/overstay-risk/score", self.base)).header("content-type", "application/json").send(body).unwrap();
+        let mut r = agent.post(&format!("{}/estimate", self.base)).header("content-type", "application/json").send(body).unwrap();
         assert_eq!(r.status().as_u16(), 200, "{}", r.body_mut().read_to_string().unwrap());
     }
 }

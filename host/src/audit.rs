@@ -16,15 +16,16 @@ use crate::limits::{Limits, fmt_duration};
 use crate::model::{LoadError, Model, ModelOptions};
 use crate::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
-use crate::trust::{Signature, TrustPolicy, Vouch};
+use crate::trust::{Admission, TrustPolicy, Vouch};
 
 /// Who vouches for the artifact.
 #[derive(Clone, Debug, Serialize)]
 pub struct TrustFinding {
-    /// `signed`, `pinned`, `unvouched` (no policy) or `refused`.
+    /// `vouched` (by a trusted voucher), `pinned`, `unvouched` (the policy
+    /// requires nothing) or `refused`.
     pub status: &'static str,
-    /// The key that signed, when a signature was present.
-    pub signer: Option<String>,
+    /// The voucher's id, when a vouch was present.
+    pub voucher: Option<String>,
     /// Why the policy refused it.
     pub error: Option<String>,
 }
@@ -108,14 +109,14 @@ impl AuditReport {
 }
 
 /// Audits an artifact file under the given load options and trust policy.
-/// Reads `ARTIFACT.sig` when it exists.
+/// Reads `ARTIFACT.vouch` when it exists.
 pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> AuditReport {
     let config = RuntimeConfig { fuel: true, ..RuntimeConfig::default() };
     let mut report = AuditReport {
         path: path.to_owned(),
         digest: None,
         bytes: 0,
-        trust: TrustFinding { status: "refused", signer: None, error: None },
+        trust: TrustFinding { status: "refused", voucher: None, error: None },
         surface: None,
         wasi_policy: options.wasi.clone(),
         wasi: Vec::new(),
@@ -191,9 +192,9 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
 }
 
 fn trust(report: &mut AuditReport, path: &Path, artifact: &Artifact, policy: &TrustPolicy) {
-    let sig_path = Signature::path_for(path);
-    let signature = if sig_path.exists() {
-        match Signature::read(&sig_path) {
+    let vouch_path = Vouch::path_for(path);
+    let vouch = if vouch_path.exists() {
+        match Vouch::read(&vouch_path) {
             Ok(s) => Some(s),
             Err(e) => {
                 report.trust.error = Some(e.to_string());
@@ -204,11 +205,11 @@ fn trust(report: &mut AuditReport, path: &Path, artifact: &Artifact, policy: &Tr
     } else {
         None
     };
-    report.trust.signer = signature.as_ref().map(|s| s.key_id.clone());
-    match policy.check(artifact.digest(), signature.as_ref()) {
-        Ok(Vouch::Signature { .. }) => report.trust.status = "signed",
-        Ok(Vouch::Pin) => report.trust.status = "pinned",
-        Ok(Vouch::Nobody) => report.trust.status = "unvouched",
+    report.trust.voucher = vouch.as_ref().map(|v| v.voucher.clone());
+    match policy.admit(artifact.digest(), vouch.as_ref()) {
+        Ok(Admission::Vouch { .. }) => report.trust.status = "vouched",
+        Ok(Admission::Pin) => report.trust.status = "pinned",
+        Ok(Admission::OpenPolicy) => report.trust.status = "unvouched",
         Err(e) => {
             report.trust.error = Some(e.to_string());
             report.violations.push(e.to_string());

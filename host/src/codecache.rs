@@ -65,6 +65,7 @@ pub enum CacheError {
 
 /// Where a model's code came from.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "from", rename_all = "snake_case")]
 pub enum CodeSource {
     /// Compiled now (no cache).

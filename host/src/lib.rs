@@ -32,8 +32,8 @@
 //! - [`Model`]: a loaded artifact serving many threads under its
 //!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
 //! - [`Checks`]: example rows with recorded outputs, run by [`checks::run`].
-//! - [`TrustPolicy`]: which signers and digests a host accepts, checked
-//!   before an artifact is loaded.
+//! - [`TrustPolicy`]: which vouchers and pinned digests a host admits,
+//!   checked before an artifact is loaded ([`Voucher`], [`Vouch`]).
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
 //!   import WASI (Python, JavaScript) load into an empty WASI world.
 //!
@@ -70,5 +70,5 @@ pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError
 pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
 pub use rows::{OutputFault, Row, RowError, Rule, Value};
 pub use sandbox::{Runtime, RuntimeConfig, SandboxError};
-pub use trust::{PublicKey, SecretKey, Signature, TrustError, TrustPolicy, Vouch};
+pub use trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 pub use wasi::WasiPolicy;

@@ -220,12 +220,14 @@ impl ScoreError {
 
 /// What one call cost.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct Usage {
     /// Rows scored.
     pub rows: usize,
     /// Wall time from taking an instance to checking the outputs
     /// (in JSON: `wall_us`, microseconds).
     #[serde(rename = "wall_us", serialize_with = "ser_micros")]
+    #[cfg_attr(feature = "http", schema(value_type = f64))]
     pub wall: Duration,
     /// Fuel the call used, when the runtime meters fuel.
     pub fuel: Option<u64>,

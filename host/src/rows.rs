@@ -148,6 +148,7 @@ impl<K: Into<String>, V: Into<Value>> FromIterator<(K, V)> for Row {
 
 /// The rule a row broke.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "rule", rename_all = "snake_case")]
 #[non_exhaustive]
 pub enum Rule {
@@ -193,6 +194,7 @@ impl fmt::Display for Rule {
 /// A row that breaks the contract: which row, which feature, what value,
 /// which rule.
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[error("row {row}, feature `{feature}` = {value}: {rule}")]
 pub struct RowError {
     /// The row's number: from 1, in the order the rows were given (a CSV

@@ -1,15 +1,21 @@
-//! Who vouches for an artifact: ed25519 keys, detached signatures over the
-//! artifact's sha256, and the policy a host applies before it loads anything.
+//! Who vouches for an artifact, and what a host admits.
 //!
-//! Files (all text, one value each, so a reviewer can read them):
-//! - public key `NAME.pub`: `paddock-ed25519-public <64 hex digits>`
-//! - secret key `NAME.key`: `paddock-ed25519-secret <64 hex digits>` (keep it private)
-//! - signature `ARTIFACT.sig`: JSON `{ "key_id", "digest", "signature" }`
+//! A *voucher* is an ed25519 key pair kept in two small TOML files:
+//! - `NAME.voucher`, the public half, given to every host that should admit
+//!   what NAME vouches for: `name` and `ed25519_public` (64 hex digits);
+//! - `NAME.vouching-key`, the secret half, kept by whoever vouches:
+//!   `name` and `ed25519_seed` (64 hex digits). Keep it private.
 //!
-//! A key's id is the first 16 hex digits of the sha256 of its 32 public key
-//! bytes. What is signed is the text `paddock-artifact-v1 ` followed by the
-//! digest (`sha256:…`), so a signature can never be replayed as a signature
-//! over anything else.
+//! A *vouch* is a voucher's word for one artifact, in `ARTIFACT.vouch`
+//! beside it: `voucher` (the voucher's id), `digest` (`sha256:…`) and
+//! `ed25519_signature` (128 hex digits). A voucher's id is the first 16 hex
+//! digits of the sha256 of its 32 public key bytes. What is signed is the
+//! text `paddock-artifact-v1 ` followed by the digest, so a vouch can never
+//! be replayed as a signature over anything else.
+//!
+//! A host's [`TrustPolicy`] names the vouchers it trusts (a directory of
+//! `.voucher` files) and digests it pins, and [`TrustPolicy::admit`] says
+//! whether an artifact gets in and on whose word ([`Admission`]).
 
 use std::path::{Path, PathBuf};
 
@@ -18,11 +24,16 @@ use serde::{Deserialize, Serialize};
 
 use crate::artifact::Digest;
 
-const PUBLIC_TAG: &str = "paddock-ed25519-public";
-const SECRET_TAG: &str = "paddock-ed25519-secret";
 const CONTEXT: &str = "paddock-artifact-v1 ";
 
-/// Why a key, a signature or a policy check failed.
+/// The suffix of a voucher's public file.
+pub const VOUCHER_SUFFIX: &str = "voucher";
+/// The suffix of a voucher's secret file.
+pub const VOUCHING_KEY_SUFFIX: &str = "vouching-key";
+/// The suffix added to an artifact's path for its vouch.
+pub const VOUCH_SUFFIX: &str = "vouch";
+
+/// Why a voucher file, a vouch or a policy check failed.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
 pub enum TrustError {
@@ -34,7 +45,7 @@ pub enum TrustError {
         /// What the system said.
         source: std::io::Error,
     },
-    /// A key or signature file is not in the expected form.
+    /// A voucher, vouching-key or vouch file is not in the expected form.
     #[error("{path}: {reason}")]
     BadFile {
         /// The file.
@@ -42,31 +53,37 @@ pub enum TrustError {
         /// What is wrong.
         reason: String,
     },
-    /// The policy requires a signature and there is none.
-    #[error("the artifact {digest} is not signed, and the policy requires a signature from a trusted key")]
-    Unsigned {
+    /// A voucher's name cannot be used in a file name.
+    #[error("voucher name {name:?}: use 1 to 64 letters, digits, `-`, `_` or `.`, not starting with `.`")]
+    BadName {
+        /// The name given.
+        name: String,
+    },
+    /// The policy requires a vouch and nobody vouched.
+    #[error("nobody vouched for the artifact {digest} (no .vouch file beside it), and the policy requires a trusted voucher or a pin")]
+    Unvouched {
         /// The artifact's digest.
         digest: Digest,
     },
-    /// The signature names a key that is not trusted.
-    #[error("the artifact is signed by key {key_id}, which is not among the trusted keys")]
-    UnknownSigner {
-        /// The signer's key id.
-        key_id: String,
+    /// The vouch is by a voucher the policy does not trust.
+    #[error("the artifact is vouched for by voucher {voucher}, who is not among the trusted vouchers")]
+    UnknownVoucher {
+        /// The voucher's id.
+        voucher: String,
     },
-    /// The signature is for another artifact.
-    #[error("the signature is for {expected}, but the artifact is {actual}")]
+    /// The vouch is for another artifact.
+    #[error("the vouch is for {expected}, but the artifact is {actual}")]
     DigestMismatch {
-        /// The digest the signature covers.
+        /// The digest the vouch covers.
         expected: String,
         /// The artifact's digest.
         actual: Digest,
     },
-    /// The signature does not verify under the named key.
-    #[error("the signature by key {key_id} does not verify: the artifact or signature was altered")]
-    BadSignature {
-        /// The signer's key id.
-        key_id: String,
+    /// The vouch's signature does not hold under the voucher's key.
+    #[error("the vouch by voucher {voucher} does not hold: the artifact or its vouch was altered")]
+    BrokenVouch {
+        /// The voucher's id.
+        voucher: String,
     },
     /// The artifact's digest is not one of the pinned digests.
     #[error("the artifact is {actual}, which is not pinned (pinned: {})", pinned.iter().map(ToString::to_string).collect::<Vec<_>>().join(", "))]
@@ -78,107 +95,155 @@ pub enum TrustError {
     },
 }
 
-/// A public key that may vouch for artifacts.
+/// The public half of a voucher: what a host trusts.
 #[derive(Clone, Debug, PartialEq, Eq)]
-pub struct PublicKey {
+pub struct Voucher {
+    name: String,
     key: VerifyingKey,
 }
 
-impl PublicKey {
-    /// The key id: the first 16 hex digits of the sha256 of the key bytes.
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct VoucherFile {
+    name: String,
+    ed25519_public: String,
+}
+
+#[derive(Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+struct VouchingKeyFile {
+    name: String,
+    ed25519_seed: String,
+}
+
+impl Voucher {
+    /// The voucher's id: the first 16 hex digits of the sha256 of its key.
     pub fn id(&self) -> String {
         Digest::of(self.key.as_bytes()).hex()[..16].to_owned()
     }
 
-    /// The key as it is written to a `.pub` file.
-    pub fn to_text(&self) -> String {
-        format!("{PUBLIC_TAG} {}\n", hex(self.key.as_bytes()))
+    /// The name it was made with.
+    pub fn name(&self) -> &str {
+        &self.name
     }
 
-    /// Reads a `.pub` file.
+    /// The voucher as it is written to a `.voucher` file.
+    pub fn to_text(&self) -> String {
+        let body = toml_text(&VoucherFile { name: self.name.clone(), ed25519_public: hex(self.key.as_bytes()) });
+        format!(
+            "# paddock voucher {} (id {}): a host that trusts this file admits the artifacts it vouches for.\n{body}",
+            self.name,
+            self.id()
+        )
+    }
+
+    /// Reads a `.voucher` file.
     ///
     /// # Errors
-    /// [`TrustError::Io`] or [`TrustError::BadFile`].
+    /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
-        let bytes = read_tagged(path, PUBLIC_TAG)?;
+        let file: VoucherFile = read_toml(path, "a voucher")?;
+        let bytes = key_bytes(path, "ed25519_public", &file.ed25519_public)?;
         let key = VerifyingKey::from_bytes(&bytes)
-            .map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not an ed25519 public key: {e}") })?;
-        Ok(PublicKey { key })
+            .map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("ed25519_public is not an ed25519 public key: {e}") })?;
+        Ok(Voucher { name: file.name, key })
     }
 }
 
-/// A secret key that signs artifacts.
-pub struct SecretKey {
+/// The secret half of a voucher: what vouches for artifacts.
+pub struct VouchingKey {
+    name: String,
     key: SigningKey,
 }
 
-impl SecretKey {
-    /// A new random key from the operating system's generator.
+impl VouchingKey {
+    /// A new voucher from the operating system's random source.
     ///
     /// # Errors
+    /// [`TrustError::BadName`] for a name that cannot be a file name;
     /// [`TrustError::Io`] when the system has no randomness to give.
-    pub fn generate() -> Result<Self, TrustError> {
+    pub fn generate(name: &str) -> Result<Self, TrustError> {
+        check_name(name)?;
         let mut seed = [0u8; 32];
         getrandom::fill(&mut seed)
             .map_err(|e| TrustError::Io { path: "(system random source)".into(), source: std::io::Error::other(e.to_string()) })?;
-        Ok(SecretKey { key: SigningKey::from_bytes(&seed) })
+        Ok(VouchingKey { name: name.to_owned(), key: SigningKey::from_bytes(&seed) })
     }
 
-    /// The matching public key.
-    pub fn public(&self) -> PublicKey {
-        PublicKey { key: self.key.verifying_key() }
+    /// The public half.
+    pub fn voucher(&self) -> Voucher {
+        Voucher { name: self.name.clone(), key: self.key.verifying_key() }
     }
 
-    /// The key as it is written to a `.key` file.
+    /// The key as it is written to a `.vouching-key` file.
     pub fn to_text(&self) -> String {
-        format!("{SECRET_TAG} {}\n", hex(self.key.as_bytes()))
+        let body = toml_text(&VouchingKeyFile { name: self.name.clone(), ed25519_seed: hex(self.key.as_bytes()) });
+        format!(
+            "# paddock vouching key {} (id {}): SECRET. Whoever holds this file can vouch as {}.\n{body}",
+            self.name,
+            self.voucher().id(),
+            self.name
+        )
     }
 
-    /// Reads a `.key` file.
+    /// Reads a `.vouching-key` file.
     ///
     /// # Errors
-    /// [`TrustError::Io`] or [`TrustError::BadFile`].
+    /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
-        Ok(SecretKey { key: SigningKey::from_bytes(&read_tagged(path, SECRET_TAG)?) })
+        let file: VouchingKeyFile = read_toml(path, "a vouching key")?;
+        let seed = key_bytes(path, "ed25519_seed", &file.ed25519_seed)?;
+        Ok(VouchingKey { name: file.name, key: SigningKey::from_bytes(&seed) })
     }
 
-    /// Signs an artifact's digest.
-    pub fn sign(&self, digest: Digest) -> Signature {
+    /// Vouches for an artifact's digest.
+    pub fn vouch(&self, digest: Digest) -> Vouch {
         let sig = self.key.sign(message(digest).as_bytes());
-        Signature { key_id: self.public().id(), digest: digest.to_string(), signature: hex(&sig.to_bytes()) }
+        Vouch { voucher: self.voucher().id(), digest: digest.to_string(), ed25519_signature: hex(&sig.to_bytes()) }
     }
 }
 
-/// A detached signature over an artifact's digest.
+/// A voucher's word for one artifact, kept beside it in `ARTIFACT.vouch`.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, Deserialize)]
-pub struct Signature {
-    /// Id of the key that signed.
-    pub key_id: String,
-    /// The digest signed (`sha256:…`).
+#[serde(deny_unknown_fields)]
+pub struct Vouch {
+    /// The id of the voucher that vouched.
+    pub voucher: String,
+    /// The digest vouched for (`sha256:…`).
     pub digest: String,
-    /// The ed25519 signature, hex.
-    pub signature: String,
+    /// The ed25519 signature over `paddock-artifact-v1 <digest>`, hex.
+    pub ed25519_signature: String,
 }
 
-impl Signature {
-    /// Reads a `.sig` file.
+impl Vouch {
+    /// Reads a `.vouch` file.
     ///
     /// # Errors
-    /// [`TrustError::Io`] or [`TrustError::BadFile`].
+    /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
-        let text = std::fs::read(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
-        serde_json::from_slice(&text).map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not a signature: {e}") })
+        let bytes = std::fs::read(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
+        Self::from_bytes(&bytes).map_err(|reason| TrustError::BadFile { path: path.to_owned(), reason })
     }
 
-    /// The signature as JSON text.
-    pub fn to_json(&self) -> String {
-        serde_json::to_string_pretty(self).unwrap_or_default() + "\n"
+    /// Parses a vouch from the bytes of its file.
+    ///
+    /// # Errors
+    /// What is wrong with the text, in words.
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self, String> {
+        let text = std::str::from_utf8(bytes).map_err(|_| "not a vouch: the file is not UTF-8 text".to_owned())?;
+        toml::from_str(text).map_err(|e| format!("not a vouch: {}", e.message()))
     }
 
-    /// Where the signature of an artifact lives: the artifact path plus `.sig`.
+    /// The vouch as the text of its file.
+    pub fn to_text(&self) -> String {
+        format!("# paddock vouch: voucher {} vouches for {}.\n{}", self.voucher, self.digest, toml_text(self))
+    }
+
+    /// Where the vouch of an artifact lives: the artifact's path plus `.vouch`.
     pub fn path_for(artifact: &Path) -> PathBuf {
         let mut p = artifact.as_os_str().to_owned();
-        p.push(".sig");
+        p.push(".");
+        p.push(VOUCH_SUFFIX);
         PathBuf::from(p)
     }
 }
@@ -186,100 +251,128 @@ impl Signature {
 /// What a host requires before it loads an artifact.
 #[derive(Clone, Debug, Default)]
 pub struct TrustPolicy {
-    /// Keys whose signatures are accepted.
-    pub trusted: Vec<PublicKey>,
-    /// Digests accepted without a signature.
+    /// Vouchers whose vouches are accepted.
+    pub trusted: Vec<Voucher>,
+    /// Digests admitted without a vouch.
     pub pinned: Vec<Digest>,
-    /// Whether anything is required at all. `false` (the default) accepts
+    /// Whether anything is required at all. `false` (the default) admits
     /// every artifact and only reports what it found.
     pub required: bool,
 }
 
-/// Who vouched for an artifact.
+/// On whose word an artifact was admitted.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
-#[serde(tag = "by", rename_all = "snake_case")]
-pub enum Vouch {
-    /// A valid signature by this trusted key.
-    Signature {
-        /// The key id.
-        key_id: String,
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "admitted_by", rename_all = "snake_case")]
+pub enum Admission {
+    /// A vouch that holds, by a trusted voucher.
+    Vouch {
+        /// The voucher's id.
+        voucher: String,
+        /// The name in the trusted `.voucher` file.
+        name: String,
     },
     /// The digest is pinned.
     Pin,
-    /// Nothing, and the policy did not require anything.
-    Nobody,
+    /// Nobody's: the policy requires nothing.
+    OpenPolicy,
 }
 
 impl TrustPolicy {
-    /// Reads every `*.pub` file in a directory as a trusted key.
+    /// Reads every `*.voucher` file in a directory as a trusted voucher.
     ///
     /// # Errors
     /// [`TrustError::Io`] for an unreadable directory, [`TrustError::BadFile`]
-    /// naming the first bad key file.
+    /// naming the first bad voucher file.
     pub fn trust_dir(mut self, dir: &Path) -> Result<Self, TrustError> {
         let entries = std::fs::read_dir(dir).map_err(|source| TrustError::Io { path: dir.to_owned(), source })?;
         let mut paths: Vec<PathBuf> = entries
             .filter_map(|e| e.ok().map(|e| e.path()))
-            .filter(|p| p.extension().is_some_and(|x| x == "pub"))
+            .filter(|p| p.extension().is_some_and(|x| x == VOUCHER_SUFFIX))
             .collect();
         paths.sort();
         for p in paths {
-            self.trusted.push(PublicKey::read(&p)?);
+            self.trusted.push(Voucher::read(&p)?);
         }
         self.required = true;
         Ok(self)
     }
 
-    /// Checks an artifact's digest, and its signature if it has one.
+    /// Whether an artifact with this digest, and this vouch if it has one,
+    /// is admitted, and on whose word.
     ///
-    /// A signature that is present is always checked, even when the policy
-    /// requires nothing: a bad signature is never ignored.
+    /// A vouch that is present is always checked, even when the policy
+    /// requires nothing: a broken vouch is never ignored.
     ///
     /// # Errors
-    /// [`TrustError::DigestMismatch`], [`TrustError::BadSignature`] for a
-    /// signature that does not hold; when the policy is required:
-    /// [`TrustError::UnknownSigner`] (signed, but not by a trusted key), or
-    /// [`TrustError::NotPinned`] (naming the pinned and actual digests) /
-    /// [`TrustError::Unsigned`] when neither a trusted signature nor a pin vouches.
-    pub fn check(&self, digest: Digest, signature: Option<&Signature>) -> Result<Vouch, TrustError> {
-        let mut unknown_signer = None;
-        if let Some(sig) = signature {
-            if sig.digest != digest.to_string() {
-                return Err(TrustError::DigestMismatch { expected: sig.digest.clone(), actual: digest });
+    /// [`TrustError::DigestMismatch`] or [`TrustError::BrokenVouch`] for a
+    /// vouch that does not hold; when the policy is required:
+    /// [`TrustError::UnknownVoucher`] (vouched, but not by a trusted
+    /// voucher), or [`TrustError::NotPinned`] (naming the pinned and actual
+    /// digests) / [`TrustError::Unvouched`] when neither a trusted vouch nor
+    /// a pin admits it.
+    pub fn admit(&self, digest: Digest, vouch: Option<&Vouch>) -> Result<Admission, TrustError> {
+        let mut unknown_voucher = None;
+        if let Some(vouch) = vouch {
+            if vouch.digest != digest.to_string() {
+                return Err(TrustError::DigestMismatch { expected: vouch.digest.clone(), actual: digest });
             }
-            match self.trusted.iter().find(|k| k.id() == sig.key_id) {
-                Some(key) => {
-                    verify(key, digest, sig)?;
-                    return Ok(Vouch::Signature { key_id: sig.key_id.clone() });
+            match self.trusted.iter().find(|v| v.id() == vouch.voucher) {
+                Some(voucher) => {
+                    holds(voucher, digest, vouch)?;
+                    return Ok(Admission::Vouch { voucher: vouch.voucher.clone(), name: voucher.name.clone() });
                 }
-                None => unknown_signer = Some(sig.key_id.clone()),
+                None => unknown_voucher = Some(vouch.voucher.clone()),
             }
         }
         if self.pinned.contains(&digest) {
-            return Ok(Vouch::Pin);
+            return Ok(Admission::Pin);
         }
         if !self.required {
-            return Ok(Vouch::Nobody);
+            return Ok(Admission::OpenPolicy);
         }
-        if let Some(key_id) = unknown_signer {
-            return Err(TrustError::UnknownSigner { key_id });
+        if let Some(voucher) = unknown_voucher {
+            return Err(TrustError::UnknownVoucher { voucher });
         }
         if !self.pinned.is_empty() {
             return Err(TrustError::NotPinned { actual: digest, pinned: self.pinned.clone() });
         }
-        Err(TrustError::Unsigned { digest })
+        Err(TrustError::Unvouched { digest })
     }
 }
 
-fn verify(key: &PublicKey, digest: Digest, sig: &Signature) -> Result<(), TrustError> {
-    let bad = || TrustError::BadSignature { key_id: sig.key_id.clone() };
-    let bytes: [u8; 64] = unhex(&sig.signature).and_then(|b| b.try_into().ok()).ok_or_else(bad)?;
+fn holds(voucher: &Voucher, digest: Digest, vouch: &Vouch) -> Result<(), TrustError> {
+    let broken = || TrustError::BrokenVouch { voucher: vouch.voucher.clone() };
+    let bytes: [u8; 64] = unhex(&vouch.ed25519_signature).and_then(|b| b.try_into().ok()).ok_or_else(broken)?;
     let signature = ed25519_dalek::Signature::from_bytes(&bytes);
-    key.key.verify(message(digest).as_bytes(), &signature).map_err(|_| bad())
+    voucher.key.verify(message(digest).as_bytes(), &signature).map_err(|_| broken())
 }
 
 fn message(digest: Digest) -> String {
     format!("{CONTEXT}{digest}")
+}
+
+fn check_name(name: &str) -> Result<(), TrustError> {
+    let ok = (1..=64).contains(&name.len())
+        && !name.starts_with('.')
+        && name.chars().all(|c| c.is_ascii_alphanumeric() || matches!(c, '-' | '_' | '.'));
+    if ok { Ok(()) } else { Err(TrustError::BadName { name: name.to_owned() }) }
+}
+
+fn toml_text<T: Serialize>(value: &T) -> String {
+    // Plain strings only: serialising them cannot fail.
+    toml::to_string(value).unwrap_or_default()
+}
+
+fn read_toml<T: serde::de::DeserializeOwned>(path: &Path, what: &str) -> Result<T, TrustError> {
+    let text = std::fs::read_to_string(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
+    toml::from_str(&text).map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not {what}: {}", e.message()) })
+}
+
+fn key_bytes(path: &Path, field: &str, value: &str) -> Result<[u8; 32], TrustError> {
+    unhex(value)
+        .and_then(|b| b.try_into().ok())
+        .ok_or_else(|| TrustError::BadFile { path: path.to_owned(), reason: format!("{field}: expected 64 hex digits") })
 }
 
 fn hex(bytes: &[u8]) -> String {
@@ -293,17 +386,6 @@ fn unhex(text: &str) -> Option<Vec<u8>> {
     (0..text.len()).step_by(2).map(|i| u8::from_str_radix(text.get(i..i + 2)?, 16).ok()).collect()
 }
 
-fn read_tagged(path: &Path, tag: &str) -> Result<[u8; 32], TrustError> {
-    let text = std::fs::read_to_string(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
-    let bad = |reason: String| TrustError::BadFile { path: path.to_owned(), reason };
-    let value = text
-        .trim()
-        .strip_prefix(tag)
-        .ok_or_else(|| bad(format!("expected a line starting with `{tag}`")))?
-        .trim();
-    unhex(value).and_then(|b| b.try_into().ok()).ok_or_else(|| bad("expected 64 hex digits".into()))
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -313,5 +395,13 @@ mod tests {
         assert_eq!(unhex(&hex(&[0, 1, 254, 255])), Some(vec![0, 1, 254, 255]));
         assert_eq!(unhex("abc"), None);
         assert_eq!(unhex("zz"), None);
+    }
+
+    #[test]
+    fn names_that_cannot_be_file_names_are_refused() {
+        for bad in ["", ".hidden", "a/b", "a b", &"x".repeat(65)] {
+            assert!(matches!(VouchingKey::generate(bad), Err(TrustError::BadName { .. })), "{bad:?}");
+        }
+        assert!(VouchingKey::generate("co-op_2026.release").is_ok());
     }
 }

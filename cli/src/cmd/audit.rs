@@ -33,8 +33,8 @@ fn text(r: &AuditReport) -> String {
     let mut line = |k: &str, v: String| out.push_str(&format!("  {k:<12} {v}\n"));
     line("digest", r.digest.map_or("unreadable".into(), |d| d.to_string()));
     line("size", format!("{} bytes", r.bytes));
-    let signer = r.trust.signer.as_deref().map_or(String::new(), |s| format!(" (signature by key {s})"));
-    line("trust", format!("{}{signer}", r.trust.status));
+    let voucher = r.trust.voucher.as_deref().map_or(String::new(), |v| format!(" (vouch by voucher {v})"));
+    line("trust", format!("{}{voucher}", r.trust.status));
     if let Some(s) = &r.surface {
         line("imports", if s.imports.is_empty() { "none".into() } else { s.imports.join(", ") });
         line("exports", s.exports.join(", "));

@@ -47,7 +47,7 @@ struct Answer {
     plugged_in: String,
     minutes: f64,
     minutes_version: String,
-    /// Why that version (structured: `by`, and the rule or canary).
+    /// Why that version (structured: `picked_by`, and the rule or canary).
     minutes_reason: std::sync::Arc<paddock_host::registry::Reason>,
     overstay_probability: f64,
     overstay_version: String,

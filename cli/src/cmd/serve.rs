@@ -58,7 +58,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let refused = registry.status().problems().count();
     if refused > 0 {
         let what = if refused == 1 { "1 artifact is" } else { &format!("{refused} artifacts are") };
-        eprintln!("warning: {what} not loaded as on disk; see GET /v1/status or `paddock status`");
+        eprintln!("warning: {what} not loaded as on disk; see GET /store or `paddock status`");
     }
     let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
     let defaults = ServeOptions::default();

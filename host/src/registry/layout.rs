@@ -5,7 +5,7 @@
 //!   routes.toml                       which version answers which request
 //!   charge-minutes/                   one directory per model, named as its contract
 //!     1.0.0.wasm                      one artifact per version, named by its semver
-//!     1.0.0.wasm.sig                  its detached signature (optional)
+//!     1.0.0.wasm.vouch                a voucher's word for it (optional)
 //!     1.1.0.wasm
 //!   overstay-risk/
 //!     2.0.0.wasm

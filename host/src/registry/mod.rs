@@ -9,7 +9,7 @@
 //! version it started on until it returns.
 //!
 //! A new or changed artifact passes a gate before any route may point to it:
-//! trust (signature / pin) → parse → compile → instantiate and read its
+//! trust (vouch / pin) → parse → compile → instantiate and read its
 //! contract → its name and version match its place in the store → the
 //! checks it carries pass. A refusal keeps the previous state serving and
 //! is reported in [`Status`] and the log. A routes file that does not parse,
@@ -45,7 +45,7 @@ use crate::codecache::{CacheError, CodeCache, CodeSource};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
-use crate::trust::{Signature, TrustPolicy, Vouch};
+use crate::trust::{Admission, TrustPolicy, Vouch};
 
 pub use layout::{ROUTES_FILE, STATE_DIR, artifact_path};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
@@ -248,20 +248,21 @@ pub(crate) struct Loaded {
     pub model: Model,
     pub outputs: Arc<[String]>,
     pub rel: PathBuf,
-    pub vouch: Vouch,
+    pub admission: Admission,
     pub checks: Option<CheckReport>,
     pub ledger: Arc<ledger::VersionLedger>,
 }
 
 /// The stage at which an artifact was refused.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
 pub enum Stage {
     /// Its place in the store names no model and version.
     Layout,
     /// It could not be read.
     Read,
-    /// Its signature or digest is not accepted.
+    /// Its vouch or digest is not admitted.
     Trust,
     /// It is not a well-formed artifact.
     Parse,
@@ -275,6 +276,7 @@ pub enum Stage {
 
 /// Why an artifact was refused.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct Refusal {
     /// Where in the gate.
     pub stage: Stage,
@@ -299,6 +301,7 @@ impl std::fmt::Display for Refusal {
 
 /// What the registry did with one artifact file.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "state", rename_all = "snake_case")]
 pub enum ArtifactState {
     /// It passed the gate and may be routed to.
@@ -322,8 +325,10 @@ pub enum ArtifactState {
 
 /// One artifact in the status listing.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ArtifactStatus {
     /// Path relative to the store.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
     pub path: PathBuf,
     /// The model, when the path names one.
     pub model: Option<String>,
@@ -334,10 +339,10 @@ pub struct ArtifactStatus {
     /// What happened to it.
     #[serde(flatten)]
     pub state: ArtifactState,
-    /// The routes that use this version (`default`, `rule `x``, `canary`, `shadow`).
+    /// The routes that use this version (`default`, `rule NAME`, `canary`, `shadow`).
     pub used_by: Vec<String>,
-    /// Who vouched for the served bytes.
-    pub vouch: Option<Vouch>,
+    /// On whose word the served bytes were admitted.
+    pub admission: Option<Admission>,
     /// The served bytes' checks: `"40/40 passed"`, or `"none carried"`.
     pub checks: Option<String>,
     /// Where the served code came from (compiled or the code cache).
@@ -346,6 +351,7 @@ pub struct ArtifactStatus {
 
 /// Whether the routes file was taken.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "state", rename_all = "snake_case")]
 pub enum RoutesState {
     /// There is no routes file: nothing is served.
@@ -362,8 +368,10 @@ pub enum RoutesState {
 
 /// What the registry serves, and what it refused.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct Status {
     /// The store directory.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
     pub store: PathBuf,
     /// Counts up by one at every reload that changed anything.
     pub generation: u64,
@@ -405,7 +413,7 @@ struct ShadowPlan {
 /// What a reload saw last time, so unchanged files are not gated again.
 #[derive(Default)]
 struct Memory {
-    /// Per artifact path: fingerprint of its bytes and signature, and the outcome.
+    /// Per artifact path: fingerprint of its bytes and vouch, and the outcome.
     files: HashMap<PathBuf, (Fingerprint, Outcome)>,
     /// Fingerprint of the routes file last read, and whether it was accepted.
     routes: Option<(Fingerprint, RoutesState)>,
@@ -460,6 +468,7 @@ impl std::fmt::Debug for Registry {
 
 /// What a reload changed.
 #[derive(Clone, Debug, Default, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ReloadReport {
     /// The generation now serving.
     pub generation: u64,
@@ -470,14 +479,26 @@ pub struct ReloadReport {
     /// Versions no longer loaded.
     pub unloaded: Vec<String>,
     /// Artifacts refused in this reload, with why.
-    pub refused: Vec<(PathBuf, Refusal)>,
+    pub refused: Vec<RefusedFile>,
     /// Whether the routes changed.
     pub routes_changed: bool,
     /// The routes file's problems, when it was refused in this reload.
     pub routes_refused: Vec<String>,
     /// How long the reload took.
     #[serde(rename = "took_ms", serialize_with = "ser_ms")]
+    #[cfg_attr(feature = "http", schema(value_type = f64))]
     pub took: Duration,
+}
+
+/// An artifact refused by a reload.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct RefusedFile {
+    /// Its path, relative to the store.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub path: PathBuf,
+    /// Why it was refused.
+    pub refusal: Refusal,
 }
 
 fn ser_ms<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
@@ -771,23 +792,23 @@ impl Registry {
                 }
             };
             let limit = shared.options.model.limits.artifact_bytes;
-            let (bytes, signature) = match read_artifact(&f.path, limit) {
+            let (bytes, vouch) = match read_artifact(&f.path, limit) {
                 Ok(read) => read,
                 Err(refusal) => {
                     statuses.push(refused_status(f, Some(&(model, version)), None, refusal));
                     continue;
                 }
             };
-            let fingerprint = fingerprint(&bytes, signature.as_deref());
+            let fingerprint = fingerprint(&bytes, vouch.as_deref());
             let outcome = match memory.files.get(&f.path) {
                 Some((fp, outcome)) if *fp == fingerprint => outcome.clone(),
                 _ => {
                     let digest = Digest::of(&bytes);
-                    match self.gate(f, &model, &version, bytes, signature.as_deref()) {
+                    match self.gate(f, &model, &version, bytes, vouch.as_deref()) {
                         Ok(loaded) => Outcome::Loaded(Arc::new(loaded)),
                         Err(refusal) => {
                             tracing::warn!(artifact = %f.rel.display(), %refusal, "artifact refused");
-                            report.refused.push((f.rel.clone(), refusal.clone()));
+                            report.refused.push(RefusedFile { path: f.rel.clone(), refusal: refusal.clone() });
                             Outcome::Refused(refusal, Some(digest))
                         }
                     }
@@ -940,15 +961,12 @@ impl Registry {
     }
 
     /// The gate: trust → parse → compile, start, contract → identity → checks.
-    fn gate(&self, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, signature: Option<&[u8]>) -> Result<Loaded, Refusal> {
+    fn gate(&self, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, vouch: Option<&[u8]>) -> Result<Loaded, Refusal> {
         let shared = &*self.inner;
         let refuse = |stage, reason: String| Refusal { stage, reason };
         let digest = Digest::of(&bytes);
-        let signature = signature
-            .map(|s| serde_json::from_slice::<Signature>(s))
-            .transpose()
-            .map_err(|e| refuse(Stage::Trust, format!("its .sig file is not a signature: {e}")))?;
-        let vouch = shared.options.trust.check(digest, signature.as_ref()).map_err(|e| refuse(Stage::Trust, e.to_string()))?;
+        let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| refuse(Stage::Trust, format!("its .vouch file: {e}")))?;
+        let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| refuse(Stage::Trust, e.to_string()))?;
         let limit = shared.options.model.limits.artifact_bytes;
         let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| refuse(Stage::Parse, e.to_string()))?;
         let checks = artifact.checks().map_err(|e| refuse(Stage::Parse, e.to_string()))?;
@@ -992,7 +1010,7 @@ impl Registry {
             outputs: loaded.contract().outputs.iter().map(|o| o.name.clone()).collect(),
             model: loaded,
             rel: f.rel.clone(),
-            vouch,
+            admission,
             checks: report,
         })
     }
@@ -1005,17 +1023,17 @@ fn flatten(versions: &BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>) -> BTree
         .collect()
 }
 
-fn fingerprint(bytes: &[u8], signature: Option<&[u8]>) -> Fingerprint {
+fn fingerprint(bytes: &[u8], vouch: Option<&[u8]>) -> Fingerprint {
     let mut h = Sha256::new();
     h.update(Sha256::digest(bytes));
-    if let Some(s) = signature {
+    if let Some(s) = vouch {
         h.update(Sha256::digest(s));
     }
     h.finalize().into()
 }
 
 /// Reads an artifact (refusing it over the size cap without reading it all)
-/// and its signature file, if any.
+/// and its vouch file, if any.
 fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<Vec<u8>>), Refusal> {
     let read = |reason: String| Refusal { stage: Stage::Read, reason };
     let size = std::fs::metadata(path).map_err(|e| read(e.to_string()))?.len();
@@ -1023,13 +1041,13 @@ fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<Vec<u8>>), 
         return Err(read(crate::limits::LimitHit::ArtifactSize { limit, actual: size }.to_string()));
     }
     let bytes = std::fs::read(path).map_err(|e| read(e.to_string()))?;
-    let sig_path = Signature::path_for(path);
-    let signature = match std::fs::read(&sig_path) {
+    let vouch_path = Vouch::path_for(path);
+    let vouch = match std::fs::read(&vouch_path) {
         Ok(s) => Some(s),
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => None,
-        Err(e) => return Err(read(format!("{}: {e}", sig_path.display()))),
+        Err(e) => return Err(read(format!("{}: {e}", vouch_path.display()))),
     };
-    Ok((bytes, signature))
+    Ok((bytes, vouch))
 }
 
 fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactStatus {
@@ -1041,7 +1059,7 @@ fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactStatus {
         digest: Some(loaded.model.digest()),
         state,
         used_by: Vec::new(),
-        vouch: Some(loaded.vouch.clone()),
+        admission: Some(loaded.admission.clone()),
         checks: Some(match &loaded.checks {
             Some(r) => format!("{}/{} passed", r.passed, r.cases),
             None => "none carried".into(),
@@ -1058,7 +1076,7 @@ fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, digest: Opt
         digest,
         state: ArtifactState::Refused { refusal },
         used_by: Vec::new(),
-        vouch: None,
+        admission: None,
         checks: None,
         code: None,
     }

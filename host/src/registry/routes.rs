@@ -6,9 +6,10 @@
 //!    (`region = ["north", "east"]`), or a time window (days of the week
 //!    and hours, read in a named time zone);
 //! 2. otherwise the model's default version;
-//! 3. then a canary, if any, takes over a fixed share of those requests,
-//!    chosen by hashing one context key so that a given key (a site, say)
-//!    always sees the same version;
+//! 3. then a canary, if any, takes over a fixed share of those requests.
+//!    Its `cohort` names the context field that decides: the field's value
+//!    (a site, say) is hashed, so every request from one site lands on the
+//!    same side of the canary, and raising the share only adds sites;
 //! 4. a shadow version, if any, is scored on a sample of requests in the
 //!    background; its answers are compared, never returned.
 //!
@@ -27,7 +28,7 @@
 //! [models.charge-minutes.canary]
 //! version = "1.2.0"
 //! share = 0.10
-//! key = "site"
+//! cohort = "site"                   # requests with one site value stay on one side
 //!
 //! [models.charge-minutes.shadow]
 //! version = "2.0.0-rc.1"
@@ -104,7 +105,8 @@ impl Clock for ManualClock {
 
 /// Why a version answered.
 #[derive(Clone, Debug, PartialEq, Serialize)]
-#[serde(tag = "by", rename_all = "snake_case")]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "picked_by", rename_all = "snake_case")]
 pub enum Reason {
     /// No rule matched: the model's default version.
     Default,
@@ -113,11 +115,12 @@ pub enum Reason {
         /// The rule's name.
         name: String,
     },
-    /// The canary took this request over from what would have answered.
+    /// The request's cohort fell in the canary's share, so the canary
+    /// answered in place of the route that would have.
     Canary {
-        /// The context key hashed.
-        key: String,
-        /// The canary's share of requests.
+        /// The context field whose value put the request in the canary.
+        cohort: String,
+        /// The canary's share of cohort values.
         share: f64,
         /// The route that would have answered without the canary:
         /// `default` or a rule's name.
@@ -140,10 +143,10 @@ impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Reason::Default => f.write_str("default"),
-            Reason::Rule { name } => write!(f, "rule `{name}`"),
-            Reason::Canary { key, share, instead_of } => {
-                let instead = if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule `{instead_of}`") };
-                write!(f, "canary ({}% by `{key}`, instead of {instead})", share * 100.0)
+            Reason::Rule { name } => write!(f, "rule {name}"),
+            Reason::Canary { cohort, share, instead_of } => {
+                let instead = if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule {instead_of}") };
+                write!(f, "canary: {cohort} in its {}% (else {instead})", share * 100.0)
             }
         }
     }
@@ -191,7 +194,8 @@ struct Window {
 #[derive(Clone, Debug)]
 struct Canary {
     version: Version,
-    key: String,
+    /// The context field whose value is hashed.
+    cohort: String,
     share: f64,
     /// Which routes it may take over (index as in `reasons`); all if empty.
     applies_to: Vec<usize>,
@@ -291,8 +295,8 @@ impl Routes {
                 let here = at("canary");
                 let version = semver_or(&c.version, &format!("{here}: version"), p);
                 share(c.share, &format!("{here}: share"), p);
-                if c.key.trim().is_empty() {
-                    p.push(format!("{here}: key is empty"));
+                if c.cohort.trim().is_empty() {
+                    p.push(format!("{here}: cohort is empty (name the context field, such as `site`, that keeps a request on one side)"));
                 }
                 let mut applies_to = Vec::new();
                 for route in &c.applies_to {
@@ -301,7 +305,7 @@ impl Routes {
                         None => p.push(format!("{here}: applies_to names `{route}`, which is neither `default` nor a rule")),
                     }
                 }
-                Some(Canary { version: version?, key: c.key.clone(), share: c.share, applies_to })
+                Some(Canary { version: version?, cohort: c.cohort.clone(), share: c.share, applies_to })
             });
             let shadow = m.shadow.as_ref().and_then(|s| {
                 let here = at("shadow");
@@ -318,7 +322,7 @@ impl Routes {
             let canary_reasons = match &canary {
                 Some(c) => reasons
                     .iter()
-                    .map(|base| Arc::new(Reason::Canary { key: c.key.clone(), share: c.share, instead_of: base.route().to_owned() }))
+                    .map(|base| Arc::new(Reason::Canary { cohort: c.cohort.clone(), share: c.share, instead_of: base.route().to_owned() }))
                     .collect(),
                 None => Vec::new(),
             };
@@ -355,7 +359,7 @@ impl Routes {
             let entry = uses.entry(name).or_default();
             entry.entry(&m.default).or_default().push(DEFAULT_ROUTE.to_owned());
             for r in &m.rules {
-                entry.entry(&r.version).or_default().push(format!("rule `{}`", r.name));
+                entry.entry(&r.version).or_default().push(format!("rule {}", r.name));
             }
             if let Some(c) = &m.canary {
                 entry.entry(&c.version).or_default().push("canary".to_owned());
@@ -389,7 +393,7 @@ impl ModelRoutes {
         let mut reason = &self.reasons[base];
         if let Some(c) = &self.canary {
             let eligible = c.applies_to.is_empty() || c.applies_to.contains(&base);
-            if eligible && context.get(&c.key).is_some_and(|v| in_share(model, v, c.share)) {
+            if eligible && context.get(&c.cohort).is_some_and(|v| in_share(model, v, c.share)) {
                 version = &c.version;
                 reason = &self.canary_reasons[base];
             }
@@ -431,9 +435,9 @@ impl Window {
     }
 }
 
-/// Whether `value` of the canary key falls in the canary's share for this
-/// model: the first 8 bytes of sha256(model, value) as a fraction of 2^64.
-/// Stable across processes and machines; raising the share only adds keys.
+/// Whether `value` of the canary's cohort field falls in the canary's share
+/// for this model: the first 8 bytes of sha256(model, value) as a fraction of 2^64.
+/// Stable across processes and machines; raising the share only adds values.
 pub fn in_share(model: &str, value: &str, share: f64) -> bool {
     if share >= 1.0 {
         return true;
@@ -552,7 +556,7 @@ struct RuleFile {
 struct CanaryFile {
     version: String,
     share: f64,
-    key: String,
+    cohort: String,
     #[serde(default)]
     applies_to: Vec<String>,
 }
@@ -694,7 +698,7 @@ mod tests {
     }
 
     #[test]
-    fn a_canary_takes_its_share_of_keys_and_each_key_sticks() {
+    fn a_canary_takes_its_share_of_cohorts_and_each_cohort_stays_on_its_side() {
         let routes = Routes::parse(
             r#"
             [models.m]
@@ -702,7 +706,7 @@ mod tests {
             [models.m.canary]
             version = "1.1.0"
             share = 0.1
-            key = "site"
+            cohort = "site"
         "#,
         )
         .unwrap();
@@ -712,7 +716,7 @@ mod tests {
         for i in 0..10_000 {
             let c = ctx(&[("site", &format!("site-{i}"))]);
             let first = m.route("m", &c, now).version.clone();
-            // Sticky: the same key always gets the same version.
+            // The same cohort value always gets the same version.
             for _ in 0..3 {
                 assert_eq!(m.route("m", &c, now).version, &first);
             }
@@ -723,12 +727,12 @@ mod tests {
         }
         // Binomial(10 000, 0.1): mean 1000, standard deviation 30; ±4σ.
         assert!((880..=1120).contains(&in_canary), "{in_canary} of 10 000 in a 10 % canary");
-        // Requests without the key are never in the canary.
+        // Requests without the cohort field are never in the canary.
         assert_eq!(m.route("m", &Context::new(), now).version.to_string(), "1.0.0");
     }
 
     #[test]
-    fn raising_a_canary_share_only_adds_keys() {
+    fn raising_a_canary_share_only_adds_cohort_values() {
         for i in 0..2000 {
             let key = format!("k{i}");
             if in_share("m", &key, 0.05) {
@@ -751,7 +755,7 @@ mod tests {
             [models.m.canary]
             version = "1.1.0"
             share = 1.0
-            key = "site"
+            cohort = "site"
             applies_to = ["default"]
         "#,
         )
@@ -779,7 +783,7 @@ mod tests {
             [models.m.canary]
             version = "1.1.0"
             share = 1.5
-            key = "site"
+            cohort = "site"
             applies_to = ["nope"]
             [models.m.shadow]
             version = "2.0.0"
@@ -818,7 +822,7 @@ mod tests {
     fn versions_that_are_not_loaded_are_named_with_their_users() {
         let routes = Routes::parse(SUITE).unwrap();
         let err = routes.check_versions(|_, v| v.major != 2).unwrap_err();
-        assert_eq!(err.problems, vec!["model `m`: version 2.0.0 (used by rule `weekend`) is not loaded".to_owned()]);
+        assert_eq!(err.problems, vec!["model `m`: version 2.0.0 (used by rule weekend) is not loaded".to_owned()]);
         routes.check_versions(|_, _| true).unwrap();
     }
 }

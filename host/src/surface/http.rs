@@ -1,16 +1,20 @@
 //! The HTTP surface: a [`Registry`] over loopback HTTP/1.1 (axum on tokio).
-//! The API is described by `surface/openapi.json` (OpenAPI 3.1), served at
-//! `GET /openapi.json`.
+//! The API is described by an OpenAPI 3.1 document generated from the wire
+//! types ([`super::openapi`]), served at `GET /openapi.json`.
 //!
 //! | route | does |
 //! |---|---|
-//! | `POST /v1/models/{model}/score` | score rows: estimates, version, route, usage |
-//! | `GET /v1/models` | every model: its versions, their state and the routes that use them |
-//! | `GET /v1/models/{model}/contract` | a version's contract (`?version=`; default: the default route's) |
-//! | `GET /v1/status` | the registry's status: every artifact, the routes file |
-//! | `GET /healthz`, `GET /readyz` | alive; ready to serve (a routed model) |
+//! | `POST /estimate` | estimates for rows: the model is named in the body; the routes pick the version |
+//! | `GET /catalogue` | every model in the store: its versions, their state, the routes that use them |
+//! | `GET /contract?model=M[&version=V]` | a version's contract (default: the version the default route serves) |
+//! | `GET /store` | what the store holds: every artifact, the routes file |
+//! | `POST /store/rescan` | read the store again now (bearer token) |
+//! | `GET /alive`, `GET /ready` | the process answers; a model is routed and requests can be served |
 //! | `GET /metrics` | the usage ledger in the OpenMetrics text format |
-//! | `POST /v1/admin/reload` | reload the store now (bearer token) |
+//!
+//! No path carries a version: the API's revision is a field of the
+//! catalogue ([`API_REVISION`]), and a model's version is a field of the
+//! request (`contract`) or of the answer (`estimate`).
 //!
 //! Status codes: 400 malformed request, 401/403 admin token missing or
 //! wrong / admin disabled, 404 unknown model, 413 body over the size limit,
@@ -34,20 +38,22 @@ use std::sync::{Arc, RwLock};
 
 use axum::Router;
 use axum::body::{Body, to_bytes};
-use axum::extract::rejection::{PathRejection, QueryRejection};
-use axum::extract::{Path, Query, State};
+use axum::extract::rejection::QueryRejection;
+use axum::extract::{Query, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
-use serde::Serialize;
+use serde::{Deserialize, Serialize};
 use sha2::{Digest as _, Sha256};
 use tokio::sync::Semaphore;
 
-use super::wire::{Blame, ErrorBody, ScoreAnswer, ScoreRequest, blame, parse_at};
-use crate::registry::{ArtifactStatus, Registry, Request, metrics};
+use super::wire::{Blame, ErrorBody, EstimateAnswer, EstimateRequest, blame};
+use crate::registry::{ArtifactStatus, ReloadReport, Registry, Request, Status, metrics};
 
-/// The OpenAPI document of this API.
-pub const OPENAPI: &str = include_str!("openapi.json");
+/// The revision of this API, reported by `GET /catalogue`. It goes up when
+/// a route or a field changes meaning or goes away; added fields and routes
+/// keep it.
+pub const API_REVISION: u32 = 1;
 
 /// How the server behaves.
 #[derive(Clone, Debug)]
@@ -82,7 +88,7 @@ impl Default for ServeOptions {
     }
 }
 
-struct App {
+pub(crate) struct App {
     registry: Registry,
     options: ServeOptions,
     /// Sandbox calls running across every model.
@@ -91,6 +97,8 @@ struct App {
     /// by the store, never by what clients send.
     gates: RwLock<HashMap<String, Arc<Gate>>>,
     token_digest: Option<[u8; 32]>,
+    /// The OpenAPI document, rendered once.
+    document: Arc<str>,
 }
 
 /// One model's concurrency limit and queue.
@@ -120,15 +128,16 @@ impl App {
 pub fn router(registry: Registry, options: ServeOptions) -> Router {
     let token_digest = options.admin_token.as_ref().map(|t| Sha256::digest(t.as_bytes()).into());
     let pool = Arc::new(Semaphore::new(options.score_threads.max(1)));
-    let app = Arc::new(App { registry, options, pool, gates: RwLock::default(), token_digest });
+    let document: Arc<str> = super::openapi::document().into();
+    let app = Arc::new(App { registry, options, pool, gates: RwLock::default(), token_digest, document });
     Router::new()
-        .route("/v1/models/{model}/score", post(score))
-        .route("/v1/models", get(models))
-        .route("/v1/models/{model}/contract", get(contract))
-        .route("/v1/status", get(status))
-        .route("/v1/admin/reload", post(reload))
-        .route("/healthz", get(healthz))
-        .route("/readyz", get(readyz))
+        .route("/estimate", post(estimate))
+        .route("/catalogue", get(catalogue))
+        .route("/contract", get(contract))
+        .route("/store", get(store))
+        .route("/store/rescan", post(rescan))
+        .route("/alive", get(alive))
+        .route("/ready", get(ready))
         .route("/metrics", get(metrics_text))
         .route("/openapi.json", get(openapi))
         .fallback(not_found)
@@ -167,19 +176,55 @@ fn rejected(app: &App, kind: &'static str, status: StatusCode, body: ErrorBody) 
     error(status, body)
 }
 
-/// The model named in the path, or the 400 answer for a path that does not
-/// decode (axum's own rejection would be plain text).
-fn model_name(app: &App, path: Result<Path<String>, PathRejection>) -> Result<String, Response> {
-    path.map(|Path(m)| m).map_err(|e| {
-        rejected(app, "bad_request", StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("the path does not name a model: {e}")))
-    })
-}
-
-async fn score(State(app): State<Arc<App>>, path: Result<Path<String>, PathRejection>, body: Body) -> Response {
-    let model = match model_name(&app, path) {
-        Ok(m) => m,
-        Err(r) => return r,
-    };
+/// Estimates for rows.
+///
+/// The routes pick the version from the request's context and time; the
+/// answer names it and says why. Every valid row is scored; every invalid
+/// one is `null` in `estimates`, with its problems in `problems`.
+#[utoipa::path(
+    post,
+    path = "/estimate",
+    tag = "estimates",
+    request_body(
+        content = EstimateRequest,
+        content_type = "application/json",
+        description = "The model, its rows (`row` for one) and the context the routes read.",
+        examples(
+            ("charge-minutes" = (
+                summary = "A plug-in at a 22 kW charger on a Saturday morning (demo store)",
+                value = json!({
+                    "id": "plug-in 4411",
+                    "model": "charge-minutes",
+                    "rows": [{"charger_kw": 22, "battery_kwh": 58, "soc_start": 0.3, "soc_target": 0.8, "ambient_c": null,
+                              "hour_of_week": 128, "connector": "type2", "fleet": false}],
+                    "context": {"site": "Library Green", "region": "centre"},
+                    "at": "2026-12-05T08:27:00+01:00"
+                })
+            )),
+            ("overstay-risk" = (
+                summary = "The same plug-in's overstay risk (demo store)",
+                value = json!({
+                    "model": "overstay-risk",
+                    "row": {"expected_minutes": 142, "plugin_hour": 8, "member_overstay_rate": 0.3, "site_occupancy": 0.9,
+                            "weekend": true, "fleet": false},
+                    "context": {"site": "Library Green", "region": "centre"}
+                })
+            ))
+        )
+    ),
+    responses(
+        (status = 200, description = "Estimates, one entry per row (`null` for a row that broke the contract).", body = EstimateAnswer),
+        (status = 400, description = "Malformed request (`bad_request`).", body = ErrorBody),
+        (status = 404, description = "No model of that name is served (`unknown_model`).", body = ErrorBody),
+        (status = 413, description = "The body is over the size limit (`too_large`).", body = ErrorBody),
+        (status = 422, description = "No row is valid for the contract (`invalid_rows`, every problem listed), or too many rows.", body = ErrorBody),
+        (status = 500, description = "A limit stopped the model (`limit`), or the server failed.", body = ErrorBody),
+        (status = 502, description = "The model failed: trapped, declined, or answered outside its contract.", body = ErrorBody),
+        (status = 503, description = "The model's queue is full (`overloaded`); see `Retry-After`.", body = ErrorBody,
+            headers(("Retry-After" = u32, description = "Seconds to wait before trying again."))),
+    )
+)]
+pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Response {
     let limit = app.options.max_body_bytes;
     let bytes = match to_bytes(body, limit).await {
         Ok(b) => b,
@@ -197,21 +242,18 @@ async fn score(State(app): State<Arc<App>>, path: Result<Path<String>, PathRejec
             };
         }
     };
-    let request: ScoreRequest = match serde_json::from_slice(&bytes) {
+    let mut request: EstimateRequest = match serde_json::from_slice(&bytes) {
         Ok(r) => r,
         Err(e) => {
-            let b = ErrorBody::bad_request(format!("not a score request: {e}"));
+            let b = ErrorBody::bad_request(format!("not an estimate request: {e}"));
             return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b);
         }
     };
-    if request.rows.is_empty() {
-        let b = ErrorBody::bad_request("rows is empty: give at least one row");
-        return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b);
-    }
-    let at = match parse_at(request.at.as_deref()) {
-        Ok(at) => at,
-        Err(e) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, e),
+    let (rows, at) = match request.take_rows() {
+        Ok(r) => r,
+        Err(b) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b),
     };
+    let model = request.model.clone();
     // A name no model has gets its 404 here, before any state is kept for it.
     if app.registry.routes().model(&model).is_none() {
         let e = app.registry.score(&Request { model: &model, context: &request.context, at, rows: &[] });
@@ -246,8 +288,8 @@ async fn score(State(app): State<Arc<App>>, path: Result<Path<String>, PathRejec
     let registry = app.registry.clone();
     let call = tokio::task::spawn_blocking(move || {
         let _thread = thread;
-        let ScoreRequest { rows, context, .. } = request;
-        registry.score(&Request { model: &model, context: &context, at, rows: &rows }).map(ScoreAnswer::new)
+        let id = request.id.take();
+        registry.score(&request.request(&rows, at)).map(|a| EstimateAnswer::new(a, id))
     });
     match call.await {
         Ok(Ok(answer)) => json(StatusCode::OK, &answer),
@@ -266,55 +308,84 @@ fn answer_error(e: crate::registry::RequestError) -> Response {
     error(status, ErrorBody::from_request(e))
 }
 
-#[derive(Serialize)]
-struct ModelList {
-    generation: u64,
-    models: Vec<ModelEntry>,
+/// The store's catalogue: every model, its versions and the routes that use
+/// them.
+#[derive(Serialize, utoipa::ToSchema)]
+pub struct Catalogue {
+    /// The revision of this API ([`API_REVISION`]).
+    pub api_revision: u32,
+    /// The registry generation this listing was taken from.
+    pub generation: u64,
+    /// Every model with at least one artifact, by name.
+    pub models: Vec<CatalogueEntry>,
 }
 
-#[derive(Serialize)]
-struct ModelEntry {
-    name: String,
-    routed: bool,
-    default_version: Option<String>,
-    versions: Vec<ArtifactStatus>,
+/// One model in the catalogue.
+#[derive(Serialize, utoipa::ToSchema)]
+pub struct CatalogueEntry {
+    /// The model's name.
+    pub name: String,
+    /// Whether the routes serve it.
+    pub routed: bool,
+    /// The version its default route serves, when it is routed.
+    pub default_version: Option<String>,
+    /// Its artifacts.
+    pub versions: Vec<ArtifactStatus>,
 }
 
-async fn models(State(app): State<Arc<App>>) -> Response {
+/// The catalogue: every model in the store, its versions, their state and
+/// the routes that use them.
+#[utoipa::path(get, path = "/catalogue",
+    tag = "catalogue", responses((status = 200, description = "The catalogue.", body = Catalogue)))]
+pub(crate) async fn catalogue(State(app): State<Arc<App>>) -> Response {
     let status = app.registry.status();
     let routes = app.registry.routes();
-    let mut entries: Vec<ModelEntry> = Vec::new();
+    let mut entries: Vec<CatalogueEntry> = Vec::new();
     for a in status.artifacts {
         let Some(name) = a.model.clone() else { continue };
         match entries.iter_mut().find(|e| e.name == name) {
             Some(e) => e.versions.push(a),
             None => {
                 let default_version = routes.model(&name).map(|r| r.default_version().to_string());
-                entries.push(ModelEntry { routed: default_version.is_some(), default_version, name, versions: vec![a] });
+                entries.push(CatalogueEntry { routed: default_version.is_some(), default_version, name, versions: vec![a] });
             }
         }
     }
-    json(StatusCode::OK, &ModelList { generation: status.generation, models: entries })
+    json(StatusCode::OK, &Catalogue { api_revision: API_REVISION, generation: status.generation, models: entries })
 }
 
-#[derive(serde::Deserialize)]
-struct VersionQuery {
+/// Which contract `GET /contract` returns.
+#[derive(Deserialize, utoipa::IntoParams)]
+#[into_params(parameter_in = Query)]
+pub(crate) struct ContractQuery {
+    /// The model's name.
+    #[param(example = "charge-minutes")]
+    model: String,
+    /// A loaded version (semver); default: the version the model's default
+    /// route serves.
+    #[param(example = "1.0.0")]
     version: Option<String>,
 }
 
-async fn contract(
-    State(app): State<Arc<App>>,
-    path: Result<Path<String>, PathRejection>,
-    query: Result<Query<VersionQuery>, QueryRejection>,
-) -> Response {
-    let model = match model_name(&app, path) {
-        Ok(m) => m,
-        Err(r) => return r,
-    };
+/// A version's contract: the features it reads (names, domains, units,
+/// whether required) and the outputs it writes (names, units, bounds).
+#[utoipa::path(
+    get,
+    path = "/contract",
+    tag = "catalogue",
+    params(ContractQuery),
+    responses(
+        (status = 200, description = "The contract.", body = super::openapi::ContractDoc),
+        (status = 400, description = "No model named, or a version that is not semver (`bad_request`).", body = ErrorBody),
+        (status = 404, description = "No such model (`unknown_model`) or version (`unknown_version`, with the loaded versions).", body = ErrorBody),
+    )
+)]
+pub(crate) async fn contract(State(app): State<Arc<App>>, query: Result<Query<ContractQuery>, QueryRejection>) -> Response {
     let q = match query {
         Ok(Query(q)) => q,
         Err(e) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("the query: {e}"))),
     };
+    let model = q.model;
     let version = match &q.version {
         Some(v) => match semver::Version::parse(v) {
             Ok(v) => v,
@@ -346,18 +417,45 @@ async fn contract(
     error(StatusCode::NOT_FOUND, b)
 }
 
-async fn status(State(app): State<Arc<App>>) -> Response {
+/// What the store holds: every artifact file and what the gate made of it,
+/// and the routes file.
+#[utoipa::path(get, path = "/store",
+    tag = "store", responses((status = 200, description = "The store's state.", body = Status)))]
+pub(crate) async fn store(State(app): State<Arc<App>>) -> Response {
     json(StatusCode::OK, &app.registry.status())
 }
 
-async fn healthz() -> Response {
-    json(StatusCode::OK, &serde_json::json!({ "status": "ok" }))
+/// The answer of `GET /alive` and `GET /ready`.
+#[derive(Serialize, utoipa::ToSchema)]
+pub struct Liveness {
+    /// `alive`, or `ready`.
+    pub state: &'static str,
+    /// The registry generation serving.
+    pub generation: u64,
 }
 
-async fn readyz(State(app): State<Arc<App>>) -> Response {
+/// The process is up and answering.
+#[utoipa::path(get, path = "/alive",
+    tag = "operations", responses((status = 200, description = "Alive.", body = Liveness)))]
+pub(crate) async fn alive(State(app): State<Arc<App>>) -> Response {
+    json(StatusCode::OK, &Liveness { state: "alive", generation: app.registry.generation() })
+}
+
+/// Requests can be served: at least one model is routed.
+#[utoipa::path(
+    get,
+    path = "/ready",
+    tag = "operations",
+    responses(
+        (status = 200, description = "Ready.", body = Liveness),
+        (status = 503, description = "No model is routed yet (`not_ready`); see `Retry-After`.", body = ErrorBody,
+            headers(("Retry-After" = u32, description = "Seconds to wait before asking again."))),
+    )
+)]
+pub(crate) async fn ready(State(app): State<Arc<App>>) -> Response {
     let routes = app.registry.routes();
     if routes.models().next().is_some() {
-        json(StatusCode::OK, &serde_json::json!({ "status": "ready", "generation": app.registry.generation() }))
+        json(StatusCode::OK, &Liveness { state: "ready", generation: app.registry.generation() })
     } else {
         let mut r = error(StatusCode::SERVICE_UNAVAILABLE, ErrorBody::new("not_ready", "no model is routed yet"));
         r.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(app.options.retry_after_secs));
@@ -365,7 +463,16 @@ async fn readyz(State(app): State<Arc<App>>) -> Response {
     }
 }
 
-async fn metrics_text(State(app): State<Arc<App>>) -> Response {
+/// The usage ledger (calls, rows, errors, refused rows, wall time, fuel,
+/// in-flight calls, shadow differences per model version) and the server's
+/// own gauges, in the OpenMetrics text format.
+#[utoipa::path(
+    get,
+    path = "/metrics",
+    tag = "operations",
+    responses((status = 200, description = "OpenMetrics text.", body = String, content_type = "application/openmetrics-text; version=1.0.0; charset=utf-8"))
+)]
+pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
     let mut text = metrics::render(&app.registry.usage(), &app.registry.status());
     // The server's own state, before the end marker.
     let gates = app.gates.read().unwrap_or_else(|e| e.into_inner()).len();
@@ -378,11 +485,29 @@ async fn metrics_text(State(app): State<Arc<App>>) -> Response {
     (StatusCode::OK, [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)], text).into_response()
 }
 
-async fn openapi() -> Response {
-    (StatusCode::OK, [(header::CONTENT_TYPE, "application/json")], OPENAPI).into_response()
+/// This document.
+#[utoipa::path(get, path = "/openapi.json",
+    tag = "operations", responses((status = 200, description = "The OpenAPI 3.1 document of this API.", body = Object)))]
+pub(crate) async fn openapi(State(app): State<Arc<App>>) -> Response {
+    (StatusCode::OK, [(header::CONTENT_TYPE, "application/json")], app.document.to_string()).into_response()
 }
 
-async fn reload(State(app): State<Arc<App>>, headers: HeaderMap) -> Response {
+/// Reads the store again now (new, changed and removed artifacts, the
+/// routes file), as the watcher would.
+#[utoipa::path(
+    post,
+    path = "/store/rescan",
+    tag = "store",
+    security(("bearer" = [])),
+    responses(
+        (status = 200, description = "What the rescan did.", body = ReloadReport),
+        (status = 401, description = "No valid bearer token (`unauthorized`).", body = ErrorBody,
+            headers(("WWW-Authenticate" = String, description = "`Bearer`."))),
+        (status = 403, description = "The server has no admin token: administrative routes are off (`admin_disabled`).", body = ErrorBody),
+        (status = 500, description = "The store could not be read (`store`).", body = ErrorBody),
+    )
+)]
+pub(crate) async fn rescan(State(app): State<Arc<App>>, headers: HeaderMap) -> Response {
     let Some(expected) = app.token_digest else {
         return error(StatusCode::FORBIDDEN, ErrorBody::new("admin_disabled", "administrative routes are off: start the server with an admin token"));
     };

@@ -5,9 +5,11 @@
 //! - [`wire`]: the JSON shapes every surface shares (request, answer, error);
 //! - [`stream`]: NDJSON in, NDJSON out, one answer per line, in order;
 //! - [`http`] (feature `http`, on by default): an HTTP API described by an
-//!   OpenAPI 3.1 document.
+//!   OpenAPI 3.1 document that [`openapi`] generates from the wire types.
 
 #[cfg(feature = "http")]
 pub mod http;
+#[cfg(feature = "http")]
+pub mod openapi;
 pub mod stream;
 pub mod wire;

@@ -18,8 +18,8 @@ use std::io::{BufRead, Write};
 
 use serde::Serialize;
 
-use super::wire::{ErrorBody, ScoreAnswer, StreamLine, parse_at};
-use crate::registry::{Registry, Request};
+use super::wire::{ErrorBody, EstimateAnswer, EstimateRequest};
+use crate::registry::Registry;
 
 /// How a stream runs.
 #[derive(Clone, Copy, Debug)]
@@ -52,7 +52,7 @@ struct OutLine<'a> {
     id: Option<&'a serde_json::Value>,
     line: u64,
     #[serde(skip_serializing_if = "Option::is_none")]
-    answer: Option<ScoreAnswer>,
+    answer: Option<EstimateAnswer>,
     #[serde(skip_serializing_if = "Option::is_none")]
     error: Option<super::wire::ErrorDetail>,
 }
@@ -103,8 +103,8 @@ pub fn run(registry: &Registry, mut input: impl BufRead, mut output: impl Write,
     Ok(summary)
 }
 
-fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Result<ScoreAnswer, ErrorBody>) {
-    let line: StreamLine = match serde_json::from_slice(bytes) {
+fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
+    let mut line: EstimateRequest = match serde_json::from_slice(bytes) {
         Ok(l) => l,
         Err(e) => {
             // Echo the id if the line is JSON with one, even when the rest is wrong.
@@ -112,19 +112,11 @@ fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Resu
             return (id, Err(ErrorBody::bad_request(format!("not a request line: {e}"))));
         }
     };
-    let id = line.id.clone();
-    let result = (|| {
-        let rows = match (line.row, line.rows) {
-            (Some(row), None) => vec![row],
-            (None, Some(rows)) => rows,
-            (Some(_), Some(_)) => return Err(ErrorBody::bad_request("give `row` or `rows`, not both")),
-            (None, None) => return Err(ErrorBody::bad_request("give `row` (one row) or `rows` (a list)")),
-        };
-        let at = parse_at(line.at.as_deref())?;
-        let request = Request { model: &line.model, context: &line.context, at, rows: &rows };
-        let answer = registry.score(&request).map_err(ErrorBody::from_request)?;
-        Ok(ScoreAnswer::new(answer))
-    })();
+    let id = line.id.take();
+    let result = line.take_rows().and_then(|(rows, at)| {
+        // The id is on the output line already, not repeated in the answer.
+        registry.score(&line.request(&rows, at)).map(|a| EstimateAnswer::new(a, None)).map_err(ErrorBody::from_request)
+    });
     (id, result)
 }
 

@@ -1,6 +1,6 @@
-//! The JSON shapes the stream and HTTP surfaces share: a scoring request,
-//! its answer, and an error body. The HTTP API's OpenAPI document
-//! (`surface/openapi.json`) describes exactly these.
+//! The JSON shapes every surface shares: a request for estimates, its
+//! answer, and an error body. The HTTP API's OpenAPI document is generated
+//! from these types (`surface::openapi`, feature `http`).
 
 use std::collections::BTreeMap;
 
@@ -10,44 +10,57 @@ use serde::{Deserialize, Serialize, Serializer};
 
 use crate::artifact::Digest;
 use crate::model::{ScoreError, Usage};
-use crate::registry::{Answer, Context, Reason, RequestError};
+use crate::registry::{Answer, Context, Reason, Request, RequestError};
 use crate::rows::{Row, RowError};
 
-/// A request to score rows with a model (the model is named elsewhere: in
-/// the URL, or the stream line).
+/// A request for estimates, in the same shape on every surface: the body of
+/// `POST /estimate`, and one line of a stream.
 #[derive(Clone, Debug, Deserialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(deny_unknown_fields)]
-pub struct ScoreRequest {
-    /// Rows: feature name → value (number, string label, boolean; `null` or
-    /// left out for absent).
+pub struct EstimateRequest {
+    /// Any JSON value the caller wants echoed back in the answer.
+    #[cfg_attr(feature = "http", schema(schema_with = super::openapi::request_id))]
+    pub id: Option<serde_json::Value>,
+    /// The model's name; the routes pick its version.
+    pub model: String,
+    /// One row: feature name → value (number, string label, boolean;
+    /// `null` or left out for absent). Give `row` or `rows`, not both.
+    pub row: Option<Row>,
+    /// Rows, numbered from 1 in the order given.
+    pub rows: Option<Vec<Row>>,
+    /// Context for the routes: field → value (`region`, `site`…).
     #[serde(default)]
-    pub rows: Vec<Row>,
-    /// Context for the routes (`region`, `site`…).
-    #[serde(default)]
+    #[cfg_attr(feature = "http", schema(schema_with = super::openapi::context_map))]
     pub context: Context,
-    /// When the request happened (RFC 3339, e.g. `2026-12-05T08:27:00+01:00`),
-    /// for time windows; the server's clock when left out.
+    /// When the request happened (RFC 3339 with an offset, e.g.
+    /// `2026-12-05T08:27:00+01:00`), for time windows; the server's clock
+    /// when left out.
     pub at: Option<String>,
 }
 
-/// One line of a stream: a [`ScoreRequest`] plus the model, an optional id
-/// echoed back, and `row` as a shorthand for one row.
-#[derive(Clone, Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct StreamLine {
-    /// Echoed in the answer line.
-    pub id: Option<serde_json::Value>,
-    /// The model's name.
-    pub model: String,
-    /// One row.
-    pub row: Option<Row>,
-    /// Rows.
-    pub rows: Option<Vec<Row>>,
-    /// Context for the routes.
-    #[serde(default)]
-    pub context: Context,
-    /// When the request happened (RFC 3339).
-    pub at: Option<String>,
+impl EstimateRequest {
+    /// Takes the request's rows out (`row` or `rows`) and reads its time.
+    ///
+    /// # Errors
+    /// An [`ErrorBody`] of kind `bad_request` when neither or both of `row`
+    /// and `rows` are given, `rows` is empty, or `at` is not an RFC 3339
+    /// time.
+    pub fn take_rows(&mut self) -> Result<(Vec<Row>, Option<Timestamp>), ErrorBody> {
+        let rows = match (self.row.take(), self.rows.take()) {
+            (Some(row), None) => vec![row],
+            (None, Some(rows)) if rows.is_empty() => return Err(ErrorBody::bad_request("rows is empty: give at least one row")),
+            (None, Some(rows)) => rows,
+            (Some(_), Some(_)) => return Err(ErrorBody::bad_request("give `row` or `rows`, not both")),
+            (None, None) => return Err(ErrorBody::bad_request("give `row` (one row) or `rows` (a list)")),
+        };
+        Ok((rows, parse_at(self.at.as_deref())?))
+    }
+
+    /// The registry request for these rows.
+    pub fn request<'a>(&'a self, rows: &'a [Row], at: Option<Timestamp>) -> Request<'a> {
+        Request { model: &self.model, context: &self.context, at, rows }
+    }
 }
 
 /// Parses an `at` field.
@@ -62,18 +75,24 @@ pub fn parse_at(at: Option<&str>) -> Result<Option<Timestamp>, ErrorBody> {
     .transpose()
 }
 
-/// The answer to a scoring request.
+/// The answer to a request for estimates.
 #[derive(Clone, Debug, Serialize)]
-pub struct ScoreAnswer {
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct EstimateAnswer {
+    /// The request's `id`, when it gave one.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    #[cfg_attr(feature = "http", schema(schema_with = super::openapi::request_id))]
+    pub id: Option<serde_json::Value>,
     /// The model.
     pub model: String,
-    /// The version that answered.
+    /// The version that answered (semver).
     pub version: String,
     /// Its artifact's digest.
     pub digest: Digest,
     /// The route that picked it: `default`, a rule's name, or `canary`.
     pub route: String,
-    /// Why, in full.
+    /// What picked it, in full.
+    #[cfg_attr(feature = "http", schema(value_type = Reason))]
     pub reason: std::sync::Arc<Reason>,
     /// The registry generation the request was routed in.
     pub generation: u64,
@@ -88,7 +107,7 @@ pub struct ScoreAnswer {
     pub usage: Usage,
 }
 
-/// One row's outputs.
+/// One row's outputs: output name → value, in contract order.
 #[derive(Clone, Debug)]
 pub struct Estimate {
     names: std::sync::Arc<[String]>,
@@ -105,13 +124,14 @@ impl Serialize for Estimate {
     }
 }
 
-impl ScoreAnswer {
-    /// The wire form of an [`Answer`].
-    pub fn new(answer: Answer) -> Self {
+impl EstimateAnswer {
+    /// The wire form of an [`Answer`], echoing the request's `id`.
+    pub fn new(answer: Answer, id: Option<serde_json::Value>) -> Self {
         let names = answer.outputs.clone();
         let estimates =
             answer.rows().map(|row| row.map(|values| Estimate { names: names.clone(), values: values.to_vec() })).collect();
-        ScoreAnswer {
+        EstimateAnswer {
+            id,
             model: answer.model,
             version: answer.version.to_string(),
             digest: answer.digest,
@@ -127,6 +147,7 @@ impl ScoreAnswer {
 
 /// An error, as every surface reports it: `{"error": {...}}`.
 #[derive(Clone, Debug, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ErrorBody {
     /// The error.
     pub error: ErrorDetail,
@@ -134,11 +155,13 @@ pub struct ErrorBody {
 
 /// What went wrong.
 #[derive(Clone, Debug, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ErrorDetail {
-    /// A stable name: `bad_request`, `unknown_model`, `invalid_rows`,
-    /// `shape`, `too_many_rows`, `too_large`, `limit`, `trap`, `fault`,
-    /// `output`, `start`, `contract_changed`, `not_loaded`, `overloaded`,
-    /// `unauthorized`, `admin_disabled`, `not_ready`.
+    /// A stable name: `bad_request`, `unknown_model`, `unknown_version`,
+    /// `invalid_rows`, `shape`, `too_many_rows`, `too_large`, `limit`,
+    /// `trap`, `fault`, `output`, `start`, `contract_changed`, `not_loaded`,
+    /// `overloaded`, `unauthorized`, `admin_disabled`, `not_ready`,
+    /// `not_found`, `method_not_allowed`, `store`, `server`.
     pub kind: String,
     /// One line for people.
     pub message: String,
@@ -160,6 +183,7 @@ pub struct ErrorDetail {
     pub rows: Vec<RowError>,
     /// Other facts, by name (models served, for `unknown_model`).
     #[serde(skip_serializing_if = "BTreeMap::is_empty")]
+    #[cfg_attr(feature = "http", schema(schema_with = super::openapi::details_map))]
     pub details: BTreeMap<String, serde_json::Value>,
 }
 

@@ -1,0 +1,41 @@
+//! `paddock admit`: would a host with this trust policy admit the artifact?
+
+use anyhow::Result;
+use paddock_host::{Admission, Artifact};
+
+use crate::Outcome;
+use crate::common::{ArtifactArgs, print_json};
+
+/// Check an artifact (and ARTIFACT.vouch, if present) against a trust
+/// policy: `--trust DIR` of `.voucher` files and/or `--pin DIGEST`. Exits 1
+/// when it would be refused.
+#[derive(clap::Args)]
+pub struct Args {
+    #[command(flatten)]
+    target: ArtifactArgs,
+}
+
+/// Applies the policy and says on whose word the artifact gets in.
+pub fn run(args: Args) -> Result<Outcome> {
+    let args = args.target;
+    let artifact = Artifact::read(&args.artifact, u64::MAX)?;
+    let verdict = args.load.admit(&args.artifact, &artifact);
+    let (ok, text) = match &verdict {
+        Ok(Admission::Vouch { voucher, name }) => (true, format!("admitted: vouched for by trusted voucher {name} ({voucher})")),
+        Ok(Admission::Pin) => (true, "admitted: its digest is pinned".to_owned()),
+        Ok(Admission::OpenPolicy) => (true, "admitted: the policy requires nothing (give --trust or --pin)".to_owned()),
+        Err(e) => (false, format!("refused: {e:#}")),
+    };
+    if args.json {
+        print_json(&serde_json::json!({
+            "artifact": args.artifact,
+            "digest": artifact.digest(),
+            "admitted": ok,
+            "admission": verdict.as_ref().ok(),
+            "error": verdict.as_ref().err().map(|e| format!("{e:#}")),
+        }))?;
+    } else {
+        println!("{} {}\n{text}", args.artifact.display(), artifact.digest());
+    }
+    Ok(if ok { Outcome::Ok } else { Outcome::Failed })
+}
