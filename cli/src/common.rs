@@ -9,8 +9,8 @@ use paddock_host::{
     Vouch, Admission, WasiPolicy, wasi,
 };
 
-/// What every command about one artifact takes: the file, `--json`, and
-/// how to load it.
+/// What every command that loads one artifact takes: the file, `--json`,
+/// and how to load it.
 #[derive(clap::Args, Clone, Debug)]
 pub struct ArtifactArgs {
     /// The artifact (its vouch is read from ARTIFACT.vouch if present).
@@ -22,16 +22,32 @@ pub struct ArtifactArgs {
     pub load: LoadArgs,
 }
 
-/// Flags that say how to load a model: its limits (defaults are the
-/// library's) and what must vouch for the artifact.
-#[derive(clap::Args, Clone, Debug)]
+/// How to load a model: what must vouch for it, its limits, and whether it
+/// may import WASI.
+#[derive(clap::Args, Clone, Debug, Default)]
 pub struct LoadArgs {
+    #[command(flatten)]
+    pub trust: TrustArgs,
+    #[command(flatten)]
+    pub limits: LimitArgs,
+    #[command(flatten)]
+    pub wasi: WasiArgs,
+}
+
+/// What must vouch for an artifact before it is admitted.
+#[derive(clap::Args, Clone, Debug, Default)]
+pub struct TrustArgs {
     /// Admit only artifacts vouched for (ARTIFACT.vouch) by a voucher in this directory of `.voucher` files.
     #[arg(long, value_name = "DIR")]
     pub trust: Option<PathBuf>,
     /// Admit an artifact with this digest (`sha256:…`) without a vouch; repeatable.
     #[arg(long, value_name = "DIGEST")]
     pub pin: Vec<String>,
+}
+
+/// The limits a model runs under (defaults are the library's).
+#[derive(clap::Args, Clone, Debug, Default)]
+pub struct LimitArgs {
     /// Wall-clock deadline per call, in milliseconds [default: 50].
     #[arg(long, value_name = "MS", value_parser = clap::value_parser!(u64).range(1..=3_600_000))]
     pub deadline_ms: Option<u64>,
@@ -44,15 +60,20 @@ pub struct LoadArgs {
     /// Fuel for `init` + `describe` when an instance starts [default: no limit, the start deadline binds].
     #[arg(long, value_name = "UNITS", value_parser = clap::value_parser!(u64).range(1..), requires = "fuel")]
     pub start_fuel: Option<u64>,
-    /// Linear memory cap, in MiB [default: 64].
+    /// Largest linear memory of an instance, in MiB [default: 64].
     #[arg(long, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=4096))]
-    pub memory_mib: Option<u64>,
+    pub max_memory_mib: Option<u64>,
     /// Largest artifact accepted, in MiB [default: 64].
     #[arg(long, value_name = "MIB", value_parser = clap::value_parser!(u64).range(1..=4096))]
     pub max_artifact_mib: Option<u64>,
     /// Start a fresh instance for every call instead of reusing warm ones.
     #[arg(long)]
     pub fresh: bool,
+}
+
+/// Whether models that import WASI may load.
+#[derive(clap::Args, Clone, Debug, Default)]
+pub struct WasiArgs {
     /// Let models that import WASI (Python, JavaScript guests) load into an
     /// empty WASI world: no files, environment, arguments or sockets;
     /// output captured into the log.
@@ -66,39 +87,19 @@ pub struct LoadArgs {
     pub wasi_real_random: bool,
 }
 
-impl LoadArgs {
-    /// The model options these flags describe.
-    pub fn options(&self) -> ModelOptions {
-        let mut limits = Limits::default();
-        if let Some(ms) = self.deadline_ms {
-            limits.deadline = Duration::from_millis(ms);
-        }
-        if let Some(ms) = self.start_deadline_ms {
-            limits.init_deadline = Duration::from_millis(ms);
-        }
-        limits.fuel = self.fuel;
-        limits.init_fuel = self.start_fuel;
-        if let Some(mib) = self.memory_mib {
-            limits.memory_bytes = mib << 20;
-        }
-        if let Some(mib) = self.max_artifact_mib {
-            limits.artifact_bytes = mib << 20;
-        }
-        let isolation = if self.fresh { Isolation::FreshPerCall } else { Isolation::Reuse };
+impl WasiArgs {
+    /// The WASI policy these flags describe, if any.
+    pub fn policy(&self) -> Option<WasiPolicy> {
         let source = |real| if real { wasi::Source::Real } else { wasi::Source::Fixed };
-        let wasi = self.wasi.then(|| WasiPolicy {
+        self.wasi.then(|| WasiPolicy {
             clocks: source(self.wasi_real_clocks),
             random: source(self.wasi_real_random),
             ..WasiPolicy::default()
-        });
-        ModelOptions { limits, isolation, wasi }
+        })
     }
+}
 
-    /// A runtime able to enforce these limits.
-    pub fn runtime(&self) -> Result<Runtime> {
-        Ok(Runtime::with_config(RuntimeConfig { fuel: self.fuel.is_some(), ..RuntimeConfig::default() })?)
-    }
-
+impl TrustArgs {
     /// The trust policy these flags describe: nothing required unless
     /// `--trust` or `--pin` is given.
     pub fn policy(&self) -> Result<TrustPolicy> {
@@ -120,6 +121,40 @@ impl LoadArgs {
         let vouch = if vouch_path.exists() { Some(Vouch::read(&vouch_path)?) } else { None };
         Ok(self.policy()?.admit(artifact.digest(), vouch.as_ref()).with_context(|| format!("refusing {}", path.display()))?)
     }
+}
+
+impl LoadArgs {
+    /// The model options these flags describe.
+    pub fn options(&self) -> ModelOptions {
+        let l = &self.limits;
+        let mut limits = Limits::default();
+        if let Some(ms) = l.deadline_ms {
+            limits.deadline = Duration::from_millis(ms);
+        }
+        if let Some(ms) = l.start_deadline_ms {
+            limits.init_deadline = Duration::from_millis(ms);
+        }
+        limits.fuel = l.fuel;
+        limits.init_fuel = l.start_fuel;
+        if let Some(mib) = l.max_memory_mib {
+            limits.memory_bytes = mib << 20;
+        }
+        if let Some(mib) = l.max_artifact_mib {
+            limits.artifact_bytes = mib << 20;
+        }
+        let isolation = if l.fresh { Isolation::FreshPerCall } else { Isolation::Reuse };
+        ModelOptions { limits, isolation, wasi: self.wasi.policy() }
+    }
+
+    /// A runtime able to enforce these limits.
+    pub fn runtime(&self) -> Result<Runtime> {
+        Ok(Runtime::with_config(RuntimeConfig { fuel: self.limits.fuel.is_some(), ..RuntimeConfig::default() })?)
+    }
+
+    /// The trust policy these flags describe.
+    pub fn policy(&self) -> Result<TrustPolicy> {
+        self.trust.policy()
+    }
 
     /// Reads an artifact, checks it against the trust policy, and loads it
     /// under these limits.
@@ -127,7 +162,7 @@ impl LoadArgs {
         let runtime = self.runtime()?;
         let options = self.options();
         let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
-        self.admit(path, &artifact)?;
+        self.trust.admit(path, &artifact)?;
         let model = Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
         Ok((runtime, model))
     }

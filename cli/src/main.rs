@@ -36,17 +36,26 @@ enum Command {
     Admit(cmd::admit::Args),
 }
 
-/// What a command reports back to `main`.
+/// What a command that ran reports back to `main`.
 pub enum Outcome {
-    /// Everything worked.
+    /// Everything it looked at was fine.
     Ok,
-    /// The command ran but found a failure (checks failed).
+    /// It ran to the end and found a failure: a check that fails, an
+    /// artifact refused, a row or line that could not be scored.
     Failed,
-    /// Some input rows were rejected; the rest were processed.
-    Partial,
+}
+
+/// Exit codes: 0 ran and found nothing wrong; 1 ran and found a failure;
+/// 2 could not run (bad arguments, an unreadable file, a model that does
+/// not load, a store that cannot be opened).
+mod exit {
+    pub const FOUND_A_FAILURE: u8 = 1;
+    pub const COULD_NOT_RUN: u8 = 2;
 }
 
 fn main() -> ExitCode {
+    // clap exits 2 on bad arguments, the same code as any other reason the
+    // command could not run.
     let cli = Cli::parse();
     common::init_logging();
     let result = match cli.command {
@@ -66,11 +75,10 @@ fn main() -> ExitCode {
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,
-        Ok(Outcome::Failed) => ExitCode::from(1),
-        Ok(Outcome::Partial) => ExitCode::from(3),
+        Ok(Outcome::Failed) => ExitCode::from(exit::FOUND_A_FAILURE),
         Err(e) => {
             eprintln!("error: {}", message(&e));
-            ExitCode::from(1)
+            ExitCode::from(exit::COULD_NOT_RUN)
         }
     }
 }

@@ -71,7 +71,7 @@ fn score_names_columns_that_are_not_features_and_how_to_mark_them() {
         paddock(&args, None)
     };
     let out = run(&[]);
-    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(out.status.code(), Some(2));
     let err = text(&out.stderr);
     assert!(err.contains("columns `session`, `plate` are not features of charge-minutes") && err.contains("--id NAME") && err.contains("--ignore NAME"), "{err}");
     // Refused before any output was created.
@@ -99,7 +99,7 @@ s6,7.4,40,0.5,1.0,20,150,type2,no
     let input = tmp("sessions.csv");
     std::fs::write(&input, csv).unwrap();
     let out = paddock(&["score", a.to_str().unwrap(), input.to_str().unwrap(), "--id", "session"], None);
-    assert_eq!(out.status.code(), Some(3), "some rows failed: {}", text(&out.stderr));
+    assert_eq!(out.status.code(), Some(1), "some rows failed: {}", text(&out.stderr));
     assert!(text(&out.stderr).contains("3 rows scored, 3 rows failed"));
     let lines: Vec<String> = text(&out.stdout).lines().map(str::to_owned).collect();
     assert_eq!(lines[0], "row,id,minutes,error");
@@ -121,7 +121,7 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
     let a = artifact_path("overstay-risk");
     let input = "{\"expected_minutes\": 120, \"plugin_hour\": 18, \"member_overstay_rate\": null, \"site_occupancy\": 0.5, \"weekend\": false, \"fleet\": false}\nnot json\n";
     let out = paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json"], Some(input));
-    assert_eq!(out.status.code(), Some(3));
+    assert_eq!(out.status.code(), Some(1));
     let lines: Vec<serde_json::Value> = text(&out.stdout).lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     let p = lines[0]["overstay_probability"].as_f64().unwrap();
     assert!((0.0..=1.0).contains(&p));
@@ -134,7 +134,7 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
 #[test]
 fn a_file_error_names_the_file_and_says_the_cause_once() {
     let out = paddock(&["check", "/nonexistent/model.wasm"], None);
-    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(out.status.code(), Some(2));
     let err = text(&out.stderr);
     assert!(err.contains("/nonexistent/model.wasm"), "{err}");
     assert_eq!(err.matches("No such file or directory").count(), 1, "{err}");
@@ -185,7 +185,7 @@ fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let out_path = dir.path().join("broken.wasm");
     let args = ["pack", guest.to_str().unwrap(), "--params", params.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
     let out = paddock(&args, None);
-    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stdout));
+    assert_eq!(out.status.code(), Some(2), "{}", text(&out.stdout));
     let err = text(&out.stderr);
     assert!(err.starts_with(&format!("error: {} was not written: the packed artifact does not load", out_path.display())), "{err}");
     assert_eq!(err.lines().count(), 1, "{err}");
@@ -199,7 +199,7 @@ fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     std::fs::write(&checks, r#"{"source": "by hand, wrong on purpose", "tolerance": {"abs": 0, "rel": 0}, "cases": [{"row": {"x": 1}, "expect": {"y": 99}}]}"#).unwrap();
     let args = ["pack", wat.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
     let out = paddock(&args, None);
-    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("was not written: 1 of 1 checks fail; first: case 0"), "{}", text(&out.stderr));
     assert!(!out_path.exists());
 }
@@ -254,7 +254,7 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
 #[test]
 fn a_missing_demo_store_says_how_to_build_it() {
     let out = paddock(&["demo", "--store", "/nonexistent"], None);
-    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("run `cargo xtask demo`"), "{}", text(&out.stderr));
 }
 
@@ -291,7 +291,7 @@ fn voucher_vouch_and_admit_follow_the_policy() {
         assert!(out.status.success(), "{}", text(&out.stderr));
     }
     let again = paddock(&["voucher", "alice", "--dir", keys.to_str().unwrap()], None);
-    assert_eq!(again.status.code(), Some(1), "never overwrites a voucher");
+    assert_eq!(again.status.code(), Some(2), "never overwrites a voucher");
     assert!(text(&again.stderr).contains("alice.vouching-key exists"), "{}", text(&again.stderr));
 
     let artifact = dir.join("overstay.wasm");
@@ -322,7 +322,7 @@ fn voucher_vouch_and_admit_follow_the_policy() {
     let mallory = other.join("mallory.vouching-key");
     assert!(paddock(&["vouch", a, "--as", mallory.to_str().unwrap()], None).status.success());
     let out = paddock(&[&["score", a, "-", "--from", "ndjson"][..], &trust[..]].concat(), Some(row));
-    assert_eq!(out.status.code(), Some(1));
+    assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("who is not among the trusted vouchers"), "{}", text(&out.stderr));
 
     // Tampered after vouching: refused naming both digests.
@@ -417,14 +417,14 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
 }
 
 #[test]
-fn stream_answers_each_line_in_order_and_exits_3_when_one_failed() {
+fn stream_answers_each_line_in_order_and_exits_1_when_one_failed() {
     let store = root().join("target/paddock/store");
     let row = r#""row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}"#;
     let input = format!(
         "{{\"id\": \"a\", \"model\": \"overstay-risk\", \"context\": {{\"region\": \"north\"}}, {row}}}\nnonsense\n{{\"id\": \"c\", \"model\": \"overstay-risk\", {row}}}\n"
     );
     let out = paddock(&["stream", "--store", store.to_str().unwrap()], Some(&input));
-    assert_eq!(out.status.code(), Some(3), "{}", text(&out.stderr));
+    assert_eq!(out.status.code(), Some(1), "{}", text(&out.stderr));
     let lines: Vec<serde_json::Value> = text(&out.stdout).lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     assert_eq!(lines.len(), 3);
     assert_eq!((lines[0]["id"].clone(), lines[0]["answer"]["route"].clone()), ("a".into(), "north".into()));
@@ -553,7 +553,7 @@ fn a_killed_server_loses_at_most_one_flush_of_usage_and_a_second_one_is_refused(
         .arg(&state)
         .output()
         .unwrap();
-    assert_eq!(second.status.code(), Some(1));
+    assert_eq!(second.status.code(), Some(2));
     let err = text(&second.stderr);
     assert!(err.contains(&format!("held by process {}", first.child.id())), "{err}");
 

@@ -4,22 +4,26 @@ use anyhow::Result;
 use paddock_host::{Admission, Artifact};
 
 use crate::Outcome;
-use crate::common::{ArtifactArgs, print_json};
+use crate::common::{TrustArgs, print_json};
 
 /// Check an artifact (and ARTIFACT.vouch, if present) against a trust
 /// policy: `--trust DIR` of `.voucher` files and/or `--pin DIGEST`. Exits 1
 /// when it would be refused.
 #[derive(clap::Args)]
 pub struct Args {
+    /// The artifact (its vouch is read from ARTIFACT.vouch if present).
+    artifact: std::path::PathBuf,
+    /// Print the verdict as JSON.
+    #[arg(long)]
+    json: bool,
     #[command(flatten)]
-    target: ArtifactArgs,
+    trust: TrustArgs,
 }
 
 /// Applies the policy and says on whose word the artifact gets in.
 pub fn run(args: Args) -> Result<Outcome> {
-    let args = args.target;
     let artifact = Artifact::read(&args.artifact, u64::MAX)?;
-    let verdict = args.load.admit(&args.artifact, &artifact);
+    let verdict = args.trust.admit(&args.artifact, &artifact);
     let (ok, text) = match &verdict {
         Ok(Admission::Vouch { voucher, name }) => (true, format!("admitted: vouched for by trusted voucher {name} ({voucher})")),
         Ok(Admission::Pin) => (true, "admitted: its digest is pinned".to_owned()),

@@ -8,7 +8,7 @@ use paddock_host::{Artifact, Checks, checks};
 use serde::Serialize;
 
 use crate::Outcome;
-use crate::common::{LoadArgs, print_json};
+use crate::common::{LoadArgs, WasiArgs, print_json};
 
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
@@ -41,8 +41,10 @@ pub struct Args {
     /// Print the result as JSON.
     #[arg(long)]
     json: bool,
+    /// How the packed artifact is loaded to run its checks: with the
+    /// library's default limits, and WASI only when asked.
     #[command(flatten)]
-    limits: LoadArgs,
+    wasi: WasiArgs,
 }
 
 /// Where `cargo xtask build` leaves the ONNX evaluator guest.
@@ -98,7 +100,8 @@ pub fn run(args: Args) -> Result<Outcome> {
         Packed { artifact: args.out.clone(), digest: artifact.digest().to_string(), bytes: artifact.bytes().len(), model: None, checks: None };
     let not_written = || format!("{} was not written", args.out.display());
     if !args.no_verify {
-        let (_runtime, model) = args.limits.load(tmp.path()).map_err(|e| e.context("the packed artifact does not load")).with_context(not_written)?;
+        let load = LoadArgs { wasi: args.wasi.clone(), ..LoadArgs::default() };
+        let (_runtime, model) = load.load(tmp.path()).map_err(|e| e.context("the packed artifact does not load")).with_context(not_written)?;
         packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
         if let Some(checks) = &checks {
             let report = checks::run(&model, checks).with_context(not_written)?;

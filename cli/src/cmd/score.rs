@@ -28,7 +28,7 @@ impl From<FormatArg> for Format {
 }
 
 /// Score rows. A row that breaks the contract gets an error line with its
-/// row number and the rest are scored. Exits 3 when some rows failed.
+/// row number and the rest are scored. Exits 1 when some rows failed.
 #[derive(clap::Args)]
 pub struct Args {
     /// The artifact.
@@ -117,7 +117,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     writer.finish()?;
     progress.finish_and_clear();
     eprintln!("{} scored, {} failed", rows(scored), rows(failed));
-    Ok(if failed == 0 { Outcome::Ok } else { Outcome::Partial })
+    Ok(if failed == 0 { Outcome::Ok } else { Outcome::Failed })
 }
 
 /// Scores the valid records of a batch in one call; if that call fails as

@@ -21,7 +21,7 @@ pub struct Args {
     max_line_kib: usize,
 }
 
-/// Runs the stream until stdin ends; exit 3 if any line failed.
+/// Runs the stream until stdin ends; exit 1 if any line failed.
 pub fn run(args: Args) -> Result<Outcome> {
     let registry = args.store.open()?;
     let stdin = BufReader::with_capacity(64 << 10, std::io::stdin().lock());
@@ -30,5 +30,5 @@ pub fn run(args: Args) -> Result<Outcome> {
     let summary = stream::run(&registry, stdin, stdout, options)?;
     registry.save_usage()?;
     eprintln!("{} lines: {} answered, {} failed", summary.lines, summary.answered, summary.failed);
-    Ok(if summary.failed > 0 { Outcome::Partial } else { Outcome::Ok })
+    Ok(if summary.failed > 0 { Outcome::Failed } else { Outcome::Ok })
 }
