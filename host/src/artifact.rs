@@ -11,10 +11,10 @@ use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
 use serde::Serialize;
-use sha2::{Digest as _, Sha256};
+use crate::digest::Digest;
 use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 
-use crate::checks::Checks;
+use crate::checks::{Checks, ChecksError};
 use crate::limits::LimitHit;
 
 /// Name of the custom section that carries the parameter blob.
@@ -70,68 +70,12 @@ pub enum ArtifactError {
         /// Section name.
         name: String,
     },
-    /// The checks section (or file) does not parse.
-    #[error("checks do not parse: {0}")]
-    Checks(String),
+    /// The checks section does not parse.
+    #[error(transparent)]
+    Checks(#[from] ChecksError),
     /// A core module could not be turned into a component.
     #[error("cannot make a component from this module: {0}")]
     Componentize(String),
-}
-
-/// The sha256 of an artifact file: its identity.
-#[derive(Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
-pub struct Digest(pub [u8; 32]);
-
-impl Digest {
-    /// The digest of some bytes.
-    pub fn of(bytes: &[u8]) -> Self {
-        Digest(Sha256::digest(bytes).into())
-    }
-
-    /// Lowercase hex, without prefix.
-    pub fn hex(&self) -> String {
-        self.0.iter().map(|b| format!("{b:02x}")).collect()
-    }
-
-    /// The first 12 hex digits, for tables and logs.
-    pub fn short(&self) -> String {
-        self.hex()[..12].to_owned()
-    }
-}
-
-impl fmt::Display for Digest {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        write!(f, "sha256:{}", self.hex())
-    }
-}
-
-impl fmt::Debug for Digest {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        fmt::Display::fmt(self, f)
-    }
-}
-
-impl std::str::FromStr for Digest {
-    type Err = String;
-
-    /// Parses `sha256:` followed by 64 hex digits.
-    fn from_str(s: &str) -> Result<Self, Self::Err> {
-        let hex = s.strip_prefix("sha256:").ok_or_else(|| format!("`{s}` is not a digest: expected `sha256:` and 64 hex digits"))?;
-        let mut out = [0u8; 32];
-        if hex.len() != 64 || !hex.is_ascii() {
-            return Err(format!("`{s}` is not a digest: expected 64 hex digits after `sha256:`"));
-        }
-        for (i, byte) in out.iter_mut().enumerate() {
-            *byte = u8::from_str_radix(&hex[2 * i..2 * i + 2], 16).map_err(|_| format!("`{s}` is not a digest: bad hex"))?;
-        }
-        Ok(Digest(out))
-    }
-}
-
-impl Serialize for Digest {
-    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
-        s.collect_str(self)
-    }
 }
 
 /// A top-level custom section: its name and size.
@@ -255,7 +199,7 @@ impl Artifact {
     /// # Errors
     /// [`ArtifactError::Checks`] when the section does not parse.
     pub fn checks(&self) -> Result<Option<Checks>, ArtifactError> {
-        self.checks.clone().map(|r| Checks::from_json(&self.bytes[r])).transpose()
+        Ok(self.checks.clone().map(|r| Checks::from_json(&self.bytes[r])).transpose()?)
     }
 
     /// Top-level custom sections, in file order.
@@ -515,63 +459,28 @@ fn embed_world(module: &mut Vec<u8>) -> Result<(), ArtifactError> {
 
 /// Copies a binary without its top-level `paddock-*` custom sections.
 fn strip_own_sections(bytes: &[u8]) -> Result<Vec<u8>, ArtifactError> {
+    let malformed = |e: wasmparser::BinaryReaderError| ArtifactError::Malformed { offset: e.offset(), message: e.message().to_owned() };
     let mut out = bytes[..8].to_vec();
-    let mut pos = 8;
-    while pos < bytes.len() {
-        let start = pos;
-        let id = bytes[pos];
-        let (len, n) = read_u32_leb(&bytes[pos + 1..]).ok_or(ArtifactError::Malformed {
-            offset: pos + 1,
-            message: "bad section length".into(),
-        })?;
-        let body = pos + 1 + n;
-        let end = body + len as usize;
-        if end > bytes.len() {
-            return Err(ArtifactError::Malformed { offset: start, message: "section runs past the end".into() });
-        }
-        let ours = id == 0
-            && read_u32_leb(&bytes[body..end]).is_some_and(|(name_len, m)| {
-                bytes.get(body + m..body + m + name_len as usize).is_some_and(|name| name.starts_with(OWN_PREFIX.as_bytes()))
-            });
+    let mut reader = wasmparser::BinaryReader::new(&bytes[8..], 8);
+    while !reader.eof() {
+        let start = reader.original_position();
+        let id = reader.read_u8().map_err(malformed)?;
+        let len = reader.read_var_u32().map_err(malformed)?;
+        let body = reader.read_bytes(len as usize).map_err(malformed)?;
+        let ours = id == 0 && wasmparser::BinaryReader::new(body, 0).read_string().is_ok_and(|name| name.starts_with(OWN_PREFIX));
         if !ours {
-            out.extend_from_slice(&bytes[start..end]);
+            out.extend_from_slice(&bytes[start..reader.original_position()]);
         }
-        pos = end;
     }
     Ok(out)
 }
 
-fn read_u32_leb(bytes: &[u8]) -> Option<(u32, usize)> {
-    let mut value: u64 = 0;
-    for (i, &b) in bytes.iter().take(5).enumerate() {
-        value |= u64::from(b & 0x7f) << (7 * i);
-        if b & 0x80 == 0 {
-            return u32::try_from(value).ok().map(|v| (v, i + 1));
-        }
-    }
-    None
-}
-
-fn write_u32_leb(out: &mut Vec<u8>, mut value: u32) {
-    loop {
-        let byte = (value & 0x7f) as u8;
-        value >>= 7;
-        if value == 0 {
-            out.push(byte);
-            return;
-        }
-        out.push(byte | 0x80);
-    }
-}
-
+/// Appends a custom section to a module or component.
 fn append_custom(out: &mut Vec<u8>, name: &str, data: &[u8]) {
-    let mut body = Vec::with_capacity(name.len() + data.len() + 5);
-    write_u32_leb(&mut body, name.len() as u32);
-    body.extend_from_slice(name.as_bytes());
-    body.extend_from_slice(data);
-    out.push(0);
-    write_u32_leb(out, body.len() as u32);
-    out.extend_from_slice(&body);
+    use wasm_encoder::{Encode as _, Section as _};
+    let section = wasm_encoder::CustomSection { name: name.into(), data: data.into() };
+    out.push(section.id());
+    section.encode(out);
 }
 
 #[cfg(test)]
@@ -610,11 +519,18 @@ mod tests {
     }
 
     #[test]
-    fn leb_round_trips() {
-        for v in [0u32, 1, 127, 128, 300, 16_384, u32::MAX] {
-            let mut buf = vec![];
-            write_u32_leb(&mut buf, v);
-            assert_eq!(read_u32_leb(&buf), Some((v, buf.len())));
-        }
+    fn a_section_running_past_the_end_is_malformed() {
+        let mut bytes = EMPTY_COMPONENT.to_vec();
+        append_custom(&mut bytes, PARAMS_SECTION, b"abc");
+        bytes.truncate(bytes.len() - 1);
+        assert!(matches!(pack(&bytes, None, None), Err(ArtifactError::Malformed { .. })));
+    }
+
+    #[test]
+    fn sections_of_others_are_kept_byte_for_byte() {
+        let mut bytes = EMPTY_COMPONENT.to_vec();
+        append_custom(&mut bytes, "producers-of-someone-else", &[7; 300]);
+        let packed = pack(&bytes, Some(b"p"), None).unwrap();
+        assert_eq!(&packed[..bytes.len()], &bytes[..]);
     }
 }

@@ -9,8 +9,9 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::artifact::{Artifact, Digest, Surface, inspect_bytes};
-use crate::checks;
+use crate::artifact::{Artifact, Surface, inspect_bytes};
+use crate::digest::Digest;
+use crate::checking;
 use crate::contract::Contract;
 use crate::limits::{Limits, fmt_duration};
 use crate::model::{LoadError, Model, ModelOptions};
@@ -229,7 +230,7 @@ fn probe(report: &mut AuditReport, model: &Model) {
             return;
         }
     };
-    let result = match checks::run(model, &carried) {
+    let result = match checking::run(model, &carried) {
         Ok(r) => r,
         Err(e) => {
             report.violations.push(format!("its checks do not run: {e}"));

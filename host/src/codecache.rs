@@ -112,7 +112,7 @@ impl CodeCache {
         key.0.update(artifact.digest().0);
         key.0.update(crate::sandbox::WASMTIME_VERSION.as_bytes());
         runtime.engine().precompile_compatibility_hash().hash(&mut key);
-        let hex: String = key.0.finalize().iter().map(|b| format!("{b:02x}")).collect();
+        let hex = hex::encode(key.0.finalize());
         self.dir.join(format!("{hex}.code"))
     }
 

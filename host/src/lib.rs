@@ -31,7 +31,7 @@
 //! - [`Runtime`]: the engine and its clock; one per process.
 //! - [`Model`]: a loaded artifact serving many threads under its
 //!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
-//! - [`Checks`]: example rows with recorded outputs, run by [`checks::run`].
+//! - [`Checks`]: example rows with recorded outputs, run by [`checking::run`].
 //! - [`TrustPolicy`]: which vouchers and pinned digests a host admits,
 //!   checked before an artifact is loaded ([`Voucher`], [`Vouch`]).
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
@@ -46,9 +46,11 @@ pub mod artifact;
 mod atomic_file;
 pub mod audit;
 mod bindings;
+pub mod checking;
 pub mod checks;
 pub mod codecache;
 pub mod contract;
+pub mod digest;
 pub mod limits;
 pub mod model;
 pub mod onnx;
@@ -61,8 +63,10 @@ pub mod row_file;
 pub mod trust;
 pub mod wasi;
 
-pub use artifact::{Artifact, ArtifactError, Digest, pack};
-pub use checks::{CheckReport, Checks, Tolerance};
+pub use artifact::{Artifact, ArtifactError, pack};
+pub use digest::{Digest, DigestError};
+pub use checking::{CaseFailure, CheckReport};
+pub use checks::{Checks, ChecksError, Tolerance};
 pub use codecache::{CacheError, CodeCache, CodeSource};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output, Schema};
 pub use limits::{LimitHit, Limits};

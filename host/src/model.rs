@@ -5,7 +5,8 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
-use crate::artifact::{Artifact, Digest};
+use crate::artifact::Artifact;
+use crate::digest::Digest;
 use crate::codecache::{self, CodeCache, CodeSource};
 use crate::bindings::EstimatorPre;
 use crate::contract::{Contract, ContractError, Fault, Schema};

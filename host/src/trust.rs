@@ -22,7 +22,7 @@ use std::path::{Path, PathBuf};
 use ed25519_dalek::{Signer, SigningKey, Verifier, VerifyingKey};
 use serde::{Deserialize, Serialize};
 
-use crate::artifact::Digest;
+use crate::digest::Digest;
 
 const CONTEXT: &str = "paddock-artifact-v1 ";
 
@@ -129,7 +129,7 @@ impl Voucher {
 
     /// The voucher as it is written to a `.voucher` file.
     pub fn to_text(&self) -> String {
-        let body = toml_text(&VoucherFile { name: self.name.clone(), ed25519_public: hex(self.key.as_bytes()) });
+        let body = toml_text(&VoucherFile { name: self.name.clone(), ed25519_public: hex::encode(self.key.as_bytes()) });
         format!(
             "# paddock voucher {} (id {}): a host that trusts this file admits the artifacts it vouches for.\n{body}",
             self.name,
@@ -177,7 +177,7 @@ impl VouchingKey {
 
     /// The key as it is written to a `.vouching-key` file.
     pub fn to_text(&self) -> String {
-        let body = toml_text(&VouchingKeyFile { name: self.name.clone(), ed25519_seed: hex(self.key.as_bytes()) });
+        let body = toml_text(&VouchingKeyFile { name: self.name.clone(), ed25519_seed: hex::encode(self.key.as_bytes()) });
         format!(
             "# paddock vouching key {} (id {}): SECRET. Whoever holds this file can vouch as {}.\n{body}",
             self.name,
@@ -199,7 +199,7 @@ impl VouchingKey {
     /// Vouches for an artifact's digest.
     pub fn vouch(&self, digest: Digest) -> Vouch {
         let sig = self.key.sign(message(digest).as_bytes());
-        Vouch { voucher: self.voucher().id(), digest: digest.to_string(), ed25519_signature: hex(&sig.to_bytes()) }
+        Vouch { voucher: self.voucher().id(), digest: digest.to_string(), ed25519_signature: hex::encode(sig.to_bytes()) }
     }
 }
 
@@ -343,7 +343,8 @@ impl TrustPolicy {
 
 fn holds(voucher: &Voucher, digest: Digest, vouch: &Vouch) -> Result<(), TrustError> {
     let broken = || TrustError::BrokenVouch { voucher: vouch.voucher.clone() };
-    let bytes: [u8; 64] = unhex(&vouch.ed25519_signature).and_then(|b| b.try_into().ok()).ok_or_else(broken)?;
+    let mut bytes = [0u8; 64];
+    hex::decode_to_slice(&vouch.ed25519_signature, &mut bytes).map_err(|_| broken())?;
     let signature = ed25519_dalek::Signature::from_bytes(&bytes);
     voucher.key.verify(message(digest).as_bytes(), &signature).map_err(|_| broken())
 }
@@ -370,32 +371,15 @@ fn read_toml<T: serde::de::DeserializeOwned>(path: &Path, what: &str) -> Result<
 }
 
 fn key_bytes(path: &Path, field: &str, value: &str) -> Result<[u8; 32], TrustError> {
-    unhex(value)
-        .and_then(|b| b.try_into().ok())
-        .ok_or_else(|| TrustError::BadFile { path: path.to_owned(), reason: format!("{field}: expected 64 hex digits") })
-}
-
-fn hex(bytes: &[u8]) -> String {
-    bytes.iter().map(|b| format!("{b:02x}")).collect()
-}
-
-fn unhex(text: &str) -> Option<Vec<u8>> {
-    if text.len() % 2 != 0 {
-        return None;
-    }
-    (0..text.len()).step_by(2).map(|i| u8::from_str_radix(text.get(i..i + 2)?, 16).ok()).collect()
+    let mut bytes = [0u8; 32];
+    hex::decode_to_slice(value, &mut bytes)
+        .map_err(|_| TrustError::BadFile { path: path.to_owned(), reason: format!("{field}: expected 64 hex digits") })?;
+    Ok(bytes)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn hex_round_trips_and_refuses_odd_input() {
-        assert_eq!(unhex(&hex(&[0, 1, 254, 255])), Some(vec![0, 1, 254, 255]));
-        assert_eq!(unhex("abc"), None);
-        assert_eq!(unhex("zz"), None);
-    }
 
     #[test]
     fn names_that_cannot_be_file_names_are_refused() {

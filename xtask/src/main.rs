@@ -14,7 +14,8 @@
 //!   componentize-py and componentize-js, and packs them (under a WASI
 //!   policy) with SciPy's reference values as their checks.
 //! - `deps`: checks that the library an embedder links (`paddock-host`
-//!   without default features) pulls in none of the command's crates.
+//!   without default features) pulls in none of the command's crates, and
+//!   that no two of its modules depend on each other (`modules.rs`).
 //! - `test`: `deps`, `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
@@ -30,6 +31,8 @@ use std::path::{Path, PathBuf};
 use std::process::Command;
 
 use anyhow::{Context, Result, bail};
+
+mod modules;
 
 /// Guests: (package, library file stem).
 const GUESTS: [(&str, &str); 6] = [
@@ -76,6 +79,7 @@ fn main() -> Result<()> {
         }
         "test" => {
             library_deps(&root)?;
+            modules::check(&root.join("host/src"))?;
             let tools = build(&root)?;
             python_packages()?;
             foreign_guests(&root, &tools)?;
@@ -97,7 +101,7 @@ fn main() -> Result<()> {
             }
             api_check(&root, &tools)
         }
-        "deps" => library_deps(&root),
+        "deps" => library_deps(&root).and_then(|()| modules::check(&root.join("host/src"))),
         "fuzz" => {
             build(&root)?;
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);

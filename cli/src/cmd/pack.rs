@@ -4,7 +4,7 @@ use std::io::Write as _;
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Checks, checks};
+use paddock_host::{Artifact, Checks, checking};
 use serde::Serialize;
 
 use crate::Outcome;
@@ -104,7 +104,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let (_runtime, model) = load.load(tmp.path()).map_err(|e| e.context("the packed artifact does not load")).with_context(not_written)?;
         packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
         if let Some(checks) = &checks {
-            let report = checks::run(&model, checks).with_context(not_written)?;
+            let report = checking::run(&model, checks).with_context(not_written)?;
             if !report.ok() {
                 let first = report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
                 anyhow::bail!(

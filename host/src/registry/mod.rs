@@ -39,8 +39,9 @@ use semver::Version;
 use serde::Serialize;
 use sha2::{Digest as _, Sha256};
 
-use crate::artifact::{Artifact, Digest};
-use crate::checks::{self, CheckReport};
+use crate::artifact::Artifact;
+use crate::digest::Digest;
+use crate::checking::{self, CheckReport};
 use crate::codecache::{CacheError, CodeCache, CodeSource};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
@@ -990,7 +991,7 @@ impl Registry {
         }
         let report = match &checks {
             Some(c) => {
-                let report = checks::run(&loaded, c).map_err(|e| refuse(Stage::Checks, format!("the checks could not run: {e}")))?;
+                let report = checking::run(&loaded, c).map_err(|e| refuse(Stage::Checks, format!("the checks could not run: {e}")))?;
                 if !report.ok() {
                     let first = report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
                     return Err(refuse(

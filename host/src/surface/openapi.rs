@@ -23,7 +23,7 @@ use utoipa::{Modify, OpenApi, PartialSchema, ToSchema};
 
 use super::http;
 use super::wire::{ErrorBody, ErrorDetail, Estimate, EstimateAnswer, EstimateRequest};
-use crate::artifact::Digest;
+use crate::digest::Digest;
 use crate::codecache::CodeSource;
 use crate::model::Usage;
 use crate::registry::{ArtifactState, ArtifactStatus, Reason, RefusedFile, Refusal, ReloadReport, RoutesState, Stage, Status};

@@ -8,7 +8,7 @@ use jiff::Timestamp;
 use serde::ser::SerializeMap;
 use serde::{Deserialize, Serialize, Serializer};
 
-use crate::artifact::Digest;
+use crate::digest::Digest;
 use crate::model::{ScoreError, Usage};
 use crate::registry::{Answer, Context, Reason, Request, RequestError};
 use crate::rows::{Row, RowError};
