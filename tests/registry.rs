@@ -11,7 +11,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use paddock_host::registry::{ArtifactState, ManualClock, RoutesState, Stage, artifact_path};
+use paddock_host::registry::{ArtifactState, ManualClock, RoutesState, GateStep, artifact_path};
 use paddock_host::{
     Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, TrustPolicy, VouchingKey,
 };
@@ -229,7 +229,7 @@ fn route_default_to(store: &Path, version: &str) {
     routes(store, &format!("[models.m]\ndefault = \"{version}\"\n"));
 }
 
-fn refusal_of(reg: &Registry, path: &str) -> (Stage, String) {
+fn refusal_of(reg: &Registry, path: &str) -> (GateStep, String) {
     let status = reg.status();
     let a = status.artifacts.iter().find(|a| a.path == Path::new(path)).unwrap_or_else(|| panic!("{path} in {status:#?}"));
     match &a.state {
@@ -250,7 +250,7 @@ fn an_artifact_failing_its_checks_is_refused_and_the_old_state_keeps_serving() {
     let report = reg.reload().unwrap();
     assert_eq!(report.refused.len(), 1, "{report:?}");
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
-    assert_eq!(stage, Stage::Checks);
+    assert_eq!(stage, GateStep::Checks);
     assert!(reason.contains("3 of 3 checks failed") && reason.contains("expected 1"), "{reason}");
     // The routes name a refused version, so they are refused too.
     let RoutesState::Refused { problems } = reg.status().routes else { panic!("routes accepted") };
@@ -293,10 +293,10 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     route_default_to(store, "2.0.0");
     reg.reload().unwrap();
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
-    assert_eq!(stage, Stage::Trust);
+    assert_eq!(stage, GateStep::Trust);
     assert!(reason.contains(&stranger.voucher().id()), "{reason}");
     let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
-    assert_eq!(stage, Stage::Trust);
+    assert_eq!(stage, GateStep::Trust);
     assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }
@@ -314,11 +314,11 @@ fn a_contract_version_that_differs_from_the_file_name_is_refused() {
     route_default_to(store, "2.0.0");
     reg.reload().unwrap();
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
-    assert_eq!(stage, Stage::Identity);
+    assert_eq!(stage, GateStep::Identity);
     assert!(reason.contains("the contract says m 1.0.0, but the file is at m/2.0.0.wasm"), "{reason}");
-    assert_eq!(refusal_of(&reg, "m/3.0.0.wasm").0, Stage::Identity);
+    assert_eq!(refusal_of(&reg, "m/3.0.0.wasm").0, GateStep::Identity);
     let (stage, reason) = refusal_of(&reg, "m/latest.wasm");
-    assert_eq!(stage, Stage::Layout);
+    assert_eq!(stage, GateStep::Layout);
     assert!(reason.contains("`latest.wasm` is not `<semver>.wasm`"), "{reason}");
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }

@@ -5,7 +5,7 @@
 use std::time::Duration;
 
 use paddock_host::model::Isolation;
-use paddock_host::rows::OutputFault;
+use paddock_host::schema::OutputFault;
 use paddock_host::{
     Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError,
 };

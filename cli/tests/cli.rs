@@ -360,7 +360,7 @@ fn audit_passes_the_example_models_and_reports_the_limits_and_probe() {
         let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
         assert!(v["probe"]["fuel_per_row"].as_f64().unwrap() > 0.0, "{v}");
         assert!(v["probe"]["peak_memory_bytes"].as_u64().unwrap() > 0, "{v}");
-        assert_eq!(v["surface"]["memories"].as_array().unwrap().len(), 1, "{v}");
+        assert_eq!(v["inventory"]["memories"].as_array().unwrap().len(), 1, "{v}");
         assert_eq!(v["violations"].as_array().unwrap().len(), 0);
     }
 }

@@ -208,7 +208,7 @@ impl Artifact {
     }
 
     /// Names of the component's top-level imports, other than type
-    /// definitions (see [`Surface::type_names`]). A model must have none.
+    /// definitions (see [`Inventory::type_names`]). A model must have none.
     pub fn imports(&self) -> &[String] {
         &self.imports
     }
@@ -346,7 +346,7 @@ pub struct Limit {
 
 /// What [`inspect_bytes`] reports about any WebAssembly binary.
 #[derive(Clone, Debug, Serialize)]
-pub struct Surface {
+pub struct Inventory {
     /// `component` or `module`.
     pub encoding: &'static str,
     /// Top-level imports (capabilities; a model must have none).
@@ -373,9 +373,9 @@ pub struct Surface {
 ///
 /// # Errors
 /// [`ArtifactError::NotWasm`] or [`ArtifactError::Malformed`].
-pub fn inspect_bytes(bytes: &[u8]) -> Result<Surface, ArtifactError> {
+pub fn inspect_bytes(bytes: &[u8]) -> Result<Inventory, ArtifactError> {
     let shape = Shape::of(bytes)?;
-    Ok(Surface {
+    Ok(Inventory {
         encoding: match shape.encoding {
             Encoding::Component => "component",
             Encoding::Module => "module",

@@ -9,7 +9,7 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::artifact::{Artifact, Surface, inspect_bytes};
+use crate::artifact::{Artifact, Inventory, inspect_bytes};
 use crate::digest::Digest;
 use crate::checking;
 use crate::contract::Contract;
@@ -85,7 +85,7 @@ pub struct AuditReport {
     /// Who vouches for it.
     pub trust: TrustFinding,
     /// Imports, exports, memories, tables, data and custom sections.
-    pub surface: Option<Surface>,
+    pub inventory: Option<Inventory>,
     /// The WASI policy the audit ran under, if any.
     pub wasi_policy: Option<WasiPolicy>,
     /// Every WASI interface imported, and what satisfies it.
@@ -118,7 +118,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         digest: None,
         bytes: 0,
         trust: TrustFinding { status: "refused", voucher: None, error: None },
-        surface: None,
+        inventory: None,
         wasi_policy: options.wasi.clone(),
         wasi: Vec::new(),
         contract: None,
@@ -145,7 +145,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
     };
     report.digest = Some(artifact.digest());
     report.bytes = artifact.bytes().len() as u64;
-    report.surface = inspect_bytes(artifact.bytes()).ok();
+    report.inventory = inspect_bytes(artifact.bytes()).ok();
     for import in artifact.imports() {
         if !wasi::is_wasi(import) {
             report.violations.push(format!("imports `{import}`"));

@@ -1,7 +1,7 @@
-//! The model's contract as the host sees it: generated from the WIT file,
-//! validated once when a model loads, and indexed for fast row encoding.
+//! The model's contract as the host sees it: generated from the WIT file and
+//! validated once when a model loads. [`crate::schema`] indexes it for row
+//! encoding.
 
-use std::collections::HashMap;
 use std::fmt;
 
 use serde::Serialize;
@@ -185,72 +185,6 @@ impl fmt::Display for Domain {
             Domain::Label(labels) => write!(f, "label {{{}}}", labels.join(", ")),
             Domain::Flag => write!(f, "flag"),
         }
-    }
-}
-
-
-/// A validated contract with its name lookups built: what row encoding uses.
-#[derive(Clone, Debug)]
-pub struct Schema {
-    contract: Contract,
-    index: HashMap<String, usize>,
-    labels: Vec<HashMap<String, usize>>,
-    /// Each output's bounds as a closed interval (open sides infinite).
-    output_ranges: Vec<(f64, f64)>,
-}
-
-impl Schema {
-    /// Validates the contract and indexes it.
-    ///
-    /// # Errors
-    /// As [`validate`].
-    pub fn new(contract: Contract) -> Result<Self, ContractError> {
-        validate(&contract)?;
-        let index = contract.features.iter().enumerate().map(|(i, f)| (f.name.clone(), i)).collect();
-        let labels = contract
-            .features
-            .iter()
-            .map(|f| match &f.domain {
-                Domain::Label(labels) => labels.iter().enumerate().map(|(i, l)| (l.clone(), i)).collect(),
-                _ => HashMap::new(),
-            })
-            .collect();
-        let output_ranges = contract
-            .outputs
-            .iter()
-            .map(|o| (o.bounds.min.unwrap_or(f64::NEG_INFINITY), o.bounds.max.unwrap_or(f64::INFINITY)))
-            .collect();
-        Ok(Schema { contract, index, labels, output_ranges })
-    }
-
-    /// The contract.
-    pub fn contract(&self) -> &Contract {
-        &self.contract
-    }
-
-    /// Position of a feature by name.
-    pub fn feature_index(&self, name: &str) -> Option<usize> {
-        self.index.get(name).copied()
-    }
-
-    /// Index of a label within a label feature.
-    pub(crate) fn label_index(&self, feature: usize, label: &str) -> Option<usize> {
-        self.labels[feature].get(label).copied()
-    }
-
-    /// Number of features per row.
-    pub fn width(&self) -> usize {
-        self.contract.features.len()
-    }
-
-    /// Number of outputs per row.
-    pub fn outputs(&self) -> usize {
-        self.contract.outputs.len()
-    }
-
-    /// Each output's bounds as a closed interval.
-    pub(crate) fn output_ranges(&self) -> &[(f64, f64)] {
-        &self.output_ranges
     }
 }
 

@@ -9,10 +9,11 @@ use crate::artifact::Artifact;
 use crate::digest::Digest;
 use crate::codecache::{self, CodeCache, CodeSource};
 use crate::bindings::EstimatorPre;
-use crate::contract::{Contract, ContractError, Fault, Schema};
+use crate::contract::{Contract, ContractError, Fault};
 use crate::limits::{LimitHit, Limits};
 use crate::pool::Pool;
-use crate::rows::{OutputFault, Row, RowError};
+use crate::rows::{Row, RowError};
+use crate::schema::{OutputFault, Schema};
 use crate::sandbox::{Instance, Runtime, SandboxError, StartError, State};
 use crate::wasi::{self, WasiPolicy};
 

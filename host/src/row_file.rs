@@ -5,7 +5,7 @@
 use std::io::{BufRead, BufReader, Read};
 use std::path::Path;
 
-use crate::contract::Schema;
+use crate::schema::Schema;
 use crate::rows::Row;
 
 /// A file format for rows.

@@ -287,7 +287,7 @@ pub(crate) struct Instance {
 /// Where in an instance's start-up something went wrong.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
-pub enum Stage {
+pub enum StartStep {
     /// Creating the instance (memory, tables, start function).
     Instantiate,
     /// The model's `init`.
@@ -296,12 +296,12 @@ pub enum Stage {
     Describe,
 }
 
-impl std::fmt::Display for Stage {
+impl std::fmt::Display for StartStep {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.write_str(match self {
-            Stage::Instantiate => "instantiate",
-            Stage::Init => "init",
-            Stage::Describe => "describe",
+            StartStep::Instantiate => "instantiate",
+            StartStep::Init => "init",
+            StartStep::Describe => "describe",
         })
     }
 }
@@ -314,7 +314,7 @@ pub enum StartError {
     #[error("{stage}: {error}")]
     Sandbox {
         /// The stage.
-        stage: Stage,
+        stage: StartStep,
         /// What stopped it.
         error: SandboxError,
     },
@@ -366,14 +366,14 @@ impl Instance {
         describe: bool,
     ) -> Result<(Estimator, Option<Contract>), StartError> {
         let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
-        let api = pre.instantiate(&mut *store).map_err(|e| fail(Stage::Instantiate, store, e))?;
+        let api = pre.instantiate(&mut *store).map_err(|e| fail(StartStep::Instantiate, store, e))?;
         match api.call_init(&mut *store, params) {
             Ok(Ok(())) => {}
             Ok(Err(message)) => return Err(StartError::Refused(message)),
-            Err(e) => return Err(fail(Stage::Init, store, e)),
+            Err(e) => return Err(fail(StartStep::Init, store, e)),
         }
         let contract = match describe {
-            true => Some(api.call_describe(&mut *store).map_err(|e| fail(Stage::Describe, store, e))?),
+            true => Some(api.call_describe(&mut *store).map_err(|e| fail(StartStep::Describe, store, e))?),
             false => None,
         };
         Ok((api, contract))
@@ -385,7 +385,7 @@ impl Instance {
         let contract = self
             .api
             .call_describe(&mut self.store)
-            .map_err(|e| StartError::Sandbox { stage: Stage::Describe, error: classify(e, runtime, &self.store) });
+            .map_err(|e| StartError::Sandbox { stage: StartStep::Describe, error: classify(e, runtime, &self.store) });
         drain(&self.store, &self.who);
         contract
     }

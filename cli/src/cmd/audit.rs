@@ -35,7 +35,7 @@ fn text(r: &AuditReport) -> String {
     line("size", format!("{} bytes", r.bytes));
     let voucher = r.trust.voucher.as_deref().map_or(String::new(), |v| format!(" (vouch by voucher {v})"));
     line("trust", format!("{}{voucher}", r.trust.status));
-    if let Some(s) = &r.surface {
+    if let Some(s) = &r.inventory {
         line("imports", if s.imports.is_empty() { "none".into() } else { s.imports.join(", ") });
         line("exports", s.exports.join(", "));
         if let Some(p) = &r.wasi_policy {

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use paddock_host::artifact::{Surface, inspect_bytes};
+use paddock_host::artifact::{Inventory, inspect_bytes};
 use paddock_host::{Contract, Digest};
 use serde::Serialize;
 
@@ -24,7 +24,7 @@ struct Report {
     digest: Digest,
     bytes: usize,
     #[serde(flatten)]
-    surface: Surface,
+    inventory: Inventory,
     contract: Option<Contract>,
     load_error: Option<String>,
 }
@@ -33,26 +33,26 @@ struct Report {
 pub fn run(args: Args) -> Result<Outcome> {
     let args = args.target;
     let bytes = std::fs::read(&args.artifact).with_context(|| format!("reading {}", args.artifact.display()))?;
-    let surface = inspect_bytes(&bytes).with_context(|| format!("in {}", args.artifact.display()))?;
+    let inventory = inspect_bytes(&bytes).with_context(|| format!("in {}", args.artifact.display()))?;
     let (contract, load_error) = match args.load.load(&args.artifact) {
         Ok((_, model)) => (Some(model.contract().clone()), None),
         Err(e) => (None, Some(format!("{e:#}"))),
     };
-    let report = Report { path: args.artifact, digest: Digest::of(&bytes), bytes: bytes.len(), surface, contract, load_error };
+    let report = Report { path: args.artifact, digest: Digest::of(&bytes), bytes: bytes.len(), inventory, contract, load_error };
     if args.json {
         print_json(&report)?;
         return Ok(if report.load_error.is_some() { Outcome::Failed } else { Outcome::Ok });
     }
     println!("{}", report.path.display());
     println!("  digest   {}", report.digest);
-    println!("  size     {} bytes, WebAssembly {}", report.bytes, report.surface.encoding);
+    println!("  size     {} bytes, WebAssembly {}", report.bytes, report.inventory.encoding);
     let none = |v: &[String]| if v.is_empty() { "none".to_owned() } else { v.join(", ") };
-    println!("  imports  {}", none(&report.surface.imports));
-    println!("  exports  {}", none(&report.surface.exports));
-    if !report.surface.type_names.is_empty() {
-        println!("  types    {} (type definitions, not capabilities)", report.surface.type_names.join(", "));
+    println!("  imports  {}", none(&report.inventory.imports));
+    println!("  exports  {}", none(&report.inventory.exports));
+    if !report.inventory.type_names.is_empty() {
+        println!("  types    {} (type definitions, not capabilities)", report.inventory.type_names.join(", "));
     }
-    for s in &report.surface.sections {
+    for s in &report.inventory.sections {
         println!("  section  {} ({} bytes)", s.name, s.bytes);
     }
     if let Some(err) = &report.load_error {

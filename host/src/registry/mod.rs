@@ -19,17 +19,20 @@
 //! artifacts and routes there (atomically: write, then rename) is the
 //! operator's job.
 
+mod gate;
 pub mod layout;
 pub mod ledger;
 pub mod metrics;
+mod reload;
 pub mod routes;
 mod shadow;
+mod status;
 mod usage_file;
 mod watch;
 
-use std::collections::{BTreeMap, BTreeSet, HashMap};
+use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicU64, Ordering};
+use std::sync::atomic::AtomicU64;
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
@@ -37,18 +40,19 @@ use arc_swap::ArcSwap;
 use jiff::Timestamp;
 use semver::Version;
 use serde::Serialize;
-use sha2::{Digest as _, Sha256};
 
-use crate::artifact::Artifact;
 use crate::digest::Digest;
-use crate::checking::{self, CheckReport};
-use crate::codecache::{CacheError, CodeCache, CodeSource};
+use crate::codecache::{CacheError, CodeCache};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
-use crate::trust::{Admission, TrustPolicy, Vouch};
+use crate::trust::TrustPolicy;
+
+use gate::Loaded;
+use reload::Memory;
 
 pub use layout::{ROUTES_FILE, STATE_DIR, artifact_path};
+pub use status::{ArtifactState, ArtifactStatus, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, Status};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use usage_file::{SavedUsage, usage_path};
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
@@ -244,155 +248,6 @@ impl Answer {
     }
 }
 
-/// A version that passed the gate.
-pub(crate) struct Loaded {
-    pub model: Model,
-    pub outputs: Arc<[String]>,
-    pub rel: PathBuf,
-    pub admission: Admission,
-    pub checks: Option<CheckReport>,
-    pub ledger: Arc<ledger::VersionLedger>,
-}
-
-/// The stage at which an artifact was refused.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-#[serde(rename_all = "snake_case")]
-pub enum Stage {
-    /// Its place in the store names no model and version.
-    Layout,
-    /// It could not be read.
-    Read,
-    /// Its vouch or digest is not admitted.
-    Trust,
-    /// It is not a well-formed artifact.
-    Parse,
-    /// It does not compile, start, or declare a valid contract.
-    Load,
-    /// Its contract's name or version differ from its place in the store.
-    Identity,
-    /// The checks it carries fail (or it carries none and they are required).
-    Checks,
-}
-
-/// Why an artifact was refused.
-#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct Refusal {
-    /// Where in the gate.
-    pub stage: Stage,
-    /// What was wrong.
-    pub reason: String,
-}
-
-impl std::fmt::Display for Refusal {
-    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        let stage = match self.stage {
-            Stage::Layout => "its place in the store",
-            Stage::Read => "reading it",
-            Stage::Trust => "the trust check",
-            Stage::Parse => "parsing it",
-            Stage::Load => "loading it",
-            Stage::Identity => "matching its name and version to its place",
-            Stage::Checks => "its checks",
-        };
-        write!(f, "refused at {stage}: {}", self.reason)
-    }
-}
-
-/// What the registry did with one artifact file.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-#[serde(tag = "state", rename_all = "snake_case")]
-pub enum ArtifactState {
-    /// It passed the gate and may be routed to.
-    Loaded,
-    /// It was refused and nothing of it is served.
-    Refused {
-        /// Why.
-        refusal: Refusal,
-    },
-    /// New bytes were refused; the version loaded before keeps serving.
-    KeptAfterRefusal {
-        /// The digest still served.
-        serving: Digest,
-        /// Why the new bytes were refused.
-        refusal: Refusal,
-    },
-    /// The file is gone, but routes still use the version, so it stays
-    /// loaded until they stop.
-    KeptAfterRemoval,
-}
-
-/// One artifact in the status listing.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct ArtifactStatus {
-    /// Path relative to the store.
-    #[cfg_attr(feature = "http", schema(value_type = String))]
-    pub path: PathBuf,
-    /// The model, when the path names one.
-    pub model: Option<String>,
-    /// The version, when the path names one.
-    pub version: Option<String>,
-    /// The digest of the file's bytes, when it could be read.
-    pub digest: Option<Digest>,
-    /// What happened to it.
-    #[serde(flatten)]
-    pub state: ArtifactState,
-    /// The routes that use this version (`default`, `rule NAME`, `canary`, `shadow`).
-    pub used_by: Vec<String>,
-    /// On whose word the served bytes were admitted.
-    pub admission: Option<Admission>,
-    /// The served bytes' checks: `"40/40 passed"`, or `"none carried"`.
-    pub checks: Option<String>,
-    /// Where the served code came from (compiled or the code cache).
-    pub code: Option<CodeSource>,
-}
-
-/// Whether the routes file was taken.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-#[serde(tag = "state", rename_all = "snake_case")]
-pub enum RoutesState {
-    /// There is no routes file: nothing is served.
-    Missing,
-    /// The routes file in the store is the one serving.
-    Accepted,
-    /// The routes file in the store was refused; the routes accepted
-    /// before keep serving (none, if none ever was).
-    Refused {
-        /// Every problem found.
-        problems: Vec<String>,
-    },
-}
-
-/// What the registry serves, and what it refused.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct Status {
-    /// The store directory.
-    #[cfg_attr(feature = "http", schema(value_type = String))]
-    pub store: PathBuf,
-    /// Counts up by one at every reload that changed anything.
-    pub generation: u64,
-    /// When this generation was built.
-    pub since: String,
-    /// Every artifact file, and versions kept loaded after removal.
-    pub artifacts: Vec<ArtifactStatus>,
-    /// The routes file.
-    pub routes: RoutesState,
-    /// Models whose versions are loaded but which no route serves.
-    pub unrouted: Vec<String>,
-}
-
-impl Status {
-    /// Artifacts in a state other than loaded.
-    pub fn problems(&self) -> impl Iterator<Item = &ArtifactStatus> {
-        self.artifacts.iter().filter(|a| a.state != ArtifactState::Loaded)
-    }
-}
-
 /// One immutable view of what is served.
 struct Snapshot {
     generation: u64,
@@ -409,23 +264,6 @@ struct ShadowPlan {
     ledger: Arc<ledger::ShadowLedger>,
     sample: f64,
     tolerance: f64,
-}
-
-/// What a reload saw last time, so unchanged files are not gated again.
-#[derive(Default)]
-struct Memory {
-    /// Per artifact path: fingerprint of its bytes and vouch, and the outcome.
-    files: HashMap<PathBuf, (Fingerprint, Outcome)>,
-    /// Fingerprint of the routes file last read, and whether it was accepted.
-    routes: Option<(Fingerprint, RoutesState)>,
-}
-
-type Fingerprint = [u8; 32];
-
-#[derive(Clone)]
-enum Outcome {
-    Loaded(Arc<Loaded>),
-    Refused(Refusal, Option<Digest>),
 }
 
 /// A store being served. Cheap to clone; `Send + Sync`.
@@ -465,45 +303,6 @@ impl std::fmt::Debug for Registry {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
         f.debug_struct("Registry").field("store", &self.inner.dir).field("generation", &self.generation()).finish()
     }
-}
-
-/// What a reload changed.
-#[derive(Clone, Debug, Default, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct ReloadReport {
-    /// The generation now serving.
-    pub generation: u64,
-    /// Whether anything changed (a new generation was built).
-    pub changed: bool,
-    /// Versions that started serving (`model version`).
-    pub loaded: Vec<String>,
-    /// Versions no longer loaded.
-    pub unloaded: Vec<String>,
-    /// Artifacts refused in this reload, with why.
-    pub refused: Vec<RefusedFile>,
-    /// Whether the routes changed.
-    pub routes_changed: bool,
-    /// The routes file's problems, when it was refused in this reload.
-    pub routes_refused: Vec<String>,
-    /// How long the reload took.
-    #[serde(rename = "took_ms", serialize_with = "ser_ms")]
-    #[cfg_attr(feature = "http", schema(value_type = f64))]
-    pub took: Duration,
-}
-
-/// An artifact refused by a reload.
-#[derive(Clone, Debug, PartialEq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct RefusedFile {
-    /// Its path, relative to the store.
-    #[cfg_attr(feature = "http", schema(value_type = String))]
-    pub path: PathBuf,
-    /// Why it was refused.
-    pub refusal: Refusal,
-}
-
-fn ser_ms<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
-    s.serialize_f64(d.as_secs_f64() * 1e3)
 }
 
 impl Registry {
@@ -765,331 +564,4 @@ impl Registry {
         Watcher::start(self.clone(), settle, rescan, true)
     }
 
-    /// Looks at the store again: gates new and changed artifacts, reads the
-    /// routes, and swaps in a new snapshot if anything changed. Safe to call
-    /// from any thread; reloads run one at a time.
-    ///
-    /// # Errors
-    /// [`RegistryError::Store`] when the store directory cannot be read
-    /// (the current snapshot keeps serving).
-    pub fn reload(&self) -> Result<ReloadReport, RegistryError> {
-        let started = Instant::now();
-        let shared = &*self.inner;
-        let mut memory = shared.memory.lock().unwrap_or_else(|e| e.into_inner());
-        let old = shared.current.load_full();
-        let found = layout::scan(&shared.dir).map_err(|source| RegistryError::Store { path: shared.dir.clone(), source })?;
-        let mut report = ReloadReport::default();
-
-        // 1. Artifacts through the gate (or remembered, when unchanged).
-        let mut versions: BTreeMap<String, BTreeMap<Version, Arc<Loaded>>> = BTreeMap::new();
-        let mut statuses: Vec<ArtifactStatus> = Vec::new();
-        let mut files = HashMap::new();
-        for f in &found {
-            let (model, version) = match &f.identity {
-                Ok(id) => id.clone(),
-                Err(reason) => {
-                    statuses.push(refused_status(f, None, None, Refusal { stage: Stage::Layout, reason: reason.clone() }));
-                    continue;
-                }
-            };
-            let limit = shared.options.model.limits.artifact_bytes;
-            let (bytes, vouch) = match read_artifact(&f.path, limit) {
-                Ok(read) => read,
-                Err(refusal) => {
-                    statuses.push(refused_status(f, Some(&(model, version)), None, refusal));
-                    continue;
-                }
-            };
-            let fingerprint = fingerprint(&bytes, vouch.as_deref());
-            let outcome = match memory.files.get(&f.path) {
-                Some((fp, outcome)) if *fp == fingerprint => outcome.clone(),
-                _ => {
-                    let digest = Digest::of(&bytes);
-                    match self.gate(f, &model, &version, bytes, vouch.as_deref()) {
-                        Ok(loaded) => Outcome::Loaded(Arc::new(loaded)),
-                        Err(refusal) => {
-                            tracing::warn!(artifact = %f.rel.display(), %refusal, "artifact refused");
-                            report.refused.push(RefusedFile { path: f.rel.clone(), refusal: refusal.clone() });
-                            Outcome::Refused(refusal, Some(digest))
-                        }
-                    }
-                }
-            };
-            files.insert(f.path.clone(), (fingerprint, outcome.clone()));
-            match outcome {
-                Outcome::Loaded(loaded) => {
-                    statuses.push(loaded_status(&loaded, ArtifactState::Loaded));
-                    versions.entry(model).or_default().insert(version, loaded);
-                }
-                Outcome::Refused(refusal, digest) => {
-                    // New bytes that fail keep the old version of this path serving.
-                    let kept = old.versions.get(&model).and_then(|v| v.get(&version)).filter(|l| l.rel == f.rel);
-                    match kept {
-                        Some(loaded) => {
-                            statuses.push(ArtifactStatus {
-                                digest,
-                                ..loaded_status(loaded, ArtifactState::KeptAfterRefusal { serving: loaded.model.digest(), refusal })
-                            });
-                            versions.entry(model).or_default().insert(version, loaded.clone());
-                        }
-                        None => statuses.push(refused_status(f, Some(&(model, version)), digest, refusal)),
-                    }
-                }
-            }
-        }
-        memory.files = files;
-
-        // 2. Versions whose files are gone: kept if routes still use them.
-        let mut removed: BTreeMap<String, BTreeMap<Version, Arc<Loaded>>> = BTreeMap::new();
-        for (model, vs) in &old.versions {
-            for (version, loaded) in vs {
-                if !versions.get(model).is_some_and(|v| v.contains_key(version)) {
-                    removed.entry(model.clone()).or_default().insert(version.clone(), loaded.clone());
-                }
-            }
-        }
-
-        // 3. The routes: the file in the store if it holds, else the old ones.
-        let routes_path = shared.dir.join(ROUTES_FILE);
-        let available = |m: &str, v: &Version| {
-            versions.get(m).is_some_and(|vs| vs.contains_key(v)) || removed.get(m).is_some_and(|vs| vs.contains_key(v))
-        };
-        let (routes, routes_state) = match std::fs::read(&routes_path) {
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
-                // Still no routes file: the same (empty) routes, no new generation.
-                let routes = if matches!(old.status.routes, RoutesState::Missing) { old.routes.clone() } else { Arc::new(Routes::empty()) };
-                (routes, RoutesState::Missing)
-            }
-            Err(e) => {
-                (old.routes.clone(), RoutesState::Refused { problems: vec![format!("{}: {e}", routes_path.display())] })
-            }
-            Ok(bytes) => {
-                let parsed = std::str::from_utf8(&bytes)
-                    .map_err(|e| RoutesError { problems: vec![format!("not UTF-8 text: {e}")] })
-                    .and_then(Routes::parse)
-                    .and_then(|r| r.check_versions(available).map(|()| r));
-                match parsed {
-                    Ok(r) => {
-                        let fp = fingerprint(&bytes, None);
-                        let same = matches!(&memory.routes, Some((last, RoutesState::Accepted)) if *last == fp);
-                        let routes = if same { old.routes.clone() } else { Arc::new(r) };
-                        memory.routes = Some((fp, RoutesState::Accepted));
-                        (routes, RoutesState::Accepted)
-                    }
-                    Err(e) => {
-                        let first_time = memory.routes.as_ref().is_none_or(|(fp, _)| *fp != fingerprint(&bytes, None));
-                        if first_time {
-                            tracing::warn!(routes = %routes_path.display(), problems = %e.problems.join("; "), "routes refused; the previous routes keep serving");
-                            report.routes_refused = e.problems.clone();
-                        }
-                        let state = RoutesState::Refused { problems: e.problems };
-                        memory.routes = Some((fingerprint(&bytes, None), state.clone()));
-                        (old.routes.clone(), state)
-                    }
-                }
-            }
-        };
-        report.routes_changed = !Arc::ptr_eq(&routes, &old.routes);
-
-        // 4. Keep removed versions the routes still use; drop the rest.
-        let uses = routes.uses();
-        for (model, vs) in removed {
-            for (version, loaded) in vs {
-                if uses.get(model.as_str()).is_some_and(|u| u.contains_key(&version)) {
-                    let model = model.clone();
-                    tracing::warn!(model = %model, version = %version, "artifact removed but still routed; kept loaded");
-                    statuses.push(loaded_status(&loaded, ArtifactState::KeptAfterRemoval));
-                    versions.entry(model).or_default().insert(version, loaded);
-                } else {
-                    report.unloaded.push(format!("{model} {version}"));
-                }
-            }
-        }
-        for s in &mut statuses {
-            let served = !matches!(s.state, ArtifactState::Refused { .. });
-            if let (Some(m), Some(v), true) = (&s.model, &s.version, served)
-                && let Some(users) = Version::parse(v).ok().and_then(|v| uses.get(m.as_str())?.get(&v).cloned())
-            {
-                s.used_by = users;
-            }
-        }
-        statuses.sort_by(|a, b| a.path.cmp(&b.path));
-
-        // 5. Swap, if anything changed.
-        let before: BTreeSet<(String, Version, Digest)> = flatten(&old.versions);
-        let after: BTreeSet<(String, Version, Digest)> = flatten(&versions);
-        report.loaded = after.difference(&before).map(|(m, v, _)| format!("{m} {v}")).collect();
-        let changed = before != after || report.routes_changed || statuses != old.status.artifacts || routes_state != old.status.routes;
-        report.changed = changed;
-        if changed {
-            let generation = shared.reloads.fetch_add(1, Ordering::SeqCst) + 1;
-            let routed: BTreeSet<&str> = routes.models().collect();
-            let unrouted = versions.keys().filter(|m| !routed.contains(m.as_str())).cloned().collect();
-            let status = Status {
-                store: shared.dir.clone(),
-                generation,
-                since: Timestamp::now().to_string(),
-                artifacts: statuses,
-                routes: routes_state,
-                unrouted,
-            };
-            let shadows = routes
-                .models()
-                .filter_map(|m| {
-                    let s = routes.model(m)?.shadow()?;
-                    let plan = ShadowPlan {
-                        loaded: versions.get(m)?.get(&s.version)?.clone(),
-                        ledger: shared.ledger.shadow(m, &s.version),
-                        sample: s.sample,
-                        tolerance: s.tolerance,
-                    };
-                    Some((m.to_owned(), plan))
-                })
-                .collect();
-            shared.current.store(Arc::new(Snapshot { generation, routes, versions, shadows, status }));
-            for v in &report.loaded {
-                tracing::info!(version = %v, generation, "serving");
-            }
-            for v in &report.unloaded {
-                tracing::info!(version = %v, generation, "unloaded");
-            }
-            report.generation = generation;
-        } else {
-            report.generation = old.generation;
-        }
-        report.took = started.elapsed();
-        Ok(report)
-    }
-
-    /// The gate: trust → parse → compile, start, contract → identity → checks.
-    fn gate(&self, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, vouch: Option<&[u8]>) -> Result<Loaded, Refusal> {
-        let shared = &*self.inner;
-        let refuse = |stage, reason: String| Refusal { stage, reason };
-        let digest = Digest::of(&bytes);
-        let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| refuse(Stage::Trust, format!("its .vouch file: {e}")))?;
-        let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| refuse(Stage::Trust, e.to_string()))?;
-        let limit = shared.options.model.limits.artifact_bytes;
-        let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| refuse(Stage::Parse, e.to_string()))?;
-        let checks = artifact.checks().map_err(|e| refuse(Stage::Parse, e.to_string()))?;
-        let options = shared.options.model.clone();
-        let loaded = match &shared.cache {
-            Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
-            None => Model::load_with(&shared.runtime, artifact, options),
-        }
-        .map_err(|e| refuse(Stage::Load, e.to_string()))?;
-        let contract = loaded.contract();
-        if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
-            return Err(refuse(
-                Stage::Identity,
-                format!(
-                    "the contract says {} {}, but the file is at {} (`<model>/<version>.wasm`)",
-                    contract.name,
-                    contract.version,
-                    f.rel.display()
-                ),
-            ));
-        }
-        let report = match &checks {
-            Some(c) => {
-                let report = checking::run(&loaded, c).map_err(|e| refuse(Stage::Checks, format!("the checks could not run: {e}")))?;
-                if !report.ok() {
-                    let first = report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
-                    return Err(refuse(
-                        Stage::Checks,
-                        format!("{} of {} checks failed{first}", report.cases - report.passed, report.cases),
-                    ));
-                }
-                Some(report)
-            }
-            None if shared.options.require_checks => {
-                return Err(refuse(Stage::Checks, "it carries no checks, and this registry requires them".into()));
-            }
-            None => None,
-        };
-        Ok(Loaded {
-            ledger: shared.ledger.version(model, version),
-            outputs: loaded.contract().outputs.iter().map(|o| o.name.clone()).collect(),
-            model: loaded,
-            rel: f.rel.clone(),
-            admission,
-            checks: report,
-        })
-    }
-}
-
-fn flatten(versions: &BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>) -> BTreeSet<(String, Version, Digest)> {
-    versions
-        .iter()
-        .flat_map(|(m, vs)| vs.iter().map(move |(v, l)| (m.clone(), v.clone(), l.model.digest())))
-        .collect()
-}
-
-fn fingerprint(bytes: &[u8], vouch: Option<&[u8]>) -> Fingerprint {
-    let mut h = Sha256::new();
-    h.update(Sha256::digest(bytes));
-    if let Some(s) = vouch {
-        h.update(Sha256::digest(s));
-    }
-    h.finalize().into()
-}
-
-/// Reads an artifact (refusing it over the size cap without reading it all)
-/// and its vouch file, if any.
-fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<Vec<u8>>), Refusal> {
-    let read = |reason: String| Refusal { stage: Stage::Read, reason };
-    let size = std::fs::metadata(path).map_err(|e| read(e.to_string()))?.len();
-    if size > limit {
-        return Err(read(crate::limits::LimitHit::ArtifactSize { limit, actual: size }.to_string()));
-    }
-    let bytes = std::fs::read(path).map_err(|e| read(e.to_string()))?;
-    let vouch_path = Vouch::path_for(path);
-    let vouch = match std::fs::read(&vouch_path) {
-        Ok(s) => Some(s),
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => None,
-        Err(e) => return Err(read(format!("{}: {e}", vouch_path.display()))),
-    };
-    Ok((bytes, vouch))
-}
-
-fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactStatus {
-    let contract = loaded.model.contract();
-    ArtifactStatus {
-        path: loaded.rel.clone(),
-        model: Some(contract.name.clone()),
-        version: Some(contract.version.clone()),
-        digest: Some(loaded.model.digest()),
-        state,
-        used_by: Vec::new(),
-        admission: Some(loaded.admission.clone()),
-        checks: Some(match &loaded.checks {
-            Some(r) => format!("{}/{} passed", r.passed, r.cases),
-            None => "none carried".into(),
-        }),
-        code: Some(loaded.model.code_source().clone()),
-    }
-}
-
-fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, digest: Option<Digest>, refusal: Refusal) -> ArtifactStatus {
-    ArtifactStatus {
-        path: f.rel.clone(),
-        model: id.map(|(m, _)| m.clone()),
-        version: id.map(|(_, v)| v.to_string()),
-        digest,
-        state: ArtifactState::Refused { refusal },
-        used_by: Vec::new(),
-        admission: None,
-        checks: None,
-        code: None,
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn a_refusal_names_its_stage_in_words() {
-        let r = Refusal { stage: Stage::Checks, reason: "3 of 40 checks failed".into() };
-        assert_eq!(r.to_string(), "refused at its checks: 3 of 40 checks failed");
-    }
 }

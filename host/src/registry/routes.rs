@@ -111,7 +111,7 @@ pub enum Reason {
     /// No rule matched: the model's default version.
     Default,
     /// The named rule matched.
-    Rule {
+    RoutingRule {
         /// The rule's name.
         name: String,
     },
@@ -133,7 +133,7 @@ impl Reason {
     pub fn route(&self) -> &str {
         match self {
             Reason::Default => DEFAULT_ROUTE,
-            Reason::Rule { name } => name,
+            Reason::RoutingRule { name } => name,
             Reason::Canary { .. } => "canary",
         }
     }
@@ -143,7 +143,7 @@ impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
             Reason::Default => f.write_str("default"),
-            Reason::Rule { name } => write!(f, "rule {name}"),
+            Reason::RoutingRule { name } => write!(f, "rule {name}"),
             Reason::Canary { cohort, share, instead_of } => {
                 let instead = if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule {instead_of}") };
                 write!(f, "canary: {cohort} in its {}% (else {instead})", share * 100.0)
@@ -162,7 +162,7 @@ pub struct Routes {
 #[derive(Clone, Debug)]
 pub struct ModelRoutes {
     default: Version,
-    rules: Vec<Rule>,
+    rules: Vec<RoutingRule>,
     canary: Option<Canary>,
     shadow: Option<Shadow>,
     /// Reasons, precomputed so routing allocates nothing: index 0 is the
@@ -173,7 +173,7 @@ pub struct ModelRoutes {
 }
 
 #[derive(Clone, Debug)]
-struct Rule {
+struct RoutingRule {
     name: String,
     version: Version,
     context: Vec<(String, Vec<String>)>,
@@ -288,7 +288,7 @@ impl Routes {
                     p.push(format!("{here}: has no condition (give context values, days or hours); use `default` instead"));
                 }
                 if let Some(version) = version {
-                    rules.push(Rule { name: r.name.clone(), version, context, window });
+                    rules.push(RoutingRule { name: r.name.clone(), version, context, window });
                 }
             }
             let canary = m.canary.as_ref().and_then(|c| {
@@ -318,7 +318,7 @@ impl Routes {
             });
             let Some(default) = default else { continue };
             let mut reasons = vec![Arc::new(Reason::Default)];
-            reasons.extend(rules.iter().map(|r| Arc::new(Reason::Rule { name: r.name.clone() })));
+            reasons.extend(rules.iter().map(|r| Arc::new(Reason::RoutingRule { name: r.name.clone() })));
             let canary_reasons = match &canary {
                 Some(c) => reasons
                     .iter()
@@ -412,7 +412,7 @@ impl ModelRoutes {
     }
 }
 
-impl Rule {
+impl RoutingRule {
     fn matches(&self, context: &Context, at: Timestamp) -> bool {
         self.context.iter().all(|(key, values)| context.get(key).is_some_and(|v| values.contains(v)))
             && self.window.as_ref().is_none_or(|w| w.contains(at))

@@ -14,7 +14,7 @@ use std::time::{Duration, Instant};
 use crate::model::Estimates;
 use crate::rows::Row;
 
-use super::Loaded;
+use super::gate::Loaded;
 use super::ledger::ShadowLedger;
 
 /// One sampled request.

@@ -26,9 +26,9 @@ use super::wire::{ErrorBody, ErrorDetail, Estimate, EstimateAnswer, EstimateRequ
 use crate::digest::Digest;
 use crate::codecache::CodeSource;
 use crate::model::Usage;
-use crate::registry::{ArtifactState, ArtifactStatus, Reason, RefusedFile, Refusal, ReloadReport, RoutesState, Stage, Status};
+use crate::registry::{ArtifactState, ArtifactStatus, Reason, RefusedFile, Refusal, ReloadReport, RoutesState, GateStep, Status};
 // utoipa takes a type spelled `Value` for serde_json's: name ours apart.
-use crate::rows::{Row, RowError, Rule, Value as FeatureValue};
+use crate::rows::{ContractRule, Row, RowError, Value as FeatureValue};
 use crate::trust::Admission;
 
 #[derive(OpenApi)]
@@ -58,7 +58,7 @@ use crate::trust::Admission;
         Digest,
         Reason,
         RowError,
-        Rule,
+        ContractRule,
         Usage,
         ErrorBody,
         ErrorDetail,
@@ -71,7 +71,7 @@ use crate::trust::Admission;
         ArtifactState,
         RoutesState,
         Refusal,
-        Stage,
+        GateStep,
         Admission,
         CodeSource,
         ReloadReport,

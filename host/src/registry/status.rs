@@ -1,0 +1,237 @@
+//! What the registry reports about itself: each artifact's state and why
+//! one was refused ([`Refusal`], at a [`GateStep`]), the routes file's
+//! state, and what a reload changed.
+
+use std::path::PathBuf;
+use std::time::Duration;
+
+use semver::Version;
+use serde::Serialize;
+
+use super::gate::Loaded;
+use super::layout;
+use crate::codecache::CodeSource;
+use crate::digest::Digest;
+use crate::trust::Admission;
+
+/// The stage at which an artifact was refused.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(rename_all = "snake_case")]
+pub enum GateStep {
+    /// Its place in the store names no model and version.
+    Layout,
+    /// It could not be read.
+    Read,
+    /// Its vouch or digest is not admitted.
+    Trust,
+    /// It is not a well-formed artifact.
+    Parse,
+    /// It does not compile, start, or declare a valid contract.
+    Load,
+    /// Its contract's name or version differ from its place in the store.
+    Identity,
+    /// The checks it carries fail (or it carries none and they are required).
+    Checks,
+}
+
+/// Why an artifact was refused.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct Refusal {
+    /// Where in the gate.
+    pub stage: GateStep,
+    /// What was wrong.
+    pub reason: String,
+}
+
+impl std::fmt::Display for Refusal {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let stage = match self.stage {
+            GateStep::Layout => "its place in the store",
+            GateStep::Read => "reading it",
+            GateStep::Trust => "the trust check",
+            GateStep::Parse => "parsing it",
+            GateStep::Load => "loading it",
+            GateStep::Identity => "matching its name and version to its place",
+            GateStep::Checks => "its checks",
+        };
+        write!(f, "refused at {stage}: {}", self.reason)
+    }
+}
+
+/// What the registry did with one artifact file.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "state", rename_all = "snake_case")]
+pub enum ArtifactState {
+    /// It passed the gate and may be routed to.
+    Loaded,
+    /// It was refused and nothing of it is served.
+    Refused {
+        /// Why.
+        refusal: Refusal,
+    },
+    /// New bytes were refused; the version loaded before keeps serving.
+    KeptAfterRefusal {
+        /// The digest still served.
+        serving: Digest,
+        /// Why the new bytes were refused.
+        refusal: Refusal,
+    },
+    /// The file is gone, but routes still use the version, so it stays
+    /// loaded until they stop.
+    KeptAfterRemoval,
+}
+
+/// One artifact in the status listing.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct ArtifactStatus {
+    /// Path relative to the store.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub path: PathBuf,
+    /// The model, when the path names one.
+    pub model: Option<String>,
+    /// The version, when the path names one.
+    pub version: Option<String>,
+    /// The digest of the file's bytes, when it could be read.
+    pub digest: Option<Digest>,
+    /// What happened to it.
+    #[serde(flatten)]
+    pub state: ArtifactState,
+    /// The routes that use this version (`default`, `rule NAME`, `canary`, `shadow`).
+    pub used_by: Vec<String>,
+    /// On whose word the served bytes were admitted.
+    pub admission: Option<Admission>,
+    /// The served bytes' checks: `"40/40 passed"`, or `"none carried"`.
+    pub checks: Option<String>,
+    /// Where the served code came from (compiled or the code cache).
+    pub code: Option<CodeSource>,
+}
+
+/// Whether the routes file was taken.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "state", rename_all = "snake_case")]
+pub enum RoutesState {
+    /// There is no routes file: nothing is served.
+    Missing,
+    /// The routes file in the store is the one serving.
+    Accepted,
+    /// The routes file in the store was refused; the routes accepted
+    /// before keep serving (none, if none ever was).
+    Refused {
+        /// Every problem found.
+        problems: Vec<String>,
+    },
+}
+
+/// What the registry serves, and what it refused.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct Status {
+    /// The store directory.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub store: PathBuf,
+    /// Counts up by one at every reload that changed anything.
+    pub generation: u64,
+    /// When this generation was built.
+    pub since: String,
+    /// Every artifact file, and versions kept loaded after removal.
+    pub artifacts: Vec<ArtifactStatus>,
+    /// The routes file.
+    pub routes: RoutesState,
+    /// Models whose versions are loaded but which no route serves.
+    pub unrouted: Vec<String>,
+}
+
+impl Status {
+    /// Artifacts in a state other than loaded.
+    pub fn problems(&self) -> impl Iterator<Item = &ArtifactStatus> {
+        self.artifacts.iter().filter(|a| a.state != ArtifactState::Loaded)
+    }
+}
+
+/// What a reload changed.
+#[derive(Clone, Debug, Default, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct ReloadReport {
+    /// The generation now serving.
+    pub generation: u64,
+    /// Whether anything changed (a new generation was built).
+    pub changed: bool,
+    /// Versions that started serving (`model version`).
+    pub loaded: Vec<String>,
+    /// Versions no longer loaded.
+    pub unloaded: Vec<String>,
+    /// Artifacts refused in this reload, with why.
+    pub refused: Vec<RefusedFile>,
+    /// Whether the routes changed.
+    pub routes_changed: bool,
+    /// The routes file's problems, when it was refused in this reload.
+    pub routes_refused: Vec<String>,
+    /// How long the reload took.
+    #[serde(rename = "took_ms", serialize_with = "ser_ms")]
+    #[cfg_attr(feature = "http", schema(value_type = f64))]
+    pub took: Duration,
+}
+
+/// An artifact refused by a reload.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct RefusedFile {
+    /// Its path, relative to the store.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub path: PathBuf,
+    /// Why it was refused.
+    pub refusal: Refusal,
+}
+
+fn ser_ms<S: serde::Serializer>(d: &Duration, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_f64(d.as_secs_f64() * 1e3)
+}
+
+pub(super) fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactStatus {
+    let contract = loaded.model.contract();
+    ArtifactStatus {
+        path: loaded.rel.clone(),
+        model: Some(contract.name.clone()),
+        version: Some(contract.version.clone()),
+        digest: Some(loaded.model.digest()),
+        state,
+        used_by: Vec::new(),
+        admission: Some(loaded.admission.clone()),
+        checks: Some(match &loaded.checks {
+            Some(r) => format!("{}/{} passed", r.passed, r.cases),
+            None => "none carried".into(),
+        }),
+        code: Some(loaded.model.code_source().clone()),
+    }
+}
+
+pub(super) fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, digest: Option<Digest>, refusal: Refusal) -> ArtifactStatus {
+    ArtifactStatus {
+        path: f.rel.clone(),
+        model: id.map(|(m, _)| m.clone()),
+        version: id.map(|(_, v)| v.to_string()),
+        digest,
+        state: ArtifactState::Refused { refusal },
+        used_by: Vec::new(),
+        admission: None,
+        checks: None,
+        code: None,
+    }
+}
+
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_refusal_names_its_stage_in_words() {
+        let r = Refusal { stage: GateStep::Checks, reason: "3 of 40 checks failed".into() };
+        assert_eq!(r.to_string(), "refused at its checks: 3 of 40 checks failed");
+    }
+}
