@@ -11,9 +11,9 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use paddock_host::registry::{ArtifactState, ManualClock, RoutesState, GateStep, artifact_path};
+use paddock_host::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
 use paddock_host::{
-    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, TrustPolicy, VouchingKey,
+    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, TrustError, TrustPolicy, VouchingKey,
 };
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
@@ -229,15 +229,18 @@ fn route_default_to(store: &Path, version: &str) {
     routes(store, &format!("[models.m]\ndefault = \"{version}\"\n"));
 }
 
-fn refusal_of(reg: &Registry, path: &str) -> (GateStep, String) {
+fn refused(reg: &Registry, path: &str) -> Refusal {
     let status = reg.status();
     let a = status.artifacts.iter().find(|a| a.path == Path::new(path)).unwrap_or_else(|| panic!("{path} in {status:#?}"));
     match &a.state {
-        ArtifactState::Refused { refusal } | ArtifactState::KeptAfterRefusal { refusal, .. } => {
-            (refusal.stage, refusal.reason.clone())
-        }
+        ArtifactState::Refused { refusal } | ArtifactState::KeptAfterRefusal { refusal, .. } => refusal.clone(),
         other => panic!("{path} was not refused: {other:?}"),
     }
+}
+
+fn refusal_of(reg: &Registry, path: &str) -> (GateStep, String) {
+    let refusal = refused(reg, path);
+    (refusal.step(), refusal.reason())
 }
 
 #[test]
@@ -295,8 +298,13 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
     assert_eq!(stage, GateStep::Trust);
     assert!(reason.contains(&stranger.voucher().id()), "{reason}");
+    // The cause is typed, with its source.
+    let refusal = refused(&reg, "m/2.0.0.wasm");
+    assert!(matches!(&refusal, Refusal::Trust(e) if matches!(**e, TrustError::UnknownVoucher { .. })), "{refusal:?}");
+    assert!(std::error::Error::source(&refusal).is_some());
     let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
     assert_eq!(stage, GateStep::Trust);
+    assert!(matches!(&refused(&reg, "m/3.0.0.wasm"), Refusal::Trust(e) if matches!(**e, TrustError::DigestMismatch { .. })));
     assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }

@@ -12,6 +12,7 @@ use std::sync::Arc;
 
 use serde::Serialize;
 use crate::digest::Digest;
+use crate::tool_error::ToolError;
 use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 
 use crate::checks::{Checks, ChecksError};
@@ -75,7 +76,7 @@ pub enum ArtifactError {
     Checks(#[from] ChecksError),
     /// A core module could not be turned into a component.
     #[error("cannot make a component from this module: {0}")]
-    Componentize(String),
+    Componentize(#[source] ToolError),
 }
 
 /// A top-level custom section: its name and size.
@@ -431,7 +432,7 @@ pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Resu
             wit_component::ComponentEncoder::default()
                 .module(&module)
                 .and_then(|e| e.validate(true).encode())
-                .map_err(|e| ArtifactError::Componentize(format!("{e:#}")))?
+                .map_err(|e| ArtifactError::Componentize(e.into()))?
         }
     };
     let mut out = strip_own_sections(&component)?;
@@ -446,9 +447,8 @@ pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Resu
 
 /// Embeds the `estimator` world's component type into a core module.
 fn embed_world(module: &mut Vec<u8>) -> Result<(), ArtifactError> {
-    // `{:#}` prints the whole chain of wit-component's errors.
-    fn fail(e: impl std::fmt::Display) -> ArtifactError {
-        ArtifactError::Componentize(format!("{e:#}"))
+    fn fail(e: wasmtime::anyhow::Error) -> ArtifactError {
+        ArtifactError::Componentize(e.into())
     }
     let mut resolve = wit_parser::Resolve::default();
     let package = resolve.push_str("estimator.wit", WIT).map_err(fail)?;

@@ -31,6 +31,7 @@ use wasmtime::component::Component;
 
 use crate::artifact::Artifact;
 use crate::sandbox::Runtime;
+use crate::tool_error::ToolError;
 
 /// Tag mixed into every key: bump it if the entry format changes.
 const FORMAT: &[u8] = b"paddock-code-v1";
@@ -120,21 +121,22 @@ impl CodeCache {
     /// sound one, otherwise compiled and written back.
     ///
     /// # Errors
-    /// Only when compiling fails (the message wasmtime gave); problems with
-    /// the entry itself are reported in the [`CodeSource`], never fatal.
-    pub fn component(&self, runtime: &Runtime, artifact: &Artifact) -> Result<(Component, CodeSource), String> {
+    /// Only the [`ToolError`] wasmtime gave when compiling fails; problems
+    /// with the entry itself ([`EntryProblem`]) are reported in the
+    /// [`CodeSource`], never fatal.
+    pub fn component(&self, runtime: &Runtime, artifact: &Artifact) -> Result<(Component, CodeSource), ToolError> {
         let path = self.entry_path(runtime, artifact);
         let mut trouble = None;
         match fs::read(&path) {
             Ok(bytes) => match load(runtime, &bytes) {
                 Ok(component) => return Ok((component, CodeSource::Cache)),
-                Err(reason) => {
+                Err(problem) => {
                     let _ = fs::remove_file(&path);
-                    trouble = Some(format!("entry {} dropped: {reason}", path.display()));
+                    trouble = Some(format!("entry {} dropped: {problem}", path.display()));
                 }
             },
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
-            Err(e) => trouble = Some(format!("entry {}: {e}", path.display())),
+            Err(e) => trouble = Some(format!("entry {}: {}", path.display(), EntryProblem::Io(e))),
         }
         let component = compile(runtime, artifact)?;
         let source = match store(&path, &component) {
@@ -142,15 +144,34 @@ impl CodeCache {
                 None => CodeSource::CompiledAndCached,
                 Some(reason) => CodeSource::CompiledCacheFailed { reason },
             },
-            Err(e) => CodeSource::CompiledCacheFailed { reason: format!("writing {}: {e}", path.display()) },
+            Err(problem) => CodeSource::CompiledCacheFailed { reason: format!("writing {}: {problem}", path.display()) },
         };
         Ok((component, source))
     }
 }
 
+/// Why a cache entry could not be used or written. Never fatal: the model
+/// is compiled instead, and the problem is reported in its [`CodeSource`].
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum EntryProblem {
+    /// The entry is shorter than its checksum.
+    #[error("shorter than its checksum")]
+    Short,
+    /// The entry's bytes do not match its checksum.
+    #[error("checksum does not match its contents")]
+    Checksum,
+    /// wasmtime refused the compiled code.
+    #[error("{0}")]
+    Code(#[source] ToolError),
+    /// The file could not be read or written.
+    #[error("{0}")]
+    Io(#[source] std::io::Error),
+}
+
 /// Compiles an artifact's component.
-pub(crate) fn compile(runtime: &Runtime, artifact: &Artifact) -> Result<Component, String> {
-    Component::new(runtime.engine(), artifact.bytes()).map_err(|e| format!("{e:#}"))
+pub(crate) fn compile(runtime: &Runtime, artifact: &Artifact) -> Result<Component, ToolError> {
+    Ok(Component::new(runtime.engine(), artifact.bytes())?)
 }
 
 /// Feeds `Hash` output into sha256, so the key is stable across processes
@@ -166,37 +187,37 @@ impl Hasher for KeyHasher {
     }
 }
 
-fn load(runtime: &Runtime, bytes: &[u8]) -> Result<Component, String> {
+fn load(runtime: &Runtime, bytes: &[u8]) -> Result<Component, EntryProblem> {
     if bytes.len() < 32 {
-        return Err("shorter than its checksum".into());
+        return Err(EntryProblem::Short);
     }
     let (sum, code) = bytes.split_at(32);
     if Sha256::digest(code).as_slice() != sum {
-        return Err("checksum does not match its contents".into());
+        return Err(EntryProblem::Checksum);
     }
-    deserialize(runtime, code)
+    deserialize(runtime, code).map_err(EntryProblem::Code)
 }
 
 /// The one unsafe call in paddock.
 #[allow(unsafe_code)]
-fn deserialize(runtime: &Runtime, code: &[u8]) -> Result<Component, String> {
+fn deserialize(runtime: &Runtime, code: &[u8]) -> Result<Component, ToolError> {
     // SAFETY: wasmtime requires that `code` came from `Component::serialize`
     // on a compatible engine and was not altered. The bytes come from an
     // entry this cache wrote (`store`), in a directory only its owner may
     // write (`check_private`), and their sha256 was checked against the
     // checksum written with them just now. wasmtime itself refuses code from
     // another version or configuration.
-    unsafe { Component::deserialize(runtime.engine(), code) }.map_err(|e| format!("{e:#}"))
+    Ok(unsafe { Component::deserialize(runtime.engine(), code) }?)
 }
 
-fn store(path: &Path, component: &Component) -> Result<(), String> {
-    let code = component.serialize().map_err(|e| format!("{e:#}"))?;
+fn store(path: &Path, component: &Component) -> Result<(), EntryProblem> {
+    let code = component.serialize().map_err(|e| EntryProblem::Code(e.into()))?;
     let sum = Sha256::digest(&code);
     crate::atomic_file::write_with(path, |f| {
         f.write_all(&sum)?;
         f.write_all(&code)
     })
-    .map_err(|e| format!("{}: {e}", path.display()))
+    .map_err(EntryProblem::Io)
 }
 
 #[cfg(unix)]

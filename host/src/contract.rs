@@ -71,6 +71,7 @@ fn opt(v: Option<f64>) -> String {
 
 /// Every problem found in a contract.
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
+#[non_exhaustive]
 pub struct ContractError {
     /// The problems, in the order they were found.
     pub problems: Vec<ContractProblem>,

@@ -60,6 +60,7 @@ pub mod rows;
 pub mod sandbox;
 pub mod schema;
 pub mod surface;
+pub mod tool_error;
 pub mod row_file;
 pub mod trust;
 pub mod wasi;
@@ -75,6 +76,7 @@ pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, ScoreError
 pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
 pub use rows::{ContractRule, Row, RowError, Value};
 pub use schema::{OutputFault, Schema};
-pub use sandbox::{Runtime, RuntimeConfig, SandboxError};
+pub use sandbox::{Runtime, RuntimeConfig, RuntimeError, SandboxError};
+pub use tool_error::ToolError;
 pub use trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 pub use wasi::WasiPolicy;

@@ -57,33 +57,57 @@ impl Limits {
     /// memory, rows or artifact size, and deadlines over an hour.
     ///
     /// # Errors
-    /// A sentence naming each field that is out of range.
-    pub fn check(&self) -> Result<(), String> {
+    /// [`LimitsError`] listing a [`LimitProblem`] for each field out of
+    /// range.
+    pub fn check(&self) -> Result<(), LimitsError> {
         const HOUR: Duration = Duration::from_secs(3600);
         let mut problems = Vec::new();
+        let mut problem = |field, value: String, allowed| problems.push(LimitProblem { field, value, allowed });
         if self.deadline.is_zero() || self.deadline > HOUR {
-            problems.push(format!("deadline is {}; give 1 ms to 1 hour", fmt_duration(self.deadline)));
+            problem("deadline", fmt_duration(self.deadline), "give 1 ms to 1 hour");
         }
         if self.init_deadline.is_zero() || self.init_deadline > HOUR {
-            problems.push(format!("init_deadline is {}; give 1 ms to 1 hour", fmt_duration(self.init_deadline)));
+            problem("init_deadline", fmt_duration(self.init_deadline), "give 1 ms to 1 hour");
         }
         if self.fuel == Some(0) {
-            problems.push("fuel is 0: no call could run; leave it unset for no fuel limit".into());
+            problem("fuel", "0".into(), "no call could run; leave it unset for no fuel limit");
         }
         if self.init_fuel == Some(0) {
-            problems.push("init_fuel is 0: no instance could start; leave it unset for no fuel limit".into());
+            problem("init_fuel", "0".into(), "no instance could start; leave it unset for no fuel limit");
         }
         if self.memory_bytes < 65_536 {
-            problems.push(format!("memory_bytes is {}; one WebAssembly page (65536) is the least", self.memory_bytes));
+            problem("memory_bytes", self.memory_bytes.to_string(), "one WebAssembly page (65536) is the least");
         }
         if self.rows_per_call == 0 {
-            problems.push("rows_per_call is 0: no call could carry a row".into());
+            problem("rows_per_call", "0".into(), "no call could carry a row");
         }
         if self.artifact_bytes == 0 {
-            problems.push("artifact_bytes is 0: no artifact could load".into());
+            problem("artifact_bytes", "0".into(), "no artifact could load");
         }
-        if problems.is_empty() { Ok(()) } else { Err(problems.join("; ")) }
+        if problems.is_empty() { Ok(()) } else { Err(LimitsError { problems }) }
     }
+}
+
+/// One limit that cannot mean what it says.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("{field} is {value}: {allowed}")]
+#[non_exhaustive]
+pub struct LimitProblem {
+    /// The field of [`Limits`].
+    pub field: &'static str,
+    /// Its value, as text.
+    pub value: String,
+    /// What it may be instead.
+    pub allowed: &'static str,
+}
+
+/// Limits refused by [`Limits::check`]: every field out of range.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("{}", .problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; "))]
+#[non_exhaustive]
+pub struct LimitsError {
+    /// Each field out of range.
+    pub problems: Vec<LimitProblem>,
 }
 
 /// Which limit a call hit.

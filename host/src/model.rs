@@ -10,7 +10,8 @@ use crate::digest::Digest;
 use crate::codecache::{self, CodeCache, CodeSource};
 use crate::bindings::EstimatorPre;
 use crate::contract::{Contract, ContractError, Fault};
-use crate::limits::{LimitHit, Limits};
+use crate::tool_error::ToolError;
+use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::pool::Pool;
 use crate::rows::{Row, RowError};
 use crate::schema::{OutputFault, Schema};
@@ -60,10 +61,10 @@ pub enum LoadError {
     WasiImports(Vec<String>),
     /// wasmtime refused to compile the component.
     #[error("the component does not compile: {0}")]
-    Compile(String),
+    Compile(#[source] ToolError),
     /// The component's exports do not match the `estimator` world.
     #[error("the component does not implement the paddock:model/estimator world: {0}")]
-    World(String),
+    World(#[source] ToolError),
     /// The first instance failed to start.
     #[error("the model failed to start: {0}")]
     Start(StartError),
@@ -75,27 +76,49 @@ pub enum LoadError {
     ContractUnstable,
     /// The options ask for something the runtime cannot give.
     #[error("{0}")]
-    Options(String),
+    Options(#[from] OptionsError),
+}
+
+/// Model options a runtime cannot honour.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum OptionsError {
+    /// Limits that cannot mean what they say (each field named).
+    #[error(transparent)]
+    Limits(#[from] LimitsError),
+    /// A fuel limit on a runtime that does not meter fuel.
+    #[error("a fuel limit needs a runtime that meters fuel (RuntimeConfig::fuel)")]
+    FuelNotMetered,
+    /// A memory cap above what the runtime reserves per instance.
+    #[error("memory cap of {asked} bytes is above the runtime's maximum of {max} bytes")]
+    MemoryOverRuntime {
+        /// The cap asked for.
+        asked: u64,
+        /// The runtime's maximum (`RuntimeConfig::max_memory_bytes`).
+        max: u64,
+    },
+    /// A table cap above what the runtime reserves per instance.
+    #[error("table cap of {asked} elements is above the runtime's maximum of {max}")]
+    TableOverRuntime {
+        /// The cap asked for.
+        asked: u64,
+        /// The runtime's maximum (`RuntimeConfig::max_table_elements`).
+        max: u64,
+    },
 }
 
 /// Refuses limits the runtime cannot enforce.
 fn check_options(runtime: &Runtime, limits: &Limits) -> Result<(), LoadError> {
     let rc = runtime.config();
-    limits.check().map_err(LoadError::Options)?;
+    limits.check().map_err(OptionsError::Limits)?;
     if (limits.fuel.is_some() || limits.init_fuel.is_some()) && !rc.fuel {
-        return Err(LoadError::Options("a fuel limit needs a runtime that meters fuel (RuntimeConfig::fuel)".into()));
+        return Err(OptionsError::FuelNotMetered.into());
     }
     if limits.memory_bytes > rc.max_memory_bytes {
-        return Err(LoadError::Options(format!(
-            "memory cap of {} bytes is above the runtime's maximum of {} bytes",
-            limits.memory_bytes, rc.max_memory_bytes
-        )));
+        return Err(OptionsError::MemoryOverRuntime { asked: limits.memory_bytes, max: rc.max_memory_bytes }.into());
     }
     if limits.table_elements > rc.max_table_elements {
-        return Err(LoadError::Options(format!(
-            "table cap of {} elements is above the runtime's maximum of {}",
-            limits.table_elements, rc.max_table_elements
-        )));
+        return Err(OptionsError::TableOverRuntime { asked: limits.table_elements, max: rc.max_table_elements }.into());
     }
     Ok(())
 }
@@ -332,13 +355,14 @@ impl Model {
     ///
     /// # Errors
     /// [`LoadError::TooLarge`] over the size cap, [`LoadError::Imports`]
-    /// naming every import, [`LoadError::Compile`] / [`LoadError::World`]
+    /// naming every import, [`LoadError::WasiImports`] when it imports WASI
+    /// and no WASI policy is set, [`LoadError::Compile`] / [`LoadError::World`]
     /// for components wasmtime refuses, [`LoadError::Start`] when
     /// instantiation, `init` or `describe` trap, hit a limit or refuse the
     /// params, [`LoadError::Contract`] listing every problem with the
     /// declared contract, [`LoadError::ContractUnstable`] when a second
-    /// `describe()` answers differently, [`LoadError::Options`] for limits
-    /// the runtime cannot enforce.
+    /// `describe()` answers differently, [`LoadError::Options`] (an
+    /// [`OptionsError`]) for limits the runtime cannot enforce.
     pub fn load_with(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<Model, LoadError> {
         Self::load_inner(runtime, artifact, options, None)
     }

@@ -16,7 +16,7 @@ use serde_json::Value;
 pub enum OnnxError {
     /// The manifest is not TOML.
     #[error("the manifest is not TOML: {0}")]
-    NotToml(String),
+    NotToml(#[source] toml::de::Error),
     /// A field is missing or of the wrong kind.
     #[error("manifest field `{field}`: {problem}")]
     Field {
@@ -40,7 +40,7 @@ pub enum OnnxError {
 /// wrong kind (`name`, `version`, `features`, `outputs`, each feature's and
 /// output's `name`); [`OnnxError::Empty`] for empty ONNX bytes.
 pub fn params(manifest_toml: &str, onnx: &[u8]) -> Result<Vec<u8>, OnnxError> {
-    let manifest: Value = toml::from_str(manifest_toml).map_err(|e| OnnxError::NotToml(e.to_string()))?;
+    let manifest: Value = toml::from_str(manifest_toml).map_err(OnnxError::NotToml)?;
     check(&manifest)?;
     if onnx.is_empty() {
         return Err(OnnxError::Empty);

@@ -5,8 +5,8 @@
 use std::io::{BufRead, BufReader, Read};
 use std::path::Path;
 
+use crate::rows::{Row, RowJsonError};
 use crate::schema::Schema;
-use crate::rows::Row;
 
 /// A file format for rows.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -36,7 +36,38 @@ pub struct Record {
     /// The value of the id column or key, when one was named.
     pub id: Option<String>,
     /// The row, or why the record could not be read as one.
-    pub row: Result<Row, String>,
+    pub row: Result<Row, RecordError>,
+}
+
+/// Why one record of a file could not be read as a row (the rest carry on).
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum RecordError {
+    /// A CSV field is not UTF-8 text.
+    #[error("field {field} is not UTF-8 text{}", .line.map_or(String::new(), |l| format!(" (line {l})")))]
+    NotUtf8 {
+        /// The field's position, from 1.
+        field: usize,
+        /// The line in the file, when known.
+        line: Option<u64>,
+    },
+    /// The record could not be read (the reader's words).
+    #[error("cannot read the record: {0}")]
+    Unreadable(String),
+    /// A CSV record with another number of fields than the header.
+    #[error("{fields} fields but the header has {header}")]
+    FieldCount {
+        /// Fields in the record.
+        fields: usize,
+        /// Columns in the header.
+        header: usize,
+    },
+    /// An NDJSON line that is not JSON (the parser's words).
+    #[error("not JSON: {0}")]
+    NotJson(String),
+    /// An NDJSON line that is JSON but not a row.
+    #[error(transparent)]
+    Row(#[from] RowJsonError),
 }
 
 /// Which columns (CSV) or keys (NDJSON) are not features.
@@ -140,11 +171,11 @@ fn csv_records<'a, R: Read + 'a>(
         let number = i + 1;
         let record = match result {
             Ok(r) => r,
-            Err(e) => return Some(Record { number, id: None, row: Err(csv_problem(&e)) }),
+            Err(e) => return Some(Record { number, id: None, row: Err(csv_problem(e)) }),
         };
         let id_value = id_at.and_then(|i| record.get(i)).map(str::to_owned);
         if record.len() != header.len() {
-            let row = Err(format!("{} fields but the header has {}", record.len(), header.len()));
+            let row = Err(RecordError::FieldCount { fields: record.len(), header: header.len() });
             return Some(Record { number, id: id_value, row });
         }
         let row = header
@@ -159,14 +190,11 @@ fn csv_records<'a, R: Read + 'a>(
 }
 
 /// A CSV record's problem in words, naming the field.
-fn csv_problem(e: &csv::Error) -> String {
+fn csv_problem(e: csv::Error) -> RecordError {
     match e.kind() {
-        csv::ErrorKind::Utf8 { pos, err } => {
-            let line = pos.as_ref().map_or(String::new(), |p| format!(" (line {})", p.line()));
-            format!("field {} is not UTF-8 text{line}", err.field() + 1)
-        }
-        csv::ErrorKind::Io(io) => format!("cannot read the record: {io}"),
-        _ => format!("unreadable CSV record: {e}"),
+        csv::ErrorKind::Utf8 { pos, err } => RecordError::NotUtf8 { field: err.field() + 1, line: pos.as_ref().map(|p| p.line()) },
+        csv::ErrorKind::Io(io) => RecordError::Unreadable(io.to_string()),
+        _ => RecordError::Unreadable(e.to_string()),
     }
 }
 
@@ -176,14 +204,14 @@ fn ndjson_records<'a, R: Read + 'a>(input: R, columns: Columns<'a>) -> impl Iter
         let number = i + 1;
         let line = match line {
             Ok(l) => l,
-            Err(e) => return Some(Record { number, id: None, row: Err(format!("unreadable line: {e}")) }),
+            Err(e) => return Some(Record { number, id: None, row: Err(RecordError::Unreadable(e.to_string())) }),
         };
         if line.trim().is_empty() {
             return None;
         }
         let mut value: serde_json::Value = match serde_json::from_str(&line) {
             Ok(v) => v,
-            Err(e) => return Some(Record { number, id: None, row: Err(format!("not JSON: {e}")) }),
+            Err(e) => return Some(Record { number, id: None, row: Err(RecordError::NotJson(e.to_string())) }),
         };
         let id_value = id.and_then(|key| value.as_object_mut()?.remove(key)).map(|v| match v {
             serde_json::Value::String(s) => s,
@@ -194,7 +222,7 @@ fn ndjson_records<'a, R: Read + 'a>(input: R, columns: Columns<'a>) -> impl Iter
                 map.remove(key);
             }
         }
-        Some(Record { number, id: id_value, row: Row::from_json(value) })
+        Some(Record { number, id: id_value, row: Row::from_json(value).map_err(RecordError::from) })
     })
 }
 
@@ -246,7 +274,8 @@ mod tests {
     fn a_field_that_is_not_utf8_is_named_in_words() {
         let s = schema();
         let got: Vec<Record> = records(&b"kw\n1\n\xff\n"[..], Format::Csv, &s, Columns::default()).unwrap().collect();
-        assert_eq!(got[1].row.as_ref().unwrap_err(), "field 1 is not UTF-8 text (line 3)");
+        assert_eq!(got[1].row.as_ref().unwrap_err(), &RecordError::NotUtf8 { field: 1, line: Some(3) });
+        assert_eq!(got[1].row.as_ref().unwrap_err().to_string(), "field 1 is not UTF-8 text (line 3)");
     }
 
     #[test]
@@ -258,7 +287,7 @@ mod tests {
         assert_eq!(got[0].id.as_deref(), Some("a"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(7.4))]);
         assert_eq!(got[1].number, 2);
-        assert_eq!(got[1].row.as_ref().unwrap_err(), "1 fields but the header has 2");
+        assert_eq!(got[1].row.as_ref().unwrap_err(), &RecordError::FieldCount { fields: 1, header: 2 });
         assert_eq!(got[2].number, 3);
     }
 
@@ -271,7 +300,8 @@ mod tests {
         assert_eq!(got[0].id.as_deref(), Some("7"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Integer(3))]);
         assert_eq!(got[1].number, 3);
-        assert!(got[1].row.as_ref().unwrap_err().starts_with("not JSON"));
-        assert_eq!(got[2].row.as_ref().unwrap_err(), "a row must be a JSON object, not an array");
+        assert!(matches!(got[1].row.as_ref().unwrap_err(), RecordError::NotJson(_)));
+        assert_eq!(got[2].row.as_ref().unwrap_err(), &RecordError::Row(RowJsonError::NotAnObject { kind: "an array" }));
+        assert_eq!(got[2].row.as_ref().unwrap_err().to_string(), "a row must be a JSON object, not an array");
     }
 }

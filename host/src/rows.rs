@@ -104,11 +104,12 @@ impl Row {
     /// (flags) and nulls (absent).
     ///
     /// # Errors
-    /// A message naming the key whose value is an array or object, or
-    /// saying the row is not an object.
-    pub fn from_json(value: serde_json::Value) -> Result<Row, String> {
+    /// [`RowJsonError::NotAnObject`] when the row is not a JSON object;
+    /// [`RowJsonError::NotAValue`] naming the key whose value is an array
+    /// or object.
+    pub fn from_json(value: serde_json::Value) -> Result<Row, RowJsonError> {
         let serde_json::Value::Object(map) = value else {
-            return Err(format!("a row must be a JSON object, not {}", json_kind(&value)));
+            return Err(RowJsonError::NotAnObject { kind: json_kind(&value) });
         };
         let mut row = Row(Vec::with_capacity(map.len()));
         for (key, v) in map {
@@ -120,12 +121,32 @@ impl Row {
                     None => Value::Number(n.as_f64().unwrap_or(f64::NAN)),
                 },
                 serde_json::Value::String(s) => Value::Label(s),
-                other => return Err(format!("feature `{key}`: {} is not a feature value", json_kind(&other))),
+                other => return Err(RowJsonError::NotAValue { kind: json_kind(&other), feature: key }),
             };
             row.0.push((key, value));
         }
         Ok(row)
     }
+}
+
+/// Why a JSON value is not a row.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum RowJsonError {
+    /// The row is not a JSON object.
+    #[error("a row must be a JSON object, not {kind}")]
+    NotAnObject {
+        /// What it is instead (`an array`, `a number`…).
+        kind: &'static str,
+    },
+    /// A feature's value is an array or an object.
+    #[error("feature `{feature}`: {kind} is not a feature value")]
+    NotAValue {
+        /// The key.
+        feature: String,
+        /// What its value is (`an array`, `an object`).
+        kind: &'static str,
+    },
 }
 
 fn json_kind(v: &serde_json::Value) -> &'static str {
@@ -195,6 +216,7 @@ impl fmt::Display for ContractRule {
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[error("row {row}, feature `{feature}` = {value}: {rule}")]
+#[non_exhaustive]
 pub struct RowError {
     /// The row's number: from 1, in the order the rows were given (a CSV
     /// file's header is not a row).

@@ -19,6 +19,7 @@ use wasmtime::{Config, Engine, InstanceAllocationStrategy, PoolingAllocationConf
 use crate::bindings::{Estimator, EstimatorPre};
 use crate::contract::{Contract, Fault};
 use crate::limits::{LimitHit, Limits};
+use crate::tool_error::ToolError;
 use crate::wasi::{self, WasiPolicy, WasiState};
 
 /// The wasmtime release this host is built on, as the build resolved it
@@ -80,8 +81,15 @@ impl Default for RuntimeConfig {
 
 /// Why the runtime could not start.
 #[derive(Debug, thiserror::Error)]
-#[error("cannot start the WebAssembly engine: {0}")]
-pub struct RuntimeError(String);
+#[non_exhaustive]
+pub enum RuntimeError {
+    /// wasmtime cannot build an engine with these settings on this host.
+    #[error("cannot start the WebAssembly engine: {0}")]
+    Engine(#[source] ToolError),
+    /// The thread that ticks deadlines cannot be started.
+    #[error("cannot start the clock thread: {0}")]
+    Clock(#[source] std::io::Error),
+}
 
 /// What the sandbox reports when a call does not return normally.
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
@@ -133,7 +141,8 @@ impl Runtime {
     /// A runtime with the default [`RuntimeConfig`].
     ///
     /// # Errors
-    /// [`RuntimeError`] when wasmtime cannot build an engine on this host.
+    /// [`RuntimeError::Engine`] when wasmtime cannot build an engine on this
+    /// host; [`RuntimeError::Clock`] when the clock thread cannot start.
     pub fn new() -> Result<Self, RuntimeError> {
         Self::with_config(RuntimeConfig::default())
     }
@@ -141,11 +150,13 @@ impl Runtime {
     /// A runtime with the given settings.
     ///
     /// # Errors
-    /// [`RuntimeError`] when wasmtime cannot build an engine on this host.
+    /// [`RuntimeError::Engine`] when wasmtime cannot build an engine with
+    /// these settings on this host; [`RuntimeError::Clock`] when the clock
+    /// thread cannot start.
     pub fn with_config(config: RuntimeConfig) -> Result<Self, RuntimeError> {
         let (engine, pooled) = match config.pooling.then(|| Engine::new(&engine_config(&config, true))) {
             Some(Ok(engine)) => (engine, true),
-            _ => (Engine::new(&engine_config(&config, false)).map_err(|e| RuntimeError(format!("{e:#}")))?, false),
+            _ => (Engine::new(&engine_config(&config, false)).map_err(|e| RuntimeError::Engine(e.into()))?, false),
         };
         let stop = Arc::new(AtomicBool::new(false));
         let ticker = {
@@ -159,7 +170,7 @@ impl Runtime {
                         engine.increment_epoch();
                     }
                 })
-                .map_err(|e| RuntimeError(format!("cannot start the clock thread: {e}")))?
+                .map_err(RuntimeError::Clock)?
         };
         Ok(Runtime { inner: Arc::new(RuntimeInner { engine, config, pooled, stop, ticker: Some(ticker) }) })
     }
@@ -185,13 +196,13 @@ impl Runtime {
         &self,
         component: &wasmtime::component::Component,
         wasi: Option<&WasiPolicy>,
-    ) -> Result<EstimatorPre<State>, String> {
+    ) -> Result<EstimatorPre<State>, ToolError> {
         let mut linker = Linker::<State>::new(self.engine());
         if wasi.is_some() {
             wasi::link(&mut linker)?;
         }
-        let pre = linker.instantiate_pre(component).map_err(|e| format!("{e:#}"))?;
-        EstimatorPre::new(pre).map_err(|e| format!("{e:#}"))
+        let pre = linker.instantiate_pre(component)?;
+        Ok(EstimatorPre::new(pre)?)
     }
 }
 
@@ -309,6 +320,7 @@ impl std::fmt::Display for StartStep {
 /// Why a new instance could not start.
 #[derive(Clone, Debug, PartialEq, Serialize, thiserror::Error)]
 #[serde(tag = "kind", rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum StartError {
     /// The sandbox stopped it at some stage.
     #[error("{stage}: {error}")]

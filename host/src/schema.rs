@@ -255,7 +255,10 @@ impl Schema {
     /// value finite and within its output's bounds.
     ///
     /// # Errors
-    /// The first [`OutputFault`] found; rows are numbered from 1.
+    /// The first fault found, rows numbered from 1:
+    /// [`OutputFault::WrongLength`] when there are not `rows × outputs`
+    /// values, [`OutputFault::NonFinite`] for NaN or infinity,
+    /// [`OutputFault::OutOfBounds`] for a value outside its output's bounds.
     pub fn check_outputs(&self, rows: usize, values: &[f64]) -> Result<(), OutputFault> {
         let outputs = &self.contract().outputs;
         let expected = rows * outputs.len();

@@ -222,16 +222,16 @@ impl Vouch {
     /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
         let bytes = std::fs::read(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
-        Self::from_bytes(&bytes).map_err(|reason| TrustError::BadFile { path: path.to_owned(), reason })
+        Self::from_bytes(&bytes).map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: e.to_string() })
     }
 
     /// Parses a vouch from the bytes of its file.
     ///
     /// # Errors
-    /// What is wrong with the text, in words.
-    pub fn from_bytes(bytes: &[u8]) -> Result<Self, String> {
-        let text = std::str::from_utf8(bytes).map_err(|_| "not a vouch: the file is not UTF-8 text".to_owned())?;
-        toml::from_str(text).map_err(|e| format!("not a vouch: {}", e.message()))
+    /// [`VouchTextError::NotUtf8`] or [`VouchTextError::NotAVouch`].
+    pub fn from_bytes(bytes: &[u8]) -> Result<Self, VouchTextError> {
+        let text = std::str::from_utf8(bytes).map_err(|_| VouchTextError::NotUtf8)?;
+        toml::from_str(text).map_err(VouchTextError::NotAVouch)
     }
 
     /// The vouch as the text of its file.
@@ -246,6 +246,18 @@ impl Vouch {
         p.push(VOUCH_SUFFIX);
         PathBuf::from(p)
     }
+}
+
+/// Why the text of a `.vouch` file is not a vouch.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum VouchTextError {
+    /// The file is not UTF-8 text.
+    #[error("not a vouch: the file is not UTF-8 text")]
+    NotUtf8,
+    /// The text is not a vouch's TOML.
+    #[error("not a vouch: {}", .0.message())]
+    NotAVouch(#[source] toml::de::Error),
 }
 
 /// What a host requires before it loads an artifact.

@@ -224,25 +224,25 @@ pub(crate) trait WasiHost: wasmtime_wasi::WasiView + 'static {
 /// the call's deadline.
 ///
 /// # Errors
-/// When wasmtime-wasi cannot link (a programming error, reported as text).
-pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), String> {
-    wasmtime_wasi::p2::add_to_linker_sync(linker).map_err(|e| format!("{e:#}"))?;
+/// When wasmtime-wasi cannot link (a programming error).
+pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), crate::tool_error::ToolError> {
+    wasmtime_wasi::p2::add_to_linker_sync(linker)?;
     linker.allow_shadowing(true);
     let mut clock = linker
         .instance(&format!("wasi:clocks/monotonic-clock@{WASI_VERSION}"))
-        .map_err(|e| format!("{e:#}"))?;
+        ?;
     clock
         .func_wrap("subscribe-duration", |mut store: wasmtime::StoreContextMut<'_, T>, (nanos,): (u64,)| {
             nap(store.data_mut(), Duration::from_nanos(nanos))
         })
-        .map_err(|e| format!("{e:#}"))?;
+        ?;
     clock
         .func_wrap("subscribe-instant", |mut store: wasmtime::StoreContextMut<'_, T>, (when,): (u64,)| {
             let host = store.data_mut();
             let now = host.wasi().monotonic.now();
             nap(host, Duration::from_nanos(when.saturating_sub(now)))
         })
-        .map_err(|e| format!("{e:#}"))?;
+        ?;
     linker.allow_shadowing(false);
     Ok(())
 }

@@ -8,7 +8,7 @@ use std::sync::Arc;
 use semver::Version;
 use sha2::{Digest as _, Sha256};
 
-use super::status::{GateStep, Refusal};
+use super::status::Refusal;
 use super::{Shared, layout, ledger};
 use crate::artifact::Artifact;
 use crate::checking::{self, CheckReport};
@@ -32,46 +32,32 @@ pub(crate) struct Loaded {
 
 /// The gate: trust → parse → compile, start, contract → identity → checks.
 pub(super) fn gate(shared: &Shared, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, vouch: Option<&[u8]>) -> Result<Loaded, Refusal> {
-    let refuse = |stage, reason: String| Refusal { stage, reason };
     let digest = Digest::of(&bytes);
-    let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| refuse(GateStep::Trust, format!("its .vouch file: {e}")))?;
-    let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| refuse(GateStep::Trust, e.to_string()))?;
+    let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
+    let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
     let limit = shared.options.model.limits.artifact_bytes;
-    let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| refuse(GateStep::Parse, e.to_string()))?;
-    let checks = artifact.checks().map_err(|e| refuse(GateStep::Parse, e.to_string()))?;
+    let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
+    let checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?;
     let options = shared.options.model.clone();
     let loaded = match &shared.cache {
         Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
         None => Model::load_with(&shared.runtime, artifact, options),
     }
-    .map_err(|e| refuse(GateStep::Load, e.to_string()))?;
+    .map_err(|e| Refusal::Load(Arc::new(e)))?;
     let contract = loaded.contract();
     if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
-        return Err(refuse(
-            GateStep::Identity,
-            format!(
-                "the contract says {} {}, but the file is at {} (`<model>/<version>.wasm`)",
-                contract.name,
-                contract.version,
-                f.rel.display()
-            ),
-        ));
+        return Err(Refusal::Identity { name: contract.name.clone(), version: contract.version.clone(), path: f.rel.clone() });
     }
     let report = match &checks {
         Some(c) => {
-            let report = checking::run(&loaded, c).map_err(|e| refuse(GateStep::Checks, format!("the checks could not run: {e}")))?;
+            let report = checking::run(&loaded, c).map_err(Refusal::ChecksDidNotRun)?;
             if !report.ok() {
-                let first = report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
-                return Err(refuse(
-                    GateStep::Checks,
-                    format!("{} of {} checks failed{first}", report.cases - report.passed, report.cases),
-                ));
+                let first = report.failures.first().cloned();
+                return Err(Refusal::ChecksFailed { failed: report.cases - report.passed, cases: report.cases, first });
             }
             Some(report)
         }
-        None if shared.options.require_checks => {
-            return Err(refuse(GateStep::Checks, "it carries no checks, and this registry requires them".into()));
-        }
+        None if shared.options.require_checks => return Err(Refusal::NoChecks),
         None => None,
     };
     Ok(Loaded {
@@ -96,17 +82,17 @@ pub(super) fn fingerprint(bytes: &[u8], vouch: Option<&[u8]>) -> Fingerprint {
 /// Reads an artifact (refusing it over the size cap without reading it all)
 /// and its vouch file, if any.
 pub(super) fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<Vec<u8>>), Refusal> {
-    let read = |reason: String| Refusal { stage: GateStep::Read, reason };
-    let size = std::fs::metadata(path).map_err(|e| read(e.to_string()))?.len();
+    let read = |e: std::io::Error| Refusal::Read(Arc::new(e));
+    let size = std::fs::metadata(path).map_err(read)?.len();
     if size > limit {
-        return Err(read(crate::limits::LimitHit::ArtifactSize { limit, actual: size }.to_string()));
+        return Err(Refusal::TooLarge(crate::limits::LimitHit::ArtifactSize { limit, actual: size }));
     }
-    let bytes = std::fs::read(path).map_err(|e| read(e.to_string()))?;
+    let bytes = std::fs::read(path).map_err(read)?;
     let vouch_path = Vouch::path_for(path);
     let vouch = match std::fs::read(&vouch_path) {
         Ok(s) => Some(s),
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => None,
-        Err(e) => return Err(read(format!("{}: {e}", vouch_path.display()))),
+        Err(e) => return Err(Refusal::VouchUnreadable { path: vouch_path, source: Arc::new(e) }),
     };
     Ok((bytes, vouch))
 }

@@ -34,7 +34,27 @@ pub(crate) struct Found {
     /// Its path relative to the store, for reports.
     pub rel: PathBuf,
     /// The model and version its place names, or why it names none.
-    pub identity: Result<(String, Version), String>,
+    pub identity: Result<(String, Version), PlaceError>,
+}
+
+/// Why a file's place in the store names no model and version.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum PlaceError {
+    /// The model's directory cannot be listed.
+    #[error("cannot read the model directory: {0}")]
+    UnreadableDirectory(String),
+    /// The file's name is not a semver version and `.wasm`.
+    #[error("the file name `{file}` is not `<semver>.wasm` ({reason})")]
+    NotSemver {
+        /// The file name.
+        file: String,
+        /// What semver said.
+        reason: String,
+    },
+    /// A `.wasm` file at the top of the store.
+    #[error("artifacts go in a directory named after their model: `<model>/<version>.wasm`")]
+    NotInModelDirectory,
 }
 
 /// Lists every artifact file in the store, sorted by path.
@@ -59,7 +79,7 @@ pub(crate) fn scan(store: &Path) -> std::io::Result<Vec<Found>> {
                     found.push(Found {
                         rel: PathBuf::from(&model),
                         path,
-                        identity: Err(format!("cannot read the model directory: {e}")),
+                        identity: Err(PlaceError::UnreadableDirectory(e.to_string())),
                     });
                     continue;
                 }
@@ -72,14 +92,14 @@ pub(crate) fn scan(store: &Path) -> std::io::Result<Vec<Found>> {
                 }
                 let identity = Version::parse(stem)
                     .map(|v| (model.clone(), v))
-                    .map_err(|e| format!("the file name `{file_name}` is not `<semver>.wasm` ({e})"));
+                    .map_err(|e| PlaceError::NotSemver { file: file_name.clone(), reason: e.to_string() });
                 found.push(Found { path: file.path(), rel: Path::new(&model).join(&file_name), identity });
             }
         } else if name.ends_with(".wasm") {
             found.push(Found {
                 path,
                 rel: PathBuf::from(&name),
-                identity: Err("artifacts go in a directory named after their model: `<model>/<version>.wasm`".into()),
+                identity: Err(PlaceError::NotInModelDirectory),
             });
         }
     }

@@ -311,7 +311,10 @@ impl Registry {
     ///
     /// # Errors
     /// [`RegistryError::Store`] when the directory cannot be read,
-    /// [`RegistryError::Cache`] when the code cache cannot be used.
+    /// [`RegistryError::Cache`] when the code cache cannot be used,
+    /// [`RegistryError::Locked`] when another process keeps its usage in the
+    /// same state directory, [`RegistryError::State`] when the state
+    /// directory or its lock cannot be used.
     pub fn open(runtime: &Runtime, dir: &Path, options: RegistryOptions) -> Result<Registry, RegistryError> {
         let dir = dir.to_owned();
         std::fs::read_dir(&dir).map_err(|source| RegistryError::Store { path: dir.clone(), source })?;
@@ -401,7 +404,9 @@ impl Registry {
     /// # Errors
     /// [`RequestError::UnknownModel`] when no route serves the model;
     /// [`RequestError::Score`] carrying the version, the reason it was
-    /// picked and the [`ScoreError`] (invalid rows, limit hits, traps…).
+    /// picked and the [`ScoreError`] (invalid rows, limit hits, traps…);
+    /// [`RequestError::NotLoaded`] if the routes named a version that is not
+    /// loaded (never expected: routes are only taken when all are).
     pub fn score(&self, request: &Request<'_>) -> Result<Answer, RequestError> {
         let shared = &*self.inner;
         let snapshot = shared.current.load();

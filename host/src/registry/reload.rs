@@ -16,7 +16,7 @@ use super::gate::{self, Fingerprint, Loaded};
 use super::layout::{self, ROUTES_FILE};
 use super::routes::{Routes, RoutesError};
 use super::status::{
-    ArtifactState, ArtifactStatus, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, Status, loaded_status,
+    ArtifactState, ArtifactStatus, RefusedFile, Refusal, ReloadReport, RoutesState, Status, loaded_status,
     refused_status,
 };
 use super::{Registry, RegistryError, ShadowPlan, Shared, Snapshot};
@@ -83,7 +83,7 @@ fn gate_files(shared: &Shared, found: &[layout::Found], old: &Snapshot, memory: 
         let (model, version) = match &f.identity {
             Ok(id) => id.clone(),
             Err(reason) => {
-                next.statuses.push(refused_status(f, None, None, Refusal { stage: GateStep::Layout, reason: reason.clone() }));
+                next.statuses.push(refused_status(f, None, None, Refusal::Place(reason.clone())));
                 continue;
             }
         };

@@ -60,6 +60,7 @@ pub const DEFAULT_ROUTE: &str = "default";
 /// A routes file that is refused, with every problem found.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize, thiserror::Error)]
 #[error("routes refused: {}", .problems.join("; "))]
+#[non_exhaustive]
 pub struct RoutesError {
     /// Each problem, naming the model, rule and field.
     pub problems: Vec<String>,

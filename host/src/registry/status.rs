@@ -8,11 +8,17 @@ use std::time::Duration;
 use semver::Version;
 use serde::Serialize;
 
+use std::sync::Arc;
+
 use super::gate::Loaded;
-use super::layout;
+use super::layout::{self, PlaceError};
+use crate::artifact::ArtifactError;
+use crate::checking::CaseFailure;
 use crate::codecache::CodeSource;
 use crate::digest::Digest;
-use crate::trust::Admission;
+use crate::limits::LimitHit;
+use crate::model::{LoadError, ScoreError};
+use crate::trust::{Admission, TrustError, VouchTextError};
 
 /// The stage at which an artifact was refused.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -35,19 +41,97 @@ pub enum GateStep {
     Checks,
 }
 
-/// Why an artifact was refused.
-#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-pub struct Refusal {
-    /// Where in the gate.
-    pub stage: GateStep,
-    /// What was wrong.
-    pub reason: String,
+/// Why an artifact was refused: each cause with its typed source. In JSON
+/// (status, reload reports) it is `{"stage": GateStep, "reason": text}`.
+#[derive(Clone, Debug)]
+#[non_exhaustive]
+pub enum Refusal {
+    /// Its place in the store names no model and version.
+    Place(PlaceError),
+    /// The artifact could not be read.
+    Read(Arc<std::io::Error>),
+    /// The artifact is over the size cap (refused before reading it all).
+    TooLarge(LimitHit),
+    /// Its `.vouch` file could not be read.
+    VouchUnreadable {
+        /// The vouch file.
+        path: PathBuf,
+        /// What the system said.
+        source: Arc<std::io::Error>,
+    },
+    /// Its `.vouch` file is not a vouch.
+    VouchText(Arc<VouchTextError>),
+    /// The trust policy does not admit it.
+    Trust(Arc<TrustError>),
+    /// It is not a well-formed artifact (or its checks section does not parse).
+    Parse(Arc<ArtifactError>),
+    /// It does not compile, start, or declare a valid contract.
+    Load(Arc<LoadError>),
+    /// Its contract's name or version differ from its place in the store.
+    Identity {
+        /// The name its contract declares.
+        name: String,
+        /// The version its contract declares.
+        version: String,
+        /// Its place, relative to the store.
+        path: PathBuf,
+    },
+    /// Its checks could not run at all (a trap or a limit).
+    ChecksDidNotRun(ScoreError),
+    /// Some of its checks fail.
+    ChecksFailed {
+        /// Cases that failed.
+        failed: usize,
+        /// Cases run.
+        cases: usize,
+        /// The first failure: case position and why.
+        first: Option<(usize, CaseFailure)>,
+    },
+    /// It carries no checks, and the registry requires them.
+    NoChecks,
+}
+
+impl Refusal {
+    /// The step of the gate that refused it.
+    pub fn step(&self) -> GateStep {
+        match self {
+            Refusal::Place(_) => GateStep::Layout,
+            Refusal::Read(_) | Refusal::TooLarge(_) | Refusal::VouchUnreadable { .. } => GateStep::Read,
+            Refusal::VouchText(_) | Refusal::Trust(_) => GateStep::Trust,
+            Refusal::Parse(_) => GateStep::Parse,
+            Refusal::Load(_) => GateStep::Load,
+            Refusal::Identity { .. } => GateStep::Identity,
+            Refusal::ChecksDidNotRun(_) | Refusal::ChecksFailed { .. } | Refusal::NoChecks => GateStep::Checks,
+        }
+    }
+
+    /// What was wrong, in one line (without the step).
+    pub fn reason(&self) -> String {
+        match self {
+            Refusal::Place(e) => e.to_string(),
+            Refusal::Read(e) => e.to_string(),
+            Refusal::TooLarge(hit) => hit.to_string(),
+            Refusal::VouchUnreadable { path, source } => format!("{}: {source}", path.display()),
+            Refusal::VouchText(e) => format!("its .vouch file: {e}"),
+            Refusal::Trust(e) => e.to_string(),
+            Refusal::Parse(e) => e.to_string(),
+            Refusal::Load(e) => e.to_string(),
+            Refusal::Identity { name, version, path } => {
+                format!("the contract says {name} {version}, but the file is at {} (`<model>/<version>.wasm`)", path.display())
+            }
+            Refusal::ChecksDidNotRun(e) => format!("the checks could not run: {e}"),
+            Refusal::ChecksFailed { failed, cases, first } => {
+                let first = first.as_ref().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
+                format!("{failed} of {cases} checks failed{first}")
+            }
+            Refusal::NoChecks => "it carries no checks, and this registry requires them".into(),
+        }
+    }
 }
 
 impl std::fmt::Display for Refusal {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        let stage = match self.stage {
+        let stage = match self.step() {
             GateStep::Layout => "its place in the store",
             GateStep::Read => "reading it",
             GateStep::Trust => "the trust check",
@@ -56,7 +140,71 @@ impl std::fmt::Display for Refusal {
             GateStep::Identity => "matching its name and version to its place",
             GateStep::Checks => "its checks",
         };
-        write!(f, "refused at {stage}: {}", self.reason)
+        write!(f, "refused at {stage}: {}", self.reason())
+    }
+}
+
+impl std::error::Error for Refusal {
+    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
+        match self {
+            Refusal::Place(e) => Some(e),
+            Refusal::Read(e) => Some(&**e),
+            Refusal::TooLarge(e) => Some(e),
+            Refusal::VouchUnreadable { source, .. } => Some(&**source),
+            Refusal::VouchText(e) => Some(&**e),
+            Refusal::Trust(e) => Some(&**e),
+            Refusal::Parse(e) => Some(&**e),
+            Refusal::Load(e) => Some(&**e),
+            Refusal::ChecksDidNotRun(e) => Some(e),
+            Refusal::Identity { .. } | Refusal::ChecksFailed { .. } | Refusal::NoChecks => None,
+        }
+    }
+}
+
+/// Two refusals are the same when they name the same step and reason.
+impl PartialEq for Refusal {
+    fn eq(&self, other: &Self) -> bool {
+        self.step() == other.step() && self.reason() == other.reason()
+    }
+}
+
+impl Serialize for Refusal {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeStruct;
+        let mut st = s.serialize_struct("Refusal", 2)?;
+        st.serialize_field("stage", &self.step())?;
+        st.serialize_field("reason", &self.reason())?;
+        st.end()
+    }
+}
+
+/// Why an artifact was refused: the step of the gate and what was wrong.
+#[cfg(feature = "http")]
+#[derive(utoipa::ToSchema)]
+#[schema(as = Refusal)]
+#[allow(dead_code)]
+struct RefusalDoc {
+    /// The step of the gate that refused it.
+    stage: GateStep,
+    /// What was wrong, in one line.
+    reason: String,
+}
+
+#[cfg(feature = "http")]
+impl utoipa::PartialSchema for Refusal {
+    fn schema() -> utoipa::openapi::RefOr<utoipa::openapi::schema::Schema> {
+        <RefusalDoc as utoipa::PartialSchema>::schema()
+    }
+}
+
+#[cfg(feature = "http")]
+impl utoipa::ToSchema for Refusal {
+    fn name() -> std::borrow::Cow<'static, str> {
+        "Refusal".into()
+    }
+
+    fn schemas(schemas: &mut Vec<(String, utoipa::openapi::RefOr<utoipa::openapi::schema::Schema>)>) {
+        <RefusalDoc as utoipa::ToSchema>::schemas(schemas);
     }
 }
 
@@ -231,7 +379,10 @@ mod tests {
 
     #[test]
     fn a_refusal_names_its_stage_in_words() {
-        let r = Refusal { stage: GateStep::Checks, reason: "3 of 40 checks failed".into() };
+        let r = Refusal::ChecksFailed { failed: 3, cases: 40, first: None };
+        assert_eq!(r.step(), GateStep::Checks);
         assert_eq!(r.to_string(), "refused at its checks: 3 of 40 checks failed");
+        let json = serde_json::to_value(&r).unwrap();
+        assert_eq!(json, serde_json::json!({"stage": "checks", "reason": "3 of 40 checks failed"}));
     }
 }
