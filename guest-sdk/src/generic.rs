@@ -103,3 +103,61 @@ pub fn build_for<E: Evaluate>(contract: &Contract, params: E::Params) -> Result<
     shape_matches(contract, estimator.features(), estimator.outputs())?;
     Ok(estimator)
 }
+
+/// A model whose contract is written in code and whose estimator is one of
+/// the built-in ones: implement this, then export [`Fixed<Self>`](Fixed).
+///
+/// ```
+/// use paddock_guest::{Bounds, Contract, Declared, Feature, Fixed, Linear, Output};
+///
+/// /// Minutes of queueing at a site, from how many cars wait.
+/// pub struct QueueMinutes;
+///
+/// impl Declared for QueueMinutes {
+///     type Estimator = Linear;
+///
+///     fn contract() -> Contract {
+///         Contract {
+///             name: "queue-minutes".into(),
+///             version: "1.0.0".into(),
+///             about: "Minutes a car waits for a free bay".into(),
+///             features: vec![Feature::whole("cars_waiting", Bounds::between(0.0, 50.0))],
+///             outputs: vec![Output::new("minutes", Bounds::between(0.0, 600.0)).unit("min")],
+///         }
+///     }
+/// }
+///
+/// paddock_guest::export!(Fixed<QueueMinutes>);
+/// ```
+pub trait Declared: 'static {
+    /// The built-in estimator that scores the rows ([`Linear`](crate::Linear),
+    /// [`Trees`](crate::Trees)); its params are the artifact's params.
+    type Estimator: Evaluate;
+
+    /// The contract: the promise the model makes to its callers.
+    fn contract() -> Contract;
+}
+
+/// The [`Estimator`] of a [`Declared`] model: builds the built-in estimator
+/// from the artifact's params, checks its shape against the contract, and
+/// scores with it.
+pub struct Fixed<M: Declared> {
+    estimator: M::Estimator,
+}
+
+impl<M: Declared> Estimator for Fixed<M> {
+    type Params = <M::Estimator as Evaluate>::Params;
+
+    fn init(params: Self::Params) -> Result<Self, String> {
+        build_for::<M::Estimator>(&M::contract(), params).map(|estimator| Fixed { estimator })
+    }
+
+    fn contract(&self) -> Contract {
+        M::contract()
+    }
+
+    fn score(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<(), Fault> {
+        self.estimator.evaluate(rows, out);
+        Ok(())
+    }
+}

@@ -1,27 +1,49 @@
 //! Write a paddock model in Rust.
 //!
 //! A paddock model is a WebAssembly component that targets the `estimator`
-//! world in `wit/estimator.wit`. This crate hides the bindings: a model author
-//! implements [`Estimator`] and calls [`export!`] once.
+//! world in `wit/estimator.wit`. This crate hides the bindings. The shortest
+//! model is a contract written in code plus one of the built-in estimators,
+//! whose parameters (coefficients, trees) training code writes into the
+//! artifact:
 //!
-//! ```ignore
-//! use paddock_guest::{Estimator, Contract, Fault, Linear, LinearParams};
-//! use ndarray::{ArrayView2, ArrayViewMut2};
+//! ```
+//! use paddock_guest::{Bounds, Contract, Declared, Feature, Fixed, Linear, Output};
 //!
-//! struct Risk(Linear);
+//! /// Probability that a car overstays, from its expected charging minutes.
+//! pub struct Overstay;
 //!
-//! impl Estimator for Risk {
-//!     type Params = LinearParams;
-//!     fn init(params: LinearParams) -> Result<Self, String> { Linear::new(params).map(Risk) }
-//!     fn contract(&self) -> Contract { /* names, domains, units, bounds */ todo!() }
-//!     fn score(&self, rows: ArrayView2<f64>, out: ArrayViewMut2<f64>) -> Result<(), Fault> {
-//!         self.0.evaluate(rows, out);
-//!         Ok(())
+//! impl Declared for Overstay {
+//!     type Estimator = Linear;
+//!
+//!     fn contract() -> Contract {
+//!         Contract {
+//!             name: "overstay".into(),
+//!             version: "1.0.0".into(),
+//!             about: "Probability of staying plugged in past full charge".into(),
+//!             features: vec![
+//!                 Feature::real("expected_minutes", Bounds::between(0.0, 2880.0)).unit("min"),
+//!                 Feature::flag("weekend"),
+//!             ],
+//!             outputs: vec![Output::new("probability", Bounds::between(0.0, 1.0))],
+//!         }
 //!     }
 //! }
 //!
-//! paddock_guest::export!(Risk);
+//! paddock_guest::export!(Fixed<Overstay>);
+//!
+//! // Natively, the same model runs on the params training wrote: here a
+//! // score of 0 (intercept −1.5 + 0.01 × 150 min) is a probability of ½.
+//! use paddock_guest::{Estimator, LinearParams, Link, ndarray::Array2};
+//! let params = LinearParams { link: Link::Logistic, intercepts: vec![-1.5], weights: vec![vec![0.01, 0.0]], impute: vec![] };
+//! let model = Fixed::<Overstay>::init(params)?;
+//! let mut out = Array2::from_elem((1, 1), f64::NAN);
+//! model.score(Array2::from_shape_vec((1, 2), vec![150.0, 0.0])?.view(), out.view_mut())?;
+//! assert_eq!(out[[0, 0]], 0.5);
+//! # Ok::<(), Box<dyn std::error::Error>>(())
 //! ```
+//!
+//! A model with code of its own implements [`Estimator`] instead: `init`
+//! from its params, `contract`, and `score` over a row-major `ndarray` view.
 //!
 //! What the crate gives you:
 //! - the contract types ([`Contract`], [`Feature`], [`Domain`], [`Bounds`],
@@ -42,6 +64,8 @@
 //! What it is not: a training library. Fit models wherever you like and write
 //! their parameters into these types.
 
+#![deny(missing_docs)]
+
 mod contract;
 mod generic;
 mod linear;
@@ -52,7 +76,7 @@ mod trees;
 pub mod glue;
 
 pub use contract::{Bounds, Contract, Domain, Fault, Feature, Output};
-pub use generic::{Evaluate, Generic, Packaged, build_for};
+pub use generic::{Declared, Evaluate, Fixed, Generic, Packaged, build_for};
 pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
 pub use trees::{Branch, Combine, Node, SplitRule, Tree, Trees, TreesParams};

@@ -4,8 +4,7 @@
 //! demo only). The contract is written here, by hand, because it is the
 //! promise the model makes to the services that call it.
 
-use paddock_guest::ndarray::{ArrayView2, ArrayViewMut2};
-use paddock_guest::{Bounds, Contract, Estimator, Evaluate, Fault, Feature, Output, Trees, TreesParams};
+use paddock_guest::{Bounds, Contract, Declared, Feature, Output, Trees};
 
 /// Connector types the co-op's chargers have, in the index order the model sees.
 pub const CONNECTORS: [&str; 3] = ["type2", "ccs2", "chademo"];
@@ -47,24 +46,15 @@ pub fn contract() -> Contract {
     }
 }
 
-/// The model: a tree ensemble over the features above.
-pub struct ChargeMinutes(Trees);
+/// The model: a tree ensemble over the features above; its params are the artifact's.
+pub struct ChargeMinutes;
 
-impl Estimator for ChargeMinutes {
-    type Params = TreesParams;
+impl Declared for ChargeMinutes {
+    type Estimator = Trees;
 
-    fn init(params: TreesParams) -> Result<Self, String> {
-        paddock_guest::build_for::<Trees>(&contract(), params).map(ChargeMinutes)
-    }
-
-    fn contract(&self) -> Contract {
+    fn contract() -> Contract {
         contract()
-    }
-
-    fn score(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<(), Fault> {
-        self.0.evaluate(rows, out);
-        Ok(())
     }
 }
 
-paddock_guest::export!(ChargeMinutes);
+paddock_guest::export!(paddock_guest::Fixed<ChargeMinutes>);

@@ -3,8 +3,7 @@
 //! are the artifact's params, written by `models/train-demo` from simulated
 //! sessions (invented data, demo only).
 
-use paddock_guest::ndarray::{ArrayView2, ArrayViewMut2};
-use paddock_guest::{Bounds, Contract, Estimator, Evaluate, Fault, Feature, Linear, LinearParams, Output};
+use paddock_guest::{Bounds, Contract, Declared, Feature, Linear, Output};
 
 /// The contract of `overstay-risk`.
 pub fn contract() -> Contract {
@@ -37,24 +36,15 @@ pub fn contract() -> Contract {
     }
 }
 
-/// The model: logistic regression over the features above.
-pub struct OverstayRisk(Linear);
+/// The model: logistic regression over the features above; its params are the artifact's.
+pub struct OverstayRisk;
 
-impl Estimator for OverstayRisk {
-    type Params = LinearParams;
+impl Declared for OverstayRisk {
+    type Estimator = Linear;
 
-    fn init(params: LinearParams) -> Result<Self, String> {
-        paddock_guest::build_for::<Linear>(&contract(), params).map(OverstayRisk)
-    }
-
-    fn contract(&self) -> Contract {
+    fn contract() -> Contract {
         contract()
-    }
-
-    fn score(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<(), Fault> {
-        self.0.evaluate(rows, out);
-        Ok(())
     }
 }
 
-paddock_guest::export!(OverstayRisk);
+paddock_guest::export!(paddock_guest::Fixed<OverstayRisk>);
