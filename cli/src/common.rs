@@ -151,11 +151,6 @@ impl LoadArgs {
         Ok(Runtime::with_config(RuntimeConfig { fuel: self.limits.fuel.is_some(), ..RuntimeConfig::default() })?)
     }
 
-    /// The trust policy these flags describe.
-    pub fn policy(&self) -> Result<TrustPolicy> {
-        self.trust.policy()
-    }
-
     /// Reads an artifact, checks it against the trust policy, and loads it
     /// under these limits.
     pub fn load(&self, path: &Path) -> Result<(Runtime, Model)> {
@@ -196,7 +191,7 @@ impl StoreArgs {
     pub fn options(&self) -> Result<RegistryOptions> {
         Ok(RegistryOptions {
             model: self.load.options(),
-            trust: self.load.policy()?,
+            trust: self.load.trust.policy()?,
             require_checks: self.require_checks,
             state_dir: self.state.clone(),
             code_cache: !self.no_code_cache,

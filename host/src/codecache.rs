@@ -136,7 +136,7 @@ impl CodeCache {
                 }
             },
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
-            Err(e) => trouble = Some(format!("entry {}: {}", path.display(), EntryProblem::Io(e))),
+            Err(e) => trouble = Some(format!("entry {}: {e}", path.display())),
         }
         let component = compile(runtime, artifact)?;
         let source = match store(&path, &component) {

@@ -19,7 +19,7 @@ pub struct Args {
 /// Audits and prints; exit code follows the verdict.
 pub fn run(args: Args) -> Result<Outcome> {
     let args = args.target;
-    let report = audit(&args.artifact, &args.load.options(), &args.load.policy()?);
+    let report = audit(&args.artifact, &args.load.options(), &args.load.trust.policy()?);
     if args.json {
         print_json(&report)?;
     } else {

@@ -170,20 +170,16 @@ impl PartialEq for Refusal {
 
 impl Serialize for Refusal {
     fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
-        use serde::ser::SerializeStruct;
-        let mut st = s.serialize_struct("Refusal", 2)?;
-        st.serialize_field("stage", &self.step())?;
-        st.serialize_field("reason", &self.reason())?;
-        st.end()
+        RefusalWire { stage: self.step(), reason: self.reason() }.serialize(s)
     }
 }
 
+// The JSON form of a `Refusal`, and the schema the API documents.
 /// Why an artifact was refused: the step of the gate and what was wrong.
-#[cfg(feature = "http")]
-#[derive(utoipa::ToSchema)]
-#[schema(as = Refusal)]
-#[allow(dead_code)]
-struct RefusalDoc {
+#[derive(Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[cfg_attr(feature = "http", schema(as = Refusal))]
+struct RefusalWire {
     /// The step of the gate that refused it.
     stage: GateStep,
     /// What was wrong, in one line.
@@ -193,7 +189,7 @@ struct RefusalDoc {
 #[cfg(feature = "http")]
 impl utoipa::PartialSchema for Refusal {
     fn schema() -> utoipa::openapi::RefOr<utoipa::openapi::schema::Schema> {
-        <RefusalDoc as utoipa::PartialSchema>::schema()
+        <RefusalWire as utoipa::PartialSchema>::schema()
     }
 }
 
@@ -204,7 +200,7 @@ impl utoipa::ToSchema for Refusal {
     }
 
     fn schemas(schemas: &mut Vec<(String, utoipa::openapi::RefOr<utoipa::openapi::schema::Schema>)>) {
-        <RefusalDoc as utoipa::ToSchema>::schemas(schemas);
+        <RefusalWire as utoipa::ToSchema>::schemas(schemas);
     }
 }
 

@@ -97,8 +97,8 @@ pub(crate) struct App {
     /// by the store, never by what clients send.
     gates: RwLock<HashMap<String, Arc<Gate>>>,
     token_digest: Option<[u8; 32]>,
-    /// The OpenAPI document, rendered once.
-    document: Arc<str>,
+    /// The OpenAPI document, rendered once and shared by every answer.
+    document: bytes::Bytes,
 }
 
 /// One model's concurrency limit and queue.
@@ -128,7 +128,7 @@ impl App {
 pub fn router(registry: Registry, options: ServeOptions) -> Router {
     let token_digest = options.admin_token.as_ref().map(|t| Sha256::digest(t.as_bytes()).into());
     let pool = Arc::new(Semaphore::new(options.score_threads.max(1)));
-    let document: Arc<str> = super::openapi::document().into();
+    let document = bytes::Bytes::from(super::openapi::document());
     let app = Arc::new(App { registry, options, pool, gates: RwLock::default(), token_digest, document });
     Router::new()
         .route("/estimate", post(estimate))
@@ -489,7 +489,7 @@ pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
 #[utoipa::path(get, path = "/openapi.json",
     tag = "operations", responses((status = 200, description = "The OpenAPI 3.1 document of this API.", body = Object)))]
 pub(crate) async fn openapi(State(app): State<Arc<App>>) -> Response {
-    (StatusCode::OK, [(header::CONTENT_TYPE, "application/json")], app.document.to_string()).into_response()
+    (StatusCode::OK, [(header::CONTENT_TYPE, "application/json")], app.document.clone()).into_response()
 }
 
 /// Reads the store again now (new, changed and removed artifacts, the
