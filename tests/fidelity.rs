@@ -8,7 +8,7 @@
 //! - A hand-written WAT model, no SDK: the contract is language-neutral.
 
 use paddock_guest::{
-    Branch, Combine, Evaluate, LinearParams, Link, Node, Packaged, SplitRule,
+    Branch, Evaluate, LinearParams, Link, Node, Packaged, SplitRule,
     Tree, Trees, TreesParams, encode_params,
 };
 use paddock_guest::ndarray::{Array2, ArrayView2};
@@ -93,13 +93,12 @@ fn small_ensemble_in_the_sandbox_matches_hand_computed_values() {
             Node::Leaf { value: hi },
         ],
     };
-    let params = TreesParams {
-        features: 2,
-        base: vec![10.0],
-        combine: Combine::Sum,
-        split: SplitRule::Less,
-        trees: vec![stump(0, 5.0, 1.0, 2.0, Branch::Right), stump(1, 0.0, 0.5, -0.25, Branch::Left)],
-    };
+    let params = TreesParams::boosted(
+        2,
+        10.0,
+        SplitRule::Less,
+        vec![stump(0, 5.0, 1.0, 2.0, Branch::Right), stump(1, 0.0, 0.5, -0.25, Branch::Left)],
+    );
     let mut named = open_contract("stumps", &["a".into(), "b".into()], "y");
     named.features.iter_mut().for_each(|f| f.required = false);
     let runtime = Runtime::new().unwrap();

@@ -121,7 +121,7 @@ fn a_declared_contract_that_breaks_the_rules_is_refused_with_every_problem() {
 
 #[test]
 fn init_refusing_its_params_is_a_load_error_with_the_models_message() {
-    use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams, encode_params};
+    use paddock_guest::{Branch, Node, SplitRule, Tree, TreesParams, encode_params};
     let runtime = Runtime::new().unwrap();
     // A split on feature 9 of charge-minutes' 8 features.
     let tree = Tree {
@@ -132,7 +132,7 @@ fn init_refusing_its_params_is_a_load_error_with_the_models_message() {
             Node::Leaf { value: 2.0 },
         ],
     };
-    let params = TreesParams { features: 8, base: vec![0.0], combine: Combine::Sum, split: SplitRule::Less, trees: vec![tree] };
+    let params = TreesParams::boosted(8, 0.0, SplitRule::Less, vec![tree]);
     let artifact = paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &encode_params(&params), None);
     let err = Model::load(&runtime, artifact).unwrap_err();
     assert_eq!(err.to_string(), "the model failed to start: init refused the params: tree 0 node 0: feature 9 but rows have 8");

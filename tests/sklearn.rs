@@ -10,7 +10,7 @@
 //! scikit-learn (1.9.1; the exported files record the exact scikit-learn,
 //! numpy and Python versions, and each assertion message repeats them).
 
-use paddock_guest::{Branch, Combine, LinearParams, Link, Node, Packaged, SplitRule, Tree, TreesParams, encode_params};
+use paddock_guest::{Branch, LinearParams, Link, Node, Packaged, SplitRule, Tree, TreesParams, encode_params};
 use paddock_host::{Model, ModelOptions, Row, Runtime};
 use paddock_tests::{guest, load, open_contract, root};
 use serde_json::Value;
@@ -102,13 +102,7 @@ fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
             Tree { output: 0, nodes }
         })
         .collect();
-    let params = TreesParams {
-        features: features.len() as u32,
-        base: vec![e["init"].as_f64().unwrap()],
-        combine: Combine::Sum,
-        split: SplitRule::LessOrEqual,
-        trees,
-    };
+    let params = TreesParams::boosted(features.len() as u32, e["init"].as_f64().unwrap(), SplitRule::LessOrEqual, trees);
     let blob = encode_params(&Packaged { contract: open_contract("diabetes-boosted", &features, "progression"), params });
     let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, ModelOptions::default());
     let worst = worst_relative_error(&model, &e, &features);

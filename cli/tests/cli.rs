@@ -176,6 +176,37 @@ fn pack_makes_a_loadable_artifact_from_a_wat_module() {
     assert_eq!(v["digest"], paddock_host::Digest::of(&bytes).to_string());
 }
 
+/// A hand-written XGBoost stump (tests/fixtures/stump.json: base 60, then
+/// +30 minutes below 40 % charge, −15 at or above; absent charge goes
+/// left), packed with a manifest and checks whose values are worked out by
+/// hand from the file, then inspected.
+#[test]
+fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
+    let manifest = tmp("stump.toml");
+    std::fs::write(&manifest, "name = \"session-minutes\"\nversion = \"1.0.0\"\n[features.arrival_soc]\nunit = \"%\"\nrequired = true\n[outputs.value]\nname = \"minutes\"\nmin = 0.0\n").unwrap();
+    let checks = tmp("stump.checks.json");
+    std::fs::write(
+        &checks,
+        r#"{"source": "worked out by hand from tests/fixtures/stump.json", "tolerance": {"abs": 0, "rel": 0}, "cases": [
+            {"row": {"arrival_soc": 12.5, "kw": 11}, "expect": {"minutes": 90}},
+            {"row": {"arrival_soc": 40, "kw": 11}, "expect": {"minutes": 45}}]}"#,
+    )
+    .unwrap();
+    let out = tmp("stump.wasm");
+    let o = paddock(
+        &["pack", "tests/fixtures/stump.json", "--manifest", manifest.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        None,
+    );
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(text(&o.stdout).contains("loads as session-minutes 1.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
+    let o = paddock(&["inspect", out.to_str().unwrap()], None);
+    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    assert!(shown.contains("imported from tests/fixtures/stump.json (XGBoost JSON model, 1 trees)"), "{shown}");
+    assert!(shown.contains("toolkit XGBoost 3.2.0"), "{shown}");
+    assert!(shown.contains("feature arrival_soc name from feature_names in the file; real number from feature_types; optional by default: XGBoost sends an absent value its split's default way; unit, required from the manifest"), "{shown}");
+    assert!(shown.contains("output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the manifest"), "{shown}");
+}
+
 #[test]
 fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let dir = tempfile::tempdir().unwrap();

@@ -67,9 +67,11 @@
 #![deny(missing_docs)]
 
 mod contract;
+mod exp;
 mod generic;
 mod linear;
 mod params;
+mod spelling;
 mod trees;
 
 #[doc(hidden)]
@@ -79,7 +81,8 @@ pub use contract::{Bounds, Contract, Domain, Fault, Feature, Output};
 pub use generic::{Declared, Evaluate, Fixed, Generic, Packaged, build_for};
 pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
-pub use trees::{Branch, Combine, Node, SplitRule, Tree, Trees, TreesParams};
+pub use spelling::DomainSpec;
+pub use trees::{Branch, Combine, Node, OutputLink, Precision, SplitRule, Tree, Trees, TreesParams};
 
 /// Re-exported so model crates need no direct ndarray dependency.
 pub use ndarray;

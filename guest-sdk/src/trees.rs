@@ -1,9 +1,12 @@
 //! Tree ensembles: boosted sums of regression trees with a base score, or
-//! averaged trees (forests), with a missing-value direction at every split.
+//! averaged trees (forests), with a missing-value direction at every split,
+//! numeric or categorical splits, one tree group per class, and an output
+//! link, in the precision the training toolkit used.
 
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize};
 
+use crate::exp;
 use crate::generic::Evaluate;
 
 /// How a split compares a feature with its threshold to go left.
@@ -33,6 +36,33 @@ pub enum Combine {
     Mean,
 }
 
+/// The precision of a step of the evaluation.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
+pub enum Precision {
+    /// IEEE double precision throughout.
+    Double,
+    /// Rounded to IEEE single precision (`f32`) at every step, as toolkits
+    /// that store features, thresholds and sums as `float` compute.
+    Single,
+}
+
+/// What is applied to each row's combined outputs.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub enum OutputLink {
+    /// The combined value itself.
+    Identity,
+    /// `1 / (1 + e^(−scale·x))` on each output.
+    Logistic {
+        /// Multiplies the value first (1 for the plain logistic function).
+        scale: f64,
+    },
+    /// `e^x` on each output (log-link regressions: counts, durations).
+    Exp,
+    /// `e^(xₖ − max) / Σ e^(xⱼ − max)` over the outputs: one probability per
+    /// class. The sum is kept in double precision in both precisions.
+    Softmax,
+}
+
 /// One node of a tree.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub enum Node {
@@ -55,18 +85,57 @@ pub enum Node {
         /// What this tree adds for rows that end here.
         value: f64,
     },
+    /// As [`Node::Split`], but a value within ±1e-35 (as `f32`) of zero is
+    /// absent too and goes the `missing` way (LightGBM's "zero as missing").
+    SplitZeroAbsent {
+        /// Feature index, in contract order.
+        feature: u32,
+        /// Threshold compared by the ensemble's [`SplitRule`].
+        threshold: f64,
+        /// Index of the left child.
+        left: u32,
+        /// Index of the right child.
+        right: u32,
+        /// Where an absent (NaN or zero) value goes.
+        missing: Branch,
+    },
+    /// A categorical split: the value, truncated to a whole number, is
+    /// looked up in a set of categories. A negative value, or one past the
+    /// set's last word, is not in the set.
+    Member {
+        /// Feature index, in contract order.
+        feature: u32,
+        /// Index of the set in [`TreesParams::sets`].
+        set: u32,
+        /// Index of the left child.
+        left: u32,
+        /// Index of the right child.
+        right: u32,
+        /// Where an absent value goes.
+        missing: Branch,
+        /// Where a value in the set goes; every other value goes the other way.
+        members: Branch,
+    },
+    /// A leaf adding one value to every output (forests of classifiers,
+    /// whose leaves hold a probability per class).
+    Leaves {
+        /// Index in [`TreesParams::vectors`] of the first of the outputs' values.
+        first: u32,
+    },
 }
 
 /// One regression tree; node 0 is the root.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Tree {
-    /// The output this tree contributes to.
+    /// The output this tree's [`Node::Leaf`]s contribute to (its class, for
+    /// one tree per class and round). A tree with [`Node::Leaves`] feeds
+    /// every output and ignores this.
     pub output: u32,
     /// The nodes; node 0 is the root.
     pub nodes: Vec<Node>,
 }
 
-/// Parameters of a tree ensemble, as training code writes them.
+/// Parameters of a tree ensemble, as training code (or an importer) writes them.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct TreesParams {
     /// Number of features each row carries.
@@ -79,17 +148,62 @@ pub struct TreesParams {
     pub split: SplitRule,
     /// The trees, in the order their leaves are added.
     pub trees: Vec<Tree>,
+    /// Whether feature values are rounded to `f32` before any split.
+    pub inputs: Precision,
+    /// The precision of the sums, the mean and the link.
+    pub arithmetic: Precision,
+    /// What turns the combined values into the outputs.
+    pub link: OutputLink,
+    /// Category sets of [`Node::Member`] splits: bit `c % 32` of word
+    /// `c / 32` is set when category `c` is in the set.
+    pub sets: Vec<Vec<u32>>,
+    /// Values of [`Node::Leaves`] leaves, one per output each.
+    pub vectors: Vec<f64>,
 }
 
-/// A flattened node: `left == 0` marks a leaf (no child can be node 0),
-/// whose value is kept in `threshold`.
+impl TreesParams {
+    /// Boosted regression trees in double precision with no link: the
+    /// parameters of a plain gradient-boosted ensemble.
+    pub fn boosted(features: u32, base: f64, split: SplitRule, trees: Vec<Tree>) -> Self {
+        TreesParams {
+            features,
+            base: vec![base],
+            combine: Combine::Sum,
+            split,
+            trees,
+            inputs: Precision::Double,
+            arithmetic: Precision::Double,
+            link: OutputLink::Identity,
+            sets: Vec::new(),
+            vectors: Vec::new(),
+        }
+    }
+}
+
+/// Node kinds in the flattened form.
+const NUMERIC: u8 = 0;
+const ZERO_ABSENT: u8 = 1;
+const MEMBER: u8 = 2;
+const LEAF: u8 = 3;
+const LEAVES: u8 = 4;
+
+/// LightGBM's `kZeroThreshold`, a `float` literal.
+const ZERO: f64 = 1e-35f32 as f64;
+
+/// A flattened node. A leaf's value is kept in `threshold`; [`Node::Leaves`]
+/// keeps its first index in `left`; a [`Node::Member`] keeps its set as
+/// (`start`, `words`) in the flattened words.
 #[derive(Clone, Copy, Debug)]
 struct Flat {
     threshold: f64,
     feature: u32,
     left: u32,
     right: u32,
-    missing_left: bool,
+    start: u32,
+    words: u16,
+    kind: u8,
+    /// Bit 0: absent values go left; bit 1: members go left.
+    goes_left: u8,
 }
 
 /// A tree ensemble ready to evaluate.
@@ -99,10 +213,16 @@ pub struct Trees {
     base: Vec<f64>,
     combine: Combine,
     less_or_equal: bool,
+    inputs: Precision,
+    arithmetic: Precision,
+    link: OutputLink,
     /// (first node, output) of each tree in `nodes`.
     roots: Vec<(usize, usize)>,
     nodes: Vec<Flat>,
-    per_output: Vec<f64>,
+    words: Vec<u32>,
+    vectors: Vec<f64>,
+    /// Trees feeding each output (the divisor of [`Combine::Mean`]).
+    counts: Vec<f64>,
 }
 
 impl Trees {
@@ -110,8 +230,10 @@ impl Trees {
     ///
     /// # Errors
     /// When there is no output, a tree is empty or names an unknown output,
-    /// a split names an unknown feature or a child that is not after it in
-    /// the tree, or a number is not finite. The message names tree and node.
+    /// a split names an unknown feature, set or a child that is not after it
+    /// in the tree, a tree mixes [`Node::Leaf`] and [`Node::Leaves`], the
+    /// link is softmax over one output, or a number is not finite. The
+    /// message names tree and node.
     pub fn new(params: TreesParams) -> Result<Self, String> {
         let outputs = params.base.len();
         if outputs == 0 {
@@ -120,9 +242,30 @@ impl Trees {
         if let Some(bad) = params.base.iter().find(|v| !v.is_finite()) {
             return Err(format!("tree params: non-finite base score {bad}"));
         }
+        match params.link {
+            OutputLink::Softmax if outputs < 2 => {
+                return Err("tree params: softmax needs at least two outputs".into());
+            }
+            OutputLink::Logistic { scale } if !scale.is_finite() => {
+                return Err(format!("tree params: non-finite logistic scale {scale}"));
+            }
+            _ => {}
+        }
+        if let Some(bad) = params.vectors.iter().find(|v| !v.is_finite()) {
+            return Err(format!("tree params: non-finite leaf value {bad} in vectors"));
+        }
+        let mut set_at = Vec::with_capacity(params.sets.len());
+        let mut words = Vec::new();
+        for (s, set) in params.sets.iter().enumerate() {
+            if set.len() > usize::from(u16::MAX) {
+                return Err(format!("tree params: set {s} has {} words (at most {})", set.len(), u16::MAX));
+            }
+            set_at.push((words.len() as u32, set.len() as u16));
+            words.extend_from_slice(set);
+        }
         let mut nodes = Vec::with_capacity(params.trees.iter().map(|t| t.nodes.len()).sum());
         let mut roots = Vec::with_capacity(params.trees.len());
-        let mut counts = vec![0usize; outputs];
+        let mut counts = vec![0.0f64; outputs];
         for (t, tree) in params.trees.iter().enumerate() {
             let output = tree.output as usize;
             if output >= outputs {
@@ -131,70 +274,117 @@ impl Trees {
             if tree.nodes.is_empty() {
                 return Err(format!("tree {t}: no nodes"));
             }
-            counts[output] += 1;
             let offset = nodes.len();
             roots.push((offset, output));
             let len = tree.nodes.len();
+            let (mut scalar, mut vector) = (false, false);
+            let child = |i: usize, child: u32| {
+                let c = child as usize;
+                if c <= i || c >= len {
+                    return Err(format!(
+                        "tree {t} node {i}: child {child} must come after the node and within the {len} nodes"
+                    ));
+                }
+                Ok((offset + c) as u32)
+            };
+            let feature_ok = |i: usize, feature: u32| {
+                if feature >= params.features {
+                    return Err(format!("tree {t} node {i}: feature {feature} but rows have {}", params.features));
+                }
+                Ok(feature)
+            };
+            let side = |missing: Branch, members: Branch| {
+                u8::from(missing == Branch::Left) | (u8::from(members == Branch::Left) << 1)
+            };
             for (i, node) in tree.nodes.iter().enumerate() {
+                let blank = Flat { threshold: 0.0, feature: 0, left: 0, right: 0, start: 0, words: 0, kind: LEAF, goes_left: 0 };
                 nodes.push(match *node {
                     Node::Leaf { value } => {
                         if !value.is_finite() {
                             return Err(format!("tree {t} node {i}: non-finite leaf {value}"));
                         }
-                        Flat { threshold: value, feature: 0, left: 0, right: 0, missing_left: false }
+                        scalar = true;
+                        Flat { threshold: value, ..blank }
                     }
-                    Node::Split { feature, threshold, left, right, missing } => {
-                        if feature >= params.features {
+                    Node::Leaves { first } => {
+                        if first as usize + outputs > params.vectors.len() {
                             return Err(format!(
-                                "tree {t} node {i}: feature {feature} but rows have {}",
-                                params.features
+                                "tree {t} node {i}: leaf values {first}..{} but vectors has {}",
+                                first as usize + outputs,
+                                params.vectors.len()
                             ));
                         }
+                        vector = true;
+                        Flat { left: first, kind: LEAVES, ..blank }
+                    }
+                    Node::Split { feature, threshold, left, right, missing }
+                    | Node::SplitZeroAbsent { feature, threshold, left, right, missing } => {
                         if threshold.is_nan() {
                             return Err(format!("tree {t} node {i}: threshold is NaN"));
                         }
-                        for child in [left, right] {
-                            let c = child as usize;
-                            if c <= i || c >= len {
-                                return Err(format!(
-                                    "tree {t} node {i}: child {child} must come after the node and within the {len} nodes"
-                                ));
-                            }
-                        }
+                        let kind = if matches!(node, Node::Split { .. }) { NUMERIC } else { ZERO_ABSENT };
                         Flat {
                             threshold,
-                            feature,
-                            left: (offset + left as usize) as u32,
-                            right: (offset + right as usize) as u32,
-                            missing_left: missing == Branch::Left,
+                            feature: feature_ok(i, feature)?,
+                            left: child(i, left)?,
+                            right: child(i, right)?,
+                            kind,
+                            goes_left: side(missing, Branch::Right),
+                            ..blank
+                        }
+                    }
+                    Node::Member { feature, set, left, right, missing, members } => {
+                        let &(start, words) = set_at
+                            .get(set as usize)
+                            .ok_or_else(|| format!("tree {t} node {i}: set {set} but there are {}", set_at.len()))?;
+                        Flat {
+                            feature: feature_ok(i, feature)?,
+                            left: child(i, left)?,
+                            right: child(i, right)?,
+                            start,
+                            words,
+                            kind: MEMBER,
+                            goes_left: side(missing, members),
+                            ..blank
                         }
                     }
                 });
             }
+            if scalar && vector {
+                return Err(format!("tree {t}: mixes single-value and per-output leaves"));
+            }
+            if vector {
+                counts.iter_mut().for_each(|c| *c += 1.0);
+            } else {
+                counts[output] += 1.0;
+            }
         }
-        // Leaf test relies on no child pointing at the first node overall.
-        let per_output = counts.iter().map(|&n| if n == 0 { 0.0 } else { 1.0 / n as f64 }).collect();
         Ok(Trees {
             features: params.features as usize,
             base: params.base,
             combine: params.combine,
             less_or_equal: params.split == SplitRule::LessOrEqual,
+            inputs: params.inputs,
+            arithmetic: params.arithmetic,
+            link: params.link,
             roots,
             nodes,
-            per_output,
+            words,
+            vectors: params.vectors,
+            counts,
         })
     }
 
-    /// The leaf value one tree gives a row.
+    /// The leaf one tree sends a row to.
     #[inline]
-    fn leaf(&self, root: usize, x: &[f64]) -> f64 {
+    fn leaf(&self, root: usize, x: &[f64]) -> &Flat {
         let mut n = &self.nodes[root];
         // Four steps per loop turn: in the sandbox every loop back-edge
         // carries an interruption check, and a tree walk is little else.
         loop {
             for _ in 0..4 {
-                if n.left == 0 {
-                    return n.threshold;
+                if n.kind >= LEAF {
+                    return n;
                 }
                 n = &self.nodes[self.child(n, x) as usize];
             }
@@ -205,14 +395,83 @@ impl Trees {
     #[inline(always)]
     fn child(&self, n: &Flat, x: &[f64]) -> u32 {
         let v = x[n.feature as usize];
-        let left = if v.is_nan() {
-            n.missing_left
+        let left = if v.is_nan() || (n.kind == ZERO_ABSENT && (-ZERO..=ZERO).contains(&v)) {
+            n.goes_left & 1 != 0
+        } else if n.kind == MEMBER {
+            self.is_member(n, v) == (n.goes_left & 2 != 0)
         } else if self.less_or_equal {
             v <= n.threshold
         } else {
             v < n.threshold
         };
         if left { n.left } else { n.right }
+    }
+
+    /// Whether `v` (not NaN) is in a [`Node::Member`]'s set.
+    fn is_member(&self, n: &Flat, v: f64) -> bool {
+        if v < 0.0 || v >= 32.0 * f64::from(n.words) {
+            return false;
+        }
+        let c = v as u32; // truncates toward zero
+        let word = self.words[n.start as usize + (c / 32) as usize];
+        (word >> (c % 32)) & 1 == 1
+    }
+
+    /// Sums every tree's leaves into `out` (which holds the starting
+    /// values), `SINGLE` rounding each sum to `f32`.
+    fn accumulate<const SINGLE: bool>(&self, cells: &[f64], rows: usize, out: &mut ArrayViewMut2<'_, f64>) {
+        let add = |a: f64, b: f64| if SINGLE { f64::from(a as f32 + b as f32) } else { a + b };
+        let outputs = self.base.len();
+        // Tree by tree over all rows: each tree stays in cache while it runs.
+        for &(root, k) in &self.roots {
+            for r in 0..rows {
+                let leaf = self.leaf(root, &cells[r * self.features..(r + 1) * self.features]);
+                if leaf.kind == LEAF {
+                    out[[r, k]] = add(out[[r, k]], leaf.threshold);
+                } else {
+                    let first = leaf.left as usize;
+                    for (j, v) in self.vectors[first..first + outputs].iter().enumerate() {
+                        out[[r, j]] = add(out[[r, j]], *v);
+                    }
+                }
+            }
+        }
+    }
+
+    /// Applies the link to one row's combined values.
+    fn apply_link(&self, o: &mut [f64]) {
+        let single = self.arithmetic == Precision::Single;
+        match self.link {
+            OutputLink::Identity => {}
+            OutputLink::Logistic { scale } => {
+                for v in o.iter_mut() {
+                    *v = if single {
+                        // XGBoost's `common::Sigmoid`: exp's argument capped
+                        // against overflow, and an epsilon lost in rounding.
+                        let x = (-(*v as f32) * scale as f32).min(88.7);
+                        f64::from(1.0 / (exp::expf(x) + 1.0 + 1e-16))
+                    } else {
+                        1.0 / (1.0 + exp::exp(-scale * *v))
+                    };
+                }
+            }
+            OutputLink::Exp => {
+                for v in o.iter_mut() {
+                    *v = if single { f64::from(exp::expf(*v as f32)) } else { exp::exp(*v) };
+                }
+            }
+            OutputLink::Softmax => {
+                let max = o.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+                let mut sum = 0.0f64;
+                for v in o.iter_mut() {
+                    *v = if single { f64::from(exp::expf(*v as f32 - max as f32)) } else { exp::exp(*v - max) };
+                    sum += *v;
+                }
+                for v in o.iter_mut() {
+                    *v = if single { f64::from(*v as f32 / sum as f32) } else { *v / sum };
+                }
+            }
+        }
     }
 }
 
@@ -232,35 +491,51 @@ impl Evaluate for Trees {
     }
 
     fn evaluate(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) {
-        let outputs = self.outputs();
-        let start = |k: usize| match self.combine {
-            Combine::Sum => self.base[k],
-            Combine::Mean => 0.0,
+        let single = self.arithmetic == Precision::Single;
+        let n = rows.nrows();
+        // The cells as one row-major slice, rounded to f32 first if asked.
+        let owned: Vec<f64>;
+        let cells: &[f64] = match (rows.as_slice(), self.inputs) {
+            (Some(cells), Precision::Double) => cells,
+            (_, inputs) => {
+                let round = |v: f64| if inputs == Precision::Single { f64::from(v as f32) } else { v };
+                owned = rows.iter().map(|&v| round(v)).collect();
+                &owned
+            }
         };
         for mut o in out.outer_iter_mut() {
             for (k, v) in o.iter_mut().enumerate() {
-                *v = start(k);
-            }
-        }
-        // Tree by tree over all rows: each tree stays in cache while it runs.
-        let contiguous = rows.as_slice();
-        let mut scratch = vec![0.0; self.features];
-        for &(root, k) in &self.roots {
-            for (r, row) in rows.outer_iter().enumerate() {
-                let x: &[f64] = match contiguous {
-                    Some(cells) => &cells[r * self.features..(r + 1) * self.features],
-                    None => {
-                        scratch.iter_mut().zip(row.iter()).for_each(|(s, v)| *s = *v);
-                        &scratch
-                    }
+                *v = match self.combine {
+                    Combine::Sum if single => f64::from(self.base[k] as f32),
+                    Combine::Sum => self.base[k],
+                    Combine::Mean => 0.0,
                 };
-                out[[r, k]] += self.leaf(root, x);
             }
         }
-        if self.combine == Combine::Mean {
-            for mut o in out.outer_iter_mut() {
-                for k in 0..outputs {
-                    o[k] = self.base[k] + o[k] * self.per_output[k];
+        if single {
+            self.accumulate::<true>(cells, n, &mut out);
+        } else {
+            self.accumulate::<false>(cells, n, &mut out);
+        }
+        for mut o in out.outer_iter_mut() {
+            if self.combine == Combine::Mean {
+                for (k, v) in o.iter_mut().enumerate() {
+                    let count = self.counts[k].max(1.0);
+                    *v = if single {
+                        f64::from(self.base[k] as f32 + *v as f32 / count as f32)
+                    } else {
+                        self.base[k] + *v / count
+                    };
+                }
+            }
+            if self.link != OutputLink::Identity {
+                match o.as_slice_mut() {
+                    Some(values) => self.apply_link(values),
+                    None => {
+                        let mut values = o.to_vec();
+                        self.apply_link(&mut values);
+                        o.iter_mut().zip(values).for_each(|(v, w)| *v = w);
+                    }
                 }
             }
         }
@@ -287,16 +562,12 @@ mod tests {
     /// stump B adds 0.5 if x1 < 0 else −0.25 (NaN → left).
     #[test]
     fn boosted_sum_matches_hand_computation() {
-        let trees = Trees::new(TreesParams {
-            features: 2,
-            base: vec![10.0],
-            combine: Combine::Sum,
-            split: SplitRule::Less,
-            trees: vec![
-                stump(0, 0, 5.0, 1.0, 2.0, Branch::Right),
-                stump(0, 1, 0.0, 0.5, -0.25, Branch::Left),
-            ],
-        })
+        let trees = Trees::new(TreesParams::boosted(
+            2,
+            10.0,
+            SplitRule::Less,
+            vec![stump(0, 0, 5.0, 1.0, 2.0, Branch::Right), stump(0, 1, 0.0, 0.5, -0.25, Branch::Left)],
+        ))
         .unwrap();
         let rows = array![[4.0, -1.0], [5.0, 0.0], [f64::NAN, f64::NAN]];
         let mut out = Array2::zeros((3, 1));
@@ -306,13 +577,7 @@ mod tests {
 
     #[test]
     fn less_or_equal_changes_the_tie() {
-        let params = |split| TreesParams {
-            features: 1,
-            base: vec![0.0],
-            combine: Combine::Sum,
-            split,
-            trees: vec![stump(0, 0, 5.0, 1.0, 2.0, Branch::Left)],
-        };
+        let params = |split| TreesParams::boosted(1, 0.0, split, vec![stump(0, 0, 5.0, 1.0, 2.0, Branch::Left)]);
         let rows = array![[5.0]];
         let mut out = Array2::zeros((1, 1));
         Trees::new(params(SplitRule::Less)).unwrap().evaluate(rows.view(), out.view_mut());
@@ -326,15 +591,18 @@ mod tests {
     #[test]
     fn mean_averages_per_output() {
         let trees = Trees::new(TreesParams {
-            features: 1,
             base: vec![1.0, 0.0],
             combine: Combine::Mean,
-            split: SplitRule::Less,
-            trees: vec![
-                stump(0, 0, 0.0, 0.0, 3.0, Branch::Left),
-                stump(0, 0, 0.0, 0.0, 5.0, Branch::Left),
-                stump(1, 0, 0.0, 0.0, 7.0, Branch::Left),
-            ],
+            ..TreesParams::boosted(
+                1,
+                0.0,
+                SplitRule::Less,
+                vec![
+                    stump(0, 0, 0.0, 0.0, 3.0, Branch::Left),
+                    stump(0, 0, 0.0, 0.0, 5.0, Branch::Left),
+                    stump(1, 0, 0.0, 0.0, 7.0, Branch::Left),
+                ],
+            )
         })
         .unwrap();
         let rows = array![[1.0]];
@@ -347,23 +615,117 @@ mod tests {
     fn cycles_and_unknown_features_are_refused() {
         let mut bad = stump(0, 0, 1.0, 1.0, 2.0, Branch::Left);
         bad.nodes[0] = Node::Split { feature: 0, threshold: 1.0, left: 0, right: 2, missing: Branch::Left };
-        let err = Trees::new(TreesParams {
-            features: 1,
-            base: vec![0.0],
-            combine: Combine::Sum,
-            split: SplitRule::Less,
-            trees: vec![bad],
-        })
-        .unwrap_err();
+        let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![bad])).unwrap_err();
         assert!(err.contains("tree 0 node 0: child 0 must come after"), "{err}");
-        let err = Trees::new(TreesParams {
-            features: 1,
-            base: vec![0.0],
-            combine: Combine::Sum,
-            split: SplitRule::Less,
-            trees: vec![stump(0, 3, 1.0, 1.0, 2.0, Branch::Left)],
-        })
-        .unwrap_err();
+        let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![stump(0, 3, 1.0, 1.0, 2.0, Branch::Left)]))
+            .unwrap_err();
         assert!(err.contains("feature 3 but rows have 1"), "{err}");
+        let member = Tree {
+            output: 0,
+            nodes: vec![
+                Node::Member { feature: 0, set: 2, left: 1, right: 2, missing: Branch::Left, members: Branch::Left },
+                Node::Leaf { value: 1.0 },
+                Node::Leaf { value: 2.0 },
+            ],
+        };
+        let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![member])).unwrap_err();
+        assert!(err.contains("tree 0 node 0: set 2 but there are 0"), "{err}");
+        let mixed = Tree { output: 0, nodes: vec![Node::Split { feature: 0, threshold: 0.0, left: 1, right: 2, missing: Branch::Left }, Node::Leaf { value: 1.0 }, Node::Leaves { first: 0 }] };
+        let err = Trees::new(TreesParams { vectors: vec![1.0], ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![mixed]) }).unwrap_err();
+        assert!(err.contains("tree 0: mixes"), "{err}");
+        let err = Trees::new(TreesParams { link: OutputLink::Softmax, ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![]) }).unwrap_err();
+        assert!(err.contains("softmax needs at least two outputs"), "{err}");
+    }
+
+    fn score(params: TreesParams, rows: Array2<f64>) -> Array2<f64> {
+        let trees = Trees::new(params).unwrap();
+        let mut out = Array2::from_elem((rows.nrows(), trees.outputs()), f64::NAN);
+        trees.evaluate(rows.view(), out.view_mut());
+        out
+    }
+
+    /// Hand-computed: categories {1, 3, 40} go right; NaN goes left; −1,
+    /// 2.9 (→ 2) and 64 (past the set's two words) are not members.
+    #[test]
+    fn member_splits_look_categories_up_in_the_set() {
+        let tree = Tree {
+            output: 0,
+            nodes: vec![
+                Node::Member { feature: 0, set: 0, left: 1, right: 2, missing: Branch::Left, members: Branch::Right },
+                Node::Leaf { value: 10.0 },
+                Node::Leaf { value: 20.0 },
+            ],
+        };
+        let params = TreesParams {
+            sets: vec![vec![(1 << 1) | (1 << 3), 1 << (40 - 32)]],
+            ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![tree])
+        };
+        let out = score(params, array![[1.0], [3.5], [40.0], [f64::NAN], [-1.0], [2.9], [64.0], [0.0]]);
+        assert_eq!(out.column(0).to_vec(), vec![20.0, 20.0, 20.0, 10.0, 10.0, 10.0, 10.0, 10.0]);
+    }
+
+    /// Hand-computed: zero (and ±1e-36) and NaN take the missing way
+    /// (right) although 0 ≤ 0.5 would go left.
+    #[test]
+    fn zero_absent_splits_send_zero_the_missing_way() {
+        let tree = Tree {
+            output: 0,
+            nodes: vec![
+                Node::SplitZeroAbsent { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right },
+                Node::Leaf { value: 1.0 },
+                Node::Leaf { value: 2.0 },
+            ],
+        };
+        let out = score(TreesParams::boosted(1, 0.0, SplitRule::LessOrEqual, vec![tree]), array![[0.0], [1e-36], [-1e-36], [f64::NAN], [0.25], [-3.0], [0.75]]);
+        assert_eq!(out.column(0).to_vec(), vec![2.0, 2.0, 2.0, 2.0, 1.0, 1.0, 2.0]);
+    }
+
+    /// Hand-computed: 0.1 as f32 is 0.100000001490116…, so with inputs in
+    /// single precision the row 0.1 is not below the f32 threshold 0.1; the
+    /// sum 1 + 2^-30 rounds to 1 in single precision.
+    #[test]
+    fn single_precision_rounds_inputs_and_sums() {
+        let t = f64::from(0.1f32);
+        let params = |p: Precision| TreesParams {
+            inputs: p,
+            arithmetic: p,
+            ..TreesParams::boosted(1, 1.0, SplitRule::Less, vec![stump(0, 0, t, 2f64.powi(-30), 5.0, Branch::Left)])
+        };
+        assert_eq!(score(params(Precision::Double), array![[0.1]])[[0, 0]], 1.0 + 2f64.powi(-30));
+        assert_eq!(score(params(Precision::Single), array![[0.1]])[[0, 0]], 6.0);
+        assert_eq!(score(params(Precision::Single), array![[0.05]])[[0, 0]], 1.0);
+    }
+
+    /// Hand-computed links: logistic(0) = ½, logistic with scale 2 at
+    /// ln 3 / 2 is ¾, exp(0) = 1, softmax of (0, ln 3) is (¼, ¾).
+    #[test]
+    fn links_turn_sums_into_outputs() {
+        let constant = |output, value| Tree { output, nodes: vec![Node::Leaf { value }] };
+        let one = |link, value| TreesParams { link, ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![constant(0, value)]) };
+        let row = || array![[0.0]];
+        assert_eq!(score(one(OutputLink::Logistic { scale: 1.0 }, 0.0), row())[[0, 0]], 0.5);
+        assert!((score(one(OutputLink::Logistic { scale: 2.0 }, 3f64.ln() / 2.0), row())[[0, 0]] - 0.75).abs() < 1e-15);
+        assert_eq!(score(one(OutputLink::Exp, 0.0), row())[[0, 0]], 1.0);
+        let softmax = TreesParams {
+            base: vec![0.0, 0.0],
+            link: OutputLink::Softmax,
+            ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![constant(0, 0.0), constant(1, 3f64.ln())])
+        };
+        let out = score(softmax, row());
+        assert!((out[[0, 0]] - 0.25).abs() < 1e-15 && (out[[0, 1]] - 0.75).abs() < 1e-15, "{out}");
+    }
+
+    /// Hand-computed: two trees with per-class leaves, averaged: class
+    /// fractions (1, 0) and (0.5, 0.5) average to (0.75, 0.25).
+    #[test]
+    fn per_output_leaves_feed_every_output() {
+        let tree = |first| Tree { output: 0, nodes: vec![Node::Leaves { first }] };
+        let params = TreesParams {
+            base: vec![0.0, 0.0],
+            combine: Combine::Mean,
+            vectors: vec![1.0, 0.0, 0.5, 0.5],
+            ..TreesParams::boosted(1, 0.0, SplitRule::LessOrEqual, vec![tree(0), tree(2)])
+        };
+        assert_eq!(score(params, array![[0.0]]).row(0).to_vec(), vec![0.75, 0.25]);
     }
 }

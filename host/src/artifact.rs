@@ -22,6 +22,10 @@ use crate::limits::LimitHit;
 pub const PARAMS_SECTION: &str = "paddock-params";
 /// Name of the custom section that carries the checks (JSON, see [`Checks`]).
 pub const CHECKS_SECTION: &str = "paddock-checks";
+/// Name of the custom section that says where an imported model came from
+/// (a JSON object an importer writes: the toolkit, its file, and where each
+/// part of the contract came from).
+pub const ORIGIN_SECTION: &str = "paddock-origin";
 /// Every section name this crate owns starts with this.
 const OWN_PREFIX: &str = "paddock-";
 
@@ -77,6 +81,9 @@ pub enum ArtifactError {
     /// A core module could not be turned into a component.
     #[error("cannot make a component from this module: {0}")]
     Componentize(#[source] ToolError),
+    /// The origin section is not a JSON object.
+    #[error("custom section `{ORIGIN_SECTION}` is not a JSON object: {0}")]
+    Origin(#[source] serde_json::Error),
 }
 
 /// A top-level custom section: its name and size.
@@ -95,6 +102,7 @@ pub struct Artifact {
     digest: Digest,
     params: Option<Range<usize>>,
     checks: Option<Range<usize>>,
+    origin: Option<Range<usize>>,
     sections: Vec<SectionInfo>,
     imports: Vec<String>,
     exports: Vec<String>,
@@ -149,10 +157,12 @@ impl Artifact {
         }
         let mut params = None;
         let mut checks = None;
+        let mut origin = None;
         for (name, range) in &shape.custom {
             let slot = match name.as_str() {
                 PARAMS_SECTION => &mut params,
                 CHECKS_SECTION => &mut checks,
+                ORIGIN_SECTION => &mut origin,
                 other if other.starts_with(OWN_PREFIX) => {
                     return Err(ArtifactError::UnknownSection { name: other.to_owned() });
                 }
@@ -174,6 +184,7 @@ impl Artifact {
             bytes: bytes.into(),
             params,
             checks,
+            origin,
             sections,
             imports: shape.imports,
             exports: shape.exports,
@@ -201,6 +212,14 @@ impl Artifact {
     /// [`ArtifactError::Checks`] when the section does not parse.
     pub fn checks(&self) -> Result<Option<Checks>, ArtifactError> {
         Ok(self.checks.clone().map(|r| Checks::from_json(&self.bytes[r])).transpose()?)
+    }
+
+    /// Where an imported model came from, as its importer recorded it.
+    ///
+    /// # Errors
+    /// [`ArtifactError::Origin`] when the section is not a JSON object.
+    pub fn origin(&self) -> Result<Option<serde_json::Map<String, serde_json::Value>>, ArtifactError> {
+        self.origin.clone().map(|r| serde_json::from_slice(&self.bytes[r]).map_err(ArtifactError::Origin)).transpose()
     }
 
     /// Top-level custom sections, in file order.
@@ -411,6 +430,20 @@ pub const WIT: &str = include_str!("../../wit/estimator.wit");
 /// bad input, [`ArtifactError::Componentize`] when the module's exports do
 /// not fit the world or it does not validate.
 pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Result<Vec<u8>, ArtifactError> {
+    pack_imported(wasm, params, checks, None)
+}
+
+/// As [`pack`], also carrying an importer's record of where the model came
+/// from (see [`ORIGIN_SECTION`]; `paddock inspect` shows it).
+///
+/// # Errors
+/// As [`pack`].
+pub fn pack_imported(
+    wasm: &[u8],
+    params: Option<&[u8]>,
+    checks: Option<&Checks>,
+    origin: Option<&serde_json::Map<String, serde_json::Value>>,
+) -> Result<Vec<u8>, ArtifactError> {
     let binary;
     let wasm = if wasm.starts_with(b"\0asm") {
         wasm
@@ -441,6 +474,10 @@ pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Resu
     }
     if let Some(checks) = checks {
         append_custom(&mut out, CHECKS_SECTION, &checks.to_json());
+    }
+    if let Some(origin) = origin {
+        let json = serde_json::to_vec(origin).expect("a JSON map serializes");
+        append_custom(&mut out, ORIGIN_SECTION, &json);
     }
     Ok(out)
 }

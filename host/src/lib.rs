@@ -65,7 +65,7 @@ pub mod row_file;
 pub mod trust;
 pub mod wasi;
 
-pub use artifact::{Artifact, ArtifactError, pack};
+pub use artifact::{Artifact, ArtifactError, pack, pack_imported};
 pub use digest::{Digest, DigestError};
 pub use checking::{CaseFailure, CheckReport};
 pub use checks::{Checks, ChecksError, Tolerance};

@@ -3,7 +3,7 @@
 
 use std::path::PathBuf;
 
-use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams};
+use paddock_guest::{Branch, Node, SplitRule, Tree, TreesParams};
 use paddock_host::{Artifact, Checks, Model, ModelOptions, Runtime};
 use rand::{Rng, SeedableRng};
 
@@ -71,7 +71,7 @@ pub fn random_ensemble(seed: u64, trees: usize, depth: u32, features: u32) -> Tr
             Tree { output: 0, nodes }
         })
         .collect();
-    TreesParams { features, base: vec![0.5], combine: Combine::Sum, split: SplitRule::Less, trees }
+    TreesParams::boosted(features, 0.5, SplitRule::Less, trees)
 }
 
 /// Random rows in [0, 1) with about `missing` of the cells NaN.

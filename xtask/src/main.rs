@@ -74,19 +74,22 @@ fn main() -> Result<()> {
         }
         "guests" => {
             let tools = build(&root)?;
-            python_packages()?;
+            python_packages(&root)?;
             foreign_guests(&root, &tools)
         }
         "test" => {
             library_deps(&root)?;
             modules::check(&root.join("host/src"))?;
             let tools = build(&root)?;
-            python_packages()?;
+            python_packages(&root)?;
             foreign_guests(&root, &tools)?;
-            // scikit-learn's reference models and predictions, for tests/sklearn.rs.
-            let mut export = Command::new("python3");
-            export.arg(root.join("tests/sklearn/export.py")).arg(root.join("target/paddock/sklearn"));
-            run(export)?;
+            // scikit-learn's reference models and predictions, for tests/sklearn.rs,
+            // and XGBoost's and LightGBM's, for tests/imports.rs.
+            for (script, out) in [("tests/sklearn/export.py", "target/paddock/sklearn"), ("tests/imports/export.py", "target/paddock/imports")] {
+                let mut export = Command::new("python3");
+                export.arg(root.join(script)).arg(root.join(out));
+                run(export)?;
+            }
             let mut cmd = cargo(&root);
             // The ONNX evaluator is a guest: built for wasm32 above, and tested
             // through the sandbox (tests/sklearn.rs); compiling tract natively
@@ -286,14 +289,18 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
 }
 
 /// Python packages the tests use, pinned: schemathesis and the OpenMetrics
-/// parser for the HTTP API, scikit-learn (with SciPy) and skl2onnx for
-/// fidelity, componentize-py to build the Python guests.
-const PYTHON_PACKAGES: [&str; 6] = [
+/// parser for the HTTP API, scikit-learn (with SciPy), skl2onnx, XGBoost
+/// (the CPU-only wheel: the same library without the GPU runtime; 3.2.x is
+/// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
+/// build the Python guests.
+const PYTHON_PACKAGES: [&str; 8] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
     "skl2onnx==1.20.0",
     "onnx==1.23.2",
+    "xgboost-cpu==3.2.0",
+    "lightgbm==4.7.0",
     "componentize-py==0.25.1",
 ];
 
@@ -375,11 +382,15 @@ fn pack_with(tools: &Tools, input: &Path, args: Vec<OsString>, out: &Path) -> Re
     run(pack)
 }
 
-/// Installs [`PYTHON_PACKAGES`] with pip (quick when they are there).
-fn python_packages() -> Result<()> {
+/// Installs [`PYTHON_PACKAGES`] and the notebook helper (`handoff/`) with
+/// pip (quick when they are there).
+fn python_packages(root: &Path) -> Result<()> {
     let mut pip = Command::new("python3");
     pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
-    run(pip).context("installing the tests' Python packages (needs python3 with pip)")
+    run(pip).context("installing the tests' Python packages (needs python3 with pip)")?;
+    let mut helper = Command::new("python3");
+    helper.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--no-deps"]).arg(root.join("handoff"));
+    run(helper).context("installing the notebook helper (pip install ./handoff)")
 }
 
 /// Crates only the `paddock` command needs, which the library an embedder
@@ -438,7 +449,8 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
     let seeds = root.join("target/paddock/fuzz-seeds");
     let artifact_seeds = seeds.join("artifact");
     let row_seeds = seeds.join("rows");
-    for dir in [&artifact_seeds, &row_seeds] {
+    let import_seeds = seeds.join("import");
+    for dir in [&artifact_seeds, &row_seeds, &import_seeds] {
         std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     }
     for model in ["charge-minutes", "overstay-risk"] {
@@ -447,7 +459,13 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
     }
     std::fs::write(row_seeds.join("ndjson"), "{\"kw\": 11, \"hour\": 3, \"plug\": \"ccs2\", \"fleet\": true, \"id\": \"a\"}\n")?;
     std::fs::write(row_seeds.join("csv"), "id,kw,hour,plug,fleet\na,11,3,ccs2,yes\nb,,x,,\n")?;
-    for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds)] {
+    // Small models the toolkits wrote (tests/imports/export.py, run by `xtask test`).
+    for model in ["xgb-iris-softmax.json", "lgb-iris-one-vs-rest.txt", "lgb-wine-categorical.txt"] {
+        let from = root.join("target/paddock/imports").join(model);
+        std::fs::copy(&from, import_seeds.join(model))
+            .with_context(|| format!("copying {} (run `cargo xtask test` first: it exports the models)", from.display()))?;
+    }
+    for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds), ("import", &import_seeds)] {
         let mut c = cargo(&root.join("fuzz"));
         // cargo-fuzz passes nightly-only flags; this toolchain is stable.
         c.env("RUSTC_BOOTSTRAP", "1");

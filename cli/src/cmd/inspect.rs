@@ -4,7 +4,8 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use paddock_host::artifact::{Inventory, inspect_bytes};
-use paddock_host::{Contract, Digest};
+use paddock_host::{Artifact, Contract, Digest};
+use paddock_import::Origin;
 use serde::Serialize;
 
 use crate::Outcome;
@@ -26,6 +27,8 @@ struct Report {
     #[serde(flatten)]
     inventory: Inventory,
     contract: Option<Contract>,
+    /// Where an imported model came from (`None` for one packed from WebAssembly).
+    origin: Option<Origin>,
     load_error: Option<String>,
 }
 
@@ -34,11 +37,17 @@ pub fn run(args: Args) -> Result<Outcome> {
     let args = args.target;
     let bytes = std::fs::read(&args.artifact).with_context(|| format!("reading {}", args.artifact.display()))?;
     let inventory = inspect_bytes(&bytes).with_context(|| format!("in {}", args.artifact.display()))?;
+    let origin = Artifact::from_bytes(bytes.clone(), u64::MAX)
+        .and_then(|a| a.origin())
+        .with_context(|| format!("in {}", args.artifact.display()))?
+        .map(Origin::from_map)
+        .transpose()
+        .with_context(|| format!("in {}: the origin section is not an importer's record", args.artifact.display()))?;
     let (contract, load_error) = match args.load.load(&args.artifact) {
         Ok((_, model)) => (Some(model.contract().clone()), None),
         Err(e) => (None, Some(format!("{e:#}"))),
     };
-    let report = Report { path: args.artifact, digest: Digest::of(&bytes), bytes: bytes.len(), inventory, contract, load_error };
+    let report = Report { path: args.artifact, digest: Digest::of(&bytes), bytes: bytes.len(), inventory, contract, origin, load_error };
     if args.json {
         print_json(&report)?;
         return Ok(if report.load_error.is_some() { Outcome::Failed } else { Outcome::Ok });
@@ -61,6 +70,17 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     if let Some(c) = &report.contract {
         print!("\n{}", contract_text(c));
+    }
+    if let Some(o) = &report.origin {
+        println!("\nimported from {} ({}, {} trees)", o.file, o.format, o.trees);
+        println!("  toolkit     {}", o.toolkit);
+        println!("  task        {}", o.task);
+        println!("  arithmetic  {}", o.arithmetic);
+        println!("  contract, part by part:");
+        let width = o.contract.iter().map(|s| s.part.chars().count()).max().unwrap_or(0);
+        for s in &o.contract {
+            println!("    {:width$}  {}", s.part, s.from);
+        }
     }
     Ok(Outcome::Ok)
 }

@@ -5,6 +5,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use paddock_host::{Artifact, Checks, checking};
+use paddock_import::{Format, Manifest};
 use serde::Serialize;
 
 use crate::Outcome;
@@ -12,22 +13,31 @@ use crate::common::{LoadArgs, WasiArgs, print_json};
 
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
-/// then load it and run its checks. An ONNX model (`MODEL.onnx`) is packed
-/// with the ONNX evaluator guest, its manifest giving the contract.
+/// then load it and run its checks. A model file a toolkit saved (XGBoost
+/// JSON, LightGBM text) is imported onto the trees guest, its contract
+/// taken from the file; an ONNX model (`MODEL.onnx`) is packed with the
+/// ONNX evaluator guest, its manifest giving the contract.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The component or core module to pack, or an ONNX model (`.onnx`).
+    /// The component or core module to pack, a toolkit's model file
+    /// (XGBoost `.json`, LightGBM `.txt`), or an ONNX model (`.onnx`).
     input: PathBuf,
+    /// The model file's format, when it is not recognised from its content.
+    #[arg(long, value_enum)]
+    format: Option<ModelFormat>,
     /// Parameter blob to carry (the model decodes it in `init`).
     #[arg(long, value_name = "FILE", conflicts_with = "manifest")]
     params: Option<PathBuf>,
     /// For an ONNX model: its manifest (TOML: name, version, features,
-    /// outputs; see the README).
+    /// outputs). For a toolkit's model file: overrides of the contract it
+    /// declares (name, version, and per feature or output its name,
+    /// domain, unit, required-ness, bounds; see the README).
     #[arg(long, value_name = "FILE")]
     manifest: Option<PathBuf>,
-    /// For an ONNX model: the ONNX evaluator guest
-    /// [default: target/paddock/guests/paddock-model-onnx.wasm, as `cargo xtask build` leaves it].
-    #[arg(long, value_name = "FILE", requires = "manifest")]
+    /// The guest that evaluates an imported or ONNX model
+    /// [default: target/paddock/guests/paddock-model-trees.wasm, or
+    /// paddock-model-onnx.wasm for ONNX, as `cargo xtask build` leaves them].
+    #[arg(long, value_name = "FILE")]
     evaluator: Option<PathBuf>,
     /// Checks to carry (JSON: example rows with recorded outputs).
     #[arg(long, value_name = "FILE")]
@@ -49,6 +59,26 @@ pub struct Args {
 
 /// Where `cargo xtask build` leaves the ONNX evaluator guest.
 const DEFAULT_EVALUATOR: &str = "target/paddock/guests/paddock-model-onnx.wasm";
+/// Where `cargo xtask build` leaves the trees guest imported models run on.
+const DEFAULT_TREES: &str = "target/paddock/guests/paddock-model-trees.wasm";
+
+/// A toolkit's model file format.
+#[derive(Clone, Copy, clap::ValueEnum)]
+enum ModelFormat {
+    /// XGBoost's JSON model (`save_model("m.json")`).
+    Xgboost,
+    /// LightGBM's text model (`booster.save_model("m.txt")`).
+    Lightgbm,
+}
+
+impl From<ModelFormat> for Format {
+    fn from(f: ModelFormat) -> Format {
+        match f {
+            ModelFormat::Xgboost => Format::XgboostJson,
+            ModelFormat::Lightgbm => Format::LightgbmText,
+        }
+    }
+}
 
 #[derive(Serialize)]
 struct Packed {
@@ -64,7 +94,25 @@ pub fn run(args: Args) -> Result<Outcome> {
     let read = |p: &PathBuf| std::fs::read(p).with_context(|| format!("reading {}", p.display()));
     let input = read(&args.input)?;
     let is_onnx = args.input.extension().is_some_and(|e| e.eq_ignore_ascii_case("onnx"));
+    let format = args.format.map(Format::from).or_else(|| Format::recognise(&input));
+    let mut origin = None;
     let (wasm, params) = match (&args.manifest, is_onnx) {
+        _ if format.is_some() && !is_onnx => {
+            let format = format.expect("checked just above");
+            let manifest = match &args.manifest {
+                Some(p) => Some(
+                    Manifest::from_toml(&std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?)
+                        .with_context(|| format!("in {}", p.display()))?,
+                ),
+                None => None,
+            };
+            anyhow::ensure!(args.params.is_none(), "--params is for WebAssembly input; {} is a {}", args.input.display(), format.name());
+            let imported = paddock_import::import(&input, format, &args.input.display().to_string(), manifest.as_ref())?;
+            let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_TREES));
+            let guest = read(&evaluator).context("the trees guest (build it with `cargo xtask build`, or pass --evaluator)")?;
+            origin = Some(imported.origin.to_map());
+            (guest, Some(paddock_guest::encode_params(&imported.packaged)))
+        }
         (Some(manifest), true) => {
             let text = std::fs::read_to_string(manifest).with_context(|| format!("reading {}", manifest.display()))?;
             let params = paddock_host::onnx::params(&text, &input).with_context(|| format!("in {}", manifest.display()))?;
@@ -73,14 +121,28 @@ pub fn run(args: Args) -> Result<Outcome> {
             (guest, Some(params))
         }
         (None, true) => anyhow::bail!("{}: an ONNX model needs its manifest (--manifest FILE)", args.input.display()),
-        (Some(_), false) => anyhow::bail!("--manifest is for ONNX models (a `.onnx` file); {} is not one", args.input.display()),
-        (None, false) => (input, args.params.as_ref().map(read).transpose()?),
+        (Some(_), false) => anyhow::bail!(
+            "--manifest is for ONNX models and toolkits' model files; {} is neither (it looks like {})",
+            args.input.display(),
+            paddock_import::looks_like(&input)
+        ),
+        (None, false) => {
+            let text = std::str::from_utf8(&input).map(str::trim_start);
+            let wat = text.is_ok_and(|t| t.starts_with('(') || t.starts_with(";;"));
+            anyhow::ensure!(
+                input.starts_with(b"\0asm") || wat,
+                "{}: not WebAssembly, nor a model file paddock imports (XGBoost JSON, LightGBM text, ONNX); it looks like {}",
+                args.input.display(),
+                paddock_import::looks_like(&input)
+            );
+            (input, args.params.as_ref().map(read).transpose()?)
+        }
     };
     let checks = match &args.checks {
         Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
         None => None,
     };
-    let bytes = paddock_host::pack(&wasm, params.as_deref(), checks.as_ref())
+    let bytes = paddock_host::pack_imported(&wasm, params.as_deref(), checks.as_ref(), origin.as_ref())
         .with_context(|| format!("packing {}", args.input.display()))?;
     // Written beside its place under a temporary name, loaded and checked
     // from there, and renamed into place only if all of that succeeds: a

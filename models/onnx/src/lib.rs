@@ -8,7 +8,7 @@
 //! toolkit (skl2onnx, torch.onnx…); operators tract does not implement are
 //! refused at load with tract's message.
 
-use paddock_guest::{Bounds, Contract, Domain, Estimator, Fault, Feature, Output};
+use paddock_guest::{Bounds, Contract, Domain, DomainSpec, Estimator, Fault, Feature, Output};
 use paddock_guest::ndarray::{ArrayView2, ArrayViewMut2};
 use serde::Deserialize;
 use std::sync::Arc;
@@ -42,7 +42,7 @@ pub struct Manifest {
 #[serde(deny_unknown_fields)]
 pub struct FeatureSpec {
     name: String,
-    #[serde(default = "real")]
+    #[serde(default)]
     domain: DomainSpec,
     #[serde(default)]
     unit: Option<String>,
@@ -50,38 +50,6 @@ pub struct FeatureSpec {
     required: bool,
     #[serde(default)]
     about: String,
-}
-
-/// A feature's domain in the manifest.
-#[derive(Debug, Deserialize)]
-#[serde(rename_all = "snake_case", deny_unknown_fields)]
-pub enum DomainSpec {
-    /// A real number, optionally bounded.
-    Real {
-        /// Inclusive lower bound.
-        #[serde(default)]
-        min: Option<f64>,
-        /// Inclusive upper bound.
-        #[serde(default)]
-        max: Option<f64>,
-    },
-    /// A whole number, optionally bounded.
-    Whole {
-        /// Inclusive lower bound.
-        #[serde(default)]
-        min: Option<f64>,
-        /// Inclusive upper bound.
-        #[serde(default)]
-        max: Option<f64>,
-    },
-    /// One of these labels, passed to the graph as its index.
-    Label(Vec<String>),
-    /// Yes/no, passed as 1 or 0.
-    Flag,
-}
-
-fn real() -> DomainSpec {
-    DomainSpec::Real { min: None, max: None }
 }
 
 fn yes() -> bool {
@@ -117,12 +85,7 @@ impl Manifest {
             .iter()
             .map(|f| Feature {
                 name: f.name.clone(),
-                domain: match &f.domain {
-                    DomainSpec::Real { min, max } => Domain::Real(Bounds { min: *min, max: *max }),
-                    DomainSpec::Whole { min, max } => Domain::Whole(Bounds { min: *min, max: *max }),
-                    DomainSpec::Label(l) => Domain::Label(l.clone()),
-                    DomainSpec::Flag => Domain::Flag,
-                },
+                domain: Domain::from(&f.domain),
                 unit: f.unit.clone(),
                 required: f.required,
                 about: f.about.clone(),

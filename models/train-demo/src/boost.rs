@@ -2,7 +2,8 @@
 //! learned missing-value direction) that writes [`TreesParams`]. Enough to
 //! train the demo model; not a general-purpose library.
 
-use paddock_guest::{Branch, Combine, Node, SplitRule, Tree, TreesParams};
+use paddock_guest::ndarray::Array2;
+use paddock_guest::{Branch, Evaluate, Node, SplitRule, Tree, Trees, TreesParams};
 
 /// Training settings.
 #[derive(Clone)]
@@ -38,6 +39,8 @@ pub fn fit(x: &[Vec<f64>], y: &[f64], features: usize, s: &Settings) -> TreesPar
         .map(|f| x.iter().map(|r| if r[f].is_nan() { MISSING } else { cuts[f].partition_point(|c| *c <= r[f]) as u16 }).collect())
         .collect();
     let base = y.iter().sum::<f64>() / n as f64;
+    let rows_x = Array2::from_shape_fn((n, features), |(i, f)| x[i][f]);
+    let mut gained = Array2::zeros((n, 1));
     let mut pred = vec![base; n];
     let mut trees = Vec::with_capacity(s.trees);
     for _ in 0..s.trees {
@@ -46,26 +49,16 @@ pub fn fit(x: &[Vec<f64>], y: &[f64], features: usize, s: &Settings) -> TreesPar
         let rows: Vec<u32> = (0..n as u32).collect();
         grow(&mut nodes, &rows, &grad, &binned, &cuts, s, 0);
         let tree = Tree { output: 0, nodes };
-        for (i, p) in pred.iter_mut().enumerate() {
-            *p += leaf(&tree, &x[i]);
+        // What the new tree adds to each row, walked by the estimator itself.
+        let one = Trees::new(TreesParams::boosted(features as u32, 0.0, SplitRule::Less, vec![tree.clone()]))
+            .expect("the trainer grows well-formed trees");
+        one.evaluate(rows_x.view(), gained.view_mut());
+        for (p, g) in pred.iter_mut().zip(gained.column(0)) {
+            *p += g;
         }
         trees.push(tree);
     }
-    TreesParams { features: features as u32, base: vec![base], combine: Combine::Sum, split: SplitRule::Less, trees }
-}
-
-fn leaf(tree: &Tree, x: &[f64]) -> f64 {
-    let mut i = 0;
-    loop {
-        match tree.nodes[i] {
-            Node::Leaf { value } => return value,
-            Node::Split { feature, threshold, left, right, missing } => {
-                let v = x[feature as usize];
-                let go_left = if v.is_nan() { missing == Branch::Left } else { v < threshold };
-                i = if go_left { left } else { right } as usize;
-            }
-        }
-    }
+    TreesParams::boosted(features as u32, base, SplitRule::Less, trees)
 }
 
 struct Best {

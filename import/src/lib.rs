@@ -1,0 +1,201 @@
+//! Importers: the model files training toolkits save, turned into the
+//! params of paddock's built-in tree-ensemble estimator, with the contract
+//! the file declares.
+//!
+//! What it is: a pure function from a file's bytes (and an optional
+//! manifest of overrides) to [`Imported`]: a [`Packaged`] contract and
+//! [`TreesParams`] that the generic trees guest evaluates, and an
+//! [`Origin`] saying where each part came from. The params reproduce the
+//! toolkit's own arithmetic — XGBoost's single precision, LightGBM's double
+//! precision and `≤` splits, each one's missing-value rules and links — so
+//! the sandboxed artifact gives the toolkit's predictions bit for bit.
+//!
+//! What it is not: a runtime (the host loads and runs the artifact), nor a
+//! converter that guesses: anything it does not reproduce exactly is
+//! refused with [`ImportError`], naming the file's tree and node or field
+//! and what to do instead.
+//!
+//! Formats: XGBoost's JSON model ([`Format::XgboostJson`], what
+//! `save_model("m.json")` writes) and LightGBM's text model
+//! ([`Format::LightgbmText`], what `booster.save_model("m.txt")` writes).
+
+#![deny(missing_docs)]
+
+mod flatten;
+mod lightgbm;
+pub mod manifest;
+mod origin;
+mod xgboost;
+
+pub use manifest::Manifest;
+pub use origin::{Origin, Source};
+use paddock_guest::{Packaged, TreesParams};
+
+/// A model file format an importer reads.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Format {
+    /// XGBoost's JSON model (`Booster.save_model("m.json")`), gbtree booster.
+    XgboostJson,
+    /// LightGBM's text model (`Booster.save_model("m.txt")`).
+    LightgbmText,
+}
+
+impl Format {
+    /// Every format, in the order they are tried.
+    pub const ALL: [Format; 2] = [Format::XgboostJson, Format::LightgbmText];
+
+    /// The format's name as people say it.
+    pub fn name(self) -> &'static str {
+        match self {
+            Format::XgboostJson => "XGBoost JSON model",
+            Format::LightgbmText => "LightGBM text model",
+        }
+    }
+
+    /// The short name a command line takes (`xgboost`, `lightgbm`).
+    pub fn flag(self) -> &'static str {
+        match self {
+            Format::XgboostJson => "xgboost",
+            Format::LightgbmText => "lightgbm",
+        }
+    }
+
+    /// The format a file's first bytes show, if it is one an importer reads.
+    pub fn recognise(bytes: &[u8]) -> Option<Format> {
+        let head = String::from_utf8_lossy(&bytes[..bytes.len().min(4096)]);
+        let text = head.trim_start_matches('\u{feff}').trim_start();
+        if text.starts_with('{') && text.contains("\"learner\"") {
+            Some(Format::XgboostJson)
+        } else if text.starts_with("tree\n") || text.starts_with("tree\r\n") {
+            Some(Format::LightgbmText)
+        } else {
+            None
+        }
+    }
+}
+
+/// What a file that no importer reads looks like, for the error message.
+pub fn looks_like(bytes: &[u8]) -> &'static str {
+    let head = &bytes[..bytes.len().min(4096)];
+    let text = String::from_utf8_lossy(head);
+    let text = text.trim_start_matches('\u{feff}').trim_start();
+    if bytes.is_empty() {
+        "an empty file"
+    } else if Format::recognise(bytes) == Some(Format::XgboostJson) {
+        "an XGBoost JSON model"
+    } else if Format::recognise(bytes) == Some(Format::LightgbmText) {
+        "a LightGBM text model"
+    } else if head.starts_with(b"\0asm") {
+        "WebAssembly (pack it as a component, not as a model file)"
+    } else if text.starts_with("<?xml") || text.starts_with("<PMML") {
+        if text.contains("<PMML") { "PMML" } else { "XML, not a model format paddock imports" }
+    } else if text.starts_with('{') {
+        "JSON, but not an XGBoost model (no `learner` object)"
+    } else if head.contains(&0) {
+        if head.windows(8).any(|w| w == b"ai.onnx." || w == b"ir_versi") || head.starts_with(b"\x08") {
+            "ONNX (pack it with --manifest)"
+        } else {
+            "a binary file (XGBoost's UBJSON or a pickle? save the model as JSON: `save_model(\"m.json\")`)"
+        }
+    } else {
+        "text in no format paddock imports"
+    }
+}
+
+/// A model file, imported.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Imported {
+    /// The contract and the estimator's params: the artifact's params are
+    /// `paddock_guest::encode_params(&packaged)`.
+    pub packaged: Packaged<TreesParams>,
+    /// Where the params and each part of the contract came from.
+    pub origin: Origin,
+}
+
+/// Why a file could not be imported.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ImportError {
+    /// The file is not in the format asked for (or in none an importer reads).
+    #[error("{file}: not the {expected} asked for; it looks like {looks_like}")]
+    WrongFormat {
+        /// The file.
+        file: String,
+        /// The format expected.
+        expected: &'static str,
+        /// What the file looks like instead.
+        looks_like: &'static str,
+    },
+    /// The file is in the format but does not parse.
+    #[error("{file}: {place}: {problem}")]
+    Malformed {
+        /// The file.
+        file: String,
+        /// Where: a JSON path (`learner.gradient_booster.model.trees[3]`) or a line (`line 12`).
+        place: String,
+        /// What is wrong.
+        problem: String,
+    },
+    /// The file uses something the importer does not reproduce exactly.
+    #[error("{file}: {place}: {what} is not supported; {instead}")]
+    Unsupported {
+        /// The file.
+        file: String,
+        /// Where: `tree 3 node 7`, `objective`, `booster`…
+        place: String,
+        /// What it is.
+        what: String,
+        /// What to do instead.
+        instead: String,
+    },
+    /// The manifest of overrides is wrong.
+    #[error("manifest: {field}: {problem}")]
+    Manifest {
+        /// The field (`features.bmi.domain`, `version`…).
+        field: String,
+        /// What is wrong.
+        problem: String,
+    },
+}
+
+/// Makes errors that name the file.
+pub(crate) struct Blame<'a> {
+    file: &'a str,
+}
+
+impl Blame<'_> {
+    fn malformed(&self, place: &str, problem: impl Into<String>) -> ImportError {
+        ImportError::Malformed { file: self.file.to_owned(), place: place.to_owned(), problem: problem.into() }
+    }
+
+    fn unsupported(&self, place: &str, what: impl Into<String>, instead: &str) -> ImportError {
+        ImportError::Unsupported { file: self.file.to_owned(), place: place.to_owned(), what: what.into(), instead: instead.to_owned() }
+    }
+}
+
+/// Imports a model file.
+///
+/// `file` names the file in messages and in the [`Origin`]; `format` is
+/// the file's format (see [`Format::recognise`]); `manifest` overrides the
+/// name, version, and any feature's or output's name, domain, unit,
+/// required-ness or bounds.
+///
+/// # Errors
+/// [`ImportError::WrongFormat`] when the bytes are not that format,
+/// [`ImportError::Malformed`] naming the field or line that does not parse,
+/// [`ImportError::Unsupported`] naming the tree and node, or the field, the
+/// importer does not reproduce, [`ImportError::Manifest`] for overrides that
+/// name nothing in the file or do not fit it.
+pub fn import(bytes: &[u8], format: Format, file: &str, manifest: Option<&Manifest>) -> Result<Imported, ImportError> {
+    let mut imported = match format {
+        Format::XgboostJson => xgboost::import(bytes, file)?,
+        Format::LightgbmText => lightgbm::import(bytes, file)?,
+    };
+    let stem = std::path::Path::new(file).file_stem().and_then(|s| s.to_str()).unwrap_or("model");
+    manifest::apply(&mut imported, manifest, stem)?;
+    Ok(imported)
+}
+
+#[cfg(test)]
+mod tests;

@@ -1,0 +1,207 @@
+//! The manifest of overrides (TOML, optional): a model's name, version and
+//! description, and for any feature or output the file declares — keyed by
+//! its name in the file — a new name, domain, unit, required-ness, bounds
+//! or description.
+//!
+//! ```toml
+//! name = "charge-minutes"
+//! version = "2.1.0"
+//! about = "Minutes a session will last, from plug-in"
+//!
+//! [features.f0]                # the file's name for the feature
+//! name = "arrival_soc"
+//! domain = { real = { min = 0.0, max = 100.0 } }
+//! unit = "%"
+//! required = true
+//!
+//! [outputs.value]
+//! name = "minutes"
+//! unit = "min"
+//! min = 0.0
+//! ```
+
+use std::collections::BTreeMap;
+
+use paddock_guest::{Domain, DomainSpec};
+use serde::Deserialize;
+
+use crate::{ImportError, Imported};
+
+/// Overrides for an imported model's contract.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct Manifest {
+    /// The model's name (default: the file's name without its extension).
+    #[serde(default)]
+    pub name: Option<String>,
+    /// The model's version, semver (default `0.0.0`).
+    #[serde(default)]
+    pub version: Option<String>,
+    /// What the model estimates and for whom.
+    #[serde(default)]
+    pub about: Option<String>,
+    /// Overrides per feature, keyed by the feature's name in the file.
+    #[serde(default)]
+    pub features: BTreeMap<String, FeatureOverride>,
+    /// Overrides per output, keyed by the output's name as imported.
+    #[serde(default)]
+    pub outputs: BTreeMap<String, OutputOverride>,
+}
+
+/// What a manifest may change about a feature.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct FeatureOverride {
+    /// The name callers use.
+    #[serde(default)]
+    pub name: Option<String>,
+    /// The values it takes.
+    #[serde(default)]
+    pub domain: Option<DomainSpec>,
+    /// Unit of measure.
+    #[serde(default)]
+    pub unit: Option<String>,
+    /// Whether a row must carry it (absent optional features reach the
+    /// model as missing values).
+    #[serde(default)]
+    pub required: Option<bool>,
+    /// Description.
+    #[serde(default)]
+    pub about: Option<String>,
+}
+
+/// What a manifest may change about an output.
+#[derive(Clone, Debug, Default, PartialEq, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct OutputOverride {
+    /// The name callers see.
+    #[serde(default)]
+    pub name: Option<String>,
+    /// Unit of measure.
+    #[serde(default)]
+    pub unit: Option<String>,
+    /// Inclusive lower bound; a value below it is a fault.
+    #[serde(default)]
+    pub min: Option<f64>,
+    /// Inclusive upper bound; a value above it is a fault.
+    #[serde(default)]
+    pub max: Option<f64>,
+    /// Description.
+    #[serde(default)]
+    pub about: Option<String>,
+}
+
+impl Manifest {
+    /// Parses a manifest.
+    ///
+    /// # Errors
+    /// [`ImportError::Manifest`] with the TOML parser's message (line, column, field).
+    pub fn from_toml(text: &str) -> Result<Manifest, ImportError> {
+        toml::from_str(text).map_err(|e| ImportError::Manifest { field: "(file)".into(), problem: e.to_string() })
+    }
+}
+
+/// Applies the overrides and the defaults of name and version.
+pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: &str) -> Result<(), ImportError> {
+    let empty = Manifest::default();
+    let m = manifest.unwrap_or(&empty);
+    let contract = &mut imported.packaged.contract;
+    let origin = &mut imported.origin;
+    let from_manifest = "the manifest";
+    match &m.name {
+        Some(name) => {
+            contract.name = name.clone();
+            origin.note("name", from_manifest);
+        }
+        None => {
+            contract.name = stem.to_owned();
+            origin.note("name", "the file's name (set `name` in a manifest to change it)");
+        }
+    }
+    match &m.version {
+        Some(version) => {
+            contract.version = version.clone();
+            origin.note("version", from_manifest);
+        }
+        None => {
+            contract.version = "0.0.0".into();
+            origin.note("version", "not given: 0.0.0 (set `version` in a manifest)");
+        }
+    }
+    if let Some(about) = &m.about {
+        contract.about = about.clone();
+        origin.note("about", from_manifest);
+    }
+    let names: Vec<String> = contract.features.iter().map(|f| f.name.clone()).collect();
+    for (key, o) in &m.features {
+        let Some(f) = contract.features.iter_mut().find(|f| &f.name == key) else {
+            return Err(ImportError::Manifest {
+                field: format!("features.{key}"),
+                problem: format!("the file has no feature `{key}`; it has {}", names.join(", ")),
+            });
+        };
+        let part = format!("feature {key}");
+        let mut changed = Vec::new();
+        if let Some(domain) = &o.domain {
+            f.domain = Domain::from(domain);
+            changed.push("domain");
+        }
+        if let Some(unit) = &o.unit {
+            f.unit = Some(unit.clone());
+            changed.push("unit");
+        }
+        if let Some(required) = o.required {
+            f.required = required;
+            changed.push(if required { "required" } else { "optional" });
+        }
+        if let Some(about) = &o.about {
+            f.about = about.clone();
+            changed.push("about");
+        }
+        if let Some(name) = &o.name {
+            f.name = name.clone();
+            changed.push("name");
+        }
+        origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
+        if let Some(name) = &o.name
+            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part) {
+                s.part = format!("feature {name} (`{key}` in the file)");
+            }
+    }
+    // Name, version and description first, then features and outputs.
+    origin.contract.sort_by_key(|s| s.part.contains(' '));
+    let outputs: Vec<String> = contract.outputs.iter().map(|o| o.name.clone()).collect();
+    for (key, o) in &m.outputs {
+        let Some(out) = contract.outputs.iter_mut().find(|x| &x.name == key) else {
+            return Err(ImportError::Manifest {
+                field: format!("outputs.{key}"),
+                problem: format!("the model has no output `{key}`; it has {}", outputs.join(", ")),
+            });
+        };
+        let part = format!("output {key}");
+        let mut changed = Vec::new();
+        if let Some(unit) = &o.unit {
+            out.unit = Some(unit.clone());
+            changed.push("unit");
+        }
+        if o.min.is_some() || o.max.is_some() {
+            out.bounds.min = o.min.or(out.bounds.min);
+            out.bounds.max = o.max.or(out.bounds.max);
+            changed.push("bounds");
+        }
+        if let Some(about) = &o.about {
+            out.about = about.clone();
+            changed.push("about");
+        }
+        if let Some(name) = &o.name {
+            out.name = name.clone();
+            changed.push("name");
+        }
+        origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
+        if let Some(name) = &o.name
+            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part) {
+                s.part = format!("output {name} (`{key}` as imported)");
+            }
+    }
+    Ok(())
+}

@@ -1,0 +1,194 @@
+//! Fidelity of the importers against the toolkits themselves (outside
+//! references): XGBoost and LightGBM models trained on datasets shipped
+//! inside scikit-learn (diabetes, breast cancer, wine, iris; some cells
+//! made absent), saved by the toolkit (`save_model`), imported, packed with
+//! the generic trees guest and scored in the sandbox, must give the
+//! toolkit's own `Booster.predict` on every row, bit for bit.
+//!
+//! `tests/imports/export.py` trains the models and writes each file with a
+//! checks file of every row and the toolkit's prediction (through
+//! `handoff/`, the notebook helper); `cargo xtask test` runs it with the
+//! pinned XGBoost (3.2.x) and LightGBM (4.7.0). Each checks file records
+//! the versions, and each assertion message repeats them.
+
+use std::path::PathBuf;
+
+use paddock_guest::encode_params;
+use paddock_host::{Checks, Model, ModelOptions, Runtime};
+use paddock_import::{Format, ImportError, Manifest, import};
+use paddock_tests::{guest, load, root};
+
+/// Every model the export writes: a test fails if one is missing.
+const CASES: [&str; 21] = [
+    "xgb-diabetes-squarederror",
+    "xgb-diabetes-poisson",
+    "xgb-diabetes-gamma",
+    "xgb-diabetes-tweedie",
+    "xgb-diabetes-absoluteerror",
+    "xgb-cancer-logistic",
+    "xgb-cancer-reglogistic",
+    "xgb-cancer-logitraw",
+    "xgb-wine-softprob",
+    "xgb-iris-softmax",
+    "lgb-diabetes-regression",
+    "lgb-diabetes-poisson",
+    "lgb-diabetes-gamma",
+    "lgb-diabetes-tweedie",
+    "lgb-diabetes-forest",
+    "lgb-diabetes-missing-none",
+    "lgb-diabetes-zero-missing",
+    "lgb-cancer-binary",
+    "lgb-cancer-binary-sigmoid",
+    "lgb-wine-categorical",
+    "lgb-iris-one-vs-rest",
+];
+
+fn dir() -> PathBuf {
+    root().join("target/paddock/imports")
+}
+
+/// The model file and checks of one case.
+fn case(name: &str) -> (PathBuf, Vec<u8>, Checks) {
+    let model = ["json", "txt"].iter().map(|ext| dir().join(format!("{name}.{ext}"))).find(|p| p.exists()).unwrap_or_else(|| {
+        panic!(
+            "{name}: no model file in {}. Export the references first: `python3 tests/imports/export.py target/paddock/imports` \
+             (needs xgboost, lightgbm and ./handoff; `cargo xtask test` does it)",
+            dir().display()
+        )
+    });
+    let bytes = std::fs::read(&model).unwrap();
+    let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
+    (model, bytes, checks)
+}
+
+fn imported_model(runtime: &Runtime, path: &std::path::Path, bytes: &[u8]) -> Model {
+    let format = Format::recognise(bytes).unwrap_or_else(|| panic!("{}: format not recognised", path.display()));
+    let imported = import(bytes, format, &path.file_name().unwrap().to_string_lossy(), None).unwrap();
+    load(runtime, &guest("paddock-model-trees"), &encode_params(&imported.packaged), ModelOptions::default())
+}
+
+#[test]
+fn imported_models_give_the_toolkits_predictions_bit_for_bit() {
+    let runtime = Runtime::new().unwrap();
+    let mut summary = Vec::new();
+    for name in CASES {
+        let (path, bytes, checks) = case(name);
+        let model = imported_model(&runtime, &path, &bytes);
+        let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();
+        let got = model.score(&rows).unwrap_or_else(|e| panic!("{name}: {e}"));
+        let outputs: Vec<String> = model.contract().outputs.iter().map(|o| o.name.clone()).collect();
+        let mut compared = 0;
+        for (i, c) in checks.cases.iter().enumerate() {
+            for (k, output) in outputs.iter().enumerate() {
+                let want = c.expect[output];
+                let have = got.row(i)[k];
+                assert!(
+                    have.to_bits() == want.to_bits(),
+                    "{name} row {} {output}: paddock {have:e}, toolkit {want:e} ({})",
+                    i + 1,
+                    checks.source
+                );
+                compared += 1;
+            }
+        }
+        summary.push(format!("{name}: {compared} outputs over {} rows", checks.cases.len()));
+    }
+    eprintln!("bit for bit:\n  {}", summary.join("\n  "));
+}
+
+/// The checks the notebook helper writes pass when `paddock pack` (here its
+/// library calls) runs them, and the origin record says where the contract
+/// came from.
+#[test]
+fn handed_off_checks_pass_and_the_origin_is_recorded() {
+    let (path, bytes, checks) = case("lgb-wine-categorical");
+    let imported = import(&bytes, Format::LightgbmText, "lgb-wine-categorical.txt", None).unwrap();
+    let artifact = paddock_host::pack_imported(
+        &guest("paddock-model-trees"),
+        Some(&encode_params(&imported.packaged)),
+        Some(&checks),
+        Some(&imported.origin.to_map()),
+    )
+    .unwrap();
+    let artifact = paddock_host::Artifact::from_bytes(artifact, u64::MAX).unwrap();
+    let origin = paddock_import::Origin::from_map(artifact.origin().unwrap().unwrap()).unwrap();
+    assert_eq!(origin.format, "LightGBM text model", "{}", path.display());
+    assert!(origin.task.starts_with("multiclass: one probability per class"), "{}", origin.task);
+    let band = origin.contract.iter().find(|s| s.part == "feature alcohol_band").expect("the categorical feature");
+    assert!(band.from.contains("category code"), "{}", band.from);
+    assert_eq!(origin.contract.iter().find(|s| s.part == "name").unwrap().from, "the file's name (set `name` in a manifest to change it)");
+    let model = Model::load(&Runtime::new().unwrap(), artifact).unwrap();
+    let report = paddock_host::checking::run(&model, &checks).unwrap();
+    assert!(report.ok(), "{report:?}");
+    assert_eq!(report.cases, 178);
+}
+
+/// The manifest renames and narrows; overrides naming nothing are refused.
+#[test]
+fn the_manifest_overrides_the_file_and_says_so() {
+    let (_, bytes, _) = case("xgb-diabetes-squarederror");
+    let manifest = Manifest::from_toml(
+        r#"
+name = "progression"
+version = "1.2.0"
+[features.bmi]
+name = "body_mass_index"
+required = true
+[outputs.value]
+name = "progression"
+min = 0.0
+"#,
+    )
+    .unwrap();
+    let imported = import(&bytes, Format::XgboostJson, "m.json", Some(&manifest)).unwrap();
+    let c = &imported.packaged.contract;
+    assert_eq!((c.name.as_str(), c.version.as_str()), ("progression", "1.2.0"));
+    let bmi = c.features.iter().find(|f| f.name == "body_mass_index").unwrap();
+    assert!(bmi.required);
+    assert_eq!(c.outputs[0].name, "progression");
+    assert_eq!(c.outputs[0].bounds.min, Some(0.0));
+    let from = &imported.origin.contract.iter().find(|s| s.part.starts_with("feature body_mass_index")).unwrap().from;
+    assert!(from.contains("required, name from the manifest"), "{from}");
+    let wrong = Manifest::from_toml("[features.bmx]\nunit = \"kg\"\n").unwrap();
+    let err = import(&bytes, Format::XgboostJson, "m.json", Some(&wrong)).unwrap_err();
+    assert!(matches!(err, ImportError::Manifest { .. }), "{err}");
+    assert!(err.to_string().contains("features.bmx: the file has no feature `bmx`; it has age, sex, bmi"), "{err}");
+}
+
+/// The file's own (pre-order) id of a tree's node, from an error message
+/// `tree T node N`.
+fn tree_and_node(message: &str) -> (usize, usize) {
+    let at = message.find("tree ").expect("names a tree");
+    let mut words = message[at..].split([' ', ':']);
+    let t = words.nth(1).unwrap().parse().unwrap();
+    assert_eq!(words.next(), Some("node"), "{message}");
+    let n = words.next().unwrap().parse().unwrap();
+    (t, n)
+}
+
+/// XGBoost's categorical splits are refused, naming a tree and node that
+/// really is a categorical split in the file (XGBoost 3.2 with
+/// `enable_categorical`, written by the export).
+#[test]
+fn refusals_name_the_tree_and_node() {
+    let path = dir().join("refused-xgb-categorical.json");
+    let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+    let err = import(&bytes, Format::XgboostJson, "refused-xgb-categorical.json", None).unwrap_err();
+    assert!(matches!(err, ImportError::Unsupported { .. }), "{err}");
+    let message = err.to_string();
+    assert!(message.starts_with("refused-xgb-categorical.json: tree "), "{message}");
+    assert!(message.contains("a categorical split is not supported; encode the categories"), "{message}");
+    let (t, n) = tree_and_node(&message);
+    let doc: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
+    assert_eq!(doc["learner"]["gradient_booster"]["model"]["trees"][t]["split_type"][n], 1, "{message}");
+
+    let bytes = std::fs::read(dir().join("refused-lgb-linear.txt")).unwrap();
+    let err = import(&bytes, Format::LightgbmText, "refused-lgb-linear.txt", None).unwrap_err();
+    let message = err.to_string();
+    assert!(message.starts_with("refused-lgb-linear.txt: tree 0 (line "), "{message}");
+    assert!(message.ends_with("a linear tree (linear_tree) is not supported; train with linear_tree=false"), "{message}");
+
+    // A file in the other format names the format it looks like.
+    let err = import(&bytes, Format::XgboostJson, "refused-lgb-linear.txt", None).unwrap_err();
+    assert_eq!(err.to_string(), "refused-lgb-linear.txt: not the XGBoost JSON model asked for; it looks like a LightGBM text model");
+}

@@ -1,0 +1,98 @@
+#!/usr/bin/env python3
+"""Trains XGBoost and LightGBM models on datasets shipped inside
+scikit-learn and hands each off with paddock_handoff (the model file its
+toolkit saves, and every row with the toolkit's own predictions as a
+checks file), for the importers' fidelity tests (`tests/imports.rs`).
+
+    python3 tests/imports/export.py OUT_DIR
+
+Datasets (scikit-learn's `sklearn.datasets`): diabetes (Efron et al.,
+Annals of Statistics 2004; 442 rows, regression), breast cancer (Wisconsin
+diagnostic, 569 rows, binary), wine (178 rows, 3 classes), iris (Fisher
+1936, 150 rows, 3 classes). Missing values are injected into some columns
+(a fixed 10 % of their cells) where the toolkit handles them.
+"""
+import os
+import sys
+
+import lightgbm
+import numpy
+import xgboost
+from sklearn.datasets import load_breast_cancer, load_diabetes, load_iris, load_wine
+
+from paddock_handoff import hand_off
+
+OUT = sys.argv[1]
+os.makedirs(OUT, exist_ok=True)
+rng = numpy.random.default_rng(7)
+
+
+def data(loader, holes=()):
+    d = loader()
+    x = numpy.array(d.data, dtype=numpy.float64)
+    for col in holes:
+        x[rng.random(len(x)) < 0.1, col] = numpy.nan
+    names = [n.replace(" ", "_").replace("(", "").replace(")", "") for n in d.feature_names]
+    return x, d.target, names
+
+
+def xgb(name, model, x, y, names):
+    model.fit(x, y)
+    model.get_booster().feature_names = names
+    hand_off(model, x, os.path.join(OUT, name))
+
+
+def lgb(name, model, x, y, names, **fit):
+    model.fit(x, y, feature_name=names, **fit)
+    hand_off(model, x, os.path.join(OUT, name))
+
+
+XGB = dict(n_estimators=60, max_depth=4, learning_rate=0.2, random_state=0, n_jobs=1)
+LGB = dict(n_estimators=60, num_leaves=15, min_child_samples=5, learning_rate=0.1, random_state=0, n_jobs=1, verbose=-1)
+
+x, y, names = data(load_diabetes, holes=(2, 5))
+for objective in ["reg:squarederror", "count:poisson", "reg:gamma", "reg:tweedie", "reg:absoluteerror"]:
+    xgb("xgb-diabetes-" + objective.split(":")[1], xgboost.XGBRegressor(objective=objective, **XGB), x, y, names)
+for objective in ["regression", "poisson", "gamma", "tweedie"]:
+    lgb("lgb-diabetes-" + objective, lightgbm.LGBMRegressor(objective=objective, **LGB), x, y, names)
+lgb("lgb-diabetes-forest", lightgbm.LGBMRegressor(boosting_type="rf", bagging_fraction=0.7, bagging_freq=1, **LGB), x, y, names)
+# Missing type None: trained without missing values, scored with them.
+x_full, _, _ = data(load_diabetes)
+model = lightgbm.LGBMRegressor(use_missing=False, **LGB).fit(x_full, y, feature_name=names)
+hand_off(model, x, os.path.join(OUT, "lgb-diabetes-missing-none"))
+# Missing type Zero: zeros (and NaN) count as missing.
+x_zero = x.copy()
+x_zero[rng.random(len(x)) < 0.15, 3] = 0.0
+lgb("lgb-diabetes-zero-missing", lightgbm.LGBMRegressor(zero_as_missing=True, **LGB), x_zero, y, names)
+
+x, y, names = data(load_breast_cancer, holes=(0, 7, 20))
+xgb("xgb-cancer-logistic", xgboost.XGBClassifier(**XGB), x, y, names)
+xgb("xgb-cancer-reglogistic", xgboost.XGBRegressor(objective="reg:logistic", **XGB), x, y, names)
+xgb("xgb-cancer-logitraw", xgboost.XGBRegressor(objective="binary:logitraw", **XGB), x, y, names)
+lgb("lgb-cancer-binary", lightgbm.LGBMClassifier(**LGB), x, y, names)
+lgb("lgb-cancer-binary-sigmoid", lightgbm.LGBMClassifier(sigmoid=0.7, **LGB), x, y, names)
+
+x, y, names = data(load_wine, holes=(1, 9))
+xgb("xgb-wine-softprob", xgboost.XGBClassifier(**XGB), x, y, names)
+# A categorical feature: the alcohol content in 9 bins, codes 0–8, some absent.
+codes = numpy.floor((x[:, 0] - 11.0) * 2.4).clip(0, 8)
+codes[rng.random(len(x)) < 0.1] = numpy.nan
+xc = numpy.column_stack([x, codes])
+lgb("lgb-wine-categorical", lightgbm.LGBMClassifier(min_data_per_group=5, cat_smooth=1.0, **LGB), xc, y, names + ["alcohol_band"],
+    categorical_feature=[len(names)])
+
+x, y, names = data(load_iris, holes=(2,))
+xgb("xgb-iris-softmax", xgboost.XGBClassifier(objective="multi:softmax", **XGB), x, y, names)
+lgb("lgb-iris-one-vs-rest", lightgbm.LGBMClassifier(objective="multiclassova", **LGB), x, y, names)
+print(f"exported to {OUT}: XGBoost {xgboost.__version__}, LightGBM {lightgbm.__version__}, numpy {numpy.__version__}")
+
+# Files the importers must refuse, naming the place.
+x, y, names = data(load_wine)
+codes = numpy.floor((x[:, 0] - 11.0) * 2.4).clip(0, 8)
+dm = xgboost.DMatrix(numpy.column_stack([codes, x[:, 1:]]), label=y, enable_categorical=True,
+                     feature_types=["c"] + ["q"] * (x.shape[1] - 1))
+booster = xgboost.train({"objective": "multi:softprob", "num_class": 3, "max_depth": 3, "max_cat_to_onehot": 1, "nthread": 1}, dm, 5)
+booster.save_model(os.path.join(OUT, "refused-xgb-categorical.json"))
+x, y, names = data(load_diabetes)
+model = lightgbm.LGBMRegressor(linear_tree=True, **LGB).fit(x, y, feature_name=names)
+model.booster_.save_model(os.path.join(OUT, "refused-lgb-linear.txt"))
