@@ -10,21 +10,17 @@ against the Rust guest of the same model. The section sits between the
 markers below and replaces the previous one.
 """
 import os
-import subprocess
 import sys
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_table import ROOT, cpu  # noqa: E402
+from bench_table import bench_table, cpu, write_section  # noqa: E402
 
 START = "<!-- guests-bench -->"
 END = "<!-- /guests-bench -->"
 
 
 def main():
-    subprocess.run(["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", "guests"], cwd=ROOT, check=True,
-                   stdout=subprocess.DEVNULL)
-    with open(os.path.join(ROOT, "target/paddock/bench-guests.md")) as f:
-        table = f.read().strip()
+    table = bench_table("guests")
     section = [
         START,
         "## Guest kinds: Rust, Python, JavaScript, ONNX",
@@ -45,20 +41,7 @@ def main():
         "The ONNX evaluator carries tract (every operator it implements) whatever the graph's size.",
         END,
     ]
-    path = os.path.join(ROOT, "BENCHMARKS.md")
-    with open(path) as f:
-        text = f.read()
-    block = "\n".join(section)
-    if START in text:
-        before, rest = text.split(START, 1)
-        after = rest.split(END, 1)[1]
-        text = before + block + after
-    else:
-        text = text.rstrip("\n") + "\n\n" + block + "\n"
-    with open(path, "w") as f:
-        f.write(text)
-    print(block)
-
+    write_section(START, END, section)
 
 if __name__ == "__main__":
     main()

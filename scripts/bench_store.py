@@ -12,7 +12,7 @@ import os
 import sys
 
 sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
-from bench_table import ROOT, cpu, med, median_ns, run_bench  # noqa: E402
+from bench_table import ROOT, cpu, med, median_ns, run_bench, write_section  # noqa: E402
 
 START = "<!-- store-bench -->"
 END = "<!-- /store-bench -->"
@@ -57,18 +57,7 @@ def main():
         "carried checks (40 rows each); only compilation is skipped.",
         END,
     ]
-    path = os.path.join(ROOT, "BENCHMARKS.md")
-    text = open(path).read() if os.path.exists(path) else "# Benchmarks\n"
-    if START in text:
-        before, rest = text.split(START, 1)
-        after = rest.split(END, 1)[1] if END in rest else ""
-        text = before + "\n".join(section) + after
-    else:
-        text = text.rstrip() + "\n\n" + "\n".join(section) + "\n"
-    with open(path, "w") as f:
-        f.write(text)
-    print("\n".join(section))
-
+    write_section(START, END, section)
 
 if __name__ == "__main__":
     sys.exit(main())

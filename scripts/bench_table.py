@@ -21,6 +21,33 @@ CRIT = os.path.join(ROOT, "target", "criterion")
 BATCH = 1024
 
 
+def bench_table(bench):
+    """Runs `cargo bench -p paddock-tests --bench BENCH` once and returns the
+    table it writes to target/paddock/bench-BENCH.md."""
+    subprocess.run(["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", bench], cwd=ROOT, check=True,
+                   stdout=subprocess.DEVNULL)
+    with open(os.path.join(ROOT, f"target/paddock/bench-{bench}.md")) as f:
+        return f.read().strip()
+
+
+def write_section(start, end, section):
+    """Puts `section` (lines, starting with `start` and ending with `end`) in
+    BENCHMARKS.md in place of the previous one, or at the end; prints it."""
+    path = os.path.join(ROOT, "BENCHMARKS.md")
+    with open(path) as f:
+        text = f.read()
+    block = "\n".join(section)
+    if start in text:
+        before, rest = text.split(start, 1)
+        after = rest.split(end, 1)[1]
+        text = before + block + after
+    else:
+        text = text.rstrip("\n") + "\n\n" + block + "\n"
+    with open(path, "w") as f:
+        f.write(text)
+    print(block)
+
+
 def median_ns(group, bench):
     path = os.path.join(CRIT, group, bench, "new", "estimates.json")
     with open(path) as f:

@@ -181,17 +181,29 @@ impl TreesParams {
 }
 
 /// Node kinds in the flattened form.
+/// Ordered so one comparison picks the common path: kinds below
+/// `ZERO_ABSENT` step by a plain comparison (a leaf's children are itself).
 const NUMERIC: u8 = 0;
-const ZERO_ABSENT: u8 = 1;
-const MEMBER: u8 = 2;
-const LEAF: u8 = 3;
-const LEAVES: u8 = 4;
+const LEAF: u8 = 1;
+const LEAVES: u8 = 2;
+const ZERO_ABSENT: u8 = 3;
+const MEMBER: u8 = 4;
+
+/// Whether a flattened node is a leaf of either kind.
+#[inline(always)]
+fn is_leaf(kind: u8) -> bool {
+    kind.wrapping_sub(LEAF) < 2
+}
+
+/// Rows that walk a tree together.
+const LANES: usize = 4;
 
 /// LightGBM's `kZeroThreshold`, a `float` literal.
 const ZERO: f64 = 1e-35f32 as f64;
 
-/// A flattened node. A leaf's value is kept in `threshold`; [`Node::Leaves`]
-/// keeps its first index in `left`; a [`Node::Member`] keeps its set as
+/// A flattened node. A leaf's value is kept in `threshold`, and both its
+/// children are itself, so stepping from a leaf stays there; [`Node::Leaves`]
+/// keeps its first index in `start`; a [`Node::Member`] keeps its set as
 /// (`start`, `words`) in the flattened words.
 #[derive(Clone, Copy, Debug)]
 struct Flat {
@@ -304,7 +316,8 @@ impl Trees {
                             return Err(format!("tree {t} node {i}: non-finite leaf {value}"));
                         }
                         scalar = true;
-                        Flat { threshold: value, ..blank }
+                        let me = nodes.len() as u32;
+                        Flat { threshold: value, left: me, right: me, ..blank }
                     }
                     Node::Leaves { first } => {
                         if first as usize + outputs > params.vectors.len() {
@@ -315,7 +328,8 @@ impl Trees {
                             ));
                         }
                         vector = true;
-                        Flat { left: first, kind: LEAVES, ..blank }
+                        let me = nodes.len() as u32;
+                        Flat { left: me, right: me, start: first, kind: LEAVES, ..blank }
                     }
                     Node::Split { feature, threshold, left, right, missing }
                     | Node::SplitZeroAbsent { feature, threshold, left, right, missing } => {
@@ -377,32 +391,36 @@ impl Trees {
 
     /// The leaf one tree sends a row to.
     #[inline]
-    fn leaf(&self, root: usize, x: &[f64]) -> &Flat {
+    fn leaf<const LE: bool>(&self, root: usize, x: &[f64]) -> &Flat {
         let mut n = &self.nodes[root];
         // Four steps per loop turn: in the sandbox every loop back-edge
         // carries an interruption check, and a tree walk is little else.
         loop {
             for _ in 0..4 {
-                if n.kind >= LEAF {
+                if is_leaf(n.kind) {
                     return n;
                 }
-                n = &self.nodes[self.child(n, x) as usize];
+                n = &self.nodes[self.child::<LE>(n, x) as usize];
             }
         }
     }
 
-    /// Which child of a split node a row goes to.
+    /// Which child of a node a row goes to (a leaf's are itself). `LE`:
+    /// left when `value <= threshold`, else when `value < threshold`.
     #[inline(always)]
-    fn child(&self, n: &Flat, x: &[f64]) -> u32 {
+    fn child<const LE: bool>(&self, n: &Flat, x: &[f64]) -> u32 {
         let v = x[n.feature as usize];
-        let left = if v.is_nan() || (n.kind == ZERO_ABSENT && (-ZERO..=ZERO).contains(&v)) {
-            n.goes_left & 1 != 0
+        let missing_left = n.goes_left & 1 != 0;
+        let below = |v: f64| if LE { v <= n.threshold } else { v < n.threshold };
+        let left = if n.kind < ZERO_ABSENT {
+            // Branch-free: NaN compares false, then takes its own way.
+            below(v) | (v.is_nan() & missing_left)
+        } else if v.is_nan() || (n.kind == ZERO_ABSENT && (-ZERO..=ZERO).contains(&v)) {
+            missing_left
         } else if n.kind == MEMBER {
             self.is_member(n, v) == (n.goes_left & 2 != 0)
-        } else if self.less_or_equal {
-            v <= n.threshold
         } else {
-            v < n.threshold
+            below(v)
         };
         if left { n.left } else { n.right }
     }
@@ -419,21 +437,51 @@ impl Trees {
 
     /// Sums every tree's leaves into `out` (which holds the starting
     /// values), `SINGLE` rounding each sum to `f32`.
-    fn accumulate<const SINGLE: bool>(&self, cells: &[f64], rows: usize, out: &mut ArrayViewMut2<'_, f64>) {
-        let add = |a: f64, b: f64| if SINGLE { f64::from(a as f32 + b as f32) } else { a + b };
-        let outputs = self.base.len();
+    fn accumulate<const SINGLE: bool, const LE: bool>(&self, cells: &[f64], rows: usize, out: &mut ArrayViewMut2<'_, f64>) {
+        let f = self.features;
         // Tree by tree over all rows: each tree stays in cache while it runs.
+        // Four rows walk a tree together: their steps do not depend on each
+        // other, so the processor overlaps them, and in the sandbox one
+        // loop turn (one interruption check) moves four walks. Leaves step
+        // to themselves, so a walk that has ended waits for the others.
         for &(root, k) in &self.roots {
-            for r in 0..rows {
-                let leaf = self.leaf(root, &cells[r * self.features..(r + 1) * self.features]);
-                if leaf.kind == LEAF {
-                    out[[r, k]] = add(out[[r, k]], leaf.threshold);
-                } else {
-                    let first = leaf.left as usize;
-                    for (j, v) in self.vectors[first..first + outputs].iter().enumerate() {
-                        out[[r, j]] = add(out[[r, j]], *v);
+            let mut r = 0;
+            while r + LANES <= rows {
+                let x: [&[f64]; LANES] = std::array::from_fn(|j| &cells[(r + j) * f..(r + j + 1) * f]);
+                let mut at = [root; LANES];
+                loop {
+                    let mut ended = true;
+                    for j in 0..LANES {
+                        let n = &self.nodes[at[j]];
+                        ended &= is_leaf(n.kind);
+                        at[j] = self.child::<LE>(n, x[j]) as usize;
+                    }
+                    if ended {
+                        break;
                     }
                 }
+                for (j, &leaf) in at.iter().enumerate() {
+                    self.add_leaf::<SINGLE>(&self.nodes[leaf], r + j, k, out);
+                }
+                r += LANES;
+            }
+            for r in r..rows {
+                let leaf = self.leaf::<LE>(root, &cells[r * f..(r + 1) * f]);
+                self.add_leaf::<SINGLE>(leaf, r, k, out);
+            }
+        }
+    }
+
+    /// Adds what a leaf holds to row `r` of `out`.
+    #[inline(always)]
+    fn add_leaf<const SINGLE: bool>(&self, leaf: &Flat, r: usize, k: usize, out: &mut ArrayViewMut2<'_, f64>) {
+        let add = |a: f64, b: f64| if SINGLE { f64::from(a as f32 + b as f32) } else { a + b };
+        if leaf.kind == LEAF {
+            out[[r, k]] = add(out[[r, k]], leaf.threshold);
+        } else {
+            let first = leaf.start as usize;
+            for (j, v) in self.vectors[first..first + self.base.len()].iter().enumerate() {
+                out[[r, j]] = add(out[[r, j]], *v);
             }
         }
     }
@@ -512,10 +560,11 @@ impl Evaluate for Trees {
                 };
             }
         }
-        if single {
-            self.accumulate::<true>(cells, n, &mut out);
-        } else {
-            self.accumulate::<false>(cells, n, &mut out);
+        match (single, self.less_or_equal) {
+            (true, true) => self.accumulate::<true, true>(cells, n, &mut out),
+            (true, false) => self.accumulate::<true, false>(cells, n, &mut out),
+            (false, true) => self.accumulate::<false, true>(cells, n, &mut out),
+            (false, false) => self.accumulate::<false, false>(cells, n, &mut out),
         }
         for mut o in out.outer_iter_mut() {
             if self.combine == Combine::Mean {

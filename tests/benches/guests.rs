@@ -12,12 +12,11 @@
 //! Needs `cargo xtask guests` (the artifacts) and the scikit-learn exports
 //! (`cargo xtask test` writes both).
 
-use std::hint::black_box;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use paddock_guest::{LinearParams, Link, Packaged, encode_params};
 use paddock_host::{Artifact, CodeCache, Isolation, Model, ModelOptions, Row, Runtime, WasiPolicy};
-use paddock_tests::{foreign_artifact, guest, load_foreign, open_contract, packed, root};
+use paddock_tests::{time, foreign_artifact, guest, load_foreign, open_contract, packed, root};
 use serde_json::Value;
 
 /// One kind of guest, ready to load.
@@ -84,23 +83,6 @@ fn row(model: &Model) -> Row {
         row = row.with(&f.name, v);
     }
     row
-}
-
-fn median(mut v: Vec<Duration>) -> Duration {
-    v.sort();
-    v[v.len() / 2]
-}
-
-fn time<T>(n: usize, mut f: impl FnMut() -> T) -> Duration {
-    median(
-        (0..n)
-            .map(|_| {
-                let t = Instant::now();
-                black_box(f());
-                t.elapsed()
-            })
-            .collect(),
-    )
 }
 
 struct Measured {

@@ -1,7 +1,9 @@
 //! Helpers shared by the cross-crate tests and benchmarks: where the built
 //! guests are, how to pack them with params, and random ensembles.
 
+use std::hint::black_box;
 use std::path::PathBuf;
+use std::time::{Duration, Instant};
 
 use paddock_guest::{Branch, Node, SplitRule, Tree, TreesParams};
 use paddock_host::{Artifact, Checks, Model, ModelOptions, Runtime};
@@ -180,4 +182,17 @@ pub fn load_foreign(
 ) -> Result<Model, paddock_host::LoadError> {
     let cache = paddock_host::CodeCache::open(&root().join("target/paddock/test-code-cache")).expect("code cache opens");
     Model::load_cached(runtime, foreign_artifact(name), options, &cache)
+}
+
+/// The median time of `n` calls of `f` (the benches' hand-timed figures).
+pub fn time<T>(n: usize, mut f: impl FnMut() -> T) -> Duration {
+    let mut times: Vec<Duration> = (0..n)
+        .map(|_| {
+            let t = Instant::now();
+            black_box(f());
+            t.elapsed()
+        })
+        .collect();
+    times.sort();
+    times[times.len() / 2]
 }

@@ -1,0 +1,138 @@
+//! What imported models cost: a 500-tree LightGBM model and a 300-tree
+//! XGBoost model scoring a batch of 1 024 rows in the sandbox, against the
+//! same params evaluated natively and against the toolkit's own
+//! single-threaded predict (timed by `scripts/bench_imports.py` in the
+//! same run), and the time to import and pack a 1 000-tree model.
+//!
+//! `python3 scripts/bench_imports.py` trains the models (scikit-learn's
+//! Friedman #1 generator, 20 000 rows), times the toolkits, runs
+//! `cargo bench -p paddock-tests --bench imported` and writes its table
+//! into BENCHMARKS.md. Under `cargo test` the bench runs once on the
+//! fidelity exports (`target/paddock/imports`) to show it still works.
+
+use std::hint::black_box;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use paddock_guest::ndarray::{Array2, ArrayView2};
+use paddock_guest::{Evaluate, Trees, encode_params};
+use paddock_host::{Artifact, Model, ModelOptions, Runtime};
+use paddock_import::{Format, import};
+use paddock_tests::{time, guest, root};
+use serde_json::Value;
+
+fn read(path: &Path) -> Vec<u8> {
+    std::fs::read(path).unwrap_or_else(|e| panic!("{}: {e}; run `python3 scripts/bench_imports.py`", path.display()))
+}
+
+/// Imports a model file and packs it with the trees guest.
+fn packed(path: &Path) -> (Vec<u8>, Trees, usize) {
+    let bytes = read(path);
+    let format = Format::recognise(&bytes).expect("a model file");
+    let imported = import(&bytes, format, &path.display().to_string(), None).unwrap();
+    let trees = imported.packaged.params.trees.len();
+    let params = encode_params(&imported.packaged);
+    let native = Trees::new(imported.packaged.params).unwrap();
+    (paddock_host::pack(&guest("paddock-model-trees"), Some(&params), None).unwrap(), native, trees)
+}
+
+struct Measured {
+    name: String,
+    trees: usize,
+    sandbox: Duration,
+    native: Duration,
+}
+
+fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usize, reps: usize) -> Measured {
+    let (artifact, native, trees) = packed(path);
+    let model = Model::load_with(runtime, Artifact::from_bytes(artifact, u64::MAX).unwrap(), ModelOptions::default()).unwrap();
+    let features = model.contract().features.len();
+    let outputs = model.contract().outputs.len();
+    assert_eq!(cells.len(), rows * features, "{name}: rows do not fit the model");
+    // Same bits both ways, or the comparison means nothing.
+    let in_sandbox = model.score_cells(rows, cells).unwrap();
+    let mut out = Array2::zeros((rows, outputs));
+    native.evaluate(ArrayView2::from_shape((rows, features), cells).unwrap(), out.view_mut());
+    assert!(in_sandbox.values().iter().zip(out.iter()).all(|(a, b)| a.to_bits() == b.to_bits()), "{name}: sandbox and native differ");
+    // Alternating, so drift on a shared machine hits both alike.
+    let (mut sandbox, mut native_times) = (Vec::with_capacity(reps), Vec::with_capacity(reps));
+    for _ in 0..reps {
+        sandbox.push(time(1, || model.score_cells(rows, black_box(cells)).unwrap()));
+        native_times.push(time(1, || {
+            native.evaluate(ArrayView2::from_shape((rows, features), black_box(cells)).unwrap(), out.view_mut());
+            out[[0, 0]]
+        }));
+    }
+    let median = |mut v: Vec<Duration>| {
+        v.sort();
+        v[v.len() / 2]
+    };
+    let (sandbox, native) = (median(sandbox), median(native_times));
+    Measured { name: name.to_owned(), trees, sandbox, native }
+}
+
+fn cells_of(value: &Value) -> (Vec<f64>, usize) {
+    let rows = value.as_array().unwrap();
+    let cells = rows.iter().flat_map(|r| r.as_array().unwrap().iter().map(|v| v.as_f64().unwrap_or(f64::NAN))).collect();
+    (cells, rows.len())
+}
+
+fn main() {
+    let full = std::env::args().any(|a| a == "--bench");
+    let runtime = Runtime::new().unwrap();
+    if !full {
+        // Under `cargo test`: once, on a fidelity export's rows.
+        let dir = root().join("target/paddock/imports");
+        let checks: Value = serde_json::from_slice(&read(&dir.join("lgb-diabetes-regression.checks.json"))).unwrap();
+        let bytes = read(&dir.join("lgb-diabetes-regression.txt"));
+        let imported = import(&bytes, Format::LightgbmText, "lgb-diabetes-regression.txt", None).unwrap();
+        let order: Vec<String> = imported.packaged.contract.features.iter().map(|f| f.name.clone()).collect();
+        let cases = checks["cases"].as_array().unwrap();
+        let cells: Vec<f64> =
+            cases.iter().flat_map(|c| order.iter().map(move |f| c["row"].get(f).and_then(Value::as_f64).unwrap_or(f64::NAN))).collect();
+        let m = measure(&runtime, "lgb", &dir.join("lgb-diabetes-regression.txt"), &cells, cases.len(), 1);
+        eprintln!("imports bench runs: {} trees, sandbox {:?}, native {:?}", m.trees, m.sandbox, m.native);
+        return;
+    }
+    let dir: PathBuf = root().join("target/paddock/bench-imports");
+    let rows: Value = serde_json::from_slice(&read(&dir.join("rows.json"))).unwrap();
+    let (cells, n) = cells_of(&rows);
+    let toolkit: Value = serde_json::from_slice(&read(&dir.join("toolkit.json"))).unwrap();
+    let reps = 101;
+    let results = [
+        measure(&runtime, "LightGBM", &dir.join("lgb-500.txt"), &cells, n, reps),
+        measure(&runtime, "XGBoost", &dir.join("xgb-300.json"), &cells, n, reps),
+    ];
+    let pack_path = dir.join("lgb-1000.txt");
+    let pack = time(5, || packed(&pack_path));
+    let (artifact, _, pack_trees) = packed(&pack_path);
+    let load = time(3, || Model::load_with(&runtime, Artifact::from_bytes(artifact.clone(), u64::MAX).unwrap(), ModelOptions::default()).unwrap());
+    let us = |d: Duration| format!("{:.0}", d.as_secs_f64() * 1e6);
+    let mut table = vec![
+        format!("| model | trees | sandbox, {n} rows | native, same params | sandbox / native | toolkit's own predict, 1 thread | paddock's speed vs the toolkit's |"),
+        "|---|---|---|---|---|---|---|".to_owned(),
+    ];
+    for m in &results {
+        let theirs = toolkit[m.name.as_str()]["batch_ns"].as_f64().unwrap() / 1e3;
+        table.push(format!(
+            "| {} {} | {} | {} µs | {} µs | {:.2}× native speed | {:.0} µs | {:.2}× |",
+            m.name,
+            toolkit[m.name.as_str()]["version"].as_str().unwrap_or("?"),
+            m.trees,
+            us(m.sandbox),
+            us(m.native),
+            m.native.as_secs_f64() / m.sandbox.as_secs_f64(),
+            theirs,
+            theirs / (m.sandbox.as_secs_f64() * 1e6),
+        ));
+    }
+    table.push(String::new());
+    table.push(format!(
+        "Import and pack a {pack_trees}-tree LightGBM model ({} KiB text): {:.0} ms (median of 5); loading the artifact (compile, instance, `init`): {:.0} ms (median of 3).",
+        read(&pack_path).len() / 1024,
+        pack.as_secs_f64() * 1e3,
+        load.as_secs_f64() * 1e3
+    ));
+    std::fs::write(root().join("target/paddock/bench-imported.md"), table.join("\n") + "\n").unwrap();
+    println!("{}", table.join("\n"));
+}
