@@ -13,7 +13,7 @@
 
 use std::path::PathBuf;
 
-use paddock_guest::encode_params;
+use paddock_guest::{Combine, Node, encode_params};
 use paddock_host::{Checks, Model, ModelOptions, Runtime};
 use paddock_import::{Format, ImportError, Manifest, import};
 use paddock_tests::{guest, load, root};
@@ -188,7 +188,56 @@ fn refusals_name_the_tree_and_node() {
     assert!(message.starts_with("refused-lgb-linear.txt: tree 0 (line "), "{message}");
     assert!(message.ends_with("a linear tree (linear_tree) is not supported; train with linear_tree=false"), "{message}");
 
+    // A scikit-learn classifier is refused naming the node; a graph with no
+    // tree ensemble is sent to the ONNX evaluator.
+    let classifier = std::fs::read(dir().join("refused-skl-classifier.onnx")).unwrap();
+    let err = import(&classifier, Format::SklearnOnnx, "refused-skl-classifier.onnx", None).unwrap_err().to_string();
+    assert!(err.starts_with("refused-skl-classifier.onnx: node `TreeEnsembleClassifier`: operator TreeEnsembleClassifier is not supported; only scikit-learn's tree regressors"), "{err}");
+    let linear = root().join("target/paddock/sklearn/onnx-linear.onnx");
+    let graph = std::fs::read(&linear).unwrap_or_else(|e| panic!("{}: {e} (run tests/sklearn/export.py)", linear.display()));
+    assert_eq!(Format::recognise(&graph), None, "a graph without a tree ensemble goes to the ONNX evaluator");
+    let err = import(&graph, Format::SklearnOnnx, "onnx-linear.onnx", None).unwrap_err().to_string();
+    assert!(err.contains("a graph of LinearRegressor (no tree ensemble) is not supported; pack it as an ONNX model with --manifest"), "{err}");
+
     // A file in the other format names the format it looks like.
     let err = import(&bytes, Format::XgboostJson, "refused-lgb-linear.txt", None).unwrap_err();
     assert_eq!(err.to_string(), "refused-lgb-linear.txt: not the XGBoost JSON model asked for; it looks like a LightGBM text model");
+}
+
+/// scikit-learn tree ensembles exported by skl2onnx (FloatTensorType),
+/// imported instead of run by an ONNX runtime, against scikit-learn's own
+/// `predict` on every row of the diabetes data. Decisions are exact
+/// (skl2onnx rounds thresholds down to float32, and scikit-learn compares
+/// float32 inputs); leaf values are float32 in the file, so each row may
+/// differ by the rounding of its terms: at most (|base| + Σ max|leaf|) ×
+/// 2⁻²⁴, divided by the tree count for averages. A wrong decision moves a
+/// prediction by a whole leaf difference, far beyond that.
+#[test]
+fn scikit_learn_trees_from_skl2onnx_give_its_predictions_within_float32_leaf_rounding() {
+    let runtime = Runtime::new().unwrap();
+    for name in ["skl-diabetes-tree", "skl-diabetes-forest", "skl-diabetes-extra", "skl-diabetes-boosted"] {
+        let path = dir().join(format!("{name}.onnx"));
+        let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+        assert_eq!(Format::recognise(&bytes), Some(Format::SklearnOnnx), "{name}");
+        let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), None).unwrap();
+        let p = &imported.packaged.params;
+        let leaves: f64 = p
+            .trees
+            .iter()
+            .map(|t| t.nodes.iter().map(|n| if let Node::Leaf { value } = n { value.abs() } else { 0.0 }).fold(0.0, f64::max))
+            .sum();
+        let spread = if p.combine == Combine::Mean { leaves / p.trees.len() as f64 } else { leaves };
+        let bound = (p.base[0].abs() + spread) * 2f64.powi(-24);
+        let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
+        let model = load(&runtime, &guest("paddock-model-trees"), &encode_params(&imported.packaged), ModelOptions::default());
+        let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();
+        let got = model.score(&rows).unwrap();
+        let mut worst = 0.0f64;
+        for (i, c) in checks.cases.iter().enumerate() {
+            let (have, want) = (got.row(i)[0], c.expect["value"]);
+            assert!((have - want).abs() <= bound, "{name} row {}: paddock {have}, scikit-learn {want}, bound {bound:e} ({})", i + 1, checks.source);
+            worst = worst.max((have - want).abs() / want.abs());
+        }
+        eprintln!("{name}: largest relative difference {worst:e} over {} rows, bound {bound:e} absolute ({})", rows.len(), checks.source);
+    }
 }

@@ -4,8 +4,12 @@
 format and writes ``rows`` with the toolkit's own predictions as a paddock
 checks file, which ``paddock pack MODEL --checks CHECKS`` carries and runs.
 
-Toolkits: XGBoost (``XGBModel`` or ``Booster``; saved as ``STEM.json``) and
-LightGBM (``LGBMModel`` or ``Booster``; saved as ``STEM.txt``).
+Toolkits: XGBoost (``XGBModel`` or ``Booster``; saved as ``STEM.json``),
+LightGBM (``LGBMModel`` or ``Booster``; saved as ``STEM.txt``) and
+scikit-learn tree-ensemble regressors (DecisionTree, RandomForest,
+ExtraTrees, GradientBoosting; saved by skl2onnx as ``STEM.onnx``, whose
+float32 leaves hold predictions to about 1e-7 relative: the checks allow
+1e-6).
 
 The output names match what paddock's importers call them: ``value`` for a
 regression, ``score`` for a margin with no link, ``probability`` for a
@@ -51,6 +55,10 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0)):
     if kind == "xgboost":
         path, outputs, values, source = _xgboost(model, matrix, names, stem)
         names = names or _xgb_names(model, matrix.shape[1])
+    elif kind == "sklearn":
+        path, outputs, values, source = _sklearn(model, matrix, stem)
+        names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
+        tolerance = (tolerance[0], max(tolerance[1], 1e-6))
     else:
         path, outputs, values, source = _lightgbm(model, matrix, stem)
         names = names or _lgb_booster(model).feature_name()
@@ -72,9 +80,9 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0)):
 
 def _toolkit(model):
     module = type(model).__module__.split(".")[0]
-    if module in ("xgboost", "lightgbm"):
+    if module in ("xgboost", "lightgbm", "sklearn"):
         return module
-    raise TypeError(f"hand_off takes an XGBoost or LightGBM model, not {type(model).__module__}.{type(model).__name__}")
+    raise TypeError(f"hand_off takes an XGBoost, LightGBM or scikit-learn model, not {type(model).__module__}.{type(model).__name__}")
 
 
 def _matrix(rows):
@@ -117,6 +125,20 @@ def _xgboost(model, matrix, names, stem):
     predicted = numpy.asarray(booster.predict(data))
     outputs = _outputs(objective, _XGB_VALUE, _XGB_SCORE, _XGB_PROBABILITY, _XGB_CLASSES, classes)
     return path, outputs, predicted.reshape(len(matrix), len(outputs)), f"XGBoost {xgboost.__version__} Booster.predict ({objective})"
+
+
+def _sklearn(model, matrix, stem):
+    import sklearn
+    import skl2onnx
+    from skl2onnx.common.data_types import FloatTensorType
+
+    onx = skl2onnx.to_onnx(model, initial_types=[("X", FloatTensorType([None, matrix.shape[1]]))])
+    path = f"{stem}.onnx"
+    with open(path, "wb") as f:
+        f.write(onx.SerializeToString())
+    predicted = numpy.asarray(model.predict(matrix), dtype=numpy.float64)
+    source = f"scikit-learn {sklearn.__version__} {type(model).__name__}.predict (skl2onnx {skl2onnx.__version__})"
+    return path, ["value"], predicted.reshape(len(matrix), 1), source
 
 
 def _xgb_names(model, count):

@@ -16,13 +16,16 @@
 //! and what to do instead.
 //!
 //! Formats: XGBoost's JSON model ([`Format::XgboostJson`], what
-//! `save_model("m.json")` writes) and LightGBM's text model
-//! ([`Format::LightgbmText`], what `booster.save_model("m.txt")` writes).
+//! `save_model("m.json")` writes), LightGBM's text model
+//! ([`Format::LightgbmText`], what `booster.save_model("m.txt")` writes),
+//! and the ONNX file skl2onnx writes for a scikit-learn tree regressor
+//! ([`Format::SklearnOnnx`]; float32 leaves, so within their rounding).
 
 #![deny(missing_docs)]
 
 mod flatten;
 mod lightgbm;
+mod onnx;
 pub mod manifest;
 mod origin;
 mod xgboost;
@@ -39,17 +42,20 @@ pub enum Format {
     XgboostJson,
     /// LightGBM's text model (`Booster.save_model("m.txt")`).
     LightgbmText,
+    /// An ONNX file with a scikit-learn tree ensemble (`TreeEnsembleRegressor`), as skl2onnx writes it.
+    SklearnOnnx,
 }
 
 impl Format {
     /// Every format, in the order they are tried.
-    pub const ALL: [Format; 2] = [Format::XgboostJson, Format::LightgbmText];
+    pub const ALL: [Format; 3] = [Format::XgboostJson, Format::LightgbmText, Format::SklearnOnnx];
 
     /// The format's name as people say it.
     pub fn name(self) -> &'static str {
         match self {
             Format::XgboostJson => "XGBoost JSON model",
             Format::LightgbmText => "LightGBM text model",
+            Format::SklearnOnnx => "ONNX tree ensemble (skl2onnx)",
         }
     }
 
@@ -58,6 +64,7 @@ impl Format {
         match self {
             Format::XgboostJson => "xgboost",
             Format::LightgbmText => "lightgbm",
+            Format::SklearnOnnx => "sklearn-onnx",
         }
     }
 
@@ -69,6 +76,8 @@ impl Format {
             Some(Format::XgboostJson)
         } else if text.starts_with("tree\n") || text.starts_with("tree\r\n") {
             Some(Format::LightgbmText)
+        } else if bytes.first() == Some(&0x08) && bytes.windows(12).any(|w| w == b"TreeEnsemble") {
+            Some(Format::SklearnOnnx)
         } else {
             None
         }
@@ -191,6 +200,7 @@ pub fn import(bytes: &[u8], format: Format, file: &str, manifest: Option<&Manife
     let mut imported = match format {
         Format::XgboostJson => xgboost::import(bytes, file)?,
         Format::LightgbmText => lightgbm::import(bytes, file)?,
+        Format::SklearnOnnx => onnx::import(bytes, file)?,
     };
     let stem = std::path::Path::new(file).file_stem().and_then(|s| s.to_str()).unwrap_or("model");
     manifest::apply(&mut imported, manifest, stem)?;

@@ -103,3 +103,4 @@ fn formats_are_recognised_from_content() {
     assert_eq!(Format::recognise(b"\0asm\x01\0\0\0"), None);
     assert_eq!(crate::looks_like(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), "PMML");
 }
+

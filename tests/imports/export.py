@@ -96,3 +96,29 @@ booster.save_model(os.path.join(OUT, "refused-xgb-categorical.json"))
 x, y, names = data(load_diabetes)
 model = lightgbm.LGBMRegressor(linear_tree=True, **LGB).fit(x, y, feature_name=names)
 model.booster_.save_model(os.path.join(OUT, "refused-lgb-linear.txt"))
+
+# scikit-learn tree ensembles through skl2onnx (float32 input, as skl2onnx's
+# FloatTensorType): the ONNX file, and scikit-learn's own predict() on every row.
+import skl2onnx  # noqa: E402
+import sklearn  # noqa: E402
+from skl2onnx import to_onnx  # noqa: E402
+from skl2onnx.common.data_types import FloatTensorType  # noqa: E402
+from sklearn.ensemble import ExtraTreesRegressor, GradientBoostingRegressor, RandomForestRegressor  # noqa: E402
+from sklearn.tree import DecisionTreeRegressor  # noqa: E402
+
+x, y, names = data(load_diabetes)
+for name, model in [
+    ("skl-diabetes-tree", DecisionTreeRegressor(max_depth=6, random_state=0)),
+    ("skl-diabetes-forest", RandomForestRegressor(n_estimators=40, max_depth=8, random_state=0, n_jobs=1)),
+    ("skl-diabetes-extra", ExtraTreesRegressor(n_estimators=40, max_depth=8, random_state=0, n_jobs=1)),
+    ("skl-diabetes-boosted", GradientBoostingRegressor(n_estimators=80, max_depth=3, random_state=0)),
+]:
+    hand_off(model.fit(x, y), x, os.path.join(OUT, name))
+# A classifier, which the importer refuses for now, naming the node.
+from sklearn.tree import DecisionTreeClassifier  # noqa: E402
+xc, yc, _ = data(load_iris)
+onx = to_onnx(DecisionTreeClassifier(max_depth=3, random_state=0).fit(xc, yc), initial_types=[("X", FloatTensorType([None, 4]))],
+              options={"zipmap": False})
+with open(os.path.join(OUT, "refused-skl-classifier.onnx"), "wb") as f:
+    f.write(onx.SerializeToString())
+print(f"scikit-learn {sklearn.__version__} via skl2onnx {skl2onnx.__version__}")

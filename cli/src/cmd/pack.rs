@@ -14,9 +14,10 @@ use crate::common::{LoadArgs, WasiArgs, print_json};
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
 /// then load it and run its checks. A model file a toolkit saved (XGBoost
-/// JSON, LightGBM text) is imported onto the trees guest, its contract
-/// taken from the file; an ONNX model (`MODEL.onnx`) is packed with the
-/// ONNX evaluator guest, its manifest giving the contract.
+/// JSON, LightGBM text, a scikit-learn tree regressor in ONNX) is imported
+/// onto the trees guest, its contract taken from the file; any other ONNX
+/// model (`MODEL.onnx`) is packed with the ONNX evaluator guest, its
+/// manifest giving the contract.
 #[derive(clap::Args)]
 pub struct Args {
     /// The component or core module to pack, a toolkit's model file
@@ -69,6 +70,8 @@ enum ModelFormat {
     Xgboost,
     /// LightGBM's text model (`booster.save_model("m.txt")`).
     Lightgbm,
+    /// An ONNX file holding a scikit-learn tree ensemble, as skl2onnx writes it.
+    SklearnOnnx,
 }
 
 impl From<ModelFormat> for Format {
@@ -76,6 +79,7 @@ impl From<ModelFormat> for Format {
         match f {
             ModelFormat::Xgboost => Format::XgboostJson,
             ModelFormat::Lightgbm => Format::LightgbmText,
+            ModelFormat::SklearnOnnx => Format::SklearnOnnx,
         }
     }
 }
@@ -97,7 +101,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let format = args.format.map(Format::from).or_else(|| Format::recognise(&input));
     let mut origin = None;
     let (wasm, params) = match (&args.manifest, is_onnx) {
-        _ if format.is_some() && !is_onnx => {
+        _ if format.is_some() => {
             let format = format.expect("checked just above");
             let manifest = match &args.manifest {
                 Some(p) => Some(
