@@ -4,11 +4,9 @@
 
 use paddock_guest::Node;
 
-/// One node as the file describes it, children still the file's ids.
-pub(crate) type RawNode = Node;
-
 /// Walks a tree from `root` in depth-first order, left first, asking
-/// `node` for each file id it reaches, and renumbers children so each
+/// `node` for each file id it reaches (a node whose children are still
+/// file ids), and renumbers children so each
 /// follows its parent. `size` is the number of nodes the file declares:
 /// reaching more than that means a node is reached twice.
 ///
@@ -18,7 +16,7 @@ pub(crate) type RawNode = Node;
 pub(crate) fn flatten<E>(
     root: u32,
     size: usize,
-    mut node: impl FnMut(u32) -> Result<RawNode, E>,
+    mut node: impl FnMut(u32) -> Result<Node, E>,
     cycle: impl FnOnce() -> E,
 ) -> Result<Vec<Node>, E> {
     let mut out: Vec<Node> = Vec::new();

@@ -38,16 +38,10 @@ struct GraphProto {
     node: Vec<NodeProto>,
     #[prost(message, repeated, tag = "11")]
     input: Vec<ValueInfoProto>,
-    #[prost(message, repeated, tag = "12")]
-    output: Vec<ValueInfoProto>,
 }
 
 #[derive(Clone, PartialEq, Message)]
 struct NodeProto {
-    #[prost(string, repeated, tag = "1")]
-    input: Vec<String>,
-    #[prost(string, repeated, tag = "2")]
-    output: Vec<String>,
     #[prost(string, tag = "3")]
     name: String,
     #[prost(string, tag = "4")]
@@ -62,8 +56,6 @@ struct NodeProto {
 struct AttributeProto {
     #[prost(string, tag = "1")]
     name: String,
-    #[prost(float, tag = "2")]
-    f: f32,
     #[prost(int64, tag = "3")]
     i: i64,
     #[prost(bytes = "vec", tag = "4")]
@@ -80,8 +72,6 @@ struct AttributeProto {
 
 #[derive(Clone, PartialEq, Message)]
 struct TensorProto {
-    #[prost(int64, repeated, tag = "1")]
-    dims: Vec<i64>,
     #[prost(int32, tag = "2")]
     data_type: i32,
     #[prost(float, repeated, tag = "4")]
@@ -124,8 +114,6 @@ struct TensorShapeProto {
 struct Dimension {
     #[prost(int64, optional, tag = "1")]
     dim_value: Option<i64>,
-    #[prost(string, optional, tag = "2")]
-    dim_param: Option<String>,
 }
 
 /// ONNX element types (onnx.proto `TensorProto.DataType`).
