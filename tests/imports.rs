@@ -13,9 +13,9 @@
 
 use std::path::PathBuf;
 
-use paddock_guest::{Combine, Node, encode_params};
+use paddock_guest::{Combine, Node};
 use paddock_host::{Checks, Model, ModelOptions, Runtime};
-use paddock_import::{Format, ImportError, Manifest, import};
+use paddock_import::{Estimator, Format, ImportError, Manifest, import};
 use paddock_tests::{guest, load, root};
 
 /// Every model the export writes: a test fails if one is missing.
@@ -64,7 +64,7 @@ fn case(name: &str) -> (PathBuf, Vec<u8>, Checks) {
 fn imported_model(runtime: &Runtime, path: &std::path::Path, bytes: &[u8]) -> Model {
     let format = Format::recognise(bytes).unwrap_or_else(|| panic!("{}: format not recognised", path.display()));
     let imported = import(bytes, format, &path.file_name().unwrap().to_string_lossy(), None).unwrap();
-    load(runtime, &guest("paddock-model-trees"), &encode_params(&imported.packaged), ModelOptions::default())
+    load(runtime, &guest(imported.guest()), &imported.params(), ModelOptions::default())
 }
 
 #[test]
@@ -105,7 +105,7 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
     let imported = import(&bytes, Format::LightgbmText, "lgb-wine-categorical.txt", None).unwrap();
     let artifact = paddock_host::pack_imported(
         &guest("paddock-model-trees"),
-        Some(&encode_params(&imported.packaged)),
+        Some(&imported.params()),
         Some(&checks),
         Some(&imported.origin.to_map()),
     )
@@ -141,7 +141,7 @@ min = 0.0
     )
     .unwrap();
     let imported = import(&bytes, Format::XgboostJson, "m.json", Some(&manifest)).unwrap();
-    let c = &imported.packaged.contract;
+    let c = &imported.contract;
     assert_eq!((c.name.as_str(), c.version.as_str()), ("progression", "1.2.0"));
     let bmi = c.features.iter().find(|f| f.name == "body_mass_index").unwrap();
     assert!(bmi.required);
@@ -188,56 +188,147 @@ fn refusals_name_the_tree_and_node() {
     assert!(message.starts_with("refused-lgb-linear.txt: tree 0 (line "), "{message}");
     assert!(message.ends_with("a linear tree (linear_tree) is not supported; train with linear_tree=false"), "{message}");
 
-    // A scikit-learn classifier is refused naming the node; a graph with no
-    // tree ensemble is sent to the ONNX evaluator.
-    let classifier = std::fs::read(dir().join("refused-skl-classifier.onnx")).unwrap();
-    let err = import(&classifier, Format::SklearnOnnx, "refused-skl-classifier.onnx", None).unwrap_err().to_string();
-    assert!(err.starts_with("refused-skl-classifier.onnx: node `TreeEnsembleClassifier`: operator TreeEnsembleClassifier is not supported; only scikit-learn's tree regressors"), "{err}");
-    let linear = root().join("target/paddock/sklearn/onnx-linear.onnx");
-    let graph = std::fs::read(&linear).unwrap_or_else(|e| panic!("{}: {e} (run tests/sklearn/export.py)", linear.display()));
-    assert_eq!(Format::recognise(&graph), None, "a graph without a tree ensemble goes to the ONNX evaluator");
-    let err = import(&graph, Format::SklearnOnnx, "onnx-linear.onnx", None).unwrap_err().to_string();
-    assert!(err.contains("a graph of LinearRegressor (no tree ensemble) is not supported; pack it as an ONNX model with --manifest"), "{err}");
+    // One-vs-rest probabilities (scikit-learn's OneVsRestClassifier: a
+    // logistic per class, then normalised) are refused naming the node; a
+    // graph with no tree ensemble or linear model goes to the ONNX evaluator.
+    let ovr = std::fs::read(dir().join("refused-skl-one-vs-rest.onnx")).unwrap();
+    let err = import(&ovr, Format::SklearnOnnx, "refused-skl-one-vs-rest.onnx", None).unwrap_err().to_string();
+    assert!(err.starts_with("refused-skl-one-vs-rest.onnx: node `"), "{err}");
+    assert!(err.contains("is not supported; ") && err.contains("one-vs-rest"), "{err}");
+    let mlp = root().join("target/paddock/sklearn/onnx-mlp.onnx");
+    let graph = std::fs::read(&mlp).unwrap_or_else(|e| panic!("{}: {e} (run tests/sklearn/export.py)", mlp.display()));
+    assert_eq!(Format::recognise(&graph), None, "a graph without a tree ensemble or linear model goes to the ONNX evaluator");
+    let err = import(&graph, Format::SklearnOnnx, "onnx-mlp.onnx", None).unwrap_err().to_string();
+    assert!(err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX model with --manifest"), "{err}");
 
     // A file in the other format names the format it looks like.
     let err = import(&bytes, Format::XgboostJson, "refused-lgb-linear.txt", None).unwrap_err();
     assert_eq!(err.to_string(), "refused-lgb-linear.txt: not the XGBoost JSON model asked for; it looks like a LightGBM text model");
 }
 
-/// scikit-learn tree ensembles exported by skl2onnx (FloatTensorType),
+/// Every scikit-learn model the export hands off through skl2onnx.
+const SKLEARN: [&str; 16] = [
+    "skl-diabetes-tree",
+    "skl-diabetes-forest",
+    "skl-diabetes-extra",
+    "skl-diabetes-boosted",
+    "skl-diabetes-hist",
+    "skl-diabetes-linear",
+    "skl-diabetes-ridge",
+    "skl-cancer-tree",
+    "skl-cancer-boosted",
+    "skl-cancer-hist",
+    "skl-cancer-logistic",
+    "skl-iris-forest",
+    "skl-iris-boosted",
+    "skl-iris-logistic",
+    "skl-wine-extra",
+    "skl-wine-hist",
+];
+
+/// How far a score (before the link) may be from scikit-learn's, for a
+/// row: the file holds leaves and coefficients in float32, each within a
+/// relative 2⁻²⁴ of scikit-learn's double.
+/// - Trees: (max|base| + Σ over trees of its largest |leaf|) × 2⁻²⁴, divided
+///   by the tree count for an average. A wrong decision moves a score by a
+///   whole leaf, far beyond that.
+/// - Linear: (|intercept| + Σ |weightᵢ·xᵢ|) × 2⁻²³ (2⁻²⁴ for the float32
+///   coefficients, as much again for the double sums).
+fn score_bound(estimator: &Estimator, row: &[f64]) -> f64 {
+    match estimator {
+        Estimator::Trees(p) => {
+            let largest = |t: &paddock_guest::Tree| {
+                t.nodes
+                    .iter()
+                    .map(|n| match n {
+                        Node::Leaf { value } => value.abs(),
+                        Node::Leaves { first } => p.vectors[*first as usize..][..p.base.len()].iter().fold(0.0, |m, v| v.abs().max(m)),
+                        _ => 0.0,
+                    })
+                    .fold(0.0, f64::max)
+            };
+            let leaves: f64 = p.trees.iter().map(largest).sum();
+            let spread = if p.combine == Combine::Mean { leaves / p.trees.len() as f64 } else { leaves };
+            (p.base.iter().fold(0.0, |m, b| b.abs().max(m)) + spread) * 2f64.powi(-24)
+        }
+        Estimator::Linear(p) => p
+            .weights
+            .iter()
+            .zip(&p.intercepts)
+            .map(|(w, b)| (b.abs() + w.iter().zip(row).map(|(w, x)| (w * x).abs()).sum::<f64>()) * 2f64.powi(-23))
+            .fold(0.0, f64::max),
+        _ => unreachable!("scikit-learn files import to trees or linear models"),
+    }
+}
+
+/// scikit-learn tree ensembles and linear models exported by skl2onnx,
 /// imported instead of run by an ONNX runtime, against scikit-learn's own
-/// `predict` on every row of the diabetes data. Decisions are exact
-/// (skl2onnx rounds thresholds down to float32, and scikit-learn compares
-/// float32 inputs); leaf values are float32 in the file, so each row may
-/// differ by the rounding of its terms: at most (|base| + Σ max|leaf|) ×
-/// 2⁻²⁴, divided by the tree count for averages. A wrong decision moves a
-/// prediction by a whole leaf difference, far beyond that.
+/// `predict`, `predict_proba` (outside references) on every row of the
+/// diabetes, breast cancer, iris and wine data (HistGradientBoosting with
+/// absent cells, which it routes as it learned). Decisions are exact:
+/// skl2onnx rounds tree thresholds down to float32 and scikit-learn's
+/// trees compare float32 inputs; HistGradientBoosting is exported with a
+/// double input, and the notebook helper writes its thresholds, leaves and
+/// baseline as doubles (skl2onnx rounds them to float32; a value between
+/// a threshold and its rounding went the other way on the diabetes data),
+/// so its scores are scikit-learn's bit for bit. The others' scores may
+/// differ by [`score_bound`] ε; through a logistic link a probability p
+/// moves by at most p·ε, through a softmax by p·2ε (each score moves by
+/// ε), plus the link's own rounding: scikit-learn's softmax calls numpy's
+/// `exp`, which on a CPU with AVX-512 is numpy's own and not glibc's, a
+/// last-bit difference now and then (2⁻⁴⁹ relative allowed).
 #[test]
-fn scikit_learn_trees_from_skl2onnx_give_its_predictions_within_float32_leaf_rounding() {
+fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_rounding() {
     let runtime = Runtime::new().unwrap();
-    for name in ["skl-diabetes-tree", "skl-diabetes-forest", "skl-diabetes-extra", "skl-diabetes-boosted"] {
+    for name in SKLEARN {
         let path = dir().join(format!("{name}.onnx"));
         let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
         assert_eq!(Format::recognise(&bytes), Some(Format::SklearnOnnx), "{name}");
-        let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), None).unwrap();
-        let p = &imported.packaged.params;
-        let leaves: f64 = p
-            .trees
-            .iter()
-            .map(|t| t.nodes.iter().map(|n| if let Node::Leaf { value } = n { value.abs() } else { 0.0 }).fold(0.0, f64::max))
-            .sum();
-        let spread = if p.combine == Combine::Mean { leaves / p.trees.len() as f64 } else { leaves };
-        let bound = (p.base[0].abs() + spread) * 2f64.powi(-24);
-        let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
-        let model = load(&runtime, &guest("paddock-model-trees"), &encode_params(&imported.packaged), ModelOptions::default());
-        let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();
-        let got = model.score(&rows).unwrap();
-        let mut worst = 0.0f64;
-        for (i, c) in checks.cases.iter().enumerate() {
-            let (have, want) = (got.row(i)[0], c.expect["value"]);
-            assert!((have - want).abs() <= bound, "{name} row {}: paddock {have}, scikit-learn {want}, bound {bound:e} ({})", i + 1, checks.source);
-            worst = worst.max((have - want).abs() / want.abs());
+        // The helper names the columns in a manifest when it knows them.
+        let manifest = std::fs::read_to_string(dir().join(format!("{name}.toml"))).ok().map(|t| Manifest::from_toml(&t).unwrap());
+        let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), manifest.as_ref()).unwrap();
+        if name == "skl-diabetes-linear" {
+            assert_eq!(imported.contract.features[2].name, "bmi", "the helper's manifest names the columns");
         }
-        eprintln!("{name}: largest relative difference {worst:e} over {} rows, bound {bound:e} absolute ({})", rows.len(), checks.source);
+        let linked = match &imported.estimator {
+            Estimator::Trees(p) => p.link != paddock_guest::OutputLink::Identity,
+            Estimator::Linear(p) => p.link != paddock_guest::Link::Identity,
+            _ => unreachable!(),
+        };
+        let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
+        let model = load(&runtime, &guest(imported.guest()), &imported.params(), ModelOptions::default());
+        let order: Vec<String> = imported.contract.features.iter().map(|f| f.name.clone()).collect();
+        let outputs: Vec<String> = imported.contract.outputs.iter().map(|o| o.name.clone()).collect();
+        let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();
+        let got = model.score(&rows).unwrap_or_else(|e| panic!("{name}: {e}"));
+        let (mut worst, mut widest) = (0.0f64, 0.0f64);
+        for (i, c) in checks.cases.iter().enumerate() {
+            let cell = |f: &String| match c.row.fields().iter().find(|(n, _)| n == f).map(|(_, v)| v) {
+                Some(paddock_host::Value::Number(x)) => *x,
+                Some(paddock_host::Value::Integer(x)) => *x as f64,
+                _ => f64::NAN,
+            };
+            let cells: Vec<f64> = order.iter().map(cell).collect();
+            let eps = if name.ends_with("-hist") { 0.0 } else { score_bound(&imported.estimator, &cells) };
+            widest = widest.max(eps);
+            for (k, output) in outputs.iter().enumerate() {
+                let (have, want) = (got.row(i)[k], c.expect[output]);
+                let bound = if linked { want.abs() * (2.0 * eps + 2f64.powi(-49)) } else { eps };
+                assert!(
+                    (have - want).abs() <= bound,
+                    "{name} row {} {output}: paddock {have:e}, scikit-learn {want:e}, bound {bound:e} ({})",
+                    i + 1,
+                    checks.source
+                );
+                if want != 0.0 {
+                    worst = worst.max((have - want).abs() / want.abs());
+                }
+            }
+        }
+        // The helper's checks, with the tolerance it derived from the same
+        // rounding, pass when the model is scored against them.
+        let report = paddock_host::checking::run(&model, &checks).unwrap();
+        assert!(report.ok(), "{name}: the handed-off checks fail: {report:?}");
+        eprintln!("{name}: largest relative difference {worst:.1e} over {} rows, score bound up to {widest:.1e} ({})", rows.len(), checks.source);
     }
 }

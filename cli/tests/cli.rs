@@ -207,6 +207,40 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     assert!(shown.contains("output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the manifest"), "{shown}");
 }
 
+/// A multinomial logistic regression from scikit-learn (iris, through
+/// skl2onnx and the notebook helper, whose checks hold scikit-learn's
+/// `predict_proba`) packs onto the linear guest, picked by the graph's
+/// operator; an ONNX evaluator manifest given with it is refused, saying why.
+#[test]
+fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
+    let dir = root().join("target/paddock/imports");
+    let model = dir.join("skl-iris-logistic.onnx");
+    let checks = dir.join("skl-iris-logistic.checks.json");
+    assert!(model.exists(), "{}: run `python3 tests/imports/export.py target/paddock/imports`", model.display());
+    let manifest = tmp("iris.toml");
+    std::fs::write(&manifest, "name = \"iris-species\"\n[features.x2]\nunit = \"cm\"\nabout = \"petal length\"\n").unwrap();
+    let out = tmp("iris.wasm");
+    let o = paddock(
+        &["pack", model.to_str().unwrap(), "--manifest", manifest.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        None,
+    );
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(text(&o.stdout).contains("loads as iris-species 0.0.0\nchecks: 150/150 passed"), "{}", text(&o.stdout));
+    let o = paddock(&["inspect", out.to_str().unwrap()], None);
+    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    assert!(shown.contains("(scikit-learn model in ONNX (skl2onnx), linear: 3 output(s) × 4 weights)"), "{shown}");
+    assert!(shown.contains("LinearClassifier: one probability per class (3) (softmax)"), "{shown}");
+    assert!(shown.contains("feature x2 by position in the graph input `X`"), "{shown}");
+    assert!(shown.contains("output probability_2 the model's the probability of class 2"), "{shown}");
+
+    let evaluator_manifest = root().join("target/paddock/sklearn/onnx-linear.toml");
+    let linear = root().join("target/paddock/sklearn/onnx-linear.onnx");
+    let o = paddock(&["pack", linear.to_str().unwrap(), "--manifest", evaluator_manifest.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    assert_eq!(o.status.code(), Some(2));
+    let err = text(&o.stderr);
+    assert!(err.contains("holds a model paddock imports (scikit-learn model in ONNX (skl2onnx)), so --manifest takes overrides of its contract"), "{err}");
+}
+
 #[test]
 fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let dir = tempfile::tempdir().unwrap();

@@ -5,23 +5,30 @@
 
 use libfuzzer_sys::fuzz_target;
 use paddock_guest::ndarray::Array2;
-use paddock_guest::{Evaluate, Trees};
-use paddock_import::{Format, import};
+use paddock_guest::{Evaluate, Linear, Trees};
+use paddock_import::{Estimator, Format, import};
 
 fuzz_target!(|data: &[u8]| {
     let _ = Format::recognise(data);
     let _ = paddock_import::looks_like(data);
     for format in Format::ALL {
         let Ok(imported) = import(data, format, "fuzz", None) else { continue };
-        let params = imported.packaged.params;
-        let features = params.features as usize;
+        let features = imported.contract.features.len();
         if features > 4096 {
             continue;
         }
-        let trees = Trees::new(params).expect("imported params build an estimator");
-        let mut rows = Array2::from_elem((2, features), f64::NAN);
-        rows.row_mut(1).fill(0.0);
-        let mut out = Array2::from_elem((2, trees.outputs()), f64::NAN);
-        trees.evaluate(rows.view(), out.view_mut());
+        match imported.estimator {
+            Estimator::Trees(params) => score(Trees::new(params).expect("imported params build an estimator"), features),
+            Estimator::Linear(params) => score(Linear::new(params).expect("imported params build an estimator"), features),
+            _ => {}
+        }
     }
 });
+
+/// Scores a row of absent values and a row of zeros.
+fn score(estimator: impl Evaluate, features: usize) {
+    let mut rows = Array2::from_elem((2, features), f64::NAN);
+    rows.row_mut(1).fill(0.0);
+    let mut out = Array2::from_elem((2, estimator.outputs()), f64::NAN);
+    estimator.evaluate(rows.view(), out.view_mut());
+}

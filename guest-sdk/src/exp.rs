@@ -141,6 +141,20 @@ pub fn expf(x: f32) -> f32 {
     (y * s) as f32
 }
 
+/// `e^(xₖ − max) / Σ e^(xⱼ − max)` over `values`, in place, in double
+/// precision (the exponentials summed in order): one probability per class.
+pub fn softmax(values: &mut [f64]) {
+    let max = values.iter().copied().fold(f64::NEG_INFINITY, f64::max);
+    let mut sum = 0.0f64;
+    for v in values.iter_mut() {
+        *v = exp(*v - max);
+        sum += *v;
+    }
+    for v in values.iter_mut() {
+        *v /= sum;
+    }
+}
+
 /// `e^x` in double precision, as glibc's `exp`.
 pub fn exp(x: f64) -> f64 {
     const N: f64 = 128.0;

@@ -4,6 +4,7 @@
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize};
 
+use crate::exp;
 use crate::generic::Evaluate;
 
 /// How the linear score becomes an output.
@@ -13,6 +14,10 @@ pub enum Link {
     Identity,
     /// The output is `1 / (1 + e^-score)` (logistic regression, a probability).
     Logistic,
+    /// The outputs are `e^(scoreₖ − max) / Σ e^(scoreⱼ − max)`: one
+    /// probability per class (multinomial logistic regression). Needs two
+    /// outputs or more.
+    Softmax,
 }
 
 /// Parameters of a linear model, as training code writes them.
@@ -76,6 +81,9 @@ impl Linear {
                 params.impute.len()
             ));
         }
+        if params.link == Link::Softmax && outputs < 2 {
+            return Err("linear params: softmax needs at least two outputs".into());
+        }
         let all = params.intercepts.iter().chain(&weights).chain(&params.impute);
         if let Some(bad) = all.into_iter().find(|v| !v.is_finite()) {
             return Err(format!("linear params: non-finite coefficient {bad}"));
@@ -100,10 +108,15 @@ impl Linear {
                     .fold(b, |acc, ((x, w), f)| acc + w * if x.is_nan() { *f } else { *x }),
             };
             *o = match self.link {
-                Link::Identity => z,
-                // libm, not std: the same bits natively and in the sandbox.
-                Link::Logistic => 1.0 / (1.0 + libm::exp(-z)),
+                // glibc's exp computed in the crate, not std's: the same
+                // bits natively and in the sandbox, and the bits scipy's
+                // `expit` gets on Linux.
+                Link::Logistic => 1.0 / (1.0 + exp::exp(-z)),
+                Link::Identity | Link::Softmax => z,
             };
+        }
+        if self.link == Link::Softmax {
+            exp::softmax(out);
         }
     }
 }
@@ -162,6 +175,26 @@ mod tests {
         assert_eq!(out[[0, 0]], -0.5);
         Linear::new(params(Link::Logistic)).unwrap().evaluate(rows.view(), out.view_mut());
         assert!((out[[0, 0]] - 0.377_540_668_798_145_4).abs() < 1e-15);
+    }
+
+    #[test]
+    fn softmax_gives_one_probability_per_class() {
+        // Scores 0, ln 3 and ln 3 − ln 2 (intercepts; weights zero): e^s is
+        // 1, 3 and 1.5, so the probabilities are 1/5.5, 3/5.5 and 1.5/5.5.
+        let params = |intercepts: Vec<f64>| LinearParams {
+            link: Link::Softmax,
+            weights: vec![vec![0.0]; intercepts.len()],
+            intercepts,
+            impute: vec![],
+        };
+        let model = Linear::new(params(vec![0.0, 3f64.ln(), 1.5f64.ln()])).unwrap();
+        let mut out = Array2::zeros((1, 3));
+        model.evaluate(array![[7.0]].view(), out.view_mut());
+        for (have, want) in out.iter().zip([1.0 / 5.5, 3.0 / 5.5, 1.5 / 5.5]) {
+            assert!((have - want).abs() < 1e-15, "{have} against {want}");
+        }
+        let err = Linear::new(params(vec![0.0])).unwrap_err();
+        assert!(err.contains("softmax needs at least two outputs"), "{err}");
     }
 
     #[test]

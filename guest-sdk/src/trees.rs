@@ -508,15 +508,17 @@ impl Trees {
                     *v = if single { f64::from(exp::expf(*v as f32)) } else { exp::exp(*v) };
                 }
             }
+            OutputLink::Softmax if !single => exp::softmax(o),
             OutputLink::Softmax => {
+                // The exponentials in single precision, their sum in double.
                 let max = o.iter().copied().fold(f64::NEG_INFINITY, f64::max);
                 let mut sum = 0.0f64;
                 for v in o.iter_mut() {
-                    *v = if single { f64::from(exp::expf(*v as f32 - max as f32)) } else { exp::exp(*v - max) };
+                    *v = f64::from(exp::expf(*v as f32 - max as f32));
                     sum += *v;
                 }
                 for v in o.iter_mut() {
-                    *v = if single { f64::from(*v as f32 / sum as f32) } else { *v / sum };
+                    *v = f64::from(*v as f32 / sum as f32);
                 }
             }
         }

@@ -6,10 +6,16 @@ checks file, which ``paddock pack MODEL --checks CHECKS`` carries and runs.
 
 Toolkits: XGBoost (``XGBModel`` or ``Booster``; saved as ``STEM.json``),
 LightGBM (``LGBMModel`` or ``Booster``; saved as ``STEM.txt``) and
-scikit-learn tree-ensemble regressors (DecisionTree, RandomForest,
-ExtraTrees, GradientBoosting; saved by skl2onnx as ``STEM.onnx``, whose
-float32 leaves hold predictions to about 1e-7 relative: the checks allow
-1e-6).
+scikit-learn tree ensembles and linear models (DecisionTree, RandomForest,
+ExtraTrees, GradientBoosting, HistGradientBoosting regressors and
+classifiers; LinearRegression, Ridge, Lasso, LogisticRegression…; saved by
+skl2onnx as ``STEM.onnx``). skl2onnx writes leaves and coefficients as
+float32, so the checks allow what that rounding can move a prediction: ε =
+(|base| + Σ largest |leaf| per tree) · 2⁻²⁴ for trees, (|intercept| + Σ
+|weight·x|) · 2⁻²³ for linear models, absolute for values and 2ε relative
+for probabilities through a logistic or softmax link (plus 2⁻⁴⁹ for the
+link's last bit). HistGradientBoosting is written with its doubles
+(``_as_tensor`` attributes): its scores are scikit-learn's bit for bit.
 
 The output names match what paddock's importers call them: ``value`` for a
 regression, ``score`` for a margin with no link, ``probability`` for a
@@ -25,7 +31,7 @@ import numpy
 
 __all__ = ["hand_off", "HandedOff"]
 
-HandedOff = namedtuple("HandedOff", ["model", "checks", "cases"])
+HandedOff = namedtuple("HandedOff", ["model", "checks", "cases", "manifest"])
 
 # XGBoost objectives by the output they give (paddock's importer uses the same).
 _XGB_VALUE = {"reg:squarederror", "reg:linear", "reg:absoluteerror", "reg:pseudohubererror",
@@ -41,24 +47,40 @@ _LGB_PROBABILITY = {"binary", "cross_entropy", "xentropy"}
 _LGB_CLASSES = {"multiclass", "softmax", "multiclassova", "multiclass_ova", "ova", "ovr"}
 
 
-def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0)):
+def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     """Saves ``model`` as its toolkit does and writes its predictions on
     ``rows`` as ``STEM.checks.json``.
 
     ``tolerance`` is (absolute, relative); the default (0, 0) asks paddock
     for the toolkit's predictions bit for bit, which its importers give.
+    ``names`` names the columns of ``rows`` when it is a plain array (a
+    DataFrame's columns, or the names a scikit-learn model was fitted on,
+    are used otherwise). An ONNX file names no columns: for a scikit-learn
+    model with names, ``STEM.toml`` is written too, a paddock manifest
+    naming the file's ``x0``, ``x1``… for ``paddock pack --manifest``.
 
-    Returns ``HandedOff(model=path, checks=path, cases=count)``.
+    Returns ``HandedOff(model=path, checks=path, cases=count,
+    manifest=path or None)``.
     """
     kind = _toolkit(model)
-    matrix, names = _matrix(rows)
+    matrix, names = _matrix(rows, names)
+    manifest = None
     if kind == "xgboost":
         path, outputs, values, source = _xgboost(model, matrix, names, stem)
         names = names or _xgb_names(model, matrix.shape[1])
     elif kind == "sklearn":
-        path, outputs, values, source = _sklearn(model, matrix, stem)
-        names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
-        tolerance = (tolerance[0], max(tolerance[1], 1e-6))
+        path, outputs, values, source, (eps, linked) = _sklearn(model, matrix, stem)
+        names = names or [str(n) for n in getattr(model, "feature_names_in_", [])]
+        if names:
+            manifest = _manifest(names, stem)
+        else:
+            names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
+        if linked:
+            # 2⁻⁴⁹: scikit-learn's softmax calls numpy's exp, numpy's own
+            # (not glibc's) on a CPU with AVX-512: a last bit now and then.
+            tolerance = (tolerance[0], max(tolerance[1], 2 * eps + 2.0 ** -49))
+        else:
+            tolerance = (max(tolerance[0], eps), tolerance[1])
     else:
         path, outputs, values, source = _lightgbm(model, matrix, stem)
         names = names or _lgb_booster(model).feature_name()
@@ -75,7 +97,7 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0)):
     checks_path = f"{stem}.checks.json"
     with open(checks_path, "w") as f:
         json.dump(checks, f)
-    return HandedOff(path, checks_path, len(cases))
+    return HandedOff(path, checks_path, len(cases), manifest)
 
 
 def _toolkit(model):
@@ -85,14 +107,27 @@ def _toolkit(model):
     raise TypeError(f"hand_off takes an XGBoost, LightGBM or scikit-learn model, not {type(model).__module__}.{type(model).__name__}")
 
 
-def _matrix(rows):
-    names = None
+def _manifest(names, stem):
+    """A paddock manifest naming the ONNX file's columns x0, x1…"""
+    path = f"{stem}.toml"
+    with open(path, "w") as f:
+        f.write("# Written by paddock_handoff: the ONNX file names no columns; these are\n"
+                "# the columns the model was fitted on, in order.\n")
+        for i, name in enumerate(names):
+            f.write(f"\n[features.x{i}]\nname = {json.dumps(name)}\n")
+    return path
+
+
+def _matrix(rows, names=None):
+    names = list(names) if names is not None else None
     if hasattr(rows, "columns"):  # a pandas DataFrame
-        names = [str(c) for c in rows.columns]
+        names = names or [str(c) for c in rows.columns]
         rows = rows.to_numpy(dtype=numpy.float64, na_value=numpy.nan)
     matrix = numpy.asarray(rows, dtype=numpy.float64)
     if matrix.ndim != 2:
         raise ValueError(f"rows must be 2-D (rows × features), got shape {matrix.shape}")
+    if names is not None and len(names) != matrix.shape[1]:
+        raise ValueError(f"{len(names)} names for {matrix.shape[1]} columns")
     return matrix, names
 
 
@@ -130,15 +165,132 @@ def _xgboost(model, matrix, names, stem):
 def _sklearn(model, matrix, stem):
     import sklearn
     import skl2onnx
-    from skl2onnx.common.data_types import FloatTensorType
+    from skl2onnx.common.data_types import DoubleTensorType, FloatTensorType
 
-    onx = skl2onnx.to_onnx(model, initial_types=[("X", FloatTensorType([None, matrix.shape[1]]))])
+    name = type(model).__name__
+    # HistGradientBoosting compares double inputs with double thresholds; the
+    # other trees compare float32 inputs, and skl2onnx writes linear models
+    # as ai.onnx.ml operators only for a float input.
+    hist = name.startswith("HistGradientBoosting")
+    tensor = DoubleTensorType if hist else FloatTensorType
+    options = {"zipmap": False} if hasattr(model, "predict_proba") else None
+    with _plain_attributes(hist):
+        onx = skl2onnx.to_onnx(model, initial_types=[("X", tensor([None, matrix.shape[1]]))], options=options)
+    if hist:
+        _exact_hist(onx, model)
     path = f"{stem}.onnx"
     with open(path, "wb") as f:
         f.write(onx.SerializeToString())
-    predicted = numpy.asarray(model.predict(matrix), dtype=numpy.float64)
-    source = f"scikit-learn {sklearn.__version__} {type(model).__name__}.predict (skl2onnx {skl2onnx.__version__})"
-    return path, ["value"], predicted.reshape(len(matrix), 1), source
+    if hasattr(model, "predict_proba"):
+        predicted, method = numpy.asarray(model.predict_proba(matrix), dtype=numpy.float64), "predict_proba"
+        if predicted.shape[1] == 2:
+            outputs, predicted = ["probability"], predicted[:, 1:]
+        else:
+            outputs = [f"probability_{k}" for k in range(predicted.shape[1])]
+    elif hasattr(model, "decision_function") and hasattr(model, "classes_"):
+        predicted, method = numpy.asarray(model.decision_function(matrix), dtype=numpy.float64), "decision_function"
+        predicted = predicted.reshape(len(matrix), -1)
+        outputs = ["score"] if predicted.shape[1] == 1 else [f"score_{k}" for k in range(predicted.shape[1])]
+    else:
+        predicted, method = numpy.asarray(model.predict(matrix), dtype=numpy.float64), "predict"
+        predicted = predicted.reshape(len(matrix), -1)
+        outputs = ["value"] if predicted.shape[1] == 1 else [f"value_{k}" for k in range(predicted.shape[1])]
+    source = f"scikit-learn {sklearn.__version__} {name}.{method} (skl2onnx {skl2onnx.__version__})"
+    return path, outputs, predicted.reshape(len(matrix), len(outputs)), source, _rounding(onx, matrix)
+
+
+def _rounding(onx, matrix):
+    """(ε, linked): how far the file's float32 values can move a score from
+    scikit-learn's, and whether a logistic or softmax link follows."""
+    from onnx import helper
+
+    ops = ("TreeEnsembleRegressor", "TreeEnsembleClassifier", "LinearRegressor", "LinearClassifier")
+    node = next(n for n in onx.graph.node if n.op_type in ops)
+    a = {x.name: helper.get_attribute_value(x) for x in node.attribute}
+    linked = a.get("post_transform", b"NONE") not in (b"NONE", "NONE")
+    if node.op_type.startswith("Linear"):
+        w = numpy.abs(numpy.asarray(a["coefficients"], dtype=numpy.float64)).reshape(-1, matrix.shape[1])
+        b = numpy.abs(numpy.asarray(a.get("intercepts", [0.0] * len(w)), dtype=numpy.float64))
+        x = numpy.abs(numpy.nan_to_num(matrix))
+        return float((b[None, :] + x @ w.T).max()) * 2.0 ** -23, linked
+    prefix = "class" if node.op_type.endswith("Classifier") else "target"
+    if f"{prefix}_weights" not in a:  # doubles, as _exact_hist writes them
+        return 0.0, linked
+    largest = {}
+    for tree, weight in zip(a[f"{prefix}_treeids"], a[f"{prefix}_weights"]):
+        largest[tree] = max(largest.get(tree, 0.0), abs(weight))
+    leaves = sum(largest.values())
+    if a.get("aggregate_function", b"SUM") in (b"AVERAGE", "AVERAGE"):
+        leaves /= max(len(largest), 1)
+    base = max((abs(v) for v in a.get("base_values", [0.0])), default=0.0)
+    return (base + leaves) * 2.0 ** -24, linked
+
+
+def _exact_hist(onx, model):
+    """skl2onnx writes HistGradientBoosting's double thresholds, leaf
+    values and baseline rounded to float32, so a value within a rounding
+    of a threshold could go the other way, and sums differ in the last
+    bits. The ONNX-ML operators (ai.onnx.ml 3) also take them as double
+    tensors (``nodes_values_as_tensor``…): they are written so, from the
+    model itself, each checked to round to the float the converter wrote."""
+    from onnx import helper, numpy_helper
+
+    node = next(n for n in onx.graph.node if n.op_type.startswith("TreeEnsemble"))
+    prefix = "class" if node.op_type.endswith("Classifier") else "target"
+    attrs = {a.name: a for a in node.attribute}
+    trees = [p.nodes for stage in model._predictors for p in stage]
+
+    def exact(name, doubles):
+        written = numpy.asarray(helper.get_attribute_value(attrs[name]), dtype=numpy.float32)
+        doubles = numpy.asarray(doubles, dtype=numpy.float64)
+        if written.shape != doubles.shape or not numpy.array_equal(doubles.astype(numpy.float32), written):
+            raise ValueError(f"{name}: the converter's float32 values are not this model's doubles rounded; "
+                             "this skl2onnx version lays trees out differently")
+        node.attribute.remove(attrs[name])
+        node.attribute.append(helper.make_attribute(f"{name}_as_tensor", numpy_helper.from_array(doubles, f"{name}_as_tensor")))
+
+    tree_ids, node_ids = attrs["nodes_treeids"].ints, attrs["nodes_nodeids"].ints
+    exact("nodes_values", [0.0 if trees[t][n]["is_leaf"] else trees[t][n]["num_threshold"] for t, n in zip(tree_ids, node_ids)])
+    exact(f"{prefix}_weights", [trees[t][n]["value"] for t, n in zip(attrs[f"{prefix}_treeids"].ints, attrs[f"{prefix}_nodeids"].ints)])
+    if "base_values" in attrs:
+        exact("base_values", numpy.ravel(model._baseline_prediction))
+    for opset in onx.opset_import:
+        if opset.domain == "ai.onnx.ml":
+            opset.version = max(opset.version, 3)
+
+
+class _plain_attributes:
+    """skl2onnx 1.20 passes HistGradientBoosting's missing-value flags to
+    onnx as numpy booleans, which onnx ≥ 1.17 refuses ("Expected an int,
+    got a boolean"). While converting one, node attributes are made plain
+    Python ints; nothing else changes."""
+
+    def __init__(self, active):
+        self.active = active
+
+    def __enter__(self):
+        if not self.active:
+            return
+        from skl2onnx.common import _container
+
+        self.cls = _container.ModelComponentContainer
+        self.original = self.cls.add_node
+        original = self.original
+
+        def plain(value):
+            if isinstance(value, list):
+                return [int(v) if isinstance(v, (bool, numpy.bool_, numpy.integer)) else v for v in value]
+            return value
+
+        def add_node(container, *args, **attrs):
+            return original(container, *args, **{k: plain(v) for k, v in attrs.items()})
+
+        self.cls.add_node = add_node
+
+    def __exit__(self, *exc):
+        if self.active:
+            self.cls.add_node = self.original
+        return False
 
 
 def _xgb_names(model, count):

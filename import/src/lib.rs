@@ -18,8 +18,9 @@
 //! Formats: XGBoost's JSON model ([`Format::XgboostJson`], what
 //! `save_model("m.json")` writes), LightGBM's text model
 //! ([`Format::LightgbmText`], what `booster.save_model("m.txt")` writes),
-//! and the ONNX file skl2onnx writes for a scikit-learn tree regressor
-//! ([`Format::SklearnOnnx`]; float32 leaves, so within their rounding).
+//! and the ONNX file skl2onnx writes for a scikit-learn tree ensemble or
+//! linear model ([`Format::SklearnOnnx`]; float32 leaves and coefficients,
+//! so within their rounding).
 
 #![deny(missing_docs)]
 
@@ -32,7 +33,7 @@ mod xgboost;
 
 pub use manifest::Manifest;
 pub use origin::{Origin, Source};
-use paddock_guest::{Packaged, TreesParams};
+use paddock_guest::{Contract, LinearParams, Packaged, TreesParams, encode_params};
 
 /// A model file format an importer reads.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -42,7 +43,8 @@ pub enum Format {
     XgboostJson,
     /// LightGBM's text model (`Booster.save_model("m.txt")`).
     LightgbmText,
-    /// An ONNX file with a scikit-learn tree ensemble (`TreeEnsembleRegressor`), as skl2onnx writes it.
+    /// An ONNX file with a scikit-learn tree ensemble or linear model
+    /// (`TreeEnsembleRegressor`/`Classifier`, `LinearRegressor`/`Classifier`), as skl2onnx writes it.
     SklearnOnnx,
 }
 
@@ -55,7 +57,7 @@ impl Format {
         match self {
             Format::XgboostJson => "XGBoost JSON model",
             Format::LightgbmText => "LightGBM text model",
-            Format::SklearnOnnx => "ONNX tree ensemble (skl2onnx)",
+            Format::SklearnOnnx => "scikit-learn model in ONNX (skl2onnx)",
         }
     }
 
@@ -76,7 +78,7 @@ impl Format {
             Some(Format::XgboostJson)
         } else if text.starts_with("tree\n") || text.starts_with("tree\r\n") {
             Some(Format::LightgbmText)
-        } else if bytes.first() == Some(&0x08) && bytes.windows(12).any(|w| w == b"TreeEnsemble") {
+        } else if bytes.first() == Some(&0x08) && [&b"TreeEnsemble"[..], b"LinearRegressor", b"LinearClassifier"].iter().any(|op| bytes.windows(op.len()).any(|w| w == *op)) {
             Some(Format::SklearnOnnx)
         } else {
             None
@@ -115,11 +117,43 @@ pub fn looks_like(bytes: &[u8]) -> &'static str {
 /// A model file, imported.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Imported {
-    /// The contract and the estimator's params: the artifact's params are
-    /// `paddock_guest::encode_params(&packaged)`.
-    pub packaged: Packaged<TreesParams>,
+    /// The contract the file declares, with the manifest's overrides.
+    pub contract: Contract,
+    /// The built-in estimator that reproduces the model, and its params.
+    pub estimator: Estimator,
     /// Where the params and each part of the contract came from.
     pub origin: Origin,
+}
+
+/// The built-in estimator an imported model runs on.
+#[derive(Clone, Debug, PartialEq)]
+#[non_exhaustive]
+pub enum Estimator {
+    /// Tree ensembles (`paddock-model-trees`).
+    Trees(TreesParams),
+    /// Linear and logistic models (`paddock-model-linear`).
+    Linear(LinearParams),
+}
+
+impl Imported {
+    /// The artifact's params: the contract and the estimator's params, as
+    /// the estimator's guest reads them.
+    pub fn params(&self) -> Vec<u8> {
+        let contract = self.contract.clone();
+        match &self.estimator {
+            Estimator::Trees(params) => encode_params(&Packaged { contract, params: params.clone() }),
+            Estimator::Linear(params) => encode_params(&Packaged { contract, params: params.clone() }),
+        }
+    }
+
+    /// The name of the guest that evaluates the params (`cargo xtask build`
+    /// leaves it as `target/paddock/guests/NAME.wasm`).
+    pub fn guest(&self) -> &'static str {
+        match &self.estimator {
+            Estimator::Trees(_) => "paddock-model-trees",
+            Estimator::Linear(_) => "paddock-model-linear",
+        }
+    }
 }
 
 /// Why a file could not be imported.

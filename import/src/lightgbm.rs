@@ -14,11 +14,11 @@
 //! poisson/gamma/tweedie, softmax for multiclass.
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Packaged, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
 };
 
 use crate::flatten::flatten;
-use crate::{Blame, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
 
 /// The `key=value` lines of one block, with the line each came from.
 struct Block<'a> {
@@ -157,10 +157,8 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     }
     let trees_count = params.trees.len();
     Ok(Imported {
-        packaged: Packaged {
-            contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs: outs },
-            params,
-        },
+        contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs: outs },
+        estimator: Estimator::Trees(params),
         origin: Origin {
             format: Format::LightgbmText.name().to_owned(),
             file: file.to_owned(),
@@ -170,7 +168,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 "double precision as LightGBM computes: left when x ≤ threshold; each split's missing type (None: absent counts as 0; Zero; NaN) and default direction; categorical splits by bitset{}",
                 if average { "; trees averaged (random forest)" } else { "" }
             ),
-            trees: trees_count,
+            estimator: format!("{trees_count} trees"),
             contract: sources,
         },
     })

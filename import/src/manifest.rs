@@ -105,7 +105,7 @@ impl Manifest {
 pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: &str) -> Result<(), ImportError> {
     let empty = Manifest::default();
     let m = manifest.unwrap_or(&empty);
-    let contract = &mut imported.packaged.contract;
+    let contract = &mut imported.contract;
     let origin = &mut imported.origin;
     let from_manifest = "the manifest";
     match &m.name {

@@ -1,6 +1,8 @@
-//! ONNX files that skl2onnx writes for scikit-learn tree ensembles
-//! (`TreeEnsembleRegressor`, ai.onnx.ml): converted to the trees estimator
-//! instead of running the graph, with scikit-learn's arithmetic.
+//! ONNX files that skl2onnx writes for scikit-learn's tree ensembles and
+//! linear models (ai.onnx.ml `TreeEnsembleRegressor`,
+//! `TreeEnsembleClassifier`, `LinearRegressor`, `LinearClassifier`):
+//! converted to the trees or linear estimator instead of running the
+//! graph, with scikit-learn's arithmetic.
 //!
 //! scikit-learn's trees compare `float32(x) <= threshold` with a double
 //! threshold; skl2onnx writes each threshold rounded *down* to float32, so
@@ -8,6 +10,14 @@
 //! Leaf values are written as float32: scikit-learn's double leaves are lost
 //! to 24 bits, so predictions agree within `Σ |leaf| · 2⁻²⁴` (the sums are
 //! kept in double precision, in tree order, as scikit-learn adds them).
+//! HistGradientBoosting compares double inputs with double thresholds,
+//! which skl2onnx rounds to the nearest float32: exported with a double
+//! input, decisions differ only for a value between the two.
+//!
+//! Linear models: coefficients are float32 in the file, inputs stay double
+//! (as scikit-learn computes), so a score agrees within
+//! `(|intercept| + Σ |weightᵢ·xᵢ|) · 2⁻²⁴`; the logistic and softmax links
+//! are glibc's `exp` as scipy's `expit` and scikit-learn's softmax call it.
 //!
 //! Only the protobuf messages and fields read here are declared (field
 //! numbers from onnx.proto); prost skips the rest.
@@ -15,12 +25,12 @@
 use std::collections::BTreeMap;
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Packaged, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
 };
 use prost::Message;
 
 use crate::flatten::flatten;
-use crate::{Blame, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
 
 #[derive(Clone, PartialEq, Message)]
 struct ModelProto {
@@ -136,6 +146,10 @@ impl<'a> Attributes<'a> {
         }
     }
 
+    fn int(&self, name: &str, default: i64) -> i64 {
+        self.by_name.get(name).map_or(default, |a| a.i)
+    }
+
     fn ints(&self, name: &str) -> Vec<i64> {
         self.by_name.get(name).map(|a| a.ints.clone()).unwrap_or_default()
     }
@@ -168,6 +182,62 @@ impl<'a> Attributes<'a> {
     }
 }
 
+/// The operators converted to a built-in estimator.
+const MODELS: [&str; 4] = ["TreeEnsembleRegressor", "TreeEnsembleClassifier", "LinearRegressor", "LinearClassifier"];
+
+/// What the model node computes, which names the outputs.
+#[derive(Clone, Copy, Debug, PartialEq)]
+enum Task {
+    /// One value per target (a regression).
+    Values(usize),
+    /// The probability of the second of two classes.
+    Probability,
+    /// One probability per class.
+    Probabilities(usize),
+    /// One decision score per class (no link), or one for two classes.
+    Scores(usize),
+}
+
+impl Task {
+    fn columns(self) -> usize {
+        match self {
+            Task::Probability => 1,
+            Task::Values(n) | Task::Probabilities(n) | Task::Scores(n) => n,
+        }
+    }
+
+    /// The outputs, and what each is. Probabilities are bounded to [0, 1]
+    /// when a link makes them so (`linked`); sums of float32 leaf
+    /// probabilities may pass 1 by a rounding.
+    fn outputs(self, labels: &[String], linked: bool) -> (Vec<Output>, Vec<String>) {
+        let named = |stem: &str, n: usize| -> Vec<String> {
+            if n == 1 { vec![stem.to_owned()] } else { (0..n).map(|k| format!("{stem}_{k}")).collect() }
+        };
+        let label = |k: usize| labels.get(k).map_or_else(|| k.to_string(), Clone::clone);
+        let (names, about, bounds): (Vec<String>, Vec<String>, Bounds) = match self {
+            Task::Values(n) => (named("value", n), (0..n).map(|k| format!("target {k}")).collect(), Bounds::OPEN),
+            Task::Probability => (vec!["probability".into()], vec![format!("the probability of class {}", label(1))], Bounds::between(0.0, 1.0)),
+            Task::Probabilities(n) => (
+                (0..n).map(|k| format!("probability_{k}")).collect(),
+                (0..n).map(|k| format!("the probability of class {}", label(k))).collect(),
+                Bounds::between(0.0, 1.0),
+            ),
+            Task::Scores(n) => (named("score", n), (0..n).map(|k| format!("the decision score of class {}", label(k + usize::from(n == 1)))).collect(), Bounds::OPEN),
+        };
+        let bounds = if linked { bounds } else { Bounds::OPEN };
+        (names.iter().map(|n| Output::new(n, bounds)).collect(), about)
+    }
+}
+
+/// The graph around the model node: its input and who wrote it.
+struct Graph<'a> {
+    blame: Blame<'a>,
+    producer: String,
+    input: &'a str,
+    features: usize,
+    precision: Precision,
+}
+
 pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> {
     let blame = Blame { file };
     let wrong = || ImportError::WrongFormat { file: file.to_owned(), expected: Format::SklearnOnnx.name(), looks_like: crate::looks_like(bytes) };
@@ -175,30 +245,41 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let graph = model.graph.as_ref().ok_or_else(wrong)?;
     let producer = format!("{} {}", model.producer_name, model.producer_version).trim().to_owned();
     let ops: Vec<&str> = graph.node.iter().map(|n| n.op_type.as_str()).collect();
-    let ensemble = match graph.node.iter().filter(|n| n.op_type.starts_with("TreeEnsemble")).collect::<Vec<_>>()[..] {
+    let models: Vec<&NodeProto> = graph.node.iter().filter(|n| MODELS.contains(&n.op_type.as_str())).collect();
+    let node = match models[..] {
         [one] => one,
         [] => {
             return Err(blame.unsupported(
                 "graph",
-                format!("a graph of {} (no tree ensemble)", ops.join(", ")),
-                "pack it as an ONNX model with --manifest (tract runs it), or export a scikit-learn tree ensemble",
+                format!("a graph of {} (no tree ensemble or linear model)", ops.join(", ")),
+                "pack it as an ONNX model with --manifest (tract runs it), or export a scikit-learn tree ensemble or linear model",
             ));
         }
-        _ => return Err(blame.unsupported("graph", "more than one tree ensemble", "export one model per file")),
+        _ => {
+            return Err(blame.unsupported(
+                &format!("node `{}`", models[1].name),
+                format!("{} model operators in one graph ({})", models.len(), models.iter().map(|n| n.op_type.as_str()).collect::<Vec<_>>().join(", ")),
+                "export one model per file; for one probability per class, train a multinomial classifier, not one-vs-rest",
+            ));
+        }
     };
-    if let Some(other) = graph.node.iter().find(|n| !std::ptr::eq(*n, ensemble) && !matches!(n.op_type.as_str(), "Identity" | "Cast")) {
-        return Err(blame.unsupported(
-            &format!("node `{}`", other.name),
-            format!("operator {} beside the tree ensemble", other.op_type),
-            "export the tree ensemble alone (skl2onnx: options={'zipmap': False}, no pipeline steps)",
-        ));
-    }
-    if ensemble.op_type != "TreeEnsembleRegressor" {
-        return Err(blame.unsupported(
-            &format!("node `{}`", ensemble.name),
-            format!("operator {}", ensemble.op_type),
-            "only scikit-learn's tree regressors are imported so far; XGBoost and LightGBM classifiers are, from their own files",
-        ));
+    let a = Attributes::of(&blame, node);
+    let softmax = a.text("post_transform", "NONE") == "SOFTMAX";
+    for other in graph.node.iter().filter(|n| !std::ptr::eq(*n, node)) {
+        // Cast and Identity pass values on; ZipMap only reshapes the
+        // probabilities; an L1 Normalizer after a softmax divides by a sum of 1.
+        let passes = match other.op_type.as_str() {
+            "Identity" | "Cast" | "ZipMap" => true,
+            "Normalizer" => softmax && Attributes::of(&blame, other).text("norm", "MAX") == "L1",
+            _ => false,
+        };
+        if !passes {
+            return Err(blame.unsupported(
+                &format!("node `{}`", other.name),
+                format!("operator {} beside the {}", other.op_type, node.op_type),
+                "export the model alone (skl2onnx: no pipeline steps; a multinomial, not one-vs-rest, classifier)",
+            ));
+        }
     }
     let input = graph.input.first().ok_or_else(|| blame.malformed("graph", "no input"))?;
     let tensor = input.r#type.as_ref().and_then(|t| t.tensor_type.as_ref()).ok_or_else(|| blame.malformed("graph input", "not a tensor"))?;
@@ -209,14 +290,54 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         .and_then(|d| d.dim_value)
         .filter(|&n| (1..=1_000_000).contains(&n))
         .ok_or_else(|| blame.malformed("graph input", "its shape does not give the feature count (rows × features)"))? as usize;
-    let inputs = match tensor.elem_type {
+    let precision = match tensor.elem_type {
         FLOAT => Precision::Single,
         DOUBLE => Precision::Double,
-        other => return Err(blame.unsupported("graph input", format!("element type {other}"), "export with FloatTensorType")),
+        other => return Err(blame.unsupported("graph input", format!("element type {other}"), "export with FloatTensorType or DoubleTensorType")),
     };
-    let a = Attributes::of(&blame, ensemble);
+    let g = Graph { blame: Blame { file }, producer, input: &input.name, features, precision };
+    match node.op_type.as_str() {
+        "TreeEnsembleRegressor" | "TreeEnsembleClassifier" => trees(&g, &a),
+        _ => linear(&g, &a),
+    }
+}
+
+/// The class labels of a classifier, as text.
+fn labels(a: &Attributes<'_>) -> Vec<String> {
+    let ints = a.ints("classlabels_int64s");
+    let ints = if ints.is_empty() { a.ints("classlabels_ints") } else { ints };
+    if ints.is_empty() { a.texts("classlabels_strings") } else { ints.iter().map(i64::to_string).collect() }
+}
+
+/// The task of a classifier of `labels.len()` classes whose scores fill
+/// `columns` columns, from its `post_transform`.
+fn classifier_task(a: &Attributes<'_>, classes: usize, columns: usize) -> Result<(Task, OutputLink), ImportError> {
+    let place = &a.place;
+    let transform = a.text("post_transform", "NONE");
+    if classes < 2 {
+        return Err(a.blame.malformed(place, format!("{classes} class labels")));
+    }
+    Ok(match (transform.as_str(), classes, columns) {
+        // Two classes, one column: the score of the second class.
+        ("NONE", 2, 1) => (Task::Probability, OutputLink::Identity),
+        ("LOGISTIC", 2, 1) => (Task::Probability, OutputLink::Logistic { scale: 1.0 }),
+        ("NONE", _, c) if c == classes => (Task::Probabilities(c), OutputLink::Identity),
+        ("SOFTMAX", _, c) if c == classes => (Task::Probabilities(c), OutputLink::Softmax),
+        (other, _, c) => {
+            return Err(a.blame.unsupported(
+                place,
+                format!("post_transform {other} over {c} score column(s) for {classes} classes"),
+                "export a binary classifier, or a multiclass one with a softmax (multinomial) or none",
+            ));
+        }
+    })
+}
+
+fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
+    let blame = &g.blame;
     let place = a.place.clone();
     let bad = |problem: String| blame.malformed(&place, problem);
+    let classifier = a.place.contains("TreeEnsembleClassifier");
     let tree_ids = a.ints("nodes_treeids");
     let node_ids = a.ints("nodes_nodeids");
     let feature_ids = a.ints("nodes_featureids");
@@ -234,32 +355,43 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             return Err(bad(format!("{name} has {len} entries but nodes_treeids has {n}")));
         }
     }
-    let outputs = usize::try_from(a.by_name.get("n_targets").map_or(1, |t| t.i)).ok().filter(|&k| (1..=10_000).contains(&k)).ok_or_else(|| bad("n_targets out of range".into()))?;
+    let list = if classifier { "class" } else { "target" };
+    let target_trees = a.ints(&format!("{list}_treeids"));
+    let target_nodes = a.ints(&format!("{list}_nodeids"));
+    let target_ids = a.ints(&format!("{list}_ids"));
+    let weights = a.numbers(&format!("{list}_weights"))?.unwrap_or_default();
+    if [target_nodes.len(), target_ids.len(), weights.len()].iter().any(|&l| l != target_trees.len()) {
+        return Err(bad(format!("{list}_treeids, {list}_nodeids, {list}_ids and {list}_weights differ in length")));
+    }
+    let labels = labels(a);
+    let (task, link) = if classifier {
+        let columns = target_ids.iter().copied().max().map_or(1, |m| m.max(0) as usize + 1);
+        let columns = if labels.len() > 2 { labels.len() } else { columns };
+        classifier_task(a, labels.len(), columns)?
+    } else {
+        let targets = usize::try_from(a.int("n_targets", 1)).ok().filter(|&k| (1..=10_000).contains(&k)).ok_or_else(|| bad("n_targets out of range".into()))?;
+        let link = match a.text("post_transform", "NONE").as_str() {
+            "NONE" => OutputLink::Identity,
+            "LOGISTIC" => OutputLink::Logistic { scale: 1.0 },
+            "SOFTMAX" if targets >= 2 => OutputLink::Softmax,
+            other => return Err(blame.unsupported(&place, format!("post_transform {other}"), "export without it")),
+        };
+        (Task::Values(targets), link)
+    };
+    let outputs = task.columns();
     let leaf_count = modes.iter().filter(|m| *m == "LEAF").count();
     if outputs > 1 && leaf_count.saturating_mul(outputs) > 1 << 24 {
-        return Err(bad(format!("{leaf_count} leaves × {outputs} targets: more leaf values than paddock holds (16 M)")));
+        return Err(bad(format!("{leaf_count} leaves × {outputs} outputs: more leaf values than paddock holds (16 M)")));
     }
-    let target_trees = a.ints("target_treeids");
-    let target_nodes = a.ints("target_nodeids");
-    let target_ids = a.ints("target_ids");
-    let weights = a.numbers("target_weights")?.unwrap_or_default();
-    if [target_nodes.len(), target_ids.len(), weights.len()].iter().any(|&l| l != target_trees.len()) {
-        return Err(bad("target_treeids, target_nodeids, target_ids and target_weights differ in length".into()));
-    }
-    let base = a.numbers("base_values")?.unwrap_or_else(|| vec![0.0; outputs]);
-    if base.len() != outputs {
-        return Err(bad(format!("{} base_values for {outputs} targets", base.len())));
-    }
+    let base = match a.numbers("base_values")? {
+        None => vec![0.0; outputs],
+        Some(b) if b.len() == outputs => b,
+        Some(b) => return Err(bad(format!("{} base_values for {outputs} outputs", b.len()))),
+    };
     let combine = match a.text("aggregate_function", "SUM").as_str() {
         "SUM" => Combine::Sum,
         "AVERAGE" => Combine::Mean,
         other => return Err(blame.unsupported(&place, format!("aggregate_function {other}"), "export a sum or an average of trees")),
-    };
-    let link = match a.text("post_transform", "NONE").as_str() {
-        "NONE" => OutputLink::Identity,
-        "LOGISTIC" => OutputLink::Logistic { scale: 1.0 },
-        "SOFTMAX" if outputs >= 2 => OutputLink::Softmax,
-        other => return Err(blame.unsupported(&place, format!("post_transform {other}"), "export without it")),
     };
     // The split rule: one family for the whole ensemble.
     let mut rule = None;
@@ -287,9 +419,12 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         trees.entry(tree_ids[i]).or_default().insert(node_ids[i], i);
     }
     let mut leaf_weights: BTreeMap<(i64, i64), Vec<f64>> = BTreeMap::new();
+    // The one output each tree's leaves feed, or None when they feed several.
+    let mut tree_output: BTreeMap<i64, Option<usize>> = BTreeMap::new();
     for j in 0..target_trees.len() {
-        let k = usize::try_from(target_ids[j]).ok().filter(|&k| k < outputs).ok_or_else(|| bad(format!("target_ids[{j}] = {} but there are {outputs} targets", target_ids[j])))?;
+        let k = usize::try_from(target_ids[j]).ok().filter(|&k| k < outputs).ok_or_else(|| bad(format!("{list}_ids[{j}] = {} but there are {outputs} outputs", target_ids[j])))?;
         leaf_weights.entry((target_trees[j], target_nodes[j])).or_insert_with(|| vec![0.0; outputs])[k] += weights[j];
+        tree_output.entry(target_trees[j]).and_modify(|o| if *o != Some(k) { *o = None }).or_insert(Some(k));
     }
     let mut vectors = Vec::new();
     let mut params_trees = Vec::with_capacity(trees.len());
@@ -305,6 +440,8 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         let raw_id = |id: i64, at: &str| -> Result<u32, ImportError> {
             ids.binary_search(&id).map(|p| p as u32).map_err(|_| blame.malformed(at, format!("child {id} is not a node of tree {t}")))
         };
+        // A tree whose leaves all feed one output adds plain leaf values to it.
+        let only = if outputs == 1 { Some(0) } else { tree_output.get(&t).copied().unwrap_or(Some(0)) };
         let tree_nodes = flatten(
             root,
             ids.len(),
@@ -316,14 +453,15 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                     if let Some(bad) = w.iter().find(|v| !v.is_finite()) {
                         return Err(blame.malformed(&at, format!("leaf weight {bad}")));
                     }
-                    return Ok(if outputs == 1 {
-                        Node::Leaf { value: w[0] }
-                    } else {
-                        vectors.extend_from_slice(&w);
-                        Node::Leaves { first: (vectors.len() - outputs) as u32 }
+                    return Ok(match only {
+                        Some(k) => Node::Leaf { value: w[k] },
+                        None => {
+                            vectors.extend_from_slice(&w);
+                            Node::Leaves { first: (vectors.len() - outputs) as u32 }
+                        }
                     });
                 }
-                let feature = u32::try_from(feature_ids[i]).ok().filter(|&f| (f as usize) < features).ok_or_else(|| blame.malformed(&at, format!("feature {} but the input has {features}", feature_ids[i])))?;
+                let feature = u32::try_from(feature_ids[i]).ok().filter(|&f| (f as usize) < g.features).ok_or_else(|| blame.malformed(&at, format!("feature {} but the input has {}", feature_ids[i], g.features)))?;
                 if values[i].is_nan() {
                     return Err(blame.malformed(&at, "threshold is NaN"));
                 }
@@ -337,57 +475,172 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             },
             || blame.malformed(&format!("tree {t}"), "a node is reached twice: the children do not form a tree"),
         )?;
-        params_trees.push(Tree { output: 0, nodes: tree_nodes });
+        params_trees.push(Tree { output: only.unwrap_or(0) as u32, nodes: tree_nodes });
     }
     if params_trees.is_empty() {
         return Err(bad("no trees".into()));
     }
-    let names: Vec<String> = (0..features).map(|i| format!("x{i}")).collect();
-    let outs: Vec<Output> = if outputs == 1 {
-        vec![Output::new("value", Bounds::OPEN)]
+    // Absent values: the exporter records a way for them only when the
+    // model learned one (HistGradientBoosting, trees fitted on missing values).
+    let learned_missing = tracks_true.iter().any(|&t| t != 0);
+    let missing_text = if learned_missing {
+        "optional: the file sends an absent value its split's missing-value way"
     } else {
-        (0..outputs).map(|k| Output::new(&format!("value_{k}"), Bounds::OPEN)).collect()
+        "required: the file records no way for absent values"
     };
+    let trees_count = params_trees.len();
+    let (kind, arithmetic) = if classifier { ("TreeEnsembleClassifier", "probabilities") } else { ("TreeEnsembleRegressor", "values") };
+    let inputs_text = match g.precision {
+        Precision::Single => "features rounded to float32 (the graph input is float), thresholds (float32, rounded down by skl2onnx for scikit-learn's trees) compared with ≤",
+        Precision::Double => "features in double precision (the graph input is double), compared with ≤ to float32 thresholds",
+    };
+    let params = TreesParams {
+        features: g.features as u32,
+        base,
+        combine,
+        split,
+        trees: params_trees,
+        inputs: g.precision,
+        arithmetic: Precision::Double,
+        link,
+        sets: Vec::new(),
+        vectors,
+    };
+    finish(
+        g,
+        (task, link != OutputLink::Identity),
+        &labels,
+        (learned_missing, missing_text),
+        Estimator::Trees(params),
+        format!("{kind}: {} ({})", task_text(task), link_text(link)),
+        format!("as scikit-learn computes {arithmetic}: {inputs_text}; leaves (float32 in the file) summed in double precision in tree order"),
+        format!("{trees_count} trees"),
+    )
+}
+
+fn task_text(task: Task) -> String {
+    match task {
+        Task::Values(n) => format!("{n} value(s)"),
+        Task::Probability => "the probability of the second class".into(),
+        Task::Probabilities(n) => format!("one probability per class ({n})"),
+        Task::Scores(n) => format!("{n} decision score(s)"),
+    }
+}
+
+fn link_text(link: OutputLink) -> &'static str {
+    match link {
+        OutputLink::Identity => "no link",
+        OutputLink::Logistic { .. } => "logistic link",
+        OutputLink::Exp => "exp link",
+        OutputLink::Softmax => "softmax",
+    }
+}
+
+fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
+    let blame = &g.blame;
+    let place = a.place.clone();
+    let bad = |problem: String| blame.malformed(&place, problem);
+    let classifier = a.place.contains("LinearClassifier");
+    let coefficients = a.numbers("coefficients")?.ok_or_else(|| bad("no coefficients".into()))?;
+    let intercepts = a.numbers("intercepts")?.unwrap_or_default();
+    let rows = coefficients.len() / g.features;
+    if rows == 0 || coefficients.len() % g.features != 0 {
+        return Err(bad(format!("{} coefficients do not fill rows of the input's {} features", coefficients.len(), g.features)));
+    }
+    let intercepts = match intercepts.len() {
+        0 => vec![0.0; rows],
+        l if l == rows => intercepts,
+        l => return Err(bad(format!("{l} intercepts for {rows} rows of coefficients"))),
+    };
+    if let Some(v) = coefficients.iter().chain(&intercepts).find(|v| !v.is_finite()) {
+        return Err(bad(format!("coefficient {v}")));
+    }
+    let weights: Vec<Vec<f64>> = coefficients.chunks(g.features).map(<[f64]>::to_vec).collect();
+    let labels = labels(a);
+    let transform = a.text("post_transform", "NONE");
+    let (task, link, weights, intercepts) = if classifier {
+        let classes = labels.len();
+        match (transform.as_str(), classes, rows) {
+            // Two classes: skl2onnx writes the score of each (−s and s); the
+            // probability of the second is the logistic of its score.
+            ("LOGISTIC", 2, 1 | 2) => (Task::Probability, Link::Logistic, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]]),
+            ("NONE", 2, 1 | 2) => (Task::Scores(1), Link::Identity, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]]),
+            ("SOFTMAX", c, r) if c == r && c > 2 => (Task::Probabilities(c), Link::Softmax, weights, intercepts),
+            ("NONE", c, r) if c == r && c > 2 => (Task::Scores(c), Link::Identity, weights, intercepts),
+            (other, c, r) => {
+                return Err(blame.unsupported(
+                    &place,
+                    format!("post_transform {other} over {r} rows of coefficients for {c} classes"),
+                    "export a binary classifier, or a multinomial one (softmax); one-vs-rest probabilities are not reproduced",
+                ));
+            }
+        }
+    } else {
+        if transform != "NONE" {
+            return Err(blame.unsupported(&place, format!("post_transform {transform}"), "export a plain linear regression"));
+        }
+        (Task::Values(rows), Link::Identity, weights, intercepts)
+    };
+    let size = format!("linear: {} output(s) × {} weights", intercepts.len(), g.features);
+    let kind = if classifier { "LinearClassifier" } else { "LinearRegressor" };
+    let link_name = match link {
+        Link::Identity => "no link",
+        Link::Logistic => "logistic link",
+        _ => "softmax",
+    };
+    finish(
+        g,
+        (task, link != Link::Identity),
+        &labels,
+        (false, "required: a linear score needs every value"),
+        Estimator::Linear(LinearParams { link, intercepts, weights, impute: Vec::new() }),
+        format!("{kind}: {} ({link_name})", task_text(task)),
+        "as scikit-learn computes: features in double precision, coefficients (float32 in the file) summed in double precision; glibc's exp in the link".into(),
+        size,
+    )
+}
+
+/// The contract and origin every ONNX import shares.
+#[allow(clippy::too_many_arguments)]
+fn finish(
+    g: &Graph<'_>,
+    (task, linked): (Task, bool),
+    labels: &[String],
+    (optional, missing_text): (bool, &str),
+    estimator: Estimator,
+    task_line: String,
+    arithmetic: String,
+    size: String,
+) -> Result<Imported, ImportError> {
+    let names: Vec<String> = (0..g.features).map(|i| format!("x{i}")).collect();
+    let (outputs, about) = task.outputs(labels, linked);
     let mut sources: Vec<Source> = names
         .iter()
         .map(|n| Source {
             part: format!("feature {n}"),
-            from: format!("by position in the graph input `{}` (ONNX names no columns; name them in a manifest); required: scikit-learn's trees need every value", input.name),
+            from: format!("by position in the graph input `{}` (ONNX names no columns; name them in a manifest); {missing_text}", g.input),
         })
         .collect();
-    for o in &outs {
-        sources.push(Source { part: format!("output {}", o.name), from: "the tree ensemble's targets".into() });
+    for (o, about) in outputs.iter().zip(&about) {
+        sources.push(Source { part: format!("output {}", o.name), from: format!("the model's {about}") });
     }
-    let trees_count = params_trees.len();
+    let feature = |n: &String| if optional { Feature::real(n, Bounds::OPEN).optional() } else { Feature::real(n, Bounds::OPEN) };
     Ok(Imported {
-        packaged: Packaged {
-            contract: Contract {
-                name: String::new(),
-                version: String::new(),
-                about: String::new(),
-                features: names.iter().map(|n| Feature::real(n, Bounds::OPEN)).collect(),
-                outputs: outs,
-            },
-            params: TreesParams {
-                features: features as u32,
-                base,
-                combine,
-                split,
-                trees: params_trees,
-                inputs,
-                arithmetic: Precision::Double,
-                link,
-                sets: Vec::new(),
-                vectors,
-            },
+        contract: Contract {
+            name: String::new(),
+            version: String::new(),
+            about: String::new(),
+            features: names.iter().map(feature).collect(),
+            outputs: outputs.into_iter().zip(about).map(|(o, about)| o.about(&about)).collect(),
         },
+        estimator,
         origin: Origin {
             format: Format::SklearnOnnx.name().to_owned(),
-            file: file.to_owned(),
-            toolkit: if producer.is_empty() { "(producer not recorded)".into() } else { producer },
-            task: format!("TreeEnsembleRegressor: {outputs} value(s)"),
-            arithmetic: "as scikit-learn computes: features rounded to float32, thresholds (float32, rounded down by skl2onnx) compared with ≤, leaves (float32 in the file) summed in double precision in tree order".into(),
-            trees: trees_count,
+            file: g.blame.file.to_owned(),
+            toolkit: if g.producer.is_empty() { "(producer not recorded)".into() } else { g.producer.clone() },
+            task: task_line,
+            arithmetic,
+            estimator: size,
             contract: sources,
         },
     })

@@ -18,8 +18,9 @@ pub struct Origin {
     pub task: String,
     /// The arithmetic reproduced (precision, split rule, missing values).
     pub arithmetic: String,
-    /// Number of trees.
-    pub trees: usize,
+    /// The estimator the model runs on and its size ("300 trees",
+    /// "linear: 3 outputs × 30 weights").
+    pub estimator: String,
     /// Where each part of the contract came from, in contract order.
     pub contract: Vec<Source>,
 }

@@ -3,7 +3,7 @@
 
 use paddock_guest::{Branch, Node, OutputLink, Precision};
 
-use crate::{Format, import};
+use crate::{Estimator, Format, import};
 
 /// XGBoost JSON with one stump (x0 < 0.5 → −1, else 2; absent → right).
 fn xgboost(tree: &str) -> String {
@@ -25,11 +25,11 @@ fn err(bytes: &str, format: Format) -> String {
 #[test]
 fn a_stump_from_xgboost_becomes_single_precision_params() {
     let imported = import(xgboost(STUMP).as_bytes(), Format::XgboostJson, "dir/stump.json", None).unwrap();
-    let p = &imported.packaged.params;
+    let Estimator::Trees(p) = &imported.estimator else { panic!("trees") };
     assert_eq!((p.inputs, p.arithmetic, p.link), (Precision::Single, Precision::Single, OutputLink::Identity));
     assert_eq!(p.base, vec![0.5]);
     assert_eq!(p.trees[0].nodes[0], Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right });
-    let c = &imported.packaged.contract;
+    let c = &imported.contract;
     assert_eq!(c.name, "stump");
     assert_eq!(c.features.iter().map(|f| f.name.as_str()).collect::<Vec<_>>(), ["f0", "f1"]);
     assert_eq!(c.outputs[0].name, "value");
@@ -62,7 +62,7 @@ cat_threshold=5\nis_linear=0\nshrinkage=1\n\n\nend of trees\n";
 #[test]
 fn a_lightgbm_tree_with_a_categorical_split_becomes_params() {
     let imported = import(LGB.as_bytes(), Format::LightgbmText, "m.txt", None).unwrap();
-    let p = &imported.packaged.params;
+    let Estimator::Trees(p) = &imported.estimator else { panic!("trees") };
     assert_eq!(p.link, OutputLink::Logistic { scale: 2.0 });
     assert_eq!(p.sets, vec![vec![5]]);
     // Root: feature b in {0, 2} goes left to the numeric split on a
@@ -70,7 +70,7 @@ fn a_lightgbm_tree_with_a_categorical_split_becomes_params() {
     assert_eq!(p.trees[0].nodes[0], Node::Member { feature: 1, set: 0, left: 1, right: 4, missing: Branch::Right, members: Branch::Left });
     assert_eq!(p.trees[0].nodes[1], Node::Split { feature: 0, threshold: 0.25, left: 2, right: 3, missing: Branch::Left });
     assert_eq!(p.trees[0].nodes[4], Node::Leaf { value: 1.5 });
-    let c = &imported.packaged.contract;
+    let c = &imported.contract;
     assert!(matches!(c.features[1].domain, paddock_guest::Domain::Whole(_)));
     assert_eq!(c.outputs[0].name, "probability");
 }

@@ -15,12 +15,12 @@
 //! function XGBoost calls.
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Packaged, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
 };
 use serde_json::Value;
 
 use crate::flatten::flatten;
-use crate::{Blame, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
 
 /// How an objective's margin becomes its outputs.
 #[derive(Clone, Copy, PartialEq)]
@@ -236,20 +236,20 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     for o in &outputs {
         contract_sources.push(Source { part: format!("output {}", o.name), from: format!("the objective {objective}") });
     }
-    let packaged = Packaged {
-        contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs },
-        params,
-    };
     let origin = Origin {
         format: Format::XgboostJson.name().to_owned(),
         file: file.to_owned(),
         toolkit: format!("XGBoost {version}"),
         task: task_text,
         arithmetic: "single precision as XGBoost computes: features, thresholds, leaves and sums in float32; left when x < split_condition; absent values their split's default way".to_owned(),
-        trees: packaged.params.trees.len(),
+        estimator: format!("{} trees", params.trees.len()),
         contract: contract_sources,
     };
-    Ok(Imported { packaged, origin })
+    Ok(Imported {
+        contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs },
+        estimator: Estimator::Trees(params),
+        origin,
+    })
 }
 
 fn outputs(task: Task, classes: usize, objective: &str) -> (Vec<Output>, String) {

@@ -15,9 +15,9 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use paddock_guest::ndarray::{Array2, ArrayView2};
-use paddock_guest::{Evaluate, Trees, encode_params};
+use paddock_guest::{Evaluate, Trees};
 use paddock_host::{Artifact, Model, ModelOptions, Runtime};
-use paddock_import::{Format, import};
+use paddock_import::{Estimator, Format, import};
 use paddock_tests::{time, guest, root};
 use serde_json::Value;
 
@@ -30,10 +30,11 @@ fn packed(path: &Path) -> (Vec<u8>, Trees, usize) {
     let bytes = read(path);
     let format = Format::recognise(&bytes).expect("a model file");
     let imported = import(&bytes, format, &path.display().to_string(), None).unwrap();
-    let trees = imported.packaged.params.trees.len();
-    let params = encode_params(&imported.packaged);
-    let native = Trees::new(imported.packaged.params).unwrap();
-    (paddock_host::pack(&guest("paddock-model-trees"), Some(&params), None).unwrap(), native, trees)
+    let params = imported.params();
+    let Estimator::Trees(trees) = imported.estimator else { panic!("{}: not a tree ensemble", path.display()) };
+    let count = trees.trees.len();
+    let native = Trees::new(trees).unwrap();
+    (paddock_host::pack(&guest("paddock-model-trees"), Some(&params), None).unwrap(), native, count)
 }
 
 struct Measured {
@@ -86,7 +87,7 @@ fn main() {
         let checks: Value = serde_json::from_slice(&read(&dir.join("lgb-diabetes-regression.checks.json"))).unwrap();
         let bytes = read(&dir.join("lgb-diabetes-regression.txt"));
         let imported = import(&bytes, Format::LightgbmText, "lgb-diabetes-regression.txt", None).unwrap();
-        let order: Vec<String> = imported.packaged.contract.features.iter().map(|f| f.name.clone()).collect();
+        let order: Vec<String> = imported.contract.features.iter().map(|f| f.name.clone()).collect();
         let cases = checks["cases"].as_array().unwrap();
         let cells: Vec<f64> =
             cases.iter().flat_map(|c| order.iter().map(move |f| c["row"].get(f).and_then(Value::as_f64).unwrap_or(f64::NAN))).collect();

@@ -114,11 +114,41 @@ for name, model in [
     ("skl-diabetes-boosted", GradientBoostingRegressor(n_estimators=80, max_depth=3, random_state=0)),
 ]:
     hand_off(model.fit(x, y), x, os.path.join(OUT, name))
-# A classifier, which the importer refuses for now, naming the node.
+# HistGradientBoosting learns where absent values go: holes in the data.
+from sklearn.ensemble import (ExtraTreesClassifier, GradientBoostingClassifier, HistGradientBoostingClassifier,  # noqa: E402
+                              HistGradientBoostingRegressor, RandomForestClassifier)
+from sklearn.linear_model import LinearRegression, LogisticRegression, Ridge  # noqa: E402
 from sklearn.tree import DecisionTreeClassifier  # noqa: E402
+
+HIST = dict(max_iter=60, max_leaf_nodes=15, learning_rate=0.1, random_state=0)
+x, y, names = data(load_diabetes, holes=(2, 5))
+hand_off(HistGradientBoostingRegressor(**HIST).fit(x, y), x, os.path.join(OUT, "skl-diabetes-hist"))
+x, y, names = data(load_diabetes)
+# Named columns: the helper writes a manifest naming the ONNX file's x0, x1…
+hand_off(LinearRegression().fit(x, y), x, os.path.join(OUT, "skl-diabetes-linear"), names=names)
+hand_off(Ridge(alpha=0.5).fit(x, y), x, os.path.join(OUT, "skl-diabetes-ridge"))
+
+x, y, names = data(load_breast_cancer)
+hand_off(DecisionTreeClassifier(max_depth=5, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-tree"))
+hand_off(GradientBoostingClassifier(n_estimators=60, max_depth=3, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-boosted"))
+hand_off(LogisticRegression(max_iter=10000).fit(x, y), x, os.path.join(OUT, "skl-cancer-logistic"))
+x, y, names = data(load_breast_cancer, holes=(0, 7, 20))
+hand_off(HistGradientBoostingClassifier(**HIST).fit(x, y), x, os.path.join(OUT, "skl-cancer-hist"))
+
+x, y, names = data(load_iris)
+hand_off(RandomForestClassifier(n_estimators=30, max_depth=5, random_state=0, n_jobs=1).fit(x, y), x, os.path.join(OUT, "skl-iris-forest"))
+hand_off(GradientBoostingClassifier(n_estimators=40, max_depth=2, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-iris-boosted"))
+hand_off(LogisticRegression(max_iter=10000).fit(x, y), x, os.path.join(OUT, "skl-iris-logistic"))
+x, y, names = data(load_wine)
+hand_off(ExtraTreesClassifier(n_estimators=30, max_depth=6, random_state=0, n_jobs=1).fit(x, y), x, os.path.join(OUT, "skl-wine-extra"))
+x, y, names = data(load_wine, holes=(1, 9))
+hand_off(HistGradientBoostingClassifier(**HIST).fit(x, y), x, os.path.join(OUT, "skl-wine-hist"))
+
+# One-vs-rest probabilities, which the importer refuses naming the node.
+from sklearn.multiclass import OneVsRestClassifier  # noqa: E402
 xc, yc, _ = data(load_iris)
-onx = to_onnx(DecisionTreeClassifier(max_depth=3, random_state=0).fit(xc, yc), initial_types=[("X", FloatTensorType([None, 4]))],
+onx = to_onnx(OneVsRestClassifier(LogisticRegression(max_iter=1000)).fit(xc, yc), initial_types=[("X", FloatTensorType([None, 4]))],
               options={"zipmap": False})
-with open(os.path.join(OUT, "refused-skl-classifier.onnx"), "wb") as f:
+with open(os.path.join(OUT, "refused-skl-one-vs-rest.onnx"), "wb") as f:
     f.write(onx.SerializeToString())
 print(f"scikit-learn {sklearn.__version__} via skl2onnx {skl2onnx.__version__}")

@@ -460,7 +460,7 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
     std::fs::write(row_seeds.join("ndjson"), "{\"kw\": 11, \"hour\": 3, \"plug\": \"ccs2\", \"fleet\": true, \"id\": \"a\"}\n")?;
     std::fs::write(row_seeds.join("csv"), "id,kw,hour,plug,fleet\na,11,3,ccs2,yes\nb,,x,,\n")?;
     // Small models the toolkits wrote (tests/imports/export.py, run by `xtask test`).
-    for model in ["xgb-iris-softmax.json", "lgb-iris-one-vs-rest.txt", "lgb-wine-categorical.txt", "skl-diabetes-tree.onnx"] {
+    for model in ["xgb-iris-softmax.json", "lgb-iris-one-vs-rest.txt", "lgb-wine-categorical.txt", "skl-diabetes-tree.onnx", "skl-iris-logistic.onnx", "skl-wine-hist.onnx"] {
         let from = root.join("target/paddock/imports").join(model);
         std::fs::copy(&from, import_seeds.join(model))
             .with_context(|| format!("copying {} (run `cargo xtask test` first: it exports the models)", from.display()))?;

@@ -72,7 +72,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         print!("\n{}", contract_text(c));
     }
     if let Some(o) = &report.origin {
-        println!("\nimported from {} ({}, {} trees)", o.file, o.format, o.trees);
+        println!("\nimported from {} ({}, {})", o.file, o.format, o.estimator);
         println!("  toolkit     {}", o.toolkit);
         println!("  task        {}", o.task);
         println!("  arithmetic  {}", o.arithmetic);

@@ -14,10 +14,10 @@ use crate::common::{LoadArgs, WasiArgs, print_json};
 /// Make an artifact: componentize a core module built for
 /// wasm32-unknown-unknown (or take a component), add params and checks,
 /// then load it and run its checks. A model file a toolkit saved (XGBoost
-/// JSON, LightGBM text, a scikit-learn tree regressor in ONNX) is imported
-/// onto the trees guest, its contract taken from the file; any other ONNX
-/// model (`MODEL.onnx`) is packed with the ONNX evaluator guest, its
-/// manifest giving the contract.
+/// JSON, LightGBM text, a scikit-learn tree ensemble or linear model in
+/// ONNX) is imported onto the trees or linear guest, its contract taken
+/// from the file; any other ONNX model (`MODEL.onnx`) is packed with the
+/// ONNX evaluator guest, its manifest giving the contract.
 #[derive(clap::Args)]
 pub struct Args {
     /// The component or core module to pack, a toolkit's model file
@@ -35,9 +35,9 @@ pub struct Args {
     /// domain, unit, required-ness, bounds; see the README).
     #[arg(long, value_name = "FILE")]
     manifest: Option<PathBuf>,
-    /// The guest that evaluates an imported or ONNX model
-    /// [default: target/paddock/guests/paddock-model-trees.wasm, or
-    /// paddock-model-onnx.wasm for ONNX, as `cargo xtask build` leaves them].
+    /// The guest that evaluates an imported or ONNX model [default: the
+    /// trees or linear guest the import needs, or the ONNX evaluator, from
+    /// target/paddock/guests/ where `cargo xtask build` leaves them].
     #[arg(long, value_name = "FILE")]
     evaluator: Option<PathBuf>,
     /// Checks to carry (JSON: example rows with recorded outputs).
@@ -60,8 +60,8 @@ pub struct Args {
 
 /// Where `cargo xtask build` leaves the ONNX evaluator guest.
 const DEFAULT_EVALUATOR: &str = "target/paddock/guests/paddock-model-onnx.wasm";
-/// Where `cargo xtask build` leaves the trees guest imported models run on.
-const DEFAULT_TREES: &str = "target/paddock/guests/paddock-model-trees.wasm";
+/// Where `cargo xtask build` leaves the guests imported models run on.
+const GUESTS: &str = "target/paddock/guests";
 
 /// A toolkit's model file format.
 #[derive(Clone, Copy, clap::ValueEnum)]
@@ -70,7 +70,7 @@ enum ModelFormat {
     Xgboost,
     /// LightGBM's text model (`booster.save_model("m.txt")`).
     Lightgbm,
-    /// An ONNX file holding a scikit-learn tree ensemble, as skl2onnx writes it.
+    /// An ONNX file holding a scikit-learn tree ensemble or linear model, as skl2onnx writes it.
     SklearnOnnx,
 }
 
@@ -104,18 +104,31 @@ pub fn run(args: Args) -> Result<Outcome> {
         _ if format.is_some() => {
             let format = format.expect("checked just above");
             let manifest = match &args.manifest {
-                Some(p) => Some(
-                    Manifest::from_toml(&std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?)
-                        .with_context(|| format!("in {}", p.display()))?,
-                ),
+                Some(p) => {
+                    let text = std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?;
+                    let evaluator_manifest = is_onnx && text.lines().any(|l| l.trim_start().starts_with("[[features]]"));
+                    Some(Manifest::from_toml(&text).with_context(|| {
+                        if evaluator_manifest {
+                            format!(
+                                "in {}: {} holds a model paddock imports ({}), so --manifest takes overrides of its contract \
+                                 (`[features.x0] name = \"…\"`; see the README), not an ONNX evaluator manifest",
+                                p.display(),
+                                args.input.display(),
+                                format.name()
+                            )
+                        } else {
+                            format!("in {}", p.display())
+                        }
+                    })?)
+                }
                 None => None,
             };
             anyhow::ensure!(args.params.is_none(), "--params is for WebAssembly input; {} is a {}", args.input.display(), format.name());
             let imported = paddock_import::import(&input, format, &args.input.display().to_string(), manifest.as_ref())?;
-            let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_TREES));
-            let guest = read(&evaluator).context("the trees guest (build it with `cargo xtask build`, or pass --evaluator)")?;
+            let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(GUESTS).join(format!("{}.wasm", imported.guest())));
+            let guest = read(&evaluator).with_context(|| format!("the {} guest (build it with `cargo xtask build`, or pass --evaluator)", imported.guest()))?;
             origin = Some(imported.origin.to_map());
-            (guest, Some(paddock_guest::encode_params(&imported.packaged)))
+            (guest, Some(imported.params()))
         }
         (Some(manifest), true) => {
             let text = std::fs::read_to_string(manifest).with_context(|| format!("reading {}", manifest.display()))?;
