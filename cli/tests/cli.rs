@@ -241,6 +241,34 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     assert!(err.contains("holds a model paddock imports (scikit-learn model in ONNX (skl2onnx)), so --manifest takes overrides of its contract"), "{err}");
 }
 
+/// A PMML document packs onto the program guest; the checks are worked
+/// out by hand from the document (tests/pmml.rs shows the steps).
+#[test]
+fn pack_imports_a_pmml_document_onto_the_program_guest() {
+    let checks = tmp("minutes.checks.json");
+    std::fs::write(
+        &checks,
+        r#"{"source": "worked out by hand from tests/pmml/charge-session-minutes.pmml", "tolerance": {"abs": 0, "rel": 0}, "cases": [
+            {"row": {"arrival_soc": 20, "kw": 50, "plug": "ccs2", "hour": 8}, "expect": {"minutes": 58}},
+            {"row": {"kw": 11, "plug": "type2", "hour": 22}, "expect": {"minutes": 342}}]}"#,
+    )
+    .unwrap();
+    let out = tmp("minutes.wasm");
+    let o = paddock(&["pack", "tests/pmml/charge-session-minutes.pmml", "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(text(&o.stdout).contains("loads as charge-session-minutes 0.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
+    let o = paddock(&["inspect", out.to_str().unwrap()], None);
+    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    assert!(shown.contains("imported from tests/pmml/charge-session-minutes.pmml (PMML document, scoring program:"), "{shown}");
+    assert!(shown.contains("feature plug the DataDictionary (line 15): categorical string; labels ccs2, type2, chademo"), "{shown}");
+    // A label outside the DataDictionary's Values is refused by the contract.
+    let rows = tmp("minutes.ndjson");
+    std::fs::write(&rows, "{\"arrival_soc\": 20, \"kw\": 50, \"plug\": \"gb-t\", \"hour\": 8}\n").unwrap();
+    let o = paddock(&["score", out.to_str().unwrap(), rows.to_str().unwrap()], None);
+    assert_eq!(o.status.code(), Some(1), "{}", text(&o.stdout));
+    assert!(text(&o.stdout).contains("plug") && text(&o.stdout).contains("gb-t"), "{}", text(&o.stdout));
+}
+
 #[test]
 fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let dir = tempfile::tempdir().unwrap();

@@ -5,7 +5,7 @@
 
 use libfuzzer_sys::fuzz_target;
 use paddock_guest::ndarray::Array2;
-use paddock_guest::{Evaluate, Linear, Trees};
+use paddock_guest::{Evaluate, Linear, Program, Trees};
 use paddock_import::{Estimator, Format, import};
 
 fuzz_target!(|data: &[u8]| {
@@ -20,6 +20,7 @@ fuzz_target!(|data: &[u8]| {
         match imported.estimator {
             Estimator::Trees(params) => score(Trees::new(params).expect("imported params build an estimator"), features),
             Estimator::Linear(params) => score(Linear::new(params).expect("imported params build an estimator"), features),
+            Estimator::Program(params) => score(Program::new(params).expect("imported params build an estimator"), features),
             _ => {}
         }
     }

@@ -54,7 +54,8 @@
 //!   training code;
 //! - row-major views: `score` receives the rows as an `ndarray` view, one row
 //!   per model row, one column per feature, absent optional features as NaN;
-//! - built-in estimators driven entirely by params ([`Linear`], [`Trees`]) and
+//! - built-in estimators driven entirely by params ([`Linear`], [`Trees`],
+//!   [`Program`] for what PMML documents describe) and
 //!   [`Generic`], which carries its contract in the params too, so one compiled
 //!   module serves any number of trained models.
 //!
@@ -71,6 +72,7 @@ mod exp;
 mod generic;
 mod linear;
 mod params;
+mod program;
 mod spelling;
 mod trees;
 
@@ -81,6 +83,11 @@ pub use contract::{Bounds, Contract, Domain, Fault, Feature, Output};
 pub use generic::{Declared, Evaluate, Fixed, Generic, Packaged, build_for};
 pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
+pub use program::MAX_DEPTH as PROGRAM_MAX_DEPTH;
+pub use program::{
+    Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Model, Normalize, Outliers, Predicate, Program,
+    ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
+};
 pub use spelling::DomainSpec;
 pub use trees::{Branch, Combine, Node, OutputLink, Precision, SplitRule, Tree, Trees, TreesParams};
 

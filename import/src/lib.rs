@@ -1,6 +1,6 @@
 //! Importers: the model files training toolkits save, turned into the
-//! params of paddock's built-in tree-ensemble estimator, with the contract
-//! the file declares.
+//! params of paddock's built-in estimators (trees, linear, scoring
+//! programs), with the contract the file declares.
 //!
 //! What it is: a pure function from a file's bytes (and an optional
 //! manifest of overrides) to [`Imported`]: a [`Packaged`] contract and
@@ -18,9 +18,10 @@
 //! Formats: XGBoost's JSON model ([`Format::XgboostJson`], what
 //! `save_model("m.json")` writes), LightGBM's text model
 //! ([`Format::LightgbmText`], what `booster.save_model("m.txt")` writes),
-//! and the ONNX file skl2onnx writes for a scikit-learn tree ensemble or
+//! the ONNX file skl2onnx writes for a scikit-learn tree ensemble or
 //! linear model ([`Format::SklearnOnnx`]; float32 leaves and coefficients,
-//! so within their rounding).
+//! so within their rounding), and PMML 4.x documents ([`Format::Pmml`]:
+//! regression, tree and mining models, evaluated as written).
 
 #![deny(missing_docs)]
 
@@ -29,11 +30,12 @@ mod lightgbm;
 mod onnx;
 pub mod manifest;
 mod origin;
+mod pmml;
 mod xgboost;
 
 pub use manifest::Manifest;
 pub use origin::{Origin, Source};
-use paddock_guest::{Contract, LinearParams, Packaged, TreesParams, encode_params};
+use paddock_guest::{Contract, LinearParams, Packaged, ProgramParams, TreesParams, encode_params};
 
 /// A model file format an importer reads.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -46,11 +48,14 @@ pub enum Format {
     /// An ONNX file with a scikit-learn tree ensemble or linear model
     /// (`TreeEnsembleRegressor`/`Classifier`, `LinearRegressor`/`Classifier`), as skl2onnx writes it.
     SklearnOnnx,
+    /// A PMML document (DMG, version 4.x): a RegressionModel, TreeModel or
+    /// MiningModel of them.
+    Pmml,
 }
 
 impl Format {
     /// Every format, in the order they are tried.
-    pub const ALL: [Format; 3] = [Format::XgboostJson, Format::LightgbmText, Format::SklearnOnnx];
+    pub const ALL: [Format; 4] = [Format::XgboostJson, Format::LightgbmText, Format::SklearnOnnx, Format::Pmml];
 
     /// The format's name as people say it.
     pub fn name(self) -> &'static str {
@@ -58,6 +63,7 @@ impl Format {
             Format::XgboostJson => "XGBoost JSON model",
             Format::LightgbmText => "LightGBM text model",
             Format::SklearnOnnx => "scikit-learn model in ONNX (skl2onnx)",
+            Format::Pmml => "PMML document",
         }
     }
 
@@ -67,6 +73,7 @@ impl Format {
             Format::XgboostJson => "xgboost",
             Format::LightgbmText => "lightgbm",
             Format::SklearnOnnx => "sklearn-onnx",
+            Format::Pmml => "pmml",
         }
     }
 
@@ -78,6 +85,8 @@ impl Format {
             Some(Format::XgboostJson)
         } else if text.starts_with("tree\n") || text.starts_with("tree\r\n") {
             Some(Format::LightgbmText)
+        } else if (text.starts_with("<?xml") || text.starts_with("<PMML") || text.starts_with("<!--")) && text.contains("<PMML") {
+            Some(Format::Pmml)
         } else if bytes.first() == Some(&0x08) && [&b"TreeEnsemble"[..], b"LinearRegressor", b"LinearClassifier"].iter().any(|op| bytes.windows(op.len()).any(|w| w == *op)) {
             Some(Format::SklearnOnnx)
         } else {
@@ -100,7 +109,7 @@ pub fn looks_like(bytes: &[u8]) -> &'static str {
     } else if head.starts_with(b"\0asm") {
         "WebAssembly (pack it as a component, not as a model file)"
     } else if text.starts_with("<?xml") || text.starts_with("<PMML") {
-        if text.contains("<PMML") { "PMML" } else { "XML, not a model format paddock imports" }
+        if text.contains("<PMML") { "a PMML document" } else { "XML, not a model format paddock imports" }
     } else if text.starts_with('{') {
         "JSON, but not an XGBoost model (no `learner` object)"
     } else if head.contains(&0) {
@@ -133,6 +142,8 @@ pub enum Estimator {
     Trees(TreesParams),
     /// Linear and logistic models (`paddock-model-linear`).
     Linear(LinearParams),
+    /// Scoring programs: what a PMML document describes (`paddock-model-program`).
+    Program(ProgramParams),
 }
 
 impl Imported {
@@ -143,6 +154,7 @@ impl Imported {
         match &self.estimator {
             Estimator::Trees(params) => encode_params(&Packaged { contract, params: params.clone() }),
             Estimator::Linear(params) => encode_params(&Packaged { contract, params: params.clone() }),
+            Estimator::Program(params) => encode_params(&Packaged { contract, params: params.clone() }),
         }
     }
 
@@ -152,6 +164,7 @@ impl Imported {
         match &self.estimator {
             Estimator::Trees(_) => "paddock-model-trees",
             Estimator::Linear(_) => "paddock-model-linear",
+            Estimator::Program(_) => "paddock-model-program",
         }
     }
 }
@@ -235,6 +248,7 @@ pub fn import(bytes: &[u8], format: Format, file: &str, manifest: Option<&Manife
         Format::XgboostJson => xgboost::import(bytes, file)?,
         Format::LightgbmText => lightgbm::import(bytes, file)?,
         Format::SklearnOnnx => onnx::import(bytes, file)?,
+        Format::Pmml => pmml::import(bytes, file)?,
     };
     let stem = std::path::Path::new(file).file_stem().and_then(|s| s.to_str()).unwrap_or("model");
     manifest::apply(&mut imported, manifest, stem)?;

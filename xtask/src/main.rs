@@ -35,11 +35,12 @@ use anyhow::{Context, Result, bail};
 mod modules;
 
 /// Guests: (package, library file stem).
-const GUESTS: [(&str, &str); 6] = [
+const GUESTS: [(&str, &str); 7] = [
     ("charge-minutes", "charge_minutes"),
     ("overstay-risk", "overstay_risk"),
     ("paddock-model-linear", "paddock_model_linear"),
     ("paddock-model-trees", "paddock_model_trees"),
+    ("paddock-model-program", "paddock_model_program"),
     ("paddock-model-onnx", "paddock_model_onnx"),
     ("charge-taper", "charge_taper"),
 ];
@@ -90,6 +91,10 @@ fn main() -> Result<()> {
                 export.arg(root.join(script)).arg(root.join(out));
                 run(export)?;
             }
+            // PMML from nyoka, which needs the scikit-learn of its day: for tests/pmml.rs.
+            let mut export = Command::new(pmml_venv(&root)?);
+            export.arg(root.join("tests/pmml/export.py")).arg(root.join("target/paddock/pmml"));
+            run(export)?;
             let mut cmd = cargo(&root);
             // The ONNX evaluator is a guest: built for wasm32 above, and tested
             // through the sandbox (tests/sklearn.rs); compiling tract natively
@@ -382,6 +387,26 @@ fn pack_with(tools: &Tools, input: &Path, args: Vec<OsString>, out: &Path) -> Re
     run(pack)
 }
 
+/// The PMML exporter nyoka 5.5.0 supports scikit-learn up to 1.3: it gets
+/// a virtual environment of its own, with that scikit-learn pinned.
+const PMML_PACKAGES: [&str; 3] = ["nyoka==5.5.0", "scikit-learn==1.3.2", "numpy==1.26.4"];
+
+/// Makes `target/paddock/pmml-venv` with [`PMML_PACKAGES`] (quick when it
+/// is there) and returns its Python.
+fn pmml_venv(root: &Path) -> Result<PathBuf> {
+    let venv = root.join("target/paddock/pmml-venv");
+    let python = venv.join("bin/python");
+    if !python.exists() {
+        let mut make = Command::new("python3");
+        make.args(["-m", "venv"]).arg(&venv);
+        run(make).context("making the PMML exporter's virtual environment (python3 -m venv)")?;
+    }
+    let mut pip = Command::new(&python);
+    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PMML_PACKAGES);
+    run(pip).context("installing nyoka and scikit-learn 1.3.2 in target/paddock/pmml-venv")?;
+    Ok(python)
+}
+
 /// Installs [`PYTHON_PACKAGES`] and the notebook helper (`handoff/`) with
 /// pip (quick when they are there).
 fn python_packages(root: &Path) -> Result<()> {
@@ -464,6 +489,10 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
         let from = root.join("target/paddock/imports").join(model);
         std::fs::copy(&from, import_seeds.join(model))
             .with_context(|| format!("copying {} (run `cargo xtask test` first: it exports the models)", from.display()))?;
+    }
+    // PMML documents: the hand-worked examples, which cover every construct read.
+    for doc in ["dmg-golf-tree.pmml", "charge-session-minutes.pmml", "charge-overstay-vote.pmml"] {
+        std::fs::copy(root.join("tests/pmml").join(doc), import_seeds.join(doc)).with_context(|| format!("copying tests/pmml/{doc}"))?;
     }
     for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds), ("import", &import_seeds)] {
         let mut c = cargo(&root.join("fuzz"));

@@ -15,13 +15,13 @@ use crate::common::{LoadArgs, WasiArgs, print_json};
 /// wasm32-unknown-unknown (or take a component), add params and checks,
 /// then load it and run its checks. A model file a toolkit saved (XGBoost
 /// JSON, LightGBM text, a scikit-learn tree ensemble or linear model in
-/// ONNX) is imported onto the trees or linear guest, its contract taken
+/// ONNX, PMML) is imported onto the trees, linear or program guest, its contract taken
 /// from the file; any other ONNX model (`MODEL.onnx`) is packed with the
 /// ONNX evaluator guest, its manifest giving the contract.
 #[derive(clap::Args)]
 pub struct Args {
     /// The component or core module to pack, a toolkit's model file
-    /// (XGBoost `.json`, LightGBM `.txt`), or an ONNX model (`.onnx`).
+    /// (XGBoost `.json`, LightGBM `.txt`, PMML `.pmml`), or an ONNX model (`.onnx`).
     input: PathBuf,
     /// The model file's format, when it is not recognised from its content.
     #[arg(long, value_enum)]
@@ -36,7 +36,7 @@ pub struct Args {
     #[arg(long, value_name = "FILE")]
     manifest: Option<PathBuf>,
     /// The guest that evaluates an imported or ONNX model [default: the
-    /// trees or linear guest the import needs, or the ONNX evaluator, from
+    /// trees, linear or program guest the import needs, or the ONNX evaluator, from
     /// target/paddock/guests/ where `cargo xtask build` leaves them].
     #[arg(long, value_name = "FILE")]
     evaluator: Option<PathBuf>,
@@ -72,6 +72,8 @@ enum ModelFormat {
     Lightgbm,
     /// An ONNX file holding a scikit-learn tree ensemble or linear model, as skl2onnx writes it.
     SklearnOnnx,
+    /// A PMML 4.x document: a RegressionModel, TreeModel or MiningModel of them.
+    Pmml,
 }
 
 impl From<ModelFormat> for Format {
@@ -80,6 +82,7 @@ impl From<ModelFormat> for Format {
             ModelFormat::Xgboost => Format::XgboostJson,
             ModelFormat::Lightgbm => Format::LightgbmText,
             ModelFormat::SklearnOnnx => Format::SklearnOnnx,
+            ModelFormat::Pmml => Format::Pmml,
         }
     }
 }
@@ -148,7 +151,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             let wat = text.is_ok_and(|t| t.starts_with('(') || t.starts_with(";;"));
             anyhow::ensure!(
                 input.starts_with(b"\0asm") || wat,
-                "{}: not WebAssembly, nor a model file paddock imports (XGBoost JSON, LightGBM text, ONNX); it looks like {}",
+                "{}: not WebAssembly, nor a model file paddock imports (XGBoost JSON, LightGBM text, ONNX, PMML); it looks like {}",
                 args.input.display(),
                 paddock_import::looks_like(&input)
             );
