@@ -51,6 +51,7 @@ pub mod checks;
 pub mod codecache;
 pub mod contract;
 pub mod digest;
+pub mod features;
 pub mod limits;
 pub mod model;
 pub mod onnx;

@@ -95,6 +95,14 @@ impl Row {
         self.0.push((name, value));
     }
 
+    /// Sets a feature's value: replaces the value it has, or adds it.
+    pub fn set(&mut self, name: &str, value: Value) {
+        match self.0.iter_mut().find(|(n, _)| n == name) {
+            Some((_, v)) => *v = value,
+            None => self.0.push((name.to_owned(), value)),
+        }
+    }
+
     /// The values, in insertion order.
     pub fn fields(&self) -> &[(String, Value)] {
         &self.0

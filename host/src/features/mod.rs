@@ -1,0 +1,374 @@
+//! Feature sources, between the registry and the sandbox: a request names
+//! keys (`site`, `vehicle`), and the features its model reads are looked
+//! up in the sources a features file declares, then checked against the
+//! contract like any row.
+//!
+//! - [`Plan`]: the features file (`plan` module): the sources, and per
+//!   model (and version) where each feature comes from and what a missing
+//!   or stale value becomes.
+//! - [`Table`]: an embedded table a batch job writes, held in memory.
+//! - [`Sources`]: the plan's tables, loaded; [`Resolved`]: a plan held to
+//!   one version's contract, ready to [`Resolved::gather`] rows. Both hold
+//!   their tables by `Arc`, so a request that took them sees one table from
+//!   start to end, whatever is swapped in meanwhile.
+//!
+//! What it is not: a feature store. It reads what a batch job wrote; it
+//! computes nothing.
+
+pub mod plan;
+pub mod table;
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use semver::Version;
+use serde::Serialize;
+
+pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use table::{Cell, Table, TableError};
+
+use crate::contract::{Contract, Domain};
+use crate::rows::{Row, Value};
+
+/// The plan's sources, loaded.
+#[derive(Clone, Debug, Default)]
+pub struct Sources {
+    tables: BTreeMap<String, Arc<Table>>,
+}
+
+impl Sources {
+    /// Reads every table the plan declares.
+    ///
+    /// # Errors
+    /// Every table that could not be read, each naming its file, row and column.
+    pub fn load(plan: &Plan) -> Result<Sources, Vec<TableError>> {
+        let mut tables = BTreeMap::new();
+        let mut problems = Vec::new();
+        for (name, source) in &plan.sources {
+            match source {
+                Source::Table { path, key, updated } => match Table::read(path, key, updated.as_deref()) {
+                    Ok(t) => {
+                        tables.insert(name.clone(), Arc::new(t));
+                    }
+                    Err(e) => problems.push(e),
+                },
+            }
+        }
+        if problems.is_empty() { Ok(Sources { tables }) } else { Err(problems) }
+    }
+
+    /// The table of a source.
+    pub fn table(&self, name: &str) -> Option<&Arc<Table>> {
+        self.tables.get(name)
+    }
+}
+
+/// One looked-up feature, ready.
+#[derive(Clone, Debug)]
+struct Step {
+    feature: String,
+    domain: Domain,
+    source: String,
+    table: Arc<Table>,
+    column: usize,
+    lookup: Lookup,
+}
+
+/// A model version's plan, held to its contract, with its tables.
+#[derive(Clone, Debug)]
+pub struct Resolved {
+    steps: Vec<Step>,
+    keys: Vec<String>,
+}
+
+/// What became of one looked-up feature for one row.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Outcome {
+    /// The row carried the feature itself: no lookup.
+    FromRequest,
+    /// Found, fresh enough.
+    Found,
+    /// No such key, or an empty cell: the feature's fallback.
+    Missing,
+    /// Older than its allowed age: the feature's fallback.
+    Stale,
+}
+
+/// Where one feature of a row came from.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Fetched {
+    /// The feature.
+    pub feature: String,
+    /// The source.
+    pub source: String,
+    /// The key looked up.
+    pub key: String,
+    /// What became of it.
+    pub outcome: Outcome,
+    /// How old the value was, in seconds, when the source says.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub age: Option<f64>,
+}
+
+/// Why a row's features could not be gathered.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum GatherError {
+    /// The request lacks a key the plan needs.
+    #[error("the request has no key `{key}` (the model's keys: {})", keys.join(", "))]
+    NoKey {
+        /// The key.
+        key: String,
+        /// The keys the model takes.
+        keys: Vec<String>,
+    },
+    /// A feature whose fallback is to fail was missing or stale.
+    #[error("feature `{feature}`: {} in source `{from}` under key `{key}`", if *stale { "too old" } else { "nothing" })]
+    Missing {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// Whether it was there but too old.
+        stale: bool,
+    },
+    /// The source's value does not fit the feature.
+    #[error("feature `{feature}`: source `{from}` has `{value}` under key `{key}`, not {wanted}")]
+    WrongKind {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// The value.
+        value: String,
+        /// What the feature takes.
+        wanted: &'static str,
+    },
+}
+
+impl Resolved {
+    /// Holds `model` `version`'s plan to its contract and binds its tables.
+    /// `None` when the plan says nothing of the model.
+    ///
+    /// # Errors
+    /// Every problem: features the contract lacks, required features with
+    /// no source, tables or columns that are not there.
+    pub fn new(plan: &Plan, sources: &Sources, model: &str, version: &Version, contract: &Contract) -> Result<Option<Resolved>, Vec<String>> {
+        let Some(m) = plan.models.get(model) else { return Ok(None) };
+        let mut problems = plan.check(model, version, contract);
+        let mut steps = Vec::new();
+        for (feature, supply) in m.features_of(version) {
+            let Supply::Lookup(lookup) = supply else { continue };
+            let Some(f) = contract.features.iter().find(|f| &f.name == feature) else { continue };
+            let Some(table) = sources.table(&lookup.source) else {
+                problems.push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
+                continue;
+            };
+            let Some(column) = table.column(&lookup.field) else {
+                problems.push(format!(
+                    "{model} {version}: feature `{feature}`: source `{}` has no column `{}` (it has {})",
+                    lookup.source,
+                    lookup.field,
+                    table.columns().collect::<Vec<_>>().join(", ")
+                ));
+                continue;
+            };
+            if let Fallback::Default(v) = &lookup.missing {
+                if let Some(problem) = misfit(v, &f.domain) {
+                    problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
+                }
+            }
+            steps.push(Step { feature: feature.clone(), domain: f.domain.clone(), source: lookup.source.clone(), table: Arc::clone(table), column, lookup: lookup.clone() });
+        }
+        if problems.is_empty() { Ok(Some(Resolved { steps, keys: m.keys.clone() })) } else { Err(problems) }
+    }
+
+    /// The keys a request carries for this model.
+    pub fn keys(&self) -> &[String] {
+        &self.keys
+    }
+
+    /// Completes `row` with the features the plan looks up for `keys`, at
+    /// `now` (Unix seconds). A feature the row carries itself wins over
+    /// its lookup. Returns the completed row and, per looked-up feature,
+    /// where it came from.
+    ///
+    /// # Errors
+    /// [`GatherError`]: a key the plan needs is missing, a feature whose
+    /// fallback is to fail has nothing fresh, or a value does not fit.
+    pub fn gather(&self, keys: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
+        let mut out = row.clone();
+        let mut fetched = Vec::with_capacity(self.steps.len());
+        let mut buf = String::new();
+        for step in &self.steps {
+            let carried = row.fields().iter().any(|(n, v)| *n == step.feature && *v != Value::Absent);
+            let key = step.lookup.key.render(keys, &mut buf).map_err(|k| GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() })?.to_owned();
+            if carried {
+                fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
+                continue;
+            }
+            let found = step.table.get(&key, step.column);
+            let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
+            let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
+            let (outcome, value) = match found {
+                Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(value_of(cell, step, &key)?)),
+                Some((Cell::Absent, _)) | None => (Outcome::Missing, None),
+                Some(_) => (Outcome::Stale, None),
+            };
+            let value = match (value, &step.lookup.missing) {
+                (Some(v), _) => v,
+                (None, Fallback::Absent) => Value::Absent,
+                (None, Fallback::Default(v)) => v.clone(),
+                (None, Fallback::Fail) => {
+                    return Err(GatherError::Missing { feature: step.feature.clone(), from: step.source.clone(), key, stale: outcome == Outcome::Stale });
+                }
+            };
+            out.set(&step.feature, value);
+            fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome, age });
+        }
+        Ok((out, fetched))
+    }
+}
+
+/// Why a default does not fit a feature's domain, if it does not.
+fn misfit(v: &Value, domain: &Domain) -> Option<String> {
+    let fits = match (v, domain) {
+        (Value::Number(_) | Value::Integer(_), Domain::Real(_)) | (Value::Integer(_), Domain::Whole(_)) | (Value::Flag(_), Domain::Flag) => true,
+        (Value::Number(n), Domain::Whole(_)) => n.fract() == 0.0,
+        (Value::Label(l), Domain::Label(labels)) => labels.contains(l),
+        _ => false,
+    };
+    (!fits).then(|| format!("{v:?} does not fit its domain ({domain})"))
+}
+
+/// A source's cell as the feature's value.
+fn value_of(cell: Cell<'_>, step: &Step, key: &str) -> Result<Value, GatherError> {
+    let wrong = |value: String, wanted| GatherError::WrongKind { feature: step.feature.clone(), from: step.source.clone(), key: key.to_owned(), value, wanted };
+    // A number written as text (its column holds other text too).
+    let cell = match (&step.domain, cell) {
+        (Domain::Real(_) | Domain::Whole(_) | Domain::Flag, Cell::Text(t)) => t.parse::<f64>().map_or(cell, Cell::Number),
+        _ => cell,
+    };
+    Ok(match (&step.domain, cell) {
+        (Domain::Real(_), Cell::Number(n)) => Value::Number(n),
+        (Domain::Whole(_), Cell::Number(n)) if n.fract() == 0.0 && n.abs() < 9.0e15 => Value::Integer(n as i64),
+        (Domain::Whole(_), Cell::Number(n)) => Value::Number(n),
+        (Domain::Label(_), Cell::Text(t)) => Value::Label(t.to_owned()),
+        (Domain::Label(_), Cell::Number(n)) => Value::Label(n.to_string()),
+        (Domain::Flag, Cell::Number(n)) if n == 0.0 || n == 1.0 => Value::Flag(n == 1.0),
+        (Domain::Flag, Cell::Text("true" | "yes")) => Value::Flag(true),
+        (Domain::Flag, Cell::Text("false" | "no")) => Value::Flag(false),
+        (Domain::Flag, c) => return Err(wrong(show(c), "a yes/no value")),
+        (_, c) => return Err(wrong(show(c), "a number")),
+    })
+}
+
+fn show(c: Cell<'_>) -> String {
+    match c {
+        Cell::Number(n) => n.to_string(),
+        Cell::Text(t) => t.to_owned(),
+        Cell::Absent => "nothing".to_owned(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::contract::{Bounds, Feature, Output};
+
+    fn feature(name: &str, domain: Domain, required: bool) -> Feature {
+        Feature { name: name.into(), domain, unit: None, required, about: String::new() }
+    }
+
+    fn contract() -> Contract {
+        Contract {
+            name: "charge-minutes".into(),
+            version: "1.0.0".into(),
+            about: String::new(),
+            features: vec![
+                feature("charger_kw", Domain::Real(Bounds { min: None, max: None }), true),
+                feature("avg_minutes_7d", Domain::Real(Bounds { min: None, max: None }), false),
+                feature("plug", Domain::Label(vec!["ccs2".into(), "type2".into()]), true),
+                feature("occupancy", Domain::Whole(Bounds { min: None, max: None }), true),
+            ],
+            outputs: vec![Output { name: "minutes".into(), unit: None, bounds: Bounds { min: None, max: None }, about: String::new() }],
+        }
+    }
+
+    /// A plan over a table in a temporary directory; `now` is 2026-12-02T00:00:00Z.
+    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<Resolved>, Vec<String>>) {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::write(
+            dir.path().join("sites.csv"),
+            "site,avg_minutes_7d,plug,occupancy,updated_at\nnorth-1,42.5,ccs2,3,2026-12-01T12:00:00Z\nsouth-2,35,type2,x,2026-11-20T00:00:00Z\n",
+        )
+        .unwrap();
+        let text = format!("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"\n[models.charge-minutes]\nkeys = [\"site\"]\n[models.charge-minutes.features]\n{features}");
+        let plan = Plan::parse(&text, "features.toml", dir.path()).unwrap();
+        let sources = Sources::load(&plan).unwrap();
+        let resolved = Resolved::new(&plan, &sources, "charge-minutes", &Version::new(1, 0, 0), &contract());
+        (dir, resolved)
+    }
+
+    const NOW: f64 = 1_796_169_600.0;
+    const PLAN: &str = "charger_kw = \"request\"\nplug = { source = \"sites\", key = \"{site}\", field = \"plug\", missing = \"fail\" }\n\
+        avg_minutes_7d = { source = \"sites\", key = \"{site}\", field = \"avg_minutes_7d\", max_age = \"2d\" }\n\
+        occupancy = { source = \"sites\", key = \"{site}\", field = \"occupancy\", missing = { default = 0 } }\n";
+
+    fn keys(site: &str) -> BTreeMap<String, String> {
+        [("site".to_owned(), site.to_owned())].into()
+    }
+
+    #[test]
+    fn keys_found_missing_and_stale_follow_each_policy() {
+        let (_dir, resolved) = setup(PLAN);
+        let r = resolved.unwrap().unwrap();
+        let row = Row::new().with("charger_kw", 11.0);
+        // Found and fresh (12 h old).
+        let (got, fetched) = r.gather(&keys("north-1"), &row, NOW).unwrap();
+        assert_eq!(got, row.clone().with("avg_minutes_7d", 42.5).with("occupancy", 3i64).with("plug", "ccs2"));
+        assert_eq!(fetched[0], Fetched { feature: "avg_minutes_7d".into(), source: "sites".into(), key: "north-1".into(), outcome: Outcome::Found, age: Some(43_200.0) });
+        // South-2's occupancy is `x`, not a whole number: the row fails naming it.
+        let err = r.gather(&keys("south-2"), &row, NOW).unwrap_err();
+        assert_eq!(err.to_string(), "feature `occupancy`: source `sites` has `x` under key `south-2`, not a number");
+        // Read occupancy elsewhere: south-2's row is 12 days old, beyond 2 d:
+        // stale, and the feature falls back to absent.
+        let (_dir2, other) = setup(&PLAN.replace("field = \"occupancy\"", "field = \"avg_minutes_7d\""));
+        let (got, fetched) = other.unwrap().unwrap().gather(&keys("south-2"), &row, NOW).unwrap();
+        let avg = fetched.iter().find(|f| f.feature == "avg_minutes_7d").unwrap();
+        assert_eq!((avg.outcome, avg.age), (Outcome::Stale, Some(12.0 * 86_400.0)));
+        assert!(got.fields().contains(&("avg_minutes_7d".to_owned(), Value::Absent)));
+        // An unknown site: the default for occupancy, but plug must fail.
+        let err = r.gather(&keys("west-9"), &row, NOW).unwrap_err();
+        assert_eq!(err.to_string(), "feature `plug`: nothing in source `sites` under key `west-9`");
+        // A feature the row carries wins over the lookup.
+        let (got, fetched) = r.gather(&keys("north-1"), &row.clone().with("plug", "type2"), NOW).unwrap();
+        assert!(got.fields().contains(&("plug".to_owned(), Value::Label("type2".into()))));
+        assert_eq!(fetched.iter().find(|f| f.feature == "plug").unwrap().outcome, Outcome::FromRequest);
+        // No key at all.
+        assert_eq!(r.gather(&BTreeMap::new(), &row, NOW).unwrap_err().to_string(), "the request has no key `site` (the model's keys: site)");
+    }
+
+    #[test]
+    fn plans_that_do_not_fit_the_contract_or_the_tables_are_refused_with_every_problem() {
+        let (_dir, resolved) = setup(
+            "plug = { source = \"sites\", key = \"{site}\", field = \"connector\", missing = { default = \"chademo\" } }\n\
+             wind = { source = \"sites\", key = \"{site}\", field = \"plug\" }\n\
+             occupancy = { source = \"sites\", key = \"{site}\", field = \"occupancy\" }\n",
+        );
+        assert_eq!(
+            resolved.unwrap_err(),
+            [
+                "charge-minutes 1.0.0: the plan sources `wind`, which its contract does not have",
+                "charge-minutes 1.0.0: required feature `charger_kw` has no source (say `charger_kw = \"request\"` if the row carries it)",
+                "charge-minutes 1.0.0: required feature `occupancy` falls back to absent: give a default, or `missing = \"fail\"`",
+                "charge-minutes 1.0.0: feature `plug`: source `sites` has no column `connector` (it has site, avg_minutes_7d, plug, occupancy, updated_at)",
+            ]
+        );
+    }
+}
