@@ -49,7 +49,7 @@ fn main() -> Result<()> {
                         .with("site_occupancy", event.occupancy)
                         .with("weekend", false)
                         .with("fleet", false)];
-                    let request = Request { model: "overstay-risk", context: &context, at: Some(event.at.parse().unwrap()), rows: &rows };
+                    let request = Request::new("overstay-risk", &context, &rows).at(Some(event.at.parse().unwrap()));
                     match registry.score(&request) {
                         Ok(_) => scored += 1,
                         // A bad event is refused with the row, feature and rule; the service goes on.

@@ -38,7 +38,7 @@ fn main() -> Result<()> {
         .with("fleet", false);
     let ask = |registry: &Registry| -> Result<String> {
         let rows = [row.clone()];
-        let a = registry.score(&Request { model: "overstay-risk", context: &north, at: None, rows: &rows })?;
+        let a = registry.score(&Request::new("overstay-risk", &north, &rows))?;
         Ok(format!("{:.3} from {} ({})", a.estimates.row(0)[0], a.version, a.reason))
     };
     println!("\nnorth: {}", ask(&registry)?);

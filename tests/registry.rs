@@ -39,7 +39,7 @@ fn x(v: f64) -> Vec<Row> {
 fn ask(reg: &Registry, model: &str, context: &Context, at: Option<&str>, xv: f64) -> (String, String, f64) {
     let rows = x(xv);
     let at = at.map(|t| t.parse().unwrap());
-    let a = reg.score(&Request { model, context, at, rows: &rows }).unwrap_or_else(|e| panic!("{e}"));
+    let a = reg.score(&Request::new(model, context, &rows).at(at)).unwrap_or_else(|e| panic!("{e}"));
     (a.version.to_string(), a.reason.route().to_owned(), a.estimates.row(0)[0])
 }
 
@@ -80,7 +80,7 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
                     let c = &contexts[(i + t) % 2];
                     let xv = (i % 7) as f64;
                     let rows = x(xv);
-                    let a = reg.score(&Request { model: "m", context: c, at: None, rows: &rows });
+                    let a = reg.score(&Request::new("m", c, &rows));
                     let keep = a.as_ref().map_or(true, |a| a.generation != last_generation || i % 16 == 0);
                     if keep {
                         last_generation = a.as_ref().map_or(last_generation, |a| a.generation);
@@ -387,7 +387,7 @@ fn unknown_models_and_unrouted_versions_are_named() {
     reg.reload().unwrap();
     assert_eq!(reg.status().unrouted, vec!["n".to_owned()]);
     let rows = x(1.0);
-    let err = reg.score(&Request { model: "n", context: &Context::new(), at: None, rows: &rows }).unwrap_err();
+    let err = reg.score(&Request::new("n", &Context::new(), &rows)).unwrap_err();
     assert_eq!(err, RequestError::UnknownModel { model: "n".into(), served: vec!["m".into()] });
     assert_eq!(err.to_string(), "no model `n` is served (served: m)");
 }
@@ -404,11 +404,11 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
     reg.reload().unwrap();
     let none = Context::new();
     let three: Vec<Row> = (0..3).map(|i| Row::new().with("x", f64::from(i))).collect();
-    reg.score(&Request { model: "m", context: &none, at: None, rows: &three }).unwrap();
+    reg.score(&Request::new("m", &none, &three)).unwrap();
     let bad = vec![Row::new().with("x", "seven")];
-    let err = reg.score(&Request { model: "m", context: &none, at: None, rows: &bad }).unwrap_err();
+    let err = reg.score(&Request::new("m", &none, &bad)).unwrap_err();
     assert_eq!(err.kind(), "invalid_rows");
-    let err = reg.score(&Request { model: "affine", context: &none, at: None, rows: &x(1.0) }).unwrap_err();
+    let err = reg.score(&Request::new("affine", &none, &x(1.0))).unwrap_err();
     assert_eq!(err.kind(), "limit", "{err}");
 
     let usage = reg.usage();
@@ -445,12 +445,12 @@ fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
     assert!(side.save_usage().is_err(), "a registry without a usage file must not overwrite it");
     drop(side);
     for _ in 0..4 {
-        reg.score(&Request { model: "m", context: &none, at: None, rows: &x(2.0) }).unwrap();
+        reg.score(&Request::new("m", &none, &x(2.0))).unwrap();
     }
     // Dropped: the ledger is written and the lock given back.
     drop(reg);
     let reg = open(store);
-    reg.score(&Request { model: "m", context: &none, at: None, rows: &x(3.0) }).unwrap();
+    reg.score(&Request::new("m", &none, &x(3.0))).unwrap();
     let m = reg.usage().versions.into_iter().find(|v| v.model == "m").unwrap();
     // serving_one's own call, four, then one after the restart.
     assert_eq!((m.calls, m.rows), (6, 6));
@@ -581,7 +581,7 @@ fn with_a_metering_runtime_the_ledger_sums_fuel() {
     let mut fuel = 0;
     for i in 0..5 {
         let rows = x(f64::from(i));
-        let a = reg.score(&Request { model: "m", context: &Context::new(), at: None, rows: &rows }).unwrap();
+        let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
         fuel += a.estimates.usage().fuel.expect("metered");
     }
     let usage = reg.usage();

@@ -203,6 +203,12 @@ pub enum ContractRule {
         /// The labels it takes.
         allowed: Vec<String>,
     },
+    /// The feature's lookup failed (a missing key, or nothing fresh where
+    /// the plan says the row must fail).
+    Lookup {
+        /// What happened, naming the source and key.
+        problem: String,
+    },
 }
 
 impl fmt::Display for ContractRule {
@@ -215,7 +221,15 @@ impl fmt::Display for ContractRule {
             ContractRule::OutOfBounds { bounds } => write!(f, "out of bounds {bounds}"),
             ContractRule::NonFinite => write!(f, "not a finite number"),
             ContractRule::UnknownLabel { allowed } => write!(f, "unknown label; allowed: {}", allowed.join(", ")),
+            ContractRule::Lookup { problem } => write!(f, "lookup failed: {problem}"),
         }
+    }
+}
+
+impl RowError {
+    /// A row whose features could not be gathered.
+    pub(crate) fn lookup(row: usize, feature: &str, value: &str, problem: String) -> RowError {
+        RowError { row, feature: feature.to_owned(), value: value.to_owned(), rule: ContractRule::Lookup { problem } }
     }
 }
 

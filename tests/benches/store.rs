@@ -70,7 +70,7 @@ fn benches(c: &mut Criterion) {
     g.bench_function("model_single", |b| b.iter(|| black_box(model.score(black_box(&row)).unwrap())));
     g.bench_function("registry_single", |b| {
         b.iter(|| {
-            let request = Request { model: "charge-minutes", context: &context, at, rows: black_box(&row) };
+            let request = Request::new("charge-minutes", &context, black_box(&row)).at(at);
             black_box(registry.score(&request).unwrap())
         })
     });

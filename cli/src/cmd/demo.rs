@@ -120,14 +120,14 @@ pub fn run(args: Args) -> Result<Outcome> {
 
         let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
-        let m = registry.score(&Request { model: "charge-minutes", context: &context, at: Some(at), rows: &rows })?;
+        let m = registry.score(&Request::new("charge-minutes", &context, &rows).at(Some(at)))?;
         let minutes = m.estimates.row(0)[0];
         cells.insert("expected_minutes".into(), minutes.to_string());
         cells.insert("plugin_hour".into(), local.hour().to_string());
         cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
         let overstay_model = routed_model(&registry, "overstay-risk", &context, at)?;
         let rows = [row_for(&overstay_model, &cells)];
-        let o = registry.score(&Request { model: "overstay-risk", context: &context, at: Some(at), rows: &rows })?;
+        let o = registry.score(&Request::new("overstay-risk", &context, &rows).at(Some(at)))?;
         answers.push(Answer {
             site: cells["site"].clone(),
             region: cells["region"].clone(),

@@ -1,11 +1,12 @@
 //! `paddock status`: open a store as a host would, and list every artifact
-//! (loaded, refused and why, kept), which routes use it, and whether the
-//! routes file was taken. Exits 1 when anything was refused: run it before
-//! publishing a store.
+//! (loaded, refused and why, kept), which routes use it, whether the
+//! routes file was taken, and the features file's tables (rows, age, when
+//! loaded). Exits 1 when anything was refused: run it before publishing a
+//! store.
 
 use anyhow::Result;
 use paddock_host::CodeSource;
-use paddock_host::registry::{ArtifactState, RoutesState};
+use paddock_host::registry::{ArtifactState, FeaturesState, RoutesState};
 
 use crate::Outcome;
 use crate::common::{StoreArgs, print_json, text_table};
@@ -25,7 +26,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     let registry = args.store.open_to_look()?;
     let status = registry.status();
     let refused = status.problems().any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
-        || matches!(status.routes, RoutesState::Refused { .. });
+        || matches!(status.routes, RoutesState::Refused { .. })
+        || matches!(status.features, FeaturesState::Refused { .. });
     if args.json {
         print_json(&status)?;
     } else {
@@ -61,6 +63,24 @@ pub fn run(args: Args) -> Result<Outcome> {
             RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_host::registry::ROUTES_FILE),
             RoutesState::Refused { problems } => {
                 println!("\nroutes: refused (the previous routes would keep serving):");
+                for p in problems {
+                    println!("  - {p}");
+                }
+            }
+        }
+        let features = paddock_host::registry::FEATURES_FILE;
+        match &status.features {
+            FeaturesState::Missing => println!("features: no {features} — rows carry their features"),
+            FeaturesState::Accepted { tables } => {
+                println!("features: {features} accepted");
+                let rows: Vec<Vec<String>> =
+                    tables.iter().map(|t| vec![t.source.clone(), t.file.display().to_string(), t.rows.to_string(), t.changed.clone(), t.loaded.clone()]).collect();
+                if !rows.is_empty() {
+                    print!("{}", text_table(&["source", "table", "rows", "file changed", "loaded"], &rows));
+                }
+            }
+            FeaturesState::Refused { problems } => {
+                println!("features: refused (the previous plan and tables would keep serving):");
                 for p in problems {
                     println!("  - {p}");
                 }

@@ -57,6 +57,11 @@ impl Sources {
         if problems.is_empty() { Ok(Sources { tables }) } else { Err(problems) }
     }
 
+    /// Sources from tables already read, by source name.
+    pub fn from_tables(tables: BTreeMap<String, Arc<Table>>) -> Sources {
+        Sources { tables }
+    }
+
     /// The table of a source.
     pub fn table(&self, name: &str) -> Option<&Arc<Table>> {
         self.tables.get(name)
@@ -151,6 +156,17 @@ pub enum GatherError {
     },
 }
 
+impl GatherError {
+    /// The feature (or key) to blame, and its value as text.
+    pub fn place(&self) -> (&str, String) {
+        match self {
+            GatherError::NoKey { key, .. } => (key, "absent".to_owned()),
+            GatherError::Missing { feature, .. } => (feature, "absent".to_owned()),
+            GatherError::WrongKind { feature, value, .. } => (feature, value.clone()),
+        }
+    }
+}
+
 impl Resolved {
     /// Holds `model` `version`'s plan to its contract and binds its tables.
     /// `None` when the plan says nothing of the model.
@@ -193,16 +209,41 @@ impl Resolved {
         &self.keys
     }
 
-    /// Completes `row` with the features the plan looks up for `keys`, at
-    /// `now` (Unix seconds). A feature the row carries itself wins over
-    /// its lookup. Returns the completed row and, per looked-up feature,
-    /// where it came from.
+    /// Completes `row` with the features the plan looks up, at `now`
+    /// (Unix seconds). The keys are the request's `context`, each
+    /// overridden by a field of the row named as a key (which then leaves
+    /// the row: keys are not features). A feature the row carries itself
+    /// wins over its lookup. Returns the completed row and, per looked-up
+    /// feature, where it came from.
     ///
     /// # Errors
     /// [`GatherError`]: a key the plan needs is missing, a feature whose
     /// fallback is to fail has nothing fresh, or a value does not fit.
-    pub fn gather(&self, keys: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
-        let mut out = row.clone();
+    pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
+        let in_row = |k: &String| row.fields().iter().any(|(n, _)| n == k);
+        let owned;
+        let (keys, mut out) = if self.keys.iter().any(in_row) {
+            let mut keys = context.clone();
+            let mut rest = Row::new();
+            for (name, value) in row.fields() {
+                if self.keys.contains(name) {
+                    match value {
+                        Value::Label(s) => keys.insert(name.clone(), s.clone()),
+                        Value::Integer(i) => keys.insert(name.clone(), i.to_string()),
+                        Value::Number(n) => keys.insert(name.clone(), n.to_string()),
+                        Value::Flag(b) => keys.insert(name.clone(), b.to_string()),
+                        Value::Absent => None,
+                    };
+                } else {
+                    rest.insert(name.clone(), value.clone());
+                }
+            }
+            owned = keys;
+            (&owned, rest)
+        } else {
+            (context, row.clone())
+        };
+        let row = &out.clone();
         let mut fetched = Vec::with_capacity(self.steps.len());
         let mut buf = String::new();
         for step in &self.steps {

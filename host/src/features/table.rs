@@ -125,7 +125,16 @@ impl Table {
     /// # Errors
     /// [`TableError`] naming the file, and the row and column at fault.
     pub fn read(path: &Path, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
-        let file = path.display().to_string();
+        Table::read_as(path, &path.display().to_string(), key, updated)
+    }
+
+    /// As [`Table::read`], naming the file `shown` in errors (a path
+    /// relative to the store, say).
+    ///
+    /// # Errors
+    /// As [`Table::read`].
+    pub fn read_as(path: &Path, shown: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
+        let file = shown.to_owned();
         let format = Format::from_path(path).ok_or_else(|| TableError::Format {
             file: file.clone(),
             extension: path.extension().map(|e| e.to_string_lossy().into_owned()).unwrap_or_default(),

@@ -3,6 +3,8 @@
 //! ```text
 //! store/
 //!   routes.toml                       which version answers which request
+//!   features.toml                     where each model's features come from (optional)
+//!   tables/sites.csv                  tables it names (anywhere; paths are relative to the store)
 //!   charge-minutes/                   one directory per model, named as its contract
 //!     1.0.0.wasm                      one artifact per version, named by its semver
 //!     1.0.0.wasm.vouch                a voucher's word for it (optional)
@@ -22,6 +24,10 @@ use semver::Version;
 
 /// The routes file's name inside a store.
 pub const ROUTES_FILE: &str = "routes.toml";
+
+/// The features file's name inside a store: where each model's features
+/// come from ([`crate::features::Plan`]).
+pub const FEATURES_FILE: &str = "features.toml";
 
 /// The directory inside a store where the host keeps its state.
 pub const STATE_DIR: &str = ".paddock";

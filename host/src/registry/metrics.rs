@@ -215,6 +215,7 @@ mod tests {
             since: String::new(),
             artifacts: vec![],
             routes: crate::registry::RoutesState::Missing,
+            features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
         };
         let text = render(&usage, &status);

@@ -43,6 +43,7 @@ use serde::Serialize;
 
 use crate::digest::Digest;
 use crate::codecache::{CacheError, CodeCache};
+use crate::features::{Fetched, Outcome, Resolved};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
@@ -51,8 +52,8 @@ use crate::trust::TrustPolicy;
 use gate::Loaded;
 use reload::Memory;
 
-pub use layout::{ROUTES_FILE, STATE_DIR, artifact_path};
-pub use status::{ArtifactState, ArtifactStatus, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, Status};
+pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
+pub use status::{ArtifactState, ArtifactStatus, FeaturesState, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, Status, TableStatus};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use usage_file::{SavedUsage, usage_path};
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
@@ -205,6 +206,41 @@ pub struct Request<'a> {
     pub at: Option<Timestamp>,
     /// The rows to score.
     pub rows: &'a [Row],
+    /// How much the answer says of the features looked up.
+    pub lookups: Lookups,
+}
+
+impl<'a> Request<'a> {
+    /// A request for `model`, routed and keyed by `context`, scoring `rows`
+    /// now, its answer naming only the looked-up features that fell back.
+    pub fn new(model: &'a str, context: &'a Context, rows: &'a [Row]) -> Self {
+        Request { model, context, at: None, rows, lookups: Lookups::Fallbacks }
+    }
+
+    /// The same request, happening at `at` (for time windows).
+    #[must_use]
+    pub fn at(mut self, at: Option<Timestamp>) -> Self {
+        self.at = at;
+        self
+    }
+
+    /// The same request, its answer saying where every looked-up feature came from.
+    #[must_use]
+    pub fn every_lookup(mut self) -> Self {
+        self.lookups = Lookups::All;
+        self
+    }
+}
+
+/// How much an answer says of the features looked up for its rows.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Lookups {
+    /// Only the features that fell back (missing or stale).
+    #[default]
+    Fallbacks,
+    /// Every looked-up feature: source, key, age, outcome.
+    All,
 }
 
 /// Estimates, and which version produced them and why.
@@ -231,6 +267,10 @@ pub struct Answer {
     /// Every problem of the rows that broke the contract, each naming its
     /// row; those rows got no estimate.
     pub problems: Vec<RowError>,
+    /// Per request row, the features looked up for it (all of them, or
+    /// only those that fell back, as the request asked); empty when the
+    /// model has no features plan.
+    pub lookups: Vec<Vec<Fetched>>,
 }
 
 impl Answer {
@@ -248,6 +288,66 @@ impl Answer {
     }
 }
 
+/// A request's rows completed by the features plan.
+struct Gathered {
+    /// The rows that could be completed.
+    rows: Vec<Row>,
+    /// The request number (from 1) of each.
+    numbers: Vec<usize>,
+    /// The rows that could not, each naming why.
+    problems: Vec<RowError>,
+    /// Per request row, what was looked up.
+    lookups: Vec<Vec<Fetched>>,
+}
+
+fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
+    let now = now.as_millisecond() as f64 / 1000.0;
+    let mut g = Gathered { rows: Vec::with_capacity(request.rows.len()), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
+    for (i, row) in request.rows.iter().enumerate() {
+        match plan.gather(request.context, row, now) {
+            Ok((row, mut fetched)) => {
+                if request.lookups == Lookups::Fallbacks {
+                    fetched.retain(|f| matches!(f.outcome, Outcome::Missing | Outcome::Stale));
+                }
+                g.rows.push(row);
+                g.numbers.push(i + 1);
+                g.lookups.push(fetched);
+            }
+            Err(e) => {
+                let (feature, value) = e.place();
+                g.problems.push(RowError::lookup(i + 1, feature, &value, e.to_string()));
+                g.lookups.push(Vec::new());
+            }
+        }
+    }
+    g
+}
+
+impl Gathered {
+    /// The scoring result with rows numbered as the request numbered them,
+    /// and the lookup problems among the others.
+    fn renumber(&self, result: Result<crate::model::Scored, ScoreError>) -> Result<crate::model::Scored, ScoreError> {
+        let number = |n: usize| self.numbers.get(n.wrapping_sub(1)).copied().unwrap_or(n);
+        let merge = |mut problems: Vec<RowError>| {
+            for p in &mut problems {
+                p.row = number(p.row);
+            }
+            problems.extend(self.problems.iter().cloned());
+            problems.sort_by_key(|p| p.row);
+            problems
+        };
+        match result {
+            Ok(mut scored) => {
+                scored.scored = scored.scored.iter().map(|&n| number(n)).collect();
+                scored.problems = merge(scored.problems);
+                Ok(scored)
+            }
+            Err(ScoreError::InvalidRows { errors }) => Err(ScoreError::InvalidRows { errors: merge(errors) }),
+            Err(e) => Err(e.renumber(number)),
+        }
+    }
+}
+
 /// One immutable view of what is served.
 struct Snapshot {
     generation: u64,
@@ -255,7 +355,15 @@ struct Snapshot {
     versions: BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>,
     /// Per model with a shadow: everything a request needs, resolved once.
     shadows: BTreeMap<String, ShadowPlan>,
+    /// The features plan, resolved per served version.
+    features: Arc<FeatureSet>,
     status: Status,
+}
+
+/// The features plan resolved for each served version that has one.
+#[derive(Default)]
+struct FeatureSet {
+    resolved: BTreeMap<String, BTreeMap<Version, Arc<Resolved>>>,
 }
 
 /// A model's shadow, resolved when the snapshot is built.
@@ -333,12 +441,14 @@ impl Registry {
             routes: Arc::new(Routes::empty()),
             versions: BTreeMap::new(),
             shadows: BTreeMap::new(),
+            features: Arc::default(),
             status: Status {
                 store: dir.clone(),
                 generation: 0,
                 since: Timestamp::now().to_string(),
                 artifacts: Vec::new(),
                 routes: RoutesState::Missing,
+                features: FeaturesState::Missing,
                 unrouted: Vec::new(),
             },
         };
@@ -430,12 +540,25 @@ impl Registry {
             .filter(|s| s.ledger.sampled(s.sample))
             .map(|s| (s.loaded.clone(), s.tolerance, s.ledger.clone()));
         let generation = snapshot.generation;
+        let plan = snapshot.features.resolved.get(request.model).and_then(|v| v.get(&version)).cloned();
         drop(snapshot);
 
+        // Features looked up: rows that could not be completed are problems
+        // of the answer, numbered as the request numbered them.
+        let gathered = plan.map(|plan| gather(&plan, request, shared.options.clock.now()));
+        let rows = gathered.as_ref().map_or(request.rows, |g| &g.rows[..]);
         let started = Instant::now();
         let in_flight = served.ledger.enter();
-        let result = served.model.score_valid(request.rows);
+        let result = if rows.is_empty() && gathered.is_some() && !request.rows.is_empty() {
+            Err(ScoreError::InvalidRows { errors: Vec::new() })
+        } else {
+            served.model.score_valid(rows)
+        };
         drop(in_flight);
+        let result = match &gathered {
+            None => result,
+            Some(g) => g.renumber(result),
+        };
         match result {
             Ok(scored) => {
                 served.ledger.record_ok(scored.estimates.usage());
@@ -469,6 +592,7 @@ impl Registry {
                     estimates: scored.estimates,
                     scored: scored.scored,
                     problems: scored.problems,
+                    lookups: gathered.map(|g| g.lookups).unwrap_or_default(),
                 })
             }
             Err(error) => {

@@ -13,14 +13,15 @@ use jiff::Timestamp;
 use semver::Version;
 
 use super::gate::{self, Fingerprint, Loaded};
-use super::layout::{self, ROUTES_FILE};
+use super::layout::{self, FEATURES_FILE, ROUTES_FILE};
 use super::routes::{Routes, RoutesError};
 use super::status::{
-    ArtifactState, ArtifactStatus, RefusedFile, Refusal, ReloadReport, RoutesState, Status, loaded_status,
-    refused_status,
+    ArtifactState, ArtifactStatus, FeaturesState, RefusedFile, Refusal, ReloadReport, RoutesState, Status, TableStatus,
+    loaded_status, refused_status,
 };
-use super::{Registry, RegistryError, ShadowPlan, Shared, Snapshot};
+use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
 use crate::digest::Digest;
+use crate::features::{Plan, Resolved, Source, Sources, Table};
 
 /// Loaded versions, by model and version.
 type Versions = BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>;
@@ -32,6 +33,21 @@ pub(super) struct Memory {
     files: HashMap<PathBuf, (Fingerprint, Outcome)>,
     /// Fingerprint of the routes file last read, and whether it was accepted.
     routes: Option<(Fingerprint, RoutesState)>,
+    /// What the features step saw last, and what it made of it.
+    features: Option<(FeaturesSeen, Arc<FeatureSet>, FeaturesState)>,
+    /// Tables read, by file: its size and change time when read, and the table.
+    tables: HashMap<PathBuf, (TableStamp, Arc<Table>)>,
+}
+
+/// A table file's size and change time: read again when either changes.
+type TableStamp = (u64, Option<std::time::SystemTime>);
+
+/// Everything the features step depends on.
+#[derive(Clone, PartialEq)]
+struct FeaturesSeen {
+    file: Option<Fingerprint>,
+    tables: Vec<(PathBuf, TableStamp)>,
+    versions: BTreeSet<(String, Version, Digest)>,
 }
 
 #[derive(Clone)]
@@ -67,7 +83,8 @@ impl Registry {
         let (routes, routes_state) = read_routes(shared, &old, &mut memory, &next.versions, &removed, &mut report);
         report.routes_changed = !Arc::ptr_eq(&routes, &old.routes);
         keep_routed(&routes, removed, &mut next, &mut report);
-        swap(shared, &old, routes, routes_state, next, &mut report);
+        let features = read_features(shared, &old, &mut memory, &next.versions, &mut report);
+        swap(shared, &old, routes, routes_state, features, next, &mut report);
         report.took = started.elapsed();
         Ok(report)
     }
@@ -222,13 +239,118 @@ fn keep_routed(routes: &Routes, removed: Versions, next: &mut Next, report: &mut
     next.statuses.sort_by(|a, b| a.path.cmp(&b.path));
 }
 
-/// Step 5: a new snapshot, swapped in, when anything changed.
-fn swap(shared: &Shared, old: &Snapshot, routes: Arc<Routes>, routes_state: RoutesState, next: Next, report: &mut ReloadReport) {
+/// Step 5: the features file, its tables, and the plan held to every
+/// served version's contract; the whole refused (the previous plan and
+/// tables keep serving) when anything is wrong.
+fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions: &Versions, report: &mut ReloadReport) -> (Arc<FeatureSet>, FeaturesState) {
+    let path = shared.dir.join(FEATURES_FILE);
+    let bytes = match std::fs::read(&path) {
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            // Still no features file: the same (empty) set, no new generation.
+            memory.features = None;
+            let set = if old.status.features == FeaturesState::Missing { old.features.clone() } else { Arc::default() };
+            return (set, FeaturesState::Missing);
+        }
+        Err(e) => return (old.features.clone(), FeaturesState::Refused { problems: vec![format!("{}: {e}", path.display())] }),
+        Ok(bytes) => bytes,
+    };
+    let plan = std::str::from_utf8(&bytes)
+        .map_err(|e| vec![format!("{FEATURES_FILE}: not UTF-8 text: {e}")])
+        .and_then(|text| Plan::parse(text, FEATURES_FILE, &shared.dir).map_err(|e| e.problems.iter().map(|p| format!("{FEATURES_FILE}: {p}")).collect()));
+    let stamp = |p: &std::path::Path| std::fs::metadata(p).map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
+    let tables: Vec<(PathBuf, TableStamp)> = match &plan {
+        Ok(plan) => plan.sources.values().map(|Source::Table { path, .. }| (path.clone(), stamp(path))).collect(),
+        Err(_) => Vec::new(),
+    };
+    let seen = FeaturesSeen { file: Some(gate::fingerprint(&bytes, None)), tables, versions: flatten(versions) };
+    if let Some((last, set, state)) = &memory.features {
+        if *last == seen {
+            return (set.clone(), state.clone());
+        }
+    }
+    let outcome = plan.and_then(|plan| build_features(shared, &plan, memory, versions));
+    let result = match outcome {
+        Ok((set, tables)) => (Arc::new(set), FeaturesState::Accepted { tables }),
+        Err(problems) => {
+            tracing::warn!(features = %path.display(), problems = %problems.join("; "), "features refused; the previous plan keeps serving");
+            report.features_refused = problems.clone();
+            (old.features.clone(), FeaturesState::Refused { problems })
+        }
+    };
+    memory.features = Some((seen, result.0.clone(), result.1.clone()));
+    result
+}
+
+/// The plan's tables (read again only when changed) and its resolution for
+/// every served version of the models it names.
+fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &Versions) -> Result<(FeatureSet, Vec<TableStatus>), Vec<String>> {
+    let mut problems = Vec::new();
+    let mut tables = BTreeMap::new();
+    let mut statuses = Vec::new();
+    let mut kept = HashMap::new();
+    for (name, Source::Table { path, key, updated }) in &plan.sources {
+        let meta = std::fs::metadata(path).ok();
+        let stamp = meta.as_ref().map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
+        let shown = path.strip_prefix(&shared.dir).unwrap_or(path).display().to_string();
+        let table = match memory.tables.get(path) {
+            Some((s, t)) if *s == stamp && stamp.1.is_some() => Ok(t.clone()),
+            _ => Table::read_as(path, &shown, key, updated.as_deref()).map(Arc::new),
+        };
+        match table {
+            Ok(t) => {
+                let when = |t: Option<std::time::SystemTime>| t.and_then(|t| Timestamp::try_from(t).ok()).map(|t| t.to_string()).unwrap_or_default();
+                statuses.push(TableStatus {
+                    source: name.clone(),
+                    file: path.strip_prefix(&shared.dir).unwrap_or(path).to_owned(),
+                    rows: t.len(),
+                    changed: when(stamp.1),
+                    loaded: Timestamp::now().to_string(),
+                });
+                kept.insert(path.clone(), (stamp, t.clone()));
+                tables.insert(name.clone(), t);
+            }
+            Err(e) => problems.push(e.to_string()),
+        }
+    }
+    memory.tables = kept;
+    if !problems.is_empty() {
+        return Err(problems);
+    }
+    let sources = Sources::from_tables(tables);
+    let mut set = FeatureSet::default();
+    for model in plan.models.keys() {
+        for (version, loaded) in versions.get(model).into_iter().flatten() {
+            match Resolved::new(plan, &sources, model, version, loaded.model.contract()) {
+                Ok(Some(r)) => {
+                    set.resolved.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
+                }
+                Ok(None) => {}
+                Err(p) => problems.extend(p),
+            }
+        }
+    }
+    if problems.is_empty() { Ok((set, statuses)) } else { Err(problems) }
+}
+
+/// Step 6: a new snapshot, swapped in, when anything changed.
+fn swap(
+    shared: &Shared,
+    old: &Snapshot,
+    routes: Arc<Routes>,
+    routes_state: RoutesState,
+    (features, features_state): (Arc<FeatureSet>, FeaturesState),
+    next: Next,
+    report: &mut ReloadReport,
+) {
     let before = flatten(&old.versions);
     let after = flatten(&next.versions);
     report.loaded = after.difference(&before).map(|(m, v, _)| format!("{m} {v}")).collect();
-    report.changed =
-        before != after || report.routes_changed || next.statuses != old.status.artifacts || routes_state != old.status.routes;
+    report.changed = before != after
+        || report.routes_changed
+        || next.statuses != old.status.artifacts
+        || routes_state != old.status.routes
+        || !Arc::ptr_eq(&features, &old.features)
+        || features_state != old.status.features;
     if !report.changed {
         report.generation = old.generation;
         return;
@@ -242,6 +364,7 @@ fn swap(shared: &Shared, old: &Snapshot, routes: Arc<Routes>, routes_state: Rout
         since: Timestamp::now().to_string(),
         artifacts: next.statuses,
         routes: routes_state,
+        features: features_state,
         unrouted,
     };
     let versions = next.versions;
@@ -258,7 +381,7 @@ fn swap(shared: &Shared, old: &Snapshot, routes: Arc<Routes>, routes_state: Rout
             Some((m.to_owned(), plan))
         })
         .collect();
-    shared.current.store(Arc::new(Snapshot { generation, routes, versions, shadows, status }));
+    shared.current.store(Arc::new(Snapshot { generation, routes, versions, shadows, features, status }));
     for v in &report.loaded {
         tracing::info!(version = %v, generation, "serving");
     }

@@ -271,6 +271,43 @@ pub enum RoutesState {
     },
 }
 
+/// Whether the features file was taken.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "state", rename_all = "snake_case")]
+pub enum FeaturesState {
+    /// There is no features file: rows carry every feature themselves.
+    Missing,
+    /// The features file in the store, and the tables it names, are serving.
+    Accepted {
+        /// Each table loaded.
+        tables: Vec<TableStatus>,
+    },
+    /// The features file or a table it names was refused; the plan and
+    /// tables accepted before keep serving (none, if none ever were).
+    Refused {
+        /// Every problem found.
+        problems: Vec<String>,
+    },
+}
+
+/// One embedded table serving.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct TableStatus {
+    /// The source's name in the features file.
+    pub source: String,
+    /// The file, relative to the store.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub file: PathBuf,
+    /// Rows held.
+    pub rows: usize,
+    /// When the file was last changed (RFC 3339).
+    pub changed: String,
+    /// When it was loaded (RFC 3339).
+    pub loaded: String,
+}
+
 /// What the registry serves, and what it refused.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
@@ -286,6 +323,8 @@ pub struct Status {
     pub artifacts: Vec<ArtifactStatus>,
     /// The routes file.
     pub routes: RoutesState,
+    /// The features file and its tables.
+    pub features: FeaturesState,
     /// Models whose versions are loaded but which no route serves.
     pub unrouted: Vec<String>,
 }
@@ -315,6 +354,8 @@ pub struct ReloadReport {
     pub routes_changed: bool,
     /// The routes file's problems, when it was refused in this reload.
     pub routes_refused: Vec<String>,
+    /// The features file's (or its tables') problems, when refused in this reload.
+    pub features_refused: Vec<String>,
     /// How long the reload took.
     #[serde(rename = "took_ms", serialize_with = "ser_ms")]
     #[cfg_attr(feature = "http", schema(value_type = f64))]

@@ -256,7 +256,7 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Respons
     let model = request.model.clone();
     // A name no model has gets its 404 here, before any state is kept for it.
     if app.registry.routes().model(&model).is_none() {
-        let e = app.registry.score(&Request { model: &model, context: &request.context, at, rows: &[] });
+        let e = app.registry.score(&Request::new(&model, &request.context, &[]).at(at));
         return match e {
             Err(e) => answer_error(e),
             // Routed in the meantime: ask again.

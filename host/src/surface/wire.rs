@@ -59,7 +59,7 @@ impl EstimateRequest {
 
     /// The registry request for these rows.
     pub fn request<'a>(&'a self, rows: &'a [Row], at: Option<Timestamp>) -> Request<'a> {
-        Request { model: &self.model, context: &self.context, at, rows }
+        Request::new(&self.model, &self.context, rows).at(at)
     }
 }
 

@@ -1,0 +1,152 @@
+//! Features looked up before scoring, through the registry: a store with a
+//! features file and an embedded table, the line model `y = 2x + 1` whose
+//! `x` is read from the table by the request's `site` key.
+//!
+//! Every expected value is the line at a table's `x`, worked out here.
+
+use std::path::Path;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+
+use paddock_host::features::Outcome;
+use paddock_host::registry::{FeaturesState, artifact_path};
+use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_tests::{line_artifact, write_atomically};
+use semver::Version;
+
+const PLAN: &str = r#"
+[sources.sites]
+table = "tables/sites.csv"
+key = "site"
+
+[models.m]
+keys = ["site"]
+
+[models.m.features]
+x = { source = "sites", key = "{site}", field = "x", missing = "fail" }
+"#;
+
+/// A store serving `m` 1.0.0 (`y = 2x + 1`) with the plan and a table
+/// giving site `s{i}` the value `x = i·scale`, for 64 sites.
+fn store(scale: f64) -> (tempfile::TempDir, Registry) {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    write_table(store, scale);
+    write_atomically(&store.join("features.toml"), PLAN.as_bytes());
+    let options = RegistryOptions { usage_flush: None, ..RegistryOptions::default() };
+    let registry = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    (dir, registry)
+}
+
+fn write_table(store: &Path, scale: f64) {
+    let mut csv = String::from("site,x\n");
+    for i in 0..64 {
+        csv.push_str(&format!("s{i},{}\n", f64::from(i) * scale));
+    }
+    write_atomically(&store.join("tables/sites.csv"), csv.as_bytes());
+}
+
+fn site(s: &str) -> Context {
+    [("site".to_owned(), s.to_owned())].into()
+}
+
+#[test]
+fn a_request_scores_from_its_keys_alone() {
+    let (_dir, reg) = store(1.0);
+    assert!(matches!(&reg.status().features, FeaturesState::Accepted { tables } if tables[0].rows == 64), "{:?}", reg.status().features);
+    let rows = [Row::new()];
+    let a = reg.score(&Request::new("m", &site("s3"), &rows)).unwrap();
+    assert_eq!(a.estimates.row(0), [7.0], "x = 3 from the table: 2·3 + 1");
+    assert!(a.lookups[0].is_empty(), "nothing fell back: the compact answer names nothing");
+    let a = reg.score(&Request::new("m", &site("s3"), &rows).every_lookup()).unwrap();
+    let f = &a.lookups[0][0];
+    assert_eq!((f.feature.as_str(), f.source.as_str(), f.key.as_str(), f.outcome), ("x", "sites", "s3", Outcome::Found));
+    // A row carrying x itself wins over the table.
+    let a = reg.score(&Request::new("m", &site("s3"), &[Row::new().with("x", 10.0)]).every_lookup()).unwrap();
+    assert_eq!((a.estimates.row(0)[0], a.lookups[0][0].outcome), (21.0, Outcome::FromRequest));
+}
+
+#[test]
+fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
+    let (_dir, reg) = store(1.0);
+    // 64 rows, one per site, keyed in the row; the fifth names no site the table has.
+    let mut rows: Vec<Row> = (0..64).map(|i| Row::new().with("site", format!("s{i}").as_str())).collect();
+    rows[4] = Row::new().with("site", "nowhere");
+    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    assert_eq!(a.scored.len(), 63);
+    for (k, &n) in a.scored.iter().enumerate() {
+        assert_eq!(a.estimates.row(k)[0], 2.0 * (n - 1) as f64 + 1.0, "row {n}");
+    }
+    assert_eq!(a.problems.len(), 1);
+    assert_eq!(a.problems[0].to_string(), "row 5, feature `x` = absent: lookup failed: feature `x`: nothing in source `sites` under key `nowhere`");
+    // No key at all: every row fails, naming the key.
+    let err = reg.score(&Request::new("m", &Context::new(), &[Row::new()])).unwrap_err().to_string();
+    assert!(err.contains("row 1, feature `site` = absent: lookup failed: the request has no key `site` (the model's keys: site)"), "{err}");
+}
+
+/// Requests scoring 64 rows (one per site) run while the table is replaced
+/// again and again: each answer is wholly the old table's (x = i) or the
+/// new one's (x = 2i), never a mix.
+#[test]
+fn a_table_replaced_while_requests_run_is_seen_whole() {
+    let (dir, reg) = store(1.0);
+    let rows: Arc<Vec<Row>> = Arc::new((0..64).map(|i| Row::new().with("site", format!("s{i}").as_str())).collect());
+    let done = Arc::new(AtomicBool::new(false));
+    let seen = std::thread::scope(|s| {
+        let scorer = s.spawn(|| {
+            let (mut old, mut new) = (0, 0);
+            while !done.load(Ordering::SeqCst) || old + new < 50 {
+                let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+                let scale = (a.estimates.row(1)[0] - 1.0) / 2.0;
+                for i in 0..64 {
+                    assert_eq!(a.estimates.row(i)[0], 2.0 * i as f64 * scale + 1.0, "row {} of a table with x = {scale}·i", i + 1);
+                }
+                if scale == 1.0 { old += 1 } else { new += 1 }
+            }
+            (old, new)
+        });
+        for k in 0..20 {
+            write_table(dir.path(), if k % 2 == 0 { 2.0 } else { 1.0 });
+            reg.reload().unwrap();
+        }
+        done.store(true, Ordering::SeqCst);
+        scorer.join().unwrap()
+    });
+    assert!(seen.0 + seen.1 >= 50, "{seen:?}");
+}
+
+#[test]
+fn a_bad_table_or_plan_is_refused_whole_and_the_previous_keeps_serving() {
+    let (dir, reg) = store(1.0);
+    let store = dir.path();
+    let ask = |reg: &Registry| reg.score(&Request::new("m", &site("s3"), &[Row::new()])).unwrap().estimates.row(0)[0];
+    // A table with a repeated key.
+    write_atomically(&store.join("tables/sites.csv"), b"site,x\ns3,100\ns3,200\n");
+    let report = reg.reload().unwrap();
+    assert_eq!(report.features_refused, ["tables/sites.csv: rows 1 and 2 share the key `s3`"]);
+    assert_eq!(ask(&reg), 7.0, "the previous table keeps serving");
+    // A plan naming a column the table lacks, and a feature the contract lacks.
+    write_table(store, 1.0);
+    let plan = PLAN.replace("field = \"x\"", "field = \"speed\"") + "wind = { source = \"sites\", key = \"{site}\", field = \"x\" }\n";
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    reg.reload().unwrap();
+    let FeaturesState::Refused { problems } = reg.status().features else { panic!("{:?}", reg.status().features) };
+    assert_eq!(
+        problems,
+        [
+            "m 1.0.0: the plan sources `wind`, which its contract does not have",
+            "m 1.0.0: feature `x`: source `sites` has no column `speed` (it has site, x)",
+        ]
+    );
+    assert_eq!(ask(&reg), 7.0);
+    // Mended: served again, and a file that does not parse names its place.
+    write_atomically(&store.join("features.toml"), b"[models.m\n");
+    reg.reload().unwrap();
+    let FeaturesState::Refused { problems } = reg.status().features else { panic!() };
+    assert!(problems[0].starts_with("features.toml: TOML parse error at line 1"), "{problems:?}");
+    write_atomically(&store.join("features.toml"), PLAN.as_bytes());
+    reg.reload().unwrap();
+    assert!(matches!(reg.status().features, FeaturesState::Accepted { .. }));
+}
