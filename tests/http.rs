@@ -488,3 +488,28 @@ fn shutdown_lets_the_request_in_flight_finish() {
     let refused = agent().get(&format!("{}/alive", s.base)).call();
     assert!(refused.is_err(), "{:?}", refused.map(|r| r.status()));
 }
+
+/// A model whose `x` is looked up: the request gives the key (in the
+/// context, or in the row), and the answer says where `x` came from.
+#[test]
+fn estimates_are_scored_from_keys_and_say_what_was_looked_up() {
+    let dir = tempfile::tempdir().unwrap();
+    write_atomically(&dir.path().join("tables/sites.csv"), b"site,x\nnorth-1,3\n");
+    write_atomically(
+        &dir.path().join("features.toml"),
+        b"[sources.sites]\ntable = \"tables/sites.csv\"\nkey = \"site\"\n[models.m]\nkeys = [\"site\"]\n[models.m.features]\nx = { source = \"sites\", key = \"{site}\", field = \"x\", missing = { default = 0.5 } }\n",
+    );
+    let s = Server::start(store(dir.path(), true), ServeOptions::default());
+    // y = 2·3 + 1 from the table; everything said with "lookups": "all".
+    let r = estimate(&s, "m", r#"{"context": {"site": "north-1"}, "row": {}, "lookups": "all"}"#);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let a = r.json();
+    assert_eq!(a["estimates"][0]["y"], 7.0);
+    assert_eq!(a["lookups"][0][0], serde_json::json!({"feature": "x", "source": "sites", "key": "north-1", "outcome": "found"}));
+    // Keys in the rows; an unknown site falls back to the default 0.5 (y = 2),
+    // and the compact answer names only that fallback.
+    let r = estimate(&s, "m", r#"{"rows": [{"site": "north-1"}, {"site": "west-9"}]}"#);
+    let a = r.json();
+    assert_eq!((a["estimates"][0]["y"].as_f64(), a["estimates"][1]["y"].as_f64()), (Some(7.0), Some(2.0)), "{}", r.body);
+    assert_eq!(a["lookups"], serde_json::json!([[], [{"feature": "x", "source": "sites", "key": "west-9", "outcome": "missing"}]]));
+}

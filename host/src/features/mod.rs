@@ -88,6 +88,7 @@ pub struct Resolved {
 
 /// What became of one looked-up feature for one row.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
 pub enum Outcome {
     /// The row carried the feature itself: no lookup.
@@ -102,6 +103,7 @@ pub enum Outcome {
 
 /// Where one feature of a row came from.
 #[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct Fetched {
     /// The feature.
     pub feature: String,

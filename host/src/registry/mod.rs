@@ -233,7 +233,8 @@ impl<'a> Request<'a> {
 }
 
 /// How much an answer says of the features looked up for its rows.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
 pub enum Lookups {
     /// Only the features that fell back (missing or stale).

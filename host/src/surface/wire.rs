@@ -10,7 +10,8 @@ use serde::{Deserialize, Serialize, Serializer};
 
 use crate::digest::Digest;
 use crate::model::{ScoreError, Usage};
-use crate::registry::{Answer, Context, Reason, Request, RequestError};
+use crate::features::Fetched;
+use crate::registry::{Answer, Context, Lookups, Reason, Request, RequestError};
 use crate::rows::{Row, RowError};
 
 /// A request for estimates, in the same shape on every surface: the body of
@@ -37,6 +38,13 @@ pub struct EstimateRequest {
     /// `2026-12-05T08:27:00+01:00`), for time windows; the server's clock
     /// when left out.
     pub at: Option<String>,
+    /// For a model whose features are looked up (the store's features
+    /// file): `fallbacks` (the default) names in the answer only the
+    /// features that fell back; `all` says where every one came from.
+    /// The keys are the context's fields, or a row's own fields named as
+    /// keys; a feature a row gives itself wins over its lookup.
+    #[serde(default)]
+    pub lookups: Lookups,
 }
 
 impl EstimateRequest {
@@ -59,7 +67,8 @@ impl EstimateRequest {
 
     /// The registry request for these rows.
     pub fn request<'a>(&'a self, rows: &'a [Row], at: Option<Timestamp>) -> Request<'a> {
-        Request::new(&self.model, &self.context, rows).at(at)
+        let request = Request::new(&self.model, &self.context, rows).at(at);
+        if self.lookups == Lookups::All { request.every_lookup() } else { request }
     }
 }
 
@@ -105,6 +114,11 @@ pub struct EstimateAnswer {
     pub problems: Vec<RowError>,
     /// What the call cost.
     pub usage: Usage,
+    /// Per request row, the features looked up for it: only those that
+    /// fell back (missing or stale), or all of them when the request asked
+    /// for `"lookups": "all"`. Left out when the model looks nothing up.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub lookups: Vec<Vec<Fetched>>,
 }
 
 /// One row's outputs: output name → value, in contract order.
@@ -141,6 +155,7 @@ impl EstimateAnswer {
             usage: *answer.estimates.usage(),
             estimates,
             problems: answer.problems,
+            lookups: answer.lookups,
         }
     }
 }
