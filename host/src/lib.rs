@@ -37,8 +37,13 @@
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
 //!   import WASI (Python, JavaScript) load into an empty WASI world.
 //!
+//! - [`features`]: between the registry and the sandbox, a row's missing
+//!   features looked up by the request's keys in the tables a store's
+//!   features file names.
+//!
 //! What it is not: a training library, or a feature store. It scores the
-//! rows it is given, exactly as the artifact says, and nothing else.
+//! rows it is given, completed from tables a batch job wrote, exactly as
+//! the artifact says; it computes no feature.
 
 #![deny(missing_docs)]
 
