@@ -290,6 +290,14 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
     }
     let routes = root.join("models/train-demo/routes.toml");
     std::fs::copy(&routes, store.join("routes.toml")).with_context(|| format!("copying {}", routes.display()))?;
+    // The features plan and the tables the trainer wrote.
+    std::fs::create_dir_all(store.join("tables"))?;
+    for table in ["sites.csv", "members.csv"] {
+        let from = trained.join("tables").join(table);
+        std::fs::copy(&from, store.join("tables").join(table)).with_context(|| format!("copying {}", from.display()))?;
+    }
+    let features = root.join("models/train-demo/features.toml");
+    std::fs::copy(&features, store.join("features.toml")).with_context(|| format!("copying {}", features.display()))?;
     Ok(())
 }
 

@@ -108,6 +108,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
     let mut answers = Vec::new();
+    let mut looked_up: std::collections::BTreeMap<paddock_host::features::Outcome, usize> = std::collections::BTreeMap::new();
     for record in reader.records() {
         let mut cells: HashMap<String, String> =
             header.iter().zip(record?.iter()).map(|(k, v)| (k.to_owned(), v.to_owned())).collect();
@@ -115,8 +116,10 @@ pub fn run(args: Args) -> Result<Outcome> {
         let local = zone.to_datetime(at);
         let hour_of_week = i64::from(local.weekday().to_monday_zero_offset()) * 24 + i64::from(local.hour());
         cells.insert("hour_of_week".into(), hour_of_week.to_string());
+        // The keys: routes read the site and region; the overstay model's
+        // site and member features are looked up by site and member.
         let context: paddock_host::Context =
-            ["site", "region"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
+            ["site", "region", "member"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
         let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
@@ -127,7 +130,12 @@ pub fn run(args: Args) -> Result<Outcome> {
         cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
         let overstay_model = routed_model(&registry, "overstay-risk", &context, at)?;
         let rows = [row_for(&overstay_model, &cells)];
-        let o = registry.score(&Request::new("overstay-risk", &context, &rows).at(Some(at)))?;
+        // Site occupancy and the member's overstay rate are not in the
+        // plug-in event: they are looked up by key (the store's features.toml).
+        let o = registry.score(&Request::new("overstay-risk", &context, &rows).at(Some(at)).every_lookup())?;
+        for f in o.lookups.iter().flatten() {
+            *looked_up.entry(f.outcome).or_insert(0) += 1;
+        }
         answers.push(Answer {
             site: cells["site"].clone(),
             region: cells["region"].clone(),
@@ -181,6 +189,16 @@ pub fn run(args: Args) -> Result<Outcome> {
             s.max_abs_diff,
             s.over_tolerance,
             registry.routes().model(&s.model).and_then(|r| r.shadow()).map_or(0.0, |sh| sh.tolerance)
+        );
+    }
+    if !looked_up.is_empty() {
+        let count = |o| looked_up.get(&o).copied().unwrap_or(0);
+        use paddock_host::features::Outcome;
+        println!(
+            "overstay-risk read site occupancy and member overstay rate by key from the store's tables: {} found, {} missing (members not in the table yet: the feature is absent), {} stale",
+            count(Outcome::Found),
+            count(Outcome::Missing),
+            count(Outcome::Stale)
         );
     }
     let status = registry.status();

@@ -87,7 +87,7 @@ pub struct Resolved {
 }
 
 /// What became of one looked-up feature for one row.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
 pub enum Outcome {
@@ -250,12 +250,18 @@ impl Resolved {
         let mut buf = String::new();
         for step in &self.steps {
             let carried = row.fields().iter().any(|(n, v)| *n == step.feature && *v != Value::Absent);
-            let key = step.lookup.key.render(keys, &mut buf).map_err(|k| GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() })?.to_owned();
             if carried {
+                let key = step.lookup.key.render(keys, &mut buf).unwrap_or_default().to_owned();
                 fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
                 continue;
             }
-            let found = step.table.get(&key, step.column);
+            // No key: nothing can be found; the feature falls back, or the
+            // row fails naming the key when its fallback is to fail.
+            let (key, found) = match step.lookup.key.render(keys, &mut buf) {
+                Ok(key) => (key.to_owned(), step.table.get(key, step.column)),
+                Err(k) if step.lookup.missing == Fallback::Fail => return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() }),
+                Err(k) => (format!("(no `{k}`)"), None),
+            };
             let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
             let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
             let (outcome, value) = match found {

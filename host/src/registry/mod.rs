@@ -546,7 +546,8 @@ impl Registry {
 
         // Features looked up: rows that could not be completed are problems
         // of the answer, numbered as the request numbered them.
-        let gathered = plan.map(|plan| gather(&plan, request, shared.options.clock.now()));
+        // Ages are measured at the request's time (a replay judges its own day).
+        let gathered = plan.map(|plan| gather(&plan, request, at));
         let rows = gathered.as_ref().map_or(request.rows, |g| &g.rows[..]);
         let started = Instant::now();
         let in_flight = served.ledger.enter();

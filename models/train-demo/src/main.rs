@@ -7,7 +7,8 @@
 //!
 //! writes `OUT_DIR/charge-minutes.params`, `OUT_DIR/charge-minutes.checks.json`,
 //! `OUT_DIR/overstay-risk.params`, `OUT_DIR/overstay-risk.checks.json`, and
-//! the versions of the demo store under `OUT_DIR/store/<model>/<version>.*`
+//! the versions of the demo store under `OUT_DIR/store/<model>/<version>.*`,
+//! and the tables its features are looked up in (`OUT_DIR/store/tables/`)
 //! (params carrying their contract, for the generic `trees` and `linear`
 //! guests; see `routes.toml` beside this crate for how they are routed).
 //! The sessions are invented (see `simulate.rs`): demo only. The checks'
@@ -53,8 +54,30 @@ fn main() -> Result<()> {
     write(&out, "charge-minutes", &encode_params(&minutes.1), &minutes_checks)?;
     write(&out, "overstay-risk", &encode_params(&overstay.1), &overstay_checks)?;
     store_versions(&out.join("store"), &train, &held_out, &minutes)?;
+    feature_tables(&out.join("store/tables"))?;
     println!("trained on {TRAIN} simulated sessions; params and checks in {}", out.display());
     Ok(())
+}
+
+/// The tables the demo's features are looked up in, as a nightly job of
+/// the co-op would write them (invented values: demo only): each site's
+/// share of bays in use, each member's share of past sessions that
+/// overstayed. Members who joined lately are not in the table yet.
+fn feature_tables(dir: &Path) -> Result<()> {
+    const UPDATED: &str = "2026-11-30T02:00:00+01:00";
+    let sites = [("Harbour Lot", 0.38), ("Market Hall", 0.72), ("Depot North", 0.22), ("Library Green", 0.92), ("Station Road", 0.41)];
+    let members = [("m-1041", 0.10), ("m-0307", 0.45), ("m-1877", 0.05), ("m-3120", 0.02), ("m-0988", 0.30), ("m-0012", 0.55), ("m-2754", 0.12)];
+    std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
+    let mut csv = String::from("site,occupancy,updated_at\n");
+    for (site, occupancy) in sites {
+        csv.push_str(&format!("{site},{occupancy},{UPDATED}\n"));
+    }
+    std::fs::write(dir.join("sites.csv"), csv).context("writing tables/sites.csv")?;
+    let mut csv = String::from("member,overstay_rate,updated_at\n");
+    for (member, rate) in members {
+        csv.push_str(&format!("{member},{rate},{UPDATED}\n"));
+    }
+    std::fs::write(dir.join("members.csv"), csv).context("writing tables/members.csv")
 }
 
 /// The demo store's versions. Every one is trained on the same invented
