@@ -101,6 +101,7 @@ fn formats_are_recognised_from_content() {
     assert_eq!(Format::recognise(LGB.as_bytes()), Some(Format::LightgbmText));
     assert_eq!(Format::recognise(xgboost(STUMP).as_bytes()), Some(Format::XgboostJson));
     assert_eq!(Format::recognise(b"\0asm\x01\0\0\0"), None);
-    assert_eq!(crate::looks_like(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), "PMML");
+    assert_eq!(crate::looks_like(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), "a PMML document");
+    assert_eq!(Format::recognise(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), Some(Format::Pmml));
 }
 
