@@ -12,8 +12,8 @@ use paddock_guest::{
     Tree, Trees, TreesParams, encode_params,
 };
 use paddock_guest::ndarray::{Array2, ArrayView2};
-use paddock_host::{Model, ModelOptions, Row, Runtime, checking};
-use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble};
+use paddock_host::{Model, Row, Runtime, checking};
+use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble, unhurried};
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linear::linear_regression::LinearRegression;
@@ -37,7 +37,7 @@ fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
         params: LinearParams { link: Link::Identity, intercepts: vec![*fit.intercept()], weights: vec![weights], impute: vec![] },
     });
     let runtime = Runtime::new().unwrap();
-    let model = load(&runtime, &guest("paddock-model-linear"), &params, ModelOptions::default());
+    let model = load(&runtime, &guest("paddock-model-linear"), &params, unhurried());
     let requests: Vec<Row> = rows
         .iter()
         .map(|r| names.iter().cloned().zip(r.iter().copied()).collect())
@@ -70,7 +70,7 @@ fn tree_ensemble_in_the_sandbox_equals_native_bit_for_bit() {
     named.features.iter_mut().for_each(|f| f.required = false);
     let blob = encode_params(&Packaged { contract: named, params: params.clone() });
     let runtime = Runtime::new().unwrap();
-    let model = load(&runtime, &guest("paddock-model-trees"), &blob, ModelOptions::default());
+    let model = load(&runtime, &guest("paddock-model-trees"), &blob, unhurried());
     let rows = 2000;
     let cells = random_cells(11, rows, features as usize, 0.1);
     let sandboxed = model.score_cells(rows, &cells).unwrap();
@@ -106,7 +106,7 @@ fn small_ensemble_in_the_sandbox_matches_hand_computed_values() {
         &runtime,
         &guest("paddock-model-trees"),
         &encode_params(&Packaged { contract: named, params }),
-        ModelOptions::default(),
+        unhurried(),
     );
     let rows = vec![
         Row::new().with("a", 4.0).with("b", -1.0),
@@ -120,7 +120,7 @@ fn small_ensemble_in_the_sandbox_matches_hand_computed_values() {
 #[test]
 fn hand_written_wat_model_scores_through_the_same_contract() {
     let runtime = Runtime::new().unwrap();
-    let model = load(&runtime, &fixture("affine.wat"), &[], ModelOptions::default());
+    let model = load(&runtime, &fixture("affine.wat"), &[], unhurried());
     let c = model.contract();
     assert_eq!((c.name.as_str(), c.version.as_str()), ("affine", "1.0.0"));
     assert_eq!(c.features.len(), 1);

@@ -14,9 +14,9 @@
 use std::path::PathBuf;
 
 use paddock_guest::{Combine, Node};
-use paddock_host::{Checks, Model, ModelOptions, Runtime};
+use paddock_host::{Checks, Model, Runtime};
 use paddock_import::{Estimator, Format, ImportError, Manifest, import};
-use paddock_tests::{guest, load, root};
+use paddock_tests::{guest, load, root, unhurried};
 
 /// Every model the export writes: a test fails if one is missing.
 const CASES: [&str; 21] = [
@@ -64,7 +64,7 @@ fn case(name: &str) -> (PathBuf, Vec<u8>, Checks) {
 fn imported_model(runtime: &Runtime, path: &std::path::Path, bytes: &[u8]) -> Model {
     let format = Format::recognise(bytes).unwrap_or_else(|| panic!("{}: format not recognised", path.display()));
     let imported = import(bytes, format, &path.file_name().unwrap().to_string_lossy(), None).unwrap();
-    load(runtime, &guest(imported.guest()), &imported.params(), ModelOptions::default())
+    load(runtime, &guest(imported.guest()), &imported.params(), unhurried())
 }
 
 #[test]
@@ -296,7 +296,7 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
             _ => unreachable!(),
         };
         let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
-        let model = load(&runtime, &guest(imported.guest()), &imported.params(), ModelOptions::default());
+        let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
         let order: Vec<String> = imported.contract.features.iter().map(|f| f.name.clone()).collect();
         let outputs: Vec<String> = imported.contract.outputs.iter().map(|o| o.name.clone()).collect();
         let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();

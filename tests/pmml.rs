@@ -16,9 +16,9 @@ use std::path::PathBuf;
 
 use paddock_guest::ndarray::Array2;
 use paddock_guest::{Domain, Evaluate, Program};
-use paddock_host::{Checks, ModelOptions, Runtime};
+use paddock_host::{Checks, Runtime};
 use paddock_import::{Estimator, Format, ImportError, Imported, import};
-use paddock_tests::{guest, load, root};
+use paddock_tests::{guest, load, root, unhurried};
 
 /// Every document the nyoka export writes: a test fails if one is missing.
 const NYOKA: [&str; 8] = ["iris-tree", "iris-forest", "cancer-forest", "iris-logistic", "cancer-boosted", "diabetes-tree", "diabetes-forest", "diabetes-linear"];
@@ -72,7 +72,7 @@ fn nyoka_documents_give_scikit_learns_predictions_in_the_sandbox() {
         let checks = Checks::from_json(&std::fs::read(dir.join(format!("{name}.checks.json"))).unwrap()).unwrap();
         let imported = import(&bytes, Format::Pmml, &format!("{name}.pmml"), None).unwrap_or_else(|e| panic!("{e}"));
         assert_eq!(imported.guest(), "paddock-model-program");
-        let model = load(&runtime, &guest(imported.guest()), &imported.params(), ModelOptions::default());
+        let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
         let report = paddock_host::checking::run(&model, &checks).unwrap();
         assert!(report.ok(), "{name}: {:?} ({})", report.failures.first(), checks.source);
         // The rows the export left out go another way in the document than

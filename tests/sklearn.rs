@@ -11,8 +11,8 @@
 //! numpy and Python versions, and each assertion message repeats them).
 
 use paddock_guest::{Branch, LinearParams, Link, Node, Packaged, SplitRule, Tree, TreesParams, encode_params};
-use paddock_host::{Model, ModelOptions, Row, Runtime};
-use paddock_tests::{guest, load, open_contract, root};
+use paddock_host::{Model, Row, Runtime};
+use paddock_tests::{guest, load, open_contract, root, unhurried};
 use serde_json::Value;
 
 /// The export for one model, written by tests/sklearn/export.py.
@@ -63,7 +63,7 @@ fn linear_regression_from_scikit_learn_matches_its_predictions_within_1e_9() {
         impute: vec![],
     };
     let blob = encode_params(&Packaged { contract: open_contract("diabetes-linear", &features, "progression"), params });
-    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-linear"), &blob, ModelOptions::default());
+    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-linear"), &blob, unhurried());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
     eprintln!("LinearRegression: largest relative error {worst:e} over 442 rows ({})", versions(&e));
@@ -104,7 +104,7 @@ fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
         .collect();
     let params = TreesParams::boosted(features.len() as u32, e["init"].as_f64().unwrap(), SplitRule::LessOrEqual, trees);
     let blob = encode_params(&Packaged { contract: open_contract("diabetes-boosted", &features, "progression"), params });
-    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, ModelOptions::default());
+    let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, unhurried());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
     eprintln!("GradientBoostingRegressor: largest relative error {worst:e} over 442 rows ({})", versions(&e));
@@ -126,7 +126,7 @@ fn onnx_model(name: &str) -> Model {
     let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
     let manifest = String::from_utf8(read("toml")).unwrap();
     let params = paddock_host::onnx::params(&manifest, &read("onnx")).unwrap();
-    load(&Runtime::new().unwrap(), &guest("paddock-model-onnx"), &params, ModelOptions::default())
+    load(&Runtime::new().unwrap(), &guest("paddock-model-onnx"), &params, unhurried())
 }
 
 #[test]

@@ -42,6 +42,15 @@ pub fn packed(module: &[u8], params: &[u8], checks: Option<&Checks>) -> Artifact
     Artifact::from_bytes(bytes, u64::MAX).expect("parses")
 }
 
+/// Options for a fidelity check: the library's limits, but deadlines of a
+/// minute. These tests compare numbers, not speed; scoring hundreds of
+/// rows in one call on a machine busy with other builds can take longer
+/// than the 50 ms a production call gets.
+pub fn unhurried() -> ModelOptions {
+    let limits = paddock_host::Limits { deadline: std::time::Duration::from_secs(60), init_deadline: std::time::Duration::from_secs(60), ..paddock_host::Limits::default() };
+    ModelOptions { limits, ..ModelOptions::default() }
+}
+
 /// Loads a module packed with params, with the given options.
 pub fn load(runtime: &Runtime, module: &[u8], params: &[u8], options: ModelOptions) -> Model {
     Model::load_with(runtime, packed(module, params, None), options).expect("loads")
