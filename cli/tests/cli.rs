@@ -241,6 +241,26 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     assert!(err.contains("holds a model paddock imports (scikit-learn model in ONNX (skl2onnx)), so --manifest takes overrides of its contract"), "{err}");
 }
 
+/// A LightGBM model LightGBM 4.7.0 saved (wine, a categorical feature;
+/// tests/imports/export.py) packs from the CLI with the helper's checks —
+/// LightGBM's own `predict` on all 178 rows, bit for bit — and inspect
+/// names where the contract came from.
+#[test]
+fn pack_imports_a_lightgbm_model_from_the_cli() {
+    let dir = root().join("target/paddock/imports");
+    let model = dir.join("lgb-wine-categorical.txt");
+    assert!(model.exists(), "{}: run `python3 tests/imports/export.py target/paddock/imports`", model.display());
+    let out = tmp("wine.wasm");
+    let checks = dir.join("lgb-wine-categorical.checks.json");
+    let o = paddock(&["pack", model.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(text(&o.stdout).contains("loads as lgb-wine-categorical 0.0.0\nchecks: 178/178 passed (max abs error 0e0, max rel error 0e0)"), "{}", text(&o.stdout));
+    let o = paddock(&["inspect", out.to_str().unwrap()], None);
+    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    assert!(shown.contains("(LightGBM text model, 180 trees)"), "{shown}");
+    assert!(shown.contains("feature alcohol_band name from feature_names in the file;"), "{shown}");
+}
+
 /// A PMML document packs onto the program guest; the checks are worked
 /// out by hand from the document (tests/pmml.rs shows the steps).
 #[test]
