@@ -676,10 +676,6 @@ impl<'a, 'input> Reader<'a, 'input> {
                 nodes[i].default_child = Some(c.ok_or_else(|| self.malformed(*n, format!("defaultChild `{name}` is not one of its children")))?);
             }
         }
-        if unknown == WhenUnknown::DefaultChild && nodes.iter().any(|n| !n.children.is_empty() && n.default_child.is_none()) {
-            // Allowed: such a node gives no prediction on an unknown, as the
-            // strategy leaves nowhere else to go.
-        }
         Ok((Kind::Tree { nodes, unknown, last_when_no_child }, labels))
     }
 

@@ -245,11 +245,12 @@ impl Resolved {
         } else {
             (context, row.clone())
         };
-        let row = &out.clone();
         let mut fetched = Vec::with_capacity(self.steps.len());
         let mut buf = String::new();
         for step in &self.steps {
-            let carried = row.fields().iter().any(|(n, v)| *n == step.feature && *v != Value::Absent);
+            // Each step sets only its own feature, so `out` still shows
+            // what the row itself carried for this one.
+            let carried = out.fields().iter().any(|(n, v)| *n == step.feature && *v != Value::Absent);
             if carried {
                 let key = step.lookup.key.render(keys, &mut buf).unwrap_or_default().to_owned();
                 fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
