@@ -55,7 +55,7 @@ fn site(s: &str) -> Context {
 #[test]
 fn a_request_scores_from_its_keys_alone() {
     let (_dir, reg) = store(1.0);
-    assert!(matches!(&reg.status().features, FeaturesState::Accepted { tables } if tables[0].rows == 64), "{:?}", reg.status().features);
+    assert!(matches!(&reg.status().features, FeaturesState::Accepted { tables, .. } if tables[0].rows == 64), "{:?}", reg.status().features);
     let rows = [Row::new()];
     let a = reg.score(&Request::new("m", &site("s3"), &rows)).unwrap();
     assert_eq!(a.estimates.row(0), [7.0], "x = 3 from the table: 2·3 + 1");

@@ -1,7 +1,7 @@
 //! `paddock status`: open a store as a host would, and list every artifact
 //! (loaded, refused and why, kept), which routes use it, whether the
 //! routes file was taken, and the features file's tables (rows, age, when
-//! loaded). Exits 1 when anything was refused: run it before publishing a
+//! loaded) and Redis sources. Exits 1 when anything was refused: run it before publishing a
 //! store.
 
 use anyhow::Result;
@@ -71,12 +71,18 @@ pub fn run(args: Args) -> Result<Outcome> {
         let features = paddock_host::registry::FEATURES_FILE;
         match &status.features {
             FeaturesState::Missing => println!("features: no {features} — rows carry their features"),
-            FeaturesState::Accepted { tables } => {
+            FeaturesState::Accepted { tables, servers } => {
                 println!("features: {features} accepted");
-                let rows: Vec<Vec<String>> =
-                    tables.iter().map(|t| vec![t.source.clone(), t.file.display().to_string(), t.rows.to_string(), t.changed.clone(), t.loaded.clone()]).collect();
+                let rows: Vec<Vec<String>> = tables
+                    .iter()
+                    .map(|t| vec![t.source.clone(), t.file.display().to_string(), t.rows.to_string(), age(&t.changed), t.changed.clone(), t.loaded.clone()])
+                    .collect();
                 if !rows.is_empty() {
-                    print!("{}", text_table(&["source", "table", "rows", "file changed", "loaded"], &rows));
+                    print!("{}", text_table(&["source", "table", "rows", "age", "file changed", "loaded"], &rows));
+                }
+                let rows: Vec<Vec<String>> = servers.iter().map(|s| vec![s.source.clone(), s.url.clone(), format!("{} ms", s.budget_ms)]).collect();
+                if !rows.is_empty() {
+                    print!("{}", text_table(&["source", "redis", "budget"], &rows));
                 }
             }
             FeaturesState::Refused { problems } => {
@@ -91,4 +97,16 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
     }
     Ok(if refused { Outcome::Failed } else { Outcome::Ok })
+}
+
+/// How long ago an RFC 3339 time was, in the largest whole unit (`3 h`).
+fn age(when: &str) -> String {
+    let Ok(t) = when.parse::<jiff::Timestamp>() else { return "?".to_owned() };
+    let s = (jiff::Timestamp::now().as_second() - t.as_second()).max(0);
+    match s {
+        0..60 => format!("{s} s"),
+        60..3600 => format!("{} min", s / 60),
+        3600..86_400 => format!("{} h", s / 3600),
+        _ => format!("{} d", s / 86_400),
+    }
 }

@@ -15,7 +15,9 @@
 //! What it is not: a feature store. It reads what a batch job wrote; it
 //! computes nothing.
 
+pub mod counts;
 pub mod plan;
+pub mod redis;
 pub mod table;
 
 use std::collections::BTreeMap;
@@ -25,6 +27,8 @@ use semver::Version;
 use serde::Serialize;
 
 pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use counts::{SourceCounts, SourceKind, SourceUsage};
+pub use redis::{RedisSource, Trouble};
 pub use table::{Cell, Table, TableError};
 
 use crate::contract::{Contract, Domain};
@@ -34,38 +38,74 @@ use crate::rows::{Row, Value};
 #[derive(Clone, Debug, Default)]
 pub struct Sources {
     tables: BTreeMap<String, Arc<Table>>,
+    redis: BTreeMap<String, Arc<RedisSource>>,
+    counts: BTreeMap<String, Arc<SourceCounts>>,
 }
 
 impl Sources {
-    /// Reads every table the plan declares.
+    /// Reads every table the plan declares and makes its Redis sources
+    /// (which connect on their first read).
     ///
     /// # Errors
-    /// Every table that could not be read, each naming its file, row and column.
-    pub fn load(plan: &Plan) -> Result<Sources, Vec<TableError>> {
-        let mut tables = BTreeMap::new();
+    /// Every source that could not be made, each naming its file, row and
+    /// column, or its URL.
+    pub fn load(plan: &Plan) -> Result<Sources, Vec<String>> {
+        let mut sources = Sources::default();
         let mut problems = Vec::new();
         for (name, source) in &plan.sources {
+            let counts = sources.counts(name);
             match source {
                 Source::Table { path, key, updated } => match Table::read(path, key, updated.as_deref()) {
                     Ok(t) => {
-                        tables.insert(name.clone(), Arc::new(t));
+                        sources.tables.insert(name.clone(), Arc::new(t));
                     }
-                    Err(e) => problems.push(e),
+                    Err(e) => problems.push(e.to_string()),
+                },
+                Source::Redis { url, budget, .. } => match RedisSource::new(url, *budget, counts) {
+                    Ok(r) => {
+                        sources.redis.insert(name.clone(), Arc::new(r));
+                    }
+                    Err(e) => problems.push(format!("sources.{name}: {e}")),
                 },
             }
         }
-        if problems.is_empty() { Ok(Sources { tables }) } else { Err(problems) }
+        if problems.is_empty() { Ok(sources) } else { Err(problems) }
     }
 
-    /// Sources from tables already read, by source name.
-    pub fn from_tables(tables: BTreeMap<String, Arc<Table>>) -> Sources {
-        Sources { tables }
+    /// Sources from tables already read and Redis sources already made,
+    /// by source name, counting into `counts` (by source name; a source
+    /// with no counters there gets new ones).
+    pub fn from_parts(tables: BTreeMap<String, Arc<Table>>, redis: BTreeMap<String, Arc<RedisSource>>, counts: BTreeMap<String, Arc<SourceCounts>>) -> Sources {
+        Sources { tables, redis, counts }
+    }
+
+    /// The counters of a source, made on first use.
+    pub fn counts(&mut self, name: &str) -> Arc<SourceCounts> {
+        self.counts.entry(name.to_owned()).or_default().clone()
+    }
+
+    /// Every source's counters now.
+    pub fn usage(&self) -> Vec<SourceUsage> {
+        let kind = |name: &str| if self.redis.contains_key(name) { SourceKind::Redis } else { SourceKind::Table };
+        self.counts.iter().map(|(name, c)| c.report(name, kind(name))).collect()
     }
 
     /// The table of a source.
     pub fn table(&self, name: &str) -> Option<&Arc<Table>> {
         self.tables.get(name)
     }
+
+    /// The Redis source of a name.
+    pub fn redis(&self, name: &str) -> Option<&Arc<RedisSource>> {
+        self.redis.get(name)
+    }
+}
+
+/// How a step reads its source.
+#[derive(Clone, Debug)]
+enum Via {
+    Table { table: Arc<Table>, column: usize },
+    Redis { source: Arc<RedisSource>, updated: Option<String> },
 }
 
 /// One looked-up feature, ready.
@@ -74,12 +114,12 @@ struct Step {
     feature: String,
     domain: Domain,
     source: String,
-    table: Arc<Table>,
-    column: usize,
+    via: Via,
     lookup: Lookup,
+    counts: Arc<SourceCounts>,
 }
 
-/// A model version's plan, held to its contract, with its tables.
+/// A model version's plan, held to its contract, with its sources.
 #[derive(Clone, Debug)]
 pub struct Resolved {
     steps: Vec<Step>,
@@ -99,6 +139,22 @@ pub enum Outcome {
     Missing,
     /// Older than its allowed age: the feature's fallback.
     Stale,
+    /// The source did not answer within its budget, failed, or is paused
+    /// after failing: the feature's fallback.
+    Unavailable,
+}
+
+impl Outcome {
+    /// Its name, as the wire and the metrics write it.
+    pub fn name(self) -> &'static str {
+        match self {
+            Outcome::FromRequest => "from_request",
+            Outcome::Found => "found",
+            Outcome::Missing => "missing",
+            Outcome::Stale => "stale",
+            Outcome::Unavailable => "unavailable",
+        }
+    }
 }
 
 /// Where one feature of a row came from.
@@ -142,6 +198,19 @@ pub enum GatherError {
         /// Whether it was there but too old.
         stale: bool,
     },
+    /// A feature whose fallback is to fail could not be read: its source
+    /// did not answer in time, or failed.
+    #[error("feature `{feature}`: source `{from}` could not be read for key `{key}`: {trouble}")]
+    Unavailable {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// What happened.
+        trouble: String,
+    },
     /// The source's value does not fit the feature.
     #[error("feature `{feature}`: source `{from}` has `{value}` under key `{key}`, not {wanted}")]
     WrongKind {
@@ -163,37 +232,56 @@ impl GatherError {
     pub fn place(&self) -> (&str, String) {
         match self {
             GatherError::NoKey { key, .. } => (key, "absent".to_owned()),
-            GatherError::Missing { feature, .. } => (feature, "absent".to_owned()),
+            GatherError::Missing { feature, .. } | GatherError::Unavailable { feature, .. } => (feature, "absent".to_owned()),
             GatherError::WrongKind { feature, value, .. } => (feature, value.clone()),
         }
     }
 }
 
 impl Resolved {
-    /// Holds `model` `version`'s plan to its contract and binds its tables.
-    /// `None` when the plan says nothing of the model.
+    /// Holds `model` `version`'s plan to its contract and binds its
+    /// sources; `deadline` is the version's deadline per call, which every
+    /// Redis budget must fit inside. `None` when the plan says nothing of
+    /// the model.
     ///
     /// # Errors
     /// Every problem: features the contract lacks, required features with
-    /// no source, tables or columns that are not there.
-    pub fn new(plan: &Plan, sources: &Sources, model: &str, version: &Version, contract: &Contract) -> Result<Option<Resolved>, Vec<String>> {
+    /// no source, tables or columns that are not there, a budget longer
+    /// than the deadline.
+    pub fn new(plan: &Plan, sources: &Sources, model: &str, version: &Version, contract: &Contract, deadline: std::time::Duration) -> Result<Option<Resolved>, Vec<String>> {
         let Some(m) = plan.models.get(model) else { return Ok(None) };
         let mut problems = plan.check(model, version, contract);
         let mut steps = Vec::new();
         for (feature, supply) in m.features_of(version) {
             let Supply::Lookup(lookup) = supply else { continue };
             let Some(f) = contract.features.iter().find(|f| &f.name == feature) else { continue };
-            let Some(table) = sources.table(&lookup.source) else {
+            let via = if let Some(table) = sources.table(&lookup.source) {
+                let Some(column) = table.column(&lookup.field) else {
+                    problems.push(format!(
+                        "{model} {version}: feature `{feature}`: source `{}` has no column `{}` (it has {})",
+                        lookup.source,
+                        lookup.field,
+                        table.columns().collect::<Vec<_>>().join(", ")
+                    ));
+                    continue;
+                };
+                Via::Table { table: Arc::clone(table), column }
+            } else if let Some(redis) = sources.redis(&lookup.source) {
+                if redis.budget() > deadline {
+                    problems.push(format!(
+                        "{model} {version}: feature `{feature}`: source `{}` has a budget of {} ms, longer than the version's deadline of {} ms: a lookup must fit inside the call's time",
+                        lookup.source,
+                        redis.budget().as_millis(),
+                        deadline.as_millis()
+                    ));
+                }
+                let updated = match plan.sources.get(&lookup.source) {
+                    Some(Source::Redis { updated, .. }) => updated.clone(),
+                    _ => None,
+                };
+                Via::Redis { source: Arc::clone(redis), updated }
+            } else {
                 problems.push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
-                continue;
-            };
-            let Some(column) = table.column(&lookup.field) else {
-                problems.push(format!(
-                    "{model} {version}: feature `{feature}`: source `{}` has no column `{}` (it has {})",
-                    lookup.source,
-                    lookup.field,
-                    table.columns().collect::<Vec<_>>().join(", ")
-                ));
                 continue;
             };
             if let Fallback::Default(v) = &lookup.missing {
@@ -201,7 +289,8 @@ impl Resolved {
                     problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
                 }
             }
-            steps.push(Step { feature: feature.clone(), domain: f.domain.clone(), source: lookup.source.clone(), table: Arc::clone(table), column, lookup: lookup.clone() });
+            let counts = sources.counts.get(&lookup.source).cloned().unwrap_or_default();
+            steps.push(Step { feature: feature.clone(), domain: f.domain.clone(), source: lookup.source.clone(), via, lookup: lookup.clone(), counts });
         }
         if problems.is_empty() { Ok(Some(Resolved { steps, keys: m.keys.clone() })) } else { Err(problems) }
     }
@@ -212,76 +301,209 @@ impl Resolved {
     }
 
     /// Completes `row` with the features the plan looks up, at `now`
+    /// (Unix seconds); see [`Resolved::gather_rows`].
+    ///
+    /// # Errors
+    /// As [`Resolved::gather_rows`] says of each row.
+    pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
+        self.gather_rows(context, std::slice::from_ref(row), now).pop().expect("one row in, one out")
+    }
+
+    /// Completes each row with the features the plan looks up, at `now`
     /// (Unix seconds). The keys are the request's `context`, each
     /// overridden by a field of the row named as a key (which then leaves
     /// the row: keys are not features). A feature the row carries itself
-    /// wins over its lookup. Returns the completed row and, per looked-up
-    /// feature, where it came from.
-    ///
-    /// # Errors
-    /// [`GatherError`]: a key the plan needs is missing, a feature whose
-    /// fallback is to fail has nothing fresh, or a value does not fit.
-    pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
-        let in_row = |k: &String| row.fields().iter().any(|(n, _)| n == k);
-        let owned;
-        let (keys, mut out) = if self.keys.iter().any(in_row) {
-            let mut keys = context.clone();
-            let mut rest = Row::new();
-            for (name, value) in row.fields() {
-                if self.keys.contains(name) {
-                    match value {
-                        Value::Label(s) => keys.insert(name.clone(), s.clone()),
-                        Value::Integer(i) => keys.insert(name.clone(), i.to_string()),
-                        Value::Number(n) => keys.insert(name.clone(), n.to_string()),
-                        Value::Flag(b) => keys.insert(name.clone(), b.to_string()),
-                        Value::Absent => None,
-                    };
-                } else {
-                    rest.insert(name.clone(), value.clone());
+    /// wins over its lookup. Each Redis source is read once for all the
+    /// rows: one pipeline, one round trip. Returns, per row, the completed
+    /// row and where each looked-up feature came from, or a
+    /// [`GatherError`]: a key the plan needs for a feature that must not
+    /// fall back is missing, such a feature has nothing fresh or its source
+    /// could not be read, or a value does not fit.
+    pub fn gather_rows(&self, context: &BTreeMap<String, String>, rows: &[Row], now: f64) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+        let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> = rows.iter().map(|r| self.split(context, r)).collect();
+        let mut buf = String::new();
+        // One batch of HMGETs per Redis source: each key once, with every
+        // field any row needs of it.
+        let mut batches: BTreeMap<&str, Batch> = BTreeMap::new();
+        for step in &self.steps {
+            let Via::Redis { updated, .. } = &step.via else { continue };
+            let batch = batches.entry(step.source.as_str()).or_default();
+            for (keys, row) in &prepared {
+                if carries(row, &step.feature) {
+                    continue;
+                }
+                if let Ok(key) = step.lookup.key.render(keys, &mut buf) {
+                    batch.ask(key, &step.lookup.field, updated.as_deref());
                 }
             }
-            owned = keys;
-            (&owned, rest)
-        } else {
-            (context, row.clone())
+        }
+        // Every source asked at once; the request waits for the slowest,
+        // each within its own budget.
+        let source = |name: &str| {
+            self.steps.iter().find_map(|s| match &s.via {
+                Via::Redis { source, .. } if s.source == name => Some(source),
+                _ => None,
+            })
         };
+        let pending: Vec<_> = batches.iter().map(|(name, batch)| source(name).map(|s| s.send(&batch.asks))).collect();
+        for (batch, pending) in batches.values_mut().zip(pending) {
+            batch.answer = pending.map(redis::Pending::wait);
+        }
+        prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, &mut buf)).collect()
+    }
+
+    /// The keys of a row, and the row without its key fields.
+    fn split<'c>(&self, context: &'c BTreeMap<String, String>, row: &Row) -> (std::borrow::Cow<'c, BTreeMap<String, String>>, Row) {
+        if !self.keys.iter().any(|k| row.fields().iter().any(|(n, _)| n == k)) {
+            return (std::borrow::Cow::Borrowed(context), row.clone());
+        }
+        let mut keys = context.clone();
+        let mut rest = Row::new();
+        for (name, value) in row.fields() {
+            if self.keys.contains(name) {
+                match value {
+                    Value::Label(s) => keys.insert(name.clone(), s.clone()),
+                    Value::Integer(i) => keys.insert(name.clone(), i.to_string()),
+                    Value::Number(n) => keys.insert(name.clone(), n.to_string()),
+                    Value::Flag(b) => keys.insert(name.clone(), b.to_string()),
+                    Value::Absent => None,
+                };
+            } else {
+                rest.insert(name.clone(), value.clone());
+            }
+        }
+        (std::borrow::Cow::Owned(keys), rest)
+    }
+
+    /// One row completed, its Redis values taken from `batches`.
+    fn complete(&self, keys: &BTreeMap<String, String>, row: Row, now: f64, batches: &BTreeMap<&str, Batch>, buf: &mut String) -> Result<(Row, Vec<Fetched>), GatherError> {
+        let mut out = row;
         let mut fetched = Vec::with_capacity(self.steps.len());
-        let mut buf = String::new();
         for step in &self.steps {
             // Each step sets only its own feature, so `out` still shows
             // what the row itself carried for this one.
-            let carried = out.fields().iter().any(|(n, v)| *n == step.feature && *v != Value::Absent);
-            if carried {
-                let key = step.lookup.key.render(keys, &mut buf).unwrap_or_default().to_owned();
+            if carries(&out, &step.feature) {
+                step.counts.lookup(Outcome::FromRequest);
+                let key = step.lookup.key.render(keys, buf).unwrap_or_default().to_owned();
                 fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
                 continue;
             }
             // No key: nothing can be found; the feature falls back, or the
             // row fails naming the key when its fallback is to fail.
-            let (key, found) = match step.lookup.key.render(keys, &mut buf) {
-                Ok(key) => (key.to_owned(), step.table.get(key, step.column)),
-                Err(k) if step.lookup.missing == Fallback::Fail => return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() }),
-                Err(k) => (format!("(no `{k}`)"), None),
+            let key = match step.lookup.key.render(keys, buf) {
+                Ok(key) => Some(key.to_owned()),
+                Err(k) if step.lookup.missing == Fallback::Fail => {
+                    step.counts.lookup(Outcome::Missing);
+                    return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() });
+                }
+                Err(_) => None,
             };
-            let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
-            let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
-            let (outcome, value) = match found {
-                Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(value_of(cell, step, &key)?)),
-                Some((Cell::Absent, _)) | None => (Outcome::Missing, None),
-                Some(_) => (Outcome::Stale, None),
+            let read = match &key {
+                None => Read::Found(None),
+                Some(key) => read(step, key, batches),
+            };
+            let key = key.unwrap_or_else(|| format!("(no key for {})", step.lookup.key.text()));
+            let (outcome, cell, age, trouble) = match read {
+                Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
+                Read::Found(found) => {
+                    let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
+                    let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
+                    match found {
+                        Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(cell), age, None),
+                        Some((Cell::Absent, _)) | None => (Outcome::Missing, None, age, None),
+                        Some(_) => (Outcome::Stale, None, age, None),
+                    }
+                }
+            };
+            step.counts.lookup(outcome);
+            let value = match cell {
+                Some(cell) => Some(value_of(cell, step, &key)?),
+                None => None,
             };
             let value = match (value, &step.lookup.missing) {
                 (Some(v), _) => v,
                 (None, Fallback::Absent) => Value::Absent,
                 (None, Fallback::Default(v)) => v.clone(),
                 (None, Fallback::Fail) => {
-                    return Err(GatherError::Missing { feature: step.feature.clone(), from: step.source.clone(), key, stale: outcome == Outcome::Stale });
+                    let (feature, from) = (step.feature.clone(), step.source.clone());
+                    return Err(match trouble {
+                        Some(t) => GatherError::Unavailable { feature, from, key, trouble: t.to_string() },
+                        None => GatherError::Missing { feature, from, key, stale: outcome == Outcome::Stale },
+                    });
                 }
             };
             out.set(&step.feature, value);
             fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome, age });
         }
         Ok((out, fetched))
+    }
+}
+
+/// Whether the row gives the feature itself.
+fn carries(row: &Row, feature: &str) -> bool {
+    row.fields().iter().any(|(n, v)| n == feature && *v != Value::Absent)
+}
+
+/// The HMGETs of one Redis source for one request, and their answer.
+#[derive(Default)]
+struct Batch {
+    index: std::collections::HashMap<String, usize>,
+    asks: Vec<(String, Vec<String>)>,
+    answer: Option<Result<Vec<Vec<Option<String>>>, Trouble>>,
+}
+
+impl Batch {
+    fn ask(&mut self, key: &str, field: &str, updated: Option<&str>) {
+        let at = match self.index.get(key) {
+            Some(&at) => at,
+            None => {
+                self.asks.push((key.to_owned(), Vec::new()));
+                self.index.insert(key.to_owned(), self.asks.len() - 1);
+                self.asks.len() - 1
+            }
+        };
+        let fields = &mut self.asks[at].1;
+        for f in std::iter::once(field).chain(updated) {
+            if !fields.iter().any(|g| g == f) {
+                fields.push(f.to_owned());
+            }
+        }
+    }
+
+    /// The value of `field` under `key`, if asked for and answered.
+    fn value(&self, key: &str, field: &str) -> Option<&str> {
+        let at = *self.index.get(key)?;
+        let position = self.asks[at].1.iter().position(|f| f == field)?;
+        let Some(Ok(values)) = &self.answer else { return None };
+        values.get(at)?.get(position)?.as_deref()
+    }
+}
+
+/// What a lookup read: the cell and when its row was computed, or trouble.
+enum Read<'a> {
+    Found(Option<(Cell<'a>, Option<f64>)>),
+    Unavailable(Trouble),
+}
+
+fn read<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
+    match &step.via {
+        Via::Table { table, column } => Read::Found(table.get(key, *column)),
+        Via::Redis { updated, .. } => {
+            let Some(batch) = batches.get(step.source.as_str()) else { return Read::Found(None) };
+            if let Some(Err(t)) = &batch.answer {
+                return Read::Unavailable(t.clone());
+            }
+            let cell = batch.value(key, &step.lookup.field).map_or(Cell::Absent, Cell::Text);
+            let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|t| {
+                t.parse::<f64>().ok().or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
+            });
+            // A key with none of the fields asked is not there.
+            let present = batch.index.get(key).is_some_and(|&at| match &batch.answer {
+                Some(Ok(values)) => values.get(at).is_some_and(|v| v.iter().any(Option::is_some)),
+                _ => false,
+            });
+            Read::Found(present.then_some((cell, when)))
+        }
     }
 }
 
@@ -361,7 +583,7 @@ mod tests {
         let text = format!("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"\n[models.charge-minutes]\nkeys = [\"site\"]\n[models.charge-minutes.features]\n{features}");
         let plan = Plan::parse(&text, "features.toml", dir.path()).unwrap();
         let sources = Sources::load(&plan).unwrap();
-        let resolved = Resolved::new(&plan, &sources, "charge-minutes", &Version::new(1, 0, 0), &contract());
+        let resolved = Resolved::new(&plan, &sources, "charge-minutes", &Version::new(1, 0, 0), &contract(), std::time::Duration::from_millis(50));
         (dir, resolved)
     }
 

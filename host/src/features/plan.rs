@@ -1,6 +1,11 @@
 //! The features file: where each model's features come from.
 //!
 //! ```toml
+//! [sources.live]                    # a Redis server: each key a hash
+//! redis = "redis://127.0.0.1:6379"
+//! budget_ms = 5                     # how long a request waits for it (default 10)
+//! updated = "updated_at"            # optional: the field saying when the hash was computed
+//!
 //! [sources.sites]                   # an embedded table a batch job writes
 //! table = "tables/sites.csv"        # CSV or NDJSON; relative to the file
 //! key = "site"                      # the column rows are found by
@@ -56,6 +61,15 @@ pub enum Source {
         /// The column rows are found by.
         key: String,
         /// The column saying when each row was computed.
+        updated: Option<String>,
+    },
+    /// A Redis server: each key a hash, its fields the features.
+    Redis {
+        /// `redis://host:port/db`.
+        url: String,
+        /// How long a request may wait for the source.
+        budget: std::time::Duration,
+        /// The hash field saying when it was computed (RFC 3339 or Unix seconds).
         updated: Option<String>,
     },
 }
@@ -116,6 +130,7 @@ pub enum Fallback {
 /// A key template: text with `{key}` holes filled from the request's keys.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Template {
+    text: String,
     parts: Vec<Part>,
 }
 
@@ -150,7 +165,12 @@ impl Template {
         if !parts.iter().any(|p| matches!(p, Part::Key(_))) {
             return Err(format!("key `{text}` uses none of the model's keys: every request would read one row"));
         }
-        Ok(Template { parts })
+        Ok(Template { text: text.to_owned(), parts })
+    }
+
+    /// The template as written (`ev:{vehicle}`).
+    pub fn text(&self) -> &str {
+        &self.text
     }
 
     /// The key for a request's keys: the key itself when the template is
@@ -195,6 +215,8 @@ struct RawPlan {
 struct RawSource {
     table: Option<PathBuf>,
     key: Option<String>,
+    redis: Option<String>,
+    budget_ms: Option<u64>,
     updated: Option<String>,
 }
 
@@ -268,12 +290,17 @@ impl Plan {
         let mut sources = BTreeMap::new();
         let declared: Vec<String> = raw.sources.keys().cloned().collect();
         for (name, s) in raw.sources {
-            match (s.table, s.key) {
-                (Some(path), Some(key)) => {
+            match (s.table, s.key, s.redis) {
+                (Some(_), _, Some(_)) => problems.push(format!("sources.{name}: `table` or `redis`, not both")),
+                (None, _, Some(url)) => {
+                    let budget = std::time::Duration::from_millis(s.budget_ms.unwrap_or(10).clamp(1, 60_000));
+                    sources.insert(name, Source::Redis { url, budget, updated: s.updated });
+                }
+                (Some(path), Some(key), None) => {
                     sources.insert(name, Source::Table { path: dir.join(path), key, updated: s.updated });
                 }
-                (None, _) => problems.push(format!("sources.{name}: no `table` (the file to read)")),
-                (_, None) => problems.push(format!("sources.{name}: no `key` (the column rows are found by)")),
+                (None, _, None) => problems.push(format!("sources.{name}: no `table` (the file to read) or `redis` (the server's URL)")),
+                (Some(_), None, None) => problems.push(format!("sources.{name}: no `key` (the column rows are found by)")),
             }
         }
         let mut models = BTreeMap::new();

@@ -22,6 +22,12 @@
 //! | `shadow_max_abs_diff` | gauge | largest difference seen |
 //! | `shadow_dropped` | counter | samples dropped, shadow queue full |
 //! | `shadow_errors` | counter | shadow calls that failed, label `kind` |
+//! | `lookups` | counter | features of rows looked up, labels `source` and `outcome` (no model labels) |
+//! | `source_round_trips` | counter | round trips to a feature server, label `source` only |
+//! | `source_timeouts` | counter | round trips not answered within the source's budget, label `source` only |
+//! | `source_errors` | counter | round trips that failed, label `source` only |
+//! | `source_skipped` | counter | reads not tried while the source's circuit breaker was open, label `source` only |
+//! | `source_round_trip_seconds` | histogram | time per round trip, label `source` only |
 //! | `generation` | gauge | the registry generation serving (no labels) |
 //! | `artifacts` | gauge | artifacts by `state` (no model labels) |
 
@@ -29,6 +35,8 @@ use std::collections::BTreeMap;
 use std::fmt::Write;
 
 use super::ledger::{UsageReport, WALL_BUCKETS};
+use crate::features::SourceUsage;
+use crate::features::counts::LATENCY_BUCKETS;
 use super::{ArtifactState, Status};
 
 /// The media type of the text this module writes.
@@ -97,8 +105,41 @@ fn families<T>(out: &mut String, items: &[T], id: fn(&T) -> (&str, &str), single
     }
 }
 
-/// Renders the ledger and the registry's state.
-pub fn render(usage: &UsageReport, status: &Status) -> String {
+/// Writes the feature sources' families.
+fn sources(out: &mut String, sources: &[SourceUsage]) {
+    declare(out, "lookups", "counter", "Features of rows looked up in a source, by outcome.");
+    for s in sources {
+        for (outcome, n) in &s.lookups {
+            let _ = writeln!(out, "paddock_lookups_total{{source=\"{}\",outcome=\"{outcome}\"}} {n}", escape(&s.source));
+        }
+    }
+    let servers: Vec<&SourceUsage> = sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
+    let counters: [(&str, &str, fn(&SourceUsage) -> u64); 4] = [
+        ("source_round_trips", "Round trips to a feature server.", |s| s.round_trips),
+        ("source_timeouts", "Round trips to a feature server not answered within the source's budget.", |s| s.timeouts),
+        ("source_errors", "Round trips to a feature server that failed.", |s| s.errors),
+        ("source_skipped", "Reads of a feature server not tried while its circuit breaker was open.", |s| s.skipped),
+    ];
+    for (name, help, value) in counters {
+        declare(out, name, "counter", help);
+        for s in &servers {
+            let _ = writeln!(out, "paddock_{name}_total{{source=\"{}\"}} {}", escape(&s.source), value(s));
+        }
+    }
+    declare(out, "source_round_trip_seconds", "histogram", "Time per round trip to a feature server, from sending to the answer or giving up.");
+    for s in &servers {
+        let base = format!("source=\"{}\"", escape(&s.source));
+        for (le, count) in LATENCY_BUCKETS.iter().zip(&s.latency_buckets) {
+            let _ = writeln!(out, "paddock_source_round_trip_seconds_bucket{{{base},le=\"{}\"}} {count}", num(*le));
+        }
+        let _ = writeln!(out, "paddock_source_round_trip_seconds_bucket{{{base},le=\"+Inf\"}} {}", s.round_trips);
+        let _ = writeln!(out, "paddock_source_round_trip_seconds_count{{{base}}} {}", s.round_trips);
+        let _ = writeln!(out, "paddock_source_round_trip_seconds_sum{{{base}}} {}", num(s.latency_sum_seconds));
+    }
+}
+
+/// Renders the ledger, the feature sources' counters and the registry's state.
+pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]) -> String {
     let mut out = String::new();
     families(
         &mut out,
@@ -164,6 +205,7 @@ pub fn render(usage: &UsageReport, status: &Status) -> String {
     for (kind, n) in &usage.rejected {
         let _ = writeln!(out, "paddock_rejected_requests_total{{kind=\"{}\"}} {n}", escape(kind));
     }
+    sources(&mut out, source_usage);
     declare(&mut out, "generation", "gauge", "The registry generation serving.");
     let _ = writeln!(out, "paddock_generation {}", status.generation);
     declare(&mut out, "artifacts", "gauge", "Artifacts in the store, by state.");
@@ -218,7 +260,15 @@ mod tests {
             features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
         };
-        let text = render(&usage, &status);
+        let c = crate::features::SourceCounts::default();
+        c.lookup(crate::features::Outcome::Found);
+        c.round_trip(crate::features::counts::Ended::TimedOut, std::time::Duration::from_millis(3));
+        let sources = [c.report("live \"site\"", crate::features::SourceKind::Redis)];
+        let text = render(&usage, &status, &sources);
+        assert!(text.contains("paddock_lookups_total{source=\"live \\\"site\\\"\",outcome=\"found\"} 1\n"), "{text}");
+        assert!(text.contains("paddock_source_timeouts_total{source=\"live \\\"site\\\"\"} 1\n"), "{text}");
+        assert!(text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.0025\"} 0\n"), "{text}");
+        assert!(text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.005\"} 1\n"), "{text}");
         // OpenMetrics 1.0, "ABNF" section: label values escape \ " and newline.
         assert!(text.contains(r#"paddock_calls_total{model="a\"b\\c\nd",version="1.0.0"} 3"#), "{text}");
         assert!(text.contains(r#"paddock_call_seconds_bucket{model="a\"b\\c\nd",version="1.0.0",le="+Inf"} 3"#), "{text}");

@@ -53,7 +53,7 @@ use gate::Loaded;
 use reload::Memory;
 
 pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
-pub use status::{ArtifactState, ArtifactStatus, FeaturesState, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, Status, TableStatus};
+pub use status::{ArtifactState, ArtifactStatus, FeaturesState, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, ServerStatus, Status, TableStatus};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use usage_file::{SavedUsage, usage_path};
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
@@ -304,11 +304,11 @@ struct Gathered {
 fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
     let now = now.as_millisecond() as f64 / 1000.0;
     let mut g = Gathered { rows: Vec::with_capacity(request.rows.len()), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
-    for (i, row) in request.rows.iter().enumerate() {
-        match plan.gather(request.context, row, now) {
+    for (i, result) in plan.gather_rows(request.context, request.rows, now).into_iter().enumerate() {
+        match result {
             Ok((row, mut fetched)) => {
                 if request.lookups == Lookups::Fallbacks {
-                    fetched.retain(|f| matches!(f.outcome, Outcome::Missing | Outcome::Stale));
+                    fetched.retain(|f| matches!(f.outcome, Outcome::Missing | Outcome::Stale | Outcome::Unavailable));
                 }
                 g.rows.push(row);
                 g.numbers.push(i + 1);
@@ -365,6 +365,8 @@ struct Snapshot {
 #[derive(Default)]
 struct FeatureSet {
     resolved: BTreeMap<String, BTreeMap<Version, Arc<Resolved>>>,
+    /// The sources serving, for their counters.
+    sources: crate::features::Sources,
 }
 
 /// A model's shadow, resolved when the snapshot is built.
@@ -652,6 +654,13 @@ impl Registry {
     /// The usage ledger now.
     pub fn usage(&self) -> UsageReport {
         self.inner.ledger.report()
+    }
+
+    /// What each feature source serving has done since the registry
+    /// opened: lookups by outcome and, for Redis, round trips (not kept
+    /// in the usage file).
+    pub fn source_usage(&self) -> Vec<crate::features::SourceUsage> {
+        self.inner.current.load().features.sources.usage()
     }
 
     /// Whether this registry keeps the usage file (and holds the state

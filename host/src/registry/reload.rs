@@ -16,12 +16,12 @@ use super::gate::{self, Fingerprint, Loaded};
 use super::layout::{self, FEATURES_FILE, ROUTES_FILE};
 use super::routes::{Routes, RoutesError};
 use super::status::{
-    ArtifactState, ArtifactStatus, FeaturesState, RefusedFile, Refusal, ReloadReport, RoutesState, Status, TableStatus,
+    ArtifactState, ArtifactStatus, FeaturesState, RefusedFile, Refusal, ReloadReport, RoutesState, ServerStatus, Status, TableStatus,
     loaded_status, refused_status,
 };
 use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
 use crate::digest::Digest;
-use crate::features::{Plan, Resolved, Source, Sources, Table};
+use crate::features::{Plan, RedisSource, Resolved, Source, SourceCounts, Sources, Table};
 
 /// Loaded versions, by model and version.
 type Versions = BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>;
@@ -37,6 +37,10 @@ pub(super) struct Memory {
     features: Option<(FeaturesSeen, Arc<FeatureSet>, FeaturesState)>,
     /// Tables read, by file: its size and change time when read, and the table.
     tables: HashMap<PathBuf, (TableStamp, Arc<Table>)>,
+    /// Redis sources made, by name, URL and budget.
+    redis: HashMap<(String, String, std::time::Duration), Arc<RedisSource>>,
+    /// Each source's counters, by name: they outlive reloads.
+    counts: BTreeMap<String, Arc<SourceCounts>>,
 }
 
 /// A table file's size and change time: read again when either changes.
@@ -259,7 +263,14 @@ fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions:
         .and_then(|text| Plan::parse(text, FEATURES_FILE, &shared.dir).map_err(|e| e.problems.iter().map(|p| format!("{FEATURES_FILE}: {p}")).collect()));
     let stamp = |p: &std::path::Path| std::fs::metadata(p).map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
     let tables: Vec<(PathBuf, TableStamp)> = match &plan {
-        Ok(plan) => plan.sources.values().map(|Source::Table { path, .. }| (path.clone(), stamp(path))).collect(),
+        Ok(plan) => plan
+            .sources
+            .values()
+            .filter_map(|s| match s {
+                Source::Table { path, .. } => Some((path.clone(), stamp(path))),
+                _ => None,
+            })
+            .collect(),
         Err(_) => Vec::new(),
     };
     let seen = FeaturesSeen { file: Some(gate::fingerprint(&bytes, None)), tables, versions: flatten(versions) };
@@ -270,7 +281,7 @@ fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions:
     }
     let outcome = plan.and_then(|plan| build_features(shared, &plan, memory, versions));
     let result = match outcome {
-        Ok((set, tables)) => (Arc::new(set), FeaturesState::Accepted { tables }),
+        Ok((set, tables, servers)) => (Arc::new(set), FeaturesState::Accepted { tables, servers }),
         Err(problems) => {
             tracing::warn!(features = %path.display(), problems = %problems.join("; "), "features refused; the previous plan keeps serving");
             report.features_refused = problems.clone();
@@ -283,12 +294,37 @@ fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions:
 
 /// The plan's tables (read again only when changed) and its resolution for
 /// every served version of the models it names.
-fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &Versions) -> Result<(FeatureSet, Vec<TableStatus>), Vec<String>> {
+fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &Versions) -> Result<(FeatureSet, Vec<TableStatus>, Vec<ServerStatus>), Vec<String>> {
     let mut problems = Vec::new();
     let mut tables = BTreeMap::new();
     let mut statuses = Vec::new();
     let mut kept = HashMap::new();
-    for (name, Source::Table { path, key, updated }) in &plan.sources {
+    let mut redis = BTreeMap::new();
+    let mut kept_redis = HashMap::new();
+    let mut servers = Vec::new();
+    let counts: BTreeMap<String, Arc<SourceCounts>> =
+        plan.sources.keys().map(|name| (name.clone(), memory.counts.get(name).cloned().unwrap_or_default())).collect();
+    for (name, source) in &plan.sources {
+        let (path, key, updated) = match source {
+            Source::Table { path, key, updated } => (path, key, updated),
+            Source::Redis { url, budget, .. } => {
+                // A server's source (and its connection) lives on across reloads.
+                let id = (name.clone(), url.clone(), *budget);
+                let made = match memory.redis.get(&id) {
+                    Some(r) => Ok(r.clone()),
+                    None => RedisSource::new(url, *budget, counts[name].clone()).map(Arc::new),
+                };
+                match made {
+                    Ok(r) => {
+                        servers.push(ServerStatus { source: name.clone(), url: r.shown_url(), budget_ms: u64::try_from(budget.as_millis()).unwrap_or(u64::MAX) });
+                        kept_redis.insert(id, r.clone());
+                        redis.insert(name.clone(), r);
+                    }
+                    Err(e) => problems.push(format!("{FEATURES_FILE}: sources.{name}: {e}")),
+                }
+                continue;
+            }
+        };
         let meta = std::fs::metadata(path).ok();
         let stamp = meta.as_ref().map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
         let shown = path.strip_prefix(&shared.dir).unwrap_or(path).display().to_string();
@@ -313,14 +349,16 @@ fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &
         }
     }
     memory.tables = kept;
+    memory.redis = kept_redis;
     if !problems.is_empty() {
         return Err(problems);
     }
-    let sources = Sources::from_tables(tables);
+    memory.counts = counts.clone();
+    let sources = Sources::from_parts(tables, redis, counts);
     let mut set = FeatureSet::default();
     for model in plan.models.keys() {
         for (version, loaded) in versions.get(model).into_iter().flatten() {
-            match Resolved::new(plan, &sources, model, version, loaded.model.contract()) {
+            match Resolved::new(plan, &sources, model, version, loaded.model.contract(), loaded.model.options().limits.deadline) {
                 Ok(Some(r)) => {
                     set.resolved.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
                 }
@@ -329,7 +367,8 @@ fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &
             }
         }
     }
-    if problems.is_empty() { Ok((set, statuses)) } else { Err(problems) }
+    set.sources = sources;
+    if problems.is_empty() { Ok((set, statuses, servers)) } else { Err(problems) }
 }
 
 /// Step 6: a new snapshot, swapped in, when anything changed.

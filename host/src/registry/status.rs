@@ -282,6 +282,9 @@ pub enum FeaturesState {
     Accepted {
         /// Each table loaded.
         tables: Vec<TableStatus>,
+        /// Each Redis source.
+        #[serde(default)]
+        servers: Vec<ServerStatus>,
     },
     /// The features file or a table it names was refused; the plan and
     /// tables accepted before keep serving (none, if none ever were).
@@ -289,6 +292,18 @@ pub enum FeaturesState {
         /// Every problem found.
         problems: Vec<String>,
     },
+}
+
+/// One Redis source serving.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct ServerStatus {
+    /// The source's name in the features file.
+    pub source: String,
+    /// The server's URL, its password (if any) hidden.
+    pub url: String,
+    /// The time each request gives it, in milliseconds.
+    pub budget_ms: u64,
 }
 
 /// One embedded table serving.

@@ -473,7 +473,7 @@ pub(crate) async fn ready(State(app): State<Arc<App>>) -> Response {
     responses((status = 200, description = "OpenMetrics text.", body = String, content_type = "application/openmetrics-text; version=1.0.0; charset=utf-8"))
 )]
 pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
-    let mut text = metrics::render(&app.registry.usage(), &app.registry.status());
+    let mut text = metrics::render(&app.registry.usage(), &app.registry.status(), &app.registry.source_usage());
     // The server's own state, before the end marker.
     let gates = app.gates.read().unwrap_or_else(|e| e.into_inner()).len();
     let busy = app.options.score_threads.max(1) - app.pool.available_permits();

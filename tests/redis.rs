@@ -1,0 +1,248 @@
+//! Features looked up in a real Redis (Debian's `redis-server`, started
+//! here on a loopback port of its own for each test, and stopped after):
+//! the line model `y = 2x + 1` whose `x` is the field `x` of the hash
+//! `site:{site}`.
+
+use std::net::TcpListener;
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::time::Duration;
+
+use paddock_host::features::Outcome;
+use paddock_host::registry::{FeaturesState, artifact_path};
+use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_tests::{line_artifact, unhurried, write_atomically};
+use semver::Version;
+
+/// A `redis-server` of our own.
+struct Server {
+    port: u16,
+    child: Option<Child>,
+}
+
+impl Server {
+    fn start() -> Server {
+        let port = TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+        let mut s = Server { port, child: None };
+        s.restart();
+        s
+    }
+
+    fn restart(&mut self) {
+        let child = Command::new("redis-server")
+            .args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"])
+            .stdout(Stdio::null())
+            .spawn()
+            .expect("redis-server (Debian's redis-server package; `.ci/run` installs it)");
+        self.child = Some(child);
+        // Ready when it answers PING.
+        for _ in 0..500 {
+            if self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some() {
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        panic!("redis-server on port {} did not answer PING", self.port);
+    }
+
+    fn stop(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+
+    fn url(&self) -> String {
+        format!("redis://127.0.0.1:{}/", self.port)
+    }
+
+    fn connection(&self) -> Option<redis::Connection> {
+        redis::Client::open(self.url()).ok()?.get_connection().ok()
+    }
+
+    /// A figure of `INFO stats`.
+    fn stat(&self, name: &str) -> u64 {
+        let redis::Value::BulkString(info) = self.cmd(&["INFO", "stats"]) else { panic!("INFO answers with text") };
+        let info = String::from_utf8(info).unwrap();
+        let line = info.lines().find_map(|l| l.strip_prefix(&format!("{name}:"))).unwrap_or_else(|| panic!("no {name} in {info}"));
+        line.trim().parse().unwrap()
+    }
+
+    fn cmd(&self, args: &[&str]) -> redis::Value {
+        let mut c = self.connection().expect("connects");
+        let mut cmd = redis::cmd(args[0]);
+        for a in &args[1..] {
+            cmd.arg(*a);
+        }
+        cmd.query(&mut c).expect("the command runs")
+    }
+}
+
+impl Drop for Server {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}
+
+/// A store serving `m` with `x` from Redis, `missing` its fallback.
+fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    plan(store, server, missing, budget_ms);
+    // Minute-long deadlines: a busy machine must not make a lookup late.
+    let options = RegistryOptions { usage_flush: None, model: unhurried(), ..RegistryOptions::default() };
+    let registry = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    assert!(matches!(registry.status().features, FeaturesState::Accepted { .. }), "{:?}", registry.status().features);
+    (dir, registry)
+}
+
+fn plan(store: &Path, server: &Server, missing: &str, budget_ms: u64) {
+    let text = format!(
+        "[sources.live]\nredis = \"{}\"\nbudget_ms = {budget_ms}\nupdated = \"updated_at\"\n[models.m]\nkeys = [\"site\"]\n\
+         [models.m.features]\nx = {{ source = \"live\", key = \"site:{{site}}\", field = \"x\", max_age = \"1h\", missing = {missing} }}\n",
+        server.url()
+    );
+    write_atomically(&store.join("features.toml"), text.as_bytes());
+}
+
+fn site(s: &str) -> Context {
+    [("site".to_owned(), s.to_owned())].into()
+}
+
+/// Scores one row for `site`: its value, or NaN when it got none, and what x did.
+fn ask(reg: &Registry, s: &str) -> (f64, Outcome) {
+    let a = reg.score(&Request::new("m", &site(s), &[Row::new()]).every_lookup()).unwrap_or_else(|e| panic!("{e}"));
+    let value = a.rows().next().unwrap().map_or(f64::NAN, |r| r[0]);
+    (value, a.lookups[0].first().map_or(Outcome::Found, |f| f.outcome))
+}
+
+#[test]
+fn sixty_four_rows_are_one_round_trip() {
+    let server = Server::start();
+    for i in 0..64 {
+        server.cmd(&["HSET", &format!("site:s{i}"), "x", &i.to_string()]);
+    }
+    let (_dir, reg) = store(&server, "\"fail\"", 2000);
+    // Connected first, so that what follows counts the request alone.
+    assert_eq!(ask(&reg, "s1"), (3.0, Outcome::Found));
+    server.cmd(&["CONFIG", "RESETSTAT"]);
+    // What reading the figures costs the server: one read of one command
+    // (measured, not assumed).
+    let (r0, r1) = (server.stat("total_reads_processed"), server.stat("total_reads_processed"));
+    let rows: Vec<Row> = (0..64).map(|i| Row::new().with("site", format!("s{i}").as_str())).collect();
+    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    let r2 = server.stat("total_reads_processed");
+    for i in 0..64 {
+        assert_eq!(a.estimates.row(i)[0], 2.0 * i as f64 + 1.0, "row {}", i + 1);
+    }
+    // On the server (Redis's own counters): 64 HMGETs, read off the socket
+    // in one read: one round trip.
+    let redis::Value::BulkString(info) = server.cmd(&["INFO", "commandstats"]) else { panic!() };
+    let info = String::from_utf8(info).unwrap();
+    assert!(info.contains("cmdstat_hmget:calls=64,"), "{info}");
+    assert_eq!((r2 - r1) - (r1 - r0), 1, "reads: {r0}, {r1}, {r2}");
+    // And in the host's counters: two round trips in all, 65 features found.
+    let usage = reg.source_usage();
+    assert_eq!((usage[0].source.as_str(), usage[0].round_trips, usage[0].lookups["found"]), ("live", 2, 65));
+}
+
+#[test]
+fn present_missing_and_stale_keys_follow_each_policy() {
+    let server = Server::start();
+    let now = jiff::Timestamp::now().as_second();
+    server.cmd(&["HSET", "site:fresh", "x", "3", "updated_at", &now.to_string()]);
+    server.cmd(&["HSET", "site:old", "x", "5", "updated_at", &(now - 7200).to_string()]);
+    let rows: Vec<Row> = ["fresh", "old", "nowhere"].iter().map(|s| Row::new().with("site", *s)).collect();
+    // Default: the old (2 h > 1 h) and the missing row take x = 0.5, y = 2.
+    let (_dir, reg) = store(&server, "{ default = 0.5 }", 2000);
+    let a = reg.score(&Request::new("m", &Context::new(), &rows).every_lookup()).unwrap();
+    let ys: Vec<f64> = a.rows().map(|r| r.unwrap()[0]).collect();
+    assert_eq!(ys, [7.0, 2.0, 2.0]);
+    let outcomes: Vec<Outcome> = a.lookups.iter().map(|l| l[0].outcome).collect();
+    assert_eq!(outcomes, [Outcome::Found, Outcome::Stale, Outcome::Missing]);
+    assert!(a.lookups[1][0].age.is_some_and(|age| age >= 7200.0), "{:?}", a.lookups[1][0]);
+    // Fail: those rows get no estimate, each naming what failed.
+    let (_dir2, reg) = store(&server, "\"fail\"", 2000);
+    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    assert_eq!(a.scored, [1]);
+    let problems: Vec<String> = a.problems.iter().map(ToString::to_string).collect();
+    assert_eq!(
+        problems,
+        [
+            "row 2, feature `x` = absent: lookup failed: feature `x`: too old in source `live` under key `site:old`",
+            "row 3, feature `x` = absent: lookup failed: feature `x`: nothing in source `live` under key `site:nowhere`",
+        ]
+    );
+}
+
+/// Redis stopped mid-run: requests answer by the fallback (none hangs on
+/// the dead socket), and reads resume by themselves once it is back.
+#[test]
+fn a_stopped_redis_falls_back_and_is_read_again_when_it_returns() {
+    let mut server = Server::start();
+    server.cmd(&["HSET", "site:a", "x", "3"]);
+    let (_dir, reg) = store(&server, "{ default = 0.5 }", 1000);
+    assert_eq!(ask(&reg, "a"), (7.0, Outcome::Found));
+    server.stop();
+    for _ in 0..20 {
+        assert_eq!(ask(&reg, "a"), (2.0, Outcome::Unavailable), "down: the default");
+    }
+    server.restart();
+    server.cmd(&["HSET", "site:a", "x", "4"]);
+    // The breaker's pause ends, the source reconnects: asked until then.
+    let mut answers = Vec::new();
+    for _ in 0..1000 {
+        let got = ask(&reg, "a");
+        answers.push(got.1);
+        if got == (9.0, Outcome::Found) {
+            return;
+        }
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    panic!("reads did not resume: {:?}", &answers[answers.len() - 5..]);
+}
+
+/// A Redis busy past the source's budget (`DEBUG SLEEP`): the request
+/// gives up on it at the budget and the row takes its fallback.
+#[test]
+fn a_slow_redis_hits_the_budget() {
+    let server = Server::start();
+    server.cmd(&["HSET", "site:a", "x", "3"]);
+    let (_dir, reg) = store(&server, "{ default = 0.5 }", 1000);
+    assert_eq!(ask(&reg, "a"), (7.0, Outcome::Found));
+    // The server blocks for 6 s on one connection; the test waits until it
+    // is blocked (another client's PING gets no answer in a second), not
+    // for a time.
+    let url = server.url();
+    let sleeper = std::thread::spawn(move || {
+        let mut c = redis::Client::open(url).unwrap().get_connection().unwrap();
+        redis::cmd("DEBUG").arg("SLEEP").arg("6").query::<()>(&mut c).unwrap();
+    });
+    let mut probe = server.connection().unwrap();
+    probe.set_read_timeout(Some(Duration::from_secs(1))).unwrap();
+    while redis::cmd("PING").query::<String>(&mut probe).is_ok() {}
+    let timeouts = reg.source_usage()[0].timeouts;
+    assert_eq!(ask(&reg, "a"), (2.0, Outcome::Unavailable));
+    assert_eq!(reg.source_usage()[0].timeouts, timeouts + 1, "{:?}", reg.source_usage());
+    sleeper.join().unwrap();
+}
+
+/// A budget longer than the version's deadline (50 ms by default) cannot
+/// be inside the request's time: the plan is refused naming both.
+#[test]
+fn a_budget_past_the_deadline_is_refused() {
+    let server = Server { port: 1, child: None };
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    plan(store, &server, "\"fail\"", 80);
+    let registry = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
+    let FeaturesState::Refused { problems } = registry.status().features else { panic!("{:?}", registry.status().features) };
+    assert_eq!(
+        problems,
+        ["m 1.0.0: feature `x`: source `live` has a budget of 80 ms, longer than the version's deadline of 50 ms: a lookup must fit inside the call's time"]
+    );
+}
