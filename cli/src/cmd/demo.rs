@@ -195,7 +195,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let count = |o| looked_up.get(&o).copied().unwrap_or(0);
         use paddock_host::features::Outcome;
         println!(
-            "overstay-risk read site occupancy and member overstay rate by key from the store's tables: {} found, {} missing (members not in the table yet: the feature is absent), {} stale",
+            "overstay-risk read site occupancy and member overstay rate by key from the store's feature sources: {} found, {} missing (members not known yet: the feature is absent), {} stale",
             count(Outcome::Found),
             count(Outcome::Missing),
             count(Outcome::Stale)

@@ -292,10 +292,12 @@ impl Plan {
         for (name, s) in raw.sources {
             match (s.table, s.key, s.redis) {
                 (Some(_), _, Some(_)) => problems.push(format!("sources.{name}: `table` or `redis`, not both")),
-                (None, _, Some(url)) => {
-                    let budget = std::time::Duration::from_millis(s.budget_ms.unwrap_or(10).clamp(1, 60_000));
-                    sources.insert(name, Source::Redis { url, budget, updated: s.updated });
-                }
+                (None, _, Some(url)) => match s.budget_ms.unwrap_or(10) {
+                    ms @ 1..=60_000 => {
+                        sources.insert(name, Source::Redis { url, budget: std::time::Duration::from_millis(ms), updated: s.updated });
+                    }
+                    ms => problems.push(format!("sources.{name}: budget_ms = {ms}: give 1 to 60000")),
+                },
                 (Some(path), Some(key), None) => {
                     sources.insert(name, Source::Table { path: dir.join(path), key, updated: s.updated });
                 }
@@ -448,5 +450,7 @@ charger_kw = "request"
         );
         let err = Plan::parse("[sources.x]\ntable = \"t.csv\"\n[models.m]\nkeys = [\"a\"]\nfeatures = { f = { source = \"x\", key = \"fixed\", field = \"f\" } }\n", "f.toml", Path::new(".")).unwrap_err();
         assert_eq!(err.to_string(), "f.toml: sources.x: no `key` (the column rows are found by); models.m.features.f: key `fixed` uses none of the model's keys: every request would read one row");
+        let err = Plan::parse("[sources.live]\nredis = \"redis://127.0.0.1/\"\nbudget_ms = 0\n[sources.both]\nredis = \"redis://h/\"\ntable = \"t.csv\"\n", "f.toml", Path::new(".")).unwrap_err();
+        assert_eq!(err.problems, ["sources.both: `table` or `redis`, not both", "sources.live: budget_ms = 0: give 1 to 60000"]);
     }
 }
