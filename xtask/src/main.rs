@@ -85,8 +85,13 @@ fn main() -> Result<()> {
             python_packages(&root)?;
             foreign_guests(&root, &tools)?;
             // scikit-learn's reference models and predictions, for tests/sklearn.rs,
-            // and XGBoost's and LightGBM's, for tests/imports.rs.
-            for (script, out) in [("tests/sklearn/export.py", "target/paddock/sklearn"), ("tests/imports/export.py", "target/paddock/imports")] {
+            // XGBoost's and LightGBM's, for tests/imports.rs, and pyarrow's
+            // Parquet tables, for tests/tables.rs.
+            for (script, out) in [
+                ("tests/sklearn/export.py", "target/paddock/sklearn"),
+                ("tests/imports/export.py", "target/paddock/imports"),
+                ("tests/tables/export.py", "target/paddock/tables"),
+            ] {
                 let mut export = Command::new("python3");
                 export.arg(root.join(script)).arg(root.join(out));
                 run(export)?;
@@ -305,8 +310,8 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
 /// parser for the HTTP API, scikit-learn (with SciPy), skl2onnx, XGBoost
 /// (the CPU-only wheel: the same library without the GPU runtime; 3.2.x is
 /// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
-/// build the Python guests.
-const PYTHON_PACKAGES: [&str; 8] = [
+/// build the Python guests, pyarrow to write Parquet feature tables.
+const PYTHON_PACKAGES: [&str; 9] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
@@ -315,6 +320,7 @@ const PYTHON_PACKAGES: [&str; 8] = [
     "xgboost-cpu==3.2.0",
     "lightgbm==4.7.0",
     "componentize-py==0.25.1",
+    "pyarrow==26.0.1",
 ];
 
 /// Python guests: (source directory, module, artifact name, carries the

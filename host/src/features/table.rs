@@ -1,9 +1,10 @@
-//! Embedded feature tables: a file a batch job writes (CSV with a header,
-//! or NDJSON), held in memory and keyed by one column.
+//! Embedded feature tables: a file a batch job writes (Parquet, CSV with a
+//! header, or NDJSON), held in memory and keyed by one column.
 //!
 //! Cells are numbers, text or absent. A column whose every present cell
 //! reads as a number is numeric; any other is text (labels). An optional
-//! column says when each row was computed (RFC 3339, or Unix seconds), so
+//! column says when each row was computed (RFC 3339, Unix seconds, or a
+//! Parquet timestamp or date), so
 //! a lookup can tell how old its value is. Looking a key up allocates
 //! nothing: the index maps the key text to a row.
 
@@ -57,7 +58,7 @@ pub enum TableError {
         problem: String,
     },
     /// Its extension names no format a table is read from.
-    #[error("{file}: a table is CSV (`.csv`) or NDJSON (`.ndjson`, `.jsonl`), not `{extension}`")]
+    #[error("{file}: a table is Parquet (`.parquet`), CSV (`.csv`) or NDJSON (`.ndjson`, `.jsonl`), not `{extension}`")]
     Format {
         /// The file.
         file: String,
@@ -65,11 +66,12 @@ pub enum TableError {
         extension: String,
     },
     /// A row or cell does not parse.
-    #[error("{file}: row {row}{}: {problem}", column.as_ref().map(|c| format!(", column `{c}`")).unwrap_or_default())]
+    #[error("{file}: {}{problem}", place(*row, column.as_deref()))]
     Cell {
         /// The file.
         file: String,
-        /// The row, from 1 (CSV: the line after the header is row 1; NDJSON: the line).
+        /// The row, from 1 (CSV: the line after the header is row 1; NDJSON:
+    /// the line; Parquet: the row in file order; 0: the file as a whole).
         row: usize,
         /// The column, when one is to blame.
         column: Option<String>,
@@ -108,6 +110,16 @@ pub enum TableError {
     },
 }
 
+/// `row 3, column `x`: `, or what of it applies.
+fn place(row: usize, column: Option<&str>) -> String {
+    match (row, column) {
+        (0, None) => String::new(),
+        (0, Some(c)) => format!("column `{c}`: "),
+        (r, None) => format!("row {r}: "),
+        (r, Some(c)) => format!("row {r}, column `{c}`: "),
+    }
+}
+
 /// Rows a table may hold.
 pub const MAX_ROWS: usize = 50_000_000;
 
@@ -135,6 +147,11 @@ impl Table {
     /// As [`Table::read`].
     pub fn read_as(path: &Path, shown: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
         let file = shown.to_owned();
+        if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("parquet")) {
+            let bytes = std::fs::read(path).map_err(|e| TableError::Unreadable { file: file.clone(), problem: e.to_string() })?;
+            let (names, rows) = parquet_rows(bytes, &file)?;
+            return Table::from_rows(names, rows, &file, key, updated);
+        }
         let format = Format::from_path(path).ok_or_else(|| TableError::Format {
             file: file.clone(),
             extension: path.extension().map(|e| e.to_string_lossy().into_owned()).unwrap_or_default(),
@@ -197,6 +214,12 @@ impl Table {
                 (names, rows)
             }
         };
+        Table::from_rows(names, rows, file, key, updated)
+    }
+
+    /// A table from rows of cells under `names`.
+    fn from_rows(names: Vec<String>, rows: Vec<Vec<Raw>>, file: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
+        let cell_error = |row: usize, column: Option<&str>, problem: String| TableError::Cell { file: file.to_owned(), row, column: column.map(str::to_owned), problem };
         let column_of = |name: &str| {
             names.iter().position(|n| n == name).ok_or_else(|| TableError::NoColumn { file: file.to_owned(), column: name.to_owned(), columns: names.clone() })
         };
@@ -285,6 +308,93 @@ impl Table {
         let updated = self.updated.as_ref().map(|u| u[row]).filter(|t| !t.is_nan());
         Some((cell, updated))
     }
+}
+
+/// The columns and rows of a Parquet file: numbers (integers, floats,
+/// decimals), text (strings, dictionaries of strings, booleans as
+/// `true`/`false`), and times (timestamps and dates, as Unix seconds).
+fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>>), TableError> {
+    use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
+    let whole = |problem: String| TableError::Cell { file: file.to_owned(), row: 0, column: None, problem };
+    let builder = ParquetRecordBatchReaderBuilder::try_new(bytes::Bytes::from(bytes)).map_err(|e| whole(format!("not a Parquet file: {e}")))?;
+    let total = usize::try_from(builder.metadata().file_metadata().num_rows()).unwrap_or(usize::MAX);
+    if total > MAX_ROWS {
+        return Err(TableError::TooLarge { file: file.to_owned(), limit: MAX_ROWS });
+    }
+    let names: Vec<String> = builder.schema().fields().iter().map(|f| f.name().clone()).collect();
+    let reader = builder.build().map_err(|e| whole(e.to_string()))?;
+    let mut rows: Vec<Vec<Raw>> = Vec::with_capacity(total);
+    for batch in reader {
+        let batch = batch.map_err(|e| TableError::Cell { file: file.to_owned(), row: rows.len() + 1, column: None, problem: e.to_string() })?;
+        let first = rows.len();
+        rows.extend((0..batch.num_rows()).map(|_| Vec::with_capacity(names.len())));
+        for (c, array) in batch.columns().iter().enumerate() {
+            let cells = parquet_cells(array.as_ref()).map_err(|problem| TableError::Cell { file: file.to_owned(), row: first + 1, column: Some(names[c].clone()), problem })?;
+            for (row, cell) in rows[first..].iter_mut().zip(cells) {
+                row.push(cell);
+            }
+        }
+        if rows.len() > MAX_ROWS {
+            return Err(TableError::TooLarge { file: file.to_owned(), limit: MAX_ROWS });
+        }
+    }
+    Ok((names, rows))
+}
+
+/// One Parquet column's cells.
+fn parquet_cells(array: &dyn arrow_array::Array) -> Result<Vec<Raw>, String> {
+    use arrow_array::cast::AsArray;
+    use arrow_array::types::{
+        Date32Type, Decimal128Type, Float32Type, Float64Type, Int8Type, Int16Type, Int32Type, Int64Type, TimestampMicrosecondType,
+        TimestampMillisecondType, TimestampNanosecondType, TimestampSecondType, UInt8Type, UInt16Type, UInt32Type, UInt64Type,
+    };
+    use arrow_schema::{DataType, TimeUnit};
+    fn numbers<T: arrow_array::ArrowPrimitiveType>(array: &dyn arrow_array::Array, f: impl Fn(T::Native) -> f64) -> Vec<Raw> {
+        array.as_primitive::<T>().iter().map(|v| v.map_or(Raw::Absent, |v| Raw::Number(f(v)))).collect()
+    }
+    let texts = |it: &mut dyn Iterator<Item = Option<&str>>| it.map(|v| v.map_or(Raw::Absent, |t| Raw::Text(t.to_owned()))).collect();
+    Ok(match array.data_type() {
+        DataType::Null => (0..array.len()).map(|_| Raw::Absent).collect(),
+        DataType::Float64 => numbers::<Float64Type>(array, |v| v),
+        DataType::Float32 => numbers::<Float32Type>(array, f64::from),
+        DataType::Int8 => numbers::<Int8Type>(array, f64::from),
+        DataType::Int16 => numbers::<Int16Type>(array, f64::from),
+        DataType::Int32 => numbers::<Int32Type>(array, f64::from),
+        DataType::Int64 => numbers::<Int64Type>(array, |v| v as f64),
+        DataType::UInt8 => numbers::<UInt8Type>(array, f64::from),
+        DataType::UInt16 => numbers::<UInt16Type>(array, f64::from),
+        DataType::UInt32 => numbers::<UInt32Type>(array, f64::from),
+        DataType::UInt64 => numbers::<UInt64Type>(array, |v| v as f64),
+        DataType::Decimal128(_, scale) => {
+            let scale = 10f64.powi(i32::from(*scale));
+            numbers::<Decimal128Type>(array, |v| v as f64 / scale)
+        }
+        DataType::Timestamp(TimeUnit::Second, _) => numbers::<TimestampSecondType>(array, |v| v as f64),
+        DataType::Timestamp(TimeUnit::Millisecond, _) => numbers::<TimestampMillisecondType>(array, |v| v as f64 / 1e3),
+        DataType::Timestamp(TimeUnit::Microsecond, _) => numbers::<TimestampMicrosecondType>(array, |v| v as f64 / 1e6),
+        DataType::Timestamp(TimeUnit::Nanosecond, _) => numbers::<TimestampNanosecondType>(array, |v| v as f64 / 1e9),
+        DataType::Date32 => numbers::<Date32Type>(array, |d| f64::from(d) * 86_400.0),
+        DataType::Boolean => array.as_boolean().iter().map(|v| v.map_or(Raw::Absent, |b| Raw::Text(b.to_string()))).collect(),
+        DataType::Utf8 => texts(&mut array.as_string::<i32>().iter()),
+        DataType::LargeUtf8 => texts(&mut array.as_string::<i64>().iter()),
+        DataType::Utf8View => texts(&mut array.as_string_view().iter()),
+        DataType::Dictionary(..) => {
+            let dictionary = array.as_any_dictionary();
+            let values = parquet_cells(dictionary.values().as_ref())?;
+            let keys = dictionary.keys();
+            dictionary
+                .normalized_keys()
+                .into_iter()
+                .enumerate()
+                .map(|(i, k)| match (keys.is_null(i), values.get(k)) {
+                    (false, Some(Raw::Number(n))) => Raw::Number(*n),
+                    (false, Some(Raw::Text(t))) => Raw::Text(t.clone()),
+                    _ => Raw::Absent,
+                })
+                .collect()
+        }
+        other => return Err(format!("a column of type {other}, not numbers, text, booleans, timestamps or dates")),
+    })
 }
 
 /// A row's cell `c`, absent past its end.
