@@ -150,3 +150,25 @@ fn a_bad_table_or_plan_is_refused_whole_and_the_previous_keeps_serving() {
     reg.reload().unwrap();
     assert!(matches!(reg.status().features, FeaturesState::Accepted { .. }));
 }
+
+/// The NDJSON stream carries keys as the library does: in the context or
+/// in each row, with `"lookups": "all"` naming what was read.
+#[test]
+fn the_stream_scores_from_keys() {
+    let (_dir, reg) = store(1.0);
+    let input = [
+        r#"{"id": 1, "model": "m", "context": {"site": "s3"}, "row": {}}"#,
+        r#"{"id": 2, "model": "m", "rows": [{"site": "s1"}, {"site": "nowhere"}], "lookups": "all"}"#,
+    ]
+    .join("\n");
+    let mut out = Vec::new();
+    paddock_host::surface::stream::run(&reg, input.as_bytes(), &mut out, paddock_host::surface::stream::StreamOptions::default()).unwrap();
+    let lines: Vec<serde_json::Value> = String::from_utf8(out).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    assert_eq!(lines[0]["answer"]["estimates"][0]["y"], 7.0, "{}", lines[0]);
+    let second = &lines[1]["answer"];
+    assert_eq!(second["estimates"][0]["y"], 3.0, "{}", lines[1]);
+    assert_eq!(second["lookups"][0][0]["outcome"], "found", "{}", lines[1]);
+    assert_eq!(second["lookups"][0][0]["key"], "s1", "{}", lines[1]);
+    let problem = second["problems"][0].to_string();
+    assert!(problem.contains("nothing in source `sites` under key `nowhere`"), "{}", lines[1]);
+}
