@@ -3,86 +3,14 @@
 //! the line model `y = 2x + 1` whose `x` is the field `x` of the hash
 //! `site:{site}`.
 
-use std::net::TcpListener;
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
 use std::time::Duration;
 
 use paddock_host::features::Outcome;
 use paddock_host::registry::{FeaturesState, artifact_path};
 use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
-use paddock_tests::{line_artifact, unhurried, write_atomically};
+use paddock_tests::{RedisServer as Server, line_artifact, unhurried, write_atomically};
 use semver::Version;
-
-/// A `redis-server` of our own.
-struct Server {
-    port: u16,
-    child: Option<Child>,
-}
-
-impl Server {
-    fn start() -> Server {
-        let port = TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-        let mut s = Server { port, child: None };
-        s.restart();
-        s
-    }
-
-    fn restart(&mut self) {
-        let child = Command::new("redis-server")
-            .args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"])
-            .stdout(Stdio::null())
-            .spawn()
-            .expect("redis-server (Debian's redis-server package; `.ci/run` installs it)");
-        self.child = Some(child);
-        // Ready when it answers PING.
-        for _ in 0..500 {
-            if self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some() {
-                return;
-            }
-            std::thread::sleep(Duration::from_millis(10));
-        }
-        panic!("redis-server on port {} did not answer PING", self.port);
-    }
-
-    fn stop(&mut self) {
-        if let Some(mut c) = self.child.take() {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
-    }
-
-    fn url(&self) -> String {
-        format!("redis://127.0.0.1:{}/", self.port)
-    }
-
-    fn connection(&self) -> Option<redis::Connection> {
-        redis::Client::open(self.url()).ok()?.get_connection().ok()
-    }
-
-    /// A figure of `INFO stats`.
-    fn stat(&self, name: &str) -> u64 {
-        let redis::Value::BulkString(info) = self.cmd(&["INFO", "stats"]) else { panic!("INFO answers with text") };
-        let info = String::from_utf8(info).unwrap();
-        let line = info.lines().find_map(|l| l.strip_prefix(&format!("{name}:"))).unwrap_or_else(|| panic!("no {name} in {info}"));
-        line.trim().parse().unwrap()
-    }
-
-    fn cmd(&self, args: &[&str]) -> redis::Value {
-        let mut c = self.connection().expect("connects");
-        let mut cmd = redis::cmd(args[0]);
-        for a in &args[1..] {
-            cmd.arg(*a);
-        }
-        cmd.query(&mut c).expect("the command runs")
-    }
-}
-
-impl Drop for Server {
-    fn drop(&mut self) {
-        self.stop();
-    }
-}
 
 /// A store serving `m` with `x` from Redis, `missing` its fallback.
 fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
@@ -233,7 +161,7 @@ fn a_slow_redis_hits_the_budget() {
 /// be inside the request's time: the plan is refused naming both.
 #[test]
 fn a_budget_past_the_deadline_is_refused() {
-    let server = Server { port: 1, child: None };
+    let server = Server::unstarted();
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
     write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));

@@ -95,6 +95,11 @@ impl Row {
         self.0.push((name, value));
     }
 
+    /// Makes room for `more` features.
+    pub fn reserve(&mut self, more: usize) {
+        self.0.reserve(more);
+    }
+
     /// Sets a feature's value: replaces the value it has, or adds it.
     pub fn set(&mut self, name: &str, value: Value) {
         match self.0.iter_mut().find(|(n, _)| n == name) {

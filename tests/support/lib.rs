@@ -205,3 +205,86 @@ pub fn time<T>(n: usize, mut f: impl FnMut() -> T) -> Duration {
     times.sort();
     times[times.len() / 2]
 }
+
+/// A `redis-server` of our own (Debian's `redis-server` package), on a free
+/// loopback port, with no persistence, killed when dropped.
+pub struct RedisServer {
+    port: u16,
+    child: Option<std::process::Child>,
+}
+
+impl RedisServer {
+    /// Starts one and waits until it answers `PING`.
+    pub fn start() -> RedisServer {
+        let mut s = RedisServer::unstarted();
+        s.restart();
+        s
+    }
+
+    /// One on a free port, not started (its URL refuses connections).
+    pub fn unstarted() -> RedisServer {
+        let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+        RedisServer { port, child: None }
+    }
+
+    /// Starts it (again), on the same port, and waits until it answers.
+    pub fn restart(&mut self) {
+        use std::process::{Command, Stdio};
+        let child = Command::new("redis-server")
+            .args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"])
+            .stdout(Stdio::null())
+            .spawn()
+            .expect("redis-server (Debian's redis-server package; `.ci/run` installs it)");
+        self.child = Some(child);
+        // Ready when it answers PING.
+        for _ in 0..500 {
+            if self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some() {
+                return;
+            }
+            std::thread::sleep(Duration::from_millis(10));
+        }
+        panic!("redis-server on port {} did not answer PING", self.port);
+    }
+
+    /// Kills it.
+    pub fn stop(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let _ = c.kill();
+            let _ = c.wait();
+        }
+    }
+
+    /// `redis://127.0.0.1:PORT/`.
+    pub fn url(&self) -> String {
+        format!("redis://127.0.0.1:{}/", self.port)
+    }
+
+    /// A plain connection, if it answers.
+    pub fn connection(&self) -> Option<redis::Connection> {
+        redis::Client::open(self.url()).ok()?.get_connection().ok()
+    }
+
+    /// A figure of `INFO stats`.
+    pub fn stat(&self, name: &str) -> u64 {
+        let redis::Value::BulkString(info) = self.cmd(&["INFO", "stats"]) else { panic!("INFO answers with text") };
+        let info = String::from_utf8(info).unwrap();
+        let line = info.lines().find_map(|l| l.strip_prefix(&format!("{name}:"))).unwrap_or_else(|| panic!("no {name} in {info}"));
+        line.trim().parse().unwrap()
+    }
+
+    /// Runs one command.
+    pub fn cmd(&self, args: &[&str]) -> redis::Value {
+        let mut c = self.connection().expect("connects");
+        let mut cmd = redis::cmd(args[0]);
+        for a in &args[1..] {
+            cmd.arg(*a);
+        }
+        cmd.query(&mut c).expect("the command runs")
+    }
+}
+
+impl Drop for RedisServer {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}

@@ -126,6 +126,18 @@ pub struct Resolved {
     keys: Vec<String>,
 }
 
+/// How much of what was looked up is reported per row.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(rename_all = "snake_case")]
+pub enum Lookups {
+    /// Only the features that fell back (missing, stale or unavailable).
+    #[default]
+    Fallbacks,
+    /// Every looked-up feature: source, key, age, outcome.
+    All,
+}
+
 /// What became of one looked-up feature for one row.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
@@ -306,7 +318,7 @@ impl Resolved {
     /// # Errors
     /// As [`Resolved::gather_rows`] says of each row.
     pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
-        self.gather_rows(context, std::slice::from_ref(row), now).pop().expect("one row in, one out")
+        self.gather_rows(context, std::slice::from_ref(row), now, Lookups::All).pop().expect("one row in, one out")
     }
 
     /// Completes each row with the features the plan looks up, at `now`
@@ -315,11 +327,12 @@ impl Resolved {
     /// the row: keys are not features). A feature the row carries itself
     /// wins over its lookup. Each Redis source is read once for all the
     /// rows: one pipeline, one round trip. Returns, per row, the completed
-    /// row and where each looked-up feature came from, or a
+    /// row and where each looked-up feature came from (each one, or only
+    /// those that fell back, as `report` says), or a
     /// [`GatherError`]: a key the plan needs for a feature that must not
     /// fall back is missing, such a feature has nothing fresh or its source
     /// could not be read, or a value does not fit.
-    pub fn gather_rows(&self, context: &BTreeMap<String, String>, rows: &[Row], now: f64) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+    pub fn gather_rows(&self, context: &BTreeMap<String, String>, rows: &[Row], now: f64, report: Lookups) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
         let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> = rows.iter().map(|r| self.split(context, r)).collect();
         let mut buf = String::new();
         // One batch of HMGETs per Redis source: each key once, with every
@@ -349,7 +362,8 @@ impl Resolved {
         for (batch, pending) in batches.values_mut().zip(pending) {
             batch.answer = pending.map(redis::Pending::wait);
         }
-        prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, &mut buf)).collect()
+        let mut scratch = Scratch { key: buf, ..Scratch::default() };
+        prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, &mut scratch, report)).collect()
     }
 
     /// The keys of a row, and the row without its key fields.
@@ -375,34 +389,56 @@ impl Resolved {
         (std::borrow::Cow::Owned(keys), rest)
     }
 
-    /// One row completed, its Redis values taken from `batches`.
-    fn complete(&self, keys: &BTreeMap<String, String>, row: Row, now: f64, batches: &BTreeMap<&str, Batch>, buf: &mut String) -> Result<(Row, Vec<Fetched>), GatherError> {
+    /// One row completed, its Redis values taken from `batches`. Nothing
+    /// is allocated for a feature found and not reported but its value in
+    /// the row; consecutive steps reading one table under one key probe it
+    /// once.
+    fn complete(&self, keys: &BTreeMap<String, String>, row: Row, now: f64, batches: &BTreeMap<&str, Batch>, scratch: &mut Scratch, report: Lookups) -> Result<(Row, Vec<Fetched>), GatherError> {
+        let Scratch { key: buf, probed_key, probed } = scratch;
+        *probed = None;
         let mut out = row;
-        let mut fetched = Vec::with_capacity(self.steps.len());
+        out.reserve(self.steps.len());
+        let mut fetched = Vec::new();
+        let all = report == Lookups::All;
         for step in &self.steps {
             // Each step sets only its own feature, so `out` still shows
             // what the row itself carried for this one.
             if carries(&out, &step.feature) {
                 step.counts.lookup(Outcome::FromRequest);
-                let key = step.lookup.key.render(keys, buf).unwrap_or_default().to_owned();
-                fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
+                if all {
+                    let key = step.lookup.key.render(keys, buf).unwrap_or_default().to_owned();
+                    fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
+                }
                 continue;
             }
             // No key: nothing can be found; the feature falls back, or the
             // row fails naming the key when its fallback is to fail.
             let key = match step.lookup.key.render(keys, buf) {
-                Ok(key) => Some(key.to_owned()),
+                Ok(key) => Some(key),
                 Err(k) if step.lookup.missing == Fallback::Fail => {
                     step.counts.lookup(Outcome::Missing);
                     return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() });
                 }
                 Err(_) => None,
             };
-            let read = match &key {
-                None => Read::Found(None),
-                Some(key) => read(step, key, batches),
+            let read = match (key, &step.via) {
+                (None, _) => Read::Found(None),
+                (Some(key), Via::Table { table, column }) => {
+                    let id = Arc::as_ptr(table);
+                    let at = match probed {
+                        Some((t, at)) if *t == id && probed_key == key => *at,
+                        _ => {
+                            let at = table.row(key);
+                            probed_key.clear();
+                            probed_key.push_str(key);
+                            *probed = Some((id, at));
+                            at
+                        }
+                    };
+                    Read::Found(at.map(|at| table.at(at, *column)))
+                }
+                (Some(key), Via::Redis { .. }) => read_redis(step, key, batches),
             };
-            let key = key.unwrap_or_else(|| format!("(no key for {})", step.lookup.key.text()));
             let (outcome, cell, age, trouble) = match read {
                 Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
                 Read::Found(found) => {
@@ -416,8 +452,9 @@ impl Resolved {
                 }
             };
             step.counts.lookup(outcome);
+            let shown = || key.map_or_else(|| format!("(no key for {})", step.lookup.key.text()), str::to_owned);
             let value = match cell {
-                Some(cell) => Some(value_of(cell, step, &key)?),
+                Some(cell) => Some(value_of(cell, step, key.unwrap_or_default())?),
                 None => None,
             };
             let value = match (value, &step.lookup.missing) {
@@ -425,18 +462,30 @@ impl Resolved {
                 (None, Fallback::Absent) => Value::Absent,
                 (None, Fallback::Default(v)) => v.clone(),
                 (None, Fallback::Fail) => {
-                    let (feature, from) = (step.feature.clone(), step.source.clone());
+                    let (feature, from, key) = (step.feature.clone(), step.source.clone(), shown());
                     return Err(match trouble {
                         Some(t) => GatherError::Unavailable { feature, from, key, trouble: t.to_string() },
                         None => GatherError::Missing { feature, from, key, stale: outcome == Outcome::Stale },
                     });
                 }
             };
+            if all || outcome != Outcome::Found {
+                fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key: shown(), outcome, age });
+            }
             out.set(&step.feature, value);
-            fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome, age });
         }
         Ok((out, fetched))
     }
+}
+
+/// Buffers one request's rows share while being completed.
+#[derive(Default)]
+struct Scratch {
+    /// A rendered key.
+    key: String,
+    /// The key last probed in a table, and which table and row it found.
+    probed_key: String,
+    probed: Option<(*const Table, Option<usize>)>,
 }
 
 /// Whether the row gives the feature itself.
@@ -485,9 +534,10 @@ enum Read<'a> {
     Unavailable(Trouble),
 }
 
-fn read<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
+/// A Redis lookup's value, from its source's answer to the request.
+fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
     match &step.via {
-        Via::Table { table, column } => Read::Found(table.get(key, *column)),
+        Via::Table { .. } => Read::Found(None),
         Via::Redis { updated, .. } => {
             let Some(batch) = batches.get(step.source.as_str()) else { return Read::Found(None) };
             if let Some(Err(t)) = &batch.answer {

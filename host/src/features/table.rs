@@ -37,7 +37,7 @@ enum Column {
 #[derive(Clone, Debug)]
 pub struct Table {
     /// Row of each key.
-    index: HashMap<Box<str>, u32>,
+    index: HashMap<Box<str>, u32, foldhash::fast::RandomState>,
     /// Column names, in file order (the key column included).
     names: Vec<Box<str>>,
     columns: Vec<Column>,
@@ -228,7 +228,9 @@ impl Table {
         let width = names.len();
         let cell = raw_cell;
         // Keys.
-        let mut index: HashMap<Box<str>, u32> = HashMap::with_capacity(rows.len());
+        // foldhash: lookups are the request path. Keys come from the batch
+        // job's file, not from clients, so a fast hasher is safe here.
+        let mut index: HashMap<Box<str>, u32, foldhash::fast::RandomState> = HashMap::with_capacity_and_hasher(rows.len(), foldhash::fast::RandomState::default());
         for (r, row) in rows.iter().enumerate() {
             let text = match cell(row, key_at) {
                 Raw::Text(t) => t.clone(),
@@ -299,14 +301,30 @@ impl Table {
     /// computed (Unix seconds) if the table says. `None` for a key not in
     /// the table.
     pub fn get(&self, key: &str, column: usize) -> Option<(Cell<'_>, Option<f64>)> {
-        let row = *self.index.get(key)? as usize;
-        let cell = match self.columns.get(column)? {
+        if column >= self.columns.len() {
+            return None;
+        }
+        Some(self.at(self.row(key)?, column))
+    }
+
+    /// The row of `key`, for [`Table::at`]; `None` for a key not in the table.
+    pub fn row(&self, key: &str) -> Option<usize> {
+        self.index.get(key).map(|&r| r as usize)
+    }
+
+    /// Row `row`'s cell in `column`, and when the row was computed.
+    ///
+    /// # Panics
+    /// When `row` or `column` is not in the table: take them from
+    /// [`Table::row`] and [`Table::column`].
+    pub fn at(&self, row: usize, column: usize) -> (Cell<'_>, Option<f64>) {
+        let cell = match &self.columns[column] {
             Column::Numbers(v) if v[row].is_nan() => Cell::Absent,
             Column::Numbers(v) => Cell::Number(v[row]),
             Column::Texts(v) => v[row].as_deref().map_or(Cell::Absent, Cell::Text),
         };
         let updated = self.updated.as_ref().map(|u| u[row]).filter(|t| !t.is_nan());
-        Some((cell, updated))
+        (cell, updated)
     }
 }
 

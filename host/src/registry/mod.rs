@@ -43,7 +43,7 @@ use serde::Serialize;
 
 use crate::digest::Digest;
 use crate::codecache::{CacheError, CodeCache};
-use crate::features::{Fetched, Outcome, Resolved};
+use crate::features::{Fetched, Resolved};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
@@ -232,17 +232,7 @@ impl<'a> Request<'a> {
     }
 }
 
-/// How much an answer says of the features looked up for its rows.
-#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
-#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
-#[serde(rename_all = "snake_case")]
-pub enum Lookups {
-    /// Only the features that fell back (missing or stale).
-    #[default]
-    Fallbacks,
-    /// Every looked-up feature: source, key, age, outcome.
-    All,
-}
+pub use crate::features::Lookups;
 
 /// Estimates, and which version produced them and why.
 #[derive(Clone, Debug, Serialize)]
@@ -304,12 +294,9 @@ struct Gathered {
 fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
     let now = now.as_millisecond() as f64 / 1000.0;
     let mut g = Gathered { rows: Vec::with_capacity(request.rows.len()), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
-    for (i, result) in plan.gather_rows(request.context, request.rows, now).into_iter().enumerate() {
+    for (i, result) in plan.gather_rows(request.context, request.rows, now, request.lookups).into_iter().enumerate() {
         match result {
-            Ok((row, mut fetched)) => {
-                if request.lookups == Lookups::Fallbacks {
-                    fetched.retain(|f| matches!(f.outcome, Outcome::Missing | Outcome::Stale | Outcome::Unavailable));
-                }
+            Ok((row, fetched)) => {
                 g.rows.push(row);
                 g.numbers.push(i + 1);
                 g.lookups.push(fetched);
