@@ -95,9 +95,9 @@ impl Row {
         self.0.push((name, value));
     }
 
-    /// Makes room for `more` features.
-    pub fn reserve(&mut self, more: usize) {
-        self.0.reserve(more);
+    /// A row with room for `n` features.
+    pub fn with_capacity(n: usize) -> Self {
+        Row(Vec::with_capacity(n))
     }
 
     /// Sets a feature's value: replaces the value it has, or adds it.

@@ -362,17 +362,23 @@ impl Resolved {
         for (batch, pending) in batches.values_mut().zip(pending) {
             batch.answer = pending.map(redis::Pending::wait);
         }
-        let mut scratch = Scratch { key: buf, ..Scratch::default() };
-        prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, &mut scratch, report)).collect()
+        // The scratch buffers live on the thread: a request allocates none.
+        SCRATCH.with_borrow_mut(|scratch| prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, scratch, report)).collect())
     }
 
     /// The keys of a row, and the row without its key fields.
     fn split<'c>(&self, context: &'c BTreeMap<String, String>, row: &Row) -> (std::borrow::Cow<'c, BTreeMap<String, String>>, Row) {
+        // Room for the features the steps add: the row grows once.
+        let room = row.fields().len() + self.steps.len();
         if !self.keys.iter().any(|k| row.fields().iter().any(|(n, _)| n == k)) {
-            return (std::borrow::Cow::Borrowed(context), row.clone());
+            let mut copy = Row::with_capacity(room);
+            for (name, value) in row.fields() {
+                copy.insert(name.clone(), value.clone());
+            }
+            return (std::borrow::Cow::Borrowed(context), copy);
         }
         let mut keys = context.clone();
-        let mut rest = Row::new();
+        let mut rest = Row::with_capacity(room);
         for (name, value) in row.fields() {
             if self.keys.contains(name) {
                 match value {
@@ -397,7 +403,6 @@ impl Resolved {
         let Scratch { key: buf, probed_key, probed } = scratch;
         *probed = None;
         let mut out = row;
-        out.reserve(self.steps.len());
         let mut fetched = Vec::new();
         let all = report == Lookups::All;
         for step in &self.steps {
@@ -478,7 +483,11 @@ impl Resolved {
     }
 }
 
-/// Buffers one request's rows share while being completed.
+thread_local! {
+    static SCRATCH: std::cell::RefCell<Scratch> = std::cell::RefCell::default();
+}
+
+/// Buffers the rows a thread completes share.
 #[derive(Default)]
 struct Scratch {
     /// A rendered key.

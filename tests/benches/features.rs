@@ -1,0 +1,174 @@
+//! What looking features up adds to a request, through the registry.
+//!
+//! One model, `m`: a linear model over 8 features, of which a request
+//! carries 2 and the features plan looks up 6 by the request's `site` key
+//! (10 000 sites). Three stores serve it, measured in the same run, in
+//! interleaved rounds:
+//! - `assembled`: no features file; the request carries all 8 features
+//!   (the baseline: scoring the assembled row);
+//! - `table`: the 6 from an embedded CSV table;
+//! - `redis`: the 6 from Redis hashes on a `redis-server` this bench starts
+//!   on loopback (one `HMGET` pipeline per request).
+//!
+//! At 1 row per request (the context names the site) and 64 rows (each
+//! row names its own). Each request is timed alone; the figures are the
+//! p50 and p99 per request, and what each source adds over `assembled` at
+//! the same percentile. Writes target/paddock/bench-features.md and prints
+//! it. Needs `cargo xtask build` (the linear guest) and `redis-server`.
+
+use std::fmt::Write as _;
+use std::hint::black_box;
+use std::path::Path;
+use std::time::Instant;
+
+use paddock_guest::{LinearParams, Link, Packaged, encode_params};
+use paddock_host::registry::artifact_path;
+use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_tests::{RedisServer, guest, open_contract, root, write_atomically};
+use semver::Version;
+
+const SITES: usize = 10_000;
+const LOOKED_UP: [&str; 6] = ["f2", "f3", "f4", "f5", "f6", "f7"];
+
+/// The value of feature `f` at site `s` (any numbers will do: the table and
+/// Redis hold the same, and the assembled rows carry them).
+fn value(s: usize, f: usize) -> f64 {
+    ((s * 7 + f * 13) % 101) as f64 / 10.0
+}
+
+fn store(dir: &Path, plan: Option<String>) {
+    let features: Vec<String> = (0..8).map(|i| format!("f{i}")).collect();
+    let contract = open_contract("m", &features, "y");
+    let params = LinearParams { link: Link::Identity, intercepts: vec![1.0], weights: vec![(0..8).map(|i| 0.5 + f64::from(i)).collect()], impute: vec![] };
+    let blob = encode_params(&Packaged { contract, params });
+    let artifact = paddock_host::pack(&guest("paddock-model-linear"), Some(&blob), None).expect("packs");
+    write_atomically(&artifact_path(dir, "m", &Version::new(1, 0, 0)), &artifact);
+    write_atomically(&dir.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    if let Some(plan) = plan {
+        write_atomically(&dir.join("features.toml"), plan.as_bytes());
+    }
+}
+
+fn plan(source: &str, key: &str) -> String {
+    let mut p = format!("{source}\n[models.m]\nkeys = [\"site\"]\n[models.m.features]\nf0 = \"request\"\nf1 = \"request\"\n");
+    for f in LOOKED_UP {
+        let _ = writeln!(p, "{f} = {{ source = \"sites\", key = \"{key}\", field = \"{f}\", max_age = \"7d\", missing = \"fail\" }}");
+    }
+    p
+}
+
+fn open(dir: &Path) -> Registry {
+    let registry = Registry::open(&Runtime::new().unwrap(), dir, RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
+    assert!(registry.status().artifacts.iter().all(|a| matches!(a.state, paddock_host::registry::ArtifactState::Loaded)));
+    registry
+}
+
+/// p50 and p99 of `times` (ns).
+fn percentiles(times: &mut [u64]) -> (f64, f64) {
+    times.sort_unstable();
+    let at = |q: f64| times[((times.len() - 1) as f64 * q).round() as usize] as f64;
+    (at(0.5), at(0.99))
+}
+
+fn main() {
+    // `cargo bench` passes `--bench`; nothing to parse.
+    let now = jiff::Timestamp::now().as_second();
+    let dirs: Vec<tempfile::TempDir> = (0..3).map(|_| tempfile::tempdir().unwrap()).collect();
+    // The table, and the same values in Redis.
+    let mut csv = String::from("site,f2,f3,f4,f5,f6,f7,updated_at\n");
+    for s in 0..SITES {
+        let _ = writeln!(csv, "s{s},{},{},{},{},{},{},{now}", value(s, 2), value(s, 3), value(s, 4), value(s, 5), value(s, 6), value(s, 7));
+    }
+    write_atomically(&dirs[1].path().join("sites.csv"), csv.as_bytes());
+    let server = RedisServer::start();
+    {
+        let mut c = server.connection().unwrap();
+        let mut pipe = redis::pipe();
+        for s in 0..SITES {
+            let mut cmd = redis::cmd("HSET");
+            cmd.arg(format!("site:s{s}"));
+            for (i, f) in LOOKED_UP.iter().enumerate() {
+                cmd.arg(*f).arg(value(s, i + 2));
+            }
+            cmd.arg("updated_at").arg(now);
+            pipe.add_command(cmd).ignore();
+        }
+        pipe.query::<()>(&mut c).unwrap();
+    }
+    store(dirs[0].path(), None);
+    store(dirs[1].path(), Some(plan("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"", "{site}")));
+    store(dirs[2].path(), Some(plan(&format!("[sources.sites]\nredis = \"{}\"\nbudget_ms = 20\nupdated = \"updated_at\"", server.url()), "site:{site}")));
+    let registries: Vec<Registry> = dirs.iter().map(|d| open(d.path())).collect();
+    let names = ["assembled", "table", "redis"];
+
+    // Requests: per store, 1 row and 64 rows, cycling over the sites.
+    let assembled = |s: usize| {
+        let mut r = Row::new().with("f0", 1.5).with("f1", 2.5);
+        for (i, f) in LOOKED_UP.iter().enumerate() {
+            r = r.with(f, value(s, i + 2));
+        }
+        r
+    };
+    let keyed = |s: usize| Row::new().with("f0", 1.5).with("f1", 2.5).with("site", format!("s{s}").as_str());
+    let contexts: Vec<Context> = (0..SITES).map(|s| [("site".to_owned(), format!("s{s}"))].into()).collect();
+    let one_row = |store: usize, s: usize| if store == 0 { assembled(s) } else { Row::new().with("f0", 1.5).with("f1", 2.5) };
+    let singles: Vec<Vec<Vec<Row>>> = (0..3).map(|store| (0..SITES).map(|s| vec![one_row(store, s)]).collect()).collect();
+    let batches: Vec<Vec<Vec<Row>>> =
+        (0..3).map(|store| (0..SITES / 64).map(|b| (0..64).map(|i| if store == 0 { assembled(b * 64 + i) } else { keyed(b * 64 + i) }).collect()).collect()).collect();
+
+    // Every store answers the same.
+    for s in [0, 17, SITES - 1] {
+        let ys: Vec<f64> = (0..3).map(|k| registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.row(0)[0]).collect();
+        assert!(ys.iter().all(|y| *y == ys[0]), "site {s}: {ys:?}");
+    }
+
+    let emptiness = Context::new();
+    let (mut single_times, mut batch_times): (Vec<Vec<u64>>, Vec<Vec<u64>>) = (vec![Vec::new(); 3], vec![Vec::new(); 3]);
+    let rounds = 20;
+    for round in 0..rounds {
+        for k in 0..3 {
+            for i in 0..2_000 {
+                let s = (round * 2_000 + i) % SITES;
+                let t = Instant::now();
+                black_box(registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap());
+                single_times[k].push(t.elapsed().as_nanos() as u64);
+            }
+            for i in 0..100 {
+                let b = (round * 100 + i) % batches[k].len();
+                let t = Instant::now();
+                let a = black_box(registries[k].score(&Request::new("m", &emptiness, &batches[k][b])).unwrap());
+                batch_times[k].push(t.elapsed().as_nanos() as u64);
+                assert_eq!(a.scored.len(), 64);
+            }
+        }
+    }
+    let usage = registries[2].source_usage();
+    let trips = usage.iter().map(|u| u.round_trips).sum::<u64>();
+    let fallbacks: u64 = usage.iter().flat_map(|u| u.lookups.iter()).filter(|(o, _)| *o != "found").map(|(_, n)| n).sum();
+    assert_eq!(fallbacks, 0, "every Redis lookup found its value: {usage:?}");
+
+    let mut out = String::new();
+    let _ = writeln!(out, "| source | rows per request | p50 per request | p99 per request | p50 added | p99 added |");
+    let _ = writeln!(out, "|---|---|---|---|---|---|");
+    for (label, times) in [("1", &mut single_times), ("64", &mut batch_times)] {
+        let p: Vec<(f64, f64)> = times.iter_mut().map(|t| percentiles(t)).collect();
+        for k in 0..3 {
+            let added = if k == 0 { ("—".to_owned(), "—".to_owned()) } else { (show(p[k].0 - p[0].0), show(p[k].1 - p[0].1)) };
+            let _ = writeln!(out, "| {} | {label} | {} | {} | {} | {} |", names[k], show(p[k].0), show(p[k].1), added.0, added.1);
+        }
+    }
+    let _ = writeln!(out, "\n{} requests per cell; Redis round trips: {trips} for {} requests (one per request).", rounds * 2_000, rounds * 2_100 + 3);
+    let path = root().join("target/paddock/bench-features.md");
+    std::fs::write(&path, &out).unwrap();
+    print!("{out}");
+}
+
+fn show(ns: f64) -> String {
+    if ns.abs() >= 1_000_000.0 {
+        format!("{:.2} ms", ns / 1e6)
+    } else if ns.abs() >= 1_000.0 {
+        format!("{:.2} µs", ns / 1e3)
+    } else {
+        format!("{ns:.0} ns")
+    }
+}
