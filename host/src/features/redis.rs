@@ -34,10 +34,22 @@ pub struct RedisSource {
     url: String,
     client: redis::Client,
     budget: Duration,
-    runtime: tokio::runtime::Runtime,
+    /// Taken only when dropped.
+    runtime: Option<tokio::runtime::Runtime>,
     connection: Mutex<Option<MultiplexedConnection>>,
     breaker: Mutex<Breaker>,
     counts: Arc<SourceCounts>,
+}
+
+impl Drop for RedisSource {
+    /// Stops the source's runtime without waiting for it: the last
+    /// registry may be dropped on an async thread (a worker's, a server's),
+    /// where blocking to join the runtime's threads is not allowed.
+    fn drop(&mut self) {
+        if let Some(runtime) = self.runtime.take() {
+            runtime.shutdown_background();
+        }
+    }
 }
 
 impl std::fmt::Debug for RedisSource {
@@ -92,7 +104,7 @@ impl RedisSource {
             url: url.to_owned(),
             client,
             budget,
-            runtime,
+            runtime: Some(runtime),
             connection: Mutex::new(None),
             breaker: Mutex::new(Breaker::default()),
             counts,
@@ -149,7 +161,8 @@ impl RedisSource {
         let budget = self.budget;
         let (tx, rx) = std::sync::mpsc::sync_channel(1);
         let sent = Instant::now();
-        self.runtime.spawn(async move {
+        let Some(runtime) = &self.runtime else { unreachable!("the runtime lives as long as the source") };
+        runtime.spawn(async move {
             let read = tokio::time::timeout(budget, async move {
                 let mut c = match connection {
                     Some(c) => c,
