@@ -288,3 +288,26 @@ pub fn contract_text(c: &paddock_host::Contract) -> String {
     out.push_str(&format!("\noutputs\n{}", text_table(&["#", "name", "bounds", "unit", "about"], &outputs)));
     out
 }
+
+/// Resolves on Ctrl-C or SIGTERM, saying `stopping` on stderr.
+pub async fn shutdown_signal(stopping: &str) {
+    let ctrl_c = async {
+        let _ = tokio::signal::ctrl_c().await;
+    };
+    #[cfg(unix)]
+    let term = async {
+        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
+            Ok(mut s) => {
+                s.recv().await;
+            }
+            Err(_) => std::future::pending::<()>().await,
+        }
+    };
+    #[cfg(not(unix))]
+    let term = std::future::pending::<()>();
+    tokio::select! {
+        () = ctrl_c => {},
+        () = term => {},
+    }
+    eprintln!("{stopping}");
+}

@@ -34,6 +34,7 @@ enum Command {
     Voucher(cmd::voucher::Args),
     Vouch(cmd::vouch::Args),
     Admit(cmd::admit::Args),
+    Work(cmd::work::Args),
 }
 
 /// What a command that ran reports back to `main`.
@@ -72,6 +73,7 @@ fn main() -> ExitCode {
         Command::Voucher(a) => cmd::voucher::run(a),
         Command::Vouch(a) => cmd::vouch::run(a),
         Command::Admit(a) => cmd::admit::run(a),
+        Command::Work(a) => cmd::work::run(a),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

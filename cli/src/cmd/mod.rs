@@ -13,3 +13,4 @@ pub mod stream;
 pub mod usage;
 pub mod vouch;
 pub mod voucher;
+pub mod work;

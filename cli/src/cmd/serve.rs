@@ -78,33 +78,11 @@ pub fn run(args: Args) -> Result<Outcome> {
         println!("listening on http://{addr}");
         use std::io::Write;
         std::io::stdout().flush()?;
-        http::serve(listener, router, shutdown_signal()).await?;
+        http::serve(listener, router, crate::common::shutdown_signal("stopping: finishing the requests in flight")).await?;
         anyhow::Ok(())
     })?;
     drop(watch);
     let saved = registry.save_usage()?;
     eprintln!("stopped; usage written to {}", saved.display());
     Ok(Outcome::Ok)
-}
-
-async fn shutdown_signal() {
-    let ctrl_c = async {
-        let _ = tokio::signal::ctrl_c().await;
-    };
-    #[cfg(unix)]
-    let term = async {
-        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-            Ok(mut s) => {
-                s.recv().await;
-            }
-            Err(_) => std::future::pending::<()>().await,
-        }
-    };
-    #[cfg(not(unix))]
-    let term = std::future::pending::<()>();
-    tokio::select! {
-        () = ctrl_c => {},
-        () = term => {},
-    }
-    eprintln!("stopping: finishing the requests in flight");
 }

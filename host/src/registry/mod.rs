@@ -43,7 +43,7 @@ use serde::Serialize;
 
 use crate::digest::Digest;
 use crate::codecache::{CacheError, CodeCache};
-use crate::features::{Fetched, Resolved};
+use crate::features::{Fetched, GatherError, Resolved};
 use crate::model::{Estimates, Model, ModelOptions, ScoreError};
 use crate::rows::{Row, RowError};
 use crate::sandbox::Runtime;
@@ -303,7 +303,11 @@ fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
             }
             Err(e) => {
                 let (feature, value) = e.place();
-                g.problems.push(RowError::lookup(i + 1, feature, &value, e.to_string()));
+                g.problems.push(if matches!(e, GatherError::Unavailable { .. }) {
+                    RowError::unavailable(i + 1, feature, e.to_string())
+                } else {
+                    RowError::lookup(i + 1, feature, &value, e.to_string())
+                });
                 g.lookups.push(Vec::new());
             }
         }

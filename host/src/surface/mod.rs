@@ -5,7 +5,9 @@
 //! - [`wire`]: the JSON shapes every surface shares (request, answer, error);
 //! - [`stream`]: NDJSON in, NDJSON out, one answer per line, in order;
 //! - [`http`] (feature `http`, on by default): an HTTP API described by an
-//!   OpenAPI 3.1 document that [`openapi`] generates from the wire types.
+//!   OpenAPI 3.1 document that [`openapi`] generates from the wire types;
+//! - [`worker`] (feature `workers`, on by default): workers sharing a NATS
+//!   JetStream consumer, answering each event once.
 
 #[cfg(feature = "http")]
 pub mod http;
@@ -13,3 +15,5 @@ pub mod http;
 pub mod openapi;
 pub mod stream;
 pub mod wire;
+#[cfg(feature = "workers")]
+pub mod worker;

@@ -103,7 +103,9 @@ pub fn run(registry: &Registry, mut input: impl BufRead, mut output: impl Write,
     Ok(summary)
 }
 
-fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
+/// One request line answered: its `id` (when it gave one) and the answer
+/// or the error. Also how a stream worker answers an event.
+pub(crate) fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
     let mut line: EstimateRequest = match serde_json::from_slice(bytes) {
         Ok(l) => l,
         Err(e) => {

@@ -1,0 +1,94 @@
+//! `paddock work`: a stream worker on NATS JetStream. Every worker started
+//! with the same consumer shares its events; each event's answer is
+//! published once, bad events and model faults go to dead-letter (see
+//! `paddock_host::surface::worker`). Watches the store like `serve`; stops
+//! on Ctrl-C or SIGTERM after the events in hand are answered and acked.
+
+use std::time::Duration;
+
+use anyhow::{Context, Result};
+use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions};
+
+use crate::Outcome;
+use crate::common::StoreArgs;
+
+/// Consume events from NATS JetStream, score them, publish the answers.
+#[derive(clap::Args)]
+pub struct Args {
+    #[command(flatten)]
+    store: StoreArgs,
+    /// The NATS server (several: comma-separated).
+    #[arg(long, default_value = "nats://127.0.0.1:4222", value_name = "URL")]
+    nats: String,
+    /// The subject events are published to.
+    #[arg(long, default_value = "paddock.events", value_name = "SUBJECT")]
+    events: String,
+    /// The stream holding the events (made, capturing the subject, if missing).
+    #[arg(long, default_value = "PADDOCK_EVENTS", value_name = "NAME")]
+    events_stream: String,
+    /// The durable consumer the workers share.
+    #[arg(long, default_value = "paddock-workers", value_name = "NAME")]
+    consumer: String,
+    /// The subject answers are published to.
+    #[arg(long, default_value = "paddock.answers", value_name = "SUBJECT")]
+    answers: String,
+    /// The subject dead letters are published to.
+    #[arg(long, default_value = "paddock.dead", value_name = "SUBJECT")]
+    dead_letters: String,
+    /// The stream holding answers and dead letters (made if missing).
+    #[arg(long, default_value = "PADDOCK_ANSWERS", value_name = "NAME")]
+    answers_stream: String,
+    /// Events this worker handles at once.
+    #[arg(long, default_value_t = 64, value_name = "N")]
+    in_flight: usize,
+    /// Events delivered and not acked, over all workers (the consumer's limit).
+    #[arg(long, default_value_t = 1024, value_name = "N")]
+    max_ack_pending: i64,
+    /// Deliveries of one event before it goes to dead-letter.
+    #[arg(long, default_value_t = 5, value_name = "N")]
+    max_deliver: i64,
+    /// Seconds the server waits for an ack before delivering an event again.
+    #[arg(long, default_value_t = 30, value_name = "SECS")]
+    ack_wait_secs: u64,
+    /// Threads scoring at once [default: the number of cores].
+    #[arg(long, value_name = "N")]
+    threads: Option<usize>,
+    /// Seconds between rescans of the store (besides file-system events).
+    #[arg(long, default_value_t = 30, value_name = "SECS")]
+    rescan_secs: u64,
+}
+
+/// Opens the store, watches it, and works until told to stop.
+pub fn run(args: Args) -> Result<Outcome> {
+    let registry = args.store.open()?;
+    let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
+    let defaults = WorkerOptions::default();
+    let options = WorkerOptions {
+        url: args.nats,
+        events_stream: args.events_stream,
+        events: args.events,
+        consumer: args.consumer,
+        answers_stream: args.answers_stream,
+        answers: args.answers,
+        dead_letters: args.dead_letters,
+        in_flight: args.in_flight.max(1),
+        max_ack_pending: args.max_ack_pending,
+        max_deliver: args.max_deliver,
+        ack_wait: Duration::from_secs(args.ack_wait_secs.max(1)),
+        threads: args.threads.unwrap_or(defaults.threads),
+        ..defaults
+    };
+    let counts = std::sync::Arc::new(WorkerCounts::default());
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    let url = options.url.clone();
+    runtime
+        .block_on(worker::run(registry.clone(), options, counts.clone(), crate::common::shutdown_signal("stopping: finishing the events in hand")))
+        .with_context(|| format!("working on {url}"))?;
+    drop(watch);
+    let s = counts.summary();
+    eprintln!(
+        "stopped: {} events, {} answered ({} already answered), {} dead-lettered, {} redelivered, {} left to come back",
+        s.events, s.answered, s.duplicates, s.dead_lettered, s.redelivered, s.retried
+    );
+    Ok(Outcome::Ok)
+}
