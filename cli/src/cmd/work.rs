@@ -53,6 +53,10 @@ pub struct Args {
     /// Threads scoring at once [default: the number of cores].
     #[arg(long, value_name = "N")]
     threads: Option<usize>,
+    /// This worker's name, in the `Paddock-Worker` header of what it
+    /// publishes [default: pid-<process id>].
+    #[arg(long, value_name = "NAME")]
+    name: Option<String>,
     /// Seconds between rescans of the store (besides file-system events).
     #[arg(long, default_value_t = 30, value_name = "SECS")]
     rescan_secs: u64,
@@ -76,6 +80,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         max_deliver: args.max_deliver,
         ack_wait: Duration::from_secs(args.ack_wait_secs.max(1)),
         threads: args.threads.unwrap_or(defaults.threads),
+        name: args.name.unwrap_or(defaults.name.clone()),
         ..defaults
     };
     let counts = std::sync::Arc::new(WorkerCounts::default());

