@@ -25,6 +25,13 @@ fn paddock(args: &[&str], stdin: Option<&str>) -> Output {
     child.wait_with_output().unwrap()
 }
 
+/// What `paddock inspect` says of an artifact, runs of spaces (table
+/// padding) collapsed to one.
+fn inspected(artifact: &std::path::Path) -> String {
+    let o = paddock(&["inspect", artifact.to_str().unwrap()], None);
+    text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ")
+}
+
 fn text(o: &[u8]) -> String {
     String::from_utf8_lossy(o).into_owned()
 }
@@ -199,8 +206,7 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     );
     assert!(o.status.success(), "{}", text(&o.stderr));
     assert!(text(&o.stdout).contains("loads as session-minutes 1.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
-    let o = paddock(&["inspect", out.to_str().unwrap()], None);
-    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    let shown = inspected(&out);
     assert!(shown.contains("imported from tests/fixtures/stump.json (XGBoost JSON model, 1 trees)"), "{shown}");
     assert!(shown.contains("toolkit XGBoost 3.2.0"), "{shown}");
     assert!(shown.contains("feature arrival_soc name from feature_names in the file; real number from feature_types; optional by default: XGBoost sends an absent value its split's default way; unit, required from the manifest"), "{shown}");
@@ -226,8 +232,7 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     );
     assert!(o.status.success(), "{}", text(&o.stderr));
     assert!(text(&o.stdout).contains("loads as iris-species 0.0.0\nchecks: 150/150 passed"), "{}", text(&o.stdout));
-    let o = paddock(&["inspect", out.to_str().unwrap()], None);
-    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    let shown = inspected(&out);
     assert!(shown.contains("(scikit-learn model in ONNX (skl2onnx), linear: 3 output(s) × 4 weights)"), "{shown}");
     assert!(shown.contains("LinearClassifier: one probability per class (3) (softmax)"), "{shown}");
     assert!(shown.contains("feature x2 by position in the graph input `X`"), "{shown}");
@@ -255,8 +260,7 @@ fn pack_imports_a_lightgbm_model_from_the_cli() {
     let o = paddock(&["pack", model.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
     assert!(o.status.success(), "{}", text(&o.stderr));
     assert!(text(&o.stdout).contains("loads as lgb-wine-categorical 0.0.0\nchecks: 178/178 passed (max abs error 0e0, max rel error 0e0)"), "{}", text(&o.stdout));
-    let o = paddock(&["inspect", out.to_str().unwrap()], None);
-    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    let shown = inspected(&out);
     assert!(shown.contains("(LightGBM text model, 180 trees)"), "{shown}");
     assert!(shown.contains("feature alcohol_band name from feature_names in the file;"), "{shown}");
 }
@@ -277,8 +281,7 @@ fn pack_imports_a_pmml_document_onto_the_program_guest() {
     let o = paddock(&["pack", "tests/pmml/charge-session-minutes.pmml", "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
     assert!(o.status.success(), "{}", text(&o.stderr));
     assert!(text(&o.stdout).contains("loads as charge-session-minutes 0.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
-    let o = paddock(&["inspect", out.to_str().unwrap()], None);
-    let shown = text(&o.stdout).split(' ').filter(|w| !w.is_empty()).collect::<Vec<_>>().join(" ");
+    let shown = inspected(&out);
     assert!(shown.contains("imported from tests/pmml/charge-session-minutes.pmml (PMML document, scoring program:"), "{shown}");
     assert!(shown.contains("feature plug the DataDictionary (line 15): categorical string; labels ccs2, type2, chademo"), "{shown}");
     // A label outside the DataDictionary's Values is refused by the contract.

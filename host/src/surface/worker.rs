@@ -239,11 +239,11 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
         .await
         .map_err(|e| WorkerError::Connect { url: options.url.clone(), problem: e.to_string() })?;
     let js = jetstream::new(client);
-    let js_error = |what: String| move |e: &dyn std::fmt::Display| WorkerError::JetStream { what: what.clone(), problem: e.to_string() };
+    let js_error = |what: String, e: &dyn std::fmt::Display| WorkerError::JetStream { what, problem: e.to_string() };
     let events = js
         .get_or_create_stream(stream::Config { name: options.events_stream.clone(), subjects: vec![options.events.clone()], ..Default::default() })
         .await
-        .map_err(|e| js_error(format!("stream {}", options.events_stream))(&e))?;
+        .map_err(|e| js_error(format!("stream {}", options.events_stream), &e))?;
     js.get_or_create_stream(stream::Config {
         name: options.answers_stream.clone(),
         subjects: vec![options.answers.clone(), options.dead_letters.clone()],
@@ -251,7 +251,7 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
         ..Default::default()
     })
     .await
-    .map_err(|e| js_error(format!("stream {}", options.answers_stream))(&e))?;
+    .map_err(|e| js_error(format!("stream {}", options.answers_stream), &e))?;
     let consumer: consumer::PullConsumer = events
         .get_or_create_consumer(
             &options.consumer,
@@ -265,14 +265,14 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
             },
         )
         .await
-        .map_err(|e| js_error(format!("consumer {}", options.consumer))(&e))?;
+        .map_err(|e| js_error(format!("consumer {}", options.consumer), &e))?;
     let mut messages = consumer
         .stream()
         .max_messages_per_batch(options.batch)
         .heartbeat(Duration::from_secs(5))
         .messages()
         .await
-        .map_err(|e| js_error(format!("messages of consumer {}", options.consumer))(&e))?;
+        .map_err(|e| js_error(format!("messages of consumer {}", options.consumer), &e))?;
 
     let in_flight = Arc::new(Semaphore::new(options.in_flight));
     let scoring = Arc::new(Semaphore::new(options.threads.max(1)));
@@ -397,16 +397,15 @@ fn judge(registry: &Registry, payload: &[u8], sequence: u64) -> (String, Verdict
         None => format!("seq-{sequence}"),
     };
     let verdict = match result {
-        Ok(answer) if answer.problems.iter().any(|p| matches!(p.rule, ContractRule::Unavailable { .. })) => {
-            let first = answer.problems.iter().find(|p| matches!(p.rule, ContractRule::Unavailable { .. })).map(ToString::to_string).unwrap_or_default();
-            Verdict::Retry(ErrorBody::new("unavailable", first))
-        }
-        Ok(mut answer) => {
-            answer.id = Some(id.unwrap_or_else(|| event.clone().into()));
-            Verdict::Answer(serde_json::to_vec(&answer).unwrap_or_default())
-        }
+        Ok(mut answer) => match answer.problems.iter().find(|p| unavailable(p)) {
+            Some(p) => Verdict::Retry(ErrorBody::new("unavailable", p.to_string())),
+            None => {
+                answer.id = Some(id.unwrap_or_else(|| event.clone().into()));
+                Verdict::Answer(serde_json::to_vec(&answer).unwrap_or_default())
+            }
+        },
         Err(e) if matches!(e.error.kind.as_str(), "not_loaded" | "server" | "store" | "unavailable") => Verdict::Retry(e),
-        Err(mut e) if e.error.rows.iter().any(|p| matches!(p.rule, ContractRule::Unavailable { .. })) => {
+        Err(mut e) if e.error.rows.iter().any(unavailable) => {
             // Every row failed, some because a source was down: that is
             // what to retry for, and what a dead letter will say.
             e.error.kind = "unavailable".into();
@@ -415,4 +414,9 @@ fn judge(registry: &Registry, payload: &[u8], sequence: u64) -> (String, Verdict
         Err(e) => Verdict::Dead(e),
     };
     (event, verdict)
+}
+
+/// Whether a row failed because a feature source could not be read.
+fn unavailable(p: &crate::rows::RowError) -> bool {
+    matches!(p.rule, ContractRule::Unavailable { .. })
 }
