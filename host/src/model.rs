@@ -15,7 +15,7 @@ use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::pool::Pool;
 use crate::rows::{Row, RowError};
 use crate::schema::{OutputFault, Schema};
-use crate::sandbox::{Instance, Runtime, SandboxError, StartError, State};
+use crate::sandbox::{self, Instance, Runtime, SandboxError, StartError, State};
 use crate::wasi::{self, WasiPolicy};
 
 /// Whether instances are reused between calls.
@@ -65,6 +65,10 @@ pub enum LoadError {
     /// The component's exports do not match the `estimator` world.
     #[error("the component does not implement the paddock:model/estimator world: {0}")]
     World(#[source] ToolError),
+    /// The images new instances start their memory from could not be made
+    /// (on Linux: a sealed memfd per memory), even after a few attempts.
+    #[error("the model's initial memory image could not be made: {0}")]
+    MemoryImage(#[source] ToolError),
     /// The first instance failed to start.
     #[error("the model failed to start: {0}")]
     Start(StartError),
@@ -402,6 +406,7 @@ impl Model {
         }
         .map_err(LoadError::Compile)?;
         let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
+        sandbox::make_memory_images(&component).map_err(LoadError::MemoryImage)?;
         let who: Arc<str> = artifact.digest().to_string().into();
         let (mut first, contract) =
             Instance::start(runtime, &pre, limits, artifact.params(), true, options.wasi.as_ref(), &who)

@@ -206,6 +206,32 @@ impl Runtime {
     }
 }
 
+/// Makes the copy-on-write images every instance of `component` starts
+/// from, before the first instance needs them.
+///
+/// On Linux each image is a sealed memfd. Sealing it fails with `EBUSY`
+/// while the kernel still holds a transient reference to a page just
+/// written (seen under load on a busy 2-core machine), so a failure is
+/// tried again a few times, pausing a little longer each time, before it
+/// is reported.
+///
+/// # Errors
+/// wasmtime's last error when every attempt failed.
+pub(crate) fn make_memory_images(component: &wasmtime::component::Component) -> Result<(), ToolError> {
+    const ATTEMPTS: u32 = 5;
+    let mut attempt = 1;
+    loop {
+        match component.initialize_copy_on_write_image() {
+            Ok(()) => return Ok(()),
+            Err(e) if attempt == ATTEMPTS => return Err(e.into()),
+            Err(_) => {
+                std::thread::sleep(Duration::from_millis(10 << attempt));
+                attempt += 1;
+            }
+        }
+    }
+}
+
 fn engine_config(rc: &RuntimeConfig, pooling: bool) -> Config {
     let mut c = Config::new();
     c.epoch_interruption(true);
