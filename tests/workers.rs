@@ -13,8 +13,8 @@ use std::time::Duration;
 use async_nats::jetstream;
 use futures_util::StreamExt;
 use paddock_host::registry::artifact_path;
-use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions};
-use paddock_host::{Registry, RegistryOptions, Runtime};
+use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions, WorkerSummary};
+use paddock_host::{Limits, ModelOptions, Registry, RegistryOptions, Runtime};
 use paddock_tests::{NatsServer, line_artifact, write_atomically};
 use semver::Version;
 
@@ -36,6 +36,76 @@ async fn connect(server: &NatsServer, options: &WorkerOptions) -> (async_nats::C
     (client, js)
 }
 
+/// In-process workers sharing the consumer, stopped together.
+struct Workers {
+    counts: Vec<Arc<WorkerCounts>>,
+    stop: tokio::sync::watch::Sender<bool>,
+    tasks: Vec<tokio::task::JoinHandle<Result<(), worker::WorkerError>>>,
+}
+
+impl Workers {
+    fn start(n: usize, registry: &Registry, options: &WorkerOptions) -> Workers {
+        let (stop, stopped) = tokio::sync::watch::channel(false);
+        let counts: Vec<Arc<WorkerCounts>> = (0..n).map(|_| Arc::new(WorkerCounts::default())).collect();
+        let tasks = counts
+            .iter()
+            .map(|c| {
+                let (registry, options, c, mut stopped) = (registry.clone(), options.clone(), c.clone(), stopped.clone());
+                tokio::spawn(async move {
+                    worker::run(registry, options, c, async move {
+                        let _ = stopped.wait_for(|s| *s).await;
+                    })
+                    .await
+                })
+            })
+            .collect();
+        Workers { counts, stop, tasks }
+    }
+
+    /// Tells every worker to stop, waits for them, and returns their counts.
+    async fn stop(self) -> Vec<WorkerSummary> {
+        self.stop.send(true).unwrap();
+        for t in self.tasks {
+            t.await.unwrap().unwrap();
+        }
+        self.counts.iter().map(|c| c.summary()).collect()
+    }
+}
+
+/// Publishes `e-{i}` (`x` = i) for each i, its acks awaited a thousand at a time.
+async fn publish_line_events(js: &jetstream::Context, subject: &str, range: std::ops::Range<usize>) {
+    let mut confirms = Vec::with_capacity(1000);
+    for i in range {
+        let event = format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#);
+        confirms.push(js.publish(subject.to_owned(), event.into()).await.unwrap());
+        if confirms.len() == 1000 {
+            for c in confirms.drain(..) {
+                c.await.unwrap();
+            }
+        }
+    }
+    for c in confirms {
+        c.await.unwrap();
+    }
+}
+
+/// Every message stored on `subject` of `stream`, read from the start, as
+/// JSON; waits until there are `count`.
+async fn stored(js: &jetstream::Context, stream: &str, subject: &str, count: usize) -> Vec<serde_json::Value> {
+    let stream = js.get_stream(stream).await.unwrap();
+    let consumer = stream
+        .create_consumer(jetstream::consumer::pull::OrderedConfig { filter_subject: subject.to_owned(), ..Default::default() })
+        .await
+        .unwrap();
+    let mut messages = consumer.messages().await.unwrap();
+    let mut out = Vec::with_capacity(count);
+    while out.len() < count {
+        let m = tokio::time::timeout(Duration::from_secs(120), messages.next()).await.expect("stored messages keep coming").unwrap().unwrap();
+        out.push(serde_json::from_slice(&m.payload).unwrap());
+    }
+    out
+}
+
 /// 2 000 good events and 3 bad ones through two workers sharing the
 /// consumer: one answer per good event, with its value; one dead letter
 /// per bad one, naming its error; both workers did some of the work; the
@@ -49,20 +119,7 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // Read answers and dead letters as they are published.
     let mut answers = client.subscribe(options.answers.clone()).await.unwrap();
     let mut dead = client.subscribe(options.dead_letters.clone()).await.unwrap();
-    let counts: Vec<Arc<WorkerCounts>> = (0..2).map(|_| Arc::new(WorkerCounts::default())).collect();
-    let (stop, stopped) = tokio::sync::watch::channel(false);
-    let workers: Vec<_> = counts
-        .iter()
-        .map(|c| {
-            let (registry, options, c, mut stopped) = (registry.clone(), options.clone(), c.clone(), stopped.clone());
-            tokio::spawn(async move {
-                worker::run(registry, options, c, async move {
-                    let _ = stopped.wait_for(|s| *s).await;
-                })
-                .await
-            })
-        })
-        .collect();
+    let workers = Workers::start(2, &registry, &options);
 
     // Both workers are waiting on the consumer before any event is there,
     // so both get some.
@@ -76,10 +133,7 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
     let good = 2_000;
-    for i in 0..good {
-        let event = format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#);
-        js.publish(options.events.clone(), event.into()).await.unwrap().await.unwrap();
-    }
+    publish_line_events(&js, &options.events, 0..good).await;
     let bad = [r#"{"id": "b-json", "model": "m", "row": {"x": 1"#, r#"{"id": "b-model", "model": "nope", "row": {"x": 1}}"#, r#"{"id": "b-row", "model": "m", "row": {"x": "seven"}}"#];
     for b in bad {
         js.publish(options.events.clone(), b.into()).await.unwrap().await.unwrap();
@@ -99,10 +153,7 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
         let d: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
         letters.insert(d["event"].as_str().unwrap_or_default().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned());
     }
-    stop.send(true).unwrap();
-    for w in workers {
-        w.await.unwrap().unwrap();
-    }
+    let summaries = workers.stop().await;
 
     for i in 0..good {
         assert_eq!(seen[&format!("e-{i}")], 2.0 * i as f64 + 1.0, "event e-{i}");
@@ -113,7 +164,6 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
         letters,
         [("seq-2001", "bad_request"), ("b-model", "unknown_model"), ("b-row", "invalid_rows")].map(|(k, v)| (k.to_owned(), v.to_owned())).into_iter().collect()
     );
-    let summaries: Vec<_> = counts.iter().map(|c| c.summary()).collect();
     assert_eq!(summaries.iter().map(|s| s.answered).sum::<u64>(), good as u64, "{summaries:?}");
     assert_eq!(summaries.iter().map(|s| s.dead_lettered).sum::<u64>(), 3, "{summaries:?}");
     assert!(summaries.iter().all(|s| s.answered > 0), "both workers answered some: {summaries:?}");
@@ -140,14 +190,9 @@ async fn an_event_whose_source_is_down_comes_back_then_is_dead_lettered() {
     let (client, js) = connect(&server, &options).await;
     let mut dead = client.subscribe(options.dead_letters.clone()).await.unwrap();
     js.publish(options.events.clone(), r#"{"id": "plug-in-7", "model": "m", "context": {"site": "north-1"}, "row": {}}"#.into()).await.unwrap().await.unwrap();
-    let counts = Arc::new(WorkerCounts::default());
-    let (stop, mut stopped) = tokio::sync::watch::channel(false);
-    let worker = tokio::spawn(worker::run(registry, options, counts.clone(), async move {
-        let _ = stopped.wait_for(|s| *s).await;
-    }));
+    let workers = Workers::start(1, &registry, &options);
     let m = tokio::time::timeout(Duration::from_secs(120), dead.next()).await.expect("the event is dead-lettered").unwrap();
-    stop.send(true).unwrap();
-    worker.await.unwrap().unwrap();
+    let s = workers.stop().await[0];
     let d: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
     assert_eq!(d["event"], "plug-in-7", "{d}");
     assert_eq!(d["deliveries"], 3, "{d}");
@@ -155,6 +200,147 @@ async fn an_event_whose_source_is_down_comes_back_then_is_dead_lettered() {
     let message = d["error"]["message"].as_str().unwrap();
     assert!(message.starts_with("gave up after 3 deliveries: row 1, feature `x` = absent: source unavailable: feature `x`: source `live` could not be read for key `site:north-1`"), "{message}");
     assert_eq!(d["payload"]["context"]["site"], "north-1", "the original event rides along: {d}");
-    let s = counts.summary();
     assert_eq!((s.events, s.retried, s.redelivered, s.dead_lettered, s.answered), (3, 2, 2, 1, 0), "{s:?}");
+}
+
+/// The NATS server stops (SIGTERM, as in a rolling restart) and starts
+/// again on the same port and storage while two workers are half-way
+/// through 6 000 events: the workers reconnect by themselves and finish;
+/// the answers stream holds exactly one answer per event, each with its
+/// value.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn workers_ride_out_a_server_restart_and_lose_nothing() {
+    let mut server = NatsServer::start();
+    let (_dir, registry) = store();
+    // Deliveries are not spent while the server is away; a short ack wait
+    // brings back soon an event whose ack was lost with the connection.
+    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ack_wait: Duration::from_secs(2), max_deliver: 50, ..WorkerOptions::default() };
+    let (client, js) = connect(&server, &options).await;
+    let events = 6_000;
+    publish_line_events(&js, &options.events, 0..events).await;
+    let mut answers = client.subscribe(options.answers.clone()).await.unwrap();
+    let workers = Workers::start(2, &registry, &options);
+    for _ in 0..events / 3 {
+        tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers come").unwrap();
+    }
+    server.stop_gracefully();
+    server.restart();
+
+    // The test's own client reconnects too; read back what is stored.
+    let stored = stored(&js, &options.answers_stream, &options.answers, events).await;
+    let summaries = workers.stop().await;
+    let mut seen = BTreeMap::new();
+    for a in &stored {
+        let id = a["id"].as_str().unwrap().to_owned();
+        assert!(seen.insert(id.clone(), a["estimates"][0]["y"].as_f64().unwrap()).is_none(), "a second stored answer to {id}");
+    }
+    for i in 0..events {
+        assert_eq!(seen.get(&format!("e-{i}")), Some(&(2.0 * i as f64 + 1.0)), "event e-{i}");
+    }
+    let mut answers_stream = js.get_stream(&options.answers_stream).await.unwrap();
+    assert_eq!(answers_stream.info().await.unwrap().state.messages, events as u64, "nothing stored twice, nothing dead-lettered");
+    assert!(summaries.iter().map(|s| s.answered).sum::<u64>() >= events as u64, "{summaries:?}");
+}
+
+/// A burst of bad events (not JSON, no model, an unknown model, rows that
+/// break the contract) and events for a model that spins until its 200 ms deadline,
+/// among 600 good events: each bad or spinning event is dead-lettered with
+/// its reason, once, and every good event is answered.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows() {
+    let server = NatsServer::start();
+    let dir = tempfile::tempdir().unwrap();
+    write_atomically(&artifact_path(dir.path(), "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    // The hand-written fixture in mode 1: `score` never returns.
+    let spin = paddock_host::pack(&paddock_tests::fixture("affine.wat"), Some(&[1]), None).unwrap();
+    write_atomically(&artifact_path(dir.path(), "affine", &Version::new(1, 0, 0)), &spin);
+    write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n");
+    let limits = Limits { deadline: Duration::from_millis(200), ..Limits::default() };
+    let registry_options = RegistryOptions { usage_flush: None, model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), registry_options).unwrap();
+    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 2, ..WorkerOptions::default() };
+    let (_client, js) = connect(&server, &options).await;
+    let workers = Workers::start(2, &registry, &options);
+
+    // Good events, then the burst, then good events again.
+    publish_line_events(&js, &options.events, 0..300).await;
+    let mut expected = BTreeMap::new();
+    for k in 0..30 {
+        let (id, event, kind) = match k % 5 {
+            0 => (format!("seq-{}", 301 + k), format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": 1"#), "bad_request"),
+            1 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "nope", "row": {{"x": 1}}}}"#), "unknown_model"),
+            2 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": "seven"}}}}"#), "invalid_rows"),
+            3 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "rows": [{{"x": 1}}]}}"#), "bad_request"),
+            _ => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "affine", "row": {{"x": 1}}}}"#), "limit"),
+        };
+        js.publish(options.events.clone(), event.into()).await.unwrap().await.unwrap();
+        expected.insert(id, kind.to_owned());
+    }
+    publish_line_events(&js, &options.events, 300..600).await;
+
+    let answers = stored(&js, &options.answers_stream, &options.answers, 600).await;
+    let letters = stored(&js, &options.answers_stream, &options.dead_letters, 30).await;
+    let summaries = workers.stop().await;
+    let mut seen = BTreeMap::new();
+    for a in &answers {
+        seen.insert(a["id"].as_str().unwrap().to_owned(), a["estimates"][0]["y"].as_f64().unwrap());
+    }
+    for i in 0..600 {
+        assert_eq!(seen.get(&format!("e-{i}")), Some(&(2.0 * i as f64 + 1.0)), "event e-{i}");
+    }
+    let got: BTreeMap<String, String> = letters.iter().map(|d| (d["event"].as_str().unwrap().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned())).collect();
+    assert_eq!(got, expected);
+    for d in letters.iter().filter(|d| d["error"]["kind"] == "limit") {
+        assert_eq!(d["error"]["limit"], "deadline", "{d}");
+        assert_eq!(d["deliveries"], 1, "a model fault is not retried: {d}");
+        assert_eq!(d["payload"]["model"], "affine", "{d}");
+    }
+    let mut answers_stream = js.get_stream(&options.answers_stream).await.unwrap();
+    assert_eq!(answers_stream.info().await.unwrap().state.messages, 630);
+    assert_eq!(summaries.iter().map(|s| s.dead_lettered).sum::<u64>(), 30, "{summaries:?}");
+}
+
+/// The routed version changes while two workers are at work: 2 000 events
+/// are published, `m` is swapped from 1.0.0 (y = 2x + 1) to 2.0.0
+/// (y = 3x + 1) once 500 are answered, then 2 000 more are published. No
+/// event fails; every answer's value is its version's line at `x`; the
+/// first 500 answered came from 1.0.0 and every event published after the
+/// swap from 2.0.0.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_version_swapped_mid_run_answers_from_the_next_event_on() {
+    let server = NatsServer::start();
+    let (dir, registry) = store();
+    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ..WorkerOptions::default() };
+    let (client, js) = connect(&server, &options).await;
+    let mut answers = client.subscribe(options.answers.clone()).await.unwrap();
+    publish_line_events(&js, &options.events, 0..2_000).await;
+    let workers = Workers::start(2, &registry, &options);
+    for _ in 0..500 {
+        tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers come").unwrap();
+    }
+    write_atomically(&artifact_path(dir.path(), "m", &Version::new(2, 0, 0)), &line_artifact("m", "2.0.0", 3.0, 1.0, Some(true)));
+    write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"2.0.0\"\n");
+    let reloader = registry.clone();
+    tokio::task::spawn_blocking(move || reloader.reload().unwrap()).await.unwrap();
+    publish_line_events(&js, &options.events, 2_000..4_000).await;
+
+    let stored = stored(&js, &options.answers_stream, &options.answers, 4_000).await;
+    let summaries = workers.stop().await;
+    let mut versions = BTreeMap::new();
+    for (n, a) in stored.iter().enumerate() {
+        let id = a["id"].as_str().unwrap();
+        let x: f64 = id.strip_prefix("e-").unwrap().parse().unwrap();
+        let version = a["version"].as_str().unwrap().to_owned();
+        let slope = if version == "1.0.0" { 2.0 } else { 3.0 };
+        assert_eq!(a["estimates"][0]["y"].as_f64(), Some(slope * x + 1.0), "{a}");
+        if n < 500 {
+            assert_eq!(version, "1.0.0", "answered before the swap: {a}");
+        }
+        if x >= 2_000.0 {
+            assert_eq!(version, "2.0.0", "published after the swap: {a}");
+        }
+        assert!(versions.insert(id.to_owned(), version).is_none(), "a second answer to {id}");
+    }
+    assert_eq!(versions.len(), 4_000);
+    assert_eq!(summaries.iter().map(|s| s.dead_lettered + s.retried).sum::<u64>(), 0, "{summaries:?}");
 }

@@ -321,6 +321,16 @@ impl NatsServer {
         kill(&mut self.child);
     }
 
+    /// Stops it as an operator would (SIGTERM: JetStream writes out what
+    /// it holds) and waits until it has exited.
+    pub fn stop_gracefully(&mut self) {
+        if let Some(mut c) = self.child.take() {
+            let status = std::process::Command::new("kill").args(["-TERM", &c.id().to_string()]).status().expect("kill runs");
+            assert!(status.success(), "kill -TERM {}", c.id());
+            c.wait().expect("nats-server exits");
+        }
+    }
+
     /// `nats://127.0.0.1:PORT`.
     pub fn url(&self) -> String {
         format!("nats://127.0.0.1:{}", self.port)
