@@ -153,7 +153,28 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
         let d: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
         letters.insert(d["event"].as_str().unwrap_or_default().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned());
     }
+    let counts = workers.counts.clone();
     let summaries = workers.stop().await;
+
+    // The first worker's /metrics: its own counters as counted, and the
+    // registry's per-version scoring.
+    let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+    let url = format!("http://{}/metrics", listener.local_addr().unwrap());
+    tokio::spawn(paddock_host::surface::http::serve(listener, worker::metrics_router(registry.clone(), counts[0].clone()), std::future::pending()));
+    let text = tokio::task::spawn_blocking(move || ureq::get(&url).call().unwrap().body_mut().read_to_string().unwrap()).await.unwrap();
+    let s = &summaries[0];
+    for line in [
+        format!("paddock_worker_events_total {}\n", s.events),
+        format!("paddock_worker_answered_total {}\n", s.answered),
+        format!("paddock_worker_dead_lettered_total {}\n", s.dead_lettered),
+        format!("paddock_worker_redelivered_total {}\n", s.redelivered),
+        format!("paddock_worker_pending {}\n", s.pending),
+    ] {
+        assert!(text.contains(&line), "{line} in {text}");
+    }
+    let calls: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} ")).expect("calls of m 1.0.0").parse().unwrap();
+    assert!(calls >= good as u64, "{calls} calls for {good} answers: {text}");
+    assert!(text.ends_with("# EOF\n"));
 
     for i in 0..good {
         assert_eq!(seen[&format!("e-{i}")], 2.0 * i as f64 + 1.0, "event e-{i}");

@@ -3,7 +3,8 @@
 //! with a temporary storage directory, stopped after): three workers share
 //! the consumer; one is killed with SIGKILL mid-run; every event is still
 //! answered exactly once, by the line model `y = 2x + 1` (values worked
-//! out here).
+//! out here). One worker serves its metrics; each stopped one writes its
+//! usage ledger.
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::Path;
@@ -21,14 +22,18 @@ fn store(dir: &Path) {
     write_atomically(&dir.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
 }
 
+/// A `paddock work` process; the second also serves its metrics on a
+/// free port, named on its first line of stdout.
 fn worker(store: &Path, state: &Path, url: &str, name: &str) -> Child {
+    let metrics: &[&str] = if name == "w1" { &["--metrics", "127.0.0.1:0"] } else { &[] };
     Command::new(env!("CARGO_BIN_EXE_paddock"))
         .args(["work", "--store"])
         .arg(store)
         .arg("--state")
         .arg(state)
         .args(["--nats", url, "--name", name, "--in-flight", "32", "--ack-wait-secs", "2", "--threads", "1"])
-        .stdout(Stdio::null())
+        .args(metrics)
+        .stdout(if metrics.is_empty() { Stdio::null() } else { Stdio::piped() })
         .stderr(Stdio::null())
         .spawn()
         .expect("paddock runs")
@@ -70,12 +75,18 @@ async fn three_workers_one_killed_answer_every_event_once() {
     let mut workers: Vec<Child> =
         (0..3).map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}"))).collect();
 
+    let mut first = String::new();
+    std::io::BufRead::read_line(&mut std::io::BufReader::new(workers[1].stdout.take().unwrap()), &mut first).unwrap();
+    let metrics = first.trim().strip_prefix("metrics on ").unwrap_or_else(|| panic!("the address first: {first}")).to_owned();
+
     let mut seen: BTreeMap<String, f64> = BTreeMap::new();
     let mut by: BTreeSet<String> = BTreeSet::new();
+    let mut by_w1 = 0u64;
     let mut killed = false;
     while seen.len() < EVENTS {
         let m = tokio::time::timeout(Duration::from_secs(300), answers.next()).await.expect("answers keep coming").unwrap();
         if let Some(w) = m.headers.as_ref().and_then(|h| h.get("Paddock-Worker")) {
+            by_w1 += u64::from(w.as_str() == "w1");
             by.insert(w.to_string());
         }
         let a: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
@@ -95,9 +106,18 @@ async fn three_workers_one_killed_answer_every_event_once() {
     assert_eq!(by, ["w0", "w1", "w2"].map(String::from).into_iter().collect(), "every worker answered some");
     let mut stream = js.get_stream("PADDOCK_ANSWERS").await.unwrap();
     assert_eq!(stream.info().await.unwrap().state.messages, EVENTS as u64, "one stored answer per event");
-    for w in &mut workers[1..] {
+    // w1's metrics count at least the answers seen from it (a redelivered
+    // event may be answered again after the last one read here).
+    let text = ureq::get(&metrics).call().unwrap().body_mut().read_to_string().unwrap();
+    let answered: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_worker_answered_total ")).expect("answered").parse().unwrap();
+    assert!(answered >= by_w1 && by_w1 > 0, "{answered} answered, {by_w1} seen: {text}");
+    let calls: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} ")).expect("calls of m").parse().unwrap();
+    assert!(calls >= by_w1, "{calls} calls, {by_w1} answers seen: {text}");
+    for (k, w) in workers.iter_mut().enumerate().skip(1) {
         let pid = w.id().to_string();
         assert!(Command::new("kill").args(["-TERM", &pid]).status().unwrap().success());
         assert!(w.wait().unwrap().success(), "a worker stops with 0 on SIGTERM");
+        let usage = paddock_host::registry::usage_path(&dir.path().join(format!("state-{k}")));
+        assert!(usage.exists(), "w{k} wrote its usage ledger to {}", usage.display());
     }
 }

@@ -2,11 +2,13 @@
 //! with the same consumer shares its events; each event's answer is
 //! published once, bad events and model faults go to dead-letter (see
 //! `paddock_host::surface::worker`). Watches the store like `serve`; stops
-//! on Ctrl-C or SIGTERM after the events in hand are answered and acked.
+//! on Ctrl-C or SIGTERM after the events in hand are answered and acked,
+//! and writes the usage ledger as `serve` does.
 
 use std::time::Duration;
 
 use anyhow::{Context, Result};
+use paddock_host::surface::http;
 use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions};
 
 use crate::Outcome;
@@ -57,6 +59,11 @@ pub struct Args {
     /// publishes [default: pid-<process id>].
     #[arg(long, value_name = "NAME")]
     name: Option<String>,
+    /// Serve `GET /metrics` (OpenMetrics: this worker's events, answers,
+    /// dead letters, redeliveries and the consumer's backlog, and per-model
+    /// scoring) on this address; the first line on stdout names it.
+    #[arg(long, value_name = "ADDR")]
+    metrics: Option<std::net::SocketAddr>,
     /// Seconds between rescans of the store (besides file-system events).
     #[arg(long, default_value_t = 30, value_name = "SECS")]
     rescan_secs: u64,
@@ -86,14 +93,33 @@ pub fn run(args: Args) -> Result<Outcome> {
     let counts = std::sync::Arc::new(WorkerCounts::default());
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     let url = options.url.clone();
-    runtime
-        .block_on(worker::run(registry.clone(), options, counts.clone(), crate::common::shutdown_signal("stopping: finishing the events in hand")))
-        .with_context(|| format!("working on {url}"))?;
+    runtime.block_on(async {
+        if let Some(addr) = args.metrics {
+            let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("listening on {addr}"))?;
+            // The first line on stdout is the address, for scripts that asked for port 0.
+            println!("metrics on http://{}/metrics", listener.local_addr()?);
+            use std::io::Write;
+            std::io::stdout().flush()?;
+            // Served until the runtime is dropped, after the worker stops.
+            tokio::spawn(http::serve(listener, worker::metrics_router(registry.clone(), counts.clone()), std::future::pending()));
+        }
+        worker::run(registry.clone(), options, counts.clone(), crate::common::shutdown_signal("stopping: finishing the events in hand"))
+            .await
+            .with_context(|| format!("working on {url}"))
+    })?;
+    drop(runtime);
     drop(watch);
+    let saved = registry.save_usage()?;
     let s = counts.summary();
     eprintln!(
-        "stopped: {} events, {} answered ({} already answered), {} dead-lettered, {} redelivered, {} left to come back",
-        s.events, s.answered, s.duplicates, s.dead_lettered, s.redelivered, s.retried
+        "stopped: {} events, {} answered ({} already answered), {} dead-lettered, {} redelivered, {} left to come back; usage written to {}",
+        s.events,
+        s.answered,
+        s.duplicates,
+        s.dead_lettered,
+        s.redelivered,
+        s.retried,
+        saved.display()
     );
     Ok(Outcome::Ok)
 }

@@ -138,8 +138,10 @@ fn sources(out: &mut String, sources: &[SourceUsage]) {
     }
 }
 
-/// Renders the ledger, the feature sources' counters and the registry's state.
-pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]) -> String {
+/// Renders the ledger, the feature sources' counters and the registry's
+/// state, then `surface`: the families of the surface serving them (whole
+/// `# TYPE` … lines, each ending in a newline), before the closing `# EOF`.
+pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage], surface: &str) -> String {
     let mut out = String::new();
     families(
         &mut out,
@@ -223,6 +225,7 @@ pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]
     for (state, n) in states {
         let _ = writeln!(out, "paddock_artifacts{{state=\"{state}\"}} {n}");
     }
+    out.push_str(surface);
     out.push_str("# EOF\n");
     out
 }
@@ -264,7 +267,7 @@ mod tests {
         c.lookup(crate::features::Outcome::Found);
         c.round_trip(crate::features::counts::Ended::TimedOut, std::time::Duration::from_millis(3));
         let sources = [c.report("live \"site\"", crate::features::SourceKind::Redis)];
-        let text = render(&usage, &status, &sources);
+        let text = render(&usage, &status, &sources, "# TYPE paddock_test_things gauge\npaddock_test_things 3\n");
         assert!(text.contains("paddock_lookups_total{source=\"live \\\"site\\\"\",outcome=\"found\"} 1\n"), "{text}");
         assert!(text.contains("paddock_source_timeouts_total{source=\"live \\\"site\\\"\"} 1\n"), "{text}");
         assert!(text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.0025\"} 0\n"), "{text}");
@@ -275,7 +278,7 @@ mod tests {
         assert!(text.contains(r#"le="0.0025"} 1"#), "{text}");
         assert!(text.contains("paddock_call_seconds_sum{model=\"a\\\"b\\\\c\\nd\",version=\"1.0.0\"} 0.5"), "{text}");
         assert!(text.contains("paddock_generation 7\n"), "{text}");
-        assert!(text.ends_with("# EOF\n"));
+        assert!(text.ends_with("paddock_test_things 3\n# EOF\n"), "the surface's own families come last: {text}");
         // Every family is declared once, before its samples.
         assert_eq!(text.matches("# TYPE paddock_calls counter").count(), 1);
     }

@@ -473,15 +473,14 @@ pub(crate) async fn ready(State(app): State<Arc<App>>) -> Response {
     responses((status = 200, description = "OpenMetrics text.", body = String, content_type = "application/openmetrics-text; version=1.0.0; charset=utf-8"))
 )]
 pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
-    let mut text = metrics::render(&app.registry.usage(), &app.registry.status(), &app.registry.source_usage());
-    // The server's own state, before the end marker.
+    // The server's own state.
     let gates = app.gates.read().unwrap_or_else(|e| e.into_inner()).len();
     let busy = app.options.score_threads.max(1) - app.pool.available_permits();
-    text.truncate(text.len() - "# EOF\n".len());
-    text.push_str(&format!(
+    let own = format!(
         "# TYPE paddock_serve_gates gauge\n# HELP paddock_serve_gates Models holding a concurrency gate: only models routed when a request named them.\npaddock_serve_gates {gates}\n\
-         # TYPE paddock_serve_score_threads_busy gauge\n# HELP paddock_serve_score_threads_busy Scoring threads running a sandbox call now.\npaddock_serve_score_threads_busy {busy}\n# EOF\n"
-    ));
+         # TYPE paddock_serve_score_threads_busy gauge\n# HELP paddock_serve_score_threads_busy Scoring threads running a sandbox call now.\npaddock_serve_score_threads_busy {busy}\n"
+    );
+    let text = metrics::render(&app.registry.usage(), &app.registry.status(), &app.registry.source_usage(), &own);
     (StatusCode::OK, [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)], text).into_response()
 }
 

@@ -160,7 +160,7 @@ pub struct WorkerSummary {
     pub redelivered: u64,
     /// Events left unacked after an infrastructure fault, to come back.
     pub retried: u64,
-    /// Events the consumer had not delivered yet, when last asked.
+    /// Events the consumer had not delivered yet, as of the last event taken.
     pub pending: u64,
 }
 
@@ -191,13 +191,27 @@ impl WorkerCounts {
             ("dead_lettered", "counter", "Events sent to dead-letter.", s.dead_lettered),
             ("redelivered", "counter", "Events delivered more than once.", s.redelivered),
             ("retried", "counter", "Events left unacked after an infrastructure fault.", s.retried),
-            ("pending", "gauge", "Events the consumer had not delivered yet, when last asked.", s.pending),
+            ("pending", "gauge", "Events the consumer had not delivered yet, as of the last event taken.", s.pending),
         ] {
             let suffix = if kind == "counter" { "_total" } else { "" };
             out.push_str(&format!("# TYPE paddock_worker_{name} {kind}\n# HELP paddock_worker_{name} {help}\npaddock_worker_{name}{suffix} {v}\n"));
         }
         out
     }
+}
+
+/// The worker's `GET /metrics`: the registry's families (per model
+/// version: calls, rows, errors, time, fuel; feature sources; artifacts)
+/// and the worker's own (`paddock_worker_*`), in the OpenMetrics text
+/// format. Serve it with [`super::http::serve`].
+#[cfg(feature = "http")]
+pub fn metrics_router(registry: Registry, counts: Arc<WorkerCounts>) -> axum::Router {
+    use axum::http::header;
+    let text = move || {
+        let text = crate::registry::metrics::render(&registry.usage(), &registry.status(), &registry.source_usage(), &counts.openmetrics());
+        ([(header::CONTENT_TYPE, crate::registry::metrics::CONTENT_TYPE)], text)
+    };
+    axum::Router::new().route("/metrics", axum::routing::get(move || std::future::ready(text())))
 }
 
 /// A dead letter: the event as it came, and why it was not answered.
@@ -278,7 +292,6 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
     let scoring = Arc::new(Semaphore::new(options.threads.max(1)));
     let options = Arc::new(options);
     let mut shutdown = std::pin::pin!(shutdown);
-    let mut ticks = 0u64;
     loop {
         let permit = tokio::select! {
             () = &mut shutdown => break,
@@ -302,12 +315,6 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
                 }
             }
         };
-        ticks += 1;
-        if ticks % 1024 == 1 {
-            if let Ok(info) = message.info() {
-                counts.pending.store(info.pending, Ordering::Relaxed);
-            }
-        }
         let (registry, js, options, counts, scoring) = (registry.clone(), js.clone(), options.clone(), counts.clone(), scoring.clone());
         tokio::spawn(async move {
             handle(&registry, &js, &options, &counts, &scoring, message).await;
@@ -322,7 +329,13 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
 
 async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOptions, counts: &WorkerCounts, scoring: &Arc<Semaphore>, message: jetstream::Message) {
     counts.events.fetch_add(1, Ordering::Relaxed);
-    let (deliveries, sequence) = message.info().map_or((1, 0), |i| (i.delivered, i.stream_sequence));
+    let (deliveries, sequence) = match message.info() {
+        Ok(i) => {
+            counts.pending.store(i.pending, Ordering::Relaxed);
+            (i.delivered, i.stream_sequence)
+        }
+        Err(_) => (1, 0),
+    };
     if deliveries > 1 {
         counts.redelivered.fetch_add(1, Ordering::Relaxed);
     }
