@@ -15,13 +15,12 @@ use futures_util::StreamExt;
 use paddock_host::registry::artifact_path;
 use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions, WorkerSummary};
 use paddock_host::{Limits, ModelOptions, Registry, RegistryOptions, Runtime};
-use paddock_tests::{NatsServer, line_artifact, write_atomically};
+use paddock_tests::{NatsServer, line_artifact, line_store, publish_line_events, write_atomically};
 use semver::Version;
 
 fn store() -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
-    write_atomically(&artifact_path(dir.path(), "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
-    write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    line_store(dir.path());
     let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
     (dir, registry)
 }
@@ -69,23 +68,6 @@ impl Workers {
             t.await.unwrap().unwrap();
         }
         self.counts.iter().map(|c| c.summary()).collect()
-    }
-}
-
-/// Publishes `e-{i}` (`x` = i) for each i, its acks awaited a thousand at a time.
-async fn publish_line_events(js: &jetstream::Context, subject: &str, range: std::ops::Range<usize>) {
-    let mut confirms = Vec::with_capacity(1000);
-    for i in range {
-        let event = format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#);
-        confirms.push(js.publish(subject.to_owned(), event.into()).await.unwrap());
-        if confirms.len() == 1000 {
-            for c in confirms.drain(..) {
-                c.await.unwrap();
-            }
-        }
-    }
-    for c in confirms {
-        c.await.unwrap();
     }
 }
 

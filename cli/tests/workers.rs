@@ -8,35 +8,21 @@
 
 use std::collections::{BTreeMap, BTreeSet};
 use std::path::Path;
-use std::process::{Child, Command, Stdio};
+use std::process::Child;
 use std::time::Duration;
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
-use paddock_tests::{NatsServer, line_artifact, write_atomically};
+use paddock_tests::{NatsServer, line_store, publish_line_events, terminate, work_process};
 
 const EVENTS: usize = 100_000;
-
-fn store(dir: &Path) {
-    write_atomically(&dir.join("m/1.0.0.wasm"), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
-    write_atomically(&dir.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
-}
 
 /// A `paddock work` process; the second also serves its metrics on a
 /// free port, named on its first line of stdout.
 fn worker(store: &Path, state: &Path, url: &str, name: &str) -> Child {
     let metrics: &[&str] = if name == "w1" { &["--metrics", "127.0.0.1:0"] } else { &[] };
-    Command::new(env!("CARGO_BIN_EXE_paddock"))
-        .args(["work", "--store"])
-        .arg(store)
-        .arg("--state")
-        .arg(state)
-        .args(["--nats", url, "--name", name, "--in-flight", "32", "--ack-wait-secs", "2", "--threads", "1"])
-        .args(metrics)
-        .stdout(if metrics.is_empty() { Stdio::null() } else { Stdio::piped() })
-        .stderr(Stdio::null())
-        .spawn()
-        .expect("paddock runs")
+    let extra = [&["--in-flight", "32", "--ack-wait-secs", "2", "--threads", "1"], metrics].concat();
+    work_process(Path::new(env!("CARGO_BIN_EXE_paddock")), store, state, url, name, &extra, !metrics.is_empty())
 }
 
 /// 100 000 events through three `paddock work` processes; the first is
@@ -49,7 +35,7 @@ async fn three_workers_one_killed_answer_every_event_once() {
     let server = NatsServer::start();
     let dir = tempfile::tempdir().unwrap();
     let store_dir = dir.path().join("store");
-    store(&store_dir);
+    line_store(&store_dir);
     // Room for every answer on the wire (a redelivered event's too), so
     // the subscription never drops one while this test reads.
     let client = async_nats::ConnectOptions::new().subscription_capacity(4 * EVENTS).connect(server.url()).await.unwrap();
@@ -58,20 +44,8 @@ async fn three_workers_one_killed_answer_every_event_once() {
         .await
         .unwrap();
     let mut answers = client.subscribe("paddock.answers").await.unwrap();
-    // Publish every event first (acks in flight together), then start the workers.
-    let mut confirms = Vec::with_capacity(EVENTS);
-    for i in 0..EVENTS {
-        let event = format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#);
-        confirms.push(js.publish("paddock.events", event.into()).await.unwrap());
-        if confirms.len() == 1000 {
-            for c in confirms.drain(..) {
-                c.await.unwrap();
-            }
-        }
-    }
-    for c in confirms {
-        c.await.unwrap();
-    }
+    // Publish every event first, then start the workers.
+    publish_line_events(&js, "paddock.events", 0..EVENTS).await;
     let mut workers: Vec<Child> =
         (0..3).map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}"))).collect();
 
@@ -114,9 +88,7 @@ async fn three_workers_one_killed_answer_every_event_once() {
     let calls: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} ")).expect("calls of m").parse().unwrap();
     assert!(calls >= by_w1, "{calls} calls, {by_w1} answers seen: {text}");
     for (k, w) in workers.iter_mut().enumerate().skip(1) {
-        let pid = w.id().to_string();
-        assert!(Command::new("kill").args(["-TERM", &pid]).status().unwrap().success());
-        assert!(w.wait().unwrap().success(), "a worker stops with 0 on SIGTERM");
+        assert!(terminate(w), "a worker stops with 0 on SIGTERM");
         let usage = paddock_host::registry::usage_path(&dir.path().join(format!("state-{k}")));
         assert!(usage.exists(), "w{k} wrote its usage ledger to {}", usage.display());
     }

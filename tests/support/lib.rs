@@ -154,6 +154,62 @@ pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, chec
     paddock_host::pack(&guest("paddock-model-linear"), Some(&blob), checks.as_ref()).expect("packs")
 }
 
+/// A store serving the line `y = 2x + 1` as model `m` 1.0.0 (with honest
+/// checks), routed by default: the worker tests' and bench's model.
+pub fn line_store(dir: &std::path::Path) {
+    write_atomically(&dir.join("m/1.0.0.wasm"), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(&dir.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+}
+
+/// The event `e-{i}` for the line model, with `x` = i.
+pub fn line_event(i: usize) -> String {
+    format!(r#"{{"id": "e-{i}", "model": "m", "row": {{"x": {i}}}}}"#)
+}
+
+/// Publishes [`line_event`] for each i of `range` to `subject`, awaiting
+/// the server's acks a thousand at a time.
+pub async fn publish_line_events(js: &async_nats::jetstream::Context, subject: &str, range: std::ops::Range<usize>) {
+    let mut confirms = Vec::with_capacity(1000);
+    for i in range {
+        confirms.push(js.publish(subject.to_owned(), line_event(i).into()).await.expect("publishes"));
+        if confirms.len() == 1000 {
+            for c in confirms.drain(..) {
+                c.await.expect("the server stores the event");
+            }
+        }
+    }
+    for c in confirms {
+        c.await.expect("the server stores the event");
+    }
+}
+
+/// A `paddock work` process (the binary at `bin`) on the store `store`,
+/// its state in `state`, against the server at `url`, named `name`, with
+/// `extra` arguments; output discarded but for stdout when `stdout` is set
+/// (piped).
+pub fn work_process(bin: &std::path::Path, store: &std::path::Path, state: &std::path::Path, url: &str, name: &str, extra: &[&str], stdout: bool) -> std::process::Child {
+    use std::process::Stdio;
+    std::process::Command::new(bin)
+        .args(["work", "--store"])
+        .arg(store)
+        .arg("--state")
+        .arg(state)
+        .args(["--nats", url, "--name", name])
+        .args(extra)
+        .stdout(if stdout { Stdio::piped() } else { Stdio::null() })
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("paddock runs")
+}
+
+/// Sends SIGTERM to a child process and waits for it; true when it then
+/// exited with 0.
+pub fn terminate(child: &mut std::process::Child) -> bool {
+    let pid = child.id().to_string();
+    assert!(std::process::Command::new("kill").args(["-TERM", &pid]).status().expect("kill runs").success(), "kill -TERM {pid}");
+    child.wait().expect("the child is reaped").success()
+}
+
 /// Writes a file by writing a temporary one beside it and renaming it into
 /// place, the way a store should be updated.
 pub fn write_atomically(path: &std::path::Path, bytes: &[u8]) {
@@ -325,9 +381,7 @@ impl NatsServer {
     /// it holds) and waits until it has exited.
     pub fn stop_gracefully(&mut self) {
         if let Some(mut c) = self.child.take() {
-            let status = std::process::Command::new("kill").args(["-TERM", &c.id().to_string()]).status().expect("kill runs");
-            assert!(status.success(), "kill -TERM {}", c.id());
-            c.wait().expect("nats-server exits");
+            terminate(&mut c);
         }
     }
 
