@@ -21,10 +21,10 @@ CRIT = os.path.join(ROOT, "target", "criterion")
 BATCH = 1024
 
 
-def bench_table(bench):
-    """Runs `cargo bench -p paddock-tests --bench BENCH` once and returns the
+def bench_table(bench, package="paddock-tests"):
+    """Runs `cargo bench -p PACKAGE --bench BENCH` once and returns the
     table it writes to target/paddock/bench-BENCH.md."""
-    subprocess.run(["cargo", "bench", "-q", "-p", "paddock-tests", "--bench", bench], cwd=ROOT, check=True,
+    subprocess.run(["cargo", "bench", "-q", "-p", package, "--bench", bench], cwd=ROOT, check=True,
                    stdout=subprocess.DEVNULL)
     with open(os.path.join(ROOT, f"target/paddock/bench-{bench}.md")) as f:
         return f.read().strip()
