@@ -143,7 +143,7 @@ impl LoadArgs {
             limits.artifact_bytes = mib << 20;
         }
         let isolation = if l.fresh { Isolation::FreshPerCall } else { Isolation::Reuse };
-        ModelOptions { limits, isolation, wasi: self.wasi.policy() }
+        ModelOptions { limits, isolation, wasi: self.wasi.policy(), ..ModelOptions::default() }
     }
 
     /// A runtime able to enforce these limits.

@@ -108,13 +108,25 @@ impl CodeCache {
 
     /// Where the entry for this artifact under this runtime lives.
     pub fn entry_path(&self, runtime: &Runtime, artifact: &Artifact) -> PathBuf {
+        self.key_path(runtime, artifact, &[], "code")
+    }
+
+    /// Where the entry for this artifact's primed component (see
+    /// [`crate::prime`]) under this runtime lives: the key also names the
+    /// pre-initializer and its snapshot format.
+    pub fn primed_path(&self, runtime: &Runtime, artifact: &Artifact) -> PathBuf {
+        self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "primed")
+    }
+
+    fn key_path(&self, runtime: &Runtime, artifact: &Artifact, tag: &[u8], extension: &str) -> PathBuf {
         let mut key = KeyHasher(Sha256::new());
         key.0.update(FORMAT);
+        key.0.update(tag);
         key.0.update(artifact.digest().0);
         key.0.update(crate::sandbox::WASMTIME_VERSION.as_bytes());
         runtime.engine().precompile_compatibility_hash().hash(&mut key);
         let hex = hex::encode(key.0.finalize());
-        self.dir.join(format!("{hex}.code"))
+        self.dir.join(format!("{hex}.{extension}"))
     }
 
     /// The compiled component for an artifact: from its entry if there is a
@@ -125,21 +137,33 @@ impl CodeCache {
     /// with the entry itself ([`EntryProblem`]) are reported in the
     /// [`CodeSource`], never fatal.
     pub fn component(&self, runtime: &Runtime, artifact: &Artifact) -> Result<(Component, CodeSource), ToolError> {
-        let path = self.entry_path(runtime, artifact);
+        self.entry(runtime, &self.entry_path(runtime, artifact), || compile(runtime, artifact))
+    }
+
+    /// The compiled primed component for an artifact: from its entry if
+    /// there is a sound one, otherwise made by `make` and written back.
+    ///
+    /// # Errors
+    /// Only `make`'s.
+    pub(crate) fn primed<E>(&self, runtime: &Runtime, artifact: &Artifact, make: impl FnOnce() -> Result<Component, E>) -> Result<(Component, CodeSource), E> {
+        self.entry(runtime, &self.primed_path(runtime, artifact), make)
+    }
+
+    fn entry<E>(&self, runtime: &Runtime, path: &Path, make: impl FnOnce() -> Result<Component, E>) -> Result<(Component, CodeSource), E> {
         let mut trouble = None;
-        match fs::read(&path) {
+        match fs::read(path) {
             Ok(bytes) => match load(runtime, &bytes) {
                 Ok(component) => return Ok((component, CodeSource::Cache)),
                 Err(problem) => {
-                    let _ = fs::remove_file(&path);
+                    let _ = fs::remove_file(path);
                     trouble = Some(format!("entry {} dropped: {problem}", path.display()));
                 }
             },
             Err(e) if e.kind() == std::io::ErrorKind::NotFound => {}
             Err(e) => trouble = Some(format!("entry {}: {e}", path.display())),
         }
-        let component = compile(runtime, artifact)?;
-        let source = match store(&path, &component) {
+        let component = make()?;
+        let source = match store(path, &component) {
             Ok(()) => match trouble {
                 None => CodeSource::CompiledAndCached,
                 Some(reason) => CodeSource::CompiledCacheFailed { reason },

@@ -5,6 +5,7 @@ use std::sync::Arc;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
+use wasmtime::component::Component;
 use crate::artifact::Artifact;
 use crate::digest::Digest;
 use crate::codecache::{self, CodeCache, CodeSource};
@@ -13,6 +14,7 @@ use crate::contract::{Contract, ContractError, Fault};
 use crate::tool_error::ToolError;
 use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::pool::Pool;
+use crate::prime::{self, PrimeError, PrimeState};
 use crate::rows::{Row, RowError};
 use crate::schema::{OutputFault, Schema};
 use crate::sandbox::{self, Instance, Runtime, SandboxError, StartError, State};
@@ -42,6 +44,25 @@ pub struct ModelOptions {
     /// Lets a model that imports WASI load into an empty WASI world. `None`
     /// (the default) refuses every import.
     pub wasi: Option<WasiPolicy>,
+    /// Whether new instances start from a snapshot taken after `init`
+    /// (see [`crate::prime`]).
+    pub priming: Priming,
+}
+
+/// When to prime a model: snapshot it after `init(params)` at load so new
+/// instances start initialized. Models that import WASI are never primed.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum Priming {
+    /// Never: each new instance runs `init(params)`.
+    Off,
+    /// When the model is loaded with [`Isolation::FreshPerCall`], where a
+    /// new instance serves every call. Default.
+    #[default]
+    WhenFresh,
+    /// Always: also warm instances made after a trap start primed.
+    Always,
 }
 
 /// Why a model could not be loaded.
@@ -330,6 +351,7 @@ struct Inner {
     schema: Schema,
     options: ModelOptions,
     code: CodeSource,
+    primed: PrimeState,
     idle: Pool<Instance>,
     who: Arc<str>,
 }
@@ -400,17 +422,43 @@ impl Model {
         }
         check_imports(artifact.imports(), options.wasi.as_ref())?;
         check_options(runtime, limits)?;
-        let (component, code) = match cache {
-            Some(cache) => cache.component(runtime, &artifact),
-            None => codecache::compile(runtime, &artifact).map(|c| (c, CodeSource::Compiled)),
-        }
-        .map_err(LoadError::Compile)?;
+        let wanted = match options.priming {
+            Priming::Off => false,
+            Priming::WhenFresh => options.isolation == Isolation::FreshPerCall,
+            Priming::Always => true,
+        };
+        let primed = match wanted {
+            false => Err(PrimeState::Off),
+            true if !artifact.imports().is_empty() => Err(PrimeState::Unprimed { reason: PrimeError::Wasi.to_string() }),
+            true => {
+                let make = || {
+                    let bytes = prime::prime(runtime, artifact.bytes(), artifact.params(), limits)?;
+                    Component::new(runtime.engine(), &bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()))
+                };
+                match cache {
+                    Some(cache) => cache.primed(runtime, &artifact, make),
+                    None => make().map(|c| (c, CodeSource::Compiled)),
+                }
+                .map_err(|e| PrimeState::Unprimed { reason: e.to_string() })
+            }
+        };
+        let (component, code, primed) = match primed {
+            Ok((component, code)) => (component, code, PrimeState::Primed),
+            Err(state) => {
+                let (component, code) = match cache {
+                    Some(cache) => cache.component(runtime, &artifact),
+                    None => codecache::compile(runtime, &artifact).map(|c| (c, CodeSource::Compiled)),
+                }
+                .map_err(LoadError::Compile)?;
+                (component, code, state)
+            }
+        };
         let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
         sandbox::make_memory_images(&component).map_err(LoadError::MemoryImage)?;
         let who: Arc<str> = artifact.digest().to_string().into();
+        let init = (primed != PrimeState::Primed).then(|| artifact.params());
         let (mut first, contract) =
-            Instance::start(runtime, &pre, limits, artifact.params(), true, options.wasi.as_ref(), &who)
-                .map_err(LoadError::Start)?;
+            Instance::start(runtime, &pre, limits, init, true, options.wasi.as_ref(), &who).map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
         // A contract is a promise: it must not change from one call to the next.
         if first.describe(runtime, limits).map_err(LoadError::Start)? != contract {
@@ -433,6 +481,7 @@ impl Model {
                 schema,
                 options,
                 code,
+                primed,
                 idle,
             }),
         })
@@ -461,6 +510,12 @@ impl Model {
     /// Where the model's compiled code came from.
     pub fn code_source(&self) -> &CodeSource {
         &self.inner.code
+    }
+
+    /// Whether new instances start from a primed component, and if one was
+    /// asked for but could not be made, why.
+    pub fn prime_state(&self) -> &PrimeState {
+        &self.inner.primed
     }
 
     /// The options the model was loaded with.
@@ -577,11 +632,12 @@ impl Model {
         }
         let verify = inner.options.isolation == Isolation::Reuse;
         let options = &inner.options;
+        let init = (inner.primed != PrimeState::Primed).then(|| inner.artifact.params());
         let (instance, contract) = Instance::start(
             &inner.runtime,
             &inner.pre,
             &options.limits,
-            inner.artifact.params(),
+            init,
             verify,
             options.wasi.as_ref(),
             &inner.who,

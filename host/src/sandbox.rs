@@ -362,7 +362,8 @@ pub enum StartError {
 }
 
 impl Instance {
-    /// Instantiates and calls `init(params)` under the init deadline, then
+    /// Instantiates and calls `init(params)` (unless `init` is `None`: a
+    /// primed component starts initialized) under the init deadline, then
     /// (when `describe` is set) `describe()`, and returns the instance with
     /// the contract it declared.
     ///
@@ -372,24 +373,13 @@ impl Instance {
         runtime: &Runtime,
         pre: &EstimatorPre<State>,
         limits: &Limits,
-        params: &[u8],
+        init: Option<&[u8]>,
         describe: bool,
         wasi: Option<&WasiPolicy>,
         who: &Arc<str>,
     ) -> Result<(Instance, Option<Contract>), StartError> {
-        let state = State {
-            memory_cap: limits.memory_bytes,
-            table_cap: limits.table_elements,
-            peak_memory: 0,
-            deadline: limits.init_deadline,
-            fuel: limits.init_fuel,
-            armed: Instant::now(),
-            wasi: wasi.map(WasiState::new),
-        };
-        let mut store = Store::new(runtime.engine(), state);
-        store.limiter(|s| s as &mut dyn ResourceLimiter);
-        arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
-        let started = Self::init(&mut store, runtime, pre, params, describe);
+        let mut store = init_store(runtime, limits, wasi);
+        let started = Self::init(&mut store, runtime, pre, init, describe);
         drain(&store, who);
         let (api, contract) = started?;
         Ok((Instance { store, api, who: who.clone() }, contract))
@@ -400,15 +390,17 @@ impl Instance {
         store: &mut Store<State>,
         runtime: &Runtime,
         pre: &EstimatorPre<State>,
-        params: &[u8],
+        init: Option<&[u8]>,
         describe: bool,
     ) -> Result<(Estimator, Option<Contract>), StartError> {
         let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
         let api = pre.instantiate(&mut *store).map_err(|e| fail(StartStep::Instantiate, store, e))?;
-        match api.call_init(&mut *store, params) {
-            Ok(Ok(())) => {}
-            Ok(Err(message)) => return Err(StartError::Refused(message)),
-            Err(e) => return Err(fail(StartStep::Init, store, e)),
+        if let Some(params) = init {
+            match api.call_init(&mut *store, params) {
+                Ok(Ok(())) => {}
+                Ok(Err(message)) => return Err(StartError::Refused(message)),
+                Err(e) => return Err(fail(StartStep::Init, store, e)),
+            }
         }
         let contract = match describe {
             true => Some(api.call_describe(&mut *store).map_err(|e| fail(StartStep::Describe, store, e))?),
@@ -456,6 +448,24 @@ impl Instance {
     }
 }
 
+/// A store for a new instance: its limiter, its WASI world when `wasi` is
+/// given, armed with the init deadline and fuel.
+pub(crate) fn init_store(runtime: &Runtime, limits: &Limits, wasi: Option<&WasiPolicy>) -> Store<State> {
+    let state = State {
+        memory_cap: limits.memory_bytes,
+        table_cap: limits.table_elements,
+        peak_memory: 0,
+        deadline: limits.init_deadline,
+        fuel: limits.init_fuel,
+        armed: Instant::now(),
+        wasi: wasi.map(WasiState::new),
+    };
+    let mut store = Store::new(runtime.engine(), state);
+    store.limiter(|s| s as &mut dyn ResourceLimiter);
+    arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
+    store
+}
+
 /// Writes what a WASI model printed during the last call to the log.
 fn drain(store: &Store<State>, who: &str) {
     if let Some(w) = &store.data().wasi {
@@ -464,7 +474,7 @@ fn drain(store: &Store<State>, who: &str) {
 }
 
 /// Sets the deadline and fuel for the next call; returns the fuel budget.
-fn arm(store: &mut Store<State>, runtime: &Runtime, deadline: Duration, fuel: Option<u64>) -> Option<u64> {
+pub(crate) fn arm(store: &mut Store<State>, runtime: &Runtime, deadline: Duration, fuel: Option<u64>) -> Option<u64> {
     store.data_mut().deadline = deadline;
     store.data_mut().fuel = fuel;
     if store.data().wasi.is_some() {

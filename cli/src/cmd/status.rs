@@ -5,7 +5,7 @@
 //! store.
 
 use anyhow::Result;
-use paddock_host::CodeSource;
+use paddock_host::{CodeSource, PrimeState};
 use paddock_host::registry::{ArtifactState, FeaturesState, RoutesState};
 
 use crate::Outcome;
@@ -53,11 +53,16 @@ pub fn run(args: Args) -> Result<Outcome> {
                         Some(CodeSource::CompiledCacheFailed { reason }) => format!("compiled ({reason})"),
                         None => "-".into(),
                     },
+                    match &a.primed {
+                        Some(PrimeState::Primed) => "yes".into(),
+                        Some(PrimeState::Unprimed { reason }) => format!("no: {reason}"),
+                        _ => "-".into(),
+                    },
                 ]
             })
             .collect();
         println!("store {} (generation {})\n", status.store.display(), status.generation);
-        print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code"], &rows));
+        print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows));
         match &status.routes {
             RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_host::registry::ROUTES_FILE),
             RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_host::registry::ROUTES_FILE),

@@ -18,6 +18,7 @@ use crate::codecache::CodeSource;
 use crate::digest::Digest;
 use crate::limits::LimitHit;
 use crate::model::{LoadError, ScoreError};
+use crate::prime::PrimeState;
 use crate::trust::{Admission, TrustError, VouchTextError};
 
 /// The stage at which an artifact was refused.
@@ -252,6 +253,8 @@ pub struct ArtifactStatus {
     pub checks: Option<String>,
     /// Where the served code came from (compiled or the code cache).
     pub code: Option<CodeSource>,
+    /// Whether new instances start from a snapshot taken after `init`.
+    pub primed: Option<PrimeState>,
 }
 
 /// Whether the routes file was taken.
@@ -407,6 +410,7 @@ pub(super) fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactSt
             None => "none carried".into(),
         }),
         code: Some(loaded.model.code_source().clone()),
+        primed: Some(loaded.model.prime_state().clone()),
     }
 }
 
@@ -421,6 +425,7 @@ pub(super) fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, 
         admission: None,
         checks: None,
         code: None,
+        primed: None,
     }
 }
 
