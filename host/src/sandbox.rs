@@ -27,7 +27,7 @@ use crate::wasi::{self, WasiPolicy, WasiState};
 pub const WASMTIME_VERSION: &str = env!("PADDOCK_WASMTIME_VERSION");
 
 /// Bytes of each instance slot's memory kept resident between instances.
-const KEEP_RESIDENT: usize = 256 << 10;
+const KEEP_RESIDENT: usize = 1 << 20;
 
 /// How often the runtime's clock ticks; deadlines are exact to one tick.
 pub const TICK: Duration = Duration::from_millis(1);
@@ -253,6 +253,12 @@ fn engine_config(rc: &RuntimeConfig, pooling: bool) -> Config {
         // page faults or TLB shootdowns (measured: 26 µs → 16 µs per fresh
         // single-row call). Costs up to this much resident memory per slot.
         p.linear_memory_keep_resident(KEEP_RESIDENT).table_keep_resident(KEEP_RESIDENT);
+        // Where the kernel can say which pages an instance dirtied (Linux
+        // 6.7 and later), reset only those, and keep the rest mapped: a
+        // primed 200-tree ensemble then starts without faulting in its
+        // nodes again (measured, fresh single-row call: 103 µs → 26 µs; a
+        // small linear model pays the scan, 5.0 µs → 6.3 µs).
+        p.pagemap_scan(wasmtime::Enabled::Auto);
         // Bounds the resident memory those kept pages add up to.
         p.max_unused_warm_slots(rc.warm_slots);
         c.allocation_strategy(InstanceAllocationStrategy::Pooling(p));

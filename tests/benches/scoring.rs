@@ -9,7 +9,10 @@
 //! - `single_warm`: one typed row end to end (validate, encode, call, check
 //!   outputs) on a warm instance;
 //! - `single_fresh`: the same with a fresh instance per call (pooling
-//!   allocator, pre-instantiated);
+//!   allocator, pre-instantiated, primed: each instance starts from the
+//!   snapshot taken after `init`);
+//! - `single_fresh_unprimed`: a fresh instance per call that runs
+//!   `init(params)` itself (the baseline priming is measured against);
 //! - `batch_1024`: 1024 dense rows through the sandbox;
 //! - `batch_nans_as_is_1024`: the same on a runtime that does not
 //!   canonicalize NaNs (the cost of bit-identical floats across machines);
@@ -25,7 +28,7 @@ use paddock_guest::{
     Bounds, Contract, Evaluate, Feature, Linear, LinearParams, Link, Output, Packaged, Trees, encode_params,
 };
 use paddock_host::model::Isolation;
-use paddock_host::{ModelOptions, Row, Runtime, RuntimeConfig};
+use paddock_host::{ModelOptions, PrimeState, Priming, Row, Runtime, RuntimeConfig};
 use paddock_tests::{guest, load, random_cells, random_ensemble};
 
 const FEATURES: usize = 9;
@@ -63,6 +66,8 @@ where
     let blob = encode_params(&Packaged { contract: contract(), params: params.clone() });
     let warm = load(&runtime, &guest(module), &blob, ModelOptions::default());
     let fresh = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, ..Default::default() });
+    assert_eq!(fresh.prime_state(), &PrimeState::Primed);
+    let unprimed = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, priming: Priming::Off, ..Default::default() });
     let uncanonical = load(&loose, &guest(module), &blob, ModelOptions::default());
     let native = E::build(params).unwrap();
     let cells = random_cells(3, BATCH, FEATURES, 0.0);
@@ -72,6 +77,7 @@ where
     g.throughput(Throughput::Elements(1));
     g.bench_function("single_warm", |b| b.iter(|| black_box(warm.score(std::slice::from_ref(black_box(&one))).unwrap())));
     g.bench_function("single_fresh", |b| b.iter(|| black_box(fresh.score(std::slice::from_ref(black_box(&one))).unwrap())));
+    g.bench_function("single_fresh_unprimed", |b| b.iter(|| black_box(unprimed.score(std::slice::from_ref(black_box(&one))).unwrap())));
     // Two threads sharing one model: time per call at full load (half the
     // single-thread figure would be perfect scaling on two cores).
     for (label, model) in [("single_warm_2_threads", &warm), ("single_fresh_2_threads", &fresh)] {
