@@ -28,8 +28,9 @@ def main():
         f"`python3 scripts/bench_guests.py`: one run of `cargo bench -p paddock-tests --bench guests`. "
         f"Machine: {cpu()}, {os.cpu_count()} cores.",
         "Cold load = compile + first instance + `init` + contract (median of 3); warm load = the same with",
-        "compiled code from the cache (median of 5); fresh instance = a one-row call on a new instance",
-        "(`Isolation::FreshPerCall`); peak memory = the instance's linear memory after a 256-row call;",
+        "compiled code from the cache (median of 5); primed load = a fresh-per-call load with the primed",
+        "component in the cache (median of 5); fresh instance = a one-row call on a new instance",
+        "(`Isolation::FreshPerCall`: primed where the model is, so without `init`); peak memory = the instance's linear memory after a 256-row call;",
         "1 row and per row are medians over warm instances. Python and JavaScript run under the default",
         "WASI policy. The ratio compares per-row cost with the Rust guest of the same model.",
         "",
@@ -37,7 +38,8 @@ def main():
         "",
         "Python and JavaScript carry their whole language runtime (CPython, SpiderMonkey) in the artifact,",
         "so they are large, compile for seconds once (then load from the code cache), and start a fresh",
-        "instance in milliseconds rather than microseconds: keep `Isolation::Reuse` (the default) for them.",
+        "instance in milliseconds rather than microseconds: they import WASI, so they are not primed, and",
+        "`Isolation::Reuse` (the default) suits them.",
         "The ONNX evaluator carries tract (every operator it implements) whatever the graph's size.",
         END,
     ]
