@@ -25,6 +25,12 @@ fn store() -> (tempfile::TempDir, Registry) {
     (dir, registry)
 }
 
+/// Options for a worker of `server` taking 16 events at a time, scoring on
+/// one thread.
+fn small(server: &NatsServer) -> WorkerOptions {
+    WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ..WorkerOptions::default() }
+}
+
 /// A client of the server, and the events stream made as the workers make it.
 async fn connect(server: &NatsServer, options: &WorkerOptions) -> (async_nats::Client, jetstream::Context) {
     let client = async_nats::connect(server.url()).await.unwrap();
@@ -96,7 +102,7 @@ async fn stored(js: &jetstream::Context, stream: &str, subject: &str, count: usi
 async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     let server = NatsServer::start();
     let (_dir, registry) = store();
-    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ..WorkerOptions::default() };
+    let options = small(&server);
     let (client, js) = connect(&server, &options).await;
     // Read answers and dead letters as they are published.
     let mut answers = client.subscribe(options.answers.clone()).await.unwrap();
@@ -107,10 +113,10 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // so both get some.
     let events = js.get_stream(&options.events_stream).await.unwrap();
     loop {
-        if let Ok(mut consumer) = events.get_consumer::<jetstream::consumer::pull::Config>(&options.consumer).await {
-            if consumer.info().await.unwrap().num_waiting >= 2 {
-                break;
-            }
+        if let Ok(mut consumer) = events.get_consumer::<jetstream::consumer::pull::Config>(&options.consumer).await
+            && consumer.info().await.unwrap().num_waiting >= 2
+        {
+            break;
         }
         tokio::time::sleep(Duration::from_millis(10)).await;
     }
@@ -217,7 +223,7 @@ async fn workers_ride_out_a_server_restart_and_lose_nothing() {
     let (_dir, registry) = store();
     // Deliveries are not spent while the server is away; a short ack wait
     // brings back soon an event whose ack was lost with the connection.
-    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ack_wait: Duration::from_secs(2), max_deliver: 50, ..WorkerOptions::default() };
+    let options = WorkerOptions { ack_wait: Duration::from_secs(2), max_deliver: 50, ..small(&server) };
     let (client, js) = connect(&server, &options).await;
     let events = 6_000;
     publish_line_events(&js, &options.events, 0..events).await;
@@ -261,7 +267,7 @@ async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows(
     let limits = Limits { deadline: Duration::from_millis(200), ..Limits::default() };
     let registry_options = RegistryOptions { usage_flush: None, model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
     let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), registry_options).unwrap();
-    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 2, ..WorkerOptions::default() };
+    let options = WorkerOptions { threads: 2, ..small(&server) };
     let (_client, js) = connect(&server, &options).await;
     let workers = Workers::start(2, &registry, &options);
 
@@ -313,7 +319,7 @@ async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows(
 async fn a_version_swapped_mid_run_answers_from_the_next_event_on() {
     let server = NatsServer::start();
     let (dir, registry) = store();
-    let options = WorkerOptions { url: server.url(), in_flight: 16, batch: 16, threads: 1, ..WorkerOptions::default() };
+    let options = small(&server);
     let (client, js) = connect(&server, &options).await;
     let mut answers = client.subscribe(options.answers.clone()).await.unwrap();
     publish_line_events(&js, &options.events, 0..2_000).await;

@@ -65,6 +65,35 @@ pub enum Priming {
     Always,
 }
 
+/// The primed component, when `options` ask for one and it can be made
+/// (or is in `cache`); otherwise what the model's [`PrimeState`] is.
+fn primed_component(runtime: &Runtime, artifact: &Artifact, options: &ModelOptions, cache: Option<&CodeCache>) -> Result<(Component, CodeSource), PrimeState> {
+    let wanted = match options.priming {
+        Priming::Off => false,
+        Priming::WhenFresh => options.isolation == Isolation::FreshPerCall,
+        Priming::Always => true,
+    };
+    if !wanted {
+        return Err(PrimeState::Off);
+    }
+    let unprimed = |e: PrimeError| PrimeState::Unprimed { reason: e.to_string() };
+    if !artifact.imports().is_empty() {
+        return Err(unprimed(PrimeError::Wasi));
+    }
+    let make = || prime::prime(runtime, artifact.bytes(), artifact.params(), &options.limits);
+    match cache {
+        Some(cache) => cache.primed(runtime, artifact, make),
+        None => make().map(|c| (c, CodeSource::Compiled)),
+    }
+    .map_err(unprimed)
+}
+
+/// The params a new instance's `init` is called with: none when it starts
+/// from a primed component.
+fn init_params<'a>(primed: &PrimeState, artifact: &'a Artifact) -> Option<&'a [u8]> {
+    (*primed != PrimeState::Primed).then(|| artifact.params())
+}
+
 /// Why a model could not be loaded.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
@@ -422,27 +451,7 @@ impl Model {
         }
         check_imports(artifact.imports(), options.wasi.as_ref())?;
         check_options(runtime, limits)?;
-        let wanted = match options.priming {
-            Priming::Off => false,
-            Priming::WhenFresh => options.isolation == Isolation::FreshPerCall,
-            Priming::Always => true,
-        };
-        let primed = match wanted {
-            false => Err(PrimeState::Off),
-            true if !artifact.imports().is_empty() => Err(PrimeState::Unprimed { reason: PrimeError::Wasi.to_string() }),
-            true => {
-                let make = || {
-                    let bytes = prime::prime(runtime, artifact.bytes(), artifact.params(), limits)?;
-                    Component::new(runtime.engine(), &bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()))
-                };
-                match cache {
-                    Some(cache) => cache.primed(runtime, &artifact, make),
-                    None => make().map(|c| (c, CodeSource::Compiled)),
-                }
-                .map_err(|e| PrimeState::Unprimed { reason: e.to_string() })
-            }
-        };
-        let (component, code, primed) = match primed {
+        let (component, code, primed) = match primed_component(runtime, &artifact, &options, cache) {
             Ok((component, code)) => (component, code, PrimeState::Primed),
             Err(state) => {
                 let (component, code) = match cache {
@@ -456,7 +465,7 @@ impl Model {
         let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
         sandbox::make_memory_images(&component).map_err(LoadError::MemoryImage)?;
         let who: Arc<str> = artifact.digest().to_string().into();
-        let init = (primed != PrimeState::Primed).then(|| artifact.params());
+        let init = init_params(&primed, &artifact);
         let (mut first, contract) =
             Instance::start(runtime, &pre, limits, init, true, options.wasi.as_ref(), &who).map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
@@ -632,7 +641,7 @@ impl Model {
         }
         let verify = inner.options.isolation == Isolation::Reuse;
         let options = &inner.options;
-        let init = (inner.primed != PrimeState::Primed).then(|| inner.artifact.params());
+        let init = init_params(&inner.primed, &inner.artifact);
         let (instance, contract) = Instance::start(
             &inner.runtime,
             &inner.pre,

@@ -80,16 +80,18 @@ pub enum PrimeError {
     Read(String),
 }
 
-/// Makes the primed component of `component` (an artifact's component
-/// bytes) with `params`, under the init limits of `limits`.
+/// Makes and compiles the primed component of `component` (an artifact's
+/// component bytes) with `params`, under the init limits of `limits`.
 ///
 /// # Errors
 /// [`PrimeError`] when it cannot be done.
-pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: &Limits) -> Result<Vec<u8>, PrimeError> {
+pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: &Limits) -> Result<Component, PrimeError> {
+    let compile = |bytes: &[u8]| Component::new(runtime.engine(), bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()));
     let wizer = wasmtime_wizer::Wizer::new();
     let (cx, instrumented) = wizer.instrument_component(component).map_err(|e| PrimeError::Shape(format!("{e:#}")))?;
-    let compiled = Component::new(runtime.engine(), &instrumented).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()))?;
+    let compiled = compile(&instrumented)?;
     let pre = runtime.prepare(&compiled, None).map_err(|e| PrimeError::Compile(e.to_string()))?;
+    crate::sandbox::make_memory_images(&compiled).map_err(|e| PrimeError::Init(e.to_string()))?;
     let mut store = crate::sandbox::init_store(runtime, limits, None);
     let instance = pre.instance_pre().instantiate(&mut store).map_err(|e| PrimeError::Init(format!("{e:#}")))?;
     let api = Estimator::new(&mut store, &instance).map_err(|e| PrimeError::Init(format!("{e:#}")))?;
@@ -105,7 +107,7 @@ pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: 
     if let Some(problem) = access.failed {
         return Err(PrimeError::Read(problem));
     }
-    primed.map_err(|e| PrimeError::Shape(format!("{e:#}")))
+    compile(&primed.map_err(|e| PrimeError::Shape(format!("{e:#}")))?)
 }
 
 /// Runs a future whose every await completes at once (the snapshot's
