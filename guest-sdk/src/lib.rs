@@ -70,6 +70,7 @@
 mod contract;
 mod exp;
 mod generic;
+mod lanes;
 mod linear;
 mod params;
 mod program;

@@ -18,14 +18,19 @@
 //!   canonicalize NaNs (the cost of bit-identical floats across machines);
 //! - `single_warm_2_threads` / `single_fresh_2_threads`: two threads
 //!   sharing one model, time per call;
-//! - `native_1024` / `native_single`: the same estimator code natively.
+//! - `native_1024` / `native_single`: the same estimator code natively;
+//! - `native_by_hand_1024`: a careful native implementation of the same
+//!   arithmetic written here, apart from the estimator code (the baseline
+//!   is whichever native is faster, so the sandbox is never measured
+//!   against a slow native).
 
 use std::hint::black_box;
 
 use criterion::{BenchmarkId, Criterion, Throughput, criterion_group, criterion_main};
 use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_guest::{
-    Bounds, Contract, Evaluate, Feature, Linear, LinearParams, Link, Output, Packaged, Trees, encode_params,
+    Bounds, Branch, Contract, Evaluate, Feature, Linear, LinearParams, Link, Node, Output, Packaged, Trees, TreesParams,
+    encode_params,
 };
 use paddock_host::model::Isolation;
 use paddock_host::{ModelOptions, PrimeState, Priming, Row, Runtime, RuntimeConfig};
@@ -53,12 +58,57 @@ fn linear_params() -> LinearParams {
     }
 }
 
+/// The linear model by hand: four rows per loop turn, each with its own
+/// sum, features in order (a known feature count, so the compiler unrolls
+/// it), absent inputs imputed.
+fn linear_by_hand(p: &LinearParams, cells: &[f64], out: &mut [f64]) {
+    let (w, fill, b) = (&p.weights[0][..FEATURES], &p.impute[..FEATURES], p.intercepts[0]);
+    for (x, o) in cells.chunks_exact(4 * FEATURES).zip(out.chunks_exact_mut(4)) {
+        let mut acc = [b; 4];
+        for j in 0..FEATURES {
+            for (r, a) in acc.iter_mut().enumerate() {
+                let v = x[r * FEATURES + j];
+                *a += w[j] * if v.is_nan() { fill[j] } else { v };
+            }
+        }
+        o.copy_from_slice(&acc);
+    }
+}
+
+/// The ensemble by hand: each row walks each tree's nodes as the params
+/// hold them, summing leaves in tree order.
+fn trees_by_hand(p: &TreesParams, cells: &[f64], out: &mut [f64]) {
+    for (x, o) in cells.chunks_exact(FEATURES).zip(out.iter_mut()) {
+        let mut sum = p.base[0];
+        for tree in &p.trees {
+            let mut i = 0;
+            sum += loop {
+                match tree.nodes[i] {
+                    Node::Leaf { value } => break value,
+                    Node::Split { feature, threshold, left, right, missing } => {
+                        let v = x[feature as usize];
+                        let go_left = if v.is_nan() { missing == Branch::Left } else { v < threshold };
+                        i = if go_left { left } else { right } as usize;
+                    }
+                    _ => unreachable!("random ensembles hold numeric splits and leaves"),
+                }
+            };
+        }
+        *o = sum;
+    }
+}
+
 fn row(cells: &[f64]) -> Row {
     cells.iter().enumerate().map(|(i, v)| (format!("f{i}"), *v)).collect()
 }
 
-fn bench_model<E: Evaluate>(c: &mut Criterion, name: &str, module: &str, params: E::Params)
-where
+fn bench_model<E: Evaluate>(
+    c: &mut Criterion,
+    name: &str,
+    module: &str,
+    params: E::Params,
+    by_hand: fn(&E::Params, &[f64], &mut [f64]),
+) where
     E::Params: Clone,
 {
     let runtime = Runtime::new().unwrap();
@@ -69,8 +119,17 @@ where
     assert_eq!(fresh.prime_state(), &PrimeState::Primed);
     let unprimed = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, priming: Priming::Off, ..Default::default() });
     let uncanonical = load(&loose, &guest(module), &blob, ModelOptions::default());
-    let native = E::build(params).unwrap();
+    let native = E::build(params.clone()).unwrap();
     let cells = random_cells(3, BATCH, FEATURES, 0.0);
+    // Both natives compute the sandbox's bits, or neither is a baseline.
+    let mut sdk = Array2::zeros((BATCH, 1));
+    native.evaluate(ArrayView2::from_shape((BATCH, FEATURES), &cells).unwrap(), sdk.view_mut());
+    let mut hand = vec![0.0; BATCH];
+    by_hand(&params, &cells, &mut hand);
+    let sandboxed = warm.score_cells(BATCH, &cells).unwrap();
+    for (r, ((s, h), b)) in sdk.iter().zip(&hand).zip(sandboxed.values()).enumerate() {
+        assert!(s.to_bits() == h.to_bits() && s.to_bits() == b.to_bits(), "{name} row {r}: {s} native, {h} by hand, {b} sandboxed");
+    }
     let one = row(&cells[..FEATURES]);
 
     let mut g = c.benchmark_group(name);
@@ -118,12 +177,19 @@ where
             black_box(out[[0, 0]])
         })
     });
+    g.bench_with_input(BenchmarkId::new("native_by_hand", BATCH), &cells, |b, cells| {
+        let mut out = vec![0.0; BATCH];
+        b.iter(|| {
+            by_hand(&params, black_box(cells), &mut out);
+            black_box(out[0])
+        })
+    });
     g.finish();
 }
 
 fn benches(c: &mut Criterion) {
-    bench_model::<Linear>(c, "linear", "paddock-model-linear", linear_params());
-    bench_model::<Trees>(c, "trees", "paddock-model-trees", random_ensemble(5, 200, 6, FEATURES as u32));
+    bench_model::<Linear>(c, "linear", "paddock-model-linear", linear_params(), linear_by_hand);
+    bench_model::<Trees>(c, "trees", "paddock-model-trees", random_ensemble(5, 200, 6, FEATURES as u32), trees_by_hand);
 }
 
 criterion_group!(scoring, benches);
