@@ -11,8 +11,14 @@ use std::sync::atomic::{AtomicUsize, Ordering};
 
 /// Idle values of type `T`, at most one per slot.
 pub(crate) struct Pool<T> {
-    slots: Box<[Mutex<Option<T>>]>,
+    slots: Box<[Slot<T>]>,
 }
+
+/// One slot, alone on its cache lines (128 bytes: a line pair, which
+/// x86-64 prefetches together), so threads on their own slots never
+/// contend for a line.
+#[repr(align(128))]
+struct Slot<T>(Mutex<Option<T>>);
 
 /// A small number unique to the calling thread, for spreading threads over slots.
 pub(crate) fn home() -> usize {
@@ -24,12 +30,12 @@ pub(crate) fn home() -> usize {
 impl<T> Pool<T> {
     /// A pool with `slots` slots (at least one).
     pub(crate) fn new(slots: usize) -> Self {
-        Pool { slots: (0..slots.max(1)).map(|_| Mutex::new(None)).collect() }
+        Pool { slots: (0..slots.max(1)).map(|_| Slot(Mutex::new(None))).collect() }
     }
 
     fn probe(&self) -> impl Iterator<Item = &Mutex<Option<T>>> {
         let start = home() % self.slots.len();
-        self.slots[start..].iter().chain(&self.slots[..start])
+        self.slots[start..].iter().chain(&self.slots[..start]).map(|slot| &slot.0)
     }
 
     /// Takes an idle value, looking at this thread's slot first.

@@ -3,12 +3,14 @@
 //! sandbox, and every output is checked by [`Schema::check_outputs`] before
 //! anything leaves the host.
 
-use std::collections::HashMap;
-
 use serde::Serialize;
 
 use crate::contract::{Bounds, Contract, ContractError, Domain, validate};
 use crate::rows::{ContractRule, Row, RowError, Value};
+
+/// Name lookups. Names come from the contract; a request only looks them
+/// up, so the hash needs speed rather than resistance to chosen keys.
+type HashMap<K, V> = std::collections::HashMap<K, V, foldhash::fast::RandomState>;
 
 /// A validated contract with its name lookups built: what row encoding uses.
 #[derive(Clone, Debug)]
@@ -33,7 +35,7 @@ impl Schema {
             .iter()
             .map(|f| match &f.domain {
                 Domain::Label(labels) => labels.iter().enumerate().map(|(i, l)| (l.clone(), i)).collect(),
-                _ => HashMap::new(),
+                _ => HashMap::default(),
             })
             .collect();
         let output_ranges = contract
@@ -108,8 +110,11 @@ impl Schema {
         // Seen-set as a bit mask for the common case, a vector beyond 64.
         let mut seen_small = 0u64;
         let mut seen_big = if features.len() > 64 { vec![false; features.len()] } else { Vec::new() };
-        for (name, value) in row.fields() {
-            let Some(i) = self.feature_index(name) else {
+        for (k, (name, value)) in row.fields().iter().enumerate() {
+            // Rows usually list features in contract order: try the field's
+            // own position before a lookup by name.
+            let here = features.get(k).is_some_and(|f| f.name == *name);
+            let Some(i) = (if here { Some(k) } else { self.feature_index(name) }) else {
                 fail(name, value, ContractRule::UnknownFeature);
                 continue;
             };
@@ -267,7 +272,12 @@ impl Schema {
         }
         // Fast pass: every value finite and in range (NaN fails both tests).
         let ranges = self.output_ranges();
-        let all_in = values.chunks_exact(ranges.len()).all(|row| row.iter().zip(ranges).all(|(&v, &(lo, hi))| v >= lo && v <= hi && v.is_finite()));
+        // Without short cuts, so the compiler can test several values at once.
+        let in_range = |v: f64, (lo, hi): (f64, f64)| (v >= lo) & (v <= hi) & v.is_finite();
+        let all_in = match *ranges {
+            [only] => values.iter().fold(true, |ok, &v| ok & in_range(v, only)),
+            _ => values.chunks_exact(ranges.len()).fold(true, |ok, row| ok & row.iter().zip(ranges).fold(true, |ok, (&v, &r)| ok & in_range(v, r))),
+        };
         if all_in {
             return Ok(());
         }
