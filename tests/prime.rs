@@ -9,8 +9,8 @@
 //! the same artifact loaded unprimed.
 
 use paddock_host::model::Isolation;
-use paddock_host::{Artifact, CodeCache, CodeSource, Model, ModelOptions, PrimeState, Priming, Row, Runtime, ScoreError};
-use paddock_tests::{demo_artifact, hostile_module, packed};
+use paddock_host::{Artifact, CodeCache, CodeSource, Model, ModelOptions, PrimeState, Priming, Row, Runtime, ScoreError, WasiPolicy};
+use paddock_tests::{demo_artifact, hostile_module, load_foreign, packed};
 
 /// State that only `init` sets, and that `score` changes: `init` adds the
 /// first params byte to `$seed` (a global) and to the f64 at 4096 in
@@ -135,4 +135,68 @@ fn a_component_that_cannot_be_primed_loads_unprimed_and_says_why() {
     let PrimeState::Unprimed { reason } = model.prime_state() else { panic!("{:?}", model.prime_state()) };
     assert!(reason.contains("table"), "{reason}");
     assert_eq!(model.score(&x(1.0)).unwrap().values(), &[3.0]);
+}
+
+fn wasi_options(isolation: Isolation, priming: Priming) -> ModelOptions {
+    ModelOptions { wasi: Some(WasiPolicy::default()), ..options(isolation, priming) }
+}
+
+/// Priming runs start-up and `init` with every import trapping, except
+/// the environment (empty in every WASI world paddock makes). A model
+/// whose `init` reaches further is not primed, the reason naming the
+/// import, and answers as an unprimed model does: the WASI probe
+/// (tests/guests/wasi_probe.py) prints from its `init`; Python's runtime
+/// (charge-taper-py, models/charge-taper) reads the environment, which is
+/// answered, and then draws random bytes; JavaScript's reads the monotonic
+/// clock. Their snapshots would freeze a random stream or a clock reading
+/// into every instance, or lack a handle new instances need.
+#[test]
+fn a_wasi_model_whose_init_reaches_outside_is_not_primed_and_the_reason_names_the_import() {
+    let runtime = Runtime::new().unwrap();
+    let cases = [
+        ("wasi-probe", "init calls `wasi:"),
+        ("charge-taper-py", "init calls `wasi:random/random@0.2.9#get-random-bytes`"),
+        ("charge-taper-js", "init calls `wasi:clocks/monotonic-clock@0.2.12#now`"),
+    ];
+    for (name, reason_starts) in cases {
+        let model = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::WhenFresh)).unwrap();
+        let PrimeState::Unprimed { reason } = model.prime_state() else { panic!("{name}: {:?}", model.prime_state()) };
+        assert!(reason.starts_with(reason_starts), "{name}: {reason}");
+        let rows: Vec<Row> = match model.artifact().checks().unwrap() {
+            Some(checks) => checks.cases.into_iter().map(|c| c.row).take(5).collect(),
+            None => vec![Row::new().with("sleep_ms", 0.0).with("print_bytes", 10.0)],
+        };
+        let unprimed = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::Off)).unwrap();
+        let bits = |m: &Model| -> Vec<u64> { m.score(&rows).unwrap().values().iter().map(|v| v.to_bits()).collect() };
+        assert_eq!(bits(&model), bits(&unprimed), "{name}");
+    }
+}
+
+/// A lasting reason not to prime (here, what `init` calls) is kept in the
+/// code cache beside the entries: the next load gives the same reason
+/// without compiling an instrumented copy of the component again. An
+/// unreadable note is no note: the load tries again.
+#[test]
+fn the_code_cache_remembers_why_a_model_cannot_be_primed() {
+    let runtime = Runtime::new().unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let cache = CodeCache::open(&dir.path().join("code")).unwrap();
+    let artifact = || paddock_tests::foreign_artifact("charge-taper-js");
+    let opts = wasi_options(Isolation::FreshPerCall, Priming::WhenFresh);
+    let first = Model::load_cached(&runtime, artifact(), opts.clone(), &cache).unwrap();
+    let notes: Vec<_> = std::fs::read_dir(dir.path().join("code"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.extension().is_some_and(|x| x == "unprimed"))
+        .collect();
+    assert_eq!(notes.len(), 1, "{notes:?}");
+    let PrimeState::Unprimed { reason } = first.prime_state() else { panic!("{:?}", first.prime_state()) };
+    assert_eq!(std::fs::read_to_string(&notes[0]).unwrap(), *reason);
+    let second = Model::load_cached(&runtime, artifact(), opts.clone(), &cache).unwrap();
+    assert_eq!(second.prime_state(), first.prime_state());
+    // A note that is not text is ignored, and replaced by a new attempt's.
+    std::fs::write(&notes[0], [0xff, 0xfe]).unwrap();
+    let third = Model::load_cached(&runtime, artifact(), opts, &cache).unwrap();
+    assert_eq!(third.prime_state(), first.prime_state());
+    assert_eq!(std::fs::read_to_string(&notes[0]).unwrap(), *reason);
 }

@@ -149,6 +149,23 @@ impl CodeCache {
         self.entry(runtime, &self.primed_path(runtime, artifact), make)
     }
 
+    /// Why this artifact could not be primed, when an earlier load found a
+    /// lasting reason (see [`crate::prime::PrimeError::is_lasting`]): the
+    /// attempt, which compiles an instrumented copy of the component, is
+    /// then not made again.
+    pub(crate) fn unprimable(&self, runtime: &Runtime, artifact: &Artifact) -> Option<String> {
+        let text = fs::read(self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "unprimed")).ok()?;
+        (text.len() <= MAX_REASON).then(|| String::from_utf8(text).ok()).flatten()
+    }
+
+    /// Remembers why this artifact cannot be primed. A failure to write is
+    /// not reported: the next load tries again.
+    pub(crate) fn remember_unprimable(&self, runtime: &Runtime, artifact: &Artifact, reason: &str) {
+        let path = self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "unprimed");
+        let end = reason.floor_char_boundary(MAX_REASON);
+        let _ = crate::atomic_file::write(&path, &reason.as_bytes()[..end]);
+    }
+
     fn entry<E>(&self, runtime: &Runtime, path: &Path, make: impl FnOnce() -> Result<Component, E>) -> Result<(Component, CodeSource), E> {
         let mut trouble = None;
         match fs::read(path) {
@@ -194,6 +211,9 @@ pub enum EntryProblem {
 }
 
 /// Compiles an artifact's component.
+/// The longest reason [`CodeCache::remember_unprimable`] keeps.
+const MAX_REASON: usize = 4096;
+
 pub(crate) fn compile(runtime: &Runtime, artifact: &Artifact) -> Result<Component, ToolError> {
     Ok(Component::new(runtime.engine(), artifact.bytes())?)
 }

@@ -50,7 +50,8 @@ pub struct ModelOptions {
 }
 
 /// When to prime a model: snapshot it after `init(params)` at load so new
-/// instances start initialized. Models that import WASI are never primed.
+/// instances start initialized. A model whose start-up or `init` calls an
+/// import (WASI) is not primed, and says why (see [`crate::prime`]).
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
 #[non_exhaustive]
@@ -77,15 +78,21 @@ fn primed_component(runtime: &Runtime, artifact: &Artifact, options: &ModelOptio
         return Err(PrimeState::Off);
     }
     let unprimed = |e: PrimeError| PrimeState::Unprimed { reason: e.to_string() };
-    if !artifact.imports().is_empty() {
-        return Err(unprimed(PrimeError::Wasi));
-    }
     let make = || prime::prime(runtime, artifact.bytes(), artifact.params(), &options.limits);
     match cache {
-        Some(cache) => cache.primed(runtime, artifact, make),
-        None => make().map(|c| (c, CodeSource::Compiled)),
+        Some(cache) => {
+            if let Some(reason) = cache.unprimable(runtime, artifact) {
+                return Err(PrimeState::Unprimed { reason });
+            }
+            cache.primed(runtime, artifact, make).map_err(|e| {
+                if e.is_lasting() {
+                    cache.remember_unprimable(runtime, artifact, &e.to_string());
+                }
+                unprimed(e)
+            })
+        }
+        None => make().map(|c| (c, CodeSource::Compiled)).map_err(unprimed),
     }
-    .map_err(unprimed)
 }
 
 /// The params a new instance's `init` is called with: none when it starts

@@ -16,11 +16,18 @@
 //! under the artifact's digest).
 //!
 //! What a snapshot may capture: only what `init` computed from the params.
-//! A model that imports WASI could read clocks, randomness or its
-//! environment during `init` and freeze them into every later instance, so
-//! such models are not primed (they run `init` on each new instance).
-//! Tables are not captured: a component whose code mutates tables is
-//! refused by the pre-initializer and loads unprimed.
+//! While priming, every import the component has answers with a trap. A
+//! model whose start-up or `init` calls any of them (a WASI model reading a
+//! clock, drawing randomness or printing) would freeze the outside world
+//! into every later instance, or leave a handle its new instances do not
+//! hold; it fails to prime and loads unprimed, the reason naming the import
+//! (it runs `init` on each new instance). A WASI model whose `init` calls
+//! nothing outside itself is primed: its `init` is then a function of its
+//! params and its own memory alone, and every new instance, primed or not,
+//! starts with a fresh WASI world (clocks and random streams at their
+//! start), so a primed instance's first call sees exactly what an unprimed
+//! one's would. Tables are not captured: a component whose code mutates
+//! tables is refused by the pre-initializer and loads unprimed.
 //!
 //! What this is not: a way to share state between calls. Each instance
 //! starts from the same image; what a call writes is its own copy.
@@ -31,7 +38,7 @@ use std::task::{Context, Poll, Waker};
 
 use serde::Serialize;
 use wasmtime::Store;
-use wasmtime::component::{Component, Instance, Lift, WasmList};
+use wasmtime::component::{Component, Instance, Lift, Linker, WasmList};
 
 use crate::bindings::Estimator;
 use crate::limits::Limits;
@@ -63,9 +70,11 @@ pub enum PrimeState {
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
 #[non_exhaustive]
 pub enum PrimeError {
-    /// The model imports WASI: `init` could read the world outside its params.
-    #[error("the model imports WASI, so its init could read more than its params")]
-    Wasi,
+    /// Starting the model or its `init` called an import (named): a
+    /// snapshot could freeze the world outside its params into every
+    /// instance.
+    #[error("init calls {0}, outside its params")]
+    Import(String),
     /// The pre-initializer cannot snapshot a component of this shape.
     #[error("the component cannot be snapshotted: {0}")]
     Shape(String),
@@ -80,6 +89,16 @@ pub enum PrimeError {
     Read(String),
 }
 
+impl PrimeError {
+    /// Whether the same artifact would fail the same way on every attempt
+    /// with this wasmtime: what it calls from `init`, or its shape. A
+    /// failed `init` (a deadline on a busy machine, say) or a failed read
+    /// may not recur.
+    pub fn is_lasting(&self) -> bool {
+        matches!(self, PrimeError::Import(_) | PrimeError::Shape(_))
+    }
+}
+
 /// Makes and compiles the primed component of `component` (an artifact's
 /// component bytes) with `params`, under the init limits of `limits`.
 ///
@@ -90,15 +109,26 @@ pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: 
     let wizer = wasmtime_wizer::Wizer::new();
     let (cx, instrumented) = wizer.instrument_component(component).map_err(|e| PrimeError::Shape(format!("{e:#}")))?;
     let compiled = compile(&instrumented)?;
-    let pre = runtime.prepare(&compiled, None).map_err(|e| PrimeError::Compile(e.to_string()))?;
+    // Every import traps but the few whose answer is the same in every
+    // instance: what init reads must come from its params.
+    let mut linker = Linker::<State>::new(runtime.engine());
+    let link = |e: wasmtime::Error| PrimeError::Compile(format!("{e:#}"));
+    let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
+    answer_constants(&mut linker, &imports).map_err(link)?;
+    linker.define_unknown_imports_as_traps(&compiled).map_err(link)?;
+    let pre = linker.instantiate_pre(&compiled).map_err(|e| PrimeError::Compile(format!("{e:#}")))?;
     crate::sandbox::make_memory_images(&compiled).map_err(|e| PrimeError::Init(e.to_string()))?;
     let mut store = crate::sandbox::init_store(runtime, limits, None);
-    let instance = pre.instance_pre().instantiate(&mut store).map_err(|e| PrimeError::Init(format!("{e:#}")))?;
+    let failed = |e: wasmtime::Error| match import_called(&e) {
+        Some(name) => PrimeError::Import(name),
+        None => PrimeError::Init(format!("{e:#}")),
+    };
+    let instance = pre.instantiate(&mut store).map_err(failed)?;
     let api = Estimator::new(&mut store, &instance).map_err(|e| PrimeError::Init(format!("{e:#}")))?;
     match api.call_init(&mut store, params) {
         Ok(Ok(())) => {}
         Ok(Err(refused)) => return Err(PrimeError::Init(format!("init refused the params: {refused}"))),
-        Err(e) => return Err(PrimeError::Init(format!("{e:#}"))),
+        Err(e) => return Err(failed(e)),
     }
     // The reads get a deadline of their own.
     crate::sandbox::arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
@@ -108,6 +138,30 @@ pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: 
         return Err(PrimeError::Read(problem));
     }
     compile(&primed.map_err(|e| PrimeError::Shape(format!("{e:#}")))?)
+}
+
+/// Defines, for priming, the imports whose answer is a constant of every
+/// WASI world paddock makes (an empty world, whatever the policy): the
+/// environment and the arguments are empty and there is no working
+/// directory. A call to them reads nothing a new instance would see
+/// differently, and leaves no state behind. Language runtimes read them
+/// as they start (Python does, from its `init`).
+fn answer_constants(linker: &mut Linker<State>, imports: &[String]) -> wasmtime::Result<()> {
+    for name in imports.iter().filter(|n| n.starts_with("wasi:cli/environment@0.2.")) {
+        let mut environment = linker.instance(name)?;
+        environment.func_wrap("get-environment", |_, ()| Ok((Vec::<(String, String)>::new(),)))?;
+        environment.func_wrap("get-arguments", |_, ()| Ok((Vec::<String>::new(),)))?;
+        environment.func_wrap("initial-cwd", |_, ()| Ok((None::<String>,)))?;
+    }
+    Ok(())
+}
+
+/// The import a trap of [`Linker::define_unknown_imports_as_traps`] names
+/// (`wasi:cli/stdout@0.2.6#get-stdout`), when that is what stopped the call.
+fn import_called(e: &wasmtime::Error) -> Option<String> {
+    let text = format!("{e:#}");
+    let rest = &text[text.find("unknown import: `")? + "unknown import: `".len()..];
+    Some(format!("`{}`", &rest[..rest.find('`')?]))
 }
 
 /// Runs a future whose every await completes at once (the snapshot's

@@ -152,7 +152,7 @@ fn main() {
             m.bytes as f64 / (1 << 20) as f64,
             ms(m.cold),
             ms(m.warm),
-            m.primed.map_or("not primed (WASI)".to_owned(), |d| format!("{} ms", ms(d))),
+            m.primed.map_or("not primed".to_owned(), |d| format!("{} ms", ms(d))),
             us(m.fresh),
             m.peak as f64 / (1 << 20) as f64,
             us(m.one),
