@@ -114,7 +114,7 @@ fn the_code_cache_keeps_the_primed_component() {
     let opts = options(Isolation::FreshPerCall, Priming::WhenFresh);
     let first = Model::load_cached(&runtime, hidden(&[7]), opts.clone(), &cache).unwrap();
     assert_eq!((first.code_source(), first.prime_state()), (&CodeSource::CompiledAndCached, &PrimeState::Primed));
-    assert!(cache.primed_path(&runtime, first.artifact()).exists());
+    assert!(cache.primed_path(&runtime, first.artifact(), None).exists());
     let second = Model::load_cached(&runtime, hidden(&[7]), opts, &cache).unwrap();
     assert_eq!((second.code_source(), second.prime_state()), (&CodeSource::Cache, &PrimeState::Primed));
     assert_eq!(second.score(&x(1.0)).unwrap().values(), &[1708.0]);
@@ -141,34 +141,103 @@ fn wasi_options(isolation: Isolation, priming: Priming) -> ModelOptions {
     ModelOptions { wasi: Some(WasiPolicy::default()), ..options(isolation, priming) }
 }
 
-/// Priming runs start-up and `init` with every import trapping, except
-/// the environment (empty in every WASI world paddock makes). A model
-/// whose `init` reaches further is not primed, the reason naming the
-/// import, and answers as an unprimed model does: the WASI probe
-/// (tests/guests/wasi_probe.py) prints from its `init`; Python's runtime
-/// (charge-taper-py, models/charge-taper) reads the environment, which is
-/// answered, and then draws random bytes; JavaScript's reads the monotonic
-/// clock. Their snapshots would freeze a random stream or a clock reading
-/// into every instance, or lack a handle new instances need.
+/// The WASI probe (tests/guests/wasi_probe.py) reports the wall clock, four
+/// random bytes and how far the monotonic clock moved, each read in
+/// `score`; packed with the params `quiet`, its `init` prints nothing.
+fn quiet_probe() -> Artifact {
+    packed(paddock_tests::foreign_artifact("wasi-probe").bytes(), b"quiet", None)
+}
+
+/// The code cache the tests share (compiling the Python probe, and priming
+/// it, take seconds each).
+fn test_cache() -> CodeCache {
+    CodeCache::open(&paddock_tests::root().join("target/paddock/test-code-cache")).unwrap()
+}
+
+fn probe_row() -> Vec<Row> {
+    vec![Row::new().with("sleep_ms", 3.0).with("print_bytes", 0.0)]
+}
+
+fn bits(model: &Model, rows: &[Row]) -> Vec<u64> {
+    model.score(rows).unwrap().values().iter().map(|v| v.to_bits()).collect()
+}
+
+/// Under the fixed WASI policy a model's `init` may read the clocks and
+/// draw randomness, and still be primed: Python's runtime draws random
+/// bytes in `init`, and every new primed instance's random stream starts
+/// past those draws, as an unprimed instance's does after its own `init`.
+/// The quiet probe's four random bytes, clock readings and sleep come out
+/// bit for bit as from unprimed fresh instances, call after call. (Were the
+/// streams restarted, its random bytes would be the first ones `init` drew.)
 #[test]
-fn a_wasi_model_whose_init_reaches_outside_is_not_primed_and_the_reason_names_the_import() {
+fn a_primed_wasi_model_starts_its_world_where_init_left_it() {
     let runtime = Runtime::new().unwrap();
+    let cache = test_cache();
+    let load = |priming| Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::FreshPerCall, priming), &cache).unwrap();
+    let primed = load(Priming::WhenFresh);
+    assert_eq!(primed.prime_state(), &PrimeState::Primed);
+    let unprimed = load(Priming::Off);
+    for _ in 0..3 {
+        assert_eq!(bits(&primed, &probe_row()), bits(&unprimed, &probe_row()));
+    }
+    // Warm primed instances go on from there too.
+    let warm = Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Always), &cache).unwrap();
+    let warm_unprimed = Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Off), &cache).unwrap();
+    assert_eq!(warm.prime_state(), &PrimeState::Primed);
+    for _ in 0..3 {
+        assert_eq!(bits(&warm, &probe_row()), bits(&warm_unprimed, &probe_row()));
+    }
+}
+
+/// The Python and JavaScript charge-taper models (models/charge-taper) are
+/// primed (JavaScript's runtime reads the monotonic clock in `init`) and
+/// answer their check rows bit for bit as unprimed fresh instances do.
+/// (Their values against SciPy are checked in tests/guests.rs.)
+#[test]
+fn python_and_javascript_models_are_primed_and_answer_as_unprimed_ones() {
+    let runtime = Runtime::new().unwrap();
+    for name in ["charge-taper-py", "charge-taper-js"] {
+        let primed = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::WhenFresh)).unwrap();
+        assert_eq!(primed.prime_state(), &PrimeState::Primed, "{name}");
+        let unprimed = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::Off)).unwrap();
+        let rows: Vec<Row> = primed.artifact().checks().unwrap().unwrap().cases.into_iter().map(|c| c.row).collect();
+        assert_eq!(bits(&primed, &rows), bits(&unprimed, &rows), "{name}");
+        for row in rows.iter().take(5) {
+            assert_eq!(bits(&primed, std::slice::from_ref(row)), bits(&unprimed, std::slice::from_ref(row)), "{name}");
+        }
+    }
+}
+
+/// What a snapshot cannot carry keeps a model unprimed, the reason naming
+/// the import, and it answers as ever: the probe prints from its `init` (an
+/// output stream is a handle a snapshot cannot hold); under real
+/// randomness Python's draw in `init`, and under real clocks JavaScript's
+/// clock reading, would be frozen into every instance.
+#[test]
+fn a_wasi_model_whose_init_reaches_what_cannot_be_carried_is_not_primed_and_says_which_import() {
+    let runtime = Runtime::new().unwrap();
+    let real_random = WasiPolicy { random: paddock_host::wasi::Source::Real, ..WasiPolicy::default() };
+    let real_clocks = WasiPolicy { clocks: paddock_host::wasi::Source::Real, ..WasiPolicy::default() };
+    let fresh = |policy: &WasiPolicy| ModelOptions { wasi: Some(policy.clone()), ..options(Isolation::FreshPerCall, Priming::WhenFresh) };
     let cases = [
-        ("wasi-probe", "init calls `wasi:"),
-        ("charge-taper-py", "init calls `wasi:random/random@0.2.9#get-random-bytes`"),
-        ("charge-taper-js", "init calls `wasi:clocks/monotonic-clock@0.2.12#now`"),
+        ("wasi-probe", WasiPolicy::default(), "init calls `wasi:cli/stdout@"),
+        ("charge-taper-py", real_random, "init calls `wasi:random/random@0.2.9#get-random-bytes`"),
+        ("charge-taper-js", real_clocks, "init calls `wasi:clocks/monotonic-clock@0.2.12#now`"),
     ];
-    for (name, reason_starts) in cases {
-        let model = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::WhenFresh)).unwrap();
+    for (name, policy, reason_starts) in cases {
+        let model = load_foreign(&runtime, name, fresh(&policy)).unwrap();
         let PrimeState::Unprimed { reason } = model.prime_state() else { panic!("{name}: {:?}", model.prime_state()) };
         assert!(reason.starts_with(reason_starts), "{name}: {reason}");
         let rows: Vec<Row> = match model.artifact().checks().unwrap() {
             Some(checks) => checks.cases.into_iter().map(|c| c.row).take(5).collect(),
-            None => vec![Row::new().with("sleep_ms", 0.0).with("print_bytes", 10.0)],
+            None => probe_row(),
         };
-        let unprimed = load_foreign(&runtime, name, wasi_options(Isolation::FreshPerCall, Priming::Off)).unwrap();
-        let bits = |m: &Model| -> Vec<u64> { m.score(&rows).unwrap().values().iter().map(|v| v.to_bits()).collect() };
-        assert_eq!(bits(&model), bits(&unprimed), "{name}");
+        let unprimed = load_foreign(&runtime, name, ModelOptions { priming: Priming::Off, ..fresh(&policy) }).unwrap();
+        if policy == WasiPolicy::default() {
+            assert_eq!(bits(&model, &rows), bits(&unprimed, &rows), "{name}");
+        } else {
+            assert_eq!(model.score(&rows).unwrap().rows(), rows.len(), "{name}");
+        }
     }
 }
 
@@ -181,7 +250,7 @@ fn the_code_cache_remembers_why_a_model_cannot_be_primed() {
     let runtime = Runtime::new().unwrap();
     let dir = tempfile::tempdir().unwrap();
     let cache = CodeCache::open(&dir.path().join("code")).unwrap();
-    let artifact = || paddock_tests::foreign_artifact("charge-taper-js");
+    let artifact = || paddock_tests::foreign_artifact("wasi-probe");
     let opts = wasi_options(Isolation::FreshPerCall, Priming::WhenFresh);
     let first = Model::load_cached(&runtime, artifact(), opts.clone(), &cache).unwrap();
     let notes: Vec<_> = std::fs::read_dir(dir.path().join("code"))
@@ -199,4 +268,26 @@ fn the_code_cache_remembers_why_a_model_cannot_be_primed() {
     let third = Model::load_cached(&runtime, artifact(), opts, &cache).unwrap();
     assert_eq!(third.prime_state(), first.prime_state());
     assert_eq!(std::fs::read_to_string(&notes[0]).unwrap(), *reason);
+}
+
+/// A primed WASI model's entry carries what its `init` took beside the
+/// code: loaded from the cache, it answers as when it was made; an entry
+/// whose carry is lost is made again rather than used without it.
+#[test]
+fn a_cached_primed_wasi_model_keeps_its_carry() {
+    let runtime = Runtime::new().unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let cache = CodeCache::open(&dir.path().join("code")).unwrap();
+    let opts = wasi_options(Isolation::FreshPerCall, Priming::WhenFresh);
+    let made = Model::load_cached(&runtime, quiet_probe(), opts.clone(), &cache).unwrap();
+    assert_eq!((made.code_source(), made.prime_state()), (&CodeSource::CompiledAndCached, &PrimeState::Primed));
+    let expected = bits(&made, &probe_row());
+    let cached = Model::load_cached(&runtime, quiet_probe(), opts.clone(), &cache).unwrap();
+    assert_eq!(cached.code_source(), &CodeSource::Cache);
+    assert_eq!(bits(&cached, &probe_row()), expected);
+    let entry = cache.primed_path(&runtime, made.artifact(), opts.wasi.as_ref());
+    std::fs::remove_file(entry.with_extension("carry")).unwrap();
+    let remade = Model::load_cached(&runtime, quiet_probe(), opts, &cache).unwrap();
+    assert_eq!((remade.code_source(), remade.prime_state()), (&CodeSource::CompiledAndCached, &PrimeState::Primed));
+    assert_eq!(bits(&remade, &probe_row()), expected);
 }

@@ -32,6 +32,7 @@ use wasmtime::component::Component;
 use crate::artifact::Artifact;
 use crate::sandbox::Runtime;
 use crate::tool_error::ToolError;
+use crate::wasi::{Carry, WasiPolicy};
 
 /// Tag mixed into every key: bump it if the entry format changes.
 const FORMAT: &[u8] = b"paddock-code-v1";
@@ -113,9 +114,11 @@ impl CodeCache {
 
     /// Where the entry for this artifact's primed component (see
     /// [`crate::prime`]) under this runtime lives: the key also names the
-    /// pre-initializer and its snapshot format.
-    pub fn primed_path(&self, runtime: &Runtime, artifact: &Artifact) -> PathBuf {
-        self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "primed")
+    /// pre-initializer and its snapshot format, and the WASI policy the
+    /// model was primed under (its fixed clock and random streams are part
+    /// of what `init` saw).
+    pub fn primed_path(&self, runtime: &Runtime, artifact: &Artifact, wasi: Option<&WasiPolicy>) -> PathBuf {
+        self.key_path(runtime, artifact, &primed_tag(wasi), "primed")
     }
 
     fn key_path(&self, runtime: &Runtime, artifact: &Artifact, tag: &[u8], extension: &str) -> PathBuf {
@@ -140,28 +143,58 @@ impl CodeCache {
         self.entry(runtime, &self.entry_path(runtime, artifact), || compile(runtime, artifact))
     }
 
-    /// The compiled primed component for an artifact: from its entry if
-    /// there is a sound one, otherwise made by `make` and written back.
+    /// The compiled primed component for an artifact, with what its `init`
+    /// took from its WASI world: from its entry if there is a sound one
+    /// with its carry beside it, otherwise made by `make` and written back.
     ///
     /// # Errors
     /// Only `make`'s.
-    pub(crate) fn primed<E>(&self, runtime: &Runtime, artifact: &Artifact, make: impl FnOnce() -> Result<Component, E>) -> Result<(Component, CodeSource), E> {
-        self.entry(runtime, &self.primed_path(runtime, artifact), make)
+    pub(crate) fn primed<E>(
+        &self,
+        runtime: &Runtime,
+        artifact: &Artifact,
+        wasi: Option<&WasiPolicy>,
+        make: impl FnOnce() -> Result<(Component, Carry), E>,
+    ) -> Result<(Component, Carry, CodeSource), E> {
+        let path = self.primed_path(runtime, artifact, wasi);
+        let carry_path = path.with_extension("carry");
+        let stored: Option<Carry> = fs::read(&carry_path).ok().and_then(|b| serde_json::from_slice(&b).ok());
+        if stored.is_none() {
+            // An entry without its carry is not used: it is made again.
+            let _ = fs::remove_file(&path);
+        }
+        let mut made = None;
+        let (component, source) = self.entry(runtime, &path, || {
+            make().map(|(component, carry)| {
+                made = Some(carry);
+                component
+            })
+        })?;
+        let carry = match (made, stored) {
+            (Some(carry), _) => {
+                let _ = serde_json::to_vec(&carry).map(|bytes| crate::atomic_file::write(&carry_path, &bytes));
+                carry
+            }
+            (None, Some(carry)) => carry,
+            (None, None) => unreachable!("an entry without its carry was removed, so it was made"),
+        };
+        Ok((component, carry, source))
     }
 
-    /// Why this artifact could not be primed, when an earlier load found a
-    /// lasting reason (see [`crate::prime::PrimeError::is_lasting`]): the
-    /// attempt, which compiles an instrumented copy of the component, is
-    /// then not made again.
-    pub(crate) fn unprimable(&self, runtime: &Runtime, artifact: &Artifact) -> Option<String> {
-        let text = fs::read(self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "unprimed")).ok()?;
+    /// Why this artifact could not be primed under `wasi`, when an earlier
+    /// load found a lasting reason (see
+    /// [`crate::prime::PrimeError::is_lasting`]): the attempt, which
+    /// compiles an instrumented copy of the component, is then not made
+    /// again.
+    pub(crate) fn unprimable(&self, runtime: &Runtime, artifact: &Artifact, wasi: Option<&WasiPolicy>) -> Option<String> {
+        let text = fs::read(self.key_path(runtime, artifact, &primed_tag(wasi), "unprimed")).ok()?;
         (text.len() <= MAX_REASON).then(|| String::from_utf8(text).ok()).flatten()
     }
 
-    /// Remembers why this artifact cannot be primed. A failure to write is
-    /// not reported: the next load tries again.
-    pub(crate) fn remember_unprimable(&self, runtime: &Runtime, artifact: &Artifact, reason: &str) {
-        let path = self.key_path(runtime, artifact, crate::prime::PRIMER.as_bytes(), "unprimed");
+    /// Remembers why this artifact cannot be primed under `wasi`. A failure
+    /// to write is not reported: the next load tries again.
+    pub(crate) fn remember_unprimable(&self, runtime: &Runtime, artifact: &Artifact, wasi: Option<&WasiPolicy>, reason: &str) {
+        let path = self.key_path(runtime, artifact, &primed_tag(wasi), "unprimed");
         let end = reason.floor_char_boundary(MAX_REASON);
         let _ = crate::atomic_file::write(&path, &reason.as_bytes()[..end]);
     }
@@ -211,6 +244,16 @@ pub enum EntryProblem {
 }
 
 /// Compiles an artifact's component.
+/// What keys a primed entry besides the artifact and the engine: the
+/// pre-initializer and, for a WASI model, the policy it was primed under.
+fn primed_tag(wasi: Option<&WasiPolicy>) -> Vec<u8> {
+    let mut tag = crate::prime::PRIMER.as_bytes().to_vec();
+    if let Some(policy) = wasi {
+        tag.extend(serde_json::to_vec(policy).unwrap_or_default());
+    }
+    tag
+}
+
 /// The longest reason [`CodeCache::remember_unprimable`] keeps.
 const MAX_REASON: usize = 4096;
 

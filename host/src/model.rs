@@ -18,7 +18,7 @@ use crate::prime::{self, PrimeError, PrimeState};
 use crate::rows::{Row, RowError};
 use crate::schema::{OutputFault, Schema};
 use crate::sandbox::{self, Instance, Runtime, SandboxError, StartError, State};
-use crate::wasi::{self, WasiPolicy};
+use crate::wasi::{self, Carry, WasiPolicy, WasiStart};
 
 /// Whether instances are reused between calls.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
@@ -66,9 +66,15 @@ pub enum Priming {
     Always,
 }
 
-/// The primed component, when `options` ask for one and it can be made
-/// (or is in `cache`); otherwise what the model's [`PrimeState`] is.
-fn primed_component(runtime: &Runtime, artifact: &Artifact, options: &ModelOptions, cache: Option<&CodeCache>) -> Result<(Component, CodeSource), PrimeState> {
+/// The primed component and what its `init` took from its WASI world, when
+/// `options` ask for one and it can be made (or is in `cache`); otherwise
+/// what the model's [`PrimeState`] is.
+fn primed_component(
+    runtime: &Runtime,
+    artifact: &Artifact,
+    options: &ModelOptions,
+    cache: Option<&CodeCache>,
+) -> Result<(Component, CodeSource, Carry), PrimeState> {
     let wanted = match options.priming {
         Priming::Off => false,
         Priming::WhenFresh => options.isolation == Isolation::FreshPerCall,
@@ -78,20 +84,21 @@ fn primed_component(runtime: &Runtime, artifact: &Artifact, options: &ModelOptio
         return Err(PrimeState::Off);
     }
     let unprimed = |e: PrimeError| PrimeState::Unprimed { reason: e.to_string() };
-    let make = || prime::prime(runtime, artifact.bytes(), artifact.params(), &options.limits);
+    let wasi = options.wasi.as_ref();
+    let make = || prime::prime(runtime, artifact.bytes(), artifact.params(), &options.limits, wasi);
     match cache {
         Some(cache) => {
-            if let Some(reason) = cache.unprimable(runtime, artifact) {
+            if let Some(reason) = cache.unprimable(runtime, artifact, wasi) {
                 return Err(PrimeState::Unprimed { reason });
             }
-            cache.primed(runtime, artifact, make).map_err(|e| {
+            cache.primed(runtime, artifact, wasi, make).map(|(c, carry, source)| (c, source, carry)).map_err(|e| {
                 if e.is_lasting() {
-                    cache.remember_unprimable(runtime, artifact, &e.to_string());
+                    cache.remember_unprimable(runtime, artifact, wasi, &e.to_string());
                 }
                 unprimed(e)
             })
         }
-        None => make().map(|c| (c, CodeSource::Compiled)).map_err(unprimed),
+        None => make().map(|(c, carry)| (c, CodeSource::Compiled, carry)).map_err(unprimed),
     }
 }
 
@@ -388,6 +395,8 @@ struct Inner {
     options: ModelOptions,
     code: CodeSource,
     primed: PrimeState,
+    /// How each new instance's WASI world starts, for a model under a policy.
+    wasi: Option<WasiStart>,
     idle: Pool<Instance>,
     who: Arc<str>,
 }
@@ -458,23 +467,24 @@ impl Model {
         }
         check_imports(artifact.imports(), options.wasi.as_ref())?;
         check_options(runtime, limits)?;
-        let (component, code, primed) = match primed_component(runtime, &artifact, &options, cache) {
-            Ok((component, code)) => (component, code, PrimeState::Primed),
+        let (component, code, primed, carry) = match primed_component(runtime, &artifact, &options, cache) {
+            Ok((component, code, carry)) => (component, code, PrimeState::Primed, carry),
             Err(state) => {
                 let (component, code) = match cache {
                     Some(cache) => cache.component(runtime, &artifact),
                     None => codecache::compile(runtime, &artifact).map(|c| (c, CodeSource::Compiled)),
                 }
                 .map_err(LoadError::Compile)?;
-                (component, code, state)
+                (component, code, state, Carry::default())
             }
         };
+        let wasi = options.wasi.clone().map(|policy| WasiStart { policy, carry });
         let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
         sandbox::make_memory_images(&component).map_err(LoadError::MemoryImage)?;
         let who: Arc<str> = artifact.digest().to_string().into();
         let init = init_params(&primed, &artifact);
         let (mut first, contract) =
-            Instance::start(runtime, &pre, limits, init, true, options.wasi.as_ref(), &who).map_err(LoadError::Start)?;
+            Instance::start(runtime, &pre, limits, init, true, wasi.as_ref(), &who).map_err(LoadError::Start)?;
         let contract = contract.expect("describe was asked for");
         // A contract is a promise: it must not change from one call to the next.
         if first.describe(runtime, limits).map_err(LoadError::Start)? != contract {
@@ -498,6 +508,7 @@ impl Model {
                 options,
                 code,
                 primed,
+                wasi,
                 idle,
             }),
         })
@@ -655,7 +666,7 @@ impl Model {
             &options.limits,
             init,
             verify,
-            options.wasi.as_ref(),
+            inner.wasi.as_ref(),
             &inner.who,
         )
         .map_err(ScoreError::Start)?;

@@ -15,19 +15,22 @@
 //! primed component is derived from it at load (and kept in the code cache
 //! under the artifact's digest).
 //!
-//! What a snapshot may capture: only what `init` computed from the params.
-//! While priming, every import the component has answers with a trap. A
-//! model whose start-up or `init` calls any of them (a WASI model reading a
-//! clock, drawing randomness or printing) would freeze the outside world
-//! into every later instance, or leave a handle its new instances do not
-//! hold; it fails to prime and loads unprimed, the reason naming the import
-//! (it runs `init` on each new instance). A WASI model whose `init` calls
-//! nothing outside itself is primed: its `init` is then a function of its
-//! params and its own memory alone, and every new instance, primed or not,
-//! starts with a fresh WASI world (clocks and random streams at their
-//! start), so a primed instance's first call sees exactly what an unprimed
-//! one's would. Tables are not captured: a component whose code mutates
-//! tables is refused by the pre-initializer and loads unprimed.
+//! What a snapshot may capture: only what `init` computed from its params,
+//! and what every new instance can be given again. While priming, every
+//! import the component has answers with a trap, except, for a model
+//! loaded under a WASI policy, the parts of WASI whose answers can be
+//! carried: the (empty) environment, and under fixed clocks and randomness
+//! the clocks' readings and the random streams (see
+//! [`crate::wasi::link_for_priming`]). Every new instance of a primed
+//! model then starts its WASI world where `init` left the priming one: the
+//! monotonic clock at the reading it had reached, each random stream past
+//! the draws `init` made. Its first call sees exactly what an unprimed
+//! instance's first call would. A model whose start-up or `init` calls
+//! anything else (prints, opens a file, waits, or reads a real clock or
+//! real randomness, which a snapshot would freeze) is not primed, the
+//! reason naming the import; it runs `init` on each new instance. Tables
+//! are not captured: a component whose code mutates tables is refused by
+//! the pre-initializer and loads unprimed.
 //!
 //! What this is not: a way to share state between calls. Each instance
 //! starts from the same image; what a call writes is its own copy.
@@ -44,10 +47,11 @@ use crate::bindings::Estimator;
 use crate::limits::Limits;
 use crate::sandbox::{Runtime, State};
 use crate::tool_error::ToolError;
+use crate::wasi::{Carry, WasiPolicy, WasiStart};
 
 /// The pre-initializer and snapshot format a primed component was made
 /// with: part of its code cache key.
-pub(crate) const PRIMER: &str = "wasmtime-wizer 48.0.8, paddock-primed-v1";
+pub(crate) const PRIMER: &str = "wasmtime-wizer 48.0.8, paddock-primed-v2";
 
 /// Whether a model's new instances start from a primed component.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
@@ -100,25 +104,39 @@ impl PrimeError {
 }
 
 /// Makes and compiles the primed component of `component` (an artifact's
-/// component bytes) with `params`, under the init limits of `limits`.
+/// component bytes) with `params`, under the init limits of `limits` and,
+/// for a model that imports WASI, in a world under `wasi`. Returns it with
+/// what `init` took from that world, for every new instance's to start from.
 ///
 /// # Errors
 /// [`PrimeError`] when it cannot be done.
-pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: &Limits) -> Result<Component, PrimeError> {
+pub(crate) fn prime(
+    runtime: &Runtime,
+    component: &[u8],
+    params: &[u8],
+    limits: &Limits,
+    wasi: Option<&WasiPolicy>,
+) -> Result<(Component, Carry), PrimeError> {
     let compile = |bytes: &[u8]| Component::new(runtime.engine(), bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()));
     let wizer = wasmtime_wizer::Wizer::new();
     let (cx, instrumented) = wizer.instrument_component(component).map_err(|e| PrimeError::Shape(format!("{e:#}")))?;
     let compiled = compile(&instrumented)?;
-    // Every import traps but the few whose answer is the same in every
-    // instance: what init reads must come from its params.
+    // Every import traps but those whose answers a snapshot may keep: what
+    // init reads must come from its params, or be carried to every instance.
     let mut linker = Linker::<State>::new(runtime.engine());
     let link = |e: wasmtime::Error| PrimeError::Compile(format!("{e:#}"));
-    let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
-    answer_constants(&mut linker, &imports).map_err(link)?;
+    let draws = match wasi {
+        Some(policy) => {
+            let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
+            Some(crate::wasi::link_for_priming(&mut linker, policy, &imports).map_err(link)?)
+        }
+        None => None,
+    };
     linker.define_unknown_imports_as_traps(&compiled).map_err(link)?;
-    let pre = linker.instantiate_pre(&compiled).map_err(|e| PrimeError::Compile(format!("{e:#}")))?;
+    let pre = linker.instantiate_pre(&compiled).map_err(link)?;
     crate::sandbox::make_memory_images(&compiled).map_err(|e| PrimeError::Init(e.to_string()))?;
-    let mut store = crate::sandbox::init_store(runtime, limits, None);
+    let start = wasi.map(|policy| WasiStart { policy: policy.clone(), carry: Carry::default() });
+    let mut store = crate::sandbox::init_store(runtime, limits, start.as_ref());
     let failed = |e: wasmtime::Error| match import_called(&e) {
         Some(name) => PrimeError::Import(name),
         None => PrimeError::Init(format!("{e:#}")),
@@ -130,6 +148,13 @@ pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: 
         Ok(Err(refused)) => return Err(PrimeError::Init(format!("init refused the params: {refused}"))),
         Err(e) => return Err(failed(e)),
     }
+    let carry = match (&draws, store.data().wasi_state()) {
+        (Some(draws), Some(state)) => Carry {
+            monotonic: state.monotonic_reading(),
+            draws: draws.lock().unwrap_or_else(std::sync::PoisonError::into_inner).clone(),
+        },
+        _ => Carry::default(),
+    };
     // The reads get a deadline of their own.
     crate::sandbox::arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
     let mut access = Access { store: &mut store, instance, failed: None };
@@ -137,23 +162,7 @@ pub(crate) fn prime(runtime: &Runtime, component: &[u8], params: &[u8], limits: 
     if let Some(problem) = access.failed {
         return Err(PrimeError::Read(problem));
     }
-    compile(&primed.map_err(|e| PrimeError::Shape(format!("{e:#}")))?)
-}
-
-/// Defines, for priming, the imports whose answer is a constant of every
-/// WASI world paddock makes (an empty world, whatever the policy): the
-/// environment and the arguments are empty and there is no working
-/// directory. A call to them reads nothing a new instance would see
-/// differently, and leaves no state behind. Language runtimes read them
-/// as they start (Python does, from its `init`).
-fn answer_constants(linker: &mut Linker<State>, imports: &[String]) -> wasmtime::Result<()> {
-    for name in imports.iter().filter(|n| n.starts_with("wasi:cli/environment@0.2.")) {
-        let mut environment = linker.instance(name)?;
-        environment.func_wrap("get-environment", |_, ()| Ok((Vec::<(String, String)>::new(),)))?;
-        environment.func_wrap("get-arguments", |_, ()| Ok((Vec::<String>::new(),)))?;
-        environment.func_wrap("initial-cwd", |_, ()| Ok((None::<String>,)))?;
-    }
-    Ok(())
+    Ok((compile(&primed.map_err(|e| PrimeError::Shape(format!("{e:#}")))?)?, carry))
 }
 
 /// The import a trap of [`Linker::define_unknown_imports_as_traps`] names

@@ -20,7 +20,7 @@ use crate::bindings::{Estimator, EstimatorPre};
 use crate::contract::{Contract, Fault};
 use crate::limits::{LimitHit, Limits};
 use crate::tool_error::ToolError;
-use crate::wasi::{self, WasiPolicy, WasiState};
+use crate::wasi::{self, WasiPolicy, WasiStart, WasiState};
 
 /// The wasmtime release this host is built on, as the build resolved it
 /// (read from Cargo.lock by the build script; `unknown` when there was none).
@@ -280,6 +280,13 @@ pub(crate) struct State {
     wasi: Option<WasiState>,
 }
 
+impl State {
+    /// The WASI world of a store made with one.
+    pub(crate) fn wasi_state(&self) -> Option<&WasiState> {
+        self.wasi.as_ref()
+    }
+}
+
 impl wasmtime_wasi::WasiView for State {
     fn ctx(&mut self) -> wasmtime_wasi::WasiCtxView<'_> {
         wasi::WasiHost::wasi(self).view()
@@ -374,14 +381,15 @@ impl Instance {
     /// the contract it declared.
     ///
     /// `wasi` gives the instance an empty WASI world (the model must have
-    /// been prepared with the same policy); `who` names it in the log.
+    /// been prepared with the same policy), started where a primed
+    /// snapshot's `init` left it; `who` names it in the log.
     pub(crate) fn start(
         runtime: &Runtime,
         pre: &EstimatorPre<State>,
         limits: &Limits,
         init: Option<&[u8]>,
         describe: bool,
-        wasi: Option<&WasiPolicy>,
+        wasi: Option<&WasiStart>,
         who: &Arc<str>,
     ) -> Result<(Instance, Option<Contract>), StartError> {
         let mut store = init_store(runtime, limits, wasi);
@@ -456,7 +464,7 @@ impl Instance {
 
 /// A store for a new instance: its limiter, its WASI world when `wasi` is
 /// given, armed with the init deadline and fuel.
-pub(crate) fn init_store(runtime: &Runtime, limits: &Limits, wasi: Option<&WasiPolicy>) -> Store<State> {
+pub(crate) fn init_store(runtime: &Runtime, limits: &Limits, wasi: Option<&WasiStart>) -> Store<State> {
     let state = State {
         memory_cap: limits.memory_bytes,
         table_cap: limits.table_elements,
@@ -464,7 +472,7 @@ pub(crate) fn init_store(runtime: &Runtime, limits: &Limits, wasi: Option<&WasiP
         deadline: limits.init_deadline,
         fuel: limits.init_fuel,
         armed: Instant::now(),
-        wasi: wasi.map(WasiState::new),
+        wasi: wasi.map(WasiState::start),
     };
     let mut store = Store::new(runtime.engine(), state);
     store.limiter(|s| s as &mut dyn ResourceLimiter);

@@ -147,6 +147,23 @@ impl WasiState {
         WasiState { ctx: b.build(), table: ResourceTable::new(), stdout, stderr, monotonic }
     }
 
+    /// A fresh world under `start`'s policy, brought to where the primed
+    /// snapshot's `init` left its own: the fixed monotonic clock at the
+    /// reading it had reached, and the fixed random streams past what
+    /// `init` drew (the same draws made again, so the streams stand exactly
+    /// where they stood).
+    pub(crate) fn start(start: &WasiStart) -> Self {
+        let mut state = WasiState::new(&start.policy);
+        if let Monotonic::Fixed(n) = &state.monotonic {
+            n.store(start.carry.monotonic, std::sync::atomic::Ordering::Relaxed);
+        }
+        for draw in &start.carry.draws {
+            // Replaying a draw that succeeded while priming cannot fail.
+            let _ = draw.make(state.ctx.random());
+        }
+        state
+    }
+
     /// Writes what the model printed since the last call to the log.
     pub(crate) fn drain(&self, who: &str) {
         self.stdout.drain(who, "stdout");
@@ -245,6 +262,156 @@ pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), crate::too
         ?;
     linker.allow_shadowing(false);
     Ok(())
+}
+
+/// How a new instance's WASI world starts: the policy, and what a primed
+/// snapshot's `init` had already taken from the world (nothing, for an
+/// instance that runs `init` itself).
+#[derive(Clone, Debug, Default)]
+pub(crate) struct WasiStart {
+    pub(crate) policy: WasiPolicy,
+    pub(crate) carry: Carry,
+}
+
+/// What a model's `init` took from a fixed WASI world while it was primed:
+/// the monotonic clock's reading after it, and every random draw, in order.
+#[derive(Clone, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
+pub(crate) struct Carry {
+    pub(crate) monotonic: u64,
+    pub(crate) draws: Vec<Draw>,
+}
+
+/// One draw from a random stream.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, serde::Deserialize)]
+pub(crate) enum Draw {
+    /// `wasi:random/random#get-random-bytes` of this many bytes.
+    Bytes(u64),
+    /// `wasi:random/random#get-random-u64`.
+    U64,
+    /// `wasi:random/insecure#get-insecure-random-bytes` of this many bytes.
+    InsecureBytes(u64),
+    /// `wasi:random/insecure#get-insecure-random-u64`.
+    InsecureU64,
+}
+
+/// Draws a priming may record; an `init` drawing more is not primed.
+const MAX_DRAWS: usize = 4096;
+
+impl Draw {
+    /// Makes the draw from `random` (wasmtime-wasi's own functions, so the
+    /// stream moves exactly as it does for the model).
+    fn make(self, random: &mut wasmtime_wasi::random::WasiRandomCtx) -> wasmtime::Result<Vec<u8>> {
+        use wasmtime_wasi::p2::bindings::random::{insecure::Host as _, random::Host as _};
+        Ok(match self {
+            Draw::Bytes(len) => random.get_random_bytes(len)?,
+            Draw::U64 => random.get_random_u64()?.to_le_bytes().to_vec(),
+            Draw::InsecureBytes(len) => random.get_insecure_random_bytes(len)?,
+            Draw::InsecureU64 => random.get_insecure_random_u64()?.to_le_bytes().to_vec(),
+        })
+    }
+}
+
+/// Links, for priming a model under `policy`, the WASI functions whose
+/// answers a snapshot may keep, recording what they hand out; the caller
+/// makes every other import trap. These are:
+///
+/// - the environment: empty in every world paddock makes;
+/// - under fixed clocks, both clocks' readings: the wall clock is a
+///   constant, and the monotonic clock's reading is carried to every new
+///   instance;
+/// - under fixed randomness, the random streams and the insecure seed:
+///   every draw is made again in each new instance's world.
+///
+/// Real clocks and randomness are not linked: a snapshot would freeze one
+/// reading or one draw into every instance. Waits, streams, files and
+/// sockets are not linked: they hand out handles a snapshot cannot carry.
+///
+/// Returns what `init` took, read after it ran: the monotonic reading is
+/// in the store's WASI state, the draws in the returned log.
+///
+/// # Errors
+/// When wasmtime refuses a definition (a programming error).
+pub(crate) fn link_for_priming<T: WasiHost>(
+    linker: &mut Linker<T>,
+    policy: &WasiPolicy,
+    imports: &[String],
+) -> wasmtime::Result<Arc<Mutex<Vec<Draw>>>> {
+    let log = Arc::new(Mutex::new(Vec::new()));
+    for name in imports {
+        let Some(interface) = name.strip_prefix("wasi:").and_then(|n| n.split_once('@')).map(|(i, _)| i) else { continue };
+        let mut at = linker.instance(name)?;
+        match interface {
+            "cli/environment" => {
+                at.func_wrap("get-environment", |_, ()| Ok((Vec::<(String, String)>::new(),)))?;
+                at.func_wrap("get-arguments", |_, ()| Ok((Vec::<String>::new(),)))?;
+                at.func_wrap("initial-cwd", |_, ()| Ok((None::<String>,)))?;
+            }
+            "clocks/monotonic-clock" if policy.clocks == Source::Fixed => {
+                at.func_wrap("now", |mut store: wasmtime::StoreContextMut<'_, T>, ()| Ok((store.data_mut().wasi().monotonic.now(),)))?;
+                at.func_wrap("resolution", |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
+                    Ok((store.data_mut().wasi().monotonic.resolution(),))
+                })?;
+            }
+            "clocks/wall-clock" if policy.clocks == Source::Fixed => {
+                let now = Datetime { seconds: policy.fixed_time, nanoseconds: 0 };
+                at.func_wrap("now", move |_, ()| Ok((now,)))?;
+                at.func_wrap("resolution", |_, ()| Ok((Datetime { seconds: 1, nanoseconds: 0 },)))?;
+            }
+            "random/random" | "random/insecure" if policy.random == Source::Fixed => {
+                let insecure = interface == "random/insecure";
+                let (bytes, word) = if insecure {
+                    ("get-insecure-random-bytes", "get-insecure-random-u64")
+                } else {
+                    ("get-random-bytes", "get-random-u64")
+                };
+                let record = |log: &Arc<Mutex<Vec<Draw>>>, draw: Draw| -> wasmtime::Result<()> {
+                    let mut log = log.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
+                    if log.len() >= MAX_DRAWS {
+                        wasmtime::bail!("init draws randomness more than {MAX_DRAWS} times");
+                    }
+                    log.push(draw);
+                    Ok(())
+                };
+                let l = log.clone();
+                at.func_wrap(bytes, move |mut store: wasmtime::StoreContextMut<'_, T>, (len,): (u64,)| {
+                    let draw = if insecure { Draw::InsecureBytes(len) } else { Draw::Bytes(len) };
+                    record(&l, draw)?;
+                    Ok((draw.make(store.data_mut().wasi().ctx.random())?,))
+                })?;
+                let l = log.clone();
+                at.func_wrap(word, move |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
+                    let draw = if insecure { Draw::InsecureU64 } else { Draw::U64 };
+                    record(&l, draw)?;
+                    let bytes = draw.make(store.data_mut().wasi().ctx.random())?;
+                    Ok((u64::from_le_bytes(bytes.try_into().expect("eight bytes")),))
+                })?;
+            }
+            "random/insecure-seed" if policy.random == Source::Fixed => {
+                let seed = u128::from(policy.seed);
+                at.func_wrap("insecure-seed", move |_, ()| Ok(((seed as u64, (seed >> 64) as u64),)))?;
+            }
+            _ => {}
+        }
+    }
+    Ok(log)
+}
+
+/// `wasi:clocks/wall-clock`'s `datetime`.
+#[derive(Clone, Copy, wasmtime::component::ComponentType, wasmtime::component::Lower)]
+#[component(record)]
+struct Datetime {
+    seconds: u64,
+    nanoseconds: u32,
+}
+
+impl WasiState {
+    /// The monotonic clock's reading now (for the carry of a priming).
+    pub(crate) fn monotonic_reading(&self) -> u64 {
+        match &self.monotonic {
+            Monotonic::Fixed(n) => n.load(std::sync::atomic::Ordering::Relaxed),
+            Monotonic::Real(_) => 0,
+        }
+    }
 }
 
 /// A wait of `wanted`. A wait that would end after the call's deadline can
