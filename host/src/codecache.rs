@@ -155,7 +155,7 @@ impl CodeCache {
         artifact: &Artifact,
         wasi: Option<&WasiPolicy>,
         make: impl FnOnce() -> Result<(Component, Carry), E>,
-    ) -> Result<(Component, Carry, CodeSource), E> {
+    ) -> Result<(Component, CodeSource, Carry), E> {
         let path = self.primed_path(runtime, artifact, wasi);
         let carry_path = path.with_extension("carry");
         let stored: Option<Carry> = fs::read(&carry_path).ok().and_then(|b| serde_json::from_slice(&b).ok());
@@ -178,7 +178,7 @@ impl CodeCache {
             (None, Some(carry)) => carry,
             (None, None) => unreachable!("an entry without its carry was removed, so it was made"),
         };
-        Ok((component, carry, source))
+        Ok((component, source, carry))
     }
 
     /// Why this artifact could not be primed under `wasi`, when an earlier
@@ -243,7 +243,6 @@ pub enum EntryProblem {
     Io(#[source] std::io::Error),
 }
 
-/// Compiles an artifact's component.
 /// What keys a primed entry besides the artifact and the engine: the
 /// pre-initializer and, for a WASI model, the policy it was primed under.
 fn primed_tag(wasi: Option<&WasiPolicy>) -> Vec<u8> {
@@ -257,6 +256,7 @@ fn primed_tag(wasi: Option<&WasiPolicy>) -> Vec<u8> {
 /// The longest reason [`CodeCache::remember_unprimable`] keeps.
 const MAX_REASON: usize = 4096;
 
+/// Compiles an artifact's component.
 pub(crate) fn compile(runtime: &Runtime, artifact: &Artifact) -> Result<Component, ToolError> {
     Ok(Component::new(runtime.engine(), artifact.bytes())?)
 }

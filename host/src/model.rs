@@ -91,7 +91,7 @@ fn primed_component(
             if let Some(reason) = cache.unprimable(runtime, artifact, wasi) {
                 return Err(PrimeState::Unprimed { reason });
             }
-            cache.primed(runtime, artifact, wasi, make).map(|(c, carry, source)| (c, source, carry)).map_err(|e| {
+            cache.primed(runtime, artifact, wasi, make).map_err(|e| {
                 if e.is_lasting() {
                     cache.remember_unprimable(runtime, artifact, wasi, &e.to_string());
                 }

@@ -47,7 +47,7 @@ use crate::bindings::Estimator;
 use crate::limits::Limits;
 use crate::sandbox::{Runtime, State};
 use crate::tool_error::ToolError;
-use crate::wasi::{Carry, WasiPolicy, WasiStart};
+use crate::wasi::{Carry, WasiPolicy, WasiStart, WasiState};
 
 /// The pre-initializer and snapshot format a primed component was made
 /// with: part of its code cache key.
@@ -125,13 +125,10 @@ pub(crate) fn prime(
     // init reads must come from its params, or be carried to every instance.
     let mut linker = Linker::<State>::new(runtime.engine());
     let link = |e: wasmtime::Error| PrimeError::Compile(format!("{e:#}"));
-    let draws = match wasi {
-        Some(policy) => {
-            let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
-            Some(crate::wasi::link_for_priming(&mut linker, policy, &imports).map_err(link)?)
-        }
-        None => None,
-    };
+    if let Some(policy) = wasi {
+        let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
+        crate::wasi::link_for_priming(&mut linker, policy, &imports).map_err(link)?;
+    }
     linker.define_unknown_imports_as_traps(&compiled).map_err(link)?;
     let pre = linker.instantiate_pre(&compiled).map_err(link)?;
     crate::sandbox::make_memory_images(&compiled).map_err(|e| PrimeError::Init(e.to_string()))?;
@@ -148,13 +145,7 @@ pub(crate) fn prime(
         Ok(Err(refused)) => return Err(PrimeError::Init(format!("init refused the params: {refused}"))),
         Err(e) => return Err(failed(e)),
     }
-    let carry = match (&draws, store.data().wasi_state()) {
-        (Some(draws), Some(state)) => Carry {
-            monotonic: state.monotonic_reading(),
-            draws: draws.lock().unwrap_or_else(std::sync::PoisonError::into_inner).clone(),
-        },
-        _ => Carry::default(),
-    };
+    let carry = store.data().wasi_state().map(WasiState::carry).unwrap_or_default();
     // The reads get a deadline of their own.
     crate::sandbox::arm(&mut store, runtime, limits.init_deadline, limits.init_fuel);
     let mut access = Access { store: &mut store, instance, failed: None };

@@ -121,6 +121,8 @@ pub(crate) struct WasiState {
     stdout: Capture,
     stderr: Capture,
     monotonic: Monotonic,
+    /// The random draws made so far, when priming (see [`link_for_priming`]).
+    drawn: Vec<Draw>,
 }
 
 impl WasiState {
@@ -144,7 +146,7 @@ impl WasiState {
             b.insecure_random(wasmtime_wasi::Deterministic::new(stream(policy.seed, b"insecure")));
             b.insecure_random_seed(u128::from(policy.seed));
         }
-        WasiState { ctx: b.build(), table: ResourceTable::new(), stdout, stderr, monotonic }
+        WasiState { ctx: b.build(), table: ResourceTable::new(), stdout, stderr, monotonic, drawn: Vec::new() }
     }
 
     /// A fresh world under `start`'s policy, brought to where the primed
@@ -267,7 +269,7 @@ pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), crate::too
 /// How a new instance's WASI world starts: the policy, and what a primed
 /// snapshot's `init` had already taken from the world (nothing, for an
 /// instance that runs `init` itself).
-#[derive(Clone, Debug, Default)]
+#[derive(Clone, Debug)]
 pub(crate) struct WasiStart {
     pub(crate) policy: WasiPolicy,
     pub(crate) carry: Carry,
@@ -326,17 +328,12 @@ impl Draw {
 /// reading or one draw into every instance. Waits, streams, files and
 /// sockets are not linked: they hand out handles a snapshot cannot carry.
 ///
-/// Returns what `init` took, read after it ran: the monotonic reading is
-/// in the store's WASI state, the draws in the returned log.
+/// What `init` took is then read from the store's WASI state with
+/// [`WasiState::carry`].
 ///
 /// # Errors
 /// When wasmtime refuses a definition (a programming error).
-pub(crate) fn link_for_priming<T: WasiHost>(
-    linker: &mut Linker<T>,
-    policy: &WasiPolicy,
-    imports: &[String],
-) -> wasmtime::Result<Arc<Mutex<Vec<Draw>>>> {
-    let log = Arc::new(Mutex::new(Vec::new()));
+pub(crate) fn link_for_priming<T: WasiHost>(linker: &mut Linker<T>, policy: &WasiPolicy, imports: &[String]) -> wasmtime::Result<()> {
     for name in imports {
         let Some(interface) = name.strip_prefix("wasi:").and_then(|n| n.split_once('@')).map(|(i, _)| i) else { continue };
         let mut at = linker.instance(name)?;
@@ -364,25 +361,20 @@ pub(crate) fn link_for_priming<T: WasiHost>(
                 } else {
                     ("get-random-bytes", "get-random-u64")
                 };
-                let record = |log: &Arc<Mutex<Vec<Draw>>>, draw: Draw| -> wasmtime::Result<()> {
-                    let mut log = log.lock().unwrap_or_else(std::sync::PoisonError::into_inner);
-                    if log.len() >= MAX_DRAWS {
+                // Draws are recorded, at most MAX_DRAWS, and then made.
+                let draw = |host: &mut T, draw: Draw| -> wasmtime::Result<Vec<u8>> {
+                    let state = host.wasi();
+                    if state.drawn.len() >= MAX_DRAWS {
                         wasmtime::bail!("init draws randomness more than {MAX_DRAWS} times");
                     }
-                    log.push(draw);
-                    Ok(())
+                    state.drawn.push(draw);
+                    draw.make(state.ctx.random())
                 };
-                let l = log.clone();
                 at.func_wrap(bytes, move |mut store: wasmtime::StoreContextMut<'_, T>, (len,): (u64,)| {
-                    let draw = if insecure { Draw::InsecureBytes(len) } else { Draw::Bytes(len) };
-                    record(&l, draw)?;
-                    Ok((draw.make(store.data_mut().wasi().ctx.random())?,))
+                    Ok((draw(store.data_mut(), if insecure { Draw::InsecureBytes(len) } else { Draw::Bytes(len) })?,))
                 })?;
-                let l = log.clone();
                 at.func_wrap(word, move |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
-                    let draw = if insecure { Draw::InsecureU64 } else { Draw::U64 };
-                    record(&l, draw)?;
-                    let bytes = draw.make(store.data_mut().wasi().ctx.random())?;
+                    let bytes = draw(store.data_mut(), if insecure { Draw::InsecureU64 } else { Draw::U64 })?;
                     Ok((u64::from_le_bytes(bytes.try_into().expect("eight bytes")),))
                 })?;
             }
@@ -393,7 +385,7 @@ pub(crate) fn link_for_priming<T: WasiHost>(
             _ => {}
         }
     }
-    Ok(log)
+    Ok(())
 }
 
 /// `wasi:clocks/wall-clock`'s `datetime`.
@@ -405,12 +397,14 @@ struct Datetime {
 }
 
 impl WasiState {
-    /// The monotonic clock's reading now (for the carry of a priming).
-    pub(crate) fn monotonic_reading(&self) -> u64 {
-        match &self.monotonic {
+    /// What this world has handed out so far: the fixed monotonic clock's
+    /// reading and the random draws recorded while priming.
+    pub(crate) fn carry(&self) -> Carry {
+        let monotonic = match &self.monotonic {
             Monotonic::Fixed(n) => n.load(std::sync::atomic::Ordering::Relaxed),
             Monotonic::Real(_) => 0,
-        }
+        };
+        Carry { monotonic, draws: self.drawn.clone() }
     }
 }
 
