@@ -74,8 +74,15 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     publish_line_events(&js, "paddock.events", 0..events).await;
     let state = tempfile::tempdir().expect("a state directory");
     let mut children: Vec<_> = (0..workers)
-        .map(|k| work_process(Path::new(BIN), store, &state.path().join(format!("w{k}")), &server.url(), &format!("w{k}"), &[], false))
+        .map(|k| work_process(Path::new(BIN), store, &state.path().join(format!("w{k}")), &server.url(), &format!("w{k}"), &["--metrics", "127.0.0.1:0"], true))
         .collect();
+    // Each worker names its metrics address once its store is loaded (and
+    // it listens for SIGTERM); wait for all before counting.
+    for c in &mut children {
+        let mut first = String::new();
+        BufReader::new(c.stdout.take().expect("stdout")).read_line(&mut first).expect("reads the first line");
+        assert!(first.starts_with("metrics on "), "the address first: {first}");
+    }
 
     let mut seen = HashSet::with_capacity(events);
     let mut first = None;

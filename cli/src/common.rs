@@ -289,25 +289,37 @@ pub fn contract_text(c: &paddock_host::Contract) -> String {
     out
 }
 
-/// Resolves on Ctrl-C or SIGTERM, saying `stopping` on stderr.
-pub async fn shutdown_signal(stopping: &str) {
-    let ctrl_c = async {
-        let _ = tokio::signal::ctrl_c().await;
-    };
+/// Listens for Ctrl-C and SIGTERM from the moment it is called, and gives
+/// a future that resolves (saying `stopping` on stderr) once either came.
+///
+/// Call it first, inside `runtime`, before opening the store: a signal that
+/// arrives while models load is then held until the surface stops cleanly,
+/// instead of killing the process with the default disposition.
+///
+/// # Errors
+/// When the process cannot install its signal handlers.
+pub fn shutdown_signal(runtime: &tokio::runtime::Runtime, stopping: &str) -> Result<impl std::future::Future<Output = ()> + Send + 'static> {
+    let _inside = runtime.enter();
+    let stopping = stopping.to_owned();
     #[cfg(unix)]
-    let term = async {
-        match tokio::signal::unix::signal(tokio::signal::unix::SignalKind::terminate()) {
-            Ok(mut s) => {
-                s.recv().await;
+    {
+        use tokio::signal::unix::{SignalKind, signal};
+        let mut interrupt = signal(SignalKind::interrupt()).context("listening for Ctrl-C")?;
+        let mut terminate = signal(SignalKind::terminate()).context("listening for SIGTERM")?;
+        Ok(async move {
+            tokio::select! {
+                _ = interrupt.recv() => {},
+                _ = terminate.recv() => {},
             }
-            Err(_) => std::future::pending::<()>().await,
-        }
-    };
-    #[cfg(not(unix))]
-    let term = std::future::pending::<()>();
-    tokio::select! {
-        () = ctrl_c => {},
-        () = term => {},
+            eprintln!("{stopping}");
+        })
     }
-    eprintln!("{stopping}");
+    #[cfg(not(unix))]
+    {
+        let mut interrupt = tokio::signal::windows::ctrl_c().context("listening for Ctrl-C")?;
+        Ok(async move {
+            interrupt.recv().await;
+            eprintln!("{stopping}");
+        })
+    }
 }

@@ -93,3 +93,21 @@ async fn three_workers_one_killed_answer_every_event_once() {
         assert!(usage.exists(), "w{k} wrote its usage ledger to {}", usage.display());
     }
 }
+
+/// A worker told to stop as soon as it has loaded its store (its metrics
+/// address printed, the connection to NATS not yet made or just made)
+/// stops with exit 0: SIGTERM is listened for from the start, not only once
+/// events flow, and stopping does not wait for the streams to be made.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_worker_told_to_stop_while_it_connects_exits_cleanly() {
+    let server = NatsServer::start();
+    let dir = tempfile::tempdir().unwrap();
+    let store_dir = dir.path().join("store");
+    line_store(&store_dir);
+    let bin = Path::new(env!("CARGO_BIN_EXE_paddock"));
+    let mut w = work_process(bin, &store_dir, &dir.path().join("state"), &server.url(), "early", &["--metrics", "127.0.0.1:0"], true);
+    let mut first = String::new();
+    std::io::BufRead::read_line(&mut std::io::BufReader::new(w.stdout.take().unwrap()), &mut first).unwrap();
+    assert!(first.starts_with("metrics on "), "the address first: {first}");
+    assert!(terminate(&mut w), "a worker stopped early exits with 0");
+}

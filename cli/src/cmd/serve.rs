@@ -54,6 +54,8 @@ fn admin_token(file: Option<&PathBuf>) -> Result<Option<String>> {
 
 /// Opens the store, watches it, and serves until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the requests in flight")?;
     let registry = args.store.open()?;
     let refused = registry.status().problems().count();
     if refused > 0 {
@@ -70,7 +72,6 @@ pub fn run(args: Args) -> Result<Outcome> {
         ..defaults
     };
     let router = http::router(registry.clone(), options);
-    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     runtime.block_on(async {
         let listener = tokio::net::TcpListener::bind(args.listen).await.with_context(|| format!("listening on {}", args.listen))?;
         let addr = listener.local_addr()?;
@@ -78,7 +79,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         println!("listening on http://{addr}");
         use std::io::Write;
         std::io::stdout().flush()?;
-        http::serve(listener, router, crate::common::shutdown_signal("stopping: finishing the requests in flight")).await?;
+        http::serve(listener, router, stop).await?;
         anyhow::Ok(())
     })?;
     drop(watch);

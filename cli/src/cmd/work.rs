@@ -71,6 +71,8 @@ pub struct Args {
 
 /// Opens the store, watches it, and works until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the events in hand")?;
     let registry = args.store.open()?;
     let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
     let defaults = WorkerOptions::default();
@@ -91,7 +93,6 @@ pub fn run(args: Args) -> Result<Outcome> {
         ..defaults
     };
     let counts = std::sync::Arc::new(WorkerCounts::default());
-    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     let url = options.url.clone();
     runtime.block_on(async {
         if let Some(addr) = args.metrics {
@@ -103,7 +104,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             // Served until the runtime is dropped, after the worker stops.
             tokio::spawn(http::serve(listener, worker::metrics_router(registry.clone(), counts.clone()), std::future::pending()));
         }
-        worker::run(registry.clone(), options, counts.clone(), crate::common::shutdown_signal("stopping: finishing the events in hand"))
+        worker::run(registry.clone(), options, counts.clone(), stop)
             .await
             .with_context(|| format!("working on {url}"))
     })?;

@@ -239,14 +239,9 @@ enum Verdict {
     Retry(ErrorBody),
 }
 
-/// Runs a worker until `shutdown` resolves (or the consumer ends): pulls
-/// events, scores them with `registry`, publishes answers and dead letters.
-/// `counts` is updated as it goes (for metrics).
-///
-/// # Errors
-/// [`WorkerError`] when the server cannot be reached at start, or the
-/// streams or the consumer cannot be made.
-pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerCounts>, shutdown: impl std::future::Future<Output = ()>) -> Result<(), WorkerError> {
+/// Connects, makes the streams and the durable consumer, and opens the
+/// message stream `run` pulls from.
+async fn connect(options: &WorkerOptions) -> Result<(jetstream::Context, consumer::pull::Stream), WorkerError> {
     let client = async_nats::ConnectOptions::new()
         .name("paddock worker")
         .connect(options.url.as_str())
@@ -280,18 +275,35 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
         )
         .await
         .map_err(|e| js_error(format!("consumer {}", options.consumer), &e))?;
-    let mut messages = consumer
+    let messages = consumer
         .stream()
         .max_messages_per_batch(options.batch)
         .heartbeat(Duration::from_secs(5))
         .messages()
         .await
         .map_err(|e| js_error(format!("messages of consumer {}", options.consumer), &e))?;
+    Ok((js, messages))
+}
 
+/// Runs a worker until `shutdown` resolves (or the consumer ends): pulls
+/// events, scores them with `registry`, publishes answers and dead letters.
+/// `counts` is updated as it goes (for metrics).
+///
+/// # Errors
+/// [`WorkerError`] when the server cannot be reached at start, or the
+/// streams or the consumer cannot be made.
+pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerCounts>, shutdown: impl std::future::Future<Output = ()>) -> Result<(), WorkerError> {
+    let mut shutdown = std::pin::pin!(shutdown);
+    // Told to stop while still connecting or making the streams: nothing is
+    // in hand yet, so stop at once.
+    let setup = connect(&options);
+    let (js, mut messages) = tokio::select! {
+        () = &mut shutdown => return Ok(()),
+        ready = setup => ready?,
+    };
     let in_flight = Arc::new(Semaphore::new(options.in_flight));
     let scoring = Arc::new(Semaphore::new(options.threads.max(1)));
     let options = Arc::new(options);
-    let mut shutdown = std::pin::pin!(shutdown);
     loop {
         let permit = tokio::select! {
             () = &mut shutdown => break,
