@@ -478,7 +478,7 @@ impl Model {
                 (component, code, state, Carry::default())
             }
         };
-        let wasi = options.wasi.clone().map(|policy| WasiStart { policy, carry });
+        let wasi = options.wasi.clone().map(|policy| WasiStart::new(policy, carry));
         let pre = runtime.prepare(&component, options.wasi.as_ref()).map_err(LoadError::World)?;
         sandbox::make_memory_images(&component).map_err(LoadError::MemoryImage)?;
         let who: Arc<str> = artifact.digest().to_string().into();

@@ -132,7 +132,7 @@ pub(crate) fn prime(
     linker.define_unknown_imports_as_traps(&compiled).map_err(link)?;
     let pre = linker.instantiate_pre(&compiled).map_err(link)?;
     crate::sandbox::make_memory_images(&compiled).map_err(|e| PrimeError::Init(e.to_string()))?;
-    let start = wasi.map(|policy| WasiStart { policy: policy.clone(), carry: Carry::default() });
+    let start = wasi.map(|policy| WasiStart::new(policy.clone(), Carry::default()));
     let mut store = crate::sandbox::init_store(runtime, limits, start.as_ref());
     let failed = |e: wasmtime::Error| match import_called(&e) {
         Some(name) => PrimeError::Import(name),

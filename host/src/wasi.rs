@@ -126,8 +126,10 @@ pub(crate) struct WasiState {
 }
 
 impl WasiState {
-    /// A fresh empty world under `policy`.
-    pub(crate) fn new(policy: &WasiPolicy) -> Self {
+    /// A fresh empty world under `start`'s policy (the fixed random
+    /// streams from the start's own copy).
+    fn new(start: &WasiStart) -> Self {
+        let policy = &start.policy;
         let stdout = Capture::new(policy.output_bytes);
         let stderr = Capture::new(policy.output_bytes);
         let mut b = WasiCtxBuilder::new();
@@ -141,9 +143,9 @@ impl WasiState {
             Source::Real => Monotonic::Real(Instant::now()),
         };
         b.monotonic_clock(monotonic.clone());
-        if policy.random == Source::Fixed {
-            b.secure_random(wasmtime_wasi::Deterministic::new(stream(policy.seed, b"secure")));
-            b.insecure_random(wasmtime_wasi::Deterministic::new(stream(policy.seed, b"insecure")));
+        if let Some(streams) = &start.streams {
+            b.secure_random(wasmtime_wasi::Deterministic::new(streams.secure.clone()));
+            b.insecure_random(wasmtime_wasi::Deterministic::new(streams.insecure.clone()));
             b.insecure_random_seed(u128::from(policy.seed));
         }
         WasiState { ctx: b.build(), table: ResourceTable::new(), stdout, stderr, monotonic, drawn: Vec::new() }
@@ -155,7 +157,7 @@ impl WasiState {
     /// `init` drew (the same draws made again, so the streams stand exactly
     /// where they stood).
     pub(crate) fn start(start: &WasiStart) -> Self {
-        let mut state = WasiState::new(&start.policy);
+        let mut state = WasiState::new(start);
         if let Monotonic::Fixed(n) = &state.monotonic {
             n.store(start.carry.monotonic, std::sync::atomic::Ordering::Relaxed);
         }
@@ -185,15 +187,15 @@ impl WasiState {
 
 /// The bytes of a fixed random stream: 4 KiB of sha256 blocks of the seed.
 fn stream(seed: u64, purpose: &[u8]) -> Vec<u8> {
-    (0u32..128)
-        .flat_map(|block| {
-            let mut h = Sha256::new();
-            h.update(seed.to_le_bytes());
-            h.update(purpose);
-            h.update(block.to_le_bytes());
-            h.finalize().to_vec()
-        })
-        .collect()
+    let mut bytes = Vec::with_capacity(128 * 32);
+    for block in 0u32..128 {
+        let mut h = Sha256::new();
+        h.update(seed.to_le_bytes());
+        h.update(purpose);
+        h.update(block.to_le_bytes());
+        bytes.extend_from_slice(&h.finalize());
+    }
+    bytes
 }
 
 struct FixedWall(Duration);
@@ -273,6 +275,31 @@ pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), crate::too
 pub(crate) struct WasiStart {
     pub(crate) policy: WasiPolicy,
     pub(crate) carry: Carry,
+    /// The fixed random streams' bytes under a fixed-randomness policy,
+    /// hashed once per model rather than once per instance (256 SHA-256
+    /// blocks were a tenth of a fresh JavaScript instance).
+    streams: Option<Arc<FixedStreams>>,
+}
+
+impl WasiStart {
+    /// How instances start under `policy`, after what priming `carry`s.
+    pub(crate) fn new(policy: WasiPolicy, carry: Carry) -> Self {
+        let streams = (policy.random == Source::Fixed)
+            .then(|| Arc::new(FixedStreams { secure: stream(policy.seed, b"secure"), insecure: stream(policy.seed, b"insecure") }));
+        WasiStart { policy, carry, streams }
+    }
+}
+
+/// The bytes the fixed `random` and `insecure` streams cycle through.
+struct FixedStreams {
+    secure: Vec<u8>,
+    insecure: Vec<u8>,
+}
+
+impl std::fmt::Debug for FixedStreams {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "FixedStreams({} + {} bytes)", self.secure.len(), self.insecure.len())
+    }
 }
 
 /// What a model's `init` took from a fixed WASI world while it was primed:
