@@ -506,7 +506,9 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
     drop(reg);
 
-    // Flip one byte of the entry: its checksum no longer holds.
+    // Flip one byte of the entry (written anew, as an edit would be: an
+    // entry is never changed in place while mapped): its checksum no
+    // longer holds.
     let runtime = Runtime::new().unwrap();
     let cache = paddock_host::CodeCache::open(&store.join(".paddock/code")).unwrap();
     let bytes = std::fs::read(artifact_path(store, "m", &Version::new(1, 0, 0))).unwrap();
@@ -514,7 +516,7 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
     let mut code = std::fs::read(&entry).unwrap();
     let mid = code.len() / 2;
     code[mid] ^= 0x40;
-    std::fs::write(&entry, code).unwrap();
+    paddock_tests::write_atomically(&entry, &code);
     let reg = open(store);
     let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
         panic!("{:?}", reg.status().artifacts[0].code)
@@ -522,6 +524,20 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
     assert!(reason.contains("checksum does not match"), "{reason}");
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
     drop(reg);
+    assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
+
+    // An entry whose checksum is lost is not trusted either.
+    let mut sum = entry.clone().into_os_string();
+    sum.push(".sum");
+    std::fs::remove_file(&sum).unwrap();
+    let reg = open(store);
+    let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
+        panic!("{:?}", reg.status().artifacts[0].code)
+    };
+    assert!(reason.contains("no checksum beside it"), "{reason}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    drop(reg);
+    assert!(std::path::Path::new(&sum).exists(), "the remade entry has its checksum again");
     assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
 }
 
