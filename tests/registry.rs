@@ -517,26 +517,23 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
     let mid = code.len() / 2;
     code[mid] ^= 0x40;
     paddock_tests::write_atomically(&entry, &code);
-    let reg = open(store);
-    let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
-        panic!("{:?}", reg.status().artifacts[0].code)
+    // The next open drops the entry, saying why, compiles again and serves.
+    let dropped_and_remade = |why: &str| {
+        let reg = open(store);
+        let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
+            panic!("{:?}", reg.status().artifacts[0].code)
+        };
+        assert!(reason.contains(why), "{reason}");
+        assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
     };
-    assert!(reason.contains("checksum does not match"), "{reason}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
-    drop(reg);
+    dropped_and_remade("checksum does not match");
     assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
 
     // An entry whose checksum is lost is not trusted either.
     let mut sum = entry.clone().into_os_string();
     sum.push(".sum");
     std::fs::remove_file(&sum).unwrap();
-    let reg = open(store);
-    let Some(CodeSource::CompiledCacheFailed { reason }) = &reg.status().artifacts[0].code else {
-        panic!("{:?}", reg.status().artifacts[0].code)
-    };
-    assert!(reason.contains("no checksum beside it"), "{reason}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
-    drop(reg);
+    dropped_and_remade("no checksum beside it");
     assert!(std::path::Path::new(&sum).exists(), "the remade entry has its checksum again");
     assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
 }

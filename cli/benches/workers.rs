@@ -33,7 +33,7 @@ use std::time::{Duration, Instant};
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
-use paddock_tests::{NatsServer, line_event, line_store, publish_line_events, root, terminate, work_process};
+use paddock_tests::{NatsServer, line_event, line_store, metrics_address, publish_line_events, root, terminate, work_process};
 
 const BIN: &str = env!("CARGO_BIN_EXE_paddock");
 
@@ -79,9 +79,7 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     // Each worker names its metrics address once its store is loaded (and
     // it listens for SIGTERM); wait for all before counting.
     for c in &mut children {
-        let mut first = String::new();
-        BufReader::new(c.stdout.take().expect("stdout")).read_line(&mut first).expect("reads the first line");
-        assert!(first.starts_with("metrics on "), "the address first: {first}");
+        metrics_address(c);
     }
 
     let mut seen = HashSet::with_capacity(events);

@@ -13,7 +13,7 @@ use std::time::Duration;
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
-use paddock_tests::{NatsServer, line_store, publish_line_events, terminate, work_process};
+use paddock_tests::{NatsServer, line_store, metrics_address, publish_line_events, terminate, work_process};
 
 const EVENTS: usize = 100_000;
 
@@ -49,9 +49,7 @@ async fn three_workers_one_killed_answer_every_event_once() {
     let mut workers: Vec<Child> =
         (0..3).map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}"))).collect();
 
-    let mut first = String::new();
-    std::io::BufRead::read_line(&mut std::io::BufReader::new(workers[1].stdout.take().unwrap()), &mut first).unwrap();
-    let metrics = first.trim().strip_prefix("metrics on ").unwrap_or_else(|| panic!("the address first: {first}")).to_owned();
+    let metrics = metrics_address(&mut workers[1]);
 
     let mut seen: BTreeMap<String, f64> = BTreeMap::new();
     let mut by: BTreeSet<String> = BTreeSet::new();
@@ -106,8 +104,6 @@ async fn a_worker_told_to_stop_while_it_connects_exits_cleanly() {
     line_store(&store_dir);
     let bin = Path::new(env!("CARGO_BIN_EXE_paddock"));
     let mut w = work_process(bin, &store_dir, &dir.path().join("state"), &server.url(), "early", &["--metrics", "127.0.0.1:0"], true);
-    let mut first = String::new();
-    std::io::BufRead::read_line(&mut std::io::BufReader::new(w.stdout.take().unwrap()), &mut first).unwrap();
-    assert!(first.starts_with("metrics on "), "the address first: {first}");
+    metrics_address(&mut w);
     assert!(terminate(&mut w), "a worker stopped early exits with 0");
 }

@@ -592,7 +592,11 @@ impl Model {
         let mut problems = Vec::new();
         for (i, row) in rows.iter().enumerate() {
             match schema.encode_row(i + 1, row, &mut cells) {
-                Ok(()) => scored.iter_mut().for_each(|s| s.push(i + 1)),
+                Ok(()) => {
+                    if let Some(scored) = scored.as_deref_mut() {
+                        scored.push(i + 1);
+                    }
+                }
                 Err(e) => problems.extend(e),
             }
         }

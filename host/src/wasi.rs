@@ -168,6 +168,16 @@ impl WasiState {
         state
     }
 
+    /// What this world has handed out so far: the fixed monotonic clock's
+    /// reading and the random draws recorded while priming.
+    pub(crate) fn carry(&self) -> Carry {
+        let monotonic = match &self.monotonic {
+            Monotonic::Fixed(n) => n.load(std::sync::atomic::Ordering::Relaxed),
+            Monotonic::Real(_) => 0,
+        };
+        Carry { monotonic, draws: self.drawn.clone() }
+    }
+
     /// Writes what the model printed since the last call to the log.
     pub(crate) fn drain(&self, who: &str) {
         self.stdout.drain(who, "stdout");
@@ -421,18 +431,6 @@ pub(crate) fn link_for_priming<T: WasiHost>(linker: &mut Linker<T>, policy: &Was
 struct Datetime {
     seconds: u64,
     nanoseconds: u32,
-}
-
-impl WasiState {
-    /// What this world has handed out so far: the fixed monotonic clock's
-    /// reading and the random draws recorded while priming.
-    pub(crate) fn carry(&self) -> Carry {
-        let monotonic = match &self.monotonic {
-            Monotonic::Fixed(n) => n.load(std::sync::atomic::Ordering::Relaxed),
-            Monotonic::Real(_) => 0,
-        };
-        Carry { monotonic, draws: self.drawn.clone() }
-    }
 }
 
 /// A wait of `wanted`. A wait that would end after the call's deadline can

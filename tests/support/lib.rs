@@ -202,6 +202,19 @@ pub fn work_process(bin: &std::path::Path, store: &std::path::Path, state: &std:
         .expect("paddock runs")
 }
 
+/// The metrics address a `paddock work --metrics` process names on its
+/// first line of stdout (once its store is loaded and it listens for
+/// SIGTERM); takes the child's stdout.
+///
+/// # Panics
+/// When stdout was not piped, or the first line is not the address.
+pub fn metrics_address(child: &mut std::process::Child) -> String {
+    let mut first = String::new();
+    std::io::BufRead::read_line(&mut std::io::BufReader::new(child.stdout.take().expect("stdout is piped")), &mut first)
+        .expect("reads the first line");
+    first.trim().strip_prefix("metrics on ").unwrap_or_else(|| panic!("the address first: {first}")).to_owned()
+}
+
 /// Sends SIGTERM to a child process and waits for it; true when it then
 /// exited with 0.
 pub fn terminate(child: &mut std::process::Child) -> bool {
