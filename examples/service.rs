@@ -11,7 +11,8 @@ use std::sync::mpsc::sync_channel;
 use std::time::{Duration, Instant};
 
 use anyhow::Result;
-use paddock_host::{Context, Registry, RegistryOptions, Request, RequestError, Row, Runtime};
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request, RequestError};
 
 /// An event the service receives when a car plugs in.
 struct PlugIn {

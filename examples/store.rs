@@ -11,8 +11,9 @@
 use std::time::{Duration, Instant};
 
 use anyhow::{Context as _, Result};
-use paddock_host::registry::ROUTES_FILE;
-use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_serve::registry::ROUTES_FILE;
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request};
 
 fn main() -> Result<()> {
     let demo = paddock_examples::demo_store();

@@ -1,7 +1,7 @@
 //! The same artifact and rows give the same bits on every run and every
 //! instance, including where a NaN's bits could leak into an answer.
 
-use paddock_host::model::Isolation;
+use paddock_host::sandbox::model::Isolation;
 use paddock_host::{Artifact, Model, ModelOptions, Row, Runtime, RuntimeConfig};
 use paddock_tests::{demo_artifact, hostile_module, packed};
 

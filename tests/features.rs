@@ -8,9 +8,10 @@ use std::path::Path;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 
-use paddock_host::features::Outcome;
-use paddock_host::registry::{FeaturesState, artifact_path};
-use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_serve::features::Outcome;
+use paddock_serve::registry::{FeaturesState, artifact_path};
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
@@ -162,7 +163,7 @@ fn the_stream_scores_from_keys() {
     ]
     .join("\n");
     let mut out = Vec::new();
-    paddock_host::surface::stream::run(&reg, input.as_bytes(), &mut out, paddock_host::surface::stream::StreamOptions::default()).unwrap();
+    paddock_serve::surface::stream::run(&reg, input.as_bytes(), &mut out, paddock_serve::surface::stream::StreamOptions::default()).unwrap();
     let lines: Vec<serde_json::Value> = String::from_utf8(out).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     assert_eq!(lines[0]["answer"]["estimates"][0]["y"], 7.0, "{}", lines[0]);
     let second = &lines[1]["answer"];

@@ -15,7 +15,7 @@ use paddock_guest::{
     Tree, Trees, TreesParams, encode_params,
 };
 use paddock_guest::ndarray::{Array2, ArrayView2};
-use paddock_host::{Model, Row, Runtime, checking};
+use paddock_host::{Model, Row, Runtime, sandbox::verify};
 use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble, unhurried};
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
@@ -181,7 +181,7 @@ fn demo_artifacts_reproduce_their_training_outputs_exactly() {
         let model = Model::load(&runtime, artifact).unwrap();
         let carried = model.artifact().checks().unwrap().expect("demo artifacts carry checks");
         assert!(carried.cases.len() >= 20);
-        let report = checking::run(&model, &carried).unwrap();
+        let report = verify::run(&model, &carried).unwrap();
         assert!(report.ok(), "{name}: {report:?}");
         assert_eq!(report.max_abs_error, 0.0, "{name}: same code, same params, same bits");
     }

@@ -6,10 +6,11 @@ use std::path::Path;
 use std::sync::mpsc;
 use std::time::Duration;
 
-use paddock_host::registry::artifact_path;
-use paddock_host::surface::http::{self, ServeOptions};
-use paddock_host::surface::openapi;
-use paddock_host::{Digest, Limits, ModelOptions, Registry, RegistryOptions, Runtime};
+use paddock_serve::registry::artifact_path;
+use paddock_serve::surface::http::{self, ServeOptions};
+use paddock_serve::surface::openapi;
+use paddock_host::{Digest, Limits, ModelOptions, Runtime};
+use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{fixture, line_artifact, write_atomically};
 use semver::Version;
 

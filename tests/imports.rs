@@ -118,7 +118,7 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
     assert!(band.from.contains("category code"), "{}", band.from);
     assert_eq!(origin.contract.iter().find(|s| s.part == "name").unwrap().from, "the file's name (set `name` in a manifest to change it)");
     let model = Model::load(&Runtime::new().unwrap(), artifact).unwrap();
-    let report = paddock_host::checking::run(&model, &checks).unwrap();
+    let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
     assert!(report.ok(), "{report:?}");
     assert_eq!(report.cases, 178);
 }
@@ -327,7 +327,7 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
         }
         // The helper's checks, with the tolerance it derived from the same
         // rounding, pass when the model is scored against them.
-        let report = paddock_host::checking::run(&model, &checks).unwrap();
+        let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
         assert!(report.ok(), "{name}: the handed-off checks fail: {report:?}");
         eprintln!("{name}: largest relative difference {worst:.1e} over {} rows, score bound up to {widest:.1e} ({})", rows.len(), checks.source);
     }

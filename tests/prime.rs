@@ -8,7 +8,7 @@
 //! module (`tests/hostile/base.wat`) and the case below, or compared with
 //! the same artifact loaded unprimed.
 
-use paddock_host::model::Isolation;
+use paddock_host::sandbox::model::Isolation;
 use paddock_host::{Artifact, CodeCache, CodeSource, Model, ModelOptions, PrimeState, Priming, Row, Runtime, ScoreError, WasiPolicy};
 use paddock_tests::{demo_artifact, hostile_module, load_foreign, packed};
 
@@ -216,8 +216,8 @@ fn python_and_javascript_models_are_primed_and_answer_as_unprimed_ones() {
 #[test]
 fn a_wasi_model_whose_init_reaches_what_cannot_be_carried_is_not_primed_and_says_which_import() {
     let runtime = Runtime::new().unwrap();
-    let real_random = WasiPolicy { random: paddock_host::wasi::Source::Real, ..WasiPolicy::default() };
-    let real_clocks = WasiPolicy { clocks: paddock_host::wasi::Source::Real, ..WasiPolicy::default() };
+    let real_random = WasiPolicy { random: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
+    let real_clocks = WasiPolicy { clocks: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
     let fresh = |policy: &WasiPolicy| ModelOptions { wasi: Some(policy.clone()), ..options(Isolation::FreshPerCall, Priming::WhenFresh) };
     let cases = [
         ("wasi-probe", WasiPolicy::default(), "init calls `wasi:cli/stdout@"),

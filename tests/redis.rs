@@ -6,9 +6,10 @@
 use std::path::Path;
 use std::time::Duration;
 
-use paddock_host::features::Outcome;
-use paddock_host::registry::{FeaturesState, artifact_path};
-use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_serve::features::Outcome;
+use paddock_serve::registry::{FeaturesState, artifact_path};
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{RedisServer as Server, line_artifact, unhurried, write_atomically};
 use semver::Version;
 

@@ -11,10 +11,9 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use paddock_host::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
-use paddock_host::{
-    Artifact, Context, Digest, Registry, RegistryOptions, Request, RequestError, Row, Runtime, TrustError, TrustPolicy, VouchingKey,
-};
+use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
+use paddock_host::{Artifact, Digest, Row, Runtime, TrustError, TrustPolicy, VouchingKey};
+use paddock_serve::{Context, Registry, RegistryOptions, Request, RequestError};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
@@ -425,7 +424,7 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
     // The deadline is 50 ms by default; the call took at least that.
     assert!(a.wall_us.max >= 50_000.0, "{a:?}");
     let saved = reg.save_usage().unwrap();
-    let back: paddock_host::registry::SavedUsage = serde_json::from_slice(&std::fs::read(saved).unwrap()).unwrap();
+    let back: paddock_serve::registry::SavedUsage = serde_json::from_slice(&std::fs::read(saved).unwrap()).unwrap();
     assert_eq!(back.usage, usage);
 }
 
@@ -484,7 +483,7 @@ fn a_reload_that_changes_nothing_keeps_its_generation() {
 fn an_unreadable_usage_file_is_kept_aside_not_overwritten() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    let state = store.join(paddock_host::registry::STATE_DIR);
+    let state = store.join(paddock_serve::registry::STATE_DIR);
     std::fs::create_dir_all(&state).unwrap();
     std::fs::write(state.join("usage.json"), b"{ half a file").unwrap();
     let reg = serving_one(store, RegistryOptions::default());
@@ -574,7 +573,7 @@ fn the_watcher_picks_up_changes_by_event_and_by_rescan() {
     }
     {
         // Rescans only.
-        let _watch = paddock_host::registry::Watcher::polling(reg.clone(), Duration::from_millis(100)).unwrap();
+        let _watch = paddock_serve::registry::Watcher::polling(reg.clone(), Duration::from_millis(100)).unwrap();
         route_default_to(store, "1.0.0");
         assert!(wait_for("1.0.0"), "no reload by rescan: {:#?}", reg.status());
     }

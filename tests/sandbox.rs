@@ -4,11 +4,9 @@
 
 use std::time::Duration;
 
-use paddock_host::model::Isolation;
-use paddock_host::schema::OutputFault;
-use paddock_host::{
-    Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError,
-};
+use paddock_host::sandbox::model::Isolation;
+use paddock_host::contract::schema::OutputFault;
+use paddock_host::{Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError};
 use paddock_tests::{demo_artifact, fixture, load};
 
 /// The hand-written fixture with a behaviour byte (see tests/fixtures/affine.wat).

@@ -125,7 +125,7 @@ fn onnx_model(name: &str) -> Model {
     let dir = root().join("target/paddock/sklearn");
     let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
     let manifest = String::from_utf8(read("toml")).unwrap();
-    let params = paddock_host::onnx::params(&manifest, &read("onnx")).unwrap();
+    let params = paddock_import::onnx_graph::params(&manifest, &read("onnx")).unwrap();
     load(&Runtime::new().unwrap(), &guest("paddock-model-onnx"), &params, unhurried())
 }
 

@@ -3,9 +3,10 @@
 
 use std::path::Path;
 
-use paddock_host::registry::artifact_path;
-use paddock_host::surface::stream::{self, StreamOptions, StreamSummary};
-use paddock_host::{Registry, RegistryOptions, Runtime};
+use paddock_serve::registry::artifact_path;
+use paddock_serve::surface::stream::{self, StreamOptions, StreamSummary};
+use paddock_host::Runtime;
+use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 

@@ -5,7 +5,7 @@
 
 use std::path::PathBuf;
 
-use paddock_host::features::{Cell, Table};
+use paddock_serve::features::{Cell, Table};
 use paddock_tests::root;
 
 fn dir() -> PathBuf {

@@ -2,7 +2,7 @@
 //! the policy says. ed25519 itself is checked against RFC 8032's first test
 //! vector.
 
-use paddock_host::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
+use paddock_host::artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 use paddock_host::Digest;
 use paddock_tests::demo_artifact;
 

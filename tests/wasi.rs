@@ -1,4 +1,4 @@
-//! The WASI policy (host/src/wasi.rs), probed from inside: a Python model
+//! The WASI policy (host/src/sandbox/wasi.rs), probed from inside: a Python model
 //! (tests/guests/wasi_probe.py, built by componentize-py) tries the
 //! environment, arguments, files, sockets, clocks, randomness, sleeping and
 //! printing, and reports what it got.
@@ -8,7 +8,7 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use paddock_host::audit::audit;
-use paddock_host::wasi::Source;
+use paddock_host::sandbox::wasi::Source;
 use paddock_host::{LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy, WasiPolicy};
 use paddock_tests::{load_foreign, root};
 

@@ -12,9 +12,10 @@ use std::time::Duration;
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
-use paddock_host::registry::artifact_path;
-use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions, WorkerSummary};
-use paddock_host::{Limits, ModelOptions, Registry, RegistryOptions, Runtime};
+use paddock_serve::registry::artifact_path;
+use paddock_serve::surface::worker::{self, WorkerCounts, WorkerOptions, WorkerSummary};
+use paddock_host::{Limits, ModelOptions, Runtime};
+use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{NatsServer, line_artifact, line_store, publish_line_events, write_atomically};
 use semver::Version;
 
@@ -148,7 +149,7 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // registry's per-version scoring.
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let url = format!("http://{}/metrics", listener.local_addr().unwrap());
-    tokio::spawn(paddock_host::surface::http::serve(listener, worker::metrics_router(registry.clone(), counts[0].clone()), std::future::pending()));
+    tokio::spawn(paddock_serve::surface::http::serve(listener, worker::metrics_router(registry.clone(), counts[0].clone()), std::future::pending()));
     let text = tokio::task::spawn_blocking(move || ureq::get(&url).call().unwrap().body_mut().read_to_string().unwrap()).await.unwrap();
     let s = &summaries[0];
     for line in [

@@ -4,10 +4,8 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::{
-    Artifact, Isolation, Limits, Model, ModelOptions, Registry, RegistryOptions, Runtime, RuntimeConfig, TrustPolicy,
-    Vouch, Admission, WasiPolicy, wasi,
-};
+use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, TrustPolicy, Vouch, Admission, WasiPolicy, sandbox::wasi};
+use paddock_serve::{Registry, RegistryOptions};
 
 /// What every command that loads one artifact takes: the file, `--json`,
 /// and how to load it.

@@ -87,7 +87,7 @@ async fn three_workers_one_killed_answer_every_event_once() {
     assert!(calls >= by_w1, "{calls} calls, {by_w1} answers seen: {text}");
     for (k, w) in workers.iter_mut().enumerate().skip(1) {
         assert!(terminate(w), "a worker stops with 0 on SIGTERM");
-        let usage = paddock_host::registry::usage_path(&dir.path().join(format!("state-{k}")));
+        let usage = paddock_serve::registry::usage_path(&dir.path().join(format!("state-{k}")));
         assert!(usage.exists(), "w{k} wrote its usage ledger to {}", usage.display());
     }
 }

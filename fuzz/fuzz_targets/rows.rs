@@ -4,7 +4,7 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use paddock_host::row_file::{Columns, Format, RowFileError, records};
+use paddock_host::contract::row_file::{Columns, Format, RowFileError, records};
 use paddock_host::{Bounds, Contract, Domain, Feature, Output, Schema};
 
 fn schema() -> Schema {

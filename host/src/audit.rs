@@ -10,14 +10,14 @@ use std::path::{Path, PathBuf};
 use serde::Serialize;
 
 use crate::artifact::{Artifact, Inventory, inspect_bytes};
-use crate::digest::Digest;
-use crate::checking;
+use crate::artifact::digest::Digest;
+use crate::sandbox::verify;
 use crate::contract::Contract;
 use crate::limits::{Limits, fmt_duration};
-use crate::model::{LoadError, Model, ModelOptions};
-use crate::wasi::{self, WasiPolicy};
+use crate::sandbox::model::{LoadError, Model, ModelOptions};
+use crate::sandbox::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
-use crate::trust::{Admission, TrustPolicy, Vouch};
+use crate::artifact::trust::{Admission, TrustPolicy, Vouch};
 
 /// Who vouches for the artifact.
 #[derive(Clone, Debug, Serialize)]
@@ -230,7 +230,7 @@ fn probe(report: &mut AuditReport, model: &Model) {
             return;
         }
     };
-    let result = match checking::run(model, &carried) {
+    let result = match verify::run(model, &carried) {
         Ok(r) => r,
         Err(e) => {
             report.violations.push(format!("its checks do not run: {e}"));

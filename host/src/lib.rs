@@ -48,43 +48,28 @@
 #![deny(missing_docs)]
 
 pub mod artifact;
-mod atomic_file;
+pub mod atomic_file;
 pub mod audit;
 mod bindings;
-pub mod checking;
-pub mod checks;
-pub mod codecache;
 pub mod contract;
-pub mod digest;
-pub mod features;
 pub mod limits;
-pub mod model;
-pub mod onnx;
-pub mod prime;
-mod pool;
-pub mod registry;
-pub mod rows;
+#[cfg(feature = "openapi")]
+pub mod openapi;
 pub mod sandbox;
-pub mod schema;
-pub mod surface;
 pub mod tool_error;
-pub mod row_file;
-pub mod trust;
-pub mod wasi;
 
+pub use artifact::checks::{Checks, ChecksError, Tolerance};
+pub use artifact::digest::{Digest, DigestError};
+pub use artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 pub use artifact::{Artifact, ArtifactError, pack, pack_imported};
-pub use digest::{Digest, DigestError};
-pub use checking::{CaseFailure, CheckReport};
-pub use checks::{Checks, ChecksError, Tolerance};
-pub use codecache::{CacheError, CodeCache, CodeSource};
+pub use contract::rows::{ContractRule, Row, RowError, Value};
+pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};
 pub use limits::{LimitHit, Limits};
-pub use model::{Estimates, Isolation, LoadError, Model, ModelOptions, Priming, ScoreError, Scored, Usage};
-pub use prime::PrimeState;
-pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
-pub use rows::{ContractRule, Row, RowError, Value};
-pub use schema::{OutputFault, Schema};
+pub use sandbox::codecache::{CacheError, CodeCache, CodeSource};
+pub use sandbox::model::{Estimates, Isolation, LoadError, Model, ModelOptions, Priming, ScoreError, Scored, Usage};
+pub use sandbox::prime::PrimeState;
+pub use sandbox::verify::{CaseFailure, CheckReport};
+pub use sandbox::wasi::WasiPolicy;
 pub use sandbox::{Runtime, RuntimeConfig, RuntimeError, SandboxError};
 pub use tool_error::ToolError;
-pub use trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
-pub use wasi::WasiPolicy;

@@ -22,13 +22,18 @@
 //! linear model ([`Format::SklearnOnnx`]; float32 leaves and coefficients,
 //! so within their rounding), and PMML 4.x documents ([`Format::Pmml`]:
 //! regression, tree and mining models, evaluated as written).
+//!
+//! Beside them, [`onnx_graph`] frames any other ONNX graph, with a manifest
+//! giving its contract, as the params of the generic ONNX evaluator guest,
+//! which runs the graph itself.
 
 #![deny(missing_docs)]
 
 mod flatten;
 mod lightgbm;
-mod onnx;
 pub mod manifest;
+mod onnx;
+pub mod onnx_graph;
 mod origin;
 mod pmml;
 mod xgboost;

@@ -22,8 +22,9 @@ use std::path::Path;
 use std::time::Instant;
 
 use paddock_guest::{LinearParams, Link, Packaged, encode_params};
-use paddock_host::registry::artifact_path;
-use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_serve::registry::artifact_path;
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{RedisServer, guest, open_contract, root, write_atomically};
 use semver::Version;
 
@@ -59,7 +60,7 @@ fn plan(source: &str, key: &str) -> String {
 
 fn open(dir: &Path) -> Registry {
     let registry = Registry::open(&Runtime::new().unwrap(), dir, RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
-    assert!(registry.status().artifacts.iter().all(|a| matches!(a.state, paddock_host::registry::ArtifactState::Loaded)));
+    assert!(registry.status().artifacts.iter().all(|a| matches!(a.state, paddock_serve::registry::ArtifactState::Loaded)));
     registry
 }
 

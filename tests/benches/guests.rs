@@ -38,7 +38,7 @@ fn export(name: &str) -> Value {
 fn onnx(name: &str) -> Artifact {
     let dir = root().join("target/paddock/sklearn");
     let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
-    let params = paddock_host::onnx::params(&String::from_utf8(read("toml")).unwrap(), &read("onnx")).unwrap();
+    let params = paddock_import::onnx_graph::params(&String::from_utf8(read("toml")).unwrap(), &read("onnx")).unwrap();
     packed(&guest("paddock-model-onnx"), &params, None)
 }
 

@@ -32,7 +32,7 @@ use paddock_guest::{
     Bounds, Branch, Contract, Evaluate, Feature, Linear, LinearParams, Link, Node, Output, Packaged, Trees, TreesParams,
     encode_params,
 };
-use paddock_host::model::Isolation;
+use paddock_host::sandbox::model::Isolation;
 use paddock_host::{ModelOptions, PrimeState, Priming, Row, Runtime, RuntimeConfig};
 use paddock_tests::{guest, load, random_cells, random_ensemble};
 

@@ -16,7 +16,8 @@ use std::hint::black_box;
 use std::path::Path;
 
 use criterion::{Criterion, criterion_group, criterion_main};
-use paddock_host::{Context, Registry, RegistryOptions, Request, Row, Runtime};
+use paddock_host::{Row, Runtime};
+use paddock_serve::{Context, Registry, RegistryOptions, Request};
 
 fn options(state: &Path) -> RegistryOptions {
     // Several registries share the state directory's code cache here; none

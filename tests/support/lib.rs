@@ -144,7 +144,7 @@ pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, chec
         cases: (0..3)
             .map(|x| {
                 let y = slope * f64::from(x) + intercept + if honest { 0.0 } else { 1.0 };
-                paddock_host::checks::Case {
+                paddock_host::artifact::checks::Case {
                     row: paddock_host::Row::new().with("x", f64::from(x)),
                     expect: [("y".to_owned(), y)].into_iter().collect(),
                 }

@@ -13,9 +13,11 @@
 //!   Python and JavaScript `charge-taper` guests and the WASI probe with
 //!   componentize-py and componentize-js, and packs them (under a WASI
 //!   policy) with SciPy's reference values as their checks.
-//! - `deps`: checks that the library an embedder links (`paddock-host`
-//!   without default features) pulls in none of the command's crates, and
-//!   that no two of its modules depend on each other (`modules.rs`).
+//! - `deps`: checks that the libraries an embedder links pull in none of
+//!   the command's crates, that the core (`paddock-host`: artifact,
+//!   contract, sandbox) pulls in none of the serving half's (Parquet,
+//!   Redis, NATS, HTTP…), and that no two modules of a library depend on
+//!   each other (`modules.rs`).
 //! - `test`: `deps`, `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
@@ -79,8 +81,7 @@ fn main() -> Result<()> {
             foreign_guests(&root, &tools)
         }
         "test" => {
-            library_deps(&root)?;
-            modules::check(&root.join("host/src"))?;
+            deps(&root)?;
             let tools = build(&root)?;
             python_packages(&root)?;
             foreign_guests(&root, &tools)?;
@@ -114,7 +115,7 @@ fn main() -> Result<()> {
             }
             api_check(&root, &tools)
         }
-        "deps" => library_deps(&root).and_then(|()| modules::check(&root.join("host/src"))),
+        "deps" => deps(&root),
         "fuzz" => {
             build(&root)?;
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
@@ -434,18 +435,23 @@ fn python_packages(root: &Path) -> Result<()> {
     run(helper).context("installing the notebook helper (pip install ./handoff)")
 }
 
-/// Crates only the `paddock` command needs, which the library an embedder
-/// links must not pull in.
+/// Crates only the `paddock` command needs, which no library an embedder
+/// links may pull in.
 const CLI_ONLY: [&str; 4] = ["clap", "indicatif", "tracing-subscriber", "anyhow"];
 
-/// Checks what `paddock-host` without its default features links: none of
-/// [`CLI_ONLY`] anywhere in its tree, except `anyhow`, which wasmtime and
-/// wit-component use for their own errors: the library must not depend on
-/// it directly.
+/// Crates only the serving half (`paddock-serve`: the store, feature
+/// sources, surfaces) needs, which the core crate must not pull in.
+const SERVING_ONLY: [&str; 9] = ["parquet", "arrow-array", "arrow-schema", "redis", "notify", "hdrhistogram", "arc-swap", "axum", "async-nats"];
+
+/// Checks what each library links: neither `paddock-host` (the core: artifact,
+/// contract, sandbox) nor `paddock-serve` without its default features links
+/// any of [`CLI_ONLY`] (except `anyhow`, which wasmtime and wit-component use
+/// for their own errors: a library must not depend on it directly), and the
+/// core links none of [`SERVING_ONLY`].
 fn library_deps(root: &Path) -> Result<()> {
-    let tree = |depth: Option<&str>| -> Result<Vec<String>> {
+    let tree = |package: &str, depth: Option<&str>| -> Result<Vec<String>> {
         let mut cmd = cargo(root);
-        cmd.args(["tree", "-p", "paddock-host", "--no-default-features", "-e", "normal", "--prefix", "none"]);
+        cmd.args(["tree", "-p", package, "--no-default-features", "-e", "normal", "--prefix", "none"]);
         if let Some(d) = depth {
             cmd.args(["--depth", d]);
         }
@@ -455,17 +461,28 @@ fn library_deps(root: &Path) -> Result<()> {
         }
         Ok(String::from_utf8_lossy(&out.stdout).lines().filter_map(|l| l.split_whitespace().next()).map(str::to_owned).collect())
     };
-    let all = tree(None)?;
-    let direct = tree(Some("1"))?;
-    let mut found: Vec<&str> = CLI_ONLY.iter().copied().filter(|c| *c != "anyhow" && all.iter().any(|n| n == c)).collect();
-    if direct.iter().any(|n| n == "anyhow") {
-        found.push("anyhow (as a direct dependency)");
+    for (package, banned) in [("paddock-host", &[&CLI_ONLY[..], &SERVING_ONLY[..]].concat()), ("paddock-serve", &CLI_ONLY.to_vec())] {
+        let all = tree(package, None)?;
+        let direct = tree(package, Some("1"))?;
+        let mut found: Vec<&str> = banned.iter().copied().filter(|c| *c != "anyhow" && all.iter().any(|n| n == c)).collect();
+        if direct.iter().any(|n| n == "anyhow") {
+            found.push("anyhow (as a direct dependency)");
+        }
+        if !found.is_empty() {
+            bail!("{package} without default features links crates it must not: {}", found.join(", "));
+        }
+        eprintln!("xtask: {package} links none of {} (anyhow only through wasmtime and wit-component)", banned.join(", "));
     }
-    if !found.is_empty() {
-        bail!("paddock-host without default features links crates only the command needs: {}", found.join(", "));
-    }
-    eprintln!("xtask: paddock-host links none of {} (anyhow only through wasmtime and wit-component)", CLI_ONLY.join(", "));
     Ok(())
+}
+
+/// The library crates whose modules must not depend on each other in a circle.
+const LIBRARY_SOURCES: [&str; 3] = ["host/src", "serve/src", "import/src"];
+
+/// [`library_deps`], then [`modules::check`] on each of [`LIBRARY_SOURCES`].
+fn deps(root: &Path) -> Result<()> {
+    library_deps(root)?;
+    LIBRARY_SOURCES.iter().try_for_each(|src| modules::check(&root.join(src)))
 }
 
 /// The HTTP API against outside tools (`tests/api/check_api.py`):

@@ -93,9 +93,9 @@ fn text(r: &AuditReport) -> String {
     out
 }
 
-fn source(s: paddock_host::wasi::Source) -> &'static str {
+fn source(s: paddock_host::sandbox::wasi::Source) -> &'static str {
     match s {
-        paddock_host::wasi::Source::Fixed => "fixed",
-        paddock_host::wasi::Source::Real => "real",
+        paddock_host::sandbox::wasi::Source::Fixed => "fixed",
+        paddock_host::sandbox::wasi::Source::Real => "real",
     }
 }

@@ -3,7 +3,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use paddock_host::checking;
+use paddock_host::sandbox::verify;
 use paddock_host::Checks;
 
 use crate::Outcome;
@@ -38,7 +38,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             None => bail!("{} carries no checks; give a checks file with --checks", args.artifact.display()),
         },
     };
-    let report = checking::run(&model, &checks)?;
+    let report = verify::run(&model, &checks)?;
     if args.json {
         print_json(&report)?;
     } else {

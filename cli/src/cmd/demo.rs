@@ -13,7 +13,8 @@ use std::time::Duration;
 use anyhow::{Context, Result};
 use jiff::Timestamp;
 use jiff::tz::TimeZone;
-use paddock_host::{Model, Registry, Request, Row, Runtime};
+use paddock_host::{Model, Row, Runtime};
+use paddock_serve::{Registry, Request};
 use serde::Serialize;
 
 use crate::Outcome;
@@ -48,10 +49,10 @@ struct Answer {
     minutes: f64,
     minutes_version: String,
     /// Why that version (structured: `picked_by`, and the rule or canary).
-    minutes_reason: std::sync::Arc<paddock_host::registry::Reason>,
+    minutes_reason: std::sync::Arc<paddock_serve::registry::Reason>,
     overstay_probability: f64,
     overstay_version: String,
-    overstay_reason: std::sync::Arc<paddock_host::registry::Reason>,
+    overstay_reason: std::sync::Arc<paddock_serve::registry::Reason>,
 }
 
 /// Builds a model's row from named text cells, taking only its features.
@@ -65,7 +66,7 @@ fn row_for(model: &Model, cells: &HashMap<String, String>) -> Row {
 }
 
 /// The model version a request would get, to build its row by its contract.
-fn routed_model(registry: &Registry, name: &str, context: &paddock_host::Context, at: Timestamp) -> Result<Model> {
+fn routed_model(registry: &Registry, name: &str, context: &paddock_serve::Context, at: Timestamp) -> Result<Model> {
     let (version, _) = registry.route(name, context, Some(at)).with_context(|| format!("the demo store serves no `{name}`"))?;
     registry.model(name, &version).with_context(|| format!("{name} {version} is not loaded"))
 }
@@ -74,7 +75,7 @@ fn routed_model(registry: &Registry, name: &str, context: &paddock_host::Context
 /// this binary was built in (found from its own path, so the demo runs from
 /// any directory), else the current directory's.
 fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
-    let has_routes = |p: &std::path::Path| p.join(paddock_host::registry::ROUTES_FILE).exists();
+    let has_routes = |p: &std::path::Path| p.join(paddock_serve::registry::ROUTES_FILE).exists();
     if let Some(store) = given {
         anyhow::ensure!(
             has_routes(&store),
@@ -100,7 +101,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let store = demo_store(args.store.clone())?;
     // The demo shows this run's figures: it keeps no usage file (and so
     // also runs beside a host serving the same store).
-    let options = paddock_host::RegistryOptions { usage_flush: None, ..paddock_host::RegistryOptions::default() };
+    let options = paddock_serve::RegistryOptions { usage_flush: None, ..paddock_serve::RegistryOptions::default() };
     let registry = Registry::open(&runtime, &store, options)?;
     let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
     anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), store.display());
@@ -108,7 +109,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
     let mut answers = Vec::new();
-    let mut looked_up: std::collections::BTreeMap<paddock_host::features::Outcome, usize> = std::collections::BTreeMap::new();
+    let mut looked_up: std::collections::BTreeMap<paddock_serve::features::Outcome, usize> = std::collections::BTreeMap::new();
     for record in reader.records() {
         let mut cells: HashMap<String, String> =
             header.iter().zip(record?.iter()).map(|(k, v)| (k.to_owned(), v.to_owned())).collect();
@@ -118,7 +119,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         cells.insert("hour_of_week".into(), hour_of_week.to_string());
         // The keys: routes read the site and region; the overstay model's
         // site and member features are looked up by site and member.
-        let context: paddock_host::Context =
+        let context: paddock_serve::Context =
             ["site", "region", "member"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
         let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
@@ -155,7 +156,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         #[derive(Serialize)]
         struct Demo<'a> {
             answers: &'a [Answer],
-            usage: &'a paddock_host::registry::UsageReport,
+            usage: &'a paddock_serve::registry::UsageReport,
         }
         print_json(&Demo { answers: &answers, usage: &usage })?;
         return Ok(Outcome::Ok);
@@ -193,7 +194,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     if !looked_up.is_empty() {
         let count = |o| looked_up.get(&o).copied().unwrap_or(0);
-        use paddock_host::features::Outcome;
+        use paddock_serve::features::Outcome;
         println!(
             "overstay-risk read site occupancy and member overstay rate by key from the store's feature sources: {} found, {} missing (members not known yet: the feature is absent), {} stale",
             count(Outcome::Found),

@@ -4,7 +4,7 @@ use std::io::Write as _;
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Checks, checking};
+use paddock_host::{Artifact, Checks, sandbox::verify};
 use paddock_import::{Format, Manifest};
 use serde::Serialize;
 
@@ -135,7 +135,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
         (Some(manifest), true) => {
             let text = std::fs::read_to_string(manifest).with_context(|| format!("reading {}", manifest.display()))?;
-            let params = paddock_host::onnx::params(&text, &input).with_context(|| format!("in {}", manifest.display()))?;
+            let params = paddock_import::onnx_graph::params(&text, &input).with_context(|| format!("in {}", manifest.display()))?;
             let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_EVALUATOR));
             let guest = read(&evaluator).context("the ONNX evaluator guest (build it with `cargo xtask build`, or pass --evaluator)")?;
             (guest, Some(params))
@@ -186,7 +186,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let (_runtime, model) = load.load(tmp.path()).map_err(|e| e.context("the packed artifact does not load")).with_context(not_written)?;
         packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
         if let Some(checks) = &checks {
-            let report = checking::run(&model, checks).with_context(not_written)?;
+            let report = verify::run(&model, checks).with_context(not_written)?;
             if !report.ok() {
                 let first = report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default();
                 anyhow::bail!(

@@ -6,7 +6,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
 use indicatif::{ProgressBar, ProgressStyle};
-use paddock_host::row_file::{self, Format, Record};
+use paddock_host::contract::row_file::{self, Format, Record};
 use paddock_host::{Model, ScoreError};
 
 use crate::Outcome;

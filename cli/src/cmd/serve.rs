@@ -1,5 +1,5 @@
 //! `paddock serve`: serve a store over HTTP (the API in
-//! `host/src/surface/openapi.json`, also at `GET /openapi.json`). Watches
+//! `serve/src/surface/openapi.json`, also at `GET /openapi.json`). Watches
 //! the store and swaps versions without a restart; stops on Ctrl-C or
 //! SIGTERM after the requests in flight finish.
 
@@ -8,7 +8,7 @@ use std::path::PathBuf;
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::surface::http::{self, ServeOptions};
+use paddock_serve::surface::http::{self, ServeOptions};
 
 use crate::Outcome;
 use crate::common::StoreArgs;

@@ -6,7 +6,7 @@
 
 use anyhow::Result;
 use paddock_host::{CodeSource, PrimeState};
-use paddock_host::registry::{ArtifactState, FeaturesState, RoutesState};
+use paddock_serve::registry::{ArtifactState, FeaturesState, RoutesState};
 
 use crate::Outcome;
 use crate::common::{StoreArgs, print_json, text_table};
@@ -64,8 +64,8 @@ pub fn run(args: Args) -> Result<Outcome> {
         println!("store {} (generation {})\n", status.store.display(), status.generation);
         print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows));
         match &status.routes {
-            RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_host::registry::ROUTES_FILE),
-            RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_host::registry::ROUTES_FILE),
+            RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE),
+            RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE),
             RoutesState::Refused { problems } => {
                 println!("\nroutes: refused (the previous routes would keep serving):");
                 for p in problems {
@@ -73,7 +73,7 @@ pub fn run(args: Args) -> Result<Outcome> {
                 }
             }
         }
-        let features = paddock_host::registry::FEATURES_FILE;
+        let features = paddock_serve::registry::FEATURES_FILE;
         match &status.features {
             FeaturesState::Missing => println!("features: no {features} — rows carry their features"),
             FeaturesState::Accepted { tables, servers } => {

@@ -6,7 +6,7 @@
 use std::io::{BufReader, BufWriter};
 
 use anyhow::Result;
-use paddock_host::surface::stream::{self, StreamOptions};
+use paddock_serve::surface::stream::{self, StreamOptions};
 
 use crate::Outcome;
 use crate::common::StoreArgs;

@@ -5,7 +5,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use paddock_host::registry::{STATE_DIR, SavedUsage, usage_path};
+use paddock_serve::registry::{STATE_DIR, SavedUsage, usage_path};
 
 use crate::Outcome;
 use crate::common::{print_json, text_table};

@@ -4,7 +4,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
 use paddock_host::VouchingKey;
-use paddock_host::trust::{VOUCHER_SUFFIX, VOUCHING_KEY_SUFFIX};
+use paddock_host::artifact::trust::{VOUCHER_SUFFIX, VOUCHING_KEY_SUFFIX};
 
 use crate::Outcome;
 use crate::common::print_json;

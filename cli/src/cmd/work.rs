@@ -1,15 +1,15 @@
 //! `paddock work`: a stream worker on NATS JetStream. Every worker started
 //! with the same consumer shares its events; each event's answer is
 //! published once, bad events and model faults go to dead-letter (see
-//! `paddock_host::surface::worker`). Watches the store like `serve`; stops
+//! `paddock_serve::surface::worker`). Watches the store like `serve`; stops
 //! on Ctrl-C or SIGTERM after the events in hand are answered and acked,
 //! and writes the usage ledger as `serve` does.
 
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::surface::http;
-use paddock_host::surface::worker::{self, WorkerCounts, WorkerOptions};
+use paddock_serve::surface::http;
+use paddock_serve::surface::worker::{self, WorkerCounts, WorkerOptions};
 
 use crate::Outcome;
 use crate::common::StoreArgs;

@@ -24,7 +24,7 @@ use std::path::{Path, PathBuf};
 use anyhow::{Context, Result};
 use paddock_guest::ndarray::Array2;
 use paddock_guest::{Contract, Evaluate, Linear, LinearParams, Link, Packaged, Trees, encode_params};
-use paddock_host::checks::{Case, Checks, Tolerance};
+use paddock_host::artifact::checks::{Case, Checks, Tolerance};
 use paddock_host::{Row, Value};
 use rand::SeedableRng;
 use smartcore::linalg::basic::matrix::DenseMatrix;

@@ -1,0 +1,84 @@
+//! Checks: example rows with the outputs recorded where the model was
+//! trained, and a tolerance. An artifact carries them so anyone can prove
+//! the deployed file computes what the training code computed.
+//!
+//! This module is the format only; running checks against a loaded model
+//! is [`crate::sandbox::verify`].
+
+use std::collections::BTreeMap;
+
+use serde::{Deserialize, Serialize};
+
+use crate::contract::rows::Row;
+
+/// Why a checks section or file is refused.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum ChecksError {
+    /// The JSON does not parse into checks.
+    #[error("checks do not parse: {0}")]
+    Json(#[source] serde_json::Error),
+    /// The tolerance is negative, NaN or infinite.
+    #[error("checks do not parse: tolerance must be finite and ≥ 0, got abs {abs} rel {rel}")]
+    Tolerance {
+        /// The absolute part given.
+        abs: f64,
+        /// The relative part given.
+        rel: f64,
+    },
+}
+
+/// How far an output may be from its recorded value: it passes when
+/// `|actual − expected| ≤ abs + rel × |expected|` (the usual combined
+/// absolute/relative test, as in numpy's `isclose`).
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Tolerance {
+    /// Absolute part.
+    pub abs: f64,
+    /// Relative part.
+    pub rel: f64,
+}
+
+/// One example: a request row and the outputs recorded for it.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Case {
+    /// The row, as a caller would send it.
+    pub row: Row,
+    /// Output name → recorded value.
+    pub expect: BTreeMap<String, f64>,
+}
+
+/// A set of checks, stored as JSON in the artifact's `paddock-checks`
+/// section or in a file.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Checks {
+    /// Where and how the expected values were recorded.
+    #[serde(default)]
+    pub source: String,
+    /// The tolerance every case is held to.
+    pub tolerance: Tolerance,
+    /// The cases.
+    pub cases: Vec<Case>,
+}
+
+impl Checks {
+    /// Parses checks from JSON.
+    ///
+    /// # Errors
+    /// [`ChecksError::Json`] with the parser's message (line and column);
+    /// [`ChecksError::Tolerance`] for a tolerance that is not finite and ≥ 0.
+    pub fn from_json(bytes: &[u8]) -> Result<Checks, ChecksError> {
+        let checks: Checks = serde_json::from_slice(bytes).map_err(ChecksError::Json)?;
+        let t = checks.tolerance;
+        if !(t.abs >= 0.0 && t.rel >= 0.0 && t.abs.is_finite() && t.rel.is_finite()) {
+            return Err(ChecksError::Tolerance { abs: t.abs, rel: t.rel });
+        }
+        Ok(checks)
+    }
+
+    /// The checks as JSON.
+    pub fn to_json(&self) -> Vec<u8> {
+        serde_json::to_vec_pretty(self).unwrap_or_else(|e| panic!("checks serialize: {e}"))
+    }
+}
+

@@ -1,0 +1,705 @@
+//! Feature sources, between the registry and the sandbox: a request names
+//! keys (`site`, `vehicle`), and the features its model reads are looked
+//! up in the sources a features file declares, then checked against the
+//! contract like any row.
+//!
+//! - [`Plan`]: the features file (`plan` module): the sources, and per
+//!   model (and version) where each feature comes from and what a missing
+//!   or stale value becomes.
+//! - [`Table`]: an embedded table a batch job writes, held in memory.
+//! - [`Sources`]: the plan's tables, loaded; [`Resolved`]: a plan held to
+//!   one version's contract, ready to [`Resolved::gather`] rows. Both hold
+//!   their tables by `Arc`, so a request that took them sees one table from
+//!   start to end, whatever is swapped in meanwhile.
+//!
+//! What it is not: a feature store. It reads what a batch job wrote; it
+//! computes nothing.
+
+pub mod counts;
+pub mod plan;
+pub mod redis;
+pub mod table;
+
+use std::collections::BTreeMap;
+use std::sync::Arc;
+
+use semver::Version;
+use serde::Serialize;
+
+pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use counts::{SourceCounts, SourceKind, SourceUsage};
+pub use redis::{RedisSource, Trouble};
+pub use table::{Cell, Table, TableError};
+
+use paddock_host::contract::{Contract, Domain};
+use paddock_host::contract::rows::{Row, Value};
+
+/// The plan's sources, loaded.
+#[derive(Clone, Debug, Default)]
+pub struct Sources {
+    tables: BTreeMap<String, Arc<Table>>,
+    redis: BTreeMap<String, Arc<RedisSource>>,
+    counts: BTreeMap<String, Arc<SourceCounts>>,
+}
+
+impl Sources {
+    /// Reads every table the plan declares and makes its Redis sources
+    /// (which connect on their first read).
+    ///
+    /// # Errors
+    /// Every source that could not be made, each naming its file, row and
+    /// column, or its URL.
+    pub fn load(plan: &Plan) -> Result<Sources, Vec<String>> {
+        let mut sources = Sources::default();
+        let mut problems = Vec::new();
+        for (name, source) in &plan.sources {
+            let counts = sources.counts(name);
+            match source {
+                Source::Table { path, key, updated } => match Table::read(path, key, updated.as_deref()) {
+                    Ok(t) => {
+                        sources.tables.insert(name.clone(), Arc::new(t));
+                    }
+                    Err(e) => problems.push(e.to_string()),
+                },
+                Source::Redis { url, budget, .. } => match RedisSource::new(url, *budget, counts) {
+                    Ok(r) => {
+                        sources.redis.insert(name.clone(), Arc::new(r));
+                    }
+                    Err(e) => problems.push(format!("sources.{name}: {e}")),
+                },
+            }
+        }
+        if problems.is_empty() { Ok(sources) } else { Err(problems) }
+    }
+
+    /// Sources from tables already read and Redis sources already made,
+    /// by source name, counting into `counts` (by source name; a source
+    /// with no counters there gets new ones).
+    pub fn from_parts(tables: BTreeMap<String, Arc<Table>>, redis: BTreeMap<String, Arc<RedisSource>>, counts: BTreeMap<String, Arc<SourceCounts>>) -> Sources {
+        Sources { tables, redis, counts }
+    }
+
+    /// The counters of a source, made on first use.
+    pub fn counts(&mut self, name: &str) -> Arc<SourceCounts> {
+        self.counts.entry(name.to_owned()).or_default().clone()
+    }
+
+    /// Every source's counters now.
+    pub fn usage(&self) -> Vec<SourceUsage> {
+        let kind = |name: &str| if self.redis.contains_key(name) { SourceKind::Redis } else { SourceKind::Table };
+        self.counts.iter().map(|(name, c)| c.report(name, kind(name))).collect()
+    }
+
+    /// The table of a source.
+    pub fn table(&self, name: &str) -> Option<&Arc<Table>> {
+        self.tables.get(name)
+    }
+
+    /// The Redis source of a name.
+    pub fn redis(&self, name: &str) -> Option<&Arc<RedisSource>> {
+        self.redis.get(name)
+    }
+}
+
+/// How a step reads its source.
+#[derive(Clone, Debug)]
+enum Via {
+    Table { table: Arc<Table>, column: usize },
+    Redis { source: Arc<RedisSource>, updated: Option<String> },
+}
+
+/// One looked-up feature, ready.
+#[derive(Clone, Debug)]
+struct Step {
+    feature: String,
+    domain: Domain,
+    source: String,
+    via: Via,
+    lookup: Lookup,
+    counts: Arc<SourceCounts>,
+}
+
+/// A model version's plan, held to its contract, with its sources.
+#[derive(Clone, Debug)]
+pub struct Resolved {
+    steps: Vec<Step>,
+    keys: Vec<String>,
+}
+
+/// How much of what was looked up is reported per row.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(rename_all = "snake_case")]
+pub enum Lookups {
+    /// Only the features that fell back (missing, stale or unavailable).
+    #[default]
+    Fallbacks,
+    /// Every looked-up feature: source, key, age, outcome.
+    All,
+}
+
+/// What became of one looked-up feature for one row.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(rename_all = "snake_case")]
+pub enum Outcome {
+    /// The row carried the feature itself: no lookup.
+    FromRequest,
+    /// Found, fresh enough.
+    Found,
+    /// No such key, or an empty cell: the feature's fallback.
+    Missing,
+    /// Older than its allowed age: the feature's fallback.
+    Stale,
+    /// The source did not answer within its budget, failed, or is paused
+    /// after failing: the feature's fallback.
+    Unavailable,
+}
+
+impl Outcome {
+    /// Its name, as the wire and the metrics write it.
+    pub fn name(self) -> &'static str {
+        match self {
+            Outcome::FromRequest => "from_request",
+            Outcome::Found => "found",
+            Outcome::Missing => "missing",
+            Outcome::Stale => "stale",
+            Outcome::Unavailable => "unavailable",
+        }
+    }
+}
+
+/// Where one feature of a row came from.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct Fetched {
+    /// The feature.
+    pub feature: String,
+    /// The source.
+    pub source: String,
+    /// The key looked up.
+    pub key: String,
+    /// What became of it.
+    pub outcome: Outcome,
+    /// How old the value was, in seconds, when the source says.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub age: Option<f64>,
+}
+
+/// Why a row's features could not be gathered.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum GatherError {
+    /// The request lacks a key the plan needs.
+    #[error("the request has no key `{key}` (the model's keys: {})", keys.join(", "))]
+    NoKey {
+        /// The key.
+        key: String,
+        /// The keys the model takes.
+        keys: Vec<String>,
+    },
+    /// A feature whose fallback is to fail was missing or stale.
+    #[error("feature `{feature}`: {} in source `{from}` under key `{key}`", if *stale { "too old" } else { "nothing" })]
+    Missing {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// Whether it was there but too old.
+        stale: bool,
+    },
+    /// A feature whose fallback is to fail could not be read: its source
+    /// did not answer in time, or failed.
+    #[error("feature `{feature}`: source `{from}` could not be read for key `{key}`: {trouble}")]
+    Unavailable {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// What happened.
+        trouble: String,
+    },
+    /// The source's value does not fit the feature.
+    #[error("feature `{feature}`: source `{from}` has `{value}` under key `{key}`, not {wanted}")]
+    WrongKind {
+        /// The feature.
+        feature: String,
+        /// The source.
+        from: String,
+        /// The key.
+        key: String,
+        /// The value.
+        value: String,
+        /// What the feature takes.
+        wanted: &'static str,
+    },
+}
+
+impl GatherError {
+    /// The feature (or key) to blame, and its value as text.
+    pub fn place(&self) -> (&str, String) {
+        match self {
+            GatherError::NoKey { key, .. } => (key, "absent".to_owned()),
+            GatherError::Missing { feature, .. } | GatherError::Unavailable { feature, .. } => (feature, "absent".to_owned()),
+            GatherError::WrongKind { feature, value, .. } => (feature, value.clone()),
+        }
+    }
+}
+
+impl Resolved {
+    /// Holds `model` `version`'s plan to its contract and binds its
+    /// sources; `deadline` is the version's deadline per call, which every
+    /// Redis budget must fit inside. `None` when the plan says nothing of
+    /// the model.
+    ///
+    /// # Errors
+    /// Every problem: features the contract lacks, required features with
+    /// no source, tables or columns that are not there, a budget longer
+    /// than the deadline.
+    pub fn new(plan: &Plan, sources: &Sources, model: &str, version: &Version, contract: &Contract, deadline: std::time::Duration) -> Result<Option<Resolved>, Vec<String>> {
+        let Some(m) = plan.models.get(model) else { return Ok(None) };
+        let mut problems = plan.check(model, version, contract);
+        let mut steps = Vec::new();
+        for (feature, supply) in m.features_of(version) {
+            let Supply::Lookup(lookup) = supply else { continue };
+            let Some(f) = contract.features.iter().find(|f| &f.name == feature) else { continue };
+            let via = if let Some(table) = sources.table(&lookup.source) {
+                let Some(column) = table.column(&lookup.field) else {
+                    problems.push(format!(
+                        "{model} {version}: feature `{feature}`: source `{}` has no column `{}` (it has {})",
+                        lookup.source,
+                        lookup.field,
+                        table.columns().collect::<Vec<_>>().join(", ")
+                    ));
+                    continue;
+                };
+                Via::Table { table: Arc::clone(table), column }
+            } else if let Some(redis) = sources.redis(&lookup.source) {
+                if redis.budget() > deadline {
+                    problems.push(format!(
+                        "{model} {version}: feature `{feature}`: source `{}` has a budget of {} ms, longer than the version's deadline of {} ms: a lookup must fit inside the call's time",
+                        lookup.source,
+                        redis.budget().as_millis(),
+                        deadline.as_millis()
+                    ));
+                }
+                let updated = match plan.sources.get(&lookup.source) {
+                    Some(Source::Redis { updated, .. }) => updated.clone(),
+                    _ => None,
+                };
+                Via::Redis { source: Arc::clone(redis), updated }
+            } else {
+                problems.push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
+                continue;
+            };
+            if let Fallback::Default(v) = &lookup.missing {
+                if let Some(problem) = misfit(v, &f.domain) {
+                    problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
+                }
+            }
+            let counts = sources.counts.get(&lookup.source).cloned().unwrap_or_default();
+            steps.push(Step { feature: feature.clone(), domain: f.domain.clone(), source: lookup.source.clone(), via, lookup: lookup.clone(), counts });
+        }
+        if problems.is_empty() { Ok(Some(Resolved { steps, keys: m.keys.clone() })) } else { Err(problems) }
+    }
+
+    /// The keys a request carries for this model.
+    pub fn keys(&self) -> &[String] {
+        &self.keys
+    }
+
+    /// Completes `row` with the features the plan looks up, at `now`
+    /// (Unix seconds); see [`Resolved::gather_rows`].
+    ///
+    /// # Errors
+    /// As [`Resolved::gather_rows`] says of each row.
+    pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
+        self.gather_rows(context, std::slice::from_ref(row), now, Lookups::All).pop().expect("one row in, one out")
+    }
+
+    /// Completes each row with the features the plan looks up, at `now`
+    /// (Unix seconds). The keys are the request's `context`, each
+    /// overridden by a field of the row named as a key (which then leaves
+    /// the row: keys are not features). A feature the row carries itself
+    /// wins over its lookup. Each Redis source is read once for all the
+    /// rows: one pipeline, one round trip. Returns, per row, the completed
+    /// row and where each looked-up feature came from (each one, or only
+    /// those that fell back, as `report` says), or a
+    /// [`GatherError`]: a key the plan needs for a feature that must not
+    /// fall back is missing, such a feature has nothing fresh or its source
+    /// could not be read, or a value does not fit.
+    pub fn gather_rows(&self, context: &BTreeMap<String, String>, rows: &[Row], now: f64, report: Lookups) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+        let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> = rows.iter().map(|r| self.split(context, r)).collect();
+        let mut buf = String::new();
+        // One batch of HMGETs per Redis source: each key once, with every
+        // field any row needs of it.
+        let mut batches: BTreeMap<&str, Batch> = BTreeMap::new();
+        for step in &self.steps {
+            let Via::Redis { updated, .. } = &step.via else { continue };
+            let batch = batches.entry(step.source.as_str()).or_default();
+            for (keys, row) in &prepared {
+                if carries(row, &step.feature) {
+                    continue;
+                }
+                if let Ok(key) = step.lookup.key.render(keys, &mut buf) {
+                    batch.ask(key, &step.lookup.field, updated.as_deref());
+                }
+            }
+        }
+        // Every source asked at once; the request waits for the slowest,
+        // each within its own budget.
+        let source = |name: &str| {
+            self.steps.iter().find_map(|s| match &s.via {
+                Via::Redis { source, .. } if s.source == name => Some(source),
+                _ => None,
+            })
+        };
+        let pending: Vec<_> = batches.iter().map(|(name, batch)| source(name).map(|s| s.send(&batch.asks))).collect();
+        for (batch, pending) in batches.values_mut().zip(pending) {
+            batch.answer = pending.map(redis::Pending::wait);
+        }
+        // The scratch buffers live on the thread: a request allocates none.
+        SCRATCH.with_borrow_mut(|scratch| prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, scratch, report)).collect())
+    }
+
+    /// The keys of a row, and the row without its key fields.
+    fn split<'c>(&self, context: &'c BTreeMap<String, String>, row: &Row) -> (std::borrow::Cow<'c, BTreeMap<String, String>>, Row) {
+        // Room for the features the steps add: the row grows once.
+        let room = row.fields().len() + self.steps.len();
+        if !self.keys.iter().any(|k| row.fields().iter().any(|(n, _)| n == k)) {
+            let mut copy = Row::with_capacity(room);
+            for (name, value) in row.fields() {
+                copy.insert(name.clone(), value.clone());
+            }
+            return (std::borrow::Cow::Borrowed(context), copy);
+        }
+        let mut keys = context.clone();
+        let mut rest = Row::with_capacity(room);
+        for (name, value) in row.fields() {
+            if self.keys.contains(name) {
+                match value {
+                    Value::Label(s) => keys.insert(name.clone(), s.clone()),
+                    Value::Integer(i) => keys.insert(name.clone(), i.to_string()),
+                    Value::Number(n) => keys.insert(name.clone(), n.to_string()),
+                    Value::Flag(b) => keys.insert(name.clone(), b.to_string()),
+                    Value::Absent => None,
+                };
+            } else {
+                rest.insert(name.clone(), value.clone());
+            }
+        }
+        (std::borrow::Cow::Owned(keys), rest)
+    }
+
+    /// One row completed, its Redis values taken from `batches`. Nothing
+    /// is allocated for a feature found and not reported but its value in
+    /// the row; consecutive steps reading one table under one key probe it
+    /// once.
+    fn complete(&self, keys: &BTreeMap<String, String>, row: Row, now: f64, batches: &BTreeMap<&str, Batch>, scratch: &mut Scratch, report: Lookups) -> Result<(Row, Vec<Fetched>), GatherError> {
+        let Scratch { key: buf, probed_key, probed } = scratch;
+        *probed = None;
+        let mut out = row;
+        let mut fetched = Vec::new();
+        let all = report == Lookups::All;
+        for step in &self.steps {
+            // Each step sets only its own feature, so `out` still shows
+            // what the row itself carried for this one.
+            if carries(&out, &step.feature) {
+                step.counts.lookup(Outcome::FromRequest);
+                if all {
+                    let key = step.lookup.key.render(keys, buf).unwrap_or_default().to_owned();
+                    fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
+                }
+                continue;
+            }
+            // No key: nothing can be found; the feature falls back, or the
+            // row fails naming the key when its fallback is to fail.
+            let key = match step.lookup.key.render(keys, buf) {
+                Ok(key) => Some(key),
+                Err(k) if step.lookup.missing == Fallback::Fail => {
+                    step.counts.lookup(Outcome::Missing);
+                    return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() });
+                }
+                Err(_) => None,
+            };
+            let read = match (key, &step.via) {
+                (None, _) => Read::Found(None),
+                (Some(key), Via::Table { table, column }) => {
+                    let id = Arc::as_ptr(table);
+                    let at = match probed {
+                        Some((t, at)) if *t == id && probed_key == key => *at,
+                        _ => {
+                            let at = table.row(key);
+                            probed_key.clear();
+                            probed_key.push_str(key);
+                            *probed = Some((id, at));
+                            at
+                        }
+                    };
+                    Read::Found(at.map(|at| table.at(at, *column)))
+                }
+                (Some(key), Via::Redis { .. }) => read_redis(step, key, batches),
+            };
+            let (outcome, cell, age, trouble) = match read {
+                Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
+                Read::Found(found) => {
+                    let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
+                    let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
+                    match found {
+                        Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(cell), age, None),
+                        Some((Cell::Absent, _)) | None => (Outcome::Missing, None, age, None),
+                        Some(_) => (Outcome::Stale, None, age, None),
+                    }
+                }
+            };
+            step.counts.lookup(outcome);
+            let shown = || key.map_or_else(|| format!("(no key for {})", step.lookup.key.text()), str::to_owned);
+            let value = match cell {
+                Some(cell) => Some(value_of(cell, step, key.unwrap_or_default())?),
+                None => None,
+            };
+            let value = match (value, &step.lookup.missing) {
+                (Some(v), _) => v,
+                (None, Fallback::Absent) => Value::Absent,
+                (None, Fallback::Default(v)) => v.clone(),
+                (None, Fallback::Fail) => {
+                    let (feature, from, key) = (step.feature.clone(), step.source.clone(), shown());
+                    return Err(match trouble {
+                        Some(t) => GatherError::Unavailable { feature, from, key, trouble: t.to_string() },
+                        None => GatherError::Missing { feature, from, key, stale: outcome == Outcome::Stale },
+                    });
+                }
+            };
+            if all || outcome != Outcome::Found {
+                fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key: shown(), outcome, age });
+            }
+            out.set(&step.feature, value);
+        }
+        Ok((out, fetched))
+    }
+}
+
+thread_local! {
+    static SCRATCH: std::cell::RefCell<Scratch> = std::cell::RefCell::default();
+}
+
+/// Buffers the rows a thread completes share.
+#[derive(Default)]
+struct Scratch {
+    /// A rendered key.
+    key: String,
+    /// The key last probed in a table, and which table and row it found.
+    probed_key: String,
+    probed: Option<(*const Table, Option<usize>)>,
+}
+
+/// Whether the row gives the feature itself.
+fn carries(row: &Row, feature: &str) -> bool {
+    row.fields().iter().any(|(n, v)| n == feature && *v != Value::Absent)
+}
+
+/// The HMGETs of one Redis source for one request, and their answer.
+#[derive(Default)]
+struct Batch {
+    index: std::collections::HashMap<String, usize>,
+    asks: Vec<(String, Vec<String>)>,
+    answer: Option<Result<Vec<Vec<Option<String>>>, Trouble>>,
+}
+
+impl Batch {
+    fn ask(&mut self, key: &str, field: &str, updated: Option<&str>) {
+        let at = match self.index.get(key) {
+            Some(&at) => at,
+            None => {
+                self.asks.push((key.to_owned(), Vec::new()));
+                self.index.insert(key.to_owned(), self.asks.len() - 1);
+                self.asks.len() - 1
+            }
+        };
+        let fields = &mut self.asks[at].1;
+        for f in std::iter::once(field).chain(updated) {
+            if !fields.iter().any(|g| g == f) {
+                fields.push(f.to_owned());
+            }
+        }
+    }
+
+    /// The value of `field` under `key`, if asked for and answered.
+    fn value(&self, key: &str, field: &str) -> Option<&str> {
+        let at = *self.index.get(key)?;
+        let position = self.asks[at].1.iter().position(|f| f == field)?;
+        let Some(Ok(values)) = &self.answer else { return None };
+        values.get(at)?.get(position)?.as_deref()
+    }
+}
+
+/// What a lookup read: the cell and when its row was computed, or trouble.
+enum Read<'a> {
+    Found(Option<(Cell<'a>, Option<f64>)>),
+    Unavailable(Trouble),
+}
+
+/// A Redis lookup's value, from its source's answer to the request.
+fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
+    match &step.via {
+        Via::Table { .. } => Read::Found(None),
+        Via::Redis { updated, .. } => {
+            let Some(batch) = batches.get(step.source.as_str()) else { return Read::Found(None) };
+            if let Some(Err(t)) = &batch.answer {
+                return Read::Unavailable(t.clone());
+            }
+            let cell = batch.value(key, &step.lookup.field).map_or(Cell::Absent, Cell::Text);
+            let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|t| {
+                t.parse::<f64>().ok().or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
+            });
+            // A key with none of the fields asked is not there.
+            let present = batch.index.get(key).is_some_and(|&at| match &batch.answer {
+                Some(Ok(values)) => values.get(at).is_some_and(|v| v.iter().any(Option::is_some)),
+                _ => false,
+            });
+            Read::Found(present.then_some((cell, when)))
+        }
+    }
+}
+
+/// Why a default does not fit a feature's domain, if it does not.
+fn misfit(v: &Value, domain: &Domain) -> Option<String> {
+    let fits = match (v, domain) {
+        (Value::Number(_) | Value::Integer(_), Domain::Real(_)) | (Value::Integer(_), Domain::Whole(_)) | (Value::Flag(_), Domain::Flag) => true,
+        (Value::Number(n), Domain::Whole(_)) => n.fract() == 0.0,
+        (Value::Label(l), Domain::Label(labels)) => labels.contains(l),
+        _ => false,
+    };
+    (!fits).then(|| format!("{v:?} does not fit its domain ({domain})"))
+}
+
+/// A source's cell as the feature's value.
+fn value_of(cell: Cell<'_>, step: &Step, key: &str) -> Result<Value, GatherError> {
+    let wrong = |value: String, wanted| GatherError::WrongKind { feature: step.feature.clone(), from: step.source.clone(), key: key.to_owned(), value, wanted };
+    // A number written as text (its column holds other text too).
+    let cell = match (&step.domain, cell) {
+        (Domain::Real(_) | Domain::Whole(_) | Domain::Flag, Cell::Text(t)) => t.parse::<f64>().map_or(cell, Cell::Number),
+        _ => cell,
+    };
+    Ok(match (&step.domain, cell) {
+        (Domain::Real(_), Cell::Number(n)) => Value::Number(n),
+        (Domain::Whole(_), Cell::Number(n)) if n.fract() == 0.0 && n.abs() < 9.0e15 => Value::Integer(n as i64),
+        (Domain::Whole(_), Cell::Number(n)) => Value::Number(n),
+        (Domain::Label(_), Cell::Text(t)) => Value::Label(t.to_owned()),
+        (Domain::Label(_), Cell::Number(n)) => Value::Label(n.to_string()),
+        (Domain::Flag, Cell::Number(n)) if n == 0.0 || n == 1.0 => Value::Flag(n == 1.0),
+        (Domain::Flag, Cell::Text("true" | "yes")) => Value::Flag(true),
+        (Domain::Flag, Cell::Text("false" | "no")) => Value::Flag(false),
+        (Domain::Flag, c) => return Err(wrong(show(c), "a yes/no value")),
+        (_, c) => return Err(wrong(show(c), "a number")),
+    })
+}
+
+fn show(c: Cell<'_>) -> String {
+    match c {
+        Cell::Number(n) => n.to_string(),
+        Cell::Text(t) => t.to_owned(),
+        Cell::Absent => "nothing".to_owned(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use paddock_host::contract::{Bounds, Feature, Output};
+
+    fn feature(name: &str, domain: Domain, required: bool) -> Feature {
+        Feature { name: name.into(), domain, unit: None, required, about: String::new() }
+    }
+
+    fn contract() -> Contract {
+        Contract {
+            name: "charge-minutes".into(),
+            version: "1.0.0".into(),
+            about: String::new(),
+            features: vec![
+                feature("charger_kw", Domain::Real(Bounds { min: None, max: None }), true),
+                feature("avg_minutes_7d", Domain::Real(Bounds { min: None, max: None }), false),
+                feature("plug", Domain::Label(vec!["ccs2".into(), "type2".into()]), true),
+                feature("occupancy", Domain::Whole(Bounds { min: None, max: None }), true),
+            ],
+            outputs: vec![Output { name: "minutes".into(), unit: None, bounds: Bounds { min: None, max: None }, about: String::new() }],
+        }
+    }
+
+    /// A plan over a table in a temporary directory; `now` is 2026-12-02T00:00:00Z.
+    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<Resolved>, Vec<String>>) {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::write(
+            dir.path().join("sites.csv"),
+            "site,avg_minutes_7d,plug,occupancy,updated_at\nnorth-1,42.5,ccs2,3,2026-12-01T12:00:00Z\nsouth-2,35,type2,x,2026-11-20T00:00:00Z\n",
+        )
+        .unwrap();
+        let text = format!("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"\n[models.charge-minutes]\nkeys = [\"site\"]\n[models.charge-minutes.features]\n{features}");
+        let plan = Plan::parse(&text, "features.toml", dir.path()).unwrap();
+        let sources = Sources::load(&plan).unwrap();
+        let resolved = Resolved::new(&plan, &sources, "charge-minutes", &Version::new(1, 0, 0), &contract(), std::time::Duration::from_millis(50));
+        (dir, resolved)
+    }
+
+    const NOW: f64 = 1_796_169_600.0;
+    const PLAN: &str = "charger_kw = \"request\"\nplug = { source = \"sites\", key = \"{site}\", field = \"plug\", missing = \"fail\" }\n\
+        avg_minutes_7d = { source = \"sites\", key = \"{site}\", field = \"avg_minutes_7d\", max_age = \"2d\" }\n\
+        occupancy = { source = \"sites\", key = \"{site}\", field = \"occupancy\", missing = { default = 0 } }\n";
+
+    fn keys(site: &str) -> BTreeMap<String, String> {
+        [("site".to_owned(), site.to_owned())].into()
+    }
+
+    #[test]
+    fn keys_found_missing_and_stale_follow_each_policy() {
+        let (_dir, resolved) = setup(PLAN);
+        let r = resolved.unwrap().unwrap();
+        let row = Row::new().with("charger_kw", 11.0);
+        // Found and fresh (12 h old).
+        let (got, fetched) = r.gather(&keys("north-1"), &row, NOW).unwrap();
+        assert_eq!(got, row.clone().with("avg_minutes_7d", 42.5).with("occupancy", 3i64).with("plug", "ccs2"));
+        assert_eq!(fetched[0], Fetched { feature: "avg_minutes_7d".into(), source: "sites".into(), key: "north-1".into(), outcome: Outcome::Found, age: Some(43_200.0) });
+        // South-2's occupancy is `x`, not a whole number: the row fails naming it.
+        let err = r.gather(&keys("south-2"), &row, NOW).unwrap_err();
+        assert_eq!(err.to_string(), "feature `occupancy`: source `sites` has `x` under key `south-2`, not a number");
+        // Read occupancy elsewhere: south-2's row is 12 days old, beyond 2 d:
+        // stale, and the feature falls back to absent.
+        let (_dir2, other) = setup(&PLAN.replace("field = \"occupancy\"", "field = \"avg_minutes_7d\""));
+        let (got, fetched) = other.unwrap().unwrap().gather(&keys("south-2"), &row, NOW).unwrap();
+        let avg = fetched.iter().find(|f| f.feature == "avg_minutes_7d").unwrap();
+        assert_eq!((avg.outcome, avg.age), (Outcome::Stale, Some(12.0 * 86_400.0)));
+        assert!(got.fields().contains(&("avg_minutes_7d".to_owned(), Value::Absent)));
+        // An unknown site: the default for occupancy, but plug must fail.
+        let err = r.gather(&keys("west-9"), &row, NOW).unwrap_err();
+        assert_eq!(err.to_string(), "feature `plug`: nothing in source `sites` under key `west-9`");
+        // A feature the row carries wins over the lookup.
+        let (got, fetched) = r.gather(&keys("north-1"), &row.clone().with("plug", "type2"), NOW).unwrap();
+        assert!(got.fields().contains(&("plug".to_owned(), Value::Label("type2".into()))));
+        assert_eq!(fetched.iter().find(|f| f.feature == "plug").unwrap().outcome, Outcome::FromRequest);
+        // No key at all.
+        assert_eq!(r.gather(&BTreeMap::new(), &row, NOW).unwrap_err().to_string(), "the request has no key `site` (the model's keys: site)");
+    }
+
+    #[test]
+    fn plans_that_do_not_fit_the_contract_or_the_tables_are_refused_with_every_problem() {
+        let (_dir, resolved) = setup(
+            "plug = { source = \"sites\", key = \"{site}\", field = \"connector\", missing = { default = \"chademo\" } }\n\
+             wind = { source = \"sites\", key = \"{site}\", field = \"plug\" }\n\
+             occupancy = { source = \"sites\", key = \"{site}\", field = \"occupancy\" }\n",
+        );
+        assert_eq!(
+            resolved.unwrap_err(),
+            [
+                "charge-minutes 1.0.0: the plan sources `wind`, which its contract does not have",
+                "charge-minutes 1.0.0: required feature `charger_kw` has no source (say `charger_kw = \"request\"` if the row carries it)",
+                "charge-minutes 1.0.0: required feature `occupancy` falls back to absent: give a default, or `missing = \"fail\"`",
+                "charge-minutes 1.0.0: feature `plug`: source `sites` has no column `connector` (it has site, avg_minutes_7d, plug, occupancy, updated_at)",
+            ]
+        );
+    }
+}

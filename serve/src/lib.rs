@@ -1,0 +1,41 @@
+//! Serve a store of paddock model versions: routing by context and time,
+//! swaps without a restart, feature lookups, and the surfaces a service
+//! reaches them through.
+//!
+//! A request travels artifact → contract → sandbox (the `paddock-host`
+//! crate) → **registry** → surface; feature sources sit between the
+//! registry and the sandbox:
+//!
+//! - [`registry`]: the versions a store holds, loaded behind the gate
+//!   (trust, load, contract, checks), routed per request, swapped in whole
+//!   when the store changes, with usage accounting;
+//! - [`features`]: a row's missing features looked up by the request's keys
+//!   in the tables and Redis sources a store's features plan names;
+//! - [`surface`]: the JSON wire shapes, NDJSON streams, the HTTP API
+//!   (feature `http`) and NATS JetStream workers (feature `workers`).
+//!
+//! ```no_run
+//! use paddock_host::{Row, Runtime};
+//! use paddock_serve::{Context, Registry, RegistryOptions, Request};
+//!
+//! # fn main() -> Result<(), Box<dyn std::error::Error>> {
+//! let runtime = Runtime::new()?;
+//! let registry = Registry::open(&runtime, "store".as_ref(), RegistryOptions::default())?;
+//! let rows = [Row::new().with("charger_kw", 11.0)];
+//! let answer = registry.score(&Request::new("charge-minutes", &Context::default(), &rows))?;
+//! println!("{} answered", answer.version);
+//! # Ok(()) }
+//! ```
+//!
+//! What it is not: a deployment tool or a feature store. It never writes
+//! models into the store it serves, and it computes no feature: it reads
+//! what a batch job or another service wrote. A service that only loads
+//! and scores one model needs `paddock-host` alone.
+
+#![deny(missing_docs)]
+
+pub mod features;
+pub mod registry;
+pub mod surface;
+
+pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};

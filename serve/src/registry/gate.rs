@@ -1,0 +1,99 @@
+//! The gate every new or changed artifact passes before any route may
+//! point to it: trust (vouch / pin) → parse → compile, start and read its
+//! contract → its name and version match its place → its checks pass.
+
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+
+use semver::Version;
+use sha2::{Digest as _, Sha256};
+
+use super::status::Refusal;
+use super::{Shared, layout, ledger};
+use paddock_host::artifact::Artifact;
+use paddock_host::sandbox::verify::CheckReport;
+use paddock_host::artifact::digest::Digest;
+use paddock_host::sandbox::model::Model;
+use paddock_host::artifact::trust::{Admission, Vouch};
+
+/// A fingerprint of an artifact's bytes and its vouch: unchanged files are
+/// not gated again.
+pub(super) type Fingerprint = [u8; 32];
+
+/// A version that passed the gate.
+pub(crate) struct Loaded {
+    pub model: Model,
+    pub outputs: Arc<[String]>,
+    pub rel: PathBuf,
+    pub admission: Admission,
+    pub checks: Option<CheckReport>,
+    pub ledger: Arc<ledger::VersionLedger>,
+}
+
+/// The gate: trust → parse → compile, start, contract → identity → checks.
+pub(super) fn gate(shared: &Shared, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, vouch: Option<&[u8]>) -> Result<Loaded, Refusal> {
+    let digest = Digest::of(&bytes);
+    let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
+    let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
+    let limit = shared.options.model.limits.artifact_bytes;
+    let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
+    let checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?;
+    let options = shared.options.model.clone();
+    let loaded = match &shared.cache {
+        Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
+        None => Model::load_with(&shared.runtime, artifact, options),
+    }
+    .map_err(|e| Refusal::Load(Arc::new(e)))?;
+    let contract = loaded.contract();
+    if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
+        return Err(Refusal::Identity { name: contract.name.clone(), version: contract.version.clone(), path: f.rel.clone() });
+    }
+    let report = match &checks {
+        Some(c) => {
+            let report = paddock_host::sandbox::verify::run(&loaded, c).map_err(Refusal::ChecksDidNotRun)?;
+            if !report.ok() {
+                let first = report.failures.first().cloned();
+                return Err(Refusal::ChecksFailed { failed: report.cases - report.passed, cases: report.cases, first });
+            }
+            Some(report)
+        }
+        None if shared.options.require_checks => return Err(Refusal::NoChecks),
+        None => None,
+    };
+    Ok(Loaded {
+        ledger: shared.ledger.version(model, version),
+        outputs: loaded.contract().outputs.iter().map(|o| o.name.clone()).collect(),
+        model: loaded,
+        rel: f.rel.clone(),
+        admission,
+        checks: report,
+    })
+}
+
+pub(super) fn fingerprint(bytes: &[u8], vouch: Option<&[u8]>) -> Fingerprint {
+    let mut h = Sha256::new();
+    h.update(Sha256::digest(bytes));
+    if let Some(s) = vouch {
+        h.update(Sha256::digest(s));
+    }
+    h.finalize().into()
+}
+
+/// Reads an artifact (refusing it over the size cap without reading it all)
+/// and its vouch file, if any.
+pub(super) fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<Vec<u8>>), Refusal> {
+    let read = |e: std::io::Error| Refusal::Read(Arc::new(e));
+    let size = std::fs::metadata(path).map_err(read)?.len();
+    if size > limit {
+        return Err(Refusal::TooLarge(paddock_host::limits::LimitHit::ArtifactSize { limit, actual: size }));
+    }
+    let bytes = std::fs::read(path).map_err(read)?;
+    let vouch_path = Vouch::path_for(path);
+    let vouch = match std::fs::read(&vouch_path) {
+        Ok(s) => Some(s),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => None,
+        Err(e) => return Err(Refusal::VouchUnreadable { path: vouch_path, source: Arc::new(e) }),
+    };
+    Ok((bytes, vouch))
+}
+

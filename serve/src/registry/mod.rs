@@ -1,0 +1,698 @@
+//! The registry: a whole suite of model versions served from a store
+//! directory, routed by context and time, swapped without a restart.
+//!
+//! A request travels artifact → contract → sandbox → **registry** → surface.
+//! The registry holds one immutable snapshot of what it serves (loaded
+//! versions + routes). A request takes the snapshot, picks a version by the
+//! routes, and scores on it; a reload builds a whole new snapshot beside the
+//! old one and swaps it in atomically. A request in flight keeps the
+//! version it started on until it returns.
+//!
+//! A new or changed artifact passes a gate before any route may point to it:
+//! trust (vouch / pin) → parse → compile → instantiate and read its
+//! contract → its name and version match its place in the store → the
+//! checks it carries pass. A refusal keeps the previous state serving and
+//! is reported in [`Status`] and the log. A routes file that does not parse,
+//! or names a version that is not loaded, is refused as a whole.
+//!
+//! What it is not: a deployment tool. It never writes to the store; putting
+//! artifacts and routes there (atomically: write, then rename) is the
+//! operator's job.
+
+mod gate;
+pub mod layout;
+pub mod ledger;
+pub mod metrics;
+mod reload;
+pub mod routes;
+mod shadow;
+mod status;
+mod usage_file;
+mod watch;
+
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::AtomicU64;
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use arc_swap::ArcSwap;
+use jiff::Timestamp;
+use semver::Version;
+use serde::Serialize;
+
+use paddock_host::artifact::digest::Digest;
+use paddock_host::sandbox::codecache::{CacheError, CodeCache};
+use crate::features::{Fetched, GatherError, Resolved};
+use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError};
+use paddock_host::contract::rows::{Row, RowError};
+use paddock_host::sandbox::Runtime;
+use paddock_host::artifact::trust::TrustPolicy;
+
+use gate::Loaded;
+use reload::Memory;
+
+pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
+pub use status::{ArtifactState, ArtifactStatus, FeaturesState, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, ServerStatus, Status, TableStatus};
+pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
+pub use usage_file::{SavedUsage, usage_path};
+pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
+pub use watch::Watcher;
+
+/// How a registry loads and serves.
+#[derive(Clone, Debug)]
+pub struct RegistryOptions {
+    /// Limits and isolation for every model version.
+    pub model: ModelOptions,
+    /// Which artifacts may load.
+    pub trust: TrustPolicy,
+    /// Refuse artifacts that carry no checks. Off by default.
+    pub require_checks: bool,
+    /// Where the host keeps its state (code cache, usage file).
+    /// Default: `<store>/.paddock`.
+    pub state_dir: Option<PathBuf>,
+    /// Keep compiled code on disk under the state directory. On by default.
+    pub code_cache: bool,
+    /// The clock for requests that carry no timestamp.
+    pub clock: Arc<dyn Clock>,
+    /// Shadow requests waiting at most; more are dropped (and counted).
+    /// Default 1024.
+    pub shadow_queue: usize,
+    /// Keep the usage ledger in `<state>/usage.json`: add what it holds at
+    /// open, write it back this often and when the registry is dropped.
+    /// Keeping usage takes the state directory's lock: a second process on
+    /// it is refused. `None`: no usage file, no lock (a read-only look at a
+    /// store, as `paddock status` takes). Default 10 s.
+    pub usage_flush: Option<Duration>,
+}
+
+impl Default for RegistryOptions {
+    fn default() -> Self {
+        RegistryOptions {
+            model: ModelOptions::default(),
+            trust: TrustPolicy::default(),
+            require_checks: false,
+            state_dir: None,
+            code_cache: true,
+            clock: Arc::new(SystemClock),
+            shadow_queue: 1024,
+            usage_flush: Some(Duration::from_secs(10)),
+        }
+    }
+}
+
+/// Why a registry cannot open or reload at all. (A refused artifact or
+/// routes file is not an error: it is reported in [`Status`].)
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum RegistryError {
+    /// The store directory cannot be read.
+    #[error("store {path}: {source}")]
+    Store {
+        /// The directory.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The code cache cannot be used.
+    #[error(transparent)]
+    Cache(#[from] CacheError),
+    /// Another process keeps its state in this state directory.
+    #[error(
+        "{path} is held by {} (a serving host keeps its code cache and usage there); stop it, or give this one its own state directory (--state)",
+        holder.map_or("another process".to_owned(), |p| format!("process {p}"))
+    )]
+    Locked {
+        /// The lock file.
+        path: PathBuf,
+        /// The process id written in it, when readable.
+        holder: Option<u32>,
+    },
+    /// The state directory or its lock file cannot be used.
+    #[error("{path}: {source}")]
+    State {
+        /// The directory or file.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+    /// The directory watcher cannot start.
+    #[error("cannot watch {path}: {reason}")]
+    Watch {
+        /// The directory.
+        path: PathBuf,
+        /// What went wrong.
+        reason: String,
+    },
+}
+
+/// Why a request got no estimates.
+#[derive(Debug, Clone, PartialEq, Serialize, thiserror::Error)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum RequestError {
+    /// No model of that name is routed.
+    #[error("no model `{model}` is served (served: {})", .served.join(", "))]
+    UnknownModel {
+        /// The name asked for.
+        model: String,
+        /// The models that are served.
+        served: Vec<String>,
+    },
+    /// The routes named a version that is not loaded. The registry only
+    /// accepts routes whose versions are all loaded, so this is a bug in
+    /// paddock; it is an error rather than a crash of the caller.
+    #[error("{model} {version} was routed to but is not loaded")]
+    NotLoaded {
+        /// The model.
+        model: String,
+        /// The version the routes named.
+        version: Version,
+    },
+    /// The chosen version failed to score the rows.
+    #[error("{model} {version} ({reason}): {error}")]
+    Score {
+        /// The model.
+        model: String,
+        /// The version that was asked.
+        version: Version,
+        /// Why that version.
+        reason: Arc<Reason>,
+        /// What went wrong.
+        error: ScoreError,
+    },
+}
+
+impl RequestError {
+    /// A short stable name for the kind of error, for metrics and logs.
+    pub fn kind(&self) -> &'static str {
+        match self {
+            RequestError::UnknownModel { .. } => "unknown_model",
+            RequestError::NotLoaded { .. } => "not_loaded",
+            RequestError::Score { error, .. } => error.kind(),
+        }
+    }
+}
+
+/// One request to the registry.
+#[derive(Clone, Copy, Debug)]
+pub struct Request<'a> {
+    /// The model's name.
+    pub model: &'a str,
+    /// Context for the routes (`region`, `site`…).
+    pub context: &'a Context,
+    /// When the request happened, for time windows; `None` means now (the
+    /// registry's clock).
+    pub at: Option<Timestamp>,
+    /// The rows to score.
+    pub rows: &'a [Row],
+    /// How much the answer says of the features looked up.
+    pub lookups: Lookups,
+}
+
+impl<'a> Request<'a> {
+    /// A request for `model`, routed and keyed by `context`, scoring `rows`
+    /// now, its answer naming only the looked-up features that fell back.
+    pub fn new(model: &'a str, context: &'a Context, rows: &'a [Row]) -> Self {
+        Request { model, context, at: None, rows, lookups: Lookups::Fallbacks }
+    }
+
+    /// The same request, happening at `at` (for time windows).
+    #[must_use]
+    pub fn at(mut self, at: Option<Timestamp>) -> Self {
+        self.at = at;
+        self
+    }
+
+    /// The same request, its answer saying where every looked-up feature came from.
+    #[must_use]
+    pub fn every_lookup(mut self) -> Self {
+        self.lookups = Lookups::All;
+        self
+    }
+}
+
+pub use crate::features::Lookups;
+
+/// Estimates, and which version produced them and why.
+#[derive(Clone, Debug, Serialize)]
+pub struct Answer {
+    /// The model.
+    pub model: String,
+    /// The version that answered.
+    pub version: Version,
+    /// Its artifact's digest.
+    pub digest: Digest,
+    /// Why that version (shared with the routes: no copy per request).
+    pub reason: Arc<Reason>,
+    /// The registry generation the request was routed in.
+    pub generation: u64,
+    /// The names of the estimates' columns: the answering version's outputs.
+    pub outputs: Arc<[String]>,
+    /// Rows in the request.
+    pub requested: usize,
+    /// The estimates of the valid rows, in request order.
+    pub estimates: Estimates,
+    /// The number (from 1) of the request row behind each estimate row.
+    pub scored: Vec<usize>,
+    /// Every problem of the rows that broke the contract, each naming its
+    /// row; those rows got no estimate.
+    pub problems: Vec<RowError>,
+    /// Per request row, the features looked up for it (all of them, or
+    /// only those that fell back, as the request asked); empty when the
+    /// model has no features plan.
+    pub lookups: Vec<Vec<Fetched>>,
+}
+
+impl Answer {
+    /// Every request row in order: its outputs, or `None` when it broke the
+    /// contract (see [`Answer::problems`]).
+    pub fn rows(&self) -> impl Iterator<Item = Option<&[f64]>> {
+        let mut next = self.scored.iter().copied().enumerate().peekable();
+        (1..=self.requested).map(move |n| match next.peek() {
+            Some(&(k, m)) if m == n => {
+                next.next();
+                Some(self.estimates.row(k))
+            }
+            _ => None,
+        })
+    }
+}
+
+/// A request's rows completed by the features plan.
+struct Gathered {
+    /// The rows that could be completed.
+    rows: Vec<Row>,
+    /// The request number (from 1) of each.
+    numbers: Vec<usize>,
+    /// The rows that could not, each naming why.
+    problems: Vec<RowError>,
+    /// Per request row, what was looked up.
+    lookups: Vec<Vec<Fetched>>,
+}
+
+fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
+    let now = now.as_millisecond() as f64 / 1000.0;
+    let mut g = Gathered { rows: Vec::with_capacity(request.rows.len()), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
+    for (i, result) in plan.gather_rows(request.context, request.rows, now, request.lookups).into_iter().enumerate() {
+        match result {
+            Ok((row, fetched)) => {
+                g.rows.push(row);
+                g.numbers.push(i + 1);
+                g.lookups.push(fetched);
+            }
+            Err(e) => {
+                let (feature, value) = e.place();
+                g.problems.push(if matches!(e, GatherError::Unavailable { .. }) {
+                    RowError::unavailable(i + 1, feature, e.to_string())
+                } else {
+                    RowError::lookup(i + 1, feature, &value, e.to_string())
+                });
+                g.lookups.push(Vec::new());
+            }
+        }
+    }
+    g
+}
+
+impl Gathered {
+    /// The scoring result with rows numbered as the request numbered them,
+    /// and the lookup problems among the others.
+    fn renumber(&self, result: Result<paddock_host::sandbox::model::Scored, ScoreError>) -> Result<paddock_host::sandbox::model::Scored, ScoreError> {
+        let number = |n: usize| self.numbers.get(n.wrapping_sub(1)).copied().unwrap_or(n);
+        let merge = |mut problems: Vec<RowError>| {
+            for p in &mut problems {
+                p.row = number(p.row);
+            }
+            problems.extend(self.problems.iter().cloned());
+            problems.sort_by_key(|p| p.row);
+            problems
+        };
+        match result {
+            Ok(mut scored) => {
+                scored.scored = scored.scored.iter().map(|&n| number(n)).collect();
+                scored.problems = merge(scored.problems);
+                Ok(scored)
+            }
+            Err(ScoreError::InvalidRows { errors }) => Err(ScoreError::InvalidRows { errors: merge(errors) }),
+            Err(e) => Err(e.renumber(number)),
+        }
+    }
+}
+
+/// One immutable view of what is served.
+struct Snapshot {
+    generation: u64,
+    routes: Arc<Routes>,
+    versions: BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>,
+    /// Per model with a shadow: everything a request needs, resolved once.
+    shadows: BTreeMap<String, ShadowPlan>,
+    /// The features plan, resolved per served version.
+    features: Arc<FeatureSet>,
+    status: Status,
+}
+
+/// The features plan resolved for each served version that has one.
+#[derive(Default)]
+struct FeatureSet {
+    resolved: BTreeMap<String, BTreeMap<Version, Arc<Resolved>>>,
+    /// The sources serving, for their counters.
+    sources: crate::features::Sources,
+}
+
+/// A model's shadow, resolved when the snapshot is built.
+struct ShadowPlan {
+    loaded: Arc<Loaded>,
+    ledger: Arc<ledger::ShadowLedger>,
+    sample: f64,
+    tolerance: f64,
+}
+
+/// A store being served. Cheap to clone; `Send + Sync`.
+#[derive(Clone)]
+pub struct Registry {
+    inner: Arc<Shared>,
+}
+
+struct Shared {
+    dir: PathBuf,
+    state_dir: PathBuf,
+    runtime: Runtime,
+    options: RegistryOptions,
+    cache: Option<CodeCache>,
+    current: ArcSwap<Snapshot>,
+    memory: Mutex<Memory>,
+    ledger: ledger::Ledger,
+    shadows: shadow::Shadows,
+    reloads: AtomicU64,
+    /// Held while usage is kept (the state directory's lock).
+    lock: Option<usage_file::StateLock>,
+    /// Dropping it stops the flush thread.
+    flush_stop: Mutex<Option<std::sync::mpsc::Sender<()>>>,
+}
+
+impl Drop for Shared {
+    fn drop(&mut self) {
+        if self.lock.is_some() {
+            if let Err(e) = usage_file::save(&self.state_dir, &self.dir, &self.ledger) {
+                tracing::warn!(error = %e, "cannot write the usage file");
+            }
+        }
+    }
+}
+
+impl std::fmt::Debug for Registry {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Registry").field("store", &self.inner.dir).field("generation", &self.generation()).finish()
+    }
+}
+
+impl Registry {
+    /// Opens a store and loads it: every artifact through the gate, then
+    /// the routes. Refusals do not make this fail; see [`Registry::status`].
+    ///
+    /// # Errors
+    /// [`RegistryError::Store`] when the directory cannot be read,
+    /// [`RegistryError::Cache`] when the code cache cannot be used,
+    /// [`RegistryError::Locked`] when another process keeps its usage in the
+    /// same state directory, [`RegistryError::State`] when the state
+    /// directory or its lock cannot be used.
+    pub fn open(runtime: &Runtime, dir: &Path, options: RegistryOptions) -> Result<Registry, RegistryError> {
+        let dir = dir.to_owned();
+        std::fs::read_dir(&dir).map_err(|source| RegistryError::Store { path: dir.clone(), source })?;
+        let state_dir = options.state_dir.clone().unwrap_or_else(|| dir.join(STATE_DIR));
+        let lock = match options.usage_flush {
+            Some(_) => Some(usage_file::StateLock::take(&state_dir)?),
+            None => None,
+        };
+        let cache = if options.code_cache { Some(CodeCache::open(&state_dir.join("code"))?) } else { None };
+        let ledger = ledger::Ledger::default();
+        if lock.is_some() {
+            usage_file::merge(&state_dir, &ledger);
+        }
+        let empty = Snapshot {
+            generation: 0,
+            routes: Arc::new(Routes::empty()),
+            versions: BTreeMap::new(),
+            shadows: BTreeMap::new(),
+            features: Arc::default(),
+            status: Status {
+                store: dir.clone(),
+                generation: 0,
+                since: Timestamp::now().to_string(),
+                artifacts: Vec::new(),
+                routes: RoutesState::Missing,
+                features: FeaturesState::Missing,
+                unrouted: Vec::new(),
+            },
+        };
+        let registry = Registry {
+            inner: Arc::new(Shared {
+                shadows: shadow::Shadows::start(options.shadow_queue),
+                dir,
+                state_dir,
+                runtime: runtime.clone(),
+                options,
+                cache,
+                current: ArcSwap::from_pointee(empty),
+                memory: Mutex::new(Memory::default()),
+                ledger,
+                reloads: AtomicU64::new(0),
+                lock,
+                flush_stop: Mutex::new(None),
+            }),
+        };
+        if let Some(every) = registry.inner.options.usage_flush {
+            registry.flush_every(every);
+        }
+        registry.reload()?;
+        Ok(registry)
+    }
+
+    /// Starts the thread that writes the usage file every `every`; it
+    /// holds no strong reference, and ends when the registry is dropped.
+    fn flush_every(&self, every: Duration) {
+        let (tx, rx) = std::sync::mpsc::channel::<()>();
+        let weak = Arc::downgrade(&self.inner);
+        let started = std::thread::Builder::new().name("paddock-usage".into()).spawn(move || {
+            while let Err(std::sync::mpsc::RecvTimeoutError::Timeout) = rx.recv_timeout(every) {
+                let Some(shared) = weak.upgrade() else { return };
+                if let Err(e) = usage_file::save(&shared.state_dir, &shared.dir, &shared.ledger) {
+                    tracing::warn!(error = %e, "cannot write the usage file");
+                }
+            }
+        });
+        match started {
+            Ok(_) => *self.inner.flush_stop.lock().unwrap_or_else(|e| e.into_inner()) = Some(tx),
+            Err(e) => tracing::warn!(error = %e, "cannot start the usage flush thread; usage is written at shutdown only"),
+        }
+    }
+
+    /// The store directory.
+    pub fn dir(&self) -> &Path {
+        &self.inner.dir
+    }
+
+    /// Where the host keeps its state for this store.
+    pub fn state_dir(&self) -> &Path {
+        &self.inner.state_dir
+    }
+
+    /// The generation serving now.
+    pub fn generation(&self) -> u64 {
+        self.inner.current.load().generation
+    }
+
+    /// Scores a request on the version its routes pick.
+    ///
+    /// # Errors
+    /// [`RequestError::UnknownModel`] when no route serves the model;
+    /// [`RequestError::Score`] carrying the version, the reason it was
+    /// picked and the [`ScoreError`] (invalid rows, limit hits, traps…);
+    /// [`RequestError::NotLoaded`] if the routes named a version that is not
+    /// loaded (never expected: routes are only taken when all are).
+    pub fn score(&self, request: &Request<'_>) -> Result<Answer, RequestError> {
+        let shared = &*self.inner;
+        let snapshot = shared.current.load();
+        let Some(routes) = snapshot.routes.model(request.model) else {
+            shared.ledger.record_rejected("unknown_model");
+            return Err(RequestError::UnknownModel {
+                model: request.model.to_owned(),
+                served: snapshot.routes.models().map(str::to_owned).collect(),
+            });
+        };
+        let at = request.at.unwrap_or_else(|| shared.options.clock.now());
+        let route = routes.route(request.model, request.context, at);
+        // Routes are only accepted when every version they name is loaded.
+        let Some(served) = snapshot.versions.get(request.model).and_then(|v| v.get(route.version)).cloned() else {
+            return Err(RequestError::NotLoaded { model: request.model.to_owned(), version: route.version.clone() });
+        };
+        let (version, reason) = (route.version.clone(), route.reason.clone());
+        let shadow = snapshot
+            .shadows
+            .get(request.model)
+            .filter(|s| s.ledger.sampled(s.sample))
+            .map(|s| (s.loaded.clone(), s.tolerance, s.ledger.clone()));
+        let generation = snapshot.generation;
+        let plan = snapshot.features.resolved.get(request.model).and_then(|v| v.get(&version)).cloned();
+        drop(snapshot);
+
+        // Features looked up: rows that could not be completed are problems
+        // of the answer, numbered as the request numbered them.
+        // Ages are measured at the request's time (a replay judges its own day).
+        let gathered = plan.map(|plan| gather(&plan, request, at));
+        let rows = gathered.as_ref().map_or(request.rows, |g| &g.rows[..]);
+        let started = Instant::now();
+        let in_flight = served.ledger.enter();
+        let result = if rows.is_empty() && gathered.is_some() && !request.rows.is_empty() {
+            Err(ScoreError::InvalidRows { errors: Vec::new() })
+        } else {
+            served.model.score_valid(rows)
+        };
+        drop(in_flight);
+        let result = match &gathered {
+            None => result,
+            Some(g) => g.renumber(result),
+        };
+        match result {
+            Ok(scored) => {
+                served.ledger.record_ok(scored.estimates.usage());
+                if !scored.problems.is_empty() {
+                    served.ledger.record_refused(request.rows.len() - scored.scored.len(), "invalid_rows");
+                }
+                if let Some((shadow, tolerance, ledger)) = shadow {
+                    // The shadow sees the rows that were served.
+                    let rows = if scored.problems.is_empty() {
+                        request.rows.to_vec()
+                    } else {
+                        scored.scored.iter().map(|&n| request.rows[n - 1].clone()).collect()
+                    };
+                    shared.shadows.submit(shadow::Job {
+                        served: served.clone(),
+                        shadow,
+                        rows,
+                        answer: scored.estimates.clone(),
+                        tolerance,
+                        ledger,
+                    });
+                }
+                Ok(Answer {
+                    model: request.model.to_owned(),
+                    version,
+                    digest: served.model.digest(),
+                    reason,
+                    generation,
+                    outputs: served.outputs.clone(),
+                    requested: request.rows.len(),
+                    estimates: scored.estimates,
+                    scored: scored.scored,
+                    problems: scored.problems,
+                    lookups: gathered.map(|g| g.lookups).unwrap_or_default(),
+                })
+            }
+            Err(error) => {
+                if error.is_request_fault() {
+                    served.ledger.record_refused(request.rows.len(), error.kind());
+                } else {
+                    served.ledger.record_error(request.rows.len(), &error, started.elapsed());
+                }
+                Err(RequestError::Score {
+                    model: request.model.to_owned(),
+                    version,
+                    reason,
+                    error,
+                })
+            }
+        }
+    }
+
+    /// The loaded model of one version, e.g. to read its contract.
+    pub fn model(&self, model: &str, version: &Version) -> Option<Model> {
+        self.inner.current.load().versions.get(model)?.get(version).map(|l| l.model.clone())
+    }
+
+    /// The loaded versions of a model, oldest first (none for a name no
+    /// model has).
+    pub fn versions(&self, model: &str) -> Vec<Version> {
+        self.inner.current.load().versions.get(model).map(|v| v.keys().cloned().collect()).unwrap_or_default()
+    }
+
+    /// The version a request would be routed to now, and why, without
+    /// scoring anything.
+    pub fn route(&self, model: &str, context: &Context, at: Option<Timestamp>) -> Option<(Version, Arc<Reason>)> {
+        let snapshot = self.inner.current.load();
+        let at = at.unwrap_or_else(|| self.inner.options.clock.now());
+        let route = snapshot.routes.model(model)?.route(model, context, at);
+        Some((route.version.clone(), route.reason.clone()))
+    }
+
+    /// The routes serving now.
+    pub fn routes(&self) -> Arc<Routes> {
+        self.inner.current.load().routes.clone()
+    }
+
+    /// What is served and what was refused.
+    pub fn status(&self) -> Status {
+        self.inner.current.load().status.clone()
+    }
+
+    /// Counts a request a surface refused before asking the registry
+    /// (malformed, too large, overloaded), under a fixed `kind`.
+    pub fn count_rejected(&self, kind: &'static str) {
+        self.inner.ledger.record_rejected(kind);
+    }
+
+    /// The usage ledger now.
+    pub fn usage(&self) -> UsageReport {
+        self.inner.ledger.report()
+    }
+
+    /// What each feature source serving has done since the registry
+    /// opened: lookups by outcome and, for Redis, round trips (not kept
+    /// in the usage file).
+    pub fn source_usage(&self) -> Vec<crate::features::SourceUsage> {
+        self.inner.current.load().features.sources.usage()
+    }
+
+    /// Whether this registry keeps the usage file (and holds the state
+    /// directory's lock).
+    pub fn keeps_usage(&self) -> bool {
+        self.inner.lock.is_some()
+    }
+
+    /// Writes the usage ledger to `<state>/usage.json` (atomically), for
+    /// `paddock usage`. With [`RegistryOptions::usage_flush`] set this also
+    /// happens every interval and when the registry is dropped.
+    ///
+    /// # Errors
+    /// The I/O error.
+    /// [`std::io::ErrorKind::Unsupported`] when this registry keeps no
+    /// usage (writing would replace the figures of earlier processes).
+    pub fn save_usage(&self) -> std::io::Result<PathBuf> {
+        if !self.keeps_usage() {
+            return Err(std::io::Error::new(
+                std::io::ErrorKind::Unsupported,
+                "this registry keeps no usage file (opened without RegistryOptions::usage_flush)",
+            ));
+        }
+        usage_file::save(&self.inner.state_dir, &self.inner.dir, &self.inner.ledger)
+    }
+
+    /// Waits until every queued shadow request has been compared, at most
+    /// `timeout`; says whether the queue drained.
+    pub fn drain_shadows(&self, timeout: Duration) -> bool {
+        self.inner.shadows.drain(timeout)
+    }
+
+    /// Watches the store and reloads on changes (after they settle for
+    /// `settle`), and every `rescan` whatever happens, until the returned
+    /// [`Watcher`] is dropped.
+    ///
+    /// # Errors
+    /// [`RegistryError::Watch`] when the system watcher cannot start (the
+    /// periodic rescan alone would still work: use [`Watcher::polling`]).
+    pub fn watch(&self, settle: Duration, rescan: Duration) -> Result<Watcher, RegistryError> {
+        Watcher::start(self.clone(), settle, rescan, true)
+    }
+
+}
