@@ -34,7 +34,12 @@ fn main() -> Result<()> {
         .with("fleet", false);
     let estimates = model.score(&[session.clone()])?;
     let usage = estimates.usage();
-    println!("\nexpected charging: {:.0} min ({} row, {:?} in the sandbox)", estimates.row(0)[0], usage.rows, usage.wall);
+    println!(
+        "\nexpected charging: {:.0} min ({} row, {:?} in the sandbox)",
+        estimates.row(0)[0],
+        usage.rows,
+        usage.wall
+    );
 
     // A bad row is refused before it reaches the model, naming the rule.
     let typo = session.with("conector", "type2");

@@ -42,8 +42,9 @@ fn main() -> Result<()> {
                 let (mut scored, mut refused) = (0, 0);
                 loop {
                     let Ok(event) = rx.lock().unwrap().recv() else { return (scored, refused) };
-                    let context: Context =
-                        [("site", event.site), ("region", event.region)].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
+                    let context: Context = [("site", event.site), ("region", event.region)]
+                        .map(|(k, v)| (k.to_owned(), v.to_owned()))
+                        .into();
                     let rows = [Row::new()
                         .with("expected_minutes", event.expected_minutes)
                         .with("plugin_hour", 18i64)
@@ -67,7 +68,13 @@ fn main() -> Result<()> {
         let (site, region) = SITES[i as usize % SITES.len()];
         // One event in a thousand is broken: an occupancy above 100 %.
         let occupancy = if i % 1000 == 999 { 1.7 } else { f64::from(i % 100) / 100.0 };
-        tx.send(PlugIn { site, region, at: "2026-12-01T18:05:00+01:00", expected_minutes: f64::from(30 + i % 200), occupancy })?;
+        tx.send(PlugIn {
+            site,
+            region,
+            at: "2026-12-01T18:05:00+01:00",
+            expected_minutes: f64::from(30 + i % 200),
+            occupancy,
+        })?;
     }
     drop(tx);
     let (mut scored, mut refused) = (0, 0);
@@ -77,10 +84,16 @@ fn main() -> Result<()> {
         refused += r;
     }
     let took = started.elapsed();
-    println!("{scored} events scored, {refused} refused as invalid, in {took:.2?} ({:.0} events/s on 2 workers)", (scored + refused) as f64 / took.as_secs_f64());
+    println!(
+        "{scored} events scored, {refused} refused as invalid, in {took:.2?} ({:.0} events/s on 2 workers)",
+        (scored + refused) as f64 / took.as_secs_f64()
+    );
     anyhow::ensure!(scored == 19_980 && refused == 20, "expected 19 980 scored and 20 refused");
     for v in registry.usage().versions.iter().filter(|v| v.model == "overstay-risk") {
-        println!("overstay-risk {}: {} calls, p50 {:.1} µs, p99 {:.1} µs", v.version, v.calls, v.wall_us.p50, v.wall_us.p99);
+        println!(
+            "overstay-risk {}: {} calls, p50 {:.1} µs, p99 {:.1} µs",
+            v.version, v.calls, v.wall_us.p50, v.wall_us.p99
+        );
     }
     Ok(())
 }

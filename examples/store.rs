@@ -11,8 +11,8 @@
 use std::time::{Duration, Instant};
 
 use anyhow::{Context as _, Result};
-use paddock_serve::registry::ROUTES_FILE;
 use paddock_host::{Row, Runtime};
+use paddock_serve::registry::ROUTES_FILE;
 use paddock_serve::{Context, Registry, RegistryOptions, Request};
 
 fn main() -> Result<()> {
@@ -29,7 +29,8 @@ fn main() -> Result<()> {
     }
 
     // A request names the model, carries context and (optionally) its time.
-    let north: Context = [("site", "Depot North"), ("region", "north")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
+    let north: Context =
+        [("site", "Depot North"), ("region", "north")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
     let row = Row::new()
         .with("expected_minutes", 95.0)
         .with("plugin_hour", 18i64)

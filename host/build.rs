@@ -17,7 +17,10 @@ fn main() {
             }
         }
         None => {
-            println!("cargo::warning=no Cargo.lock above {}: the wasmtime version is reported as unknown", manifest.display());
+            println!(
+                "cargo::warning=no Cargo.lock above {}: the wasmtime version is reported as unknown",
+                manifest.display()
+            );
             "unknown".to_owned()
         }
     };

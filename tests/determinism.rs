@@ -12,7 +12,8 @@ fn fresh_instances_and_fresh_runtimes_give_identical_bits() {
     for _ in 0..2 {
         let runtime = Runtime::new().unwrap();
         let options = ModelOptions { isolation: Isolation::FreshPerCall, ..ModelOptions::default() };
-        let model = Model::load_with(&runtime, Artifact::from_bytes(bytes.clone(), u64::MAX).unwrap(), options).unwrap();
+        let model =
+            Model::load_with(&runtime, Artifact::from_bytes(bytes.clone(), u64::MAX).unwrap(), options).unwrap();
         let rows: Vec<Row> = model.artifact().checks().unwrap().unwrap().cases.into_iter().map(|c| c.row).collect();
         for _ in 0..3 {
             let bits: Vec<u64> = model.score(&rows).unwrap().values().iter().map(|v| v.to_bits()).collect();

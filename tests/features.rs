@@ -5,12 +5,12 @@
 //! Every expected value is the line at a table's `x`, worked out here.
 
 use std::path::Path;
-use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
 
+use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
 use paddock_serve::registry::{FeaturesState, artifact_path};
-use paddock_host::{Row, Runtime};
 use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
@@ -32,7 +32,10 @@ x = { source = "sites", key = "{site}", field = "x", missing = "fail" }
 fn store(scale: f64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(
+        &artifact_path(store, "m", &Version::new(1, 0, 0)),
+        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
+    );
     write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
     write_table(store, scale);
     write_atomically(&store.join("features.toml"), PLAN.as_bytes());
@@ -56,14 +59,21 @@ fn site(s: &str) -> Context {
 #[test]
 fn a_request_scores_from_its_keys_alone() {
     let (_dir, reg) = store(1.0);
-    assert!(matches!(&reg.status().features, FeaturesState::Accepted { tables, .. } if tables[0].rows == 64), "{:?}", reg.status().features);
+    assert!(
+        matches!(&reg.status().features, FeaturesState::Accepted { tables, .. } if tables[0].rows == 64),
+        "{:?}",
+        reg.status().features
+    );
     let rows = [Row::new()];
     let a = reg.score(&Request::new("m", &site("s3"), &rows)).unwrap();
     assert_eq!(a.estimates.row(0), [7.0], "x = 3 from the table: 2·3 + 1");
     assert!(a.lookups[0].is_empty(), "nothing fell back: the compact answer names nothing");
     let a = reg.score(&Request::new("m", &site("s3"), &rows).every_lookup()).unwrap();
     let f = &a.lookups[0][0];
-    assert_eq!((f.feature.as_str(), f.source.as_str(), f.key.as_str(), f.outcome), ("x", "sites", "s3", Outcome::Found));
+    assert_eq!(
+        (f.feature.as_str(), f.source.as_str(), f.key.as_str(), f.outcome),
+        ("x", "sites", "s3", Outcome::Found)
+    );
     // A row carrying x itself wins over the table.
     let a = reg.score(&Request::new("m", &site("s3"), &[Row::new().with("x", 10.0)]).every_lookup()).unwrap();
     assert_eq!((a.estimates.row(0)[0], a.lookups[0][0].outcome), (21.0, Outcome::FromRequest));
@@ -81,10 +91,18 @@ fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
         assert_eq!(a.estimates.row(k)[0], 2.0 * (n - 1) as f64 + 1.0, "row {n}");
     }
     assert_eq!(a.problems.len(), 1);
-    assert_eq!(a.problems[0].to_string(), "row 5, feature `x` = absent: lookup failed: feature `x`: nothing in source `sites` under key `nowhere`");
+    assert_eq!(
+        a.problems[0].to_string(),
+        "row 5, feature `x` = absent: lookup failed: feature `x`: nothing in source `sites` under key `nowhere`"
+    );
     // No key at all: every row fails, naming the key.
     let err = reg.score(&Request::new("m", &Context::new(), &[Row::new()])).unwrap_err().to_string();
-    assert!(err.contains("row 1, feature `site` = absent: lookup failed: the request has no key `site` (the model's keys: site)"), "{err}");
+    assert!(
+        err.contains(
+            "row 1, feature `site` = absent: lookup failed: the request has no key `site` (the model's keys: site)"
+        ),
+        "{err}"
+    );
 }
 
 /// Requests scoring 64 rows (one per site) run while the table is replaced
@@ -102,7 +120,12 @@ fn a_table_replaced_while_requests_run_is_seen_whole() {
                 let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
                 let scale = (a.estimates.row(1)[0] - 1.0) / 2.0;
                 for i in 0..64 {
-                    assert_eq!(a.estimates.row(i)[0], 2.0 * i as f64 * scale + 1.0, "row {} of a table with x = {scale}·i", i + 1);
+                    assert_eq!(
+                        a.estimates.row(i)[0],
+                        2.0 * i as f64 * scale + 1.0,
+                        "row {} of a table with x = {scale}·i",
+                        i + 1
+                    );
                 }
                 if scale == 1.0 { old += 1 } else { new += 1 }
             }
@@ -130,7 +153,8 @@ fn a_bad_table_or_plan_is_refused_whole_and_the_previous_keeps_serving() {
     assert_eq!(ask(&reg), 7.0, "the previous table keeps serving");
     // A plan naming a column the table lacks, and a feature the contract lacks.
     write_table(store, 1.0);
-    let plan = PLAN.replace("field = \"x\"", "field = \"speed\"") + "wind = { source = \"sites\", key = \"{site}\", field = \"x\" }\n";
+    let plan = PLAN.replace("field = \"x\"", "field = \"speed\"")
+        + "wind = { source = \"sites\", key = \"{site}\", field = \"x\" }\n";
     write_atomically(&store.join("features.toml"), plan.as_bytes());
     reg.reload().unwrap();
     let FeaturesState::Refused { problems } = reg.status().features else { panic!("{:?}", reg.status().features) };
@@ -163,8 +187,15 @@ fn the_stream_scores_from_keys() {
     ]
     .join("\n");
     let mut out = Vec::new();
-    paddock_serve::surface::stream::run(&reg, input.as_bytes(), &mut out, paddock_serve::surface::stream::StreamOptions::default()).unwrap();
-    let lines: Vec<serde_json::Value> = String::from_utf8(out).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
+    paddock_serve::surface::stream::run(
+        &reg,
+        input.as_bytes(),
+        &mut out,
+        paddock_serve::surface::stream::StreamOptions::default(),
+    )
+    .unwrap();
+    let lines: Vec<serde_json::Value> =
+        String::from_utf8(out).unwrap().lines().map(|l| serde_json::from_str(l).unwrap()).collect();
     assert_eq!(lines[0]["answer"]["estimates"][0]["y"], 7.0, "{}", lines[0]);
     let second = &lines[1]["answer"];
     assert_eq!(second["estimates"][0]["y"], 3.0, "{}", lines[1]);

@@ -10,18 +10,15 @@
 //!   for bit, and a small ensemble against values computed by hand.
 //! - A hand-written WAT model, no SDK: the contract is language-neutral.
 
-use paddock_guest::{
-    Branch, Evaluate, LinearParams, Link, Node, Packaged, SplitRule,
-    Tree, Trees, TreesParams, encode_params,
-};
 use paddock_guest::ndarray::{Array2, ArrayView2};
+use paddock_guest::{
+    Branch, Evaluate, LinearParams, Link, Node, Packaged, SplitRule, Tree, Trees, TreesParams, encode_params,
+};
 use paddock_host::{Model, Row, Runtime, sandbox::verify};
 use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble, unhurried};
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linear::linear_regression::LinearRegression;
-
-
 
 #[test]
 fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
@@ -37,21 +34,20 @@ fn linear_regression_on_diabetes_matches_smartcore_within_1e_12() {
     let names: Vec<String> = data.feature_names.iter().map(|s| s.to_lowercase()).collect();
     let params = encode_params(&Packaged {
         contract: open_contract("diabetes-progression", &names, "progression"),
-        params: LinearParams { link: Link::Identity, intercepts: vec![*fit.intercept()], weights: vec![weights], impute: vec![] },
+        params: LinearParams {
+            link: Link::Identity,
+            intercepts: vec![*fit.intercept()],
+            weights: vec![weights],
+            impute: vec![],
+        },
     });
     let runtime = Runtime::new().unwrap();
     let model = load(&runtime, &guest("paddock-model-linear"), &params, unhurried());
-    let requests: Vec<Row> = rows
-        .iter()
-        .map(|r| names.iter().cloned().zip(r.iter().copied()).collect())
-        .collect();
+    let requests: Vec<Row> = rows.iter().map(|r| names.iter().cloned().zip(r.iter().copied()).collect()).collect();
     let estimates = model.score(&requests).unwrap();
     assert_eq!(estimates.rows(), n);
-    let worst = reference
-        .iter()
-        .enumerate()
-        .map(|(i, want)| ((estimates.row(i)[0] - want) / want).abs())
-        .fold(0.0, f64::max);
+    let worst =
+        reference.iter().enumerate().map(|(i, want)| ((estimates.row(i)[0] - want) / want).abs()).fold(0.0, f64::max);
     eprintln!("diabetes: largest relative difference from smartcore {worst:e}");
     assert!(worst <= 1e-12, "largest relative difference from smartcore: {worst:e}");
 }
@@ -71,10 +67,17 @@ fn linear_models_in_the_sandbox_equal_the_written_out_sum_bit_for_bit() {
     contract.outputs.push(contract.outputs[0].clone());
     contract.outputs[1].name = "b".into();
     for impute in [true, false] {
-        let weights: Vec<Vec<f64>> = (0..2).map(|k| coefficients[k * (features + 2)..][..features].iter().map(|w| w * 7.0 - 3.0).collect()).collect();
+        let weights: Vec<Vec<f64>> = (0..2)
+            .map(|k| coefficients[k * (features + 2)..][..features].iter().map(|w| w * 7.0 - 3.0).collect())
+            .collect();
         let intercepts = vec![coefficients[features] * 100.0, -coefficients[features + 1]];
         let fill: Vec<f64> = if impute { coefficients[2 * (features + 2)..][..features].to_vec() } else { vec![] };
-        let params = LinearParams { link: Link::Identity, intercepts: intercepts.clone(), weights: weights.clone(), impute: fill.clone() };
+        let params = LinearParams {
+            link: Link::Identity,
+            intercepts: intercepts.clone(),
+            weights: weights.clone(),
+            impute: fill.clone(),
+        };
         let blob = encode_params(&Packaged { contract: contract.clone(), params });
         let model = load(&runtime, &guest("paddock-model-linear"), &blob, unhurried());
         for rows in [1, 7, 8, 9, 1021] {
@@ -89,7 +92,11 @@ fn linear_models_in_the_sandbox_equal_the_written_out_sum_bit_for_bit() {
                         sum += weights[k][j] * v;
                     }
                     let have = sandboxed.row(r)[k];
-                    assert_eq!(have.to_bits(), sum.to_bits(), "{rows} rows, impute {impute}: row {r} output {k}: {have} against {sum}");
+                    assert_eq!(
+                        have.to_bits(),
+                        sum.to_bits(),
+                        "{rows} rows, impute {impute}: row {r} output {k}: {have} against {sum}"
+                    );
                 }
             }
         }

@@ -27,7 +27,8 @@ fn wasi() -> ModelOptions {
 }
 
 fn rows(r: &Value) -> Vec<Row> {
-    let features: Vec<String> = r["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
+    let features: Vec<String> =
+        r["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
     r["rows"]
         .as_array()
         .unwrap()
@@ -99,7 +100,11 @@ fn foreign_guests_are_held_to_the_same_contract_and_limits() {
         let c = model.contract();
         assert_eq!((c.name.as_str(), c.version.as_str()), ("charge-taper", "1.0.0"), "{name}");
         // A row outside the contract never reaches the guest.
-        let bad = Row::new().with("charger_kw", 11.0).with("battery_kwh", 64.0).with("soc_start", 1.5).with("soc_target", 0.9);
+        let bad = Row::new()
+            .with("charger_kw", 11.0)
+            .with("battery_kwh", 64.0)
+            .with("soc_start", 1.5)
+            .with("soc_target", 0.9);
         match model.score(&[bad]) {
             Err(ScoreError::InvalidRows { errors }) => {
                 assert_eq!(errors.len(), 1);
@@ -116,7 +121,11 @@ fn foreign_guests_are_held_to_the_same_contract_and_limits() {
         // Rows per call bind as for any model.
         let few = ModelOptions { limits: Limits { rows_per_call: 2, ..Limits::default() }, ..wasi() };
         let model = load_foreign(&runtime, name, few).unwrap();
-        let row = Row::new().with("charger_kw", 11.0).with("battery_kwh", 64.0).with("soc_start", 0.2).with("soc_target", 0.9);
+        let row = Row::new()
+            .with("charger_kw", 11.0)
+            .with("battery_kwh", 64.0)
+            .with("soc_start", 0.2)
+            .with("soc_target", 0.9);
         match model.score(&vec![row; 3]) {
             Err(ScoreError::TooManyRows(LimitHit::Rows { limit: 2, actual: 3 })) => {}
             other => panic!("{name}: expected the row limit, got {other:?}"),

@@ -17,7 +17,10 @@ use std::sync::atomic::{AtomicBool, AtomicU8, Ordering};
 use std::time::{Duration, Instant};
 
 use paddock_host::sandbox::StartError;
-use paddock_host::{Artifact, ArtifactError, LoadError, Limits, Model, ModelOptions, OutputFault, Row, Runtime, SandboxError, ScoreError};
+use paddock_host::{
+    Artifact, ArtifactError, Limits, LoadError, Model, ModelOptions, OutputFault, Row, Runtime, SandboxError,
+    ScoreError,
+};
 use paddock_tests::{fixture, hostile_module, root};
 
 /// The limits every hostile model runs under.

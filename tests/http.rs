@@ -6,10 +6,10 @@ use std::path::Path;
 use std::sync::mpsc;
 use std::time::Duration;
 
+use paddock_host::{Digest, Limits, ModelOptions, Runtime};
 use paddock_serve::registry::artifact_path;
 use paddock_serve::surface::http::{self, ServeOptions};
 use paddock_serve::surface::openapi;
-use paddock_host::{Digest, Limits, ModelOptions, Runtime};
 use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{fixture, line_artifact, write_atomically};
 use semver::Version;
@@ -123,7 +123,8 @@ fn store_with_deadline(dir: &Path, routes: bool, deadline: Duration) -> Registry
         write_atomically(&dir.join("routes.toml"), text.as_bytes());
     }
     let limits = Limits { deadline, ..Limits::default() };
-    let options = RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let options =
+        RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
     Registry::open(&Runtime::new().unwrap(), dir, options).unwrap()
 }
 
@@ -146,7 +147,11 @@ fn with_model(model: &str, rest: &str) -> String {
 fn scoring_answers_with_estimates_version_route_and_usage() {
     let dir = tempfile::tempdir().unwrap();
     let s = Server::start(store(dir.path(), true), ServeOptions::default());
-    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}, {"x": 2.5}], "context": {"site": "a"}, "at": "2026-12-05T08:27:00+01:00"}"#);
+    let r = estimate(
+        &s,
+        "m",
+        r#"{"rows": [{"x": 1}, {"x": 2.5}], "context": {"site": "a"}, "at": "2026-12-05T08:27:00+01:00"}"#,
+    );
     assert_eq!(r.status, 200, "{}", r.body);
     assert_eq!(r.content_type, "application/json");
     let v = r.json();
@@ -217,11 +222,21 @@ fn valid_rows_are_answered_beside_invalid_ones_and_422_only_when_none_is_valid()
         .as_array()
         .unwrap()
         .iter()
-        .map(|p| (p["row"].as_u64().unwrap(), p["feature"].as_str().unwrap().into(), p["rule"]["rule"].as_str().unwrap().into()))
+        .map(|p| {
+            (
+                p["row"].as_u64().unwrap(),
+                p["feature"].as_str().unwrap().into(),
+                p["rule"]["rule"].as_str().unwrap().into(),
+            )
+        })
         .collect();
     assert_eq!(
         problems,
-        [(2, "x".into(), "wrong_kind".into()), (3, "y".into(), "unknown_feature".into()), (3, "x".into(), "missing_required".into())]
+        [
+            (2, "x".into(), "wrong_kind".into()),
+            (3, "y".into(), "unknown_feature".into()),
+            (3, "x".into(), "missing_required".into())
+        ]
     );
     assert_eq!(v["usage"]["rows"], 2);
 
@@ -258,7 +273,10 @@ fn a_limit_hit_is_500_and_a_model_fault_is_502() {
 /// A gauge or counter sample from `/metrics`, 0 when absent.
 fn metric(s: &Server, sample: &str) -> f64 {
     let r = call("GET", &format!("{}/metrics", s.base), None, None);
-    r.body.lines().find_map(|l| l.strip_prefix(sample).and_then(|v| v.strip_prefix(' '))).map_or(0.0, |v| v.parse().unwrap())
+    r.body
+        .lines()
+        .find_map(|l| l.strip_prefix(sample).and_then(|v| v.strip_prefix(' ')))
+        .map_or(0.0, |v| v.parse().unwrap())
 }
 
 /// Waits until `/metrics` shows `sample` at `value` (the server's own
@@ -280,7 +298,8 @@ fn a_full_queue_is_503_with_retry_after() {
     // The spinning model holds the only permit for its whole deadline.
     let s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), options);
     let url = estimate_url(&s);
-    let first = std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
+    let first =
+        std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
     wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
     // The permit is taken and nothing may wait: 503 at once.
     let r = estimate(&s, "affine", r#"{"rows": [{"x": 1}]}"#);
@@ -368,7 +387,10 @@ fn a_store_rescan_needs_the_bearer_token() {
     drop(s);
 
     let token = "a-token-of-some-length";
-    let s = Server::start(store(dir.path(), true), ServeOptions { admin_token: Some(token.into()), ..ServeOptions::default() });
+    let s = Server::start(
+        store(dir.path(), true),
+        ServeOptions { admin_token: Some(token.into()), ..ServeOptions::default() },
+    );
     let r = call("POST", &url(&s), None, None);
     assert_eq!((r.status, r.kind().as_str()), (401, "unauthorized"));
     assert_eq!(r.www_authenticate.as_deref(), Some("Bearer"));
@@ -450,7 +472,20 @@ fn the_openapi_document_is_served_and_names_every_route() {
     assert_eq!(doc["openapi"], "3.1.0");
     let mut paths: Vec<&str> = doc["paths"].as_object().unwrap().keys().map(String::as_str).collect();
     paths.sort();
-    assert_eq!(paths, ["/alive", "/catalogue", "/contract", "/estimate", "/metrics", "/openapi.json", "/ready", "/store", "/store/rescan"]);
+    assert_eq!(
+        paths,
+        [
+            "/alive",
+            "/catalogue",
+            "/contract",
+            "/estimate",
+            "/metrics",
+            "/openapi.json",
+            "/ready",
+            "/store",
+            "/store/rescan"
+        ]
+    );
     // Every documented route answers something other than "no such route".
     for p in &paths {
         let method = if doc["paths"][p]["post"].is_object() { "POST" } else { "GET" };
@@ -480,7 +515,8 @@ fn shutdown_lets_the_request_in_flight_finish() {
     let mut s = Server::start(store_with_deadline(dir.path(), true, Duration::from_secs(5)), ServeOptions::default());
     let url = estimate_url(&s);
     // This call runs for its whole deadline; shut down once it is running.
-    let in_flight = std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
+    let in_flight =
+        std::thread::spawn(move || call("POST", &url, Some(&with_model("affine", r#"{"rows": [{"x": 1}]}"#)), None));
     wait_for(&s, AFFINE_IN_FLIGHT, 1.0);
     s.stop();
     let r = in_flight.join().unwrap();
@@ -506,11 +542,22 @@ fn estimates_are_scored_from_keys_and_say_what_was_looked_up() {
     assert_eq!(r.status, 200, "{}", r.body);
     let a = r.json();
     assert_eq!(a["estimates"][0]["y"], 7.0);
-    assert_eq!(a["lookups"][0][0], serde_json::json!({"feature": "x", "source": "sites", "key": "north-1", "outcome": "found"}));
+    assert_eq!(
+        a["lookups"][0][0],
+        serde_json::json!({"feature": "x", "source": "sites", "key": "north-1", "outcome": "found"})
+    );
     // Keys in the rows; an unknown site falls back to the default 0.5 (y = 2),
     // and the compact answer names only that fallback.
     let r = estimate(&s, "m", r#"{"rows": [{"site": "north-1"}, {"site": "west-9"}]}"#);
     let a = r.json();
-    assert_eq!((a["estimates"][0]["y"].as_f64(), a["estimates"][1]["y"].as_f64()), (Some(7.0), Some(2.0)), "{}", r.body);
-    assert_eq!(a["lookups"], serde_json::json!([[], [{"feature": "x", "source": "sites", "key": "west-9", "outcome": "missing"}]]));
+    assert_eq!(
+        (a["estimates"][0]["y"].as_f64(), a["estimates"][1]["y"].as_f64()),
+        (Some(7.0), Some(2.0)),
+        "{}",
+        r.body
+    );
+    assert_eq!(
+        a["lookups"],
+        serde_json::json!([[], [{"feature": "x", "source": "sites", "key": "west-9", "outcome": "missing"}]])
+    );
 }

@@ -116,7 +116,10 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
     assert!(origin.task.starts_with("multiclass: one probability per class"), "{}", origin.task);
     let band = origin.contract.iter().find(|s| s.part == "feature alcohol_band").expect("the categorical feature");
     assert!(band.from.contains("category code"), "{}", band.from);
-    assert_eq!(origin.contract.iter().find(|s| s.part == "name").unwrap().from, "the file's name (set `name` in a manifest to change it)");
+    assert_eq!(
+        origin.contract.iter().find(|s| s.part == "name").unwrap().from,
+        "the file's name (set `name` in a manifest to change it)"
+    );
     let model = Model::load(&Runtime::new().unwrap(), artifact).unwrap();
     let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
     assert!(report.ok(), "{report:?}");
@@ -172,7 +175,8 @@ fn tree_and_node(message: &str) -> (usize, usize) {
 #[test]
 fn refusals_name_the_tree_and_node() {
     let path = dir().join("refused-xgb-categorical.json");
-    let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+    let bytes =
+        std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
     let err = import(&bytes, Format::XgboostJson, "refused-xgb-categorical.json", None).unwrap_err();
     assert!(matches!(err, ImportError::Unsupported { .. }), "{err}");
     let message = err.to_string();
@@ -186,7 +190,10 @@ fn refusals_name_the_tree_and_node() {
     let err = import(&bytes, Format::LightgbmText, "refused-lgb-linear.txt", None).unwrap_err();
     let message = err.to_string();
     assert!(message.starts_with("refused-lgb-linear.txt: tree 0 (line "), "{message}");
-    assert!(message.ends_with("a linear tree (linear_tree) is not supported; train with linear_tree=false"), "{message}");
+    assert!(
+        message.ends_with("a linear tree (linear_tree) is not supported; train with linear_tree=false"),
+        "{message}"
+    );
 
     // One-vs-rest probabilities (scikit-learn's OneVsRestClassifier: a
     // logistic per class, then normalised) are refused naming the node; a
@@ -197,13 +204,23 @@ fn refusals_name_the_tree_and_node() {
     assert!(err.contains("is not supported; ") && err.contains("one-vs-rest"), "{err}");
     let mlp = root().join("target/paddock/sklearn/onnx-mlp.onnx");
     let graph = std::fs::read(&mlp).unwrap_or_else(|e| panic!("{}: {e} (run tests/sklearn/export.py)", mlp.display()));
-    assert_eq!(Format::recognise(&graph), None, "a graph without a tree ensemble or linear model goes to the ONNX evaluator");
+    assert_eq!(
+        Format::recognise(&graph),
+        None,
+        "a graph without a tree ensemble or linear model goes to the ONNX evaluator"
+    );
     let err = import(&graph, Format::SklearnOnnx, "onnx-mlp.onnx", None).unwrap_err().to_string();
-    assert!(err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX model with --manifest"), "{err}");
+    assert!(
+        err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX model with --manifest"),
+        "{err}"
+    );
 
     // A file in the other format names the format it looks like.
     let err = import(&bytes, Format::XgboostJson, "refused-lgb-linear.txt", None).unwrap_err();
-    assert_eq!(err.to_string(), "refused-lgb-linear.txt: not the XGBoost JSON model asked for; it looks like a LightGBM text model");
+    assert_eq!(
+        err.to_string(),
+        "refused-lgb-linear.txt: not the XGBoost JSON model asked for; it looks like a LightGBM text model"
+    );
 }
 
 /// Every scikit-learn model the export hands off through skl2onnx.
@@ -242,7 +259,9 @@ fn score_bound(estimator: &Estimator, row: &[f64]) -> f64 {
                     .iter()
                     .map(|n| match n {
                         Node::Leaf { value } => value.abs(),
-                        Node::Leaves { first } => p.vectors[*first as usize..][..p.base.len()].iter().fold(0.0, |m, v| v.abs().max(m)),
+                        Node::Leaves { first } => {
+                            p.vectors[*first as usize..][..p.base.len()].iter().fold(0.0, |m, v| v.abs().max(m))
+                        }
                         _ => 0.0,
                     })
                     .fold(0.0, f64::max)
@@ -282,10 +301,12 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
     let runtime = Runtime::new().unwrap();
     for name in SKLEARN {
         let path = dir().join(format!("{name}.onnx"));
-        let bytes = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+        let bytes =
+            std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
         assert_eq!(Format::recognise(&bytes), Some(Format::SklearnOnnx), "{name}");
         // The helper names the columns in a manifest when it knows them.
-        let manifest = std::fs::read_to_string(dir().join(format!("{name}.toml"))).ok().map(|t| Manifest::from_toml(&t).unwrap());
+        let manifest =
+            std::fs::read_to_string(dir().join(format!("{name}.toml"))).ok().map(|t| Manifest::from_toml(&t).unwrap());
         let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), manifest.as_ref()).unwrap();
         if name == "skl-diabetes-linear" {
             assert_eq!(imported.contract.features[2].name, "bmi", "the helper's manifest names the columns");
@@ -329,6 +350,10 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
         // rounding, pass when the model is scored against them.
         let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
         assert!(report.ok(), "{name}: the handed-off checks fail: {report:?}");
-        eprintln!("{name}: largest relative difference {worst:.1e} over {} rows, score bound up to {widest:.1e} ({})", rows.len(), checks.source);
+        eprintln!(
+            "{name}: largest relative difference {worst:.1e} over {} rows, score bound up to {widest:.1e} ({})",
+            rows.len(),
+            checks.source
+        );
     }
 }

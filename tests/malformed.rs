@@ -136,7 +136,8 @@ fn single_byte_flips_never_panic_and_never_pass_for_the_vouched_original() {
             matches!(vouched.admit(flipped, Some(&vouch)), Err(TrustError::DigestMismatch { .. })),
             "byte {pos} passed the vouch"
         );
-        match parse(bytes).map_err(|e| e.to_string()).and_then(|a| Model::load(&runtime, a).map_err(|e| e.to_string())) {
+        match parse(bytes).map_err(|e| e.to_string()).and_then(|a| Model::load(&runtime, a).map_err(|e| e.to_string()))
+        {
             Err(message) => {
                 assert!(!message.is_empty());
                 refused += 1;

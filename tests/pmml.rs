@@ -21,7 +21,16 @@ use paddock_import::{Estimator, Format, ImportError, Imported, import};
 use paddock_tests::{guest, load, root, unhurried};
 
 /// Every document the nyoka export writes: a test fails if one is missing.
-const NYOKA: [&str; 8] = ["iris-tree", "iris-forest", "cancer-forest", "iris-logistic", "cancer-boosted", "diabetes-tree", "diabetes-forest", "diabetes-linear"];
+const NYOKA: [&str; 8] = [
+    "iris-tree",
+    "iris-forest",
+    "cancer-forest",
+    "iris-logistic",
+    "cancer-boosted",
+    "diabetes-tree",
+    "diabetes-forest",
+    "diabetes-linear",
+];
 
 fn fixture(name: &str) -> (PathBuf, Vec<u8>) {
     let path = root().join("tests/pmml").join(name);
@@ -45,7 +54,10 @@ fn score(imported: &Imported, row: &[(&str, &str)]) -> Vec<f64> {
         .map(|f| match row.iter().find(|(n, _)| *n == f.name) {
             None => f64::NAN,
             Some((_, v)) => match &f.domain {
-                Domain::Label(labels) => labels.iter().position(|l| l == v).unwrap_or_else(|| panic!("`{v}` is not a label of {}", f.name)) as f64,
+                Domain::Label(labels) => {
+                    labels.iter().position(|l| l == v).unwrap_or_else(|| panic!("`{v}` is not a label of {}", f.name))
+                        as f64
+                }
                 _ => v.parse().unwrap(),
             },
         })
@@ -80,9 +92,18 @@ fn nyoka_documents_give_scikit_learns_predictions_in_the_sandbox() {
         let lost = Checks::from_json(&std::fs::read(dir.join(format!("{name}.lost.json"))).unwrap()).unwrap();
         if !lost.cases.is_empty() {
             let differ = paddock_host::sandbox::verify::run(&model, &lost).unwrap();
-            assert_eq!(differ.failures.len(), lost.cases.len(), "{name}: a row left out agrees with scikit-learn after all");
+            assert_eq!(
+                differ.failures.len(),
+                lost.cases.len(),
+                "{name}: a row left out agrees with scikit-learn after all"
+            );
         }
-        assert!(lost.cases.len() * 20 < checks.cases.len(), "{name}: {} rows left out of {}", lost.cases.len(), checks.cases.len());
+        assert!(
+            lost.cases.len() * 20 < checks.cases.len(),
+            "{name}: {} rows left out of {}",
+            lost.cases.len(),
+            checks.cases.len()
+        );
         eprintln!(
             "{name}: {} rows, largest difference {:.1e} absolute, {:.1e} relative ({})",
             report.cases, report.max_abs_error, report.max_rel_error, checks.source
@@ -118,8 +139,17 @@ fn the_dmg_golf_tree_chooses_as_the_specification_walks_it() {
     // defaults to returnNullPrediction.
     let none = score(&tree, &[("outlook", "rain"), ("temperature", "70"), ("humidity", "85"), ("windy", "false")]);
     assert!(none.iter().all(|p| p.is_nan()), "{none:?}");
-    let last = imported("last", &text.replace("functionName=\"classification\">", "functionName=\"classification\" noTrueChildStrategy=\"returnLastPrediction\">"));
-    assert_eq!(score(&last, &[("outlook", "rain"), ("temperature", "70"), ("humidity", "85"), ("windy", "false")]), may);
+    let last = imported(
+        "last",
+        &text.replace(
+            "functionName=\"classification\">",
+            "functionName=\"classification\" noTrueChildStrategy=\"returnLastPrediction\">",
+        ),
+    );
+    assert_eq!(
+        score(&last, &[("outlook", "rain"), ("temperature", "70"), ("humidity", "85"), ("windy", "false")]),
+        may
+    );
 }
 
 /// Each missingValueStrategy on the golf tree, for a sunny, mild day whose
@@ -200,7 +230,11 @@ fn transformations_segments_and_targets_compose_as_specified() {
     assert!(matches!(&model.contract.features[2].domain, Domain::Label(l) if l == &["ccs2", "type2", "chademo"]));
     assert!(matches!(&model.contract.features[3].domain, Domain::Whole(_)));
     let from = &model.origin.contract.iter().find(|s| s.part == "feature arrival_soc").unwrap().from;
-    assert!(from.contains("absent → 50 (missingValueReplacement)") && from.contains("values outside the Interval are refused"), "{from}");
+    assert!(
+        from.contains("absent → 50 (missingValueReplacement)")
+            && from.contains("values outside the Interval are refused"),
+        "{from}"
+    );
 }
 
 #[test]
@@ -223,13 +257,29 @@ fn unsupported_elements_are_refused_naming_element_and_line() {
         Err(e @ (ImportError::Unsupported { .. } | ImportError::Malformed { .. })) => e.to_string(),
         other => panic!("expected a refusal, got {other:?}"),
     };
-    let err = refuse(&text.replace("functionName=\"classification\">", "functionName=\"classification\" missingValueStrategy=\"aggregateNodes\">"));
-    assert!(err.starts_with("golf.pmml: line 25 <TreeModel>: missingValueStrategy `aggregateNodes` is not supported; use none"), "{err}");
-    let err = refuse(&text.replace("<TreeModel modelName=\"golfing\"", "<NaiveBayesModel modelName=\"golfing\"").replace("</TreeModel>", "</NaiveBayesModel>"));
+    let err = refuse(&text.replace(
+        "functionName=\"classification\">",
+        "functionName=\"classification\" missingValueStrategy=\"aggregateNodes\">",
+    ));
+    assert!(
+        err.starts_with(
+            "golf.pmml: line 25 <TreeModel>: missingValueStrategy `aggregateNodes` is not supported; use none"
+        ),
+        "{err}"
+    );
+    let err = refuse(
+        &text
+            .replace("<TreeModel modelName=\"golfing\"", "<NaiveBayesModel modelName=\"golfing\"")
+            .replace("</TreeModel>", "</NaiveBayesModel>"),
+    );
     assert!(err.starts_with("golf.pmml: line 25 <NaiveBayesModel>: model <NaiveBayesModel> is not supported"), "{err}");
-    let err = refuse(&text.replace("field=\"humidity\" operator=\"lessThan\"", "field=\"dew_point\" operator=\"lessThan\""));
+    let err =
+        refuse(&text.replace("field=\"humidity\" operator=\"lessThan\"", "field=\"dew_point\" operator=\"lessThan\""));
     assert!(err.contains("<SimplePredicate>: field `dew_point` is not defined here"), "{err}");
-    let err = refuse(&text.replace("<True/>\n      <Node score=\"will play\">", "<True/>\n      <Node score=\"will play\">\n<Partition name=\"p\"/>"));
+    let err = refuse(&text.replace(
+        "<True/>\n      <Node score=\"will play\">",
+        "<True/>\n      <Node score=\"will play\">\n<Partition name=\"p\"/>",
+    ));
     assert!(err.contains("<Partition> in a Node is not supported"), "{err}");
     let err = refuse(&text[..text.len() - 40]);
     assert!(err.starts_with("golf.pmml: line ") && err.contains("not well-formed XML"), "{err}");

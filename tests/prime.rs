@@ -9,7 +9,9 @@
 //! the same artifact loaded unprimed.
 
 use paddock_host::sandbox::model::Isolation;
-use paddock_host::{Artifact, CodeCache, CodeSource, Model, ModelOptions, PrimeState, Priming, Row, Runtime, ScoreError, WasiPolicy};
+use paddock_host::{
+    Artifact, CodeCache, CodeSource, Model, ModelOptions, PrimeState, Priming, Row, Runtime, ScoreError, WasiPolicy,
+};
 use paddock_tests::{demo_artifact, hostile_module, load_foreign, packed};
 
 /// State that only `init` sets, and that `score` changes: `init` adds the
@@ -52,7 +54,8 @@ fn options(isolation: Isolation, priming: Priming) -> ModelOptions {
 #[test]
 fn a_primed_fresh_instance_starts_where_init_left_it() {
     let runtime = Runtime::new().unwrap();
-    let primed = Model::load_with(&runtime, hidden(&[7]), options(Isolation::FreshPerCall, Priming::default())).unwrap();
+    let primed =
+        Model::load_with(&runtime, hidden(&[7]), options(Isolation::FreshPerCall, Priming::default())).unwrap();
     assert_eq!(primed.prime_state(), &PrimeState::Primed);
     let unprimed = Model::load_with(&runtime, hidden(&[7]), options(Isolation::FreshPerCall, Priming::Off)).unwrap();
     assert_eq!(unprimed.prime_state(), &PrimeState::Off);
@@ -63,7 +66,8 @@ fn a_primed_fresh_instance_starts_where_init_left_it() {
         assert_eq!(unprimed.score(&x(1.0)).unwrap().values(), a.values());
     }
     // Other params, another snapshot: the seed came from init, not the module.
-    let other = Model::load_with(&runtime, hidden(&[40]), options(Isolation::FreshPerCall, Priming::default())).unwrap();
+    let other =
+        Model::load_with(&runtime, hidden(&[40]), options(Isolation::FreshPerCall, Priming::default())).unwrap();
     assert_eq!(other.score(&x(1.0)).unwrap().values(), &[5041.0]);
 }
 
@@ -90,7 +94,10 @@ fn after_a_trap_the_next_primed_instance_is_pristine() {
 fn a_primed_tree_ensemble_answers_bit_for_bit_what_an_unprimed_one_does() {
     let runtime = Runtime::new().unwrap();
     let bytes = std::fs::read(demo_artifact("charge-minutes")).unwrap();
-    let load = |isolation, priming| Model::load_with(&runtime, Artifact::from_bytes(bytes.clone(), u64::MAX).unwrap(), options(isolation, priming)).unwrap();
+    let load = |isolation, priming| {
+        Model::load_with(&runtime, Artifact::from_bytes(bytes.clone(), u64::MAX).unwrap(), options(isolation, priming))
+            .unwrap()
+    };
     let primed = load(Isolation::FreshPerCall, Priming::WhenFresh);
     assert_eq!(primed.prime_state(), &PrimeState::Primed);
     let unprimed = load(Isolation::FreshPerCall, Priming::Off);
@@ -100,7 +107,10 @@ fn a_primed_tree_ensemble_answers_bit_for_bit_what_an_unprimed_one_does() {
     assert_eq!(bits(&primed), bits(&unprimed));
     for row in &rows {
         let one = std::slice::from_ref(row);
-        assert_eq!(primed.score(one).unwrap().values()[0].to_bits(), unprimed.score(one).unwrap().values()[0].to_bits());
+        assert_eq!(
+            primed.score(one).unwrap().values()[0].to_bits(),
+            unprimed.score(one).unwrap().values()[0].to_bits()
+        );
     }
 }
 
@@ -119,7 +129,9 @@ fn the_code_cache_keeps_the_primed_component() {
     assert_eq!((second.code_source(), second.prime_state()), (&CodeSource::Cache, &PrimeState::Primed));
     assert_eq!(second.score(&x(1.0)).unwrap().values(), &[1708.0]);
     // Other params are another artifact: another entry, another snapshot.
-    let other = Model::load_cached(&runtime, hidden(&[40]), options(Isolation::FreshPerCall, Priming::WhenFresh), &cache).unwrap();
+    let other =
+        Model::load_cached(&runtime, hidden(&[40]), options(Isolation::FreshPerCall, Priming::WhenFresh), &cache)
+            .unwrap();
     assert_eq!(other.code_source(), &CodeSource::CompiledAndCached);
     assert_eq!(other.score(&x(1.0)).unwrap().values(), &[5041.0]);
 }
@@ -173,7 +185,9 @@ fn bits(model: &Model, rows: &[Row]) -> Vec<u64> {
 fn a_primed_wasi_model_starts_its_world_where_init_left_it() {
     let runtime = Runtime::new().unwrap();
     let cache = test_cache();
-    let load = |priming| Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::FreshPerCall, priming), &cache).unwrap();
+    let load = |priming| {
+        Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::FreshPerCall, priming), &cache).unwrap()
+    };
     let primed = load(Priming::WhenFresh);
     assert_eq!(primed.prime_state(), &PrimeState::Primed);
     let unprimed = load(Priming::Off);
@@ -181,8 +195,10 @@ fn a_primed_wasi_model_starts_its_world_where_init_left_it() {
         assert_eq!(bits(&primed, &probe_row()), bits(&unprimed, &probe_row()));
     }
     // Warm primed instances go on from there too.
-    let warm = Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Always), &cache).unwrap();
-    let warm_unprimed = Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Off), &cache).unwrap();
+    let warm =
+        Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Always), &cache).unwrap();
+    let warm_unprimed =
+        Model::load_cached(&runtime, quiet_probe(), wasi_options(Isolation::Reuse, Priming::Off), &cache).unwrap();
     assert_eq!(warm.prime_state(), &PrimeState::Primed);
     for _ in 0..3 {
         assert_eq!(bits(&warm, &probe_row()), bits(&warm_unprimed, &probe_row()));
@@ -218,7 +234,10 @@ fn a_wasi_model_whose_init_reaches_what_cannot_be_carried_is_not_primed_and_says
     let runtime = Runtime::new().unwrap();
     let real_random = WasiPolicy { random: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
     let real_clocks = WasiPolicy { clocks: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
-    let fresh = |policy: &WasiPolicy| ModelOptions { wasi: Some(policy.clone()), ..options(Isolation::FreshPerCall, Priming::WhenFresh) };
+    let fresh = |policy: &WasiPolicy| ModelOptions {
+        wasi: Some(policy.clone()),
+        ..options(Isolation::FreshPerCall, Priming::WhenFresh)
+    };
     let cases = [
         ("wasi-probe", WasiPolicy::default(), "init calls `wasi:cli/stdout@"),
         ("charge-taper-py", real_random, "init calls `wasi:random/random@0.2.9#get-random-bytes`"),

@@ -6,9 +6,9 @@
 use std::path::Path;
 use std::time::Duration;
 
+use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
 use paddock_serve::registry::{FeaturesState, artifact_path};
-use paddock_host::{Row, Runtime};
 use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{RedisServer as Server, line_artifact, unhurried, write_atomically};
 use semver::Version;
@@ -17,7 +17,10 @@ use semver::Version;
 fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(
+        &artifact_path(store, "m", &Version::new(1, 0, 0)),
+        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
+    );
     write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
     plan(store, server, missing, budget_ms);
     // Minute-long deadlines: a busy machine must not make a lookup late.
@@ -165,13 +168,25 @@ fn a_budget_past_the_deadline_is_refused() {
     let server = Server::unstarted();
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(&artifact_path(store, "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(
+        &artifact_path(store, "m", &Version::new(1, 0, 0)),
+        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
+    );
     write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
     plan(store, &server, "\"fail\"", 80);
-    let registry = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
-    let FeaturesState::Refused { problems } = registry.status().features else { panic!("{:?}", registry.status().features) };
+    let registry = Registry::open(
+        &Runtime::new().unwrap(),
+        store,
+        RegistryOptions { usage_flush: None, ..RegistryOptions::default() },
+    )
+    .unwrap();
+    let FeaturesState::Refused { problems } = registry.status().features else {
+        panic!("{:?}", registry.status().features)
+    };
     assert_eq!(
         problems,
-        ["m 1.0.0: feature `x`: source `live` has a budget of 80 ms, longer than the version's deadline of 50 ms: a lookup must fit inside the call's time"]
+        [
+            "m 1.0.0: feature `x`: source `live` has a budget of 80 ms, longer than the version's deadline of 50 ms: a lookup must fit inside the call's time"
+        ]
     );
 }

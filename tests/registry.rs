@@ -11,8 +11,8 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
 use paddock_host::{Artifact, Digest, Row, Runtime, TrustError, TrustPolicy, VouchingKey};
+use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
 use paddock_serve::{Context, Registry, RegistryOptions, Request, RequestError};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
@@ -83,7 +83,9 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
                     let keep = a.as_ref().map_or(true, |a| a.generation != last_generation || i % 16 == 0);
                     if keep {
                         last_generation = a.as_ref().map_or(last_generation, |a| a.generation);
-                        seen.push(a.map(|a| (a.generation, (i + t) % 2, a.version.to_string(), a.digest, xv, a.estimates.row(0)[0])));
+                        seen.push(a.map(|a| {
+                            (a.generation, (i + t) % 2, a.version.to_string(), a.digest, xv, a.estimates.row(0)[0])
+                        }));
                     }
                     i += 1;
                 }
@@ -102,12 +104,22 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
                 let v = format!("1.{step}.0");
                 write(&v, f64::from(step), 0.0);
                 versions.push(v.clone());
-                routes(store, &format!("[models.m]\ndefault = \"{v}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"));
+                routes(
+                    store,
+                    &format!(
+                        "[models.m]\ndefault = \"{v}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"
+                    ),
+                );
             }
             // The routes change: north moves to the default.
             2 => {
                 north = default.clone();
-                routes(store, &format!("[models.m]\ndefault = \"{default}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"));
+                routes(
+                    store,
+                    &format!(
+                        "[models.m]\ndefault = \"{default}\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"{north}\"\ncontext = {{ region = \"north\" }}\n"
+                    ),
+                );
             }
             // The default's artifact is replaced by new bytes (same version).
             _ => {
@@ -136,7 +148,8 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
         let (total, kept) = scorer.join().unwrap();
         answers += total;
         for answer in kept {
-            let (generation, which, version, digest, xv, y) = answer.unwrap_or_else(|e| panic!("a request failed: {e}"));
+            let (generation, which, version, digest, xv, y) =
+                answer.unwrap_or_else(|e| panic!("a request failed: {e}"));
             let (south, north) = &expected[&generation];
             let want = if which == 0 { south } else { north };
             assert_eq!(&version, want, "generation {generation}");
@@ -151,7 +164,10 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
     // Requests ran across many generations, not just the first and last.
     assert!(generations.len() > 20, "answers came from {} generations", generations.len());
     assert!(status.problems().all(|a| a.state == ArtifactState::KeptAfterRemoval), "{status:#?}");
-    eprintln!("{answers} answers ({checked} checked one by one) across {} of 101 generations, zero failures", generations.len());
+    eprintln!(
+        "{answers} answers ({checked} checked one by one) across {} of 101 generations, zero failures",
+        generations.len()
+    );
 }
 
 #[test]
@@ -211,7 +227,8 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     // |x| > 10 for x = 11..=99.
     assert_eq!(shadow.over_tolerance, 89);
     // The shadow's own calls are in its ledger; the served version's too.
-    let by_version: BTreeMap<_, _> = usage.versions.iter().filter(|v| v.model == "m").map(|v| (v.version.as_str(), v)).collect();
+    let by_version: BTreeMap<_, _> =
+        usage.versions.iter().filter(|v| v.model == "m").map(|v| (v.version.as_str(), v)).collect();
     assert_eq!((by_version["1.0.0"].calls, by_version["1.1.0-rc.1"].calls), (200, 100));
 }
 
@@ -230,7 +247,8 @@ fn route_default_to(store: &Path, version: &str) {
 
 fn refused(reg: &Registry, path: &str) -> Refusal {
     let status = reg.status();
-    let a = status.artifacts.iter().find(|a| a.path == Path::new(path)).unwrap_or_else(|| panic!("{path} in {status:#?}"));
+    let a =
+        status.artifacts.iter().find(|a| a.path == Path::new(path)).unwrap_or_else(|| panic!("{path} in {status:#?}"));
     match &a.state {
         ArtifactState::Refused { refusal } | ArtifactState::KeptAfterRefusal { refusal, .. } => refusal.clone(),
         other => panic!("{path} was not refused: {other:?}"),
@@ -280,7 +298,10 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     let path = artifact_path(store, "m", &Version::new(1, 0, 0));
     write_atomically(&paddock_host::Vouch::path_for(&path), trusted.vouch(Digest::of(&one)).to_text().as_bytes());
     let reg = serving_one(store, options);
-    assert_eq!(reg.status().artifacts[0].admission, Some(paddock_host::Admission::Vouch { voucher: trusted.voucher().id(), name: "release".into() }));
+    assert_eq!(
+        reg.status().artifacts[0].admission,
+        Some(paddock_host::Admission::Vouch { voucher: trusted.voucher().id(), name: "release".into() })
+    );
 
     // Vouched for by a voucher the host does not trust.
     let two = line_artifact("m", "2.0.0", 2.0, 0.0, Some(true));
@@ -303,7 +324,9 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     assert!(std::error::Error::source(&refusal).is_some());
     let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
     assert_eq!(stage, GateStep::Trust);
-    assert!(matches!(&refused(&reg, "m/3.0.0.wasm"), Refusal::Trust(e) if matches!(**e, TrustError::DigestMismatch { .. })));
+    assert!(
+        matches!(&refused(&reg, "m/3.0.0.wasm"), Refusal::Trust(e) if matches!(**e, TrustError::DigestMismatch { .. }))
+    );
     assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");
     assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }
@@ -588,7 +611,8 @@ fn with_a_metering_runtime_the_ledger_sums_fuel() {
     route_default_to(store, "1.0.0");
     let runtime = Runtime::with_config(RuntimeConfig { fuel: true, ..RuntimeConfig::default() }).unwrap();
     let limits = Limits { fuel: Some(10_000_000), ..Limits::default() };
-    let options = RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let options =
+        RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
     let reg = Registry::open(&runtime, store, options).unwrap();
     let mut fuel = 0;
     for i in 0..5 {

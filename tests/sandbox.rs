@@ -4,9 +4,11 @@
 
 use std::time::Duration;
 
-use paddock_host::sandbox::model::Isolation;
 use paddock_host::contract::schema::OutputFault;
-use paddock_host::{Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError};
+use paddock_host::sandbox::model::Isolation;
+use paddock_host::{
+    Artifact, LimitHit, Limits, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, SandboxError, ScoreError,
+};
 use paddock_tests::{demo_artifact, fixture, load};
 
 /// The hand-written fixture with a behaviour byte (see tests/fixtures/affine.wat).
@@ -52,7 +54,10 @@ fn a_model_past_its_deadline_gets_the_deadline_error_and_the_host_keeps_serving(
     for _ in 0..2 {
         // It returns at all (the fixture spins forever): the deadline stopped it.
         let err = spinner.score(&x(1.0)).unwrap_err();
-        assert_eq!(err, ScoreError::Sandbox(SandboxError::Limit(LimitHit::Deadline { limit: Duration::from_millis(20) })));
+        assert_eq!(
+            err,
+            ScoreError::Sandbox(SandboxError::Limit(LimitHit::Deadline { limit: Duration::from_millis(20) }))
+        );
         assert_eq!(err.to_string(), "deadline of 20ms exceeded");
         assert_eq!(healthy.score(&x(2.0)).unwrap().values(), &[5.0]);
     }
@@ -106,9 +111,11 @@ fn a_declared_contract_that_breaks_the_rules_is_refused_with_every_problem() {
         features: vec![Feature::real("a", Bounds::OPEN), Feature::real("a", Bounds::between(1.0, 0.0))],
         outputs: vec![Output::new("y", Bounds::OPEN)],
     };
-    let params = LinearParams { link: Link::Identity, intercepts: vec![0.0], weights: vec![vec![1.0, 1.0]], impute: vec![] };
+    let params =
+        LinearParams { link: Link::Identity, intercepts: vec![0.0], weights: vec![vec![1.0, 1.0]], impute: vec![] };
     let blob = encode_params(&Packaged::<<Linear as paddock_guest::Evaluate>::Params> { contract, params });
-    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("paddock-model-linear"), &blob, None)).unwrap_err();
+    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("paddock-model-linear"), &blob, None))
+        .unwrap_err();
     let LoadError::Contract(e) = &err else { panic!("expected a contract error, got {err:?}") };
     assert_eq!(e.problems.len(), 3, "{err}");
     let text = err.to_string();
@@ -133,10 +140,17 @@ fn init_refusing_its_params_is_a_load_error_with_the_models_message() {
     let params = TreesParams::boosted(8, 0.0, SplitRule::Less, vec![tree]);
     let artifact = paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &encode_params(&params), None);
     let err = Model::load(&runtime, artifact).unwrap_err();
-    assert_eq!(err.to_string(), "the model failed to start: init refused the params: tree 0 node 0: feature 9 but rows have 8");
+    assert_eq!(
+        err.to_string(),
+        "the model failed to start: init refused the params: tree 0 node 0: feature 9 but rows have 8"
+    );
     // Params that do not decode at all.
-    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &[0xff; 3], None)).unwrap_err();
-    assert!(err.to_string().starts_with("the model failed to start: init refused the params: params do not decode"), "{err}");
+    let err = Model::load(&runtime, paddock_tests::packed(&paddock_tests::guest("charge-minutes"), &[0xff; 3], None))
+        .unwrap_err();
+    assert!(
+        err.to_string().starts_with("the model failed to start: init refused the params: params do not decode"),
+        "{err}"
+    );
 }
 
 #[test]
@@ -156,7 +170,10 @@ fn a_trapped_instance_is_discarded_and_its_state_never_reaches_the_next_call() {
     assert_eq!(counter.score(&x(1.0)).unwrap().values(), &[1.0]);
     assert_eq!(counter.score(&x(1.0)).unwrap().values(), &[2.0], "a healthy instance is reused");
     let err = counter.score(&x(-1.0)).unwrap_err();
-    assert!(matches!(&err, ScoreError::Sandbox(SandboxError::Trap { message }) if message.contains("unreachable")), "{err:?}");
+    assert!(
+        matches!(&err, ScoreError::Sandbox(SandboxError::Trap { message }) if message.contains("unreachable")),
+        "{err:?}"
+    );
     let after = counter.score(&x(1.0)).unwrap();
     assert_eq!(after.values(), &[1.0], "the trapped instance (3 calls) was not reused");
     assert!(after.usage().fresh_instance);
@@ -187,10 +204,7 @@ fn non_finite_and_short_answers_are_model_faults() {
     assert_eq!(err.to_string(), "model fault: row 1, output `y` = NaN: not a finite number");
     let short = affine(&runtime, 5, Limits::default());
     let err = short.score(&[Row::new().with("x", 1.0), Row::new().with("x", 2.0)]).unwrap_err();
-    assert_eq!(
-        err,
-        ScoreError::Output(OutputFault::WrongLength { expected: 2, actual: 1, rows: 2, outputs: 1 })
-    );
+    assert_eq!(err, ScoreError::Output(OutputFault::WrongLength { expected: 2, actual: 1, rows: 2, outputs: 1 }));
 }
 
 #[test]
@@ -262,10 +276,12 @@ fn starting_an_instance_has_its_own_fuel_budget_apart_from_the_calls() {
     let budget = 100_000;
     // Decoding 200 trees takes more than one call's budget: as a start
     // budget it stops the start, naming the fuel limit...
-    let err = Model::load_with(&runtime, artifact(), with(Limits { init_fuel: Some(budget), ..Limits::default() })).unwrap_err();
+    let err = Model::load_with(&runtime, artifact(), with(Limits { init_fuel: Some(budget), ..Limits::default() }))
+        .unwrap_err();
     assert!(err.to_string().contains(&format!("fuel limit of {budget} exhausted")), "{err}");
     // ...but as the per-call budget it is not charged to the start.
-    let model = Model::load_with(&runtime, artifact(), with(Limits { fuel: Some(budget), ..Limits::default() })).unwrap();
+    let model =
+        Model::load_with(&runtime, artifact(), with(Limits { fuel: Some(budget), ..Limits::default() })).unwrap();
     let row = model.artifact().checks().unwrap().unwrap().cases[0].row.clone();
     let used = model.score(&[row]).unwrap().usage().fuel.expect("metered");
     assert!(used > 0 && used <= budget, "{used}");
@@ -297,7 +313,8 @@ fn a_model_fault_names_the_row_as_the_request_numbers_it() {
     assert_eq!(err.to_string(), "model fault: row 2, output `y` = NaN: not a finite number");
     // And with every row valid, partial scoring answers them all.
     let ok = affine(&runtime, 0, Limits::default());
-    let scored = ok.score_valid(&[Row::new().with("x", 1.0), Row::new().with("x", "two"), Row::new().with("x", 3.0)]).unwrap();
+    let scored =
+        ok.score_valid(&[Row::new().with("x", 1.0), Row::new().with("x", "two"), Row::new().with("x", 3.0)]).unwrap();
     assert_eq!(scored.scored, [1, 3]);
     assert_eq!(scored.problems.len(), 1);
     assert_eq!(scored.problems[0].row, 2);

@@ -32,7 +32,6 @@ fn floats(v: &Value) -> Vec<f64> {
     v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
 }
 
-
 /// The exported rows, as named rows.
 fn rows(e: &Value, features: &[String]) -> Vec<Row> {
     e["rows"].as_array().unwrap().iter().map(|r| features.iter().cloned().zip(floats(r)).collect()).collect()
@@ -55,14 +54,16 @@ fn versions(e: &Value) -> String {
 #[test]
 fn linear_regression_from_scikit_learn_matches_its_predictions_within_1e_9() {
     let e = export("linear");
-    let features: Vec<String> = e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
+    let features: Vec<String> =
+        e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
     let params = LinearParams {
         link: Link::Identity,
         intercepts: vec![e["intercept"].as_f64().unwrap()],
         weights: vec![floats(&e["coef"])],
         impute: vec![],
     };
-    let blob = encode_params(&Packaged { contract: open_contract("diabetes-linear", &features, "progression"), params });
+    let blob =
+        encode_params(&Packaged { contract: open_contract("diabetes-linear", &features, "progression"), params });
     let model = load(&Runtime::new().unwrap(), &guest("paddock-model-linear"), &blob, unhurried());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
@@ -72,7 +73,8 @@ fn linear_regression_from_scikit_learn_matches_its_predictions_within_1e_9() {
 #[test]
 fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
     let e = export("boosted");
-    let features: Vec<String> = e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
+    let features: Vec<String> =
+        e["features"].as_array().unwrap().iter().map(|f| f.as_str().unwrap().to_owned()).collect();
     let rate = e["learning_rate"].as_f64().unwrap();
     // scikit-learn adds `learning_rate × leaf value` to the initial
     // prediction tree by tree, and sends a row left when
@@ -102,8 +104,10 @@ fn gradient_boosting_from_scikit_learn_matches_its_predictions_within_1e_9() {
             Tree { output: 0, nodes }
         })
         .collect();
-    let params = TreesParams::boosted(features.len() as u32, e["init"].as_f64().unwrap(), SplitRule::LessOrEqual, trees);
-    let blob = encode_params(&Packaged { contract: open_contract("diabetes-boosted", &features, "progression"), params });
+    let params =
+        TreesParams::boosted(features.len() as u32, e["init"].as_f64().unwrap(), SplitRule::LessOrEqual, trees);
+    let blob =
+        encode_params(&Packaged { contract: open_contract("diabetes-boosted", &features, "progression"), params });
     let model = load(&Runtime::new().unwrap(), &guest("paddock-model-trees"), &blob, unhurried());
     let worst = worst_relative_error(&model, &e, &features);
     assert!(worst <= 1e-9, "largest relative error {worst:e} ({})", versions(&e));
@@ -142,7 +146,12 @@ fn onnx_exports_from_skl2onnx_match_scikit_learn_within_float32_tolerance() {
         let mut worst = 0.0f64;
         for (i, w) in want.iter().enumerate() {
             let err = (got.row(i)[0] - w).abs() / w.abs().max(1.0);
-            assert!(err <= FLOAT32_TOLERANCE, "{name} row {i}: {} vs scikit-learn {w} ({})", got.row(i)[0], versions(&e));
+            assert!(
+                err <= FLOAT32_TOLERANCE,
+                "{name} row {i}: {} vs scikit-learn {w} ({})",
+                got.row(i)[0],
+                versions(&e)
+            );
             worst = worst.max(err);
         }
         // Not bit-equal either: the graph really ran in float32.

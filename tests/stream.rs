@@ -3,16 +3,19 @@
 
 use std::path::Path;
 
+use paddock_host::Runtime;
 use paddock_serve::registry::artifact_path;
 use paddock_serve::surface::stream::{self, StreamOptions, StreamSummary};
-use paddock_host::Runtime;
 use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
 fn registry(dir: &Path) -> Registry {
     for (v, slope) in [("1.0.0", 2.0), ("2.0.0", 3.0)] {
-        write_atomically(&artifact_path(dir, "m", &Version::parse(v).unwrap()), &line_artifact("m", v, slope, 1.0, None));
+        write_atomically(
+            &artifact_path(dir, "m", &Version::parse(v).unwrap()),
+            &line_artifact("m", v, slope, 1.0, None),
+        );
     }
     let routes = "[models.m]\ndefault = \"1.0.0\"\n[[models.m.rules]]\nname = \"north\"\nversion = \"2.0.0\"\ncontext = { region = \"north\" }\n";
     write_atomically(&dir.join("routes.toml"), routes.as_bytes());

@@ -14,7 +14,11 @@ fn dir() -> PathBuf {
 
 fn read(name: &str) -> Table {
     let path = dir().join(name);
-    assert!(path.exists(), "{}: export the tables first: `python3 tests/tables/export.py target/paddock/tables` (needs pyarrow; `cargo xtask test` does it)", path.display());
+    assert!(
+        path.exists(),
+        "{}: export the tables first: `python3 tests/tables/export.py target/paddock/tables` (needs pyarrow; `cargo xtask test` does it)",
+        path.display()
+    );
     Table::read(&path, "site", Some("updated_at")).unwrap_or_else(|e| panic!("{e}"))
 }
 

@@ -2,8 +2,8 @@
 //! the policy says. ed25519 itself is checked against RFC 8032's first test
 //! vector.
 
-use paddock_host::artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 use paddock_host::Digest;
+use paddock_host::artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 use paddock_tests::demo_artifact;
 
 fn tmp(name: &str) -> std::path::PathBuf {
@@ -29,7 +29,11 @@ fn artifact_digest() -> Digest {
 #[test]
 fn ed25519_matches_the_rfc_8032_test_vector() {
     let path = tmp("rfc8032.vouching-key");
-    std::fs::write(&path, "name = \"rfc8032\"\ned25519_seed = \"9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60\"\n").unwrap();
+    std::fs::write(
+        &path,
+        "name = \"rfc8032\"\ned25519_seed = \"9d61b19deffd5a60ba844af492ec2cc44449c5697b326919703bac031cae7f60\"\n",
+    )
+    .unwrap();
     let key = VouchingKey::read(&path).unwrap();
     // RFC 8032 §7.1 TEST 1: PUBLIC KEY d75a9801…511a, and the signature of
     // the empty message is e5564300…100b; ours signs a prefixed digest, so
@@ -37,7 +41,10 @@ fn ed25519_matches_the_rfc_8032_test_vector() {
     let public = tmp("rfc8032.voucher");
     std::fs::write(&public, key.voucher().to_text()).unwrap();
     let text = std::fs::read_to_string(&public).unwrap();
-    assert!(text.contains("ed25519_public = \"d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a\""), "{text}");
+    assert!(
+        text.contains("ed25519_public = \"d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a\""),
+        "{text}"
+    );
     assert_eq!(Voucher::read(&public).unwrap(), key.voucher());
 }
 
@@ -47,7 +54,8 @@ fn voucher_files_that_are_not_vouchers_are_refused_naming_the_file_and_field() {
     std::fs::write(&path, "name = \"x\"\ned25519_public = \"abc\"\n").unwrap();
     let err = Voucher::read(&path).unwrap_err().to_string();
     assert!(err.contains("broken.voucher") && err.contains("ed25519_public: expected 64 hex digits"), "{err}");
-    std::fs::write(&path, "paddock-ed25519-public d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a\n").unwrap();
+    std::fs::write(&path, "paddock-ed25519-public d75a980182b10ab7d54bfed3c964073a0ee172f3daa62325af021a68f707511a\n")
+        .unwrap();
     let err = Voucher::read(&path).unwrap_err().to_string();
     assert!(err.contains("broken.voucher: not a voucher"), "{err}");
 }
@@ -58,7 +66,10 @@ fn a_vouch_by_a_trusted_voucher_is_admitted_and_names_the_voucher() {
     let policy = TrustPolicy::default().trust_dir(&dir).unwrap();
     let digest = artifact_digest();
     let vouch = secret.vouch(digest);
-    assert_eq!(policy.admit(digest, Some(&vouch)).unwrap(), Admission::Vouch { voucher: public.id(), name: "alice".into() });
+    assert_eq!(
+        policy.admit(digest, Some(&vouch)).unwrap(),
+        Admission::Vouch { voucher: public.id(), name: "alice".into() }
+    );
 }
 
 #[test]
@@ -92,7 +103,10 @@ fn a_vouch_whose_signature_was_altered_does_not_hold() {
     let flipped = if vouch.ed25519_signature.starts_with('0') { "1" } else { "0" };
     vouch.ed25519_signature.replace_range(0..1, flipped);
     let err = policy.admit(digest, Some(&vouch)).unwrap_err();
-    assert_eq!(err.to_string(), format!("the vouch by voucher {} does not hold: the artifact or its vouch was altered", public.id()));
+    assert_eq!(
+        err.to_string(),
+        format!("the vouch by voucher {} does not hold: the artifact or its vouch was altered", public.id())
+    );
 }
 
 #[test]

@@ -9,11 +9,17 @@ use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use paddock_host::audit::audit;
 use paddock_host::sandbox::wasi::Source;
-use paddock_host::{LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy, WasiPolicy};
+use paddock_host::{
+    LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy, WasiPolicy,
+};
 use paddock_tests::{load_foreign, root};
 
 /// The probe's outputs, by name.
-fn probe(model: &Model, sleep_ms: f64, print_bytes: f64) -> Result<std::collections::BTreeMap<String, f64>, ScoreError> {
+fn probe(
+    model: &Model,
+    sleep_ms: f64,
+    print_bytes: f64,
+) -> Result<std::collections::BTreeMap<String, f64>, ScoreError> {
     let e = model.score(&[Row::new().with("sleep_ms", sleep_ms).with("print_bytes", print_bytes)])?;
     Ok(model.contract().outputs.iter().map(|o| o.name.clone()).zip(e.row(0).iter().copied()).collect())
 }
@@ -129,7 +135,8 @@ fn the_audit_lists_every_wasi_import_and_what_satisfies_it() {
     for w in &report.wasi {
         assert!(w.satisfied_by.is_some(), "{} has no answer", w.interface);
     }
-    let find = |name: &str| report.wasi.iter().find(|w| w.interface.starts_with(name)).unwrap().satisfied_by.clone().unwrap();
+    let find =
+        |name: &str| report.wasi.iter().find(|w| w.interface.starts_with(name)).unwrap().satisfied_by.clone().unwrap();
     assert_eq!(find("wasi:filesystem/preopens@"), "no directories");
     assert_eq!(find("wasi:sockets/tcp@"), "every use refused");
     assert!(report.engine.imports_allowed.contains("WASI 0.2.12"), "{}", report.engine.imports_allowed);
@@ -138,7 +145,8 @@ fn the_audit_lists_every_wasi_import_and_what_satisfies_it() {
     assert!(report.violations[0].contains("no checks"), "{:?}", report.violations);
 
     let without = audit(&path, &ModelOptions::default(), &TrustPolicy::default());
-    let named: Vec<&String> = without.violations.iter().filter(|v| v.contains("WASI loads only under a WASI policy")).collect();
+    let named: Vec<&String> =
+        without.violations.iter().filter(|v| v.contains("WASI loads only under a WASI policy")).collect();
     assert_eq!(named.len(), without.wasi.len(), "{:?}", without.violations);
     assert!(without.wasi.iter().all(|w| w.satisfied_by.is_none()));
     assert_eq!(without.engine.imports_allowed, "none");

@@ -12,9 +12,9 @@ use std::time::Duration;
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
+use paddock_host::{Limits, ModelOptions, Runtime};
 use paddock_serve::registry::artifact_path;
 use paddock_serve::surface::worker::{self, WorkerCounts, WorkerOptions, WorkerSummary};
-use paddock_host::{Limits, ModelOptions, Runtime};
 use paddock_serve::{Registry, RegistryOptions};
 use paddock_tests::{NatsServer, line_artifact, line_store, publish_line_events, write_atomically};
 use semver::Version;
@@ -22,7 +22,12 @@ use semver::Version;
 fn store() -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     line_store(dir.path());
-    let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
+    let registry = Registry::open(
+        &Runtime::new().unwrap(),
+        dir.path(),
+        RegistryOptions { usage_flush: None, ..RegistryOptions::default() },
+    )
+    .unwrap();
     (dir, registry)
 }
 
@@ -36,9 +41,13 @@ fn small(server: &NatsServer) -> WorkerOptions {
 async fn connect(server: &NatsServer, options: &WorkerOptions) -> (async_nats::Client, jetstream::Context) {
     let client = async_nats::connect(server.url()).await.unwrap();
     let js = jetstream::new(client.clone());
-    js.get_or_create_stream(jetstream::stream::Config { name: options.events_stream.clone(), subjects: vec![options.events.clone()], ..Default::default() })
-        .await
-        .unwrap();
+    js.get_or_create_stream(jetstream::stream::Config {
+        name: options.events_stream.clone(),
+        subjects: vec![options.events.clone()],
+        ..Default::default()
+    })
+    .await
+    .unwrap();
     (client, js)
 }
 
@@ -56,7 +65,8 @@ impl Workers {
         let tasks = counts
             .iter()
             .map(|c| {
-                let (registry, options, c, mut stopped) = (registry.clone(), options.clone(), c.clone(), stopped.clone());
+                let (registry, options, c, mut stopped) =
+                    (registry.clone(), options.clone(), c.clone(), stopped.clone());
                 tokio::spawn(async move {
                     worker::run(registry, options, c, async move {
                         let _ = stopped.wait_for(|s| *s).await;
@@ -83,13 +93,20 @@ impl Workers {
 async fn stored(js: &jetstream::Context, stream: &str, subject: &str, count: usize) -> Vec<serde_json::Value> {
     let stream = js.get_stream(stream).await.unwrap();
     let consumer = stream
-        .create_consumer(jetstream::consumer::pull::OrderedConfig { filter_subject: subject.to_owned(), ..Default::default() })
+        .create_consumer(jetstream::consumer::pull::OrderedConfig {
+            filter_subject: subject.to_owned(),
+            ..Default::default()
+        })
         .await
         .unwrap();
     let mut messages = consumer.messages().await.unwrap();
     let mut out = Vec::with_capacity(count);
     while out.len() < count {
-        let m = tokio::time::timeout(Duration::from_secs(120), messages.next()).await.expect("stored messages keep coming").unwrap().unwrap();
+        let m = tokio::time::timeout(Duration::from_secs(120), messages.next())
+            .await
+            .expect("stored messages keep coming")
+            .unwrap()
+            .unwrap();
         out.push(serde_json::from_slice(&m.payload).unwrap());
     }
     out
@@ -123,14 +140,19 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     }
     let good = 2_000;
     publish_line_events(&js, &options.events, 0..good).await;
-    let bad = [r#"{"id": "b-json", "model": "m", "row": {"x": 1"#, r#"{"id": "b-model", "model": "nope", "row": {"x": 1}}"#, r#"{"id": "b-row", "model": "m", "row": {"x": "seven"}}"#];
+    let bad = [
+        r#"{"id": "b-json", "model": "m", "row": {"x": 1"#,
+        r#"{"id": "b-model", "model": "nope", "row": {"x": 1}}"#,
+        r#"{"id": "b-row", "model": "m", "row": {"x": "seven"}}"#,
+    ];
     for b in bad {
         js.publish(options.events.clone(), b.into()).await.unwrap().await.unwrap();
     }
 
     let mut seen: BTreeMap<String, f64> = BTreeMap::new();
     while seen.len() < good {
-        let m = tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers keep coming").unwrap();
+        let m =
+            tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers keep coming").unwrap();
         let a: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
         let id = a["id"].as_str().unwrap().to_owned();
         let y = a["estimates"][0]["y"].as_f64().unwrap();
@@ -140,7 +162,10 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     while letters.len() < bad.len() {
         let m = tokio::time::timeout(Duration::from_secs(120), dead.next()).await.expect("dead letters come").unwrap();
         let d: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
-        letters.insert(d["event"].as_str().unwrap_or_default().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned());
+        letters.insert(
+            d["event"].as_str().unwrap_or_default().to_owned(),
+            d["error"]["kind"].as_str().unwrap().to_owned(),
+        );
     }
     let counts = workers.counts.clone();
     let summaries = workers.stop().await;
@@ -149,8 +174,15 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // registry's per-version scoring.
     let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
     let url = format!("http://{}/metrics", listener.local_addr().unwrap());
-    tokio::spawn(paddock_serve::surface::http::serve(listener, worker::metrics_router(registry.clone(), counts[0].clone()), std::future::pending()));
-    let text = tokio::task::spawn_blocking(move || ureq::get(&url).call().unwrap().body_mut().read_to_string().unwrap()).await.unwrap();
+    tokio::spawn(paddock_serve::surface::http::serve(
+        listener,
+        worker::metrics_router(registry.clone(), counts[0].clone()),
+        std::future::pending(),
+    ));
+    let text =
+        tokio::task::spawn_blocking(move || ureq::get(&url).call().unwrap().body_mut().read_to_string().unwrap())
+            .await
+            .unwrap();
     let s = &summaries[0];
     for line in [
         format!("paddock_worker_events_total {}\n", s.events),
@@ -161,7 +193,12 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     ] {
         assert!(text.contains(&line), "{line} in {text}");
     }
-    let calls: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} ")).expect("calls of m 1.0.0").parse().unwrap();
+    let calls: u64 = text
+        .lines()
+        .find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} "))
+        .expect("calls of m 1.0.0")
+        .parse()
+        .unwrap();
     assert!(calls >= good as u64, "{calls} calls for {good} answers: {text}");
     assert!(text.ends_with("# EOF\n"));
 
@@ -172,7 +209,10 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // its place in the stream (the 2 001st event).
     assert_eq!(
         letters,
-        [("seq-2001", "bad_request"), ("b-model", "unknown_model"), ("b-row", "invalid_rows")].map(|(k, v)| (k.to_owned(), v.to_owned())).into_iter().collect()
+        [("seq-2001", "bad_request"), ("b-model", "unknown_model"), ("b-row", "invalid_rows")]
+            .map(|(k, v)| (k.to_owned(), v.to_owned()))
+            .into_iter()
+            .collect()
     );
     assert_eq!(summaries.iter().map(|s| s.answered).sum::<u64>(), good as u64, "{summaries:?}");
     assert_eq!(summaries.iter().map(|s| s.dead_lettered).sum::<u64>(), 3, "{summaries:?}");
@@ -195,13 +235,32 @@ async fn an_event_whose_source_is_down_comes_back_then_is_dead_lettered() {
         redis.url()
     );
     write_atomically(&dir.path().join("features.toml"), plan.as_bytes());
-    let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
-    let options = WorkerOptions { url: server.url(), max_deliver: 3, retry_after: Duration::from_millis(20), threads: 1, ..WorkerOptions::default() };
+    let registry = Registry::open(
+        &Runtime::new().unwrap(),
+        dir.path(),
+        RegistryOptions { usage_flush: None, ..RegistryOptions::default() },
+    )
+    .unwrap();
+    let options = WorkerOptions {
+        url: server.url(),
+        max_deliver: 3,
+        retry_after: Duration::from_millis(20),
+        threads: 1,
+        ..WorkerOptions::default()
+    };
     let (client, js) = connect(&server, &options).await;
     let mut dead = client.subscribe(options.dead_letters.clone()).await.unwrap();
-    js.publish(options.events.clone(), r#"{"id": "plug-in-7", "model": "m", "context": {"site": "north-1"}, "row": {}}"#.into()).await.unwrap().await.unwrap();
+    js.publish(
+        options.events.clone(),
+        r#"{"id": "plug-in-7", "model": "m", "context": {"site": "north-1"}, "row": {}}"#.into(),
+    )
+    .await
+    .unwrap()
+    .await
+    .unwrap();
     let workers = Workers::start(1, &registry, &options);
-    let m = tokio::time::timeout(Duration::from_secs(120), dead.next()).await.expect("the event is dead-lettered").unwrap();
+    let m =
+        tokio::time::timeout(Duration::from_secs(120), dead.next()).await.expect("the event is dead-lettered").unwrap();
     let s = workers.stop().await[0];
     let d: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
     assert_eq!(d["event"], "plug-in-7", "{d}");
@@ -242,13 +301,20 @@ async fn workers_ride_out_a_server_restart_and_lose_nothing() {
     let mut seen = BTreeMap::new();
     for a in &stored {
         let id = a["id"].as_str().unwrap().to_owned();
-        assert!(seen.insert(id.clone(), a["estimates"][0]["y"].as_f64().unwrap()).is_none(), "a second stored answer to {id}");
+        assert!(
+            seen.insert(id.clone(), a["estimates"][0]["y"].as_f64().unwrap()).is_none(),
+            "a second stored answer to {id}"
+        );
     }
     for i in 0..events {
         assert_eq!(seen.get(&format!("e-{i}")), Some(&(2.0 * i as f64 + 1.0)), "event e-{i}");
     }
     let mut answers_stream = js.get_stream(&options.answers_stream).await.unwrap();
-    assert_eq!(answers_stream.info().await.unwrap().state.messages, events as u64, "nothing stored twice, nothing dead-lettered");
+    assert_eq!(
+        answers_stream.info().await.unwrap().state.messages,
+        events as u64,
+        "nothing stored twice, nothing dead-lettered"
+    );
     assert!(summaries.iter().map(|s| s.answered).sum::<u64>() >= events as u64, "{summaries:?}");
 }
 
@@ -260,13 +326,23 @@ async fn workers_ride_out_a_server_restart_and_lose_nothing() {
 async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows() {
     let server = NatsServer::start();
     let dir = tempfile::tempdir().unwrap();
-    write_atomically(&artifact_path(dir.path(), "m", &Version::new(1, 0, 0)), &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)));
+    write_atomically(
+        &artifact_path(dir.path(), "m", &Version::new(1, 0, 0)),
+        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
+    );
     // The hand-written fixture in mode 1: `score` never returns.
     let spin = paddock_host::pack(&paddock_tests::fixture("affine.wat"), Some(&[1]), None).unwrap();
     write_atomically(&artifact_path(dir.path(), "affine", &Version::new(1, 0, 0)), &spin);
-    write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n");
+    write_atomically(
+        &dir.path().join("routes.toml"),
+        b"[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n",
+    );
     let limits = Limits { deadline: Duration::from_millis(200), ..Limits::default() };
-    let registry_options = RegistryOptions { usage_flush: None, model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let registry_options = RegistryOptions {
+        usage_flush: None,
+        model: ModelOptions { limits, ..ModelOptions::default() },
+        ..RegistryOptions::default()
+    };
     let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), registry_options).unwrap();
     let options = WorkerOptions { threads: 2, ..small(&server) };
     let (_client, js) = connect(&server, &options).await;
@@ -277,9 +353,19 @@ async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows(
     let mut expected = BTreeMap::new();
     for k in 0..30 {
         let (id, event, kind) = match k % 5 {
-            0 => (format!("seq-{}", 301 + k), format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": 1"#), "bad_request"),
-            1 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "nope", "row": {{"x": 1}}}}"#), "unknown_model"),
-            2 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": "seven"}}}}"#), "invalid_rows"),
+            0 => (
+                format!("seq-{}", 301 + k),
+                format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": 1"#),
+                "bad_request",
+            ),
+            1 => {
+                (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "nope", "row": {{"x": 1}}}}"#), "unknown_model")
+            }
+            2 => (
+                format!("b-{k}"),
+                format!(r#"{{"id": "b-{k}", "model": "m", "row": {{"x": "seven"}}}}"#),
+                "invalid_rows",
+            ),
             3 => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "rows": [{{"x": 1}}]}}"#), "bad_request"),
             _ => (format!("b-{k}"), format!(r#"{{"id": "b-{k}", "model": "affine", "row": {{"x": 1}}}}"#), "limit"),
         };
@@ -298,7 +384,10 @@ async fn bad_events_and_a_spinning_model_are_dead_lettered_while_the_rest_flows(
     for i in 0..600 {
         assert_eq!(seen.get(&format!("e-{i}")), Some(&(2.0 * i as f64 + 1.0)), "event e-{i}");
     }
-    let got: BTreeMap<String, String> = letters.iter().map(|d| (d["event"].as_str().unwrap().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned())).collect();
+    let got: BTreeMap<String, String> = letters
+        .iter()
+        .map(|d| (d["event"].as_str().unwrap().to_owned(), d["error"]["kind"].as_str().unwrap().to_owned()))
+        .collect();
     assert_eq!(got, expected);
     for d in letters.iter().filter(|d| d["error"]["kind"] == "limit") {
         assert_eq!(d["error"]["limit"], "deadline", "{d}");
@@ -328,7 +417,10 @@ async fn a_version_swapped_mid_run_answers_from_the_next_event_on() {
     for _ in 0..500 {
         tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers come").unwrap();
     }
-    write_atomically(&artifact_path(dir.path(), "m", &Version::new(2, 0, 0)), &line_artifact("m", "2.0.0", 3.0, 1.0, Some(true)));
+    write_atomically(
+        &artifact_path(dir.path(), "m", &Version::new(2, 0, 0)),
+        &line_artifact("m", "2.0.0", 3.0, 1.0, Some(true)),
+    );
     write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"2.0.0\"\n");
     let reloader = registry.clone();
     tokio::task::spawn_blocking(move || reloader.reload().unwrap()).await.unwrap();

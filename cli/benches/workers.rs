@@ -33,7 +33,9 @@ use std::time::{Duration, Instant};
 
 use async_nats::jetstream;
 use futures_util::StreamExt;
-use paddock_tests::{NatsServer, line_event, line_store, metrics_address, publish_line_events, root, terminate, work_process};
+use paddock_tests::{
+    NatsServer, line_event, line_store, metrics_address, publish_line_events, root, terminate, work_process,
+};
 
 const BIN: &str = env!("CARGO_BIN_EXE_paddock");
 
@@ -42,7 +44,8 @@ const BIN: &str = env!("CARGO_BIN_EXE_paddock");
 fn read_answer(payload: &[u8]) -> usize {
     let a: serde_json::Value = serde_json::from_slice(payload).expect("an answer is JSON");
     let id = a["id"].as_str().unwrap_or_else(|| panic!("no id: {a}"));
-    let i: usize = id.strip_prefix("e-").and_then(|i| i.parse().ok()).unwrap_or_else(|| panic!("not an event id: {id}"));
+    let i: usize =
+        id.strip_prefix("e-").and_then(|i| i.parse().ok()).unwrap_or_else(|| panic!("not an event id: {id}"));
     let estimates = a.get("answer").unwrap_or(&a)["estimates"].clone();
     assert_eq!(estimates[0]["y"].as_f64(), Some(2.0 * i as f64 + 1.0), "{a}");
     i
@@ -65,16 +68,34 @@ struct Measured {
 /// latency of `pings` events one at a time.
 async fn through_workers(store: &Path, workers: usize, events: usize, pings: usize) -> Measured {
     let server = NatsServer::start();
-    let client = async_nats::ConnectOptions::new().subscription_capacity(2 * events).connect(server.url()).await.expect("connects");
-    let js = jetstream::new(client.clone());
-    js.get_or_create_stream(jetstream::stream::Config { name: "PADDOCK_EVENTS".into(), subjects: vec!["paddock.events".into()], ..Default::default() })
+    let client = async_nats::ConnectOptions::new()
+        .subscription_capacity(2 * events)
+        .connect(server.url())
         .await
-        .expect("the events stream is made");
+        .expect("connects");
+    let js = jetstream::new(client.clone());
+    js.get_or_create_stream(jetstream::stream::Config {
+        name: "PADDOCK_EVENTS".into(),
+        subjects: vec!["paddock.events".into()],
+        ..Default::default()
+    })
+    .await
+    .expect("the events stream is made");
     let mut answers = client.subscribe("paddock.answers").await.expect("subscribes");
     publish_line_events(&js, "paddock.events", 0..events).await;
     let state = tempfile::tempdir().expect("a state directory");
     let mut children: Vec<_> = (0..workers)
-        .map(|k| work_process(Path::new(BIN), store, &state.path().join(format!("w{k}")), &server.url(), &format!("w{k}"), &["--metrics", "127.0.0.1:0"], true))
+        .map(|k| {
+            work_process(
+                Path::new(BIN),
+                store,
+                &state.path().join(format!("w{k}")),
+                &server.url(),
+                &format!("w{k}"),
+                &["--metrics", "127.0.0.1:0"],
+                true,
+            )
+        })
         .collect();
     // Each worker names its metrics address once its store is loaded (and
     // it listens for SIGTERM); wait for all before counting.
@@ -86,7 +107,10 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     let mut first = None;
     let mut last = Instant::now();
     while seen.len() < events {
-        let m = tokio::time::timeout(Duration::from_secs(300), answers.next()).await.expect("answers keep coming").expect("the subscription lasts");
+        let m = tokio::time::timeout(Duration::from_secs(300), answers.next())
+            .await
+            .expect("answers keep coming")
+            .expect("the subscription lasts");
         last = Instant::now();
         first.get_or_insert(last);
         seen.insert(read_answer(&m.payload));
@@ -98,7 +122,10 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     for i in events..events + pings {
         let t = Instant::now();
         js.publish("paddock.events", line_event(i).into()).await.expect("publishes");
-        let m = tokio::time::timeout(Duration::from_secs(60), answers.next()).await.expect("the answer comes").expect("the subscription lasts");
+        let m = tokio::time::timeout(Duration::from_secs(60), answers.next())
+            .await
+            .expect("the answer comes")
+            .expect("the subscription lasts");
         times.push(t.elapsed());
         assert_eq!(read_answer(&m.payload), i);
     }
@@ -162,7 +189,8 @@ fn main() {
     let (events, pings) = if full { (50_000, 2_000) } else { (200, 20) };
     let dir = tempfile::tempdir().expect("a store directory");
     line_store(dir.path());
-    let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().expect("a runtime");
+    let runtime =
+        tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().expect("a runtime");
 
     let stream = through_stream(dir.path(), events, pings);
     let one = runtime.block_on(through_workers(dir.path(), 1, events, pings));
@@ -172,9 +200,18 @@ fn main() {
     let mut out = String::new();
     let _ = writeln!(out, "| surface | events/s | vs `paddock stream` | latency p50 | latency p99 |");
     let _ = writeln!(out, "|---|---|---|---|---|");
-    for (label, m) in [("`paddock stream` (baseline)", &stream), ("`paddock work`, 1 worker", &one), ("`paddock work`, 2 workers", &two)] {
+    for (label, m) in [
+        ("`paddock stream` (baseline)", &stream),
+        ("`paddock work`, 1 worker", &one),
+        ("`paddock work`, 2 workers", &two),
+    ] {
         let (p50, p99) = m.latency.map_or(("—".to_owned(), "—".to_owned()), |(a, b)| (ms(a), ms(b)));
-        let _ = writeln!(out, "| {label} | {:.0} | {:.2}× | {p50} | {p99} |", m.events_per_second, m.events_per_second / stream.events_per_second);
+        let _ = writeln!(
+            out,
+            "| {label} | {:.0} | {:.2}× | {p50} | {p99} |",
+            m.events_per_second,
+            m.events_per_second / stream.events_per_second
+        );
     }
     let _ = writeln!(out, "\n{events} events per throughput case; {pings} events one at a time for latency.");
     if !full {

@@ -4,7 +4,10 @@ use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, TrustPolicy, Vouch, Admission, WasiPolicy, sandbox::wasi};
+use paddock_host::{
+    Admission, Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, TrustPolicy, Vouch,
+    WasiPolicy, sandbox::wasi,
+};
 use paddock_serve::{Registry, RegistryOptions};
 
 /// What every command that loads one artifact takes: the file, `--json`,
@@ -117,7 +120,10 @@ impl TrustArgs {
     pub fn admit(&self, path: &Path, artifact: &Artifact) -> Result<Admission> {
         let vouch_path = Vouch::path_for(path);
         let vouch = if vouch_path.exists() { Some(Vouch::read(&vouch_path)?) } else { None };
-        Ok(self.policy()?.admit(artifact.digest(), vouch.as_ref()).with_context(|| format!("refusing {}", path.display()))?)
+        Ok(self
+            .policy()?
+            .admit(artifact.digest(), vouch.as_ref())
+            .with_context(|| format!("refusing {}", path.display()))?)
     }
 }
 
@@ -156,7 +162,8 @@ impl LoadArgs {
         let options = self.options();
         let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
         self.trust.admit(path, &artifact)?;
-        let model = Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
+        let model =
+            Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
         Ok((runtime, model))
     }
 }
@@ -212,7 +219,8 @@ impl StoreArgs {
 
     fn open_with(&self, options: RegistryOptions) -> Result<Registry> {
         let runtime = self.load.runtime()?;
-        Registry::open(&runtime, &self.store, options).with_context(|| format!("opening the store {}", self.store.display()))
+        Registry::open(&runtime, &self.store, options)
+            .with_context(|| format!("opening the store {}", self.store.display()))
     }
 }
 
@@ -276,7 +284,10 @@ pub fn contract_text(c: &paddock_host::Contract) -> String {
             vec![i.to_string(), f.name.clone(), f.domain.to_string(), opt(&f.unit), req.into(), f.about.clone()]
         })
         .collect();
-    out.push_str(&format!("\nfeatures\n{}", text_table(&["#", "name", "domain", "unit", "required", "about"], &features)));
+    out.push_str(&format!(
+        "\nfeatures\n{}",
+        text_table(&["#", "name", "domain", "unit", "required", "about"], &features)
+    ));
     let outputs: Vec<Vec<String>> = c
         .outputs
         .iter()
@@ -296,7 +307,10 @@ pub fn contract_text(c: &paddock_host::Contract) -> String {
 ///
 /// # Errors
 /// When the process cannot install its signal handlers.
-pub fn shutdown_signal(runtime: &tokio::runtime::Runtime, stopping: &str) -> Result<impl std::future::Future<Output = ()> + Send + 'static> {
+pub fn shutdown_signal(
+    runtime: &tokio::runtime::Runtime,
+    stopping: &str,
+) -> Result<impl std::future::Future<Output = ()> + Send + 'static> {
     let _inside = runtime.enter();
     let stopping = stopping.to_owned();
     #[cfg(unix)]

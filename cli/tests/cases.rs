@@ -127,7 +127,13 @@ fn every_case_prints_and_exits_as_its_file_says() {
             ));
         }
     }
-    assert!(wrong.is_empty(), "{} of {} cases differ (PADDOCK_BLESS=1 rewrites them):\n\n{}", wrong.len(), cases.len(), wrong.join("\n\n"));
+    assert!(
+        wrong.is_empty(),
+        "{} of {} cases differ (PADDOCK_BLESS=1 rewrites them):\n\n{}",
+        wrong.len(),
+        cases.len(),
+        wrong.join("\n\n")
+    );
 }
 
 /// Every subcommand has its `--help` case, so a new command or flag shows

@@ -52,7 +52,8 @@ fn inspect_shows_digest_imports_and_the_contract_table() {
     assert!(s.contains(&digest), "{s}");
     assert!(s.contains("imports  none"), "{s}");
     assert!(s.contains("section  paddock-params"), "{s}");
-    let line = |name: &str| s.lines().rev().find(|l| l.split_whitespace().nth(1) == Some(name)).unwrap_or_default().to_owned();
+    let line =
+        |name: &str| s.lines().rev().find(|l| l.split_whitespace().nth(1) == Some(name)).unwrap_or_default().to_owned();
     assert!(line("connector").contains("label {type2, ccs2, chademo}"), "{s}");
     assert!(line("ambient_c").contains("real [-40, 50]") && line("ambient_c").contains("°C"), "{s}");
     assert!(line("minutes").contains("[0, 2880]"), "{s}");
@@ -80,7 +81,12 @@ fn score_names_columns_that_are_not_features_and_how_to_mark_them() {
     let out = run(&[]);
     assert_eq!(out.status.code(), Some(2));
     let err = text(&out.stderr);
-    assert!(err.contains("columns `session`, `plate` are not features of charge-minutes") && err.contains("--id NAME") && err.contains("--ignore NAME"), "{err}");
+    assert!(
+        err.contains("columns `session`, `plate` are not features of charge-minutes")
+            && err.contains("--id NAME")
+            && err.contains("--ignore NAME"),
+        "{err}"
+    );
     // Refused before any output was created.
     assert!(!out_file.exists());
     let out = run(&["--id", "sesion"]);
@@ -115,7 +121,11 @@ s6,7.4,40,0.5,1.0,20,150,type2,no
         assert!(line.contains(&format!(",{id},")), "{line}");
     }
     assert!(lines[2].contains("row 2, feature `soc_start` = 1.7: out of bounds [0, 1]"), "{}", lines[2]);
-    assert!(lines[4].contains("row 4, feature `connector` = \"\"tesla\"\": unknown label; allowed: type2, ccs2, chademo"), "{}", lines[4]);
+    assert!(
+        lines[4].contains("row 4, feature `connector` = \"\"tesla\"\": unknown label; allowed: type2, ccs2, chademo"),
+        "{}",
+        lines[4]
+    );
     assert!(lines[5].contains("row 5: 3 fields but the header has 9"), "{}", lines[5]);
     for good in [1, 3, 6] {
         let minutes: f64 = lines[good].split(',').nth(2).unwrap().parse().unwrap();
@@ -201,7 +211,16 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     .unwrap();
     let out = tmp("stump.wasm");
     let o = paddock(
-        &["pack", "tests/fixtures/stump.json", "--manifest", manifest.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        &[
+            "pack",
+            "tests/fixtures/stump.json",
+            "--manifest",
+            manifest.to_str().unwrap(),
+            "--checks",
+            checks.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
         None,
     );
     assert!(o.status.success(), "{}", text(&o.stderr));
@@ -210,7 +229,12 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     assert!(shown.contains("imported from tests/fixtures/stump.json (XGBoost JSON model, 1 trees)"), "{shown}");
     assert!(shown.contains("toolkit XGBoost 3.2.0"), "{shown}");
     assert!(shown.contains("feature arrival_soc name from feature_names in the file; real number from feature_types; optional by default: XGBoost sends an absent value its split's default way; unit, required from the manifest"), "{shown}");
-    assert!(shown.contains("output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the manifest"), "{shown}");
+    assert!(
+        shown.contains(
+            "output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the manifest"
+        ),
+        "{shown}"
+    );
 }
 
 /// A multinomial logistic regression from scikit-learn (iris, through
@@ -224,10 +248,20 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     let checks = dir.join("skl-iris-logistic.checks.json");
     assert!(model.exists(), "{}: run `python3 tests/imports/export.py target/paddock/imports`", model.display());
     let manifest = tmp("iris.toml");
-    std::fs::write(&manifest, "name = \"iris-species\"\n[features.x2]\nunit = \"cm\"\nabout = \"petal length\"\n").unwrap();
+    std::fs::write(&manifest, "name = \"iris-species\"\n[features.x2]\nunit = \"cm\"\nabout = \"petal length\"\n")
+        .unwrap();
     let out = tmp("iris.wasm");
     let o = paddock(
-        &["pack", model.to_str().unwrap(), "--manifest", manifest.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        &[
+            "pack",
+            model.to_str().unwrap(),
+            "--manifest",
+            manifest.to_str().unwrap(),
+            "--checks",
+            checks.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
         None,
     );
     assert!(o.status.success(), "{}", text(&o.stderr));
@@ -240,7 +274,17 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
 
     let evaluator_manifest = root().join("target/paddock/sklearn/onnx-linear.toml");
     let linear = root().join("target/paddock/sklearn/onnx-linear.onnx");
-    let o = paddock(&["pack", linear.to_str().unwrap(), "--manifest", evaluator_manifest.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    let o = paddock(
+        &[
+            "pack",
+            linear.to_str().unwrap(),
+            "--manifest",
+            evaluator_manifest.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        None,
+    );
     assert_eq!(o.status.code(), Some(2));
     let err = text(&o.stderr);
     assert!(err.contains("holds a model paddock imports (scikit-learn model in ONNX (skl2onnx)), so --manifest takes overrides of its contract"), "{err}");
@@ -257,9 +301,18 @@ fn pack_imports_a_lightgbm_model_from_the_cli() {
     assert!(model.exists(), "{}: run `python3 tests/imports/export.py target/paddock/imports`", model.display());
     let out = tmp("wine.wasm");
     let checks = dir.join("lgb-wine-categorical.checks.json");
-    let o = paddock(&["pack", model.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    let o = paddock(
+        &["pack", model.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        None,
+    );
     assert!(o.status.success(), "{}", text(&o.stderr));
-    assert!(text(&o.stdout).contains("loads as lgb-wine-categorical 0.0.0\nchecks: 178/178 passed (max abs error 0e0, max rel error 0e0)"), "{}", text(&o.stdout));
+    assert!(
+        text(&o.stdout).contains(
+            "loads as lgb-wine-categorical 0.0.0\nchecks: 178/178 passed (max abs error 0e0, max rel error 0e0)"
+        ),
+        "{}",
+        text(&o.stdout)
+    );
     let shown = inspected(&out);
     assert!(shown.contains("(LightGBM text model, 180 trees)"), "{shown}");
     assert!(shown.contains("feature alcohol_band name from feature_names in the file;"), "{shown}");
@@ -278,12 +331,32 @@ fn pack_imports_a_pmml_document_onto_the_program_guest() {
     )
     .unwrap();
     let out = tmp("minutes.wasm");
-    let o = paddock(&["pack", "tests/pmml/charge-session-minutes.pmml", "--checks", checks.to_str().unwrap(), "--out", out.to_str().unwrap()], None);
+    let o = paddock(
+        &[
+            "pack",
+            "tests/pmml/charge-session-minutes.pmml",
+            "--checks",
+            checks.to_str().unwrap(),
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        None,
+    );
     assert!(o.status.success(), "{}", text(&o.stderr));
-    assert!(text(&o.stdout).contains("loads as charge-session-minutes 0.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
+    assert!(
+        text(&o.stdout).contains("loads as charge-session-minutes 0.0.0\nchecks: 2/2 passed"),
+        "{}",
+        text(&o.stdout)
+    );
     let shown = inspected(&out);
-    assert!(shown.contains("imported from tests/pmml/charge-session-minutes.pmml (PMML document, scoring program:"), "{shown}");
-    assert!(shown.contains("feature plug the DataDictionary (line 15): categorical string; labels ccs2, type2, chademo"), "{shown}");
+    assert!(
+        shown.contains("imported from tests/pmml/charge-session-minutes.pmml (PMML document, scoring program:"),
+        "{shown}"
+    );
+    assert!(
+        shown.contains("feature plug the DataDictionary (line 15): categorical string; labels ccs2, type2, chademo"),
+        "{shown}"
+    );
     // A label outside the DataDictionary's Values is refused by the contract.
     let rows = tmp("minutes.ndjson");
     std::fs::write(&rows, "{\"arrival_soc\": 20, \"kw\": 50, \"plug\": \"gb-t\", \"hour\": 8}\n").unwrap();
@@ -299,11 +372,15 @@ fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let params = dir.path().join("junk.params");
     std::fs::write(&params, b"these bytes are not linear params").unwrap();
     let out_path = dir.path().join("broken.wasm");
-    let args = ["pack", guest.to_str().unwrap(), "--params", params.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
+    let args =
+        ["pack", guest.to_str().unwrap(), "--params", params.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
     let out = paddock(&args, None);
     assert_eq!(out.status.code(), Some(2), "{}", text(&out.stdout));
     let err = text(&out.stderr);
-    assert!(err.starts_with(&format!("error: {} was not written: the packed artifact does not load", out_path.display())), "{err}");
+    assert!(
+        err.starts_with(&format!("error: {} was not written: the packed artifact does not load", out_path.display())),
+        "{err}"
+    );
     assert_eq!(err.lines().count(), 1, "{err}");
     // Nothing at --out, and no temporary file left beside it.
     let left: Vec<_> = std::fs::read_dir(dir.path()).unwrap().map(|e| e.unwrap().file_name()).collect();
@@ -313,7 +390,8 @@ fn pack_leaves_nothing_when_the_params_do_not_decode_or_the_checks_fail() {
     let wat = root().join("tests/fixtures/affine.wat");
     let checks = dir.path().join("wrong.checks.json");
     std::fs::write(&checks, r#"{"source": "by hand, wrong on purpose", "tolerance": {"abs": 0, "rel": 0}, "cases": [{"row": {"x": 1}, "expect": {"y": 99}}]}"#).unwrap();
-    let args = ["pack", wat.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
+    let args =
+        ["pack", wat.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap()];
     let out = paddock(&args, None);
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("was not written: 1 of 1 checks fail; first: case 0"), "{}", text(&out.stderr));
@@ -326,11 +404,16 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let out = paddock(&["demo", "--store", store.to_str().unwrap()], None);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let s = text(&out.stdout);
-    let line = |needle: &str| s.lines().find(|l| l.contains(needle)).unwrap_or_else(|| panic!("no {needle:?} in {s}")).to_owned();
+    let line = |needle: &str| {
+        s.lines().find(|l| l.contains(needle)).unwrap_or_else(|| panic!("no {needle:?} in {s}")).to_owned()
+    };
     // Weekday default, weekend rule, the site in the 10 % canary, the north rule.
     assert!(line("Harbour Lot    coast   Mon 08:12").contains("1.0.0 · default"), "{s}");
     assert!(line("Station Road   north   Sun 17:44").contains("1.1.0 · rule weekend"), "{s}");
-    assert!(line("Library Green  centre  Sat 08:27").contains("1.2.0 · canary: site in its 10% (else rule weekend)"), "{s}");
+    assert!(
+        line("Library Green  centre  Sat 08:27").contains("1.2.0 · canary: site in its 10% (else rule weekend)"),
+        "{s}"
+    );
     assert!(line("Depot North    north   Thu 01:50").ends_with("1.1.0 · rule north"), "{s}");
     // Monday 00:20 in Oslo is still Sunday in UTC: the weekday version answers.
     assert!(line("Mon 00:20").contains("1.0.0 · default"), "{s}");
@@ -340,7 +423,8 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["answers"].as_array().unwrap().len(), 10);
     // Machine-readable fields carry names, not prose with backticks.
-    let canary = v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["picked_by"] == "canary").unwrap();
+    let canary =
+        v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["picked_by"] == "canary").unwrap();
     assert_eq!(canary["minutes_reason"]["instead_of"], "weekend", "{canary}");
     assert!(!v.to_string().contains('`'), "{v}");
 
@@ -349,10 +433,16 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     let line = r#"{"model": "overstay-risk", "row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}}"#;
     let input = format!("{line}\n{line}\n{line}\n");
     for _ in 0..2 {
-        let out = paddock(&["stream", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()], Some(&input));
+        let out = paddock(
+            &["stream", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()],
+            Some(&input),
+        );
         assert!(out.status.success(), "{}", text(&out.stderr));
     }
-    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap(), "--json"], None);
+    let out = paddock(
+        &["usage", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap(), "--json"],
+        None,
+    );
     assert!(out.status.success(), "{}", text(&out.stderr));
     let u: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     let calls: u64 = u["usage"]["versions"]
@@ -418,7 +508,11 @@ fn voucher_vouch_and_admit_follow_the_policy() {
     // Unvouched: refused under --trust, admitted without a policy.
     let out = paddock(&[&["admit", a][..], &trust[..]].concat(), None);
     assert_eq!(out.status.code(), Some(1));
-    assert!(text(&out.stdout).contains("refused: ") && text(&out.stdout).contains("nobody vouched for the artifact"), "{}", text(&out.stdout));
+    assert!(
+        text(&out.stdout).contains("refused: ") && text(&out.stdout).contains("nobody vouched for the artifact"),
+        "{}",
+        text(&out.stdout)
+    );
     assert!(paddock(&["admit", a], None).status.success());
 
     // Vouched for by a trusted voucher: admitted, and `score` loads it.
@@ -458,7 +552,11 @@ fn voucher_vouch_and_admit_follow_the_policy() {
     let wrong = paddock_host::Digest::of(b"other").to_string();
     let out = paddock(&["admit", a, "--pin", &wrong], None);
     assert_eq!(out.status.code(), Some(1));
-    assert!(text(&out.stdout).contains(&format!("the artifact is {digest}, which is not pinned (pinned: {wrong})")), "{}", text(&out.stdout));
+    assert!(
+        text(&out.stdout).contains(&format!("the artifact is {digest}, which is not pinned (pinned: {wrong})")),
+        "{}",
+        text(&out.stdout)
+    );
 }
 
 #[test]
@@ -497,7 +595,17 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
         std::fs::write(&params, [mode]).unwrap();
         let out_path = dir.join(out);
         let status = paddock(
-            &["pack", fixture.to_str().unwrap(), "--params", params.to_str().unwrap(), "--checks", checks.to_str().unwrap(), "--out", out_path.to_str().unwrap(), "--no-verify"],
+            &[
+                "pack",
+                fixture.to_str().unwrap(),
+                "--params",
+                params.to_str().unwrap(),
+                "--checks",
+                checks.to_str().unwrap(),
+                "--out",
+                out_path.to_str().unwrap(),
+                "--no-verify",
+            ],
             None,
         );
         assert!(status.status.success(), "{}", text(&status.stderr));
@@ -517,7 +625,9 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     assert!(audit(&spinner, &["--deadline-ms", "20"]).contains("its checks do not run: deadline of 20ms exceeded"));
 
     let nan = pack(4, "nan.wasm");
-    assert!(audit(&nan, &[]).contains("its checks do not run: model fault: row 1, output `y` = NaN: not a finite number"));
+    assert!(
+        audit(&nan, &[]).contains("its checks do not run: model fault: row 1, output `y` = NaN: not a finite number")
+    );
 
     let importer = dir.join("importer.wasm");
     let wat = root().join("tests/hostile/import-made-up-host-function.wat");
@@ -529,7 +639,10 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     let keys = dir.join("keys");
     assert!(paddock(&["voucher", "reviewer", "--dir", keys.to_str().unwrap()], None).status.success());
     let s = audit(&healthy, &["--trust", keys.to_str().unwrap()]);
-    assert!(s.contains("nobody vouched for the artifact") && s.contains("the policy requires a trusted voucher or a pin"), "{s}");
+    assert!(
+        s.contains("nobody vouched for the artifact") && s.contains("the policy requires a trusted voucher or a pin"),
+        "{s}"
+    );
 }
 
 #[test]
@@ -555,7 +668,11 @@ fn pack_takes_an_onnx_model_with_its_manifest_and_names_what_is_wrong() {
     // (tests/sklearn/export.py, run by `cargo xtask test`).
     let dir = root().join("target/paddock/sklearn");
     let onnx = dir.join("onnx-mlp.onnx");
-    assert!(onnx.exists(), "{} is missing: run `python3 tests/sklearn/export.py target/paddock/sklearn`", onnx.display());
+    assert!(
+        onnx.exists(),
+        "{} is missing: run `python3 tests/sklearn/export.py target/paddock/sklearn`",
+        onnx.display()
+    );
     let manifest = dir.join("onnx-mlp.toml");
     let out = tmp("onnx-mlp.wasm");
     let (onnx, manifest, out) = (onnx.to_str().unwrap(), manifest.to_str().unwrap(), out.to_str().unwrap());
@@ -575,7 +692,11 @@ fn pack_takes_an_onnx_model_with_its_manifest_and_names_what_is_wrong() {
     assert!(text(&missing.stderr).contains("needs its manifest (--manifest FILE)"), "{}", text(&missing.stderr));
 
     let wrong = tmp("wrong.toml");
-    std::fs::write(&wrong, std::fs::read_to_string(manifest).unwrap().replace("tensor = \"variable\"", "tensor = \"nope\"")).unwrap();
+    std::fs::write(
+        &wrong,
+        std::fs::read_to_string(manifest).unwrap().replace("tensor = \"variable\"", "tensor = \"nope\""),
+    )
+    .unwrap();
     let refused = paddock(&["pack", onnx, "--manifest", wrong.to_str().unwrap(), "--out", out], None);
     assert!(!refused.status.success());
     let err = text(&refused.stderr);
@@ -631,7 +752,11 @@ impl Served {
     fn score(&self) {
         let body = r#"{"model": "overstay-risk", "rows": [{"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}]}"#;
         let agent = ureq::Agent::config_builder().http_status_as_error(false).build().new_agent();
-        let mut r = agent.post(&format!("{}/estimate", self.base)).header("content-type", "application/json").send(body).unwrap();
+        let mut r = agent
+            .post(&format!("{}/estimate", self.base))
+            .header("content-type", "application/json")
+            .send(body)
+            .unwrap();
         assert_eq!(r.status().as_u16(), 200, "{}", r.body_mut().read_to_string().unwrap());
     }
 }
@@ -647,7 +772,13 @@ impl Drop for Served {
 fn calls_in(state: &Path) -> u64 {
     let Ok(bytes) = std::fs::read(state.join("usage.json")) else { return 0 };
     let saved: serde_json::Value = serde_json::from_slice(&bytes).unwrap();
-    saved["usage"]["versions"].as_array().unwrap().iter().filter(|v| v["model"] == "overstay-risk").map(|v| v["calls"].as_u64().unwrap()).sum()
+    saved["usage"]["versions"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter(|v| v["model"] == "overstay-risk")
+        .map(|v| v["calls"].as_u64().unwrap())
+        .sum()
 }
 
 #[test]

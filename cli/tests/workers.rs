@@ -38,16 +38,22 @@ async fn three_workers_one_killed_answer_every_event_once() {
     line_store(&store_dir);
     // Room for every answer on the wire (a redelivered event's too), so
     // the subscription never drops one while this test reads.
-    let client = async_nats::ConnectOptions::new().subscription_capacity(4 * EVENTS).connect(server.url()).await.unwrap();
+    let client =
+        async_nats::ConnectOptions::new().subscription_capacity(4 * EVENTS).connect(server.url()).await.unwrap();
     let js = jetstream::new(client.clone());
-    js.get_or_create_stream(jetstream::stream::Config { name: "PADDOCK_EVENTS".into(), subjects: vec!["paddock.events".into()], ..Default::default() })
-        .await
-        .unwrap();
+    js.get_or_create_stream(jetstream::stream::Config {
+        name: "PADDOCK_EVENTS".into(),
+        subjects: vec!["paddock.events".into()],
+        ..Default::default()
+    })
+    .await
+    .unwrap();
     let mut answers = client.subscribe("paddock.answers").await.unwrap();
     // Publish every event first, then start the workers.
     publish_line_events(&js, "paddock.events", 0..EVENTS).await;
-    let mut workers: Vec<Child> =
-        (0..3).map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}"))).collect();
+    let mut workers: Vec<Child> = (0..3)
+        .map(|k| worker(&store_dir, &dir.path().join(format!("state-{k}")), &server.url(), &format!("w{k}")))
+        .collect();
 
     let metrics = metrics_address(&mut workers[1]);
 
@@ -56,7 +62,8 @@ async fn three_workers_one_killed_answer_every_event_once() {
     let mut by_w1 = 0u64;
     let mut killed = false;
     while seen.len() < EVENTS {
-        let m = tokio::time::timeout(Duration::from_secs(300), answers.next()).await.expect("answers keep coming").unwrap();
+        let m =
+            tokio::time::timeout(Duration::from_secs(300), answers.next()).await.expect("answers keep coming").unwrap();
         if let Some(w) = m.headers.as_ref().and_then(|h| h.get("Paddock-Worker")) {
             by_w1 += u64::from(w.as_str() == "w1");
             by.insert(w.to_string());
@@ -81,9 +88,15 @@ async fn three_workers_one_killed_answer_every_event_once() {
     // w1's metrics count at least the answers seen from it (a redelivered
     // event may be answered again after the last one read here).
     let text = ureq::get(&metrics).call().unwrap().body_mut().read_to_string().unwrap();
-    let answered: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_worker_answered_total ")).expect("answered").parse().unwrap();
+    let answered: u64 =
+        text.lines().find_map(|l| l.strip_prefix("paddock_worker_answered_total ")).expect("answered").parse().unwrap();
     assert!(answered >= by_w1 && by_w1 > 0, "{answered} answered, {by_w1} seen: {text}");
-    let calls: u64 = text.lines().find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} ")).expect("calls of m").parse().unwrap();
+    let calls: u64 = text
+        .lines()
+        .find_map(|l| l.strip_prefix("paddock_calls_total{model=\"m\",version=\"1.0.0\"} "))
+        .expect("calls of m")
+        .parse()
+        .unwrap();
     assert!(calls >= by_w1, "{calls} calls, {by_w1} answers seen: {text}");
     for (k, w) in workers.iter_mut().enumerate().skip(1) {
         assert!(terminate(w), "a worker stops with 0 on SIGTERM");
@@ -103,7 +116,15 @@ async fn a_worker_told_to_stop_while_it_connects_exits_cleanly() {
     let store_dir = dir.path().join("store");
     line_store(&store_dir);
     let bin = Path::new(env!("CARGO_BIN_EXE_paddock"));
-    let mut w = work_process(bin, &store_dir, &dir.path().join("state"), &server.url(), "early", &["--metrics", "127.0.0.1:0"], true);
+    let mut w = work_process(
+        bin,
+        &store_dir,
+        &dir.path().join("state"),
+        &server.url(),
+        "early",
+        &["--metrics", "127.0.0.1:0"],
+        true,
+    );
     metrics_address(&mut w);
     assert!(terminate(&mut w), "a worker stopped early exits with 0");
 }

@@ -18,9 +18,15 @@ fuzz_target!(|data: &[u8]| {
             continue;
         }
         match imported.estimator {
-            Estimator::Trees(params) => score(Trees::new(params).expect("imported params build an estimator"), features),
-            Estimator::Linear(params) => score(Linear::new(params).expect("imported params build an estimator"), features),
-            Estimator::Program(params) => score(Program::new(params).expect("imported params build an estimator"), features),
+            Estimator::Trees(params) => {
+                score(Trees::new(params).expect("imported params build an estimator"), features)
+            }
+            Estimator::Linear(params) => {
+                score(Linear::new(params).expect("imported params build an estimator"), features)
+            }
+            Estimator::Program(params) => {
+                score(Program::new(params).expect("imported params build an estimator"), features)
+            }
             _ => {}
         }
     }

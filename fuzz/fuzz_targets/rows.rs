@@ -8,7 +8,13 @@ use paddock_host::contract::row_file::{Columns, Format, RowFileError, records};
 use paddock_host::{Bounds, Contract, Domain, Feature, Output, Schema};
 
 fn schema() -> Schema {
-    let f = |name: &str, domain, required| Feature { name: name.into(), domain, unit: None, required, about: String::new() };
+    let f = |name: &str, domain, required| Feature {
+        name: name.into(),
+        domain,
+        unit: None,
+        required,
+        about: String::new(),
+    };
     Schema::new(Contract {
         name: "fuzz".into(),
         version: "1.0.0".into(),
@@ -19,7 +25,12 @@ fn schema() -> Schema {
             f("plug", Domain::Label(vec!["type2".into(), "ccs2".into()]), false),
             f("fleet", Domain::Flag, false),
         ],
-        outputs: vec![Output { name: "y".into(), unit: None, bounds: Bounds { min: None, max: None }, about: String::new() }],
+        outputs: vec![Output {
+            name: "y".into(),
+            unit: None,
+            bounds: Bounds { min: None, max: None },
+            about: String::new(),
+        }],
     })
     .expect("valid contract")
 }

@@ -19,13 +19,7 @@ impl Bounds {
 
 impl Feature {
     fn with_domain(name: &str, domain: Domain) -> Self {
-        Feature {
-            name: name.to_owned(),
-            domain,
-            unit: None,
-            required: true,
-            about: String::new(),
-        }
+        Feature { name: name.to_owned(), domain, unit: None, required: true, about: String::new() }
     }
 
     /// A required real-valued feature within `bounds`.

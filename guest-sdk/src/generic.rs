@@ -68,10 +68,7 @@ pub(crate) fn shape_matches(contract: &Contract, features: usize, outputs: usize
         ));
     }
     if outputs != contract.outputs.len() {
-        return Err(format!(
-            "estimator writes {outputs} outputs but the contract declares {}",
-            contract.outputs.len()
-        ));
+        return Err(format!("estimator writes {outputs} outputs but the contract declares {}", contract.outputs.len()));
     }
     Ok(())
 }

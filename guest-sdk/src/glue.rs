@@ -29,11 +29,8 @@ impl<M: Estimator> Slot<M> {
     pub fn init(&self, params: &[u8]) -> Result<(), String> {
         let model = M::init(decode_params(params)?)?;
         let contract = model.contract();
-        *self.0.borrow_mut() = Some(Ready {
-            features: contract.features.len(),
-            outputs: contract.outputs.len(),
-            model,
-        });
+        *self.0.borrow_mut() =
+            Some(Ready { features: contract.features.len(), outputs: contract.outputs.len(), model });
         Ok(())
     }
 
@@ -55,15 +52,11 @@ impl<M: Estimator> Slot<M> {
         let ready = guard.as_ref().ok_or_else(|| Fault::Failed("score called before init".into()))?;
         let rows = rows as usize;
         let view = ArrayView2::from_shape((rows, ready.features), cells).map_err(|_| {
-            Fault::Failed(format!(
-                "{} cells do not make {rows} rows of {} features",
-                cells.len(),
-                ready.features
-            ))
+            Fault::Failed(format!("{} cells do not make {rows} rows of {} features", cells.len(), ready.features))
         })?;
         let mut out = vec![f64::NAN; rows * ready.outputs];
-        let view_out = ArrayViewMut2::from_shape((rows, ready.outputs), &mut out)
-            .map_err(|err| Fault::Failed(err.to_string()))?;
+        let view_out =
+            ArrayViewMut2::from_shape((rows, ready.outputs), &mut out).map_err(|err| Fault::Failed(err.to_string()))?;
         ready.model.score(view, view_out)?;
         Ok(out)
     }

@@ -103,7 +103,8 @@ mod tests {
     /// zeros, infinities, subnormals, rounding to even).
     #[test]
     fn each_lane_is_the_scalar_operation() {
-        let values = [0.0, -0.0, 1.0, -1.5, 0.1, 1e308, -1e308, f64::INFINITY, 5e-324, 1.0 + f64::EPSILON, f64::NAN, 3.0];
+        let values =
+            [0.0, -0.0, 1.0, -1.5, 0.1, 1e308, -1e308, f64::INFINITY, 5e-324, 1.0 + f64::EPSILON, f64::NAN, 3.0];
         let fill = F64x2::new(7.0, -7.0);
         for &a in &values {
             for &b in &values {

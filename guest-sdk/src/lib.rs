@@ -86,8 +86,8 @@ pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
 pub use program::MAX_DEPTH as PROGRAM_MAX_DEPTH;
 pub use program::{
-    Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Model, Normalize, Outliers, Predicate, Program,
-    ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
+    Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Model, Normalize, Outliers, Predicate,
+    Program, ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
 };
 pub use spelling::DomainSpec;
 pub use trees::{Branch, Combine, Node, OutputLink, Precision, SplitRule, Tree, Trees, TreesParams};
@@ -138,11 +138,7 @@ pub trait Estimator: Sized + 'static {
     /// # Errors
     /// [`Fault::Rejected`] when valid rows cannot be scored by this model,
     /// [`Fault::Failed`] when the model itself failed.
-    fn score(
-        &self,
-        rows: ndarray::ArrayView2<'_, f64>,
-        out: ndarray::ArrayViewMut2<'_, f64>,
-    ) -> Result<(), Fault>;
+    fn score(&self, rows: ndarray::ArrayView2<'_, f64>, out: ndarray::ArrayViewMut2<'_, f64>) -> Result<(), Fault>;
 }
 
 /// Exports a type implementing [`Estimator`] as the model of this crate.
@@ -173,7 +169,7 @@ macro_rules! export {
                     SLOT.with(|slot| slot.score(rows, &cells))
                 }
             }
-            $crate::bindings::export_estimator!(PaddockExports with_types_in $crate::bindings);
+    $crate::bindings::export_estimator!(PaddockExports with_types_in $crate::bindings);
         };
     };
 }

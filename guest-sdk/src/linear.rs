@@ -60,27 +60,18 @@ impl Linear {
             return Err("linear params: no intercepts (at least one output is needed)".into());
         }
         if params.weights.len() != outputs {
-            return Err(format!(
-                "linear params: {} weight rows for {outputs} intercepts",
-                params.weights.len()
-            ));
+            return Err(format!("linear params: {} weight rows for {outputs} intercepts", params.weights.len()));
         }
         let features = params.weights[0].len();
         let mut weights = Vec::with_capacity(outputs * features);
         for (k, row) in params.weights.iter().enumerate() {
             if row.len() != features {
-                return Err(format!(
-                    "linear params: weight row {k} has {} weights, row 0 has {features}",
-                    row.len()
-                ));
+                return Err(format!("linear params: weight row {k} has {} weights, row 0 has {features}", row.len()));
             }
             weights.extend_from_slice(row);
         }
         if !params.impute.is_empty() && params.impute.len() != features {
-            return Err(format!(
-                "linear params: {} impute values for {features} features",
-                params.impute.len()
-            ));
+            return Err(format!("linear params: {} impute values for {features} features", params.impute.len()));
         }
         if params.link == Link::Softmax && outputs < 2 {
             return Err("linear params: softmax needs at least two outputs".into());
@@ -103,11 +94,9 @@ impl Linear {
         for ((o, &b), w) in out.iter_mut().zip(&self.intercepts).zip(self.weights.chunks_exact(self.features)) {
             *o = match &self.impute {
                 None => x.iter().zip(w).fold(b, |acc, (x, w)| acc + w * x),
-                Some(fill) => x
-                    .iter()
-                    .zip(w)
-                    .zip(fill)
-                    .fold(b, |acc, ((x, w), f)| acc + w * if x.is_nan() { *f } else { *x }),
+                Some(fill) => {
+                    x.iter().zip(w).zip(fill).fold(b, |acc, ((x, w), f)| acc + w * if x.is_nan() { *f } else { *x })
+                }
             };
         }
         self.link(out);
@@ -230,12 +219,8 @@ mod tests {
     #[test]
     fn identity_and_logistic_match_hand_computation() {
         // Hand-computed: 0.5 + 2·1 − 1·3 = −0.5; logistic(−0.5) = 0.3775406687981454 (from memory, checked with a calculator).
-        let params = |link| LinearParams {
-            link,
-            intercepts: vec![0.5],
-            weights: vec![vec![2.0, -1.0]],
-            impute: vec![],
-        };
+        let params =
+            |link| LinearParams { link, intercepts: vec![0.5], weights: vec![vec![2.0, -1.0]], impute: vec![] };
         let rows = array![[1.0, 3.0]];
         let mut out = Array2::zeros((1, 1));
         Linear::new(params(Link::Identity)).unwrap().evaluate(rows.view(), out.view_mut());
@@ -275,7 +260,12 @@ mod tests {
             seed ^= seed << 17;
             (seed >> 11) as f64 / (1u64 << 53) as f64 * 200.0 - 100.0
         };
-        for (link, outputs, impute) in [(Link::Identity, 1, true), (Link::Logistic, 2, true), (Link::Softmax, 3, false), (Link::Identity, 1, false)] {
+        for (link, outputs, impute) in [
+            (Link::Identity, 1, true),
+            (Link::Logistic, 2, true),
+            (Link::Softmax, 3, false),
+            (Link::Identity, 1, false),
+        ] {
             let features = 7;
             let model = Linear::new(LinearParams {
                 link,

@@ -12,8 +12,7 @@ fn config() -> bincode::config::Configuration {
 /// Never for the types in this crate; a custom `Serialize` impl that fails
 /// makes it panic with that impl's message.
 pub fn encode_params<P: Serialize>(params: &P) -> Vec<u8> {
-    bincode::serde::encode_to_vec(params, config())
-        .unwrap_or_else(|err| panic!("parameters do not serialize: {err}"))
+    bincode::serde::encode_to_vec(params, config()).unwrap_or_else(|err| panic!("parameters do not serialize: {err}"))
 }
 
 /// Decodes a parameter blob.
@@ -22,13 +21,10 @@ pub fn encode_params<P: Serialize>(params: &P) -> Vec<u8> {
 /// Returns a message when the blob is not a complete encoding of `P` (wrong
 /// type, truncated, or trailing bytes).
 pub fn decode_params<P: DeserializeOwned>(bytes: &[u8]) -> Result<P, String> {
-    let (value, used) = bincode::serde::decode_from_slice(bytes, config())
-        .map_err(|err| format!("params do not decode: {err}"))?;
+    let (value, used) =
+        bincode::serde::decode_from_slice(bytes, config()).map_err(|err| format!("params do not decode: {err}"))?;
     if used != bytes.len() {
-        return Err(format!(
-            "params do not decode: {} trailing bytes after {used}",
-            bytes.len() - used
-        ));
+        return Err(format!("params do not decode: {} trailing bytes after {used}", bytes.len() - used));
     }
     Ok(value)
 }

@@ -547,7 +547,11 @@ struct Check {
 
 impl Check {
     fn slot(&self, s: u32, at: &str) -> Result<(), String> {
-        if s < self.slots { Ok(()) } else { Err(format!("program params: {at}: slot {s} but there are {}", self.slots)) }
+        if s < self.slots {
+            Ok(())
+        } else {
+            Err(format!("program params: {at}: slot {s} but there are {}", self.slots))
+        }
     }
 
     fn expr(&self, e: &Expr, depth: usize) -> Result<(), String> {
@@ -556,7 +560,9 @@ impl Check {
         }
         match e {
             Expr::Constant(_) => Ok(()),
-            Expr::Field(f) | Expr::Indicator { field: f, .. } | Expr::Bins { field: f, .. } => self.slot(*f, "expression"),
+            Expr::Field(f) | Expr::Indicator { field: f, .. } | Expr::Bins { field: f, .. } => {
+                self.slot(*f, "expression")
+            }
             Expr::Norm { field, points, .. } => {
                 self.slot(*field, "normalisation")?;
                 if points.len() < 2 || points.windows(2).any(|w| !(w[0].0 < w[1].0)) {
@@ -573,8 +579,20 @@ impl Check {
             }
             Expr::Apply { function, args, .. } => {
                 let arity = match function {
-                    Function::Min | Function::Max | Function::Sum | Function::Avg | Function::And | Function::Or => 1..=usize::MAX,
-                    Function::Log10 | Function::Ln | Function::Sqrt | Function::Abs | Function::Exp | Function::Floor | Function::Ceil | Function::Round | Function::IsMissing | Function::IsNotMissing | Function::Not => 1..=1,
+                    Function::Min | Function::Max | Function::Sum | Function::Avg | Function::And | Function::Or => {
+                        1..=usize::MAX
+                    }
+                    Function::Log10
+                    | Function::Ln
+                    | Function::Sqrt
+                    | Function::Abs
+                    | Function::Exp
+                    | Function::Floor
+                    | Function::Ceil
+                    | Function::Round
+                    | Function::IsMissing
+                    | Function::IsNotMissing
+                    | Function::Not => 1..=1,
                     Function::If => 2..=3,
                     _ => 2..=2,
                 };
@@ -592,9 +610,10 @@ impl Check {
         }
         match p {
             Predicate::True | Predicate::False => Ok(()),
-            Predicate::Compare { field, .. } | Predicate::IsMissing(field) | Predicate::IsNotMissing(field) | Predicate::InSet { field, .. } => {
-                self.slot(*field, "predicate")
-            }
+            Predicate::Compare { field, .. }
+            | Predicate::IsMissing(field)
+            | Predicate::IsNotMissing(field)
+            | Predicate::InSet { field, .. } => self.slot(*field, "predicate"),
             Predicate::Compound { parts, .. } => {
                 if parts.len() < 2 {
                     return Err("program params: a compound predicate needs two parts or more".into());
@@ -631,7 +650,12 @@ impl Check {
                     if classes > 0 {
                         match seen.get_mut(t.class as usize) {
                             Some(s) if !*s => *s = true,
-                            _ => return Err(format!("program params: regression table for class {} twice or out of range", t.class)),
+                            _ => {
+                                return Err(format!(
+                                    "program params: regression table for class {} twice or out of range",
+                                    t.class
+                                ));
+                            }
                         }
                     }
                     t.numeric.iter().try_for_each(|(s, _, _)| self.slot(*s, "numeric predictor"))?;
@@ -650,7 +674,10 @@ impl Check {
                         return Err(format!("program params: tree node {i}: a child is not a later node"));
                     }
                     if !n.probabilities.is_empty() && n.probabilities.len() != classes {
-                        return Err(format!("program params: tree node {i}: {} probabilities for {classes} classes", n.probabilities.len()));
+                        return Err(format!(
+                            "program params: tree node {i}: {} probabilities for {classes} classes",
+                            n.probabilities.len()
+                        ));
                     }
                 }
             }
@@ -675,7 +702,9 @@ impl Check {
 
     fn emit(&self, e: Emit, classes: u32) -> Result<(), String> {
         match e {
-            Emit::Probability(k) if k >= classes => Err(format!("program params: probability of class {k} but there are {classes}")),
+            Emit::Probability(k) if k >= classes => {
+                Err(format!("program params: probability of class {k} but there are {classes}"))
+            }
             _ => Ok(()),
         }
     }
@@ -770,7 +799,9 @@ fn eval(e: &Expr, slots: &[f64]) -> f64 {
             if keys.iter().any(|k| k.is_nan()) {
                 return *missing;
             }
-            rows.chunks_exact(fields.len() + 1).find(|r| r[..fields.len()] == keys[..]).map_or(*default, |r| r[fields.len()])
+            rows.chunks_exact(fields.len() + 1)
+                .find(|r| r[..fields.len()] == keys[..])
+                .map_or(*default, |r| r[fields.len()])
         }
         Expr::Apply { function, args, missing, default } => {
             let values: Vec<f64> = args.iter().map(|a| eval(a, slots)).collect();
@@ -850,7 +881,9 @@ fn truth(p: &Predicate, slots: &[f64]) -> Truth {
                 }
                 of(odd)
             }
-            Logic::Surrogate => parts.iter().map(|q| truth(q, slots)).find(|t| *t != Truth::Unknown).unwrap_or(Truth::Unknown),
+            Logic::Surrogate => {
+                parts.iter().map(|q| truth(q, slots)).find(|t| *t != Truth::Unknown).unwrap_or(Truth::Unknown)
+            }
         },
     }
 }
@@ -874,7 +907,9 @@ fn predict(m: &Model, slots: &mut Vec<f64>) -> Prediction {
     }
     let mut p = match &m.kind {
         Kind::Regression { tables, normalize } => regression(tables, *normalize, m.classes, slots),
-        Kind::Tree { nodes, unknown, last_when_no_child } => tree(nodes, *unknown, *last_when_no_child, m.classes, slots),
+        Kind::Tree { nodes, unknown, last_when_no_child } => {
+            tree(nodes, *unknown, *last_when_no_child, m.classes, slots)
+        }
         Kind::Segments { method, segments } => ensemble(*method, segments, m.classes, slots),
     };
     if let (Some(r), 0) = (m.rescale, m.classes) {
@@ -1039,7 +1074,8 @@ fn ensemble(method: Ensemble, segments: &[Segment], classes: u32, slots: &mut Ve
         if p.value.is_nan() {
             return Prediction::none(classes);
         }
-        let w = if matches!(method, Ensemble::WeightedAverage | Ensemble::WeightedMajorityVote) { s.weight } else { 1.0 };
+        let w =
+            if matches!(method, Ensemble::WeightedAverage | Ensemble::WeightedMajorityVote) { s.weight } else { 1.0 };
         weights += w;
         if k == 0 {
             total += w * p.value;
@@ -1136,7 +1172,12 @@ mod tests {
 
     #[test]
     fn normalisation_interpolates_and_extends_its_end_segments() {
-        let norm = |outliers| Expr::Norm { field: 0, points: vec![(0.0, 0.0), (10.0, 1.0), (20.0, 3.0)], outliers, missing: -1.0 };
+        let norm = |outliers| Expr::Norm {
+            field: 0,
+            points: vec![(0.0, 0.0), (10.0, 1.0), (20.0, 3.0)],
+            outliers,
+            missing: -1.0,
+        };
         let at = |e: &Expr, x: f64| eval(e, &[x]);
         let as_is = norm(Outliers::AsIs);
         assert_eq!(at(&as_is, 5.0), 0.5);
@@ -1150,7 +1191,13 @@ mod tests {
 
     #[test]
     fn malformed_programs_are_refused_with_the_reason() {
-        let leaf = |children: Vec<u32>| TreeNode { predicate: Predicate::True, score: 1.0, probabilities: vec![], children, default_child: None };
+        let leaf = |children: Vec<u32>| TreeNode {
+            predicate: Predicate::True,
+            score: 1.0,
+            probabilities: vec![],
+            children,
+            default_child: None,
+        };
         let params = |nodes| ProgramParams {
             inputs: vec![Input { replacement: f64::NAN, valid: vec![], outliers: Outliers::AsIs }],
             slots: 1,

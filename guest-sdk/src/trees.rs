@@ -309,7 +309,16 @@ impl Trees {
                 u8::from(missing == Branch::Left) | (u8::from(members == Branch::Left) << 1)
             };
             for (i, node) in tree.nodes.iter().enumerate() {
-                let blank = Flat { threshold: 0.0, feature: 0, left: 0, right: 0, start: 0, words: 0, kind: LEAF, goes_left: 0 };
+                let blank = Flat {
+                    threshold: 0.0,
+                    feature: 0,
+                    left: 0,
+                    right: 0,
+                    start: 0,
+                    words: 0,
+                    kind: LEAF,
+                    goes_left: 0,
+                };
                 nodes.push(match *node {
                     Node::Leaf { value } => {
                         if !value.is_finite() {
@@ -437,7 +446,12 @@ impl Trees {
 
     /// Sums every tree's leaves into `out` (which holds the starting
     /// values), `SINGLE` rounding each sum to `f32`.
-    fn accumulate<const SINGLE: bool, const LE: bool>(&self, cells: &[f64], rows: usize, out: &mut ArrayViewMut2<'_, f64>) {
+    fn accumulate<const SINGLE: bool, const LE: bool>(
+        &self,
+        cells: &[f64],
+        rows: usize,
+        out: &mut ArrayViewMut2<'_, f64>,
+    ) {
         let f = self.features;
         // Tree by tree over all rows: each tree stays in cache while it runs.
         // Four rows walk a tree together: their steps do not depend on each
@@ -668,8 +682,9 @@ mod tests {
         bad.nodes[0] = Node::Split { feature: 0, threshold: 1.0, left: 0, right: 2, missing: Branch::Left };
         let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![bad])).unwrap_err();
         assert!(err.contains("tree 0 node 0: child 0 must come after"), "{err}");
-        let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![stump(0, 3, 1.0, 1.0, 2.0, Branch::Left)]))
-            .unwrap_err();
+        let err =
+            Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![stump(0, 3, 1.0, 1.0, 2.0, Branch::Left)]))
+                .unwrap_err();
         assert!(err.contains("feature 3 but rows have 1"), "{err}");
         let member = Tree {
             output: 0,
@@ -681,10 +696,25 @@ mod tests {
         };
         let err = Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![member])).unwrap_err();
         assert!(err.contains("tree 0 node 0: set 2 but there are 0"), "{err}");
-        let mixed = Tree { output: 0, nodes: vec![Node::Split { feature: 0, threshold: 0.0, left: 1, right: 2, missing: Branch::Left }, Node::Leaf { value: 1.0 }, Node::Leaves { first: 0 }] };
-        let err = Trees::new(TreesParams { vectors: vec![1.0], ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![mixed]) }).unwrap_err();
+        let mixed = Tree {
+            output: 0,
+            nodes: vec![
+                Node::Split { feature: 0, threshold: 0.0, left: 1, right: 2, missing: Branch::Left },
+                Node::Leaf { value: 1.0 },
+                Node::Leaves { first: 0 },
+            ],
+        };
+        let err = Trees::new(TreesParams {
+            vectors: vec![1.0],
+            ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![mixed])
+        })
+        .unwrap_err();
         assert!(err.contains("tree 0: mixes"), "{err}");
-        let err = Trees::new(TreesParams { link: OutputLink::Softmax, ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![]) }).unwrap_err();
+        let err = Trees::new(TreesParams {
+            link: OutputLink::Softmax,
+            ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![])
+        })
+        .unwrap_err();
         assert!(err.contains("softmax needs at least two outputs"), "{err}");
     }
 
@@ -727,7 +757,10 @@ mod tests {
                 Node::Leaf { value: 2.0 },
             ],
         };
-        let out = score(TreesParams::boosted(1, 0.0, SplitRule::LessOrEqual, vec![tree]), array![[0.0], [1e-36], [-1e-36], [f64::NAN], [0.25], [-3.0], [0.75]]);
+        let out = score(
+            TreesParams::boosted(1, 0.0, SplitRule::LessOrEqual, vec![tree]),
+            array![[0.0], [1e-36], [-1e-36], [f64::NAN], [0.25], [-3.0], [0.75]],
+        );
         assert_eq!(out.column(0).to_vec(), vec![2.0, 2.0, 2.0, 2.0, 1.0, 1.0, 2.0]);
     }
 
@@ -752,7 +785,10 @@ mod tests {
     #[test]
     fn links_turn_sums_into_outputs() {
         let constant = |output, value| Tree { output, nodes: vec![Node::Leaf { value }] };
-        let one = |link, value| TreesParams { link, ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![constant(0, value)]) };
+        let one = |link, value| TreesParams {
+            link,
+            ..TreesParams::boosted(1, 0.0, SplitRule::Less, vec![constant(0, value)])
+        };
         let row = || array![[0.0]];
         assert_eq!(score(one(OutputLink::Logistic { scale: 1.0 }, 0.0), row())[[0, 0]], 0.5);
         assert!((score(one(OutputLink::Logistic { scale: 2.0 }, 3f64.ln() / 2.0), row())[[0, 0]] - 0.75).abs() < 1e-15);

@@ -9,15 +9,15 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::artifact::{Artifact, Inventory, inspect_bytes};
 use crate::artifact::digest::Digest;
-use crate::sandbox::verify;
+use crate::artifact::trust::{Admission, TrustPolicy, Vouch};
+use crate::artifact::{Artifact, Inventory, inspect_bytes};
 use crate::contract::Contract;
 use crate::limits::{Limits, fmt_duration};
 use crate::sandbox::model::{LoadError, Model, ModelOptions};
+use crate::sandbox::verify;
 use crate::sandbox::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
-use crate::artifact::trust::{Admission, TrustPolicy, Vouch};
 
 /// Who vouches for the artifact.
 #[derive(Clone, Debug, Serialize)]
@@ -154,7 +154,9 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         let satisfied_by = options.wasi.as_ref().and_then(|p| wasi::satisfied_by(import, p));
         match (&options.wasi, &satisfied_by) {
             (None, _) => report.violations.push(format!("imports `{import}` (WASI loads only under a WASI policy)")),
-            (Some(_), None) => report.violations.push(format!("imports `{import}`, which the WASI policy does not provide")),
+            (Some(_), None) => {
+                report.violations.push(format!("imports `{import}`, which the WASI policy does not provide"))
+            }
             _ => {}
         }
         report.wasi.push(WasiImport { interface: import.clone(), satisfied_by });
@@ -243,7 +245,8 @@ fn probe(report: &mut AuditReport, model: &Model) {
     // Cost: every valid case row in one call.
     let schema = model.schema();
     let mut cells = Vec::new();
-    let rows = carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i + 1, &c.row, &mut cells).is_ok()).count();
+    let rows =
+        carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i + 1, &c.row, &mut cells).is_ok()).count();
     let (mut fuel, mut micros, mut peak) = (0.0, 0.0, 0);
     if rows > 0 {
         match model.score_cells(rows, &cells) {

@@ -39,8 +39,15 @@ crate::described!(
     Value,
     "FeatureValue",
     object()
-        .schema_type(utoipa::openapi::schema::SchemaType::from_iter([Type::Number, Type::String, Type::Boolean, Type::Null]))
-        .description(Some("A feature value: a number (real or whole), a string (a label), a boolean (a flag), or null (absent)."))
+        .schema_type(utoipa::openapi::schema::SchemaType::from_iter([
+            Type::Number,
+            Type::String,
+            Type::Boolean,
+            Type::Null
+        ]))
+        .description(Some(
+            "A feature value: a number (real or whole), a string (a label), a boolean (a flag), or null (absent)."
+        ))
 );
 
 crate::described!(
@@ -49,7 +56,9 @@ crate::described!(
     object()
         .schema_type(Type::Object)
         .description(Some("One row: feature name → value. Features left out are absent."))
-        .additional_properties(Some(AdditionalProperties::RefOr(RefOr::Ref(utoipa::openapi::Ref::from_schema_name("FeatureValue")))))
+        .additional_properties(Some(AdditionalProperties::RefOr(RefOr::Ref(utoipa::openapi::Ref::from_schema_name(
+            "FeatureValue"
+        )))))
 );
 
 crate::described!(

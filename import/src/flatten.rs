@@ -28,14 +28,15 @@ pub(crate) fn flatten<E>(
         }
         let at = out.len() as u32;
         if let Some((p, left)) = parent
-            && let Some((l, r)) = children(&mut out[p]) {
-                *(if left { l } else { r }) = at;
-            }
+            && let Some((l, r)) = children(&mut out[p])
+        {
+            *(if left { l } else { r }) = at;
+        }
         let raw = node(id)?;
         let kids = match raw {
-            Node::Split { left, right, .. } | Node::SplitZeroAbsent { left, right, .. } | Node::Member { left, right, .. } => {
-                Some((left, right))
-            }
+            Node::Split { left, right, .. }
+            | Node::SplitZeroAbsent { left, right, .. }
+            | Node::Member { left, right, .. } => Some((left, right)),
             Node::Leaf { .. } | Node::Leaves { .. } => None,
         };
         out.push(raw);
@@ -49,9 +50,9 @@ pub(crate) fn flatten<E>(
 
 fn children(node: &mut Node) -> Option<(&mut u32, &mut u32)> {
     match node {
-        Node::Split { left, right, .. } | Node::SplitZeroAbsent { left, right, .. } | Node::Member { left, right, .. } => {
-            Some((left, right))
-        }
+        Node::Split { left, right, .. }
+        | Node::SplitZeroAbsent { left, right, .. }
+        | Node::Member { left, right, .. } => Some((left, right)),
         Node::Leaf { .. } | Node::Leaves { .. } => None,
     }
 }

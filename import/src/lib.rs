@@ -90,9 +90,15 @@ impl Format {
             Some(Format::XgboostJson)
         } else if text.starts_with("tree\n") || text.starts_with("tree\r\n") {
             Some(Format::LightgbmText)
-        } else if (text.starts_with("<?xml") || text.starts_with("<PMML") || text.starts_with("<!--")) && text.contains("<PMML") {
+        } else if (text.starts_with("<?xml") || text.starts_with("<PMML") || text.starts_with("<!--"))
+            && text.contains("<PMML")
+        {
             Some(Format::Pmml)
-        } else if bytes.first() == Some(&0x08) && [&b"TreeEnsemble"[..], b"LinearRegressor", b"LinearClassifier"].iter().any(|op| bytes.windows(op.len()).any(|w| w == *op)) {
+        } else if bytes.first() == Some(&0x08)
+            && [&b"TreeEnsemble"[..], b"LinearRegressor", b"LinearClassifier"]
+                .iter()
+                .any(|op| bytes.windows(op.len()).any(|w| w == *op))
+        {
             Some(Format::SklearnOnnx)
         } else {
             None
@@ -231,7 +237,12 @@ impl Blame<'_> {
     }
 
     fn unsupported(&self, place: &str, what: impl Into<String>, instead: &str) -> ImportError {
-        ImportError::Unsupported { file: self.file.to_owned(), place: place.to_owned(), what: what.into(), instead: instead.to_owned() }
+        ImportError::Unsupported {
+            file: self.file.to_owned(),
+            place: place.to_owned(),
+            what: what.into(),
+            instead: instead.to_owned(),
+        }
     }
 }
 

@@ -41,17 +41,26 @@ impl<'a> Block<'a> {
         let items: Vec<T> = text
             .split_ascii_whitespace()
             .enumerate()
-            .map(|(i, t)| t.parse().map_err(|_| r.malformed(&format!("{} line {line}", self.name), format!("{key}[{i}] `{t}` is not a number"))))
+            .map(|(i, t)| {
+                t.parse().map_err(|_| {
+                    r.malformed(&format!("{} line {line}", self.name), format!("{key}[{i}] `{t}` is not a number"))
+                })
+            })
             .collect::<Result<_, _>>()?;
         if items.len() != len {
-            return Err(r.malformed(&format!("{} line {line}", self.name), format!("{key} has {} values, expected {len}", items.len())));
+            return Err(r.malformed(
+                &format!("{} line {line}", self.name),
+                format!("{key} has {} values, expected {len}", items.len()),
+            ));
         }
         Ok(items)
     }
 
     fn number<T: std::str::FromStr>(&self, r: &Blame<'_>, key: &str) -> Result<T, ImportError> {
         let (line, text) = self.need(r, key)?;
-        text.trim().parse().map_err(|_| r.malformed(&format!("{} line {line}", self.name), format!("{key} `{text}` is not a number")))
+        text.trim()
+            .parse()
+            .map_err(|_| r.malformed(&format!("{} line {line}", self.name), format!("{key} `{text}` is not a number")))
     }
 }
 
@@ -69,7 +78,11 @@ enum Task {
 pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> {
     let r = Blame { file };
     if Format::recognise(bytes) != Some(Format::LightgbmText) {
-        return Err(ImportError::WrongFormat { file: file.to_owned(), expected: Format::LightgbmText.name(), looks_like: crate::looks_like(bytes) });
+        return Err(ImportError::WrongFormat {
+            file: file.to_owned(),
+            expected: Format::LightgbmText.name(),
+            looks_like: crate::looks_like(bytes),
+        });
     }
     let text = std::str::from_utf8(bytes).map_err(|e| {
         let line = bytes[..e.valid_up_to()].iter().filter(|&&b| b == b'\n').count() + 1;
@@ -77,7 +90,11 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     })?;
     let (header, blocks) = split_blocks(text);
     let version = header.get("version").map_or("(version not recorded)", |(_, v)| v);
-    let features = header.number::<usize>(&r, "max_feature_idx")?.checked_add(1).filter(|&n| n <= 1_000_000).ok_or_else(|| r.malformed("header", "max_feature_idx out of range"))?;
+    let features = header
+        .number::<usize>(&r, "max_feature_idx")?
+        .checked_add(1)
+        .filter(|&n| n <= 1_000_000)
+        .ok_or_else(|| r.malformed("header", "max_feature_idx out of range"))?;
     let per_iteration: usize = header.number(&r, "num_tree_per_iteration")?;
     if !(1..=10_000).contains(&per_iteration) {
         return Err(r.malformed("header", format!("num_tree_per_iteration {per_iteration}")));
@@ -122,19 +139,25 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let name = objective.split_ascii_whitespace().next().unwrap_or("");
     let (outs, task_text) = match task {
         Task::Value => (vec![Output::new("value", Bounds::OPEN)], format!("{name}: one value (the summed scores)")),
-        Task::Score => (vec![Output::new("score", Bounds::OPEN)], format!("{name}: one score (the summed scores, no link)")),
+        Task::Score => {
+            (vec![Output::new("score", Bounds::OPEN)], format!("{name}: one score (the summed scores, no link)"))
+        }
         Task::Probability(scale) => (
             vec![Output::new("probability", Bounds::between(0.0, 1.0))],
             format!("{name}: one probability (sigmoid of {scale} × the summed scores)"),
         ),
-        Task::Exp => (vec![Output::new("value", Bounds::at_least(0.0))], format!("{name}: one value (e to the summed scores)")),
+        Task::Exp => {
+            (vec![Output::new("value", Bounds::at_least(0.0))], format!("{name}: one value (e to the summed scores)"))
+        }
         Task::Classes => (
             (0..outputs).map(|k| Output::new(&format!("probability_{k}"), Bounds::between(0.0, 1.0))).collect(),
             format!("{name}: one probability per class (softmax)"),
         ),
         Task::ClassesOneVsRest(scale) => (
             (0..outputs).map(|k| Output::new(&format!("probability_{k}"), Bounds::between(0.0, 1.0))).collect(),
-            format!("{name}: one probability per class, each a sigmoid of {scale} × its scores (they need not sum to 1)"),
+            format!(
+                "{name}: one probability per class, each a sigmoid of {scale} × its scores (they need not sum to 1)"
+            ),
         ),
     };
     let mut sources = Vec::new();
@@ -142,9 +165,15 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     for (i, name) in names.iter().enumerate() {
         let info = infos.get(i).copied().unwrap_or("");
         let (feature, domain_from) = if info.starts_with('[') || info == "none" || info.is_empty() {
-            (Feature::real(name, Bounds::OPEN), format!("real number (feature_infos {})", if info.is_empty() { "absent" } else { info }))
+            (
+                Feature::real(name, Bounds::OPEN),
+                format!("real number (feature_infos {})", if info.is_empty() { "absent" } else { info }),
+            )
         } else {
-            (Feature::whole(name, Bounds::OPEN), format!("category code, a whole number (feature_infos lists the categories {info})"))
+            (
+                Feature::whole(name, Bounds::OPEN),
+                format!("category code, a whole number (feature_infos lists the categories {info})"),
+            )
         };
         sources.push(Source {
             part: format!("feature {name}"),
@@ -157,7 +186,13 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     }
     let trees_count = params.trees.len();
     Ok(Imported {
-        contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs: outs },
+        contract: Contract {
+            name: String::new(),
+            version: String::new(),
+            about: String::new(),
+            features: contract_features,
+            outputs: outs,
+        },
         estimator: Estimator::Trees(params),
         origin: Origin {
             format: Format::LightgbmText.name().to_owned(),
@@ -180,14 +215,24 @@ fn task_of(r: &Blame<'_>, objective: &str, line: usize, per_iteration: usize) ->
     let mut sigmoid = 1.0;
     for w in words {
         if w == "sqrt" {
-            return Err(r.unsupported(&format!("line {line}"), "objective with reg_sqrt", "train without reg_sqrt (the square root of the label), or square the output yourself"));
+            return Err(r.unsupported(
+                &format!("line {line}"),
+                "objective with reg_sqrt",
+                "train without reg_sqrt (the square root of the label), or square the output yourself",
+            ));
         }
         if let Some(v) = w.strip_prefix("sigmoid:") {
-            sigmoid = v.parse().map_err(|_| r.malformed(&format!("line {line}"), format!("sigmoid `{v}` is not a number")))?;
+            sigmoid = v
+                .parse()
+                .map_err(|_| r.malformed(&format!("line {line}"), format!("sigmoid `{v}` is not a number")))?;
         }
     }
     let one = |task| {
-        if per_iteration == 1 { Ok(task) } else { Err(r.malformed(&format!("line {line}"), format!("{name} with {per_iteration} trees per iteration"))) }
+        if per_iteration == 1 {
+            Ok(task)
+        } else {
+            Err(r.malformed(&format!("line {line}"), format!("{name} with {per_iteration} trees per iteration")))
+        }
     };
     match name {
         "regression" | "regression_l2" | "regression_l1" | "huber" | "fair" | "quantile" | "mape" => one(Task::Value),
@@ -230,15 +275,26 @@ fn split_blocks(text: &str) -> (Block<'_>, Vec<Block<'_>>) {
     (header, trees)
 }
 
-fn read_tree(r: &Blame<'_>, block: &Block<'_>, t: usize, features: usize, sets: &mut Vec<Vec<u32>>) -> Result<Vec<Node>, ImportError> {
+fn read_tree(
+    r: &Blame<'_>,
+    block: &Block<'_>,
+    t: usize,
+    features: usize,
+    sets: &mut Vec<Vec<u32>>,
+) -> Result<Vec<Node>, ImportError> {
     let leaves: usize = block.number(r, "num_leaves")?;
     if leaves == 0 || leaves > 1 << 24 {
         return Err(r.malformed(&block.name, format!("num_leaves {leaves}")));
     }
     if let Some((line, v)) = block.get("is_linear")
-        && v.trim() != "0" {
-            return Err(r.unsupported(&format!("tree {t} (line {line})"), "a linear tree (linear_tree)", "train with linear_tree=false"));
-        }
+        && v.trim() != "0"
+    {
+        return Err(r.unsupported(
+            &format!("tree {t} (line {line})"),
+            "a linear tree (linear_tree)",
+            "train with linear_tree=false",
+        ));
+    }
     let values: Vec<f64> = block.list(r, "leaf_value", leaves)?;
     if let Some(bad) = values.iter().position(|v| !v.is_finite()) {
         return Err(r.malformed(&format!("tree {t} leaf {bad}"), format!("leaf value {}", values[bad])));
@@ -302,7 +358,10 @@ fn read_tree(r: &Blame<'_>, block: &Block<'_>, t: usize, features: usize, sets: 
                     None => {
                         let (lo, hi) = (bounds[c], bounds[c + 1]);
                         if lo > hi || hi > words.len() {
-                            return Err(r.malformed(&place, format!("cat_boundaries {lo}..{hi} outside cat_threshold's {} words", words.len())));
+                            return Err(r.malformed(
+                                &place,
+                                format!("cat_boundaries {lo}..{hi} outside cat_threshold's {} words", words.len()),
+                            ));
                         }
                         new_sets.push(words[lo..hi].to_vec());
                         let s = (first_set + new_sets.len() - 1) as u32;
@@ -310,7 +369,14 @@ fn read_tree(r: &Blame<'_>, block: &Block<'_>, t: usize, features: usize, sets: 
                         s
                     }
                 };
-                return Ok(Node::Member { feature: f as u32, set, left: l, right: rt, missing: Branch::Right, members: Branch::Left });
+                return Ok(Node::Member {
+                    feature: f as u32,
+                    set,
+                    left: l,
+                    right: rt,
+                    missing: Branch::Right,
+                    members: Branch::Left,
+                });
             }
             let t_value = threshold[i];
             if t_value.is_nan() {
@@ -319,10 +385,33 @@ fn read_tree(r: &Blame<'_>, block: &Block<'_>, t: usize, features: usize, sets: 
             let way = |left: bool| if left { Branch::Left } else { Branch::Right };
             Ok(match missing_type {
                 // None: an absent value is taken as 0.
-                0 => Node::Split { feature: f as u32, threshold: t_value, left: l, right: rt, missing: way(0.0 <= t_value) },
-                1 => Node::SplitZeroAbsent { feature: f as u32, threshold: t_value, left: l, right: rt, missing: way(default_left) },
-                2 => Node::Split { feature: f as u32, threshold: t_value, left: l, right: rt, missing: way(default_left) },
-                other => return Err(r.malformed(&place, format!("decision_type {d}: missing type {other} is not None, Zero or NaN"))),
+                0 => Node::Split {
+                    feature: f as u32,
+                    threshold: t_value,
+                    left: l,
+                    right: rt,
+                    missing: way(0.0 <= t_value),
+                },
+                1 => Node::SplitZeroAbsent {
+                    feature: f as u32,
+                    threshold: t_value,
+                    left: l,
+                    right: rt,
+                    missing: way(default_left),
+                },
+                2 => Node::Split {
+                    feature: f as u32,
+                    threshold: t_value,
+                    left: l,
+                    right: rt,
+                    missing: way(default_left),
+                },
+                other => {
+                    return Err(r.malformed(
+                        &place,
+                        format!("decision_type {d}: missing type {other} is not None, Zero or NaN"),
+                    ));
+                }
             })
         },
         || r.malformed(&block.name, "a node is reached twice: the children do not form a tree"),

@@ -164,9 +164,10 @@ pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: 
         }
         origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
         if let Some(name) = &o.name
-            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part) {
-                s.part = format!("feature {name} (`{key}` in the file)");
-            }
+            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part)
+        {
+            s.part = format!("feature {name} (`{key}` in the file)");
+        }
     }
     // Name, version and description first, then features and outputs.
     origin.contract.sort_by_key(|s| s.part.contains(' '));
@@ -199,9 +200,10 @@ pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: 
         }
         origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
         if let Some(name) = &o.name
-            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part) {
-                s.part = format!("output {name} (`{key}` as imported)");
-            }
+            && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part)
+        {
+            s.part = format!("output {name} (`{key}` as imported)");
+        }
     }
     Ok(())
 }

@@ -25,7 +25,8 @@
 use std::collections::BTreeMap;
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, OutputLink, Precision, SplitRule,
+    Tree, TreesParams,
 };
 use prost::Message;
 
@@ -159,7 +160,10 @@ impl<'a> Attributes<'a> {
     }
 
     fn texts(&self, name: &str) -> Vec<String> {
-        self.by_name.get(name).map(|a| a.strings.iter().map(|s| String::from_utf8_lossy(s).into_owned()).collect()).unwrap_or_default()
+        self.by_name
+            .get(name)
+            .map(|a| a.strings.iter().map(|s| String::from_utf8_lossy(s).into_owned()).collect())
+            .unwrap_or_default()
     }
 
     /// A list of numbers given as `NAME` (floats) or `NAME_as_tensor` (a
@@ -171,12 +175,17 @@ impl<'a> Attributes<'a> {
         let Some(t) = self.by_name.get(format!("{name}_as_tensor").as_str()).and_then(|a| a.t.as_ref()) else {
             return Ok(None);
         };
-        let bad = |problem: String| self.blame.malformed(&format!("{} attribute {name}_as_tensor", self.place), problem);
+        let bad =
+            |problem: String| self.blame.malformed(&format!("{} attribute {name}_as_tensor", self.place), problem);
         Ok(Some(match t.data_type {
             FLOAT if !t.float_data.is_empty() => t.float_data.iter().map(|v| f64::from(*v)).collect(),
-            FLOAT => t.raw_data.chunks_exact(4).map(|b| f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]]))).collect(),
+            FLOAT => {
+                t.raw_data.chunks_exact(4).map(|b| f64::from(f32::from_le_bytes([b[0], b[1], b[2], b[3]]))).collect()
+            }
             DOUBLE if !t.double_data.is_empty() => t.double_data.clone(),
-            DOUBLE => t.raw_data.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("chunks of 8"))).collect(),
+            DOUBLE => {
+                t.raw_data.chunks_exact(8).map(|b| f64::from_le_bytes(b.try_into().expect("chunks of 8"))).collect()
+            }
             other => return Err(bad(format!("element type {other}, not float or double"))),
         }))
     }
@@ -216,13 +225,21 @@ impl Task {
         let label = |k: usize| labels.get(k).map_or_else(|| k.to_string(), Clone::clone);
         let (names, about, bounds): (Vec<String>, Vec<String>, Bounds) = match self {
             Task::Values(n) => (named("value", n), (0..n).map(|k| format!("target {k}")).collect(), Bounds::OPEN),
-            Task::Probability => (vec!["probability".into()], vec![format!("the probability of class {}", label(1))], Bounds::between(0.0, 1.0)),
+            Task::Probability => (
+                vec!["probability".into()],
+                vec![format!("the probability of class {}", label(1))],
+                Bounds::between(0.0, 1.0),
+            ),
             Task::Probabilities(n) => (
                 (0..n).map(|k| format!("probability_{k}")).collect(),
                 (0..n).map(|k| format!("the probability of class {}", label(k))).collect(),
                 Bounds::between(0.0, 1.0),
             ),
-            Task::Scores(n) => (named("score", n), (0..n).map(|k| format!("the decision score of class {}", label(k + usize::from(n == 1)))).collect(), Bounds::OPEN),
+            Task::Scores(n) => (
+                named("score", n),
+                (0..n).map(|k| format!("the decision score of class {}", label(k + usize::from(n == 1)))).collect(),
+                Bounds::OPEN,
+            ),
         };
         let bounds = if linked { bounds } else { Bounds::OPEN };
         (names.iter().map(|n| Output::new(n, bounds)).collect(), about)
@@ -240,7 +257,11 @@ struct Graph<'a> {
 
 pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> {
     let blame = Blame { file };
-    let wrong = || ImportError::WrongFormat { file: file.to_owned(), expected: Format::SklearnOnnx.name(), looks_like: crate::looks_like(bytes) };
+    let wrong = || ImportError::WrongFormat {
+        file: file.to_owned(),
+        expected: Format::SklearnOnnx.name(),
+        looks_like: crate::looks_like(bytes),
+    };
     let model = ModelProto::decode(bytes).map_err(|_| wrong())?;
     let graph = model.graph.as_ref().ok_or_else(wrong)?;
     let producer = format!("{} {}", model.producer_name, model.producer_version).trim().to_owned();
@@ -282,18 +303,29 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         }
     }
     let input = graph.input.first().ok_or_else(|| blame.malformed("graph", "no input"))?;
-    let tensor = input.r#type.as_ref().and_then(|t| t.tensor_type.as_ref()).ok_or_else(|| blame.malformed("graph input", "not a tensor"))?;
+    let tensor = input
+        .r#type
+        .as_ref()
+        .and_then(|t| t.tensor_type.as_ref())
+        .ok_or_else(|| blame.malformed("graph input", "not a tensor"))?;
     let features = tensor
         .shape
         .as_ref()
         .and_then(|s| s.dim.get(1))
         .and_then(|d| d.dim_value)
         .filter(|&n| (1..=1_000_000).contains(&n))
-        .ok_or_else(|| blame.malformed("graph input", "its shape does not give the feature count (rows × features)"))? as usize;
+        .ok_or_else(|| blame.malformed("graph input", "its shape does not give the feature count (rows × features)"))?
+        as usize;
     let precision = match tensor.elem_type {
         FLOAT => Precision::Single,
         DOUBLE => Precision::Double,
-        other => return Err(blame.unsupported("graph input", format!("element type {other}"), "export with FloatTensorType or DoubleTensorType")),
+        other => {
+            return Err(blame.unsupported(
+                "graph input",
+                format!("element type {other}"),
+                "export with FloatTensorType or DoubleTensorType",
+            ));
+        }
     };
     let g = Graph { blame: Blame { file }, producer, input: &input.name, features, precision };
     match node.op_type.as_str() {
@@ -350,7 +382,15 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     if tracks_true.is_empty() {
         tracks_true = vec![0; n];
     }
-    for (name, len) in [("nodes_nodeids", node_ids.len()), ("nodes_featureids", feature_ids.len()), ("nodes_values", values.len()), ("nodes_modes", modes.len()), ("nodes_truenodeids", true_ids.len()), ("nodes_falsenodeids", false_ids.len()), ("nodes_missing_value_tracks_true", tracks_true.len())] {
+    for (name, len) in [
+        ("nodes_nodeids", node_ids.len()),
+        ("nodes_featureids", feature_ids.len()),
+        ("nodes_values", values.len()),
+        ("nodes_modes", modes.len()),
+        ("nodes_truenodeids", true_ids.len()),
+        ("nodes_falsenodeids", false_ids.len()),
+        ("nodes_missing_value_tracks_true", tracks_true.len()),
+    ] {
         if len != n {
             return Err(bad(format!("{name} has {len} entries but nodes_treeids has {n}")));
         }
@@ -369,7 +409,10 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         let columns = if labels.len() > 2 { labels.len() } else { columns };
         classifier_task(a, labels.len(), columns)?
     } else {
-        let targets = usize::try_from(a.int("n_targets", 1)).ok().filter(|&k| (1..=10_000).contains(&k)).ok_or_else(|| bad("n_targets out of range".into()))?;
+        let targets = usize::try_from(a.int("n_targets", 1))
+            .ok()
+            .filter(|&k| (1..=10_000).contains(&k))
+            .ok_or_else(|| bad("n_targets out of range".into()))?;
         let link = match a.text("post_transform", "NONE").as_str() {
             "NONE" => OutputLink::Identity,
             "LOGISTIC" => OutputLink::Logistic { scale: 1.0 },
@@ -381,7 +424,9 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     let outputs = task.columns();
     let leaf_count = modes.iter().filter(|m| *m == "LEAF").count();
     if outputs > 1 && leaf_count.saturating_mul(outputs) > 1 << 24 {
-        return Err(bad(format!("{leaf_count} leaves × {outputs} outputs: more leaf values than paddock holds (16 M)")));
+        return Err(bad(format!(
+            "{leaf_count} leaves × {outputs} outputs: more leaf values than paddock holds (16 M)"
+        )));
     }
     let base = match a.numbers("base_values")? {
         None => vec![0.0; outputs],
@@ -391,7 +436,13 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     let combine = match a.text("aggregate_function", "SUM").as_str() {
         "SUM" => Combine::Sum,
         "AVERAGE" => Combine::Mean,
-        other => return Err(blame.unsupported(&place, format!("aggregate_function {other}"), "export a sum or an average of trees")),
+        other => {
+            return Err(blame.unsupported(
+                &place,
+                format!("aggregate_function {other}"),
+                "export a sum or an average of trees",
+            ));
+        }
     };
     // The split rule: one family for the whole ensemble.
     let mut rule = None;
@@ -401,13 +452,21 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
             "BRANCH_LEQ" | "BRANCH_GT" => SplitRule::LessOrEqual,
             "BRANCH_LT" | "BRANCH_GTE" => SplitRule::Less,
             other => {
-                return Err(blame.unsupported(&format!("tree {} node {}", tree_ids[i], node_ids[i]), format!("split mode {other}"), "export ordered splits only"));
+                return Err(blame.unsupported(
+                    &format!("tree {} node {}", tree_ids[i], node_ids[i]),
+                    format!("split mode {other}"),
+                    "export ordered splits only",
+                ));
             }
         };
         match rule {
             None => rule = Some(family),
             Some(r) if r != family => {
-                return Err(blame.unsupported(&format!("tree {} node {}", tree_ids[i], node_ids[i]), format!("split mode {m} mixed with the other comparison"), "export one comparison for every split"));
+                return Err(blame.unsupported(
+                    &format!("tree {} node {}", tree_ids[i], node_ids[i]),
+                    format!("split mode {m} mixed with the other comparison"),
+                    "export one comparison for every split",
+                ));
             }
             Some(_) => {}
         }
@@ -422,9 +481,19 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     // The one output each tree's leaves feed, or None when they feed several.
     let mut tree_output: BTreeMap<i64, Option<usize>> = BTreeMap::new();
     for j in 0..target_trees.len() {
-        let k = usize::try_from(target_ids[j]).ok().filter(|&k| k < outputs).ok_or_else(|| bad(format!("{list}_ids[{j}] = {} but there are {outputs} outputs", target_ids[j])))?;
+        let k = usize::try_from(target_ids[j])
+            .ok()
+            .filter(|&k| k < outputs)
+            .ok_or_else(|| bad(format!("{list}_ids[{j}] = {} but there are {outputs} outputs", target_ids[j])))?;
         leaf_weights.entry((target_trees[j], target_nodes[j])).or_insert_with(|| vec![0.0; outputs])[k] += weights[j];
-        tree_output.entry(target_trees[j]).and_modify(|o| if *o != Some(k) { *o = None }).or_insert(Some(k));
+        tree_output
+            .entry(target_trees[j])
+            .and_modify(|o| {
+                if *o != Some(k) {
+                    *o = None
+                }
+            })
+            .or_insert(Some(k));
     }
     let mut vectors = Vec::new();
     let mut params_trees = Vec::with_capacity(trees.len());
@@ -436,9 +505,12 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         let root = ids
             .iter()
             .position(|id| !children.contains(id))
-            .ok_or_else(|| blame.malformed(&format!("tree {t}"), "every node is some node's child: no root"))? as u32;
+            .ok_or_else(|| blame.malformed(&format!("tree {t}"), "every node is some node's child: no root"))?
+            as u32;
         let raw_id = |id: i64, at: &str| -> Result<u32, ImportError> {
-            ids.binary_search(&id).map(|p| p as u32).map_err(|_| blame.malformed(at, format!("child {id} is not a node of tree {t}")))
+            ids.binary_search(&id)
+                .map(|p| p as u32)
+                .map_err(|_| blame.malformed(at, format!("child {id} is not a node of tree {t}")))
         };
         // A tree whose leaves all feed one output adds plain leaf values to it.
         let only = if outputs == 1 { Some(0) } else { tree_output.get(&t).copied().unwrap_or(Some(0)) };
@@ -461,7 +533,10 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
                         }
                     });
                 }
-                let feature = u32::try_from(feature_ids[i]).ok().filter(|&f| (f as usize) < g.features).ok_or_else(|| blame.malformed(&at, format!("feature {} but the input has {}", feature_ids[i], g.features)))?;
+                let feature =
+                    u32::try_from(feature_ids[i]).ok().filter(|&f| (f as usize) < g.features).ok_or_else(|| {
+                        blame.malformed(&at, format!("feature {} but the input has {}", feature_ids[i], g.features))
+                    })?;
                 if values[i].is_nan() {
                     return Err(blame.malformed(&at, "threshold is NaN"));
                 }
@@ -489,10 +564,15 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         "required: the file records no way for absent values"
     };
     let trees_count = params_trees.len();
-    let (kind, arithmetic) = if classifier { ("TreeEnsembleClassifier", "probabilities") } else { ("TreeEnsembleRegressor", "values") };
+    let (kind, arithmetic) =
+        if classifier { ("TreeEnsembleClassifier", "probabilities") } else { ("TreeEnsembleRegressor", "values") };
     let inputs_text = match g.precision {
-        Precision::Single => "features rounded to float32 (the graph input is float), thresholds (float32, rounded down by skl2onnx for scikit-learn's trees) compared with ≤",
-        Precision::Double => "features in double precision (the graph input is double), compared with ≤ to float32 thresholds",
+        Precision::Single => {
+            "features rounded to float32 (the graph input is float), thresholds (float32, rounded down by skl2onnx for scikit-learn's trees) compared with ≤"
+        }
+        Precision::Double => {
+            "features in double precision (the graph input is double), compared with ≤ to float32 thresholds"
+        }
     };
     let params = TreesParams {
         features: g.features as u32,
@@ -513,7 +593,9 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         (learned_missing, missing_text),
         Estimator::Trees(params),
         format!("{kind}: {} ({})", task_text(task), link_text(link)),
-        format!("as scikit-learn computes {arithmetic}: {inputs_text}; leaves (float32 in the file) summed in double precision in tree order"),
+        format!(
+            "as scikit-learn computes {arithmetic}: {inputs_text}; leaves (float32 in the file) summed in double precision in tree order"
+        ),
         format!("{trees_count} trees"),
     )
 }
@@ -545,7 +627,11 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     let intercepts = a.numbers("intercepts")?.unwrap_or_default();
     let rows = coefficients.len() / g.features;
     if rows == 0 || coefficients.len() % g.features != 0 {
-        return Err(bad(format!("{} coefficients do not fill rows of the input's {} features", coefficients.len(), g.features)));
+        return Err(bad(format!(
+            "{} coefficients do not fill rows of the input's {} features",
+            coefficients.len(),
+            g.features
+        )));
     }
     let intercepts = match intercepts.len() {
         0 => vec![0.0; rows],
@@ -563,8 +649,12 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         match (transform.as_str(), classes, rows) {
             // Two classes: skl2onnx writes the score of each (−s and s); the
             // probability of the second is the logistic of its score.
-            ("LOGISTIC", 2, 1 | 2) => (Task::Probability, Link::Logistic, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]]),
-            ("NONE", 2, 1 | 2) => (Task::Scores(1), Link::Identity, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]]),
+            ("LOGISTIC", 2, 1 | 2) => {
+                (Task::Probability, Link::Logistic, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]])
+            }
+            ("NONE", 2, 1 | 2) => {
+                (Task::Scores(1), Link::Identity, vec![weights[rows - 1].clone()], vec![intercepts[rows - 1]])
+            }
             ("SOFTMAX", c, r) if c == r && c > 2 => (Task::Probabilities(c), Link::Softmax, weights, intercepts),
             ("NONE", c, r) if c == r && c > 2 => (Task::Scores(c), Link::Identity, weights, intercepts),
             (other, c, r) => {
@@ -577,7 +667,11 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         }
     } else {
         if transform != "NONE" {
-            return Err(blame.unsupported(&place, format!("post_transform {transform}"), "export a plain linear regression"));
+            return Err(blame.unsupported(
+                &place,
+                format!("post_transform {transform}"),
+                "export a plain linear regression",
+            ));
         }
         (Task::Values(rows), Link::Identity, weights, intercepts)
     };
@@ -618,13 +712,17 @@ fn finish(
         .iter()
         .map(|n| Source {
             part: format!("feature {n}"),
-            from: format!("by position in the graph input `{}` (ONNX names no columns; name them in a manifest); {missing_text}", g.input),
+            from: format!(
+                "by position in the graph input `{}` (ONNX names no columns; name them in a manifest); {missing_text}",
+                g.input
+            ),
         })
         .collect();
     for (o, about) in outputs.iter().zip(&about) {
         sources.push(Source { part: format!("output {}", o.name), from: format!("the model's {about}") });
     }
-    let feature = |n: &String| if optional { Feature::real(n, Bounds::OPEN).optional() } else { Feature::real(n, Bounds::OPEN) };
+    let feature =
+        |n: &String| if optional { Feature::real(n, Bounds::OPEN).optional() } else { Feature::real(n, Bounds::OPEN) };
     Ok(Imported {
         contract: Contract {
             name: String::new(),

@@ -14,8 +14,8 @@
 use std::collections::HashMap;
 
 use paddock_guest::{
-    Bounds, Cast, Compare, Contract, Emit, Ensemble, Expr, Feature, Function, Input, Interval, Kind, Logic, Model, Normalize, Output,
-    Outliers, Predicate, ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
+    Bounds, Cast, Compare, Contract, Emit, Ensemble, Expr, Feature, Function, Input, Interval, Kind, Logic, Model,
+    Normalize, Outliers, Output, Predicate, ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
 };
 use roxmltree::{Document, Node};
 
@@ -91,7 +91,8 @@ fn tag<'a>(node: Node<'a, '_>) -> &'a str {
 
 const PREDICATES: [&str; 5] = ["SimplePredicate", "CompoundPredicate", "SimpleSetPredicate", "True", "False"];
 const MODELS: [&str; 3] = ["RegressionModel", "TreeModel", "MiningModel"];
-const EXPRESSIONS: [&str; 7] = ["Constant", "FieldRef", "NormContinuous", "NormDiscrete", "Discretize", "MapValues", "Apply"];
+const EXPRESSIONS: [&str; 7] =
+    ["Constant", "FieldRef", "NormContinuous", "NormDiscrete", "Discretize", "MapValues", "Apply"];
 
 impl<'a, 'input> Reader<'a, 'input> {
     fn place(&self, node: Node<'_, '_>) -> String {
@@ -115,7 +116,9 @@ impl<'a, 'input> Reader<'a, 'input> {
         match (node.attribute(name), default) {
             (None, Some(d)) => Ok(d),
             (None, None) => Err(self.malformed(node, format!("no `{name}` attribute"))),
-            (Some(text), _) => parse_number(text).ok_or_else(|| self.malformed(node, format!("`{name}=\"{text}\"` is not a number"))),
+            (Some(text), _) => {
+                parse_number(text).ok_or_else(|| self.malformed(node, format!("`{name}=\"{text}\"` is not a number")))
+            }
         }
     }
 
@@ -136,19 +139,29 @@ impl<'a, 'input> Reader<'a, 'input> {
         match text.trim() {
             "true" => Ok(1.0),
             "false" => Ok(0.0),
-            t => parse_number(t).ok_or_else(|| self.malformed(node, format!("`{text}` is not a number, and the field has no labels"))),
+            t => parse_number(t)
+                .ok_or_else(|| self.malformed(node, format!("`{text}` is not a number, and the field has no labels"))),
         }
     }
 
     fn field<'s>(&self, node: Node<'_, '_>, scope: &'s Scope, name: &str) -> Result<&'s Field, ImportError> {
-        scope.get(name).ok_or_else(|| self.malformed(node, format!("field `{name}` is not defined here (not an active field, derived field or earlier output)")))
+        scope.get(name).ok_or_else(|| {
+            self.malformed(
+                node,
+                format!("field `{name}` is not defined here (not an active field, derived field or earlier output)"),
+            )
+        })
     }
 
     // ---- predicates ----
 
     fn predicate(&self, node: Node<'_, '_>, scope: &Scope, depth: usize) -> Result<Predicate, ImportError> {
         if depth > MAX_DEPTH {
-            return Err(self.unsupported(node, format!("predicates nested deeper than {MAX_DEPTH}"), "flatten the predicate"));
+            return Err(self.unsupported(
+                node,
+                format!("predicates nested deeper than {MAX_DEPTH}"),
+                "flatten the predicate",
+            ));
         }
         Ok(match tag(node) {
             "True" => Predicate::True,
@@ -162,7 +175,11 @@ impl<'a, 'input> Reader<'a, 'input> {
                     other => comparison(other).ok_or_else(|| self.malformed(node, format!("operator `{other}`")))?,
                 };
                 if field.labels.is_some() && !field.ordinal && !matches!(compare, Compare::Equal | Compare::NotEqual) {
-                    return Err(self.unsupported(node, format!("`{op}` on a categorical field"), "declare the field ordinal, or compare with equal/notEqual"));
+                    return Err(self.unsupported(
+                        node,
+                        format!("`{op}` on a categorical field"),
+                        "declare the field ordinal, or compare with equal/notEqual",
+                    ));
                 }
                 let value = self.value_of(node, field, self.attr(node, "value")?)?;
                 Predicate::Compare { field: field.slot, op: compare, value }
@@ -189,18 +206,27 @@ impl<'a, 'input> Reader<'a, 'input> {
                     "surrogate" => Logic::Surrogate,
                     other => return Err(self.malformed(node, format!("booleanOperator `{other}`"))),
                 };
-                let parts = elements(node).map(|p| self.predicate(p, scope, depth + 1)).collect::<Result<Vec<_>, _>>()?;
+                let parts =
+                    elements(node).map(|p| self.predicate(p, scope, depth + 1)).collect::<Result<Vec<_>, _>>()?;
                 if parts.len() < 2 {
                     return Err(self.malformed(node, "a compound predicate needs two parts or more"));
                 }
                 Predicate::Compound { combine, parts }
             }
-            other => return Err(self.unsupported(node, format!("predicate <{other}>"), "use SimplePredicate, CompoundPredicate, SimpleSetPredicate, True or False")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("predicate <{other}>"),
+                    "use SimplePredicate, CompoundPredicate, SimpleSetPredicate, True or False",
+                ));
+            }
         })
     }
 
     fn predicate_of(&self, node: Node<'_, '_>, scope: &Scope) -> Result<Predicate, ImportError> {
-        let p = elements(node).find(|c| PREDICATES.contains(&tag(*c))).ok_or_else(|| self.malformed(node, "no predicate"))?;
+        let p = elements(node)
+            .find(|c| PREDICATES.contains(&tag(*c)))
+            .ok_or_else(|| self.malformed(node, "no predicate"))?;
         self.predicate(p, scope, 0)
     }
 
@@ -208,20 +234,33 @@ impl<'a, 'input> Reader<'a, 'input> {
 
     /// Defines the derived fields of a `TransformationDictionary` or
     /// `LocalTransformations`, in order, returning their computations.
-    fn derived_fields(&mut self, node: Option<Node<'_, '_>>, scope: &mut Scope) -> Result<Vec<(u32, Expr)>, ImportError> {
+    fn derived_fields(
+        &mut self,
+        node: Option<Node<'_, '_>>,
+        scope: &mut Scope,
+    ) -> Result<Vec<(u32, Expr)>, ImportError> {
         let Some(node) = node else { return Ok(Vec::new()) };
         let mut out = Vec::new();
         for d in elements(node) {
             match tag(d) {
                 "DerivedField" => {}
-                "DefineFunction" => return Err(self.unsupported(d, "user-defined functions", "inline the function in each DerivedField")),
+                "DefineFunction" => {
+                    return Err(self.unsupported(
+                        d,
+                        "user-defined functions",
+                        "inline the function in each DerivedField",
+                    ));
+                }
                 other => return Err(self.unsupported(d, format!("<{other}>"), "use DerivedField elements")),
             }
             let name = self.attr(d, "name")?;
-            let e = elements(d).find(|c| EXPRESSIONS.contains(&tag(*c)) || tag(*c) == "Aggregate" || tag(*c) == "Lag" || tag(*c) == "TextIndex");
+            let e = elements(d).find(|c| {
+                EXPRESSIONS.contains(&tag(*c)) || tag(*c) == "Aggregate" || tag(*c) == "Lag" || tag(*c) == "TextIndex"
+            });
             let e = e.ok_or_else(|| self.malformed(d, "no expression"))?;
             let (expr, labels) = self.expr(e, scope, 0)?;
-            let categorical = matches!(d.attribute("optype"), Some("categorical" | "ordinal")) || d.attribute("dataType") == Some("string");
+            let categorical = matches!(d.attribute("optype"), Some("categorical" | "ordinal"))
+                || d.attribute("dataType") == Some("string");
             let labels = if categorical { labels } else { None };
             let slot = self.new_slot(d)?;
             scope.define(name, Field { slot, labels, ordinal: d.attribute("optype") == Some("ordinal") });
@@ -231,9 +270,18 @@ impl<'a, 'input> Reader<'a, 'input> {
     }
 
     /// An expression, and the labels of its values when they are text.
-    fn expr(&self, node: Node<'_, '_>, scope: &Scope, depth: usize) -> Result<(Expr, Option<Vec<String>>), ImportError> {
+    fn expr(
+        &self,
+        node: Node<'_, '_>,
+        scope: &Scope,
+        depth: usize,
+    ) -> Result<(Expr, Option<Vec<String>>), ImportError> {
         if depth > MAX_DEPTH {
-            return Err(self.unsupported(node, format!("expressions nested deeper than {MAX_DEPTH}"), "split it into derived fields"));
+            return Err(self.unsupported(
+                node,
+                format!("expressions nested deeper than {MAX_DEPTH}"),
+                "split it into derived fields",
+            ));
         }
         let missing = |s: &Self| s.number(node, "mapMissingTo", Some(f64::NAN));
         Ok(match tag(node) {
@@ -251,7 +299,21 @@ impl<'a, 'input> Reader<'a, 'input> {
                 let field = self.field(node, scope, self.attr(node, "field")?)?;
                 if node.attribute("mapMissingTo").is_some() {
                     let m = missing(self)?;
-                    let e = Expr::Apply { function: Function::If, args: vec![Expr::Apply { function: Function::IsMissing, args: vec![Expr::Field(field.slot)], missing: f64::NAN, default: f64::NAN }, Expr::Constant(m), Expr::Field(field.slot)], missing: f64::NAN, default: f64::NAN };
+                    let e = Expr::Apply {
+                        function: Function::If,
+                        args: vec![
+                            Expr::Apply {
+                                function: Function::IsMissing,
+                                args: vec![Expr::Field(field.slot)],
+                                missing: f64::NAN,
+                                default: f64::NAN,
+                            },
+                            Expr::Constant(m),
+                            Expr::Field(field.slot),
+                        ],
+                        missing: f64::NAN,
+                        default: f64::NAN,
+                    };
                     (e, field.labels.clone())
                 } else {
                     (Expr::Field(field.slot), field.labels.clone())
@@ -284,7 +346,8 @@ impl<'a, 'input> Reader<'a, 'input> {
                 let mut labels = Labels::default();
                 let mut bins = Vec::new();
                 for b in elements(node).filter(|c| tag(*c) == "DiscretizeBin") {
-                    let interval = self.interval(child(b, "Interval").ok_or_else(|| self.malformed(b, "no <Interval>"))?)?;
+                    let interval =
+                        self.interval(child(b, "Interval").ok_or_else(|| self.malformed(b, "no <Interval>"))?)?;
                     bins.push((interval, labels.value(self.attr(b, "binValue")?)));
                 }
                 let default = node.attribute("defaultValue").map_or(f64::NAN, |t| labels.value(t));
@@ -300,11 +363,14 @@ impl<'a, 'input> Reader<'a, 'input> {
                 if pairs.is_empty() {
                     return Err(self.malformed(node, "no FieldColumnPair"));
                 }
-                let table = child(node, "InlineTable").ok_or_else(|| self.unsupported(node, "a table other than an InlineTable", "inline the table"))?;
+                let table = child(node, "InlineTable")
+                    .ok_or_else(|| self.unsupported(node, "a table other than an InlineTable", "inline the table"))?;
                 let mut labels = Labels::default();
                 let mut rows = Vec::new();
                 for row in elements(table).filter(|c| tag(*c) == "row") {
-                    let cell = |column: &str| elements(row).find(|c| tag(*c) == column).map(|c| c.text().unwrap_or("").trim().to_owned());
+                    let cell = |column: &str| {
+                        elements(row).find(|c| tag(*c) == column).map(|c| c.text().unwrap_or("").trim().to_owned())
+                    };
                     let Some(out) = cell(output) else { continue };
                     let mut keys = Vec::with_capacity(pairs.len());
                     for (field, column) in &pairs {
@@ -316,7 +382,10 @@ impl<'a, 'input> Reader<'a, 'input> {
                 }
                 let default = node.attribute("defaultValue").map_or(f64::NAN, |t| labels.value(t));
                 let m = node.attribute("mapMissingTo").map_or(f64::NAN, |t| labels.value(t));
-                (Expr::Lookup { fields: pairs.iter().map(|(f, _)| f.slot).collect(), rows, missing: m, default }, labels.finish())
+                (
+                    Expr::Lookup { fields: pairs.iter().map(|(f, _)| f.slot).collect(), rows, missing: m, default },
+                    labels.finish(),
+                )
             }
             "Apply" => {
                 let name = self.attr(node, "function")?;
@@ -346,7 +415,13 @@ impl<'a, 'input> Reader<'a, 'input> {
                     "or" => Function::Or,
                     "not" => Function::Not,
                     "if" => Function::If,
-                    other => return Err(self.unsupported(node, format!("function `{other}`"), "use arithmetic, comparison, logical or rounding functions")),
+                    other => {
+                        return Err(self.unsupported(
+                            node,
+                            format!("function `{other}`"),
+                            "use arithmetic, comparison, logical or rounding functions",
+                        ));
+                    }
                 };
                 if node.attribute("invalidValueTreatment").is_some_and(|t| t != "returnInvalid") {
                     return Err(self.unsupported(node, "invalidValueTreatment on Apply", "leave it at returnInvalid"));
@@ -361,17 +436,32 @@ impl<'a, 'input> Reader<'a, 'input> {
                 // A text constant compared with a categorical field: its label's index.
                 if matches!(function, Function::Compare(Compare::Equal | Compare::NotEqual)) && args.len() == 2 {
                     for (c, f) in [(0, 1), (1, 0)] {
-                        if let (Expr::Constant(_), Some([text]), Some(labels)) = (&args[c], arg_labels[c].as_deref(), &arg_labels[f]) {
-                            args[c] = Expr::Constant(labels.iter().position(|l| l == text).map_or(NO_LABEL, |i| i as f64));
+                        if let (Expr::Constant(_), Some([text]), Some(labels)) =
+                            (&args[c], arg_labels[c].as_deref(), &arg_labels[f])
+                        {
+                            args[c] =
+                                Expr::Constant(labels.iter().position(|l| l == text).map_or(NO_LABEL, |i| i as f64));
                         }
                     }
-                } else if let Some(text) = arg_labels.iter().flatten().find(|l| l.len() == 1 && !matches!(function, Function::If)) {
-                    return Err(self.unsupported(node, format!("text `{}` in function `{name}`", text[0]), "compute with numbers"));
+                } else if let Some(text) =
+                    arg_labels.iter().flatten().find(|l| l.len() == 1 && !matches!(function, Function::If))
+                {
+                    return Err(self.unsupported(
+                        node,
+                        format!("text `{}` in function `{name}`", text[0]),
+                        "compute with numbers",
+                    ));
                 }
                 let default = self.number(node, "defaultValue", Some(f64::NAN))?;
                 (Expr::Apply { function, args, missing: missing(self)?, default }, None)
             }
-            other => return Err(self.unsupported(node, format!("expression <{other}>"), "use Constant, FieldRef, NormContinuous, NormDiscrete, Discretize, MapValues or Apply")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("expression <{other}>"),
+                    "use Constant, FieldRef, NormContinuous, NormDiscrete, Discretize, MapValues or Apply",
+                ));
+            }
         })
     }
 
@@ -394,7 +484,12 @@ impl<'a, 'input> Reader<'a, 'input> {
     // ---- models ----
 
     /// The class labels of a classification model whose target is `target`.
-    fn classes(&self, node: Node<'_, '_>, target: Option<&str>, found: impl FnOnce() -> Vec<String>) -> Result<Vec<String>, ImportError> {
+    fn classes(
+        &self,
+        node: Node<'_, '_>,
+        target: Option<&str>,
+        found: impl FnOnce() -> Vec<String>,
+    ) -> Result<Vec<String>, ImportError> {
         if let Some(d) = target.and_then(|t| self.dictionary.get(t)) {
             if !d.values.is_empty() {
                 return Ok(d.values.clone());
@@ -402,7 +497,10 @@ impl<'a, 'input> Reader<'a, 'input> {
         }
         let found = found();
         if found.is_empty() {
-            return Err(self.malformed(node, "a classification model with no classes (list the target's Values in the DataDictionary)"));
+            return Err(self.malformed(
+                node,
+                "a classification model with no classes (list the target's Values in the DataDictionary)",
+            ));
         }
         Ok(found)
     }
@@ -412,28 +510,53 @@ impl<'a, 'input> Reader<'a, 'input> {
             return Some(t.to_owned());
         }
         let schema = child(model, "MiningSchema")?;
-        elements(schema).find(|f| matches!(f.attribute("usageType"), Some("target" | "predicted"))).and_then(|f| f.attribute("name")).map(str::to_owned)
+        elements(schema)
+            .find(|f| matches!(f.attribute("usageType"), Some("target" | "predicted")))
+            .and_then(|f| f.attribute("name"))
+            .map(str::to_owned)
     }
 
     /// A model element, with `classes` the class labels when the caller has
     /// fixed them (a segment of an ensemble).
-    fn model(&mut self, node: Node<'_, '_>, scope: &mut Scope, classes: Option<&[String]>, depth: usize) -> Result<(Model, Vec<String>), ImportError> {
+    fn model(
+        &mut self,
+        node: Node<'_, '_>,
+        scope: &mut Scope,
+        classes: Option<&[String]>,
+        depth: usize,
+    ) -> Result<(Model, Vec<String>), ImportError> {
         if depth > MAX_DEPTH {
-            return Err(self.unsupported(node, format!("models nested deeper than {MAX_DEPTH}"), "flatten the ensemble"));
+            return Err(self.unsupported(
+                node,
+                format!("models nested deeper than {MAX_DEPTH}"),
+                "flatten the ensemble",
+            ));
         }
         let function = self.attr(node, "functionName")?;
         let classification = match function {
             "regression" => false,
             "classification" => true,
-            other => return Err(self.unsupported(node, format!("functionName `{other}`"), "export a regression or classification model")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("functionName `{other}`"),
+                    "export a regression or classification model",
+                ));
+            }
         };
         if let Some(schema) = child(node, "MiningSchema") {
             if depth > 0 {
                 for f in elements(schema) {
-                    if ["missingValueReplacement", "outliers", "lowValue", "highValue"].iter().any(|a| f.attribute(*a).is_some())
+                    if ["missingValueReplacement", "outliers", "lowValue", "highValue"]
+                        .iter()
+                        .any(|a| f.attribute(*a).is_some())
                         || f.attribute("invalidValueTreatment").is_some_and(|t| t != "returnInvalid")
                     {
-                        return Err(self.unsupported(f, "value treatment in a nested model's MiningSchema", "treat values in the outermost model's MiningSchema"));
+                        return Err(self.unsupported(
+                            f,
+                            "value treatment in a nested model's MiningSchema",
+                            "treat values in the outermost model's MiningSchema",
+                        ));
                     }
                 }
             }
@@ -445,7 +568,13 @@ impl<'a, 'input> Reader<'a, 'input> {
             "RegressionModel" => self.regression(node, scope, classification, target.as_deref(), classes)?,
             "TreeModel" => self.tree(node, scope, classification, target.as_deref(), classes)?,
             "MiningModel" => self.mining(node, scope, classification, target.as_deref(), classes, depth)?,
-            other => return Err(self.unsupported(node, format!("model <{other}>"), "export a RegressionModel, TreeModel or MiningModel")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("model <{other}>"),
+                    "export a RegressionModel, TreeModel or MiningModel",
+                ));
+            }
         };
         let rescale = self.targets(node, classification)?;
         // Output fields a later segment of a chain reads; each may use the
@@ -458,7 +587,9 @@ impl<'a, 'input> Reader<'a, 'input> {
                 let name = self.attr(f, "name")?;
                 let emit = match f.attribute("feature").unwrap_or("predictedValue") {
                     "transformedValue" => {
-                        let e = elements(f).find(|c| EXPRESSIONS.contains(&tag(*c))).ok_or_else(|| self.malformed(f, "a transformedValue with no expression"))?;
+                        let e = elements(f)
+                            .find(|c| EXPRESSIONS.contains(&tag(*c)))
+                            .ok_or_else(|| self.malformed(f, "a transformedValue with no expression"))?;
                         let (expr, _) = self.expr(e, scope, 0)?;
                         let slot = self.new_slot(f)?;
                         after.push((slot, expr));
@@ -472,7 +603,10 @@ impl<'a, 'input> Reader<'a, 'input> {
                             Some(v) => v,
                             None => continue,
                         };
-                        let k = labels.iter().position(|l| l == value).ok_or_else(|| self.malformed(f, format!("class `{value}` is not one of the model's")))?;
+                        let k = labels
+                            .iter()
+                            .position(|l| l == value)
+                            .ok_or_else(|| self.malformed(f, format!("class `{value}` is not one of the model's")))?;
                         Emit::Probability(k as u32)
                     }
                     // Predicted labels and other features are for people; not passed on.
@@ -496,8 +630,14 @@ impl<'a, 'input> Reader<'a, 'input> {
         let Some(targets) = child(node, "Targets") else { return Ok(None) };
         let mut out = None;
         for t in elements(targets) {
-            if let Some(v) = elements(t).find(|v| v.attribute("priorProbability").is_some() || v.attribute("defaultValue").is_some()) {
-                return Err(self.unsupported(v, "TargetValue priors and defaults", "remove them; the model's own prediction is used"));
+            if let Some(v) =
+                elements(t).find(|v| v.attribute("priorProbability").is_some() || v.attribute("defaultValue").is_some())
+            {
+                return Err(self.unsupported(
+                    v,
+                    "TargetValue priors and defaults",
+                    "remove them; the model's own prediction is used",
+                ));
             }
             if classification {
                 continue;
@@ -520,7 +660,14 @@ impl<'a, 'input> Reader<'a, 'input> {
         Ok(out)
     }
 
-    fn regression(&mut self, node: Node<'_, '_>, scope: &Scope, classification: bool, target: Option<&str>, fixed: Option<&[String]>) -> Result<(Kind, Vec<String>), ImportError> {
+    fn regression(
+        &mut self,
+        node: Node<'_, '_>,
+        scope: &Scope,
+        classification: bool,
+        target: Option<&str>,
+        fixed: Option<&[String]>,
+    ) -> Result<(Kind, Vec<String>), ImportError> {
         let normalize = match node.attribute("normalizationMethod").unwrap_or("none") {
             "none" => Normalize::None,
             "softmax" => Normalize::Softmax,
@@ -531,14 +678,21 @@ impl<'a, 'input> Reader<'a, 'input> {
             "cauchit" => Normalize::Cauchit,
             "exp" => Normalize::Exp,
             "simplemax" => Normalize::Simplemax,
-            other => return Err(self.unsupported(node, format!("normalizationMethod `{other}`"), "use none, softmax, logit, probit, cloglog, loglog, cauchit, exp or simplemax")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("normalizationMethod `{other}`"),
+                    "use none, softmax, logit, probit, cloglog, loglog, cauchit, exp or simplemax",
+                ));
+            }
         };
         let tables_nodes: Vec<Node<'_, '_>> = elements(node).filter(|c| tag(*c) == "RegressionTable").collect();
         if tables_nodes.is_empty() {
             return Err(self.malformed(node, "no RegressionTable"));
         }
         let labels = if classification {
-            let found = || tables_nodes.iter().filter_map(|t| t.attribute("targetCategory").map(str::to_owned)).collect();
+            let found =
+                || tables_nodes.iter().filter_map(|t| t.attribute("targetCategory").map(str::to_owned)).collect();
             match fixed {
                 Some(f) => f.to_vec(),
                 None => self.classes(node, target, found)?,
@@ -548,16 +702,28 @@ impl<'a, 'input> Reader<'a, 'input> {
         };
         let mut tables = Vec::new();
         for t in &tables_nodes {
-            let mut table = Table { intercept: self.number(*t, "intercept", None)?, numeric: Vec::new(), categorical: Vec::new(), products: Vec::new(), class: 0 };
+            let mut table = Table {
+                intercept: self.number(*t, "intercept", None)?,
+                numeric: Vec::new(),
+                categorical: Vec::new(),
+                products: Vec::new(),
+                class: 0,
+            };
             if classification {
                 let category = self.attr(*t, "targetCategory")?;
-                table.class = labels.iter().position(|l| l == category).ok_or_else(|| self.malformed(*t, format!("targetCategory `{category}` is not one of the classes")))? as u32;
+                table.class = labels.iter().position(|l| l == category).ok_or_else(|| {
+                    self.malformed(*t, format!("targetCategory `{category}` is not one of the classes"))
+                })? as u32;
             }
             for p in elements(*t) {
                 match tag(p) {
                     "NumericPredictor" => {
                         let field = self.field(p, scope, self.attr(p, "name")?)?;
-                        table.numeric.push((field.slot, self.number(p, "exponent", Some(1.0))?, self.number(p, "coefficient", None)?));
+                        table.numeric.push((
+                            field.slot,
+                            self.number(p, "exponent", Some(1.0))?,
+                            self.number(p, "coefficient", None)?,
+                        ));
                     }
                     "CategoricalPredictor" => {
                         let field = self.field(p, scope, self.attr(p, "name")?)?;
@@ -571,13 +737,23 @@ impl<'a, 'input> Reader<'a, 'input> {
                             .collect::<Result<Vec<_>, ImportError>>()?;
                         table.products.push((fields, self.number(p, "coefficient", None)?));
                     }
-                    other => return Err(self.unsupported(p, format!("<{other}> in a RegressionTable"), "use NumericPredictor, CategoricalPredictor or PredictorTerm")),
+                    other => {
+                        return Err(self.unsupported(
+                            p,
+                            format!("<{other}> in a RegressionTable"),
+                            "use NumericPredictor, CategoricalPredictor or PredictorTerm",
+                        ));
+                    }
                 }
             }
             tables.push(table);
         }
         if classification && tables.len() != labels.len() {
-            return Err(self.unsupported(node, format!("{} tables for {} classes", tables.len(), labels.len()), "give one RegressionTable per class"));
+            return Err(self.unsupported(
+                node,
+                format!("{} tables for {} classes", tables.len(), labels.len()),
+                "give one RegressionTable per class",
+            ));
         }
         if !classification && tables.len() != 1 {
             return Err(self.malformed(node, format!("{} RegressionTables in a regression", tables.len())));
@@ -585,13 +761,26 @@ impl<'a, 'input> Reader<'a, 'input> {
         Ok((Kind::Regression { tables, normalize }, labels))
     }
 
-    fn tree(&mut self, node: Node<'_, '_>, scope: &Scope, classification: bool, target: Option<&str>, fixed: Option<&[String]>) -> Result<(Kind, Vec<String>), ImportError> {
+    fn tree(
+        &mut self,
+        node: Node<'_, '_>,
+        scope: &Scope,
+        classification: bool,
+        target: Option<&str>,
+        fixed: Option<&[String]>,
+    ) -> Result<(Kind, Vec<String>), ImportError> {
         let unknown = match node.attribute("missingValueStrategy").unwrap_or("none") {
             "none" => WhenUnknown::NextChild,
             "lastPrediction" => WhenUnknown::LastPrediction,
             "nullPrediction" => WhenUnknown::NoPrediction,
             "defaultChild" => WhenUnknown::DefaultChild,
-            other => return Err(self.unsupported(node, format!("missingValueStrategy `{other}`"), "use none, lastPrediction, nullPrediction or defaultChild")),
+            other => {
+                return Err(self.unsupported(
+                    node,
+                    format!("missingValueStrategy `{other}`"),
+                    "use none, lastPrediction, nullPrediction or defaultChild",
+                ));
+            }
         };
         let last_when_no_child = match node.attribute("noTrueChildStrategy").unwrap_or("returnNullPrediction") {
             "returnNullPrediction" => false,
@@ -639,17 +828,25 @@ impl<'a, 'input> Reader<'a, 'input> {
             }
             let score = match n.attribute("score") {
                 None => f64::NAN,
-                Some(s) if classification => labels.iter().position(|l| l == s).ok_or_else(|| self.malformed(n, format!("score `{s}` is not one of the classes")))? as f64,
+                Some(s) if classification => labels
+                    .iter()
+                    .position(|l| l == s)
+                    .ok_or_else(|| self.malformed(n, format!("score `{s}` is not one of the classes")))?
+                    as f64,
                 Some(s) => parse_number(s).ok_or_else(|| self.malformed(n, format!("score `{s}` is not a number")))?,
             };
             let mut probabilities = Vec::new();
             let dist: Vec<Node<'_, '_>> = elements(n).filter(|c| tag(*c) == "ScoreDistribution").collect();
             if classification && !dist.is_empty() {
                 probabilities = vec![0.0; labels.len()];
-                let total: f64 = dist.iter().map(|d| self.number(*d, "recordCount", Some(0.0))).sum::<Result<f64, _>>()?;
+                let total: f64 =
+                    dist.iter().map(|d| self.number(*d, "recordCount", Some(0.0))).sum::<Result<f64, _>>()?;
                 for d in &dist {
                     let value = self.attr(*d, "value")?;
-                    let k = labels.iter().position(|l| l == value).ok_or_else(|| self.malformed(*d, format!("value `{value}` is not one of the classes")))?;
+                    let k = labels
+                        .iter()
+                        .position(|l| l == value)
+                        .ok_or_else(|| self.malformed(*d, format!("value `{value}` is not one of the classes")))?;
                     probabilities[k] = match d.attribute("probability") {
                         Some(_) => self.number(*d, "probability", None)?,
                         None if total > 0.0 => self.number(*d, "recordCount", None)? / total,
@@ -657,10 +854,18 @@ impl<'a, 'input> Reader<'a, 'input> {
                     };
                 }
             }
-            nodes.push(TreeNode { predicate: self.predicate_of(n, scope)?, score, probabilities, children: Vec::new(), default_child: None });
+            nodes.push(TreeNode {
+                predicate: self.predicate_of(n, scope)?,
+                score,
+                probabilities,
+                children: Vec::new(),
+                default_child: None,
+            });
             ids.push(n.attribute("id").map(str::to_owned));
             defaults.push(n.attribute("defaultChild").map(|d| (d.to_owned(), n)));
-            if let Some(p) = elements(n).find(|c| tag(*c) == "Partition" || tag(*c) == "Regression" || tag(*c) == "DecisionTree") {
+            if let Some(p) =
+                elements(n).find(|c| tag(*c) == "Partition" || tag(*c) == "Regression" || tag(*c) == "DecisionTree")
+            {
                 return Err(self.unsupported(p, format!("<{}> in a Node", tag(p)), "give each node a score"));
             }
             let kids: Vec<Node<'_, '_>> = elements(n).filter(|c| tag(*c) == "Node").collect();
@@ -673,33 +878,62 @@ impl<'a, 'input> Reader<'a, 'input> {
         for (i, d) in defaults.iter().enumerate() {
             if let Some((name, n)) = d {
                 let c = nodes[i].children.iter().copied().find(|c| ids[*c as usize].as_deref() == Some(name.as_str()));
-                nodes[i].default_child = Some(c.ok_or_else(|| self.malformed(*n, format!("defaultChild `{name}` is not one of its children")))?);
+                nodes[i].default_child =
+                    Some(c.ok_or_else(|| {
+                        self.malformed(*n, format!("defaultChild `{name}` is not one of its children"))
+                    })?);
             }
         }
         Ok((Kind::Tree { nodes, unknown, last_when_no_child }, labels))
     }
 
-    fn mining(&mut self, node: Node<'_, '_>, scope: &mut Scope, classification: bool, target: Option<&str>, fixed: Option<&[String]>, depth: usize) -> Result<(Kind, Vec<String>), ImportError> {
-        let segmentation = child(node, "Segmentation").ok_or_else(|| self.unsupported(node, "a MiningModel without Segmentation", "use a Segmentation"))?;
-        let method = match self.attr(segmentation, "multipleModelMethod")? {
-            "sum" => Ensemble::Sum,
-            "average" => Ensemble::Average,
-            "weightedAverage" => Ensemble::WeightedAverage,
-            "majorityVote" => Ensemble::MajorityVote,
-            "weightedMajorityVote" => Ensemble::WeightedMajorityVote,
-            "modelChain" => Ensemble::Chain,
-            "selectFirst" => Ensemble::SelectFirst,
-            other => return Err(self.unsupported(segmentation, format!("multipleModelMethod `{other}`"), "use sum, average, weightedAverage, majorityVote, weightedMajorityVote, modelChain or selectFirst")),
-        };
-        if classification && method == Ensemble::Sum || !classification && matches!(method, Ensemble::MajorityVote | Ensemble::WeightedMajorityVote) {
-            return Err(self.unsupported(segmentation, format!("multipleModelMethod `{}` for a {}", segmentation.attribute("multipleModelMethod").unwrap_or(""), if classification { "classification" } else { "regression" }), "combine classifiers by vote or average, regressions by sum or average"));
+    fn mining(
+        &mut self,
+        node: Node<'_, '_>,
+        scope: &mut Scope,
+        classification: bool,
+        target: Option<&str>,
+        fixed: Option<&[String]>,
+        depth: usize,
+    ) -> Result<(Kind, Vec<String>), ImportError> {
+        let segmentation = child(node, "Segmentation")
+            .ok_or_else(|| self.unsupported(node, "a MiningModel without Segmentation", "use a Segmentation"))?;
+        let method =
+            match self.attr(segmentation, "multipleModelMethod")? {
+                "sum" => Ensemble::Sum,
+                "average" => Ensemble::Average,
+                "weightedAverage" => Ensemble::WeightedAverage,
+                "majorityVote" => Ensemble::MajorityVote,
+                "weightedMajorityVote" => Ensemble::WeightedMajorityVote,
+                "modelChain" => Ensemble::Chain,
+                "selectFirst" => Ensemble::SelectFirst,
+                other => return Err(self.unsupported(
+                    segmentation,
+                    format!("multipleModelMethod `{other}`"),
+                    "use sum, average, weightedAverage, majorityVote, weightedMajorityVote, modelChain or selectFirst",
+                )),
+            };
+        if classification && method == Ensemble::Sum
+            || !classification && matches!(method, Ensemble::MajorityVote | Ensemble::WeightedMajorityVote)
+        {
+            return Err(self.unsupported(
+                segmentation,
+                format!(
+                    "multipleModelMethod `{}` for a {}",
+                    segmentation.attribute("multipleModelMethod").unwrap_or(""),
+                    if classification { "classification" } else { "regression" }
+                ),
+                "combine classifiers by vote or average, regressions by sum or average",
+            ));
         }
         let labels: Vec<String> = if classification {
             match fixed {
                 Some(f) => f.to_vec(),
                 None => self.classes(node, target, Vec::new).or_else(|_| {
                     // The first classifying segment's own classes.
-                    let first = segmentation.descendants().find(|d| MODELS.contains(&tag(*d)) && d.attribute("functionName") == Some("classification"));
+                    let first = segmentation
+                        .descendants()
+                        .find(|d| MODELS.contains(&tag(*d)) && d.attribute("functionName") == Some("classification"));
                     let t = first.and_then(|m| self.target_of(m));
                     match first {
                         Some(m) => self.classes(m, t.as_deref(), Vec::new),
@@ -714,21 +948,35 @@ impl<'a, 'input> Reader<'a, 'input> {
         for s in elements(segmentation).filter(|c| tag(*c) == "Segment") {
             let predicate = self.predicate_of(s, scope)?;
             let weight = self.number(s, "weight", Some(1.0))?;
-            let m = elements(s).find(|c| !PREDICATES.contains(&tag(*c))).ok_or_else(|| self.malformed(s, "no model"))?;
+            let m =
+                elements(s).find(|c| !PREDICATES.contains(&tag(*c))).ok_or_else(|| self.malformed(s, "no model"))?;
             if !MODELS.contains(&tag(m)) {
-                return Err(self.unsupported(m, format!("model <{}>", tag(m)), "segments of RegressionModel, TreeModel or MiningModel"));
+                return Err(self.unsupported(
+                    m,
+                    format!("model <{}>", tag(m)),
+                    "segments of RegressionModel, TreeModel or MiningModel",
+                ));
             }
             // In a chain a segment's function may differ from the whole
             // (a regression feeding a classifier); it then keeps its own classes.
             let inner_classification = m.attribute("functionName") == Some("classification");
             if method != Ensemble::Chain && inner_classification != classification {
-                return Err(self.unsupported(m, "a segment whose functionName differs from its ensemble's", "segments of one kind, or a modelChain"));
+                return Err(self.unsupported(
+                    m,
+                    "a segment whose functionName differs from its ensemble's",
+                    "segments of one kind, or a modelChain",
+                ));
             }
             let is_last = s.next_siblings().skip(1).all(|n| !(n.is_element() && tag(n) == "Segment"));
-            let fixed_inner = if inner_classification && (method != Ensemble::Chain || is_last) { Some(&labels[..]) } else { None };
+            let fixed_inner =
+                if inner_classification && (method != Ensemble::Chain || is_last) { Some(&labels[..]) } else { None };
             let (model, _) = self.model(m, scope, fixed_inner, depth + 1)?;
             if method == Ensemble::Chain && is_last && inner_classification != classification {
-                return Err(self.unsupported(m, "a chain whose last segment's functionName differs from the chain's", "end the chain with a model of the chain's kind"));
+                return Err(self.unsupported(
+                    m,
+                    "a chain whose last segment's functionName differs from the chain's",
+                    "end the chain with a model of the chain's kind",
+                ));
             }
             segments.push(Segment { predicate, weight, model });
         }
@@ -828,7 +1076,11 @@ fn array_items(text: &str) -> Vec<String> {
 
 pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> {
     let blame = Blame { file };
-    let wrong = || ImportError::WrongFormat { file: file.to_owned(), expected: Format::Pmml.name(), looks_like: crate::looks_like(bytes) };
+    let wrong = || ImportError::WrongFormat {
+        file: file.to_owned(),
+        expected: Format::Pmml.name(),
+        looks_like: crate::looks_like(bytes),
+    };
     let text = std::str::from_utf8(bytes).map_err(|_| wrong())?;
     let options = roxmltree::ParsingOptions { allow_dtd: false, nodes_limit: 1 << 24 };
     let doc = Document::parse_with_options(text, options).map_err(|e| {
@@ -852,23 +1104,51 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         let mut intervals = Vec::new();
         for v in elements(f) {
             match tag(v) {
-                "Value" if v.attribute("property").unwrap_or("valid") == "valid" => values.push(reader.attr(v, "value")?.to_owned()),
+                "Value" if v.attribute("property").unwrap_or("valid") == "valid" => {
+                    values.push(reader.attr(v, "value")?.to_owned())
+                }
                 "Value" => {}
                 "Interval" => intervals.push(reader.interval(v)?),
                 _ => {}
             }
         }
         let line = doc.text_pos_at(f.range().start).row;
-        reader.dictionary.insert(name, DataField { optype: reader.attr(f, "optype")?.to_owned(), data_type: reader.attr(f, "dataType")?.to_owned(), values, intervals, line });
+        reader.dictionary.insert(
+            name,
+            DataField {
+                optype: reader.attr(f, "optype")?.to_owned(),
+                data_type: reader.attr(f, "dataType")?.to_owned(),
+                values,
+                intervals,
+                line,
+            },
+        );
     }
-    let models: Vec<Node<'_, '_>> = elements(root).filter(|c| tag(*c).ends_with("Model") && tag(*c) != "ModelVerification").collect();
+    let models: Vec<Node<'_, '_>> =
+        elements(root).filter(|c| tag(*c).ends_with("Model") && tag(*c) != "ModelVerification").collect();
     let model_node = match models[..] {
         [one] => one,
-        [] => return Err(reader.unsupported(root, "a document with no model", "export a RegressionModel, TreeModel or MiningModel")),
-        _ => return Err(reader.unsupported(models[1], "a second model in one document", "export one model per file (or a MiningModel of segments)")),
+        [] => {
+            return Err(reader.unsupported(
+                root,
+                "a document with no model",
+                "export a RegressionModel, TreeModel or MiningModel",
+            ));
+        }
+        _ => {
+            return Err(reader.unsupported(
+                models[1],
+                "a second model in one document",
+                "export one model per file (or a MiningModel of segments)",
+            ));
+        }
     };
     if !MODELS.contains(&tag(model_node)) {
-        return Err(reader.unsupported(model_node, format!("model <{}>", tag(model_node)), "export a RegressionModel, TreeModel or MiningModel"));
+        return Err(reader.unsupported(
+            model_node,
+            format!("model <{}>", tag(model_node)),
+            "export a RegressionModel, TreeModel or MiningModel",
+        ));
     }
     // The features: the outermost model's active fields, in MiningSchema order.
     let schema = child(model_node, "MiningSchema").ok_or_else(|| reader.malformed(model_node, "no MiningSchema"))?;
@@ -881,11 +1161,18 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         if !matches!(m.attribute("usageType").unwrap_or("active"), "active") {
             continue;
         }
-        let d = reader.dictionary.get(name).cloned().ok_or_else(|| reader.malformed(m, format!("`{name}` is not in the DataDictionary")))?;
+        let d = reader
+            .dictionary
+            .get(name)
+            .cloned()
+            .ok_or_else(|| reader.malformed(m, format!("`{name}` is not in the DataDictionary")))?;
         let (feature, input, from) = reader.feature(m, name, &d)?;
         let slot = reader.new_slot(m)?;
         let categorical = matches!(d.optype.as_str(), "categorical" | "ordinal") && d.data_type != "boolean";
-        scope.define(name, Field { slot, labels: categorical.then(|| d.values.clone()), ordinal: d.optype == "ordinal" });
+        scope.define(
+            name,
+            Field { slot, labels: categorical.then(|| d.values.clone()), ordinal: d.optype == "ordinal" },
+        );
         features.push(feature);
         inputs.push(input);
         sources.push(Source { part: format!("feature {name}"), from });
@@ -903,7 +1190,12 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         labels
             .iter()
             .enumerate()
-            .map(|(k, l)| (Output::new(&format!("probability_{l}"), Bounds::OPEN).about(&format!("the probability of `{l}`")), Emit::Probability(k as u32)))
+            .map(|(k, l)| {
+                (
+                    Output::new(&format!("probability_{l}"), Bounds::OPEN).about(&format!("the probability of `{l}`")),
+                    Emit::Probability(k as u32),
+                )
+            })
             .unzip()
     };
     for o in &outputs {
@@ -918,7 +1210,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     // The program's own checks, so a document it cannot run fails here.
     paddock_guest::Program::new(params.clone()).map_err(|e| reader.malformed(model_node, e))?;
     let application = child(root, "Header").and_then(|h| child(h, "Application"));
-    let toolkit = application.map_or("(application not recorded)".to_owned(), |a| format!("{} {}", a.attribute("name").unwrap_or(""), a.attribute("version").unwrap_or("")).trim().to_owned());
+    let toolkit = application.map_or("(application not recorded)".to_owned(), |a| {
+        format!("{} {}", a.attribute("name").unwrap_or(""), a.attribute("version").unwrap_or("")).trim().to_owned()
+    });
     let kind = format!("{} ({})", tag(model_node), model_node.attribute("functionName").unwrap_or(""));
     Ok(Imported {
         contract: Contract { name: model_node.attribute("modelName").unwrap_or("").to_owned(), version: String::new(), about: String::new(), features, outputs },
@@ -951,10 +1245,18 @@ impl Reader<'_, '_> {
             Feature::flag(name)
         } else if categorical {
             if d.values.is_empty() {
-                return Err(self.unsupported(m, format!("categorical field `{name}` with no listed Values"), "list its values in the DataDictionary"));
+                return Err(self.unsupported(
+                    m,
+                    format!("categorical field `{name}` with no listed Values"),
+                    "list its values in the DataDictionary",
+                ));
             }
             if invalid != "returnInvalid" {
-                return Err(self.unsupported(m, format!("invalidValueTreatment `{invalid}` on categorical field `{name}`"), "use returnInvalid: a label outside the list is refused"));
+                return Err(self.unsupported(
+                    m,
+                    format!("invalidValueTreatment `{invalid}` on categorical field `{name}`"),
+                    "use returnInvalid: a label outside the list is refused",
+                ));
             }
             let labels: Vec<&str> = d.values.iter().map(String::as_str).collect();
             from.push_str(&format!("; labels {}", labels.join(", ")));
@@ -967,7 +1269,13 @@ impl Reader<'_, '_> {
                     (Bounds::OPEN, "values outside the Intervals count as absent")
                 }
                 "asIs" => (Bounds::OPEN, "values outside the Interval are used as they are"),
-                other => return Err(self.unsupported(m, format!("invalidValueTreatment `{other}`"), "use returnInvalid, asMissing or asIs")),
+                other => {
+                    return Err(self.unsupported(
+                        m,
+                        format!("invalidValueTreatment `{other}`"),
+                        "use returnInvalid, asMissing or asIs",
+                    ));
+                }
             };
             if d.intervals.len() > 1 && invalid == "returnInvalid" {
                 valid = d.intervals.clone();
@@ -986,16 +1294,24 @@ impl Reader<'_, '_> {
             Some(t) => {
                 from.push_str(&format!("; absent → {t} (missingValueReplacement)"));
                 if categorical {
-                    d.values.iter().position(|v| v == t).ok_or_else(|| self.malformed(m, format!("missingValueReplacement `{t}` is not one of the field's values")))? as f64
+                    d.values.iter().position(|v| v == t).ok_or_else(|| {
+                        self.malformed(m, format!("missingValueReplacement `{t}` is not one of the field's values"))
+                    })? as f64
                 } else {
-                    parse_number(t).ok_or_else(|| self.malformed(m, format!("missingValueReplacement `{t}` is not a number")))?
+                    parse_number(t)
+                        .ok_or_else(|| self.malformed(m, format!("missingValueReplacement `{t}` is not a number")))?
                 }
             }
         };
         let outliers = match m.attribute("outliers").unwrap_or("asIs") {
             "asIs" => Outliers::AsIs,
-            "asMissingValues" => Outliers::AsMissing { low: self.number(m, "lowValue", None)?, high: self.number(m, "highValue", None)? },
-            "asExtremeValues" => Outliers::AsExtremes { low: self.number(m, "lowValue", None)?, high: self.number(m, "highValue", None)? },
+            "asMissingValues" => {
+                Outliers::AsMissing { low: self.number(m, "lowValue", None)?, high: self.number(m, "highValue", None)? }
+            }
+            "asExtremeValues" => Outliers::AsExtremes {
+                low: self.number(m, "lowValue", None)?,
+                high: self.number(m, "highValue", None)?,
+            },
             other => return Err(self.malformed(m, format!("outliers `{other}`"))),
         };
         from.push_str("; optional: the model handles an absent value as the document says");

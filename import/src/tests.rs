@@ -28,7 +28,10 @@ fn a_stump_from_xgboost_becomes_single_precision_params() {
     let Estimator::Trees(p) = &imported.estimator else { panic!("trees") };
     assert_eq!((p.inputs, p.arithmetic, p.link), (Precision::Single, Precision::Single, OutputLink::Identity));
     assert_eq!(p.base, vec![0.5]);
-    assert_eq!(p.trees[0].nodes[0], Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right });
+    assert_eq!(
+        p.trees[0].nodes[0],
+        Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right }
+    );
     let c = &imported.contract;
     assert_eq!(c.name, "stump");
     assert_eq!(c.features.iter().map(|f| f.name.as_str()).collect::<Vec<_>>(), ["f0", "f1"]);
@@ -38,15 +41,36 @@ fn a_stump_from_xgboost_becomes_single_precision_params() {
 #[test]
 fn broken_xgboost_files_are_refused_naming_the_place() {
     let cases = [
-        (xgboost(&STUMP.replace("[1, -1, -1]", "[1, -1]")), "m: learner.gradient_booster.model.trees[0].right_children: 3 entries but left_children has 2"),
+        (
+            xgboost(&STUMP.replace("[1, -1, -1]", "[1, -1]")),
+            "m: learner.gradient_booster.model.trees[0].right_children: 3 entries but left_children has 2",
+        ),
         (xgboost(&STUMP.replace("[2, -1, -1]", "[7, -1, -1]")), "m: tree 0 node 0: child 7 but the tree has 3 nodes"),
-        (xgboost(&STUMP.replace("[1, -1, -1], \"right", "[1, 0, -1], \"right").replace("[2, -1, -1]", "[2, 2, -1]")), "m: learner.gradient_booster.model.trees[0]: a node is reached twice: the children do not form a tree"),
-        (xgboost(&STUMP.replace("[0, 0, 0],\n  \"split_conditions", "[5, 0, 0],\n  \"split_conditions")), "m: tree 0 node 0: feature 5 but the model has 2"),
-        (xgboost(STUMP).replace("reg:squarederror", "survival:aft"), "m: learner.objective.name: objective `survival:aft` is not supported; use a regression"),
-        (xgboost(STUMP).replace("\"gbtree\"", "\"dart\""), "m: learner.gradient_booster.name: booster `dart` is not supported; train with booster=\"gbtree\""),
-        (xgboost(STUMP).replace("[5E-1]", "[half]"), "m: learner.learner_model_param.base_score: `[half]` is not a number"),
+        (
+            xgboost(&STUMP.replace("[1, -1, -1], \"right", "[1, 0, -1], \"right").replace("[2, -1, -1]", "[2, 2, -1]")),
+            "m: learner.gradient_booster.model.trees[0]: a node is reached twice: the children do not form a tree",
+        ),
+        (
+            xgboost(&STUMP.replace("[0, 0, 0],\n  \"split_conditions", "[5, 0, 0],\n  \"split_conditions")),
+            "m: tree 0 node 0: feature 5 but the model has 2",
+        ),
+        (
+            xgboost(STUMP).replace("reg:squarederror", "survival:aft"),
+            "m: learner.objective.name: objective `survival:aft` is not supported; use a regression",
+        ),
+        (
+            xgboost(STUMP).replace("\"gbtree\"", "\"dart\""),
+            "m: learner.gradient_booster.name: booster `dart` is not supported; train with booster=\"gbtree\"",
+        ),
+        (
+            xgboost(STUMP).replace("[5E-1]", "[half]"),
+            "m: learner.learner_model_param.base_score: `[half]` is not a number",
+        ),
         (xgboost(STUMP)[..40].to_owned(), "m: line 1 column 40: not JSON"),
-        ("plain text".to_owned(), "m: not the XGBoost JSON model asked for; it looks like text in no format paddock imports"),
+        (
+            "plain text".to_owned(),
+            "m: not the XGBoost JSON model asked for; it looks like text in no format paddock imports",
+        ),
     ];
     for (file, want) in cases {
         let got = err(&file, Format::XgboostJson);
@@ -67,8 +91,14 @@ fn a_lightgbm_tree_with_a_categorical_split_becomes_params() {
     assert_eq!(p.sets, vec![vec![5]]);
     // Root: feature b in {0, 2} goes left to the numeric split on a
     // (decision_type 10: NaN missing type, absent goes left).
-    assert_eq!(p.trees[0].nodes[0], Node::Member { feature: 1, set: 0, left: 1, right: 4, missing: Branch::Right, members: Branch::Left });
-    assert_eq!(p.trees[0].nodes[1], Node::Split { feature: 0, threshold: 0.25, left: 2, right: 3, missing: Branch::Left });
+    assert_eq!(
+        p.trees[0].nodes[0],
+        Node::Member { feature: 1, set: 0, left: 1, right: 4, missing: Branch::Right, members: Branch::Left }
+    );
+    assert_eq!(
+        p.trees[0].nodes[1],
+        Node::Split { feature: 0, threshold: 0.25, left: 2, right: 3, missing: Branch::Left }
+    );
     assert_eq!(p.trees[0].nodes[4], Node::Leaf { value: 1.5 });
     let c = &imported.contract;
     assert!(matches!(c.features[1].domain, paddock_guest::Domain::Whole(_)));
@@ -78,17 +108,38 @@ fn a_lightgbm_tree_with_a_categorical_split_becomes_params() {
 #[test]
 fn broken_lightgbm_files_are_refused_naming_the_place() {
     let cases = [
-        (LGB.replace("leaf_value=0.5 -0.5 1.5", "leaf_value=0.5 -0.5"), "m: tree 0 line 20: leaf_value has 2 values, expected 3"),
-        (LGB.replace("right_child=-3 -2", "right_child=-9 -2"), "m: tree 0 node 0: child -9 but the tree has 2 splits and 3 leaves"),
+        (
+            LGB.replace("leaf_value=0.5 -0.5 1.5", "leaf_value=0.5 -0.5"),
+            "m: tree 0 line 20: leaf_value has 2 values, expected 3",
+        ),
+        (
+            LGB.replace("right_child=-3 -2", "right_child=-9 -2"),
+            "m: tree 0 node 0: child -9 but the tree has 2 splits and 3 leaves",
+        ),
         (LGB.replace("left_child=1 -1", "left_child=1 0"), "m: tree 0: a node is reached twice"),
-        (LGB.replace("threshold=0 0.25", "threshold=4 0.25"), "m: tree 0 node 0: categorical split names set 4 but the tree has 1"),
-        (LGB.replace("is_linear=0", "is_linear=1"), "m: tree 0 (line 23): a linear tree (linear_tree) is not supported"),
+        (
+            LGB.replace("threshold=0 0.25", "threshold=4 0.25"),
+            "m: tree 0 node 0: categorical split names set 4 but the tree has 1",
+        ),
+        (
+            LGB.replace("is_linear=0", "is_linear=1"),
+            "m: tree 0 (line 23): a linear tree (linear_tree) is not supported",
+        ),
         (LGB.replace("binary sigmoid:2", "regression sqrt"), "m: line 7: objective with reg_sqrt is not supported"),
-        (LGB.replace("binary sigmoid:2", "cross_entropy_lambda"), "m: line 7: objective `cross_entropy_lambda` is not supported"),
+        (
+            LGB.replace("binary sigmoid:2", "cross_entropy_lambda"),
+            "m: line 7: objective `cross_entropy_lambda` is not supported",
+        ),
         (LGB.replace("decision_type=1 10", "decision_type=1 14"), "m: tree 0 node 1: decision_type 14: missing type 3"),
-        (LGB.replace("split_feature=1 0", "split_feature=1 x"), "m: tree 0 line 15: split_feature[1] `x` is not a number"),
+        (
+            LGB.replace("split_feature=1 0", "split_feature=1 x"),
+            "m: tree 0 line 15: split_feature[1] `x` is not a number",
+        ),
         (LGB.replace("Tree=0", "Tree=0\nnum_leaves=0"), "m: tree 0: num_leaves 0"),
-        ("{\"learner\": {}}".to_owned(), "m: not the LightGBM text model asked for; it looks like an XGBoost JSON model"),
+        (
+            "{\"learner\": {}}".to_owned(),
+            "m: not the LightGBM text model asked for; it looks like an XGBoost JSON model",
+        ),
     ];
     for (file, want) in cases {
         let got = err(&file, Format::LightgbmText);
@@ -104,4 +155,3 @@ fn formats_are_recognised_from_content() {
     assert_eq!(crate::looks_like(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), "a PMML document");
     assert_eq!(Format::recognise(b"<?xml version=\"1.0\"?>\n<PMML version=\"4.4\">"), Some(Format::Pmml));
 }
-

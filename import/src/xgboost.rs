@@ -61,7 +61,10 @@ impl Blame<'_> {
     }
 
     fn array<'v>(&self, v: &'v Value, path: &str, key: &str) -> Result<&'v [Value], ImportError> {
-        self.get(v, path, key)?.as_array().map(Vec::as_slice).ok_or_else(|| self.malformed(&format!("{path}.{key}"), "not a list"))
+        self.get(v, path, key)?
+            .as_array()
+            .map(Vec::as_slice)
+            .ok_or_else(|| self.malformed(&format!("{path}.{key}"), "not a list"))
     }
 
     fn ints(&self, v: &Value, path: &str, key: &str) -> Result<Vec<i64>, ImportError> {
@@ -78,7 +81,11 @@ impl Blame<'_> {
             .enumerate()
             // XGBoost writes each float32 in its shortest decimal form;
             // parsed to double and rounded once more it is that float32.
-            .map(|(i, x)| x.as_f64().map(|d| d as f32).ok_or_else(|| self.malformed(&format!("{path}.{key}[{i}]"), "not a number")))
+            .map(|(i, x)| {
+                x.as_f64()
+                    .map(|d| d as f32)
+                    .ok_or_else(|| self.malformed(&format!("{path}.{key}[{i}]"), "not a number"))
+            })
             .collect()
     }
 
@@ -91,7 +98,11 @@ impl Blame<'_> {
 
 pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> {
     let r = Blame { file };
-    let wrong = || ImportError::WrongFormat { file: file.to_owned(), expected: Format::XgboostJson.name(), looks_like: crate::looks_like(bytes) };
+    let wrong = || ImportError::WrongFormat {
+        file: file.to_owned(),
+        expected: Format::XgboostJson.name(),
+        looks_like: crate::looks_like(bytes),
+    };
     let doc: Value = serde_json::from_slice(bytes).map_err(|e| {
         if bytes.trim_ascii_start().starts_with(b"{") {
             r.malformed(&format!("line {} column {}", e.line(), e.column()), format!("not JSON: {e}"))
@@ -108,7 +119,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let booster_name = r.str(booster, "learner.gradient_booster", "name")?;
     if booster_name != "gbtree" {
         let instead = match booster_name {
-            "dart" => "train with booster=\"gbtree\" (dart scales trees at prediction time by weights paddock does not reproduce)",
+            "dart" => {
+                "train with booster=\"gbtree\" (dart scales trees at prediction time by weights paddock does not reproduce)"
+            }
             "gblinear" => "train with booster=\"gbtree\", or export the linear weights to a linear model",
             _ => "train with booster=\"gbtree\"",
         };
@@ -119,7 +132,10 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let param = r.get(learner, "learner", "learner_model_param")?;
     let features = r.number_text(param, "learner.learner_model_param", "num_feature")?;
     let num_class = r.number_text(param, "learner.learner_model_param", "num_class")?;
-    let num_target = param.get("num_target").map(|_| r.number_text(param, "learner.learner_model_param", "num_target")).transpose()?;
+    let num_target = param
+        .get("num_target")
+        .map(|_| r.number_text(param, "learner.learner_model_param", "num_target"))
+        .transpose()?;
     if num_target.is_some_and(|t| t != 1.0) {
         return Err(r.unsupported(
             "learner.learner_model_param.num_target",
@@ -128,7 +144,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         ));
     }
     if !(features.fract() == 0.0 && (0.0..=1e6).contains(&features)) {
-        return Err(r.malformed("learner.learner_model_param.num_feature", format!("{features} is not a feature count")));
+        return Err(
+            r.malformed("learner.learner_model_param.num_feature", format!("{features} is not a feature count"))
+        );
     }
     let features = features as usize;
     let objective = r.str(r.get(learner, "learner", "objective")?, "learner.objective", "name")?;
@@ -141,7 +159,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     })?;
     let classes = if task == Task::Classes {
         if !(num_class.fract() == 0.0 && (2.0..=1e4).contains(&num_class)) {
-            return Err(r.malformed("learner.learner_model_param.num_class", format!("{num_class} classes for {objective}")));
+            return Err(
+                r.malformed("learner.learner_model_param.num_class", format!("{num_class} classes for {objective}"))
+            );
         }
         num_class as usize
     } else {
@@ -155,7 +175,12 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         .split(',')
         .map(|t| t.trim().parse::<f32>())
         .collect::<Result<_, _>>()
-        .map_err(|_| r.malformed("learner.learner_model_param.base_score", format!("`{base_text}` is not a number or a list of numbers")))?;
+        .map_err(|_| {
+            r.malformed(
+                "learner.learner_model_param.base_score",
+                format!("`{base_text}` is not a number or a list of numbers"),
+            )
+        })?;
     let base_scores = match (base_scores.len(), classes) {
         (1, k) => vec![base_scores[0]; k],
         (n, k) if n == k => base_scores,
@@ -168,13 +193,19 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         base.push(f64::from(match task {
             Task::Probability => {
                 if !(p > 0.0 && p < 1.0) {
-                    return Err(r.malformed("learner.learner_model_param.base_score", format!("{p} is not a probability for {objective}")));
+                    return Err(r.malformed(
+                        "learner.learner_model_param.base_score",
+                        format!("{p} is not a probability for {objective}"),
+                    ));
                 }
                 -(1.0f32 / p - 1.0f32).ln()
             }
             Task::Exp => {
                 if p.is_nan() || p <= 0.0 {
-                    return Err(r.malformed("learner.learner_model_param.base_score", format!("{p} must be positive for {objective}")));
+                    return Err(r.malformed(
+                        "learner.learner_model_param.base_score",
+                        format!("{p} must be positive for {objective}"),
+                    ));
                 }
                 p.ln()
             }
@@ -186,12 +217,18 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let trees_json = r.array(model, model_path, "trees")?;
     let tree_info = r.ints(model, model_path, "tree_info")?;
     if tree_info.len() != trees_json.len() {
-        return Err(r.malformed(&format!("{model_path}.tree_info"), format!("{} entries for {} trees", tree_info.len(), trees_json.len())));
+        return Err(r.malformed(
+            &format!("{model_path}.tree_info"),
+            format!("{} entries for {} trees", tree_info.len(), trees_json.len()),
+        ));
     }
     let mut trees = Vec::with_capacity(trees_json.len());
     for (t, (tree, &class)) in trees_json.iter().zip(&tree_info).enumerate() {
         if class < 0 || class as usize >= classes {
-            return Err(r.malformed(&format!("{model_path}.tree_info[{t}]"), format!("class {class} but the model has {classes} outputs")));
+            return Err(r.malformed(
+                &format!("{model_path}.tree_info[{t}]"),
+                format!("class {class} but the model has {classes} outputs"),
+            ));
         }
         trees.push(Tree { output: class as u32, nodes: read_tree(&r, tree, t, features)? });
     }
@@ -225,7 +262,10 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             "int" | "i" => (Feature::whole(name, Bounds::OPEN), "whole number from feature_types (int)"),
             "c" => (Feature::whole(name, Bounds::at_least(0.0)), "category code ≥ 0 from feature_types (c)"),
             "" => (Feature::real(name, Bounds::OPEN), "real number (feature_types is empty)"),
-            other => (Feature::real(name, Bounds::OPEN), if other == "float" || other == "q" { "real number from feature_types" } else { "real number" }),
+            other => (
+                Feature::real(name, Bounds::OPEN),
+                if other == "float" || other == "q" { "real number from feature_types" } else { "real number" },
+            ),
         };
         contract_sources.push(Source {
             part: format!("feature {name}"),
@@ -234,7 +274,8 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         contract_features.push(feature.optional());
     }
     for o in &outputs {
-        contract_sources.push(Source { part: format!("output {}", o.name), from: format!("the objective {objective}") });
+        contract_sources
+            .push(Source { part: format!("output {}", o.name), from: format!("the objective {objective}") });
     }
     let origin = Origin {
         format: Format::XgboostJson.name().to_owned(),
@@ -246,7 +287,13 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         contract: contract_sources,
     };
     Ok(Imported {
-        contract: Contract { name: String::new(), version: String::new(), about: String::new(), features: contract_features, outputs },
+        contract: Contract {
+            name: String::new(),
+            version: String::new(),
+            about: String::new(),
+            features: contract_features,
+            outputs,
+        },
         estimator: Estimator::Trees(params),
         origin,
     })
@@ -255,16 +302,22 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
 fn outputs(task: Task, classes: usize, objective: &str) -> (Vec<Output>, String) {
     match task {
         Task::Value => (vec![Output::new("value", Bounds::OPEN)], format!("{objective}: one value (the margin)")),
-        Task::Score => (vec![Output::new("score", Bounds::OPEN)], format!("{objective}: one score (the margin, no link)")),
+        Task::Score => {
+            (vec![Output::new("score", Bounds::OPEN)], format!("{objective}: one score (the margin, no link)"))
+        }
         Task::Probability => (
             vec![Output::new("probability", Bounds::between(0.0, 1.0))],
             format!("{objective}: one probability (logistic of the margin)"),
         ),
-        Task::Exp => (vec![Output::new("value", Bounds::at_least(0.0))], format!("{objective}: one value (e to the margin)")),
+        Task::Exp => {
+            (vec![Output::new("value", Bounds::at_least(0.0))], format!("{objective}: one value (e to the margin)"))
+        }
         Task::Classes => (
             (0..classes).map(|k| Output::new(&format!("probability_{k}"), Bounds::between(0.0, 1.0))).collect(),
             if objective == "multi:softmax" {
-                format!("{objective}: one probability per class (softmax of the margins; XGBoost's predicted class is the most probable)")
+                format!(
+                    "{objective}: one probability per class (softmax of the margins; XGBoost's predicted class is the most probable)"
+                )
             } else {
                 format!("{objective}: one probability per class (softmax of the margins)")
             },
@@ -278,12 +331,18 @@ fn feature_names(r: &Blame<'_>, learner: &Value, features: usize) -> Result<Vec<
         None => Ok((0..features).map(|i| format!("f{i}")).collect()),
         Some(names) => {
             if names.len() != features {
-                return Err(r.malformed("learner.feature_names", format!("{} names for {features} features", names.len())));
+                return Err(
+                    r.malformed("learner.feature_names", format!("{} names for {features} features", names.len()))
+                );
             }
             names
                 .iter()
                 .enumerate()
-                .map(|(i, n)| n.as_str().map(str::to_owned).ok_or_else(|| r.malformed(&format!("learner.feature_names[{i}]"), "not a string")))
+                .map(|(i, n)| {
+                    n.as_str()
+                        .map(str::to_owned)
+                        .ok_or_else(|| r.malformed(&format!("learner.feature_names[{i}]"), "not a string"))
+                })
                 .collect()
         }
     }
@@ -292,17 +351,27 @@ fn feature_names(r: &Blame<'_>, learner: &Value, features: usize) -> Result<Vec<
 fn feature_types(r: &Blame<'_>, learner: &Value, features: usize) -> Result<Vec<String>, ImportError> {
     match learner.get("feature_types").and_then(Value::as_array).filter(|a| !a.is_empty()) {
         None => Ok(vec![String::new(); features]),
-        Some(types) if types.len() == features => Ok(types.iter().map(|t| t.as_str().unwrap_or("").to_owned()).collect()),
-        Some(types) => Err(r.malformed("learner.feature_types", format!("{} types for {features} features", types.len()))),
+        Some(types) if types.len() == features => {
+            Ok(types.iter().map(|t| t.as_str().unwrap_or("").to_owned()).collect())
+        }
+        Some(types) => {
+            Err(r.malformed("learner.feature_types", format!("{} types for {features} features", types.len())))
+        }
     }
 }
 
 fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<Vec<Node>, ImportError> {
     let path = format!("learner.gradient_booster.model.trees[{t}]");
     if let Some(size) = tree.get("tree_param").and_then(|p| p.get("size_leaf_vector")).and_then(Value::as_str)
-        && size != "1" && size != "0" {
-            return Err(r.unsupported(&format!("tree {t}"), format!("a tree with vector leaves (size_leaf_vector {size})"), "train with multi_strategy=\"one_output_per_tree\""));
-        }
+        && size != "1"
+        && size != "0"
+    {
+        return Err(r.unsupported(
+            &format!("tree {t}"),
+            format!("a tree with vector leaves (size_leaf_vector {size})"),
+            "train with multi_strategy=\"one_output_per_tree\"",
+        ));
+    }
     let left = r.ints(tree, &path, "left_children")?;
     let right = r.ints(tree, &path, "right_children")?;
     let index = r.ints(tree, &path, "split_indices")?;
@@ -313,7 +382,13 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
         None => vec![0; left.len()],
     };
     let n = left.len();
-    for (key, len) in [("right_children", right.len()), ("split_indices", index.len()), ("split_conditions", cond.len()), ("default_left", default_left.len()), ("split_type", split_type.len())] {
+    for (key, len) in [
+        ("right_children", right.len()),
+        ("split_indices", index.len()),
+        ("split_conditions", cond.len()),
+        ("default_left", default_left.len()),
+        ("split_type", split_type.len()),
+    ] {
         if len != n {
             return Err(r.malformed(&format!("{path}.{key}"), format!("{len} entries but left_children has {n}")));
         }

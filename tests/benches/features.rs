@@ -22,8 +22,8 @@ use std::path::Path;
 use std::time::Instant;
 
 use paddock_guest::{LinearParams, Link, Packaged, encode_params};
-use paddock_serve::registry::artifact_path;
 use paddock_host::{Row, Runtime};
+use paddock_serve::registry::artifact_path;
 use paddock_serve::{Context, Registry, RegistryOptions, Request};
 use paddock_tests::{RedisServer, guest, open_contract, root, write_atomically};
 use semver::Version;
@@ -40,7 +40,12 @@ fn value(s: usize, f: usize) -> f64 {
 fn store(dir: &Path, plan: Option<String>) {
     let features: Vec<String> = (0..8).map(|i| format!("f{i}")).collect();
     let contract = open_contract("m", &features, "y");
-    let params = LinearParams { link: Link::Identity, intercepts: vec![1.0], weights: vec![(0..8).map(|i| 0.5 + f64::from(i)).collect()], impute: vec![] };
+    let params = LinearParams {
+        link: Link::Identity,
+        intercepts: vec![1.0],
+        weights: vec![(0..8).map(|i| 0.5 + f64::from(i)).collect()],
+        impute: vec![],
+    };
     let blob = encode_params(&Packaged { contract, params });
     let artifact = paddock_host::pack(&guest("paddock-model-linear"), Some(&blob), None).expect("packs");
     write_atomically(&artifact_path(dir, "m", &Version::new(1, 0, 0)), &artifact);
@@ -51,16 +56,27 @@ fn store(dir: &Path, plan: Option<String>) {
 }
 
 fn plan(source: &str, key: &str) -> String {
-    let mut p = format!("{source}\n[models.m]\nkeys = [\"site\"]\n[models.m.features]\nf0 = \"request\"\nf1 = \"request\"\n");
+    let mut p =
+        format!("{source}\n[models.m]\nkeys = [\"site\"]\n[models.m.features]\nf0 = \"request\"\nf1 = \"request\"\n");
     for f in LOOKED_UP {
-        let _ = writeln!(p, "{f} = {{ source = \"sites\", key = \"{key}\", field = \"{f}\", max_age = \"7d\", missing = \"fail\" }}");
+        let _ = writeln!(
+            p,
+            "{f} = {{ source = \"sites\", key = \"{key}\", field = \"{f}\", max_age = \"7d\", missing = \"fail\" }}"
+        );
     }
     p
 }
 
 fn open(dir: &Path) -> Registry {
-    let registry = Registry::open(&Runtime::new().unwrap(), dir, RegistryOptions { usage_flush: None, ..RegistryOptions::default() }).unwrap();
-    assert!(registry.status().artifacts.iter().all(|a| matches!(a.state, paddock_serve::registry::ArtifactState::Loaded)));
+    let registry = Registry::open(
+        &Runtime::new().unwrap(),
+        dir,
+        RegistryOptions { usage_flush: None, ..RegistryOptions::default() },
+    )
+    .unwrap();
+    assert!(
+        registry.status().artifacts.iter().all(|a| matches!(a.state, paddock_serve::registry::ArtifactState::Loaded))
+    );
     registry
 }
 
@@ -81,7 +97,16 @@ fn main() {
     // The table, and the same values in Redis.
     let mut csv = String::from("site,f2,f3,f4,f5,f6,f7,updated_at\n");
     for s in 0..SITES {
-        let _ = writeln!(csv, "s{s},{},{},{},{},{},{},{now}", value(s, 2), value(s, 3), value(s, 4), value(s, 5), value(s, 6), value(s, 7));
+        let _ = writeln!(
+            csv,
+            "s{s},{},{},{},{},{},{},{now}",
+            value(s, 2),
+            value(s, 3),
+            value(s, 4),
+            value(s, 5),
+            value(s, 6),
+            value(s, 7)
+        );
     }
     write_atomically(&dirs[1].path().join("sites.csv"), csv.as_bytes());
     let server = RedisServer::start();
@@ -100,8 +125,17 @@ fn main() {
         pipe.query::<()>(&mut c).unwrap();
     }
     store(dirs[0].path(), None);
-    store(dirs[1].path(), Some(plan("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"", "{site}")));
-    store(dirs[2].path(), Some(plan(&format!("[sources.sites]\nredis = \"{}\"\nbudget_ms = 20\nupdated = \"updated_at\"", server.url()), "site:{site}")));
+    store(
+        dirs[1].path(),
+        Some(plan("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"", "{site}")),
+    );
+    store(
+        dirs[2].path(),
+        Some(plan(
+            &format!("[sources.sites]\nredis = \"{}\"\nbudget_ms = 20\nupdated = \"updated_at\"", server.url()),
+            "site:{site}",
+        )),
+    );
     let registries: Vec<Registry> = dirs.iter().map(|d| open(d.path())).collect();
     let names = ["assembled", "table", "redis"];
 
@@ -115,19 +149,29 @@ fn main() {
     };
     let keyed = |s: usize| Row::new().with("f0", 1.5).with("f1", 2.5).with("site", format!("s{s}").as_str());
     let contexts: Vec<Context> = (0..SITES).map(|s| [("site".to_owned(), format!("s{s}"))].into()).collect();
-    let one_row = |store: usize, s: usize| if store == 0 { assembled(s) } else { Row::new().with("f0", 1.5).with("f1", 2.5) };
-    let singles: Vec<Vec<Vec<Row>>> = (0..3).map(|store| (0..SITES).map(|s| vec![one_row(store, s)]).collect()).collect();
-    let batches: Vec<Vec<Vec<Row>>> =
-        (0..3).map(|store| (0..SITES / 64).map(|b| (0..64).map(|i| if store == 0 { assembled(b * 64 + i) } else { keyed(b * 64 + i) }).collect()).collect()).collect();
+    let one_row =
+        |store: usize, s: usize| if store == 0 { assembled(s) } else { Row::new().with("f0", 1.5).with("f1", 2.5) };
+    let singles: Vec<Vec<Vec<Row>>> =
+        (0..3).map(|store| (0..SITES).map(|s| vec![one_row(store, s)]).collect()).collect();
+    let batches: Vec<Vec<Vec<Row>>> = (0..3)
+        .map(|store| {
+            (0..SITES / 64)
+                .map(|b| (0..64).map(|i| if store == 0 { assembled(b * 64 + i) } else { keyed(b * 64 + i) }).collect())
+                .collect()
+        })
+        .collect();
 
     // Every store answers the same.
     for s in [0, 17, SITES - 1] {
-        let ys: Vec<f64> = (0..3).map(|k| registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.row(0)[0]).collect();
+        let ys: Vec<f64> = (0..3)
+            .map(|k| registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.row(0)[0])
+            .collect();
         assert!(ys.iter().all(|y| *y == ys[0]), "site {s}: {ys:?}");
     }
 
     let emptiness = Context::new();
-    let (mut single_times, mut batch_times): (Vec<Vec<u64>>, Vec<Vec<u64>>) = (vec![Vec::new(); 3], vec![Vec::new(); 3]);
+    let (mut single_times, mut batch_times): (Vec<Vec<u64>>, Vec<Vec<u64>>) =
+        (vec![Vec::new(); 3], vec![Vec::new(); 3]);
     for round in 0..rounds {
         for k in 0..3 {
             for i in 0..singles_per_round {
@@ -147,7 +191,8 @@ fn main() {
     }
     let usage = registries[2].source_usage();
     let trips = usage.iter().map(|u| u.round_trips).sum::<u64>();
-    let fallbacks: u64 = usage.iter().flat_map(|u| u.lookups.iter()).filter(|(o, _)| *o != "found").map(|(_, n)| n).sum();
+    let fallbacks: u64 =
+        usage.iter().flat_map(|u| u.lookups.iter()).filter(|(o, _)| *o != "found").map(|(_, n)| n).sum();
     assert_eq!(fallbacks, 0, "every Redis lookup found its value: {usage:?}");
 
     let mut out = String::new();
@@ -156,8 +201,20 @@ fn main() {
     for (label, times) in [("1", &mut single_times), ("64", &mut batch_times)] {
         let p: Vec<(f64, f64)> = times.iter_mut().map(|t| percentiles(t)).collect();
         for k in 0..3 {
-            let added = if k == 0 { ("—".to_owned(), "—".to_owned()) } else { (show(p[k].0 - p[0].0), show(p[k].1 - p[0].1)) };
-            let _ = writeln!(out, "| {} | {label} | {} | {} | {} | {} |", names[k], show(p[k].0), show(p[k].1), added.0, added.1);
+            let added = if k == 0 {
+                ("—".to_owned(), "—".to_owned())
+            } else {
+                (show(p[k].0 - p[0].0), show(p[k].1 - p[0].1))
+            };
+            let _ = writeln!(
+                out,
+                "| {} | {label} | {} | {} | {} | {} |",
+                names[k],
+                show(p[k].0),
+                show(p[k].1),
+                added.0,
+                added.1
+            );
         }
     }
     assert_eq!(trips as usize, rounds * (singles_per_round + batches_per_round) + 3, "one round trip per request");

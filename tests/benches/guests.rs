@@ -16,7 +16,7 @@ use std::time::Duration;
 
 use paddock_guest::{LinearParams, Link, Packaged, encode_params};
 use paddock_host::{Artifact, CodeCache, Isolation, Model, ModelOptions, PrimeState, Row, Runtime, WasiPolicy};
-use paddock_tests::{time, foreign_artifact, guest, load_foreign, open_contract, packed, root};
+use paddock_tests::{foreign_artifact, guest, load_foreign, open_contract, packed, root, time};
 use serde_json::Value;
 
 /// One kind of guest, ready to load.
@@ -31,8 +31,10 @@ struct Kind {
 
 fn export(name: &str) -> Value {
     let path = root().join("target/paddock/sklearn").join(format!("{name}.json"));
-    serde_json::from_slice(&std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e}; run `cargo xtask test`", path.display())))
-        .unwrap()
+    serde_json::from_slice(
+        &std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e}; run `cargo xtask test`", path.display())),
+    )
+    .unwrap()
 }
 
 fn onnx(name: &str) -> Artifact {
@@ -59,7 +61,13 @@ fn kinds() -> Vec<Kind> {
         kind("charge-taper", "Rust", foreign_artifact("charge-taper-rs"), false, None),
         kind("charge-taper", "Python (componentize-py)", foreign_artifact("charge-taper-py"), true, Some(0)),
         kind("charge-taper", "JavaScript (componentize-js)", foreign_artifact("charge-taper-js"), true, Some(0)),
-        kind("diabetes linear", "Rust generic linear", packed(&guest("paddock-model-linear"), &blob, None), false, None),
+        kind(
+            "diabetes linear",
+            "Rust generic linear",
+            packed(&guest("paddock-model-linear"), &blob, None),
+            false,
+            None,
+        ),
         kind("diabetes linear", "ONNX evaluator (tract)", onnx("onnx-linear"), false, Some(3)),
         kind("diabetes MLP 10-16-1", "ONNX evaluator (tract)", onnx("onnx-mlp"), false, Some(3)),
     ]
@@ -117,7 +125,8 @@ fn measure(runtime: &Runtime, kind: &Kind, cache: &CodeCache, full: bool) -> Mea
     let fresh_model = load(Some(cache), Isolation::FreshPerCall);
     let fresh = time(calls / 20 + 1, || fresh_model.score(&one_row).unwrap());
     // With the primed component in the cache now: a fresh-per-call load.
-    let primed = (fresh_model.prime_state() == &PrimeState::Primed).then(|| time(warm_runs, || load(Some(cache), Isolation::FreshPerCall)));
+    let primed = (fresh_model.prime_state() == &PrimeState::Primed)
+        .then(|| time(warm_runs, || load(Some(cache), Isolation::FreshPerCall)));
     Measured { bytes: kind.artifact.bytes().len(), cold, warm, primed, fresh, peak, one, per_row }
 }
 

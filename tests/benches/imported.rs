@@ -18,7 +18,7 @@ use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_guest::{Evaluate, Trees};
 use paddock_host::{Artifact, Model, ModelOptions, Runtime};
 use paddock_import::{Estimator, Format, import};
-use paddock_tests::{time, guest, root};
+use paddock_tests::{guest, root, time};
 use serde_json::Value;
 
 fn read(path: &Path) -> Vec<u8> {
@@ -46,7 +46,8 @@ struct Measured {
 
 fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usize, reps: usize) -> Measured {
     let (artifact, native, trees) = packed(path);
-    let model = Model::load_with(runtime, Artifact::from_bytes(artifact, u64::MAX).unwrap(), ModelOptions::default()).unwrap();
+    let model =
+        Model::load_with(runtime, Artifact::from_bytes(artifact, u64::MAX).unwrap(), ModelOptions::default()).unwrap();
     let features = model.contract().features.len();
     let outputs = model.contract().outputs.len();
     assert_eq!(cells.len(), rows * features, "{name}: rows do not fit the model");
@@ -54,7 +55,10 @@ fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usiz
     let in_sandbox = model.score_cells(rows, cells).unwrap();
     let mut out = Array2::zeros((rows, outputs));
     native.evaluate(ArrayView2::from_shape((rows, features), cells).unwrap(), out.view_mut());
-    assert!(in_sandbox.values().iter().zip(out.iter()).all(|(a, b)| a.to_bits() == b.to_bits()), "{name}: sandbox and native differ");
+    assert!(
+        in_sandbox.values().iter().zip(out.iter()).all(|(a, b)| a.to_bits() == b.to_bits()),
+        "{name}: sandbox and native differ"
+    );
     // Alternating, so drift on a shared machine hits both alike.
     let (mut sandbox, mut native_times) = (Vec::with_capacity(reps), Vec::with_capacity(reps));
     for _ in 0..reps {
@@ -74,7 +78,8 @@ fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usiz
 
 fn cells_of(value: &Value) -> (Vec<f64>, usize) {
     let rows = value.as_array().unwrap();
-    let cells = rows.iter().flat_map(|r| r.as_array().unwrap().iter().map(|v| v.as_f64().unwrap_or(f64::NAN))).collect();
+    let cells =
+        rows.iter().flat_map(|r| r.as_array().unwrap().iter().map(|v| v.as_f64().unwrap_or(f64::NAN))).collect();
     (cells, rows.len())
 }
 
@@ -89,8 +94,10 @@ fn main() {
         let imported = import(&bytes, Format::LightgbmText, "lgb-diabetes-regression.txt", None).unwrap();
         let order: Vec<String> = imported.contract.features.iter().map(|f| f.name.clone()).collect();
         let cases = checks["cases"].as_array().unwrap();
-        let cells: Vec<f64> =
-            cases.iter().flat_map(|c| order.iter().map(move |f| c["row"].get(f).and_then(Value::as_f64).unwrap_or(f64::NAN))).collect();
+        let cells: Vec<f64> = cases
+            .iter()
+            .flat_map(|c| order.iter().map(move |f| c["row"].get(f).and_then(Value::as_f64).unwrap_or(f64::NAN)))
+            .collect();
         let m = measure(&runtime, "lgb", &dir.join("lgb-diabetes-regression.txt"), &cells, cases.len(), 1);
         eprintln!("imports bench runs: {} trees, sandbox {:?}, native {:?}", m.trees, m.sandbox, m.native);
         return;
@@ -107,10 +114,15 @@ fn main() {
     let pack_path = dir.join("lgb-1000.txt");
     let pack = time(5, || packed(&pack_path));
     let (artifact, _, pack_trees) = packed(&pack_path);
-    let load = time(3, || Model::load_with(&runtime, Artifact::from_bytes(artifact.clone(), u64::MAX).unwrap(), ModelOptions::default()).unwrap());
+    let load = time(3, || {
+        Model::load_with(&runtime, Artifact::from_bytes(artifact.clone(), u64::MAX).unwrap(), ModelOptions::default())
+            .unwrap()
+    });
     let us = |d: Duration| format!("{:.0}", d.as_secs_f64() * 1e6);
     let mut table = vec![
-        format!("| model | trees | sandbox, {n} rows | native, same params | sandbox / native | toolkit's own predict, 1 thread | paddock's speed vs the toolkit's |"),
+        format!(
+            "| model | trees | sandbox, {n} rows | native, same params | sandbox / native | toolkit's own predict, 1 thread | paddock's speed vs the toolkit's |"
+        ),
         "|---|---|---|---|---|---|---|".to_owned(),
     ];
     for m in &results {

@@ -29,8 +29,8 @@ use std::hint::black_box;
 use criterion::{BenchmarkId, Criterion, Throughput, criterion_group, criterion_main};
 use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_guest::{
-    Bounds, Branch, Contract, Evaluate, Feature, Linear, LinearParams, Link, Node, Output, Packaged, Trees, TreesParams,
-    encode_params,
+    Bounds, Branch, Contract, Evaluate, Feature, Linear, LinearParams, Link, Node, Output, Packaged, Trees,
+    TreesParams, encode_params,
 };
 use paddock_host::sandbox::model::Isolation;
 use paddock_host::{ModelOptions, PrimeState, Priming, Row, Runtime, RuntimeConfig};
@@ -115,9 +115,19 @@ fn bench_model<E: Evaluate>(
     let loose = Runtime::with_config(RuntimeConfig { canonical_nans: false, ..RuntimeConfig::default() }).unwrap();
     let blob = encode_params(&Packaged { contract: contract(), params: params.clone() });
     let warm = load(&runtime, &guest(module), &blob, ModelOptions::default());
-    let fresh = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, ..Default::default() });
+    let fresh = load(
+        &runtime,
+        &guest(module),
+        &blob,
+        ModelOptions { isolation: Isolation::FreshPerCall, ..Default::default() },
+    );
     assert_eq!(fresh.prime_state(), &PrimeState::Primed);
-    let unprimed = load(&runtime, &guest(module), &blob, ModelOptions { isolation: Isolation::FreshPerCall, priming: Priming::Off, ..Default::default() });
+    let unprimed = load(
+        &runtime,
+        &guest(module),
+        &blob,
+        ModelOptions { isolation: Isolation::FreshPerCall, priming: Priming::Off, ..Default::default() },
+    );
     let uncanonical = load(&loose, &guest(module), &blob, ModelOptions::default());
     let native = E::build(params.clone()).unwrap();
     let cells = random_cells(3, BATCH, FEATURES, 0.0);
@@ -128,15 +138,24 @@ fn bench_model<E: Evaluate>(
     by_hand(&params, &cells, &mut hand);
     let sandboxed = warm.score_cells(BATCH, &cells).unwrap();
     for (r, ((s, h), b)) in sdk.iter().zip(&hand).zip(sandboxed.values()).enumerate() {
-        assert!(s.to_bits() == h.to_bits() && s.to_bits() == b.to_bits(), "{name} row {r}: {s} native, {h} by hand, {b} sandboxed");
+        assert!(
+            s.to_bits() == h.to_bits() && s.to_bits() == b.to_bits(),
+            "{name} row {r}: {s} native, {h} by hand, {b} sandboxed"
+        );
     }
     let one = row(&cells[..FEATURES]);
 
     let mut g = c.benchmark_group(name);
     g.throughput(Throughput::Elements(1));
-    g.bench_function("single_warm", |b| b.iter(|| black_box(warm.score(std::slice::from_ref(black_box(&one))).unwrap())));
-    g.bench_function("single_fresh", |b| b.iter(|| black_box(fresh.score(std::slice::from_ref(black_box(&one))).unwrap())));
-    g.bench_function("single_fresh_unprimed", |b| b.iter(|| black_box(unprimed.score(std::slice::from_ref(black_box(&one))).unwrap())));
+    g.bench_function("single_warm", |b| {
+        b.iter(|| black_box(warm.score(std::slice::from_ref(black_box(&one))).unwrap()))
+    });
+    g.bench_function("single_fresh", |b| {
+        b.iter(|| black_box(fresh.score(std::slice::from_ref(black_box(&one))).unwrap()))
+    });
+    g.bench_function("single_fresh_unprimed", |b| {
+        b.iter(|| black_box(unprimed.score(std::slice::from_ref(black_box(&one))).unwrap()))
+    });
     // Two threads sharing one model: time per call at full load (half the
     // single-thread figure would be perfect scaling on two cores).
     for (label, model) in [("single_warm_2_threads", &warm), ("single_fresh_2_threads", &fresh)] {
@@ -159,7 +178,10 @@ fn bench_model<E: Evaluate>(
     g.bench_function("native_single", |b| {
         let mut out = Array2::zeros((1, 1));
         b.iter(|| {
-            native.evaluate(ArrayView2::from_shape((1, FEATURES), black_box(&cells[..FEATURES])).unwrap(), out.view_mut());
+            native.evaluate(
+                ArrayView2::from_shape((1, FEATURES), black_box(&cells[..FEATURES])).unwrap(),
+                out.view_mut(),
+            );
             black_box(out[[0, 0]])
         })
     });
@@ -194,4 +216,3 @@ fn benches(c: &mut Criterion) {
 
 criterion_group!(scoring, benches);
 criterion_main!(scoring);
-

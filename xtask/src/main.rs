@@ -168,7 +168,8 @@ fn ensure_target() -> Result<()> {
 }
 
 /// The guests the demo store is packed with.
-const DEMO_GUESTS: [(&str, &str); 2] = [("paddock-model-linear", "paddock_model_linear"), ("paddock-model-trees", "paddock_model_trees")];
+const DEMO_GUESTS: [(&str, &str); 2] =
+    [("paddock-model-linear", "paddock_model_linear"), ("paddock-model-trees", "paddock_model_trees")];
 
 /// Where guests are built: a target directory of their own, so that their
 /// build runs beside the host's instead of waiting for its lock.
@@ -300,7 +301,8 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
     std::fs::create_dir_all(store.join("tables"))?;
     for table in ["sites.csv", "members.csv"] {
         let from = trained.join("tables").join(table);
-        std::fs::copy(&from, store.join("tables").join(table)).with_context(|| format!("copying {}", from.display()))?;
+        std::fs::copy(&from, store.join("tables").join(table))
+            .with_context(|| format!("copying {}", from.display()))?;
     }
     let features = root.join("models/train-demo/features.toml");
     std::fs::copy(&features, store.join("features.toml")).with_context(|| format!("copying {}", features.display()))?;
@@ -354,7 +356,17 @@ fn foreign_guests(root: &Path, tools: &Tools) -> Result<()> {
     let componentize_py = PathBuf::from(String::from_utf8_lossy(&scripts.stdout).trim()).join("componentize-py");
     for (dir, module, name, _) in PYTHON_GUESTS {
         let mut c = Command::new(&componentize_py);
-        c.current_dir(root).args(["--wit-path", "wit", "--world", "estimator", "componentize", module, "-p", dir, "-o"]);
+        c.current_dir(root).args([
+            "--wit-path",
+            "wit",
+            "--world",
+            "estimator",
+            "componentize",
+            module,
+            "-p",
+            dir,
+            "-o",
+        ]);
         c.arg(components.join(format!("{name}.wasm")));
         run(c).context("componentize-py (pip install componentize-py==0.25.1)")?;
     }
@@ -431,7 +443,9 @@ fn python_packages(root: &Path) -> Result<()> {
     pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
     run(pip).context("installing the tests' Python packages (needs python3 with pip)")?;
     let mut helper = Command::new("python3");
-    helper.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--no-deps"]).arg(root.join("handoff"));
+    helper
+        .args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--no-deps"])
+        .arg(root.join("handoff"));
     run(helper).context("installing the notebook helper (pip install ./handoff)")
 }
 
@@ -441,7 +455,8 @@ const CLI_ONLY: [&str; 4] = ["clap", "indicatif", "tracing-subscriber", "anyhow"
 
 /// Crates only the serving half (`paddock-serve`: the store, feature
 /// sources, surfaces) needs, which the core crate must not pull in.
-const SERVING_ONLY: [&str; 9] = ["parquet", "arrow-array", "arrow-schema", "redis", "notify", "hdrhistogram", "arc-swap", "axum", "async-nats"];
+const SERVING_ONLY: [&str; 9] =
+    ["parquet", "arrow-array", "arrow-schema", "redis", "notify", "hdrhistogram", "arc-swap", "axum", "async-nats"];
 
 /// Checks what each library links: neither `paddock-host` (the core: artifact,
 /// contract, sandbox) nor `paddock-serve` without its default features links
@@ -459,19 +474,29 @@ fn library_deps(root: &Path) -> Result<()> {
         if !out.status.success() {
             bail!("{cmd:?} failed: {}", String::from_utf8_lossy(&out.stderr));
         }
-        Ok(String::from_utf8_lossy(&out.stdout).lines().filter_map(|l| l.split_whitespace().next()).map(str::to_owned).collect())
+        Ok(String::from_utf8_lossy(&out.stdout)
+            .lines()
+            .filter_map(|l| l.split_whitespace().next())
+            .map(str::to_owned)
+            .collect())
     };
-    for (package, banned) in [("paddock-host", &[&CLI_ONLY[..], &SERVING_ONLY[..]].concat()), ("paddock-serve", &CLI_ONLY.to_vec())] {
+    for (package, banned) in
+        [("paddock-host", &[&CLI_ONLY[..], &SERVING_ONLY[..]].concat()), ("paddock-serve", &CLI_ONLY.to_vec())]
+    {
         let all = tree(package, None)?;
         let direct = tree(package, Some("1"))?;
-        let mut found: Vec<&str> = banned.iter().copied().filter(|c| *c != "anyhow" && all.iter().any(|n| n == c)).collect();
+        let mut found: Vec<&str> =
+            banned.iter().copied().filter(|c| *c != "anyhow" && all.iter().any(|n| n == c)).collect();
         if direct.iter().any(|n| n == "anyhow") {
             found.push("anyhow (as a direct dependency)");
         }
         if !found.is_empty() {
             bail!("{package} without default features links crates it must not: {}", found.join(", "));
         }
-        eprintln!("xtask: {package} links none of {} (anyhow only through wasmtime and wit-component)", banned.join(", "));
+        eprintln!(
+            "xtask: {package} links none of {} (anyhow only through wasmtime and wit-component)",
+            banned.join(", ")
+        );
     }
     Ok(())
 }
@@ -513,19 +538,32 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
     }
     for model in ["charge-minutes", "overstay-risk"] {
         let from = root.join(format!("target/paddock/artifacts/{model}.wasm"));
-        std::fs::copy(&from, artifact_seeds.join(format!("{model}.wasm"))).with_context(|| format!("copying {}", from.display()))?;
+        std::fs::copy(&from, artifact_seeds.join(format!("{model}.wasm")))
+            .with_context(|| format!("copying {}", from.display()))?;
     }
-    std::fs::write(row_seeds.join("ndjson"), "{\"kw\": 11, \"hour\": 3, \"plug\": \"ccs2\", \"fleet\": true, \"id\": \"a\"}\n")?;
+    std::fs::write(
+        row_seeds.join("ndjson"),
+        "{\"kw\": 11, \"hour\": 3, \"plug\": \"ccs2\", \"fleet\": true, \"id\": \"a\"}\n",
+    )?;
     std::fs::write(row_seeds.join("csv"), "id,kw,hour,plug,fleet\na,11,3,ccs2,yes\nb,,x,,\n")?;
     // Small models the toolkits wrote (tests/imports/export.py, run by `xtask test`).
-    for model in ["xgb-iris-softmax.json", "lgb-iris-one-vs-rest.txt", "lgb-wine-categorical.txt", "skl-diabetes-tree.onnx", "skl-iris-logistic.onnx", "skl-wine-hist.onnx"] {
+    for model in [
+        "xgb-iris-softmax.json",
+        "lgb-iris-one-vs-rest.txt",
+        "lgb-wine-categorical.txt",
+        "skl-diabetes-tree.onnx",
+        "skl-iris-logistic.onnx",
+        "skl-wine-hist.onnx",
+    ] {
         let from = root.join("target/paddock/imports").join(model);
-        std::fs::copy(&from, import_seeds.join(model))
-            .with_context(|| format!("copying {} (run `cargo xtask test` first: it exports the models)", from.display()))?;
+        std::fs::copy(&from, import_seeds.join(model)).with_context(|| {
+            format!("copying {} (run `cargo xtask test` first: it exports the models)", from.display())
+        })?;
     }
     // PMML documents: the hand-worked examples, which cover every construct read.
     for doc in ["dmg-golf-tree.pmml", "charge-session-minutes.pmml", "charge-overstay-vote.pmml"] {
-        std::fs::copy(root.join("tests/pmml").join(doc), import_seeds.join(doc)).with_context(|| format!("copying tests/pmml/{doc}"))?;
+        std::fs::copy(root.join("tests/pmml").join(doc), import_seeds.join(doc))
+            .with_context(|| format!("copying tests/pmml/{doc}"))?;
     }
     for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds), ("import", &import_seeds)] {
         let mut c = cargo(&root.join("fuzz"));

@@ -27,7 +27,8 @@ pub fn graph(src: &Path) -> Result<Graph> {
                 continue;
             }
             let rel = path.strip_prefix(src)?;
-            let top = rel.components().next().map(|c| c.as_os_str().to_string_lossy().trim_end_matches(".rs").to_owned());
+            let top =
+                rel.components().next().map(|c| c.as_os_str().to_string_lossy().trim_end_matches(".rs").to_owned());
             let Some(top) = top.filter(|t| t != "lib" && t != "main") else { continue };
             let text = std::fs::read_to_string(&path).with_context(|| format!("reading {}", path.display()))?;
             let uses = graph.entry(top.clone()).or_default();

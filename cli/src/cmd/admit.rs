@@ -25,7 +25,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     let artifact = Artifact::read(&args.artifact, u64::MAX)?;
     let verdict = args.trust.admit(&args.artifact, &artifact);
     let (ok, text) = match &verdict {
-        Ok(Admission::Vouch { voucher, name }) => (true, format!("admitted: vouched for by trusted voucher {name} ({voucher})")),
+        Ok(Admission::Vouch { voucher, name }) => {
+            (true, format!("admitted: vouched for by trusted voucher {name} ({voucher})"))
+        }
         Ok(Admission::Pin) => (true, "admitted: its digest is pinned".to_owned()),
         Ok(Admission::OpenPolicy) => (true, "admitted: the policy requires nothing (give --trust or --pin)".to_owned()),
         Err(e) => (false, format!("refused: {e:#}")),

@@ -39,19 +39,40 @@ fn text(r: &AuditReport) -> String {
         line("imports", if s.imports.is_empty() { "none".into() } else { s.imports.join(", ") });
         line("exports", s.exports.join(", "));
         if let Some(p) = &r.wasi_policy {
-            line("wasi policy", format!(
-                "empty world; clocks {}, randomness {}, {} bytes of stdout/stderr kept per call",
-                source(p.clocks), source(p.random), p.output_bytes
-            ));
+            line(
+                "wasi policy",
+                format!(
+                    "empty world; clocks {}, randomness {}, {} bytes of stdout/stderr kept per call",
+                    source(p.clocks),
+                    source(p.random),
+                    p.output_bytes
+                ),
+            );
         }
         for w in &r.wasi {
             line("wasi", format!("{}: {}", w.interface, w.satisfied_by.as_deref().unwrap_or("not provided")));
         }
         for m in &s.memories {
-            line("memory", format!("{} initial, {} maximum ({})", m.initial, m.maximum.map_or("no".into(), |v| v.to_string()), m.unit));
+            line(
+                "memory",
+                format!(
+                    "{} initial, {} maximum ({})",
+                    m.initial,
+                    m.maximum.map_or("no".into(), |v| v.to_string()),
+                    m.unit
+                ),
+            );
         }
         for t in &s.tables {
-            line("table", format!("{} initial, {} maximum ({})", t.initial, t.maximum.map_or("no".into(), |v| v.to_string()), t.unit));
+            line(
+                "table",
+                format!(
+                    "{} initial, {} maximum ({})",
+                    t.initial,
+                    t.maximum.map_or("no".into(), |v| v.to_string()),
+                    t.unit
+                ),
+            );
         }
         line("data", format!("{} segments, {} bytes", s.data_segments, s.data_bytes));
         for c in &s.sections {
@@ -62,21 +83,34 @@ fn text(r: &AuditReport) -> String {
         line("model", format!("{} {}: {} features, {} outputs", c.name, c.version, c.features.len(), c.outputs.len()));
     }
     let l = &r.limits;
-    line("deadline", format!("{} per call, {} to start an instance", fmt_duration(l.deadline), fmt_duration(l.init_deadline)));
+    line(
+        "deadline",
+        format!("{} per call, {} to start an instance", fmt_duration(l.deadline), fmt_duration(l.init_deadline)),
+    );
     line("fuel", l.fuel.map_or("no limit (deadline only)".into(), |f| format!("{f} per call")));
     line("memory cap", format!("{} bytes", l.memory_bytes));
     line("table cap", format!("{} elements", l.table_elements));
     line("size cap", format!("{} bytes; rows per call {}", l.artifact_bytes, l.rows_per_call));
     let e = &r.engine;
-    line("engine", format!(
-        "wasmtime {}, stack {} bytes, NaNs {}, {} interruption, imports allowed: {}",
-        e.wasmtime, e.stack_bytes, if e.canonical_nans { "canonical" } else { "as the hardware makes them" }, e.interruption, e.imports_allowed
-    ));
+    line(
+        "engine",
+        format!(
+            "wasmtime {}, stack {} bytes, NaNs {}, {} interruption, imports allowed: {}",
+            e.wasmtime,
+            e.stack_bytes,
+            if e.canonical_nans { "canonical" } else { "as the hardware makes them" },
+            e.interruption,
+            e.imports_allowed
+        ),
+    );
     if let Some(p) = &r.probe {
-        line("probe", format!(
-            "{}/{} checks passed (max abs error {:e}); peak memory {} bytes; {:.0} fuel and {:.2} µs per row",
-            p.passed, p.cases, p.max_abs_error, p.peak_memory_bytes, p.fuel_per_row, p.micros_per_row
-        ));
+        line(
+            "probe",
+            format!(
+                "{}/{} checks passed (max abs error {:e}); peak memory {} bytes; {:.0} fuel and {:.2} µs per row",
+                p.passed, p.cases, p.max_abs_error, p.peak_memory_bytes, p.fuel_per_row, p.micros_per_row
+            ),
+        );
     }
     if let Some(c) = &r.contract {
         out.push_str(&format!("\ncontract: {}\n", contract_text(c)));

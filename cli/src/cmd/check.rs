@@ -3,8 +3,8 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use paddock_host::sandbox::verify;
 use paddock_host::Checks;
+use paddock_host::sandbox::verify;
 
 use crate::Outcome;
 use crate::common::{LoadArgs, print_json};
@@ -49,7 +49,12 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
         println!(
             "{}/{} cases passed; max abs error {:e}, max rel error {:e}; tolerance abs {:e} + rel {:e}",
-            report.passed, report.cases, report.max_abs_error, report.max_rel_error, report.tolerance.abs, report.tolerance.rel
+            report.passed,
+            report.cases,
+            report.max_abs_error,
+            report.max_rel_error,
+            report.tolerance.abs,
+            report.tolerance.rel
         );
         for (case, failure) in &report.failures {
             println!("case {case}: {failure}");

@@ -67,7 +67,8 @@ fn row_for(model: &Model, cells: &HashMap<String, String>) -> Row {
 
 /// The model version a request would get, to build its row by its contract.
 fn routed_model(registry: &Registry, name: &str, context: &paddock_serve::Context, at: Timestamp) -> Result<Model> {
-    let (version, _) = registry.route(name, context, Some(at)).with_context(|| format!("the demo store serves no `{name}`"))?;
+    let (version, _) =
+        registry.route(name, context, Some(at)).with_context(|| format!("the demo store serves no `{name}`"))?;
     registry.model(name, &version).with_context(|| format!("{name} {version} is not loaded"))
 }
 
@@ -85,7 +86,8 @@ fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
         return Ok(store);
     }
     // The binary lives in <clone>/target/<profile>/paddock.
-    let beside_binary = std::env::current_exe().ok().and_then(|exe| Some(exe.parent()?.parent()?.join("paddock/store")));
+    let beside_binary =
+        std::env::current_exe().ok().and_then(|exe| Some(exe.parent()?.parent()?.join("paddock/store")));
     let candidates: Vec<PathBuf> = beside_binary.into_iter().chain([PathBuf::from("target/paddock/store")]).collect();
     match candidates.iter().find(|c| has_routes(c)) {
         Some(found) => Ok(found.clone()),
@@ -104,16 +106,23 @@ pub fn run(args: Args) -> Result<Outcome> {
     let options = paddock_serve::RegistryOptions { usage_flush: None, ..paddock_serve::RegistryOptions::default() };
     let registry = Registry::open(&runtime, &store, options)?;
     let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
-    anyhow::ensure!(refused.is_empty(), "the demo store has refused artifacts: {} (see `paddock status --store {}`)", refused.join(", "), store.display());
+    anyhow::ensure!(
+        refused.is_empty(),
+        "the demo store has refused artifacts: {} (see `paddock status --store {}`)",
+        refused.join(", "),
+        store.display()
+    );
     let zone = TimeZone::get(ZONE)?;
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
     let mut answers = Vec::new();
-    let mut looked_up: std::collections::BTreeMap<paddock_serve::features::Outcome, usize> = std::collections::BTreeMap::new();
+    let mut looked_up: std::collections::BTreeMap<paddock_serve::features::Outcome, usize> =
+        std::collections::BTreeMap::new();
     for record in reader.records() {
         let mut cells: HashMap<String, String> =
             header.iter().zip(record?.iter()).map(|(k, v)| (k.to_owned(), v.to_owned())).collect();
-        let at: Timestamp = cells["plugged_in"].parse().with_context(|| format!("plugged_in {}", cells["plugged_in"]))?;
+        let at: Timestamp =
+            cells["plugged_in"].parse().with_context(|| format!("plugged_in {}", cells["plugged_in"]))?;
         let local = zone.to_datetime(at);
         let hour_of_week = i64::from(local.weekday().to_monday_zero_offset()) * 24 + i64::from(local.hour());
         cells.insert("hour_of_week".into(), hour_of_week.to_string());

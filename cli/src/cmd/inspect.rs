@@ -47,7 +47,15 @@ pub fn run(args: Args) -> Result<Outcome> {
         Ok((_, model)) => (Some(model.contract().clone()), None),
         Err(e) => (None, Some(format!("{e:#}"))),
     };
-    let report = Report { path: args.artifact, digest: Digest::of(&bytes), bytes: bytes.len(), inventory, contract, origin, load_error };
+    let report = Report {
+        path: args.artifact,
+        digest: Digest::of(&bytes),
+        bytes: bytes.len(),
+        inventory,
+        contract,
+        origin,
+        load_error,
+    };
     if args.json {
         print_json(&report)?;
         return Ok(if report.load_error.is_some() { Outcome::Failed } else { Outcome::Ok });

@@ -109,7 +109,8 @@ pub fn run(args: Args) -> Result<Outcome> {
             let manifest = match &args.manifest {
                 Some(p) => {
                     let text = std::fs::read_to_string(p).with_context(|| format!("reading {}", p.display()))?;
-                    let evaluator_manifest = is_onnx && text.lines().any(|l| l.trim_start().starts_with("[[features]]"));
+                    let evaluator_manifest =
+                        is_onnx && text.lines().any(|l| l.trim_start().starts_with("[[features]]"));
                     Some(Manifest::from_toml(&text).with_context(|| {
                         if evaluator_manifest {
                             format!(
@@ -126,18 +127,31 @@ pub fn run(args: Args) -> Result<Outcome> {
                 }
                 None => None,
             };
-            anyhow::ensure!(args.params.is_none(), "--params is for WebAssembly input; {} is a {}", args.input.display(), format.name());
-            let imported = paddock_import::import(&input, format, &args.input.display().to_string(), manifest.as_ref())?;
-            let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(GUESTS).join(format!("{}.wasm", imported.guest())));
-            let guest = read(&evaluator).with_context(|| format!("the {} guest (build it with `cargo xtask build`, or pass --evaluator)", imported.guest()))?;
+            anyhow::ensure!(
+                args.params.is_none(),
+                "--params is for WebAssembly input; {} is a {}",
+                args.input.display(),
+                format.name()
+            );
+            let imported =
+                paddock_import::import(&input, format, &args.input.display().to_string(), manifest.as_ref())?;
+            let evaluator = args
+                .evaluator
+                .clone()
+                .unwrap_or_else(|| PathBuf::from(GUESTS).join(format!("{}.wasm", imported.guest())));
+            let guest = read(&evaluator).with_context(|| {
+                format!("the {} guest (build it with `cargo xtask build`, or pass --evaluator)", imported.guest())
+            })?;
             origin = Some(imported.origin.to_map());
             (guest, Some(imported.params()))
         }
         (Some(manifest), true) => {
             let text = std::fs::read_to_string(manifest).with_context(|| format!("reading {}", manifest.display()))?;
-            let params = paddock_import::onnx_graph::params(&text, &input).with_context(|| format!("in {}", manifest.display()))?;
+            let params = paddock_import::onnx_graph::params(&text, &input)
+                .with_context(|| format!("in {}", manifest.display()))?;
             let evaluator = args.evaluator.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_EVALUATOR));
-            let guest = read(&evaluator).context("the ONNX evaluator guest (build it with `cargo xtask build`, or pass --evaluator)")?;
+            let guest = read(&evaluator)
+                .context("the ONNX evaluator guest (build it with `cargo xtask build`, or pass --evaluator)")?;
             (guest, Some(params))
         }
         (None, true) => anyhow::bail!("{}: an ONNX model needs its manifest (--manifest FILE)", args.input.display()),
@@ -176,14 +190,24 @@ pub fn run(args: Args) -> Result<Outcome> {
         .suffix(".wasm")
         .tempfile_in(&dir)
         .with_context(|| format!("creating a temporary file in {}", dir.display()))?;
-    tmp.write_all(&bytes).and_then(|()| tmp.as_file().sync_all()).with_context(|| format!("writing {}", tmp.path().display()))?;
+    tmp.write_all(&bytes)
+        .and_then(|()| tmp.as_file().sync_all())
+        .with_context(|| format!("writing {}", tmp.path().display()))?;
     let artifact = Artifact::from_bytes(bytes, u64::MAX)?;
-    let mut packed =
-        Packed { artifact: args.out.clone(), digest: artifact.digest().to_string(), bytes: artifact.bytes().len(), model: None, checks: None };
+    let mut packed = Packed {
+        artifact: args.out.clone(),
+        digest: artifact.digest().to_string(),
+        bytes: artifact.bytes().len(),
+        model: None,
+        checks: None,
+    };
     let not_written = || format!("{} was not written", args.out.display());
     if !args.no_verify {
         let load = LoadArgs { wasi: args.wasi.clone(), ..LoadArgs::default() };
-        let (_runtime, model) = load.load(tmp.path()).map_err(|e| e.context("the packed artifact does not load")).with_context(not_written)?;
+        let (_runtime, model) = load
+            .load(tmp.path())
+            .map_err(|e| e.context("the packed artifact does not load"))
+            .with_context(not_written)?;
         packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
         if let Some(checks) = &checks {
             let report = verify::run(&model, checks).with_context(not_written)?;
@@ -199,7 +223,9 @@ pub fn run(args: Args) -> Result<Outcome> {
             packed.checks = Some(report);
         }
     }
-    tmp.persist(&args.out).map_err(|e| e.error).with_context(|| format!("moving the artifact into {}", args.out.display()))?;
+    tmp.persist(&args.out)
+        .map_err(|e| e.error)
+        .with_context(|| format!("moving the artifact into {}", args.out.display()))?;
     if args.json {
         print_json(&packed)?;
     } else {
@@ -208,7 +234,10 @@ pub fn run(args: Args) -> Result<Outcome> {
             println!("loads as {m}");
         }
         if let Some(r) = &packed.checks {
-            println!("checks: {}/{} passed (max abs error {:e}, max rel error {:e})", r.passed, r.cases, r.max_abs_error, r.max_rel_error);
+            println!(
+                "checks: {}/{} passed (max abs error {:e}, max rel error {:e})",
+                r.passed, r.cases, r.max_abs_error, r.max_rel_error
+            );
         }
     }
     Ok(Outcome::Ok)

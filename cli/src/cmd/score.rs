@@ -87,13 +87,17 @@ pub fn run(args: Args) -> Result<Outcome> {
         let file = File::open(&args.input).with_context(|| format!("opening {}", args.input.display()))?;
         let len = file.metadata().map(|m| m.len()).unwrap_or(0);
         let bar = if len > 1 << 20 { ProgressBar::new(len) } else { ProgressBar::hidden() };
-        bar.set_style(ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}").unwrap_or_else(|_| ProgressStyle::default_bar()));
+        bar.set_style(
+            ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}")
+                .unwrap_or_else(|_| ProgressStyle::default_bar()),
+        );
         (Box::new(bar.wrap_read(file)), bar)
     };
     // The header is checked before any output is created.
     let schema = model.schema();
     let columns = row_file::Columns { id: args.id.as_deref(), ignore: &args.ignore };
-    let records = row_file::records(input, format, schema, columns).with_context(|| format!("reading {}", args.input.display()))?;
+    let records = row_file::records(input, format, schema, columns)
+        .with_context(|| format!("reading {}", args.input.display()))?;
     let out: Box<dyn Write> = match &args.out {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
         None => Box::new(io::stdout().lock()),
@@ -105,13 +109,21 @@ pub fn run(args: Args) -> Result<Outcome> {
         batch.push(record);
         if batch.len() >= args.batch as usize {
             for line in score_batch(&model, std::mem::take(&mut batch)) {
-                if line.result.is_ok() { scored += 1 } else { failed += 1 }
+                if line.result.is_ok() {
+                    scored += 1
+                } else {
+                    failed += 1
+                }
                 writer.write(&line)?;
             }
         }
     }
     for line in score_batch(&model, batch) {
-        if line.result.is_ok() { scored += 1 } else { failed += 1 }
+        if line.result.is_ok() {
+            scored += 1
+        } else {
+            failed += 1
+        }
         writer.write(&line)?;
     }
     writer.finish()?;

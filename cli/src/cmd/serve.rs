@@ -42,7 +42,9 @@ pub struct Args {
 
 fn admin_token(file: Option<&PathBuf>) -> Result<Option<String>> {
     let token = match file {
-        Some(f) => Some(std::fs::read_to_string(f).with_context(|| format!("reading the admin token from {}", f.display()))?),
+        Some(f) => {
+            Some(std::fs::read_to_string(f).with_context(|| format!("reading the admin token from {}", f.display()))?)
+        }
         None => std::env::var("PADDOCK_ADMIN_TOKEN").ok(),
     };
     let token = token.map(|t| t.trim().to_owned()).filter(|t| !t.is_empty());
@@ -73,7 +75,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     };
     let router = http::router(registry.clone(), options);
     runtime.block_on(async {
-        let listener = tokio::net::TcpListener::bind(args.listen).await.with_context(|| format!("listening on {}", args.listen))?;
+        let listener = tokio::net::TcpListener::bind(args.listen)
+            .await
+            .with_context(|| format!("listening on {}", args.listen))?;
         let addr = listener.local_addr()?;
         // The first line on stdout is the address, for scripts that asked for port 0.
         println!("listening on http://{addr}");

@@ -25,7 +25,9 @@ pub struct Args {
 pub fn run(args: Args) -> Result<Outcome> {
     let registry = args.store.open_to_look()?;
     let status = registry.status();
-    let refused = status.problems().any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
+    let refused = status
+        .problems()
+        .any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
         || matches!(status.routes, RoutesState::Refused { .. })
         || matches!(status.features, FeaturesState::Refused { .. });
     if args.json {
@@ -65,7 +67,9 @@ pub fn run(args: Args) -> Result<Outcome> {
         print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows));
         match &status.routes {
             RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE),
-            RoutesState::Missing => println!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE),
+            RoutesState::Missing => {
+                println!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE)
+            }
             RoutesState::Refused { problems } => {
                 println!("\nroutes: refused (the previous routes would keep serving):");
                 for p in problems {
@@ -80,12 +84,24 @@ pub fn run(args: Args) -> Result<Outcome> {
                 println!("features: {features} accepted");
                 let rows: Vec<Vec<String>> = tables
                     .iter()
-                    .map(|t| vec![t.source.clone(), t.file.display().to_string(), t.rows.to_string(), age(&t.changed), t.changed.clone(), t.loaded.clone()])
+                    .map(|t| {
+                        vec![
+                            t.source.clone(),
+                            t.file.display().to_string(),
+                            t.rows.to_string(),
+                            age(&t.changed),
+                            t.changed.clone(),
+                            t.loaded.clone(),
+                        ]
+                    })
                     .collect();
                 if !rows.is_empty() {
                     print!("{}", text_table(&["source", "table", "rows", "age", "file changed", "loaded"], &rows));
                 }
-                let rows: Vec<Vec<String>> = servers.iter().map(|s| vec![s.source.clone(), s.url.clone(), format!("{} ms", s.budget_ms)]).collect();
+                let rows: Vec<Vec<String>> = servers
+                    .iter()
+                    .map(|s| vec![s.source.clone(), s.url.clone(), format!("{} ms", s.budget_ms)])
+                    .collect();
                 if !rows.is_empty() {
                     print!("{}", text_table(&["source", "redis", "budget"], &rows));
                 }

@@ -35,7 +35,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     let text = std::fs::read(&path).with_context(|| {
         format!("reading {} (a host serving the store writes it; `paddock demo` does too)", path.display())
     })?;
-    let saved: SavedUsage = serde_json::from_slice(&text).with_context(|| format!("{} is not a usage file", path.display()))?;
+    let saved: SavedUsage =
+        serde_json::from_slice(&text).with_context(|| format!("{} is not a usage file", path.display()))?;
     if args.json {
         print_json(&saved)?;
         return Ok(Outcome::Ok);
@@ -62,7 +63,20 @@ pub fn run(args: Args) -> Result<Outcome> {
             ]
         })
         .collect();
-    let header = ["model", "version", "calls", "rows", "errors", "limit hits", "p50 µs", "p90 µs", "p99 µs", "max µs", "fuel", "peak memory"];
+    let header = [
+        "model",
+        "version",
+        "calls",
+        "rows",
+        "errors",
+        "limit hits",
+        "p50 µs",
+        "p90 µs",
+        "p99 µs",
+        "max µs",
+        "fuel",
+        "peak memory",
+    ];
     print!("{}", text_table(&header, &rows));
     if !saved.usage.shadows.is_empty() {
         let rows: Vec<Vec<String>> = saved
@@ -82,7 +96,10 @@ pub fn run(args: Args) -> Result<Outcome> {
             })
             .collect();
         println!("\nshadows:");
-        print!("{}", text_table(&["model", "shadow", "compared", "max |diff|", "over tolerance", "errors", "dropped"], &rows));
+        print!(
+            "{}",
+            text_table(&["model", "shadow", "compared", "max |diff|", "over tolerance", "errors", "dropped"], &rows)
+        );
     }
     Ok(Outcome::Ok)
 }

@@ -39,7 +39,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     std::fs::write(&public_path, voucher.to_text()).with_context(|| format!("writing {}", public_path.display()))?;
     let id = voucher.id();
     if args.json {
-        print_json(&serde_json::json!({ "voucher": id, "name": args.name, "vouching_key": secret_path, "public": public_path }))?;
+        print_json(
+            &serde_json::json!({ "voucher": id, "name": args.name, "vouching_key": secret_path, "public": public_path }),
+        )?;
     } else {
         println!(
             "voucher {} (id {id}): vouching key {} (keep it private), public file {}",

@@ -102,11 +102,13 @@ pub fn run(args: Args) -> Result<Outcome> {
             use std::io::Write;
             std::io::stdout().flush()?;
             // Served until the runtime is dropped, after the worker stops.
-            tokio::spawn(http::serve(listener, worker::metrics_router(registry.clone(), counts.clone()), std::future::pending()));
+            tokio::spawn(http::serve(
+                listener,
+                worker::metrics_router(registry.clone(), counts.clone()),
+                std::future::pending(),
+            ));
         }
-        worker::run(registry.clone(), options, counts.clone(), stop)
-            .await
-            .with_context(|| format!("working on {url}"))
+        worker::run(registry.clone(), options, counts.clone(), stop).await.with_context(|| format!("working on {url}"))
     })?;
     drop(runtime);
     drop(watch);

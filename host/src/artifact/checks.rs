@@ -81,4 +81,3 @@ impl Checks {
         serde_json::to_vec_pretty(self).unwrap_or_else(|e| panic!("checks serialize: {e}"))
     }
 }
-

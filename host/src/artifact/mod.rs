@@ -14,9 +14,9 @@ use std::ops::Range;
 use std::path::{Path, PathBuf};
 use std::sync::Arc;
 
-use serde::Serialize;
 use crate::artifact::digest::Digest;
 use crate::tool_error::ToolError;
+use serde::Serialize;
 use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 
 use crate::artifact::checks::{Checks, ChecksError};
@@ -178,11 +178,8 @@ impl Artifact {
             }
             *slot = Some(range.clone());
         }
-        let sections = shape
-            .custom
-            .iter()
-            .map(|(name, range)| SectionInfo { name: name.clone(), bytes: range.len() })
-            .collect();
+        let sections =
+            shape.custom.iter().map(|(name, range)| SectionInfo { name: name.clone(), bytes: range.len() }).collect();
         Ok(Artifact {
             digest: Digest::of(&bytes),
             bytes: bytes.into(),
@@ -279,8 +276,7 @@ impl Shape {
             offset: e.offset(),
             message: e.message().to_owned(),
         };
-        let mut shape =
-            Shape {
+        let mut shape = Shape {
             encoding: Encoding::Component,
             imports: vec![],
             exports: vec![],
@@ -494,13 +490,15 @@ fn embed_world(module: &mut Vec<u8>) -> Result<(), ArtifactError> {
     let mut resolve = wit_parser::Resolve::default();
     let package = resolve.push_str("estimator.wit", WIT).map_err(fail)?;
     let world = resolve.select_world(&[package], Some("estimator")).map_err(fail)?;
-    wit_component::embed_component_metadata(module, &resolve, world, wit_component::StringEncoding::UTF8)
-        .map_err(fail)
+    wit_component::embed_component_metadata(module, &resolve, world, wit_component::StringEncoding::UTF8).map_err(fail)
 }
 
 /// Copies a binary without its top-level `paddock-*` custom sections.
 fn strip_own_sections(bytes: &[u8]) -> Result<Vec<u8>, ArtifactError> {
-    let malformed = |e: wasmparser::BinaryReaderError| ArtifactError::Malformed { offset: e.offset(), message: e.message().to_owned() };
+    let malformed = |e: wasmparser::BinaryReaderError| ArtifactError::Malformed {
+        offset: e.offset(),
+        message: e.message().to_owned(),
+    };
     let mut out = bytes[..8].to_vec();
     let mut reader = wasmparser::BinaryReader::new(&bytes[8..], 8);
     while !reader.eof() {
@@ -508,7 +506,8 @@ fn strip_own_sections(bytes: &[u8]) -> Result<Vec<u8>, ArtifactError> {
         let id = reader.read_u8().map_err(malformed)?;
         let len = reader.read_var_u32().map_err(malformed)?;
         let body = reader.read_bytes(len as usize).map_err(malformed)?;
-        let ours = id == 0 && wasmparser::BinaryReader::new(body, 0).read_string().is_ok_and(|name| name.starts_with(OWN_PREFIX));
+        let ours = id == 0
+            && wasmparser::BinaryReader::new(body, 0).read_string().is_ok_and(|name| name.starts_with(OWN_PREFIX));
         if !ours {
             out.extend_from_slice(&bytes[start..reader.original_position()]);
         }
@@ -548,7 +547,10 @@ mod tests {
         append_custom(&mut bytes, PARAMS_SECTION, b"a");
         append_custom(&mut bytes, PARAMS_SECTION, b"b");
         let err = Artifact::from_bytes(bytes, 1 << 20).unwrap_err();
-        assert_eq!(err.to_string(), "custom section `paddock-params` appears 2 times; an artifact carries it at most once");
+        assert_eq!(
+            err.to_string(),
+            "custom section `paddock-params` appears 2 times; an artifact carries it at most once"
+        );
     }
 
     #[test]

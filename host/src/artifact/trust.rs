@@ -60,7 +60,9 @@ pub enum TrustError {
         name: String,
     },
     /// The policy requires a vouch and nobody vouched.
-    #[error("nobody vouched for the artifact {digest} (no .vouch file beside it), and the policy requires a trusted voucher or a pin")]
+    #[error(
+        "nobody vouched for the artifact {digest} (no .vouch file beside it), and the policy requires a trusted voucher or a pin"
+    )]
     Unvouched {
         /// The artifact's digest.
         digest: Digest,
@@ -129,7 +131,8 @@ impl Voucher {
 
     /// The voucher as it is written to a `.voucher` file.
     pub fn to_text(&self) -> String {
-        let body = toml_text(&VoucherFile { name: self.name.clone(), ed25519_public: hex::encode(self.key.as_bytes()) });
+        let body =
+            toml_text(&VoucherFile { name: self.name.clone(), ed25519_public: hex::encode(self.key.as_bytes()) });
         format!(
             "# paddock voucher {} (id {}): a host that trusts this file admits the artifacts it vouches for.\n{body}",
             self.name,
@@ -144,8 +147,10 @@ impl Voucher {
     pub fn read(path: &Path) -> Result<Self, TrustError> {
         let file: VoucherFile = read_toml(path, "a voucher")?;
         let bytes = key_bytes(path, "ed25519_public", &file.ed25519_public)?;
-        let key = VerifyingKey::from_bytes(&bytes)
-            .map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("ed25519_public is not an ed25519 public key: {e}") })?;
+        let key = VerifyingKey::from_bytes(&bytes).map_err(|e| TrustError::BadFile {
+            path: path.to_owned(),
+            reason: format!("ed25519_public is not an ed25519 public key: {e}"),
+        })?;
         Ok(Voucher { name: file.name, key })
     }
 }
@@ -165,8 +170,10 @@ impl VouchingKey {
     pub fn generate(name: &str) -> Result<Self, TrustError> {
         check_name(name)?;
         let mut seed = [0u8; 32];
-        getrandom::fill(&mut seed)
-            .map_err(|e| TrustError::Io { path: "(system random source)".into(), source: std::io::Error::other(e.to_string()) })?;
+        getrandom::fill(&mut seed).map_err(|e| TrustError::Io {
+            path: "(system random source)".into(),
+            source: std::io::Error::other(e.to_string()),
+        })?;
         Ok(VouchingKey { name: name.to_owned(), key: SigningKey::from_bytes(&seed) })
     }
 
@@ -177,7 +184,8 @@ impl VouchingKey {
 
     /// The key as it is written to a `.vouching-key` file.
     pub fn to_text(&self) -> String {
-        let body = toml_text(&VouchingKeyFile { name: self.name.clone(), ed25519_seed: hex::encode(self.key.as_bytes()) });
+        let body =
+            toml_text(&VouchingKeyFile { name: self.name.clone(), ed25519_seed: hex::encode(self.key.as_bytes()) });
         format!(
             "# paddock vouching key {} (id {}): SECRET. Whoever holds this file can vouch as {}.\n{body}",
             self.name,
@@ -199,7 +207,11 @@ impl VouchingKey {
     /// Vouches for an artifact's digest.
     pub fn vouch(&self, digest: Digest) -> Vouch {
         let sig = self.key.sign(message(digest).as_bytes());
-        Vouch { voucher: self.voucher().id(), digest: digest.to_string(), ed25519_signature: hex::encode(sig.to_bytes()) }
+        Vouch {
+            voucher: self.voucher().id(),
+            digest: digest.to_string(),
+            ed25519_signature: hex::encode(sig.to_bytes()),
+        }
     }
 }
 
@@ -379,13 +391,16 @@ fn toml_text<T: Serialize>(value: &T) -> String {
 
 fn read_toml<T: serde::de::DeserializeOwned>(path: &Path, what: &str) -> Result<T, TrustError> {
     let text = std::fs::read_to_string(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
-    toml::from_str(&text).map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not {what}: {}", e.message()) })
+    toml::from_str(&text)
+        .map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not {what}: {}", e.message()) })
 }
 
 fn key_bytes(path: &Path, field: &str, value: &str) -> Result<[u8; 32], TrustError> {
     let mut bytes = [0u8; 32];
-    hex::decode_to_slice(value, &mut bytes)
-        .map_err(|_| TrustError::BadFile { path: path.to_owned(), reason: format!("{field}: expected 64 hex digits") })?;
+    hex::decode_to_slice(value, &mut bytes).map_err(|_| TrustError::BadFile {
+        path: path.to_owned(),
+        reason: format!("{field}: expected 64 hex digits"),
+    })?;
     Ok(bytes)
 }
 

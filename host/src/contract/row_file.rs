@@ -142,8 +142,10 @@ fn csv_records<'a, R: Read + 'a>(
     columns: Columns<'a>,
 ) -> Result<impl Iterator<Item = Record> + 'a, RowFileError> {
     let mut reader = csv::ReaderBuilder::new().flexible(true).trim(csv::Trim::All).from_reader(input);
-    let header: Vec<String> =
-        reader.headers().map(|h| h.iter().map(str::to_owned).collect()).map_err(|e| RowFileError::Header(e.to_string()))?;
+    let header: Vec<String> = reader
+        .headers()
+        .map(|h| h.iter().map(str::to_owned).collect())
+        .map_err(|e| RowFileError::Header(e.to_string()))?;
     let id = columns.id;
     let id_at = match id {
         Some(column) => Some(
@@ -164,7 +166,8 @@ fn csv_records<'a, R: Read + 'a>(
         let c = schema.contract();
         return Err(RowFileError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
     }
-    let keep: Vec<bool> = header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
+    let keep: Vec<bool> =
+        header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
     let mut records = reader.into_records().enumerate();
     Ok(std::iter::from_fn(move || {
         let (i, result) = records.next()?;
@@ -192,7 +195,9 @@ fn csv_records<'a, R: Read + 'a>(
 /// A CSV record's problem in words, naming the field.
 fn csv_problem(e: csv::Error) -> RecordError {
     match e.kind() {
-        csv::ErrorKind::Utf8 { pos, err } => RecordError::NotUtf8 { field: err.field() + 1, line: pos.as_ref().map(|p| p.line()) },
+        csv::ErrorKind::Utf8 { pos, err } => {
+            RecordError::NotUtf8 { field: err.field() + 1, line: pos.as_ref().map(|p| p.line()) }
+        }
         csv::ErrorKind::Io(io) => RecordError::Unreadable(io.to_string()),
         _ => RecordError::Unreadable(e.to_string()),
     }
@@ -229,8 +234,8 @@ fn ndjson_records<'a, R: Read + 'a>(input: R, columns: Columns<'a>) -> impl Iter
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::contract::{Bounds, Contract, Domain, Feature, Output};
     use crate::contract::rows::Value;
+    use crate::contract::{Bounds, Contract, Domain, Feature, Output};
 
     fn schema() -> Schema {
         Schema::new(Contract {
@@ -244,7 +249,12 @@ mod tests {
                 required: true,
                 about: String::new(),
             }],
-            outputs: vec![Output { name: "y".into(), unit: None, bounds: Bounds { min: None, max: None }, about: String::new() }],
+            outputs: vec![Output {
+                name: "y".into(),
+                unit: None,
+                bounds: Bounds { min: None, max: None },
+                about: String::new(),
+            }],
         })
         .unwrap()
     }
@@ -262,8 +272,14 @@ mod tests {
             "columns `site`, `plate` are not features of t 1.0.0: name the row's id column with --id NAME, or leave columns out with --ignore NAME"
         );
         let ignore = ["plate".to_owned()];
-        let got: Vec<Record> =
-            records("site,kw,plate\na,1,b\n".as_bytes(), Format::Csv, &s, Columns { id: Some("site"), ignore: &ignore }).unwrap().collect();
+        let got: Vec<Record> = records(
+            "site,kw,plate\na,1,b\n".as_bytes(),
+            Format::Csv,
+            &s,
+            Columns { id: Some("site"), ignore: &ignore },
+        )
+        .unwrap()
+        .collect();
         assert_eq!(got[0].id.as_deref(), Some("a"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(1.0))]);
         let err = records("kw\n1\n".as_bytes(), Format::Csv, &s, id("site")).err().unwrap();

@@ -6,7 +6,6 @@ use std::fmt;
 
 use serde::{Deserialize, Serialize};
 
-
 /// One feature value in a request row.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(untagged)]
@@ -247,7 +246,12 @@ impl RowError {
 
     /// A row whose feature's source could not be read.
     pub fn unavailable(row: usize, feature: &str, problem: String) -> RowError {
-        RowError { row, feature: feature.to_owned(), value: "absent".to_owned(), rule: ContractRule::Unavailable { problem } }
+        RowError {
+            row,
+            feature: feature.to_owned(),
+            value: "absent".to_owned(),
+            rule: ContractRule::Unavailable { problem },
+        }
     }
 }
 

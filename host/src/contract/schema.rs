@@ -5,8 +5,8 @@
 
 use serde::Serialize;
 
-use crate::contract::{Bounds, Contract, ContractError, Domain, validate};
 use crate::contract::rows::{ContractRule, Row, RowError, Value};
+use crate::contract::{Bounds, Contract, ContractError, Domain, validate};
 
 /// Name lookups. Names come from the contract; a request only looks them
 /// up, so the hash needs speed rather than resistance to chosen keys.
@@ -249,7 +249,9 @@ impl OutputFault {
     pub fn renumber(self, f: impl Fn(usize) -> usize) -> Self {
         match self {
             OutputFault::NonFinite { row, output, value } => OutputFault::NonFinite { row: f(row), output, value },
-            OutputFault::OutOfBounds { row, output, value, bounds } => OutputFault::OutOfBounds { row: f(row), output, value, bounds },
+            OutputFault::OutOfBounds { row, output, value, bounds } => {
+                OutputFault::OutOfBounds { row: f(row), output, value, bounds }
+            }
             other => other,
         }
     }
@@ -276,7 +278,9 @@ impl Schema {
         let in_range = |v: f64, (lo, hi): (f64, f64)| (v >= lo) & (v <= hi) & v.is_finite();
         let all_in = match *ranges {
             [only] => values.iter().fold(true, |ok, &v| ok & in_range(v, only)),
-            _ => values.chunks_exact(ranges.len()).fold(true, |ok, row| ok & row.iter().zip(ranges).fold(true, |ok, (&v, &r)| ok & in_range(v, r))),
+            _ => values
+                .chunks_exact(ranges.len())
+                .fold(true, |ok, row| ok & row.iter().zip(ranges).fold(true, |ok, (&v, &r)| ok & in_range(v, r))),
         };
         if all_in {
             return Ok(());
@@ -352,7 +356,10 @@ mod tests {
         let s = schema();
         let cases: Vec<(Row, &str)> = vec![
             (good().with("volts", 230.0), "row 4, feature `volts` = 230: unknown feature"),
-            (Row::new().with("kw", 11.0).with("hour", 7i64), "row 4, feature `plug` = absent: required feature is missing"),
+            (
+                Row::new().with("kw", 11.0).with("hour", 7i64),
+                "row 4, feature `plug` = absent: required feature is missing",
+            ),
             (good().with("kw", 1.0), "row 4, feature `kw` = 1: feature given twice"),
             (
                 Row::new().with("kw", "fast").with("hour", 7i64).with("plug", "ccs2"),
@@ -437,7 +444,10 @@ mod tests {
             s.check_outputs(2, &[0.1]).unwrap_err().to_string(),
             "the model returned 1 values; 2 rows × 1 outputs needs 2"
         );
-        assert_eq!(s.check_outputs(1, &[f64::NAN]).unwrap_err().to_string(), "row 1, output `p` = NaN: not a finite number");
+        assert_eq!(
+            s.check_outputs(1, &[f64::NAN]).unwrap_err().to_string(),
+            "row 1, output `p` = NaN: not a finite number"
+        );
         assert_eq!(
             s.check_outputs(2, &[0.5, 1.5]).unwrap_err().to_string(),
             "row 2, output `p` = 1.5: outside its declared bounds [0, 1]"

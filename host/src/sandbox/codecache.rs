@@ -36,8 +36,8 @@ use wasmtime::component::Component;
 
 use crate::artifact::Artifact;
 use crate::sandbox::Runtime;
-use crate::tool_error::ToolError;
 use crate::sandbox::wasi::{Carry, WasiPolicy};
+use crate::tool_error::ToolError;
 
 /// Tag mixed into every key: bump it if the entry format changes.
 const FORMAT: &[u8] = b"paddock-code-v2";
@@ -72,7 +72,9 @@ pub enum CacheError {
         source: std::io::Error,
     },
     /// Someone other than its owner may write to the directory.
-    #[error("code cache {path}: others may write to it (mode {mode:o}); it holds machine code, so it must be writable by its owner only")]
+    #[error(
+        "code cache {path}: others may write to it (mode {mode:o}); it holds machine code, so it must be writable by its owner only"
+    )]
     Unsafe {
         /// The directory.
         path: PathBuf,
@@ -202,20 +204,36 @@ impl CodeCache {
     /// [`crate::sandbox::prime::PrimeError::is_lasting`]): the attempt, which
     /// compiles an instrumented copy of the component, is then not made
     /// again.
-    pub(crate) fn unprimable(&self, runtime: &Runtime, artifact: &Artifact, wasi: Option<&WasiPolicy>) -> Option<String> {
+    pub(crate) fn unprimable(
+        &self,
+        runtime: &Runtime,
+        artifact: &Artifact,
+        wasi: Option<&WasiPolicy>,
+    ) -> Option<String> {
         let text = fs::read(self.key_path(runtime, artifact, &primed_tag(wasi), "unprimed")).ok()?;
         (text.len() <= MAX_REASON).then(|| String::from_utf8(text).ok()).flatten()
     }
 
     /// Remembers why this artifact cannot be primed under `wasi`. A failure
     /// to write is not reported: the next load tries again.
-    pub(crate) fn remember_unprimable(&self, runtime: &Runtime, artifact: &Artifact, wasi: Option<&WasiPolicy>, reason: &str) {
+    pub(crate) fn remember_unprimable(
+        &self,
+        runtime: &Runtime,
+        artifact: &Artifact,
+        wasi: Option<&WasiPolicy>,
+        reason: &str,
+    ) {
         let path = self.key_path(runtime, artifact, &primed_tag(wasi), "unprimed");
         let end = reason.floor_char_boundary(MAX_REASON);
         let _ = crate::atomic_file::write(&path, &reason.as_bytes()[..end]);
     }
 
-    fn entry<E>(&self, runtime: &Runtime, path: &Path, make: impl FnOnce() -> Result<Component, E>) -> Result<(Component, CodeSource), E> {
+    fn entry<E>(
+        &self,
+        runtime: &Runtime,
+        path: &Path,
+        make: impl FnOnce() -> Result<Component, E>,
+    ) -> Result<(Component, CodeSource), E> {
         let mut trouble = None;
         match load(runtime, path) {
             Ok(component) => return Ok((component, CodeSource::Cache)),
@@ -231,7 +249,9 @@ impl CodeCache {
                 None => CodeSource::CompiledAndCached,
                 Some(reason) => CodeSource::CompiledCacheFailed { reason },
             },
-            Err(problem) => CodeSource::CompiledCacheFailed { reason: format!("writing {}: {problem}", path.display()) },
+            Err(problem) => {
+                CodeSource::CompiledCacheFailed { reason: format!("writing {}: {problem}", path.display()) }
+            }
         };
         Ok((component, source))
     }
@@ -342,7 +362,14 @@ fn file_identity(meta: &fs::Metadata) -> (u64, u64, u64) {
 
 #[cfg(not(unix))]
 fn file_identity(meta: &fs::Metadata) -> (u64, u64, u64) {
-    (meta.len(), meta.modified().ok().and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok()).map_or(0, |d| d.as_nanos() as u64), 0)
+    (
+        meta.len(),
+        meta.modified()
+            .ok()
+            .and_then(|t| t.duration_since(std::time::UNIX_EPOCH).ok())
+            .map_or(0, |d| d.as_nanos() as u64),
+        0,
+    )
 }
 
 /// The one unsafe call in paddock.

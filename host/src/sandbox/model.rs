@@ -4,21 +4,21 @@
 use std::sync::Arc;
 use std::time::Duration;
 
-use serde::Serialize;
-use wasmtime::component::Component;
 use crate::artifact::Artifact;
 use crate::artifact::digest::Digest;
-use crate::sandbox::codecache::{self, CodeCache, CodeSource};
 use crate::bindings::EstimatorPre;
-use crate::contract::{Contract, ContractError, Fault};
-use crate::tool_error::ToolError;
-use crate::limits::{LimitHit, Limits, LimitsError};
-use crate::sandbox::pool::Pool;
-use crate::sandbox::prime::{self, PrimeError, PrimeState};
 use crate::contract::rows::{Row, RowError};
 use crate::contract::schema::{OutputFault, Schema};
-use crate::sandbox::{self, Instance, Runtime, SandboxError, StartError, State};
+use crate::contract::{Contract, ContractError, Fault};
+use crate::limits::{LimitHit, Limits, LimitsError};
+use crate::sandbox::codecache::{self, CodeCache, CodeSource};
+use crate::sandbox::pool::Pool;
+use crate::sandbox::prime::{self, PrimeError, PrimeState};
 use crate::sandbox::wasi::{self, Carry, WasiPolicy, WasiStart};
+use crate::sandbox::{self, Instance, Runtime, SandboxError, StartError, State};
+use crate::tool_error::ToolError;
+use serde::Serialize;
+use wasmtime::component::Component;
 
 /// Whether instances are reused between calls.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
@@ -578,14 +578,19 @@ impl Model {
         if scored.is_empty() && !rows.is_empty() {
             return Err(ScoreError::InvalidRows { errors: problems });
         }
-        let estimates =
-            self.score_cells(scored.len(), &cells).map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
+        let estimates = self
+            .score_cells(scored.len(), &cells)
+            .map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
         Ok(Scored { estimates, scored, problems })
     }
 
     /// The cells of the valid rows and every problem of the others; the
     /// valid rows' numbers (from 1) go to `scored` when asked for.
-    fn encode(&self, rows: &[Row], mut scored: Option<&mut Vec<usize>>) -> Result<(Vec<f64>, Vec<RowError>), ScoreError> {
+    fn encode(
+        &self,
+        rows: &[Row],
+        mut scored: Option<&mut Vec<usize>>,
+    ) -> Result<(Vec<f64>, Vec<RowError>), ScoreError> {
         let schema = &self.inner.schema;
         self.check_row_count(rows.len())?;
         let mut cells = Vec::with_capacity(rows.len() * schema.width());
@@ -667,16 +672,9 @@ impl Model {
         let verify = inner.options.isolation == Isolation::Reuse;
         let options = &inner.options;
         let init = init_params(&inner.primed, &inner.artifact);
-        let (instance, contract) = Instance::start(
-            &inner.runtime,
-            &inner.pre,
-            &options.limits,
-            init,
-            verify,
-            inner.wasi.as_ref(),
-            &inner.who,
-        )
-        .map_err(ScoreError::Start)?;
+        let (instance, contract) =
+            Instance::start(&inner.runtime, &inner.pre, &options.limits, init, verify, inner.wasi.as_ref(), &inner.who)
+                .map_err(ScoreError::Start)?;
         if contract.is_some_and(|c| &c != inner.schema.contract()) {
             return Err(ScoreError::ContractChanged);
         }

@@ -45,9 +45,9 @@ use wasmtime::component::{Component, Instance, Lift, Linker, WasmList};
 
 use crate::bindings::Estimator;
 use crate::limits::Limits;
+use crate::sandbox::wasi::{Carry, WasiPolicy, WasiStart, WasiState};
 use crate::sandbox::{Runtime, State};
 use crate::tool_error::ToolError;
-use crate::sandbox::wasi::{Carry, WasiPolicy, WasiStart, WasiState};
 
 /// The pre-initializer and snapshot format a primed component was made
 /// with: part of its code cache key.
@@ -117,7 +117,9 @@ pub(crate) fn prime(
     limits: &Limits,
     wasi: Option<&WasiPolicy>,
 ) -> Result<(Component, Carry), PrimeError> {
-    let compile = |bytes: &[u8]| Component::new(runtime.engine(), bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()));
+    let compile = |bytes: &[u8]| {
+        Component::new(runtime.engine(), bytes).map_err(|e| PrimeError::Compile(ToolError::from(e).to_string()))
+    };
     let wizer = wasmtime_wizer::Wizer::new();
     let (cx, instrumented) = wizer.instrument_component(component).map_err(|e| PrimeError::Shape(format!("{e:#}")))?;
     let compiled = compile(&instrumented)?;
@@ -126,7 +128,8 @@ pub(crate) fn prime(
     let mut linker = Linker::<State>::new(runtime.engine());
     let link = |e: wasmtime::Error| PrimeError::Compile(format!("{e:#}"));
     if let Some(policy) = wasi {
-        let imports: Vec<String> = compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
+        let imports: Vec<String> =
+            compiled.component_type().imports(runtime.engine()).map(|(name, _)| name.to_owned()).collect();
         crate::sandbox::wasi::link_for_priming(&mut linker, policy, &imports).map_err(link)?;
     }
     linker.define_unknown_imports_as_traps(&compiled).map_err(link)?;
@@ -188,9 +191,16 @@ impl Access<'_> {
     fn get<R: Lift + 'static>(&mut self, instance: &str, func: &str) -> Option<R> {
         let store = &mut *self.store;
         let got = (|| {
-            let (_, scope) = self.instance.get_export(&mut *store, None, instance).ok_or_else(|| format!("no export {instance}"))?;
-            let (_, index) = self.instance.get_export(&mut *store, Some(&scope), func).ok_or_else(|| format!("no export {instance}#{func}"))?;
-            let f = self.instance.get_typed_func::<(), (R,)>(&mut *store, index).map_err(|e| format!("{instance}#{func}: {e:#}"))?;
+            let (_, scope) =
+                self.instance.get_export(&mut *store, None, instance).ok_or_else(|| format!("no export {instance}"))?;
+            let (_, index) = self
+                .instance
+                .get_export(&mut *store, Some(&scope), func)
+                .ok_or_else(|| format!("no export {instance}#{func}"))?;
+            let f = self
+                .instance
+                .get_typed_func::<(), (R,)>(&mut *store, index)
+                .map_err(|e| format!("{instance}#{func}: {e:#}"))?;
             f.call(&mut *store, ()).map(|(r,)| r).map_err(|e| format!("{instance}#{func}: {e:#}"))
         })();
         got.map_err(|problem| self.failed.get_or_insert(problem)).ok()

@@ -120,7 +120,13 @@ pub fn run(model: &Model, checks: &Checks) -> Result<CheckReport, ScoreError> {
                 report.max_rel_error = report.max_rel_error.max(rel_error);
                 let t = checks.tolerance;
                 if !(abs_error <= t.abs + t.rel * expected.abs()) {
-                    failed.get_or_insert(CaseFailure::Mismatch { output: name.clone(), expected, actual, abs_error, rel_error });
+                    failed.get_or_insert(CaseFailure::Mismatch {
+                        output: name.clone(),
+                        expected,
+                        actual,
+                        abs_error,
+                        rel_error,
+                    });
                 }
             }
             match failed {

@@ -19,9 +19,9 @@
 //! This module is not a general WASI host: it links exactly what
 //! wasmtime-wasi provides for WASI 0.2 and takes every capability away.
 
+use std::pin::Pin;
 use std::sync::{Arc, Mutex};
 use std::task::{Context, Poll};
-use std::pin::Pin;
 use std::time::{Duration, Instant};
 
 use serde::Serialize;
@@ -69,7 +69,13 @@ pub struct WasiPolicy {
 
 impl Default for WasiPolicy {
     fn default() -> Self {
-        WasiPolicy { clocks: Source::Fixed, random: Source::Fixed, fixed_time: 1_767_225_600, seed: 0, output_bytes: 4096 }
+        WasiPolicy {
+            clocks: Source::Fixed,
+            random: Source::Fixed,
+            fixed_time: 1_767_225_600,
+            seed: 0,
+            output_bytes: 4096,
+        }
     }
 }
 
@@ -94,20 +100,25 @@ pub fn satisfied_by(import: &str, policy: &WasiPolicy) -> Option<String> {
         "wasi:cli/stdout" | "wasi:cli/stderr" => {
             format!("captured into the log, first {} bytes per call", policy.output_bytes)
         }
-        "wasi:cli/terminal-input" | "wasi:cli/terminal-output" | "wasi:cli/terminal-stdout" | "wasi:cli/terminal-stderr" => {
-            "no terminal".into()
+        "wasi:cli/terminal-input"
+        | "wasi:cli/terminal-output"
+        | "wasi:cli/terminal-stdout"
+        | "wasi:cli/terminal-stderr" => "no terminal".into(),
+        "wasi:clocks/wall-clock" => {
+            source(policy.clocks, format!("fixed at {} s after the Unix epoch", policy.fixed_time))
         }
-        "wasi:clocks/wall-clock" => source(policy.clocks, format!("fixed at {} s after the Unix epoch", policy.fixed_time)),
-        "wasi:clocks/monotonic-clock" => source(policy.clocks, "fixed, 1 µs per reading".into())
-            + "; a wait past the call's deadline stops the call",
+        "wasi:clocks/monotonic-clock" => {
+            source(policy.clocks, "fixed, 1 µs per reading".into()) + "; a wait past the call's deadline stops the call"
+        }
         "wasi:random/random" | "wasi:random/insecure" | "wasi:random/insecure-seed" => {
             source(policy.random, format!("fixed stream from seed {}", policy.seed))
         }
         "wasi:filesystem/types" | "wasi:filesystem/preopens" => "no directories".into(),
         "wasi:sockets/network" | "wasi:sockets/instance-network" => "no network".into(),
-        "wasi:sockets/tcp" | "wasi:sockets/tcp-create-socket" | "wasi:sockets/udp" | "wasi:sockets/udp-create-socket" => {
-            "every use refused".into()
-        }
+        "wasi:sockets/tcp"
+        | "wasi:sockets/tcp-create-socket"
+        | "wasi:sockets/udp"
+        | "wasi:sockets/udp-create-socket" => "every use refused".into(),
         "wasi:sockets/ip-name-lookup" => "every lookup refused".into(),
         "wasi:io/poll" | "wasi:io/streams" | "wasi:io/error" => "streams and waits on the above only".into(),
         _ => return None,
@@ -259,21 +270,15 @@ pub(crate) trait WasiHost: wasmtime_wasi::WasiView + 'static {
 pub(crate) fn link<T: WasiHost>(linker: &mut Linker<T>) -> Result<(), crate::tool_error::ToolError> {
     wasmtime_wasi::p2::add_to_linker_sync(linker)?;
     linker.allow_shadowing(true);
-    let mut clock = linker
-        .instance(&format!("wasi:clocks/monotonic-clock@{WASI_VERSION}"))
-        ?;
-    clock
-        .func_wrap("subscribe-duration", |mut store: wasmtime::StoreContextMut<'_, T>, (nanos,): (u64,)| {
-            nap(store.data_mut(), Duration::from_nanos(nanos))
-        })
-        ?;
-    clock
-        .func_wrap("subscribe-instant", |mut store: wasmtime::StoreContextMut<'_, T>, (when,): (u64,)| {
-            let host = store.data_mut();
-            let now = host.wasi().monotonic.now();
-            nap(host, Duration::from_nanos(when.saturating_sub(now)))
-        })
-        ?;
+    let mut clock = linker.instance(&format!("wasi:clocks/monotonic-clock@{WASI_VERSION}"))?;
+    clock.func_wrap("subscribe-duration", |mut store: wasmtime::StoreContextMut<'_, T>, (nanos,): (u64,)| {
+        nap(store.data_mut(), Duration::from_nanos(nanos))
+    })?;
+    clock.func_wrap("subscribe-instant", |mut store: wasmtime::StoreContextMut<'_, T>, (when,): (u64,)| {
+        let host = store.data_mut();
+        let now = host.wasi().monotonic.now();
+        nap(host, Duration::from_nanos(when.saturating_sub(now)))
+    })?;
     linker.allow_shadowing(false);
     Ok(())
 }
@@ -294,8 +299,12 @@ pub(crate) struct WasiStart {
 impl WasiStart {
     /// How instances start under `policy`, after what priming `carry`s.
     pub(crate) fn new(policy: WasiPolicy, carry: Carry) -> Self {
-        let streams = (policy.random == Source::Fixed)
-            .then(|| Arc::new(FixedStreams { secure: stream(policy.seed, b"secure"), insecure: stream(policy.seed, b"insecure") }));
+        let streams = (policy.random == Source::Fixed).then(|| {
+            Arc::new(FixedStreams {
+                secure: stream(policy.seed, b"secure"),
+                insecure: stream(policy.seed, b"insecure"),
+            })
+        });
         WasiStart { policy, carry, streams }
     }
 }
@@ -370,9 +379,15 @@ impl Draw {
 ///
 /// # Errors
 /// When wasmtime refuses a definition (a programming error).
-pub(crate) fn link_for_priming<T: WasiHost>(linker: &mut Linker<T>, policy: &WasiPolicy, imports: &[String]) -> wasmtime::Result<()> {
+pub(crate) fn link_for_priming<T: WasiHost>(
+    linker: &mut Linker<T>,
+    policy: &WasiPolicy,
+    imports: &[String],
+) -> wasmtime::Result<()> {
     for name in imports {
-        let Some(interface) = name.strip_prefix("wasi:").and_then(|n| n.split_once('@')).map(|(i, _)| i) else { continue };
+        let Some(interface) = name.strip_prefix("wasi:").and_then(|n| n.split_once('@')).map(|(i, _)| i) else {
+            continue;
+        };
         let mut at = linker.instance(name)?;
         match interface {
             "cli/environment" => {
@@ -381,7 +396,9 @@ pub(crate) fn link_for_priming<T: WasiHost>(linker: &mut Linker<T>, policy: &Was
                 at.func_wrap("initial-cwd", |_, ()| Ok((None::<String>,)))?;
             }
             "clocks/monotonic-clock" if policy.clocks == Source::Fixed => {
-                at.func_wrap("now", |mut store: wasmtime::StoreContextMut<'_, T>, ()| Ok((store.data_mut().wasi().monotonic.now(),)))?;
+                at.func_wrap("now", |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
+                    Ok((store.data_mut().wasi().monotonic.now(),))
+                })?;
                 at.func_wrap("resolution", |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
                     Ok((store.data_mut().wasi().monotonic.resolution(),))
                 })?;
@@ -563,13 +580,31 @@ mod tests {
     fn every_wasi_interface_of_a_python_guest_has_an_answer() {
         // The imports componentize-py 0.25.1 gives a component (read from one).
         for name in [
-            "wasi:io/poll", "wasi:clocks/monotonic-clock", "wasi:clocks/wall-clock", "wasi:random/random",
-            "wasi:io/error", "wasi:io/streams", "wasi:cli/stdout", "wasi:cli/stderr", "wasi:cli/stdin",
-            "wasi:cli/environment", "wasi:cli/exit", "wasi:cli/terminal-input", "wasi:cli/terminal-output",
-            "wasi:cli/terminal-stdin", "wasi:cli/terminal-stdout", "wasi:cli/terminal-stderr",
-            "wasi:filesystem/types", "wasi:filesystem/preopens", "wasi:sockets/network",
-            "wasi:sockets/instance-network", "wasi:sockets/udp", "wasi:sockets/udp-create-socket",
-            "wasi:sockets/tcp", "wasi:sockets/tcp-create-socket", "wasi:sockets/ip-name-lookup",
+            "wasi:io/poll",
+            "wasi:clocks/monotonic-clock",
+            "wasi:clocks/wall-clock",
+            "wasi:random/random",
+            "wasi:io/error",
+            "wasi:io/streams",
+            "wasi:cli/stdout",
+            "wasi:cli/stderr",
+            "wasi:cli/stdin",
+            "wasi:cli/environment",
+            "wasi:cli/exit",
+            "wasi:cli/terminal-input",
+            "wasi:cli/terminal-output",
+            "wasi:cli/terminal-stdin",
+            "wasi:cli/terminal-stdout",
+            "wasi:cli/terminal-stderr",
+            "wasi:filesystem/types",
+            "wasi:filesystem/preopens",
+            "wasi:sockets/network",
+            "wasi:sockets/instance-network",
+            "wasi:sockets/udp",
+            "wasi:sockets/udp-create-socket",
+            "wasi:sockets/tcp",
+            "wasi:sockets/tcp-create-socket",
+            "wasi:sockets/ip-name-lookup",
         ] {
             assert!(satisfied_by(&format!("{name}@0.2.9"), &WasiPolicy::default()).is_some(), "{name}");
         }

@@ -18,15 +18,11 @@ pub fn contract() -> Contract {
                 Trained on simulated sessions: demo only."
             .into(),
         features: vec![
-            Feature::real("charger_kw", Bounds::between(1.0, 400.0))
-                .unit("kW")
-                .about("Rated power of the charger"),
+            Feature::real("charger_kw", Bounds::between(1.0, 400.0)).unit("kW").about("Rated power of the charger"),
             Feature::real("battery_kwh", Bounds::between(5.0, 250.0))
                 .unit("kWh")
                 .about("Usable battery capacity of the vehicle"),
-            Feature::real("soc_start", Bounds::between(0.0, 1.0))
-                .unit("fraction")
-                .about("State of charge at plug-in"),
+            Feature::real("soc_start", Bounds::between(0.0, 1.0)).unit("fraction").about("State of charge at plug-in"),
             Feature::real("soc_target", Bounds::between(0.0, 1.0))
                 .unit("fraction")
                 .about("State of charge the driver asked for"),
@@ -40,9 +36,11 @@ pub fn contract() -> Contract {
             Feature::label("connector", &CONNECTORS).about("Connector used"),
             Feature::flag("fleet").about("Vehicle belongs to a fleet account"),
         ],
-        outputs: vec![Output::new("minutes", Bounds::between(0.0, 2880.0))
-            .unit("min")
-            .about("Expected minutes until charging stops")],
+        outputs: vec![
+            Output::new("minutes", Bounds::between(0.0, 2880.0))
+                .unit("min")
+                .about("Expected minutes until charging stops"),
+        ],
     }
 }
 

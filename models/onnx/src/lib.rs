@@ -8,8 +8,8 @@
 //! toolkit (skl2onnx, torch.onnx…); operators tract does not implement are
 //! refused at load with tract's message.
 
-use paddock_guest::{Bounds, Contract, Domain, DomainSpec, Estimator, Fault, Feature, Output};
 use paddock_guest::ndarray::{ArrayView2, ArrayViewMut2};
+use paddock_guest::{Bounds, Contract, Domain, DomainSpec, Estimator, Fault, Feature, Output};
 use serde::Deserialize;
 use std::sync::Arc;
 
@@ -101,7 +101,13 @@ impl Manifest {
                 about: o.about.clone(),
             })
             .collect();
-        Contract { name: self.name.clone(), version: self.version.clone(), features, outputs, about: self.about.clone() }
+        Contract {
+            name: self.name.clone(),
+            version: self.version.clone(),
+            features,
+            outputs,
+            about: self.about.clone(),
+        }
     }
 }
 
@@ -132,7 +138,8 @@ impl Onnx {
     pub fn new((manifest, onnx): Params) -> Result<Self, String> {
         let manifest: Manifest = serde_json::from_str(&manifest).map_err(|e| format!("manifest: {e}"))?;
         let contract = manifest.contract();
-        let mut model = tract_onnx::onnx().model_for_read(&mut &onnx[..]).map_err(fail("the ONNX model does not load"))?;
+        let mut model =
+            tract_onnx::onnx().model_for_read(&mut &onnx[..]).map_err(fail("the ONNX model does not load"))?;
         let input = match &manifest.input {
             None => 0,
             Some(name) => model
@@ -165,10 +172,9 @@ impl Onnx {
         for o in &manifest.outputs {
             let index = match &o.tensor {
                 None => 0,
-                Some(t) => names
-                    .iter()
-                    .position(|n| n == t)
-                    .ok_or_else(|| format!("manifest output `{}`: the graph has no output `{t}` (it has {names:?})", o.name))?,
+                Some(t) => names.iter().position(|n| n == t).ok_or_else(|| {
+                    format!("manifest output `{}`: the graph has no output `{t}` (it has {names:?})", o.name)
+                })?,
             };
             picks.push((index, o.column));
         }

@@ -17,9 +17,7 @@ pub fn contract() -> Contract {
             Feature::real("expected_minutes", Bounds::between(0.0, 2880.0))
                 .unit("min")
                 .about("Expected charging minutes (from charge-minutes)"),
-            Feature::whole("plugin_hour", Bounds::between(0.0, 23.0))
-                .unit("h")
-                .about("Local hour of day at plug-in"),
+            Feature::whole("plugin_hour", Bounds::between(0.0, 23.0)).unit("h").about("Local hour of day at plug-in"),
             Feature::real("member_overstay_rate", Bounds::between(0.0, 1.0))
                 .unit("fraction")
                 .optional()
@@ -30,9 +28,11 @@ pub fn contract() -> Contract {
             Feature::flag("weekend").about("Plug-in on Saturday or Sunday"),
             Feature::flag("fleet").about("Vehicle belongs to a fleet account"),
         ],
-        outputs: vec![Output::new("overstay_probability", Bounds::between(0.0, 1.0))
-            .unit("probability")
-            .about("Probability of staying plugged in past full")],
+        outputs: vec![
+            Output::new("overstay_probability", Bounds::between(0.0, 1.0))
+                .unit("probability")
+                .about("Probability of staying plugged in past full"),
+        ],
     }
 }
 

@@ -29,14 +29,19 @@ pub fn fit(x: &[Vec<f64>], y: &[f64], features: usize, s: &Settings) -> TreesPar
             v.sort_by(f64::total_cmp);
             v.dedup();
             let step = (v.len() as f64 / s.bins as f64).max(1.0);
-            let mut c: Vec<f64> = (1..s.bins).map(|k| (k as f64 * step) as usize).filter(|&i| i < v.len()).map(|i| v[i]).collect();
+            let mut c: Vec<f64> =
+                (1..s.bins).map(|k| (k as f64 * step) as usize).filter(|&i| i < v.len()).map(|i| v[i]).collect();
             c.dedup();
             c
         })
         .collect();
     // bin(x) = number of cut points ≤ x; "bins ≤ k go left" ⇔ x < cuts[k].
     let binned: Vec<Vec<u16>> = (0..features)
-        .map(|f| x.iter().map(|r| if r[f].is_nan() { MISSING } else { cuts[f].partition_point(|c| *c <= r[f]) as u16 }).collect())
+        .map(|f| {
+            x.iter()
+                .map(|r| if r[f].is_nan() { MISSING } else { cuts[f].partition_point(|c| *c <= r[f]) as u16 })
+                .collect()
+        })
         .collect();
     let base = y.iter().sum::<f64>() / n as f64;
     let rows_x = Array2::from_shape_fn((n, features), |(i, f)| x[i][f]);

@@ -27,8 +27,8 @@ use paddock_guest::{Contract, Evaluate, Linear, LinearParams, Link, Packaged, Tr
 use paddock_host::artifact::checks::{Case, Checks, Tolerance};
 use paddock_host::{Row, Value};
 use rand::SeedableRng;
-use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linalg::basic::arrays::Array;
+use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linear::logistic_regression::LogisticRegression;
 
 use simulate::Session;
@@ -48,9 +48,12 @@ fn main() -> Result<()> {
 
     let source = "paddock-train-demo: native evaluation of the trained params on held-out simulated sessions";
     let minutes_checks = record(&held_out, source, |s| minutes_row(s), |s| predict(&minutes, &s.minutes_features()));
-    let overstay_checks = record(&held_out, source, |s| overstay_row(s, &minutes), |s| {
-        predict(&overstay, &s.overstay_features(predict(&minutes, &s.minutes_features())))
-    });
+    let overstay_checks = record(
+        &held_out,
+        source,
+        |s| overstay_row(s, &minutes),
+        |s| predict(&overstay, &s.overstay_features(predict(&minutes, &s.minutes_features()))),
+    );
     write(&out, "charge-minutes", &encode_params(&minutes.1), &minutes_checks)?;
     write(&out, "overstay-risk", &encode_params(&overstay.1), &overstay_checks)?;
     store_versions(&out.join("store"), &train, &held_out, &minutes)?;
@@ -65,8 +68,22 @@ fn main() -> Result<()> {
 /// overstayed. Members who joined lately are not in the table yet.
 fn feature_tables(dir: &Path) -> Result<()> {
     const UPDATED: &str = "2026-11-30T02:00:00+01:00";
-    let sites = [("Harbour Lot", 0.38), ("Market Hall", 0.72), ("Depot North", 0.22), ("Library Green", 0.92), ("Station Road", 0.41)];
-    let members = [("m-1041", 0.10), ("m-0307", 0.45), ("m-1877", 0.05), ("m-3120", 0.02), ("m-0988", 0.30), ("m-0012", 0.55), ("m-2754", 0.12)];
+    let sites = [
+        ("Harbour Lot", 0.38),
+        ("Market Hall", 0.72),
+        ("Depot North", 0.22),
+        ("Library Green", 0.92),
+        ("Station Road", 0.41),
+    ];
+    let members = [
+        ("m-1041", 0.10),
+        ("m-0307", 0.45),
+        ("m-1877", 0.05),
+        ("m-3120", 0.02),
+        ("m-0988", 0.30),
+        ("m-0012", 0.55),
+        ("m-2754", 0.12),
+    ];
     std::fs::create_dir_all(dir).with_context(|| format!("creating {}", dir.display()))?;
     let mut csv = String::from("site,occupancy,updated_at\n");
     for (site, occupancy) in sites {
@@ -112,9 +129,12 @@ fn store_versions(dir: &Path, train: &[Session], held_out: &[Session], served_mi
         let mut contract = overstay_risk::contract();
         contract.version = version.into();
         let trained = train_overstay(sessions, served_minutes)?;
-        let checks = record(held_out, source, |s| overstay_row(s, served_minutes), |s| {
-            predict(&trained, &s.overstay_features(predict(served_minutes, &s.minutes_features())))
-        });
+        let checks = record(
+            held_out,
+            source,
+            |s| overstay_row(s, served_minutes),
+            |s| predict(&trained, &s.overstay_features(predict(served_minutes, &s.minutes_features()))),
+        );
         let packaged = Packaged { contract, params: trained.1 };
         write(&dir.join("overstay-risk"), version, &encode_params(&packaged), &checks)?;
     }
@@ -145,7 +165,8 @@ fn fit_minutes(train: &[Session], settings: &boost::Settings, contract: &Contrac
 }
 
 fn train_overstay(train: &[Session], minutes: &Trained<Trees>) -> Result<Trained<Linear>> {
-    let raw: Vec<[f64; 6]> = train.iter().map(|s| s.overstay_features(predict(minutes, &s.minutes_features()))).collect();
+    let raw: Vec<[f64; 6]> =
+        train.iter().map(|s| s.overstay_features(predict(minutes, &s.minutes_features()))).collect();
     // Mean imputation for the optional member rate, then standardise so the
     // optimiser behaves; the scaling is folded back into the coefficients.
     let k = 6;
@@ -155,7 +176,8 @@ fn train_overstay(train: &[Session], minutes: &Trained<Trees>) -> Result<Trained
             v.iter().sum::<f64>() / v.len() as f64
         })
         .collect();
-    let filled: Vec<Vec<f64>> = raw.iter().map(|r| (0..k).map(|j| if r[j].is_nan() { mean[j] } else { r[j] }).collect()).collect();
+    let filled: Vec<Vec<f64>> =
+        raw.iter().map(|r| (0..k).map(|j| if r[j].is_nan() { mean[j] } else { r[j] }).collect()).collect();
     let sd: Vec<f64> = (0..k)
         .map(|j| (filled.iter().map(|r| (r[j] - mean[j]).powi(2)).sum::<f64>() / filled.len() as f64).sqrt().max(1e-12))
         .collect();
@@ -167,8 +189,10 @@ fn train_overstay(train: &[Session], minutes: &Trained<Trees>) -> Result<Trained
     let intercept = *fit.intercept().get((0, 0));
     let weights: Vec<f64> = (0..k).map(|j| coef[j] / sd[j]).collect();
     let intercept = intercept - (0..k).map(|j| coef[j] * mean[j] / sd[j]).sum::<f64>();
-    let params = LinearParams { link: Link::Logistic, intercepts: vec![intercept], weights: vec![weights], impute: mean };
-    let linear = paddock_guest::build_for::<Linear>(&overstay_risk::contract(), params.clone()).map_err(anyhow::Error::msg)?;
+    let params =
+        LinearParams { link: Link::Logistic, intercepts: vec![intercept], weights: vec![weights], impute: mean };
+    let linear =
+        paddock_guest::build_for::<Linear>(&overstay_risk::contract(), params.clone()).map_err(anyhow::Error::msg)?;
     Ok((linear, params))
 }
 
@@ -215,7 +239,11 @@ fn record(
             .iter()
             .map(|s| {
                 let model = row(s);
-                let name = if model.fields().iter().any(|(k, _)| k == "charger_kw") { "minutes" } else { "overstay_probability" };
+                let name = if model.fields().iter().any(|(k, _)| k == "charger_kw") {
+                    "minutes"
+                } else {
+                    "overstay_probability"
+                };
                 Case { row: model, expect: [(name.to_owned(), expect(s))].into() }
             })
             .collect(),

@@ -59,7 +59,9 @@ pub fn session(rng: &mut impl Rng) -> Session {
     let site_occupancy = rng.random_range(0.0..1.0);
     let hour = hour_of_week % 24;
     let weekend = hour_of_week >= 120;
-    let logit = -2.6 + 0.004 * minutes + if (17..=23).contains(&hour) { 0.9 } else { 0.0 }
+    let logit = -2.6
+        + 0.004 * minutes
+        + if (17..=23).contains(&hour) { 0.9 } else { 0.0 }
         + 3.0 * member_overstay_rate.unwrap_or(0.15)
         + 1.2 * site_occupancy
         - if fleet { 0.8 } else { 0.0 }

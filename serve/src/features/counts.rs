@@ -17,10 +17,12 @@ use super::Outcome;
 
 /// Upper bounds of the round-trip latency buckets, in seconds (50 µs to
 /// 2.5 s in 1–2.5–5 steps; `+Inf` is implied).
-pub const LATENCY_BUCKETS: [f64; 15] = [5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 1e-2, 2.5e-2, 5e-2, 0.1, 0.25, 0.5, 1.0, 2.5];
+pub const LATENCY_BUCKETS: [f64; 15] =
+    [5e-5, 1e-4, 2.5e-4, 5e-4, 1e-3, 2.5e-3, 5e-3, 1e-2, 2.5e-2, 5e-2, 0.1, 0.25, 0.5, 1.0, 2.5];
 
 /// The outcomes counted, in the order of [`SourceCounts`]' lookup counters.
-const OUTCOMES: [Outcome; 5] = [Outcome::FromRequest, Outcome::Found, Outcome::Missing, Outcome::Stale, Outcome::Unavailable];
+const OUTCOMES: [Outcome; 5] =
+    [Outcome::FromRequest, Outcome::Found, Outcome::Missing, Outcome::Stale, Outcome::Unavailable];
 
 /// The counters of one source.
 #[derive(Debug, Default)]

@@ -26,13 +26,13 @@ use std::sync::Arc;
 use semver::Version;
 use serde::Serialize;
 
-pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
 pub use counts::{SourceCounts, SourceKind, SourceUsage};
+pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
 pub use redis::{RedisSource, Trouble};
 pub use table::{Cell, Table, TableError};
 
-use paddock_host::contract::{Contract, Domain};
 use paddock_host::contract::rows::{Row, Value};
+use paddock_host::contract::{Contract, Domain};
 
 /// The plan's sources, loaded.
 #[derive(Clone, Debug, Default)]
@@ -75,7 +75,11 @@ impl Sources {
     /// Sources from tables already read and Redis sources already made,
     /// by source name, counting into `counts` (by source name; a source
     /// with no counters there gets new ones).
-    pub fn from_parts(tables: BTreeMap<String, Arc<Table>>, redis: BTreeMap<String, Arc<RedisSource>>, counts: BTreeMap<String, Arc<SourceCounts>>) -> Sources {
+    pub fn from_parts(
+        tables: BTreeMap<String, Arc<Table>>,
+        redis: BTreeMap<String, Arc<RedisSource>>,
+        counts: BTreeMap<String, Arc<SourceCounts>>,
+    ) -> Sources {
         Sources { tables, redis, counts }
     }
 
@@ -244,7 +248,9 @@ impl GatherError {
     pub fn place(&self) -> (&str, String) {
         match self {
             GatherError::NoKey { key, .. } => (key, "absent".to_owned()),
-            GatherError::Missing { feature, .. } | GatherError::Unavailable { feature, .. } => (feature, "absent".to_owned()),
+            GatherError::Missing { feature, .. } | GatherError::Unavailable { feature, .. } => {
+                (feature, "absent".to_owned())
+            }
             GatherError::WrongKind { feature, value, .. } => (feature, value.clone()),
         }
     }
@@ -260,7 +266,14 @@ impl Resolved {
     /// Every problem: features the contract lacks, required features with
     /// no source, tables or columns that are not there, a budget longer
     /// than the deadline.
-    pub fn new(plan: &Plan, sources: &Sources, model: &str, version: &Version, contract: &Contract, deadline: std::time::Duration) -> Result<Option<Resolved>, Vec<String>> {
+    pub fn new(
+        plan: &Plan,
+        sources: &Sources,
+        model: &str,
+        version: &Version,
+        contract: &Contract,
+        deadline: std::time::Duration,
+    ) -> Result<Option<Resolved>, Vec<String>> {
         let Some(m) = plan.models.get(model) else { return Ok(None) };
         let mut problems = plan.check(model, version, contract);
         let mut steps = Vec::new();
@@ -293,7 +306,8 @@ impl Resolved {
                 };
                 Via::Redis { source: Arc::clone(redis), updated }
             } else {
-                problems.push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
+                problems
+                    .push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
                 continue;
             };
             if let Fallback::Default(v) = &lookup.missing {
@@ -302,7 +316,14 @@ impl Resolved {
                 }
             }
             let counts = sources.counts.get(&lookup.source).cloned().unwrap_or_default();
-            steps.push(Step { feature: feature.clone(), domain: f.domain.clone(), source: lookup.source.clone(), via, lookup: lookup.clone(), counts });
+            steps.push(Step {
+                feature: feature.clone(),
+                domain: f.domain.clone(),
+                source: lookup.source.clone(),
+                via,
+                lookup: lookup.clone(),
+                counts,
+            });
         }
         if problems.is_empty() { Ok(Some(Resolved { steps, keys: m.keys.clone() })) } else { Err(problems) }
     }
@@ -317,7 +338,12 @@ impl Resolved {
     ///
     /// # Errors
     /// As [`Resolved::gather_rows`] says of each row.
-    pub fn gather(&self, context: &BTreeMap<String, String>, row: &Row, now: f64) -> Result<(Row, Vec<Fetched>), GatherError> {
+    pub fn gather(
+        &self,
+        context: &BTreeMap<String, String>,
+        row: &Row,
+        now: f64,
+    ) -> Result<(Row, Vec<Fetched>), GatherError> {
         self.gather_rows(context, std::slice::from_ref(row), now, Lookups::All).pop().expect("one row in, one out")
     }
 
@@ -332,8 +358,15 @@ impl Resolved {
     /// [`GatherError`]: a key the plan needs for a feature that must not
     /// fall back is missing, such a feature has nothing fresh or its source
     /// could not be read, or a value does not fit.
-    pub fn gather_rows(&self, context: &BTreeMap<String, String>, rows: &[Row], now: f64, report: Lookups) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
-        let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> = rows.iter().map(|r| self.split(context, r)).collect();
+    pub fn gather_rows(
+        &self,
+        context: &BTreeMap<String, String>,
+        rows: &[Row],
+        now: f64,
+        report: Lookups,
+    ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+        let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> =
+            rows.iter().map(|r| self.split(context, r)).collect();
         let mut buf = String::new();
         // One batch of HMGETs per Redis source: each key once, with every
         // field any row needs of it.
@@ -363,11 +396,17 @@ impl Resolved {
             batch.answer = pending.map(redis::Pending::wait);
         }
         // The scratch buffers live on the thread: a request allocates none.
-        SCRATCH.with_borrow_mut(|scratch| prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, scratch, report)).collect())
+        SCRATCH.with_borrow_mut(|scratch| {
+            prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, scratch, report)).collect()
+        })
     }
 
     /// The keys of a row, and the row without its key fields.
-    fn split<'c>(&self, context: &'c BTreeMap<String, String>, row: &Row) -> (std::borrow::Cow<'c, BTreeMap<String, String>>, Row) {
+    fn split<'c>(
+        &self,
+        context: &'c BTreeMap<String, String>,
+        row: &Row,
+    ) -> (std::borrow::Cow<'c, BTreeMap<String, String>>, Row) {
         // Room for the features the steps add: the row grows once.
         let room = row.fields().len() + self.steps.len();
         if !self.keys.iter().any(|k| row.fields().iter().any(|(n, _)| n == k)) {
@@ -399,7 +438,15 @@ impl Resolved {
     /// is allocated for a feature found and not reported but its value in
     /// the row; consecutive steps reading one table under one key probe it
     /// once.
-    fn complete(&self, keys: &BTreeMap<String, String>, row: Row, now: f64, batches: &BTreeMap<&str, Batch>, scratch: &mut Scratch, report: Lookups) -> Result<(Row, Vec<Fetched>), GatherError> {
+    fn complete(
+        &self,
+        keys: &BTreeMap<String, String>,
+        row: Row,
+        now: f64,
+        batches: &BTreeMap<&str, Batch>,
+        scratch: &mut Scratch,
+        report: Lookups,
+    ) -> Result<(Row, Vec<Fetched>), GatherError> {
         let Scratch { key: buf, probed_key, probed } = scratch;
         *probed = None;
         let mut out = row;
@@ -412,7 +459,13 @@ impl Resolved {
                 step.counts.lookup(Outcome::FromRequest);
                 if all {
                     let key = step.lookup.key.render(keys, buf).unwrap_or_default().to_owned();
-                    fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key, outcome: Outcome::FromRequest, age: None });
+                    fetched.push(Fetched {
+                        feature: step.feature.clone(),
+                        source: step.source.clone(),
+                        key,
+                        outcome: Outcome::FromRequest,
+                        age: None,
+                    });
                 }
                 continue;
             }
@@ -475,7 +528,13 @@ impl Resolved {
                 }
             };
             if all || outcome != Outcome::Found {
-                fetched.push(Fetched { feature: step.feature.clone(), source: step.source.clone(), key: shown(), outcome, age });
+                fetched.push(Fetched {
+                    feature: step.feature.clone(),
+                    source: step.source.clone(),
+                    key: shown(),
+                    outcome,
+                    age,
+                });
             }
             out.set(&step.feature, value);
         }
@@ -554,7 +613,9 @@ fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>)
             }
             let cell = batch.value(key, &step.lookup.field).map_or(Cell::Absent, Cell::Text);
             let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|t| {
-                t.parse::<f64>().ok().or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
+                t.parse::<f64>()
+                    .ok()
+                    .or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
             });
             // A key with none of the fields asked is not there.
             let present = batch.index.get(key).is_some_and(|&at| match &batch.answer {
@@ -569,7 +630,9 @@ fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>)
 /// Why a default does not fit a feature's domain, if it does not.
 fn misfit(v: &Value, domain: &Domain) -> Option<String> {
     let fits = match (v, domain) {
-        (Value::Number(_) | Value::Integer(_), Domain::Real(_)) | (Value::Integer(_), Domain::Whole(_)) | (Value::Flag(_), Domain::Flag) => true,
+        (Value::Number(_) | Value::Integer(_), Domain::Real(_))
+        | (Value::Integer(_), Domain::Whole(_))
+        | (Value::Flag(_), Domain::Flag) => true,
         (Value::Number(n), Domain::Whole(_)) => n.fract() == 0.0,
         (Value::Label(l), Domain::Label(labels)) => labels.contains(l),
         _ => false,
@@ -579,10 +642,18 @@ fn misfit(v: &Value, domain: &Domain) -> Option<String> {
 
 /// A source's cell as the feature's value.
 fn value_of(cell: Cell<'_>, step: &Step, key: &str) -> Result<Value, GatherError> {
-    let wrong = |value: String, wanted| GatherError::WrongKind { feature: step.feature.clone(), from: step.source.clone(), key: key.to_owned(), value, wanted };
+    let wrong = |value: String, wanted| GatherError::WrongKind {
+        feature: step.feature.clone(),
+        from: step.source.clone(),
+        key: key.to_owned(),
+        value,
+        wanted,
+    };
     // A number written as text (its column holds other text too).
     let cell = match (&step.domain, cell) {
-        (Domain::Real(_) | Domain::Whole(_) | Domain::Flag, Cell::Text(t)) => t.parse::<f64>().map_or(cell, Cell::Number),
+        (Domain::Real(_) | Domain::Whole(_) | Domain::Flag, Cell::Text(t)) => {
+            t.parse::<f64>().map_or(cell, Cell::Number)
+        }
         _ => cell,
     };
     Ok(match (&step.domain, cell) {
@@ -627,7 +698,12 @@ mod tests {
                 feature("plug", Domain::Label(vec!["ccs2".into(), "type2".into()]), true),
                 feature("occupancy", Domain::Whole(Bounds { min: None, max: None }), true),
             ],
-            outputs: vec![Output { name: "minutes".into(), unit: None, bounds: Bounds { min: None, max: None }, about: String::new() }],
+            outputs: vec![Output {
+                name: "minutes".into(),
+                unit: None,
+                bounds: Bounds { min: None, max: None },
+                about: String::new(),
+            }],
         }
     }
 
@@ -639,10 +715,19 @@ mod tests {
             "site,avg_minutes_7d,plug,occupancy,updated_at\nnorth-1,42.5,ccs2,3,2026-12-01T12:00:00Z\nsouth-2,35,type2,x,2026-11-20T00:00:00Z\n",
         )
         .unwrap();
-        let text = format!("[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"\n[models.charge-minutes]\nkeys = [\"site\"]\n[models.charge-minutes.features]\n{features}");
+        let text = format!(
+            "[sources.sites]\ntable = \"sites.csv\"\nkey = \"site\"\nupdated = \"updated_at\"\n[models.charge-minutes]\nkeys = [\"site\"]\n[models.charge-minutes.features]\n{features}"
+        );
         let plan = Plan::parse(&text, "features.toml", dir.path()).unwrap();
         let sources = Sources::load(&plan).unwrap();
-        let resolved = Resolved::new(&plan, &sources, "charge-minutes", &Version::new(1, 0, 0), &contract(), std::time::Duration::from_millis(50));
+        let resolved = Resolved::new(
+            &plan,
+            &sources,
+            "charge-minutes",
+            &Version::new(1, 0, 0),
+            &contract(),
+            std::time::Duration::from_millis(50),
+        );
         (dir, resolved)
     }
 
@@ -663,7 +748,16 @@ mod tests {
         // Found and fresh (12 h old).
         let (got, fetched) = r.gather(&keys("north-1"), &row, NOW).unwrap();
         assert_eq!(got, row.clone().with("avg_minutes_7d", 42.5).with("occupancy", 3i64).with("plug", "ccs2"));
-        assert_eq!(fetched[0], Fetched { feature: "avg_minutes_7d".into(), source: "sites".into(), key: "north-1".into(), outcome: Outcome::Found, age: Some(43_200.0) });
+        assert_eq!(
+            fetched[0],
+            Fetched {
+                feature: "avg_minutes_7d".into(),
+                source: "sites".into(),
+                key: "north-1".into(),
+                outcome: Outcome::Found,
+                age: Some(43_200.0)
+            }
+        );
         // South-2's occupancy is `x`, not a whole number: the row fails naming it.
         let err = r.gather(&keys("south-2"), &row, NOW).unwrap_err();
         assert_eq!(err.to_string(), "feature `occupancy`: source `sites` has `x` under key `south-2`, not a number");
@@ -682,7 +776,10 @@ mod tests {
         assert!(got.fields().contains(&("plug".to_owned(), Value::Label("type2".into()))));
         assert_eq!(fetched.iter().find(|f| f.feature == "plug").unwrap().outcome, Outcome::FromRequest);
         // No key at all.
-        assert_eq!(r.gather(&BTreeMap::new(), &row, NOW).unwrap_err().to_string(), "the request has no key `site` (the model's keys: site)");
+        assert_eq!(
+            r.gather(&BTreeMap::new(), &row, NOW).unwrap_err().to_string(),
+            "the request has no key `site` (the model's keys: site)"
+        );
     }
 
     #[test]

@@ -151,7 +151,10 @@ impl Template {
             let close = rest[open..].find('}').ok_or_else(|| format!("key `{text}`: a `{{` with no `}}`"))? + open;
             let name = &rest[open + 1..close];
             if !keys.iter().any(|k| k == name) {
-                return Err(format!("key `{text}` uses `{{{name}}}`, which is not one of the model's keys ({})", keys.join(", ")));
+                return Err(format!(
+                    "key `{text}` uses `{{{name}}}`, which is not one of the model's keys ({})",
+                    keys.join(", ")
+                ));
             }
             parts.push(Part::Key(name.to_owned()));
             rest = &rest[close + 1..];
@@ -294,15 +297,21 @@ impl Plan {
                 (Some(_), _, Some(_)) => problems.push(format!("sources.{name}: `table` or `redis`, not both")),
                 (None, _, Some(url)) => match s.budget_ms.unwrap_or(10) {
                     ms @ 1..=60_000 => {
-                        sources.insert(name, Source::Redis { url, budget: std::time::Duration::from_millis(ms), updated: s.updated });
+                        sources.insert(
+                            name,
+                            Source::Redis { url, budget: std::time::Duration::from_millis(ms), updated: s.updated },
+                        );
                     }
                     ms => problems.push(format!("sources.{name}: budget_ms = {ms}: give 1 to 60000")),
                 },
                 (Some(path), Some(key), None) => {
                     sources.insert(name, Source::Table { path: dir.join(path), key, updated: s.updated });
                 }
-                (None, _, None) => problems.push(format!("sources.{name}: no `table` (the file to read) or `redis` (the server's URL)")),
-                (Some(_), None, None) => problems.push(format!("sources.{name}: no `key` (the column rows are found by)")),
+                (None, _, None) => problems
+                    .push(format!("sources.{name}: no `table` (the file to read) or `redis` (the server's URL)")),
+                (Some(_), None, None) => {
+                    problems.push(format!("sources.{name}: no `key` (the column rows are found by)"))
+                }
             }
         }
         let mut models = BTreeMap::new();
@@ -315,19 +324,33 @@ impl Plan {
                         RawFrom::Word(w) if w == "request" => {
                             features.insert(feature, Supply::Request);
                         }
-                        RawFrom::Word(w) => problems.push(format!("{place}: `{w}` is neither \"request\" nor a lookup table")),
+                        RawFrom::Word(w) => {
+                            problems.push(format!("{place}: `{w}` is neither \"request\" nor a lookup table"))
+                        }
                         RawFrom::Lookup(l) => {
                             if !declared.contains(&l.source) {
-                                problems.push(format!("{place}: source `{}` is not declared under [sources]", l.source));
+                                problems
+                                    .push(format!("{place}: source `{}` is not declared under [sources]", l.source));
                             }
-                            let key = Template::parse(&l.key, &m.keys).map_err(|e| problems.push(format!("{place}: {e}"))).ok();
-                            let max_age = l.max_age.as_deref().map(seconds).transpose().map_err(|e| problems.push(format!("{place}: {e}"))).ok().flatten();
+                            let key = Template::parse(&l.key, &m.keys)
+                                .map_err(|e| problems.push(format!("{place}: {e}")))
+                                .ok();
+                            let max_age = l
+                                .max_age
+                                .as_deref()
+                                .map(seconds)
+                                .transpose()
+                                .map_err(|e| problems.push(format!("{place}: {e}")))
+                                .ok()
+                                .flatten();
                             let missing = match l.missing {
                                 None => Some(Fallback::Absent),
                                 Some(RawFallback::Word(w)) if w == "absent" => Some(Fallback::Absent),
                                 Some(RawFallback::Word(w)) if w == "fail" => Some(Fallback::Fail),
                                 Some(RawFallback::Word(w)) => {
-                                    problems.push(format!("{place}: missing = `{w}`: say \"absent\", \"fail\" or {{ default = VALUE }}"));
+                                    problems.push(format!(
+                                        "{place}: missing = `{w}`: say \"absent\", \"fail\" or {{ default = VALUE }}"
+                                    ));
                                     None
                                 }
                                 Some(RawFallback::Default { default }) => match default {
@@ -336,13 +359,19 @@ impl Plan {
                                     toml::Value::Boolean(b) => Some(Fallback::Default(Value::Flag(b))),
                                     toml::Value::String(s) => Some(Fallback::Default(Value::Label(s))),
                                     other => {
-                                        problems.push(format!("{place}: a default of {} is not a feature value", other.type_str()));
+                                        problems.push(format!(
+                                            "{place}: a default of {} is not a feature value",
+                                            other.type_str()
+                                        ));
                                         None
                                     }
                                 },
                             };
                             if let (Some(key), Some(missing)) = (key, missing) {
-                                features.insert(feature, Supply::Lookup(Lookup { source: l.source, key, field: l.field, max_age, missing }));
+                                features.insert(
+                                    feature,
+                                    Supply::Lookup(Lookup { source: l.source, key, field: l.field, max_age, missing }),
+                                );
                             }
                         }
                     }
@@ -359,7 +388,9 @@ impl Plan {
                     Ok(version) => {
                         versions.insert(version, parsed);
                     }
-                    Err(e) => bad_versions.push(format!("models.{model}.versions: `{v}` is not a semver version ({e})")),
+                    Err(e) => {
+                        bad_versions.push(format!("models.{model}.versions: `{v}` is not a semver version ({e})"))
+                    }
                 }
             }
             problems.extend(bad_versions);
@@ -377,7 +408,8 @@ impl Plan {
         let mut problems = Vec::new();
         for name in features.keys() {
             if !contract.features.iter().any(|f| &f.name == name) {
-                problems.push(format!("{model} {version}: the plan sources `{name}`, which its contract does not have"));
+                problems
+                    .push(format!("{model} {version}: the plan sources `{name}`, which its contract does not have"));
             }
         }
         for f in contract.features.iter().filter(|f| f.required) {
@@ -419,13 +451,21 @@ charger_kw = "request"
     #[test]
     fn a_plan_reads_sources_lookups_and_versions() {
         let plan = Plan::parse(PLAN, "features.toml", Path::new("/store")).unwrap();
-        assert_eq!(plan.sources["sites"], Source::Table { path: "/store/tables/sites.csv".into(), key: "site".into(), updated: Some("updated_at".into()) });
+        assert_eq!(
+            plan.sources["sites"],
+            Source::Table {
+                path: "/store/tables/sites.csv".into(),
+                key: "site".into(),
+                updated: Some("updated_at".into())
+            }
+        );
         let m = &plan.models["charge-minutes"];
         let Supply::Lookup(avg) = &m.features["avg_minutes_7d"] else { panic!() };
         assert_eq!((avg.max_age, &avg.missing), (Some(26.0 * 3600.0), &Fallback::Absent));
         let Supply::Lookup(target) = &m.features["usual_target"] else { panic!() };
         assert_eq!(target.missing, Fallback::Default(Value::Number(0.8)));
-        let keys: BTreeMap<String, String> = [("site".into(), "north-1".into()), ("vehicle".into(), "v9".into())].into();
+        let keys: BTreeMap<String, String> =
+            [("site".into(), "north-1".into()), ("vehicle".into(), "v9".into())].into();
         let mut buf = String::new();
         assert_eq!(target.key.render(&keys, &mut buf), Ok("ev:v9"));
         assert_eq!(avg.key.render(&keys, &mut buf), Ok("north-1"));
@@ -436,7 +476,10 @@ charger_kw = "request"
     #[test]
     fn every_problem_is_named_at_once() {
         let bad = PLAN
-            .replace("source = \"sites\", key = \"{site}\", field = \"avg_minutes_7d\", max_age = \"26h\"", "source = \"weather\", key = \"{region}\", field = \"x\", max_age = \"a week\"")
+            .replace(
+                "source = \"sites\", key = \"{site}\", field = \"avg_minutes_7d\", max_age = \"26h\"",
+                "source = \"weather\", key = \"{region}\", field = \"x\", max_age = \"a week\"",
+            )
             .replace("missing = \"fail\"", "missing = \"guess\"");
         let err = Plan::parse(&bad, "features.toml", Path::new("/store")).unwrap_err();
         assert_eq!(
@@ -449,8 +492,14 @@ charger_kw = "request"
             ]
         );
         let err = Plan::parse("[sources.x]\ntable = \"t.csv\"\n[models.m]\nkeys = [\"a\"]\nfeatures = { f = { source = \"x\", key = \"fixed\", field = \"f\" } }\n", "f.toml", Path::new(".")).unwrap_err();
-        assert_eq!(err.to_string(), "f.toml: sources.x: no `key` (the column rows are found by); models.m.features.f: key `fixed` uses none of the model's keys: every request would read one row");
+        assert_eq!(
+            err.to_string(),
+            "f.toml: sources.x: no `key` (the column rows are found by); models.m.features.f: key `fixed` uses none of the model's keys: every request would read one row"
+        );
         let err = Plan::parse("[sources.live]\nredis = \"redis://127.0.0.1/\"\nbudget_ms = 0\n[sources.both]\nredis = \"redis://h/\"\ntable = \"t.csv\"\n", "f.toml", Path::new(".")).unwrap_err();
-        assert_eq!(err.problems, ["sources.both: `table` or `redis`, not both", "sources.live: budget_ms = 0: give 1 to 60000"]);
+        assert_eq!(
+            err.problems,
+            ["sources.both: `table` or `redis`, not both", "sources.live: budget_ms = 0: give 1 to 60000"]
+        );
     }
 }

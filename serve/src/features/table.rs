@@ -71,7 +71,7 @@ pub enum TableError {
         /// The file.
         file: String,
         /// The row, from 1 (CSV: the line after the header is row 1; NDJSON:
-    /// the line; Parquet: the row in file order; 0: the file as a whole).
+        /// the line; Parquet: the row in file order; 0: the file as a whole).
         row: usize,
         /// The column, when one is to blame.
         column: Option<String>,
@@ -148,7 +148,8 @@ impl Table {
     pub fn read_as(path: &Path, shown: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
         let file = shown.to_owned();
         if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("parquet")) {
-            let bytes = std::fs::read(path).map_err(|e| TableError::Unreadable { file: file.clone(), problem: e.to_string() })?;
+            let bytes = std::fs::read(path)
+                .map_err(|e| TableError::Unreadable { file: file.clone(), problem: e.to_string() })?;
             let (names, rows) = parquet_rows(bytes, &file)?;
             return Table::from_rows(names, rows, &file, key, updated);
         }
@@ -156,7 +157,8 @@ impl Table {
             file: file.clone(),
             extension: path.extension().map(|e| e.to_string_lossy().into_owned()).unwrap_or_default(),
         })?;
-        let bytes = std::fs::read(path).map_err(|e| TableError::Unreadable { file: file.clone(), problem: e.to_string() })?;
+        let bytes =
+            std::fs::read(path).map_err(|e| TableError::Unreadable { file: file.clone(), problem: e.to_string() })?;
         Table::parse(&bytes, format, &file, key, updated)
     }
 
@@ -164,16 +166,43 @@ impl Table {
     ///
     /// # Errors
     /// As [`Table::read`].
-    pub fn parse(bytes: &[u8], format: Format, file: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
-        let cell_error = |row: usize, column: Option<&str>, problem: String| TableError::Cell { file: file.to_owned(), row, column: column.map(str::to_owned), problem };
+    pub fn parse(
+        bytes: &[u8],
+        format: Format,
+        file: &str,
+        key: &str,
+        updated: Option<&str>,
+    ) -> Result<Table, TableError> {
+        let cell_error = |row: usize, column: Option<&str>, problem: String| TableError::Cell {
+            file: file.to_owned(),
+            row,
+            column: column.map(str::to_owned),
+            problem,
+        };
         let (names, rows) = match format {
             Format::Csv => {
                 let mut reader = csv::ReaderBuilder::new().flexible(false).from_reader(bytes);
-                let names: Vec<String> = reader.headers().map_err(|e| cell_error(0, None, format!("the header does not parse: {e}")))?.iter().map(str::to_owned).collect();
+                let names: Vec<String> = reader
+                    .headers()
+                    .map_err(|e| cell_error(0, None, format!("the header does not parse: {e}")))?
+                    .iter()
+                    .map(str::to_owned)
+                    .collect();
                 let mut rows = Vec::new();
                 for (i, record) in reader.records().enumerate() {
                     let record = record.map_err(|e| cell_error(i + 1, None, e.to_string()))?;
-                    rows.push(record.iter().map(|c| if c.is_empty() { Raw::Absent } else { c.parse::<f64>().map_or_else(|_| Raw::Text(c.to_owned()), Raw::Number) }).collect::<Vec<_>>());
+                    rows.push(
+                        record
+                            .iter()
+                            .map(|c| {
+                                if c.is_empty() {
+                                    Raw::Absent
+                                } else {
+                                    c.parse::<f64>().map_or_else(|_| Raw::Text(c.to_owned()), Raw::Number)
+                                }
+                            })
+                            .collect::<Vec<_>>(),
+                    );
                     if rows.len() > MAX_ROWS {
                         return Err(TableError::TooLarge { file: file.to_owned(), limit: MAX_ROWS });
                     }
@@ -185,8 +214,8 @@ impl Table {
                 let mut names: Vec<String> = Vec::new();
                 let mut rows: Vec<Vec<Raw>> = Vec::new();
                 for (i, line) in text.lines().enumerate().filter(|(_, l)| !l.trim().is_empty()) {
-                    let object: serde_json::Map<String, serde_json::Value> =
-                        serde_json::from_str(line).map_err(|e| cell_error(i + 1, None, format!("not a JSON object: {e}")))?;
+                    let object: serde_json::Map<String, serde_json::Value> = serde_json::from_str(line)
+                        .map_err(|e| cell_error(i + 1, None, format!("not a JSON object: {e}")))?;
                     let mut row: Vec<Raw> = (0..names.len()).map(|_| Raw::Absent).collect();
                     for (name, value) in object {
                         let raw = match value {
@@ -218,10 +247,25 @@ impl Table {
     }
 
     /// A table from rows of cells under `names`.
-    fn from_rows(names: Vec<String>, rows: Vec<Vec<Raw>>, file: &str, key: &str, updated: Option<&str>) -> Result<Table, TableError> {
-        let cell_error = |row: usize, column: Option<&str>, problem: String| TableError::Cell { file: file.to_owned(), row, column: column.map(str::to_owned), problem };
+    fn from_rows(
+        names: Vec<String>,
+        rows: Vec<Vec<Raw>>,
+        file: &str,
+        key: &str,
+        updated: Option<&str>,
+    ) -> Result<Table, TableError> {
+        let cell_error = |row: usize, column: Option<&str>, problem: String| TableError::Cell {
+            file: file.to_owned(),
+            row,
+            column: column.map(str::to_owned),
+            problem,
+        };
         let column_of = |name: &str| {
-            names.iter().position(|n| n == name).ok_or_else(|| TableError::NoColumn { file: file.to_owned(), column: name.to_owned(), columns: names.clone() })
+            names.iter().position(|n| n == name).ok_or_else(|| TableError::NoColumn {
+                file: file.to_owned(),
+                column: name.to_owned(),
+                columns: names.clone(),
+            })
         };
         let key_at = column_of(key)?;
         let updated_at = updated.map(column_of).transpose()?;
@@ -230,7 +274,8 @@ impl Table {
         // Keys.
         // foldhash: lookups are the request path. Keys come from the batch
         // job's file, not from clients, so a fast hasher is safe here.
-        let mut index: HashMap<Box<str>, u32, foldhash::fast::RandomState> = HashMap::with_capacity_and_hasher(rows.len(), foldhash::fast::RandomState::default());
+        let mut index: HashMap<Box<str>, u32, foldhash::fast::RandomState> =
+            HashMap::with_capacity_and_hasher(rows.len(), foldhash::fast::RandomState::default());
         for (r, row) in rows.iter().enumerate() {
             let text = match cell(row, key_at) {
                 Raw::Text(t) => t.clone(),
@@ -238,7 +283,12 @@ impl Table {
                 Raw::Absent => return Err(cell_error(r + 1, Some(key), "no key".into())),
             };
             if let Some(first) = index.insert(text.clone().into_boxed_str(), r as u32) {
-                return Err(TableError::DuplicateKey { file: file.to_owned(), key: text, first: first as usize + 1, second: r + 1 });
+                return Err(TableError::DuplicateKey {
+                    file: file.to_owned(),
+                    key: text,
+                    first: first as usize + 1,
+                    second: r + 1,
+                });
             }
         }
         // Freshness.
@@ -249,7 +299,18 @@ impl Table {
                 for (r, row) in rows.iter().enumerate() {
                     times.push(match cell(row, c) {
                         Raw::Number(n) => *n,
-                        Raw::Text(t) => t.parse::<Timestamp>().map_err(|e| cell_error(r + 1, Some(&names[c]), format!("`{t}` is not a time (RFC 3339, or Unix seconds): {e}")))?.as_millisecond() as f64 / 1000.0,
+                        Raw::Text(t) => {
+                            t.parse::<Timestamp>()
+                                .map_err(|e| {
+                                    cell_error(
+                                        r + 1,
+                                        Some(&names[c]),
+                                        format!("`{t}` is not a time (RFC 3339, or Unix seconds): {e}"),
+                                    )
+                                })?
+                                .as_millisecond() as f64
+                                / 1000.0
+                        }
                         Raw::Absent => f64::NAN,
                     });
                 }
@@ -260,7 +321,9 @@ impl Table {
         let columns = (0..width)
             .map(|c| {
                 if rows.iter().all(|row| !matches!(cell(row, c), Raw::Text(_))) {
-                    Column::Numbers(rows.iter().map(|row| if let Raw::Number(n) = cell(row, c) { *n } else { f64::NAN }).collect())
+                    Column::Numbers(
+                        rows.iter().map(|row| if let Raw::Number(n) = cell(row, c) { *n } else { f64::NAN }).collect(),
+                    )
                 } else {
                     Column::Texts(
                         rows.iter()
@@ -334,7 +397,8 @@ impl Table {
 fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>>), TableError> {
     use parquet::arrow::arrow_reader::ParquetRecordBatchReaderBuilder;
     let whole = |problem: String| TableError::Cell { file: file.to_owned(), row: 0, column: None, problem };
-    let builder = ParquetRecordBatchReaderBuilder::try_new(bytes::Bytes::from(bytes)).map_err(|e| whole(format!("not a Parquet file: {e}")))?;
+    let builder = ParquetRecordBatchReaderBuilder::try_new(bytes::Bytes::from(bytes))
+        .map_err(|e| whole(format!("not a Parquet file: {e}")))?;
     let total = usize::try_from(builder.metadata().file_metadata().num_rows()).unwrap_or(usize::MAX);
     if total > MAX_ROWS {
         return Err(TableError::TooLarge { file: file.to_owned(), limit: MAX_ROWS });
@@ -343,11 +407,21 @@ fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>
     let reader = builder.build().map_err(|e| whole(e.to_string()))?;
     let mut rows: Vec<Vec<Raw>> = Vec::with_capacity(total);
     for batch in reader {
-        let batch = batch.map_err(|e| TableError::Cell { file: file.to_owned(), row: rows.len() + 1, column: None, problem: e.to_string() })?;
+        let batch = batch.map_err(|e| TableError::Cell {
+            file: file.to_owned(),
+            row: rows.len() + 1,
+            column: None,
+            problem: e.to_string(),
+        })?;
         let first = rows.len();
         rows.extend((0..batch.num_rows()).map(|_| Vec::with_capacity(names.len())));
         for (c, array) in batch.columns().iter().enumerate() {
-            let cells = parquet_cells(array.as_ref()).map_err(|problem| TableError::Cell { file: file.to_owned(), row: first + 1, column: Some(names[c].clone()), problem })?;
+            let cells = parquet_cells(array.as_ref()).map_err(|problem| TableError::Cell {
+                file: file.to_owned(),
+                row: first + 1,
+                column: Some(names[c].clone()),
+                problem,
+            })?;
             for (row, cell) in rows[first..].iter_mut().zip(cells) {
                 row.push(cell);
             }
@@ -363,14 +437,20 @@ fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>
 fn parquet_cells(array: &dyn arrow_array::Array) -> Result<Vec<Raw>, String> {
     use arrow_array::cast::AsArray;
     use arrow_array::types::{
-        Date32Type, Decimal128Type, Float32Type, Float64Type, Int8Type, Int16Type, Int32Type, Int64Type, TimestampMicrosecondType,
-        TimestampMillisecondType, TimestampNanosecondType, TimestampSecondType, UInt8Type, UInt16Type, UInt32Type, UInt64Type,
+        Date32Type, Decimal128Type, Float32Type, Float64Type, Int8Type, Int16Type, Int32Type, Int64Type,
+        TimestampMicrosecondType, TimestampMillisecondType, TimestampNanosecondType, TimestampSecondType, UInt8Type,
+        UInt16Type, UInt32Type, UInt64Type,
     };
     use arrow_schema::{DataType, TimeUnit};
-    fn numbers<T: arrow_array::ArrowPrimitiveType>(array: &dyn arrow_array::Array, f: impl Fn(T::Native) -> f64) -> Vec<Raw> {
+    fn numbers<T: arrow_array::ArrowPrimitiveType>(
+        array: &dyn arrow_array::Array,
+        f: impl Fn(T::Native) -> f64,
+    ) -> Vec<Raw> {
         array.as_primitive::<T>().iter().map(|v| v.map_or(Raw::Absent, |v| Raw::Number(f(v)))).collect()
     }
-    let texts = |it: &mut dyn Iterator<Item = Option<&str>>| it.map(|v| v.map_or(Raw::Absent, |t| Raw::Text(t.to_owned()))).collect();
+    let texts = |it: &mut dyn Iterator<Item = Option<&str>>| {
+        it.map(|v| v.map_or(Raw::Absent, |t| Raw::Text(t.to_owned()))).collect()
+    };
     Ok(match array.data_type() {
         DataType::Null => (0..array.len()).map(|_| Raw::Absent).collect(),
         DataType::Float64 => numbers::<Float64Type>(array, |v| v),
@@ -392,7 +472,9 @@ fn parquet_cells(array: &dyn arrow_array::Array) -> Result<Vec<Raw>, String> {
         DataType::Timestamp(TimeUnit::Microsecond, _) => numbers::<TimestampMicrosecondType>(array, |v| v as f64 / 1e6),
         DataType::Timestamp(TimeUnit::Nanosecond, _) => numbers::<TimestampNanosecondType>(array, |v| v as f64 / 1e9),
         DataType::Date32 => numbers::<Date32Type>(array, |d| f64::from(d) * 86_400.0),
-        DataType::Boolean => array.as_boolean().iter().map(|v| v.map_or(Raw::Absent, |b| Raw::Text(b.to_string()))).collect(),
+        DataType::Boolean => {
+            array.as_boolean().iter().map(|v| v.map_or(Raw::Absent, |b| Raw::Text(b.to_string()))).collect()
+        }
         DataType::Utf8 => texts(&mut array.as_string::<i32>().iter()),
         DataType::LargeUtf8 => texts(&mut array.as_string::<i64>().iter()),
         DataType::Utf8View => texts(&mut array.as_string_view().iter()),
@@ -457,13 +539,21 @@ mod tests {
 
     #[test]
     fn bad_tables_are_refused_naming_row_and_column() {
-        let err = |text: &str, format, updated| Table::parse(text.as_bytes(), format, "t", "site", updated).unwrap_err().to_string();
+        let err = |text: &str, format, updated| {
+            Table::parse(text.as_bytes(), format, "t", "site", updated).unwrap_err().to_string()
+        };
         assert_eq!(err("site,x\na,1\na,2\n", Format::Csv, None), "t: rows 1 and 2 share the key `a`");
         assert_eq!(err("site,x\na,1\n,2\n", Format::Csv, None), "t: row 2, column `site`: no key");
         assert_eq!(err("place,x\na,1\n", Format::Csv, None), "t: no column `site` (the file has place, x)");
         assert!(err("site,x\na,1,3\n", Format::Csv, None).starts_with("t: row 1: "));
-        assert!(err("site,when\na,yesterday\n", Format::Csv, Some("when")).starts_with("t: row 1, column `when`: `yesterday` is not a time"));
-        assert!(err("{\"site\": \"a\"}\n{\"site\": [1]}\n", Format::Ndjson, None).starts_with("t: row 2, column `site`: an array or object"));
+        assert!(
+            err("site,when\na,yesterday\n", Format::Csv, Some("when"))
+                .starts_with("t: row 1, column `when`: `yesterday` is not a time")
+        );
+        assert!(
+            err("{\"site\": \"a\"}\n{\"site\": [1]}\n", Format::Ndjson, None)
+                .starts_with("t: row 2, column `site`: an array or object")
+        );
         assert!(err("{\"site\": \"a\"}\nnot json\n", Format::Ndjson, None).starts_with("t: row 2: not a JSON object"));
     }
 }

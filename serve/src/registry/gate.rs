@@ -11,10 +11,10 @@ use sha2::{Digest as _, Sha256};
 use super::status::Refusal;
 use super::{Shared, layout, ledger};
 use paddock_host::artifact::Artifact;
-use paddock_host::sandbox::verify::CheckReport;
 use paddock_host::artifact::digest::Digest;
-use paddock_host::sandbox::model::Model;
 use paddock_host::artifact::trust::{Admission, Vouch};
+use paddock_host::sandbox::model::Model;
+use paddock_host::sandbox::verify::CheckReport;
 
 /// A fingerprint of an artifact's bytes and its vouch: unchanged files are
 /// not gated again.
@@ -31,7 +31,14 @@ pub(crate) struct Loaded {
 }
 
 /// The gate: trust → parse → compile, start, contract → identity → checks.
-pub(super) fn gate(shared: &Shared, f: &layout::Found, model: &str, version: &Version, bytes: Vec<u8>, vouch: Option<&[u8]>) -> Result<Loaded, Refusal> {
+pub(super) fn gate(
+    shared: &Shared,
+    f: &layout::Found,
+    model: &str,
+    version: &Version,
+    bytes: Vec<u8>,
+    vouch: Option<&[u8]>,
+) -> Result<Loaded, Refusal> {
     let digest = Digest::of(&bytes);
     let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
     let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
@@ -46,7 +53,11 @@ pub(super) fn gate(shared: &Shared, f: &layout::Found, model: &str, version: &Ve
     .map_err(|e| Refusal::Load(Arc::new(e)))?;
     let contract = loaded.contract();
     if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
-        return Err(Refusal::Identity { name: contract.name.clone(), version: contract.version.clone(), path: f.rel.clone() });
+        return Err(Refusal::Identity {
+            name: contract.name.clone(),
+            version: contract.version.clone(),
+            path: f.rel.clone(),
+        });
     }
     let report = match &checks {
         Some(c) => {
@@ -96,4 +107,3 @@ pub(super) fn read_artifact(path: &Path, limit: u64) -> Result<(Vec<u8>, Option<
     };
     Ok((bytes, vouch))
 }
-

@@ -102,11 +102,7 @@ pub(crate) fn scan(store: &Path) -> std::io::Result<Vec<Found>> {
                 found.push(Found { path: file.path(), rel: Path::new(&model).join(&file_name), identity });
             }
         } else if name.ends_with(".wasm") {
-            found.push(Found {
-                path,
-                rel: PathBuf::from(&name),
-                identity: Err(PlaceError::NotInModelDirectory),
-            });
+            found.push(Found { path, rel: PathBuf::from(&name), identity: Err(PlaceError::NotInModelDirectory) });
         }
     }
     found.sort_by(|a, b| a.rel.cmp(&b.rel));

@@ -435,7 +435,8 @@ impl Ledger {
                 skipped.push(format!("{} {}", u.model, u.version));
                 continue;
             };
-            let recorded = walls.iter().find(|w| w.model == u.model && w.version == u.version).map_or(&[][..], |w| &w.recorded);
+            let recorded =
+                walls.iter().find(|w| w.model == u.model && w.version == u.version).map_or(&[][..], |w| &w.recorded);
             self.version(&u.model, &version).absorb(u, recorded);
         }
         for s in &usage.shadows {

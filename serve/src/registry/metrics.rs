@@ -35,9 +35,9 @@ use std::collections::BTreeMap;
 use std::fmt::Write;
 
 use super::ledger::{UsageReport, WALL_BUCKETS};
+use super::{ArtifactState, Status};
 use crate::features::SourceUsage;
 use crate::features::counts::LATENCY_BUCKETS;
-use super::{ArtifactState, Status};
 
 /// The media type of the text this module writes.
 pub const CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
@@ -110,7 +110,8 @@ fn sources(out: &mut String, sources: &[SourceUsage]) {
     declare(out, "lookups", "counter", "Features of rows looked up in a source, by outcome.");
     for s in sources {
         for (outcome, n) in &s.lookups {
-            let _ = writeln!(out, "paddock_lookups_total{{source=\"{}\",outcome=\"{outcome}\"}} {n}", escape(&s.source));
+            let _ =
+                writeln!(out, "paddock_lookups_total{{source=\"{}\",outcome=\"{outcome}\"}} {n}", escape(&s.source));
         }
     }
     let servers: Vec<&SourceUsage> = sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
@@ -126,7 +127,12 @@ fn sources(out: &mut String, sources: &[SourceUsage]) {
             let _ = writeln!(out, "paddock_{name}_total{{source=\"{}\"}} {}", escape(&s.source), value(s));
         }
     }
-    declare(out, "source_round_trip_seconds", "histogram", "Time per round trip to a feature server, from sending to the answer or giving up.");
+    declare(
+        out,
+        "source_round_trip_seconds",
+        "histogram",
+        "Time per round trip to a feature server, from sending to the answer or giving up.",
+    );
     for s in &servers {
         let base = format!("source=\"{}\"", escape(&s.source));
         for (le, count) in LATENCY_BUCKETS.iter().zip(&s.latency_buckets) {
@@ -159,7 +165,9 @@ pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]
             ("in_flight", "gauge", "Calls to a model version running now.", |u| Some(u.in_flight.to_string())),
         ],
         &[
-            ("errors", "Failed calls to a model version, by kind of error: the model's own failures.", "kind", |u| &u.errors),
+            ("errors", "Failed calls to a model version, by kind of error: the model's own failures.", "kind", |u| {
+                &u.errors
+            }),
             (
                 "refused_rows",
                 "Rows refused before the sandbox, by kind: the request's fault, not the model's.",
@@ -169,7 +177,12 @@ pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]
             ("limit_hits", "Calls stopped by a limit, by limit.", "limit", |u| &u.limit_hits),
         ],
     );
-    declare(&mut out, "call_seconds", "histogram", "Wall time per call, from taking an instance to checking the outputs.");
+    declare(
+        &mut out,
+        "call_seconds",
+        "histogram",
+        "Wall time per call, from taking an instance to checking the outputs.",
+    );
     for u in &usage.versions {
         let base = format!("model=\"{}\",version=\"{}\"", escape(&u.model), escape(&u.version));
         for (le, count) in WALL_BUCKETS.iter().zip(&u.wall_us.buckets) {
@@ -184,18 +197,24 @@ pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]
         &usage.shadows,
         |s| (&s.model, &s.version),
         &[
-            ("shadow_compared", "counter", "Requests a shadow version scored and compared with the served answer.", |s| {
-                Some(s.compared.to_string())
-            }),
+            (
+                "shadow_compared",
+                "counter",
+                "Requests a shadow version scored and compared with the served answer.",
+                |s| Some(s.compared.to_string()),
+            ),
             (
                 "shadow_over_tolerance",
                 "counter",
                 "Output values where the shadow differed from the served answer by more than the tolerance.",
                 |s| Some(s.over_tolerance.to_string()),
             ),
-            ("shadow_max_abs_diff", "gauge", "Largest absolute difference between a shadow's and the served answer.", |s| {
-                Some(num(s.max_abs_diff))
-            }),
+            (
+                "shadow_max_abs_diff",
+                "gauge",
+                "Largest absolute difference between a shadow's and the served answer.",
+                |s| Some(num(s.max_abs_diff)),
+            ),
             ("shadow_dropped", "counter", "Shadow samples dropped because the shadow queue was full.", |s| {
                 Some(s.dropped.to_string())
             }),
@@ -270,11 +289,20 @@ mod tests {
         let text = render(&usage, &status, &sources, "# TYPE paddock_test_things gauge\npaddock_test_things 3\n");
         assert!(text.contains("paddock_lookups_total{source=\"live \\\"site\\\"\",outcome=\"found\"} 1\n"), "{text}");
         assert!(text.contains("paddock_source_timeouts_total{source=\"live \\\"site\\\"\"} 1\n"), "{text}");
-        assert!(text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.0025\"} 0\n"), "{text}");
-        assert!(text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.005\"} 1\n"), "{text}");
+        assert!(
+            text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.0025\"} 0\n"),
+            "{text}"
+        );
+        assert!(
+            text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.005\"} 1\n"),
+            "{text}"
+        );
         // OpenMetrics 1.0, "ABNF" section: label values escape \ " and newline.
         assert!(text.contains(r#"paddock_calls_total{model="a\"b\\c\nd",version="1.0.0"} 3"#), "{text}");
-        assert!(text.contains(r#"paddock_call_seconds_bucket{model="a\"b\\c\nd",version="1.0.0",le="+Inf"} 3"#), "{text}");
+        assert!(
+            text.contains(r#"paddock_call_seconds_bucket{model="a\"b\\c\nd",version="1.0.0",le="+Inf"} 3"#),
+            "{text}"
+        );
         assert!(text.contains(r#"le="0.0025"} 1"#), "{text}");
         assert!(text.contains("paddock_call_seconds_sum{model=\"a\\\"b\\\\c\\nd\",version=\"1.0.0\"} 0.5"), "{text}");
         assert!(text.contains("paddock_generation 7\n"), "{text}");

@@ -41,22 +41,25 @@ use jiff::Timestamp;
 use semver::Version;
 use serde::Serialize;
 
-use paddock_host::artifact::digest::Digest;
-use paddock_host::sandbox::codecache::{CacheError, CodeCache};
 use crate::features::{Fetched, GatherError, Resolved};
-use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError};
+use paddock_host::artifact::digest::Digest;
+use paddock_host::artifact::trust::TrustPolicy;
 use paddock_host::contract::rows::{Row, RowError};
 use paddock_host::sandbox::Runtime;
-use paddock_host::artifact::trust::TrustPolicy;
+use paddock_host::sandbox::codecache::{CacheError, CodeCache};
+use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError};
 
 use gate::Loaded;
 use reload::Memory;
 
 pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
-pub use status::{ArtifactState, ArtifactStatus, FeaturesState, GateStep, RefusedFile, Refusal, ReloadReport, RoutesState, ServerStatus, Status, TableStatus};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
-pub use usage_file::{SavedUsage, usage_path};
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
+pub use status::{
+    ArtifactState, ArtifactStatus, FeaturesState, GateStep, Refusal, RefusedFile, ReloadReport, RoutesState,
+    ServerStatus, Status, TableStatus,
+};
+pub use usage_file::{SavedUsage, usage_path};
 pub use watch::Watcher;
 
 /// How a registry loads and serves.
@@ -293,7 +296,12 @@ struct Gathered {
 
 fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
     let now = now.as_millisecond() as f64 / 1000.0;
-    let mut g = Gathered { rows: Vec::with_capacity(request.rows.len()), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
+    let mut g = Gathered {
+        rows: Vec::with_capacity(request.rows.len()),
+        numbers: Vec::new(),
+        problems: Vec::new(),
+        lookups: Vec::new(),
+    };
     for (i, result) in plan.gather_rows(request.context, request.rows, now, request.lookups).into_iter().enumerate() {
         match result {
             Ok((row, fetched)) => {
@@ -318,7 +326,10 @@ fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
 impl Gathered {
     /// The scoring result with rows numbered as the request numbered them,
     /// and the lookup problems among the others.
-    fn renumber(&self, result: Result<paddock_host::sandbox::model::Scored, ScoreError>) -> Result<paddock_host::sandbox::model::Scored, ScoreError> {
+    fn renumber(
+        &self,
+        result: Result<paddock_host::sandbox::model::Scored, ScoreError>,
+    ) -> Result<paddock_host::sandbox::model::Scored, ScoreError> {
         let number = |n: usize| self.numbers.get(n.wrapping_sub(1)).copied().unwrap_or(n);
         let merge = |mut problems: Vec<RowError>| {
             for p in &mut problems {
@@ -484,7 +495,9 @@ impl Registry {
         });
         match started {
             Ok(_) => *self.inner.flush_stop.lock().unwrap_or_else(|e| e.into_inner()) = Some(tx),
-            Err(e) => tracing::warn!(error = %e, "cannot start the usage flush thread; usage is written at shutdown only"),
+            Err(e) => {
+                tracing::warn!(error = %e, "cannot start the usage flush thread; usage is written at shutdown only")
+            }
         }
     }
 
@@ -596,12 +609,7 @@ impl Registry {
                 } else {
                     served.ledger.record_error(request.rows.len(), &error, started.elapsed());
                 }
-                Err(RequestError::Score {
-                    model: request.model.to_owned(),
-                    version,
-                    reason,
-                    error,
-                })
+                Err(RequestError::Score { model: request.model.to_owned(), version, reason, error })
             }
         }
     }
@@ -694,5 +702,4 @@ impl Registry {
     pub fn watch(&self, settle: Duration, rescan: Duration) -> Result<Watcher, RegistryError> {
         Watcher::start(self.clone(), settle, rescan, true)
     }
-
 }

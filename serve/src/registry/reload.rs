@@ -16,12 +16,12 @@ use super::gate::{self, Fingerprint, Loaded};
 use super::layout::{self, FEATURES_FILE, ROUTES_FILE};
 use super::routes::{Routes, RoutesError};
 use super::status::{
-    ArtifactState, ArtifactStatus, FeaturesState, RefusedFile, Refusal, ReloadReport, RoutesState, ServerStatus, Status, TableStatus,
-    loaded_status, refused_status,
+    ArtifactState, ArtifactStatus, FeaturesState, Refusal, RefusedFile, ReloadReport, RoutesState, ServerStatus,
+    Status, TableStatus, loaded_status, refused_status,
 };
 use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
-use paddock_host::artifact::digest::Digest;
 use crate::features::{Plan, RedisSource, Resolved, Source, SourceCounts, Sources, Table};
+use paddock_host::artifact::digest::Digest;
 
 /// Loaded versions, by model and version.
 type Versions = BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>;
@@ -80,7 +80,8 @@ impl Registry {
         let shared = &*self.inner;
         let mut memory = shared.memory.lock().unwrap_or_else(|e| e.into_inner());
         let old = shared.current.load_full();
-        let found = layout::scan(&shared.dir).map_err(|source| RegistryError::Store { path: shared.dir.clone(), source })?;
+        let found =
+            layout::scan(&shared.dir).map_err(|source| RegistryError::Store { path: shared.dir.clone(), source })?;
         let mut report = ReloadReport::default();
         let mut next = gate_files(shared, &found, &old, &mut memory, &mut report);
         let removed = removed_versions(&old, &next.versions);
@@ -97,7 +98,13 @@ impl Registry {
 /// Step 1: every artifact through the gate, or remembered when its bytes
 /// and vouch are unchanged. New bytes that fail keep the old version of the
 /// same path serving.
-fn gate_files(shared: &Shared, found: &[layout::Found], old: &Snapshot, memory: &mut Memory, report: &mut ReloadReport) -> Next {
+fn gate_files(
+    shared: &Shared,
+    found: &[layout::Found],
+    old: &Snapshot,
+    memory: &mut Memory,
+    report: &mut ReloadReport,
+) -> Next {
     let mut next = Next::default();
     let mut files = HashMap::new();
     for f in found {
@@ -143,7 +150,10 @@ fn gate_files(shared: &Shared, found: &[layout::Found], old: &Snapshot, memory: 
                     Some(loaded) => {
                         next.statuses.push(ArtifactStatus {
                             digest,
-                            ..loaded_status(loaded, ArtifactState::KeptAfterRefusal { serving: loaded.model.digest(), refusal })
+                            ..loaded_status(
+                                loaded,
+                                ArtifactState::KeptAfterRefusal { serving: loaded.model.digest(), refusal },
+                            )
                         });
                         next.versions.entry(model).or_default().insert(version, loaded.clone());
                     }
@@ -180,15 +190,22 @@ fn read_routes(
     report: &mut ReloadReport,
 ) -> (Arc<Routes>, RoutesState) {
     let routes_path = shared.dir.join(ROUTES_FILE);
-    let available =
-        |m: &str, v: &Version| versions.get(m).is_some_and(|vs| vs.contains_key(v)) || removed.get(m).is_some_and(|vs| vs.contains_key(v));
+    let available = |m: &str, v: &Version| {
+        versions.get(m).is_some_and(|vs| vs.contains_key(v)) || removed.get(m).is_some_and(|vs| vs.contains_key(v))
+    };
     match std::fs::read(&routes_path) {
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
             // Still no routes file: the same (empty) routes, no new generation.
-            let routes = if matches!(old.status.routes, RoutesState::Missing) { old.routes.clone() } else { Arc::new(Routes::empty()) };
+            let routes = if matches!(old.status.routes, RoutesState::Missing) {
+                old.routes.clone()
+            } else {
+                Arc::new(Routes::empty())
+            };
             (routes, RoutesState::Missing)
         }
-        Err(e) => (old.routes.clone(), RoutesState::Refused { problems: vec![format!("{}: {e}", routes_path.display())] }),
+        Err(e) => {
+            (old.routes.clone(), RoutesState::Refused { problems: vec![format!("{}: {e}", routes_path.display())] })
+        }
         Ok(bytes) => {
             let fp = gate::fingerprint(&bytes, None);
             let parsed = std::str::from_utf8(&bytes)
@@ -246,7 +263,13 @@ fn keep_routed(routes: &Routes, removed: Versions, next: &mut Next, report: &mut
 /// Step 5: the features file, its tables, and the plan held to every
 /// served version's contract; the whole refused (the previous plan and
 /// tables keep serving) when anything is wrong.
-fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions: &Versions, report: &mut ReloadReport) -> (Arc<FeatureSet>, FeaturesState) {
+fn read_features(
+    shared: &Shared,
+    old: &Snapshot,
+    memory: &mut Memory,
+    versions: &Versions,
+    report: &mut ReloadReport,
+) -> (Arc<FeatureSet>, FeaturesState) {
     let path = shared.dir.join(FEATURES_FILE);
     let bytes = match std::fs::read(&path) {
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
@@ -255,12 +278,20 @@ fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions:
             let set = if old.status.features == FeaturesState::Missing { old.features.clone() } else { Arc::default() };
             return (set, FeaturesState::Missing);
         }
-        Err(e) => return (old.features.clone(), FeaturesState::Refused { problems: vec![format!("{}: {e}", path.display())] }),
+        Err(e) => {
+            return (
+                old.features.clone(),
+                FeaturesState::Refused { problems: vec![format!("{}: {e}", path.display())] },
+            );
+        }
         Ok(bytes) => bytes,
     };
-    let plan = std::str::from_utf8(&bytes)
-        .map_err(|e| vec![format!("{FEATURES_FILE}: not UTF-8 text: {e}")])
-        .and_then(|text| Plan::parse(text, FEATURES_FILE, &shared.dir).map_err(|e| e.problems.iter().map(|p| format!("{FEATURES_FILE}: {p}")).collect()));
+    let plan = std::str::from_utf8(&bytes).map_err(|e| vec![format!("{FEATURES_FILE}: not UTF-8 text: {e}")]).and_then(
+        |text| {
+            Plan::parse(text, FEATURES_FILE, &shared.dir)
+                .map_err(|e| e.problems.iter().map(|p| format!("{FEATURES_FILE}: {p}")).collect())
+        },
+    );
     let stamp = |p: &std::path::Path| std::fs::metadata(p).map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
     let tables: Vec<(PathBuf, TableStamp)> = match &plan {
         Ok(plan) => plan
@@ -294,7 +325,12 @@ fn read_features(shared: &Shared, old: &Snapshot, memory: &mut Memory, versions:
 
 /// The plan's tables (read again only when changed) and its resolution for
 /// every served version of the models it names.
-fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &Versions) -> Result<(FeatureSet, Vec<TableStatus>, Vec<ServerStatus>), Vec<String>> {
+fn build_features(
+    shared: &Shared,
+    plan: &Plan,
+    memory: &mut Memory,
+    versions: &Versions,
+) -> Result<(FeatureSet, Vec<TableStatus>, Vec<ServerStatus>), Vec<String>> {
     let mut problems = Vec::new();
     let mut tables = BTreeMap::new();
     let mut statuses = Vec::new();
@@ -316,7 +352,11 @@ fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &
                 };
                 match made {
                     Ok(r) => {
-                        servers.push(ServerStatus { source: name.clone(), url: r.shown_url(), budget_ms: u64::try_from(budget.as_millis()).unwrap_or(u64::MAX) });
+                        servers.push(ServerStatus {
+                            source: name.clone(),
+                            url: r.shown_url(),
+                            budget_ms: u64::try_from(budget.as_millis()).unwrap_or(u64::MAX),
+                        });
                         kept_redis.insert(id, r.clone());
                         redis.insert(name.clone(), r);
                     }
@@ -334,7 +374,9 @@ fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &
         };
         match table {
             Ok(t) => {
-                let when = |t: Option<std::time::SystemTime>| t.and_then(|t| Timestamp::try_from(t).ok()).map(|t| t.to_string()).unwrap_or_default();
+                let when = |t: Option<std::time::SystemTime>| {
+                    t.and_then(|t| Timestamp::try_from(t).ok()).map(|t| t.to_string()).unwrap_or_default()
+                };
                 statuses.push(TableStatus {
                     source: name.clone(),
                     file: path.strip_prefix(&shared.dir).unwrap_or(path).to_owned(),
@@ -358,7 +400,14 @@ fn build_features(shared: &Shared, plan: &Plan, memory: &mut Memory, versions: &
     let mut set = FeatureSet::default();
     for model in plan.models.keys() {
         for (version, loaded) in versions.get(model).into_iter().flatten() {
-            match Resolved::new(plan, &sources, model, version, loaded.model.contract(), loaded.model.options().limits.deadline) {
+            match Resolved::new(
+                plan,
+                &sources,
+                model,
+                version,
+                loaded.model.contract(),
+                loaded.model.options().limits.deadline,
+            ) {
                 Ok(Some(r)) => {
                     set.resolved.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
                 }

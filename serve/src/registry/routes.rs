@@ -146,7 +146,8 @@ impl fmt::Display for Reason {
             Reason::Default => f.write_str("default"),
             Reason::RoutingRule { name } => write!(f, "rule {name}"),
             Reason::Canary { cohort, share, instead_of } => {
-                let instead = if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule {instead_of}") };
+                let instead =
+                    if instead_of == DEFAULT_ROUTE { "default".to_owned() } else { format!("rule {instead_of}") };
                 write!(f, "canary: {cohort} in its {}% (else {instead})", share * 100.0)
             }
         }
@@ -237,7 +238,8 @@ impl Routes {
     /// with no condition, duplicate rule names, unknown names in
     /// `applies_to`.
     pub fn parse(text: &str) -> Result<Routes, RoutesError> {
-        let file: File = toml::from_str(text).map_err(|e| RoutesError { problems: vec![e.to_string().trim().to_owned()] })?;
+        let file: File =
+            toml::from_str(text).map_err(|e| RoutesError { problems: vec![e.to_string().trim().to_owned()] })?;
         let mut problems = Vec::new();
         let file_zone = match &file.zone {
             Some(name) => zone(name, "the file", &mut problems),
@@ -286,7 +288,9 @@ impl Routes {
                     None
                 };
                 if r.context.is_empty() && r.days.is_none() && r.hours.is_none() {
-                    p.push(format!("{here}: has no condition (give context values, days or hours); use `default` instead"));
+                    p.push(format!(
+                        "{here}: has no condition (give context values, days or hours); use `default` instead"
+                    ));
                 }
                 if let Some(version) = version {
                     rules.push(RoutingRule { name: r.name.clone(), version, context, window });
@@ -323,7 +327,13 @@ impl Routes {
             let canary_reasons = match &canary {
                 Some(c) => reasons
                     .iter()
-                    .map(|base| Arc::new(Reason::Canary { cohort: c.cohort.clone(), share: c.share, instead_of: base.route().to_owned() }))
+                    .map(|base| {
+                        Arc::new(Reason::Canary {
+                            cohort: c.cohort.clone(),
+                            share: c.share,
+                            instead_of: base.route().to_owned(),
+                        })
+                    })
                     .collect(),
                 None => Vec::new(),
             };
@@ -462,7 +472,11 @@ fn share(value: f64, at: &str, problems: &mut Vec<String>) {
 }
 
 fn zone(name: &str, at: &str, problems: &mut Vec<String>) -> Option<TimeZone> {
-    TimeZone::get(name).map_err(|_| problems.push(format!("{at}: unknown time zone `{name}` (use an IANA name such as `Europe/Oslo`)"))).ok()
+    TimeZone::get(name)
+        .map_err(|_| {
+            problems.push(format!("{at}: unknown time zone `{name}` (use an IANA name such as `Europe/Oslo`)"))
+        })
+        .ok()
 }
 
 const DAY_NAMES: [&str; 7] = ["mon", "tue", "wed", "thu", "fri", "sat", "sun"];
@@ -497,7 +511,8 @@ fn days(items: &[String], at: &str, problems: &mut Vec<String>) -> u8 {
         };
         match parsed {
             Some(m) => mask |= m,
-            None => problems.push(format!("{at}: days: `{item}` is not a day or range of days (mon, tue, …, sun; \"mon-fri\")")),
+            None => problems
+                .push(format!("{at}: days: `{item}` is not a day or range of days (mon, tue, …, sun; \"mon-fri\")")),
         }
     }
     mask

@@ -11,8 +11,8 @@ use std::sync::mpsc::{Receiver, SyncSender, TrySendError, sync_channel};
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use paddock_host::sandbox::model::Estimates;
 use paddock_host::contract::rows::Row;
+use paddock_host::sandbox::model::Estimates;
 
 use super::gate::Loaded;
 use super::ledger::ShadowLedger;
@@ -39,10 +39,8 @@ impl Shadows {
         let (tx, rx) = sync_channel(capacity.max(1));
         let pending = Arc::new(AtomicU64::new(0));
         let worker_pending = pending.clone();
-        let started = std::thread::Builder::new()
-            .name("paddock-shadow".into())
-            .spawn(move || work(rx, worker_pending))
-            .is_ok();
+        let started =
+            std::thread::Builder::new().name("paddock-shadow".into()).spawn(move || work(rx, worker_pending)).is_ok();
         if !started {
             tracing::warn!("cannot start the shadow thread; shadow runs are off");
         }
@@ -111,7 +109,7 @@ fn compare(job: &Job) {
         .filter_map(|(k, o)| served_outputs.iter().position(|s| s.name == o.name).map(|j| (j, k)))
         .collect();
     let (answer, estimates) = (&job.answer, &estimates);
-    let values = (0..answer.rows())
-        .flat_map(|r| pairs.iter().map(move |&(j, k)| (answer.row(r)[j], estimates.row(r)[k])));
+    let values =
+        (0..answer.rows()).flat_map(|r| pairs.iter().map(move |&(j, k)| (answer.row(r)[j], estimates.row(r)[k])));
     job.ledger.record_diff(values, job.tolerance);
 }

@@ -13,13 +13,13 @@ use std::sync::Arc;
 use super::gate::Loaded;
 use super::layout::{self, PlaceError};
 use paddock_host::artifact::ArtifactError;
-use paddock_host::sandbox::verify::CaseFailure;
-use paddock_host::sandbox::codecache::CodeSource;
 use paddock_host::artifact::digest::Digest;
+use paddock_host::artifact::trust::{Admission, TrustError, VouchTextError};
 use paddock_host::limits::LimitHit;
+use paddock_host::sandbox::codecache::CodeSource;
 use paddock_host::sandbox::model::{LoadError, ScoreError};
 use paddock_host::sandbox::prime::PrimeState;
-use paddock_host::artifact::trust::{Admission, TrustError, VouchTextError};
+use paddock_host::sandbox::verify::CaseFailure;
 
 /// The stage at which an artifact was refused.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -118,7 +118,10 @@ impl Refusal {
             Refusal::Parse(e) => e.to_string(),
             Refusal::Load(e) => e.to_string(),
             Refusal::Identity { name, version, path } => {
-                format!("the contract says {name} {version}, but the file is at {} (`<model>/<version>.wasm`)", path.display())
+                format!(
+                    "the contract says {name} {version}, but the file is at {} (`<model>/<version>.wasm`)",
+                    path.display()
+                )
             }
             Refusal::ChecksDidNotRun(e) => format!("the checks could not run: {e}"),
             Refusal::ChecksFailed { failed, cases, first } => {
@@ -414,7 +417,12 @@ pub(super) fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactSt
     }
 }
 
-pub(super) fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, digest: Option<Digest>, refusal: Refusal) -> ArtifactStatus {
+pub(super) fn refused_status(
+    f: &layout::Found,
+    id: Option<&(String, Version)>,
+    digest: Option<Digest>,
+    refusal: Refusal,
+) -> ArtifactStatus {
     ArtifactStatus {
         path: f.rel.clone(),
         model: id.map(|(m, _)| m.clone()),
@@ -428,7 +436,6 @@ pub(super) fn refused_status(f: &layout::Found, id: Option<&(String, Version)>, 
         primed: None,
     }
 }
-
 
 #[cfg(test)]
 mod tests {

@@ -15,8 +15,8 @@ use std::path::{Path, PathBuf};
 use jiff::Timestamp;
 use serde::{Deserialize, Serialize};
 
-use super::ledger::{Ledger, SavedWall, UsageReport};
 use super::RegistryError;
+use super::ledger::{Ledger, SavedWall, UsageReport};
 
 /// The path of the usage file in a state directory.
 pub fn usage_path(state_dir: &Path) -> PathBuf {
@@ -53,8 +53,10 @@ impl StateLock {
     pub(crate) fn take(state_dir: &Path) -> Result<StateLock, RegistryError> {
         let path = state_dir.join("lock");
         let io = |source| RegistryError::State { path: path.clone(), source };
-        std::fs::create_dir_all(state_dir).map_err(|source| RegistryError::State { path: state_dir.to_owned(), source })?;
-        let mut file = OpenOptions::new().read(true).write(true).create(true).truncate(false).open(&path).map_err(io)?;
+        std::fs::create_dir_all(state_dir)
+            .map_err(|source| RegistryError::State { path: state_dir.to_owned(), source })?;
+        let mut file =
+            OpenOptions::new().read(true).write(true).create(true).truncate(false).open(&path).map_err(io)?;
         match file.try_lock() {
             Ok(()) => {}
             Err(std::fs::TryLockError::WouldBlock) => {

@@ -51,7 +51,12 @@ impl Watcher {
         Self::start(registry, Duration::ZERO, rescan, false)
     }
 
-    pub(super) fn start(registry: Registry, settle: Duration, rescan: Duration, events: bool) -> Result<Watcher, RegistryError> {
+    pub(super) fn start(
+        registry: Registry,
+        settle: Duration,
+        rescan: Duration,
+        events: bool,
+    ) -> Result<Watcher, RegistryError> {
         let dir = registry.dir().to_owned();
         let failed = |reason: String| RegistryError::Watch { path: dir.clone(), reason };
         let (tx, rx) = channel::<notify::Result<notify::Event>>();
@@ -92,7 +97,11 @@ impl Watcher {
                     let quiet_until = Instant::now() + settle;
                     while rx.recv_timeout(quiet_until.saturating_duration_since(Instant::now())).is_ok() {}
                     match registry.reload() {
-                        Ok(r) if r.changed => tracing::info!(generation = r.generation, took_ms = r.took.as_secs_f64() * 1e3, "store reloaded"),
+                        Ok(r) if r.changed => tracing::info!(
+                            generation = r.generation,
+                            took_ms = r.took.as_secs_f64() * 1e3,
+                            "store reloaded"
+                        ),
                         Ok(_) => {}
                         Err(e) => tracing::warn!(error = %e, "store reload failed; the current snapshot keeps serving"),
                     }

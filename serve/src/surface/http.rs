@@ -48,7 +48,7 @@ use sha2::{Digest as _, Sha256};
 use tokio::sync::Semaphore;
 
 use super::wire::{Blame, ErrorBody, EstimateAnswer, EstimateRequest, blame};
-use crate::registry::{ArtifactStatus, ReloadReport, Registry, Request, Status, metrics};
+use crate::registry::{ArtifactStatus, Registry, ReloadReport, Request, Status, metrics};
 
 /// The revision of this API, reported by `GET /catalogue`. It goes up when
 /// a route or a field changes meaning or goes away; added fields and routes
@@ -150,7 +150,11 @@ pub fn router(registry: Registry, options: ServeOptions) -> Router {
 ///
 /// # Errors
 /// The I/O error that stopped the server.
-pub async fn serve(listener: tokio::net::TcpListener, router: Router, shutdown: impl Future<Output = ()> + Send + 'static) -> std::io::Result<()> {
+pub async fn serve(
+    listener: tokio::net::TcpListener,
+    router: Router,
+    shutdown: impl Future<Output = ()> + Send + 'static,
+) -> std::io::Result<()> {
     axum::serve(listener, router).with_graceful_shutdown(shutdown).await
 }
 
@@ -271,7 +275,10 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Respons
             if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
                 gate.waiting.fetch_sub(1, Ordering::SeqCst);
                 app.registry.count_rejected("overloaded");
-                return overloaded(&app, format!("model {model} has {} requests waiting; try again later", app.options.queue));
+                return overloaded(
+                    &app,
+                    format!("model {model} has {} requests waiting; try again later", app.options.queue),
+                );
             }
             let permit = gate.permits.acquire().await;
             gate.waiting.fetch_sub(1, Ordering::SeqCst);
@@ -294,7 +301,10 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Respons
     match call.await {
         Ok(Ok(answer)) => json(StatusCode::OK, &answer),
         Ok(Err(e)) => answer_error(e),
-        Err(e) => error(StatusCode::INTERNAL_SERVER_ERROR, ErrorBody::new("server", format!("the scoring thread failed: {e}"))),
+        Err(e) => error(
+            StatusCode::INTERNAL_SERVER_ERROR,
+            ErrorBody::new("server", format!("the scoring thread failed: {e}")),
+        ),
     }
 }
 
@@ -347,7 +357,12 @@ pub(crate) async fn catalogue(State(app): State<Arc<App>>) -> Response {
             Some(e) => e.versions.push(a),
             None => {
                 let default_version = routes.model(&name).map(|r| r.default_version().to_string());
-                entries.push(CatalogueEntry { routed: default_version.is_some(), default_version, name, versions: vec![a] });
+                entries.push(CatalogueEntry {
+                    routed: default_version.is_some(),
+                    default_version,
+                    name,
+                    versions: vec![a],
+                });
             }
         }
     }
@@ -380,16 +395,31 @@ pub(crate) struct ContractQuery {
         (status = 404, description = "No such model (`unknown_model`) or version (`unknown_version`, with the loaded versions).", body = ErrorBody),
     )
 )]
-pub(crate) async fn contract(State(app): State<Arc<App>>, query: Result<Query<ContractQuery>, QueryRejection>) -> Response {
+pub(crate) async fn contract(
+    State(app): State<Arc<App>>,
+    query: Result<Query<ContractQuery>, QueryRejection>,
+) -> Response {
     let q = match query {
         Ok(Query(q)) => q,
-        Err(e) => return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("the query: {e}"))),
+        Err(e) => {
+            return rejected(
+                &app,
+                "bad_request",
+                StatusCode::BAD_REQUEST,
+                ErrorBody::bad_request(format!("the query: {e}")),
+            );
+        }
     };
     let model = q.model;
     let version = match &q.version {
         Some(v) => match semver::Version::parse(v) {
             Ok(v) => v,
-            Err(e) => return error(StatusCode::BAD_REQUEST, ErrorBody::bad_request(format!("version: {v:?} is not a semver version ({e})"))),
+            Err(e) => {
+                return error(
+                    StatusCode::BAD_REQUEST,
+                    ErrorBody::bad_request(format!("version: {v:?} is not a semver version ({e})")),
+                );
+            }
         },
         None => match app.registry.routes().model(&model) {
             Some(r) => r.default_version().clone(),
@@ -408,7 +438,10 @@ pub(crate) async fn contract(State(app): State<Arc<App>>, query: Result<Query<Co
         ErrorBody::new("unknown_model", format!("no model {model} is loaded"))
     } else {
         let list: Vec<String> = loaded.iter().map(ToString::to_string).collect();
-        let mut b = ErrorBody::new("unknown_version", format!("model {model} has no version {version} loaded (loaded: {})", list.join(", ")));
+        let mut b = ErrorBody::new(
+            "unknown_version",
+            format!("model {model} has no version {version} loaded (loaded: {})", list.join(", ")),
+        );
         b.error.details.insert("loaded".into(), list.into());
         b.error.version = Some(version.to_string());
         b
@@ -508,7 +541,10 @@ pub(crate) async fn openapi(State(app): State<Arc<App>>) -> Response {
 )]
 pub(crate) async fn rescan(State(app): State<Arc<App>>, headers: HeaderMap) -> Response {
     let Some(expected) = app.token_digest else {
-        return error(StatusCode::FORBIDDEN, ErrorBody::new("admin_disabled", "administrative routes are off: start the server with an admin token"));
+        return error(
+            StatusCode::FORBIDDEN,
+            ErrorBody::new("admin_disabled", "administrative routes are off: start the server with an admin token"),
+        );
     };
     let given = headers
         .get(header::AUTHORIZATION)
@@ -516,7 +552,10 @@ pub(crate) async fn rescan(State(app): State<Arc<App>>, headers: HeaderMap) -> R
         .and_then(|v| v.strip_prefix("Bearer "))
         .map(|t| <[u8; 32]>::from(Sha256::digest(t.trim().as_bytes())));
     if given != Some(expected) {
-        let mut r = error(StatusCode::UNAUTHORIZED, ErrorBody::new("unauthorized", "a valid `Authorization: Bearer <token>` header is required"));
+        let mut r = error(
+            StatusCode::UNAUTHORIZED,
+            ErrorBody::new("unauthorized", "a valid `Authorization: Bearer <token>` header is required"),
+        );
         r.headers_mut().insert(header::WWW_AUTHENTICATE, HeaderValue::from_static("Bearer"));
         return r;
     }
@@ -537,6 +576,9 @@ async fn method_not_allowed(State(app): State<Arc<App>>, method: axum::http::Met
     app.registry.count_rejected("method_not_allowed");
     error(
         StatusCode::METHOD_NOT_ALLOWED,
-        ErrorBody::new("method_not_allowed", format!("{method} is not allowed on this route; the API is described at /openapi.json")),
+        ErrorBody::new(
+            "method_not_allowed",
+            format!("{method} is not allowed on this route; the API is described at /openapi.json"),
+        ),
     )
 }

@@ -21,13 +21,15 @@ use utoipa::{Modify, OpenApi, ToSchema};
 
 use super::http;
 use super::wire::{ErrorBody, ErrorDetail, Estimate, EstimateAnswer, EstimateRequest};
+use crate::registry::{
+    ArtifactState, ArtifactStatus, GateStep, Reason, Refusal, RefusedFile, ReloadReport, RoutesState, Status,
+};
 use paddock_host::artifact::digest::Digest;
 use paddock_host::sandbox::codecache::CodeSource;
 use paddock_host::sandbox::model::Usage;
-use crate::registry::{ArtifactState, ArtifactStatus, Reason, RefusedFile, Refusal, ReloadReport, RoutesState, GateStep, Status};
 // utoipa takes a type spelled `Value` for serde_json's: name ours apart.
-use paddock_host::contract::rows::{ContractRule, Row, RowError, Value as FeatureValue};
 use paddock_host::artifact::trust::Admission;
+use paddock_host::contract::rows::{ContractRule, Row, RowError, Value as FeatureValue};
 
 #[derive(OpenApi)]
 #[openapi(
@@ -102,7 +104,10 @@ fn object() -> ObjectBuilder {
 
 /// A request's `id`: any JSON value, echoed back.
 pub(crate) fn request_id() -> utoipa::openapi::schema::Object {
-    object().schema_type(SchemaType::AnyValue).description(Some("Any JSON value the caller wants echoed back with the answer.")).build()
+    object()
+        .schema_type(SchemaType::AnyValue)
+        .description(Some("Any JSON value the caller wants echoed back with the answer."))
+        .build()
 }
 
 /// A request's routing context.
@@ -223,12 +228,35 @@ mod tests {
             name: "m".into(),
             version: "1.2.3".into(),
             features: vec![
-                Feature { name: "a".into(), domain: Domain::Real(Bounds { min: Some(0.0), max: None }), unit: Some("kW".into()), required: true, about: "x".into() },
-                Feature { name: "b".into(), domain: Domain::Whole(open), unit: None, required: false, about: String::new() },
-                Feature { name: "c".into(), domain: Domain::Label(vec!["p".into(), "q".into()]), unit: None, required: true, about: String::new() },
+                Feature {
+                    name: "a".into(),
+                    domain: Domain::Real(Bounds { min: Some(0.0), max: None }),
+                    unit: Some("kW".into()),
+                    required: true,
+                    about: "x".into(),
+                },
+                Feature {
+                    name: "b".into(),
+                    domain: Domain::Whole(open),
+                    unit: None,
+                    required: false,
+                    about: String::new(),
+                },
+                Feature {
+                    name: "c".into(),
+                    domain: Domain::Label(vec!["p".into(), "q".into()]),
+                    unit: None,
+                    required: true,
+                    about: String::new(),
+                },
                 Feature { name: "d".into(), domain: Domain::Flag, unit: None, required: false, about: String::new() },
             ],
-            outputs: vec![Output { name: "y".into(), unit: Some("min".into()), bounds: Bounds { min: Some(0.0), max: Some(1e3) }, about: "y".into() }],
+            outputs: vec![Output {
+                name: "y".into(),
+                unit: Some("min".into()),
+                bounds: Bounds { min: Some(0.0), max: Some(1e3) },
+                about: "y".into(),
+            }],
             about: "test".into(),
         };
         let real = serde_json::to_value(&contract).unwrap();

@@ -63,7 +63,12 @@ struct OutLine<'a> {
 /// # Errors
 /// Only I/O errors of `input` or `output`; every problem with a line is an
 /// error line in the output.
-pub fn run(registry: &Registry, mut input: impl BufRead, mut output: impl Write, options: StreamOptions) -> std::io::Result<StreamSummary> {
+pub fn run(
+    registry: &Registry,
+    mut input: impl BufRead,
+    mut output: impl Write,
+    options: StreamOptions,
+) -> std::io::Result<StreamSummary> {
     let mut summary = StreamSummary::default();
     let mut buf = Vec::new();
     let mut number = 0u64;
@@ -79,7 +84,8 @@ pub fn run(registry: &Registry, mut input: impl BufRead, mut output: impl Write,
         }
         summary.lines += 1;
         let out = if overlong {
-            let e = ErrorBody::new("too_large", format!("line {number} is longer than {} bytes", options.max_line_bytes));
+            let e =
+                ErrorBody::new("too_large", format!("line {number} is longer than {} bytes", options.max_line_bytes));
             (None, Err(e))
         } else {
             answer(registry, &buf)
@@ -105,7 +111,10 @@ pub fn run(registry: &Registry, mut input: impl BufRead, mut output: impl Write,
 
 /// One request line answered: its `id` (when it gave one) and the answer
 /// or the error. Also how a stream worker answers an event.
-pub(crate) fn answer(registry: &Registry, bytes: &[u8]) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
+pub(crate) fn answer(
+    registry: &Registry,
+    bytes: &[u8],
+) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
     let mut line: EstimateRequest = match serde_json::from_slice(bytes) {
         Ok(l) => l,
         Err(e) => {

@@ -8,11 +8,11 @@ use jiff::Timestamp;
 use serde::ser::SerializeMap;
 use serde::{Deserialize, Serialize, Serializer};
 
-use paddock_host::artifact::digest::Digest;
-use paddock_host::sandbox::model::{ScoreError, Usage};
 use crate::features::Fetched;
 use crate::registry::{Answer, Context, Lookups, Reason, Request, RequestError};
+use paddock_host::artifact::digest::Digest;
 use paddock_host::contract::rows::{Row, RowError};
+use paddock_host::sandbox::model::{ScoreError, Usage};
 
 /// A request for estimates, in the same shape on every surface: the body of
 /// `POST /estimate`, and one line of a stream.
@@ -57,7 +57,9 @@ impl EstimateRequest {
     pub fn take_rows(&mut self) -> Result<(Vec<Row>, Option<Timestamp>), ErrorBody> {
         let rows = match (self.row.take(), self.rows.take()) {
             (Some(row), None) => vec![row],
-            (None, Some(rows)) if rows.is_empty() => return Err(ErrorBody::bad_request("rows is empty: give at least one row")),
+            (None, Some(rows)) if rows.is_empty() => {
+                return Err(ErrorBody::bad_request("rows is empty: give at least one row"));
+            }
             (None, Some(rows)) => rows,
             (Some(_), Some(_)) => return Err(ErrorBody::bad_request("give `row` or `rows`, not both")),
             (None, None) => return Err(ErrorBody::bad_request("give `row` (one row) or `rows` (a list)")),
@@ -142,8 +144,10 @@ impl EstimateAnswer {
     /// The wire form of an [`Answer`], echoing the request's `id`.
     pub fn new(answer: Answer, id: Option<serde_json::Value>) -> Self {
         let names = answer.outputs.clone();
-        let estimates =
-            answer.rows().map(|row| row.map(|values| Estimate { names: names.clone(), values: values.to_vec() })).collect();
+        let estimates = answer
+            .rows()
+            .map(|row| row.map(|values| Estimate { names: names.clone(), values: values.to_vec() }))
+            .collect();
         EstimateAnswer {
             id,
             model: answer.model,
@@ -274,9 +278,10 @@ pub fn blame(e: &RequestError) -> Blame {
         RequestError::Score { error, .. } => match error {
             e if e.is_request_fault() => Blame::Request,
             ScoreError::Sandbox(paddock_host::sandbox::SandboxError::Limit(_)) => Blame::Limit,
-            ScoreError::Start(paddock_host::sandbox::StartError::Sandbox { error: paddock_host::sandbox::SandboxError::Limit(_), .. }) => {
-                Blame::Limit
-            }
+            ScoreError::Start(paddock_host::sandbox::StartError::Sandbox {
+                error: paddock_host::sandbox::SandboxError::Limit(_),
+                ..
+            }) => Blame::Limit,
             _ => Blame::Model,
         },
     }

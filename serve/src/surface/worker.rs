@@ -187,7 +187,12 @@ impl WorkerCounts {
         for (name, kind, help, v) in [
             ("events", "counter", "Events taken from the consumer, redeliveries included.", s.events),
             ("answered", "counter", "Answers published and confirmed.", s.answered),
-            ("duplicate_answers", "counter", "Answers the answers stream already held (a redelivered event answered before).", s.duplicates),
+            (
+                "duplicate_answers",
+                "counter",
+                "Answers the answers stream already held (a redelivered event answered before).",
+                s.duplicates,
+            ),
             ("dead_lettered", "counter", "Events sent to dead-letter.", s.dead_lettered),
             ("redelivered", "counter", "Events delivered more than once.", s.redelivered),
             ("retried", "counter", "Events left unacked after an infrastructure fault.", s.retried),
@@ -208,7 +213,12 @@ impl WorkerCounts {
 pub fn metrics_router(registry: Registry, counts: Arc<WorkerCounts>) -> axum::Router {
     use axum::http::header;
     let text = move || {
-        let text = crate::registry::metrics::render(&registry.usage(), &registry.status(), &registry.source_usage(), &counts.openmetrics());
+        let text = crate::registry::metrics::render(
+            &registry.usage(),
+            &registry.status(),
+            &registry.source_usage(),
+            &counts.openmetrics(),
+        );
         ([(header::CONTENT_TYPE, crate::registry::metrics::CONTENT_TYPE)], text)
     };
     axum::Router::new().route("/metrics", axum::routing::get(move || std::future::ready(text())))
@@ -250,7 +260,11 @@ async fn connect(options: &WorkerOptions) -> Result<(jetstream::Context, consume
     let js = jetstream::new(client);
     let js_error = |what: String, e: &dyn std::fmt::Display| WorkerError::JetStream { what, problem: e.to_string() };
     let events = js
-        .get_or_create_stream(stream::Config { name: options.events_stream.clone(), subjects: vec![options.events.clone()], ..Default::default() })
+        .get_or_create_stream(stream::Config {
+            name: options.events_stream.clone(),
+            subjects: vec![options.events.clone()],
+            ..Default::default()
+        })
         .await
         .map_err(|e| js_error(format!("stream {}", options.events_stream), &e))?;
     js.get_or_create_stream(stream::Config {
@@ -292,7 +306,12 @@ async fn connect(options: &WorkerOptions) -> Result<(jetstream::Context, consume
 /// # Errors
 /// [`WorkerError`] when the server cannot be reached at start, or the
 /// streams or the consumer cannot be made.
-pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerCounts>, shutdown: impl std::future::Future<Output = ()>) -> Result<(), WorkerError> {
+pub async fn run(
+    registry: Registry,
+    options: WorkerOptions,
+    counts: Arc<WorkerCounts>,
+    shutdown: impl std::future::Future<Output = ()>,
+) -> Result<(), WorkerError> {
     let mut shutdown = std::pin::pin!(shutdown);
     // Told to stop while still connecting or making the streams: nothing is
     // in hand yet, so stop at once.
@@ -327,7 +346,8 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
                 }
             }
         };
-        let (registry, js, options, counts, scoring) = (registry.clone(), js.clone(), options.clone(), counts.clone(), scoring.clone());
+        let (registry, js, options, counts, scoring) =
+            (registry.clone(), js.clone(), options.clone(), counts.clone(), scoring.clone());
         tokio::spawn(async move {
             handle(&registry, &js, &options, &counts, &scoring, message).await;
             drop(permit);
@@ -339,7 +359,14 @@ pub async fn run(registry: Registry, options: WorkerOptions, counts: Arc<WorkerC
     Ok(())
 }
 
-async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOptions, counts: &WorkerCounts, scoring: &Arc<Semaphore>, message: jetstream::Message) {
+async fn handle(
+    registry: &Registry,
+    js: &jetstream::Context,
+    options: &WorkerOptions,
+    counts: &WorkerCounts,
+    scoring: &Arc<Semaphore>,
+    message: jetstream::Message,
+) {
     counts.events.fetch_add(1, Ordering::Relaxed);
     let (deliveries, sequence) = match message.info() {
         Ok(i) => {
@@ -359,7 +386,9 @@ async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOp
     };
     let (event, verdict) = match verdict {
         Ok(v) => v,
-        Err(e) => (format!("seq-{sequence}"), Verdict::Retry(ErrorBody::new("server", format!("scoring stopped: {e}")))),
+        Err(e) => {
+            (format!("seq-{sequence}"), Verdict::Retry(ErrorBody::new("server", format!("scoring stopped: {e}"))))
+        }
     };
     let dead = |error: &ErrorBody| {
         let letter = DeadLetter {
@@ -367,7 +396,8 @@ async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOp
             subject: message.subject.as_str(),
             deliveries,
             error: &error.error,
-            payload: serde_json::from_slice(&message.payload).unwrap_or_else(|_| String::from_utf8_lossy(&message.payload).into_owned().into()),
+            payload: serde_json::from_slice(&message.payload)
+                .unwrap_or_else(|_| String::from_utf8_lossy(&message.payload).into_owned().into()),
         };
         serde_json::to_vec(&letter).unwrap_or_default()
     };
@@ -386,7 +416,16 @@ async fn handle(registry: &Registry, js: &jetstream::Context, options: &WorkerOp
             return;
         }
     };
-    let published = match js.send_publish(subject.clone(), jetstream::message::PublishMessage::build().payload(body.into()).message_id(&id).header(WORKER_HEADER, options.name.as_str())).await {
+    let published = match js
+        .send_publish(
+            subject.clone(),
+            jetstream::message::PublishMessage::build()
+                .payload(body.into())
+                .message_id(&id)
+                .header(WORKER_HEADER, options.name.as_str()),
+        )
+        .await
+    {
         Ok(confirm) => confirm.await.map_err(|e| e.to_string()),
         Err(e) => Err(e.to_string()),
     };
@@ -429,7 +468,9 @@ fn judge(registry: &Registry, payload: &[u8], sequence: u64) -> (String, Verdict
                 Verdict::Answer(serde_json::to_vec(&answer).unwrap_or_default())
             }
         },
-        Err(e) if matches!(e.error.kind.as_str(), "not_loaded" | "server" | "store" | "unavailable") => Verdict::Retry(e),
+        Err(e) if matches!(e.error.kind.as_str(), "not_loaded" | "server" | "store" | "unavailable") => {
+            Verdict::Retry(e)
+        }
         Err(mut e) if e.error.rows.iter().any(unavailable) => {
             // Every row failed, some because a source was down: that is
             // what to retry for, and what a dead letter will say.

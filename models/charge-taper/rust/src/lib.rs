@@ -39,7 +39,8 @@ impl Estimator for Taper {
     type Params = ();
 
     fn init((): ()) -> Result<Self, String> {
-        let p: Params = serde_json::from_str(include_str!("../../params.json")).map_err(|e| format!("params.json: {e}"))?;
+        let p: Params =
+            serde_json::from_str(include_str!("../../params.json")).map_err(|e| format!("params.json: {e}"))?;
         let rising = p.taper.windows(2).all(|w| w[1].0 > w[0].0 && w[0].1 > 0.0 && w[1].1 > 0.0);
         if p.taper.len() < 2 || p.taper[0].0 != 0.0 || p.taper[p.taper.len() - 1].0 != 1.0 || !rising {
             return Err("taper knots must rise from state of charge 0 to 1, fractions above 0".into());
@@ -52,13 +53,18 @@ impl Estimator for Taper {
             name: "charge-taper".into(),
             version: self.0.version.clone(),
             features: vec![
-                Feature::real("charger_kw", Bounds::between(1.0, 350.0)).unit("kW").about("power the charger can deliver"),
+                Feature::real("charger_kw", Bounds::between(1.0, 350.0))
+                    .unit("kW")
+                    .about("power the charger can deliver"),
                 Feature::real("battery_kwh", Bounds::between(5.0, 250.0)).unit("kWh").about("usable battery capacity"),
                 Feature::real("soc_start", Bounds::between(0.0, 1.0)).about("state of charge at plug-in, 0-1"),
                 Feature::real("soc_target", Bounds::between(0.0, 1.0)).about("state of charge wanted, 0-1"),
             ],
-            outputs: vec![Output::new("session_minutes", Bounds::at_least(0.0)).unit("min").about("minutes to reach the target")],
-            about: "Minutes a session needs to reach its target charge, with the car's power taper (Rust guest).".into(),
+            outputs: vec![
+                Output::new("session_minutes", Bounds::at_least(0.0)).unit("min").about("minutes to reach the target"),
+            ],
+            about: "Minutes a session needs to reach its target charge, with the car's power taper (Rust guest)."
+                .into(),
         }
     }
 
