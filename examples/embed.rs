@@ -32,7 +32,7 @@ fn main() -> Result<()> {
         .with("hour_of_week", 24 + 18)
         .with("connector", "type2")
         .with("fleet", false);
-    let estimates = model.score(&[session.clone()])?;
+    let estimates = model.score(std::slice::from_ref(&session))?;
     let usage = estimates.usage();
     println!(
         "\nexpected charging: {:.0} min ({} row, {:?} in the sandbox)",

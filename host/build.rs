@@ -42,10 +42,10 @@ fn locked_version(lock: &str, name: &str) -> Option<String> {
             current = None;
         } else if let Some(n) = line.strip_prefix("name = ") {
             current = Some(n.trim_matches('"'));
-        } else if let Some(v) = line.strip_prefix("version = ") {
-            if current == Some(name) {
-                found.push(v.trim_matches('"').to_owned());
-            }
+        } else if let Some(v) = line.strip_prefix("version = ")
+            && current == Some(name)
+        {
+            found.push(v.trim_matches('"').to_owned());
         }
     }
     if found.len() == 1 { found.pop() } else { None }

@@ -120,7 +120,8 @@ fn the_dmg_golf_tree_chooses_as_the_specification_walks_it() {
     assert_eq!(outputs(&tree), ["probability_will play", "probability_may play", "probability_no play"]);
     let one_hot = |k: usize| (0..3).map(|i| if i == k { 1.0 } else { 0.0 }).collect::<Vec<f64>>();
     let (will, may, no) = (one_hot(0), one_hot(1), one_hot(2));
-    let cases: [(&[(&str, &str)], &Vec<f64>); 5] = [
+    type Case<'a> = (&'a [(&'a str, &'a str)], &'a Vec<f64>);
+    let cases: [Case; 5] = [
         // sunny, 50 < 75 < 90, humidity 70 < 80: will play.
         (&[("outlook", "sunny"), ("temperature", "75"), ("humidity", "70"), ("windy", "false")], &will),
         // sunny, 95 ≥ 90: the or-node, no play.

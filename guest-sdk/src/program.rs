@@ -912,16 +912,16 @@ fn predict(m: &Model, slots: &mut Vec<f64>) -> Prediction {
         }
         Kind::Segments { method, segments } => ensemble(*method, segments, m.classes, slots),
     };
-    if let (Some(r), 0) = (m.rescale, m.classes) {
-        if !p.value.is_nan() {
-            let v = (p.value.max(r.min).min(r.max)) * r.factor + r.constant;
-            p.value = match r.cast {
-                Cast::None => v,
-                Cast::Round => v.round(),
-                Cast::Ceiling => v.ceil(),
-                Cast::Floor => v.floor(),
-            };
-        }
+    if let (Some(r), 0) = (m.rescale, m.classes)
+        && !p.value.is_nan()
+    {
+        let v = (p.value.max(r.min).min(r.max)) * r.factor + r.constant;
+        p.value = match r.cast {
+            Cast::None => v,
+            Cast::Round => v.round(),
+            Cast::Ceiling => v.ceil(),
+            Cast::Floor => v.floor(),
+        };
     }
     for (slot, e) in &m.passes {
         slots[*slot as usize] = p.emit(*e);

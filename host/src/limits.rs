@@ -196,7 +196,7 @@ impl fmt::Display for DurationText {
         let d = self.0;
         if d.subsec_nanos() == 0 {
             write!(f, "{}s", d.as_secs())
-        } else if d.as_nanos() % 1_000_000 == 0 {
+        } else if d.as_nanos().is_multiple_of(1_000_000) {
             write!(f, "{}ms", d.as_millis())
         } else {
             write!(f, "{}µs", d.as_micros())

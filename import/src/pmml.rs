@@ -490,10 +490,10 @@ impl<'a, 'input> Reader<'a, 'input> {
         target: Option<&str>,
         found: impl FnOnce() -> Vec<String>,
     ) -> Result<Vec<String>, ImportError> {
-        if let Some(d) = target.and_then(|t| self.dictionary.get(t)) {
-            if !d.values.is_empty() {
-                return Ok(d.values.clone());
-            }
+        if let Some(d) = target.and_then(|t| self.dictionary.get(t))
+            && !d.values.is_empty()
+        {
+            return Ok(d.values.clone());
         }
         let found = found();
         if found.is_empty() {
@@ -544,20 +544,20 @@ impl<'a, 'input> Reader<'a, 'input> {
                 ));
             }
         };
-        if let Some(schema) = child(node, "MiningSchema") {
-            if depth > 0 {
-                for f in elements(schema) {
-                    if ["missingValueReplacement", "outliers", "lowValue", "highValue"]
-                        .iter()
-                        .any(|a| f.attribute(*a).is_some())
-                        || f.attribute("invalidValueTreatment").is_some_and(|t| t != "returnInvalid")
-                    {
-                        return Err(self.unsupported(
-                            f,
-                            "value treatment in a nested model's MiningSchema",
-                            "treat values in the outermost model's MiningSchema",
-                        ));
-                    }
+        if let Some(schema) = child(node, "MiningSchema")
+            && depth > 0
+        {
+            for f in elements(schema) {
+                if ["missingValueReplacement", "outliers", "lowValue", "highValue"]
+                    .iter()
+                    .any(|a| f.attribute(*a).is_some())
+                    || f.attribute("invalidValueTreatment").is_some_and(|t| t != "returnInvalid")
+                {
+                    return Err(self.unsupported(
+                        f,
+                        "value treatment in a nested model's MiningSchema",
+                        "treat values in the outermost model's MiningSchema",
+                    ));
                 }
             }
         }
@@ -797,10 +797,10 @@ impl<'a, 'input> Reader<'a, 'input> {
                         "ScoreDistribution" => n.attribute("value"),
                         _ => None,
                     };
-                    if let Some(l) = label {
-                        if !seen.iter().any(|s| s == l) {
-                            seen.push(l.to_owned());
-                        }
+                    if let Some(l) = label
+                        && !seen.iter().any(|s| s == l)
+                    {
+                        seen.push(l.to_owned());
                     }
                 }
                 seen
@@ -998,11 +998,11 @@ struct Labels {
 impl Labels {
     fn value(&mut self, text: &str) -> f64 {
         self.any = true;
-        if let Some(v) = parse_number(text) {
-            if self.labels.is_empty() {
-                self.numeric = true;
-                return v;
-            }
+        if let Some(v) = parse_number(text)
+            && self.labels.is_empty()
+        {
+            self.numeric = true;
+            return v;
         }
         self.numeric = false;
         match self.labels.iter().position(|l| l == text) {

@@ -456,6 +456,7 @@ fn spawn_server(mut command: std::process::Command, what: &str, ready: impl Fn()
         std::thread::sleep(Duration::from_millis(10));
     }
     let _ = child.kill();
+    let _ = child.wait();
     panic!("{what}: started, but not ready after 500 tries");
 }
 

@@ -223,7 +223,7 @@ impl serde::Serialize for JsonLine<'_> {
 }
 
 enum Sink {
-    Csv(csv::Writer<Box<dyn Write>>),
+    Csv(Box<csv::Writer<Box<dyn Write>>>),
     Ndjson(BufWriter<Box<dyn Write>>),
 }
 
@@ -246,7 +246,7 @@ impl Writer {
                 header.extend(outputs.iter().cloned());
                 header.push("error".into());
                 csv.write_record(&header)?;
-                Sink::Csv(csv)
+                Sink::Csv(Box::new(csv))
             }
             Format::Ndjson => Sink::Ndjson(BufWriter::new(out)),
         };

@@ -33,6 +33,9 @@ use wasi::{WasiPolicy, WasiStart, WasiState};
 /// (read from Cargo.lock by the build script; `unknown` when there was none).
 pub const WASMTIME_VERSION: &str = env!("PADDOCK_WASMTIME_VERSION");
 
+/// What a guest's `score` returned, and the fuel the call used (when fuel is on).
+type GuestAnswer = (Result<Vec<f64>, Fault>, Option<u64>);
+
 /// Bytes of each instance slot's memory kept resident between instances.
 const KEEP_RESIDENT: usize = 1 << 20;
 
@@ -449,7 +452,7 @@ impl Instance {
         limits: &Limits,
         rows: u32,
         cells: &[f64],
-    ) -> Result<(Result<Vec<f64>, Fault>, Option<u64>), SandboxError> {
+    ) -> Result<GuestAnswer, SandboxError> {
         let budget = arm(&mut self.store, runtime, limits.deadline, limits.fuel);
         let answer = self.api.call_score(&mut self.store, rows, cells);
         drain(&self.store, &self.who);

@@ -48,11 +48,11 @@ impl<T> Pool<T> {
     pub(crate) fn put(&self, value: T) {
         let mut value = Some(value);
         for slot in self.probe() {
-            if let Ok(mut s) = slot.try_lock() {
-                if s.is_none() {
-                    *s = value.take();
-                    return;
-                }
+            if let Ok(mut s) = slot.try_lock()
+                && s.is_none()
+            {
+                *s = value.take();
+                return;
             }
         }
     }

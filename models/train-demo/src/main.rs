@@ -47,7 +47,7 @@ fn main() -> Result<()> {
     let overstay = train_overstay(&train, &minutes)?;
 
     let source = "paddock-train-demo: native evaluation of the trained params on held-out simulated sessions";
-    let minutes_checks = record(&held_out, source, |s| minutes_row(s), |s| predict(&minutes, &s.minutes_features()));
+    let minutes_checks = record(&held_out, source, minutes_row, |s| predict(&minutes, &s.minutes_features()));
     let overstay_checks = record(
         &held_out,
         source,

@@ -310,10 +310,10 @@ impl Resolved {
                     .push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
                 continue;
             };
-            if let Fallback::Default(v) = &lookup.missing {
-                if let Some(problem) = misfit(v, &f.domain) {
-                    problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
-                }
+            if let Fallback::Default(v) = &lookup.missing
+                && let Some(problem) = misfit(v, &f.domain)
+            {
+                problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
             }
             let counts = sources.counts.get(&lookup.source).cloned().unwrap_or_default();
             steps.push(Step {

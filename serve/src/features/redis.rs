@@ -85,6 +85,13 @@ pub enum Trouble {
     },
 }
 
+/// A round trip that failed: what went wrong, and whether the connection
+/// must be remade.
+type Failed = (Trouble, bool);
+
+/// One answer per key: the fields read, `None` where a key has no such field.
+type Replies = Vec<Vec<Option<String>>>;
+
 impl RedisSource {
     /// A source for the server at `url` (`redis://host:port/db`), each
     /// read given `budget`, counting into `counts`. Does not connect: the
@@ -189,7 +196,7 @@ impl RedisSource {
 
     fn settle(
         &self,
-        outcome: Result<(MultiplexedConnection, Vec<Vec<Option<String>>>), (Trouble, bool)>,
+        outcome: Result<(MultiplexedConnection, Replies), Failed>,
         took: Duration,
     ) -> Result<Vec<Vec<Option<String>>>, Trouble> {
         let ended = match &outcome {

@@ -115,7 +115,8 @@ fn sources(out: &mut String, sources: &[SourceUsage]) {
         }
     }
     let servers: Vec<&SourceUsage> = sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
-    let counters: [(&str, &str, fn(&SourceUsage) -> u64); 4] = [
+    type Counter = (&'static str, &'static str, fn(&SourceUsage) -> u64);
+    let counters: [Counter; 4] = [
         ("source_round_trips", "Round trips to a feature server.", |s| s.round_trips),
         ("source_timeouts", "Round trips to a feature server not answered within the source's budget.", |s| s.timeouts),
         ("source_errors", "Round trips to a feature server that failed.", |s| s.errors),

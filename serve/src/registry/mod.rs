@@ -404,10 +404,10 @@ struct Shared {
 
 impl Drop for Shared {
     fn drop(&mut self) {
-        if self.lock.is_some() {
-            if let Err(e) = usage_file::save(&self.state_dir, &self.dir, &self.ledger) {
-                tracing::warn!(error = %e, "cannot write the usage file");
-            }
+        if self.lock.is_some()
+            && let Err(e) = usage_file::save(&self.state_dir, &self.dir, &self.ledger)
+        {
+            tracing::warn!(error = %e, "cannot write the usage file");
         }
     }
 }

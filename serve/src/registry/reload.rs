@@ -305,10 +305,10 @@ fn read_features(
         Err(_) => Vec::new(),
     };
     let seen = FeaturesSeen { file: Some(gate::fingerprint(&bytes, None)), tables, versions: flatten(versions) };
-    if let Some((last, set, state)) = &memory.features {
-        if *last == seen {
-            return (set.clone(), state.clone());
-        }
+    if let Some((last, set, state)) = &memory.features
+        && *last == seen
+    {
+        return (set.clone(), state.clone());
     }
     let outcome = plan.and_then(|plan| build_features(shared, &plan, memory, versions));
     let result = match outcome {
