@@ -15,7 +15,7 @@ use std::path::PathBuf;
 
 use paddock_guest::{Combine, Node};
 use paddock_host::{Checks, Model, Runtime};
-use paddock_import::{Estimator, Format, ImportError, Manifest, import};
+use paddock_import::{EstimatorParams, Format, ImportError, Manifest, import};
 use paddock_tests::{guest, load, root, unhurried};
 
 /// Every model the export writes: a test fails if one is missing.
@@ -251,9 +251,9 @@ const SKLEARN: [&str; 16] = [
 ///   whole leaf, far beyond that.
 /// - Linear: (|intercept| + Σ |weightᵢ·xᵢ|) × 2⁻²³ (2⁻²⁴ for the float32
 ///   coefficients, as much again for the double sums).
-fn score_bound(estimator: &Estimator, row: &[f64]) -> f64 {
+fn score_bound(estimator: &EstimatorParams, row: &[f64]) -> f64 {
     match estimator {
-        Estimator::Trees(p) => {
+        EstimatorParams::Trees(p) => {
             let largest = |t: &paddock_guest::Tree| {
                 t.nodes
                     .iter()
@@ -270,7 +270,7 @@ fn score_bound(estimator: &Estimator, row: &[f64]) -> f64 {
             let spread = if p.combine == Combine::Mean { leaves / p.trees.len() as f64 } else { leaves };
             (p.base.iter().fold(0.0, |m, b| b.abs().max(m)) + spread) * 2f64.powi(-24)
         }
-        Estimator::Linear(p) => p
+        EstimatorParams::Linear(p) => p
             .weights
             .iter()
             .zip(&p.intercepts)
@@ -312,8 +312,8 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
             assert_eq!(imported.contract.features[2].name, "bmi", "the helper's manifest names the columns");
         }
         let linked = match &imported.estimator {
-            Estimator::Trees(p) => p.link != paddock_guest::OutputLink::Identity,
-            Estimator::Linear(p) => p.link != paddock_guest::Link::Identity,
+            EstimatorParams::Trees(p) => p.link != paddock_guest::OutputLink::Identity,
+            EstimatorParams::Linear(p) => p.link != paddock_guest::Link::Identity,
             _ => unreachable!(),
         };
         let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();

@@ -17,7 +17,7 @@ use std::path::PathBuf;
 use paddock_guest::ndarray::Array2;
 use paddock_guest::{Domain, Evaluate, Program};
 use paddock_host::{Checks, Runtime};
-use paddock_import::{Estimator, Format, ImportError, Imported, import};
+use paddock_import::{EstimatorParams, Format, ImportError, Imported, import};
 use paddock_tests::{guest, load, root, unhurried};
 
 /// Every document the nyoka export writes: a test fails if one is missing.
@@ -45,7 +45,7 @@ fn imported(name: &str, text: &str) -> Imported {
 
 /// Scores one row, given as (feature, value) with labels by name, natively.
 fn score(imported: &Imported, row: &[(&str, &str)]) -> Vec<f64> {
-    let Estimator::Program(params) = &imported.estimator else { panic!("a PMML document imports to a program") };
+    let EstimatorParams::Program(params) = &imported.estimator else { panic!("a PMML document imports to a program") };
     let program = Program::new(params.clone()).unwrap();
     let cells: Vec<f64> = imported
         .contract

@@ -232,8 +232,8 @@ fn python_and_javascript_models_are_primed_and_answer_as_unprimed_ones() {
 #[test]
 fn a_wasi_model_whose_init_reaches_what_cannot_be_carried_is_not_primed_and_says_which_import() {
     let runtime = Runtime::new().unwrap();
-    let real_random = WasiPolicy { random: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
-    let real_clocks = WasiPolicy { clocks: paddock_host::sandbox::wasi::Source::Real, ..WasiPolicy::default() };
+    let real_random = WasiPolicy { random: paddock_host::sandbox::wasi::Ambient::Real, ..WasiPolicy::default() };
+    let real_clocks = WasiPolicy { clocks: paddock_host::sandbox::wasi::Ambient::Real, ..WasiPolicy::default() };
     let fresh = |policy: &WasiPolicy| ModelOptions {
         wasi: Some(policy.clone()),
         ..options(Isolation::FreshPerCall, Priming::WhenFresh)

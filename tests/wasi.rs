@@ -8,7 +8,7 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, SystemTime, UNIX_EPOCH};
 
 use paddock_host::audit::audit;
-use paddock_host::sandbox::wasi::Source;
+use paddock_host::sandbox::wasi::Ambient;
 use paddock_host::{
     LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy, WasiPolicy,
 };
@@ -53,7 +53,7 @@ fn fixed_clocks_and_randomness_give_the_same_answer_every_time() {
 
 #[test]
 fn real_clocks_and_randomness_are_the_hosts() {
-    let policy = WasiPolicy { clocks: Source::Real, random: Source::Real, ..WasiPolicy::default() };
+    let policy = WasiPolicy { clocks: Ambient::Real, random: Ambient::Real, ..WasiPolicy::default() };
     let a = probe(&load(policy.clone()), 5.0, 0.0).unwrap();
     let b = probe(&load(policy), 0.0, 0.0).unwrap();
     let now = SystemTime::now().duration_since(UNIX_EPOCH).unwrap().as_secs_f64();

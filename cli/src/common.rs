@@ -91,7 +91,7 @@ pub struct WasiArgs {
 impl WasiArgs {
     /// The WASI policy these flags describe, if any.
     pub fn policy(&self) -> Option<WasiPolicy> {
-        let source = |real| if real { wasi::Source::Real } else { wasi::Source::Fixed };
+        let source = |real| if real { wasi::Ambient::Real } else { wasi::Ambient::Fixed };
         self.wasi.then(|| WasiPolicy {
             clocks: source(self.wasi_real_clocks),
             random: source(self.wasi_real_random),
@@ -230,7 +230,7 @@ pub fn init_logging() {
 
 /// Prints a value as pretty JSON on stdout.
 pub fn print_json<T: serde::Serialize>(value: &T) -> Result<()> {
-    println!("{}", serde_json::to_string_pretty(value)?);
+    outln!("{}", serde_json::to_string_pretty(value)?)?;
     Ok(())
 }
 

@@ -4,6 +4,25 @@
 //! Each subcommand lives in its own file under `cmd/` and is a thin
 //! wrapper over the `paddock_host` library.
 
+/// `println!` for a command's output, as an expression of type
+/// `io::Result<()>`: a reader that closed the pipe (`paddock … | head -1`)
+/// comes back as an error that ends the command quietly ([`closed_pipe`]),
+/// where `println!` would panic.
+macro_rules! outln {
+    ($($arg:tt)*) => {{
+        use std::io::Write as _;
+        writeln!(std::io::stdout().lock(), $($arg)*)
+    }};
+}
+
+/// `print!` for a command's output; see [`outln!`].
+macro_rules! out {
+    ($($arg:tt)*) => {{
+        use std::io::Write as _;
+        write!(std::io::stdout().lock(), $($arg)*)
+    }};
+}
+
 mod cmd;
 mod common;
 
@@ -78,6 +97,8 @@ fn main() -> ExitCode {
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,
         Ok(Outcome::Failed) => ExitCode::from(exit::FOUND_A_FAILURE),
+        // The reader went away (`| head`): nothing more to say, and nobody to say it to.
+        Err(e) if closed_pipe(&e) => ExitCode::SUCCESS,
         Err(e) => {
             eprintln!("error: {}", message(&e));
             ExitCode::from(exit::COULD_NOT_RUN)
@@ -101,4 +122,16 @@ fn message(e: &anyhow::Error) -> String {
         line.push_str(&text);
     }
     line
+}
+
+/// Whether the error comes from writing to a pipe whose reader has closed
+/// it, directly or through the CSV writer.
+fn closed_pipe(e: &anyhow::Error) -> bool {
+    e.chain().any(|cause| {
+        let io = cause.downcast_ref::<std::io::Error>().or_else(|| match cause.downcast_ref::<csv::Error>()?.kind() {
+            csv::ErrorKind::Io(io) => Some(io),
+            _ => None,
+        });
+        io.is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+    })
 }

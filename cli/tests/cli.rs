@@ -457,6 +457,79 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     assert!(text(&out.stdout).contains("p99 µs"), "{}", text(&out.stdout));
 }
 
+/// `paddock usage` on a state directory no host has written names the
+/// commands that write it; `paddock stream` is one (above, it writes the
+/// file `usage` then reads), and `paddock demo` is not.
+#[test]
+fn usage_without_a_usage_file_names_the_commands_that_write_one() {
+    let store = root().join("target/paddock/store");
+    let state = tempfile::tempdir().unwrap();
+    let out = paddock(&["usage", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()], None);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(err.contains("`paddock stream`") && !err.contains("demo"), "{err}");
+    // The demo keeps no usage file: after it, there is still none.
+    let out = paddock(&["demo", "--store", store.to_str().unwrap(), "--json"], None);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(!paddock_serve::registry::usage_path(state.path()).exists());
+}
+
+/// Every subcommand that writes to standard output ends quietly, with 0,
+/// when its reader has already closed the pipe (`paddock inspect A | head`):
+/// no panic, no "Broken pipe" error.
+#[test]
+fn a_closed_pipe_ends_every_command_quietly() {
+    let store = root().join("target/paddock/store");
+    let store = store.to_str().unwrap();
+    let artifact = artifact_path("charge-minutes");
+    let a = artifact.to_str().unwrap();
+    let wat = root().join("tests/fixtures/affine.wat");
+    let packed = tmp("closed-pipe.wasm");
+    let keys = tempfile::tempdir().unwrap();
+    let state = tempfile::tempdir().unwrap();
+    let state = state.path().to_str().unwrap();
+    let line = r#"{"model": "overstay-risk", "row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}}"#;
+    let lines = format!("{line}\n").repeat(50);
+    // A usage file for `usage` to print.
+    assert!(paddock(&["stream", "--store", store, "--state", state], Some(&lines)).status.success());
+    let csv = "charger_kw,battery_kwh,soc_start,soc_target,ambient_c,hour_of_week,connector,fleet\n11,64,0.2,0.8,12,40,type2,false\n";
+    let cases: Vec<(Vec<&str>, Option<&str>)> = vec![
+        (vec!["inspect", a], None),
+        (vec!["inspect", a, "--json"], None),
+        (vec!["audit", a], None),
+        (vec!["check", a], None),
+        (vec!["score", a, "-"], Some(csv)),
+        (vec!["status", "--store", store], None),
+        (vec!["usage", "--store", store, "--state", state], None),
+        (vec!["usage", "--store", store, "--state", state, "--json"], None),
+        (vec!["demo", "--store", store], None),
+        (vec!["stream", "--store", store], Some(&lines)),
+        (vec!["pack", wat.to_str().unwrap(), "--out", packed.to_str().unwrap()], None),
+        (vec!["voucher", "reviewer", "--dir", keys.path().to_str().unwrap()], None),
+    ];
+    for (args, input) in cases {
+        use std::io::Write;
+        let (reader, writer) = std::io::pipe().unwrap();
+        drop(reader);
+        let mut child = Command::new(env!("CARGO_BIN_EXE_paddock"))
+            .args(&args)
+            .current_dir(root())
+            .stdin(std::process::Stdio::piped())
+            .stdout(writer)
+            .stderr(std::process::Stdio::piped())
+            .spawn()
+            .unwrap();
+        let mut stdin = child.stdin.take().unwrap();
+        // The command may stop reading once it cannot write: a refused write here is fine.
+        let _ = stdin.write_all(input.unwrap_or("").as_bytes());
+        drop(stdin);
+        let out = child.wait_with_output().unwrap();
+        let err = text(&out.stderr);
+        assert_eq!(out.status.code(), Some(0), "paddock {args:?}: {err}");
+        assert!(!err.contains("panicked") && !err.contains("Broken pipe"), "paddock {args:?}: {err}");
+    }
+}
+
 #[test]
 fn a_missing_demo_store_says_how_to_build_it() {
     let out = paddock(&["demo", "--store", "/nonexistent"], None);

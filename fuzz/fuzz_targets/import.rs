@@ -6,7 +6,7 @@
 use libfuzzer_sys::fuzz_target;
 use paddock_guest::ndarray::Array2;
 use paddock_guest::{Evaluate, Linear, Program, Trees};
-use paddock_import::{Estimator, Format, import};
+use paddock_import::{EstimatorParams, Format, import};
 
 fuzz_target!(|data: &[u8]| {
     let _ = Format::recognise(data);
@@ -18,13 +18,13 @@ fuzz_target!(|data: &[u8]| {
             continue;
         }
         match imported.estimator {
-            Estimator::Trees(params) => {
+            EstimatorParams::Trees(params) => {
                 score(Trees::new(params).expect("imported params build an estimator"), features)
             }
-            Estimator::Linear(params) => {
+            EstimatorParams::Linear(params) => {
                 score(Linear::new(params).expect("imported params build an estimator"), features)
             }
-            Estimator::Program(params) => {
+            EstimatorParams::Program(params) => {
                 score(Program::new(params).expect("imported params build an estimator"), features)
             }
             _ => {}

@@ -4,7 +4,7 @@
 #![no_main]
 
 use libfuzzer_sys::fuzz_target;
-use paddock_host::contract::row_file::{Columns, Format, RowFileError, records};
+use paddock_host::contract::row_file::{Columns, RowFileError, RowFormat, records};
 use paddock_host::{Bounds, Contract, Domain, Feature, Output, Schema};
 
 fn schema() -> Schema {
@@ -37,7 +37,7 @@ fn schema() -> Schema {
 
 fuzz_target!(|data: &[u8]| {
     let schema = schema();
-    for format in [Format::Ndjson, Format::Csv] {
+    for format in [RowFormat::Ndjson, RowFormat::Csv] {
         let mut cells = Vec::new();
         // Columns that are not features are refused whole; ignore them and
         // read on, so the records themselves are still fuzzed.

@@ -86,8 +86,8 @@ pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
 pub use program::MAX_DEPTH as PROGRAM_MAX_DEPTH;
 pub use program::{
-    Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Model, Normalize, Outliers, Predicate,
-    Program, ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
+    Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Normalize, Outliers, Predicate,
+    Program, ProgramParams, RegressionTable, Rescale, Segment, Submodel, TreeNode, WhenUnknown,
 };
 pub use spelling::DomainSpec;
 pub use trees::{Branch, Combine, Node, OutputLink, Precision, SplitRule, Tree, Trees, TreesParams};

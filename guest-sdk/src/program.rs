@@ -349,7 +349,7 @@ pub struct TreeNode {
 
 /// One table of a regression (PMML's `RegressionTable`).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct Table {
+pub struct RegressionTable {
     /// The intercept.
     pub intercept: f64,
     /// (slot, exponent, coefficient): `coefficient × xᵉˣᵖᵒⁿᵉⁿᵗ`.
@@ -413,7 +413,7 @@ pub struct Segment {
     /// Its weight.
     pub weight: f64,
     /// Its model.
-    pub model: Model,
+    pub model: Submodel,
 }
 
 /// Rescaling of a regression's value (PMML's `Target`): clamped to
@@ -460,7 +460,7 @@ pub enum Kind {
     /// Regression tables: one (regression) or one per class.
     Regression {
         /// The tables.
-        tables: Vec<Table>,
+        tables: Vec<RegressionTable>,
         /// The normalisation.
         normalize: Normalize,
     },
@@ -483,9 +483,9 @@ pub enum Kind {
     },
 }
 
-/// A model.
+/// One model inside a scoring program (a PMML model; each segment holds one).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct Model {
+pub struct Submodel {
     /// Fields derived before the model runs (its local transformations).
     pub derived: Vec<(u32, Expr)>,
     /// What it is.
@@ -510,7 +510,7 @@ pub struct ProgramParams {
     /// Fields derived before the model (global transformations), in order.
     pub derived: Vec<(u32, Expr)>,
     /// The model.
-    pub model: Model,
+    pub model: Submodel,
     /// The contract's outputs, from the model's prediction.
     pub outputs: Vec<Emit>,
 }
@@ -623,7 +623,7 @@ impl Check {
         }
     }
 
-    fn model(&self, m: &Model, depth: usize) -> Result<(), String> {
+    fn model(&self, m: &Submodel, depth: usize) -> Result<(), String> {
         if depth > MAX_DEPTH {
             return Err(format!("program params: models nested deeper than {MAX_DEPTH}"));
         }
@@ -901,7 +901,7 @@ fn decisive(parts: &[Predicate], slots: &[f64], stop: Truth, otherwise: Truth) -
     t
 }
 
-fn predict(m: &Model, slots: &mut Vec<f64>) -> Prediction {
+fn predict(m: &Submodel, slots: &mut Vec<f64>) -> Prediction {
     for (slot, e) in &m.derived {
         slots[*slot as usize] = eval(e, slots);
     }
@@ -932,7 +932,7 @@ fn predict(m: &Model, slots: &mut Vec<f64>) -> Prediction {
     p
 }
 
-fn regression(tables: &[Table], normalize: Normalize, classes: u32, slots: &[f64]) -> Prediction {
+fn regression(tables: &[RegressionTable], normalize: Normalize, classes: u32, slots: &[f64]) -> Prediction {
     let mut scores = Vec::with_capacity(tables.len());
     for t in tables {
         let mut y = t.intercept;
@@ -1202,7 +1202,7 @@ mod tests {
             inputs: vec![Input { replacement: f64::NAN, valid: vec![], outliers: Outliers::AsIs }],
             slots: 1,
             derived: vec![],
-            model: Model {
+            model: Submodel {
                 derived: vec![],
                 kind: Kind::Tree { nodes, unknown: WhenUnknown::NextChild, last_when_no_child: false },
                 classes: 0,

@@ -39,7 +39,7 @@ mod pmml;
 mod xgboost;
 
 pub use manifest::Manifest;
-pub use origin::{Origin, Source};
+pub use origin::{Origin, Provenance};
 use paddock_guest::{Contract, LinearParams, Packaged, ProgramParams, TreesParams, encode_params};
 
 /// A model file format an importer reads.
@@ -140,7 +140,7 @@ pub struct Imported {
     /// The contract the file declares, with the manifest's overrides.
     pub contract: Contract,
     /// The built-in estimator that reproduces the model, and its params.
-    pub estimator: Estimator,
+    pub estimator: EstimatorParams,
     /// Where the params and each part of the contract came from.
     pub origin: Origin,
 }
@@ -148,7 +148,7 @@ pub struct Imported {
 /// The built-in estimator an imported model runs on.
 #[derive(Clone, Debug, PartialEq)]
 #[non_exhaustive]
-pub enum Estimator {
+pub enum EstimatorParams {
     /// Tree ensembles (`paddock-model-trees`).
     Trees(TreesParams),
     /// Linear and logistic models (`paddock-model-linear`).
@@ -163,9 +163,9 @@ impl Imported {
     pub fn params(&self) -> Vec<u8> {
         let contract = self.contract.clone();
         match &self.estimator {
-            Estimator::Trees(params) => encode_params(&Packaged { contract, params: params.clone() }),
-            Estimator::Linear(params) => encode_params(&Packaged { contract, params: params.clone() }),
-            Estimator::Program(params) => encode_params(&Packaged { contract, params: params.clone() }),
+            EstimatorParams::Trees(params) => encode_params(&Packaged { contract, params: params.clone() }),
+            EstimatorParams::Linear(params) => encode_params(&Packaged { contract, params: params.clone() }),
+            EstimatorParams::Program(params) => encode_params(&Packaged { contract, params: params.clone() }),
         }
     }
 
@@ -173,9 +173,9 @@ impl Imported {
     /// leaves it as `target/paddock/guests/NAME.wasm`).
     pub fn guest(&self) -> &'static str {
         match &self.estimator {
-            Estimator::Trees(_) => "paddock-model-trees",
-            Estimator::Linear(_) => "paddock-model-linear",
-            Estimator::Program(_) => "paddock-model-program",
+            EstimatorParams::Trees(_) => "paddock-model-trees",
+            EstimatorParams::Linear(_) => "paddock-model-linear",
+            EstimatorParams::Program(_) => "paddock-model-program",
         }
     }
 }

@@ -18,7 +18,7 @@ use paddock_guest::{
 };
 
 use crate::flatten::flatten;
-use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
 
 /// The `key=value` lines of one block, with the line each came from.
 struct Block<'a> {
@@ -175,14 +175,14 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 format!("category code, a whole number (feature_infos lists the categories {info})"),
             )
         };
-        sources.push(Source {
+        sources.push(Provenance {
             part: format!("feature {name}"),
             from: format!("name from feature_names in the file; {domain_from}; optional by default: LightGBM sends an absent value its split's missing-value way"),
         });
         contract_features.push(feature.optional());
     }
     for o in &outs {
-        sources.push(Source { part: format!("output {}", o.name), from: format!("the objective {name}") });
+        sources.push(Provenance { part: format!("output {}", o.name), from: format!("the objective {name}") });
     }
     let trees_count = params.trees.len();
     Ok(Imported {
@@ -193,7 +193,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             features: contract_features,
             outputs: outs,
         },
-        estimator: Estimator::Trees(params),
+        estimator: EstimatorParams::Trees(params),
         origin: Origin {
             format: Format::LightgbmText.name().to_owned(),
             file: file.to_owned(),

@@ -31,7 +31,7 @@ use paddock_guest::{
 use prost::Message;
 
 use crate::flatten::flatten;
-use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
 
 #[derive(Clone, PartialEq, Message)]
 struct ModelProto {
@@ -591,7 +591,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         (task, link != OutputLink::Identity),
         &labels,
         (learned_missing, missing_text),
-        Estimator::Trees(params),
+        EstimatorParams::Trees(params),
         format!("{kind}: {} ({})", task_text(task), link_text(link)),
         format!(
             "as scikit-learn computes {arithmetic}: {inputs_text}; leaves (float32 in the file) summed in double precision in tree order"
@@ -687,7 +687,7 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         (task, link != Link::Identity),
         &labels,
         (false, "required: a linear score needs every value"),
-        Estimator::Linear(LinearParams { link, intercepts, weights, impute: Vec::new() }),
+        EstimatorParams::Linear(LinearParams { link, intercepts, weights, impute: Vec::new() }),
         format!("{kind}: {} ({link_name})", task_text(task)),
         "as scikit-learn computes: features in double precision, coefficients (float32 in the file) summed in double precision; glibc's exp in the link".into(),
         size,
@@ -701,16 +701,16 @@ fn finish(
     (task, linked): (Task, bool),
     labels: &[String],
     (optional, missing_text): (bool, &str),
-    estimator: Estimator,
+    estimator: EstimatorParams,
     task_line: String,
     arithmetic: String,
     size: String,
 ) -> Result<Imported, ImportError> {
     let names: Vec<String> = (0..g.features).map(|i| format!("x{i}")).collect();
     let (outputs, about) = task.outputs(labels, linked);
-    let mut sources: Vec<Source> = names
+    let mut sources: Vec<Provenance> = names
         .iter()
-        .map(|n| Source {
+        .map(|n| Provenance {
             part: format!("feature {n}"),
             from: format!(
                 "by position in the graph input `{}` (ONNX names no columns; name them in a manifest); {missing_text}",
@@ -719,7 +719,7 @@ fn finish(
         })
         .collect();
     for (o, about) in outputs.iter().zip(&about) {
-        sources.push(Source { part: format!("output {}", o.name), from: format!("the model's {about}") });
+        sources.push(Provenance { part: format!("output {}", o.name), from: format!("the model's {about}") });
     }
     let feature =
         |n: &String| if optional { Feature::real(n, Bounds::OPEN).optional() } else { Feature::real(n, Bounds::OPEN) };

@@ -22,12 +22,12 @@ pub struct Origin {
     /// "linear: 3 outputs × 30 weights").
     pub estimator: String,
     /// Where each part of the contract came from, in contract order.
-    pub contract: Vec<Source>,
+    pub contract: Vec<Provenance>,
 }
 
 /// Where one part of the contract came from.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
-pub struct Source {
+pub struct Provenance {
     /// The part: `name`, `version`, `about`, `feature bmi`, `output value`.
     pub part: String,
     /// Where it came from, in words.
@@ -59,7 +59,7 @@ impl Origin {
                 s.from.push_str("; ");
                 s.from.push_str(from);
             }
-            None => self.contract.push(Source { part: part.to_owned(), from: from.to_owned() }),
+            None => self.contract.push(Provenance { part: part.to_owned(), from: from.to_owned() }),
         }
     }
 }

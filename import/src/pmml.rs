@@ -14,12 +14,12 @@
 use std::collections::HashMap;
 
 use paddock_guest::{
-    Bounds, Cast, Compare, Contract, Emit, Ensemble, Expr, Feature, Function, Input, Interval, Kind, Logic, Model,
-    Normalize, Outliers, Output, Predicate, ProgramParams, Rescale, Segment, Table, TreeNode, WhenUnknown,
+    Bounds, Cast, Compare, Contract, Emit, Ensemble, Expr, Feature, Function, Input, Interval, Kind, Logic, Normalize,
+    Outliers, Output, Predicate, ProgramParams, RegressionTable, Rescale, Segment, Submodel, TreeNode, WhenUnknown,
 };
 use roxmltree::{Document, Node};
 
-use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
 
 /// Deepest nesting of models, predicates and expressions imported (the
 /// program's own limit).
@@ -524,7 +524,7 @@ impl<'a, 'input> Reader<'a, 'input> {
         scope: &mut Scope,
         classes: Option<&[String]>,
         depth: usize,
-    ) -> Result<(Model, Vec<String>), ImportError> {
+    ) -> Result<(Submodel, Vec<String>), ImportError> {
         if depth > MAX_DEPTH {
             return Err(self.unsupported(
                 node,
@@ -623,7 +623,7 @@ impl<'a, 'input> Reader<'a, 'input> {
             scope.define(&name, Field { slot, labels: None, ordinal: false });
         }
         let classes_count = if classification { labels.len() as u32 } else { 0 };
-        Ok((Model { derived, kind, classes: classes_count, rescale, passes, after }, labels))
+        Ok((Submodel { derived, kind, classes: classes_count, rescale, passes, after }, labels))
     }
 
     fn targets(&self, node: Node<'_, '_>, classification: bool) -> Result<Option<Rescale>, ImportError> {
@@ -702,7 +702,7 @@ impl<'a, 'input> Reader<'a, 'input> {
         };
         let mut tables = Vec::new();
         for t in &tables_nodes {
-            let mut table = Table {
+            let mut table = RegressionTable {
                 intercept: self.number(*t, "intercept", None)?,
                 numeric: Vec::new(),
                 categorical: Vec::new(),
@@ -1175,7 +1175,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         );
         features.push(feature);
         inputs.push(input);
-        sources.push(Source { part: format!("feature {name}"), from });
+        sources.push(Provenance { part: format!("feature {name}"), from });
     }
     if features.is_empty() {
         return Err(reader.malformed(schema, "no active MiningField"));
@@ -1204,7 +1204,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         } else {
             format!("a class of the target field {}", target.as_deref().unwrap_or("(not named)"))
         };
-        sources.push(Source { part: format!("output {}", o.name), from });
+        sources.push(Provenance { part: format!("output {}", o.name), from });
     }
     let params = ProgramParams { inputs, slots: reader.slots, derived, model, outputs: emits };
     // The program's own checks, so a document it cannot run fails here.
@@ -1216,7 +1216,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let kind = format!("{} ({})", tag(model_node), model_node.attribute("functionName").unwrap_or(""));
     Ok(Imported {
         contract: Contract { name: model_node.attribute("modelName").unwrap_or("").to_owned(), version: String::new(), about: String::new(), features, outputs },
-        estimator: Estimator::Program(params),
+        estimator: EstimatorParams::Program(params),
         origin: Origin {
             format: Format::Pmml.name().to_owned(),
             file: file.to_owned(),

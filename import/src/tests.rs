@@ -3,7 +3,7 @@
 
 use paddock_guest::{Branch, Node, OutputLink, Precision};
 
-use crate::{Estimator, Format, import};
+use crate::{EstimatorParams, Format, import};
 
 /// XGBoost JSON with one stump (x0 < 0.5 → −1, else 2; absent → right).
 fn xgboost(tree: &str) -> String {
@@ -25,7 +25,7 @@ fn err(bytes: &str, format: Format) -> String {
 #[test]
 fn a_stump_from_xgboost_becomes_single_precision_params() {
     let imported = import(xgboost(STUMP).as_bytes(), Format::XgboostJson, "dir/stump.json", None).unwrap();
-    let Estimator::Trees(p) = &imported.estimator else { panic!("trees") };
+    let EstimatorParams::Trees(p) = &imported.estimator else { panic!("trees") };
     assert_eq!((p.inputs, p.arithmetic, p.link), (Precision::Single, Precision::Single, OutputLink::Identity));
     assert_eq!(p.base, vec![0.5]);
     assert_eq!(
@@ -86,7 +86,7 @@ cat_threshold=5\nis_linear=0\nshrinkage=1\n\n\nend of trees\n";
 #[test]
 fn a_lightgbm_tree_with_a_categorical_split_becomes_params() {
     let imported = import(LGB.as_bytes(), Format::LightgbmText, "m.txt", None).unwrap();
-    let Estimator::Trees(p) = &imported.estimator else { panic!("trees") };
+    let EstimatorParams::Trees(p) = &imported.estimator else { panic!("trees") };
     assert_eq!(p.link, OutputLink::Logistic { scale: 2.0 });
     assert_eq!(p.sets, vec![vec![5]]);
     // Root: feature b in {0, 2} goes left to the numeric split on a

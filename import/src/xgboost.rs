@@ -20,7 +20,7 @@ use paddock_guest::{
 use serde_json::Value;
 
 use crate::flatten::flatten;
-use crate::{Blame, Estimator, Format, ImportError, Imported, Origin, Source};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
 
 /// How an objective's margin becomes its outputs.
 #[derive(Clone, Copy, PartialEq)]
@@ -267,7 +267,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 if other == "float" || other == "q" { "real number from feature_types" } else { "real number" },
             ),
         };
-        contract_sources.push(Source {
+        contract_sources.push(Provenance {
             part: format!("feature {name}"),
             from: format!("{named_from}; {domain_from}; optional by default: XGBoost sends an absent value its split's default way"),
         });
@@ -275,7 +275,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     }
     for o in &outputs {
         contract_sources
-            .push(Source { part: format!("output {}", o.name), from: format!("the objective {objective}") });
+            .push(Provenance { part: format!("output {}", o.name), from: format!("the objective {objective}") });
     }
     let origin = Origin {
         format: Format::XgboostJson.name().to_owned(),
@@ -294,7 +294,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             features: contract_features,
             outputs,
         },
-        estimator: Estimator::Trees(params),
+        estimator: EstimatorParams::Trees(params),
         origin,
     })
 }

@@ -17,7 +17,7 @@ use std::time::Duration;
 use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_guest::{Evaluate, Trees};
 use paddock_host::{Artifact, Model, ModelOptions, Runtime};
-use paddock_import::{Estimator, Format, import};
+use paddock_import::{EstimatorParams, Format, import};
 use paddock_tests::{guest, root, time};
 use serde_json::Value;
 
@@ -31,7 +31,7 @@ fn packed(path: &Path) -> (Vec<u8>, Trees, usize) {
     let format = Format::recognise(&bytes).expect("a model file");
     let imported = import(&bytes, format, &path.display().to_string(), None).unwrap();
     let params = imported.params();
-    let Estimator::Trees(trees) = imported.estimator else { panic!("{}: not a tree ensemble", path.display()) };
+    let EstimatorParams::Trees(trees) = imported.estimator else { panic!("{}: not a tree ensemble", path.display()) };
     let count = trees.trees.len();
     let native = Trees::new(trees).unwrap();
     (paddock_host::pack(&guest("paddock-model-trees"), Some(&params), None).unwrap(), native, count)

@@ -103,11 +103,20 @@ impl Packages {
 /// Installs [`PYTHON_PACKAGES`] and the notebook helper (`handoff/`) with pip.
 pub fn python_packages(root: &Path) -> Result<()> {
     let mut pip = Command::new("python3");
-    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PYTHON_PACKAGES);
+    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--root-user-action=ignore"])
+        .args(PYTHON_PACKAGES);
     run(pip).context("installing the tests' Python packages (needs python3 with pip)")?;
     let mut helper = Command::new("python3");
     helper
-        .args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--no-deps"])
+        .args([
+            "-m",
+            "pip",
+            "install",
+            "--quiet",
+            "--disable-pip-version-check",
+            "--root-user-action=ignore",
+            "--no-deps",
+        ])
         .arg(root.join("handoff"));
     run(helper).context("installing the notebook helper (pip install ./handoff)")
 }
@@ -145,7 +154,8 @@ fn pmml_venv(root: &Path) -> Result<PathBuf> {
         run(make).context("making the PMML exporter's virtual environment (python3 -m venv)")?;
     }
     let mut pip = Command::new(&python);
-    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check"]).args(PMML_PACKAGES);
+    pip.args(["-m", "pip", "install", "--quiet", "--disable-pip-version-check", "--root-user-action=ignore"])
+        .args(PMML_PACKAGES);
     run(pip).context("installing nyoka and scikit-learn 1.3.2 in target/paddock/pmml-venv")?;
     Ok(python)
 }

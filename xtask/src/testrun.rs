@@ -113,7 +113,7 @@ pub fn run_all(root: &Path, args: &[&str], jobs: usize) -> Result<()> {
         }
         took.push((r.binary.label, elapsed, ok));
     }
-    took.sort_by(|a, b| b.1.cmp(&a.1));
+    took.sort_by_key(|t| std::cmp::Reverse(t.1));
     eprintln!("xtask: test binaries by time:");
     for (label, elapsed, ok) in &took {
         eprintln!("  {:>7.1} s  {label}{}", elapsed.as_secs_f64(), if *ok { "" } else { "  FAILED" });

@@ -41,7 +41,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             "error": verdict.as_ref().err().map(|e| format!("{e:#}")),
         }))?;
     } else {
-        println!("{} {}\n{text}", args.artifact.display(), artifact.digest());
+        outln!("{} {}\n{text}", args.artifact.display(), artifact.digest())?;
     }
     Ok(if ok { Outcome::Ok } else { Outcome::Failed })
 }

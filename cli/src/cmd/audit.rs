@@ -23,7 +23,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     if args.json {
         print_json(&report)?;
     } else {
-        print!("{}", text(&report));
+        out!("{}", text(&report))?;
     }
     Ok(if report.passed() { Outcome::Ok } else { Outcome::Failed })
 }
@@ -127,9 +127,9 @@ fn text(r: &AuditReport) -> String {
     out
 }
 
-fn source(s: paddock_host::sandbox::wasi::Source) -> &'static str {
+fn source(s: paddock_host::sandbox::wasi::Ambient) -> &'static str {
     match s {
-        paddock_host::sandbox::wasi::Source::Fixed => "fixed",
-        paddock_host::sandbox::wasi::Source::Real => "real",
+        paddock_host::sandbox::wasi::Ambient::Fixed => "fixed",
+        paddock_host::sandbox::wasi::Ambient::Real => "real",
     }
 }

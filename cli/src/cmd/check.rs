@@ -43,11 +43,11 @@ pub fn run(args: Args) -> Result<Outcome> {
         print_json(&report)?;
     } else {
         let c = model.contract();
-        println!("{} {} ({})", c.name, c.version, model.digest().short());
+        outln!("{} {} ({})", c.name, c.version, model.digest().short())?;
         if !checks.source.is_empty() {
-            println!("recorded by: {}", checks.source);
+            outln!("recorded by: {}", checks.source)?;
         }
-        println!(
+        outln!(
             "{}/{} cases passed; max abs error {:e}, max rel error {:e}; tolerance abs {:e} + rel {:e}",
             report.passed,
             report.cases,
@@ -55,9 +55,9 @@ pub fn run(args: Args) -> Result<Outcome> {
             report.max_rel_error,
             report.tolerance.abs,
             report.tolerance.rel
-        );
+        )?;
         for (case, failure) in &report.failures {
-            println!("case {case}: {failure}");
+            outln!("case {case}: {failure}")?;
         }
     }
     Ok(if report.ok() { Outcome::Ok } else { Outcome::Failed })

@@ -184,14 +184,14 @@ pub fn run(args: Args) -> Result<Outcome> {
             ]
         })
         .collect();
-    println!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)");
-    println!("times in {ZONE}; store {}\n", store.display());
-    print!(
+    outln!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)")?;
+    outln!("times in {ZONE}; store {}\n", store.display())?;
+    out!(
         "{}",
         text_table(&["site", "region", "plug-in", "charging", "answered by", "overstay risk", "answered by"], &rows)
-    );
+    )?;
     for s in &usage.shadows {
-        println!(
+        outln!(
             "\nshadow {} {}: {} requests compared, largest difference {:.1} min, {} over the {} min tolerance",
             s.model,
             s.version,
@@ -199,23 +199,23 @@ pub fn run(args: Args) -> Result<Outcome> {
             s.max_abs_diff,
             s.over_tolerance,
             registry.routes().model(&s.model).and_then(|r| r.shadow()).map_or(0.0, |sh| sh.tolerance)
-        );
+        )?;
     }
     if !looked_up.is_empty() {
         let count = |o| looked_up.get(&o).copied().unwrap_or(0);
         use paddock_serve::features::Outcome;
-        println!(
+        outln!(
             "overstay-risk read site occupancy and member overstay rate by key from the store's feature sources: {} found, {} missing (members not known yet: the feature is absent), {} stale",
             count(Outcome::Found),
             count(Outcome::Missing),
             count(Outcome::Stale)
-        );
+        )?;
     }
     let status = registry.status();
-    println!(
+    outln!(
         "{} versions loaded, each in its own sandbox; `paddock serve --store {}` serves the same store over HTTP",
         status.artifacts.len(),
         store.display()
-    );
+    )?;
     Ok(Outcome::Ok)
 }

@@ -60,34 +60,34 @@ pub fn run(args: Args) -> Result<Outcome> {
         print_json(&report)?;
         return Ok(if report.load_error.is_some() { Outcome::Failed } else { Outcome::Ok });
     }
-    println!("{}", report.path.display());
-    println!("  digest   {}", report.digest);
-    println!("  size     {} bytes, WebAssembly {}", report.bytes, report.inventory.encoding);
+    outln!("{}", report.path.display())?;
+    outln!("  digest   {}", report.digest)?;
+    outln!("  size     {} bytes, WebAssembly {}", report.bytes, report.inventory.encoding)?;
     let none = |v: &[String]| if v.is_empty() { "none".to_owned() } else { v.join(", ") };
-    println!("  imports  {}", none(&report.inventory.imports));
-    println!("  exports  {}", none(&report.inventory.exports));
+    outln!("  imports  {}", none(&report.inventory.imports))?;
+    outln!("  exports  {}", none(&report.inventory.exports))?;
     if !report.inventory.type_names.is_empty() {
-        println!("  types    {} (type definitions, not capabilities)", report.inventory.type_names.join(", "));
+        outln!("  types    {} (type definitions, not capabilities)", report.inventory.type_names.join(", "))?;
     }
     for s in &report.inventory.sections {
-        println!("  section  {} ({} bytes)", s.name, s.bytes);
+        outln!("  section  {} ({} bytes)", s.name, s.bytes)?;
     }
     if let Some(err) = &report.load_error {
-        println!("\ndoes not load: {err}");
+        outln!("\ndoes not load: {err}")?;
         return Ok(Outcome::Failed);
     }
     if let Some(c) = &report.contract {
-        print!("\n{}", contract_text(c));
+        out!("\n{}", contract_text(c))?;
     }
     if let Some(o) = &report.origin {
-        println!("\nimported from {} ({}, {})", o.file, o.format, o.estimator);
-        println!("  toolkit     {}", o.toolkit);
-        println!("  task        {}", o.task);
-        println!("  arithmetic  {}", o.arithmetic);
-        println!("  contract, part by part:");
+        outln!("\nimported from {} ({}, {})", o.file, o.format, o.estimator)?;
+        outln!("  toolkit     {}", o.toolkit)?;
+        outln!("  task        {}", o.task)?;
+        outln!("  arithmetic  {}", o.arithmetic)?;
+        outln!("  contract, part by part:")?;
         let width = o.contract.iter().map(|s| s.part.chars().count()).max().unwrap_or(0);
         for s in &o.contract {
-            println!("    {:width$}  {}", s.part, s.from);
+            outln!("    {:width$}  {}", s.part, s.from)?;
         }
     }
     Ok(Outcome::Ok)

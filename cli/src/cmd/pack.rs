@@ -229,15 +229,18 @@ pub fn run(args: Args) -> Result<Outcome> {
     if args.json {
         print_json(&packed)?;
     } else {
-        println!("wrote {} ({} bytes, {})", packed.artifact.display(), packed.bytes, packed.digest);
+        outln!("wrote {} ({} bytes, {})", packed.artifact.display(), packed.bytes, packed.digest)?;
         if let Some(m) = &packed.model {
-            println!("loads as {m}");
+            outln!("loads as {m}")?;
         }
         if let Some(r) = &packed.checks {
-            println!(
+            outln!(
                 "checks: {}/{} passed (max abs error {:e}, max rel error {:e})",
-                r.passed, r.cases, r.max_abs_error, r.max_rel_error
-            );
+                r.passed,
+                r.cases,
+                r.max_abs_error,
+                r.max_rel_error
+            )?;
         }
     }
     Ok(Outcome::Ok)

@@ -6,7 +6,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
 use indicatif::{ProgressBar, ProgressStyle};
-use paddock_host::contract::row_file::{self, Format, Record};
+use paddock_host::contract::row_file::{self, Record, RowFormat};
 use paddock_host::{Model, ScoreError};
 
 use crate::Outcome;
@@ -18,11 +18,11 @@ enum FormatArg {
     Ndjson,
 }
 
-impl From<FormatArg> for Format {
-    fn from(f: FormatArg) -> Format {
+impl From<FormatArg> for RowFormat {
+    fn from(f: FormatArg) -> RowFormat {
         match f {
-            FormatArg::Csv => Format::Csv,
-            FormatArg::Ndjson => Format::Ndjson,
+            FormatArg::Csv => RowFormat::Csv,
+            FormatArg::Ndjson => RowFormat::Ndjson,
         }
     }
 }
@@ -72,15 +72,15 @@ struct Line {
 pub fn run(args: Args) -> Result<Outcome> {
     let (_runtime, model) = args.limits.load(&args.artifact)?;
     let stdin = args.input.as_os_str() == "-";
-    let format: Format = match (args.from, stdin) {
+    let format: RowFormat = match (args.from, stdin) {
         (Some(f), _) => f.into(),
-        (None, true) => Format::Csv,
-        (None, false) => match Format::from_path(&args.input) {
+        (None, true) => RowFormat::Csv,
+        (None, false) => match RowFormat::from_path(&args.input) {
             Some(f) => f,
             None => bail!("cannot tell the format of {}: use --from csv or --from ndjson", args.input.display()),
         },
     };
-    let to: Format = if args.json { Format::Ndjson } else { args.to.map_or(format, Format::from) };
+    let to: RowFormat = if args.json { RowFormat::Ndjson } else { args.to.map_or(format, RowFormat::from) };
     let (input, progress): (Box<dyn Read>, ProgressBar) = if stdin {
         (Box::new(io::stdin().lock()), ProgressBar::hidden())
     } else {
@@ -234,10 +234,10 @@ struct Writer {
 }
 
 impl Writer {
-    fn new(out: Box<dyn Write>, format: Format, model: &Model, with_id: bool) -> Result<Self> {
+    fn new(out: Box<dyn Write>, format: RowFormat, model: &Model, with_id: bool) -> Result<Self> {
         let outputs: Vec<String> = model.contract().outputs.iter().map(|o| o.name.clone()).collect();
         let sink = match format {
-            Format::Csv => {
+            RowFormat::Csv => {
                 let mut csv = csv::Writer::from_writer(out);
                 let mut header = vec!["row".to_owned()];
                 if with_id {
@@ -248,7 +248,7 @@ impl Writer {
                 csv.write_record(&header)?;
                 Sink::Csv(Box::new(csv))
             }
-            Format::Ndjson => Sink::Ndjson(BufWriter::new(out)),
+            RowFormat::Ndjson => Sink::Ndjson(BufWriter::new(out)),
         };
         Ok(Writer { sink, outputs, with_id })
     }

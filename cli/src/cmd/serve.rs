@@ -80,7 +80,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             .with_context(|| format!("listening on {}", args.listen))?;
         let addr = listener.local_addr()?;
         // The first line on stdout is the address, for scripts that asked for port 0.
-        println!("listening on http://{addr}");
+        outln!("listening on http://{addr}")?;
         use std::io::Write;
         std::io::stdout().flush()?;
         http::serve(listener, router, stop).await?;

@@ -63,25 +63,25 @@ pub fn run(args: Args) -> Result<Outcome> {
                 ]
             })
             .collect();
-        println!("store {} (generation {})\n", status.store.display(), status.generation);
-        print!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows));
+        outln!("store {} (generation {})\n", status.store.display(), status.generation)?;
+        out!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows))?;
         match &status.routes {
-            RoutesState::Accepted => println!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE),
+            RoutesState::Accepted => outln!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE)?,
             RoutesState::Missing => {
-                println!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE)
+                outln!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE)?
             }
             RoutesState::Refused { problems } => {
-                println!("\nroutes: refused (the previous routes would keep serving):");
+                outln!("\nroutes: refused (the previous routes would keep serving):")?;
                 for p in problems {
-                    println!("  - {p}");
+                    outln!("  - {p}")?;
                 }
             }
         }
         let features = paddock_serve::registry::FEATURES_FILE;
         match &status.features {
-            FeaturesState::Missing => println!("features: no {features} — rows carry their features"),
+            FeaturesState::Missing => outln!("features: no {features} — rows carry their features")?,
             FeaturesState::Accepted { tables, servers } => {
-                println!("features: {features} accepted");
+                outln!("features: {features} accepted")?;
                 let rows: Vec<Vec<String>> = tables
                     .iter()
                     .map(|t| {
@@ -96,25 +96,25 @@ pub fn run(args: Args) -> Result<Outcome> {
                     })
                     .collect();
                 if !rows.is_empty() {
-                    print!("{}", text_table(&["source", "table", "rows", "age", "file changed", "loaded"], &rows));
+                    out!("{}", text_table(&["source", "table", "rows", "age", "file changed", "loaded"], &rows))?;
                 }
                 let rows: Vec<Vec<String>> = servers
                     .iter()
                     .map(|s| vec![s.source.clone(), s.url.clone(), format!("{} ms", s.budget_ms)])
                     .collect();
                 if !rows.is_empty() {
-                    print!("{}", text_table(&["source", "redis", "budget"], &rows));
+                    out!("{}", text_table(&["source", "redis", "budget"], &rows))?;
                 }
             }
             FeaturesState::Refused { problems } => {
-                println!("features: refused (the previous plan and tables would keep serving):");
+                outln!("features: refused (the previous plan and tables would keep serving):")?;
                 for p in problems {
-                    println!("  - {p}");
+                    outln!("  - {p}")?;
                 }
             }
         }
         if !status.unrouted.is_empty() {
-            println!("loaded but not routed: {}", status.unrouted.join(", "));
+            outln!("loaded but not routed: {}", status.unrouted.join(", "))?;
         }
     }
     Ok(if refused { Outcome::Failed } else { Outcome::Ok })

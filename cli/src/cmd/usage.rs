@@ -33,7 +33,10 @@ pub fn run(args: Args) -> Result<Outcome> {
     let state = args.state.unwrap_or_else(|| args.store.join(STATE_DIR));
     let path = usage_path(&state);
     let text = std::fs::read(&path).with_context(|| {
-        format!("reading {} (a host serving the store writes it; `paddock demo` does too)", path.display())
+        format!(
+            "reading {} (`paddock serve`, `paddock stream` and `paddock work` write it while they serve the store)",
+            path.display()
+        )
     })?;
     let saved: SavedUsage =
         serde_json::from_slice(&text).with_context(|| format!("{} is not a usage file", path.display()))?;
@@ -41,7 +44,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         print_json(&saved)?;
         return Ok(Outcome::Ok);
     }
-    println!("usage of {} by process {}, written {}\n", saved.store.display(), saved.pid, saved.written);
+    outln!("usage of {} by process {}, written {}\n", saved.store.display(), saved.pid, saved.written)?;
     let rows: Vec<Vec<String>> = saved
         .usage
         .versions
@@ -77,7 +80,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         "fuel",
         "peak memory",
     ];
-    print!("{}", text_table(&header, &rows));
+    out!("{}", text_table(&header, &rows))?;
     if !saved.usage.shadows.is_empty() {
         let rows: Vec<Vec<String>> = saved
             .usage
@@ -95,11 +98,11 @@ pub fn run(args: Args) -> Result<Outcome> {
                 ]
             })
             .collect();
-        println!("\nshadows:");
-        print!(
+        outln!("\nshadows:")?;
+        out!(
             "{}",
             text_table(&["model", "shadow", "compared", "max |diff|", "over tolerance", "errors", "dropped"], &rows)
-        );
+        )?;
     }
     Ok(Outcome::Ok)
 }

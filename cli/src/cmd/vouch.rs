@@ -36,13 +36,13 @@ pub fn run(args: Args) -> Result<Outcome> {
         print_json(&vouch)?;
     } else {
         let name = key.voucher().name().to_owned();
-        println!(
+        outln!(
             "{name} (voucher {}) vouches for {} ({}): {}",
             vouch.voucher,
             args.artifact.display(),
             artifact.digest(),
             out.display()
-        );
+        )?;
     }
     Ok(Outcome::Ok)
 }

@@ -43,12 +43,12 @@ pub fn run(args: Args) -> Result<Outcome> {
             &serde_json::json!({ "voucher": id, "name": args.name, "vouching_key": secret_path, "public": public_path }),
         )?;
     } else {
-        println!(
+        outln!(
             "voucher {} (id {id}): vouching key {} (keep it private), public file {}",
             args.name,
             secret_path.display(),
             public_path.display()
-        );
+        )?;
     }
     Ok(Outcome::Ok)
 }

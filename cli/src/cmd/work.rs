@@ -98,7 +98,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         if let Some(addr) = args.metrics {
             let listener = tokio::net::TcpListener::bind(addr).await.with_context(|| format!("listening on {addr}"))?;
             // The first line on stdout is the address, for scripts that asked for port 0.
-            println!("metrics on http://{}/metrics", listener.local_addr()?);
+            outln!("metrics on http://{}/metrics", listener.local_addr()?)?;
             use std::io::Write;
             std::io::stdout().flush()?;
             // Served until the runtime is dropped, after the worker stops.

@@ -10,19 +10,19 @@ use crate::contract::schema::Schema;
 
 /// A file format for rows.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Format {
+pub enum RowFormat {
     /// Comma-separated, first line names the features.
     Csv,
     /// One JSON object per line.
     Ndjson,
 }
 
-impl Format {
+impl RowFormat {
     /// Guesses the format from a file extension (`.csv`, `.ndjson`, `.jsonl`, `.json`).
-    pub fn from_path(path: &Path) -> Option<Format> {
+    pub fn from_path(path: &Path) -> Option<RowFormat> {
         match path.extension()?.to_str()?.to_ascii_lowercase().as_str() {
-            "csv" => Some(Format::Csv),
-            "ndjson" | "jsonl" | "json" => Some(Format::Ndjson),
+            "csv" => Some(RowFormat::Csv),
+            "ndjson" | "jsonl" | "json" => Some(RowFormat::Ndjson),
             _ => None,
         }
     }
@@ -126,13 +126,13 @@ fn list(columns: &[String]) -> String {
 /// lacks the id column.
 pub fn records<'a, R: Read + 'a>(
     input: R,
-    format: Format,
+    format: RowFormat,
     schema: &'a Schema,
     columns: Columns<'a>,
 ) -> Result<Box<dyn Iterator<Item = Record> + 'a>, RowFileError> {
     Ok(match format {
-        Format::Csv => Box::new(csv_records(input, schema, columns)?),
-        Format::Ndjson => Box::new(ndjson_records(input, columns)),
+        RowFormat::Csv => Box::new(csv_records(input, schema, columns)?),
+        RowFormat::Ndjson => Box::new(ndjson_records(input, columns)),
     })
 }
 
@@ -266,7 +266,7 @@ mod tests {
     #[test]
     fn csv_columns_that_are_not_features_are_named_with_the_way_out() {
         let s = schema();
-        let err = records("site,kw,plate\na,1,b\n".as_bytes(), Format::Csv, &s, Columns::default()).err().unwrap();
+        let err = records("site,kw,plate\na,1,b\n".as_bytes(), RowFormat::Csv, &s, Columns::default()).err().unwrap();
         assert_eq!(
             err.to_string(),
             "columns `site`, `plate` are not features of t 1.0.0: name the row's id column with --id NAME, or leave columns out with --ignore NAME"
@@ -274,7 +274,7 @@ mod tests {
         let ignore = ["plate".to_owned()];
         let got: Vec<Record> = records(
             "site,kw,plate\na,1,b\n".as_bytes(),
-            Format::Csv,
+            RowFormat::Csv,
             &s,
             Columns { id: Some("site"), ignore: &ignore },
         )
@@ -282,14 +282,15 @@ mod tests {
         .collect();
         assert_eq!(got[0].id.as_deref(), Some("a"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(1.0))]);
-        let err = records("kw\n1\n".as_bytes(), Format::Csv, &s, id("site")).err().unwrap();
+        let err = records("kw\n1\n".as_bytes(), RowFormat::Csv, &s, id("site")).err().unwrap();
         assert_eq!(err.to_string(), "the id column `site` is not in the CSV header (columns: kw)");
     }
 
     #[test]
     fn a_field_that_is_not_utf8_is_named_in_words() {
         let s = schema();
-        let got: Vec<Record> = records(&b"kw\n1\n\xff\n"[..], Format::Csv, &s, Columns::default()).unwrap().collect();
+        let got: Vec<Record> =
+            records(&b"kw\n1\n\xff\n"[..], RowFormat::Csv, &s, Columns::default()).unwrap().collect();
         assert_eq!(got[1].row.as_ref().unwrap_err(), &RecordError::NotUtf8 { field: 1, line: Some(3) });
         assert_eq!(got[1].row.as_ref().unwrap_err().to_string(), "field 1 is not UTF-8 text (line 3)");
     }
@@ -298,7 +299,7 @@ mod tests {
     fn csv_bad_records_are_numbered_and_the_rest_read() {
         let s = schema();
         let input = "id,kw\na,7.4\nb\nc,11\n";
-        let got: Vec<Record> = records(input.as_bytes(), Format::Csv, &s, id("id")).unwrap().collect();
+        let got: Vec<Record> = records(input.as_bytes(), RowFormat::Csv, &s, id("id")).unwrap().collect();
         assert_eq!(got.len(), 3);
         assert_eq!(got[0].id.as_deref(), Some("a"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Number(7.4))]);
@@ -311,7 +312,7 @@ mod tests {
     fn ndjson_bad_lines_are_numbered_and_the_rest_read() {
         let s = schema();
         let input = "{\"id\": 7, \"kw\": 3}\n\nnot json\n[1]\n";
-        let got: Vec<Record> = records(input.as_bytes(), Format::Ndjson, &s, id("id")).unwrap().collect();
+        let got: Vec<Record> = records(input.as_bytes(), RowFormat::Ndjson, &s, id("id")).unwrap().collect();
         assert_eq!(got.len(), 3);
         assert_eq!(got[0].id.as_deref(), Some("7"));
         assert_eq!(got[0].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Integer(3))]);

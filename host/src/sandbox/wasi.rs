@@ -40,7 +40,7 @@ pub const WASI_VERSION: &str = "0.2.12";
 /// Whether clocks and randomness are the machine's or fixed.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
-pub enum Source {
+pub enum Ambient {
     /// Fixed: the wall clock reads [`WasiPolicy::fixed_time`], the monotonic
     /// clock advances 1 µs per reading, randomness is a stream derived from
     /// [`WasiPolicy::seed`]. Same answers on every run. Default.
@@ -54,9 +54,9 @@ pub enum Source {
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct WasiPolicy {
     /// Clocks: fixed (default) or real.
-    pub clocks: Source,
+    pub clocks: Ambient,
     /// Randomness: fixed (default) or real.
-    pub random: Source,
+    pub random: Ambient,
     /// The wall-clock time a fixed clock reads, seconds since the Unix
     /// epoch. Default 1 767 225 600 (2026-01-01T00:00:00Z).
     pub fixed_time: u64,
@@ -70,8 +70,8 @@ pub struct WasiPolicy {
 impl Default for WasiPolicy {
     fn default() -> Self {
         WasiPolicy {
-            clocks: Source::Fixed,
-            random: Source::Fixed,
+            clocks: Ambient::Fixed,
+            random: Ambient::Fixed,
             fixed_time: 1_767_225_600,
             seed: 0,
             output_bytes: 4096,
@@ -89,9 +89,9 @@ pub fn is_wasi(import: &str) -> bool {
 /// not link).
 pub fn satisfied_by(import: &str, policy: &WasiPolicy) -> Option<String> {
     let name = import.split('@').next().unwrap_or(import);
-    let source = |s: Source, fixed: String| match s {
-        Source::Fixed => fixed,
-        Source::Real => "the host's (real)".to_owned(),
+    let source = |s: Ambient, fixed: String| match s {
+        Ambient::Fixed => fixed,
+        Ambient::Real => "the host's (real)".to_owned(),
     };
     Some(match name {
         "wasi:cli/environment" => "empty: no variables, no arguments, no working directory".into(),
@@ -147,11 +147,11 @@ impl WasiState {
         b.stdout(stdout.clone()).stderr(stderr.clone());
         b.allow_tcp(false).allow_udp(false).allow_ip_name_lookup(false);
         let monotonic = match policy.clocks {
-            Source::Fixed => {
+            Ambient::Fixed => {
                 b.wall_clock(FixedWall(Duration::from_secs(policy.fixed_time)));
                 Monotonic::Fixed(Arc::default())
             }
-            Source::Real => Monotonic::Real(Instant::now()),
+            Ambient::Real => Monotonic::Real(Instant::now()),
         };
         b.monotonic_clock(monotonic.clone());
         if let Some(streams) = &start.streams {
@@ -299,7 +299,7 @@ pub(crate) struct WasiStart {
 impl WasiStart {
     /// How instances start under `policy`, after what priming `carry`s.
     pub(crate) fn new(policy: WasiPolicy, carry: Carry) -> Self {
-        let streams = (policy.random == Source::Fixed).then(|| {
+        let streams = (policy.random == Ambient::Fixed).then(|| {
             Arc::new(FixedStreams {
                 secure: stream(policy.seed, b"secure"),
                 insecure: stream(policy.seed, b"insecure"),
@@ -395,7 +395,7 @@ pub(crate) fn link_for_priming<T: WasiHost>(
                 at.func_wrap("get-arguments", |_, ()| Ok((Vec::<String>::new(),)))?;
                 at.func_wrap("initial-cwd", |_, ()| Ok((None::<String>,)))?;
             }
-            "clocks/monotonic-clock" if policy.clocks == Source::Fixed => {
+            "clocks/monotonic-clock" if policy.clocks == Ambient::Fixed => {
                 at.func_wrap("now", |mut store: wasmtime::StoreContextMut<'_, T>, ()| {
                     Ok((store.data_mut().wasi().monotonic.now(),))
                 })?;
@@ -403,12 +403,12 @@ pub(crate) fn link_for_priming<T: WasiHost>(
                     Ok((store.data_mut().wasi().monotonic.resolution(),))
                 })?;
             }
-            "clocks/wall-clock" if policy.clocks == Source::Fixed => {
+            "clocks/wall-clock" if policy.clocks == Ambient::Fixed => {
                 let now = Datetime { seconds: policy.fixed_time, nanoseconds: 0 };
                 at.func_wrap("now", move |_, ()| Ok((now,)))?;
                 at.func_wrap("resolution", |_, ()| Ok((Datetime { seconds: 1, nanoseconds: 0 },)))?;
             }
-            "random/random" | "random/insecure" if policy.random == Source::Fixed => {
+            "random/random" | "random/insecure" if policy.random == Ambient::Fixed => {
                 let insecure = interface == "random/insecure";
                 let (bytes, word) = if insecure {
                     ("get-insecure-random-bytes", "get-insecure-random-u64")
@@ -432,7 +432,7 @@ pub(crate) fn link_for_priming<T: WasiHost>(
                     Ok((u64::from_le_bytes(bytes.try_into().expect("eight bytes")),))
                 })?;
             }
-            "random/insecure-seed" if policy.random == Source::Fixed => {
+            "random/insecure-seed" if policy.random == Ambient::Fixed => {
                 let seed = u128::from(policy.seed);
                 at.func_wrap("insecure-seed", move |_, ()| Ok(((seed as u64, (seed >> 64) as u64),)))?;
             }

@@ -13,7 +13,7 @@ use std::path::Path;
 
 use jiff::Timestamp;
 
-use paddock_host::contract::row_file::Format;
+use paddock_host::contract::row_file::RowFormat;
 
 /// One cell, as a lookup sees it.
 #[derive(Clone, Copy, Debug, PartialEq)]
@@ -153,7 +153,7 @@ impl Table {
             let (names, rows) = parquet_rows(bytes, &file)?;
             return Table::from_rows(names, rows, &file, key, updated);
         }
-        let format = Format::from_path(path).ok_or_else(|| TableError::Format {
+        let format = RowFormat::from_path(path).ok_or_else(|| TableError::Format {
             file: file.clone(),
             extension: path.extension().map(|e| e.to_string_lossy().into_owned()).unwrap_or_default(),
         })?;
@@ -168,7 +168,7 @@ impl Table {
     /// As [`Table::read`].
     pub fn parse(
         bytes: &[u8],
-        format: Format,
+        format: RowFormat,
         file: &str,
         key: &str,
         updated: Option<&str>,
@@ -180,7 +180,7 @@ impl Table {
             problem,
         };
         let (names, rows) = match format {
-            Format::Csv => {
+            RowFormat::Csv => {
                 let mut reader = csv::ReaderBuilder::new().flexible(false).from_reader(bytes);
                 let names: Vec<String> = reader
                     .headers()
@@ -209,7 +209,7 @@ impl Table {
                 }
                 (names, rows)
             }
-            Format::Ndjson => {
+            RowFormat::Ndjson => {
                 let text = std::str::from_utf8(bytes).map_err(|e| cell_error(0, None, format!("not UTF-8: {e}")))?;
                 let mut names: Vec<String> = Vec::new();
                 let mut rows: Vec<Vec<Raw>> = Vec::new();
@@ -516,7 +516,7 @@ mod tests {
 
     #[test]
     fn a_csv_table_is_keyed_typed_and_dated() {
-        let t = Table::parse(CSV.as_bytes(), Format::Csv, "sites.csv", "site", Some("updated_at")).unwrap();
+        let t = Table::parse(CSV.as_bytes(), RowFormat::Csv, "sites.csv", "site", Some("updated_at")).unwrap();
         assert_eq!(t.len(), 3);
         let minutes = t.column("avg_minutes_7d").unwrap();
         let plug = t.column("plug").unwrap();
@@ -531,7 +531,7 @@ mod tests {
     #[test]
     fn an_ndjson_table_reads_the_same() {
         let text = "{\"site\": \"north-1\", \"avg_minutes_7d\": 42.5, \"fleet\": true}\n\n{\"site\": \"south-2\", \"avg_minutes_7d\": null}\n";
-        let t = Table::parse(text.as_bytes(), Format::Ndjson, "sites.ndjson", "site", None).unwrap();
+        let t = Table::parse(text.as_bytes(), RowFormat::Ndjson, "sites.ndjson", "site", None).unwrap();
         assert_eq!(t.get("north-1", t.column("fleet").unwrap()), Some((Cell::Text("true"), None)));
         assert_eq!(t.get("south-2", t.column("fleet").unwrap()), Some((Cell::Absent, None)));
         assert_eq!(t.get("south-2", t.column("avg_minutes_7d").unwrap()), Some((Cell::Absent, None)));
@@ -542,18 +542,20 @@ mod tests {
         let err = |text: &str, format, updated| {
             Table::parse(text.as_bytes(), format, "t", "site", updated).unwrap_err().to_string()
         };
-        assert_eq!(err("site,x\na,1\na,2\n", Format::Csv, None), "t: rows 1 and 2 share the key `a`");
-        assert_eq!(err("site,x\na,1\n,2\n", Format::Csv, None), "t: row 2, column `site`: no key");
-        assert_eq!(err("place,x\na,1\n", Format::Csv, None), "t: no column `site` (the file has place, x)");
-        assert!(err("site,x\na,1,3\n", Format::Csv, None).starts_with("t: row 1: "));
+        assert_eq!(err("site,x\na,1\na,2\n", RowFormat::Csv, None), "t: rows 1 and 2 share the key `a`");
+        assert_eq!(err("site,x\na,1\n,2\n", RowFormat::Csv, None), "t: row 2, column `site`: no key");
+        assert_eq!(err("place,x\na,1\n", RowFormat::Csv, None), "t: no column `site` (the file has place, x)");
+        assert!(err("site,x\na,1,3\n", RowFormat::Csv, None).starts_with("t: row 1: "));
         assert!(
-            err("site,when\na,yesterday\n", Format::Csv, Some("when"))
+            err("site,when\na,yesterday\n", RowFormat::Csv, Some("when"))
                 .starts_with("t: row 1, column `when`: `yesterday` is not a time")
         );
         assert!(
-            err("{\"site\": \"a\"}\n{\"site\": [1]}\n", Format::Ndjson, None)
+            err("{\"site\": \"a\"}\n{\"site\": [1]}\n", RowFormat::Ndjson, None)
                 .starts_with("t: row 2, column `site`: an array or object")
         );
-        assert!(err("{\"site\": \"a\"}\nnot json\n", Format::Ndjson, None).starts_with("t: row 2: not a JSON object"));
+        assert!(
+            err("{\"site\": \"a\"}\nnot json\n", RowFormat::Ndjson, None).starts_with("t: row 2: not a JSON object")
+        );
     }
 }
