@@ -282,11 +282,12 @@ fn metric(s: &Server, sample: &str) -> f64 {
 /// Waits until `/metrics` shows `sample` at `value` (the server's own
 /// account of what is running), failing after a minute.
 fn wait_for(s: &Server, sample: &str, value: f64) {
-    let give_up = std::time::Instant::now() + Duration::from_secs(60);
-    while metric(s, sample) != value {
-        assert!(std::time::Instant::now() < give_up, "{sample} never reached {value}");
-        std::thread::sleep(Duration::from_millis(5));
-    }
+    paddock_tests::wait_until(
+        &format!("{sample} at {value}"),
+        Duration::from_secs(60),
+        Duration::from_millis(5),
+        || metric(s, sample) == value,
+    );
 }
 
 const AFFINE_IN_FLIGHT: &str = r#"paddock_in_flight{model="affine",version="1.0.0"}"#;

@@ -125,15 +125,12 @@ fn a_stopped_redis_falls_back_and_is_read_again_when_it_returns() {
     server.cmd(&["HSET", "site:a", "x", "4"]);
     // The breaker's pause ends, the source reconnects: asked until then.
     let mut answers = Vec::new();
-    for _ in 0..1000 {
+    let resumed = paddock_tests::came_true(Duration::from_secs(60), Duration::from_millis(10), || {
         let got = ask(&reg, "a");
         answers.push(got.1);
-        if got == (9.0, Outcome::Found) {
-            return;
-        }
-        std::thread::sleep(Duration::from_millis(10));
-    }
-    panic!("reads did not resume: {:?}", &answers[answers.len() - 5..]);
+        got == (9.0, Outcome::Found)
+    });
+    assert!(resumed, "reads did not resume: {:?}", &answers[answers.len().saturating_sub(5)..]);
 }
 
 /// A Redis busy past the source's budget (`DEBUG SLEEP`): the request

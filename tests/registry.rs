@@ -9,7 +9,7 @@ use std::collections::BTreeMap;
 use std::path::Path;
 use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use paddock_host::{Artifact, Digest, Row, Runtime, TrustError, TrustPolicy, VouchingKey};
 use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
@@ -578,14 +578,9 @@ fn the_watcher_picks_up_changes_by_event_and_by_rescan() {
     let store = dir.path();
     let reg = serving_one(store, RegistryOptions::default());
     let wait_for = |version: &str| {
-        let until = Instant::now() + Duration::from_secs(20);
-        while Instant::now() < until {
-            if reg.route("m", &Context::new(), None).is_some_and(|(v, _)| v.to_string() == version) {
-                return true;
-            }
-            std::thread::sleep(Duration::from_millis(20));
-        }
-        false
+        paddock_tests::came_true(Duration::from_secs(20), Duration::from_millis(20), || {
+            reg.route("m", &Context::new(), None).is_some_and(|(v, _)| v.to_string() == version)
+        })
     };
     {
         // File system events, with an hour between rescans.

@@ -882,11 +882,8 @@ fn a_killed_server_loses_at_most_one_flush_of_usage_and_a_second_one_is_refused(
     }
     // Wait for the flush that carries all five (the server's own event: the
     // file it writes every second), then kill it without a chance to write.
-    let give_up = std::time::Instant::now() + std::time::Duration::from_secs(60);
-    while calls_in(&state) < 5 {
-        assert!(std::time::Instant::now() < give_up, "the usage file never showed the 5 calls");
-        std::thread::sleep(std::time::Duration::from_millis(20));
-    }
+    let (minute, often) = (std::time::Duration::from_secs(60), std::time::Duration::from_millis(20));
+    paddock_tests::wait_until("the usage file showing the 5 calls", minute, often, || calls_in(&state) >= 5);
     let mut first = first;
     kill_9(&mut first.child);
     assert_eq!(calls_in(&state), 5);
@@ -894,11 +891,9 @@ fn a_killed_server_loses_at_most_one_flush_of_usage_and_a_second_one_is_refused(
     // Restarted, the server adds what the file holds: usage accumulates.
     let again = Served::start(&store, &state);
     again.score();
-    let give_up = std::time::Instant::now() + std::time::Duration::from_secs(60);
-    while calls_in(&state) < 6 {
-        assert!(std::time::Instant::now() < give_up, "the restarted server's usage file never showed 6 calls");
-        std::thread::sleep(std::time::Duration::from_millis(20));
-    }
+    paddock_tests::wait_until("the restarted server's usage file showing 6 calls", minute, often, || {
+        calls_in(&state) >= 6
+    });
     assert_eq!(calls_in(&state), 6);
 }
 

@@ -28,6 +28,28 @@ pub fn guest(package: &str) -> Vec<u8> {
     })
 }
 
+/// Waits for something another thread or process makes true — a server
+/// answering, a file showing a count, a watcher's swap — asking `ready`
+/// every `every` until it says yes. Fails naming `what` if it never does
+/// within `limit`: a limit far beyond the event's usual time, so that a busy
+/// machine is slow, not wrong.
+pub fn wait_until(what: &str, limit: Duration, every: Duration, ready: impl FnMut() -> bool) {
+    assert!(came_true(limit, every, ready), "{what}: not after {limit:?}");
+}
+
+/// Asks `ready` every `every` until it says yes (true) or `limit` has
+/// passed (false). [`wait_until`] is this, failing when it never came true.
+pub fn came_true(limit: Duration, every: Duration, mut ready: impl FnMut() -> bool) -> bool {
+    let give_up = Instant::now() + limit;
+    while !ready() {
+        if Instant::now() >= give_up {
+            return false;
+        }
+        std::thread::sleep(every);
+    }
+    true
+}
+
 /// Path of a demo artifact packed by `cargo xtask build`.
 pub fn demo_artifact(name: &str) -> PathBuf {
     root().join("target/paddock/artifacts").join(format!("{name}.wasm"))
@@ -445,19 +467,16 @@ impl Drop for NatsServer {
 }
 
 /// Starts a server (output discarded) and waits until `ready`, for at most
-/// 5 s of tries.
+/// 30 s.
 fn spawn_server(mut command: std::process::Command, what: &str, ready: impl Fn() -> bool) -> std::process::Child {
     let mut child =
         command.stdout(std::process::Stdio::null()).stderr(std::process::Stdio::null()).spawn().expect(what);
-    for _ in 0..500 {
-        if ready() {
-            return child;
-        }
-        std::thread::sleep(Duration::from_millis(10));
+    if !came_true(Duration::from_secs(30), Duration::from_millis(10), ready) {
+        let _ = child.kill();
+        let _ = child.wait();
+        panic!("{what}: started, but not ready after 30 s");
     }
-    let _ = child.kill();
-    let _ = child.wait();
-    panic!("{what}: started, but not ready after 500 tries");
+    child
 }
 
 /// Kills a server, if it runs, and reaps it.

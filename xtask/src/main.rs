@@ -22,9 +22,10 @@
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
 //!   OpenMetrics parser (`tests/api/check_api.py`).
-//! - `fuzz [SECONDS]`: `build`, installs cargo-fuzz if missing, then runs
-//!   each fuzz target in `fuzz/` for SECONDS (default 30), seeded with the
-//!   demo artifacts and sample rows. Any crash fails the task.
+//! - `fuzz [SECONDS]`: `build`, builds the libFuzzer targets in `fuzz/`
+//!   (plain cargo with coverage flags; no cargo-fuzz, no sanitizer), then
+//!   runs each for SECONDS (default 30), seeded with the demo artifacts,
+//!   sample rows and toolkits' model files. Any crash fails the task.
 //!
 //! Anything after the task name is passed on to the command it ends with.
 
@@ -528,15 +529,31 @@ fn api_check(root: &Path, tools: &Tools) -> Result<()> {
     run(check)
 }
 
+/// The flags that make a libFuzzer target: coverage counters and
+/// comparison tracing for libFuzzer to steer by (what cargo-fuzz passes,
+/// minus its sanitizer), `cfg(fuzzing)`, and the checks a debug build has.
+const FUZZ_RUSTFLAGS: &str = "-Cpasses=sancov-module -Cllvm-args=-sanitizer-coverage-level=4 \
+    -Cllvm-args=-sanitizer-coverage-inline-8bit-counters -Cllvm-args=-sanitizer-coverage-pc-table \
+    -Cllvm-args=-sanitizer-coverage-trace-compares --cfg fuzzing -Cdebug-assertions -Coverflow-checks";
+
+/// Builds the fuzz targets (`fuzz/`, a workspace of its own) with plain
+/// cargo and [`FUZZ_RUSTFLAGS`], for the host's target triple so that build
+/// scripts and proc macros are not instrumented; returns the directory the
+/// binaries are in. Needs no cargo-fuzz, and no sanitizer: the code under
+/// test is safe Rust (see `fuzz/Cargo.toml`).
+fn build_fuzz_targets(root: &Path) -> Result<PathBuf> {
+    let out = Command::new("rustc").arg("-vV").output().context("asking rustc for the host triple")?;
+    let info = String::from_utf8_lossy(&out.stdout);
+    let host = info.lines().find_map(|l| l.strip_prefix("host: ")).context("rustc -vV names no host")?.trim();
+    let flags = FUZZ_RUSTFLAGS.split_whitespace().collect::<Vec<_>>().join(" ");
+    let mut build = cargo(&root.join("fuzz"));
+    build.env("RUSTFLAGS", flags).args(["build", "--quiet", "--bins", "--target", host]);
+    run(build)?;
+    Ok(root.join("fuzz/target").join(host).join("debug"))
+}
+
 /// Runs every fuzz target for a bounded time, from seeds.
 fn fuzz(root: &Path, seconds: u64) -> Result<()> {
-    let have = Command::new("cargo").args(["fuzz", "--version"]).output().is_ok_and(|o| o.status.success());
-    if !have {
-        eprintln!("xtask: installing cargo-fuzz");
-        let mut c = Command::new("cargo");
-        c.args(["install", "cargo-fuzz", "--locked"]);
-        run(c)?;
-    }
     let seeds = root.join("target/paddock/fuzz-seeds");
     let artifact_seeds = seeds.join("artifact");
     let row_seeds = seeds.join("rows");
@@ -573,13 +590,10 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
         std::fs::copy(root.join("tests/pmml").join(doc), import_seeds.join(doc))
             .with_context(|| format!("copying tests/pmml/{doc}"))?;
     }
+    let targets = build_fuzz_targets(root)?;
     for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds), ("import", &import_seeds)] {
-        let mut c = cargo(&root.join("fuzz"));
-        // cargo-fuzz passes nightly-only flags; this toolchain is stable.
-        c.env("RUSTC_BOOTSTRAP", "1");
-        // Unoptimised enough to compile quickly, no sanitizer (see fuzz/Cargo.toml).
-        c.args(["fuzz", "run", "--dev", "--sanitizer", "none", target]).arg(seed);
-        c.args(["--", &format!("-max_total_time={seconds}"), "-max_len=262144", "-print_final_stats=1"]);
+        let mut c = Command::new(targets.join(target));
+        c.arg(seed).args([&format!("-max_total_time={seconds}"), "-max_len=262144", "-print_final_stats=1"]);
         run(c)?;
     }
     Ok(())

@@ -39,6 +39,11 @@ fn build(root: &Path, args: &[&str]) -> Result<Vec<Binary>> {
         if message["reason"] != "compiler-artifact" {
             continue;
         }
+        // Test-mode builds only: the plain binaries integration tests run
+        // (`CARGO_BIN_EXE_*`) are reported too, and are not tests.
+        if message["profile"]["test"] != true {
+            continue;
+        }
         let Some(executable) = message["executable"].as_str() else { continue };
         let target = &message["target"];
         let kind = target["kind"][0].as_str().unwrap_or("?");
@@ -55,11 +60,52 @@ fn build(root: &Path, args: &[&str]) -> Result<Vec<Binary>> {
     Ok(binaries)
 }
 
-/// The name in a package id (`path+file:///…/cli#paddock-cli@0.1.0` → `paddock-cli`).
+/// The name in a package id: `path+file:///…/cli#paddock-cli@0.1.0` →
+/// `paddock-cli`; `path+file:///…/overstay-risk#0.1.0` (a package named as
+/// its directory) → `overstay-risk`.
 fn package_name(id: &serde_json::Value) -> String {
     let id = id.as_str().unwrap_or("?");
-    let tail = id.rsplit('#').next().unwrap_or(id);
-    tail.split('@').next().unwrap_or(tail).to_owned()
+    let (url, fragment) = id.rsplit_once('#').unwrap_or((id, ""));
+    match fragment.split_once('@') {
+        Some((name, _)) => name.to_owned(),
+        None => url.rsplit('/').next().unwrap_or(url).to_owned(),
+    }
+}
+
+/// Binaries that compile and prime the same Python and JavaScript models
+/// (tens of megabytes of code each) into the shared test code cache: run
+/// one after another, each after the first finds them compiled, instead of
+/// all compiling them at once.
+const CHAINED: [&str; 4] =
+    ["paddock-tests/wasi", "paddock-tests/guests", "paddock-tests/prime", "paddock-tests/guests (bench)"];
+
+/// The other binaries that took longest when last measured (see the note
+/// in `xtask test`'s report), started first so that no long one is left
+/// to run alone at the end.
+const LONGEST_FIRST: [&str; 8] = [
+    "paddock-cli/cli",
+    "paddock-tests/malformed",
+    "paddock-tests/sklearn",
+    "paddock-tests/registry",
+    "paddock-cli/workers",
+    "paddock-tests/imports",
+    "paddock-tests/http",
+    "paddock-tests/workers",
+];
+
+/// The binaries as jobs, each run one binary after another: the chained
+/// ones first, as one job, then each other binary as a job of its own,
+/// longest first.
+fn jobs(binaries: Vec<Binary>) -> VecDeque<Vec<Binary>> {
+    let (mut chained, mut rest): (Vec<Binary>, Vec<Binary>) =
+        binaries.into_iter().partition(|b| CHAINED.contains(&b.label.as_str()));
+    chained.sort_by_key(|b| CHAINED.iter().position(|c| *c == b.label));
+    rest.sort_by_key(|b| LONGEST_FIRST.iter().position(|c| *c == b.label).unwrap_or(LONGEST_FIRST.len()));
+    let mut jobs: VecDeque<Vec<Binary>> = rest.into_iter().map(|b| vec![b]).collect();
+    if !chained.is_empty() {
+        jobs.push_front(chained);
+    }
+    jobs
 }
 
 /// A binary running, with where its output goes.
@@ -77,16 +123,18 @@ pub fn run_all(root: &Path, args: &[&str], jobs: usize) -> Result<()> {
     let logs = root.join("target/paddock/test-logs");
     std::fs::create_dir_all(&logs).with_context(|| format!("creating {}", logs.display()))?;
     eprintln!("xtask: running {} test binaries, {jobs} at a time (output in {})", binaries.len(), logs.display());
-    let mut waiting: VecDeque<Binary> = binaries.into();
-    let mut running: Vec<Running> = Vec::new();
+    let mut waiting = self::jobs(binaries);
+    // Each running binary, with the rest of its job.
+    let mut running: Vec<(Running, Vec<Binary>)> = Vec::new();
     let mut took: Vec<(String, Duration, bool)> = Vec::new();
     while !waiting.is_empty() || !running.is_empty() {
         while running.len() < jobs.max(1) {
-            let Some(binary) = waiting.pop_front() else { break };
-            running.push(start(binary, &logs)?);
+            let Some(mut job) = waiting.pop_front() else { break };
+            let first = job.remove(0);
+            running.push((start(first, &logs)?, job));
         }
         let mut finished = None;
-        for (i, r) in running.iter_mut().enumerate() {
+        for (i, (r, _)) in running.iter_mut().enumerate() {
             if let Some(status) = r.child.try_wait().with_context(|| format!("waiting for {}", r.binary.label))? {
                 finished = Some((i, status.success()));
                 break;
@@ -96,7 +144,11 @@ pub fn run_all(root: &Path, args: &[&str], jobs: usize) -> Result<()> {
             std::thread::sleep(Duration::from_millis(50));
             continue;
         };
-        let r = running.swap_remove(i);
+        let (r, mut rest) = running.swap_remove(i);
+        if !rest.is_empty() {
+            let next = rest.remove(0);
+            running.push((start(next, &logs)?, rest));
+        }
         let elapsed = r.started.elapsed();
         let summary = summary(&r.log);
         if ok {

@@ -185,6 +185,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         Some(d) if !d.as_os_str().is_empty() => d.to_owned(),
         _ => PathBuf::from("."),
     };
+    std::fs::create_dir_all(&dir).with_context(|| format!("creating {}", dir.display()))?;
     let mut tmp = tempfile::Builder::new()
         .prefix(".paddock-pack-")
         .suffix(".wasm")

@@ -17,6 +17,7 @@
 
 pub mod counts;
 pub mod plan;
+pub mod problem;
 pub mod redis;
 pub mod table;
 
@@ -28,7 +29,8 @@ use serde::Serialize;
 
 pub use counts::{SourceCounts, SourceKind, SourceUsage};
 pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
-pub use redis::{RedisSource, Trouble};
+pub use problem::{PlanProblem, Unusable};
+pub use redis::{RedisSource, RedisSourceError, Trouble};
 pub use table::{Cell, Table, TableError};
 
 use paddock_host::contract::rows::{Row, Value};
@@ -47,9 +49,10 @@ impl Sources {
     /// (which connect on their first read).
     ///
     /// # Errors
-    /// Every source that could not be made, each naming its file, row and
-    /// column, or its URL.
-    pub fn load(plan: &Plan) -> Result<Sources, Vec<String>> {
+    /// [`Unusable`] with every source that could not be made
+    /// ([`PlanProblem::Table`], [`PlanProblem::Redis`]), each naming its
+    /// file, row and column, or its URL.
+    pub fn load(plan: &Plan) -> Result<Sources, Unusable> {
         let mut sources = Sources::default();
         let mut problems = Vec::new();
         for (name, source) in &plan.sources {
@@ -59,17 +62,17 @@ impl Sources {
                     Ok(t) => {
                         sources.tables.insert(name.clone(), Arc::new(t));
                     }
-                    Err(e) => problems.push(e.to_string()),
+                    Err(e) => problems.push(PlanProblem::Table(e)),
                 },
                 Source::Redis { url, budget, .. } => match RedisSource::new(url, *budget, counts) {
                     Ok(r) => {
                         sources.redis.insert(name.clone(), Arc::new(r));
                     }
-                    Err(e) => problems.push(format!("sources.{name}: {e}")),
+                    Err(error) => problems.push(PlanProblem::Redis { source_name: name.clone(), error }),
                 },
             }
         }
-        if problems.is_empty() { Ok(sources) } else { Err(problems) }
+        Unusable::unless(problems, sources)
     }
 
     /// Sources from tables already read and Redis sources already made,
@@ -263,9 +266,10 @@ impl Resolved {
     /// the model.
     ///
     /// # Errors
-    /// Every problem: features the contract lacks, required features with
-    /// no source, tables or columns that are not there, a budget longer
-    /// than the deadline.
+    /// [`Unusable`] with every problem: features the contract lacks,
+    /// required features with no source, tables or columns that are not
+    /// there, a budget longer than the deadline, a default outside its
+    /// feature's domain.
     pub fn new(
         plan: &Plan,
         sources: &Sources,
@@ -273,7 +277,7 @@ impl Resolved {
         version: &Version,
         contract: &Contract,
         deadline: std::time::Duration,
-    ) -> Result<Option<Resolved>, Vec<String>> {
+    ) -> Result<Option<Resolved>, Unusable> {
         let Some(m) = plan.models.get(model) else { return Ok(None) };
         let mut problems = plan.check(model, version, contract);
         let mut steps = Vec::new();
@@ -282,23 +286,27 @@ impl Resolved {
             let Some(f) = contract.features.iter().find(|f| &f.name == feature) else { continue };
             let via = if let Some(table) = sources.table(&lookup.source) {
                 let Some(column) = table.column(&lookup.field) else {
-                    problems.push(format!(
-                        "{model} {version}: feature `{feature}`: source `{}` has no column `{}` (it has {})",
-                        lookup.source,
-                        lookup.field,
-                        table.columns().collect::<Vec<_>>().join(", ")
-                    ));
+                    problems.push(PlanProblem::NoColumn {
+                        model: model.to_owned(),
+                        version: version.clone(),
+                        feature: feature.clone(),
+                        source_name: lookup.source.clone(),
+                        column: lookup.field.clone(),
+                        columns: table.columns().map(str::to_owned).collect(),
+                    });
                     continue;
                 };
                 Via::Table { table: Arc::clone(table), column }
             } else if let Some(redis) = sources.redis(&lookup.source) {
                 if redis.budget() > deadline {
-                    problems.push(format!(
-                        "{model} {version}: feature `{feature}`: source `{}` has a budget of {} ms, longer than the version's deadline of {} ms: a lookup must fit inside the call's time",
-                        lookup.source,
-                        redis.budget().as_millis(),
-                        deadline.as_millis()
-                    ));
+                    problems.push(PlanProblem::Budget {
+                        model: model.to_owned(),
+                        version: version.clone(),
+                        feature: feature.clone(),
+                        source_name: lookup.source.clone(),
+                        budget_ms: redis.budget().as_millis(),
+                        deadline_ms: deadline.as_millis(),
+                    });
                 }
                 let updated = match plan.sources.get(&lookup.source) {
                     Some(Source::Redis { updated, .. }) => updated.clone(),
@@ -306,14 +314,23 @@ impl Resolved {
                 };
                 Via::Redis { source: Arc::clone(redis), updated }
             } else {
-                problems
-                    .push(format!("{model} {version}: feature `{feature}`: source `{}` is not loaded", lookup.source));
+                problems.push(PlanProblem::NotLoaded {
+                    model: model.to_owned(),
+                    version: version.clone(),
+                    feature: feature.clone(),
+                    source_name: lookup.source.clone(),
+                });
                 continue;
             };
             if let Fallback::Default(v) = &lookup.missing
                 && let Some(problem) = misfit(v, &f.domain)
             {
-                problems.push(format!("{model} {version}: feature `{feature}`: the default {problem}"));
+                problems.push(PlanProblem::Default {
+                    model: model.to_owned(),
+                    version: version.clone(),
+                    feature: feature.clone(),
+                    problem,
+                });
             }
             let counts = sources.counts.get(&lookup.source).cloned().unwrap_or_default();
             steps.push(Step {
@@ -325,7 +342,7 @@ impl Resolved {
                 counts,
             });
         }
-        if problems.is_empty() { Ok(Some(Resolved { steps, keys: m.keys.clone() })) } else { Err(problems) }
+        Unusable::unless(problems, Some(Resolved { steps, keys: m.keys.clone() }))
     }
 
     /// The keys a request carries for this model.
@@ -708,7 +725,7 @@ mod tests {
     }
 
     /// A plan over a table in a temporary directory; `now` is 2026-12-02T00:00:00Z.
-    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<Resolved>, Vec<String>>) {
+    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<Resolved>, Unusable>) {
         let dir = tempfile::tempdir().unwrap();
         std::fs::write(
             dir.path().join("sites.csv"),
@@ -790,7 +807,7 @@ mod tests {
              occupancy = { source = \"sites\", key = \"{site}\", field = \"occupancy\" }\n",
         );
         assert_eq!(
-            resolved.unwrap_err(),
+            resolved.unwrap_err().problems.iter().map(ToString::to_string).collect::<Vec<_>>(),
             [
                 "charge-minutes 1.0.0: the plan sources `wind`, which its contract does not have",
                 "charge-minutes 1.0.0: required feature `charger_kw` has no source (say `charger_kw = \"request\"` if the row carries it)",

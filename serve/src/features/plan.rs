@@ -41,6 +41,8 @@ use serde::Deserialize;
 use paddock_host::contract::Contract;
 use paddock_host::contract::rows::Value;
 
+use super::problem::PlanProblem;
+
 /// A parsed features file.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Plan {
@@ -402,21 +404,32 @@ impl Plan {
     /// Holds a version's contract to the plan: every feature it declares is
     /// in the contract, and every required feature of the contract comes
     /// from somewhere with no fallback to absent. Returns the problems.
-    pub fn check(&self, model: &str, version: &Version, contract: &Contract) -> Vec<String> {
+    pub fn check(&self, model: &str, version: &Version, contract: &Contract) -> Vec<PlanProblem> {
         let Some(plan) = self.models.get(model) else { return Vec::new() };
         let features = plan.features_of(version);
         let mut problems = Vec::new();
         for name in features.keys() {
             if !contract.features.iter().any(|f| &f.name == name) {
-                problems
-                    .push(format!("{model} {version}: the plan sources `{name}`, which its contract does not have"));
+                problems.push(PlanProblem::UnknownFeature {
+                    model: model.to_owned(),
+                    version: version.clone(),
+                    feature: name.clone(),
+                });
             }
         }
         for f in contract.features.iter().filter(|f| f.required) {
             match features.get(&f.name) {
-                None => problems.push(format!("{model} {version}: required feature `{}` has no source (say `{} = \"request\"` if the row carries it)", f.name, f.name)),
+                None => problems.push(PlanProblem::Unsourced {
+                    model: model.to_owned(),
+                    version: version.clone(),
+                    feature: f.name.clone(),
+                }),
                 Some(Supply::Lookup(Lookup { missing: Fallback::Absent, .. })) => {
-                    problems.push(format!("{model} {version}: required feature `{}` falls back to absent: give a default, or `missing = \"fail\"`", f.name));
+                    problems.push(PlanProblem::AbsentFallback {
+                        model: model.to_owned(),
+                        version: version.clone(),
+                        feature: f.name.clone(),
+                    });
                 }
                 Some(_) => {}
             }

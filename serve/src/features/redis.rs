@@ -92,21 +92,40 @@ type Failed = (Trouble, bool);
 /// One answer per key: the fields read, `None` where a key has no such field.
 type Replies = Vec<Vec<Option<String>>>;
 
+/// Why a Redis source could not be made.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum RedisSourceError {
+    /// The address is not a Redis URL.
+    #[error("`{url}` is not a Redis URL: {problem}")]
+    NotAUrl {
+        /// The address as given.
+        url: String,
+        /// What the Redis client said of it.
+        problem: String,
+    },
+    /// The source's own runtime could not start.
+    #[error("cannot start the Redis source's runtime: {0}")]
+    Runtime(#[source] std::io::Error),
+}
+
 impl RedisSource {
     /// A source for the server at `url` (`redis://host:port/db`), each
     /// read given `budget`, counting into `counts`. Does not connect: the
     /// first read does.
     ///
     /// # Errors
-    /// The URL does not parse, or the source's runtime cannot start.
-    pub fn new(url: &str, budget: Duration, counts: Arc<SourceCounts>) -> Result<RedisSource, String> {
-        let client = redis::Client::open(url).map_err(|e| format!("`{url}` is not a Redis URL: {e}"))?;
+    /// [`RedisSourceError::NotAUrl`] when the URL does not parse,
+    /// [`RedisSourceError::Runtime`] when the source's runtime cannot start.
+    pub fn new(url: &str, budget: Duration, counts: Arc<SourceCounts>) -> Result<RedisSource, RedisSourceError> {
+        let client = redis::Client::open(url)
+            .map_err(|e| RedisSourceError::NotAUrl { url: url.to_owned(), problem: e.to_string() })?;
         let runtime = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(1)
             .thread_name("paddock-redis")
             .enable_all()
             .build()
-            .map_err(|e| format!("cannot start the Redis source's runtime: {e}"))?;
+            .map_err(RedisSourceError::Runtime)?;
         Ok(RedisSource {
             url: url.to_owned(),
             client,

@@ -412,7 +412,7 @@ fn build_features(
                     set.resolved.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
                 }
                 Ok(None) => {}
-                Err(p) => problems.extend(p),
+                Err(unusable) => problems.extend(unusable.problems.iter().map(ToString::to_string)),
             }
         }
     }

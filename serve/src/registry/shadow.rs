@@ -6,9 +6,8 @@
 //! sample is dropped and counted, so a slow shadow cannot slow serving or
 //! grow memory without bound.
 
-use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, SyncSender, TrySendError, sync_channel};
-use std::sync::{Arc, Mutex};
+use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Duration, Instant};
 
 use paddock_host::contract::rows::Row;
@@ -30,14 +29,33 @@ pub(crate) struct Job {
 /// The queue and the thread that drains it.
 pub(crate) struct Shadows {
     queue: Mutex<Option<SyncSender<Job>>>,
-    pending: Arc<AtomicU64>,
+    pending: Arc<Pending>,
+}
+
+/// Jobs queued and not yet done, and a signal each time one is done.
+#[derive(Default)]
+struct Pending {
+    count: Mutex<u64>,
+    done: Condvar,
+}
+
+impl Pending {
+    fn add(&self) {
+        *self.count.lock().unwrap_or_else(|e| e.into_inner()) += 1;
+    }
+
+    fn finish(&self) {
+        let mut count = self.count.lock().unwrap_or_else(|e| e.into_inner());
+        *count = count.saturating_sub(1);
+        self.done.notify_all();
+    }
 }
 
 impl Shadows {
     /// Starts the worker thread with a queue of `capacity` requests.
     pub(crate) fn start(capacity: usize) -> Shadows {
         let (tx, rx) = sync_channel(capacity.max(1));
-        let pending = Arc::new(AtomicU64::new(0));
+        let pending = Arc::new(Pending::default());
         let worker_pending = pending.clone();
         let started =
             std::thread::Builder::new().name("paddock-shadow".into()).spawn(move || work(rx, worker_pending)).is_ok();
@@ -54,9 +72,9 @@ impl Shadows {
             job.ledger.record_dropped();
             return;
         };
-        self.pending.fetch_add(1, Ordering::SeqCst);
+        self.pending.add();
         if let Err(TrySendError::Full(job) | TrySendError::Disconnected(job)) = tx.try_send(job) {
-            self.pending.fetch_sub(1, Ordering::SeqCst);
+            self.pending.finish();
             job.ledger.record_dropped();
         }
     }
@@ -64,21 +82,17 @@ impl Shadows {
     /// Waits until every queued job is done, at most `timeout`; says whether
     /// the queue drained.
     pub(crate) fn drain(&self, timeout: Duration) -> bool {
-        let until = Instant::now() + timeout;
-        while self.pending.load(Ordering::SeqCst) > 0 {
-            if Instant::now() > until {
-                return false;
-            }
-            std::thread::sleep(Duration::from_millis(1));
-        }
-        true
+        let count = self.pending.count.lock().unwrap_or_else(|e| e.into_inner());
+        let (count, _) =
+            self.pending.done.wait_timeout_while(count, timeout, |n| *n > 0).unwrap_or_else(|e| e.into_inner());
+        *count == 0
     }
 }
 
-fn work(rx: Receiver<Job>, pending: Arc<AtomicU64>) {
+fn work(rx: Receiver<Job>, pending: Arc<Pending>) {
     for job in rx {
         compare(&job);
-        pending.fetch_sub(1, Ordering::SeqCst);
+        pending.finish();
     }
 }
 

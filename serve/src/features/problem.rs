@@ -1,0 +1,134 @@
+//! Why a features plan cannot be put to use: its sources could not be
+//! made, or it does not fit a served version's contract or its tables.
+//! Every problem is found and reported, not just the first.
+
+use semver::Version;
+
+use super::redis::RedisSourceError;
+use super::table::TableError;
+
+/// One reason a plan cannot be used, naming its place.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum PlanProblem {
+    /// A table source could not be read.
+    #[error(transparent)]
+    Table(#[from] TableError),
+    /// A Redis source could not be made.
+    #[error("sources.{source_name}: {error}")]
+    Redis {
+        /// The source's name in the plan.
+        source_name: String,
+        /// What went wrong.
+        #[source]
+        error: RedisSourceError,
+    },
+    /// The plan sources a feature the version's contract does not have.
+    #[error("{model} {version}: the plan sources `{feature}`, which its contract does not have")]
+    UnknownFeature {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature the plan names.
+        feature: String,
+    },
+    /// A required feature of the contract comes from nowhere.
+    #[error(
+        "{model} {version}: required feature `{feature}` has no source (say `{feature} = \"request\"` if the row carries it)"
+    )]
+    Unsourced {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The required feature.
+        feature: String,
+    },
+    /// A required feature falls back to absent when its lookup finds nothing.
+    #[error(
+        "{model} {version}: required feature `{feature}` falls back to absent: give a default, or `missing = \"fail\"`"
+    )]
+    AbsentFallback {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The required feature.
+        feature: String,
+    },
+    /// A lookup names a column its table does not have.
+    #[error("{model} {version}: feature `{feature}`: source `{source_name}` has no column `{column}` (it has {})", columns.join(", "))]
+    NoColumn {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature looked up.
+        feature: String,
+        /// The table source.
+        source_name: String,
+        /// The column the lookup names.
+        column: String,
+        /// The columns the table has.
+        columns: Vec<String>,
+    },
+    /// A Redis source's budget is longer than the version's deadline per call.
+    #[error(
+        "{model} {version}: feature `{feature}`: source `{source_name}` has a budget of {budget_ms} ms, longer than the version's deadline of {deadline_ms} ms: a lookup must fit inside the call's time"
+    )]
+    Budget {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature looked up.
+        feature: String,
+        /// The Redis source.
+        source_name: String,
+        /// The source's budget, in milliseconds.
+        budget_ms: u128,
+        /// The version's deadline, in milliseconds.
+        deadline_ms: u128,
+    },
+    /// A lookup's source was not loaded.
+    #[error("{model} {version}: feature `{feature}`: source `{source_name}` is not loaded")]
+    NotLoaded {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature looked up.
+        feature: String,
+        /// The source the lookup names.
+        source_name: String,
+    },
+    /// A lookup's default does not fit the feature's domain.
+    #[error("{model} {version}: feature `{feature}`: the default {problem}")]
+    Default {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature looked up.
+        feature: String,
+        /// How the default misfits the domain.
+        problem: String,
+    },
+}
+
+/// Every problem that keeps a plan from being used.
+#[derive(Debug, thiserror::Error)]
+#[error("{}", problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; "))]
+#[non_exhaustive]
+pub struct Unusable {
+    /// The problems, in the order found.
+    pub problems: Vec<PlanProblem>,
+}
+
+impl Unusable {
+    /// `Ok(value)` when there is no problem, else every problem.
+    pub(crate) fn unless<T>(problems: Vec<PlanProblem>, value: T) -> Result<T, Unusable> {
+        if problems.is_empty() { Ok(value) } else { Err(Unusable { problems }) }
+    }
+}
