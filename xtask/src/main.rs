@@ -16,8 +16,9 @@
 //! - `deps`: checks that the libraries an embedder links pull in none of
 //!   the command's crates, that the core (`paddock-host`: artifact,
 //!   contract, sandbox) pulls in none of the serving half's (Parquet,
-//!   Redis, NATS, HTTP…), and that no two modules of a library depend on
-//!   each other (`modules.rs`).
+//!   Redis, NATS, HTTP…), that no two modules of a library depend on
+//!   each other (`modules.rs`), and that no two public types of the
+//!   libraries share a name (`names.rs`).
 //! - `test`: `deps`, `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
@@ -36,6 +37,7 @@ use std::process::Command;
 use anyhow::{Context, Result, bail};
 
 mod modules;
+mod names;
 mod setup;
 mod testrun;
 
@@ -513,10 +515,15 @@ fn library_deps(root: &Path) -> Result<()> {
 /// The library crates whose modules must not depend on each other in a circle.
 const LIBRARY_SOURCES: [&str; 3] = ["host/src", "serve/src", "import/src"];
 
-/// [`library_deps`], then [`modules::check`] on each of [`LIBRARY_SOURCES`].
+/// The library crates whose public types must each have a name of their own.
+const NAMED_SOURCES: [&str; 4] = ["host/src", "serve/src", "import/src", "guest-sdk/src"];
+
+/// [`library_deps`], [`modules::check`] on each of [`LIBRARY_SOURCES`], and
+/// [`names::check`] on [`NAMED_SOURCES`].
 fn deps(root: &Path) -> Result<()> {
     library_deps(root)?;
-    LIBRARY_SOURCES.iter().try_for_each(|src| modules::check(&root.join(src)))
+    LIBRARY_SOURCES.iter().try_for_each(|src| modules::check(&root.join(src)))?;
+    names::check(root, &NAMED_SOURCES)
 }
 
 /// The HTTP API against outside tools (`tests/api/check_api.py`):
