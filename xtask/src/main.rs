@@ -23,10 +23,14 @@
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
 //!   OpenMetrics parser (`tests/api/check_api.py`).
-//! - `fuzz [SECONDS]`: `build`, builds the libFuzzer targets in `fuzz/`
-//!   (plain cargo with coverage flags; no cargo-fuzz, no sanitizer), then
-//!   runs each for SECONDS (default 30), seeded with the demo artifacts,
-//!   sample rows and toolkits' model files. Any crash fails the task.
+//! - `fuzz-build`: only builds the fuzz targets (CI starts it beside the
+//!   tests, at the lowest priority, so that it uses the cycles they leave).
+//! - `fuzz [SECONDS]`: after `test` (which builds the demo artifacts and
+//!   exports the toolkits' model files the seeds come from), builds the
+//!   libFuzzer targets in `fuzz/` (plain cargo with coverage flags; no
+//!   cargo-fuzz, no sanitizer), then runs each for SECONDS (default 30),
+//!   seeded with those artifacts and files and sample rows. Any crash fails
+//!   the task.
 //!
 //! Anything after the task name is passed on to the command it ends with.
 
@@ -88,13 +92,13 @@ fn main() -> Result<()> {
         }
         "test" => test(&root, &rest),
         "deps" => deps(&root),
+        "fuzz-build" => build_fuzz_targets(&root).map(drop),
         "fuzz" => {
-            build(&root)?;
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
             fuzz(&root, seconds)
         }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz-build|fuzz> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
@@ -121,22 +125,16 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     run(fmt).context("the code is not formatted: run `cargo fmt --all`")?;
     deps(root)?;
     steps.done("fmt, library dependencies, module cycles");
+    // The guests build in a target directory of their own, much of it one
+    // long single-threaded link (the ONNX evaluator): it runs beside clippy.
+    let guests = build_guests(root, &GUESTS)?;
     let mut clippy = cargo(root);
-    clippy.args([
-        "clippy",
-        "--quiet",
-        "--workspace",
-        "--all-targets",
-        "--exclude",
-        "paddock-model-onnx",
-        "--",
-        "-D",
-        "warnings",
-    ]);
+    clippy.args(["clippy", "--quiet", "--workspace", "--all-targets", "--exclude", "paddock-model-onnx"]);
+    clippy.args(["--", "-D", "warnings"]);
     run(clippy)?;
-    steps.done("clippy");
-    let tools = build(root)?;
-    steps.done("build: guests, paddock, demo training and store");
+    steps.done("clippy (the guests building beside it)");
+    let tools = finish_build(root, guests)?;
+    steps.done("build: the rest of the guests, paddock, demo training and store");
     let pmml_python = packages.finish()?;
     steps.done("PyPI and npm packages (waited for)");
     foreign_guests(root, &tools)?;
@@ -164,10 +162,17 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     let jobs = std::env::var("PADDOCK_TEST_JOBS").ok().and_then(|j| j.parse().ok()).unwrap_or(TEST_JOBS);
     testrun::run_all(root, &args, jobs)?;
     steps.done("test binaries");
-    // Examples must run as-is, not just compile.
+    // Examples must run as-is, not just compile. Built for the whole
+    // workspace, as the tests were, so that they share every dependency
+    // the tests built (`cargo run -p paddock-examples` alone resolves other
+    // features and rebuilt wasmtime: 171 s on a clean clone).
+    let mut build = cargo(root);
+    build.args(["build", "--quiet", "--workspace", "--exclude", "paddock-model-onnx", "--examples"]);
+    run(build)?;
+    let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);
     for example in ["embed", "limits", "store", "service"] {
-        let mut cmd = cargo(root);
-        cmd.args(["run", "--quiet", "-p", "paddock-examples", "--example", example]);
+        let mut cmd = Command::new(target.join("debug/examples").join(example));
+        cmd.current_dir(root);
         run(cmd)?;
     }
     steps.done("examples");
@@ -279,9 +284,20 @@ fn build_guests<'a>(root: &Path, guests: &'a [(&'a str, &'a str)]) -> Result<Gue
     Ok(GuestBuild { root: root.to_owned(), guests, children })
 }
 
+/// A guest build given up on (a step before it failed) is stopped, not
+/// left running after the task ends.
+impl Drop for GuestBuild<'_> {
+    fn drop(&mut self) {
+        for (child, _) in &mut self.children {
+            let _ = child.kill();
+            let _ = child.wait();
+        }
+    }
+}
+
 impl GuestBuild<'_> {
-    fn finish(self) -> Result<()> {
-        for (mut child, what) in self.children {
+    fn finish(mut self) -> Result<()> {
+        for (mut child, what) in std::mem::take(&mut self.children) {
             let status = child.wait().with_context(|| format!("waiting for {what}"))?;
             if !status.success() {
                 bail!("{what} failed with {status}");
@@ -325,7 +341,13 @@ fn train_demo(tools: &Tools, train: &Path) -> Result<()> {
 
 fn build(root: &Path) -> Result<Tools> {
     ensure_target()?;
-    let guest_build = build_guests(root, &GUESTS)?;
+    finish_build(root, build_guests(root, &GUESTS)?)
+}
+
+/// The rest of [`build`] once the guests are building: the command and the
+/// trainer, then the guests copied out, the demo trained, and the demo
+/// artifacts and store packed.
+fn finish_build(root: &Path, guest_build: GuestBuild<'_>) -> Result<Tools> {
     let tools = tools(root)?;
     guest_build.finish()?;
     let out = root.join("target/paddock");
@@ -571,7 +593,7 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
     for model in ["charge-minutes", "overstay-risk"] {
         let from = root.join(format!("target/paddock/artifacts/{model}.wasm"));
         std::fs::copy(&from, artifact_seeds.join(format!("{model}.wasm")))
-            .with_context(|| format!("copying {}", from.display()))?;
+            .with_context(|| format!("copying {} (run `cargo xtask test` first: it builds it)", from.display()))?;
     }
     std::fs::write(
         row_seeds.join("ndjson"),

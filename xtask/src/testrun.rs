@@ -6,7 +6,6 @@
 //! and is printed whole when it fails. At the end, one line per binary
 //! says how long it took, longest first.
 
-use std::collections::VecDeque;
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
@@ -72,40 +71,46 @@ fn package_name(id: &serde_json::Value) -> String {
     }
 }
 
-/// Binaries that compile and prime the same Python and JavaScript models
-/// (tens of megabytes of code each) into the shared test code cache: run
-/// one after another, each after the first finds them compiled, instead of
-/// all compiling them at once.
-const CHAINED: [&str; 4] =
-    ["paddock-tests/wasi", "paddock-tests/guests", "paddock-tests/prime", "paddock-tests/guests (bench)"];
-
-/// The other binaries that took longest when last measured (see the note
-/// in `xtask test`'s report), started first so that no long one is left
-/// to run alone at the end.
-const LONGEST_FIRST: [&str; 8] = [
+/// The order binaries start in, longest first as last measured (a clean
+/// clone, `.ci/run`), so that no long one is left to run alone at the end;
+/// binaries not named start after these, in cargo's order.
+const ORDER: [&str; 13] = [
+    "paddock-tests/guests",
+    "paddock-tests/wasi",
+    "paddock-tests/prime",
     "paddock-cli/cli",
-    "paddock-tests/malformed",
-    "paddock-tests/sklearn",
     "paddock-tests/registry",
     "paddock-cli/workers",
+    "paddock-tests/sklearn",
+    "paddock-tests/malformed",
+    "paddock-tests/guests (bench)",
     "paddock-tests/imports",
     "paddock-tests/http",
     "paddock-tests/workers",
+    "paddock-tests/redis",
 ];
 
-/// The binaries as jobs, each run one binary after another: the chained
-/// ones first, as one job, then each other binary as a job of its own,
-/// longest first.
-fn jobs(binaries: Vec<Binary>) -> VecDeque<Vec<Binary>> {
-    let (mut chained, mut rest): (Vec<Binary>, Vec<Binary>) =
-        binaries.into_iter().partition(|b| CHAINED.contains(&b.label.as_str()));
-    chained.sort_by_key(|b| CHAINED.iter().position(|c| *c == b.label));
-    rest.sort_by_key(|b| LONGEST_FIRST.iter().position(|c| *c == b.label).unwrap_or(LONGEST_FIRST.len()));
-    let mut jobs: VecDeque<Vec<Binary>> = rest.into_iter().map(|b| vec![b]).collect();
-    if !chained.is_empty() {
-        jobs.push_front(chained);
-    }
-    jobs
+/// Binaries that wait for others: these compile and prime the same Python
+/// and JavaScript models (tens of megabytes of code each) into the shared
+/// test code cache, so each waits until the binaries that first compile
+/// what it loads are done, instead of compiling it at the same time.
+const AFTER: [(&str, &[&str]); 2] = [
+    ("paddock-tests/prime", &["paddock-tests/guests", "paddock-tests/wasi"]),
+    ("paddock-tests/guests (bench)", &["paddock-tests/guests"]),
+];
+
+/// The binaries in the order they should start.
+fn ordered(binaries: Vec<Binary>) -> Vec<Binary> {
+    let mut binaries = binaries;
+    binaries.sort_by_key(|b| ORDER.iter().position(|c| *c == b.label).unwrap_or(ORDER.len()));
+    binaries
+}
+
+/// Whether `binary` may start: every binary it waits for has finished, or
+/// is not part of this run.
+fn may_start(binary: &Binary, waiting: &[Binary], running: &[Running]) -> bool {
+    let Some((_, before)) = AFTER.iter().find(|(label, _)| *label == binary.label) else { return true };
+    !before.iter().any(|b| waiting.iter().any(|w| w.label == *b) || running.iter().any(|r| r.binary.label == *b))
 }
 
 /// A binary running, with where its output goes.
@@ -123,18 +128,17 @@ pub fn run_all(root: &Path, args: &[&str], jobs: usize) -> Result<()> {
     let logs = root.join("target/paddock/test-logs");
     std::fs::create_dir_all(&logs).with_context(|| format!("creating {}", logs.display()))?;
     eprintln!("xtask: running {} test binaries, {jobs} at a time (output in {})", binaries.len(), logs.display());
-    let mut waiting = self::jobs(binaries);
-    // Each running binary, with the rest of its job.
-    let mut running: Vec<(Running, Vec<Binary>)> = Vec::new();
+    let mut waiting = ordered(binaries);
+    let mut running: Vec<Running> = Vec::new();
     let mut took: Vec<(String, Duration, bool)> = Vec::new();
     while !waiting.is_empty() || !running.is_empty() {
         while running.len() < jobs.max(1) {
-            let Some(mut job) = waiting.pop_front() else { break };
-            let first = job.remove(0);
-            running.push((start(first, &logs)?, job));
+            let Some(next) = waiting.iter().position(|b| may_start(b, &waiting, &running)) else { break };
+            let binary = waiting.remove(next);
+            running.push(start(binary, &logs)?);
         }
         let mut finished = None;
-        for (i, (r, _)) in running.iter_mut().enumerate() {
+        for (i, r) in running.iter_mut().enumerate() {
             if let Some(status) = r.child.try_wait().with_context(|| format!("waiting for {}", r.binary.label))? {
                 finished = Some((i, status.success()));
                 break;
@@ -144,11 +148,7 @@ pub fn run_all(root: &Path, args: &[&str], jobs: usize) -> Result<()> {
             std::thread::sleep(Duration::from_millis(50));
             continue;
         };
-        let (r, mut rest) = running.swap_remove(i);
-        if !rest.is_empty() {
-            let next = rest.remove(0);
-            running.push((start(next, &logs)?, rest));
-        }
+        let r = running.swap_remove(i);
         let elapsed = r.started.elapsed();
         let summary = summary(&r.log);
         if ok {
