@@ -1,7 +1,11 @@
-//! Load sandboxed paddock models, check rows against their contract, and
-//! score them under hard limits.
+//! The core of paddock: load one sandboxed model, check rows against its
+//! contract, and score them under hard limits.
 //!
-//! A request travels artifact → contract → sandbox:
+//! A request travels artifact → contract → sandbox, and the modules follow
+//! it: [`artifact`] (the file, its digest, the checks it carries, trust),
+//! [`contract`] (what the model reads and writes; rows and row files),
+//! [`sandbox`] (the engine, loaded models, instances, WASI, priming, the
+//! code cache, running the checks).
 //!
 //! ```no_run
 //! use paddock_host::{Artifact, Model, Row, Runtime};
@@ -31,19 +35,16 @@
 //! - [`Runtime`]: the engine and its clock; one per process.
 //! - [`Model`]: a loaded artifact serving many threads under its
 //!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
-//! - [`Checks`]: example rows with recorded outputs, run by [`checking::run`].
+//! - [`Checks`]: example rows with recorded outputs, run against a loaded
+//!   model by [`sandbox::verify::run`].
 //! - [`TrustPolicy`]: which vouchers and pinned digests a host admits,
 //!   checked before an artifact is loaded ([`Voucher`], [`Vouch`]).
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
 //!   import WASI (Python, JavaScript) load into an empty WASI world.
 //!
-//! - [`features`]: between the registry and the sandbox, a row's missing
-//!   features looked up by the request's keys in the tables a store's
-//!   features file names.
-//!
-//! What it is not: a training library, or a feature store. It scores the
-//! rows it is given, completed from tables a batch job wrote, exactly as
-//! the artifact says; it computes no feature.
+//! What it is not: a server, a store or a feature source — those are
+//! `paddock-serve`, built on this crate — nor a training library. It links
+//! no HTTP, Redis, Parquet or NATS crate (`cargo xtask deps` checks).
 
 #![deny(missing_docs)]
 
