@@ -100,8 +100,7 @@ const AFTER: [(&str, &[&str]); 2] = [
 ];
 
 /// The binaries in the order they should start.
-fn ordered(binaries: Vec<Binary>) -> Vec<Binary> {
-    let mut binaries = binaries;
+fn ordered(mut binaries: Vec<Binary>) -> Vec<Binary> {
     binaries.sort_by_key(|b| ORDER.iter().position(|c| *c == b.label).unwrap_or(ORDER.len()));
     binaries
 }
