@@ -23,8 +23,6 @@
 //!   then every test in the workspace (benchmarks run once each, as tests),
 //!   every example, and the HTTP API against schemathesis and an
 //!   OpenMetrics parser (`tests/api/check_api.py`).
-//! - `fuzz-build`: only builds the fuzz targets (CI starts it beside the
-//!   tests, at the lowest priority, so that it uses the cycles they leave).
 //! - `fuzz [SECONDS]`: after `test` (which builds the demo artifacts and
 //!   exports the toolkits' model files the seeds come from), builds the
 //!   libFuzzer targets in `fuzz/` (plain cargo with coverage flags; no
@@ -92,13 +90,12 @@ fn main() -> Result<()> {
         }
         "test" => test(&root, &rest),
         "deps" => deps(&root),
-        "fuzz-build" => build_fuzz_targets(&root).map(drop),
         "fuzz" => {
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
             fuzz(&root, seconds)
         }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz-build|fuzz> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
