@@ -5,35 +5,40 @@
 //! naming the cycle.
 
 use std::collections::{BTreeMap, BTreeSet};
-use std::path::Path;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
 
 /// Module → the modules it uses.
 pub type Graph = BTreeMap<String, BTreeSet<String>>;
 
-/// Reads every `.rs` file under `src` into a graph of top-level modules.
-pub fn graph(src: &Path) -> Result<Graph> {
-    let mut graph = Graph::new();
+/// Every `.rs` file under `src`, with its text.
+pub fn rust_sources(src: &Path) -> Result<Vec<(PathBuf, String)>> {
+    let mut files = Vec::new();
     let mut stack = vec![src.to_owned()];
     while let Some(dir) = stack.pop() {
         for entry in std::fs::read_dir(&dir).with_context(|| format!("reading {}", dir.display()))? {
             let path = entry?.path();
             if path.is_dir() {
                 stack.push(path);
-                continue;
+            } else if path.extension().is_some_and(|e| e == "rs") {
+                let text = std::fs::read_to_string(&path).with_context(|| format!("reading {}", path.display()))?;
+                files.push((path, text));
             }
-            if path.extension().is_none_or(|e| e != "rs") {
-                continue;
-            }
-            let rel = path.strip_prefix(src)?;
-            let top =
-                rel.components().next().map(|c| c.as_os_str().to_string_lossy().trim_end_matches(".rs").to_owned());
-            let Some(top) = top.filter(|t| t != "lib" && t != "main") else { continue };
-            let text = std::fs::read_to_string(&path).with_context(|| format!("reading {}", path.display()))?;
-            let uses = graph.entry(top.clone()).or_default();
-            uses.extend(used_modules(&text).into_iter().filter(|m| *m != top));
         }
+    }
+    Ok(files)
+}
+
+/// Reads every `.rs` file under `src` into a graph of top-level modules.
+pub fn graph(src: &Path) -> Result<Graph> {
+    let mut graph = Graph::new();
+    for (path, text) in rust_sources(src)? {
+        let rel = path.strip_prefix(src)?;
+        let top = rel.components().next().map(|c| c.as_os_str().to_string_lossy().trim_end_matches(".rs").to_owned());
+        let Some(top) = top.filter(|t| t != "lib" && t != "main") else { continue };
+        let uses = graph.entry(top.clone()).or_default();
+        uses.extend(used_modules(&text).into_iter().filter(|m| *m != top));
     }
     Ok(graph)
 }

@@ -5,23 +5,14 @@
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
 
-use anyhow::{Context, Result, bail};
+use anyhow::{Result, bail};
 
 /// The public types (`pub struct|enum|trait|type NAME`) declared in every
 /// `.rs` file under `src`, each with the file that declares it.
 pub fn public_types(src: &Path) -> Result<Vec<(String, PathBuf)>> {
     let mut found = Vec::new();
-    let mut stack = vec![src.to_owned()];
-    while let Some(dir) = stack.pop() {
-        for entry in std::fs::read_dir(&dir).with_context(|| format!("reading {}", dir.display()))? {
-            let path = entry?.path();
-            if path.is_dir() {
-                stack.push(path);
-            } else if path.extension().is_some_and(|e| e == "rs") {
-                let text = std::fs::read_to_string(&path).with_context(|| format!("reading {}", path.display()))?;
-                found.extend(declared(&text).into_iter().map(|name| (name, path.clone())));
-            }
-        }
+    for (path, text) in crate::modules::rust_sources(src)? {
+        found.extend(declared(&text).into_iter().map(|name| (name, path.clone())));
     }
     Ok(found)
 }
