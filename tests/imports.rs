@@ -15,7 +15,7 @@ use std::path::PathBuf;
 
 use paddock_guest::{Combine, Node};
 use paddock_host::{Checks, Model, Runtime};
-use paddock_import::{EstimatorParams, Format, ImportError, Manifest, import};
+use paddock_import::{EstimatorParams, Format, ImportError, Overrides, import};
 use paddock_tests::{guest, load, root, unhurried};
 
 /// Every model the export writes: a test fails if one is missing.
@@ -118,7 +118,7 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
     assert!(band.from.contains("category code"), "{}", band.from);
     assert_eq!(
         origin.contract.iter().find(|s| s.part == "name").unwrap().from,
-        "the file's name (set `name` in a manifest to change it)"
+        "the file's name (set `name` in the overrides to change it)"
     );
     let model = Model::load(&Runtime::new().unwrap(), artifact).unwrap();
     let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
@@ -126,11 +126,11 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
     assert_eq!(report.cases, 178);
 }
 
-/// The manifest renames and narrows; overrides naming nothing are refused.
+/// Overrides rename and narrow; overrides naming nothing are refused.
 #[test]
-fn the_manifest_overrides_the_file_and_says_so() {
+fn overrides_change_the_files_contract_and_say_so() {
     let (_, bytes, _) = case("xgb-diabetes-squarederror");
-    let manifest = Manifest::from_toml(
+    let overrides = Overrides::from_toml(
         r#"
 name = "progression"
 version = "1.2.0"
@@ -143,7 +143,7 @@ min = 0.0
 "#,
     )
     .unwrap();
-    let imported = import(&bytes, Format::XgboostJson, "m.json", Some(&manifest)).unwrap();
+    let imported = import(&bytes, Format::XgboostJson, "m.json", Some(&overrides)).unwrap();
     let c = &imported.contract;
     assert_eq!((c.name.as_str(), c.version.as_str()), ("progression", "1.2.0"));
     let bmi = c.features.iter().find(|f| f.name == "body_mass_index").unwrap();
@@ -151,10 +151,10 @@ min = 0.0
     assert_eq!(c.outputs[0].name, "progression");
     assert_eq!(c.outputs[0].bounds.min, Some(0.0));
     let from = &imported.origin.contract.iter().find(|s| s.part.starts_with("feature body_mass_index")).unwrap().from;
-    assert!(from.contains("required, name from the manifest"), "{from}");
-    let wrong = Manifest::from_toml("[features.bmx]\nunit = \"kg\"\n").unwrap();
+    assert!(from.contains("required, name from the overrides"), "{from}");
+    let wrong = Overrides::from_toml("[features.bmx]\nunit = \"kg\"\n").unwrap();
     let err = import(&bytes, Format::XgboostJson, "m.json", Some(&wrong)).unwrap_err();
-    assert!(matches!(err, ImportError::Manifest { .. }), "{err}");
+    assert!(matches!(err, ImportError::Overrides { .. }), "{err}");
     assert!(err.to_string().contains("features.bmx: the file has no feature `bmx`; it has age, sex, bmi"), "{err}");
 }
 
@@ -211,7 +211,7 @@ fn refusals_name_the_tree_and_node() {
     );
     let err = import(&graph, Format::SklearnOnnx, "onnx-mlp.onnx", None).unwrap_err().to_string();
     assert!(
-        err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX model with --manifest"),
+        err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX graph (--format onnx-graph --manifest FILE;"),
         "{err}"
     );
 
@@ -304,12 +304,12 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
         let bytes =
             std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
         assert_eq!(Format::recognise(&bytes), Some(Format::SklearnOnnx), "{name}");
-        // The helper names the columns in a manifest when it knows them.
-        let manifest =
-            std::fs::read_to_string(dir().join(format!("{name}.toml"))).ok().map(|t| Manifest::from_toml(&t).unwrap());
-        let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), manifest.as_ref()).unwrap();
+        // The helper names the columns in overrides when it knows them.
+        let overrides =
+            std::fs::read_to_string(dir().join(format!("{name}.toml"))).ok().map(|t| Overrides::from_toml(&t).unwrap());
+        let imported = import(&bytes, Format::SklearnOnnx, &format!("{name}.onnx"), overrides.as_ref()).unwrap();
         if name == "skl-diabetes-linear" {
-            assert_eq!(imported.contract.features[2].name, "bmi", "the helper's manifest names the columns");
+            assert_eq!(imported.contract.features[2].name, "bmi", "the helper's overrides name the columns");
         }
         let linked = match &imported.estimator {
             EstimatorParams::Trees(p) => p.link != paddock_guest::OutputLink::Identity,

@@ -128,7 +128,7 @@ const FLOAT32_TOLERANCE: f64 = 1e-5;
 fn onnx_model(name: &str) -> Model {
     let dir = root().join("target/paddock/sklearn");
     let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
-    let manifest = String::from_utf8(read("toml")).unwrap();
+    let manifest = paddock_import::onnx_graph::read_manifest(&String::from_utf8(read("toml")).unwrap()).unwrap();
     let params = paddock_import::onnx_graph::params(&manifest, &read("onnx")).unwrap();
     load(&Runtime::new().unwrap(), &guest("paddock-model-onnx"), &params, unhurried())
 }

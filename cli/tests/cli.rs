@@ -214,7 +214,7 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
         &[
             "pack",
             "tests/fixtures/stump.json",
-            "--manifest",
+            "--overrides",
             manifest.to_str().unwrap(),
             "--checks",
             checks.to_str().unwrap(),
@@ -228,10 +228,10 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     let shown = inspected(&out);
     assert!(shown.contains("imported from tests/fixtures/stump.json (XGBoost JSON model, 1 trees)"), "{shown}");
     assert!(shown.contains("toolkit XGBoost 3.2.0"), "{shown}");
-    assert!(shown.contains("feature arrival_soc name from feature_names in the file; real number from feature_types; optional by default: XGBoost sends an absent value its split's default way; unit, required from the manifest"), "{shown}");
+    assert!(shown.contains("feature arrival_soc name from feature_names in the file; real number from feature_types; optional by default: XGBoost sends an absent value its split's default way; unit, required from the overrides"), "{shown}");
     assert!(
         shown.contains(
-            "output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the manifest"
+            "output minutes (`value` as imported) the objective reg:squarederror; bounds, name from the overrides"
         ),
         "{shown}"
     );
@@ -240,7 +240,7 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
 /// A multinomial logistic regression from scikit-learn (iris, through
 /// skl2onnx and the notebook helper, whose checks hold scikit-learn's
 /// `predict_proba`) packs onto the linear guest, picked by the graph's
-/// operator; an ONNX evaluator manifest given with it is refused, saying why.
+/// operator; an ONNX graph manifest given with it is refused, saying why.
 #[test]
 fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     let dir = root().join("target/paddock/imports");
@@ -255,7 +255,7 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
         &[
             "pack",
             model.to_str().unwrap(),
-            "--manifest",
+            "--overrides",
             manifest.to_str().unwrap(),
             "--checks",
             checks.to_str().unwrap(),
@@ -287,7 +287,11 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     );
     assert_eq!(o.status.code(), Some(2));
     let err = text(&o.stderr);
-    assert!(err.contains("holds a model paddock imports (scikit-learn model in ONNX (skl2onnx)), so --manifest takes overrides of its contract"), "{err}");
+    let expected = format!(
+        "--manifest is for ONNX graphs (a toolkit's model file takes --overrides); {} is a scikit-learn model in ONNX (skl2onnx)",
+        linear.display()
+    );
+    assert!(err.contains(&expected), "{err}");
 }
 
 /// A LightGBM model LightGBM 4.7.0 saved (wine, a categorical feature;

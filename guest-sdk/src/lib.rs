@@ -89,7 +89,7 @@ pub use program::{
     Cast, Compare, Emit, Ensemble, Expr, Function, Input, Interval, Kind, Logic, Normalize, Outliers, Predicate,
     Program, ProgramParams, RegressionTable, Rescale, Segment, Submodel, TreeNode, WhenUnknown,
 };
-pub use spelling::DomainSpec;
+pub use spelling::{DomainSpec, GraphFeature, GraphManifest, GraphOutput};
 pub use trees::{Branch, Combine, Node, OutputLink, Precision, SplitRule, Tree, Trees, TreesParams};
 
 /// Re-exported so model crates need no direct ndarray dependency.

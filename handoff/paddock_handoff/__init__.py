@@ -31,7 +31,7 @@ import numpy
 
 __all__ = ["hand_off", "HandedOff"]
 
-HandedOff = namedtuple("HandedOff", ["model", "checks", "cases", "manifest"])
+HandedOff = namedtuple("HandedOff", ["model", "checks", "cases", "overrides"])
 
 # XGBoost objectives by the output they give (paddock's importer uses the same).
 _XGB_VALUE = {"reg:squarederror", "reg:linear", "reg:absoluteerror", "reg:pseudohubererror",
@@ -56,15 +56,15 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     ``names`` names the columns of ``rows`` when it is a plain array (a
     DataFrame's columns, or the names a scikit-learn model was fitted on,
     are used otherwise). An ONNX file names no columns: for a scikit-learn
-    model with names, ``STEM.toml`` is written too, a paddock manifest
-    naming the file's ``x0``, ``x1``… for ``paddock pack --manifest``.
+    model with names, ``STEM.toml`` is written too, paddock overrides
+    naming the file's ``x0``, ``x1``… for ``paddock pack --overrides``.
 
     Returns ``HandedOff(model=path, checks=path, cases=count,
-    manifest=path or None)``.
+    overrides=path or None)``.
     """
     kind = _toolkit(model)
     matrix, names = _matrix(rows, names)
-    manifest = None
+    overrides = None
     if kind == "xgboost":
         path, outputs, values, source = _xgboost(model, matrix, names, stem)
         names = names or _xgb_names(model, matrix.shape[1])
@@ -72,7 +72,7 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
         path, outputs, values, source, (eps, linked) = _sklearn(model, matrix, stem)
         names = names or [str(n) for n in getattr(model, "feature_names_in_", [])]
         if names:
-            manifest = _manifest(names, stem)
+            overrides = _overrides(names, stem)
         else:
             names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
         if linked:
@@ -97,7 +97,7 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     checks_path = f"{stem}.checks.json"
     with open(checks_path, "w") as f:
         json.dump(checks, f)
-    return HandedOff(path, checks_path, len(cases), manifest)
+    return HandedOff(path, checks_path, len(cases), overrides)
 
 
 def _toolkit(model):
@@ -107,8 +107,8 @@ def _toolkit(model):
     raise TypeError(f"hand_off takes an XGBoost, LightGBM or scikit-learn model, not {type(model).__module__}.{type(model).__name__}")
 
 
-def _manifest(names, stem):
-    """A paddock manifest naming the ONNX file's columns x0, x1…"""
+def _overrides(names, stem):
+    """paddock overrides naming the ONNX file's columns x0, x1…"""
     path = f"{stem}.toml"
     with open(path, "w") as f:
         f.write("# Written by paddock_handoff: the ONNX file names no columns; these are\n"

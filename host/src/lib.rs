@@ -70,7 +70,7 @@ pub use limits::{LimitHit, Limits};
 pub use sandbox::codecache::{CacheError, CodeCache, CodeSource};
 pub use sandbox::model::{Estimates, Isolation, LoadError, Model, ModelOptions, Priming, ScoreError, Scored, Usage};
 pub use sandbox::prime::PrimeState;
-pub use sandbox::verify::{CaseFailure, CheckReport};
+pub use sandbox::verify::{CaseFailure, CheckReport, PackError, Packed, Parts, pack_verified};
 pub use sandbox::wasi::WasiPolicy;
 pub use sandbox::{Runtime, RuntimeConfig, RuntimeError, SandboxError};
 pub use tool_error::ToolError;

@@ -3,7 +3,7 @@
 //! programs), with the contract the file declares.
 //!
 //! What it is: a pure function from a file's bytes (and an optional
-//! manifest of overrides) to [`Imported`]: a [`Packaged`] contract and
+//! set of [`Overrides`]) to [`Imported`]: a [`Packaged`] contract and
 //! [`TreesParams`] that the generic trees guest evaluates, and an
 //! [`Origin`] saying where each part came from. The params reproduce the
 //! toolkit's own arithmetic — XGBoost's single precision, LightGBM's double
@@ -29,17 +29,20 @@
 
 #![deny(missing_docs)]
 
+mod ensemble;
 mod flatten;
+mod input;
 mod lightgbm;
-pub mod manifest;
 mod onnx;
 pub mod onnx_graph;
 mod origin;
+pub mod overrides;
 mod pmml;
 mod xgboost;
 
-pub use manifest::Manifest;
+pub use input::InputKind;
 pub use origin::{Origin, Provenance};
+pub use overrides::Overrides;
 use paddock_guest::{Contract, LinearParams, Packaged, ProgramParams, TreesParams, encode_params};
 
 /// A model file format an importer reads.
@@ -125,7 +128,7 @@ pub fn looks_like(bytes: &[u8]) -> &'static str {
         "JSON, but not an XGBoost model (no `learner` object)"
     } else if head.contains(&0) {
         if head.windows(8).any(|w| w == b"ai.onnx." || w == b"ir_versi") || head.starts_with(b"\x08") {
-            "ONNX (pack it with --manifest)"
+            "an ONNX graph (pack it as `MODEL.onnx` with --manifest)"
         } else {
             "a binary file (XGBoost's UBJSON or a pickle? save the model as JSON: `save_model(\"m.json\")`)"
         }
@@ -137,7 +140,7 @@ pub fn looks_like(bytes: &[u8]) -> &'static str {
 /// A model file, imported.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Imported {
-    /// The contract the file declares, with the manifest's overrides.
+    /// The contract the file declares, with the overrides applied.
     pub contract: Contract,
     /// The built-in estimator that reproduces the model, and its params.
     pub estimator: EstimatorParams,
@@ -194,6 +197,17 @@ pub enum ImportError {
         /// What the file looks like instead.
         looks_like: &'static str,
     },
+    /// The file is neither WebAssembly nor a model file an importer reads
+    /// (see [`InputKind::identify`]).
+    #[error(
+        "{file}: not WebAssembly, nor a model file paddock imports (XGBoost JSON, LightGBM text, ONNX, PMML); it looks like {looks_like}"
+    )]
+    NotAModel {
+        /// The file.
+        file: String,
+        /// What it looks like.
+        looks_like: &'static str,
+    },
     /// The file is in the format but does not parse.
     #[error("{file}: {place}: {problem}")]
     Malformed {
@@ -216,9 +230,9 @@ pub enum ImportError {
         /// What to do instead.
         instead: String,
     },
-    /// The manifest of overrides is wrong.
-    #[error("manifest: {field}: {problem}")]
-    Manifest {
+    /// The overrides are wrong.
+    #[error("overrides: {field}: {problem}")]
+    Overrides {
         /// The field (`features.bmi.domain`, `version`…).
         field: String,
         /// What is wrong.
@@ -249,7 +263,7 @@ impl Blame<'_> {
 /// Imports a model file.
 ///
 /// `file` names the file in messages and in the [`Origin`]; `format` is
-/// the file's format (see [`Format::recognise`]); `manifest` overrides the
+/// the file's format (see [`Format::recognise`]); `overrides` change the
 /// name, version, and any feature's or output's name, domain, unit,
 /// required-ness or bounds.
 ///
@@ -257,9 +271,14 @@ impl Blame<'_> {
 /// [`ImportError::WrongFormat`] when the bytes are not that format,
 /// [`ImportError::Malformed`] naming the field or line that does not parse,
 /// [`ImportError::Unsupported`] naming the tree and node, or the field, the
-/// importer does not reproduce, [`ImportError::Manifest`] for overrides that
+/// importer does not reproduce, [`ImportError::Overrides`] for overrides that
 /// name nothing in the file or do not fit it.
-pub fn import(bytes: &[u8], format: Format, file: &str, manifest: Option<&Manifest>) -> Result<Imported, ImportError> {
+pub fn import(
+    bytes: &[u8],
+    format: Format,
+    file: &str,
+    overrides: Option<&Overrides>,
+) -> Result<Imported, ImportError> {
     let mut imported = match format {
         Format::XgboostJson => xgboost::import(bytes, file)?,
         Format::LightgbmText => lightgbm::import(bytes, file)?,
@@ -267,7 +286,7 @@ pub fn import(bytes: &[u8], format: Format, file: &str, manifest: Option<&Manife
         Format::Pmml => pmml::import(bytes, file)?,
     };
     let stem = std::path::Path::new(file).file_stem().and_then(|s| s.to_str()).unwrap_or("model");
-    manifest::apply(&mut imported, manifest, stem)?;
+    overrides::apply(&mut imported, overrides, stem)?;
     Ok(imported)
 }
 

@@ -14,11 +14,12 @@
 //! poisson/gamma/tweedie, softmax for multiclass.
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
 };
 
+use crate::ensemble::{ContractDraft, NodeRules};
 use crate::flatten::flatten;
-use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin};
 
 /// The `key=value` lines of one block, with the line each came from.
 struct Block<'a> {
@@ -118,10 +119,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     if trees.is_empty() {
         return Err(r.malformed("trees", "the model has no trees"));
     }
-    let outputs = per_iteration;
     let params = TreesParams {
         features: features as u32,
-        base: vec![0.0; outputs],
+        base: vec![0.0; per_iteration],
         combine: if average { Combine::Mean } else { Combine::Sum },
         split: SplitRule::LessOrEqual,
         trees,
@@ -137,7 +137,29 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         vectors: Vec::new(),
     };
     let name = objective.split_ascii_whitespace().next().unwrap_or("");
-    let (outs, task_text) = match task {
+    let (outs, task_text) = outputs(task, name, per_iteration);
+    let mut draft = contract_features(&names, &infos);
+    for o in outs {
+        draft.output(o, format!("the objective {name}"));
+    }
+    let origin = Origin {
+        format: Format::LightgbmText.name().to_owned(),
+        file: file.to_owned(),
+        toolkit: format!("LightGBM (model format {version})"),
+        task: task_text,
+        arithmetic: format!(
+            "double precision as LightGBM computes: left when x ≤ threshold; each split's missing type (None: absent counts as 0; Zero; NaN) and default direction; categorical splits by bitset{}",
+            if average { "; trees averaged (random forest)" } else { "" }
+        ),
+        estimator: format!("{} trees", params.trees.len()),
+        contract: Vec::new(),
+    };
+    Ok(draft.finish(EstimatorParams::Trees(params), origin))
+}
+
+/// The outputs an objective gives, and the task in words.
+fn outputs(task: Task, name: &str, outputs: usize) -> (Vec<Output>, String) {
+    match task {
         Task::Value => (vec![Output::new("value", Bounds::OPEN)], format!("{name}: one value (the summed scores)")),
         Task::Score => {
             (vec![Output::new("score", Bounds::OPEN)], format!("{name}: one score (the summed scores, no link)"))
@@ -159,9 +181,13 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 "{name}: one probability per class, each a sigmoid of {scale} × its scores (they need not sum to 1)"
             ),
         ),
-    };
-    let mut sources = Vec::new();
-    let mut contract_features = Vec::with_capacity(features);
+    }
+}
+
+/// The features: names from `feature_names`, domains from `feature_infos`
+/// (a range for a real number, a list of categories for a code).
+fn contract_features(names: &[String], infos: &[&str]) -> ContractDraft {
+    let mut draft = ContractDraft::default();
     for (i, name) in names.iter().enumerate() {
         let info = infos.get(i).copied().unwrap_or("");
         let (feature, domain_from) = if info.starts_with('[') || info == "none" || info.is_empty() {
@@ -175,38 +201,12 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 format!("category code, a whole number (feature_infos lists the categories {info})"),
             )
         };
-        sources.push(Provenance {
-            part: format!("feature {name}"),
-            from: format!("name from feature_names in the file; {domain_from}; optional by default: LightGBM sends an absent value its split's missing-value way"),
-        });
-        contract_features.push(feature.optional());
+        draft.feature(
+            feature.optional(),
+            format!("name from feature_names in the file; {domain_from}; optional by default: LightGBM sends an absent value its split's missing-value way"),
+        );
     }
-    for o in &outs {
-        sources.push(Provenance { part: format!("output {}", o.name), from: format!("the objective {name}") });
-    }
-    let trees_count = params.trees.len();
-    Ok(Imported {
-        contract: Contract {
-            name: String::new(),
-            version: String::new(),
-            about: String::new(),
-            features: contract_features,
-            outputs: outs,
-        },
-        estimator: EstimatorParams::Trees(params),
-        origin: Origin {
-            format: Format::LightgbmText.name().to_owned(),
-            file: file.to_owned(),
-            toolkit: format!("LightGBM (model format {version})"),
-            task: task_text,
-            arithmetic: format!(
-                "double precision as LightGBM computes: left when x ≤ threshold; each split's missing type (None: absent counts as 0; Zero; NaN) and default direction; categorical splits by bitset{}",
-                if average { "; trees averaged (random forest)" } else { "" }
-            ),
-            estimator: format!("{trees_count} trees"),
-            contract: sources,
-        },
-    })
+    draft
 }
 
 fn task_of(r: &Blame<'_>, objective: &str, line: usize, per_iteration: usize) -> Result<Task, ImportError> {
@@ -296,11 +296,10 @@ fn read_tree(
         ));
     }
     let values: Vec<f64> = block.list(r, "leaf_value", leaves)?;
-    if let Some(bad) = values.iter().position(|v| !v.is_finite()) {
-        return Err(r.malformed(&format!("tree {t} leaf {bad}"), format!("leaf value {}", values[bad])));
-    }
+    let rules = NodeRules { blame: r, features };
+    let leaf = |j: usize| rules.leaf(&format!("tree {t} leaf {j}"), values[j]);
     if leaves == 1 {
-        return Ok(vec![Node::Leaf { value: values[0] }]);
+        return Ok(vec![leaf(0)?]);
     }
     let inner = leaves - 1;
     let feature: Vec<i64> = block.list(r, "split_feature", inner)?;
@@ -336,13 +335,10 @@ fn read_tree(
         |id| {
             let i = id as usize;
             if i >= inner {
-                return Ok(Node::Leaf { value: values[i - inner] });
+                return leaf(i - inner);
             }
             let place = format!("tree {t} node {i}");
-            let f = feature[i];
-            if f < 0 || f as usize >= features {
-                return Err(r.malformed(&place, format!("split_feature {f} but the model has {features} features")));
-            }
+            let f = rules.feature(&place, feature[i])?;
             let (l, rt) = (raw(left[i], &place)?, raw(right[i], &place)?);
             let d = decision[i];
             let default_left = d & 2 != 0;
@@ -370,7 +366,7 @@ fn read_tree(
                     }
                 };
                 return Ok(Node::Member {
-                    feature: f as u32,
+                    feature: f,
                     set,
                     left: l,
                     right: rt,
@@ -378,34 +374,19 @@ fn read_tree(
                     members: Branch::Left,
                 });
             }
-            let t_value = threshold[i];
-            if t_value.is_nan() {
-                return Err(r.malformed(&place, "threshold is NaN"));
-            }
+            let t_value = rules.threshold(&place, threshold[i])?;
             let way = |left: bool| if left { Branch::Left } else { Branch::Right };
             Ok(match missing_type {
                 // None: an absent value is taken as 0.
-                0 => Node::Split {
-                    feature: f as u32,
-                    threshold: t_value,
-                    left: l,
-                    right: rt,
-                    missing: way(0.0 <= t_value),
-                },
+                0 => Node::Split { feature: f, threshold: t_value, left: l, right: rt, missing: way(0.0 <= t_value) },
                 1 => Node::SplitZeroAbsent {
-                    feature: f as u32,
+                    feature: f,
                     threshold: t_value,
                     left: l,
                     right: rt,
                     missing: way(default_left),
                 },
-                2 => Node::Split {
-                    feature: f as u32,
-                    threshold: t_value,
-                    left: l,
-                    right: rt,
-                    missing: way(default_left),
-                },
+                2 => Node::Split { feature: f, threshold: t_value, left: l, right: rt, missing: way(default_left) },
                 other => {
                     return Err(r.malformed(
                         &place,

@@ -25,13 +25,14 @@
 use std::collections::BTreeMap;
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, LinearParams, Link, Node, Output, OutputLink, Precision, SplitRule,
-    Tree, TreesParams,
+    Bounds, Branch, Combine, Feature, LinearParams, Link, Node, Output, OutputLink, Precision, SplitRule, Tree,
+    TreesParams,
 };
 use prost::Message;
 
+use crate::ensemble::{ContractDraft, NodeRules, same_lengths};
 use crate::flatten::flatten;
-use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin};
 
 #[derive(Clone, PartialEq, Message)]
 struct ModelProto {
@@ -273,7 +274,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             return Err(blame.unsupported(
                 "graph",
                 format!("a graph of {} (no tree ensemble or linear model)", ops.join(", ")),
-                "pack it as an ONNX model with --manifest (tract runs it), or export a scikit-learn tree ensemble or linear model",
+                "pack it as an ONNX graph (--format onnx-graph --manifest FILE; tract runs it), or export a scikit-learn tree ensemble or linear model",
             ));
         }
         _ => {
@@ -370,59 +371,19 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     let place = a.place.clone();
     let bad = |problem: String| blame.malformed(&place, problem);
     let classifier = a.place.contains("TreeEnsembleClassifier");
-    let tree_ids = a.ints("nodes_treeids");
-    let node_ids = a.ints("nodes_nodeids");
-    let feature_ids = a.ints("nodes_featureids");
-    let values = a.numbers("nodes_values")?.ok_or_else(|| bad("no nodes_values".into()))?;
-    let modes = a.texts("nodes_modes");
-    let true_ids = a.ints("nodes_truenodeids");
-    let false_ids = a.ints("nodes_falsenodeids");
-    let mut tracks_true = a.ints("nodes_missing_value_tracks_true");
-    let n = tree_ids.len();
-    if tracks_true.is_empty() {
-        tracks_true = vec![0; n];
-    }
-    for (name, len) in [
-        ("nodes_nodeids", node_ids.len()),
-        ("nodes_featureids", feature_ids.len()),
-        ("nodes_values", values.len()),
-        ("nodes_modes", modes.len()),
-        ("nodes_truenodeids", true_ids.len()),
-        ("nodes_falsenodeids", false_ids.len()),
-        ("nodes_missing_value_tracks_true", tracks_true.len()),
-    ] {
-        if len != n {
-            return Err(bad(format!("{name} has {len} entries but nodes_treeids has {n}")));
-        }
-    }
+    let nodes = NodeArrays::read(a)?;
     let list = if classifier { "class" } else { "target" };
-    let target_trees = a.ints(&format!("{list}_treeids"));
-    let target_nodes = a.ints(&format!("{list}_nodeids"));
-    let target_ids = a.ints(&format!("{list}_ids"));
-    let weights = a.numbers(&format!("{list}_weights"))?.unwrap_or_default();
-    if [target_nodes.len(), target_ids.len(), weights.len()].iter().any(|&l| l != target_trees.len()) {
-        return Err(bad(format!("{list}_treeids, {list}_nodeids, {list}_ids and {list}_weights differ in length")));
-    }
+    let leaves = LeafArrays::read(a, list)?;
     let labels = labels(a);
     let (task, link) = if classifier {
-        let columns = target_ids.iter().copied().max().map_or(1, |m| m.max(0) as usize + 1);
+        let columns = leaves.ids.iter().copied().max().map_or(1, |m| m.max(0) as usize + 1);
         let columns = if labels.len() > 2 { labels.len() } else { columns };
         classifier_task(a, labels.len(), columns)?
     } else {
-        let targets = usize::try_from(a.int("n_targets", 1))
-            .ok()
-            .filter(|&k| (1..=10_000).contains(&k))
-            .ok_or_else(|| bad("n_targets out of range".into()))?;
-        let link = match a.text("post_transform", "NONE").as_str() {
-            "NONE" => OutputLink::Identity,
-            "LOGISTIC" => OutputLink::Logistic { scale: 1.0 },
-            "SOFTMAX" if targets >= 2 => OutputLink::Softmax,
-            other => return Err(blame.unsupported(&place, format!("post_transform {other}"), "export without it")),
-        };
-        (Task::Values(targets), link)
+        regressor_task(a)?
     };
     let outputs = task.columns();
-    let leaf_count = modes.iter().filter(|m| *m == "LEAF").count();
+    let leaf_count = nodes.modes.iter().filter(|m| *m == "LEAF").count();
     if outputs > 1 && leaf_count.saturating_mul(outputs) > 1 << 24 {
         return Err(bad(format!(
             "{leaf_count} leaves × {outputs} outputs: more leaf values than paddock holds (16 M)"
@@ -444,112 +405,14 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
             ));
         }
     };
-    // The split rule: one family for the whole ensemble.
-    let mut rule = None;
-    for (i, m) in modes.iter().enumerate() {
-        let family = match m.as_str() {
-            "LEAF" => continue,
-            "BRANCH_LEQ" | "BRANCH_GT" => SplitRule::LessOrEqual,
-            "BRANCH_LT" | "BRANCH_GTE" => SplitRule::Less,
-            other => {
-                return Err(blame.unsupported(
-                    &format!("tree {} node {}", tree_ids[i], node_ids[i]),
-                    format!("split mode {other}"),
-                    "export ordered splits only",
-                ));
-            }
-        };
-        match rule {
-            None => rule = Some(family),
-            Some(r) if r != family => {
-                return Err(blame.unsupported(
-                    &format!("tree {} node {}", tree_ids[i], node_ids[i]),
-                    format!("split mode {m} mixed with the other comparison"),
-                    "export one comparison for every split",
-                ));
-            }
-            Some(_) => {}
-        }
-    }
-    let split = rule.unwrap_or(SplitRule::LessOrEqual);
-    // Each tree's nodes by id, and each leaf's weights by output.
-    let mut trees: BTreeMap<i64, BTreeMap<i64, usize>> = BTreeMap::new();
-    for i in 0..n {
-        trees.entry(tree_ids[i]).or_default().insert(node_ids[i], i);
-    }
-    let mut leaf_weights: BTreeMap<(i64, i64), Vec<f64>> = BTreeMap::new();
-    // The one output each tree's leaves feed, or None when they feed several.
-    let mut tree_output: BTreeMap<i64, Option<usize>> = BTreeMap::new();
-    for j in 0..target_trees.len() {
-        let k = usize::try_from(target_ids[j])
-            .ok()
-            .filter(|&k| k < outputs)
-            .ok_or_else(|| bad(format!("{list}_ids[{j}] = {} but there are {outputs} outputs", target_ids[j])))?;
-        leaf_weights.entry((target_trees[j], target_nodes[j])).or_insert_with(|| vec![0.0; outputs])[k] += weights[j];
-        tree_output
-            .entry(target_trees[j])
-            .and_modify(|o| {
-                if *o != Some(k) {
-                    *o = None
-                }
-            })
-            .or_insert(Some(k));
-    }
+    let split = nodes.split_rule(blame)?;
+    let weights = leaves.by_leaf(blame, &place, list, outputs)?;
     let mut vectors = Vec::new();
-    let mut params_trees = Vec::with_capacity(trees.len());
-    for (&t, nodes) in &trees {
-        let ids: Vec<i64> = nodes.keys().copied().collect();
-        // The root is the node no other node names as a child.
-        let children: std::collections::BTreeSet<i64> =
-            nodes.values().filter(|&&i| modes[i] != "LEAF").flat_map(|&i| [true_ids[i], false_ids[i]]).collect();
-        let root = ids
-            .iter()
-            .position(|id| !children.contains(id))
-            .ok_or_else(|| blame.malformed(&format!("tree {t}"), "every node is some node's child: no root"))?
-            as u32;
-        let raw_id = |id: i64, at: &str| -> Result<u32, ImportError> {
-            ids.binary_search(&id)
-                .map(|p| p as u32)
-                .map_err(|_| blame.malformed(at, format!("child {id} is not a node of tree {t}")))
-        };
-        // A tree whose leaves all feed one output adds plain leaf values to it.
-        let only = if outputs == 1 { Some(0) } else { tree_output.get(&t).copied().unwrap_or(Some(0)) };
-        let tree_nodes = flatten(
-            root,
-            ids.len(),
-            |p| {
-                let i = nodes[&ids[p as usize]];
-                let at = format!("tree {t} node {}", node_ids[i]);
-                if modes[i] == "LEAF" {
-                    let w = leaf_weights.get(&(t, node_ids[i])).cloned().unwrap_or_else(|| vec![0.0; outputs]);
-                    if let Some(bad) = w.iter().find(|v| !v.is_finite()) {
-                        return Err(blame.malformed(&at, format!("leaf weight {bad}")));
-                    }
-                    return Ok(match only {
-                        Some(k) => Node::Leaf { value: w[k] },
-                        None => {
-                            vectors.extend_from_slice(&w);
-                            Node::Leaves { first: (vectors.len() - outputs) as u32 }
-                        }
-                    });
-                }
-                let feature =
-                    u32::try_from(feature_ids[i]).ok().filter(|&f| (f as usize) < g.features).ok_or_else(|| {
-                        blame.malformed(&at, format!("feature {} but the input has {}", feature_ids[i], g.features))
-                    })?;
-                if values[i].is_nan() {
-                    return Err(blame.malformed(&at, "threshold is NaN"));
-                }
-                let (yes, no) = (raw_id(true_ids[i], &at)?, raw_id(false_ids[i], &at)?);
-                // GT and GTE are the other side of LEQ and LT.
-                let flipped = matches!(modes[i].as_str(), "BRANCH_GT" | "BRANCH_GTE");
-                let (left, right) = if flipped { (no, yes) } else { (yes, no) };
-                let missing_true = tracks_true[i] != 0;
-                let missing = if missing_true != flipped { Branch::Left } else { Branch::Right };
-                Ok(Node::Split { feature, threshold: values[i], left, right, missing })
-            },
-            || blame.malformed(&format!("tree {t}"), "a node is reached twice: the children do not form a tree"),
-        )?;
+    let mut params_trees = Vec::new();
+    for (&t, by_id) in &nodes.trees() {
+        let only = if outputs == 1 { Some(0) } else { weights.tree_output.get(&t).copied().unwrap_or(Some(0)) };
+        let walk = TreeWalk { g, nodes: &nodes, weights: &weights, outputs, only };
+        let tree_nodes = walk.flatten(t, by_id, &mut vectors)?;
         params_trees.push(Tree { output: only.unwrap_or(0) as u32, nodes: tree_nodes });
     }
     if params_trees.is_empty() {
@@ -557,7 +420,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     }
     // Absent values: the exporter records a way for them only when the
     // model learned one (HistGradientBoosting, trees fitted on missing values).
-    let learned_missing = tracks_true.iter().any(|&t| t != 0);
+    let learned_missing = nodes.tracks_true.iter().any(|&t| t != 0);
     let missing_text = if learned_missing {
         "optional: the file sends an absent value its split's missing-value way"
     } else {
@@ -598,6 +461,224 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         ),
         format!("{trees_count} trees"),
     )
+}
+
+/// A `TreeEnsembleRegressor`'s outputs and link.
+fn regressor_task(a: &Attributes<'_>) -> Result<(Task, OutputLink), ImportError> {
+    let targets = usize::try_from(a.int("n_targets", 1))
+        .ok()
+        .filter(|&k| (1..=10_000).contains(&k))
+        .ok_or_else(|| a.blame.malformed(&a.place, "n_targets out of range"))?;
+    let link = match a.text("post_transform", "NONE").as_str() {
+        "NONE" => OutputLink::Identity,
+        "LOGISTIC" => OutputLink::Logistic { scale: 1.0 },
+        "SOFTMAX" if targets >= 2 => OutputLink::Softmax,
+        other => return Err(a.blame.unsupported(&a.place, format!("post_transform {other}"), "export without it")),
+    };
+    Ok((Task::Values(targets), link))
+}
+
+/// The ONNX-ML ensemble's `nodes_*` arrays, one entry per node of every tree.
+struct NodeArrays {
+    tree_ids: Vec<i64>,
+    node_ids: Vec<i64>,
+    feature_ids: Vec<i64>,
+    values: Vec<f64>,
+    modes: Vec<String>,
+    true_ids: Vec<i64>,
+    false_ids: Vec<i64>,
+    tracks_true: Vec<i64>,
+}
+
+impl NodeArrays {
+    fn read(a: &Attributes<'_>) -> Result<NodeArrays, ImportError> {
+        let tree_ids = a.ints("nodes_treeids");
+        let n = tree_ids.len();
+        let mut tracks_true = a.ints("nodes_missing_value_tracks_true");
+        if tracks_true.is_empty() {
+            tracks_true = vec![0; n];
+        }
+        let arrays = NodeArrays {
+            node_ids: a.ints("nodes_nodeids"),
+            feature_ids: a.ints("nodes_featureids"),
+            values: a.numbers("nodes_values")?.ok_or_else(|| a.blame.malformed(&a.place, "no nodes_values"))?,
+            modes: a.texts("nodes_modes"),
+            true_ids: a.ints("nodes_truenodeids"),
+            false_ids: a.ints("nodes_falsenodeids"),
+            tracks_true,
+            tree_ids,
+        };
+        same_lengths(
+            a.blame,
+            &a.place,
+            ("nodes_treeids", n),
+            &[
+                ("nodes_nodeids", arrays.node_ids.len()),
+                ("nodes_featureids", arrays.feature_ids.len()),
+                ("nodes_values", arrays.values.len()),
+                ("nodes_modes", arrays.modes.len()),
+                ("nodes_truenodeids", arrays.true_ids.len()),
+                ("nodes_falsenodeids", arrays.false_ids.len()),
+                ("nodes_missing_value_tracks_true", arrays.tracks_true.len()),
+            ],
+        )?;
+        Ok(arrays)
+    }
+
+    /// The split rule: one comparison family for the whole ensemble.
+    fn split_rule(&self, blame: &Blame<'_>) -> Result<SplitRule, ImportError> {
+        let mut rule = None;
+        for (i, m) in self.modes.iter().enumerate() {
+            let at = || format!("tree {} node {}", self.tree_ids[i], self.node_ids[i]);
+            let family = match m.as_str() {
+                "LEAF" => continue,
+                "BRANCH_LEQ" | "BRANCH_GT" => SplitRule::LessOrEqual,
+                "BRANCH_LT" | "BRANCH_GTE" => SplitRule::Less,
+                other => {
+                    return Err(blame.unsupported(&at(), format!("split mode {other}"), "export ordered splits only"));
+                }
+            };
+            match rule {
+                None => rule = Some(family),
+                Some(r) if r != family => {
+                    return Err(blame.unsupported(
+                        &at(),
+                        format!("split mode {m} mixed with the other comparison"),
+                        "export one comparison for every split",
+                    ));
+                }
+                Some(_) => {}
+            }
+        }
+        Ok(rule.unwrap_or(SplitRule::LessOrEqual))
+    }
+
+    /// Each tree's nodes: node id → position in the arrays.
+    fn trees(&self) -> BTreeMap<i64, BTreeMap<i64, usize>> {
+        let mut trees: BTreeMap<i64, BTreeMap<i64, usize>> = BTreeMap::new();
+        for (i, (&t, &id)) in self.tree_ids.iter().zip(&self.node_ids).enumerate() {
+            trees.entry(t).or_default().insert(id, i);
+        }
+        trees
+    }
+}
+
+/// The ensemble's `target_*` (or `class_*`) arrays: one weight per leaf and output.
+struct LeafArrays {
+    trees: Vec<i64>,
+    nodes: Vec<i64>,
+    ids: Vec<i64>,
+    weights: Vec<f64>,
+}
+
+/// The leaf weights by (tree, node), one per output, and the one output
+/// each tree's leaves feed (None when they feed several).
+struct LeafWeights {
+    by_leaf: BTreeMap<(i64, i64), Vec<f64>>,
+    tree_output: BTreeMap<i64, Option<usize>>,
+}
+
+impl LeafArrays {
+    fn read(a: &Attributes<'_>, list: &str) -> Result<LeafArrays, ImportError> {
+        let arrays = LeafArrays {
+            trees: a.ints(&format!("{list}_treeids")),
+            nodes: a.ints(&format!("{list}_nodeids")),
+            ids: a.ints(&format!("{list}_ids")),
+            weights: a.numbers(&format!("{list}_weights"))?.unwrap_or_default(),
+        };
+        same_lengths(
+            a.blame,
+            &a.place,
+            (&format!("{list}_treeids"), arrays.trees.len()),
+            &[
+                (&format!("{list}_nodeids"), arrays.nodes.len()),
+                (&format!("{list}_ids"), arrays.ids.len()),
+                (&format!("{list}_weights"), arrays.weights.len()),
+            ],
+        )?;
+        Ok(arrays)
+    }
+
+    fn by_leaf(&self, blame: &Blame<'_>, place: &str, list: &str, outputs: usize) -> Result<LeafWeights, ImportError> {
+        let mut by_leaf: BTreeMap<(i64, i64), Vec<f64>> = BTreeMap::new();
+        let mut tree_output: BTreeMap<i64, Option<usize>> = BTreeMap::new();
+        for j in 0..self.trees.len() {
+            let k = usize::try_from(self.ids[j]).ok().filter(|&k| k < outputs).ok_or_else(|| {
+                blame.malformed(place, format!("{list}_ids[{j}] = {} but there are {outputs} outputs", self.ids[j]))
+            })?;
+            by_leaf.entry((self.trees[j], self.nodes[j])).or_insert_with(|| vec![0.0; outputs])[k] += self.weights[j];
+            tree_output
+                .entry(self.trees[j])
+                .and_modify(|o| {
+                    if *o != Some(k) {
+                        *o = None
+                    }
+                })
+                .or_insert(Some(k));
+        }
+        Ok(LeafWeights { by_leaf, tree_output })
+    }
+}
+
+/// One tree of the ensemble, walked from its root into the estimator's nodes.
+struct TreeWalk<'a> {
+    g: &'a Graph<'a>,
+    nodes: &'a NodeArrays,
+    weights: &'a LeafWeights,
+    outputs: usize,
+    /// The one output the tree's leaves feed, or None (vector leaves).
+    only: Option<usize>,
+}
+
+impl TreeWalk<'_> {
+    fn flatten(&self, t: i64, by_id: &BTreeMap<i64, usize>, vectors: &mut Vec<f64>) -> Result<Vec<Node>, ImportError> {
+        let (blame, n) = (&self.g.blame, self.nodes);
+        let ids: Vec<i64> = by_id.keys().copied().collect();
+        // The root is the node no other node names as a child.
+        let children: std::collections::BTreeSet<i64> =
+            by_id.values().filter(|&&i| n.modes[i] != "LEAF").flat_map(|&i| [n.true_ids[i], n.false_ids[i]]).collect();
+        let root = ids
+            .iter()
+            .position(|id| !children.contains(id))
+            .ok_or_else(|| blame.malformed(&format!("tree {t}"), "every node is some node's child: no root"))?
+            as u32;
+        let raw_id = |id: i64, at: &str| -> Result<u32, ImportError> {
+            ids.binary_search(&id)
+                .map(|p| p as u32)
+                .map_err(|_| blame.malformed(at, format!("child {id} is not a node of tree {t}")))
+        };
+        let rules = NodeRules { blame, features: self.g.features };
+        flatten(
+            root,
+            ids.len(),
+            |p| {
+                let i = by_id[&ids[p as usize]];
+                let at = format!("tree {t} node {}", n.node_ids[i]);
+                if n.modes[i] == "LEAF" {
+                    let w = self.weights.by_leaf.get(&(t, n.node_ids[i])).cloned();
+                    let w = w.unwrap_or_else(|| vec![0.0; self.outputs]);
+                    for &v in &w {
+                        rules.leaf(&at, v)?;
+                    }
+                    return Ok(match self.only {
+                        Some(k) => Node::Leaf { value: w[k] },
+                        None => {
+                            vectors.extend_from_slice(&w);
+                            Node::Leaves { first: (vectors.len() - self.outputs) as u32 }
+                        }
+                    });
+                }
+                let (yes, no) = (raw_id(n.true_ids[i], &at)?, raw_id(n.false_ids[i], &at)?);
+                // GT and GTE are the other side of LEQ and LT.
+                let flipped = matches!(n.modes[i].as_str(), "BRANCH_GT" | "BRANCH_GTE");
+                let children = if flipped { (no, yes) } else { (yes, no) };
+                let missing_true = n.tracks_true[i] != 0;
+                let missing = if missing_true != flipped { Branch::Left } else { Branch::Right };
+                rules.split(&at, (n.feature_ids[i], n.values[i]), children, missing)
+            },
+            || blame.malformed(&format!("tree {t}"), "a node is reached twice: the children do not form a tree"),
+        )
+    }
 }
 
 fn task_text(task: Task) -> String {
@@ -706,40 +787,30 @@ fn finish(
     arithmetic: String,
     size: String,
 ) -> Result<Imported, ImportError> {
-    let names: Vec<String> = (0..g.features).map(|i| format!("x{i}")).collect();
-    let (outputs, about) = task.outputs(labels, linked);
-    let mut sources: Vec<Provenance> = names
-        .iter()
-        .map(|n| Provenance {
-            part: format!("feature {n}"),
-            from: format!(
-                "by position in the graph input `{}` (ONNX names no columns; name them in a manifest); {missing_text}",
+    let mut draft = ContractDraft::default();
+    for i in 0..g.features {
+        let feature = Feature::real(&format!("x{i}"), Bounds::OPEN);
+        draft.feature(
+            if optional { feature.optional() } else { feature },
+            format!(
+                "by position in the graph input `{}` (ONNX names no columns; name them in the overrides); {missing_text}",
                 g.input
             ),
-        })
-        .collect();
-    for (o, about) in outputs.iter().zip(&about) {
-        sources.push(Provenance { part: format!("output {}", o.name), from: format!("the model's {about}") });
+        );
     }
-    let feature =
-        |n: &String| if optional { Feature::real(n, Bounds::OPEN).optional() } else { Feature::real(n, Bounds::OPEN) };
-    Ok(Imported {
-        contract: Contract {
-            name: String::new(),
-            version: String::new(),
-            about: String::new(),
-            features: names.iter().map(feature).collect(),
-            outputs: outputs.into_iter().zip(about).map(|(o, about)| o.about(&about)).collect(),
-        },
-        estimator,
-        origin: Origin {
-            format: Format::SklearnOnnx.name().to_owned(),
-            file: g.blame.file.to_owned(),
-            toolkit: if g.producer.is_empty() { "(producer not recorded)".into() } else { g.producer.clone() },
-            task: task_line,
-            arithmetic,
-            estimator: size,
-            contract: sources,
-        },
-    })
+    let (outputs, about) = task.outputs(labels, linked);
+    for (o, about) in outputs.into_iter().zip(about) {
+        let from = format!("the model's {about}");
+        draft.output(o.about(&about), from);
+    }
+    let origin = Origin {
+        format: Format::SklearnOnnx.name().to_owned(),
+        file: g.blame.file.to_owned(),
+        toolkit: if g.producer.is_empty() { "(producer not recorded)".into() } else { g.producer.clone() },
+        task: task_line,
+        arithmetic,
+        estimator: size,
+        contract: Vec::new(),
+    };
+    Ok(draft.finish(estimator, origin))
 }

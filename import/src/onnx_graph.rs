@@ -8,19 +8,21 @@
 //! the guest parses both when the artifact loads, so a graph it cannot run
 //! is refused at `paddock pack` time with tract's reason.
 
-use serde_json::Value;
+use paddock_guest::GraphManifest;
 
 /// Why an ONNX model could not be framed as params.
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
 pub enum OnnxError {
-    /// The manifest is not TOML.
-    #[error("the manifest is not TOML: {0}")]
+    /// The manifest does not parse as a [`GraphManifest`]: not TOML, a
+    /// field missing, of the wrong kind, or unknown (the parser's message
+    /// names the line and the field).
+    #[error("the manifest does not parse: {0}")]
     NotToml(#[source] toml::de::Error),
-    /// A field is missing or of the wrong kind.
+    /// A field parses but cannot be served.
     #[error("manifest field `{field}`: {problem}")]
     Field {
-        /// The field (`name`, `features`, `outputs[2].column`…).
+        /// The field (`features`, `outputs`…).
         field: String,
         /// What is wrong.
         problem: String,
@@ -30,44 +32,34 @@ pub enum OnnxError {
     Empty,
 }
 
+/// Reads a graph manifest (TOML).
+///
+/// # Errors
+/// [`OnnxError::NotToml`] naming the line and field that does not parse
+/// (a missing `name`, an unknown field…); [`OnnxError::Field`] for an empty
+/// `features` or `outputs` list.
+pub fn read_manifest(toml_text: &str) -> Result<GraphManifest, OnnxError> {
+    let manifest: GraphManifest = toml::from_str(toml_text).map_err(OnnxError::NotToml)?;
+    for (list, empty) in [("features", manifest.features.is_empty()), ("outputs", manifest.outputs.is_empty())] {
+        if empty {
+            return Err(OnnxError::Field { field: list.into(), problem: "must not be empty".into() });
+        }
+    }
+    Ok(manifest)
+}
+
 /// The evaluator guest's params for an ONNX model: the manifest as JSON and
 /// the ONNX bytes, encoded as the guest SDK decodes params (bincode,
 /// standard configuration, of `(String, Vec<u8>)`).
 ///
 /// # Errors
-/// [`OnnxError::NotToml`] when the manifest does not parse;
-/// [`OnnxError::Field`] naming the first field that is missing or of the
-/// wrong kind (`name`, `version`, `features`, `outputs`, each feature's and
-/// output's `name`); [`OnnxError::Empty`] for empty ONNX bytes.
-pub fn params(manifest_toml: &str, onnx: &[u8]) -> Result<Vec<u8>, OnnxError> {
-    let manifest: Value = toml::from_str(manifest_toml).map_err(OnnxError::NotToml)?;
-    check(&manifest)?;
+/// [`OnnxError::Empty`] for empty ONNX bytes.
+pub fn params(manifest: &GraphManifest, onnx: &[u8]) -> Result<Vec<u8>, OnnxError> {
     if onnx.is_empty() {
         return Err(OnnxError::Empty);
     }
-    let json = serde_json::to_string(&manifest).expect("a JSON value serializes");
+    let json = serde_json::to_string(manifest).expect("a manifest serializes");
     Ok(bincode::serde::encode_to_vec((json, onnx), bincode::config::standard()).expect("a string and bytes encode"))
-}
-
-fn check(m: &Value) -> Result<(), OnnxError> {
-    let field = |field: &str, problem: &str| OnnxError::Field { field: field.into(), problem: problem.into() };
-    for key in ["name", "version"] {
-        if !m.get(key).is_some_and(Value::is_string) {
-            return Err(field(key, "required, a string"));
-        }
-    }
-    for list in ["features", "outputs"] {
-        let items = m.get(list).and_then(Value::as_array).ok_or_else(|| field(list, "required, a list of tables"))?;
-        if items.is_empty() {
-            return Err(field(list, "must not be empty"));
-        }
-        for (i, item) in items.iter().enumerate() {
-            if !item.get("name").is_some_and(Value::is_string) {
-                return Err(field(&format!("{list}[{i}].name"), "required, a string"));
-            }
-        }
-    }
-    Ok(())
 }
 
 #[cfg(test)]
@@ -85,22 +77,29 @@ name = "y"
 
     #[test]
     fn params_are_bincode_of_the_manifest_json_and_the_bytes() {
-        let p = params(GOOD, b"\x08\x07").unwrap();
+        let p = params(&read_manifest(GOOD).unwrap(), b"\x08\x07").unwrap();
         let ((json, onnx), used): ((String, Vec<u8>), usize) =
             bincode::serde::decode_from_slice(&p, bincode::config::standard()).unwrap();
         assert_eq!(used, p.len());
         assert_eq!(onnx, b"\x08\x07");
-        let v: Value = serde_json::from_str(&json).unwrap();
-        assert_eq!(v["features"][0]["name"], "x");
+        let back: GraphManifest = serde_json::from_str(&json).unwrap();
+        assert_eq!(back, read_manifest(GOOD).unwrap());
+        assert_eq!(back.features[0].name, "x");
+        assert!(back.features[0].required, "a feature is required unless the manifest says not");
     }
 
     #[test]
     fn a_bad_manifest_names_the_field() {
-        let e = params("name = \"m\"\n", b"x").unwrap_err();
-        assert_eq!(e.to_string(), "manifest field `version`: required, a string");
-        let e = params(&GOOD.replace("name = \"y\"", "unit = \"min\""), b"x").unwrap_err();
-        assert_eq!(e.to_string(), "manifest field `outputs[0].name`: required, a string");
-        assert!(matches!(params("name = ", b"x"), Err(OnnxError::NotToml(_))));
-        assert!(matches!(params(GOOD, b""), Err(OnnxError::Empty)));
+        let e = read_manifest("name = \"m\"\n").unwrap_err();
+        assert!(e.to_string().contains("missing field `version`"), "{e}");
+        let e = read_manifest(&GOOD.replace("name = \"y\"", "unit = \"min\"")).unwrap_err();
+        assert!(e.to_string().contains("missing field `name`"), "{e}");
+        let e = read_manifest(&GOOD.replace("name = \"y\"", "name = \"y\"\ncolumns = 2")).unwrap_err();
+        assert!(e.to_string().contains("unknown field `columns`"), "{e}");
+        let e =
+            read_manifest("name = \"m\"\nversion = \"1.0.0\"\noutputs = []\n[[features]]\nname = \"x\"\n").unwrap_err();
+        assert_eq!(e.to_string(), "manifest field `outputs`: must not be empty");
+        assert!(matches!(read_manifest("name = "), Err(OnnxError::NotToml(_))));
+        assert!(matches!(params(&read_manifest(GOOD).unwrap(), b""), Err(OnnxError::Empty)));
     }
 }

@@ -52,7 +52,7 @@ fn broken_xgboost_files_are_refused_naming_the_place() {
         ),
         (
             xgboost(&STUMP.replace("[0, 0, 0],\n  \"split_conditions", "[5, 0, 0],\n  \"split_conditions")),
-            "m: tree 0 node 0: feature 5 but the model has 2",
+            "m: tree 0 node 0: split on feature 5 but the model has 2 features",
         ),
         (
             xgboost(STUMP).replace("reg:squarederror", "survival:aft"),

@@ -15,12 +15,13 @@
 //! function XGBoost calls.
 
 use paddock_guest::{
-    Bounds, Branch, Combine, Contract, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
+    Bounds, Branch, Combine, Feature, Node, Output, OutputLink, Precision, SplitRule, Tree, TreesParams,
 };
 use serde_json::Value;
 
+use crate::ensemble::{ContractDraft, NodeRules, same_lengths};
 use crate::flatten::flatten;
-use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin, Provenance};
+use crate::{Blame, EstimatorParams, Format, ImportError, Imported, Origin};
 
 /// How an objective's margin becomes its outputs.
 #[derive(Clone, Copy, PartialEq)]
@@ -115,6 +116,45 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         Some(v) => v.iter().map(|n| n.to_string()).collect::<Vec<_>>().join("."),
         None => "(version not recorded)".to_owned(),
     };
+    let model = gbtree_model(&r, learner)?;
+    let head = Head::read(&r, learner)?;
+    let trees = read_trees(&r, model, &head)?;
+    let params = TreesParams {
+        features: head.features as u32,
+        base: head.base.clone(),
+        combine: Combine::Sum,
+        split: SplitRule::Less,
+        trees,
+        inputs: Precision::Single,
+        arithmetic: Precision::Single,
+        link: match head.task {
+            Task::Value | Task::Score => OutputLink::Identity,
+            Task::Probability => OutputLink::Logistic { scale: 1.0 },
+            Task::Exp => OutputLink::Exp,
+            Task::Classes => OutputLink::Softmax,
+        },
+        sets: Vec::new(),
+        vectors: Vec::new(),
+    };
+    let (outputs, task_text) = outputs(head.task, head.classes, &head.objective);
+    let mut draft = contract_features(&r, learner, head.features)?;
+    for o in outputs {
+        draft.output(o, format!("the objective {}", head.objective));
+    }
+    let origin = Origin {
+        format: Format::XgboostJson.name().to_owned(),
+        file: file.to_owned(),
+        toolkit: format!("XGBoost {version}"),
+        task: task_text,
+        arithmetic: "single precision as XGBoost computes: features, thresholds, leaves and sums in float32; left when x < split_condition; absent values their split's default way".to_owned(),
+        estimator: format!("{} trees", params.trees.len()),
+        contract: Vec::new(),
+    };
+    Ok(draft.finish(EstimatorParams::Trees(params), origin))
+}
+
+/// The booster's model, refusing boosters other than `gbtree`.
+fn gbtree_model<'v>(r: &Blame<'_>, learner: &'v Value) -> Result<&'v Value, ImportError> {
     let booster = r.get(learner, "learner", "gradient_booster")?;
     let booster_name = r.str(booster, "learner.gradient_booster", "name")?;
     if booster_name != "gbtree" {
@@ -127,47 +167,76 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         };
         return Err(r.unsupported("learner.gradient_booster.name", format!("booster `{booster_name}`"), instead));
     }
-    let model_path = "learner.gradient_booster.model";
-    let model = r.get(booster, "learner.gradient_booster", "model")?;
-    let param = r.get(learner, "learner", "learner_model_param")?;
-    let features = r.number_text(param, "learner.learner_model_param", "num_feature")?;
-    let num_class = r.number_text(param, "learner.learner_model_param", "num_class")?;
-    let num_target = param
-        .get("num_target")
-        .map(|_| r.number_text(param, "learner.learner_model_param", "num_target"))
-        .transpose()?;
-    if num_target.is_some_and(|t| t != 1.0) {
-        return Err(r.unsupported(
-            "learner.learner_model_param.num_target",
-            format!("a model with {} targets", num_target.unwrap_or(0.0)),
-            "train one model per target",
-        ));
-    }
-    if !(features.fract() == 0.0 && (0.0..=1e6).contains(&features)) {
-        return Err(
-            r.malformed("learner.learner_model_param.num_feature", format!("{features} is not a feature count"))
-        );
-    }
-    let features = features as usize;
-    let objective = r.str(r.get(learner, "learner", "objective")?, "learner.objective", "name")?;
-    let task = task_of(objective).ok_or_else(|| {
-        r.unsupported(
-            "learner.objective.name",
-            format!("objective `{objective}`"),
-            "use a regression (reg:squarederror, count:poisson, reg:gamma, reg:tweedie), binary (binary:logistic, binary:logitraw) or multi-class (multi:softprob) objective",
-        )
-    })?;
-    let classes = if task == Task::Classes {
-        if !(num_class.fract() == 0.0 && (2.0..=1e4).contains(&num_class)) {
+    r.get(booster, "learner.gradient_booster", "model")
+}
+
+/// What `learner_model_param` and the objective say: the shape of the
+/// model and how its margin starts and ends.
+struct Head {
+    features: usize,
+    objective: String,
+    task: Task,
+    classes: usize,
+    /// The base margin per output, in XGBoost's float32, widened.
+    base: Vec<f64>,
+}
+
+impl Head {
+    fn read(r: &Blame<'_>, learner: &Value) -> Result<Head, ImportError> {
+        let param = r.get(learner, "learner", "learner_model_param")?;
+        let features = r.number_text(param, "learner.learner_model_param", "num_feature")?;
+        let num_class = r.number_text(param, "learner.learner_model_param", "num_class")?;
+        let num_target = param
+            .get("num_target")
+            .map(|_| r.number_text(param, "learner.learner_model_param", "num_target"))
+            .transpose()?;
+        if num_target.is_some_and(|t| t != 1.0) {
+            return Err(r.unsupported(
+                "learner.learner_model_param.num_target",
+                format!("a model with {} targets", num_target.unwrap_or(0.0)),
+                "train one model per target",
+            ));
+        }
+        if !(features.fract() == 0.0 && (0.0..=1e6).contains(&features)) {
             return Err(
-                r.malformed("learner.learner_model_param.num_class", format!("{num_class} classes for {objective}"))
+                r.malformed("learner.learner_model_param.num_feature", format!("{features} is not a feature count"))
             );
         }
-        num_class as usize
-    } else {
-        1
-    };
-    let base_text = r.str(param, "learner.learner_model_param", "base_score")?;
+        let objective = r.str(r.get(learner, "learner", "objective")?, "learner.objective", "name")?;
+        let task = task_of(objective).ok_or_else(|| {
+            r.unsupported(
+                "learner.objective.name",
+                format!("objective `{objective}`"),
+                "use a regression (reg:squarederror, count:poisson, reg:gamma, reg:tweedie), binary (binary:logistic, binary:logitraw) or multi-class (multi:softprob) objective",
+            )
+        })?;
+        let classes = if task == Task::Classes {
+            if !(num_class.fract() == 0.0 && (2.0..=1e4).contains(&num_class)) {
+                return Err(r.malformed(
+                    "learner.learner_model_param.num_class",
+                    format!("{num_class} classes for {objective}"),
+                ));
+            }
+            num_class as usize
+        } else {
+            1
+        };
+        let base =
+            base_margins(r, r.str(param, "learner.learner_model_param", "base_score")?, task, classes, objective)?;
+        Ok(Head { features: features as usize, objective: objective.to_owned(), task, classes, base })
+    }
+}
+
+/// The base margin of each output from `base_score` (one number, or one
+/// per class), as XGBoost computes it at load.
+fn base_margins(
+    r: &Blame<'_>,
+    base_text: &str,
+    task: Task,
+    classes: usize,
+    objective: &str,
+) -> Result<Vec<f64>, ImportError> {
+    let place = "learner.learner_model_param.base_score";
     let base_scores: Vec<f32> = base_text
         .trim()
         .trim_start_matches('[')
@@ -175,88 +244,62 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         .split(',')
         .map(|t| t.trim().parse::<f32>())
         .collect::<Result<_, _>>()
-        .map_err(|_| {
-            r.malformed(
-                "learner.learner_model_param.base_score",
-                format!("`{base_text}` is not a number or a list of numbers"),
-            )
-        })?;
+        .map_err(|_| r.malformed(place, format!("`{base_text}` is not a number or a list of numbers")))?;
     let base_scores = match (base_scores.len(), classes) {
         (1, k) => vec![base_scores[0]; k],
         (n, k) if n == k => base_scores,
-        (n, k) => {
-            return Err(r.malformed("learner.learner_model_param.base_score", format!("{n} values for {k} outputs")));
-        }
+        (n, k) => return Err(r.malformed(place, format!("{n} values for {k} outputs"))),
     };
     let mut base = Vec::with_capacity(classes);
     for p in base_scores {
         base.push(f64::from(match task {
             Task::Probability => {
                 if !(p > 0.0 && p < 1.0) {
-                    return Err(r.malformed(
-                        "learner.learner_model_param.base_score",
-                        format!("{p} is not a probability for {objective}"),
-                    ));
+                    return Err(r.malformed(place, format!("{p} is not a probability for {objective}")));
                 }
                 -(1.0f32 / p - 1.0f32).ln()
             }
             Task::Exp => {
                 if p.is_nan() || p <= 0.0 {
-                    return Err(r.malformed(
-                        "learner.learner_model_param.base_score",
-                        format!("{p} must be positive for {objective}"),
-                    ));
+                    return Err(r.malformed(place, format!("{p} must be positive for {objective}")));
                 }
                 p.ln()
             }
             Task::Value | Task::Score | Task::Classes => p,
         }));
     }
-    let names = feature_names(&r, learner, features)?;
-    let types = feature_types(&r, learner, features)?;
+    Ok(base)
+}
+
+/// Every tree, each feeding the class `tree_info` names.
+fn read_trees(r: &Blame<'_>, model: &Value, head: &Head) -> Result<Vec<Tree>, ImportError> {
+    let model_path = "learner.gradient_booster.model";
     let trees_json = r.array(model, model_path, "trees")?;
     let tree_info = r.ints(model, model_path, "tree_info")?;
-    if tree_info.len() != trees_json.len() {
-        return Err(r.malformed(
-            &format!("{model_path}.tree_info"),
-            format!("{} entries for {} trees", tree_info.len(), trees_json.len()),
-        ));
-    }
+    same_lengths(r, model_path, ("trees", trees_json.len()), &[("tree_info", tree_info.len())])?;
     let mut trees = Vec::with_capacity(trees_json.len());
     for (t, (tree, &class)) in trees_json.iter().zip(&tree_info).enumerate() {
-        if class < 0 || class as usize >= classes {
+        if class < 0 || class as usize >= head.classes {
             return Err(r.malformed(
                 &format!("{model_path}.tree_info[{t}]"),
-                format!("class {class} but the model has {classes} outputs"),
+                format!("class {class} but the model has {} outputs", head.classes),
             ));
         }
-        trees.push(Tree { output: class as u32, nodes: read_tree(&r, tree, t, features)? });
+        trees.push(Tree { output: class as u32, nodes: read_tree(r, tree, t, head.features)? });
     }
-    let params = TreesParams {
-        features: features as u32,
-        base,
-        combine: Combine::Sum,
-        split: SplitRule::Less,
-        trees,
-        inputs: Precision::Single,
-        arithmetic: Precision::Single,
-        link: match task {
-            Task::Value | Task::Score => OutputLink::Identity,
-            Task::Probability => OutputLink::Logistic { scale: 1.0 },
-            Task::Exp => OutputLink::Exp,
-            Task::Classes => OutputLink::Softmax,
-        },
-        sets: Vec::new(),
-        vectors: Vec::new(),
-    };
-    let (outputs, task_text) = outputs(task, classes, objective);
-    let mut contract_sources = Vec::new();
+    Ok(trees)
+}
+
+/// The features: names from `feature_names`, domains from `feature_types`.
+fn contract_features(r: &Blame<'_>, learner: &Value, features: usize) -> Result<ContractDraft, ImportError> {
+    let names = feature_names(r, learner, features)?;
+    let types = feature_types(r, learner, features)?;
     let named_from = if learner.get("feature_names").and_then(Value::as_array).is_some_and(|a| !a.is_empty()) {
         "name from feature_names in the file"
     } else {
         "name by position, as XGBoost names unnamed features (feature_names is empty)"
     };
-    let mut contract_features = Vec::with_capacity(features);
+    let mut draft = ContractDraft::default();
     for (name, kind) in names.iter().zip(&types) {
         let (feature, domain_from) = match kind.as_str() {
             "int" | "i" => (Feature::whole(name, Bounds::OPEN), "whole number from feature_types (int)"),
@@ -267,36 +310,12 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
                 if other == "float" || other == "q" { "real number from feature_types" } else { "real number" },
             ),
         };
-        contract_sources.push(Provenance {
-            part: format!("feature {name}"),
-            from: format!("{named_from}; {domain_from}; optional by default: XGBoost sends an absent value its split's default way"),
-        });
-        contract_features.push(feature.optional());
+        draft.feature(
+            feature.optional(),
+            format!("{named_from}; {domain_from}; optional by default: XGBoost sends an absent value its split's default way"),
+        );
     }
-    for o in &outputs {
-        contract_sources
-            .push(Provenance { part: format!("output {}", o.name), from: format!("the objective {objective}") });
-    }
-    let origin = Origin {
-        format: Format::XgboostJson.name().to_owned(),
-        file: file.to_owned(),
-        toolkit: format!("XGBoost {version}"),
-        task: task_text,
-        arithmetic: "single precision as XGBoost computes: features, thresholds, leaves and sums in float32; left when x < split_condition; absent values their split's default way".to_owned(),
-        estimator: format!("{} trees", params.trees.len()),
-        contract: contract_sources,
-    };
-    Ok(Imported {
-        contract: Contract {
-            name: String::new(),
-            version: String::new(),
-            about: String::new(),
-            features: contract_features,
-            outputs,
-        },
-        estimator: EstimatorParams::Trees(params),
-        origin,
-    })
+    Ok(draft)
 }
 
 fn outputs(task: Task, classes: usize, objective: &str) -> (Vec<Output>, String) {
@@ -381,22 +400,23 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
         Some(_) => r.ints(tree, &path, "split_type")?,
         None => vec![0; left.len()],
     };
-    let n = left.len();
-    for (key, len) in [
-        ("right_children", right.len()),
-        ("split_indices", index.len()),
-        ("split_conditions", cond.len()),
-        ("default_left", default_left.len()),
-        ("split_type", split_type.len()),
-    ] {
-        if len != n {
-            return Err(r.malformed(&format!("{path}.{key}"), format!("{len} entries but left_children has {n}")));
-        }
-    }
+    let n = same_lengths(
+        r,
+        &path,
+        ("left_children", left.len()),
+        &[
+            ("right_children", right.len()),
+            ("split_indices", index.len()),
+            ("split_conditions", cond.len()),
+            ("default_left", default_left.len()),
+            ("split_type", split_type.len()),
+        ],
+    )?;
     if n == 0 {
         return Err(r.malformed(&path, "a tree with no nodes"));
     }
     let cycle = || r.malformed(&path, "a node is reached twice: the children do not form a tree");
+    let rules = NodeRules { blame: r, features };
     flatten(
         0,
         n,
@@ -407,11 +427,7 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
                 return Err(r.malformed(&path, format!("a child points at node {i} but the tree has {n}")));
             }
             if left[i] == -1 {
-                let value = cond[i];
-                if !value.is_finite() {
-                    return Err(r.malformed(&place, format!("leaf value {value}")));
-                }
-                return Ok(Node::Leaf { value: f64::from(value) });
+                return rules.leaf(&place, f64::from(cond[i]));
             }
             if split_type[i] != 0 {
                 return Err(r.unsupported(
@@ -426,20 +442,8 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
                 }
                 Ok(c as u32)
             };
-            let feature = index[i];
-            if feature < 0 || feature as usize >= features {
-                return Err(r.malformed(&place, format!("feature {feature} but the model has {features}")));
-            }
-            if cond[i].is_nan() {
-                return Err(r.malformed(&place, "split condition is NaN"));
-            }
-            Ok(Node::Split {
-                feature: feature as u32,
-                threshold: f64::from(cond[i]),
-                left: child(left[i])?,
-                right: child(right[i])?,
-                missing: if default_left[i] != 0 { Branch::Left } else { Branch::Right },
-            })
+            let missing = if default_left[i] != 0 { Branch::Left } else { Branch::Right };
+            rules.split(&place, (index[i], f64::from(cond[i])), (child(left[i])?, child(right[i])?), missing)
         },
         cycle,
     )

@@ -40,7 +40,8 @@ fn export(name: &str) -> Value {
 fn onnx(name: &str) -> Artifact {
     let dir = root().join("target/paddock/sklearn");
     let read = |ext: &str| std::fs::read(dir.join(format!("{name}.{ext}"))).unwrap();
-    let params = paddock_import::onnx_graph::params(&String::from_utf8(read("toml")).unwrap(), &read("onnx")).unwrap();
+    let manifest = paddock_import::onnx_graph::read_manifest(&String::from_utf8(read("toml")).unwrap()).unwrap();
+    let params = paddock_import::onnx_graph::params(&manifest, &read("onnx")).unwrap();
     packed(&guest("paddock-model-onnx"), &params, None)
 }
 

@@ -124,7 +124,7 @@ HIST = dict(max_iter=60, max_leaf_nodes=15, learning_rate=0.1, random_state=0)
 x, y, names = data(load_diabetes, holes=(2, 5))
 hand_off(HistGradientBoostingRegressor(**HIST).fit(x, y), x, os.path.join(OUT, "skl-diabetes-hist"))
 x, y, names = data(load_diabetes)
-# Named columns: the helper writes a manifest naming the ONNX file's x0, x1…
+# Named columns: the helper writes overrides naming the ONNX file's x0, x1…
 hand_off(LinearRegression().fit(x, y), x, os.path.join(OUT, "skl-diabetes-linear"), names=names)
 hand_off(Ridge(alpha=0.5).fit(x, y), x, os.path.join(OUT, "skl-diabetes-ridge"))
 

@@ -1,11 +1,17 @@
 //! Running an artifact's checks against a loaded model: every case's row
 //! through the contract and the sandbox, every output against its recorded
-//! value and the tolerance. The checks format is [`crate::artifact::checks`].
+//! value and the tolerance ([`run`]); and packing an artifact that is
+//! written only once it loads and passes its checks ([`pack_verified`]).
+//! The checks format is [`crate::artifact::checks`].
+
+use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
 use crate::artifact::checks::{Checks, Tolerance};
-use crate::sandbox::model::{Model, ScoreError};
+use crate::artifact::{Artifact, ArtifactError, pack_imported};
+use crate::sandbox::Runtime;
+use crate::sandbox::model::{LoadError, Model, ModelOptions, ScoreError};
 
 /// Why one case failed.
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -70,6 +76,121 @@ impl CheckReport {
     pub fn ok(&self) -> bool {
         self.failures.is_empty() && self.passed == self.cases
     }
+}
+
+/// What goes into an artifact (see [`pack_imported`]).
+#[derive(Clone, Copy, Debug, Default)]
+pub struct Parts<'a> {
+    /// A component, a core module built for `wasm32-unknown-unknown`, or WebAssembly text.
+    pub wasm: &'a [u8],
+    /// The parameter blob the model decodes in `init`.
+    pub params: Option<&'a [u8]>,
+    /// The checks it carries.
+    pub checks: Option<&'a Checks>,
+    /// An importer's record of where the model came from.
+    pub origin: Option<&'a serde_json::Map<String, serde_json::Value>>,
+}
+
+/// What [`pack_verified`] wrote and found.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Packed {
+    /// Where the artifact was written.
+    pub artifact: PathBuf,
+    /// Its digest (`sha256:…`).
+    pub digest: String,
+    /// Its size in bytes.
+    pub bytes: usize,
+    /// The model's name and version, when it was loaded.
+    pub model: Option<String>,
+    /// Its checks' report, when it carries checks and was loaded.
+    pub checks: Option<CheckReport>,
+}
+
+/// Why [`pack_verified`] wrote nothing.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum PackError {
+    /// The parts do not make an artifact.
+    #[error(transparent)]
+    Pack(ArtifactError),
+    /// The packed artifact does not load.
+    #[error("{} was not written: the packed artifact does not load: {source}", path.display())]
+    Load {
+        /// Where it was to be written.
+        path: PathBuf,
+        /// Why it does not load.
+        source: LoadError,
+    },
+    /// Its checks could not be scored at all (a trap or a limit hit).
+    #[error("{} was not written: {source}", path.display())]
+    Score {
+        /// Where it was to be written.
+        path: PathBuf,
+        /// What the model did.
+        source: ScoreError,
+    },
+    /// Some of its checks fail.
+    #[error("{} was not written: {} of {} checks fail{}", path.display(), .report.cases - .report.passed, .report.cases,
+        .report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default())]
+    ChecksFail {
+        /// Where it was to be written.
+        path: PathBuf,
+        /// The report.
+        report: Box<CheckReport>,
+    },
+    /// The file could not be written.
+    #[error("writing {}: {source}", path.display())]
+    Write {
+        /// The file.
+        path: PathBuf,
+        /// What the system said.
+        source: std::io::Error,
+    },
+}
+
+/// Packs `parts` into an artifact and, unless `verify` is `None`, loads it
+/// with that runtime and those options and runs the checks it carries;
+/// only then writes it to `out` (atomically, creating `out`'s directory).
+/// A broken artifact is never left where it could be signed or served.
+///
+/// # Errors
+/// [`PackError::Pack`] when the parts do not make an artifact,
+/// [`PackError::Load`] when it does not load, [`PackError::Score`] /
+/// [`PackError::ChecksFail`] when its checks cannot run or fail,
+/// [`PackError::Write`] when the file cannot be written. Nothing is written
+/// in any of these cases.
+pub fn pack_verified(
+    out: &Path,
+    parts: Parts<'_>,
+    verify: Option<(&Runtime, ModelOptions)>,
+) -> Result<Packed, PackError> {
+    let bytes = pack_imported(parts.wasm, parts.params, parts.checks, parts.origin).map_err(PackError::Pack)?;
+    let artifact = Artifact::from_bytes(bytes, u64::MAX).map_err(PackError::Pack)?;
+    let mut packed = Packed {
+        artifact: out.to_owned(),
+        digest: artifact.digest().to_string(),
+        bytes: artifact.bytes().len(),
+        model: None,
+        checks: None,
+    };
+    let path = || out.to_owned();
+    if let Some((runtime, options)) = verify {
+        let model = Model::load_with(runtime, artifact.clone(), options)
+            .map_err(|source| PackError::Load { path: path(), source })?;
+        packed.model = Some(format!("{} {}", model.contract().name, model.contract().version));
+        if let Some(checks) = parts.checks {
+            let report = run(&model, checks).map_err(|source| PackError::Score { path: path(), source })?;
+            if !report.ok() {
+                return Err(PackError::ChecksFail { path: path(), report: Box::new(report) });
+            }
+            packed.checks = Some(report);
+        }
+    }
+    if let Some(dir) = out.parent().filter(|d| !d.as_os_str().is_empty()) {
+        std::fs::create_dir_all(dir).map_err(|source| PackError::Write { path: dir.to_owned(), source })?;
+    }
+    crate::atomic_file::write(out, artifact.bytes()).map_err(|source| PackError::Write { path: path(), source })?;
+    Ok(packed)
 }
 
 /// Runs checks against a model.

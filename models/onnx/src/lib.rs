@@ -9,107 +9,11 @@
 //! refused at load with tract's message.
 
 use paddock_guest::ndarray::{ArrayView2, ArrayViewMut2};
-use paddock_guest::{Bounds, Contract, Domain, DomainSpec, Estimator, Fault, Feature, Output};
-use serde::Deserialize;
+use paddock_guest::{Contract, Estimator, Fault, GraphManifest};
 use std::sync::Arc;
 
 use tract_onnx::prelude::*;
 use tract_onnx::tract_hir::infer::Factoid;
-
-/// The manifest: the contract, in the manifest's own spelling, plus the
-/// graph's input and outputs.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Manifest {
-    /// Model name.
-    pub name: String,
-    /// Model version (semver).
-    pub version: String,
-    /// What the model estimates and for whom.
-    #[serde(default)]
-    pub about: String,
-    /// The graph input the rows go to; default its first input.
-    #[serde(default)]
-    pub input: Option<String>,
-    /// Features, in the column order of the graph input.
-    pub features: Vec<FeatureSpec>,
-    /// Outputs, each one column of one graph output.
-    pub outputs: Vec<OutputSpec>,
-}
-
-/// A feature in the manifest.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct FeatureSpec {
-    name: String,
-    #[serde(default)]
-    domain: DomainSpec,
-    #[serde(default)]
-    unit: Option<String>,
-    #[serde(default = "yes")]
-    required: bool,
-    #[serde(default)]
-    about: String,
-}
-
-fn yes() -> bool {
-    true
-}
-
-/// An output in the manifest.
-#[derive(Debug, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct OutputSpec {
-    name: String,
-    /// The graph output it reads; default the first.
-    #[serde(default)]
-    tensor: Option<String>,
-    /// The column of that output (its last axis); default 0.
-    #[serde(default)]
-    column: usize,
-    #[serde(default)]
-    unit: Option<String>,
-    #[serde(default)]
-    min: Option<f64>,
-    #[serde(default)]
-    max: Option<f64>,
-    #[serde(default)]
-    about: String,
-}
-
-impl Manifest {
-    /// The contract the manifest declares.
-    pub fn contract(&self) -> Contract {
-        let features = self
-            .features
-            .iter()
-            .map(|f| Feature {
-                name: f.name.clone(),
-                domain: Domain::from(&f.domain),
-                unit: f.unit.clone(),
-                required: f.required,
-                about: f.about.clone(),
-            })
-            .collect();
-        let outputs = self
-            .outputs
-            .iter()
-            .map(|o| Output {
-                name: o.name.clone(),
-                unit: o.unit.clone(),
-                bounds: Bounds { min: o.min, max: o.max },
-                about: o.about.clone(),
-            })
-            .collect();
-        Contract {
-            name: self.name.clone(),
-            version: self.version.clone(),
-            features,
-            outputs,
-            about: self.about.clone(),
-        }
-    }
-}
 
 /// The params: the manifest as JSON, and the ONNX bytes.
 pub type Params = (String, Vec<u8>);
@@ -136,7 +40,7 @@ impl Onnx {
     /// A message naming the manifest field, the graph input or output, or
     /// tract's reason (an operator it does not implement, a bad graph).
     pub fn new((manifest, onnx): Params) -> Result<Self, String> {
-        let manifest: Manifest = serde_json::from_str(&manifest).map_err(|e| format!("manifest: {e}"))?;
+        let manifest: GraphManifest = serde_json::from_str(&manifest).map_err(|e| format!("manifest: {e}"))?;
         let contract = manifest.contract();
         let mut model =
             tract_onnx::onnx().model_for_read(&mut &onnx[..]).map_err(fail("the ONNX model does not load"))?;

@@ -1,7 +1,11 @@
-//! The manifest of overrides (TOML, optional): a model's name, version and
-//! description, and for any feature or output the file declares — keyed by
-//! its name in the file — a new name, domain, unit, required-ness, bounds
-//! or description.
+//! The overrides file (TOML, optional; `paddock pack --overrides`): a model's
+//! name, version and description, and for any feature or output the file
+//! declares — keyed by its name in the file — a new name, domain, unit,
+//! required-ness, bounds or description.
+//!
+//! Not the ONNX graph manifest ([`paddock_guest::GraphManifest`]), which
+//! declares a whole contract; overrides only change what a toolkit's file
+//! already declares.
 //!
 //! ```toml
 //! name = "charge-minutes"
@@ -27,10 +31,10 @@ use serde::Deserialize;
 
 use crate::{ImportError, Imported};
 
-/// Overrides for an imported model's contract.
+/// Changes to the contract an imported model's file declares.
 #[derive(Clone, Debug, Default, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
-pub struct Manifest {
+pub struct Overrides {
     /// The model's name (default: the file's name without its extension).
     #[serde(default)]
     pub name: Option<String>,
@@ -48,7 +52,7 @@ pub struct Manifest {
     pub outputs: BTreeMap<String, OutputOverride>,
 }
 
-/// What a manifest may change about a feature.
+/// What the overrides may change about a feature.
 #[derive(Clone, Debug, Default, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct FeatureOverride {
@@ -70,7 +74,7 @@ pub struct FeatureOverride {
     pub about: Option<String>,
 }
 
-/// What a manifest may change about an output.
+/// What the overrides may change about an output.
 #[derive(Clone, Debug, Default, PartialEq, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct OutputOverride {
@@ -91,51 +95,51 @@ pub struct OutputOverride {
     pub about: Option<String>,
 }
 
-impl Manifest {
-    /// Parses a manifest.
+impl Overrides {
+    /// Parses an overrides file.
     ///
     /// # Errors
-    /// [`ImportError::Manifest`] with the TOML parser's message (line, column, field).
-    pub fn from_toml(text: &str) -> Result<Manifest, ImportError> {
-        toml::from_str(text).map_err(|e| ImportError::Manifest { field: "(file)".into(), problem: e.to_string() })
+    /// [`ImportError::Overrides`] with the TOML parser's message (line, column, field).
+    pub fn from_toml(text: &str) -> Result<Overrides, ImportError> {
+        toml::from_str(text).map_err(|e| ImportError::Overrides { field: "(file)".into(), problem: e.to_string() })
     }
 }
 
 /// Applies the overrides and the defaults of name and version.
-pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: &str) -> Result<(), ImportError> {
-    let empty = Manifest::default();
-    let m = manifest.unwrap_or(&empty);
+pub(crate) fn apply(imported: &mut Imported, overrides: Option<&Overrides>, stem: &str) -> Result<(), ImportError> {
+    let empty = Overrides::default();
+    let m = overrides.unwrap_or(&empty);
     let contract = &mut imported.contract;
     let origin = &mut imported.origin;
-    let from_manifest = "the manifest";
+    let from_overrides = "the overrides";
     match &m.name {
         Some(name) => {
             contract.name = name.clone();
-            origin.note("name", from_manifest);
+            origin.note("name", from_overrides);
         }
         None => {
             contract.name = stem.to_owned();
-            origin.note("name", "the file's name (set `name` in a manifest to change it)");
+            origin.note("name", "the file's name (set `name` in the overrides to change it)");
         }
     }
     match &m.version {
         Some(version) => {
             contract.version = version.clone();
-            origin.note("version", from_manifest);
+            origin.note("version", from_overrides);
         }
         None => {
             contract.version = "0.0.0".into();
-            origin.note("version", "not given: 0.0.0 (set `version` in a manifest)");
+            origin.note("version", "not given: 0.0.0 (set `version` in the overrides)");
         }
     }
     if let Some(about) = &m.about {
         contract.about = about.clone();
-        origin.note("about", from_manifest);
+        origin.note("about", from_overrides);
     }
     let names: Vec<String> = contract.features.iter().map(|f| f.name.clone()).collect();
     for (key, o) in &m.features {
         let Some(f) = contract.features.iter_mut().find(|f| &f.name == key) else {
-            return Err(ImportError::Manifest {
+            return Err(ImportError::Overrides {
                 field: format!("features.{key}"),
                 problem: format!("the file has no feature `{key}`; it has {}", names.join(", ")),
             });
@@ -162,7 +166,7 @@ pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: 
             f.name = name.clone();
             changed.push("name");
         }
-        origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
+        origin.note(&part, &format!("{} from the overrides", changed.join(", ")));
         if let Some(name) = &o.name
             && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part)
         {
@@ -174,7 +178,7 @@ pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: 
     let outputs: Vec<String> = contract.outputs.iter().map(|o| o.name.clone()).collect();
     for (key, o) in &m.outputs {
         let Some(out) = contract.outputs.iter_mut().find(|x| &x.name == key) else {
-            return Err(ImportError::Manifest {
+            return Err(ImportError::Overrides {
                 field: format!("outputs.{key}"),
                 problem: format!("the model has no output `{key}`; it has {}", outputs.join(", ")),
             });
@@ -198,7 +202,7 @@ pub(crate) fn apply(imported: &mut Imported, manifest: Option<&Manifest>, stem: 
             out.name = name.clone();
             changed.push("name");
         }
-        origin.note(&part, &format!("{} from the manifest", changed.join(", ")));
+        origin.note(&part, &format!("{} from the overrides", changed.join(", ")));
         if let Some(name) = &o.name
             && let Some(s) = origin.contract.iter_mut().find(|s| s.part == part)
         {
