@@ -247,123 +247,54 @@ impl Trees {
     /// link is softmax over one output, or a number is not finite. The
     /// message names tree and node.
     pub fn new(params: TreesParams) -> Result<Self, String> {
+        validate(&params)?;
+        Ok(Trees::flatten(params))
+    }
+
+    /// Lays valid params out for evaluation: every tree's nodes in one
+    /// array (children as absolute indices, leaves pointing at themselves),
+    /// every set's words in another, and the number of trees per output.
+    fn flatten(params: TreesParams) -> Trees {
         let outputs = params.base.len();
-        if outputs == 0 {
-            return Err("tree params: empty base (at least one output is needed)".into());
-        }
-        if let Some(bad) = params.base.iter().find(|v| !v.is_finite()) {
-            return Err(format!("tree params: non-finite base score {bad}"));
-        }
-        match params.link {
-            OutputLink::Softmax if outputs < 2 => {
-                return Err("tree params: softmax needs at least two outputs".into());
-            }
-            OutputLink::Logistic { scale } if !scale.is_finite() => {
-                return Err(format!("tree params: non-finite logistic scale {scale}"));
-            }
-            _ => {}
-        }
-        if let Some(bad) = params.vectors.iter().find(|v| !v.is_finite()) {
-            return Err(format!("tree params: non-finite leaf value {bad} in vectors"));
-        }
         let mut set_at = Vec::with_capacity(params.sets.len());
         let mut words = Vec::new();
-        for (s, set) in params.sets.iter().enumerate() {
-            if set.len() > usize::from(u16::MAX) {
-                return Err(format!("tree params: set {s} has {} words (at most {})", set.len(), u16::MAX));
-            }
+        for set in &params.sets {
             set_at.push((words.len() as u32, set.len() as u16));
             words.extend_from_slice(set);
         }
         let mut nodes = Vec::with_capacity(params.trees.iter().map(|t| t.nodes.len()).sum());
         let mut roots = Vec::with_capacity(params.trees.len());
         let mut counts = vec![0.0f64; outputs];
-        for (t, tree) in params.trees.iter().enumerate() {
-            let output = tree.output as usize;
-            if output >= outputs {
-                return Err(format!("tree {t}: output {output} but only {outputs} outputs"));
-            }
-            if tree.nodes.is_empty() {
-                return Err(format!("tree {t}: no nodes"));
-            }
-            let offset = nodes.len();
+        let side = |missing: Branch, members: Branch| {
+            u8::from(missing == Branch::Left) | (u8::from(members == Branch::Left) << 1)
+        };
+        for tree in &params.trees {
+            let (offset, output) = (nodes.len(), tree.output as usize);
             roots.push((offset, output));
-            let len = tree.nodes.len();
-            let (mut scalar, mut vector) = (false, false);
-            let child = |i: usize, child: u32| {
-                let c = child as usize;
-                if c <= i || c >= len {
-                    return Err(format!(
-                        "tree {t} node {i}: child {child} must come after the node and within the {len} nodes"
-                    ));
-                }
-                Ok((offset + c) as u32)
-            };
-            let feature_ok = |i: usize, feature: u32| {
-                if feature >= params.features {
-                    return Err(format!("tree {t} node {i}: feature {feature} but rows have {}", params.features));
-                }
-                Ok(feature)
-            };
-            let side = |missing: Branch, members: Branch| {
-                u8::from(missing == Branch::Left) | (u8::from(members == Branch::Left) << 1)
-            };
-            for (i, node) in tree.nodes.iter().enumerate() {
-                let blank = Flat {
-                    threshold: 0.0,
-                    feature: 0,
-                    left: 0,
-                    right: 0,
-                    start: 0,
-                    words: 0,
-                    kind: LEAF,
-                    goes_left: 0,
-                };
+            let at = |child: u32| (offset + child as usize) as u32;
+            let blank =
+                Flat { threshold: 0.0, feature: 0, left: 0, right: 0, start: 0, words: 0, kind: LEAF, goes_left: 0 };
+            for node in &tree.nodes {
+                let me = nodes.len() as u32;
                 nodes.push(match *node {
-                    Node::Leaf { value } => {
-                        if !value.is_finite() {
-                            return Err(format!("tree {t} node {i}: non-finite leaf {value}"));
-                        }
-                        scalar = true;
-                        let me = nodes.len() as u32;
-                        Flat { threshold: value, left: me, right: me, ..blank }
-                    }
-                    Node::Leaves { first } => {
-                        if first as usize + outputs > params.vectors.len() {
-                            return Err(format!(
-                                "tree {t} node {i}: leaf values {first}..{} but vectors has {}",
-                                first as usize + outputs,
-                                params.vectors.len()
-                            ));
-                        }
-                        vector = true;
-                        let me = nodes.len() as u32;
-                        Flat { left: me, right: me, start: first, kind: LEAVES, ..blank }
-                    }
+                    Node::Leaf { value } => Flat { threshold: value, left: me, right: me, ..blank },
+                    Node::Leaves { first } => Flat { left: me, right: me, start: first, kind: LEAVES, ..blank },
                     Node::Split { feature, threshold, left, right, missing }
-                    | Node::SplitZeroAbsent { feature, threshold, left, right, missing } => {
-                        if threshold.is_nan() {
-                            return Err(format!("tree {t} node {i}: threshold is NaN"));
-                        }
-                        let kind = if matches!(node, Node::Split { .. }) { NUMERIC } else { ZERO_ABSENT };
-                        Flat {
-                            threshold,
-                            feature: feature_ok(i, feature)?,
-                            left: child(i, left)?,
-                            right: child(i, right)?,
-                            kind,
-                            goes_left: side(missing, Branch::Right),
-                            ..blank
-                        }
-                    }
+                    | Node::SplitZeroAbsent { feature, threshold, left, right, missing } => Flat {
+                        threshold,
+                        feature,
+                        left: at(left),
+                        right: at(right),
+                        kind: if matches!(node, Node::Split { .. }) { NUMERIC } else { ZERO_ABSENT },
+                        goes_left: side(missing, Branch::Right),
+                        ..blank
+                    },
                     Node::Member { feature, set, left, right, missing, members } => {
-                        let &(start, words) = set_at
-                            .get(set as usize)
-                            .ok_or_else(|| format!("tree {t} node {i}: set {set} but there are {}", set_at.len()))?;
+                        let (start, words) = set_at[set as usize];
                         Flat {
-                            feature: feature_ok(i, feature)?,
-                            left: child(i, left)?,
-                            right: child(i, right)?,
+                            feature,
+                            left: at(left),
+                            right: at(right),
                             start,
                             words,
                             kind: MEMBER,
@@ -373,16 +304,13 @@ impl Trees {
                     }
                 });
             }
-            if scalar && vector {
-                return Err(format!("tree {t}: mixes single-value and per-output leaves"));
-            }
-            if vector {
+            if tree.nodes.iter().any(|n| matches!(n, Node::Leaves { .. })) {
                 counts.iter_mut().for_each(|c| *c += 1.0);
             } else {
                 counts[output] += 1.0;
             }
         }
-        Ok(Trees {
+        Trees {
             features: params.features as usize,
             base: params.base,
             combine: params.combine,
@@ -395,7 +323,7 @@ impl Trees {
             words,
             vectors: params.vectors,
             counts,
-        })
+        }
     }
 
     /// The leaf one tree sends a row to.
@@ -535,6 +463,104 @@ impl Trees {
                     *v = f64::from(*v as f32 / sum as f32);
                 }
             }
+        }
+    }
+}
+
+/// Checks tree params: everything [`Trees::new`] documents, so that
+/// [`Trees::flatten`] cannot fail and evaluation never indexes out of range.
+fn validate(params: &TreesParams) -> Result<(), String> {
+    let outputs = params.base.len();
+    if outputs == 0 {
+        return Err("tree params: empty base (at least one output is needed)".into());
+    }
+    if let Some(bad) = params.base.iter().find(|v| !v.is_finite()) {
+        return Err(format!("tree params: non-finite base score {bad}"));
+    }
+    match params.link {
+        OutputLink::Softmax if outputs < 2 => return Err("tree params: softmax needs at least two outputs".into()),
+        OutputLink::Logistic { scale } if !scale.is_finite() => {
+            return Err(format!("tree params: non-finite logistic scale {scale}"));
+        }
+        _ => {}
+    }
+    if let Some(bad) = params.vectors.iter().find(|v| !v.is_finite()) {
+        return Err(format!("tree params: non-finite leaf value {bad} in vectors"));
+    }
+    for (s, set) in params.sets.iter().enumerate() {
+        if set.len() > usize::from(u16::MAX) {
+            return Err(format!("tree params: set {s} has {} words (at most {})", set.len(), u16::MAX));
+        }
+    }
+    for (t, tree) in params.trees.iter().enumerate() {
+        let output = tree.output as usize;
+        if output >= outputs {
+            return Err(format!("tree {t}: output {output} but only {outputs} outputs"));
+        }
+        if tree.nodes.is_empty() {
+            return Err(format!("tree {t}: no nodes"));
+        }
+        let (mut scalar, mut vector) = (false, false);
+        for (i, node) in tree.nodes.iter().enumerate() {
+            validate_node(params, (t, i), tree.nodes.len(), node)?;
+            scalar |= matches!(node, Node::Leaf { .. });
+            vector |= matches!(node, Node::Leaves { .. });
+        }
+        if scalar && vector {
+            return Err(format!("tree {t}: mixes single-value and per-output leaves"));
+        }
+    }
+    Ok(())
+}
+
+/// Checks node `i` of tree `t` (of `len` nodes): children after it and
+/// within the tree, a known feature and set, finite leaves, a threshold
+/// that is a number, per-output leaves within `vectors`.
+fn validate_node(params: &TreesParams, (t, i): (usize, usize), len: usize, node: &Node) -> Result<(), String> {
+    let child = |child: u32| {
+        let c = child as usize;
+        if c <= i || c >= len {
+            return Err(format!(
+                "tree {t} node {i}: child {child} must come after the node and within the {len} nodes"
+            ));
+        }
+        Ok(())
+    };
+    let feature_ok = |feature: u32| {
+        if feature >= params.features {
+            return Err(format!("tree {t} node {i}: feature {feature} but rows have {}", params.features));
+        }
+        Ok(())
+    };
+    match *node {
+        Node::Leaf { value } if !value.is_finite() => Err(format!("tree {t} node {i}: non-finite leaf {value}")),
+        Node::Leaf { .. } => Ok(()),
+        Node::Leaves { first } => {
+            let end = first as usize + params.base.len();
+            if end > params.vectors.len() {
+                return Err(format!(
+                    "tree {t} node {i}: leaf values {first}..{end} but vectors has {}",
+                    params.vectors.len()
+                ));
+            }
+            Ok(())
+        }
+        Node::Split { feature, threshold, left, right, .. }
+        | Node::SplitZeroAbsent { feature, threshold, left, right, .. } => {
+            if threshold.is_nan() {
+                return Err(format!("tree {t} node {i}: threshold is NaN"));
+            }
+            feature_ok(feature)?;
+            child(left)?;
+            child(right)
+        }
+        Node::Member { feature, set, left, right, .. } => {
+            if set as usize >= params.sets.len() {
+                return Err(format!("tree {t} node {i}: set {set} but there are {}", params.sets.len()));
+            }
+            feature_ok(feature)?;
+            child(left)?;
+            child(right)
         }
     }
 }
