@@ -7,8 +7,8 @@
 //!   model (and version) where each feature comes from and what a missing
 //!   or stale value becomes.
 //! - [`Table`]: an embedded table a batch job writes, held in memory.
-//! - [`Sources`]: the plan's tables, loaded; [`Resolved`]: a plan held to
-//!   one version's contract, ready to [`Resolved::gather`] rows. Both hold
+//! - [`Sources`]: the plan's tables, loaded; [`VersionPlan`]: a plan held to
+//!   one version's contract, ready to [`VersionPlan::gather`] rows. Both hold
 //!   their tables by `Arc`, so a request that took them sees one table from
 //!   start to end, whatever is swapped in meanwhile.
 //!
@@ -128,7 +128,7 @@ struct Step {
 
 /// A model version's plan, held to its contract, with its sources.
 #[derive(Clone, Debug)]
-pub struct Resolved {
+pub struct VersionPlan {
     steps: Vec<Step>,
     keys: Vec<String>,
 }
@@ -259,7 +259,7 @@ impl GatherError {
     }
 }
 
-impl Resolved {
+impl VersionPlan {
     /// Holds `model` `version`'s plan to its contract and binds its
     /// sources; `deadline` is the version's deadline per call, which every
     /// Redis budget must fit inside. `None` when the plan says nothing of
@@ -277,7 +277,7 @@ impl Resolved {
         version: &Version,
         contract: &Contract,
         deadline: std::time::Duration,
-    ) -> Result<Option<Resolved>, Unusable> {
+    ) -> Result<Option<VersionPlan>, Unusable> {
         let Some(m) = plan.models.get(model) else { return Ok(None) };
         let mut problems = plan.check(model, version, contract);
         let mut steps = Vec::new();
@@ -342,7 +342,7 @@ impl Resolved {
                 counts,
             });
         }
-        Unusable::unless(problems, Some(Resolved { steps, keys: m.keys.clone() }))
+        Unusable::unless(problems, Some(VersionPlan { steps, keys: m.keys.clone() }))
     }
 
     /// The keys a request carries for this model.
@@ -351,10 +351,10 @@ impl Resolved {
     }
 
     /// Completes `row` with the features the plan looks up, at `now`
-    /// (Unix seconds); see [`Resolved::gather_rows`].
+    /// (Unix seconds); see [`VersionPlan::gather_rows`].
     ///
     /// # Errors
-    /// As [`Resolved::gather_rows`] says of each row.
+    /// As [`VersionPlan::gather_rows`] says of each row.
     pub fn gather(
         &self,
         context: &BTreeMap<String, String>,
@@ -725,7 +725,7 @@ mod tests {
     }
 
     /// A plan over a table in a temporary directory; `now` is 2026-12-02T00:00:00Z.
-    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<Resolved>, Unusable>) {
+    fn setup(features: &str) -> (tempfile::TempDir, Result<Option<VersionPlan>, Unusable>) {
         let dir = tempfile::tempdir().unwrap();
         std::fs::write(
             dir.path().join("sites.csv"),
@@ -737,7 +737,7 @@ mod tests {
         );
         let plan = Plan::parse(&text, "features.toml", dir.path()).unwrap();
         let sources = Sources::load(&plan).unwrap();
-        let resolved = Resolved::new(
+        let resolved = VersionPlan::new(
             &plan,
             &sources,
             "charge-minutes",

@@ -41,16 +41,16 @@ use jiff::Timestamp;
 use semver::Version;
 use serde::Serialize;
 
-use crate::features::{Fetched, GatherError, Resolved};
+use crate::features::{Fetched, GatherError, VersionPlan};
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::TrustPolicy;
 use paddock_host::contract::rows::{Row, RowError};
 use paddock_host::sandbox::Runtime;
 use paddock_host::sandbox::codecache::{CacheError, CodeCache};
-use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError};
+use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError, Scored};
 
 use gate::Loaded;
-use reload::Memory;
+use reload::LastSeen;
 
 pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
@@ -294,7 +294,7 @@ struct Gathered {
     lookups: Vec<Vec<Fetched>>,
 }
 
-fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
+fn gather(plan: &VersionPlan, request: &Request<'_>, now: Timestamp) -> Gathered {
     let now = now.as_millisecond() as f64 / 1000.0;
     let mut g = Gathered {
         rows: Vec::with_capacity(request.rows.len()),
@@ -326,10 +326,7 @@ fn gather(plan: &Resolved, request: &Request<'_>, now: Timestamp) -> Gathered {
 impl Gathered {
     /// The scoring result with rows numbered as the request numbered them,
     /// and the lookup problems among the others.
-    fn renumber(
-        &self,
-        result: Result<paddock_host::sandbox::model::Scored, ScoreError>,
-    ) -> Result<paddock_host::sandbox::model::Scored, ScoreError> {
+    fn renumber(&self, result: Result<Scored, ScoreError>) -> Result<Scored, ScoreError> {
         let number = |n: usize| self.numbers.get(n.wrapping_sub(1)).copied().unwrap_or(n);
         let merge = |mut problems: Vec<RowError>| {
             for p in &mut problems {
@@ -351,6 +348,38 @@ impl Gathered {
     }
 }
 
+/// Where a request goes and what scoring it needs, read from one snapshot.
+struct Routed {
+    served: Arc<Loaded>,
+    version: Version,
+    reason: Arc<Reason>,
+    generation: u64,
+    /// The features plan of the version, if the store has one for it.
+    plan: Option<Arc<VersionPlan>>,
+    /// The shadow to score beside it, when this request is sampled.
+    shadow: Option<(Arc<Loaded>, f64, Arc<ledger::ShadowLedger>)>,
+    /// The request's time (its own, or the clock's).
+    at: Timestamp,
+}
+
+/// Scores the rows (as gathered, when the version has a features plan) on
+/// the served version, counting the call in flight, and numbers the result
+/// as the request numbered its rows.
+fn score_rows(served: &Loaded, request: &Request<'_>, gathered: Option<&Gathered>) -> Result<Scored, ScoreError> {
+    let rows = gathered.map_or(request.rows, |g| &g.rows[..]);
+    let in_flight = served.ledger.enter();
+    let result = if rows.is_empty() && gathered.is_some() && !request.rows.is_empty() {
+        Err(ScoreError::InvalidRows { errors: Vec::new() })
+    } else {
+        served.model.score_valid(rows)
+    };
+    drop(in_flight);
+    match gathered {
+        None => result,
+        Some(g) => g.renumber(result),
+    }
+}
+
 /// One immutable view of what is served.
 struct Snapshot {
     generation: u64,
@@ -366,7 +395,7 @@ struct Snapshot {
 /// The features plan resolved for each served version that has one.
 #[derive(Default)]
 struct FeatureSet {
-    resolved: BTreeMap<String, BTreeMap<Version, Arc<Resolved>>>,
+    plans: BTreeMap<String, BTreeMap<Version, Arc<VersionPlan>>>,
     /// The sources serving, for their counters.
     sources: crate::features::Sources,
 }
@@ -392,7 +421,7 @@ struct Shared {
     options: RegistryOptions,
     cache: Option<CodeCache>,
     current: ArcSwap<Snapshot>,
-    memory: Mutex<Memory>,
+    last_seen: Mutex<LastSeen>,
     ledger: ledger::Ledger,
     shadows: shadow::Shadows,
     reloads: AtomicU64,
@@ -466,7 +495,7 @@ impl Registry {
                 options,
                 cache,
                 current: ArcSwap::from_pointee(empty),
-                memory: Mutex::new(Memory::default()),
+                last_seen: Mutex::new(LastSeen::default()),
                 ledger,
                 reloads: AtomicU64::new(0),
                 lock,
@@ -525,6 +554,16 @@ impl Registry {
     /// [`RequestError::NotLoaded`] if the routes named a version that is not
     /// loaded (never expected: routes are only taken when all are).
     pub fn score(&self, request: &Request<'_>) -> Result<Answer, RequestError> {
+        let routed = self.pick(request)?;
+        let gathered = routed.plan.as_deref().map(|plan| gather(plan, request, routed.at));
+        let started = Instant::now();
+        let result = score_rows(&routed.served, request, gathered.as_ref());
+        self.account(request, routed, gathered, result, started)
+    }
+
+    /// Picks the version a request goes to, and what scoring it needs,
+    /// from one snapshot.
+    fn pick(&self, request: &Request<'_>) -> Result<Routed, RequestError> {
         let shared = &*self.inner;
         let snapshot = shared.current.load();
         let Some(routes) = snapshot.routes.model(request.model) else {
@@ -540,78 +579,72 @@ impl Registry {
         let Some(served) = snapshot.versions.get(request.model).and_then(|v| v.get(route.version)).cloned() else {
             return Err(RequestError::NotLoaded { model: request.model.to_owned(), version: route.version.clone() });
         };
-        let (version, reason) = (route.version.clone(), route.reason.clone());
         let shadow = snapshot
             .shadows
             .get(request.model)
             .filter(|s| s.ledger.sampled(s.sample))
             .map(|s| (s.loaded.clone(), s.tolerance, s.ledger.clone()));
-        let generation = snapshot.generation;
-        let plan = snapshot.features.resolved.get(request.model).and_then(|v| v.get(&version)).cloned();
-        drop(snapshot);
+        Ok(Routed {
+            plan: snapshot.features.plans.get(request.model).and_then(|v| v.get(route.version)).cloned(),
+            version: route.version.clone(),
+            reason: route.reason.clone(),
+            generation: snapshot.generation,
+            served,
+            shadow,
+            at,
+        })
+    }
 
-        // Features looked up: rows that could not be completed are problems
-        // of the answer, numbered as the request numbered them.
-        // Ages are measured at the request's time (a replay judges its own day).
-        let gathered = plan.map(|plan| gather(&plan, request, at));
-        let rows = gathered.as_ref().map_or(request.rows, |g| &g.rows[..]);
-        let started = Instant::now();
-        let in_flight = served.ledger.enter();
-        let result = if rows.is_empty() && gathered.is_some() && !request.rows.is_empty() {
-            Err(ScoreError::InvalidRows { errors: Vec::new() })
-        } else {
-            served.model.score_valid(rows)
-        };
-        drop(in_flight);
-        let result = match &gathered {
-            None => result,
-            Some(g) => g.renumber(result),
-        };
-        match result {
-            Ok(scored) => {
-                served.ledger.record_ok(scored.estimates.usage());
-                if !scored.problems.is_empty() {
-                    served.ledger.record_refused(request.rows.len() - scored.scored.len(), "invalid_rows");
-                }
-                if let Some((shadow, tolerance, ledger)) = shadow {
-                    // The shadow sees the rows that were served.
-                    let rows = if scored.problems.is_empty() {
-                        request.rows.to_vec()
-                    } else {
-                        scored.scored.iter().map(|&n| request.rows[n - 1].clone()).collect()
-                    };
-                    shared.shadows.submit(shadow::Job {
-                        served: served.clone(),
-                        shadow,
-                        rows,
-                        answer: scored.estimates.clone(),
-                        tolerance,
-                        ledger,
-                    });
-                }
-                Ok(Answer {
-                    model: request.model.to_owned(),
-                    version,
-                    digest: served.model.digest(),
-                    reason,
-                    generation,
-                    outputs: served.outputs.clone(),
-                    requested: request.rows.len(),
-                    estimates: scored.estimates,
-                    scored: scored.scored,
-                    problems: scored.problems,
-                    lookups: gathered.map(|g| g.lookups).unwrap_or_default(),
-                })
-            }
+    /// Records what a scoring cost or why it failed, hands the served rows
+    /// to the shadow, and makes the answer.
+    fn account(
+        &self,
+        request: &Request<'_>,
+        routed: Routed,
+        gathered: Option<Gathered>,
+        result: Result<Scored, ScoreError>,
+        started: Instant,
+    ) -> Result<Answer, RequestError> {
+        let Routed { served, version, reason, generation, shadow, .. } = routed;
+        let scored = match result {
+            Ok(scored) => scored,
             Err(error) => {
                 if error.is_request_fault() {
                     served.ledger.record_refused(request.rows.len(), error.kind());
                 } else {
                     served.ledger.record_error(request.rows.len(), &error, started.elapsed());
                 }
-                Err(RequestError::Score { model: request.model.to_owned(), version, reason, error })
+                return Err(RequestError::Score { model: request.model.to_owned(), version, reason, error });
             }
+        };
+        served.ledger.record_ok(scored.estimates.usage());
+        if !scored.problems.is_empty() {
+            served.ledger.record_refused(request.rows.len() - scored.scored.len(), "invalid_rows");
         }
+        if let Some((shadow, tolerance, ledger)) = shadow {
+            // The shadow sees the rows that were served.
+            let rows = if scored.problems.is_empty() {
+                request.rows.to_vec()
+            } else {
+                scored.scored.iter().map(|&n| request.rows[n - 1].clone()).collect()
+            };
+            let answer = scored.estimates.clone();
+            let job = shadow::Job { served: served.clone(), shadow, rows, answer, tolerance, ledger };
+            self.inner.shadows.submit(job);
+        }
+        Ok(Answer {
+            model: request.model.to_owned(),
+            version,
+            digest: served.model.digest(),
+            reason,
+            generation,
+            outputs: served.outputs.clone(),
+            requested: request.rows.len(),
+            estimates: scored.estimates,
+            scored: scored.scored,
+            problems: scored.problems,
+            lookups: gathered.map(|g| g.lookups).unwrap_or_default(),
+        })
     }
 
     /// The loaded model of one version, e.g. to read its contract.

@@ -20,7 +20,7 @@ use super::status::{
     Status, TableStatus, loaded_status, refused_status,
 };
 use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
-use crate::features::{Plan, RedisSource, Resolved, Source, SourceCounts, Sources, Table};
+use crate::features::{Plan, RedisSource, Source, SourceCounts, Sources, Table, VersionPlan};
 use paddock_host::artifact::digest::Digest;
 
 /// Loaded versions, by model and version.
@@ -28,7 +28,7 @@ type Versions = BTreeMap<String, BTreeMap<Version, Arc<Loaded>>>;
 
 /// What a reload saw last time, so unchanged files are not gated again.
 #[derive(Default)]
-pub(super) struct Memory {
+pub(super) struct LastSeen {
     /// Per artifact path: fingerprint of its bytes and vouch, and the outcome.
     files: HashMap<PathBuf, (Fingerprint, Outcome)>,
     /// Fingerprint of the routes file last read, and whether it was accepted.
@@ -78,17 +78,17 @@ impl Registry {
     pub fn reload(&self) -> Result<ReloadReport, RegistryError> {
         let started = Instant::now();
         let shared = &*self.inner;
-        let mut memory = shared.memory.lock().unwrap_or_else(|e| e.into_inner());
+        let mut last_seen = shared.last_seen.lock().unwrap_or_else(|e| e.into_inner());
         let old = shared.current.load_full();
         let found =
             layout::scan(&shared.dir).map_err(|source| RegistryError::Store { path: shared.dir.clone(), source })?;
         let mut report = ReloadReport::default();
-        let mut next = gate_files(shared, &found, &old, &mut memory, &mut report);
+        let mut next = gate_files(shared, &found, &old, &mut last_seen, &mut report);
         let removed = removed_versions(&old, &next.versions);
-        let (routes, routes_state) = read_routes(shared, &old, &mut memory, &next.versions, &removed, &mut report);
+        let (routes, routes_state) = read_routes(shared, &old, &mut last_seen, &next.versions, &removed, &mut report);
         report.routes_changed = !Arc::ptr_eq(&routes, &old.routes);
         keep_routed(&routes, removed, &mut next, &mut report);
-        let features = read_features(shared, &old, &mut memory, &next.versions, &mut report);
+        let features = read_features(shared, &old, &mut last_seen, &next.versions, &mut report);
         swap(shared, &old, routes, routes_state, features, next, &mut report);
         report.took = started.elapsed();
         Ok(report)
@@ -102,7 +102,7 @@ fn gate_files(
     shared: &Shared,
     found: &[layout::Found],
     old: &Snapshot,
-    memory: &mut Memory,
+    last_seen: &mut LastSeen,
     report: &mut ReloadReport,
 ) -> Next {
     let mut next = Next::default();
@@ -124,7 +124,7 @@ fn gate_files(
             }
         };
         let fingerprint = gate::fingerprint(&bytes, vouch.as_deref());
-        let outcome = match memory.files.get(&f.path) {
+        let outcome = match last_seen.files.get(&f.path) {
             Some((fp, outcome)) if *fp == fingerprint => outcome.clone(),
             _ => {
                 let digest = Digest::of(&bytes);
@@ -162,7 +162,7 @@ fn gate_files(
             }
         }
     }
-    memory.files = files;
+    last_seen.files = files;
     next
 }
 
@@ -184,7 +184,7 @@ fn removed_versions(old: &Snapshot, versions: &Versions) -> Versions {
 fn read_routes(
     shared: &Shared,
     old: &Snapshot,
-    memory: &mut Memory,
+    last_seen: &mut LastSeen,
     versions: &Versions,
     removed: &Versions,
     report: &mut ReloadReport,
@@ -214,19 +214,19 @@ fn read_routes(
                 .and_then(|r| r.check_versions(available).map(|()| r));
             match parsed {
                 Ok(r) => {
-                    let same = matches!(&memory.routes, Some((last, RoutesState::Accepted)) if *last == fp);
+                    let same = matches!(&last_seen.routes, Some((last, RoutesState::Accepted)) if *last == fp);
                     let routes = if same { old.routes.clone() } else { Arc::new(r) };
-                    memory.routes = Some((fp, RoutesState::Accepted));
+                    last_seen.routes = Some((fp, RoutesState::Accepted));
                     (routes, RoutesState::Accepted)
                 }
                 Err(e) => {
-                    let first_time = memory.routes.as_ref().is_none_or(|(last, _)| *last != fp);
+                    let first_time = last_seen.routes.as_ref().is_none_or(|(last, _)| *last != fp);
                     if first_time {
                         tracing::warn!(routes = %routes_path.display(), problems = %e.problems.join("; "), "routes refused; the previous routes keep serving");
                         report.routes_refused = e.problems.clone();
                     }
                     let state = RoutesState::Refused { problems: e.problems };
-                    memory.routes = Some((fp, state.clone()));
+                    last_seen.routes = Some((fp, state.clone()));
                     (old.routes.clone(), state)
                 }
             }
@@ -266,7 +266,7 @@ fn keep_routed(routes: &Routes, removed: Versions, next: &mut Next, report: &mut
 fn read_features(
     shared: &Shared,
     old: &Snapshot,
-    memory: &mut Memory,
+    last_seen: &mut LastSeen,
     versions: &Versions,
     report: &mut ReloadReport,
 ) -> (Arc<FeatureSet>, FeaturesState) {
@@ -274,7 +274,7 @@ fn read_features(
     let bytes = match std::fs::read(&path) {
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
             // Still no features file: the same (empty) set, no new generation.
-            memory.features = None;
+            last_seen.features = None;
             let set = if old.status.features == FeaturesState::Missing { old.features.clone() } else { Arc::default() };
             return (set, FeaturesState::Missing);
         }
@@ -305,12 +305,12 @@ fn read_features(
         Err(_) => Vec::new(),
     };
     let seen = FeaturesSeen { file: Some(gate::fingerprint(&bytes, None)), tables, versions: flatten(versions) };
-    if let Some((last, set, state)) = &memory.features
+    if let Some((last, set, state)) = &last_seen.features
         && *last == seen
     {
         return (set.clone(), state.clone());
     }
-    let outcome = plan.and_then(|plan| build_features(shared, &plan, memory, versions));
+    let outcome = plan.and_then(|plan| build_features(shared, &plan, last_seen, versions));
     let result = match outcome {
         Ok((set, tables, servers)) => (Arc::new(set), FeaturesState::Accepted { tables, servers }),
         Err(problems) => {
@@ -319,7 +319,7 @@ fn read_features(
             (old.features.clone(), FeaturesState::Refused { problems })
         }
     };
-    memory.features = Some((seen, result.0.clone(), result.1.clone()));
+    last_seen.features = Some((seen, result.0.clone(), result.1.clone()));
     result
 }
 
@@ -328,7 +328,7 @@ fn read_features(
 fn build_features(
     shared: &Shared,
     plan: &Plan,
-    memory: &mut Memory,
+    last_seen: &mut LastSeen,
     versions: &Versions,
 ) -> Result<(FeatureSet, Vec<TableStatus>, Vec<ServerStatus>), Vec<String>> {
     let mut problems = Vec::new();
@@ -338,15 +338,18 @@ fn build_features(
     let mut redis = BTreeMap::new();
     let mut kept_redis = HashMap::new();
     let mut servers = Vec::new();
-    let counts: BTreeMap<String, Arc<SourceCounts>> =
-        plan.sources.keys().map(|name| (name.clone(), memory.counts.get(name).cloned().unwrap_or_default())).collect();
+    let counts: BTreeMap<String, Arc<SourceCounts>> = plan
+        .sources
+        .keys()
+        .map(|name| (name.clone(), last_seen.counts.get(name).cloned().unwrap_or_default()))
+        .collect();
     for (name, source) in &plan.sources {
         let (path, key, updated) = match source {
             Source::Table { path, key, updated } => (path, key, updated),
             Source::Redis { url, budget, .. } => {
                 // A server's source (and its connection) lives on across reloads.
                 let id = (name.clone(), url.clone(), *budget);
-                let made = match memory.redis.get(&id) {
+                let made = match last_seen.redis.get(&id) {
                     Some(r) => Ok(r.clone()),
                     None => RedisSource::new(url, *budget, counts[name].clone()).map(Arc::new),
                 };
@@ -368,7 +371,7 @@ fn build_features(
         let meta = std::fs::metadata(path).ok();
         let stamp = meta.as_ref().map(|m| (m.len(), m.modified().ok())).unwrap_or((0, None));
         let shown = path.strip_prefix(&shared.dir).unwrap_or(path).display().to_string();
-        let table = match memory.tables.get(path) {
+        let table = match last_seen.tables.get(path) {
             Some((s, t)) if *s == stamp && stamp.1.is_some() => Ok(t.clone()),
             _ => Table::read_as(path, &shown, key, updated.as_deref()).map(Arc::new),
         };
@@ -390,17 +393,17 @@ fn build_features(
             Err(e) => problems.push(e.to_string()),
         }
     }
-    memory.tables = kept;
-    memory.redis = kept_redis;
+    last_seen.tables = kept;
+    last_seen.redis = kept_redis;
     if !problems.is_empty() {
         return Err(problems);
     }
-    memory.counts = counts.clone();
+    last_seen.counts = counts.clone();
     let sources = Sources::from_parts(tables, redis, counts);
     let mut set = FeatureSet::default();
     for model in plan.models.keys() {
         for (version, loaded) in versions.get(model).into_iter().flatten() {
-            match Resolved::new(
+            match VersionPlan::new(
                 plan,
                 &sources,
                 model,
@@ -409,7 +412,7 @@ fn build_features(
                 loaded.model.options().limits.deadline,
             ) {
                 Ok(Some(r)) => {
-                    set.resolved.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
+                    set.plans.entry(model.clone()).or_default().insert(version.clone(), Arc::new(r));
                 }
                 Ok(None) => {}
                 Err(unusable) => problems.extend(unusable.problems.iter().map(ToString::to_string)),
