@@ -453,7 +453,7 @@ fn metrics_are_openmetrics_text_with_the_calls_made() {
         r#"paddock_rows_total{model="m",version="1.0.0"} 6"#,
         r#"paddock_refused_rows_total{model="m",version="1.0.0",kind="invalid_rows"} 1"#,
         r#"paddock_call_seconds_count{model="m",version="1.0.0"} 3"#,
-        r#"paddock_call_seconds_bucket{model="m",version="1.0.0",le="+Inf"} 3"#,
+        r#"paddock_call_seconds_bucket{le="+Inf",model="m",version="1.0.0"} 3"#,
         r#"paddock_rejected_requests_total{kind="unknown_model"} 1"#,
         r#"paddock_in_flight{model="m",version="1.0.0"} 0"#,
     ] {

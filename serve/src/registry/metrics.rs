@@ -32,9 +32,16 @@
 //! | `artifacts` | gauge | artifacts by `state` (no model labels) |
 
 use std::collections::BTreeMap;
-use std::fmt::Write;
 
-use super::ledger::{UsageReport, WALL_BUCKETS};
+use prometheus_client::collector::Collector;
+use prometheus_client::encoding::{
+    DescriptorEncoder, EncodeLabelValue, EncodeMetric, LabelValueEncoder, MetricEncoder,
+};
+use prometheus_client::metrics::MetricType;
+use prometheus_client::metrics::counter::ConstCounter;
+use prometheus_client::metrics::gauge::ConstGauge;
+
+use super::ledger::{ShadowUsage, UsageReport, VersionUsage, WALL_BUCKETS};
 use super::{ArtifactState, Status};
 use crate::features::SourceUsage;
 use crate::features::counts::LATENCY_BUCKETS;
@@ -42,196 +49,24 @@ use crate::features::counts::LATENCY_BUCKETS;
 /// The media type of the text this module writes.
 pub const CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
 
-/// Escapes a label value: backslash, double quote and newline.
-fn escape(value: &str) -> String {
-    value.replace('\\', "\\\\").replace('"', "\\\"").replace('\n', "\\n")
-}
-
-/// Writes `{model="…",version="…"[,key="…"]}`.
-fn labels(model: &str, version: &str, extra: Option<(&str, &str)>) -> String {
-    let mut s = format!("{{model=\"{}\",version=\"{}\"", escape(model), escape(version));
-    if let Some((k, v)) = extra {
-        let _ = write!(s, ",{k}=\"{}\"", escape(v));
-    }
-    s.push('}');
-    s
-}
-
-/// A float as OpenMetrics writes it.
-fn num(v: f64) -> String {
-    if v.is_nan() {
-        "NaN".into()
-    } else if v.is_infinite() {
-        if v > 0.0 { "+Inf".into() } else { "-Inf".into() }
-    } else {
-        format!("{v}")
-    }
-}
-
-/// A family with one sample per model version (or shadow): its name, type,
-/// help, and the sample's value (none: no sample).
-type Single<T> = (&'static str, &'static str, &'static str, fn(&T) -> Option<String>);
-
-/// A family with one sample per model version (or shadow) and key of a
-/// count map: its name, help, the extra label's name, and the map.
-type Keyed<T> = (&'static str, &'static str, &'static str, fn(&T) -> &BTreeMap<String, u64>);
-
-/// Writes `# TYPE` and `# HELP` for a family.
-fn declare(out: &mut String, name: &str, kind: &str, help: &str) {
-    let _ = writeln!(out, "# TYPE paddock_{name} {kind}\n# HELP paddock_{name} {help}");
-}
-
-/// Writes the families of `singles` and `keyed` for `items`, each named by
-/// its model and version. Counter samples take the `_total` suffix.
-fn families<T>(out: &mut String, items: &[T], id: fn(&T) -> (&str, &str), singles: &[Single<T>], keyed: &[Keyed<T>]) {
-    for (name, kind, help, value) in singles {
-        declare(out, name, kind, help);
-        let suffix = if *kind == "counter" { "_total" } else { "" };
-        for item in items {
-            if let Some(v) = value(item) {
-                let (model, version) = id(item);
-                let _ = writeln!(out, "paddock_{name}{suffix}{} {v}", labels(model, version, None));
-            }
-        }
-    }
-    for (name, help, label, counts) in keyed {
-        declare(out, name, "counter", help);
-        for item in items {
-            let (model, version) = id(item);
-            for (key, n) in counts(item) {
-                let _ = writeln!(out, "paddock_{name}_total{} {n}", labels(model, version, Some((label, key))));
-            }
-        }
-    }
-}
-
-/// Writes the feature sources' families.
-fn sources(out: &mut String, sources: &[SourceUsage]) {
-    declare(out, "lookups", "counter", "Features of rows looked up in a source, by outcome.");
-    for s in sources {
-        for (outcome, n) in &s.lookups {
-            let _ =
-                writeln!(out, "paddock_lookups_total{{source=\"{}\",outcome=\"{outcome}\"}} {n}", escape(&s.source));
-        }
-    }
-    let servers: Vec<&SourceUsage> = sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
-    type Counter = (&'static str, &'static str, fn(&SourceUsage) -> u64);
-    let counters: [Counter; 4] = [
-        ("source_round_trips", "Round trips to a feature server.", |s| s.round_trips),
-        ("source_timeouts", "Round trips to a feature server not answered within the source's budget.", |s| s.timeouts),
-        ("source_errors", "Round trips to a feature server that failed.", |s| s.errors),
-        ("source_skipped", "Reads of a feature server not tried while its circuit breaker was open.", |s| s.skipped),
-    ];
-    for (name, help, value) in counters {
-        declare(out, name, "counter", help);
-        for s in &servers {
-            let _ = writeln!(out, "paddock_{name}_total{{source=\"{}\"}} {}", escape(&s.source), value(s));
-        }
-    }
-    declare(
-        out,
-        "source_round_trip_seconds",
-        "histogram",
-        "Time per round trip to a feature server, from sending to the answer or giving up.",
-    );
-    for s in &servers {
-        let base = format!("source=\"{}\"", escape(&s.source));
-        for (le, count) in LATENCY_BUCKETS.iter().zip(&s.latency_buckets) {
-            let _ = writeln!(out, "paddock_source_round_trip_seconds_bucket{{{base},le=\"{}\"}} {count}", num(*le));
-        }
-        let _ = writeln!(out, "paddock_source_round_trip_seconds_bucket{{{base},le=\"+Inf\"}} {}", s.round_trips);
-        let _ = writeln!(out, "paddock_source_round_trip_seconds_count{{{base}}} {}", s.round_trips);
-        let _ = writeln!(out, "paddock_source_round_trip_seconds_sum{{{base}}} {}", num(s.latency_sum_seconds));
-    }
+/// A family a surface adds of its own (`serve_gates`, `worker_events`…):
+/// one sample, no labels.
+#[derive(Clone, Debug, PartialEq)]
+pub struct SurfaceFamily {
+    /// The name after `paddock_` (a counter's sample takes `_total`).
+    pub name: &'static str,
+    /// What it counts.
+    pub help: &'static str,
+    /// A counter (else a gauge).
+    pub counter: bool,
+    /// The value.
+    pub value: u64,
 }
 
 /// Renders the ledger, the feature sources' counters and the registry's
-/// state, then `surface`: the families of the surface serving them (whole
-/// `# TYPE` … lines, each ending in a newline), before the closing `# EOF`.
-pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage], surface: &str) -> String {
-    let mut out = String::new();
-    families(
-        &mut out,
-        &usage.versions,
-        |u| (&u.model, &u.version),
-        &[
-            ("calls", "counter", "Calls to a model version, successful or not.", |u| Some(u.calls.to_string())),
-            ("rows", "counter", "Rows in the calls to a model version.", |u| Some(u.rows.to_string())),
-            ("fuel", "counter", "Fuel (WebAssembly instructions, roughly) used by successful calls.", |u| {
-                u.fuel.map(|f| f.to_string())
-            }),
-            ("peak_memory_bytes", "gauge", "Largest linear memory any instance of the version reached.", |u| {
-                Some(u.peak_memory_bytes.to_string())
-            }),
-            ("in_flight", "gauge", "Calls to a model version running now.", |u| Some(u.in_flight.to_string())),
-        ],
-        &[
-            ("errors", "Failed calls to a model version, by kind of error: the model's own failures.", "kind", |u| {
-                &u.errors
-            }),
-            (
-                "refused_rows",
-                "Rows refused before the sandbox, by kind: the request's fault, not the model's.",
-                "kind",
-                |u| &u.refused_rows,
-            ),
-            ("limit_hits", "Calls stopped by a limit, by limit.", "limit", |u| &u.limit_hits),
-        ],
-    );
-    declare(
-        &mut out,
-        "call_seconds",
-        "histogram",
-        "Wall time per call, from taking an instance to checking the outputs.",
-    );
-    for u in &usage.versions {
-        let base = format!("model=\"{}\",version=\"{}\"", escape(&u.model), escape(&u.version));
-        for (le, count) in WALL_BUCKETS.iter().zip(&u.wall_us.buckets) {
-            let _ = writeln!(out, "paddock_call_seconds_bucket{{{base},le=\"{}\"}} {count}", num(*le));
-        }
-        let _ = writeln!(out, "paddock_call_seconds_bucket{{{base},le=\"+Inf\"}} {}", u.calls);
-        let _ = writeln!(out, "paddock_call_seconds_count{{{base}}} {}", u.calls);
-        let _ = writeln!(out, "paddock_call_seconds_sum{{{base}}} {}", num(u.wall_us.sum_seconds));
-    }
-    families(
-        &mut out,
-        &usage.shadows,
-        |s| (&s.model, &s.version),
-        &[
-            (
-                "shadow_compared",
-                "counter",
-                "Requests a shadow version scored and compared with the served answer.",
-                |s| Some(s.compared.to_string()),
-            ),
-            (
-                "shadow_over_tolerance",
-                "counter",
-                "Output values where the shadow differed from the served answer by more than the tolerance.",
-                |s| Some(s.over_tolerance.to_string()),
-            ),
-            (
-                "shadow_max_abs_diff",
-                "gauge",
-                "Largest absolute difference between a shadow's and the served answer.",
-                |s| Some(num(s.max_abs_diff)),
-            ),
-            ("shadow_dropped", "counter", "Shadow samples dropped because the shadow queue was full.", |s| {
-                Some(s.dropped.to_string())
-            }),
-        ],
-        &[("shadow_errors", "Shadow calls that failed, by kind of error.", "kind", |s| &s.errors)],
-    );
-
-    declare(&mut out, "rejected_requests", "counter", "Requests refused before a model version was chosen, by kind.");
-    for (kind, n) in &usage.rejected {
-        let _ = writeln!(out, "paddock_rejected_requests_total{{kind=\"{}\"}} {n}", escape(kind));
-    }
-    sources(&mut out, source_usage);
-    declare(&mut out, "generation", "gauge", "The registry generation serving.");
-    let _ = writeln!(out, "paddock_generation {}", status.generation);
-    declare(&mut out, "artifacts", "gauge", "Artifacts in the store, by state.");
-    let mut states: BTreeMap<&str, u64> =
+/// state, then the surface's own families, and the closing `# EOF`.
+pub fn render(usage: UsageReport, status: &Status, sources: Vec<SourceUsage>, own: Vec<SurfaceFamily>) -> String {
+    let mut artifacts: BTreeMap<&'static str, u64> =
         ["loaded", "refused", "kept_after_refusal", "kept_after_removal"].iter().map(|s| (*s, 0)).collect();
     for a in &status.artifacts {
         let state = match a.state {
@@ -240,14 +75,282 @@ pub fn render(usage: &UsageReport, status: &Status, source_usage: &[SourceUsage]
             ArtifactState::KeptAfterRefusal { .. } => "kept_after_refusal",
             ArtifactState::KeptAfterRemoval => "kept_after_removal",
         };
-        *states.entry(state).or_default() += 1;
+        *artifacts.entry(state).or_default() += 1;
     }
-    for (state, n) in states {
-        let _ = writeln!(out, "paddock_artifacts{{state=\"{state}\"}} {n}");
-    }
-    out.push_str(surface);
-    out.push_str("# EOF\n");
+    let mut registry = prometheus_client::registry::Registry::with_prefix("paddock");
+    registry.register_collector(Box::new(Exposition { usage, sources, generation: status.generation, artifacts, own }));
+    let mut out = String::new();
+    prometheus_client::encoding::text::encode(&mut out, &registry).expect("writing to a String cannot fail");
     out
+}
+
+/// Everything one scrape shows, read at one moment.
+#[derive(Debug)]
+struct Exposition {
+    usage: UsageReport,
+    sources: Vec<SourceUsage>,
+    generation: u64,
+    artifacts: BTreeMap<&'static str, u64>,
+    own: Vec<SurfaceFamily>,
+}
+
+/// A label value, escaped as OpenMetrics 1.0 asks (its ABNF: backslash,
+/// double quote and newline), which prometheus-client leaves to the caller.
+#[derive(Clone, Debug)]
+struct Escaped(String);
+
+impl EncodeLabelValue for Escaped {
+    fn encode(&self, encoder: &mut LabelValueEncoder<'_>) -> Result<(), std::fmt::Error> {
+        use std::fmt::Write as _;
+        for c in self.0.chars() {
+            match c {
+                '\\' => encoder.write_str("\\\\")?,
+                '"' => encoder.write_str("\\\"")?,
+                '\n' => encoder.write_str("\\n")?,
+                c => encoder.write_char(c)?,
+            }
+        }
+        Ok(())
+    }
+}
+
+type Labels = Vec<(&'static str, Escaped)>;
+
+fn labels(pairs: &[(&'static str, &str)]) -> Labels {
+    pairs.iter().map(|&(k, v)| (k, Escaped(v.to_owned()))).collect()
+}
+
+/// A family's samples: one per label set.
+enum Samples {
+    Counter(Vec<(Labels, u64)>),
+    Gauge(Vec<(Labels, u64)>),
+    GaugeFloat(Vec<(Labels, f64)>),
+    /// (labels, sum, count, cumulative counts at each bound).
+    Histogram(&'static [f64], Vec<(Labels, f64, u64, Vec<u64>)>),
+}
+
+fn family(
+    encoder: &mut DescriptorEncoder<'_>,
+    name: &str,
+    help: &str,
+    samples: Samples,
+) -> Result<(), std::fmt::Error> {
+    let kind = match &samples {
+        Samples::Counter(_) => MetricType::Counter,
+        Samples::Gauge(_) | Samples::GaugeFloat(_) => MetricType::Gauge,
+        Samples::Histogram(..) => MetricType::Histogram,
+    };
+    let mut metric = encoder.encode_descriptor(name, help, None, kind)?;
+    // A family of one sample without labels is written as `name value`.
+    match &samples {
+        Samples::Counter(s) if s.len() == 1 && s[0].0.is_empty() => return ConstCounter::new(s[0].1).encode(metric),
+        Samples::Gauge(s) if s.len() == 1 && s[0].0.is_empty() => return ConstGauge::new(s[0].1 as i64).encode(metric),
+        _ => {}
+    }
+    let one =
+        |metric: &mut MetricEncoder<'_>, l: &Labels, f: &dyn Fn(MetricEncoder<'_>) -> Result<(), std::fmt::Error>| {
+            f(metric.encode_family(l)?)
+        };
+    match samples {
+        Samples::Counter(s) => {
+            for (l, v) in &s {
+                one(&mut metric, l, &|m| ConstCounter::new(*v).encode(m))?;
+            }
+        }
+        Samples::Gauge(s) => {
+            for (l, v) in &s {
+                one(&mut metric, l, &|m| ConstGauge::new(*v as i64).encode(m))?;
+            }
+        }
+        Samples::GaugeFloat(s) => {
+            for (l, v) in &s {
+                one(&mut metric, l, &|m| ConstGauge::new(*v).encode(m))?;
+            }
+        }
+        Samples::Histogram(bounds, s) => {
+            for (l, sum, count, cumulative) in &s {
+                // prometheus-client takes each bucket's own count, +Inf last.
+                let mut buckets = Vec::with_capacity(bounds.len() + 1);
+                let mut below = 0;
+                for (&le, &c) in bounds.iter().zip(cumulative) {
+                    buckets.push((le, c.saturating_sub(below)));
+                    below = below.max(c);
+                }
+                buckets.push((f64::MAX, count.saturating_sub(below)));
+                let mut m = metric.encode_family(l)?;
+                m.encode_histogram::<prometheus_client::encoding::NoLabelSet>(*sum, *count, &buckets, None)?;
+            }
+        }
+    }
+    Ok(())
+}
+
+fn version_labels(u: &VersionUsage) -> Labels {
+    labels(&[("model", &u.model), ("version", &u.version)])
+}
+
+fn shadow_labels(s: &ShadowUsage) -> Labels {
+    labels(&[("model", &s.model), ("version", &s.version)])
+}
+
+/// One sample per item and key of a count map, the key as label `key`.
+fn keyed<T>(items: &[T], id: fn(&T) -> Labels, key: &'static str, map: fn(&T) -> &BTreeMap<String, u64>) -> Samples {
+    let mut out = Vec::new();
+    for item in items {
+        for (k, n) in map(item) {
+            let mut l = id(item);
+            l.push((key, Escaped(k.clone())));
+            out.push((l, *n));
+        }
+    }
+    Samples::Counter(out)
+}
+
+impl Collector for Exposition {
+    fn encode(&self, mut e: DescriptorEncoder<'_>) -> Result<(), std::fmt::Error> {
+        let v = &self.usage.versions;
+        let per = |f: fn(&VersionUsage) -> u64| v.iter().map(|u| (version_labels(u), f(u))).collect::<Vec<_>>();
+        family(&mut e, "calls", "Calls to a model version, successful or not.", Samples::Counter(per(|u| u.calls)))?;
+        family(&mut e, "rows", "Rows in the calls to a model version.", Samples::Counter(per(|u| u.rows)))?;
+        let fuel = v.iter().filter_map(|u| u.fuel.map(|f| (version_labels(u), f))).collect();
+        family(
+            &mut e,
+            "fuel",
+            "Fuel (WebAssembly instructions, roughly) used by successful calls.",
+            Samples::Counter(fuel),
+        )?;
+        family(
+            &mut e,
+            "peak_memory_bytes",
+            "Largest linear memory any instance of the version reached.",
+            Samples::Gauge(per(|u| u.peak_memory_bytes)),
+        )?;
+        family(&mut e, "in_flight", "Calls to a model version running now.", Samples::Gauge(per(|u| u.in_flight)))?;
+        family(
+            &mut e,
+            "errors",
+            "Failed calls to a model version, by kind of error: the model's own failures.",
+            keyed(v, version_labels, "kind", |u| &u.errors),
+        )?;
+        family(
+            &mut e,
+            "refused_rows",
+            "Rows refused before the sandbox, by kind: the request's fault, not the model's.",
+            keyed(v, version_labels, "kind", |u| &u.refused_rows),
+        )?;
+        family(
+            &mut e,
+            "limit_hits",
+            "Calls stopped by a limit, by limit.",
+            keyed(v, version_labels, "limit", |u| &u.limit_hits),
+        )?;
+        let wall =
+            v.iter().map(|u| (version_labels(u), u.wall_us.sum_seconds, u.calls, u.wall_us.buckets.clone())).collect();
+        family(
+            &mut e,
+            "call_seconds",
+            "Wall time per call, from taking an instance to checking the outputs.",
+            Samples::Histogram(&WALL_BUCKETS, wall),
+        )?;
+        self.shadows(&mut e)?;
+        let rejected = self.usage.rejected.iter().map(|(k, n)| (labels(&[("kind", k)]), *n)).collect();
+        family(
+            &mut e,
+            "rejected_requests",
+            "Requests refused before a model version was chosen, by kind.",
+            Samples::Counter(rejected),
+        )?;
+        self.feature_sources(&mut e)?;
+        family(
+            &mut e,
+            "generation",
+            "The registry generation serving.",
+            Samples::Gauge(vec![(Vec::new(), self.generation)]),
+        )?;
+        let states = self.artifacts.iter().map(|(s, n)| (labels(&[("state", s)]), *n)).collect();
+        family(&mut e, "artifacts", "Artifacts in the store, by state.", Samples::Gauge(states))?;
+        for f in &self.own {
+            let sample = vec![(Vec::new(), f.value)];
+            family(&mut e, f.name, f.help, if f.counter { Samples::Counter(sample) } else { Samples::Gauge(sample) })?;
+        }
+        Ok(())
+    }
+}
+
+impl Exposition {
+    fn shadows(&self, e: &mut DescriptorEncoder<'_>) -> Result<(), std::fmt::Error> {
+        let s = &self.usage.shadows;
+        let per = |f: fn(&ShadowUsage) -> u64| s.iter().map(|x| (shadow_labels(x), f(x))).collect::<Vec<_>>();
+        family(
+            e,
+            "shadow_compared",
+            "Requests a shadow version scored and compared with the served answer.",
+            Samples::Counter(per(|x| x.compared)),
+        )?;
+        family(
+            e,
+            "shadow_over_tolerance",
+            "Output values where the shadow differed from the served answer by more than the tolerance.",
+            Samples::Counter(per(|x| x.over_tolerance)),
+        )?;
+        family(
+            e,
+            "shadow_max_abs_diff",
+            "Largest absolute difference between a shadow's and the served answer.",
+            Samples::GaugeFloat(s.iter().map(|x| (shadow_labels(x), x.max_abs_diff)).collect()),
+        )?;
+        family(
+            e,
+            "shadow_dropped",
+            "Shadow samples dropped because the shadow queue was full.",
+            Samples::Counter(per(|x| x.dropped)),
+        )?;
+        family(
+            e,
+            "shadow_errors",
+            "Shadow calls that failed, by kind of error.",
+            keyed(s, shadow_labels, "kind", |x| &x.errors),
+        )
+    }
+
+    fn feature_sources(&self, e: &mut DescriptorEncoder<'_>) -> Result<(), std::fmt::Error> {
+        let mut lookups = Vec::new();
+        for s in &self.sources {
+            for (outcome, n) in &s.lookups {
+                lookups.push((labels(&[("source", &s.source), ("outcome", outcome)]), *n));
+            }
+        }
+        family(e, "lookups", "Features of rows looked up in a source, by outcome.", Samples::Counter(lookups))?;
+        let servers: Vec<&SourceUsage> =
+            self.sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
+        type Count = (&'static str, &'static str, fn(&SourceUsage) -> u64);
+        let counters: [Count; 4] = [
+            ("source_round_trips", "Round trips to a feature server.", |s| s.round_trips),
+            ("source_timeouts", "Round trips to a feature server not answered within the source's budget.", |s| {
+                s.timeouts
+            }),
+            ("source_errors", "Round trips to a feature server that failed.", |s| s.errors),
+            ("source_skipped", "Reads of a feature server not tried while its circuit breaker was open.", |s| {
+                s.skipped
+            }),
+        ];
+        for (name, help, value) in counters {
+            let samples = servers.iter().map(|s| (labels(&[("source", &s.source)]), value(s))).collect();
+            family(e, name, help, Samples::Counter(samples))?;
+        }
+        let times = servers
+            .iter()
+            .map(|s| {
+                (labels(&[("source", &s.source)]), s.latency_sum_seconds, s.round_trips, s.latency_buckets.clone())
+            })
+            .collect();
+        family(
+            e,
+            "source_round_trip_seconds",
+            "Time per round trip to a feature server, from sending to the answer or giving up.",
+            Samples::Histogram(&LATENCY_BUCKETS, times),
+        )
+    }
 }
 
 #[cfg(test)]
@@ -287,24 +390,28 @@ mod tests {
         c.lookup(crate::features::Outcome::Found);
         c.round_trip(crate::features::counts::Ended::TimedOut, std::time::Duration::from_millis(3));
         let sources = [c.report("live \"site\"", crate::features::SourceKind::Redis)];
-        let text = render(&usage, &status, &sources, "# TYPE paddock_test_things gauge\npaddock_test_things 3\n");
+        let own = vec![SurfaceFamily { name: "test_things", help: "Things.", counter: false, value: 3 }];
+        let text = render(usage, &status, sources.to_vec(), own);
         assert!(text.contains("paddock_lookups_total{source=\"live \\\"site\\\"\",outcome=\"found\"} 1\n"), "{text}");
         assert!(text.contains("paddock_source_timeouts_total{source=\"live \\\"site\\\"\"} 1\n"), "{text}");
         assert!(
-            text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.0025\"} 0\n"),
+            text.contains("paddock_source_round_trip_seconds_bucket{le=\"0.0025\",source=\"live \\\"site\\\"\"} 0\n"),
             "{text}"
         );
         assert!(
-            text.contains("paddock_source_round_trip_seconds_bucket{source=\"live \\\"site\\\"\",le=\"0.005\"} 1\n"),
+            text.contains("paddock_source_round_trip_seconds_bucket{le=\"0.005\",source=\"live \\\"site\\\"\"} 1\n"),
             "{text}"
         );
         // OpenMetrics 1.0, "ABNF" section: label values escape \ " and newline.
         assert!(text.contains(r#"paddock_calls_total{model="a\"b\\c\nd",version="1.0.0"} 3"#), "{text}");
         assert!(
-            text.contains(r#"paddock_call_seconds_bucket{model="a\"b\\c\nd",version="1.0.0",le="+Inf"} 3"#),
+            text.contains(r#"paddock_call_seconds_bucket{le="+Inf",model="a\"b\\c\nd",version="1.0.0"} 3"#),
             "{text}"
         );
-        assert!(text.contains(r#"le="0.0025"} 1"#), "{text}");
+        assert!(
+            text.contains(r#"paddock_call_seconds_bucket{le="0.0025",model="a\"b\\c\nd",version="1.0.0"} 1"#),
+            "{text}"
+        );
         assert!(text.contains("paddock_call_seconds_sum{model=\"a\\\"b\\\\c\\nd\",version=\"1.0.0\"} 0.5"), "{text}");
         assert!(text.contains("paddock_generation 7\n"), "{text}");
         assert!(text.ends_with("paddock_test_things 3\n# EOF\n"), "the surface's own families come last: {text}");

@@ -509,11 +509,21 @@ pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
     // The server's own state.
     let gates = app.gates.read().unwrap_or_else(|e| e.into_inner()).len();
     let busy = app.options.score_threads.max(1) - app.pool.available_permits();
-    let own = format!(
-        "# TYPE paddock_serve_gates gauge\n# HELP paddock_serve_gates Models holding a concurrency gate: only models routed when a request named them.\npaddock_serve_gates {gates}\n\
-         # TYPE paddock_serve_score_threads_busy gauge\n# HELP paddock_serve_score_threads_busy Scoring threads running a sandbox call now.\npaddock_serve_score_threads_busy {busy}\n"
-    );
-    let text = metrics::render(&app.registry.usage(), &app.registry.status(), &app.registry.source_usage(), &own);
+    let own = vec![
+        metrics::SurfaceFamily {
+            name: "serve_gates",
+            help: "Models holding a concurrency gate: only models routed when a request named them.",
+            counter: false,
+            value: gates as u64,
+        },
+        metrics::SurfaceFamily {
+            name: "serve_score_threads_busy",
+            help: "Scoring threads running a sandbox call now.",
+            counter: false,
+            value: busy as u64,
+        },
+    ];
+    let text = metrics::render(app.registry.usage(), &app.registry.status(), app.registry.source_usage(), own);
     (StatusCode::OK, [(header::CONTENT_TYPE, metrics::CONTENT_TYPE)], text).into_response()
 }
 

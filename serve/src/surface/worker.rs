@@ -179,29 +179,30 @@ impl WorkerCounts {
         }
     }
 
-    /// The counts in the OpenMetrics text format (families prefixed
-    /// `paddock_worker_`), without the closing `# EOF`.
-    pub fn openmetrics(&self) -> String {
+    /// The counts as OpenMetrics families (named `paddock_worker_*`).
+    pub fn families(&self) -> Vec<crate::registry::metrics::SurfaceFamily> {
         let s = self.summary();
-        let mut out = String::new();
-        for (name, kind, help, v) in [
-            ("events", "counter", "Events taken from the consumer, redeliveries included.", s.events),
-            ("answered", "counter", "Answers published and confirmed.", s.answered),
-            (
-                "duplicate_answers",
-                "counter",
+        let family =
+            |name, counter, help, value| crate::registry::metrics::SurfaceFamily { name, help, counter, value };
+        vec![
+            family("worker_events", true, "Events taken from the consumer, redeliveries included.", s.events),
+            family("worker_answered", true, "Answers published and confirmed.", s.answered),
+            family(
+                "worker_duplicate_answers",
+                true,
                 "Answers the answers stream already held (a redelivered event answered before).",
                 s.duplicates,
             ),
-            ("dead_lettered", "counter", "Events sent to dead-letter.", s.dead_lettered),
-            ("redelivered", "counter", "Events delivered more than once.", s.redelivered),
-            ("retried", "counter", "Events left unacked after an infrastructure fault.", s.retried),
-            ("pending", "gauge", "Events the consumer had not delivered yet, as of the last event taken.", s.pending),
-        ] {
-            let suffix = if kind == "counter" { "_total" } else { "" };
-            out.push_str(&format!("# TYPE paddock_worker_{name} {kind}\n# HELP paddock_worker_{name} {help}\npaddock_worker_{name}{suffix} {v}\n"));
-        }
-        out
+            family("worker_dead_lettered", true, "Events sent to dead-letter.", s.dead_lettered),
+            family("worker_redelivered", true, "Events delivered more than once.", s.redelivered),
+            family("worker_retried", true, "Events left unacked after an infrastructure fault.", s.retried),
+            family(
+                "worker_pending",
+                false,
+                "Events the consumer had not delivered yet, as of the last event taken.",
+                s.pending,
+            ),
+        ]
     }
 }
 
@@ -214,10 +215,10 @@ pub fn metrics_router(registry: Registry, counts: Arc<WorkerCounts>) -> axum::Ro
     use axum::http::header;
     let text = move || {
         let text = crate::registry::metrics::render(
-            &registry.usage(),
+            registry.usage(),
             &registry.status(),
-            &registry.source_usage(),
-            &counts.openmetrics(),
+            registry.source_usage(),
+            counts.families(),
         );
         ([(header::CONTENT_TYPE, crate::registry::metrics::CONTENT_TYPE)], text)
     };
