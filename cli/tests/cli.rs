@@ -907,3 +907,85 @@ fn kill_9(child: &mut std::process::Child) {
     child.kill().unwrap();
     child.wait().unwrap();
 }
+
+/// Every message that names another command, checked against what that
+/// command does: each step gets the message, then runs the command it
+/// names the way it names it.
+#[test]
+fn every_message_naming_a_command_tells_the_truth() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = |name: &str| dir.path().join(name);
+    let s = |p: &Path| p.to_str().unwrap().to_owned();
+
+    // "this is a core WebAssembly module, not a component: pack it first (`paddock pack`)"
+    let core = path("affine-core.wasm");
+    std::fs::write(&core, wat::parse_file(root().join("tests/fixtures/affine.wat")).unwrap()).unwrap();
+    let out = paddock(&["check", &s(&core)], None);
+    assert!(text(&out.stderr).contains("pack it first (`paddock pack`)"), "{}", text(&out.stderr));
+    let packed = path("affine.wasm");
+    assert!(
+        paddock(&["pack", &s(&core), "--params", &s(&write(&path("p"), &[1])), "--out", &s(&packed)], None)
+            .status
+            .success()
+    );
+    let out = paddock(&["inspect", &s(&packed)], None);
+    assert!(out.status.success(), "the packed module loads: {}", text(&out.stderr));
+
+    // "the paddock-model-trees guest (build it with `cargo xtask build`, or pass --evaluator)"
+    let model = root().join("tests/fixtures/stump.json");
+    let out = Command::new(env!("CARGO_BIN_EXE_paddock"))
+        .args(["pack", &s(&model), "--out", &s(&path("stump.wasm"))])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    let err = text(&out.stderr);
+    assert!(err.contains("(build it with `cargo xtask build`, or pass --evaluator)"), "{err}");
+    let built = root().join("target/paddock/guests/paddock-model-trees.wasm");
+    assert!(built.exists(), "`cargo xtask build` leaves the guest at {}", built.display());
+    let out = Command::new(env!("CARGO_BIN_EXE_paddock"))
+        .args(["pack", &s(&model), "--evaluator", &s(&built), "--out", &s(&path("stump.wasm"))])
+        .current_dir(dir.path())
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "with --evaluator it packs: {}", text(&out.stderr));
+
+    // "the demo store is not built yet: run `cargo xtask demo` … (it builds the store into target/paddock/store)"
+    let out = paddock(&["demo", "--store", &s(&path("nowhere"))], None);
+    assert!(text(&out.stderr).contains("run `cargo xtask demo`"), "{}", text(&out.stderr));
+    assert!(root().join("target/paddock/store/routes.toml").exists(), "the demo store is where the message says");
+
+    // "`paddock serve --store S` serves the same store over HTTP"
+    let demo = root().join("target/paddock/store");
+    let out = paddock(&["demo", "--store", &s(&demo)], None);
+    let said = text(&out.stdout);
+    let named =
+        said.split("`paddock serve --store ").nth(1).and_then(|r| r.split('`').next()).expect("the demo names serve");
+    let state = path("serve-state");
+    Served::start(Path::new(named), &state).score();
+
+    // A store with a refused artifact: demo says "see `paddock status --store S`", serve warns
+    // "see GET /store or `paddock status`"; both name the refused file.
+    let store = path("store");
+    std::fs::create_dir_all(store.join("overstay-risk")).unwrap();
+    let v1 = demo.join("overstay-risk/1.0.0.wasm");
+    std::fs::copy(&v1, store.join("overstay-risk/1.0.0.wasm")).unwrap();
+    std::fs::copy(&v1, store.join("overstay-risk/9.9.9.wasm")).unwrap();
+    std::fs::write(store.join("routes.toml"), "[models.overstay-risk]\ndefault = \"1.0.0\"\n").unwrap();
+    let out = paddock(&["demo", "--store", &s(&store)], None);
+    let err = text(&out.stderr);
+    let named = err.split("(see `paddock ").nth(1).and_then(|r| r.split('`').next()).expect("demo names status");
+    let args: Vec<&str> = named.split(' ').collect();
+    assert_eq!(args[..2], ["status", "--store"], "{err}");
+    let status = paddock(&args, None);
+    assert_eq!(status.status.code(), Some(1));
+    assert!(text(&status.stdout).contains("9.9.9.wasm"), "{}", text(&status.stdout));
+    let served = Served::start(&store, &path("refused-state"));
+    let agent = ureq::Agent::config_builder().http_status_as_error(false).build().new_agent();
+    let listing = agent.get(&format!("{}/store", served.base)).call().unwrap().body_mut().read_to_string().unwrap();
+    assert!(listing.contains("9.9.9.wasm") && listing.contains("refused"), "{listing}");
+}
+
+fn write(path: &Path, bytes: &[u8]) -> std::path::PathBuf {
+    std::fs::write(path, bytes).unwrap();
+    path.to_owned()
+}
