@@ -130,14 +130,19 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     // Both workers are waiting on the consumer before any event is there,
     // so both get some.
     let events = js.get_stream(&options.events_stream).await.unwrap();
-    loop {
-        if let Ok(mut consumer) = events.get_consumer::<jetstream::consumer::pull::Config>(&options.consumer).await
-            && consumer.info().await.unwrap().num_waiting >= 2
-        {
-            break;
+    let both_waiting = || async {
+        match events.get_consumer::<jetstream::consumer::pull::Config>(&options.consumer).await {
+            Ok(mut consumer) => consumer.info().await.unwrap().num_waiting >= 2,
+            Err(_) => false,
         }
-        tokio::time::sleep(Duration::from_millis(10)).await;
-    }
+    };
+    paddock_tests::wait_until_async(
+        "both workers waiting on the consumer",
+        Duration::from_secs(60),
+        Duration::from_millis(10),
+        both_waiting,
+    )
+    .await;
     let good = 2_000;
     publish_line_events(&js, &options.events, 0..good).await;
     let bad = [

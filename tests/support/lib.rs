@@ -37,6 +37,22 @@ pub fn wait_until(what: &str, limit: Duration, every: Duration, ready: impl FnMu
     assert!(came_true(limit, every, ready), "{what}: not after {limit:?}");
 }
 
+/// As [`wait_until`], for a condition asked asynchronously (a server's
+/// answer): awaits `ready()` every `every` until it says yes, and fails
+/// naming `what` when `limit` passes first.
+pub async fn wait_until_async<F: std::future::Future<Output = bool>>(
+    what: &str,
+    limit: Duration,
+    every: Duration,
+    mut ready: impl FnMut() -> F,
+) {
+    let give_up = Instant::now() + limit;
+    while !ready().await {
+        assert!(Instant::now() < give_up, "{what}: not after {limit:?}");
+        tokio::time::sleep(every).await;
+    }
+}
+
 /// Asks `ready` every `every` until it says yes (true) or `limit` has
 /// passed (false). [`wait_until`] is this, failing when it never came true.
 pub fn came_true(limit: Duration, every: Duration, mut ready: impl FnMut() -> bool) -> bool {
