@@ -176,6 +176,8 @@ fn malformed_requests_are_400_naming_the_problem() {
         (r#"{"model": "m"}"#, "give `row` (one row) or `rows` (a list)"),
         (r#"{"model": "m", "rows": [{"x": 1}], "at": "yesterday"}"#, "`at`: `yesterday` is not an RFC 3339 time"),
         (r#"{"model": "m", "rows": [{"x": [1, 2]}]}"#, "not an estimate request"),
+        (r#"[2, 3]"#, "expected an object {\"model\": …, \"rows\": […]}, got an array"),
+        (r#""m""#, "got a string"),
     ] {
         let r = call("POST", &estimate_url(&s), Some(body), None);
         assert_eq!((r.status, r.kind().as_str()), (400, "bad_request"), "{body}: {}", r.body);
@@ -207,6 +209,32 @@ fn a_body_over_the_limit_is_413() {
     let r = estimate(&s, "m", &body);
     assert_eq!((r.status, r.kind().as_str()), (413, "too_large"), "{}", r.body);
     assert_eq!(r.json()["error"]["limit"], "body_bytes");
+    let message = r.json()["error"]["message"].as_str().unwrap().to_owned();
+    assert!(
+        message.contains("split the rows over several requests") && message.contains("--max-body-kib"),
+        "{message}"
+    );
+}
+
+/// The OpenAPI document declares the body as `application/json`: a body
+/// declared as anything else is 415, naming what it was declared as.
+#[test]
+fn a_body_that_is_not_json_is_415() {
+    let dir = tempfile::tempdir().unwrap();
+    let s = Server::start(store(dir.path(), true), ServeOptions::default());
+    let body = with_model("m", r#"{"rows": [{"x": 1}]}"#);
+    for declared in ["application/x-www-form-urlencoded", "text/plain; charset=utf-8"] {
+        let mut response =
+            agent().post(&estimate_url(&s)).header("content-type", declared).send(body.as_str()).unwrap();
+        assert_eq!(response.status().as_u16(), 415, "{declared}");
+        let text = response.body_mut().read_to_string().unwrap();
+        let v: serde_json::Value = serde_json::from_str(&text).unwrap();
+        assert_eq!(v["error"]["kind"], "unsupported_media_type", "{text}");
+        assert!(v["error"]["message"].as_str().unwrap().contains(declared), "{text}");
+    }
+    let ok =
+        agent().post(&estimate_url(&s)).header("content-type", "application/json; charset=utf-8").send(body.as_str());
+    assert_eq!(ok.unwrap().status().as_u16(), 200);
 }
 
 #[test]

@@ -151,3 +151,22 @@ fn vouches_round_trip_through_their_file() {
     let err = Vouch::read(&path).unwrap_err().to_string();
     assert!(err.contains("artifact.wasm.vouch: not a vouch"), "{err}");
 }
+
+/// Two mistakes a reviewer makes setting trust up are named as such: a
+/// trust folder with no `.voucher` file in it, and vouching with the public
+/// `.voucher` file instead of the secret `.vouching-key`.
+#[test]
+fn an_empty_trust_folder_and_a_public_file_used_as_the_key_are_named() {
+    let empty = tmp("empty-trust");
+    std::fs::create_dir_all(&empty).unwrap();
+    let err = TrustPolicy::default().trust_dir(&empty).unwrap_err().to_string();
+    assert!(err.contains("empty-trust: holds no `.voucher` file, so no vouch could be trusted"), "{err}");
+    assert!(err.contains("--pin"), "{err}");
+
+    let (_, _, dir) = key("carol");
+    let public = dir.join("carol.voucher");
+    let Err(err) = VouchingKey::read(&public) else { panic!("a public file is not a vouching key") };
+    let err = err.to_string();
+    assert!(err.contains("carol.voucher: this is a voucher's public file"), "{err}");
+    assert!(err.contains("`.vouching-key`"), "{err}");
+}

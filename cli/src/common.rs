@@ -222,10 +222,17 @@ impl StoreArgs {
 }
 
 /// Sends the library's log lines to stderr: warnings and errors, or the
-/// level named by `PADDOCK_LOG` (`error`, `warn`, `info`, `debug`, `trace`).
+/// level named by `PADDOCK_LOG` (`error`, `warn`, `info`, `debug`, `trace`);
+/// in colour only when stderr is a terminal, so a log file holds plain text.
 pub fn init_logging() {
+    use std::io::IsTerminal as _;
     let level = std::env::var("PADDOCK_LOG").ok().and_then(|l| l.parse().ok()).unwrap_or(tracing::Level::WARN);
-    let _ = tracing_subscriber::fmt().with_writer(std::io::stderr).with_max_level(level).with_target(false).try_init();
+    let _ = tracing_subscriber::fmt()
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal())
+        .with_max_level(level)
+        .with_target(false)
+        .try_init();
 }
 
 /// Prints a value as pretty JSON on stdout.

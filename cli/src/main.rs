@@ -109,7 +109,7 @@ fn main() -> ExitCode {
 /// The error and its causes on one line, each cause said once: library
 /// errors already name their cause (`cannot read F: No such file…`), so a
 /// cause whose text the line holds already is not repeated.
-fn message(e: &anyhow::Error) -> String {
+pub(crate) fn message(e: &anyhow::Error) -> String {
     let mut line = String::new();
     for cause in e.chain() {
         let text = cause.to_string();

@@ -225,6 +225,12 @@ fn pack_imports_a_toolkit_file_and_inspect_says_where_the_contract_came_from() {
     );
     assert!(o.status.success(), "{}", text(&o.stderr));
     assert!(text(&o.stdout).contains("loads as session-minutes 1.0.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
+    // An artifact is a build output, not a secret: readable by all, as cargo's are.
+    #[cfg(unix)]
+    {
+        use std::os::unix::fs::PermissionsExt as _;
+        assert_eq!(std::fs::metadata(&out).unwrap().permissions().mode() & 0o777, 0o644);
+    }
     let shown = inspected(&out);
     assert!(shown.contains("imported from tests/fixtures/stump.json (XGBoost JSON model, 1 trees)"), "{shown}");
     assert!(shown.contains("toolkit XGBoost 3.2.0"), "{shown}");
@@ -270,7 +276,7 @@ fn pack_imports_a_scikit_learn_linear_model_onto_the_linear_guest() {
     assert!(shown.contains("(scikit-learn model in ONNX (skl2onnx), linear: 3 output(s) × 4 weights)"), "{shown}");
     assert!(shown.contains("LinearClassifier: one probability per class (3) (softmax)"), "{shown}");
     assert!(shown.contains("feature x2 by position in the graph input `X`"), "{shown}");
-    assert!(shown.contains("output probability_2 the model's the probability of class 2"), "{shown}");
+    assert!(shown.contains("output probability_2 the model: the probability of class 2"), "{shown}");
 
     let evaluator_manifest = root().join("target/paddock/sklearn/onnx-linear.toml");
     let linear = root().join("target/paddock/sklearn/onnx-linear.onnx");
@@ -646,7 +652,15 @@ fn audit_passes_the_example_models_and_reports_the_limits_and_probe() {
         assert!(s.contains("imports      none"), "{s}");
         assert!(s.contains("deadline     50ms per call"), "{s}");
         assert!(s.contains("40/40 checks passed"), "{s}");
-        assert!(s.contains("verdict: passes"), "{s}");
+        // No policy was given: the report says trust was not checked, not that it passed.
+        assert!(s.contains("trust        unvouched: not checked (no --trust or --pin given)"), "{s}");
+        assert!(
+            s.contains("verdict: passes its limits and checks; trust was not checked (give --trust or --pin)"),
+            "{s}"
+        );
+        let digest = paddock_host::Digest::of(&std::fs::read(&a).unwrap()).to_string();
+        let pinned = text(&paddock(&["audit", a.to_str().unwrap(), "--pin", &digest], None).stdout).to_owned();
+        assert!(pinned.contains("trust        pinned") && pinned.contains("verdict: passes\n"), "{pinned}");
         let out = paddock(&["audit", a.to_str().unwrap(), "--json"], None);
         let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
         assert!(v["probe"]["fuel_per_row"].as_f64().unwrap() > 0.0, "{v}");
@@ -988,4 +1002,89 @@ fn every_message_naming_a_command_tells_the_truth() {
 fn write(path: &Path, bytes: &[u8]) -> std::path::PathBuf {
     std::fs::write(path, bytes).unwrap();
     path.to_owned()
+}
+
+/// Log lines written to a file (here a pipe) carry no colour codes.
+#[test]
+fn logs_written_to_a_file_are_plain_text() {
+    let store = root().join("target/paddock/store");
+    let state = tempfile::tempdir().unwrap();
+    std::fs::write(state.path().join("usage.json"), "not json").unwrap();
+    let line = r#"{"model": "overstay-risk", "row": {"expected_minutes": 95, "plugin_hour": 18, "site_occupancy": 0.7, "weekend": false, "fleet": false}}"#;
+    let out = paddock(
+        &["stream", "--store", store.to_str().unwrap(), "--state", state.path().to_str().unwrap()],
+        Some(&format!("{line}\n")),
+    );
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let err = text(&out.stderr);
+    assert!(err.contains("WARN the usage file does not parse"), "the bad usage file is logged: {err}");
+    assert!(!err.contains('\u{1b}'), "no escape codes in {err:?}");
+}
+
+/// Checks recorded with the model file's names (as the notebook helper
+/// records them) pack when the overrides rename features and outputs: the
+/// checks are renamed with them, and inspect says so. `--name` and
+/// `--version` set the contract's name and version over the overrides'.
+/// Expected values worked out by hand from tests/fixtures/stump.json.
+#[test]
+fn pack_renames_the_checks_as_the_overrides_rename_the_contract() {
+    let overrides = tmp("rename.toml");
+    std::fs::write(
+        &overrides,
+        "name = \"ignored\"\n[features.arrival_soc]\nname = \"soc_pct\"\n[outputs.value]\nname = \"minutes\"\n",
+    )
+    .unwrap();
+    let checks = tmp("rename.checks.json");
+    std::fs::write(
+        &checks,
+        r#"{"source": "worked out by hand from tests/fixtures/stump.json", "tolerance": {"abs": 0, "rel": 0}, "cases": [
+            {"row": {"arrival_soc": 12.5, "kw": 11}, "expect": {"value": 90}},
+            {"row": {"arrival_soc": 40, "kw": 11}, "expect": {"value": 45}}]}"#,
+    )
+    .unwrap();
+    let out = tmp("rename.wasm");
+    let args = [
+        "pack",
+        "tests/fixtures/stump.json",
+        "--overrides",
+        overrides.to_str().unwrap(),
+        "--checks",
+        checks.to_str().unwrap(),
+        "--name",
+        "session-minutes",
+        "--version",
+        "2.1.0",
+        "--out",
+        out.to_str().unwrap(),
+    ];
+    let o = paddock(&args, None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert!(text(&o.stdout).contains("loads as session-minutes 2.1.0\nchecks: 2/2 passed"), "{}", text(&o.stdout));
+    let shown = inspected(&out);
+    assert!(
+        shown.contains("checks recorded with the file's names, renamed as the overrides rename them (arrival_soc → soc_pct, value → minutes)"),
+        "{shown}"
+    );
+    // The artifact's checks use the contract's names: `check` passes them again.
+    let o = paddock(&["check", out.to_str().unwrap()], None);
+    assert!(o.status.success(), "{}", text(&o.stdout));
+}
+
+/// A trust folder that is not there, or holds no voucher, is named with
+/// its cause said once (`admit` prints the refusal on stdout).
+#[test]
+fn admit_names_a_missing_or_empty_trust_folder_once() {
+    let a = artifact_path("charge-minutes");
+    let out = paddock(&["admit", a.to_str().unwrap(), "--trust", "/nonexistent-trust"], None);
+    assert_eq!(out.status.code(), Some(1));
+    let said = text(&out.stdout);
+    assert!(said.contains("refused: /nonexistent-trust: No such file or directory (os error 2)\n"), "{said}");
+    assert_eq!(said.matches("No such file").count(), 1, "{said}");
+    let empty = tempfile::tempdir().unwrap();
+    let out = paddock(&["admit", a.to_str().unwrap(), "--trust", empty.path().to_str().unwrap()], None);
+    assert!(
+        text(&out.stdout).contains("holds no `.voucher` file, so no vouch could be trusted"),
+        "{}",
+        text(&out.stdout)
+    );
 }

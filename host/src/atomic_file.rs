@@ -26,12 +26,29 @@ pub fn write_with(path: &Path, fill: impl FnOnce(&mut std::fs::File) -> std::io:
     Ok(())
 }
 
-/// Writes `bytes` to `path` atomically.
+/// Writes `bytes` to `path` atomically. The file is readable by its owner
+/// only (the temporary file's mode, 0600 on Unix).
 ///
 /// # Errors
 /// As [`write_with`].
 pub fn write(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     write_with(path, |f| f.write_all(bytes))
+}
+
+/// Writes `bytes` to `path` atomically, readable by everyone (0644 on
+/// Unix) as build outputs are: artifacts and vouches, which are not secrets.
+///
+/// # Errors
+/// As [`write_with`].
+pub fn write_readable(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    write_with(path, |f| {
+        #[cfg(unix)]
+        {
+            use std::os::unix::fs::PermissionsExt as _;
+            f.set_permissions(std::fs::Permissions::from_mode(0o644))?;
+        }
+        f.write_all(bytes)
+    })
 }
 
 #[cfg(test)]
@@ -57,6 +74,18 @@ mod tests {
         });
         // Nothing but the file itself is left.
         assert_eq!(std::fs::read_dir(dir.path()).unwrap().count(), 1);
+    }
+
+    #[cfg(unix)]
+    #[test]
+    fn readable_files_are_0644_and_others_0600() {
+        use std::os::unix::fs::PermissionsExt as _;
+        let dir = tempfile::tempdir().unwrap();
+        let mode = |p: &Path| std::fs::metadata(p).unwrap().permissions().mode() & 0o777;
+        write_readable(&dir.path().join("artifact"), b"a").unwrap();
+        write(&dir.path().join("state"), b"s").unwrap();
+        assert_eq!(mode(&dir.path().join("artifact")), 0o644);
+        assert_eq!(mode(&dir.path().join("state")), 0o600);
     }
 
     #[test]

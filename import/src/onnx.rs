@@ -800,7 +800,7 @@ fn finish(
     }
     let (outputs, about) = task.outputs(labels, linked);
     for (o, about) in outputs.into_iter().zip(about) {
-        let from = format!("the model's {about}");
+        let from = format!("the model: {about}");
         draft.output(o.about(&about), from);
     }
     let origin = Origin {

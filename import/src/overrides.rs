@@ -96,6 +96,16 @@ pub struct OutputOverride {
 }
 
 impl Overrides {
+    /// The features renamed: (the file's name, the new name).
+    pub fn feature_renames(&self) -> Vec<(&str, &str)> {
+        self.features.iter().filter_map(|(k, o)| Some((k.as_str(), o.name.as_deref()?))).collect()
+    }
+
+    /// The outputs renamed: (the name as imported, the new name).
+    pub fn output_renames(&self) -> Vec<(&str, &str)> {
+        self.outputs.iter().filter_map(|(k, o)| Some((k.as_str(), o.name.as_deref()?))).collect()
+    }
+
     /// Parses an overrides file.
     ///
     /// # Errors

@@ -30,7 +30,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
         Ok(Admission::Pin) => (true, "admitted: its digest is pinned".to_owned()),
         Ok(Admission::OpenPolicy) => (true, "admitted: the policy requires nothing (give --trust or --pin)".to_owned()),
-        Err(e) => (false, format!("refused: {e:#}")),
+        Err(e) => (false, format!("refused: {}", crate::message(e))),
     };
     if args.json {
         print_json(&serde_json::json!({
@@ -38,7 +38,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             "digest": artifact.digest(),
             "admitted": ok,
             "admission": verdict.as_ref().ok(),
-            "error": verdict.as_ref().err().map(|e| format!("{e:#}")),
+            "error": verdict.as_ref().err().map(crate::message),
         }))?;
     } else {
         outln!("{} {}\n{text}", args.artifact.display(), artifact.digest())?;

@@ -34,7 +34,12 @@ fn text(r: &AuditReport) -> String {
     line("digest", r.digest.map_or("unreadable".into(), |d| d.to_string()));
     line("size", format!("{} bytes", r.bytes));
     let voucher = r.trust.voucher.as_deref().map_or(String::new(), |v| format!(" (vouch by voucher {v})"));
-    line("trust", format!("{}{voucher}", r.trust.status));
+    let why = match (r.trust.status, &r.trust.error) {
+        ("unvouched", _) => ": not checked (no --trust or --pin given)".to_owned(),
+        (_, Some(e)) => format!(": {e}"),
+        _ => String::new(),
+    };
+    line("trust", format!("{}{voucher}{why}", r.trust.status));
     if let Some(s) = &r.inventory {
         line("imports", if s.imports.is_empty() { "none".into() } else { s.imports.join(", ") });
         line("exports", s.exports.join(", "));
@@ -115,7 +120,9 @@ fn text(r: &AuditReport) -> String {
     if let Some(c) = &r.contract {
         out.push_str(&format!("\ncontract: {}\n", contract_text(c)));
     }
-    if r.violations.is_empty() {
+    if r.violations.is_empty() && r.trust.status == "unvouched" {
+        out.push_str("verdict: passes its limits and checks; trust was not checked (give --trust or --pin)\n");
+    } else if r.violations.is_empty() {
         out.push_str("verdict: passes\n");
     } else {
         let n = r.violations.len();

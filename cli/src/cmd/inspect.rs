@@ -45,7 +45,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         .with_context(|| format!("in {}: the origin section is not an importer's record", args.artifact.display()))?;
     let (contract, load_error) = match args.load.load(&args.artifact) {
         Ok((_, model)) => (Some(model.contract().clone()), None),
-        Err(e) => (None, Some(format!("{e:#}"))),
+        Err(e) => (None, Some(crate::message(&e))),
     };
     let report = Report {
         path: args.artifact,

@@ -37,6 +37,13 @@ pub struct Args {
     /// unit, required-ness, bounds; see docs/models.md).
     #[arg(long, value_name = "FILE")]
     overrides: Option<PathBuf>,
+    /// The model's name in its contract (an imported model or ONNX graph; over the overrides' or manifest's).
+    #[arg(long, value_name = "NAME")]
+    name: Option<String>,
+    /// The model's version in its contract, semver (an imported model or ONNX graph; over the overrides' or
+    /// manifest's).
+    #[arg(long = "version", value_name = "SEMVER")]
+    model_version: Option<String>,
     /// The guest that evaluates an imported or ONNX model [default: the
     /// trees, linear or program guest the import needs, or the ONNX evaluator, from
     /// target/paddock/guests/ where `cargo xtask build` leaves them].
@@ -110,15 +117,41 @@ pub fn run(args: Args) -> Result<Outcome> {
         InputKind::Toolkit(_) | InputKind::OnnxGraph if args.params.is_some() => {
             return Err(refuse("--params", "WebAssembly input"));
         }
+        InputKind::WebAssembly if args.name.is_some() || args.model_version.is_some() => {
+            return Err(refuse(
+                "--name and --version",
+                "imported models and ONNX graphs (WebAssembly declares its own)",
+            ));
+        }
         _ => {}
     }
+    let mut checks = match &args.checks {
+        Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
+        None => None,
+    };
     let (wasm, params, origin) = match kind {
         InputKind::Toolkit(format) => {
-            let overrides = match &args.overrides {
-                Some(p) => Some(Overrides::from_toml(&read_text(p)?).with_context(|| format!("in {}", p.display()))?),
-                None => None,
+            let mut overrides = match &args.overrides {
+                Some(p) => Overrides::from_toml(&read_text(p)?).with_context(|| format!("in {}", p.display()))?,
+                None => Overrides::default(),
             };
-            let imported = paddock_import::import(&input, format, &file, overrides.as_ref())?;
+            overrides.name = args.name.clone().or(overrides.name);
+            overrides.version = args.model_version.clone().or(overrides.version);
+            let mut imported = paddock_import::import(&input, format, &file, Some(&overrides))?;
+            let (features, outputs) = (overrides.feature_renames(), overrides.output_renames());
+            if let Some(c) = checks.take() {
+                if !features.is_empty() || !outputs.is_empty() {
+                    let pairs = features.iter().chain(&outputs).map(|(a, b)| format!("{a} → {b}"));
+                    imported.origin.contract.push(paddock_import::Provenance {
+                        part: "checks".into(),
+                        from: format!(
+                            "recorded with the file's names, renamed as the overrides rename them ({})",
+                            pairs.collect::<Vec<_>>().join(", ")
+                        ),
+                    });
+                }
+                checks = Some(c.renamed(&features, &outputs));
+            }
             let guest =
                 evaluator(&args, &Path::new(GUESTS).join(format!("{}.wasm", imported.guest())), imported.guest())?;
             (guest, Some(imported.params()), Some(imported.origin.to_map()))
@@ -128,17 +161,15 @@ pub fn run(args: Args) -> Result<Outcome> {
                 .manifest
                 .as_ref()
                 .with_context(|| format!("{file}: an ONNX graph needs its manifest (--manifest FILE)"))?;
-            let manifest =
+            let mut manifest =
                 onnx_graph::read_manifest(&read_text(path)?).with_context(|| format!("in {}", path.display()))?;
+            manifest.name = args.name.clone().unwrap_or(manifest.name);
+            manifest.version = args.model_version.clone().unwrap_or(manifest.version);
             let params = onnx_graph::params(&manifest, &input)?;
             (evaluator(&args, Path::new(DEFAULT_EVALUATOR), "ONNX evaluator")?, Some(params), None)
         }
         InputKind::WebAssembly => (input, args.params.as_deref().map(read).transpose()?, None),
         _ => anyhow::bail!("{file}: {} is not packed by this version", kind.described()),
-    };
-    let checks = match &args.checks {
-        Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
-        None => None,
     };
     let parts = Parts { wasm: &wasm, params: params.as_deref(), checks: checks.as_ref(), origin: origin.as_ref() };
     let load = LoadArgs { wasi: args.wasi.clone(), ..LoadArgs::default() };

@@ -62,6 +62,32 @@ pub struct Checks {
 }
 
 impl Checks {
+    /// The same checks with features and outputs renamed (`(from, to)`
+    /// pairs): for checks recorded with a model file's names when the
+    /// contract renames them.
+    pub fn renamed(mut self, features: &[(&str, &str)], outputs: &[(&str, &str)]) -> Checks {
+        // Two steps, so that swapped names (`a`→`b`, `b`→`a`) do not collide.
+        let hold = |i: usize| format!("\u{0}renaming {i}");
+        for case in &mut self.cases {
+            for (i, (from, _)) in features.iter().enumerate() {
+                case.row.rename(from, &hold(i));
+            }
+            for (i, (_, to)) in features.iter().enumerate() {
+                case.row.rename(&hold(i), to);
+            }
+            let mut taken: Vec<(usize, f64)> = Vec::new();
+            for (i, (from, _)) in outputs.iter().enumerate() {
+                if let Some(v) = case.expect.remove(*from) {
+                    taken.push((i, v));
+                }
+            }
+            for (i, v) in taken {
+                case.expect.insert(outputs[i].1.to_owned(), v);
+            }
+        }
+        self
+    }
+
     /// Parses checks from JSON.
     ///
     /// # Errors

@@ -199,6 +199,14 @@ impl VouchingKey {
     /// # Errors
     /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
+        if read_toml::<VoucherFile>(path, "a voucher").is_ok() {
+            return Err(TrustError::BadFile {
+                path: path.to_owned(),
+                reason: "this is a voucher's public file, which checks vouches; vouch with the secret \
+                         `.vouching-key` file `paddock voucher` wrote beside it"
+                    .into(),
+            });
+        }
         let file: VouchingKeyFile = read_toml(path, "a vouching key")?;
         let seed = key_bytes(path, "ed25519_seed", &file.ed25519_seed)?;
         Ok(VouchingKey { name: file.name, key: SigningKey::from_bytes(&seed) })
@@ -307,7 +315,8 @@ impl TrustPolicy {
     ///
     /// # Errors
     /// [`TrustError::Io`] for an unreadable directory, [`TrustError::BadFile`]
-    /// naming the first bad voucher file.
+    /// naming the first bad voucher file, or the directory when it holds no
+    /// `.voucher` file (no vouch could be trusted: a mistake, not a policy).
     pub fn trust_dir(mut self, dir: &Path) -> Result<Self, TrustError> {
         let entries = std::fs::read_dir(dir).map_err(|source| TrustError::Io { path: dir.to_owned(), source })?;
         let mut paths: Vec<PathBuf> = entries
@@ -315,6 +324,15 @@ impl TrustPolicy {
             .filter(|p| p.extension().is_some_and(|x| x == VOUCHER_SUFFIX))
             .collect();
         paths.sort();
+        if paths.is_empty() {
+            return Err(TrustError::BadFile {
+                path: dir.to_owned(),
+                reason: format!(
+                    "holds no `.{VOUCHER_SUFFIX}` file, so no vouch could be trusted: copy each voucher's public \
+                     `.{VOUCHER_SUFFIX}` file here, or admit digests with --pin"
+                ),
+            });
+        }
         for p in paths {
             self.trusted.push(Voucher::read(&p)?);
         }

@@ -107,6 +107,13 @@ impl Row {
         }
     }
 
+    /// Renames a feature, if the row has it.
+    pub fn rename(&mut self, from: &str, to: &str) {
+        if let Some((n, _)) = self.0.iter_mut().find(|(n, _)| n == from) {
+            *n = to.to_owned();
+        }
+    }
+
     /// The values, in insertion order.
     pub fn fields(&self) -> &[(String, Value)] {
         &self.0

@@ -189,7 +189,8 @@ pub fn pack_verified(
     if let Some(dir) = out.parent().filter(|d| !d.as_os_str().is_empty()) {
         std::fs::create_dir_all(dir).map_err(|source| PackError::Write { path: dir.to_owned(), source })?;
     }
-    crate::atomic_file::write(out, artifact.bytes()).map_err(|source| PackError::Write { path: path(), source })?;
+    crate::atomic_file::write_readable(out, artifact.bytes())
+        .map_err(|source| PackError::Write { path: path(), source })?;
     Ok(packed)
 }
 

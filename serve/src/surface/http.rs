@@ -18,6 +18,7 @@
 //!
 //! Status codes: 400 malformed request, 401/403 admin token missing or
 //! wrong / admin disabled, 404 unknown model, 413 body over the size limit,
+//! 415 a body declared as something other than JSON,
 //! 422 rows that break the contract (every row named), 500 with kind
 //! `limit` when a limit stopped the model, 502 when the model failed
 //! (trapped, declined, answered outside its contract), 503 with
@@ -221,6 +222,7 @@ fn rejected(app: &App, kind: &'static str, status: StatusCode, body: ErrorBody) 
         (status = 400, description = "Malformed request (`bad_request`).", body = ErrorBody),
         (status = 404, description = "No model of that name is served (`unknown_model`).", body = ErrorBody),
         (status = 413, description = "The body is over the size limit (`too_large`).", body = ErrorBody),
+        (status = 415, description = "The body is declared as something other than JSON (`unsupported_media_type`).", body = ErrorBody),
         (status = 422, description = "No row is valid for the contract (`invalid_rows`, every problem listed), or too many rows.", body = ErrorBody),
         (status = 500, description = "A limit stopped the model (`limit`), or the server failed.", body = ErrorBody),
         (status = 502, description = "The model failed: trapped, declined, or answered outside its contract.", body = ErrorBody),
@@ -228,7 +230,14 @@ fn rejected(app: &App, kind: &'static str, status: StatusCode, body: ErrorBody) 
             headers(("Retry-After" = u32, description = "Seconds to wait before trying again."))),
     )
 )]
-pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Response {
+pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, body: Body) -> Response {
+    if let Some(declared) = not_json(&headers) {
+        let b = ErrorBody::new(
+            "unsupported_media_type",
+            format!("the body is declared as `{declared}`; send JSON with `content-type: application/json`"),
+        );
+        return rejected(&app, "unsupported_media_type", StatusCode::UNSUPPORTED_MEDIA_TYPE, b);
+    }
     let limit = app.options.max_body_bytes;
     let bytes = match to_bytes(body, limit).await {
         Ok(b) => b,
@@ -237,7 +246,13 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Respons
             let too_large = std::error::Error::source(&e).is_some_and(|s| s.to_string().contains("length limit"))
                 || e.to_string().contains("length limit");
             return if too_large {
-                let mut b = ErrorBody::new("too_large", format!("the request body is over the limit of {limit} bytes"));
+                let mut b = ErrorBody::new(
+                    "too_large",
+                    format!(
+                        "the request body is over the limit of {limit} bytes: split the rows over several requests, \
+                         or start the server with a larger --max-body-kib"
+                    ),
+                );
                 b.error.limit = Some("body_bytes".into());
                 rejected(&app, "too_large", StatusCode::PAYLOAD_TOO_LARGE, b)
             } else {
@@ -249,7 +264,12 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, body: Body) -> Respons
     let mut request: EstimateRequest = match serde_json::from_slice(&bytes) {
         Ok(r) => r,
         Err(e) => {
-            let b = ErrorBody::bad_request(format!("not an estimate request: {e}"));
+            let b = match json_kind(&bytes) {
+                Some(kind) if kind != "an object" => ErrorBody::bad_request(format!(
+                    "not an estimate request: expected an object {{\"model\": …, \"rows\": […]}}, got {kind}"
+                )),
+                _ => ErrorBody::bad_request(format!("not an estimate request: {e}")),
+            };
             return rejected(&app, "bad_request", StatusCode::BAD_REQUEST, b);
         }
     };
@@ -494,6 +514,29 @@ pub(crate) async fn ready(State(app): State<Arc<App>>) -> Response {
         r.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(app.options.retry_after_secs));
         r
     }
+}
+
+/// The media type a request declares when it is not JSON (`application/json`
+/// or a `+json` type); `None` when it is JSON or declares none.
+fn not_json(headers: &HeaderMap) -> Option<String> {
+    let declared = headers.get(header::CONTENT_TYPE)?;
+    let text = declared.to_str().unwrap_or("(not text)");
+    let essence = text.split(';').next().unwrap_or("").trim().to_ascii_lowercase();
+    let json = essence == "application/json" || (essence.starts_with("application/") && essence.ends_with("+json"));
+    (!json).then(|| text.to_owned())
+}
+
+/// What kind of JSON value a body holds, from its first byte.
+fn json_kind(bytes: &[u8]) -> Option<&'static str> {
+    Some(match bytes.trim_ascii_start().first()? {
+        b'{' => "an object",
+        b'[' => "an array",
+        b'"' => "a string",
+        b't' | b'f' => "a boolean",
+        b'n' => "null",
+        b'-' | b'0'..=b'9' => "a number",
+        _ => return None,
+    })
 }
 
 /// The usage ledger (calls, rows, errors, refused rows, wall time, fuel,
