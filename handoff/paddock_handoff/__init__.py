@@ -23,6 +23,7 @@ binary classifier, ``probability_0``, ``probability_1``… for one
 probability per class.
 """
 import json
+import os
 import math
 import platform
 from collections import namedtuple
@@ -59,10 +60,13 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     model with names, ``STEM.toml`` is written too, paddock overrides
     naming the file's ``x0``, ``x1``… for ``paddock pack --overrides``.
 
+    ``STEM``'s folder is created when it does not exist.
+
     Returns ``HandedOff(model=path, checks=path, cases=count,
     overrides=path or None)``.
     """
     kind = _toolkit(model)
+    os.makedirs(os.path.dirname(stem) or ".", exist_ok=True)
     matrix, names = _matrix(rows, names)
     overrides = None
     if kind == "xgboost":
