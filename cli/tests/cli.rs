@@ -1088,3 +1088,38 @@ fn admit_names_a_missing_or_empty_trust_folder_once() {
         text(&out.stdout)
     );
 }
+
+/// `paddock serve` says at start, on stderr, what it serves (each version
+/// and the routes using it) and what it refused, before the address line.
+#[test]
+fn serve_says_at_start_what_it_serves_and_what_it_refused() {
+    use std::io::{BufRead, Read};
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    std::fs::create_dir_all(store.join("overstay-risk")).unwrap();
+    let v1 = root().join("target/paddock/store/overstay-risk/1.0.0.wasm");
+    std::fs::copy(&v1, store.join("overstay-risk/1.0.0.wasm")).unwrap();
+    // A copy filed under another version: its contract says 1.0.0.
+    std::fs::copy(&v1, store.join("overstay-risk/9.9.9.wasm")).unwrap();
+    std::fs::write(store.join("routes.toml"), "[models.overstay-risk]\ndefault = \"1.0.0\"\n").unwrap();
+    let mut child = Command::new(env!("CARGO_BIN_EXE_paddock"))
+        .args(["serve", "--listen", "127.0.0.1:0", "--store"])
+        .arg(&store)
+        .arg("--state")
+        .arg(dir.path().join("state"))
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn()
+        .unwrap();
+    // The address line comes after the summary: once it is read, the summary is written.
+    let mut line = String::new();
+    std::io::BufReader::new(child.stdout.take().unwrap()).read_line(&mut line).unwrap();
+    assert!(line.starts_with("listening on "), "{line}");
+    let _ = child.kill();
+    let mut err = String::new();
+    child.stderr.take().unwrap().read_to_string(&mut err).unwrap();
+    let _ = child.wait();
+    assert!(err.contains("serving overstay-risk: 1.0.0 (default)\n"), "{err}");
+    assert!(err.contains("refused overstay-risk/9.9.9.wasm: "), "{err}");
+    assert!(err.contains("see GET /store or `paddock status` for every artifact"), "{err}");
+}

@@ -59,10 +59,8 @@ pub fn run(args: Args) -> Result<Outcome> {
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the requests in flight")?;
     let registry = args.store.open()?;
-    let refused = registry.status().problems().count();
-    if refused > 0 {
-        let what = if refused == 1 { "1 artifact is" } else { &format!("{refused} artifacts are") };
-        eprintln!("warning: {what} not loaded as on disk; see GET /store or `paddock status`");
+    for line in served_lines(&registry.status()) {
+        eprintln!("{line}");
     }
     let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
     let defaults = ServeOptions::default();
@@ -90,4 +88,47 @@ pub fn run(args: Args) -> Result<Outcome> {
     let saved = registry.save_usage()?;
     eprintln!("stopped; usage written to {}", saved.display());
     Ok(Outcome::Ok)
+}
+
+/// What a store serves and what it refused, in a few lines for the start:
+/// one per model served (each version with the routes that use it), one per
+/// artifact refused or kept, and the routes file's state when it was not taken.
+fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
+    use paddock_serve::registry::{ArtifactState, ROUTES_FILE, RoutesState};
+    let mut models: std::collections::BTreeMap<&str, Vec<String>> = std::collections::BTreeMap::new();
+    let mut lines = Vec::new();
+    for a in &status.artifacts {
+        match (&a.state, &a.model, &a.version) {
+            (ArtifactState::Loaded, Some(model), Some(version)) => {
+                let used = if a.used_by.is_empty() { "unrouted".to_owned() } else { a.used_by.join(", ") };
+                models.entry(model).or_default().push(format!("{version} ({used})"));
+            }
+            (ArtifactState::Loaded, ..) => {}
+            (ArtifactState::Refused { refusal }, ..) => lines.push(format!("refused {}: {refusal}", a.path.display())),
+            (ArtifactState::KeptAfterRefusal { refusal, .. }, ..) => {
+                lines.push(format!("kept the old bytes of {}: the new ones are refused: {refusal}", a.path.display()))
+            }
+            (ArtifactState::KeptAfterRemoval, ..) => {
+                lines.push(format!("kept {} while routed: its file was removed", a.path.display()))
+            }
+        }
+    }
+    let mut out: Vec<String> =
+        models.into_iter().map(|(model, versions)| format!("serving {model}: {}", versions.join(", "))).collect();
+    if out.is_empty() {
+        out.push(format!("serving no model yet ({} in {})", status.store.display(), ROUTES_FILE));
+    }
+    out.extend(lines);
+    match &status.routes {
+        RoutesState::Accepted => {}
+        RoutesState::Missing => out.push(format!("no {ROUTES_FILE}: nothing is routed")),
+        RoutesState::Refused { problems } => out.push(format!(
+            "{ROUTES_FILE} refused: {}",
+            problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ")
+        )),
+    }
+    if status.problems().next().is_some() {
+        out.push("see GET /store or `paddock status` for every artifact".into());
+    }
+    out
 }
