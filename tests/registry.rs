@@ -619,3 +619,40 @@ fn with_a_metering_runtime_the_ledger_sums_fuel() {
     assert!(fuel > 0);
     assert_eq!(usage.versions[0].fuel, Some(fuel));
 }
+
+/// Routes are judged model by model: at start, a model whose routes name a
+/// version that did not load (here one failing its checks) is not served
+/// and is named, while the other model serves; at a reload, such a model
+/// keeps the routes it had.
+#[test]
+fn one_models_broken_routes_leave_the_other_models_serving() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    put(store, "n", "1.0.0", &line_artifact("n", "1.0.0", 2.0, 0.0, Some(false)));
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.n]\ndefault = \"1.0.0\"\n");
+    let reg = open(store);
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    let RoutesState::PartlyTaken { models, problems } = reg.status().routes else {
+        panic!("{:?}", reg.status().routes)
+    };
+    assert_eq!(models, ["n"]);
+    assert!(problems[0].contains("model `n`: version 1.0.0 (used by default) is not loaded"), "{problems:?}");
+    let e = reg.score(&Request::new("n", &Context::new(), &x(1.0))).unwrap_err();
+    assert!(matches!(e, paddock_serve::RequestError::UnknownModel { .. }), "{e}");
+
+    // n is fixed and routed; then m's routes name a version that fails its
+    // checks: m keeps the routes it had, n takes its new ones.
+    put(store, "n", "1.0.0", &line_artifact("n", "1.0.0", 2.0, 0.0, Some(true)));
+    reg.reload().unwrap();
+    assert_eq!(reg.status().routes, RoutesState::Accepted);
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(false)));
+    put(store, "n", "2.0.0", &line_artifact("n", "2.0.0", 3.0, 0.0, Some(true)));
+    routes(store, "[models.m]\ndefault = \"2.0.0\"\n[models.n]\ndefault = \"2.0.0\"\n");
+    let report = reg.reload().unwrap();
+    assert!(report.routes_refused[0].contains("model `m`: version 2.0.0"), "{report:?}");
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "1.0.0");
+    assert_eq!(ask(&reg, "n", &Context::new(), None, 5.0).0, "2.0.0");
+    let RoutesState::PartlyTaken { models, .. } = reg.status().routes else { panic!("{:?}", reg.status().routes) };
+    assert_eq!(models, ["m"]);
+}

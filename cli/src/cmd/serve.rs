@@ -122,12 +122,14 @@ fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
     match &status.routes {
         RoutesState::Accepted => {}
         RoutesState::Missing => out.push(format!("no {ROUTES_FILE}: nothing is routed")),
-        RoutesState::Refused { problems } => out.push(format!(
-            "{ROUTES_FILE} refused: {}",
-            problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ")
+        RoutesState::Refused { problems } => out.push(format!("{ROUTES_FILE} refused: {}", problems.join("; "))),
+        RoutesState::PartlyTaken { models, problems } => out.push(format!(
+            "{ROUTES_FILE}: not taken for {} (each keeps the routes it had): {}",
+            models.join(", "),
+            problems.join("; ")
         )),
     }
-    if status.problems().next().is_some() {
+    if status.problems().next().is_some() || !matches!(status.routes, RoutesState::Accepted) {
         out.push("see GET /store or `paddock status` for every artifact".into());
     }
     out

@@ -28,7 +28,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let refused = status
         .problems()
         .any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
-        || matches!(status.routes, RoutesState::Refused { .. })
+        || matches!(status.routes, RoutesState::Refused { .. } | RoutesState::PartlyTaken { .. })
         || matches!(status.features, FeaturesState::Refused { .. });
     if args.json {
         print_json(&status)?;
@@ -69,6 +69,16 @@ pub fn run(args: Args) -> Result<Outcome> {
             RoutesState::Accepted => outln!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE)?,
             RoutesState::Missing => {
                 outln!("\nroutes: no {} — nothing is served", paddock_serve::registry::ROUTES_FILE)?
+            }
+            RoutesState::PartlyTaken { models, problems } => {
+                outln!(
+                    "\nroutes: {} taken, except for {} (each keeps the routes it had):",
+                    paddock_serve::registry::ROUTES_FILE,
+                    models.join(", ")
+                )?;
+                for p in problems {
+                    outln!("  - {p}")?;
+                }
             }
             RoutesState::Refused { problems } => {
                 outln!("\nroutes: refused (the previous routes would keep serving):")?;

@@ -179,8 +179,10 @@ fn removed_versions(old: &Snapshot, versions: &Versions) -> Versions {
     removed
 }
 
-/// Step 3: the routes file in the store if it parses and every version it
-/// names is loaded (or removed but still loaded), else the old routes.
+/// Step 3: the routes file in the store if it parses, judged model by
+/// model: a model whose routes name only loaded versions (or removed but
+/// still loaded ones) takes its new routes; any other keeps its old routes
+/// (none, if it had none). A file that does not parse is refused whole.
 fn read_routes(
     shared: &Shared,
     old: &Snapshot,
@@ -211,7 +213,16 @@ fn read_routes(
             let parsed = std::str::from_utf8(&bytes)
                 .map_err(|e| RoutesError { problems: vec![format!("not UTF-8 text: {e}")] })
                 .and_then(Routes::parse)
-                .and_then(|r| r.check_versions(available).map(|()| r));
+                .map(|r| r.split_by_versions(available));
+            let parsed = match parsed {
+                // Some models' routes are usable: those serve, the others keep their old routes.
+                Ok((taken, refused)) if !refused.is_empty() && taken.models().next().is_some() => {
+                    return partly_taken(old, taken, refused, &routes_path, (last_seen, fp), report);
+                }
+                Ok((taken, refused)) if refused.is_empty() => Ok(taken),
+                Ok((_, refused)) => Err(RoutesError { problems: refused.into_values().flatten().collect() }),
+                Err(e) => Err(e),
+            };
             match parsed {
                 Ok(r) => {
                     let same = matches!(&last_seen.routes, Some((last, RoutesState::Accepted)) if *last == fp);
@@ -232,6 +243,32 @@ fn read_routes(
             }
         }
     }
+}
+
+/// The routes of the models `taken`, and for each model `refused` the
+/// routes it had before, if any.
+fn partly_taken(
+    old: &Snapshot,
+    mut taken: Routes,
+    refused: BTreeMap<String, Vec<String>>,
+    routes_path: &std::path::Path,
+    (last_seen, fp): (&mut LastSeen, gate::Fingerprint),
+    report: &mut ReloadReport,
+) -> (Arc<Routes>, RoutesState) {
+    for model in refused.keys() {
+        if let Some(before) = old.routes.model(model) {
+            taken = taken.with_model(model, before.clone());
+        }
+    }
+    let problems: Vec<String> = refused.values().flatten().cloned().collect();
+    let state = RoutesState::PartlyTaken { models: refused.keys().cloned().collect(), problems: problems.clone() };
+    let first_time = last_seen.routes.as_ref().is_none_or(|(last, _)| *last != fp);
+    if first_time {
+        tracing::warn!(routes = %routes_path.display(), problems = %problems.join("; "), "routes of some models refused; each keeps the routes it had, the others serve");
+        report.routes_refused = problems;
+    }
+    last_seen.routes = Some((fp, state.clone()));
+    (Arc::new(taken), state)
 }
 
 /// Step 4: removed versions the routes still use stay loaded; the rest are

@@ -348,38 +348,40 @@ impl Routes {
     /// [`RoutesError`] naming each model and version that `available` says
     /// is not there.
     pub fn check_versions(&self, available: impl Fn(&str, &Version) -> bool) -> Result<(), RoutesError> {
-        let mut problems = Vec::new();
-        for (model, versions) in self.uses() {
-            for (version, users) in versions {
-                if !available(model, version) {
-                    problems.push(format!(
-                        "model `{model}`: version {version} (used by {}) is not loaded",
-                        users.join(", ")
-                    ));
-                }
-            }
-        }
+        let problems: Vec<String> =
+            self.models.iter().flat_map(|(name, m)| m.missing_versions(name, &available)).collect();
         if problems.is_empty() { Ok(()) } else { Err(RoutesError { problems }) }
+    }
+
+    /// Judges the routes model by model: the routes of every model whose
+    /// versions are all available, and for each other model the problems
+    /// (each naming the model, the version and the routes using it).
+    pub fn split_by_versions(
+        mut self,
+        available: impl Fn(&str, &Version) -> bool,
+    ) -> (Routes, BTreeMap<String, Vec<String>>) {
+        let mut refused = BTreeMap::new();
+        self.models.retain(|name, m| {
+            let problems = m.missing_versions(name, &available);
+            let keep = problems.is_empty();
+            if !keep {
+                refused.insert(name.clone(), problems);
+            }
+            keep
+        });
+        (self, refused)
+    }
+
+    /// These routes, with `name` routed as `routes` say.
+    pub fn with_model(mut self, name: &str, routes: ModelRoutes) -> Routes {
+        self.models.insert(name.to_owned(), routes);
+        self
     }
 
     /// Every (model, version) the routes name, with the routes that use it
     /// (`default`, rule names, `canary`, `shadow`).
     pub fn uses(&self) -> BTreeMap<&str, BTreeMap<&Version, Vec<String>>> {
-        let mut uses: BTreeMap<&str, BTreeMap<&Version, Vec<String>>> = BTreeMap::new();
-        for (name, m) in &self.models {
-            let entry = uses.entry(name).or_default();
-            entry.entry(&m.default).or_default().push(DEFAULT_ROUTE.to_owned());
-            for r in &m.rules {
-                entry.entry(&r.version).or_default().push(format!("rule {}", r.name));
-            }
-            if let Some(c) = &m.canary {
-                entry.entry(&c.version).or_default().push("canary".to_owned());
-            }
-            if let Some(s) = &m.shadow {
-                entry.entry(&s.version).or_default().push("shadow".to_owned());
-            }
-        }
-        uses
+        self.models.iter().map(|(name, m)| (name.as_str(), m.uses())).collect()
     }
 
     /// One model's routes.
@@ -390,6 +392,35 @@ impl Routes {
     /// The models with routes.
     pub fn models(&self) -> impl Iterator<Item = &str> {
         self.models.keys().map(String::as_str)
+    }
+}
+
+impl ModelRoutes {
+    /// The versions these routes name, with the routes that use each.
+    fn uses(&self) -> BTreeMap<&Version, Vec<String>> {
+        let mut uses: BTreeMap<&Version, Vec<String>> = BTreeMap::new();
+        uses.entry(&self.default).or_default().push(DEFAULT_ROUTE.to_owned());
+        for r in &self.rules {
+            uses.entry(&r.version).or_default().push(format!("rule {}", r.name));
+        }
+        if let Some(c) = &self.canary {
+            uses.entry(&c.version).or_default().push("canary".to_owned());
+        }
+        if let Some(s) = &self.shadow {
+            uses.entry(&s.version).or_default().push("shadow".to_owned());
+        }
+        uses
+    }
+
+    /// A problem per version these routes name that `available` says is not there.
+    fn missing_versions(&self, model: &str, available: &impl Fn(&str, &Version) -> bool) -> Vec<String> {
+        self.uses()
+            .into_iter()
+            .filter(|(version, _)| !available(model, version))
+            .map(|(version, users)| {
+                format!("model `{model}`: version {version} (used by {}) is not loaded", users.join(", "))
+            })
+            .collect()
     }
 }
 

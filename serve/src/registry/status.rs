@@ -275,6 +275,15 @@ pub enum RoutesState {
         /// Every problem found.
         problems: Vec<String>,
     },
+    /// The routes file was taken for every model but those whose routes
+    /// name a version that is not loaded; each of those keeps the routes
+    /// accepted before (none, if none ever were), and the others serve.
+    PartlyTaken {
+        /// The models whose routes were not taken.
+        models: Vec<String>,
+        /// Every problem found, each naming its model.
+        problems: Vec<String>,
+    },
 }
 
 /// Whether the features file was taken.
