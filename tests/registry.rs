@@ -656,3 +656,88 @@ fn one_models_broken_routes_leave_the_other_models_serving() {
     let RoutesState::PartlyTaken { models, .. } = reg.status().routes else { panic!("{:?}", reg.status().routes) };
     assert_eq!(models, ["m"]);
 }
+
+/// The store and routes file docs/serving.md shows, served exactly as
+/// written (its `routes.toml` block, read from the page), over the demo
+/// store's artifacts each with a vouch beside it under a trust policy: every
+/// route answers as the page says.
+#[test]
+fn the_store_docs_serving_md_shows_serves_as_it_says() {
+    let page = std::fs::read_to_string(paddock_tests::root().join("docs/serving.md")).unwrap();
+    let routes_toml = page
+        .split("```toml\n")
+        .nth(1)
+        .and_then(|rest| rest.split("```").next())
+        .expect("docs/serving.md shows a routes.toml");
+    let demo = paddock_tests::root().join("target/paddock/store");
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path().join("store");
+    let key = VouchingKey::generate("release").unwrap();
+    let trusted = dir.path().join("trusted");
+    std::fs::create_dir_all(&trusted).unwrap();
+    std::fs::write(trusted.join("release.voucher"), key.voucher().to_text()).unwrap();
+    for (model, version) in [
+        ("charge-minutes", "1.0.0"),
+        ("charge-minutes", "1.1.0"),
+        ("charge-minutes", "1.2.0"),
+        ("charge-minutes", "2.0.0-rc.1"),
+        ("overstay-risk", "1.0.0"),
+        ("overstay-risk", "1.1.0"),
+    ] {
+        let bytes = std::fs::read(demo.join(model).join(format!("{version}.wasm"))).unwrap();
+        let path = artifact_path(&store, model, &Version::parse(version).unwrap());
+        write_atomically(&path, &bytes);
+        let vouch = key.vouch(Digest::of(&bytes));
+        std::fs::write(paddock_host::Vouch::path_for(&path), vouch.to_text()).unwrap();
+    }
+    routes(&store, routes_toml);
+    let trust = TrustPolicy::default().trust_dir(&trusted).unwrap();
+    let options = RegistryOptions { trust, ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), &store, options).unwrap();
+    assert_eq!(reg.status().routes, RoutesState::Accepted);
+    assert_eq!(reg.status().problems().count(), 0, "{:#?}", reg.status());
+
+    let session = vec![
+        Row::new()
+            .with("charger_kw", 22.0)
+            .with("battery_kwh", 58.0)
+            .with("soc_start", 0.3)
+            .with("soc_target", 0.8)
+            .with("ambient_c", 12.0)
+            .with("hour_of_week", 42)
+            .with("connector", "type2")
+            .with("fleet", false),
+    ];
+    let picked = |context: &Context, at: &str| {
+        let a = reg.score(&Request::new("charge-minutes", context, &session).at(Some(at.parse().unwrap()))).unwrap();
+        (a.version.to_string(), a.reason.route().to_owned())
+    };
+    // Wednesday noon and Saturday noon in Europe/Oslo (UTC+1 in December).
+    let (weekday, saturday) = ("2026-12-02T11:00:00Z", "2026-12-05T11:00:00Z");
+    assert_eq!(picked(&Context::new(), weekday), ("1.0.0".into(), "default".into()));
+    assert_eq!(picked(&Context::new(), saturday), ("1.1.0".into(), "weekend".into()));
+    // The canary takes a tenth of sites, the same sites every time.
+    let sites: Vec<String> = (0..200).map(|i| format!("site-{i}")).collect();
+    let on_canary: Vec<&String> = sites.iter().filter(|s| picked(&ctx(&[("site", s)]), weekday).0 == "1.2.0").collect();
+    assert!(!on_canary.is_empty() && on_canary.len() < 60, "{} of 200 sites on the canary", on_canary.len());
+    assert!(on_canary.iter().all(|s| picked(&ctx(&[("site", s)]), saturday).0 == "1.2.0"));
+    // The shadow scores beside the served version, its answers counted, never returned.
+    paddock_tests::wait_until("the shadow comparing", Duration::from_secs(60), Duration::from_millis(10), || {
+        reg.usage().shadows.iter().any(|s| s.version == "2.0.0-rc.1" && s.compared > 0)
+    });
+    // The context rule: the north region's overstay-risk is 1.1.0.
+    let plug_in = vec![
+        Row::new()
+            .with("expected_minutes", 95.0)
+            .with("plugin_hour", 18)
+            .with("site_occupancy", 0.7)
+            .with("weekend", false)
+            .with("fleet", false),
+    ];
+    let overstay = |region: &str| {
+        let a = reg.score(&Request::new("overstay-risk", &ctx(&[("region", region)]), &plug_in)).unwrap();
+        (a.version.to_string(), a.reason.route().to_owned())
+    };
+    assert_eq!(overstay("north"), ("1.1.0".into(), "north".into()));
+    assert_eq!(overstay("centre"), ("1.0.0".into(), "default".into()));
+}
