@@ -461,6 +461,29 @@ fn alive_ready_store_catalogue_and_contract() {
     assert_eq!(c.status, 400);
     let st = call("GET", &format!("{}/store", s.base), None, None).json();
     assert_eq!(st["routes"]["state"], "accepted");
+    drop(s);
+
+    // Routes naming a version that is not there: that model is named by
+    // /ready and /store, the other one serves.
+    write_atomically(
+        &dir.path().join("routes.toml"),
+        b"[models.m]\ndefault = \"9.9.9\"\n[models.affine]\ndefault = \"1.0.0\"\n",
+    );
+    let s = Server::start(store(dir.path(), false), ServeOptions::default());
+    let r = call("GET", &format!("{}/ready", s.base), None, None);
+    assert_eq!((r.status, r.json()["not_routed"].clone()), (200, serde_json::json!(["m"])), "{}", r.body);
+    let st = call("GET", &format!("{}/store", s.base), None, None).json();
+    assert_eq!(st["routes"]["state"], "partly_taken", "{st}");
+    assert!(st["routes"]["problems"][0].as_str().unwrap().contains("model `m`: version 9.9.9"), "{st}");
+    drop(s);
+
+    // Nothing routable: /ready says why.
+    write_atomically(&dir.path().join("routes.toml"), b"[models.m]\ndefault = \"9.9.9\"\n");
+    let s = Server::start(store(dir.path(), false), ServeOptions::default());
+    let r = call("GET", &format!("{}/ready", s.base), None, None);
+    assert_eq!((r.status, r.kind().as_str()), (503, "not_ready"));
+    let message = r.json()["error"]["message"].as_str().unwrap().to_owned();
+    assert!(message.contains("routes.toml is refused: model `m`: version 9.9.9"), "{message}");
 }
 
 #[test]

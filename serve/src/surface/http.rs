@@ -485,13 +485,25 @@ pub struct Liveness {
     pub state: &'static str,
     /// The registry generation serving.
     pub generation: u64,
+    /// Models the routes file names whose routes were not taken (a version
+    /// they name did not load); absent when there are none.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub not_routed: Vec<String>,
+}
+
+/// The models whose routes were not taken.
+fn not_routed(status: &Status) -> Vec<String> {
+    match &status.routes {
+        crate::registry::RoutesState::PartlyTaken { models, .. } => models.clone(),
+        _ => Vec::new(),
+    }
 }
 
 /// The process is up and answering.
 #[utoipa::path(get, path = "/alive",
     tag = "operations", responses((status = 200, description = "Alive.", body = Liveness)))]
 pub(crate) async fn alive(State(app): State<Arc<App>>) -> Response {
-    json(StatusCode::OK, &Liveness { state: "alive", generation: app.registry.generation() })
+    json(StatusCode::OK, &Liveness { state: "alive", generation: app.registry.generation(), not_routed: Vec::new() })
 }
 
 /// Requests can be served: at least one model is routed.
@@ -508,9 +520,18 @@ pub(crate) async fn alive(State(app): State<Arc<App>>) -> Response {
 pub(crate) async fn ready(State(app): State<Arc<App>>) -> Response {
     let routes = app.registry.routes();
     if routes.models().next().is_some() {
-        json(StatusCode::OK, &Liveness { state: "ready", generation: app.registry.generation() })
+        let not_routed = not_routed(&app.registry.status());
+        json(StatusCode::OK, &Liveness { state: "ready", generation: app.registry.generation(), not_routed })
     } else {
-        let mut r = error(StatusCode::SERVICE_UNAVAILABLE, ErrorBody::new("not_ready", "no model is routed yet"));
+        let why = match &app.registry.status().routes {
+            crate::registry::RoutesState::Refused { problems } => {
+                format!(": {} is refused: {}", crate::registry::ROUTES_FILE, problems.join("; "))
+            }
+            crate::registry::RoutesState::Missing => format!(": the store has no {}", crate::registry::ROUTES_FILE),
+            _ => String::new(),
+        };
+        let message = format!("no model is routed yet{why}");
+        let mut r = error(StatusCode::SERVICE_UNAVAILABLE, ErrorBody::new("not_ready", message));
         r.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(app.options.retry_after_secs));
         r
     }
