@@ -357,3 +357,37 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
         );
     }
 }
+
+/// A LightGBM model trained on a pandas DataFrame (scikit-learn's diabetes
+/// data with a categorical column of text labels, an ordered category, a
+/// nullable integer column with missing values; tests/imports/export.py)
+/// and handed over with its columns in another order, its name and version:
+/// the categorical feature takes the labels the file keeps
+/// (`pandas_categorical`), the ordered one stays a number over its codes,
+/// and the helper's checks — LightGBM's own `predict`, labels in the rows —
+/// pass bit for bit.
+#[test]
+fn a_lightgbm_model_from_a_dataframe_takes_its_category_labels() {
+    let name = "lgb-diabetes-pandas";
+    let (path, bytes, checks) = case(name);
+    let text = std::fs::read_to_string(dir().join(format!("{name}.toml"))).unwrap();
+    let overrides = Overrides::from_toml(&text).unwrap();
+    let imported = import(&bytes, Format::LightgbmText, &path.display().to_string(), Some(&overrides)).unwrap();
+    let c = &imported.contract;
+    assert_eq!((c.name.as_str(), c.version.as_str()), ("progression", "1.2.0"));
+    let sex = c.features.iter().find(|f| f.name == "sex").unwrap();
+    assert_eq!(sex.domain, paddock_guest::Domain::Label(vec!["sex_hi".into(), "sex_lo".into()]));
+    let band = c.features.iter().find(|f| f.name == "age_band").unwrap();
+    assert!(matches!(band.domain, paddock_guest::Domain::Real(_)), "{:?}", band.domain);
+    let from = |part: &str| imported.origin.contract.iter().find(|p| p.part == part).unwrap().from.clone();
+    assert!(from("feature sex").contains("category labels from pandas_categorical"), "{}", from("feature sex"));
+    assert!(from("feature age_band").contains("an ordered category, split on its code (0 = band_a"));
+    assert!(checks.cases.iter().any(|case| {
+        case.row.fields().iter().any(|(n, v)| n == "sex" && *v == paddock_host::Value::Label("sex_lo".into()))
+    }));
+    let runtime = Runtime::new().unwrap();
+    let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
+    let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+    assert!(report.ok(), "{report:?}");
+    assert_eq!((report.cases, report.max_abs_error), (442, 0.0));
+}

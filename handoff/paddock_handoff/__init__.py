@@ -48,9 +48,17 @@ _LGB_PROBABILITY = {"binary", "cross_entropy", "xentropy"}
 _LGB_CLASSES = {"multiclass", "softmax", "multiclassova", "multiclass_ova", "ova", "ovr"}
 
 
-def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
+def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, version=None):
     """Saves ``model`` as its toolkit does and writes its predictions on
     ``rows`` as ``STEM.checks.json``.
+
+    ``rows`` is a 2-D array or a pandas DataFrame as people have them:
+    columns in any order (matched by name to the columns the model was
+    fitted on), nullable dtypes (``Int64``, ``Float64``, ``boolean``; a
+    missing value is an absent feature), and, for LightGBM, categorical or
+    string columns (the checks carry the labels, which the model file keeps).
+    ``name`` and ``version`` are the model's in the store: written to
+    ``STEM.toml``, the overrides ``paddock pack --overrides`` reads.
 
     ``tolerance`` is (absolute, relative); the default (0, 0) asks paddock
     for the toolkit's predictions bit for bit, which its importers give.
@@ -67,7 +75,7 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     """
     kind = _toolkit(model)
     os.makedirs(os.path.dirname(stem) or ".", exist_ok=True)
-    matrix, names = _matrix(rows, names)
+    matrix, names, labels = _matrix(rows, names, _fitted_names(model, kind), _categories(model, kind))
     overrides = None
     if kind == "xgboost":
         path, outputs, values, source = _xgboost(model, matrix, names, stem)
@@ -76,7 +84,7 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
         path, outputs, values, source, (eps, linked) = _sklearn(model, matrix, stem)
         names = names or [str(n) for n in getattr(model, "feature_names_in_", [])]
         if names:
-            overrides = _overrides(names, stem)
+            overrides = _overrides(names, stem, name, version)
         else:
             names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
         if linked:
@@ -88,9 +96,11 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None):
     else:
         path, outputs, values, source = _lightgbm(model, matrix, stem)
         names = names or _lgb_booster(model).feature_name()
+    if overrides is None and (name or version):
+        overrides = _overrides([], stem, name, version)
     cases = []
-    for row, predicted in zip(matrix, values):
-        cells = {n: float(v) for n, v in zip(names, row) if not math.isnan(v)}
+    for r, (row, predicted) in enumerate(zip(matrix, values)):
+        cells = {n: (labels[n][r] if n in labels else float(v)) for n, v in zip(names, row) if not math.isnan(v)}
         cases.append({"row": cells, "expect": {o: float(p) for o, p in zip(outputs, predicted)}})
     checks = {
         "source": f"{source} on {len(cases)} rows (numpy {numpy.__version__}, "
@@ -111,28 +121,91 @@ def _toolkit(model):
     raise TypeError(f"hand_off takes an XGBoost, LightGBM or scikit-learn model, not {type(model).__module__}.{type(model).__name__}")
 
 
-def _overrides(names, stem):
-    """paddock overrides naming the ONNX file's columns x0, x1…"""
+def _overrides(names, stem, name=None, version=None):
+    """paddock overrides: the model's name and version in the store, and
+    the names of an ONNX file's columns x0, x1…"""
     path = f"{stem}.toml"
     with open(path, "w") as f:
-        f.write("# Written by paddock_handoff: the ONNX file names no columns; these are\n"
-                "# the columns the model was fitted on, in order.\n")
-        for i, name in enumerate(names):
-            f.write(f"\n[features.x{i}]\nname = {json.dumps(name)}\n")
+        f.write("# Written by paddock_handoff for `paddock pack --overrides`.\n")
+        if name:
+            f.write(f"name = {json.dumps(str(name))}\n")
+        if version:
+            f.write(f"version = {json.dumps(str(version))}\n")
+        if names:
+            f.write("# The ONNX file names no columns: these are the columns the model was fitted on, in order.\n")
+        for i, column in enumerate(names):
+            f.write(f"\n[features.x{i}]\nname = {json.dumps(column)}\n")
     return path
 
 
-def _matrix(rows, names=None):
+def _fitted_names(model, kind):
+    """The columns the model was fitted on, in its order, if it knows them."""
+    if kind == "sklearn":
+        names = getattr(model, "feature_names_in_", None)
+    elif kind == "xgboost":
+        names = (model.get_booster() if hasattr(model, "get_booster") else model).feature_names
+    else:
+        names = _lgb_booster(model).feature_name()
+        names = None if names and all(n == f"Column_{i}" for i, n in enumerate(names)) else names
+    return [str(n) for n in names] if names is not None and len(names) else None
+
+
+def _categories(model, kind):
+    """LightGBM's category labels per categorical column, in column order
+    (what it saves as ``pandas_categorical``), or None."""
+    if kind != "lightgbm":
+        return None
+    return getattr(_lgb_booster(model), "pandas_categorical", None) or None
+
+
+def _matrix(rows, names=None, fitted=None, categories=None):
+    """(matrix of floats, column names, labels): a DataFrame's columns
+    matched to ``fitted`` by name, categories turned into LightGBM's codes
+    (their position among the labels it saved) with the labels kept for
+    the checks, nullable values turned into NaN."""
     names = list(names) if names is not None else None
+    labels = {}
     if hasattr(rows, "columns"):  # a pandas DataFrame
-        names = names or [str(c) for c in rows.columns]
-        rows = rows.to_numpy(dtype=numpy.float64, na_value=numpy.nan)
+        frame = rows
+        if fitted is not None and list(map(str, frame.columns)) != fitted:
+            missing = [n for n in fitted if n not in set(map(str, frame.columns))]
+            if missing:
+                raise ValueError(f"the rows lack the column(s) the model was fitted on: {', '.join(missing)}")
+            frame = frame[[c for n in fitted for c in frame.columns if str(c) == n]]
+        names = names or [str(c) for c in frame.columns]
+        columns = []
+        text_columns = iter(categories or [])
+        for column_name, column in zip(names, (frame[c] for c in frame.columns)):
+            if _is_text(column):
+                known = next(text_columns, None)
+                if known is None:
+                    raise ValueError(f"column {column_name!r} holds categories or text; only LightGBM keeps "
+                                     "category labels in its model file: encode it as numbers for this toolkit")
+                import pandas
+                coded = pandas.Categorical(column.astype(object).where(column.notna(), None), categories=known)
+                codes = numpy.asarray(coded.codes, dtype=numpy.float64)
+                codes[codes < 0] = numpy.nan
+                # LightGBM splits an ordered category on its code, like a number.
+                if not getattr(getattr(column, "cat", None), "ordered", False):
+                    labels[column_name] = [None if c < 0 else str(known[c]) for c in coded.codes]
+                columns.append(codes)
+            else:
+                columns.append(column.astype("Float64").to_numpy(dtype=numpy.float64, na_value=numpy.nan))
+        rows = numpy.column_stack(columns) if columns else numpy.empty((len(frame), 0))
     matrix = numpy.asarray(rows, dtype=numpy.float64)
     if matrix.ndim != 2:
         raise ValueError(f"rows must be 2-D (rows × features), got shape {matrix.shape}")
     if names is not None and len(names) != matrix.shape[1]:
         raise ValueError(f"{len(names)} names for {matrix.shape[1]} columns")
-    return matrix, names
+    return matrix, names, labels
+
+
+def _is_text(column):
+    """Whether a DataFrame column holds categories or strings."""
+    import pandas
+    dtype = column.dtype
+    return isinstance(dtype, pandas.CategoricalDtype) or pandas.api.types.is_string_dtype(dtype) \
+        or dtype == object
 
 
 def _outputs(objective, value, score, probability, classes, count):
@@ -185,18 +258,23 @@ def _sklearn(model, matrix, stem):
     path = f"{stem}.onnx"
     with open(path, "wb") as f:
         f.write(onx.SerializeToString())
+    data = matrix
+    fitted = getattr(model, "feature_names_in_", None)
+    if fitted is not None:  # fitted on a DataFrame: predict on one, as the notebook did
+        import pandas
+        data = pandas.DataFrame(matrix, columns=fitted)
     if hasattr(model, "predict_proba"):
-        predicted, method = numpy.asarray(model.predict_proba(matrix), dtype=numpy.float64), "predict_proba"
+        predicted, method = numpy.asarray(model.predict_proba(data), dtype=numpy.float64), "predict_proba"
         if predicted.shape[1] == 2:
             outputs, predicted = ["probability"], predicted[:, 1:]
         else:
             outputs = [f"probability_{k}" for k in range(predicted.shape[1])]
     elif hasattr(model, "decision_function") and hasattr(model, "classes_"):
-        predicted, method = numpy.asarray(model.decision_function(matrix), dtype=numpy.float64), "decision_function"
+        predicted, method = numpy.asarray(model.decision_function(data), dtype=numpy.float64), "decision_function"
         predicted = predicted.reshape(len(matrix), -1)
         outputs = ["score"] if predicted.shape[1] == 1 else [f"score_{k}" for k in range(predicted.shape[1])]
     else:
-        predicted, method = numpy.asarray(model.predict(matrix), dtype=numpy.float64), "predict"
+        predicted, method = numpy.asarray(model.predict(data), dtype=numpy.float64), "predict"
         predicted = predicted.reshape(len(matrix), -1)
         outputs = ["value"] if predicted.shape[1] == 1 else [f"value_{k}" for k in range(predicted.shape[1])]
     source = f"scikit-learn {sklearn.__version__} {name}.{method} (skl2onnx {skl2onnx.__version__})"

@@ -138,7 +138,8 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     };
     let name = objective.split_ascii_whitespace().next().unwrap_or("");
     let (outs, task_text) = outputs(task, name, per_iteration);
-    let mut draft = contract_features(&names, &infos);
+    let categories = pandas_categorical(&r, text)?;
+    let mut draft = contract_features(&names, &infos, categories.as_deref());
     for o in outs {
         draft.output(o, format!("the objective {name}"));
     }
@@ -184,13 +185,106 @@ fn outputs(task: Task, name: &str, outputs: usize) -> (Vec<Output>, String) {
     }
 }
 
+/// The category labels LightGBM's Python package saves after the model
+/// (`pandas_categorical:[["Harbour", "Mill Road"], …]`, one list per
+/// categorical column of the DataFrame it was trained on, in column order;
+/// a category's code is its position). `None` when the file has none, or
+/// when a list holds anything but strings (labels must be text).
+fn pandas_categorical(r: &Blame<'_>, text: &str) -> Result<Option<Vec<Vec<String>>>, ImportError> {
+    let Some((n, line)) = text.lines().enumerate().find(|(_, l)| l.starts_with("pandas_categorical:")) else {
+        return Ok(None);
+    };
+    let json = &line["pandas_categorical:".len()..];
+    let value: serde_json::Value = serde_json::from_str(json.trim())
+        .map_err(|e| r.malformed(&format!("line {} (pandas_categorical)", n + 1), format!("not JSON: {e}")))?;
+    let Some(lists) = value.as_array() else { return Ok(None) };
+    let mut out = Vec::with_capacity(lists.len());
+    for list in lists {
+        let labels: Option<Vec<String>> =
+            list.as_array().and_then(|l| l.iter().map(|v| v.as_str().map(str::to_owned)).collect());
+        match labels {
+            Some(labels) => out.push(labels),
+            None => return Ok(None),
+        }
+    }
+    Ok(Some(out))
+}
+
+/// Which pandas category list (`pandas_categorical`) belongs to which
+/// feature. LightGBM saves one list per category column of the DataFrame,
+/// in column order, but treats only unordered ones as categorical; an
+/// ordered one is a numeric feature over its codes (`feature_infos` an
+/// integer range from 0). The lists go to the categorical features and to
+/// as many such integer-range features as there are lists left over, when
+/// that is exactly every one of them and every code fits its list; else
+/// to none (`None`).
+fn category_columns(infos: &[&str], lists: &[Vec<String>]) -> Option<Vec<Option<usize>>> {
+    let categorical = |info: &str| !(info.starts_with('[') || info == "none" || info.is_empty());
+    let code_range = |info: &str| -> Option<(f64, f64)> {
+        let (lo, hi) = info.strip_prefix('[')?.strip_suffix(']')?.split_once(':')?;
+        let (lo, hi): (f64, f64) = (lo.parse().ok()?, hi.parse().ok()?);
+        (lo >= 0.0 && lo.fract() == 0.0 && hi.fract() == 0.0).then_some((lo, hi))
+    };
+    let cats = infos.iter().filter(|i| categorical(i)).count();
+    let ordered: Vec<usize> = (0..infos.len()).filter(|&i| code_range(infos[i]).is_some()).collect();
+    let surplus = lists.len().checked_sub(cats)?;
+    if surplus != 0 && surplus != ordered.len() {
+        return None;
+    }
+    let mut next = 0;
+    let mut owner = vec![None; infos.len()];
+    for (i, info) in infos.iter().enumerate() {
+        let takes = categorical(info) || (surplus != 0 && ordered.contains(&i));
+        if !takes {
+            continue;
+        }
+        let list = lists.get(next)?;
+        // Every code the file saw must name a label of the list.
+        let largest = match code_range(info) {
+            Some((_, hi)) => hi,
+            None => info.split(':').filter_map(|c| c.parse::<f64>().ok()).fold(-1.0, f64::max),
+        };
+        if largest >= list.len() as f64 {
+            return None;
+        }
+        owner[i] = Some(next);
+        next += 1;
+    }
+    (next == lists.len()).then_some(owner)
+}
+
 /// The features: names from `feature_names`, domains from `feature_infos`
-/// (a range for a real number, a list of categories for a code).
-fn contract_features(names: &[String], infos: &[&str]) -> ContractDraft {
+/// (a range for a real number, a list of categories for a code); a
+/// categorical feature whose labels the file carries (`pandas_categorical`)
+/// takes those labels, and an ordered category stays a number over its codes.
+fn contract_features(names: &[String], infos: &[&str], categories: Option<&[Vec<String>]>) -> ContractDraft {
+    let is_real = |info: &str| info.starts_with('[') || info == "none" || info.is_empty();
+    let owners = categories.and_then(|lists| category_columns(infos, lists));
+    let list_of = |i: usize| Some(&categories?[owners.as_ref()?[i]?]);
     let mut draft = ContractDraft::default();
     for (i, name) in names.iter().enumerate() {
         let info = infos.get(i).copied().unwrap_or("");
-        let (feature, domain_from) = if info.starts_with('[') || info == "none" || info.is_empty() {
+        let labelled = list_of(i);
+        let (feature, domain_from) = if let (Some(labels), false) = (labelled, is_real(info)) {
+            let as_str: Vec<&str> = labels.iter().map(String::as_str).collect();
+            (
+                Feature::label(name, &as_str),
+                format!(
+                    "category labels from pandas_categorical in the file (codes 0…{} in that order; feature_infos lists {info})",
+                    labels.len().saturating_sub(1)
+                ),
+            )
+        } else if let Some(labels) = labelled {
+            (
+                Feature::real(name, Bounds::OPEN),
+                format!(
+                    "an ordered category, split on its code (0 = {}, …, {} = {}; pandas_categorical in the file)",
+                    labels[0],
+                    labels.len() - 1,
+                    labels[labels.len() - 1]
+                ),
+            )
+        } else if is_real(info) {
             (
                 Feature::real(name, Bounds::OPEN),
                 format!("real number (feature_infos {})", if info.is_empty() { "absent" } else { info }),

@@ -152,3 +152,22 @@ onx = to_onnx(OneVsRestClassifier(LogisticRegression(max_iter=1000)).fit(xc, yc)
 with open(os.path.join(OUT, "refused-skl-one-vs-rest.onnx"), "wb") as f:
     f.write(onx.SerializeToString())
 print(f"scikit-learn {sklearn.__version__} via skl2onnx {skl2onnx.__version__}")
+
+# A DataFrame as people have them (scikit-learn's diabetes data, as a pandas
+# frame): a categorical column of text labels, a string column, a nullable
+# integer column with missing values, NaN holes; handed over with its columns
+# in another order than the model was fitted on, and the model's name and
+# version for the store.
+import pandas
+
+frame = load_diabetes(as_frame=True).data
+frame["age_band"] = pandas.cut(frame.pop("age"), 4, labels=["band_a", "band_b", "band_c", "band_d"])
+frame["sex"] = frame["sex"].map(lambda v: "sex_hi" if v > 0 else "sex_lo").astype("string")
+frame["s4"] = (frame["s4"] * 100).round().astype("Int64")
+frame.loc[frame.index[::9], "s4"] = pandas.NA
+frame.loc[frame.index[::13], "bmi"] = float("nan")
+frame["sex"] = frame["sex"].astype("category")
+target = load_diabetes().target
+model = lightgbm.LGBMRegressor(**LGB).fit(frame, target)
+shuffled = frame[list(reversed(frame.columns))]
+hand_off(model, shuffled, os.path.join(OUT, "lgb-diabetes-pandas"), name="progression", version="1.2.0")

