@@ -224,7 +224,8 @@ fn refusals_name_the_tree_and_node() {
 }
 
 /// Every scikit-learn model the export hands off through skl2onnx.
-const SKLEARN: [&str; 16] = [
+const SKLEARN: [&str; 17] = [
+    "skl-cancer-forest-missing",
     "skl-diabetes-tree",
     "skl-diabetes-forest",
     "skl-diabetes-extra",

@@ -255,6 +255,8 @@ def _sklearn(model, matrix, stem):
         onx = skl2onnx.to_onnx(model, initial_types=[("X", tensor([None, matrix.shape[1]]))], options=options)
     if hist:
         _exact_hist(onx, model)
+    else:
+        _missing_routes(onx, model)
     path = f"{stem}.onnx"
     with open(path, "wb") as f:
         f.write(onx.SerializeToString())
@@ -306,6 +308,52 @@ def _rounding(onx, matrix):
         leaves /= max(len(largest), 1)
     base = max((abs(v) for v in a.get("base_values", [0.0])), default=0.0)
     return (base + leaves) * 2.0 ** -24, linked
+
+
+def _sklearn_trees(model):
+    """The fitted trees (``tree_``) of a scikit-learn tree model, in the
+    order skl2onnx numbers them, or None for a model without them."""
+    if hasattr(model, "tree_"):
+        return [model.tree_]
+    estimators = getattr(model, "estimators_", None)
+    if estimators is None:
+        return None
+    flat = numpy.ravel(numpy.asarray(estimators, dtype=object))
+    trees = [getattr(e, "tree_", None) for e in flat]
+    return None if any(t is None for t in trees) else trees
+
+
+def _missing_routes(onx, model):
+    """scikit-learn's trees (≥ 1.3) send an absent value (NaN) down each
+    split's ``missing_go_to_left`` side, whether or not they were fitted on
+    missing values; skl2onnx 1.20 writes no such route
+    (``nodes_missing_value_tracks_true`` all 0). Each split's route is
+    written from the model itself, after checking that the file's nodes
+    are the model's (same feature at each split, same leaves); a file laid
+    out otherwise is left as written, and paddock then requires every
+    feature."""
+    from onnx import helper
+
+    trees = _sklearn_trees(model)
+    node = next((n for n in onx.graph.node if n.op_type.startswith("TreeEnsemble")), None)
+    if trees is None or node is None or not all(hasattr(t, "missing_go_to_left") for t in trees):
+        return
+    attrs = {a.name: a for a in node.attribute}
+    value = lambda name: list(helper.get_attribute_value(attrs[name]))
+    tree_ids, node_ids = value("nodes_treeids"), value("nodes_nodeids")
+    features, modes = value("nodes_featureids"), [m.decode() if isinstance(m, bytes) else m for m in value("nodes_modes")]
+    routes = []
+    for t, n, f, mode in zip(tree_ids, node_ids, features, modes):
+        if t >= len(trees) or n >= trees[t].node_count:
+            return
+        tree = trees[t]
+        leaf = tree.children_left[n] == -1
+        if leaf != (mode == "LEAF") or (not leaf and (tree.feature[n] != f or mode != "BRANCH_LEQ")):
+            return
+        routes.append(0 if leaf else int(tree.missing_go_to_left[n]))
+    if "nodes_missing_value_tracks_true" in attrs:
+        node.attribute.remove(attrs["nodes_missing_value_tracks_true"])
+    node.attribute.append(helper.make_attribute("nodes_missing_value_tracks_true", routes))
 
 
 def _exact_hist(onx, model):

@@ -171,3 +171,12 @@ target = load_diabetes().target
 model = lightgbm.LGBMRegressor(**LGB).fit(frame, target)
 shuffled = frame[list(reversed(frame.columns))]
 hand_off(model, shuffled, os.path.join(OUT, "lgb-diabetes-pandas"), name="progression", version="1.2.0")
+
+# A random forest fitted on data with missing values (scikit-learn ≥ 1.4
+# trees route NaN by each split's missing_go_to_left), scored on rows with
+# missing values: the helper writes those routes into the ONNX file.
+from sklearn.ensemble import RandomForestClassifier  # noqa: E402
+
+x, y, names = data(load_breast_cancer, holes=(0, 3))
+forest = RandomForestClassifier(n_estimators=20, max_depth=5, random_state=0, n_jobs=1).fit(x, y)
+hand_off(forest, x, os.path.join(OUT, "skl-cancer-forest-missing"))
