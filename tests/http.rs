@@ -452,6 +452,8 @@ fn alive_ready_store_catalogue_and_contract() {
     let c = call("GET", &format!("{}/contract?model=m", s.base), None, None).json();
     assert_eq!(c["name"], "m");
     assert_eq!(c["features"][0]["name"], "x");
+    // Domains are spelt as manifests and `inspect` spell them.
+    assert!(c["features"][0]["domain"].get("real").is_some(), "{c}");
     let c = call("GET", &format!("{}/contract?model=m&version=9.0.0", s.base), None, None);
     assert_eq!((c.status, c.kind().as_str()), (404, "unknown_version"), "{}", c.body);
     assert_eq!(c.json()["error"]["details"]["loaded"], serde_json::json!(["1.0.0"]));

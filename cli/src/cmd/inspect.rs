@@ -4,8 +4,9 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use paddock_host::artifact::{Inventory, inspect_bytes};
-use paddock_host::{Artifact, Contract, Digest};
+use paddock_host::{Artifact, Digest};
 use paddock_import::Origin;
+use paddock_serve::surface::openapi::ContractDoc;
 use serde::Serialize;
 
 use crate::Outcome;
@@ -26,7 +27,8 @@ struct Report {
     bytes: usize,
     #[serde(flatten)]
     inventory: Inventory,
-    contract: Option<Contract>,
+    /// Spelt as manifests spell it (`{"real": …}`), as `GET /contract` answers.
+    contract: Option<ContractDoc>,
     /// Where an imported model came from (`None` for one packed from WebAssembly).
     origin: Option<Origin>,
     load_error: Option<String>,
@@ -52,7 +54,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         digest: Digest::of(&bytes),
         bytes: bytes.len(),
         inventory,
-        contract,
+        contract: contract.as_ref().map(ContractDoc::from),
         origin,
         load_error,
     };
@@ -76,7 +78,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         outln!("\ndoes not load: {err}")?;
         return Ok(Outcome::Failed);
     }
-    if let Some(c) = &report.contract {
+    if let Some(c) = &contract {
         out!("\n{}", contract_text(c))?;
     }
     if let Some(o) = &report.origin {

@@ -451,7 +451,7 @@ pub(crate) async fn contract(
         },
     };
     if let Some(m) = app.registry.model(&model, &version) {
-        return json(StatusCode::OK, m.contract());
+        return json(StatusCode::OK, &super::openapi::ContractDoc::from(m.contract()));
     }
     let loaded = app.registry.versions(&model);
     let mut b = if loaded.is_empty() {

@@ -148,10 +148,10 @@ pub struct BoundsDoc {
     pub max: Option<f64>,
 }
 
-/// What values a feature may take: `{"Real": bounds}`, `{"Whole": bounds}`,
-/// `{"Label": [labels]}` or `"Flag"`.
+/// What values a feature may take: `{"real": bounds}`, `{"whole": bounds}`,
+/// `{"label": [labels]}` or `"flag"` — as manifests and `inspect` spell them.
 #[derive(Serialize, Deserialize, ToSchema)]
-#[serde(deny_unknown_fields)]
+#[serde(deny_unknown_fields, rename_all = "snake_case")]
 #[schema(as = Domain)]
 pub enum DomainDoc {
     /// Any finite real number within the bounds.
@@ -197,7 +197,8 @@ pub struct OutputDoc {
     pub about: String,
 }
 
-/// A version's contract: what it reads and writes.
+/// A version's contract: what it reads and writes. Its JSON: what
+/// `GET /contract` answers and `paddock inspect --json` prints.
 #[derive(Serialize, Deserialize, ToSchema)]
 #[serde(deny_unknown_fields)]
 #[schema(as = Contract)]
@@ -212,6 +213,55 @@ pub struct ContractDoc {
     pub outputs: Vec<OutputDoc>,
     /// What the model estimates and for whom.
     pub about: String,
+}
+
+impl From<&paddock_host::contract::Bounds> for BoundsDoc {
+    fn from(b: &paddock_host::contract::Bounds) -> Self {
+        BoundsDoc { min: b.min, max: b.max }
+    }
+}
+
+impl From<&paddock_host::contract::Domain> for DomainDoc {
+    fn from(d: &paddock_host::contract::Domain) -> Self {
+        use paddock_host::contract::Domain;
+        match d {
+            Domain::Real(b) => DomainDoc::Real(b.into()),
+            Domain::Whole(b) => DomainDoc::Whole(b.into()),
+            Domain::Label(l) => DomainDoc::Label(l.clone()),
+            Domain::Flag => DomainDoc::Flag,
+        }
+    }
+}
+
+impl From<&paddock_host::contract::Contract> for ContractDoc {
+    fn from(c: &paddock_host::contract::Contract) -> Self {
+        ContractDoc {
+            name: c.name.clone(),
+            version: c.version.clone(),
+            features: c
+                .features
+                .iter()
+                .map(|f| FeatureDoc {
+                    name: f.name.clone(),
+                    domain: (&f.domain).into(),
+                    unit: f.unit.clone(),
+                    required: f.required,
+                    about: f.about.clone(),
+                })
+                .collect(),
+            outputs: c
+                .outputs
+                .iter()
+                .map(|o| OutputDoc {
+                    name: o.name.clone(),
+                    unit: o.unit.clone(),
+                    bounds: (&o.bounds).into(),
+                    about: o.about.clone(),
+                })
+                .collect(),
+            about: c.about.clone(),
+        }
+    }
 }
 
 #[cfg(test)]
@@ -259,9 +309,14 @@ mod tests {
             }],
             about: "test".into(),
         };
-        let real = serde_json::to_value(&contract).unwrap();
-        let doc: ContractDoc = serde_json::from_value(real.clone()).unwrap();
-        assert_eq!(serde_json::to_value(&doc).unwrap(), real);
+        let wire = serde_json::to_value(ContractDoc::from(&contract)).unwrap();
+        let doc: ContractDoc = serde_json::from_value(wire.clone()).unwrap();
+        assert_eq!(serde_json::to_value(&doc).unwrap(), wire);
+        // Spelt as manifests spell domains (paddock_guest::DomainSpec).
+        assert_eq!(wire["features"][0]["domain"], serde_json::json!({"real": {"min": 0.0, "max": null}}));
+        assert_eq!(wire["features"][2]["domain"], serde_json::json!({"label": ["p", "q"]}));
+        assert_eq!(wire["features"][3]["domain"], "flag");
+        assert_eq!(wire["features"][1]["domain"], serde_json::json!({"whole": {"min": null, "max": null}}));
     }
 
     /// The committed document is exactly what the code generates.
