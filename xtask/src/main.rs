@@ -21,8 +21,9 @@
 //!   libraries share a name (`names.rs`).
 //! - `test`: `deps`, `build` and `guests`; exports scikit-learn's reference models;
 //!   then every test in the workspace (benchmarks run once each, as tests),
-//!   every example, and the HTTP API against schemathesis and an
-//!   OpenMetrics parser (`tests/api/check_api.py`).
+//!   every example, the HTTP API against schemathesis and an
+//!   OpenMetrics parser (`tests/api/check_api.py`), and the README's walk
+//!   from a notebook to a served store for each toolkit (`tests/docs/readme_walk.py`).
 //! - `fuzz [SECONDS]`: after `test` (which builds the demo artifacts and
 //!   exports the toolkits' model files the seeds come from), builds the
 //!   libFuzzer targets in `fuzz/` (plain cargo with coverage flags; no
@@ -175,6 +176,8 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     steps.done("examples");
     api_check(root, &tools)?;
     steps.done("HTTP API against schemathesis and the OpenMetrics parser");
+    readme_walk(root, &tools)?;
+    steps.done("the README's notebook-to-store walk, per toolkit");
     steps.report();
     Ok(())
 }
@@ -543,6 +546,14 @@ fn deps(root: &Path) -> Result<()> {
     library_deps(root)?;
     LIBRARY_SOURCES.iter().try_for_each(|src| modules::check(&root.join(src)))?;
     names::check(root, &NAMED_SOURCES)
+}
+
+/// The README's walk from a notebook to a served store, run as written for
+/// XGBoost, LightGBM and scikit-learn (`tests/docs/readme_walk.py`).
+fn readme_walk(root: &Path, tools: &Tools) -> Result<()> {
+    let mut walk = Command::new("python3");
+    walk.arg(root.join("tests/docs/readme_walk.py")).arg(&tools.paddock).current_dir(root);
+    run(walk)
 }
 
 /// The HTTP API against outside tools (`tests/api/check_api.py`):
