@@ -105,7 +105,7 @@ impl Onnx {
             let t = results[index].cast_to::<f64>().map_err(fail("reading an output"))?;
             let view = t.to_plain_array_view::<f64>().map_err(fail("reading an output"))?;
             let shape = view.shape().to_vec();
-            let per_row = if n == 0 { 0 } else { view.len() / n };
+            let per_row = view.len().checked_div(n).unwrap_or(0);
             if shape.first().copied() != Some(n) && !(shape.is_empty() && n == 1) || column >= per_row.max(1) {
                 return Err(format!(
                     "output {} reads column {column} of graph output {index}, whose shape is {shape:?} for {n} rows",
