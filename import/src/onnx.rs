@@ -216,10 +216,12 @@ impl Task {
         }
     }
 
-    /// The outputs, and what each is. Probabilities are bounded to [0, 1]
-    /// when a link makes them so (`linked`); sums of float32 leaf
-    /// probabilities may pass 1 by a rounding.
-    fn outputs(self, labels: &[String], linked: bool) -> (Vec<Output>, Vec<String>) {
+    /// The outputs, and what each is. Probabilities are bounded to
+    /// [0, 1 + `slack`]: 0 when a link makes them so, the float32 rounding
+    /// of the leaves when they are sums of leaf probabilities (a forest's
+    /// averaged votes may pass 1 by that much); unbounded when `slack` is
+    /// `None` (nothing is known of their sum).
+    fn outputs(self, labels: &[String], slack: Option<f64>) -> (Vec<Output>, Vec<String>) {
         let named = |stem: &str, n: usize| -> Vec<String> {
             if n == 1 { vec![stem.to_owned()] } else { (0..n).map(|k| format!("{stem}_{k}")).collect() }
         };
@@ -242,7 +244,10 @@ impl Task {
                 Bounds::OPEN,
             ),
         };
-        let bounds = if linked { bounds } else { Bounds::OPEN };
+        let bounds = match slack {
+            Some(slack) if bounds.max == Some(1.0) => Bounds::between(0.0, 1.0 + slack),
+            _ => Bounds::OPEN,
+        };
         (names.iter().map(|n| Output::new(n, bounds)).collect(), about)
     }
 }
@@ -451,7 +456,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     };
     finish(
         g,
-        (task, link != OutputLink::Identity),
+        (task, probability_slack(link != OutputLink::Identity, &params)),
         &labels,
         (learned_missing, missing_text),
         EstimatorParams::Trees(params),
@@ -681,6 +686,26 @@ impl TreeWalk<'_> {
     }
 }
 
+/// How far above 1 a tree ensemble's probability may come: 0 through a
+/// link; else twice the float32 rounding of the largest leaf of each tree
+/// summed (the leaves are float32 in the file; a forest's leaves are its
+/// votes divided by the tree count, which can sum to a hair above 1).
+fn probability_slack(linked: bool, params: &TreesParams) -> Option<f64> {
+    if linked {
+        return Some(0.0);
+    }
+    let largest = |nodes: &[Node]| {
+        nodes.iter().fold(0.0f64, |m, n| match n {
+            Node::Leaf { value } => m.max(value.abs()),
+            _ => m,
+        })
+    };
+    let leaves: f64 = params.trees.iter().map(|t| largest(&t.nodes)).sum::<f64>()
+        + params.vectors.iter().fold(0.0f64, |m, v| m.max(v.abs())) * params.trees.len() as f64;
+    let base = params.base.iter().fold(0.0f64, |m, v| m.max(v.abs()));
+    Some((base + leaves) * f64::from(f32::EPSILON))
+}
+
 fn task_text(task: Task) -> String {
     match task {
         Task::Values(n) => format!("{n} value(s)"),
@@ -765,7 +790,7 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     };
     finish(
         g,
-        (task, link != Link::Identity),
+        (task, (link != Link::Identity).then_some(0.0)),
         &labels,
         (false, "required: a linear score needs every value"),
         EstimatorParams::Linear(LinearParams { link, intercepts, weights, impute: Vec::new() }),
@@ -779,7 +804,7 @@ fn linear(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
 #[allow(clippy::too_many_arguments)]
 fn finish(
     g: &Graph<'_>,
-    (task, linked): (Task, bool),
+    (task, slack): (Task, Option<f64>),
     labels: &[String],
     (optional, missing_text): (bool, &str),
     estimator: EstimatorParams,
@@ -798,7 +823,7 @@ fn finish(
             ),
         );
     }
-    let (outputs, about) = task.outputs(labels, linked);
+    let (outputs, about) = task.outputs(labels, slack);
     for (o, about) in outputs.into_iter().zip(about) {
         let from = format!("the model: {about}");
         draft.output(o.about(&about), from);
