@@ -39,3 +39,9 @@ pub mod registry;
 pub mod surface;
 
 pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
+
+/// The time a request is scored at (`Request::at`), re-exported so an
+/// embedder needs no direct `jiff` dependency.
+pub use jiff::Timestamp;
+/// A model's version, re-exported so an embedder needs no direct `semver` dependency.
+pub use semver::Version;

@@ -30,6 +30,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
         Ok(Admission::Pin) => (true, "admitted: its digest is pinned".to_owned()),
         Ok(Admission::OpenPolicy) => (true, "admitted: the policy requires nothing (give --trust or --pin)".to_owned()),
+        Ok(other) => (true, format!("admitted: {other:?}")),
         Err(e) => (false, format!("refused: {}", crate::message(e))),
     };
     if args.json {

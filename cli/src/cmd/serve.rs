@@ -111,6 +111,7 @@ fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
             (ArtifactState::KeptAfterRemoval, ..) => {
                 lines.push(format!("kept {} while routed: its file was removed", a.path.display()))
             }
+            (other, ..) => lines.push(format!("{}: {other:?}", a.path.display())),
         }
     }
     let mut out: Vec<String> =
@@ -128,6 +129,7 @@ fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
             models.join(", "),
             problems.join("; ")
         )),
+        other => out.push(format!("{ROUTES_FILE}: {other:?}")),
     }
     if status.problems().next().is_some() || !matches!(status.routes, RoutesState::Accepted) {
         out.push("see GET /store or `paddock status` for every artifact".into());

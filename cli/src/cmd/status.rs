@@ -42,6 +42,7 @@ pub fn run(args: Args) -> Result<Outcome> {
                     ArtifactState::Refused { refusal } => format!("refused: {refusal}"),
                     ArtifactState::KeptAfterRefusal { refusal, .. } => format!("old bytes kept; new {refusal}"),
                     ArtifactState::KeptAfterRemoval => "file removed; kept while routed".to_owned(),
+                    other => format!("{other:?}"),
                 };
                 vec![
                     a.path.display().to_string(),
@@ -86,6 +87,7 @@ pub fn run(args: Args) -> Result<Outcome> {
                     outln!("  - {p}")?;
                 }
             }
+            other => outln!("\nroutes: {other:?}")?,
         }
         let features = paddock_serve::registry::FEATURES_FILE;
         match &status.features {

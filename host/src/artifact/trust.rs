@@ -296,6 +296,7 @@ pub struct TrustPolicy {
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
 #[cfg_attr(feature = "openapi", derive(utoipa::ToSchema))]
 #[serde(tag = "admitted_by", rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum Admission {
     /// A vouch that holds, by a trusted voucher.
     Vouch {

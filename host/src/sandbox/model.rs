@@ -23,6 +23,7 @@ use wasmtime::component::Component;
 /// Whether instances are reused between calls.
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
 #[serde(rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum Isolation {
     /// Keep instances warm and reuse them for later calls (fast). An
     /// instance that trapped, hit a limit or returned a bad answer is

@@ -21,7 +21,7 @@
 //! loaded under a WASI policy, the parts of WASI whose answers can be
 //! carried: the (empty) environment, and under fixed clocks and randomness
 //! the clocks' readings and the random streams (see
-//! [`crate::sandbox::wasi::link_for_priming`]). Every new instance of a primed
+//! `sandbox::wasi::link_for_priming`). Every new instance of a primed
 //! model then starts its WASI world where `init` left the priming one: the
 //! monotonic clock at the reading it had reached, each random stream past
 //! the draws `init` made. Its first call sees exactly what an unprimed

@@ -149,6 +149,7 @@ pub enum Lookups {
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum Outcome {
     /// The row carried the feature itself: no lookup.
     FromRequest,

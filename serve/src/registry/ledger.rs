@@ -247,7 +247,7 @@ pub struct VersionUsage {
     /// model's errors.
     #[serde(default)]
     pub refused_rows: BTreeMap<String, u64>,
-    /// Limit hits by limit ([`crate::LimitHit::name`]).
+    /// Limit hits by limit ([`paddock_host::LimitHit::name`]).
     pub limit_hits: BTreeMap<String, u64>,
     /// Fuel used by successful calls, when the runtime meters fuel.
     pub fuel: Option<u64>,

@@ -108,6 +108,7 @@ impl Clock for ManualClock {
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "picked_by", rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum Reason {
     /// No rule matched: the model's default version.
     Default,

@@ -212,6 +212,7 @@ impl utoipa::ToSchema for Refusal {
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "state", rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum ArtifactState {
     /// It passed the gate and may be routed to.
     Loaded,
@@ -264,6 +265,7 @@ pub struct ArtifactStatus {
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(tag = "state", rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum RoutesState {
     /// There is no routes file: nothing is served.
     Missing,
