@@ -323,7 +323,12 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
             EstimatorParams::Linear(p) => p.link != paddock_guest::Link::Identity,
             _ => unreachable!(),
         };
+        // The helper's checks use the file's names (x0, x1…); renamed as `paddock pack` renames them.
         let checks = Checks::from_json(&std::fs::read(dir().join(format!("{name}.checks.json"))).unwrap()).unwrap();
+        let checks = match &overrides {
+            Some(o) => checks.renamed(&o.feature_renames(), &o.output_renames()),
+            None => checks,
+        };
         let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
         let order: Vec<String> = imported.contract.features.iter().map(|f| f.name.clone()).collect();
         let outputs: Vec<String> = imported.contract.outputs.iter().map(|o| o.name.clone()).collect();

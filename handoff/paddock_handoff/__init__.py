@@ -85,8 +85,9 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, 
         names = names or [str(n) for n in getattr(model, "feature_names_in_", [])]
         if names:
             overrides = _overrides(names, stem, name, version)
-        else:
-            names = [f"x{i}" for i in range(matrix.shape[1])]  # ONNX names no columns
+        # The checks use the file's names (ONNX names no columns: x0, x1…), so they
+        # pack with or without the overrides; `pack` renames them with the features.
+        names = [f"x{i}" for i in range(matrix.shape[1])]
         if linked:
             # 2⁻⁴⁹: scikit-learn's softmax calls numpy's exp, numpy's own
             # (not glibc's) on a CPU with AVX-512: a last bit now and then.

@@ -15,6 +15,8 @@ not run as written, and why: the `cargo build` line (PADDOCK is the binary
 it builds); `paddock serve` gets `--listen 127.0.0.1:0` and `curl` the port
 it printed, so a walk never collides with another server on 7340; the model
 file's name takes the extension the README's comment gives per toolkit.
+Each walk also packs the same file without the overrides (`--name` and
+`--version` instead), as docs/models.md says it may.
 """
 
 import json
@@ -128,6 +130,13 @@ def walk(toolkit, python, sh):
                     assert abs(got - want) <= limit, f"{toolkit}: paddock {got!r}, {toolkit} predict {want!r}"
                     print(f"readme_walk: {toolkit}: curl answered {got} from session-minutes 1.0.0 "
                           f"({toolkit} predict: {want})")
+            # docs/models.md: the same file packs without the overrides, named on the command line.
+            extension = EXTENSION[toolkit]
+            plain = subprocess.run(
+                [PADDOCK, "pack", f"out/session-minutes{extension}", "--checks", "out/session-minutes.checks.json",
+                 "--name", "session-minutes", "--version", "1.0.1", "--out", "session-minutes-1.0.1.wasm"],
+                env=env, capture_output=True, text=True)
+            assert plain.returncode == 0, f"{toolkit}: pack without the overrides: {plain.stderr}"
         finally:
             if server is not None:
                 server.terminate()
