@@ -104,71 +104,18 @@ pub fn run(args: Args) -> Result<Outcome> {
     let input = read(&args.input)?;
     let file = args.input.display().to_string();
     let kind = InputKind::identify(&input, &file, args.format.map(InputKind::from))?;
-    let refuse = |flag: &str, wants: &str| anyhow::anyhow!("{flag} is for {wants}; {file} is {}", kind.described());
-    match kind {
-        InputKind::Toolkit(_) if args.manifest.is_some() => {
-            return Err(refuse("--manifest", "ONNX graphs (a toolkit's model file takes --overrides)"));
-        }
-        InputKind::OnnxGraph if args.overrides.is_some() => return Err(refuse("--overrides", "toolkits' model files")),
-        InputKind::WebAssembly if args.manifest.is_some() => return Err(refuse("--manifest", "ONNX graphs")),
-        InputKind::WebAssembly if args.overrides.is_some() => {
-            return Err(refuse("--overrides", "toolkits' model files"));
-        }
-        InputKind::Toolkit(_) | InputKind::OnnxGraph if args.params.is_some() => {
-            return Err(refuse("--params", "WebAssembly input"));
-        }
-        InputKind::WebAssembly if args.name.is_some() || args.model_version.is_some() => {
-            return Err(refuse(
-                "--name and --version",
-                "imported models and ONNX graphs (WebAssembly declares its own)",
-            ));
-        }
-        _ => {}
-    }
-    let mut checks = match &args.checks {
+    refuse_flags(&args, kind, &file)?;
+    let checks = match &args.checks {
         Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
         None => None,
     };
-    let (wasm, params, origin) = match kind {
-        InputKind::Toolkit(format) => {
-            let mut overrides = match &args.overrides {
-                Some(p) => Overrides::from_toml(&read_text(p)?).with_context(|| format!("in {}", p.display()))?,
-                None => Overrides::default(),
-            };
-            overrides.name = args.name.clone().or(overrides.name);
-            overrides.version = args.model_version.clone().or(overrides.version);
-            let mut imported = paddock_import::import(&input, format, &file, Some(&overrides))?;
-            let (features, outputs) = (overrides.feature_renames(), overrides.output_renames());
-            if let Some(c) = checks.take() {
-                if !features.is_empty() || !outputs.is_empty() {
-                    let pairs = features.iter().chain(&outputs).map(|(a, b)| format!("{a} → {b}"));
-                    imported.origin.contract.push(paddock_import::Provenance {
-                        part: "checks".into(),
-                        from: format!(
-                            "recorded with the file's names, renamed as the overrides rename them ({})",
-                            pairs.collect::<Vec<_>>().join(", ")
-                        ),
-                    });
-                }
-                checks = Some(c.renamed(&features, &outputs));
-            }
-            let guest =
-                evaluator(&args, &Path::new(GUESTS).join(format!("{}.wasm", imported.guest())), imported.guest())?;
-            (guest, Some(imported.params()), Some(imported.origin.to_map()))
-        }
+    let (wasm, params, origin, checks) = match kind {
+        InputKind::Toolkit(format) => imported(&args, &input, &file, format, checks)?,
         InputKind::OnnxGraph => {
-            let path = args
-                .manifest
-                .as_ref()
-                .with_context(|| format!("{file}: an ONNX graph needs its manifest (--manifest FILE)"))?;
-            let mut manifest =
-                onnx_graph::read_manifest(&read_text(path)?).with_context(|| format!("in {}", path.display()))?;
-            manifest.name = args.name.clone().unwrap_or(manifest.name);
-            manifest.version = args.model_version.clone().unwrap_or(manifest.version);
-            let params = onnx_graph::params(&manifest, &input)?;
-            (evaluator(&args, Path::new(DEFAULT_EVALUATOR), "ONNX evaluator")?, Some(params), None)
+            let (guest, params) = graph(&args, &input, &file)?;
+            (guest, Some(params), None, checks)
         }
-        InputKind::WebAssembly => (input, args.params.as_deref().map(read).transpose()?, None),
+        InputKind::WebAssembly => (input, args.params.as_deref().map(read).transpose()?, None, checks),
         _ => anyhow::bail!("{file}: {} is not packed by this version", kind.described()),
     };
     let parts = Parts { wasm: &wasm, params: params.as_deref(), checks: checks.as_ref(), origin: origin.as_ref() };
@@ -181,8 +128,80 @@ pub fn run(args: Args) -> Result<Outcome> {
         })?;
     if args.json {
         print_json(&packed)?;
-        return Ok(Outcome::Ok);
+    } else {
+        print(&packed)?;
     }
+    Ok(Outcome::Ok)
+}
+
+/// What goes into the artifact: the guest, its params, the importer's origin record, the checks.
+type Pieces = (Vec<u8>, Option<Vec<u8>>, Option<serde_json::Map<String, serde_json::Value>>, Option<Checks>);
+
+/// Refuses the flags that do not belong to this kind of input, saying which kind takes them.
+fn refuse_flags(args: &Args, kind: InputKind, file: &str) -> Result<()> {
+    let refuse = |flag: &str, wants: &str| anyhow::anyhow!("{flag} is for {wants}; {file} is {}", kind.described());
+    let named = args.name.is_some() || args.model_version.is_some();
+    match kind {
+        InputKind::Toolkit(_) if args.manifest.is_some() => {
+            Err(refuse("--manifest", "ONNX graphs (a toolkit's model file takes --overrides)"))
+        }
+        InputKind::OnnxGraph | InputKind::WebAssembly if args.overrides.is_some() => {
+            Err(refuse("--overrides", "toolkits' model files"))
+        }
+        InputKind::WebAssembly if args.manifest.is_some() => Err(refuse("--manifest", "ONNX graphs")),
+        InputKind::Toolkit(_) | InputKind::OnnxGraph if args.params.is_some() => {
+            Err(refuse("--params", "WebAssembly input"))
+        }
+        InputKind::WebAssembly if named => {
+            Err(refuse("--name and --version", "imported models and ONNX graphs (WebAssembly declares its own)"))
+        }
+        _ => Ok(()),
+    }
+}
+
+/// A toolkit's model file imported with the overrides (and `--name`, `--version`), its checks
+/// renamed as the overrides rename the contract (the origin says so), on the guest it needs.
+fn imported(args: &Args, input: &[u8], file: &str, format: Format, checks: Option<Checks>) -> Result<Pieces> {
+    let mut overrides = match &args.overrides {
+        Some(p) => Overrides::from_toml(&read_text(p)?).with_context(|| format!("in {}", p.display()))?,
+        None => Overrides::default(),
+    };
+    overrides.name = args.name.clone().or(overrides.name);
+    overrides.version = args.model_version.clone().or(overrides.version);
+    let mut imported = paddock_import::import(input, format, file, Some(&overrides))?;
+    let (features, outputs) = (overrides.feature_renames(), overrides.output_renames());
+    if checks.is_some() && !(features.is_empty() && outputs.is_empty()) {
+        let pairs: Vec<String> = features.iter().chain(&outputs).map(|(a, b)| format!("{a} → {b}")).collect();
+        imported.origin.contract.push(paddock_import::Provenance {
+            part: "checks".into(),
+            from: format!(
+                "recorded with the file's names, renamed as the overrides rename them ({})",
+                pairs.join(", ")
+            ),
+        });
+    }
+    let checks = checks.map(|c| c.renamed(&features, &outputs));
+    let guest = evaluator(args, &Path::new(GUESTS).join(format!("{}.wasm", imported.guest())), imported.guest())?;
+    Ok((guest, Some(imported.params()), Some(imported.origin.to_map()), checks))
+}
+
+/// An ONNX graph framed with its manifest (`--name` and `--version` over the manifest's), on the
+/// ONNX evaluator guest: (guest, params).
+fn graph(args: &Args, input: &[u8], file: &str) -> Result<(Vec<u8>, Vec<u8>)> {
+    let path = args
+        .manifest
+        .as_ref()
+        .with_context(|| format!("{file}: an ONNX graph needs its manifest (--manifest FILE)"))?;
+    let mut manifest =
+        onnx_graph::read_manifest(&read_text(path)?).with_context(|| format!("in {}", path.display()))?;
+    manifest.name = args.name.clone().unwrap_or(manifest.name);
+    manifest.version = args.model_version.clone().unwrap_or(manifest.version);
+    let params = onnx_graph::params(&manifest, input)?;
+    Ok((evaluator(args, Path::new(DEFAULT_EVALUATOR), "ONNX evaluator")?, params))
+}
+
+/// The artifact written, how it loads, and its checks.
+fn print(packed: &paddock_host::Packed) -> Result<()> {
     outln!("wrote {} ({} bytes, {})", packed.artifact.display(), packed.bytes, packed.digest)?;
     if let Some(m) = &packed.model {
         outln!("loads as {m}")?;
@@ -196,7 +215,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             r.max_rel_error
         )?;
     }
-    Ok(Outcome::Ok)
+    Ok(())
 }
 
 fn read(path: &Path) -> Result<Vec<u8>> {
