@@ -14,7 +14,7 @@ use paddock_guest::ndarray::{Array2, ArrayView2};
 use paddock_guest::{
     Branch, Evaluate, LinearParams, Link, Node, Packaged, SplitRule, Tree, Trees, TreesParams, encode_params,
 };
-use paddock_host::{Model, Row, Runtime, sandbox::verify};
+use paddock_host::{Model, Row, Runtime};
 use paddock_tests::{demo_artifact, fixture, guest, load, open_contract, random_cells, random_ensemble, unhurried};
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
@@ -188,7 +188,7 @@ fn demo_artifacts_reproduce_their_training_outputs_exactly() {
         let model = Model::load(&runtime, artifact).unwrap();
         let carried = model.artifact().checks().unwrap().expect("demo artifacts carry checks");
         assert!(carried.cases.len() >= 20);
-        let report = verify::run(&model, &carried).unwrap();
+        let report = model.run_checks(&carried).unwrap();
         assert!(report.ok(), "{name}: {report:?}");
         assert_eq!(report.max_abs_error, 0.0, "{name}: same code, same params, same bits");
     }

@@ -136,7 +136,7 @@ fn foreign_guests_are_held_to_the_same_contract_and_limits() {
         let checks = foreign_artifact(name).checks().unwrap().expect("packed with checks");
         assert!(checks.source.contains("scipy.integrate.quad"), "{}", checks.source);
         let model = load_foreign(&runtime, name, wasi()).unwrap();
-        let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+        let report = model.run_checks(&checks).unwrap();
         assert!(report.ok(), "{name}: {report:?}");
     }
 }

@@ -121,7 +121,7 @@ fn handed_off_checks_pass_and_the_origin_is_recorded() {
         "the file's name (set `name` in the overrides to change it)"
     );
     let model = Model::load(&Runtime::new().unwrap(), artifact).unwrap();
-    let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+    let report = model.run_checks(&checks).unwrap();
     assert!(report.ok(), "{report:?}");
     assert_eq!(report.cases, 178);
 }
@@ -360,7 +360,7 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
         }
         // The helper's checks, with the tolerance it derived from the same
         // rounding, pass when the model is scored against them.
-        let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+        let report = model.run_checks(&checks).unwrap();
         assert!(report.ok(), "{name}: the handed-off checks fail: {report:?}");
         eprintln!(
             "{name}: largest relative difference {worst:.1e} over {} rows, score bound up to {widest:.1e} ({})",
@@ -399,7 +399,7 @@ fn a_lightgbm_model_from_a_dataframe_takes_its_category_labels() {
     }));
     let runtime = Runtime::new().unwrap();
     let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
-    let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+    let report = model.run_checks(&checks).unwrap();
     assert!(report.ok(), "{report:?}");
     assert_eq!((report.cases, report.max_abs_error), (442, 0.0));
 }

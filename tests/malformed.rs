@@ -1,7 +1,7 @@
 //! Malformed and tampered artifacts: each gets a clear error naming what is
 //! wrong, and nothing panics.
 
-use paddock_host::{Artifact, ArtifactError, LimitHit, LoadError, Model, Row, Runtime};
+use paddock_host::{Artifact, ArtifactError, LimitHit, LoadError, Model, ModelOptions, Row, Runtime, pack};
 use paddock_tests::{demo_artifact, guest};
 
 fn demo_bytes() -> Vec<u8> {
@@ -150,4 +150,39 @@ fn single_byte_flips_never_panic_and_never_pass_for_the_vouched_original() {
     }
     eprintln!("byte flips: {refused} refused, {loaded} loaded");
     assert!(refused > 0);
+}
+
+/// An artifact whose carried checks say one thing while its code computes
+/// another (its recorded outputs edited, as a tampered or mispacked file
+/// would have them) does not load through `Model::load`: every load runs
+/// the checks, as the README promises. Skipping them is an option named
+/// for what it skips.
+#[test]
+fn an_artifact_whose_carried_checks_fail_does_not_load_unless_told_to_skip_them() {
+    let runtime = Runtime::new().unwrap();
+    let honest = parse(demo_bytes()).unwrap();
+    let mut checks = honest.checks().unwrap().expect("the demo artifact carries checks");
+    let n = checks.cases.len();
+    for case in checks.cases.iter_mut().skip(1) {
+        for v in case.expect.values_mut() {
+            *v += 10.0;
+        }
+    }
+    let tampered = parse(pack(&demo_bytes(), Some(honest.params()), Some(&checks)).unwrap()).unwrap();
+
+    let err = Model::load(&runtime, tampered.clone()).unwrap_err();
+    let LoadError::ChecksFailed { report } = &err else { panic!("loaded with failing checks: {err}") };
+    assert_eq!((report.passed, report.cases), (1, n));
+    assert!(
+        err.to_string().starts_with(&format!("{} of {n} checks the artifact carries fail; first: case 1: ", n - 1)),
+        "{err}"
+    );
+
+    let skip = ModelOptions { skip_carried_checks: true, ..ModelOptions::default() };
+    let model = Model::load_with(&runtime, tampered, skip).unwrap();
+    assert!(model.carried_checks().is_none());
+
+    let model = Model::load(&runtime, honest).unwrap();
+    let report = model.carried_checks().expect("the load ran the carried checks");
+    assert!(report.ok() && report.cases == n, "{report:?}");
 }

@@ -85,13 +85,13 @@ fn nyoka_documents_give_scikit_learns_predictions_in_the_sandbox() {
         let imported = import(&bytes, Format::Pmml, &format!("{name}.pmml"), None).unwrap_or_else(|e| panic!("{e}"));
         assert_eq!(imported.guest(), "paddock-model-program");
         let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
-        let report = paddock_host::sandbox::verify::run(&model, &checks).unwrap();
+        let report = model.run_checks(&checks).unwrap();
         assert!(report.ok(), "{name}: {:?} ({})", report.failures.first(), checks.source);
         // The rows the export left out go another way in the document than
         // in scikit-learn, every one (few: under 5 %).
         let lost = Checks::from_json(&std::fs::read(dir.join(format!("{name}.lost.json"))).unwrap()).unwrap();
         if !lost.cases.is_empty() {
-            let differ = paddock_host::sandbox::verify::run(&model, &lost).unwrap();
+            let differ = model.run_checks(&lost).unwrap();
             assert_eq!(
                 differ.failures.len(),
                 lost.cases.len(),

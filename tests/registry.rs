@@ -13,7 +13,7 @@ use std::time::Duration;
 
 use paddock_host::{Artifact, Digest, Row, Runtime, TrustError, TrustPolicy, VouchingKey};
 use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
-use paddock_serve::{Context, Registry, RegistryOptions, Request, RequestError};
+use paddock_serve::{Context, Registry, RegistryError, RegistryOptions, Request, RequestError};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
@@ -318,10 +318,12 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
     let (stage, reason) = refusal_of(&reg, "m/2.0.0.wasm");
     assert_eq!(stage, GateStep::Trust);
     assert!(reason.contains(&stranger.voucher().id()), "{reason}");
-    // The cause is typed, with its source.
+    // The cause is typed; its text is in the message, once (not again as a source).
     let refusal = refused(&reg, "m/2.0.0.wasm");
-    assert!(matches!(&refusal, Refusal::Trust(e) if matches!(**e, TrustError::UnknownVoucher { .. })), "{refusal:?}");
-    assert!(std::error::Error::source(&refusal).is_some());
+    let Refusal::Trust(cause) = &refusal else { panic!("{refusal:?}") };
+    assert!(matches!(**cause, TrustError::UnknownVoucher { .. }), "{refusal:?}");
+    assert_eq!(refusal.to_string().matches(&cause.to_string()).count(), 1, "{refusal}");
+    assert!(std::error::Error::source(&refusal).is_none());
     let (stage, reason) = refusal_of(&reg, "m/3.0.0.wasm");
     assert_eq!(stage, GateStep::Trust);
     assert!(
@@ -409,9 +411,15 @@ fn unknown_models_and_unrouted_versions_are_named() {
     reg.reload().unwrap();
     assert_eq!(reg.status().unrouted, vec!["n".to_owned()]);
     let rows = x(1.0);
+    // Loaded but not routed: said so, with why, not "no model".
     let err = reg.score(&Request::new("n", &Context::new(), &rows)).unwrap_err();
-    assert_eq!(err, RequestError::UnknownModel { model: "n".into(), served: vec!["m".into()] });
-    assert_eq!(err.to_string(), "no model `n` is served (served: m)");
+    let why = "routes.toml has no [models.n] table".to_owned();
+    assert_eq!(err, RequestError::NotRouted { model: "n".into(), loaded: vec![Version::new(1, 0, 0)], why });
+    assert_eq!(err.to_string(), "model `n` is loaded (1.0.0) but not routed: routes.toml has no [models.n] table");
+    assert_eq!(err.kind(), "not_routed");
+    let err = reg.score(&Request::new("o", &Context::new(), &rows)).unwrap_err();
+    assert_eq!(err, RequestError::UnknownModel { model: "o".into(), served: vec!["m".into()] });
+    assert_eq!(err.to_string(), "no model `o` is served (served: m)");
 }
 
 #[test]
@@ -460,7 +468,8 @@ fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
     // A second registry on the same state directory is refused, naming the holder.
     let err = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions::default()).unwrap_err();
     let text = err.to_string();
-    assert!(text.contains(&format!("process {}", std::process::id())) && text.contains("--state"), "{text}");
+    let setting = "`RegistryOptions::state_dir`";
+    assert!(text.contains(&format!("process {}", std::process::id())) && text.contains(setting), "{text}");
     // One that keeps no usage may look at the store beside it.
     let look = RegistryOptions { usage_flush: None, ..RegistryOptions::default() };
     let side = Registry::open(&Runtime::new().unwrap(), store, look).unwrap();
@@ -477,6 +486,36 @@ fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
     // serving_one's own call, four, then one after the restart.
     assert_eq!((m.calls, m.rows), (6, 6));
     assert_eq!(m.wall_us.buckets.last().copied(), Some(6), "the histogram carried over: {:?}", m.wall_us);
+    drop(reg);
+
+    // The store copied whole (as `cp -r` does), state directory and all: a
+    // registry on the copy is refused, not started at the other's figures.
+    let copy = tempfile::tempdir().unwrap();
+    copy_tree(store, copy.path());
+    let err = Registry::open(&Runtime::new().unwrap(), copy.path(), RegistryOptions::default()).unwrap_err();
+    assert!(matches!(err, RegistryError::ForeignState { .. }), "{err}");
+    let text = err.to_string();
+    let original = std::fs::canonicalize(store).unwrap();
+    assert!(text.contains(&format!("holds the usage of store {}", original.display())), "{text}");
+    assert!(text.contains(setting), "{text}");
+    // Its own state directory beside it serves, from zero.
+    let own = RegistryOptions { state_dir: Some(copy.path().join("own-state")), ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), copy.path(), own).unwrap();
+    assert!(reg.usage().versions.iter().all(|v| v.calls == 0), "{:?}", reg.usage());
+}
+
+/// `cp -r from/. to/`.
+fn copy_tree(from: &Path, to: &Path) {
+    for entry in std::fs::read_dir(from).unwrap() {
+        let entry = entry.unwrap();
+        let target = to.join(entry.file_name());
+        if entry.file_type().unwrap().is_dir() {
+            std::fs::create_dir_all(&target).unwrap();
+            copy_tree(&entry.path(), &target);
+        } else {
+            std::fs::copy(entry.path(), target).unwrap();
+        }
+    }
 }
 
 #[test]

@@ -161,7 +161,7 @@ fn an_empty_trust_folder_and_a_public_file_used_as_the_key_are_named() {
     std::fs::create_dir_all(&empty).unwrap();
     let err = TrustPolicy::default().trust_dir(&empty).unwrap_err().to_string();
     assert!(err.contains("empty-trust: holds no `.voucher` file, so no vouch could be trusted"), "{err}");
-    assert!(err.contains("--pin"), "{err}");
+    assert!(err.contains("`TrustPolicy::pinned`"), "{err}");
 
     let (_, _, dir) = key("carol");
     let public = dir.join("carol.voucher");

@@ -147,16 +147,27 @@ impl LoadArgs {
         ModelOptions { limits, isolation, wasi: self.wasi.policy(), ..ModelOptions::default() }
     }
 
-    /// A runtime able to enforce these limits.
+    /// A runtime able to enforce these limits. Says so (a warning) when
+    /// the system refused the pooling allocator's reservation.
     pub fn runtime(&self) -> Result<Runtime> {
-        Ok(Runtime::with_config(RuntimeConfig { fuel: self.limits.fuel.is_some(), ..RuntimeConfig::default() })?)
+        let runtime =
+            Runtime::with_config(RuntimeConfig { fuel: self.limits.fuel.is_some(), ..RuntimeConfig::default() })?;
+        if let paddock_host::Allocator::OnDemand { reason } = runtime.allocator() {
+            tracing::warn!(%reason, "model instances are allocated on demand: fresh instances start slower");
+        }
+        Ok(runtime)
     }
 
     /// Reads an artifact, checks it against the trust policy, and loads it
-    /// under these limits.
+    /// under these limits, running the checks it carries.
     pub fn load(&self, path: &Path) -> Result<(Runtime, Model)> {
+        self.load_with(path, self.options())
+    }
+
+    /// [`LoadArgs::load`] with other options (`check` skips the carried
+    /// checks at load, to run them itself and report every case).
+    pub fn load_with(&self, path: &Path, options: ModelOptions) -> Result<(Runtime, Model)> {
         let runtime = self.runtime()?;
-        let options = self.options();
         let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
         self.trust.admit(path, &artifact)?;
         let model =

@@ -25,6 +25,7 @@ macro_rules! out {
 
 mod cmd;
 mod common;
+mod flags;
 
 use std::process::ExitCode;
 
@@ -121,7 +122,7 @@ pub(crate) fn message(e: &anyhow::Error) -> String {
         }
         line.push_str(&text);
     }
-    line
+    flags::named(&line)
 }
 
 /// Whether the error comes from writing to a pipe whose reader has closed

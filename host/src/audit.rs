@@ -15,7 +15,6 @@ use crate::artifact::{Artifact, Inventory, inspect_bytes};
 use crate::contract::Contract;
 use crate::limits::{Limits, fmt_duration};
 use crate::sandbox::model::{LoadError, Model, ModelOptions};
-use crate::sandbox::verify;
 use crate::sandbox::wasi::{self, WasiPolicy};
 use crate::sandbox::{Runtime, RuntimeConfig};
 
@@ -124,7 +123,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         contract: None,
         limits: options.limits.clone(),
         engine: EngineFacts {
-            wasmtime: crate::sandbox::WASMTIME_VERSION,
+            wasmtime: crate::sandbox::wasmtime_version(),
             stack_bytes: config.stack_bytes,
             canonical_nans: config.canonical_nans,
             interruption: format!("epoch, {} tick", fmt_duration(crate::sandbox::TICK)),
@@ -165,7 +164,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         report.violations.insert(
             0,
             format!(
-                "needs the WASI policy: it imports {} WASI interface{} and loads only under the policy (audit it with --wasi to see what each gets)",
+                "needs the WASI policy: it imports {} WASI interface{} and loads only under the policy (audit it under a WASI policy, `ModelOptions::wasi`, to see what each gets)",
                 report.wasi.len(),
                 if report.wasi.len() == 1 { "" } else { "s" }
             ),
@@ -180,15 +179,17 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
             return report;
         }
     };
-    let model = match Model::load_with(&runtime, artifact, options.clone()) {
-        Ok(m) => m,
-        Err(e) => {
-            if !matches!(e, LoadError::Imports(_) | LoadError::WasiImports(_)) {
-                report.violations.push(format!("does not load: {e}"));
+    // The checks run below, each case reported, not as a load failure.
+    let model =
+        match Model::load_with(&runtime, artifact, ModelOptions { skip_carried_checks: true, ..options.clone() }) {
+            Ok(m) => m,
+            Err(e) => {
+                if !matches!(e, LoadError::Imports(_) | LoadError::WasiImports(_)) {
+                    report.violations.push(format!("does not load: {e}"));
+                }
+                return report;
             }
-            return report;
-        }
-    };
+        };
     report.contract = Some(model.contract().clone());
     probe(&mut report, &model);
     report
@@ -232,7 +233,7 @@ fn probe(report: &mut AuditReport, model: &Model) {
             return;
         }
     };
-    let result = match verify::run(model, &carried) {
+    let result = match model.run_checks(&carried) {
         Ok(r) => r,
         Err(e) => {
             report.violations.push(format!("its checks do not run: {e}"));

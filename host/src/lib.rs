@@ -35,8 +35,9 @@
 //! - [`Runtime`]: the engine and its clock; one per process.
 //! - [`Model`]: a loaded artifact serving many threads under its
 //!   [`Limits`]; a call that hits a limit fails with [`LimitHit`].
-//! - [`Checks`]: example rows with recorded outputs, run against a loaded
-//!   model by [`sandbox::verify::run`].
+//! - [`Checks`]: example rows with recorded outputs; every load runs the
+//!   ones an artifact carries ([`Model::carried_checks`]), and
+//!   [`Model::run_checks`] runs any others.
 //! - [`TrustPolicy`]: which vouchers and pinned digests a host admits,
 //!   checked before an artifact is loaded ([`Voucher`], [`Vouch`]).
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
@@ -59,18 +60,20 @@ pub mod openapi;
 pub mod sandbox;
 pub mod tool_error;
 
-pub use artifact::checks::{Checks, ChecksError, Tolerance};
+pub use artifact::checks::{CaseFailure, CheckReport, Checks, ChecksError, Tolerance};
 pub use artifact::digest::{Digest, DigestError};
 pub use artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
 pub use artifact::{Artifact, ArtifactError, pack, pack_imported};
 pub use contract::rows::{ContractRule, Row, RowError, Value};
 pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};
-pub use limits::{LimitHit, Limits};
+pub use limits::{LimitHit, Limits, LimitsError, SettingProblem};
 pub use sandbox::codecache::{CacheError, CodeCache, CodeSource};
-pub use sandbox::model::{Estimates, Isolation, LoadError, Model, ModelOptions, Priming, ScoreError, Scored, Usage};
+pub use sandbox::model::{
+    Estimates, Isolation, LoadError, Model, ModelOptions, OptionsError, Priming, ScoreError, Scored, Usage,
+};
 pub use sandbox::prime::PrimeState;
-pub use sandbox::verify::{CaseFailure, CheckReport, PackError, Packed, Parts, pack_verified};
+pub use sandbox::verify::{PackError, Packed, Parts, pack_verified};
 pub use sandbox::wasi::WasiPolicy;
-pub use sandbox::{Runtime, RuntimeConfig, RuntimeError, SandboxError};
+pub use sandbox::{Allocator, Runtime, RuntimeConfig, RuntimeConfigError, RuntimeError, SandboxError};
 pub use tool_error::ToolError;

@@ -10,9 +10,18 @@ use serde::Serialize;
 /// [`LimitHit`] naming it, and the instance that hit it is discarded.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct Limits {
-    /// Wall-clock time one `score` call may take inside the sandbox.
-    /// Default 50 ms. Enforced by epoch interruption, so it is exact to
-    /// within one tick of the runtime's clock (1 ms).
+    /// Wall-clock time one `score` call may take inside the sandbox, from
+    /// entering it to returning. Default 50 ms. Enforced by epoch
+    /// interruption, so it is exact to within one tick of the runtime's
+    /// clock (1 ms).
+    ///
+    /// Wall-clock means it counts time the thread spends descheduled: with
+    /// more threads calling models than cores, a call can lose its core
+    /// mid-call and miss a deadline its model would meet (seen: a 4.5 µs
+    /// model missing a 5 ms deadline, four threads on two cores). Call
+    /// from at most as many threads as there are cores, or leave headroom
+    /// above the model's own time. (What the call itself ran is not
+    /// reported: telling it apart would cost a system call per call.)
     #[serde(serialize_with = "ser_duration")]
     pub deadline: Duration,
     /// Wall-clock time `init` plus `describe` may take when an instance
@@ -57,12 +66,12 @@ impl Limits {
     /// memory, rows or artifact size, and deadlines over an hour.
     ///
     /// # Errors
-    /// [`LimitsError`] listing a [`LimitProblem`] for each field out of
+    /// [`LimitsError`] listing a [`SettingProblem`] for each field out of
     /// range.
     pub fn check(&self) -> Result<(), LimitsError> {
         const HOUR: Duration = Duration::from_secs(3600);
         let mut problems = Vec::new();
-        let mut problem = |field, value: String, allowed| problems.push(LimitProblem { field, value, allowed });
+        let mut problem = |field, value: String, allowed| problems.push(SettingProblem { field, value, allowed });
         if self.deadline.is_zero() || self.deadline > HOUR {
             problem("deadline", fmt_duration(self.deadline), "give 1 ms to 1 hour");
         }
@@ -88,12 +97,14 @@ impl Limits {
     }
 }
 
-/// One limit that cannot mean what it says.
+/// One setting that cannot mean what it says: a field of [`Limits`] or of
+/// [`RuntimeConfig`](crate::sandbox::RuntimeConfig), its value, and what it
+/// may be instead.
 #[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
 #[error("{field} is {value}: {allowed}")]
 #[non_exhaustive]
-pub struct LimitProblem {
-    /// The field of [`Limits`].
+pub struct SettingProblem {
+    /// The field, as the struct names it.
     pub field: &'static str,
     /// Its value, as text.
     pub value: String,
@@ -107,7 +118,7 @@ pub struct LimitProblem {
 #[non_exhaustive]
 pub struct LimitsError {
     /// Each field out of range.
-    pub problems: Vec<LimitProblem>,
+    pub problems: Vec<SettingProblem>,
 }
 
 /// Which limit a call hit.

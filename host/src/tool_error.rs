@@ -1,6 +1,7 @@
 //! An error reported by one of the WebAssembly tools paddock builds on
 //! (wasmtime compiling or linking a component, wit-component making one),
-//! kept as a typed source with its whole chain of causes in the message.
+//! with its whole chain of causes in the message. It has no `source()`:
+//! the message already holds every cause, once.
 
 use std::error::Error;
 use std::fmt;
@@ -9,13 +10,18 @@ use std::fmt;
 #[derive(Debug)]
 pub struct ToolError {
     message: String,
-    source: Box<dyn Error + Send + Sync>,
+    original: Box<dyn Error + Send + Sync>,
 }
 
 impl ToolError {
     /// The error, with every cause it carries on one line.
     pub fn message(&self) -> &str {
         &self.message
+    }
+
+    /// The tool's own error, for a caller that wants to downcast it.
+    pub fn original(&self) -> &(dyn Error + Send + Sync + 'static) {
+        &*self.original
     }
 }
 
@@ -25,16 +31,12 @@ impl fmt::Display for ToolError {
     }
 }
 
-impl Error for ToolError {
-    fn source(&self) -> Option<&(dyn Error + 'static)> {
-        Some(&*self.source)
-    }
-}
+impl Error for ToolError {}
 
 impl From<wasmtime::Error> for ToolError {
     fn from(e: wasmtime::Error) -> Self {
         // `{:#}` writes the whole chain: "outer: cause: root cause".
-        ToolError { message: format!("{e:#}"), source: e.into() }
+        ToolError { message: format!("{e:#}"), original: e.into() }
     }
 }
 
@@ -42,6 +44,6 @@ impl From<wasmtime::Error> for ToolError {
 /// the crate, so paddock names it through wasmtime, never directly).
 impl From<wasmtime::anyhow::Error> for ToolError {
     fn from(e: wasmtime::anyhow::Error) -> Self {
-        ToolError { message: format!("{e:#}"), source: e.into() }
+        ToolError { message: format!("{e:#}"), original: e.into() }
     }
 }

@@ -18,7 +18,7 @@ pub enum OnnxError {
     /// field missing, of the wrong kind, or unknown (the parser's message
     /// names the line and the field).
     #[error("the manifest does not parse: {0}")]
-    NotToml(#[source] toml::de::Error),
+    NotToml(toml::de::Error),
     /// A field parses but cannot be served.
     #[error("manifest field `{field}`: {problem}")]
     Field {

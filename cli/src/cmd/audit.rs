@@ -128,7 +128,7 @@ fn text(r: &AuditReport) -> String {
         let n = r.violations.len();
         out.push_str(&format!("verdict: {n} violation{}\n", if n == 1 { "" } else { "s" }));
         for v in &r.violations {
-            out.push_str(&format!("  - {v}\n"));
+            out.push_str(&format!("  - {}\n", crate::flags::named(v)));
         }
     }
     out

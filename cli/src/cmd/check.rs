@@ -4,7 +4,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
 use paddock_host::Checks;
-use paddock_host::sandbox::verify;
+use paddock_host::ModelOptions;
 
 use crate::Outcome;
 use crate::common::{LoadArgs, print_json};
@@ -27,7 +27,8 @@ pub struct Args {
 
 /// Loads the model, runs the checks, prints the report.
 pub fn run(args: Args) -> Result<Outcome> {
-    let (_runtime, model) = args.limits.load(&args.artifact)?;
+    let options = ModelOptions { skip_carried_checks: true, ..args.limits.options() };
+    let (_runtime, model) = args.limits.load_with(&args.artifact, options)?;
     let checks = match &args.checks {
         Some(p) => {
             let bytes = std::fs::read(p).with_context(|| format!("reading {}", p.display()))?;
@@ -38,7 +39,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             None => bail!("{} carries no checks; give a checks file with --checks", args.artifact.display()),
         },
     };
-    let report = verify::run(&model, &checks)?;
+    let report = model.run_checks(&checks)?;
     if args.json {
         print_json(&report)?;
     } else {

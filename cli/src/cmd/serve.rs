@@ -104,10 +104,13 @@ fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
                 models.entry(model).or_default().push(format!("{version} ({used})"));
             }
             (ArtifactState::Loaded, ..) => {}
-            (ArtifactState::Refused { refusal }, ..) => lines.push(format!("refused {}: {refusal}", a.path.display())),
-            (ArtifactState::KeptAfterRefusal { refusal, .. }, ..) => {
-                lines.push(format!("kept the old bytes of {}: the new ones are refused: {refusal}", a.path.display()))
+            (ArtifactState::Refused { refusal }, ..) => {
+                lines.push(crate::flags::named(&format!("refused {}: {refusal}", a.path.display())))
             }
+            (ArtifactState::KeptAfterRefusal { refusal, .. }, ..) => lines.push(crate::flags::named(&format!(
+                "kept the old bytes of {}: the new ones are refused: {refusal}",
+                a.path.display()
+            ))),
             (ArtifactState::KeptAfterRemoval, ..) => {
                 lines.push(format!("kept {} while routed: its file was removed", a.path.display()))
             }

@@ -39,8 +39,10 @@ pub fn run(args: Args) -> Result<Outcome> {
             .map(|a| {
                 let state = match &a.state {
                     ArtifactState::Loaded => "loaded".to_owned(),
-                    ArtifactState::Refused { refusal } => format!("refused: {refusal}"),
-                    ArtifactState::KeptAfterRefusal { refusal, .. } => format!("old bytes kept; new {refusal}"),
+                    ArtifactState::Refused { refusal } => crate::flags::named(&format!("refused: {refusal}")),
+                    ArtifactState::KeptAfterRefusal { refusal, .. } => {
+                        crate::flags::named(&format!("old bytes kept; new {refusal}"))
+                    }
                     ArtifactState::KeptAfterRemoval => "file removed; kept while routed".to_owned(),
                     other => format!("{other:?}"),
                 };

@@ -2,8 +2,9 @@
 //! trained, and a tolerance. An artifact carries them so anyone can prove
 //! the deployed file computes what the training code computed.
 //!
-//! This module is the format only; running checks against a loaded model
-//! is [`crate::sandbox::verify`].
+//! This module is the format and the report; running checks against a
+//! loaded model is [`Model::run_checks`](crate::sandbox::model::Model::run_checks),
+//! which every load does unless told to skip them.
 
 use std::collections::BTreeMap;
 
@@ -17,7 +18,7 @@ use crate::contract::rows::Row;
 pub enum ChecksError {
     /// The JSON does not parse into checks.
     #[error("checks do not parse: {0}")]
-    Json(#[source] serde_json::Error),
+    Json(serde_json::Error),
     /// The tolerance is negative, NaN or infinite.
     #[error("checks do not parse: tolerance must be finite and ≥ 0, got abs {abs} rel {rel}")]
     Tolerance {
@@ -105,5 +106,70 @@ impl Checks {
     /// The checks as JSON.
     pub fn to_json(&self) -> Vec<u8> {
         serde_json::to_vec_pretty(self).unwrap_or_else(|e| panic!("checks serialize: {e}"))
+    }
+}
+
+/// Why one case failed.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+pub enum CaseFailure {
+    /// The row breaks the contract.
+    InvalidRow {
+        /// The row error.
+        error: String,
+    },
+    /// The case expects an output the contract does not have.
+    UnknownOutput {
+        /// The name.
+        output: String,
+    },
+    /// An output outside the tolerance.
+    Mismatch {
+        /// Output name.
+        output: String,
+        /// Recorded value.
+        expected: f64,
+        /// What the model gave.
+        actual: f64,
+        /// Absolute error.
+        abs_error: f64,
+        /// Relative error.
+        rel_error: f64,
+    },
+}
+
+impl std::fmt::Display for CaseFailure {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            CaseFailure::InvalidRow { error } => write!(f, "invalid row: {error}"),
+            CaseFailure::UnknownOutput { output } => write!(f, "no output named `{output}`"),
+            CaseFailure::Mismatch { output, expected, actual, abs_error, .. } => {
+                write!(f, "{output} = {actual}, expected {expected} (off by {abs_error:e})")
+            }
+        }
+    }
+}
+
+/// The outcome of running checks.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct CheckReport {
+    /// Cases run.
+    pub cases: usize,
+    /// Cases that passed.
+    pub passed: usize,
+    /// Largest absolute error over every compared output.
+    pub max_abs_error: f64,
+    /// Largest relative error over every compared output.
+    pub max_rel_error: f64,
+    /// The tolerance used.
+    pub tolerance: Tolerance,
+    /// Failed cases: (case position, why).
+    pub failures: Vec<(usize, CaseFailure)>,
+}
+
+impl CheckReport {
+    /// Whether every case passed.
+    pub fn ok(&self) -> bool {
+        self.failures.is_empty() && self.passed == self.cases
     }
 }

@@ -38,12 +38,12 @@ const OWN_PREFIX: &str = "paddock-";
 #[non_exhaustive]
 pub enum ArtifactError {
     /// The file could not be read.
-    #[error("cannot read {path}: {source}")]
+    #[error("cannot read {path}: {cause}")]
     Io {
         /// The file.
         path: PathBuf,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// The file is larger than the configured cap.
     #[error("{0}")]
@@ -84,10 +84,10 @@ pub enum ArtifactError {
     Checks(#[from] ChecksError),
     /// A core module could not be turned into a component.
     #[error("cannot make a component from this module: {0}")]
-    Componentize(#[source] ToolError),
+    Componentize(ToolError),
     /// The origin section is not a JSON object.
     #[error("custom section `{ORIGIN_SECTION}` is not a JSON object: {0}")]
-    Origin(#[source] serde_json::Error),
+    Origin(serde_json::Error),
 }
 
 /// A top-level custom section: its name and size.
@@ -133,7 +133,7 @@ impl Artifact {
     /// [`Artifact::from_bytes`].
     pub fn read(path: &Path, max_bytes: u64) -> Result<Self, ArtifactError> {
         use std::io::Read as _;
-        let io = |source| ArtifactError::Io { path: path.to_owned(), source };
+        let io = |cause| ArtifactError::Io { path: path.to_owned(), cause };
         let file = std::fs::File::open(path).map_err(io)?;
         let size = file.metadata().map_err(io)?.len();
         check_size(size, max_bytes)?;

@@ -38,12 +38,12 @@ pub const VOUCH_SUFFIX: &str = "vouch";
 #[non_exhaustive]
 pub enum TrustError {
     /// A file could not be read or written.
-    #[error("{path}: {source}")]
+    #[error("{path}: {cause}")]
     Io {
         /// The file.
         path: PathBuf,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// A voucher, vouching-key or vouch file is not in the expected form.
     #[error("{path}: {reason}")]
@@ -172,7 +172,7 @@ impl VouchingKey {
         let mut seed = [0u8; 32];
         getrandom::fill(&mut seed).map_err(|e| TrustError::Io {
             path: "(system random source)".into(),
-            source: std::io::Error::other(e.to_string()),
+            cause: std::io::Error::other(e.to_string()),
         })?;
         Ok(VouchingKey { name: name.to_owned(), key: SigningKey::from_bytes(&seed) })
     }
@@ -241,7 +241,7 @@ impl Vouch {
     /// # Errors
     /// [`TrustError::Io`], or [`TrustError::BadFile`] naming what is wrong.
     pub fn read(path: &Path) -> Result<Self, TrustError> {
-        let bytes = std::fs::read(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
+        let bytes = std::fs::read(path).map_err(|cause| TrustError::Io { path: path.to_owned(), cause })?;
         Self::from_bytes(&bytes).map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: e.to_string() })
     }
 
@@ -277,7 +277,7 @@ pub enum VouchTextError {
     NotUtf8,
     /// The text is not a vouch's TOML.
     #[error("not a vouch: {}", .0.message())]
-    NotAVouch(#[source] toml::de::Error),
+    NotAVouch(toml::de::Error),
 }
 
 /// What a host requires before it loads an artifact.
@@ -319,7 +319,7 @@ impl TrustPolicy {
     /// naming the first bad voucher file, or the directory when it holds no
     /// `.voucher` file (no vouch could be trusted: a mistake, not a policy).
     pub fn trust_dir(mut self, dir: &Path) -> Result<Self, TrustError> {
-        let entries = std::fs::read_dir(dir).map_err(|source| TrustError::Io { path: dir.to_owned(), source })?;
+        let entries = std::fs::read_dir(dir).map_err(|cause| TrustError::Io { path: dir.to_owned(), cause })?;
         let mut paths: Vec<PathBuf> = entries
             .filter_map(|e| e.ok().map(|e| e.path()))
             .filter(|p| p.extension().is_some_and(|x| x == VOUCHER_SUFFIX))
@@ -330,7 +330,7 @@ impl TrustPolicy {
                 path: dir.to_owned(),
                 reason: format!(
                     "holds no `.{VOUCHER_SUFFIX}` file, so no vouch could be trusted: copy each voucher's public \
-                     `.{VOUCHER_SUFFIX}` file here, or admit digests with --pin"
+                     `.{VOUCHER_SUFFIX}` file here, or admit digests by pinning them (`TrustPolicy::pinned`)"
                 ),
             });
         }
@@ -409,7 +409,7 @@ fn toml_text<T: Serialize>(value: &T) -> String {
 }
 
 fn read_toml<T: serde::de::DeserializeOwned>(path: &Path, what: &str) -> Result<T, TrustError> {
-    let text = std::fs::read_to_string(path).map_err(|source| TrustError::Io { path: path.to_owned(), source })?;
+    let text = std::fs::read_to_string(path).map_err(|cause| TrustError::Io { path: path.to_owned(), cause })?;
     toml::from_str(&text)
         .map_err(|e| TrustError::BadFile { path: path.to_owned(), reason: format!("not {what}: {}", e.message()) })
 }

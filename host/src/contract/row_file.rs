@@ -90,7 +90,7 @@ pub enum RowFileError {
     Header(String),
     /// Header columns that are neither features, the id, nor ignored.
     #[error(
-        "{} not {} of {model}: name the row's id column with --id NAME, or leave columns out with --ignore NAME",
+        "{} not {} of {model}: name the row's id column (`Columns::id`), or leave columns out (`Columns::ignore`)",
         list(.columns), if .columns.len() == 1 { "a feature" } else { "features" }
     )]
     UnknownColumns {
@@ -269,7 +269,7 @@ mod tests {
         let err = records("site,kw,plate\na,1,b\n".as_bytes(), RowFormat::Csv, &s, Columns::default()).err().unwrap();
         assert_eq!(
             err.to_string(),
-            "columns `site`, `plate` are not features of t 1.0.0: name the row's id column with --id NAME, or leave columns out with --ignore NAME"
+            "columns `site`, `plate` are not features of t 1.0.0: name the row's id column (`Columns::id`), or leave columns out (`Columns::ignore`)"
         );
         let ignore = ["plate".to_owned()];
         let got: Vec<Record> = records(

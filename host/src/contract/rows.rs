@@ -54,6 +54,39 @@ impl From<&str> for Value {
         Value::Label(v.to_owned())
     }
 }
+impl From<String> for Value {
+    fn from(v: String) -> Self {
+        Value::Label(v)
+    }
+}
+impl From<&String> for Value {
+    fn from(v: &String) -> Self {
+        Value::Label(v.clone())
+    }
+}
+/// Every value of these fits a whole number exactly.
+macro_rules! whole_from {
+    ($($t:ty),*) => {$(
+        impl From<$t> for Value {
+            fn from(v: $t) -> Self {
+                Value::Integer(i64::from(v))
+            }
+        }
+    )*};
+}
+whole_from!(i8, i16, i32, u8, u16, u32);
+impl From<f32> for Value {
+    fn from(v: f32) -> Self {
+        Value::Number(f64::from(v))
+    }
+}
+/// `None` is an absent value (the feature's default or a missing-value
+/// route, as the contract says).
+impl<T: Into<Value>> From<Option<T>> for Value {
+    fn from(v: Option<T>) -> Self {
+        v.map_or(Value::Absent, Into::into)
+    }
+}
 
 /// One request row: feature name → value. Features the row leaves out are
 /// absent.
@@ -83,9 +116,12 @@ impl Row {
         Row(Vec::new())
     }
 
-    /// Adds a feature value (builder style).
+    /// Sets a feature's value (builder style), from the types a program
+    /// has: `f64`/`f32` (real), `i64`/`i32`/`u32`/… (whole), `bool` (flag),
+    /// `&str`/`String` (label), `Option<_>` (`None` for absent). Naming a
+    /// feature the row already has replaces its value.
     pub fn with(mut self, name: &str, value: impl Into<Value>) -> Self {
-        self.0.push((name.to_owned(), value.into()));
+        self.set(name, value.into());
         self
     }
 
@@ -278,4 +314,35 @@ pub struct RowError {
     pub value: String,
     /// The rule it broke.
     pub rule: ContractRule,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// `Row::with` takes the types a program has, and a second value for
+    /// one name replaces the first at once (not "feature given twice" later).
+    #[test]
+    fn with_takes_everyday_types_and_replaces_a_repeated_name() {
+        let row = Row::new()
+            .with("charger_kw", 11.0f32)
+            .with("hour_of_week", 42u32)
+            .with("connector", String::from("type2"))
+            .with("ambient_c", None::<f64>)
+            .with("soc_start", Some(0.25))
+            .with("fleet", false)
+            .with("charger_kw", 22i32);
+        let fields: Vec<(&str, &Value)> = row.fields().iter().map(|(n, v)| (n.as_str(), v)).collect();
+        assert_eq!(
+            fields,
+            [
+                ("charger_kw", &Value::Integer(22)),
+                ("hour_of_week", &Value::Integer(42)),
+                ("connector", &Value::Label("type2".into())),
+                ("ambient_c", &Value::Absent),
+                ("soc_start", &Value::Number(0.25)),
+                ("fleet", &Value::Flag(false)),
+            ]
+        );
+    }
 }

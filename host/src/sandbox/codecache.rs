@@ -64,12 +64,12 @@ pub struct CodeCache {
 #[non_exhaustive]
 pub enum CacheError {
     /// The directory cannot be created or read.
-    #[error("code cache {path}: {source}")]
+    #[error("code cache {path}: {cause}")]
     Io {
         /// The directory.
         path: PathBuf,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// Someone other than its owner may write to the directory.
     #[error(
@@ -108,7 +108,7 @@ impl CodeCache {
     /// [`CacheError::Io`] when it cannot be created or read;
     /// [`CacheError::Unsafe`] when group or others may write to it.
     pub fn open(dir: &Path) -> Result<CodeCache, CacheError> {
-        let io = |source| CacheError::Io { path: dir.to_owned(), source };
+        let io = |cause| CacheError::Io { path: dir.to_owned(), cause };
         if !dir.exists() {
             create_private(dir).map_err(io)?;
         }
@@ -144,7 +144,7 @@ impl CodeCache {
         key.0.update(FORMAT);
         key.0.update(tag);
         key.0.update(artifact.digest().0);
-        key.0.update(crate::sandbox::WASMTIME_VERSION.as_bytes());
+        key.0.update(crate::sandbox::wasmtime_version().as_bytes());
         runtime.engine().precompile_compatibility_hash().hash(&mut key);
         let hex = hex::encode(key.0.finalize());
         self.dir.join(format!("{hex}.{extension}"))
@@ -270,14 +270,14 @@ pub enum EntryProblem {
     Checksum,
     /// wasmtime refused the compiled code.
     #[error("{0}")]
-    Code(#[source] ToolError),
+    Code(ToolError),
     /// The entry was replaced (by another process writing the same entry)
     /// between its check and its mapping.
     #[error("replaced while it was loaded")]
     Replaced,
     /// The file could not be read or written.
     #[error("{0}")]
-    Io(#[source] std::io::Error),
+    Io(std::io::Error),
 }
 
 /// What keys a primed entry besides the artifact and the engine: the

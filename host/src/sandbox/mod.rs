@@ -25,13 +25,41 @@ use wasmtime::{Config, Engine, InstanceAllocationStrategy, PoolingAllocationConf
 
 use crate::bindings::{Estimator, EstimatorPre};
 use crate::contract::{Contract, Fault};
-use crate::limits::{LimitHit, Limits};
+use crate::limits::{LimitHit, Limits, SettingProblem};
 use crate::tool_error::ToolError;
 use wasi::{WasiPolicy, WasiStart, WasiState};
 
-/// The wasmtime release this host is built on, as the build resolved it
-/// (read from Cargo.lock by the build script; `unknown` when there was none).
-pub const WASMTIME_VERSION: &str = env!("PADDOCK_WASMTIME_VERSION");
+/// The wasmtime release compiled into this binary, as wasmtime itself
+/// reports it (`48.0.10`), whichever lock file the build used.
+///
+/// wasmtime exposes its full version only through the `Hash` of its
+/// default [`wasmtime::ModuleVersionStrategy`], which hashes the version
+/// text; this reads that text back. `unknown` if a later wasmtime hashes
+/// something that is not a version.
+pub fn wasmtime_version() -> &'static str {
+    static VERSION: std::sync::LazyLock<String> = std::sync::LazyLock::new(|| {
+        /// A hasher that keeps the bytes it is given.
+        struct Kept(Vec<u8>);
+        impl std::hash::Hasher for Kept {
+            fn finish(&self) -> u64 {
+                0
+            }
+            fn write(&mut self, bytes: &[u8]) {
+                self.0.extend_from_slice(bytes);
+            }
+        }
+        let mut kept = Kept(Vec::new());
+        std::hash::Hash::hash(&wasmtime::ModuleVersionStrategy::WasmtimeVersion, &mut kept);
+        // `str` hashes as its bytes and a 0xff terminator.
+        let text = kept.0.strip_suffix(&[0xff]).and_then(|b| std::str::from_utf8(b).ok()).unwrap_or("");
+        let major = wasmtime::ModuleVersionStrategy::WasmtimeVersion.as_str().to_owned();
+        let looks_right = text.split('.').count() >= 3
+            && text.split(['.', '-', '+']).next() == Some(major.as_str())
+            && text.chars().all(|c| c.is_ascii_alphanumeric() || ".-+".contains(c));
+        if looks_right { text.to_owned() } else { "unknown".to_owned() }
+    });
+    &VERSION
+}
 
 /// What a guest's `score` returned, and the fuel the call used (when fuel is on).
 type GuestAnswer = (Result<Vec<f64>, Fault>, Option<u64>);
@@ -74,6 +102,66 @@ pub struct RuntimeConfig {
     pub canonical_nans: bool,
 }
 
+impl RuntimeConfig {
+    /// Refuses settings no runtime could serve a model with: no instance
+    /// slots, a memory cap under one WebAssembly page, no stack, no warm
+    /// slot budget larger than the slots.
+    ///
+    /// # Errors
+    /// [`RuntimeConfigError`] listing a [`SettingProblem`] for each field.
+    pub fn check(&self) -> Result<(), RuntimeConfigError> {
+        let mut problems = Vec::new();
+        let mut problem = |field, value: String, allowed| problems.push(SettingProblem { field, value, allowed });
+        if self.max_instances == 0 {
+            problem("max_instances", "0".into(), "no model could start an instance; give at least 1");
+        }
+        if self.warm_slots > self.max_instances {
+            problem("warm_slots", self.warm_slots.to_string(), "at most max_instances: only that many slots exist");
+        }
+        if self.max_memory_bytes < 65_536 {
+            problem("max_memory_bytes", self.max_memory_bytes.to_string(), "one WebAssembly page (65536) is the least");
+        }
+        if self.stack_bytes == 0 {
+            problem("stack_bytes", "0".into(), "no call could run; give the stack some bytes (default 512 KiB)");
+        }
+        if problems.is_empty() { Ok(()) } else { Err(RuntimeConfigError { problems }) }
+    }
+}
+
+/// Settings refused by [`RuntimeConfig::check`]: every field out of range.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[error("runtime settings refused: {}", .problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; "))]
+#[non_exhaustive]
+pub struct RuntimeConfigError {
+    /// Each field out of range.
+    pub problems: Vec<SettingProblem>,
+}
+
+/// How a runtime gets memory for model instances.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+#[serde(tag = "kind", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum Allocator {
+    /// Slots reserved up front (`RuntimeConfig::pooling`): fresh instances
+    /// start several times faster.
+    Pooling,
+    /// Memory mapped when each instance starts.
+    OnDemand {
+        /// Why not pooling: it was turned off, or the system refused the
+        /// reservation the settings ask for (with the figures).
+        reason: String,
+    },
+}
+
+impl std::fmt::Display for Allocator {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Allocator::Pooling => f.write_str("pooling (instance slots reserved up front)"),
+            Allocator::OnDemand { reason } => write!(f, "on demand: {reason}"),
+        }
+    }
+}
+
 impl Default for RuntimeConfig {
     fn default() -> Self {
         RuntimeConfig {
@@ -95,10 +183,13 @@ impl Default for RuntimeConfig {
 pub enum RuntimeError {
     /// wasmtime cannot build an engine with these settings on this host.
     #[error("cannot start the WebAssembly engine: {0}")]
-    Engine(#[source] ToolError),
+    Engine(ToolError),
+    /// The settings cannot mean what they say (each field named).
+    #[error(transparent)]
+    Config(#[from] RuntimeConfigError),
     /// The thread that ticks deadlines cannot be started.
     #[error("cannot start the clock thread: {0}")]
-    Clock(#[source] std::io::Error),
+    Clock(std::io::Error),
 }
 
 /// What the sandbox reports when a call does not return normally.
@@ -127,7 +218,7 @@ pub struct Runtime {
 struct RuntimeInner {
     engine: Engine,
     config: RuntimeConfig,
-    pooled: bool,
+    allocator: Allocator,
     stop: Arc<AtomicBool>,
     ticker: Option<JoinHandle<()>>,
 }
@@ -143,7 +234,7 @@ impl Drop for RuntimeInner {
 
 impl std::fmt::Debug for Runtime {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        f.debug_struct("Runtime").field("config", &self.inner.config).field("pooled", &self.inner.pooled).finish()
+        f.debug_struct("Runtime").field("config", &self.inner.config).field("allocator", &self.inner.allocator).finish()
     }
 }
 
@@ -159,14 +250,37 @@ impl Runtime {
 
     /// A runtime with the given settings.
     ///
+    /// When the settings ask for pooling and the system refuses the
+    /// reservation (`max_instances` slots of `max_memory_bytes` each, plus
+    /// guard pages, must fit the address space), the runtime allocates on
+    /// demand instead and [`Runtime::allocator`] says why.
+    ///
     /// # Errors
-    /// [`RuntimeError::Engine`] when wasmtime cannot build an engine with
-    /// these settings on this host; [`RuntimeError::Clock`] when the clock
-    /// thread cannot start.
+    /// [`RuntimeError::Config`] naming each setting that cannot mean what
+    /// it says ([`RuntimeConfig::check`]); [`RuntimeError::Engine`] when
+    /// wasmtime cannot build an engine with these settings on this host;
+    /// [`RuntimeError::Clock`] when the clock thread cannot start.
     pub fn with_config(config: RuntimeConfig) -> Result<Self, RuntimeError> {
-        let (engine, pooled) = match config.pooling.then(|| Engine::new(&engine_config(&config, true))) {
-            Some(Ok(engine)) => (engine, true),
-            _ => (Engine::new(&engine_config(&config, false)).map_err(|e| RuntimeError::Engine(e.into()))?, false),
+        config.check()?;
+        let pooled = match config.pooling {
+            true => Engine::new(&engine_config(&config, true)).map_err(|e| {
+                let reserve = u128::from(config.max_instances) * u128::from(config.max_memory_bytes);
+                format!(
+                    "the system refused to reserve {} instance slots of {} bytes ({} GiB in all, RuntimeConfig::max_instances × max_memory_bytes): {}",
+                    config.max_instances,
+                    config.max_memory_bytes,
+                    reserve >> 30,
+                    ToolError::from(e)
+                )
+            }),
+            false => Err("pooling is off (RuntimeConfig::pooling)".to_owned()),
+        };
+        let (engine, allocator) = match pooled {
+            Ok(engine) => (engine, Allocator::Pooling),
+            Err(reason) => (
+                Engine::new(&engine_config(&config, false)).map_err(|e| RuntimeError::Engine(e.into()))?,
+                Allocator::OnDemand { reason },
+            ),
         };
         let stop = Arc::new(AtomicBool::new(false));
         let ticker = {
@@ -182,7 +296,7 @@ impl Runtime {
                 })
                 .map_err(RuntimeError::Clock)?
         };
-        Ok(Runtime { inner: Arc::new(RuntimeInner { engine, config, pooled, stop, ticker: Some(ticker) }) })
+        Ok(Runtime { inner: Arc::new(RuntimeInner { engine, config, allocator, stop, ticker: Some(ticker) }) })
     }
 
     /// The wasmtime engine.
@@ -197,7 +311,12 @@ impl Runtime {
 
     /// Whether instance slots are pre-reserved (the pooling allocator is in use).
     pub fn pooled(&self) -> bool {
-        self.inner.pooled
+        self.inner.allocator == Allocator::Pooling
+    }
+
+    /// How this runtime allocates instances, and why not pooling when not.
+    pub fn allocator(&self) -> &Allocator {
+        &self.inner.allocator
     }
 
     /// Pre-resolves a compiled component against the empty linker, or
@@ -535,8 +654,35 @@ fn classify(err: wasmtime::Error, runtime: &Runtime, store: &Store<State>) -> Sa
 
 #[cfg(test)]
 mod tests {
-    /// The version the audit names is the one cargo resolved: checked
-    /// against `cargo tree`, not against the file the build script read.
+    use super::*;
+
+    /// Settings no runtime could serve with are refused when the runtime is
+    /// made, each field named, instead of every later load failing.
+    #[test]
+    fn impossible_runtime_settings_are_refused_naming_the_field() {
+        let config = RuntimeConfig { max_instances: 0, stack_bytes: 0, ..RuntimeConfig::default() };
+        let Err(RuntimeError::Config(e)) = Runtime::with_config(config) else { panic!("no instance slots accepted") };
+        let fields: Vec<&str> = e.problems.iter().map(|p| p.field).collect();
+        assert_eq!(fields, ["max_instances", "warm_slots", "stack_bytes"]);
+        assert!(e.to_string().contains("max_instances is 0: no model could start an instance"), "{e}");
+        let ok = Runtime::with_config(RuntimeConfig { pooling: false, ..RuntimeConfig::default() }).unwrap();
+        assert_eq!(ok.allocator(), &Allocator::OnDemand { reason: "pooling is off (RuntimeConfig::pooling)".into() });
+    }
+
+    /// A memory cap whose slots do not fit the address space (256 × 1 TiB)
+    /// turns pooling off, and the runtime says so with the figures.
+    #[test]
+    fn a_reservation_the_system_refuses_is_reported_not_silent() {
+        let config = RuntimeConfig { max_memory_bytes: 1 << 40, ..RuntimeConfig::default() };
+        let runtime = Runtime::with_config(config).unwrap();
+        let Allocator::OnDemand { reason } = runtime.allocator() else { panic!("256 TiB reserved?") };
+        assert!(reason.contains("refused to reserve 256 instance slots of 1099511627776 bytes"), "{reason}");
+        assert!(!runtime.pooled());
+    }
+
+    /// The version the audit names is the one cargo resolved and compiled
+    /// in: checked against `cargo tree`, while the host reads it from
+    /// wasmtime itself (no build script, no lock file).
     #[test]
     fn the_wasmtime_version_is_the_one_cargo_resolved() {
         let cargo = std::env::var("CARGO").unwrap_or_else(|_| "cargo".into());
@@ -547,6 +693,6 @@ mod tests {
             .unwrap();
         assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
         let text = String::from_utf8(out.stdout).unwrap();
-        assert_eq!(text.trim(), format!("wasmtime v{}", super::WASMTIME_VERSION));
+        assert_eq!(text.trim(), format!("wasmtime v{}", super::wasmtime_version()));
     }
 }

@@ -4,8 +4,9 @@
 use std::sync::Arc;
 use std::time::Duration;
 
-use crate::artifact::Artifact;
+use crate::artifact::checks::{CaseFailure, CheckReport, Checks};
 use crate::artifact::digest::Digest;
+use crate::artifact::{Artifact, ArtifactError};
 use crate::bindings::EstimatorPre;
 use crate::contract::rows::{Row, RowError};
 use crate::contract::schema::{OutputFault, Schema};
@@ -48,6 +49,12 @@ pub struct ModelOptions {
     /// Whether new instances start from a snapshot taken after `init`
     /// (see [`crate::sandbox::prime`]).
     pub priming: Priming,
+    /// Load without running the checks the artifact carries. Off by
+    /// default: every load runs them and refuses an artifact whose checks
+    /// fail ([`LoadError::ChecksFailed`]), so a tampered or mispacked file
+    /// never scores. Skip them only where something else runs them (and
+    /// reports each case), as the audit does.
+    pub skip_carried_checks: bool,
 }
 
 /// When to prime a model: snapshot it after `init(params)` at load so new
@@ -122,18 +129,18 @@ pub enum LoadError {
     #[error("the artifact imports {}; a model may import nothing (but WASI, under a WASI policy)", list(.0))]
     Imports(Vec<String>),
     /// The artifact imports WASI interfaces and no WASI policy was given.
-    #[error("the artifact imports {}; WASI imports load only under a WASI policy (`--wasi`)", list(.0))]
+    #[error("the artifact imports {}; WASI imports load only under a WASI policy (`ModelOptions::wasi`)", list(.0))]
     WasiImports(Vec<String>),
     /// wasmtime refused to compile the component.
     #[error("the component does not compile: {0}")]
-    Compile(#[source] ToolError),
+    Compile(ToolError),
     /// The component's exports do not match the `estimator` world.
     #[error("the component does not implement the paddock:model/estimator world: {0}")]
-    World(#[source] ToolError),
+    World(ToolError),
     /// The images new instances start their memory from could not be made
     /// (on Linux: a sealed memfd per memory), even after a few attempts.
     #[error("the model's initial memory image could not be made: {0}")]
-    MemoryImage(#[source] ToolError),
+    MemoryImage(ToolError),
     /// The first instance failed to start.
     #[error("the model failed to start: {0}")]
     Start(StartError),
@@ -144,8 +151,23 @@ pub enum LoadError {
     #[error("the model's contract changed between two calls to describe")]
     ContractUnstable,
     /// The options ask for something the runtime cannot give.
-    #[error("{0}")]
+    #[error(transparent)]
     Options(#[from] OptionsError),
+    /// The checks section the artifact carries cannot be read.
+    #[error("the checks the artifact carries cannot be read: {0}")]
+    ChecksUnreadable(ArtifactError),
+    /// The checks the artifact carries could not be scored at all (a trap
+    /// or a limit hit).
+    #[error("the checks the artifact carries could not run: {0}")]
+    ChecksDidNotRun(ScoreError),
+    /// Some of the checks the artifact carries fail: it does not compute
+    /// what it was packed to compute.
+    #[error("{} of {} checks the artifact carries fail{}", .report.cases - .report.passed, .report.cases,
+        .report.failures.first().map(|(i, f)| format!("; first: case {i}: {f}")).unwrap_or_default())]
+    ChecksFailed {
+        /// Every case, with each failure.
+        report: Box<CheckReport>,
+    },
 }
 
 /// Model options a runtime cannot honour.
@@ -400,6 +422,8 @@ struct Inner {
     wasi: Option<WasiStart>,
     idle: Pool<Instance>,
     who: Arc<str>,
+    /// The report of the carried checks run at load, when they were.
+    checks: Option<CheckReport>,
 }
 
 impl std::fmt::Debug for Model {
@@ -415,7 +439,7 @@ impl std::fmt::Debug for Model {
 impl Model {
     /// Loads a model with default options: size cap, refuse imports,
     /// compile, instantiate, `init(params)`, `describe()`, validate the
-    /// contract.
+    /// contract, run the checks the artifact carries.
     ///
     /// # Errors
     /// See [`Model::load_with`].
@@ -434,7 +458,11 @@ impl Model {
     /// params, [`LoadError::Contract`] listing every problem with the
     /// declared contract, [`LoadError::ContractUnstable`] when a second
     /// `describe()` answers differently, [`LoadError::Options`] (an
-    /// [`OptionsError`]) for limits the runtime cannot enforce.
+    /// [`OptionsError`]) for limits the runtime cannot enforce;
+    /// [`LoadError::ChecksUnreadable`], [`LoadError::ChecksDidNotRun`] or
+    /// [`LoadError::ChecksFailed`] when the checks it carries cannot be
+    /// read, cannot run or fail (unless
+    /// [`ModelOptions::skip_carried_checks`]).
     pub fn load_with(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<Model, LoadError> {
         Self::load_inner(runtime, artifact, options, None)
     }
@@ -499,7 +527,11 @@ impl Model {
         if options.isolation == Isolation::Reuse {
             idle.put(first);
         }
-        Ok(Model {
+        let carried = match options.skip_carried_checks {
+            true => None,
+            false => artifact.checks().map_err(LoadError::ChecksUnreadable)?,
+        };
+        let mut model = Model {
             inner: Arc::new(Inner {
                 who,
                 runtime: runtime.clone(),
@@ -511,8 +543,36 @@ impl Model {
                 primed,
                 wasi,
                 idle,
+                checks: None,
             }),
-        })
+        };
+        if let Some(checks) = carried {
+            let report = run_checks(&model, &checks).map_err(LoadError::ChecksDidNotRun)?;
+            if !report.ok() {
+                return Err(LoadError::ChecksFailed { report: Box::new(report) });
+            }
+            Arc::get_mut(&mut model.inner).expect("the model is not shared before load returns").checks = Some(report);
+        }
+        Ok(model)
+    }
+
+    /// The report of the checks the artifact carries, run when it was
+    /// loaded; `None` when it carries none or the load skipped them
+    /// ([`ModelOptions::skip_carried_checks`]).
+    pub fn carried_checks(&self) -> Option<&CheckReport> {
+        self.inner.checks.as_ref()
+    }
+
+    /// Runs `checks` (the artifact's own or any others) against this model:
+    /// every case's row through the contract and the sandbox, every output
+    /// against its recorded value and the tolerance.
+    ///
+    /// # Errors
+    /// [`ScoreError`] when the model fails to score the valid rows at all (a
+    /// trap or limit hit); invalid rows and mismatches are reported in the
+    /// [`CheckReport`], not as errors.
+    pub fn run_checks(&self, checks: &Checks) -> Result<CheckReport, ScoreError> {
+        run_checks(self, checks)
     }
 
     /// The contract the model declared.
@@ -691,4 +751,70 @@ impl Model {
         }
         inner.idle.put(instance);
     }
+}
+
+/// Runs checks against a model: every case's row through the contract and
+/// the sandbox, every output against its recorded value and the tolerance.
+fn run_checks(model: &Model, checks: &Checks) -> Result<CheckReport, ScoreError> {
+    let schema = model.schema();
+    let mut report = CheckReport {
+        cases: checks.cases.len(),
+        passed: 0,
+        max_abs_error: 0.0,
+        max_rel_error: 0.0,
+        tolerance: checks.tolerance,
+        failures: Vec::new(),
+    };
+    let mut cells = Vec::new();
+    let mut scored = Vec::new();
+    for (i, case) in checks.cases.iter().enumerate() {
+        match schema.encode_row(i + 1, &case.row, &mut cells) {
+            Ok(()) => scored.push(i),
+            Err(e) => {
+                let error = e.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ");
+                report.failures.push((i, CaseFailure::InvalidRow { error }));
+            }
+        }
+    }
+    // One case per call: each case is held to the limits of one call (a
+    // per-call fuel budget or deadline sized for single rows must not fail
+    // a load because the checks came in one batch).
+    let chunk = 1;
+    let width = schema.width();
+    let outputs = &model.contract().outputs;
+    for (batch, positions) in scored.chunks(chunk).enumerate() {
+        let start = batch * chunk * width;
+        let estimates = model.score_cells(positions.len(), &cells[start..start + positions.len() * width])?;
+        for (r, &case_index) in positions.iter().enumerate() {
+            let case = &checks.cases[case_index];
+            let mut failed = None;
+            for (name, &expected) in &case.expect {
+                let Some(k) = outputs.iter().position(|o| &o.name == name) else {
+                    failed.get_or_insert(CaseFailure::UnknownOutput { output: name.clone() });
+                    continue;
+                };
+                let actual = estimates.row(r)[k];
+                let abs_error = (actual - expected).abs();
+                let rel_error = if expected == 0.0 { abs_error } else { abs_error / expected.abs() };
+                report.max_abs_error = report.max_abs_error.max(abs_error);
+                report.max_rel_error = report.max_rel_error.max(rel_error);
+                let t = checks.tolerance;
+                if !(abs_error <= t.abs + t.rel * expected.abs()) {
+                    failed.get_or_insert(CaseFailure::Mismatch {
+                        output: name.clone(),
+                        expected,
+                        actual,
+                        abs_error,
+                        rel_error,
+                    });
+                }
+            }
+            match failed {
+                None => report.passed += 1,
+                Some(f) => report.failures.push((case_index, f)),
+            }
+        }
+    }
+    report.failures.sort_by_key(|(i, _)| *i);
+    Ok(report)
 }

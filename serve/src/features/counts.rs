@@ -41,6 +41,7 @@ pub struct SourceCounts {
 
 /// What happened to a server read, for [`SourceCounts::round_trip`].
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
 pub enum Ended {
     /// It answered.
     Answered,
@@ -112,6 +113,7 @@ impl SourceCounts {
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum SourceKind {
     /// An embedded table.
     Table,

@@ -137,6 +137,7 @@ pub struct VersionPlan {
 #[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, serde::Deserialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 #[serde(rename_all = "snake_case")]
+#[non_exhaustive]
 pub enum Lookups {
     /// Only the features that fell back (missing, stale or unavailable).
     #[default]

@@ -96,6 +96,7 @@ impl ModelPlan {
 
 /// Where one feature comes from.
 #[derive(Clone, Debug, PartialEq)]
+#[non_exhaustive]
 pub enum Supply {
     /// The request's row.
     Request,
@@ -120,6 +121,7 @@ pub struct Lookup {
 
 /// What a missing or stale value becomes.
 #[derive(Clone, Debug, PartialEq)]
+#[non_exhaustive]
 pub enum Fallback {
     /// The contract's absent value.
     Absent,
@@ -199,6 +201,7 @@ impl Template {
 /// Why a features file was refused: every problem found.
 #[derive(Clone, Debug, PartialEq, thiserror::Error)]
 #[error("{file}: {}", problems.join("; "))]
+#[non_exhaustive]
 pub struct PlanError {
     /// The file.
     pub file: String,

@@ -20,7 +20,6 @@ pub enum PlanProblem {
         /// The source's name in the plan.
         source_name: String,
         /// What went wrong.
-        #[source]
         error: RedisSourceError,
     },
     /// The plan sources a feature the version's contract does not have.

@@ -106,7 +106,7 @@ pub enum RedisSourceError {
     },
     /// The source's own runtime could not start.
     #[error("cannot start the Redis source's runtime: {0}")]
-    Runtime(#[source] std::io::Error),
+    Runtime(std::io::Error),
 }
 
 impl RedisSource {

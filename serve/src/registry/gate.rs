@@ -11,10 +11,10 @@ use sha2::{Digest as _, Sha256};
 use super::status::Refusal;
 use super::{Shared, layout, ledger};
 use paddock_host::artifact::Artifact;
+use paddock_host::artifact::checks::CheckReport;
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::{Admission, Vouch};
-use paddock_host::sandbox::model::Model;
-use paddock_host::sandbox::verify::CheckReport;
+use paddock_host::sandbox::model::{LoadError, Model, ModelOptions};
 
 /// A fingerprint of an artifact's bytes and its vouch: unchanged files are
 /// not gated again.
@@ -44,13 +44,25 @@ pub(super) fn gate(
     let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
     let limit = shared.options.model.limits.artifact_bytes;
     let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
-    let checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?;
-    let options = shared.options.model.clone();
+    let carries_checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?.is_some();
+    if !carries_checks && shared.options.require_checks {
+        return Err(Refusal::NoChecks);
+    }
+    // Loading runs the checks the artifact carries.
+    let options = ModelOptions { skip_carried_checks: false, ..shared.options.model.clone() };
     let loaded = match &shared.cache {
         Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
         None => Model::load_with(&shared.runtime, artifact, options),
     }
-    .map_err(|e| Refusal::Load(Arc::new(e)))?;
+    .map_err(|e| match e {
+        LoadError::ChecksDidNotRun(e) => Refusal::ChecksDidNotRun(e),
+        LoadError::ChecksFailed { report } => Refusal::ChecksFailed {
+            failed: report.cases - report.passed,
+            cases: report.cases,
+            first: report.failures.first().cloned(),
+        },
+        e => Refusal::Load(Arc::new(e)),
+    })?;
     let contract = loaded.contract();
     if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
         return Err(Refusal::Identity {
@@ -59,18 +71,7 @@ pub(super) fn gate(
             path: f.rel.clone(),
         });
     }
-    let report = match &checks {
-        Some(c) => {
-            let report = paddock_host::sandbox::verify::run(&loaded, c).map_err(Refusal::ChecksDidNotRun)?;
-            if !report.ok() {
-                let first = report.failures.first().cloned();
-                return Err(Refusal::ChecksFailed { failed: report.cases - report.passed, cases: report.cases, first });
-            }
-            Some(report)
-        }
-        None if shared.options.require_checks => return Err(Refusal::NoChecks),
-        None => None,
-    };
+    let report = loaded.carried_checks().cloned();
     Ok(Loaded {
         ledger: shared.ledger.version(model, version),
         outputs: loaded.contract().outputs.iter().map(|o| o.name.clone()).collect(),

@@ -110,19 +110,19 @@ impl Default for RegistryOptions {
 #[non_exhaustive]
 pub enum RegistryError {
     /// The store directory cannot be read.
-    #[error("store {path}: {source}")]
+    #[error("store {path}: {cause}")]
     Store {
         /// The directory.
         path: PathBuf,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// The code cache cannot be used.
     #[error(transparent)]
     Cache(#[from] CacheError),
     /// Another process keeps its state in this state directory.
     #[error(
-        "{path} is held by {} (a serving host keeps its code cache and usage there); stop it, or give this one its own state directory (--state)",
+        "{path} is held by {} (a serving host keeps its code cache and usage there); stop it, or give this one its own state directory (`RegistryOptions::state_dir`)",
         holder.map_or("another process".to_owned(), |p| format!("process {p}"))
     )]
     Locked {
@@ -131,13 +131,29 @@ pub enum RegistryError {
         /// The process id written in it, when readable.
         holder: Option<u32>,
     },
+    /// The state directory keeps the usage of another store or another
+    /// machine (a copied store brings its state directory along).
+    #[error(
+        "{} holds the usage of store {} on {host}, not this one: a copied store brings its state directory along. \
+         Remove the file to start this store's usage at zero, or give this registry a state directory of its own \
+         (`RegistryOptions::state_dir`)",
+        .path.display(), .store.display()
+    )]
+    ForeignState {
+        /// The usage file.
+        path: PathBuf,
+        /// The store it names.
+        store: PathBuf,
+        /// The machine it names.
+        host: String,
+    },
     /// The state directory or its lock file cannot be used.
-    #[error("{path}: {source}")]
+    #[error("{path}: {cause}")]
     State {
         /// The directory or file.
         path: PathBuf,
         /// What the system said.
-        source: std::io::Error,
+        cause: std::io::Error,
     },
     /// The directory watcher cannot start.
     #[error("cannot watch {path}: {reason}")]
@@ -154,13 +170,25 @@ pub enum RegistryError {
 #[serde(tag = "kind", rename_all = "snake_case")]
 #[non_exhaustive]
 pub enum RequestError {
-    /// No model of that name is routed.
-    #[error("no model `{model}` is served (served: {})", .served.join(", "))]
+    /// No model of that name is loaded or routed.
+    #[error("no model `{model}` is served ({})", served_list(.served))]
     UnknownModel {
         /// The name asked for.
         model: String,
         /// The models that are served.
         served: Vec<String>,
+    },
+    /// The model is loaded, but no route serves it: the store has no routes
+    /// file, its routes file was refused, or it names no route for this
+    /// model (`why` says which).
+    #[error("model `{model}` is loaded ({}) but not routed: {why}", list_versions(.loaded))]
+    NotRouted {
+        /// The model.
+        model: String,
+        /// Its loaded versions.
+        loaded: Vec<Version>,
+        /// Why no route serves it.
+        why: String,
     },
     /// The routes named a version that is not loaded. The registry only
     /// accepts routes whose versions are all loaded, so this is a bug in
@@ -186,11 +214,37 @@ pub enum RequestError {
     },
 }
 
+fn served_list(served: &[String]) -> String {
+    match served {
+        [] => "the store routes no model".to_owned(),
+        names => format!("served: {}", names.join(", ")),
+    }
+}
+
+fn list_versions(versions: &[Version]) -> String {
+    versions.iter().map(ToString::to_string).collect::<Vec<_>>().join(", ")
+}
+
+/// Why a loaded model has no route, from the state of the routes file.
+fn not_routed_why(routes: &RoutesState, model: &str) -> String {
+    match routes {
+        RoutesState::Missing => format!("the store has no {ROUTES_FILE}"),
+        RoutesState::Refused { problems } => format!("{ROUTES_FILE} was refused: {}", problems.join("; ")),
+        RoutesState::PartlyTaken { models, problems } if models.iter().any(|m| m == model) => {
+            let own: Vec<&str> = problems.iter().filter(|p| p.contains(model)).map(String::as_str).collect();
+            let own = if own.is_empty() { problems.iter().map(String::as_str).collect() } else { own };
+            format!("its routes in {ROUTES_FILE} were refused: {}", own.join("; "))
+        }
+        _ => format!("{ROUTES_FILE} has no [models.{model}] table"),
+    }
+}
+
 impl RequestError {
     /// A short stable name for the kind of error, for metrics and logs.
     pub fn kind(&self) -> &'static str {
         match self {
             RequestError::UnknownModel { .. } => "unknown_model",
+            RequestError::NotRouted { .. } => "not_routed",
             RequestError::NotLoaded { .. } => "not_loaded",
             RequestError::Score { error, .. } => error.kind(),
         }
@@ -455,11 +509,13 @@ impl Registry {
     /// [`RegistryError::Store`] when the directory cannot be read,
     /// [`RegistryError::Cache`] when the code cache cannot be used,
     /// [`RegistryError::Locked`] when another process keeps its usage in the
-    /// same state directory, [`RegistryError::State`] when the state
-    /// directory or its lock cannot be used.
+    /// same state directory, [`RegistryError::ForeignState`] when its usage
+    /// file belongs to another store or machine (a copied store),
+    /// [`RegistryError::State`] when the state directory or its lock cannot
+    /// be used.
     pub fn open(runtime: &Runtime, dir: &Path, options: RegistryOptions) -> Result<Registry, RegistryError> {
         let dir = dir.to_owned();
-        std::fs::read_dir(&dir).map_err(|source| RegistryError::Store { path: dir.clone(), source })?;
+        std::fs::read_dir(&dir).map_err(|cause| RegistryError::Store { path: dir.clone(), cause })?;
         let state_dir = options.state_dir.clone().unwrap_or_else(|| dir.join(STATE_DIR));
         let lock = match options.usage_flush {
             Some(_) => Some(usage_file::StateLock::take(&state_dir)?),
@@ -468,6 +524,7 @@ impl Registry {
         let cache = if options.code_cache { Some(CodeCache::open(&state_dir.join("code"))?) } else { None };
         let ledger = ledger::Ledger::default();
         if lock.is_some() {
+            usage_file::refuse_foreign(&state_dir, &dir)?;
             usage_file::merge(&state_dir, &ledger);
         }
         let empty = Snapshot {
@@ -567,6 +624,14 @@ impl Registry {
         let shared = &*self.inner;
         let snapshot = shared.current.load();
         let Some(routes) = snapshot.routes.model(request.model) else {
+            if let Some(loaded) = snapshot.versions.get(request.model).filter(|v| !v.is_empty()) {
+                shared.ledger.record_rejected("not_routed");
+                return Err(RequestError::NotRouted {
+                    model: request.model.to_owned(),
+                    loaded: loaded.keys().cloned().collect(),
+                    why: not_routed_why(&snapshot.status.routes, request.model),
+                });
+            }
             shared.ledger.record_rejected("unknown_model");
             return Err(RequestError::UnknownModel {
                 model: request.model.to_owned(),
@@ -587,7 +652,7 @@ impl Registry {
         Ok(Routed {
             plan: snapshot.features.plans.get(request.model).and_then(|v| v.get(route.version)).cloned(),
             version: route.version.clone(),
-            reason: route.reason.clone(),
+            reason: route.reason,
             generation: snapshot.generation,
             served,
             shadow,
@@ -664,7 +729,7 @@ impl Registry {
         let snapshot = self.inner.current.load();
         let at = at.unwrap_or_else(|| self.inner.options.clock.now());
         let route = snapshot.routes.model(model)?.route(model, context, at);
-        Some((route.version.clone(), route.reason.clone()))
+        Some((route.version.clone(), route.reason))
     }
 
     /// The routes serving now.

@@ -81,7 +81,7 @@ impl Registry {
         let mut last_seen = shared.last_seen.lock().unwrap_or_else(|e| e.into_inner());
         let old = shared.current.load_full();
         let found =
-            layout::scan(&shared.dir).map_err(|source| RegistryError::Store { path: shared.dir.clone(), source })?;
+            layout::scan(&shared.dir).map_err(|cause| RegistryError::Store { path: shared.dir.clone(), cause })?;
         let mut report = ReloadReport::default();
         let mut next = gate_files(shared, &found, &old, &mut last_seen, &mut report);
         let removed = removed_versions(&old, &next.versions);

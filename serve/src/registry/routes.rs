@@ -111,7 +111,13 @@ impl Clock for ManualClock {
 #[non_exhaustive]
 pub enum Reason {
     /// No rule matched: the model's default version.
-    Default,
+    Default {
+        /// Context keys the rules read that the request's context did not
+        /// have (a key spelt `Region` where rules read `region` lands
+        /// here); empty when every key was there and no rule matched.
+        #[serde(skip_serializing_if = "Vec::is_empty", default)]
+        absent_keys: Vec<String>,
+    },
     /// The named rule matched.
     RoutingRule {
         /// The rule's name.
@@ -134,7 +140,7 @@ impl Reason {
     /// The name of the route: `default`, the rule's name, or `canary`.
     pub fn route(&self) -> &str {
         match self {
-            Reason::Default => DEFAULT_ROUTE,
+            Reason::Default { .. } => DEFAULT_ROUTE,
             Reason::RoutingRule { name } => name,
             Reason::Canary { .. } => "canary",
         }
@@ -144,7 +150,11 @@ impl Reason {
 impl fmt::Display for Reason {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         match self {
-            Reason::Default => f.write_str("default"),
+            Reason::Default { absent_keys } if absent_keys.is_empty() => f.write_str("default"),
+            Reason::Default { absent_keys } => {
+                let keys: Vec<String> = absent_keys.iter().map(|k| format!("`{k}`")).collect();
+                write!(f, "default (the context has no {}, which rules read)", keys.join(", "))
+            }
             Reason::RoutingRule { name } => write!(f, "rule {name}"),
             Reason::Canary { cohort, share, instead_of } => {
                 let instead =
@@ -173,6 +183,9 @@ pub struct ModelRoutes {
     reasons: Vec<Arc<Reason>>,
     /// The canary's reason for each of the above.
     canary_reasons: Vec<Arc<Reason>>,
+    /// Every context key a rule reads, sorted: a default answer names
+    /// those the context lacked.
+    rule_keys: Vec<String>,
 }
 
 #[derive(Clone, Debug)]
@@ -216,12 +229,12 @@ pub struct Shadow {
 }
 
 /// Where a request goes.
-#[derive(Clone, Copy, Debug)]
+#[derive(Clone, Debug)]
 pub struct Route<'a> {
     /// The version that answers.
     pub version: &'a Version,
     /// Why.
-    pub reason: &'a Arc<Reason>,
+    pub reason: Arc<Reason>,
 }
 
 impl Routes {
@@ -323,7 +336,7 @@ impl Routes {
                 Some(Shadow { version: version?, sample: s.sample, tolerance: s.tolerance })
             });
             let Some(default) = default else { continue };
-            let mut reasons = vec![Arc::new(Reason::Default)];
+            let mut reasons = vec![Arc::new(Reason::Default { absent_keys: Vec::new() })];
             reasons.extend(rules.iter().map(|r| Arc::new(Reason::RoutingRule { name: r.name.clone() })));
             let canary_reasons = match &canary {
                 Some(c) => reasons
@@ -338,7 +351,11 @@ impl Routes {
                     .collect(),
                 None => Vec::new(),
             };
-            models.insert(name, ModelRoutes { default, rules, canary, shadow, reasons, canary_reasons });
+            let mut rule_keys: Vec<String> =
+                rules.iter().flat_map(|r| r.context.iter().map(|(k, _)| k.clone())).collect();
+            rule_keys.sort();
+            rule_keys.dedup();
+            models.insert(name, ModelRoutes { default, rules, canary, shadow, reasons, canary_reasons, rule_keys });
         }
         if problems.is_empty() { Ok(Routes { models }) } else { Err(RoutesError { problems }) }
     }
@@ -433,12 +450,16 @@ impl ModelRoutes {
             Some(i) => (&self.rules[i].version, i + 1),
             None => (&self.default, 0),
         };
-        let mut reason = &self.reasons[base];
+        let mut reason = Arc::clone(&self.reasons[base]);
+        if base == 0 && self.rule_keys.iter().any(|k| !context.contains_key(k)) {
+            let absent_keys = self.rule_keys.iter().filter(|k| !context.contains_key(*k)).cloned().collect();
+            reason = Arc::new(Reason::Default { absent_keys });
+        }
         if let Some(c) = &self.canary {
             let eligible = c.applies_to.is_empty() || c.applies_to.contains(&base);
             if eligible && context.get(&c.cohort).is_some_and(|v| in_share(model, v, c.share)) {
                 version = &c.version;
-                reason = &self.canary_reasons[base];
+                reason = Arc::clone(&self.canary_reasons[base]);
             }
         }
         Route { version, reason }
@@ -674,6 +695,25 @@ mod tests {
     // this machine's `date`): 2026-12-01 is a Tuesday, so 2026-12-04 is a
     // Friday, 12-05 a Saturday, 12-06 a Sunday, 12-07 a Monday. In December
     // Europe/Oslo is UTC+1 (CET; tz database).
+
+    /// A context key spelt differently from the one rules read (`Region`
+    /// for `region`) still takes the default route, and the reason names
+    /// the key the context lacked; a context with every key names none.
+    #[test]
+    fn a_default_answer_names_the_rule_keys_the_context_lacked() {
+        let routes = Routes::parse(SUITE).unwrap();
+        let m = routes.model("m").unwrap();
+        let tuesday = at("2026-12-01T12:00:00Z");
+        let misspelt = m.route("m", &ctx(&[("Region", "north")]), tuesday);
+        assert_eq!(misspelt.version.to_string(), "1.0.0");
+        assert_eq!(*misspelt.reason, Reason::Default { absent_keys: vec!["region".into()] });
+        assert_eq!(misspelt.reason.to_string(), "default (the context has no `region`, which rules read)");
+        let json = serde_json::to_value(&*misspelt.reason).unwrap();
+        assert_eq!(json, serde_json::json!({"picked_by": "default", "absent_keys": ["region"]}));
+        let south = m.route("m", &ctx(&[("region", "south")]), tuesday);
+        assert_eq!(*south.reason, Reason::Default { absent_keys: Vec::new() });
+        assert_eq!(serde_json::to_value(&*south.reason).unwrap(), serde_json::json!({"picked_by": "default"}));
+    }
 
     #[test]
     fn weekend_is_read_in_the_rules_zone_across_the_day_boundary() {

@@ -13,13 +13,13 @@ use std::sync::Arc;
 use super::gate::Loaded;
 use super::layout::{self, PlaceError};
 use paddock_host::artifact::ArtifactError;
+use paddock_host::artifact::checks::CaseFailure;
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::{Admission, TrustError, VouchTextError};
 use paddock_host::limits::LimitHit;
 use paddock_host::sandbox::codecache::CodeSource;
 use paddock_host::sandbox::model::{LoadError, ScoreError};
 use paddock_host::sandbox::prime::PrimeState;
-use paddock_host::sandbox::verify::CaseFailure;
 
 /// The stage at which an artifact was refused.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -148,22 +148,9 @@ impl std::fmt::Display for Refusal {
     }
 }
 
-impl std::error::Error for Refusal {
-    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
-        match self {
-            Refusal::Place(e) => Some(e),
-            Refusal::Read(e) => Some(&**e),
-            Refusal::TooLarge(e) => Some(e),
-            Refusal::VouchUnreadable { source, .. } => Some(&**source),
-            Refusal::VouchText(e) => Some(&**e),
-            Refusal::Trust(e) => Some(&**e),
-            Refusal::Parse(e) => Some(&**e),
-            Refusal::Load(e) => Some(&**e),
-            Refusal::ChecksDidNotRun(e) => Some(e),
-            Refusal::Identity { .. } | Refusal::ChecksFailed { .. } | Refusal::NoChecks => None,
-        }
-    }
-}
+/// No `source()`: the message already holds the cause's text (each
+/// variant keeps the cause itself, typed, for a caller to match on).
+impl std::error::Error for Refusal {}
 
 /// Two refusals are the same when they name the same step and reason.
 impl PartialEq for Refusal {

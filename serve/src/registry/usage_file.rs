@@ -27,8 +27,11 @@ pub fn usage_path(state_dir: &Path) -> PathBuf {
 /// [`Registry::save_usage`](super::Registry::save_usage).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct SavedUsage {
-    /// The store served.
+    /// The store served (its full path, since usage files name it so).
     pub store: PathBuf,
+    /// The machine it was served on (its host name), when known.
+    #[serde(default)]
+    pub host: Option<String>,
     /// The process that wrote it last.
     pub pid: u32,
     /// When (RFC 3339).
@@ -52,9 +55,9 @@ impl StateLock {
     /// Takes `<state>/lock`, writing this process's id into it.
     pub(crate) fn take(state_dir: &Path) -> Result<StateLock, RegistryError> {
         let path = state_dir.join("lock");
-        let io = |source| RegistryError::State { path: path.clone(), source };
+        let io = |cause| RegistryError::State { path: path.clone(), cause };
         std::fs::create_dir_all(state_dir)
-            .map_err(|source| RegistryError::State { path: state_dir.to_owned(), source })?;
+            .map_err(|cause| RegistryError::State { path: state_dir.to_owned(), cause })?;
         let mut file =
             OpenOptions::new().read(true).write(true).create(true).truncate(false).open(&path).map_err(io)?;
         match file.try_lock() {
@@ -72,6 +75,35 @@ impl StateLock {
         write!(file, "{}", std::process::id()).map_err(io)?;
         Ok(StateLock { _file: file })
     }
+}
+
+/// This machine's host name, when the system says it (Linux).
+fn host_name() -> Option<String> {
+    let name = std::fs::read_to_string("/proc/sys/kernel/hostname").ok()?;
+    Some(name.trim().to_owned()).filter(|n| !n.is_empty())
+}
+
+/// Refuses a state directory whose usage file belongs to another store or
+/// another machine: a store copied with `cp -r` (or shared over a network
+/// file system) brings its state directory along, and its figures are not
+/// this host's. A file from before paddock recorded full paths and hosts
+/// (a relative store path, no host) is taken as it is.
+pub(crate) fn refuse_foreign(state_dir: &Path, store: &Path) -> Result<(), RegistryError> {
+    let path = usage_path(state_dir);
+    let Ok(bytes) = std::fs::read(&path) else { return Ok(()) };
+    let Ok(saved) = serde_json::from_slice::<SavedUsage>(&bytes) else { return Ok(()) };
+    let here = std::fs::canonicalize(store).unwrap_or_else(|_| store.to_owned());
+    let other_store = saved.store.is_absolute() && saved.store != here;
+    let this_host = host_name();
+    let other_host = saved.host.is_some() && this_host.is_some() && saved.host != this_host;
+    if other_store || other_host {
+        return Err(RegistryError::ForeignState {
+            path,
+            store: saved.store,
+            host: saved.host.unwrap_or_else(|| "an unnamed host".to_owned()),
+        });
+    }
+    Ok(())
 }
 
 /// Adds the usage file's figures to `ledger`. A file that does not parse
@@ -111,7 +143,8 @@ pub(crate) fn save(state_dir: &Path, store: &Path, ledger: &Ledger) -> std::io::
     let path = usage_path(state_dir);
     std::fs::create_dir_all(state_dir)?;
     let saved = SavedUsage {
-        store: store.to_owned(),
+        store: std::fs::canonicalize(store).unwrap_or_else(|_| store.to_owned()),
+        host: host_name(),
         pid: std::process::id(),
         written: Timestamp::now().to_string(),
         usage: ledger.report(),

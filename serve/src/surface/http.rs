@@ -220,7 +220,7 @@ fn rejected(app: &App, kind: &'static str, status: StatusCode, body: ErrorBody) 
     responses(
         (status = 200, description = "Estimates, one entry per row (`null` for a row that broke the contract).", body = EstimateAnswer),
         (status = 400, description = "Malformed request (`bad_request`).", body = ErrorBody),
-        (status = 404, description = "No model of that name is served (`unknown_model`).", body = ErrorBody),
+        (status = 404, description = "No model of that name is served (`unknown_model`), or it is loaded but no route serves it (`not_routed`, with the loaded versions and why).", body = ErrorBody),
         (status = 413, description = "The body is over the size limit (`too_large`).", body = ErrorBody),
         (status = 415, description = "The body is declared as something other than JSON (`unsupported_media_type`).", body = ErrorBody),
         (status = 422, description = "No row is valid for the contract (`invalid_rows`, every problem listed), or too many rows.", body = ErrorBody),

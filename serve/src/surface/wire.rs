@@ -176,7 +176,7 @@ pub struct ErrorBody {
 #[derive(Clone, Debug, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ErrorDetail {
-    /// A stable name: `bad_request`, `unknown_model`, `unknown_version`,
+    /// A stable name: `bad_request`, `unknown_model`, `not_routed`, `unknown_version`,
     /// `invalid_rows`, `shape`, `too_many_rows`, `too_large`, `limit`,
     /// `trap`, `fault`, `output`, `start`, `contract_changed`, `not_loaded`,
     /// `overloaded`, `unauthorized`, `admin_disabled`, `not_ready`,
@@ -236,6 +236,11 @@ impl ErrorBody {
                 body.error.model = Some(model);
                 body.error.details.insert("served".into(), served.into());
             }
+            RequestError::NotRouted { model, loaded, .. } => {
+                body.error.model = Some(model);
+                let loaded: Vec<String> = loaded.iter().map(ToString::to_string).collect();
+                body.error.details.insert("loaded".into(), loaded.into());
+            }
             RequestError::NotLoaded { model, version } => {
                 body.error.model = Some(model);
                 body.error.version = Some(version.to_string());
@@ -273,7 +278,7 @@ pub enum Blame {
 /// Who is at fault for a registry error.
 pub fn blame(e: &RequestError) -> Blame {
     match e {
-        RequestError::UnknownModel { .. } => Blame::NotFound,
+        RequestError::UnknownModel { .. } | RequestError::NotRouted { .. } => Blame::NotFound,
         RequestError::NotLoaded { .. } => Blame::Server,
         RequestError::Score { error, .. } => match error {
             e if e.is_request_fault() => Blame::Request,
