@@ -168,7 +168,7 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     build.args(["build", "--quiet", "--workspace", "--exclude", "paddock-model-onnx", "--examples"]);
     run(build)?;
     let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);
-    for example in ["embed", "limits", "store", "service"] {
+    for example in ["embed", "checked", "limits", "store", "service"] {
         let mut cmd = Command::new(target.join("debug/examples").join(example));
         cmd.current_dir(root);
         run(cmd)?;
