@@ -11,8 +11,10 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
-use paddock_host::{Artifact, Digest, Row, Runtime, TrustError, TrustPolicy, VouchingKey};
-use paddock_serve::registry::{ArtifactState, GateStep, ManualClock, Refusal, RoutesState, artifact_path};
+use paddock_host::{
+    Artifact, Digest, LimitHit, Limits, ModelOptions, Row, Runtime, TrustError, TrustPolicy, VouchingKey,
+};
+use paddock_serve::registry::{ArtifactState, GateStep, LimitsState, ManualClock, Refusal, RoutesState, artifact_path};
 use paddock_serve::{Context, Registry, RegistryError, RegistryOptions, Request, RequestError};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
@@ -420,6 +422,71 @@ fn unknown_models_and_unrouted_versions_are_named() {
     let err = reg.score(&Request::new("o", &Context::new(), &rows)).unwrap_err();
     assert_eq!(err, RequestError::UnknownModel { model: "o".into(), served: vec!["m".into()] });
     assert_eq!(err.to_string(), "no model `o` is served (served: m)");
+}
+
+/// Limits per model and per version, from code: a version's own options
+/// win over its model's, which win over the registry's; the spinning model
+/// is stopped at its own deadline, named in the error.
+#[test]
+fn models_and_versions_load_with_limits_of_their_own() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+    put(store, "n", "1.0.0", &line_artifact("n", "1.0.0", 3.0, 0.0, Some(true)));
+    let spin = paddock_host::pack(&paddock_tests::fixture("affine.wat"), Some(&[1]), None).unwrap();
+    put(store, "affine", "1.0.0", &spin);
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n");
+    let with_deadline = |ms| ModelOptions {
+        limits: Limits { deadline: Duration::from_millis(ms), ..Limits::default() },
+        ..ModelOptions::default()
+    };
+    let options = RegistryOptions {
+        per_model: [("m".to_owned(), with_deadline(30)), ("affine".to_owned(), with_deadline(10))].into(),
+        per_version: [(("m".to_owned(), Version::new(2, 0, 0)), with_deadline(40))].into(),
+        ..RegistryOptions::default()
+    };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    let deadline =
+        |model: &str, version| reg.model(model, &Version::parse(version).unwrap()).unwrap().options().limits.deadline;
+    assert_eq!(deadline("m", "1.0.0"), Duration::from_millis(30));
+    assert_eq!(deadline("m", "2.0.0"), Duration::from_millis(40));
+    assert_eq!(deadline("n", "1.0.0"), Limits::default().deadline);
+    let err = reg.score(&Request::new("affine", &Context::new(), &[Row::new().with("x", 1.0)])).unwrap_err();
+    let RequestError::Score { error, .. } = &err else { panic!("{err}") };
+    assert_eq!(error.limit(), Some(&LimitHit::Deadline { limit: Duration::from_millis(10) }), "{err}");
+}
+
+/// Limits from the store (`limits.toml`, beside the routes) go over the
+/// code's: a change gates the version again under the new limits; a file
+/// that names an impossible limit is refused whole, naming it, and the
+/// limits last taken stay.
+#[test]
+fn the_stores_limits_file_goes_over_the_codes_and_a_bad_one_keeps_the_last() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+    let limits = |text: &str| write_atomically(&store.join("limits.toml"), text.as_bytes());
+    limits("[models.m]\ndeadline_ms = 30\n[versions.m.\"2.0.0\"]\ndeadline_ms = 40\n");
+    let reg = open(store);
+    let deadline = |version| reg.model("m", &Version::parse(version).unwrap()).unwrap().options().limits.deadline;
+    assert_eq!(reg.status().limits, LimitsState::Accepted);
+    assert_eq!((deadline("1.0.0"), deadline("2.0.0")), (Duration::from_millis(30), Duration::from_millis(40)));
+
+    limits("[models.m]\ndeadline_ms = 25\n");
+    let report = reg.reload().unwrap();
+    assert!(report.changed, "{report:?}");
+    assert_eq!((deadline("1.0.0"), deadline("2.0.0")), (Duration::from_millis(25), Duration::from_millis(25)));
+
+    limits("[models.m]\ndeadline_ms = 0\n");
+    let report = reg.reload().unwrap();
+    assert_eq!(report.limits_refused.len(), 1, "{report:?}");
+    assert!(report.limits_refused[0].starts_with("limits.toml: models.m: deadline is 0s"), "{report:?}");
+    assert!(matches!(reg.status().limits, LimitsState::Refused { .. }), "{:?}", reg.status().limits);
+    assert_eq!(deadline("1.0.0"), Duration::from_millis(25));
+    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
 }
 
 #[test]

@@ -94,7 +94,7 @@ pub fn run(args: Args) -> Result<Outcome> {
 /// one per model served (each version with the routes that use it), one per
 /// artifact refused or kept, and the routes file's state when it was not taken.
 fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
-    use paddock_serve::registry::{ArtifactState, ROUTES_FILE, RoutesState};
+    use paddock_serve::registry::{ArtifactState, LIMITS_FILE, LimitsState, ROUTES_FILE, RoutesState};
     let mut models: std::collections::BTreeMap<&str, Vec<String>> = std::collections::BTreeMap::new();
     let mut lines = Vec::new();
     for a in &status.artifacts {
@@ -133,6 +133,9 @@ fn served_lines(status: &paddock_serve::Status) -> Vec<String> {
             problems.join("; ")
         )),
         other => out.push(format!("{ROUTES_FILE}: {other:?}")),
+    }
+    if let LimitsState::Refused { problems } = &status.limits {
+        out.push(format!("{LIMITS_FILE} refused (the limits last taken stay): {}", problems.join("; ")));
     }
     if status.problems().next().is_some() || !matches!(status.routes, RoutesState::Accepted) {
         out.push("see GET /store or `paddock status` for every artifact".into());

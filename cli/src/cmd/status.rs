@@ -6,7 +6,7 @@
 
 use anyhow::Result;
 use paddock_host::{CodeSource, PrimeState};
-use paddock_serve::registry::{ArtifactState, FeaturesState, RoutesState};
+use paddock_serve::registry::{ArtifactState, FeaturesState, LimitsState, RoutesState};
 
 use crate::Outcome;
 use crate::common::{StoreArgs, print_json, text_table};
@@ -29,7 +29,8 @@ pub fn run(args: Args) -> Result<Outcome> {
         .problems()
         .any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
         || matches!(status.routes, RoutesState::Refused { .. } | RoutesState::PartlyTaken { .. })
-        || matches!(status.features, FeaturesState::Refused { .. });
+        || matches!(status.features, FeaturesState::Refused { .. })
+        || matches!(status.limits, LimitsState::Refused { .. });
     if args.json {
         print_json(&status)?;
     } else {
@@ -90,6 +91,18 @@ pub fn run(args: Args) -> Result<Outcome> {
                 }
             }
             other => outln!("\nroutes: {other:?}")?,
+        }
+        let limits = paddock_serve::registry::LIMITS_FILE;
+        match &status.limits {
+            LimitsState::Missing => {}
+            LimitsState::Accepted => outln!("limits: {limits} accepted")?,
+            LimitsState::Refused { problems } => {
+                outln!("limits: {limits} refused (the limits last taken would stay):")?;
+                for p in problems {
+                    outln!("  - {p}")?;
+                }
+            }
+            other => outln!("limits: {other:?}")?,
         }
         let features = paddock_serve::registry::FEATURES_FILE;
         match &status.features {

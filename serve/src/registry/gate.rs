@@ -34,22 +34,22 @@ pub(crate) struct Loaded {
 pub(super) fn gate(
     shared: &Shared,
     f: &layout::Found,
-    model: &str,
-    version: &Version,
+    (model, version): (&str, &Version),
     bytes: Vec<u8>,
     vouch: Option<&[u8]>,
+    chosen: &ModelOptions,
 ) -> Result<Loaded, Refusal> {
     let digest = Digest::of(&bytes);
     let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
     let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
-    let limit = shared.options.model.limits.artifact_bytes;
+    let limit = chosen.limits.artifact_bytes;
     let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
     let carries_checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?.is_some();
     if !carries_checks && shared.options.require_checks {
         return Err(Refusal::NoChecks);
     }
     // Loading runs the checks the artifact carries.
-    let options = ModelOptions { skip_carried_checks: false, ..shared.options.model.clone() };
+    let options = ModelOptions { skip_carried_checks: false, ..chosen.clone() };
     let loaded = match &shared.cache {
         Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
         None => Model::load_with(&shared.runtime, artifact, options),
@@ -80,6 +80,14 @@ pub(super) fn gate(
         admission,
         checks: report,
     })
+}
+
+/// [`fingerprint`], also over the options the version loads with.
+pub(super) fn fingerprint_with(bytes: &[u8], vouch: Option<&[u8]>, options: &ModelOptions) -> Fingerprint {
+    let mut h = Sha256::new();
+    h.update(fingerprint(bytes, vouch));
+    h.update(format!("{options:?}"));
+    h.finalize().into()
 }
 
 pub(super) fn fingerprint(bytes: &[u8], vouch: Option<&[u8]>) -> Fingerprint {

@@ -383,6 +383,7 @@ mod tests {
             since: String::new(),
             artifacts: vec![],
             routes: crate::registry::RoutesState::Missing,
+            limits: crate::registry::LimitsState::Missing,
             features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
         };

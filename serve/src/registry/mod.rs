@@ -22,6 +22,7 @@
 mod gate;
 pub mod layout;
 pub mod ledger;
+mod limits_file;
 pub mod metrics;
 mod reload;
 pub mod routes;
@@ -54,10 +55,11 @@ use reload::LastSeen;
 
 pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
+pub use limits_file::LIMITS_FILE;
 pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
 pub use status::{
-    ArtifactState, ArtifactStatus, FeaturesState, GateStep, Refusal, RefusedFile, ReloadReport, RoutesState,
-    ServerStatus, Status, TableStatus,
+    ArtifactState, ArtifactStatus, FeaturesState, GateStep, LimitsState, Refusal, RefusedFile, ReloadReport,
+    RoutesState, ServerStatus, Status, TableStatus,
 };
 pub use usage_file::{SavedUsage, usage_path};
 pub use watch::Watcher;
@@ -65,8 +67,14 @@ pub use watch::Watcher;
 /// How a registry loads and serves.
 #[derive(Clone, Debug)]
 pub struct RegistryOptions {
-    /// Limits and isolation for every model version.
+    /// Limits and isolation for every model version, unless `per_model`
+    /// or `per_version` says otherwise.
     pub model: ModelOptions,
+    /// Limits and isolation for every version of the named models, in
+    /// place of `model`.
+    pub per_model: BTreeMap<String, ModelOptions>,
+    /// Limits and isolation for one version, in place of its model's.
+    pub per_version: BTreeMap<(String, Version), ModelOptions>,
     /// Which artifacts may load.
     pub trust: TrustPolicy,
     /// Refuse artifacts that carry no checks. Off by default.
@@ -93,6 +101,8 @@ impl Default for RegistryOptions {
     fn default() -> Self {
         RegistryOptions {
             model: ModelOptions::default(),
+            per_model: BTreeMap::new(),
+            per_version: BTreeMap::new(),
             trust: TrustPolicy::default(),
             require_checks: false,
             state_dir: None,
@@ -101,6 +111,18 @@ impl Default for RegistryOptions {
             shadow_queue: 1024,
             usage_flush: Some(Duration::from_secs(10)),
         }
+    }
+}
+
+impl RegistryOptions {
+    /// The options a version loads with: its own in `per_version`, else its
+    /// model's in `per_model`, else `model`. The store's `limits.toml`
+    /// ([`LIMITS_FILE`]) then goes over these.
+    pub fn model_options(&self, model: &str, version: &Version) -> &ModelOptions {
+        self.per_version
+            .get(&(model.to_owned(), version.clone()))
+            .or_else(|| self.per_model.get(model))
+            .unwrap_or(&self.model)
     }
 }
 
@@ -539,6 +561,7 @@ impl Registry {
                 since: Timestamp::now().to_string(),
                 artifacts: Vec::new(),
                 routes: RoutesState::Missing,
+                limits: LimitsState::Missing,
                 features: FeaturesState::Missing,
                 unrouted: Vec::new(),
             },

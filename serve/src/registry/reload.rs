@@ -14,10 +14,11 @@ use semver::Version;
 
 use super::gate::{self, Fingerprint, Loaded};
 use super::layout::{self, FEATURES_FILE, ROUTES_FILE};
+use super::limits_file::{LIMITS_FILE, StoreLimits};
 use super::routes::{Routes, RoutesError};
 use super::status::{
-    ArtifactState, ArtifactStatus, FeaturesState, Refusal, RefusedFile, ReloadReport, RoutesState, ServerStatus,
-    Status, TableStatus, loaded_status, refused_status,
+    ArtifactState, ArtifactStatus, FeaturesState, LimitsState, Refusal, RefusedFile, ReloadReport, RoutesState,
+    ServerStatus, Status, TableStatus, loaded_status, refused_status,
 };
 use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
 use crate::features::{Plan, RedisSource, Source, SourceCounts, Sources, Table, VersionPlan};
@@ -33,6 +34,10 @@ pub(super) struct LastSeen {
     files: HashMap<PathBuf, (Fingerprint, Outcome)>,
     /// Fingerprint of the routes file last read, and whether it was accepted.
     routes: Option<(Fingerprint, RoutesState)>,
+    /// Fingerprint of the limits file last read, and what was made of it.
+    limits: Option<(Fingerprint, LimitsState)>,
+    /// The limits last taken.
+    taken_limits: Arc<StoreLimits>,
     /// What the features step saw last, and what it made of it.
     features: Option<(FeaturesSeen, Arc<FeatureSet>, FeaturesState)>,
     /// Tables read, by file: its size and change time when read, and the table.
@@ -61,10 +66,52 @@ enum Outcome {
 }
 
 /// What the next snapshot will serve, as the steps build it.
-#[derive(Default)]
 struct Next {
     versions: Versions,
     statuses: Vec<ArtifactStatus>,
+    limits: LimitsState,
+}
+
+/// Step 0: the store's limits file. A file refused keeps the limits last
+/// taken (said once per content, like the routes).
+fn read_limits(
+    shared: &Shared,
+    last_seen: &mut LastSeen,
+    report: &mut ReloadReport,
+) -> (Arc<StoreLimits>, LimitsState) {
+    let path = shared.dir.join(LIMITS_FILE);
+    let bytes = match std::fs::read(&path) {
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            last_seen.taken_limits = Arc::default();
+            last_seen.limits = None;
+            return (last_seen.taken_limits.clone(), LimitsState::Missing);
+        }
+        Err(e) => Err(vec![format!("{}: {e}", path.display())]),
+        Ok(bytes) => Ok(bytes),
+    };
+    let fp = bytes.as_ref().map_or([0; 32], |b| gate::fingerprint(b, None));
+    if let Some((last, state)) = &last_seen.limits
+        && *last == fp
+    {
+        return (last_seen.taken_limits.clone(), state.clone());
+    }
+    let parsed = bytes.and_then(|b| {
+        let text = String::from_utf8(b).map_err(|e| vec![format!("{LIMITS_FILE}: not UTF-8 text: {e}")])?;
+        StoreLimits::parse(&text, &shared.options.model)
+    });
+    let state = match parsed {
+        Ok(limits) => {
+            last_seen.taken_limits = Arc::new(limits);
+            LimitsState::Accepted
+        }
+        Err(problems) => {
+            tracing::warn!(limits = %path.display(), problems = %problems.join("; "), "limits file refused; the limits last taken stay");
+            report.limits_refused = problems.clone();
+            LimitsState::Refused { problems }
+        }
+    };
+    last_seen.limits = Some((fp, state.clone()));
+    (last_seen.taken_limits.clone(), state)
 }
 
 impl Registry {
@@ -83,7 +130,9 @@ impl Registry {
         let found =
             layout::scan(&shared.dir).map_err(|cause| RegistryError::Store { path: shared.dir.clone(), cause })?;
         let mut report = ReloadReport::default();
-        let mut next = gate_files(shared, &found, &old, &mut last_seen, &mut report);
+        let (limits, limits_state) = read_limits(shared, &mut last_seen, &mut report);
+        let mut next = gate_files(shared, &found, &old, (&mut last_seen, &limits), &mut report);
+        next.limits = limits_state;
         let removed = removed_versions(&old, &next.versions);
         let (routes, routes_state) = read_routes(shared, &old, &mut last_seen, &next.versions, &removed, &mut report);
         report.routes_changed = !Arc::ptr_eq(&routes, &old.routes);
@@ -102,10 +151,10 @@ fn gate_files(
     shared: &Shared,
     found: &[layout::Found],
     old: &Snapshot,
-    last_seen: &mut LastSeen,
+    (last_seen, limits): (&mut LastSeen, &StoreLimits),
     report: &mut ReloadReport,
 ) -> Next {
-    let mut next = Next::default();
+    let mut next = Next { versions: Versions::new(), statuses: Vec::new(), limits: LimitsState::Missing };
     let mut files = HashMap::new();
     for f in found {
         let (model, version) = match &f.identity {
@@ -115,20 +164,21 @@ fn gate_files(
                 continue;
             }
         };
-        let limit = shared.options.model.limits.artifact_bytes;
-        let (bytes, vouch) = match gate::read_artifact(&f.path, limit) {
+        let options = limits.resolve(shared.options.model_options(&model, &version), &model, &version);
+        let (bytes, vouch) = match gate::read_artifact(&f.path, options.limits.artifact_bytes) {
             Ok(read) => read,
             Err(refusal) => {
                 next.statuses.push(refused_status(f, Some(&(model, version)), None, refusal));
                 continue;
             }
         };
-        let fingerprint = gate::fingerprint(&bytes, vouch.as_deref());
+        // New limits for a version gate it again, as new bytes would.
+        let fingerprint = gate::fingerprint_with(&bytes, vouch.as_deref(), &options);
         let outcome = match last_seen.files.get(&f.path) {
             Some((fp, outcome)) if *fp == fingerprint => outcome.clone(),
             _ => {
                 let digest = Digest::of(&bytes);
-                match gate::gate(shared, f, &model, &version, bytes, vouch.as_deref()) {
+                match gate::gate(shared, f, (&model, &version), bytes, vouch.as_deref(), &options) {
                     Ok(loaded) => Outcome::Loaded(Arc::new(loaded)),
                     Err(refusal) => {
                         tracing::warn!(artifact = %f.rel.display(), %refusal, "artifact refused");
@@ -477,6 +527,7 @@ fn swap(
         || report.routes_changed
         || next.statuses != old.status.artifacts
         || routes_state != old.status.routes
+        || next.limits != old.status.limits
         || !Arc::ptr_eq(&features, &old.features)
         || features_state != old.status.features;
     if !report.changed {
@@ -492,6 +543,7 @@ fn swap(
         since: Timestamp::now().to_string(),
         artifacts: next.statuses,
         routes: routes_state,
+        limits: next.limits,
         features: features_state,
         unrouted,
     };

@@ -248,6 +248,23 @@ pub struct ArtifactStatus {
     pub primed: Option<PrimeState>,
 }
 
+/// Whether the store's limits file ([`super::LIMITS_FILE`]) was taken.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[serde(tag = "state", rename_all = "snake_case")]
+#[non_exhaustive]
+pub enum LimitsState {
+    /// No limits file: the code's options hold.
+    Missing,
+    /// Taken: its limits go over the code's.
+    Accepted,
+    /// Refused whole; the limits last taken stay.
+    Refused {
+        /// Every problem, naming its place.
+        problems: Vec<String>,
+    },
+}
+
 /// Whether the routes file was taken.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
@@ -342,6 +359,8 @@ pub struct Status {
     pub artifacts: Vec<ArtifactStatus>,
     /// The routes file.
     pub routes: RoutesState,
+    /// The limits file.
+    pub limits: LimitsState,
     /// The features file and its tables.
     pub features: FeaturesState,
     /// Models whose versions are loaded but which no route serves.
@@ -375,6 +394,8 @@ pub struct ReloadReport {
     pub routes_refused: Vec<String>,
     /// The features file's (or its tables') problems, when refused in this reload.
     pub features_refused: Vec<String>,
+    /// The limits file's problems, when refused in this reload.
+    pub limits_refused: Vec<String>,
     /// How long the reload took.
     #[serde(rename = "took_ms", serialize_with = "ser_ms")]
     #[cfg_attr(feature = "http", schema(value_type = f64))]
