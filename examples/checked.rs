@@ -127,7 +127,7 @@ fn load(runtime: &Runtime, artifact: Artifact, options: ModelOptions) -> Result<
 
 fn score(model: &Model, row: &Row) -> Result<f64, String> {
     match model.score(std::slice::from_ref(row)) {
-        Ok(estimates) => Ok(estimates.row(0)[0]),
+        Ok(estimates) => Ok(estimates.values_at(0)[0]),
         // The request's fault: nothing entered the sandbox.
         Err(ScoreError::InvalidRows { errors }) => {
             Err(errors.iter().map(ToString::to_string).collect::<Vec<_>>().join("; "))

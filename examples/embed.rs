@@ -36,7 +36,7 @@ fn main() -> Result<()> {
     let usage = estimates.usage();
     println!(
         "\nexpected charging: {:.0} min ({} row, {:?} in the sandbox)",
-        estimates.row(0)[0],
+        estimates.values_at(0)[0],
         usage.rows,
         usage.wall
     );
@@ -61,7 +61,7 @@ fn main() -> Result<()> {
                     .with("hour_of_week", 100i64)
                     .with("connector", "type2")
                     .with("fleet", true);
-                model.score(&[row]).map(|e| e.row(0)[0])
+                model.score(&[row]).map(|e| e.values_at(0)[0])
             })
         })
         .collect();

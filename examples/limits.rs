@@ -32,6 +32,6 @@ fn main() -> Result<()> {
     // The same fixture in its well-behaved mode answers y = 2x + 1.
     let healthy =
         Model::load(&runtime, Artifact::from_bytes(paddock_host::pack(SPIN.as_bytes(), None, None)?, u64::MAX)?)?;
-    println!("healthy model still serving: y(20) = {}", healthy.score(&[Row::new().with("x", 20.0)])?.row(0)[0]);
+    println!("healthy model still serving: y(20) = {}", healthy.score(&[Row::new().with("x", 20.0)])?.values_at(0)[0]);
     Ok(())
 }

@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::Result;
 use paddock_host::{Row, Runtime};
-use paddock_serve::{Context, Registry, RegistryOptions, Request, RequestError};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext, RequestError};
 
 /// An event the service receives when a car plugs in.
 struct PlugIn {
@@ -42,7 +42,7 @@ fn main() -> Result<()> {
                 let (mut scored, mut refused) = (0, 0);
                 loop {
                     let Ok(event) = rx.lock().unwrap().recv() else { return (scored, refused) };
-                    let context: Context = [("site", event.site), ("region", event.region)]
+                    let context: RequestContext = [("site", event.site), ("region", event.region)]
                         .map(|(k, v)| (k.to_owned(), v.to_owned()))
                         .into();
                     let rows = [Row::new()

@@ -13,7 +13,7 @@ use std::time::{Duration, Instant};
 use anyhow::{Context as _, Result};
 use paddock_host::{Row, Runtime};
 use paddock_serve::registry::ROUTES_FILE;
-use paddock_serve::{Context, Registry, RegistryOptions, Request};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 
 fn main() -> Result<()> {
     let demo = paddock_examples::demo_store();
@@ -29,7 +29,7 @@ fn main() -> Result<()> {
     }
 
     // A request names the model, carries context and (optionally) its time.
-    let north: Context =
+    let north: RequestContext =
         [("site", "Depot North"), ("region", "north")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
     let row = Row::new()
         .with("expected_minutes", 95.0)
@@ -41,7 +41,7 @@ fn main() -> Result<()> {
     let ask = |registry: &Registry| -> Result<String> {
         let rows = [row.clone()];
         let a = registry.score(&Request::new("overstay-risk", &north, &rows))?;
-        Ok(format!("{:.3} from {} ({})", a.estimates.row(0)[0], a.version, a.reason))
+        Ok(format!("{:.3} from {} ({})", a.estimates.values_at(0)[0], a.version, a.reason))
     };
     println!("\nnorth: {}", ask(&registry)?);
 

@@ -11,7 +11,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
 use paddock_serve::registry::{FeaturesState, artifact_path};
-use paddock_serve::{Context, Registry, RegistryOptions, Request};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
@@ -52,7 +52,7 @@ fn write_table(store: &Path, scale: f64) {
     write_atomically(&store.join("tables/sites.csv"), csv.as_bytes());
 }
 
-fn site(s: &str) -> Context {
+fn site(s: &str) -> RequestContext {
     [("site".to_owned(), s.to_owned())].into()
 }
 
@@ -66,7 +66,7 @@ fn a_request_scores_from_its_keys_alone() {
     );
     let rows = [Row::new()];
     let a = reg.score(&Request::new("m", &site("s3"), &rows)).unwrap();
-    assert_eq!(a.estimates.row(0), [7.0], "x = 3 from the table: 2·3 + 1");
+    assert_eq!(a.estimates.values_at(0), [7.0], "x = 3 from the table: 2·3 + 1");
     assert!(a.lookups[0].is_empty(), "nothing fell back: the compact answer names nothing");
     let a = reg.score(&Request::new("m", &site("s3"), &rows).every_lookup()).unwrap();
     let f = &a.lookups[0][0];
@@ -76,7 +76,7 @@ fn a_request_scores_from_its_keys_alone() {
     );
     // A row carrying x itself wins over the table.
     let a = reg.score(&Request::new("m", &site("s3"), &[Row::new().with("x", 10.0)]).every_lookup()).unwrap();
-    assert_eq!((a.estimates.row(0)[0], a.lookups[0][0].outcome), (21.0, Outcome::FromRequest));
+    assert_eq!((a.estimates.values_at(0)[0], a.lookups[0][0].outcome), (21.0, Outcome::FromRequest));
 }
 
 #[test]
@@ -85,10 +85,10 @@ fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
     // 64 rows, one per site, keyed in the row; the fifth names no site the table has.
     let mut rows: Vec<Row> = (0..64).map(|i| Row::new().with("site", format!("s{i}").as_str())).collect();
     rows[4] = Row::new().with("site", "nowhere");
-    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
     assert_eq!(a.scored.len(), 63);
     for (k, &n) in a.scored.iter().enumerate() {
-        assert_eq!(a.estimates.row(k)[0], 2.0 * (n - 1) as f64 + 1.0, "row {n}");
+        assert_eq!(a.estimates.values_at(k)[0], 2.0 * (n - 1) as f64 + 1.0, "row {n}");
     }
     assert_eq!(a.problems.len(), 1);
     assert_eq!(
@@ -96,7 +96,7 @@ fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
         "row 5, feature `x` = absent: lookup failed: feature `x`: nothing in source `sites` under key `nowhere`"
     );
     // No key at all: every row fails, naming the key.
-    let err = reg.score(&Request::new("m", &Context::new(), &[Row::new()])).unwrap_err().to_string();
+    let err = reg.score(&Request::new("m", &RequestContext::new(), &[Row::new()])).unwrap_err().to_string();
     assert!(
         err.contains(
             "row 1, feature `site` = absent: lookup failed: the request has no key `site` (the model's keys: site)"
@@ -117,11 +117,11 @@ fn a_table_replaced_while_requests_run_is_seen_whole() {
         let scorer = s.spawn(|| {
             let (mut old, mut new) = (0, 0);
             while !done.load(Ordering::SeqCst) || old + new < 50 {
-                let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
-                let scale = (a.estimates.row(1)[0] - 1.0) / 2.0;
+                let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
+                let scale = (a.estimates.values_at(1)[0] - 1.0) / 2.0;
                 for i in 0..64 {
                     assert_eq!(
-                        a.estimates.row(i)[0],
+                        a.estimates.values_at(i)[0],
                         2.0 * i as f64 * scale + 1.0,
                         "row {} of a table with x = {scale}·i",
                         i + 1
@@ -145,7 +145,8 @@ fn a_table_replaced_while_requests_run_is_seen_whole() {
 fn a_bad_table_or_plan_is_refused_whole_and_the_previous_keeps_serving() {
     let (dir, reg) = store(1.0);
     let store = dir.path();
-    let ask = |reg: &Registry| reg.score(&Request::new("m", &site("s3"), &[Row::new()])).unwrap().estimates.row(0)[0];
+    let ask =
+        |reg: &Registry| reg.score(&Request::new("m", &site("s3"), &[Row::new()])).unwrap().estimates.values_at(0)[0];
     // A table with a repeated key.
     write_atomically(&store.join("tables/sites.csv"), b"site,x\ns3,100\ns3,200\n");
     let report = reg.reload().unwrap();

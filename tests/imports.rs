@@ -81,7 +81,7 @@ fn imported_models_give_the_toolkits_predictions_bit_for_bit() {
         for (i, c) in checks.cases.iter().enumerate() {
             for (k, output) in outputs.iter().enumerate() {
                 let want = c.expect[output];
-                let have = got.row(i)[k];
+                let have = got.values_at(i)[k];
                 assert!(
                     have.to_bits() == want.to_bits(),
                     "{name} row {} {output}: paddock {have:e}, toolkit {want:e} ({})",
@@ -345,7 +345,7 @@ fn scikit_learn_models_from_skl2onnx_give_its_predictions_within_float32_roundin
             let eps = if name.ends_with("-hist") { 0.0 } else { score_bound(&imported.estimator, &cells) };
             widest = widest.max(eps);
             for (k, output) in outputs.iter().enumerate() {
-                let (have, want) = (got.row(i)[k], c.expect[output]);
+                let (have, want) = (got.values_at(i)[k], c.expect[output]);
                 let bound = if linked { want.abs() * (2.0 * eps + 2f64.powi(-49)) } else { eps };
                 assert!(
                     (have - want).abs() <= bound,

@@ -255,7 +255,7 @@ fn a_wasi_model_whose_init_reaches_what_cannot_be_carried_is_not_primed_and_says
         if policy == WasiPolicy::default() {
             assert_eq!(bits(&model, &rows), bits(&unprimed, &rows), "{name}");
         } else {
-            assert_eq!(model.score(&rows).unwrap().rows(), rows.len(), "{name}");
+            assert_eq!(model.score(&rows).unwrap().row_count(), rows.len(), "{name}");
         }
     }
 }

@@ -9,7 +9,7 @@ use std::time::Duration;
 use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
 use paddock_serve::registry::{FeaturesState, artifact_path};
-use paddock_serve::{Context, Registry, RegistryOptions, Request};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 use paddock_tests::{RedisServer as Server, line_artifact, unhurried, write_atomically};
 use semver::Version;
 
@@ -39,7 +39,7 @@ fn plan(store: &Path, server: &Server, missing: &str, budget_ms: u64) {
     write_atomically(&store.join("features.toml"), text.as_bytes());
 }
 
-fn site(s: &str) -> Context {
+fn site(s: &str) -> RequestContext {
     [("site".to_owned(), s.to_owned())].into()
 }
 
@@ -64,10 +64,10 @@ fn sixty_four_rows_are_one_round_trip() {
     // (measured, not assumed).
     let (r0, r1) = (server.stat("total_reads_processed"), server.stat("total_reads_processed"));
     let rows: Vec<Row> = (0..64).map(|i| Row::new().with("site", format!("s{i}").as_str())).collect();
-    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
     let r2 = server.stat("total_reads_processed");
     for i in 0..64 {
-        assert_eq!(a.estimates.row(i)[0], 2.0 * i as f64 + 1.0, "row {}", i + 1);
+        assert_eq!(a.estimates.values_at(i)[0], 2.0 * i as f64 + 1.0, "row {}", i + 1);
     }
     // On the server (Redis's own counters): 64 HMGETs, read off the socket
     // in one read: one round trip.
@@ -89,7 +89,7 @@ fn present_missing_and_stale_keys_follow_each_policy() {
     let rows: Vec<Row> = ["fresh", "old", "nowhere"].iter().map(|s| Row::new().with("site", *s)).collect();
     // Default: the old (2 h > 1 h) and the missing row take x = 0.5, y = 2.
     let (_dir, reg) = store(&server, "{ default = 0.5 }", 2000);
-    let a = reg.score(&Request::new("m", &Context::new(), &rows).every_lookup()).unwrap();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows).every_lookup()).unwrap();
     let ys: Vec<f64> = a.rows().map(|r| r.unwrap()[0]).collect();
     assert_eq!(ys, [7.0, 2.0, 2.0]);
     let outcomes: Vec<Outcome> = a.lookups.iter().map(|l| l[0].outcome).collect();
@@ -97,7 +97,7 @@ fn present_missing_and_stale_keys_follow_each_policy() {
     assert!(a.lookups[1][0].age.is_some_and(|age| age >= 7200.0), "{:?}", a.lookups[1][0]);
     // Fail: those rows get no estimate, each naming what failed.
     let (_dir2, reg) = store(&server, "\"fail\"", 2000);
-    let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
     assert_eq!(a.scored, [1]);
     let problems: Vec<String> = a.problems.iter().map(ToString::to_string).collect();
     assert_eq!(

@@ -15,7 +15,7 @@ use paddock_host::{
     Artifact, Digest, LimitHit, Limits, ModelOptions, Row, Runtime, TrustError, TrustPolicy, VouchingKey,
 };
 use paddock_serve::registry::{ArtifactState, GateStep, LimitsState, ManualClock, Refusal, RoutesState, artifact_path};
-use paddock_serve::{Context, Registry, RegistryError, RegistryOptions, Request, RequestError};
+use paddock_serve::{Registry, RegistryError, RegistryOptions, Request, RequestContext, RequestError};
 use paddock_tests::{line_artifact, write_atomically};
 use semver::Version;
 
@@ -28,7 +28,7 @@ fn routes(store: &Path, text: &str) {
     write_atomically(&store.join("routes.toml"), text.as_bytes());
 }
 
-fn ctx(pairs: &[(&str, &str)]) -> Context {
+fn ctx(pairs: &[(&str, &str)]) -> RequestContext {
     pairs.iter().map(|(k, v)| ((*k).to_owned(), (*v).to_owned())).collect()
 }
 
@@ -37,11 +37,11 @@ fn x(v: f64) -> Vec<Row> {
 }
 
 /// Scores one row; returns (version, route, value).
-fn ask(reg: &Registry, model: &str, context: &Context, at: Option<&str>, xv: f64) -> (String, String, f64) {
+fn ask(reg: &Registry, model: &str, context: &RequestContext, at: Option<&str>, xv: f64) -> (String, String, f64) {
     let rows = x(xv);
     let at = at.map(|t| t.parse().unwrap());
     let a = reg.score(&Request::new(model, context, &rows).at(at)).unwrap_or_else(|e| panic!("{e}"));
-    (a.version.to_string(), a.reason.route().to_owned(), a.estimates.row(0)[0])
+    (a.version.to_string(), a.reason.route().to_owned(), a.estimates.values_at(0)[0])
 }
 
 fn open(store: &Path) -> Registry {
@@ -86,7 +86,14 @@ fn swap_under_load_a_hundred_times_without_a_failed_request() {
                     if keep {
                         last_generation = a.as_ref().map_or(last_generation, |a| a.generation);
                         seen.push(a.map(|a| {
-                            (a.generation, (i + t) % 2, a.version.to_string(), a.digest, xv, a.estimates.row(0)[0])
+                            (
+                                a.generation,
+                                (i + t) % 2,
+                                a.version.to_string(),
+                                a.digest,
+                                xv,
+                                a.estimates.values_at(0)[0],
+                            )
                         }));
                     }
                     i += 1;
@@ -186,7 +193,7 @@ fn time_windows_follow_the_injected_clock_or_the_requests_own_time() {
     let clock = Arc::new(ManualClock::new("2026-12-04T22:59:00Z".parse().unwrap()));
     let options = RegistryOptions { clock: clock.clone(), ..RegistryOptions::default() };
     let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
-    let none = Context::new();
+    let none = RequestContext::new();
     assert_eq!(ask(&reg, "m", &none, None, 3.0), ("1.0.0".into(), "default".into(), 3.0));
     clock.set("2026-12-04T23:00:00Z".parse().unwrap()); // Saturday 00:00 in Oslo
     assert_eq!(ask(&reg, "m", &none, None, 3.0), ("2.0.0".into(), "weekend".into(), 6.0));
@@ -212,9 +219,9 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     let reg = open(store);
     for i in 0..200 {
         // x = 0..99, each twice in a row; the sample takes every other request.
-        let (version, _, y) = ask(&reg, "m", &Context::new(), None, f64::from(i / 2));
+        let (version, _, y) = ask(&reg, "m", &RequestContext::new(), None, f64::from(i / 2));
         assert_eq!((version.as_str(), y), ("1.0.0", 2.0 * f64::from(i / 2) + 1.0));
-        ask(&reg, "k", &Context::new(), None, 1.0);
+        ask(&reg, "k", &RequestContext::new(), None, 1.0);
     }
     assert!(reg.drain_shadows(Duration::from_secs(30)));
     let usage = reg.usage();
@@ -239,7 +246,7 @@ fn serving_one(store: &Path, options: RegistryOptions) -> Registry {
     put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
     routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
     let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
     reg
 }
 
@@ -277,7 +284,7 @@ fn an_artifact_failing_its_checks_is_refused_and_the_old_state_keeps_serving() {
     // The routes name a refused version, so they are refused too.
     let RoutesState::Refused { problems } = reg.status().routes else { panic!("routes accepted") };
     assert!(problems[0].contains("version 2.0.0 (used by default) is not loaded"), "{problems:?}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 
     // New bytes for the serving version that fail their checks: the old bytes keep serving.
     put(store, "m", "1.0.0", &line_artifact("m", "1.0.0", 7.0, 0.0, Some(false)));
@@ -285,7 +292,7 @@ fn an_artifact_failing_its_checks_is_refused_and_the_old_state_keeps_serving() {
     let status = reg.status();
     let a = status.artifacts.iter().find(|a| a.path == Path::new("m/1.0.0.wasm")).unwrap();
     assert!(matches!(a.state, ArtifactState::KeptAfterRefusal { .. }), "{a:?}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
 }
 
 #[test]
@@ -332,7 +339,7 @@ fn a_vouch_that_does_not_admit_is_refused_and_the_old_state_keeps_serving() {
         matches!(&refused(&reg, "m/3.0.0.wasm"), Refusal::Trust(e) if matches!(**e, TrustError::DigestMismatch { .. }))
     );
     assert!(reason.contains(&Digest::of(&three).to_string()), "{reason}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }
 
 #[test]
@@ -354,7 +361,7 @@ fn a_contract_version_that_differs_from_the_file_name_is_refused() {
     let (stage, reason) = refusal_of(&reg, "m/latest.wasm");
     assert_eq!(stage, GateStep::Layout);
     assert!(reason.contains("`latest.wasm` is not `<semver>.wasm`"), "{reason}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
 }
 
 #[test]
@@ -370,18 +377,18 @@ fn a_broken_routes_file_is_refused_whole_and_the_old_routes_keep_serving() {
     );
     let report = reg.reload().unwrap();
     assert!(report.routes_refused[0].contains("rule 1 (`late`): hours `18:00-30:00`"), "{report:?}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
     // Not TOML at all.
     routes(store, "[models.m\n");
     reg.reload().unwrap();
     let RoutesState::Refused { problems } = reg.status().routes else { panic!("routes accepted") };
     assert!(problems[0].contains("line 1"), "{problems:?}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "1.0.0");
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).0, "1.0.0");
     // Fixed: taken.
     route_default_to(store, "2.0.0");
     reg.reload().unwrap();
     assert_eq!(reg.status().routes, RoutesState::Accepted);
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "2.0.0");
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).0, "2.0.0");
 }
 
 #[test]
@@ -394,14 +401,14 @@ fn removing_an_artifact_the_routes_use_is_refused_until_they_stop() {
     let status = reg.status();
     assert_eq!(status.artifacts[0].state, ArtifactState::KeptAfterRemoval);
     assert_eq!(status.artifacts[0].used_by, vec!["default".to_owned()]);
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
 
     put(store, "m", "2.0.0", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
     route_default_to(store, "2.0.0");
     let report = reg.reload().unwrap();
     assert_eq!(report.unloaded, vec!["m 1.0.0".to_owned()]);
     assert_eq!(reg.status().artifacts.len(), 1);
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 10.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 10.0);
 }
 
 #[test]
@@ -414,12 +421,12 @@ fn unknown_models_and_unrouted_versions_are_named() {
     assert_eq!(reg.status().unrouted, vec!["n".to_owned()]);
     let rows = x(1.0);
     // Loaded but not routed: said so, with why, not "no model".
-    let err = reg.score(&Request::new("n", &Context::new(), &rows)).unwrap_err();
+    let err = reg.score(&Request::new("n", &RequestContext::new(), &rows)).unwrap_err();
     let why = "routes.toml has no [models.n] table".to_owned();
     assert_eq!(err, RequestError::NotRouted { model: "n".into(), loaded: vec![Version::new(1, 0, 0)], why });
     assert_eq!(err.to_string(), "model `n` is loaded (1.0.0) but not routed: routes.toml has no [models.n] table");
     assert_eq!(err.kind(), "not_routed");
-    let err = reg.score(&Request::new("o", &Context::new(), &rows)).unwrap_err();
+    let err = reg.score(&Request::new("o", &RequestContext::new(), &rows)).unwrap_err();
     assert_eq!(err, RequestError::UnknownModel { model: "o".into(), served: vec!["m".into()] });
     assert_eq!(err.to_string(), "no model `o` is served (served: m)");
 }
@@ -452,7 +459,7 @@ fn models_and_versions_load_with_limits_of_their_own() {
     assert_eq!(deadline("m", "1.0.0"), Duration::from_millis(30));
     assert_eq!(deadline("m", "2.0.0"), Duration::from_millis(40));
     assert_eq!(deadline("n", "1.0.0"), Limits::default().deadline);
-    let err = reg.score(&Request::new("affine", &Context::new(), &[Row::new().with("x", 1.0)])).unwrap_err();
+    let err = reg.score(&Request::new("affine", &RequestContext::new(), &[Row::new().with("x", 1.0)])).unwrap_err();
     let RequestError::Score { error, .. } = &err else { panic!("{err}") };
     assert_eq!(error.limit(), Some(&LimitHit::Deadline { limit: Duration::from_millis(10) }), "{err}");
 }
@@ -486,7 +493,7 @@ fn the_stores_limits_file_goes_over_the_codes_and_a_bad_one_keeps_the_last() {
     assert!(report.limits_refused[0].starts_with("limits.toml: models.m: deadline is 0s"), "{report:?}");
     assert!(matches!(reg.status().limits, LimitsState::Refused { .. }), "{:?}", reg.status().limits);
     assert_eq!(deadline("1.0.0"), Duration::from_millis(25));
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
 }
 
 #[test]
@@ -499,7 +506,7 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
     put(store, "affine", "1.0.0", &spin);
     routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n");
     reg.reload().unwrap();
-    let none = Context::new();
+    let none = RequestContext::new();
     let three: Vec<Row> = (0..3).map(|i| Row::new().with("x", f64::from(i))).collect();
     reg.score(&Request::new("m", &none, &three)).unwrap();
     let bad = vec![Row::new().with("x", "seven")];
@@ -530,7 +537,7 @@ fn the_ledger_counts_calls_rows_errors_and_limit_hits_per_version() {
 fn usage_accumulates_across_restarts_and_one_process_holds_a_state_directory() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    let none = Context::new();
+    let none = RequestContext::new();
     let reg = serving_one(store, RegistryOptions::default());
     // A second registry on the same state directory is refused, naming the holder.
     let err = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions::default()).unwrap_err();
@@ -631,7 +638,7 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
     drop(reg);
     let reg = open(store);
     assert_eq!(reg.status().artifacts[0].code, Some(CodeSource::Cache));
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
     drop(reg);
 
     // Flip one byte of the entry (written anew, as an edit would be: an
@@ -652,7 +659,7 @@ fn a_restart_takes_compiled_code_from_the_cache_and_drops_a_damaged_entry() {
             panic!("{:?}", reg.status().artifacts[0].code)
         };
         assert!(reason.contains(why), "{reason}");
-        assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).2, 5.0);
+        assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
     };
     dropped_and_remade("checksum does not match");
     assert_eq!(open(store).status().artifacts[0].code, Some(CodeSource::Cache));
@@ -685,7 +692,7 @@ fn the_watcher_picks_up_changes_by_event_and_by_rescan() {
     let reg = serving_one(store, RegistryOptions::default());
     let wait_for = |version: &str| {
         paddock_tests::came_true(Duration::from_secs(20), Duration::from_millis(20), || {
-            reg.route("m", &Context::new(), None).is_some_and(|(v, _)| v.to_string() == version)
+            reg.route("m", &RequestContext::new(), None).is_some_and(|(v, _)| v.to_string() == version)
         })
     };
     {
@@ -718,7 +725,7 @@ fn with_a_metering_runtime_the_ledger_sums_fuel() {
     let mut fuel = 0;
     for i in 0..5 {
         let rows = x(f64::from(i));
-        let a = reg.score(&Request::new("m", &Context::new(), &rows)).unwrap();
+        let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
         fuel += a.estimates.usage().fuel.expect("metered");
     }
     let usage = reg.usage();
@@ -738,13 +745,13 @@ fn one_models_broken_routes_leave_the_other_models_serving() {
     put(store, "n", "1.0.0", &line_artifact("n", "1.0.0", 2.0, 0.0, Some(false)));
     routes(store, "[models.m]\ndefault = \"1.0.0\"\n[models.n]\ndefault = \"1.0.0\"\n");
     let reg = open(store);
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0), ("1.0.0".into(), "default".into(), 5.0));
     let RoutesState::PartlyTaken { models, problems } = reg.status().routes else {
         panic!("{:?}", reg.status().routes)
     };
     assert_eq!(models, ["n"]);
     assert!(problems[0].contains("model `n`: version 1.0.0 (used by default) is not loaded"), "{problems:?}");
-    let e = reg.score(&Request::new("n", &Context::new(), &x(1.0))).unwrap_err();
+    let e = reg.score(&Request::new("n", &RequestContext::new(), &x(1.0))).unwrap_err();
     assert!(matches!(e, paddock_serve::RequestError::UnknownModel { .. }), "{e}");
 
     // n is fixed and routed; then m's routes name a version that fails its
@@ -757,8 +764,8 @@ fn one_models_broken_routes_leave_the_other_models_serving() {
     routes(store, "[models.m]\ndefault = \"2.0.0\"\n[models.n]\ndefault = \"2.0.0\"\n");
     let report = reg.reload().unwrap();
     assert!(report.routes_refused[0].contains("model `m`: version 2.0.0"), "{report:?}");
-    assert_eq!(ask(&reg, "m", &Context::new(), None, 5.0).0, "1.0.0");
-    assert_eq!(ask(&reg, "n", &Context::new(), None, 5.0).0, "2.0.0");
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).0, "1.0.0");
+    assert_eq!(ask(&reg, "n", &RequestContext::new(), None, 5.0).0, "2.0.0");
     let RoutesState::PartlyTaken { models, .. } = reg.status().routes else { panic!("{:?}", reg.status().routes) };
     assert_eq!(models, ["m"]);
 }
@@ -814,14 +821,14 @@ fn the_store_docs_serving_md_shows_serves_as_it_says() {
             .with("connector", "type2")
             .with("fleet", false),
     ];
-    let picked = |context: &Context, at: &str| {
+    let picked = |context: &RequestContext, at: &str| {
         let a = reg.score(&Request::new("charge-minutes", context, &session).at(Some(at.parse().unwrap()))).unwrap();
         (a.version.to_string(), a.reason.route().to_owned())
     };
     // Wednesday noon and Saturday noon in Europe/Oslo (UTC+1 in December).
     let (weekday, saturday) = ("2026-12-02T11:00:00Z", "2026-12-05T11:00:00Z");
-    assert_eq!(picked(&Context::new(), weekday), ("1.0.0".into(), "default".into()));
-    assert_eq!(picked(&Context::new(), saturday), ("1.1.0".into(), "weekend".into()));
+    assert_eq!(picked(&RequestContext::new(), weekday), ("1.0.0".into(), "default".into()));
+    assert_eq!(picked(&RequestContext::new(), saturday), ("1.1.0".into(), "weekend".into()));
     // The canary takes a tenth of sites, the same sites every time.
     let sites: Vec<String> = (0..200).map(|i| format!("site-{i}")).collect();
     let on_canary: Vec<&String> = sites.iter().filter(|s| picked(&ctx(&[("site", s)]), weekday).0 == "1.2.0").collect();

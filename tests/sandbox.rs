@@ -201,7 +201,7 @@ fn non_finite_and_short_answers_are_model_faults() {
         "{err:?}"
     );
     let err = nan.score(&x(1.0)).unwrap_err();
-    assert_eq!(err.to_string(), "model fault: row 1, output `y` = NaN: not a finite number");
+    assert_eq!(err.to_string(), "the answer breaks the contract: row 1, output `y` = NaN: not a finite number");
     let short = affine(&runtime, 5, Limits::default());
     let err = short.score(&[Row::new().with("x", 1.0), Row::new().with("x", 2.0)]).unwrap_err();
     assert_eq!(err, ScoreError::Output(OutputFault::WrongLength { expected: 2, actual: 1, rows: 2, outputs: 1 }));
@@ -310,7 +310,7 @@ fn a_model_fault_names_the_row_as_the_request_numbers_it() {
     // as row 1 broke the contract and never entered the sandbox.
     let nan = affine(&runtime, 4, Limits::default());
     let err = nan.score_valid(&[Row::new().with("x", "one"), Row::new().with("x", 1.0)]).unwrap_err();
-    assert_eq!(err.to_string(), "model fault: row 2, output `y` = NaN: not a finite number");
+    assert_eq!(err.to_string(), "the answer breaks the contract: row 2, output `y` = NaN: not a finite number");
     // And with every row valid, partial scoring answers them all.
     let ok = affine(&runtime, 0, Limits::default());
     let scored =
@@ -318,5 +318,5 @@ fn a_model_fault_names_the_row_as_the_request_numbers_it() {
     assert_eq!(scored.scored, [1, 3]);
     assert_eq!(scored.problems.len(), 1);
     assert_eq!(scored.problems[0].row, 2);
-    assert_eq!(scored.estimates.rows(), 2);
+    assert_eq!(scored.estimates.row_count(), 2);
 }

@@ -44,7 +44,7 @@ fn worst_relative_error(model: &Model, e: &Value, features: &[String]) -> f64 {
     let want = floats(&e["predictions"]);
     assert_eq!(rows.len(), 442);
     let got = model.score(&rows).unwrap();
-    (0..rows.len()).map(|i| ((got.row(i)[0] - want[i]) / want[i]).abs()).fold(0.0, f64::max)
+    (0..rows.len()).map(|i| ((got.values_at(i)[0] - want[i]) / want[i]).abs()).fold(0.0, f64::max)
 }
 
 fn versions(e: &Value) -> String {
@@ -145,11 +145,11 @@ fn onnx_exports_from_skl2onnx_match_scikit_learn_within_float32_tolerance() {
         let got = model.score(&rows).unwrap();
         let mut worst = 0.0f64;
         for (i, w) in want.iter().enumerate() {
-            let err = (got.row(i)[0] - w).abs() / w.abs().max(1.0);
+            let err = (got.values_at(i)[0] - w).abs() / w.abs().max(1.0);
             assert!(
                 err <= FLOAT32_TOLERANCE,
                 "{name} row {i}: {} vs scikit-learn {w} ({})",
-                got.row(i)[0],
+                got.values_at(i)[0],
                 versions(&e)
             );
             worst = worst.max(err);

@@ -21,7 +21,7 @@ fn probe(
     print_bytes: f64,
 ) -> Result<std::collections::BTreeMap<String, f64>, ScoreError> {
     let e = model.score(&[Row::new().with("sleep_ms", sleep_ms).with("print_bytes", print_bytes)])?;
-    Ok(model.contract().outputs.iter().map(|o| o.name.clone()).zip(e.row(0).iter().copied()).collect())
+    Ok(model.contract().outputs.iter().map(|o| o.name.clone()).zip(e.values_at(0).iter().copied()).collect())
 }
 
 fn load(policy: WasiPolicy) -> Model {

@@ -716,9 +716,9 @@ fn audit_fails_hostile_and_untrusted_artifacts_naming_why() {
     assert!(audit(&spinner, &["--deadline-ms", "20"]).contains("its checks do not run: deadline of 20ms exceeded"));
 
     let nan = pack(4, "nan.wasm");
-    assert!(
-        audit(&nan, &[]).contains("its checks do not run: model fault: row 1, output `y` = NaN: not a finite number")
-    );
+    assert!(audit(&nan, &[]).contains(
+        "its checks do not run: the answer breaks the contract: row 1, output `y` = NaN: not a finite number"
+    ));
 
     let importer = dir.join("importer.wasm");
     let wat = root().join("tests/hostile/import-made-up-host-function.wat");

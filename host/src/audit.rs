@@ -250,7 +250,7 @@ fn probe(report: &mut AuditReport, model: &Model) {
         carried.cases.iter().enumerate().filter(|(i, c)| schema.encode_row(*i + 1, &c.row, &mut cells).is_ok()).count();
     let (mut fuel, mut micros, mut peak) = (0.0, 0.0, 0);
     if rows > 0 {
-        match model.score_cells(rows, &cells) {
+        match model.score_cells_unchecked(rows, &cells) {
             Ok(e) => {
                 let u = e.usage();
                 fuel = u.fuel.unwrap_or(0) as f64 / rows as f64;

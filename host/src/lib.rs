@@ -23,7 +23,7 @@
 //!     .with("connector", "type2")
 //!     .with("fleet", false);
 //! let estimates = model.score(&[row])?;
-//! println!("{} minutes", estimates.row(0)[0]);
+//! println!("{} minutes", estimates.values_at(0)[0]);
 //! # Ok(()) }
 //! ```
 //!

@@ -16,13 +16,13 @@
 //!
 //! ```no_run
 //! use paddock_host::{Row, Runtime};
-//! use paddock_serve::{Context, Registry, RegistryOptions, Request};
+//! use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 //!
 //! # fn main() -> Result<(), Box<dyn std::error::Error>> {
 //! let runtime = Runtime::new()?;
 //! let registry = Registry::open(&runtime, "store".as_ref(), RegistryOptions::default())?;
 //! let rows = [Row::new().with("charger_kw", 11.0)];
-//! let answer = registry.score(&Request::new("charge-minutes", &Context::default(), &rows))?;
+//! let answer = registry.score(&Request::new("charge-minutes", &RequestContext::default(), &rows))?;
 //! println!("{} answered", answer.version);
 //! # Ok(()) }
 //! ```
@@ -38,7 +38,7 @@ pub mod features;
 pub mod registry;
 pub mod surface;
 
-pub use registry::{Answer, Context, Registry, RegistryError, RegistryOptions, Request, RequestError, Status};
+pub use registry::{Answer, Registry, RegistryError, RegistryOptions, Request, RequestContext, RequestError, Status};
 
 /// The time a request is scored at (`Request::at`), re-exported so an
 /// embedder needs no direct `jiff` dependency.

@@ -24,7 +24,7 @@ use std::time::Instant;
 use paddock_guest::{LinearParams, Link, Packaged, encode_params};
 use paddock_host::{Row, Runtime};
 use paddock_serve::registry::artifact_path;
-use paddock_serve::{Context, Registry, RegistryOptions, Request};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 use paddock_tests::{RedisServer, guest, open_contract, root, write_atomically};
 use semver::Version;
 
@@ -148,7 +148,7 @@ fn main() {
         r
     };
     let keyed = |s: usize| Row::new().with("f0", 1.5).with("f1", 2.5).with("site", format!("s{s}").as_str());
-    let contexts: Vec<Context> = (0..SITES).map(|s| [("site".to_owned(), format!("s{s}"))].into()).collect();
+    let contexts: Vec<RequestContext> = (0..SITES).map(|s| [("site".to_owned(), format!("s{s}"))].into()).collect();
     let one_row =
         |store: usize, s: usize| if store == 0 { assembled(s) } else { Row::new().with("f0", 1.5).with("f1", 2.5) };
     let singles: Vec<Vec<Vec<Row>>> =
@@ -164,12 +164,14 @@ fn main() {
     // Every store answers the same.
     for s in [0, 17, SITES - 1] {
         let ys: Vec<f64> = (0..3)
-            .map(|k| registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.row(0)[0])
+            .map(|k| {
+                registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.values_at(0)[0]
+            })
             .collect();
         assert!(ys.iter().all(|y| *y == ys[0]), "site {s}: {ys:?}");
     }
 
-    let emptiness = Context::new();
+    let emptiness = RequestContext::new();
     let (mut single_times, mut batch_times): (Vec<Vec<u64>>, Vec<Vec<u64>>) =
         (vec![Vec::new(); 3], vec![Vec::new(); 3]);
     for round in 0..rounds {

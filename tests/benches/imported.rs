@@ -52,7 +52,7 @@ fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usiz
     let outputs = model.contract().outputs.len();
     assert_eq!(cells.len(), rows * features, "{name}: rows do not fit the model");
     // Same bits both ways, or the comparison means nothing.
-    let in_sandbox = model.score_cells(rows, cells).unwrap();
+    let in_sandbox = model.score_cells_unchecked(rows, cells).unwrap();
     let mut out = Array2::zeros((rows, outputs));
     native.evaluate(ArrayView2::from_shape((rows, features), cells).unwrap(), out.view_mut());
     assert!(
@@ -62,7 +62,7 @@ fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usiz
     // Alternating, so drift on a shared machine hits both alike.
     let (mut sandbox, mut native_times) = (Vec::with_capacity(reps), Vec::with_capacity(reps));
     for _ in 0..reps {
-        sandbox.push(time(1, || model.score_cells(rows, black_box(cells)).unwrap()));
+        sandbox.push(time(1, || model.score_cells_unchecked(rows, black_box(cells)).unwrap()));
         native_times.push(time(1, || {
             native.evaluate(ArrayView2::from_shape((rows, features), black_box(cells)).unwrap(), out.view_mut());
             out[[0, 0]]

@@ -17,7 +17,7 @@ use std::path::Path;
 
 use criterion::{Criterion, criterion_group, criterion_main};
 use paddock_host::{Row, Runtime};
-use paddock_serve::{Context, Registry, RegistryOptions, Request};
+use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 
 fn options(state: &Path) -> RegistryOptions {
     // Several registries share the state directory's code cache here; none
@@ -49,7 +49,7 @@ fn benches(c: &mut Criterion) {
     g.finish();
 
     let registry = Registry::open(&runtime, &store, options(state.path())).unwrap();
-    let context: Context =
+    let context: RequestContext =
         [("site", "Market Hall"), ("region", "centre")].map(|(k, v)| (k.to_owned(), v.to_owned())).into();
     let at = Some("2026-12-01T17:05:00Z".parse().unwrap());
     let row = vec![

@@ -66,7 +66,12 @@ fn row_for(model: &Model, cells: &HashMap<String, String>) -> Row {
 }
 
 /// The model version a request would get, to build its row by its contract.
-fn routed_model(registry: &Registry, name: &str, context: &paddock_serve::Context, at: Timestamp) -> Result<Model> {
+fn routed_model(
+    registry: &Registry,
+    name: &str,
+    context: &paddock_serve::RequestContext,
+    at: Timestamp,
+) -> Result<Model> {
     let (version, _) =
         registry.route(name, context, Some(at)).with_context(|| format!("the demo store serves no `{name}`"))?;
     registry.model(name, &version).with_context(|| format!("{name} {version} is not loaded"))
@@ -128,13 +133,13 @@ pub fn run(args: Args) -> Result<Outcome> {
         cells.insert("hour_of_week".into(), hour_of_week.to_string());
         // The keys: routes read the site and region; the overstay model's
         // site and member features are looked up by site and member.
-        let context: paddock_serve::Context =
+        let context: paddock_serve::RequestContext =
             ["site", "region", "member"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
         let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
         let m = registry.score(&Request::new("charge-minutes", &context, &rows).at(Some(at)))?;
-        let minutes = m.estimates.row(0)[0];
+        let minutes = m.estimates.values_at(0)[0];
         cells.insert("expected_minutes".into(), minutes.to_string());
         cells.insert("plugin_hour".into(), local.hour().to_string());
         cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
@@ -154,7 +159,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             minutes,
             minutes_version: m.version.to_string(),
             minutes_reason: m.reason.clone(),
-            overstay_probability: o.estimates.row(0)[0],
+            overstay_probability: o.estimates.values_at(0)[0],
             overstay_version: o.version.to_string(),
             overstay_reason: o.reason.clone(),
         });

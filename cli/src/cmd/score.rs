@@ -157,17 +157,17 @@ fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
     }
     let width = schema.width();
     let numbers: Vec<usize> = valid.iter().map(|&i| lines[i].number).collect();
-    match model.score_cells(valid.len(), &cells) {
+    match model.score_cells_unchecked(valid.len(), &cells) {
         Ok(estimates) => {
             for (r, &i) in valid.iter().enumerate() {
-                lines[i].result = Ok(estimates.row(r).to_vec());
+                lines[i].result = Ok(estimates.values_at(r).to_vec());
             }
         }
         Err(_) if valid.len() > 1 => {
             for (r, &i) in valid.iter().enumerate() {
                 lines[i].result = model
-                    .score_cells(1, &cells[r * width..(r + 1) * width])
-                    .map(|e| e.row(0).to_vec())
+                    .score_cells_unchecked(1, &cells[r * width..(r + 1) * width])
+                    .map(|e| e.values_at(0).to_vec())
                     .map_err(|e| describe(lines[i].number, &e));
             }
         }

@@ -260,9 +260,9 @@ struct Shape {
     /// Top-level custom sections: name and range of their contents.
     custom: Vec<(String, Range<usize>)>,
     /// Linear memories declared by the core modules inside.
-    memories: Vec<Limit>,
+    memories: Vec<DeclaredSize>,
     /// Tables declared by the core modules inside.
-    tables: Vec<Limit>,
+    tables: Vec<DeclaredSize>,
     /// Data segments in the core modules inside, and their total bytes.
     data: (usize, usize),
 }
@@ -297,13 +297,17 @@ impl Shape {
                 Payload::MemorySection(reader) => {
                     for m in reader {
                         let m = m.map_err(malformed)?;
-                        shape.memories.push(Limit { initial: m.initial, maximum: m.maximum, unit: "pages of 64 KiB" });
+                        shape.memories.push(DeclaredSize {
+                            initial: m.initial,
+                            maximum: m.maximum,
+                            unit: "pages of 64 KiB",
+                        });
                     }
                 }
                 Payload::TableSection(reader) => {
                     for t in reader {
                         let t = t.map_err(malformed)?.ty;
-                        shape.tables.push(Limit { initial: t.initial, maximum: t.maximum, unit: "elements" });
+                        shape.tables.push(DeclaredSize { initial: t.initial, maximum: t.maximum, unit: "elements" });
                     }
                 }
                 Payload::DataSection(reader) => {
@@ -355,7 +359,7 @@ impl Shape {
 
 /// A declared memory or table size: initial and optional maximum.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
-pub struct Limit {
+pub struct DeclaredSize {
     /// Size at instantiation.
     pub initial: u64,
     /// Largest size the module declares, if any (the host's caps apply too).
@@ -379,9 +383,9 @@ pub struct Inventory {
     /// Top-level custom sections.
     pub sections: Vec<SectionInfo>,
     /// Linear memories the core modules inside declare.
-    pub memories: Vec<Limit>,
+    pub memories: Vec<DeclaredSize>,
     /// Tables the core modules inside declare.
-    pub tables: Vec<Limit>,
+    pub tables: Vec<DeclaredSize>,
     /// Data segments in the core modules inside.
     pub data_segments: usize,
     /// Bytes of data those segments carry.

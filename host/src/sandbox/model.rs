@@ -279,7 +279,7 @@ pub enum ScoreError {
     #[error("{0}")]
     Fault(Fault),
     /// The model's answer breaks the contract.
-    #[error("model fault: {0}")]
+    #[error("the answer breaks the contract: {0}")]
     Output(OutputFault),
 }
 
@@ -367,17 +367,20 @@ pub struct Estimates {
 }
 
 impl Estimates {
-    /// Number of rows.
-    pub fn rows(&self) -> usize {
+    /// How many rows were scored.
+    pub fn row_count(&self) -> usize {
         self.values.len() / self.outputs
     }
 
-    /// The outputs of one row, in contract order.
+    /// The output values of the scored row at `index` (from 0, over the
+    /// rows scored), in contract order. A request's row *numbers* count
+    /// from 1 over every row sent ([`Scored::scored`] maps one to the
+    /// other).
     ///
     /// # Panics
-    /// When `row` is out of range.
-    pub fn row(&self, row: usize) -> &[f64] {
-        &self.values[row * self.outputs..(row + 1) * self.outputs]
+    /// When `index` is not below [`Estimates::row_count`].
+    pub fn values_at(&self, index: usize) -> &[f64] {
+        &self.values[index * self.outputs..(index + 1) * self.outputs]
     }
 
     /// All values, row-major.
@@ -616,13 +619,13 @@ impl Model {
     ///
     /// # Errors
     /// [`ScoreError::InvalidRows`] listing every problem of every invalid
-    /// row (nothing is scored), otherwise as [`Model::score_cells`].
+    /// row (nothing is scored), otherwise as [`Model::score_cells_unchecked`].
     pub fn score(&self, rows: &[Row]) -> Result<Estimates, ScoreError> {
         let (cells, problems) = self.encode(rows, None)?;
         if !problems.is_empty() {
             return Err(ScoreError::InvalidRows { errors: problems });
         }
-        self.score_cells(rows.len(), &cells)
+        self.score_cells_unchecked(rows.len(), &cells)
     }
 
     /// Checks every row against the contract and scores the valid ones in
@@ -631,7 +634,7 @@ impl Model {
     ///
     /// # Errors
     /// [`ScoreError::InvalidRows`] when no row is valid; otherwise as
-    /// [`Model::score_cells`], with the rows an output fault names
+    /// [`Model::score_cells_unchecked`], with the rows an output fault names
     /// numbered as in `rows`.
     pub fn score_valid(&self, rows: &[Row]) -> Result<Scored, ScoreError> {
         let mut scored = Vec::with_capacity(rows.len());
@@ -640,7 +643,7 @@ impl Model {
             return Err(ScoreError::InvalidRows { errors: problems });
         }
         let estimates = self
-            .score_cells(scored.len(), &cells)
+            .score_cells_unchecked(scored.len(), &cells)
             .map_err(|e| e.renumber(|r| scored.get(r - 1).copied().unwrap_or(r)))?;
         Ok(Scored { estimates, scored, problems })
     }
@@ -679,7 +682,7 @@ impl Model {
     /// fails to start; [`ScoreError::Sandbox`] for a limit hit or trap;
     /// [`ScoreError::Fault`] when the model declines; [`ScoreError::Output`]
     /// when its answer breaks the contract.
-    pub fn score_cells(&self, rows: usize, cells: &[f64]) -> Result<Estimates, ScoreError> {
+    pub fn score_cells_unchecked(&self, rows: usize, cells: &[f64]) -> Result<Estimates, ScoreError> {
         let inner = &*self.inner;
         let width = inner.schema.width();
         if cells.len() != rows * width {
@@ -784,7 +787,7 @@ fn run_checks(model: &Model, checks: &Checks) -> Result<CheckReport, ScoreError>
     let outputs = &model.contract().outputs;
     for (batch, positions) in scored.chunks(chunk).enumerate() {
         let start = batch * chunk * width;
-        let estimates = model.score_cells(positions.len(), &cells[start..start + positions.len() * width])?;
+        let estimates = model.score_cells_unchecked(positions.len(), &cells[start..start + positions.len() * width])?;
         for (r, &case_index) in positions.iter().enumerate() {
             let case = &checks.cases[case_index];
             let mut failed = None;
@@ -793,7 +796,7 @@ fn run_checks(model: &Model, checks: &Checks) -> Result<CheckReport, ScoreError>
                     failed.get_or_insert(CaseFailure::UnknownOutput { output: name.clone() });
                     continue;
                 };
-                let actual = estimates.row(r)[k];
+                let actual = estimates.values_at(r)[k];
                 let abs_error = (actual - expected).abs();
                 let rel_error = if expected == 0.0 { abs_error } else { abs_error / expected.abs() };
                 report.max_abs_error = report.max_abs_error.max(abs_error);

@@ -56,7 +56,7 @@ use reload::LastSeen;
 pub use layout::{FEATURES_FILE, ROUTES_FILE, STATE_DIR, artifact_path};
 pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use limits_file::LIMITS_FILE;
-pub use routes::{Clock, Context, ManualClock, Reason, Routes, RoutesError, SystemClock};
+pub use routes::{Clock, ManualClock, Reason, RequestContext, Routes, RoutesError, SystemClock};
 pub use status::{
     ArtifactState, ArtifactStatus, FeaturesState, GateStep, LimitsState, Refusal, RefusedFile, ReloadReport,
     RoutesState, ServerStatus, Status, TableStatus,
@@ -279,7 +279,7 @@ pub struct Request<'a> {
     /// The model's name.
     pub model: &'a str,
     /// Context for the routes (`region`, `site`…).
-    pub context: &'a Context,
+    pub context: &'a RequestContext,
     /// When the request happened, for time windows; `None` means now (the
     /// registry's clock).
     pub at: Option<Timestamp>,
@@ -292,7 +292,7 @@ pub struct Request<'a> {
 impl<'a> Request<'a> {
     /// A request for `model`, routed and keyed by `context`, scoring `rows`
     /// now, its answer naming only the looked-up features that fell back.
-    pub fn new(model: &'a str, context: &'a Context, rows: &'a [Row]) -> Self {
+    pub fn new(model: &'a str, context: &'a RequestContext, rows: &'a [Row]) -> Self {
         Request { model, context, at: None, rows, lookups: Lookups::Fallbacks }
     }
 
@@ -351,7 +351,7 @@ impl Answer {
         (1..=self.requested).map(move |n| match next.peek() {
             Some(&(k, m)) if m == n => {
                 next.next();
-                Some(self.estimates.row(k))
+                Some(self.estimates.values_at(k))
             }
             _ => None,
         })
@@ -748,7 +748,12 @@ impl Registry {
 
     /// The version a request would be routed to now, and why, without
     /// scoring anything.
-    pub fn route(&self, model: &str, context: &Context, at: Option<Timestamp>) -> Option<(Version, Arc<Reason>)> {
+    pub fn route(
+        &self,
+        model: &str,
+        context: &RequestContext,
+        at: Option<Timestamp>,
+    ) -> Option<(Version, Arc<Reason>)> {
         let snapshot = self.inner.current.load();
         let at = at.unwrap_or_else(|| self.inner.options.clock.now());
         let route = snapshot.routes.model(model)?.route(model, context, at);

@@ -52,7 +52,7 @@ use serde::{Deserialize, Serialize};
 use sha2::{Digest as _, Sha256};
 
 /// A request's context: key → value (`region` → `north`).
-pub type Context = BTreeMap<String, String>;
+pub type RequestContext = BTreeMap<String, String>;
 
 /// The name the default route goes by in `applies_to` lists and reasons.
 pub const DEFAULT_ROUTE: &str = "default";
@@ -444,7 +444,7 @@ impl ModelRoutes {
 
 impl ModelRoutes {
     /// Picks the version for a request made at `at` with `context`.
-    pub fn route(&self, model: &str, context: &Context, at: Timestamp) -> Route<'_> {
+    pub fn route(&self, model: &str, context: &RequestContext, at: Timestamp) -> Route<'_> {
         let picked = self.rules.iter().position(|r| r.matches(context, at));
         let (mut version, base) = match picked {
             Some(i) => (&self.rules[i].version, i + 1),
@@ -477,7 +477,7 @@ impl ModelRoutes {
 }
 
 impl RoutingRule {
-    fn matches(&self, context: &Context, at: Timestamp) -> bool {
+    fn matches(&self, context: &RequestContext, at: Timestamp) -> bool {
         self.context.iter().all(|(key, values)| context.get(key).is_some_and(|v| values.contains(v)))
             && self.window.as_ref().is_none_or(|w| w.contains(at))
     }
@@ -664,7 +664,7 @@ impl OneOrMany {
 mod tests {
     use super::*;
 
-    fn ctx(pairs: &[(&str, &str)]) -> Context {
+    fn ctx(pairs: &[(&str, &str)]) -> RequestContext {
         pairs.iter().map(|(k, v)| ((*k).to_owned(), (*v).to_owned())).collect()
     }
 
@@ -672,7 +672,7 @@ mod tests {
         text.parse().unwrap()
     }
 
-    fn pick(routes: &Routes, model: &str, context: &Context, when: &str) -> (String, String) {
+    fn pick(routes: &Routes, model: &str, context: &RequestContext, when: &str) -> (String, String) {
         let r = routes.model(model).unwrap().route(model, context, at(when));
         (r.version.to_string(), r.reason.route().to_owned())
     }
@@ -718,7 +718,7 @@ mod tests {
     #[test]
     fn weekend_is_read_in_the_rules_zone_across_the_day_boundary() {
         let routes = Routes::parse(SUITE).unwrap();
-        let none = Context::new();
+        let none = RequestContext::new();
         // Friday 23:30 UTC is Saturday 00:30 in Oslo: weekend.
         assert_eq!(pick(&routes, "m", &none, "2026-12-04T23:30:00Z"), ("2.0.0".into(), "weekend".into()));
         // Friday 22:59 UTC is Friday 23:59 in Oslo: not yet.
@@ -753,7 +753,7 @@ mod tests {
         "#,
         )
         .unwrap();
-        let none = Context::new();
+        let none = RequestContext::new();
         assert_eq!(pick(&routes, "m", &none, "2026-12-04T23:00:00Z").0, "2.0.0"); // Fri 23:00
         assert_eq!(pick(&routes, "m", &none, "2026-12-05T05:59:00Z").0, "2.0.0"); // Sat 05:59
         assert_eq!(pick(&routes, "m", &none, "2026-12-05T06:00:00Z").0, "1.0.0"); // Sat 06:00: closed
@@ -778,7 +778,7 @@ mod tests {
         "#,
         )
         .unwrap();
-        let none = Context::new();
+        let none = RequestContext::new();
         assert_eq!(pick(&routes, "m", &none, "2026-10-25T00:30:00Z").0, "2.0.0");
         assert_eq!(pick(&routes, "m", &none, "2026-10-25T01:30:00Z").0, "2.0.0");
         assert_eq!(pick(&routes, "m", &none, "2026-10-25T02:30:00Z").0, "1.0.0"); // 03:30 CET
@@ -816,7 +816,7 @@ mod tests {
         // Binomial(10 000, 0.1): mean 1000, standard deviation 30; ±4σ.
         assert!((880..=1120).contains(&in_canary), "{in_canary} of 10 000 in a 10 % canary");
         // Requests without the cohort field are never in the canary.
-        assert_eq!(m.route("m", &Context::new(), now).version.to_string(), "1.0.0");
+        assert_eq!(m.route("m", &RequestContext::new(), now).version.to_string(), "1.0.0");
     }
 
     #[test]

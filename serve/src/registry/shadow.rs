@@ -123,7 +123,7 @@ fn compare(job: &Job) {
         .filter_map(|(k, o)| served_outputs.iter().position(|s| s.name == o.name).map(|j| (j, k)))
         .collect();
     let (answer, estimates) = (&job.answer, &estimates);
-    let values =
-        (0..answer.rows()).flat_map(|r| pairs.iter().map(move |&(j, k)| (answer.row(r)[j], estimates.row(r)[k])));
+    let values = (0..answer.row_count())
+        .flat_map(|r| pairs.iter().map(move |&(j, k)| (answer.values_at(r)[j], estimates.values_at(r)[k])));
     job.ledger.record_diff(values, job.tolerance);
 }

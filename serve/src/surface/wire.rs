@@ -9,7 +9,7 @@ use serde::ser::SerializeMap;
 use serde::{Deserialize, Serialize, Serializer};
 
 use crate::features::Fetched;
-use crate::registry::{Answer, Context, Lookups, Reason, Request, RequestError};
+use crate::registry::{Answer, Lookups, Reason, Request, RequestContext, RequestError};
 use paddock_host::artifact::digest::Digest;
 use paddock_host::contract::rows::{Row, RowError};
 use paddock_host::sandbox::model::{ScoreError, Usage};
@@ -33,7 +33,7 @@ pub struct EstimateRequest {
     /// Context for the routes: field → value (`region`, `site`…).
     #[serde(default)]
     #[cfg_attr(feature = "http", schema(schema_with = super::openapi::context_map))]
-    pub context: Context,
+    pub context: RequestContext,
     /// When the request happened (RFC 3339 with an offset, e.g.
     /// `2026-12-05T08:27:00+01:00`), for time windows; the server's clock
     /// when left out.
