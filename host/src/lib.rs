@@ -43,6 +43,21 @@
 //! - [`WasiPolicy`]: off by default; lets models built by toolchains that
 //!   import WASI (Python, JavaScript) load into an empty WASI world.
 //!
+//! The path an embedder takes: one [`Runtime`] per process → [`Artifact`]
+//! read from a file (its size capped) → [`Model::load`] (compiled, started,
+//! its contract validated, the checks it carries run; every failure a
+//! [`LoadError`] variant) → [`Model::score`] (rows checked against the
+//! contract, then scored under the [`Limits`]; a [`ScoreError`] names the
+//! row, the limit or the fault). For a store of versions with routes,
+//! swaps and feature lookups, open a `paddock_serve::Registry` on the same
+//! `Runtime` (`examples/store.rs`); `examples/checked.rs` handles every
+//! error of this crate by type.
+//!
+//! Cargo features: `openapi` (off by default) derives OpenAPI schemas for
+//! the types the HTTP surface sends (utoipa); `paddock-serve`'s `http`
+//! feature turns it on. Nothing else is optional: the crate is the engine,
+//! the contract and the artifact format.
+//!
 //! What it is not: a server, a store or a feature source — those are
 //! `paddock-serve`, built on this crate — nor a training library. It links
 //! no HTTP, Redis, Parquet or NATS crate (`cargo xtask deps` checks).

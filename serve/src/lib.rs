@@ -27,6 +27,16 @@
 //! # Ok(()) }
 //! ```
 //!
+//! Cargo features (both on by default):
+//! - `http`: the HTTP surface ([`surface::http`], `paddock serve`): axum
+//!   and utoipa, and `paddock-host/openapi`;
+//! - `workers`: NATS JetStream workers ([`surface::worker`], `paddock work`):
+//!   async-nats.
+//!
+//! With `default-features = false` the crate is the registry, the feature
+//! sources (tables from Parquet/Arrow/CSV, Redis, on tokio) and the NDJSON
+//! stream: no HTTP server, no NATS client.
+//!
 //! What it is not: a deployment tool or a feature store. It never writes
 //! models into the store it serves, and it computes no feature: it reads
 //! what a batch job or another service wrote. A service that only loads

@@ -160,6 +160,12 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     let jobs = std::env::var("PADDOCK_TEST_JOBS").ok().and_then(|j| j.parse().ok()).unwrap_or(TEST_JOBS);
     testrun::run_all(root, &args, jobs)?;
     steps.done("test binaries");
+    // The crates' doc examples (the embedder's paths in the crate docs)
+    // compile and run; built with the workspace's features, as the tests.
+    let mut doc = cargo(root);
+    doc.args(["test", "--quiet", "--doc", "--workspace", "--exclude", "paddock-model-onnx"]);
+    run(doc)?;
+    steps.done("doc examples");
     // Examples must run as-is, not just compile. Built for the whole
     // workspace, as the tests were, so that they share every dependency
     // the tests built (`cargo run -p paddock-examples` alone resolves other
