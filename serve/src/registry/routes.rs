@@ -165,6 +165,10 @@ impl fmt::Display for Reason {
     }
 }
 
+/// Up to this many rule keys, a default answer's reason for each set of
+/// absent keys is made once, when the routes are read (2^8 = 256 at most).
+const PRECOMPUTED_KEYS: usize = 8;
+
 /// The parsed, checked routes of every model.
 #[derive(Clone, Debug)]
 pub struct Routes {
@@ -186,6 +190,11 @@ pub struct ModelRoutes {
     /// Every context key a rule reads, sorted: a default answer names
     /// those the context lacked.
     rule_keys: Vec<String>,
+    /// The default's reason for each set of absent rule keys (bit `i` for
+    /// `rule_keys[i]`), precomputed so routing allocates nothing; empty when
+    /// the rules read more than [`PRECOMPUTED_KEYS`] keys (then the
+    /// default's reason is made per answer).
+    default_reasons: Vec<Arc<Reason>>,
 }
 
 #[derive(Clone, Debug)]
@@ -355,7 +364,18 @@ impl Routes {
                 rules.iter().flat_map(|r| r.context.iter().map(|(k, _)| k.clone())).collect();
             rule_keys.sort();
             rule_keys.dedup();
-            models.insert(name, ModelRoutes { default, rules, canary, shadow, reasons, canary_reasons, rule_keys });
+            let default_reasons = match rule_keys.len() {
+                n if n <= PRECOMPUTED_KEYS => (0..1usize << n)
+                    .map(|mask| {
+                        let absent_keys = rule_keys.iter().enumerate().filter(|(i, _)| mask & (1 << i) != 0);
+                        Arc::new(Reason::Default { absent_keys: absent_keys.map(|(_, k)| k.clone()).collect() })
+                    })
+                    .collect(),
+                _ => Vec::new(),
+            };
+            let routes =
+                ModelRoutes { default, rules, canary, shadow, reasons, canary_reasons, rule_keys, default_reasons };
+            models.insert(name, routes);
         }
         if problems.is_empty() { Ok(Routes { models }) } else { Err(RoutesError { problems }) }
     }
@@ -451,7 +471,14 @@ impl ModelRoutes {
             None => (&self.default, 0),
         };
         let mut reason = Arc::clone(&self.reasons[base]);
-        if base == 0 && self.rule_keys.iter().any(|k| !context.contains_key(k)) {
+        if base == 0 && !self.default_reasons.is_empty() {
+            let mask = self.rule_keys.iter().enumerate().fold(0usize, |mask, (i, k)| match context.contains_key(k) {
+                true => mask,
+                false => mask | 1 << i,
+            });
+            reason = Arc::clone(&self.default_reasons[mask]);
+        } else if base == 0 && self.rule_keys.iter().any(|k| !context.contains_key(k)) {
+            // More rule keys than are precomputed: said at the cost of one allocation.
             let absent_keys = self.rule_keys.iter().filter(|k| !context.contains_key(*k)).cloned().collect();
             reason = Arc::new(Reason::Default { absent_keys });
         }
@@ -713,6 +740,20 @@ mod tests {
         let south = m.route("m", &ctx(&[("region", "south")]), tuesday);
         assert_eq!(*south.reason, Reason::Default { absent_keys: Vec::new() });
         assert_eq!(serde_json::to_value(&*south.reason).unwrap(), serde_json::json!({"picked_by": "default"}));
+
+        // Rules reading more keys than are precomputed say the same.
+        let mut many = String::from("[models.w]\ndefault = \"1.0.0\"\n");
+        for i in 0..=PRECOMPUTED_KEYS {
+            many.push_str(&format!(
+                "[[models.w.rules]]\nname = \"r{i}\"\nversion = \"2.0.0\"\ncontext = {{ k{i} = \"x\" }}\n"
+            ));
+        }
+        let routes = Routes::parse(&many).unwrap();
+        let w = routes.model("w").unwrap();
+        let all_but_k0: RequestContext = (1..=PRECOMPUTED_KEYS).map(|i| (format!("k{i}"), "y".to_owned())).collect();
+        assert_eq!(*w.route("w", &all_but_k0, tuesday).reason, Reason::Default { absent_keys: vec!["k0".into()] });
+        let Reason::Default { absent_keys } = &*w.route("w", &ctx(&[("k3", "y")]), tuesday).reason else { panic!() };
+        assert_eq!(absent_keys.len(), PRECOMPUTED_KEYS);
     }
 
     #[test]
