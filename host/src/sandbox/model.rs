@@ -426,7 +426,7 @@ struct Inner {
     idle: Pool<Instance>,
     who: Arc<str>,
     /// The report of the carried checks run at load, when they were.
-    checks: Option<CheckReport>,
+    checks: std::sync::OnceLock<CheckReport>,
 }
 
 impl std::fmt::Debug for Model {
@@ -534,7 +534,7 @@ impl Model {
             true => None,
             false => artifact.checks().map_err(LoadError::ChecksUnreadable)?,
         };
-        let mut model = Model {
+        let model = Model {
             inner: Arc::new(Inner {
                 who,
                 runtime: runtime.clone(),
@@ -546,7 +546,7 @@ impl Model {
                 primed,
                 wasi,
                 idle,
-                checks: None,
+                checks: std::sync::OnceLock::new(),
             }),
         };
         if let Some(checks) = carried {
@@ -554,7 +554,8 @@ impl Model {
             if !report.ok() {
                 return Err(LoadError::ChecksFailed { report: Box::new(report) });
             }
-            Arc::get_mut(&mut model.inner).expect("the model is not shared before load returns").checks = Some(report);
+            // Set once, here, before the model is returned.
+            let _ = model.inner.checks.set(report);
         }
         Ok(model)
     }
@@ -563,7 +564,7 @@ impl Model {
     /// loaded; `None` when it carries none or the load skipped them
     /// ([`ModelOptions::skip_carried_checks`]).
     pub fn carried_checks(&self) -> Option<&CheckReport> {
-        self.inner.checks.as_ref()
+        self.inner.checks.get()
     }
 
     /// Runs `checks` (the artifact's own or any others) against this model:
