@@ -215,6 +215,11 @@ impl Artifact {
         Ok(self.checks.clone().map(|r| Checks::from_json(&self.bytes[r])).transpose()?)
     }
 
+    /// Whether the artifact has a checks section (without parsing it).
+    pub fn carries_checks(&self) -> bool {
+        self.checks.is_some()
+    }
+
     /// Where an imported model came from, as its importer recorded it.
     ///
     /// # Errors

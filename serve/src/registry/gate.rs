@@ -44,17 +44,17 @@ pub(super) fn gate(
     let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
     let limit = chosen.limits.artifact_bytes;
     let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
-    let carries_checks = artifact.checks().map_err(|e| Refusal::Parse(Arc::new(e)))?.is_some();
-    if !carries_checks && shared.options.require_checks {
+    if !artifact.carries_checks() && shared.options.require_checks {
         return Err(Refusal::NoChecks);
     }
-    // Loading runs the checks the artifact carries.
+    // Loading parses and runs the checks the artifact carries (once).
     let options = ModelOptions { skip_carried_checks: false, ..chosen.clone() };
     let loaded = match &shared.cache {
         Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
         None => Model::load_with(&shared.runtime, artifact, options),
     }
     .map_err(|e| match e {
+        LoadError::ChecksUnreadable(e) => Refusal::Parse(Arc::new(e)),
         LoadError::ChecksDidNotRun(e) => Refusal::ChecksDidNotRun(e),
         LoadError::ChecksFailed { report } => Refusal::ChecksFailed {
             failed: report.cases - report.passed,
