@@ -15,8 +15,8 @@ use std::process::ExitCode;
 
 use paddock_host::sandbox::{SandboxError, StartError};
 use paddock_host::{
-    Allocator, Artifact, ArtifactError, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig, RuntimeError,
-    ScoreError, pack,
+    Allocator, Artifact, ArtifactError, DEFAULT_SIZE_CAP, LoadError, Model, ModelOptions, Row, Runtime, RuntimeConfig,
+    RuntimeError, ScoreError, pack,
 };
 
 fn main() -> ExitCode {
@@ -33,7 +33,7 @@ fn run() -> Result<(), String> {
     let runtime = start_runtime()?;
     let options = ModelOptions::default();
     let path = paddock_examples::demo_artifact("charge-minutes");
-    let artifact = read(&path, options.limits.artifact_bytes)?;
+    let artifact = read(&path, DEFAULT_SIZE_CAP)?;
 
     // Loading runs the checks the artifact carries: it scores only if it
     // computes what it was packed to compute.
@@ -56,7 +56,7 @@ fn run() -> Result<(), String> {
         }
     }
     let tampered = pack(artifact.bytes(), Some(artifact.params()), Some(&checks)).map_err(|e| e.to_string())?;
-    let tampered = Artifact::from_bytes(tampered, options.limits.artifact_bytes).map_err(|e| e.to_string())?;
+    let tampered = Artifact::from_bytes(tampered, DEFAULT_SIZE_CAP).map_err(|e| e.to_string())?;
     match load(&runtime, tampered, options) {
         Err(refused) => println!("tampered copy refused: {refused}"),
         Ok(_) => return Err("a tampered artifact loaded".into()),

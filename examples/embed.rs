@@ -6,7 +6,7 @@
 //! ```
 
 use anyhow::{Context, Result};
-use paddock_host::{Artifact, Limits, Model, Row, Runtime, ScoreError};
+use paddock_host::{Artifact, DEFAULT_SIZE_CAP, Model, Row, Runtime, ScoreError};
 
 fn main() -> Result<()> {
     // One runtime per process: the engine and its clock.
@@ -14,7 +14,7 @@ fn main() -> Result<()> {
 
     // Artifacts are files; their sha256 is their identity.
     let path = paddock_examples::demo_artifact("charge-minutes");
-    let artifact = Artifact::read(&path, Limits::default().artifact_bytes)
+    let artifact = Artifact::read(&path, DEFAULT_SIZE_CAP)
         .with_context(|| format!("{} (run `cargo xtask build` first)", path.display()))?;
     let model = Model::load(&runtime, artifact)?;
     let contract = model.contract();

@@ -229,7 +229,7 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     let k = usage.shadows.iter().find(|s| s.model == "k").unwrap();
     assert_eq!((k.compared, k.max_abs_diff, k.over_tolerance), (100, 0.0, 0), "{k:?}");
     let shadow = usage.shadows.iter().find(|s| s.model == "m").unwrap();
-    assert_eq!((shadow.model.as_str(), shadow.version.as_str()), ("m", "1.1.0-rc.1"));
+    assert_eq!((shadow.model.as_str(), shadow.version.to_string().as_str()), ("m", "1.1.0-rc.1"));
     // Exactly half sampled: one request per x in 0..100.
     assert_eq!((shadow.compared, shadow.values, shadow.dropped), (100, 100, 0), "{shadow:?}");
     assert_eq!(shadow.max_abs_diff, 99.0);
@@ -237,7 +237,7 @@ fn a_shadow_records_how_far_a_different_candidate_is_from_the_served_answers() {
     assert_eq!(shadow.over_tolerance, 89);
     // The shadow's own calls are in its ledger; the served version's too.
     let by_version: BTreeMap<_, _> =
-        usage.versions.iter().filter(|v| v.model == "m").map(|v| (v.version.as_str(), v)).collect();
+        usage.versions.iter().filter(|v| v.model == "m").map(|v| (v.version.to_string(), v)).collect();
     assert_eq!((by_version["1.0.0"].calls, by_version["1.1.0-rc.1"].calls), (200, 100));
 }
 
@@ -836,7 +836,7 @@ fn the_store_docs_serving_md_shows_serves_as_it_says() {
     assert!(on_canary.iter().all(|s| picked(&ctx(&[("site", s)]), saturday).0 == "1.2.0"));
     // The shadow scores beside the served version, its answers counted, never returned.
     paddock_tests::wait_until("the shadow comparing", Duration::from_secs(60), Duration::from_millis(10), || {
-        reg.usage().shadows.iter().any(|s| s.version == "2.0.0-rc.1" && s.compared > 0)
+        reg.usage().shadows.iter().any(|s| s.version.to_string() == "2.0.0-rc.1" && s.compared > 0)
     });
     // The context rule: the north region's overstay-risk is 1.1.0.
     let plug_in = vec![
@@ -853,4 +853,35 @@ fn the_store_docs_serving_md_shows_serves_as_it_says() {
     };
     assert_eq!(overstay("north"), ("1.1.0".into(), "north".into()));
     assert_eq!(overstay("centre"), ("1.0.0".into(), "default".into()));
+}
+
+#[test]
+fn the_size_cap_is_one_registry_setting_applied_when_a_file_is_read() {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let small = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
+    let big = line_artifact("m", "1.1.0", 1.0, 0.0, Some(true));
+    put(store, "m", "1.0.0", &small);
+    put(store, "m", "1.1.0", &big);
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+    // A cap one byte under the smaller file: each is refused when it is
+    // read, naming the cap and its size (there is no second cap in the
+    // models' limits to disagree with this one).
+    let cap = small.len().min(big.len()) as u64 - 1;
+    let options = RegistryOptions { size_cap: cap, usage_flush: None, ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    for (path, file) in [("m/1.0.0.wasm", &small), ("m/1.1.0.wasm", &big)] {
+        let refusal = refused(&reg, path);
+        assert_eq!(refusal.step(), GateStep::Read, "{refusal:?}");
+        assert_eq!(
+            refusal.reason(),
+            format!("artifact size cap of {cap} bytes exceeded (file has {} bytes)", file.len()),
+        );
+    }
+    // With room for both, both load.
+    let room = small.len().max(big.len()) as u64;
+    let options = RegistryOptions { size_cap: room, usage_flush: None, ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
+    assert!(reg.status().artifacts.iter().all(|a| matches!(a.state, ArtifactState::Loaded)), "{:#?}", reg.status());
 }

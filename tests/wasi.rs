@@ -10,7 +10,8 @@ use std::time::{Duration, SystemTime, UNIX_EPOCH};
 use paddock_host::audit::audit;
 use paddock_host::sandbox::wasi::Ambient;
 use paddock_host::{
-    LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy, WasiPolicy,
+    DEFAULT_SIZE_CAP, LimitHit, Limits, Model, ModelOptions, Row, Runtime, SandboxError, ScoreError, TrustPolicy,
+    WasiPolicy,
 };
 use paddock_tests::{load_foreign, root};
 
@@ -130,7 +131,7 @@ fn the_audit_lists_every_wasi_import_and_what_satisfies_it() {
     log();
     let path = root().join("target/paddock/artifacts/wasi-probe.wasm");
     let with = ModelOptions { wasi: Some(WasiPolicy::default()), ..ModelOptions::default() };
-    let report = audit(&path, &with, &TrustPolicy::default());
+    let report = audit(&path, DEFAULT_SIZE_CAP, &with, &TrustPolicy::default());
     assert!(report.wasi.len() >= 20, "{:?}", report.wasi);
     for w in &report.wasi {
         assert!(w.satisfied_by.is_some(), "{} has no answer", w.interface);
@@ -144,7 +145,7 @@ fn the_audit_lists_every_wasi_import_and_what_satisfies_it() {
     assert_eq!(report.violations.len(), 1, "{:?}", report.violations);
     assert!(report.violations[0].contains("no checks"), "{:?}", report.violations);
 
-    let without = audit(&path, &ModelOptions::default(), &TrustPolicy::default());
+    let without = audit(&path, DEFAULT_SIZE_CAP, &ModelOptions::default(), &TrustPolicy::default());
     let named: Vec<&String> =
         without.violations.iter().filter(|v| v.contains("WASI loads only under a WASI policy")).collect();
     assert_eq!(named.len(), without.wasi.len(), "{:?}", without.violations);

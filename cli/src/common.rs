@@ -140,11 +140,13 @@ impl LoadArgs {
         if let Some(mib) = l.max_memory_mib {
             limits.memory_bytes = mib << 20;
         }
-        if let Some(mib) = l.max_artifact_mib {
-            limits.artifact_bytes = mib << 20;
-        }
         let isolation = if l.fresh { Isolation::FreshPerCall } else { Isolation::Reuse };
         ModelOptions { limits, isolation, wasi: self.wasi.policy(), ..ModelOptions::default() }
+    }
+
+    /// The largest artifact file read, in bytes.
+    pub fn size_cap(&self) -> u64 {
+        self.limits.max_artifact_mib.map_or(paddock_host::artifact::DEFAULT_SIZE_CAP, |mib| mib << 20)
     }
 
     /// A runtime able to enforce these limits. Says so (a warning) when
@@ -168,7 +170,7 @@ impl LoadArgs {
     /// checks at load, to run them itself and report every case).
     pub fn load_with(&self, path: &Path, options: ModelOptions) -> Result<(Runtime, Model)> {
         let runtime = self.runtime()?;
-        let artifact = Artifact::read(path, options.limits.artifact_bytes)?;
+        let artifact = Artifact::read(path, self.size_cap())?;
         self.trust.admit(path, &artifact)?;
         let model =
             Model::load_with(&runtime, artifact, options).with_context(|| format!("loading {}", path.display()))?;
@@ -205,6 +207,7 @@ impl StoreArgs {
         Ok(RegistryOptions {
             model: self.load.options(),
             trust: self.load.trust.policy()?,
+            size_cap: self.load.size_cap(),
             require_checks: self.require_checks,
             state_dir: self.state.clone(),
             code_cache: !self.no_code_cache,

@@ -91,6 +91,8 @@ pub struct AuditReport {
     pub wasi: Vec<WasiImport>,
     /// The declared contract, when it loads.
     pub contract: Option<Contract>,
+    /// The largest artifact file it was read under, in bytes.
+    pub size_cap: u64,
     /// The limits that will bind each call.
     pub limits: Limits,
     /// The engine settings.
@@ -108,9 +110,9 @@ impl AuditReport {
     }
 }
 
-/// Audits an artifact file under the given load options and trust policy.
-/// Reads `ARTIFACT.vouch` when it exists.
-pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> AuditReport {
+/// Audits an artifact file, read under `size_cap` bytes, under the given
+/// load options and trust policy. Reads `ARTIFACT.vouch` when it exists.
+pub fn audit(path: &Path, size_cap: u64, options: &ModelOptions, policy: &TrustPolicy) -> AuditReport {
     let config = RuntimeConfig { fuel: true, ..RuntimeConfig::default() };
     let mut report = AuditReport {
         path: path.to_owned(),
@@ -121,6 +123,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         wasi_policy: options.wasi.clone(),
         wasi: Vec::new(),
         contract: None,
+        size_cap,
         limits: options.limits.clone(),
         engine: EngineFacts {
             wasmtime: crate::sandbox::wasmtime_version(),
@@ -135,7 +138,7 @@ pub fn audit(path: &Path, options: &ModelOptions, policy: &TrustPolicy) -> Audit
         probe: None,
         violations: Vec::new(),
     };
-    let artifact = match Artifact::read(path, options.limits.artifact_bytes) {
+    let artifact = match Artifact::read(path, size_cap) {
         Ok(a) => a,
         Err(e) => {
             report.violations.push(e.to_string());

@@ -78,7 +78,7 @@ pub mod tool_error;
 pub use artifact::checks::{CaseFailure, CheckReport, Checks, ChecksError, Tolerance};
 pub use artifact::digest::{Digest, DigestError};
 pub use artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
-pub use artifact::{Artifact, ArtifactError, pack, pack_imported};
+pub use artifact::{Artifact, ArtifactError, DEFAULT_SIZE_CAP, pack, pack_imported};
 pub use contract::rows::{ContractRule, Row, RowError, Value};
 pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};

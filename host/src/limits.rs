@@ -40,8 +40,6 @@ pub struct Limits {
     pub memory_bytes: u64,
     /// Largest table the model may have, in elements. Default 10 000.
     pub table_elements: u64,
-    /// Largest artifact file accepted, in bytes. Default 64 MiB.
-    pub artifact_bytes: u64,
     /// Most rows one call may carry. Default 65 536.
     pub rows_per_call: usize,
 }
@@ -55,7 +53,6 @@ impl Default for Limits {
             init_fuel: None,
             memory_bytes: 64 << 20,
             table_elements: 10_000,
-            artifact_bytes: 64 << 20,
             rows_per_call: 65_536,
         }
     }
@@ -89,9 +86,6 @@ impl Limits {
         }
         if self.rows_per_call == 0 {
             problem("rows_per_call", "0".into(), "no call could carry a row");
-        }
-        if self.artifact_bytes == 0 {
-            problem("artifact_bytes", "0".into(), "no artifact could load");
         }
         if problems.is_empty() { Ok(()) } else { Err(LimitsError { problems }) }
     }

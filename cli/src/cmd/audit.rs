@@ -19,7 +19,7 @@ pub struct Args {
 /// Audits and prints; exit code follows the verdict.
 pub fn run(args: Args) -> Result<Outcome> {
     let args = args.target;
-    let report = audit(&args.artifact, &args.load.options(), &args.load.trust.policy()?);
+    let report = audit(&args.artifact, args.load.size_cap(), &args.load.options(), &args.load.trust.policy()?);
     if args.json {
         print_json(&report)?;
     } else {
@@ -95,7 +95,7 @@ fn text(r: &AuditReport) -> String {
     line("fuel", l.fuel.map_or("no limit (deadline only)".into(), |f| format!("{f} per call")));
     line("memory cap", format!("{} bytes", l.memory_bytes));
     line("table cap", format!("{} elements", l.table_elements));
-    line("size cap", format!("{} bytes; rows per call {}", l.artifact_bytes, l.rows_per_call));
+    line("size cap", format!("{} bytes; rows per call {}", r.size_cap, l.rows_per_call));
     let e = &r.engine;
     line(
         "engine",

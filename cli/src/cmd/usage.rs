@@ -52,7 +52,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         .map(|v| {
             vec![
                 v.model.clone(),
-                v.version.clone(),
+                v.version.to_string(),
                 v.calls.to_string(),
                 v.rows.to_string(),
                 counts(&v.errors),
@@ -89,7 +89,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             .map(|s| {
                 vec![
                     s.model.clone(),
-                    s.version.clone(),
+                    s.version.to_string(),
                     s.compared.to_string(),
                     format!("{:.3}", s.max_abs_diff),
                     s.over_tolerance.to_string(),

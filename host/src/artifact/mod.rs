@@ -22,6 +22,11 @@ use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 use crate::artifact::checks::{Checks, ChecksError};
 use crate::limits::LimitHit;
 
+/// The size cap [`Artifact::read`] and [`Artifact::from_bytes`] are given
+/// when nothing says otherwise: 64 MiB. The cap is applied once, when the
+/// bytes are read; a loaded [`Artifact`] is within it.
+pub const DEFAULT_SIZE_CAP: u64 = 64 << 20;
+
 /// Name of the custom section that carries the parameter blob.
 pub const PARAMS_SECTION: &str = "paddock-params";
 /// Name of the custom section that carries the checks (JSON, see [`Checks`]).

@@ -120,9 +120,6 @@ fn init_params<'a>(primed: &PrimeState, artifact: &'a Artifact) -> Option<&'a [u
 #[derive(Debug, thiserror::Error)]
 #[non_exhaustive]
 pub enum LoadError {
-    /// The artifact is larger than the model's size cap.
-    #[error("{0}")]
-    TooLarge(LimitHit),
     /// The artifact imports something other than WASI (named, with every
     /// WASI import too when no WASI policy is set); models may import
     /// nothing else.
@@ -453,7 +450,7 @@ impl Model {
     /// Loads a model with the given options.
     ///
     /// # Errors
-    /// [`LoadError::TooLarge`] over the size cap, [`LoadError::Imports`]
+    /// [`LoadError::Imports`]
     /// naming every import, [`LoadError::WasiImports`] when it imports WASI
     /// and no WASI policy is set, [`LoadError::Compile`] / [`LoadError::World`]
     /// for components wasmtime refuses, [`LoadError::Start`] when
@@ -493,10 +490,6 @@ impl Model {
         cache: Option<&CodeCache>,
     ) -> Result<Model, LoadError> {
         let limits = &options.limits;
-        let size = artifact.bytes().len() as u64;
-        if size > limits.artifact_bytes {
-            return Err(LoadError::TooLarge(LimitHit::ArtifactSize { limit: limits.artifact_bytes, actual: size }));
-        }
         check_imports(artifact.imports(), options.wasi.as_ref())?;
         check_options(runtime, limits)?;
         let (component, code, primed, carry) = match primed_component(runtime, &artifact, &options, cache) {

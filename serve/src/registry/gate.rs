@@ -42,8 +42,7 @@ pub(super) fn gate(
     let digest = Digest::of(&bytes);
     let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
     let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
-    let limit = chosen.limits.artifact_bytes;
-    let artifact = Artifact::from_bytes(bytes, limit).map_err(|e| Refusal::Parse(Arc::new(e)))?;
+    let artifact = Artifact::from_bytes(bytes, shared.options.size_cap).map_err(|e| Refusal::Parse(Arc::new(e)))?;
     if !artifact.carries_checks() && shared.options.require_checks {
         return Err(Refusal::NoChecks);
     }

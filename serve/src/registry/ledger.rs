@@ -172,7 +172,7 @@ impl VersionLedger {
         let metered = self.fuel_metered.load(Ordering::Relaxed) > 0;
         VersionUsage {
             model: model.to_owned(),
-            version: version.to_string(),
+            version: version.clone(),
             calls: self.calls.load(Ordering::Relaxed),
             rows: self.rows.load(Ordering::Relaxed),
             in_flight: self.in_flight.load(Ordering::SeqCst),
@@ -231,7 +231,7 @@ pub struct VersionUsage {
     /// The model.
     pub model: String,
     /// The version.
-    pub version: String,
+    pub version: Version,
     /// Calls, successful or not.
     pub calls: u64,
     /// Rows in those calls.
@@ -258,7 +258,7 @@ pub struct VersionUsage {
 }
 
 /// How a shadow's answers compared with the served ones.
-#[derive(Debug, Default)]
+#[derive(Debug)]
 pub struct ShadowLedger {
     inner: Mutex<ShadowUsage>,
     /// Requests seen for this shadow, for exact sampling.
@@ -266,12 +266,12 @@ pub struct ShadowLedger {
 }
 
 /// A shadow's comparison figures.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ShadowUsage {
     /// The model.
     pub model: String,
     /// The shadow version.
-    pub version: String,
+    pub version: Version,
     /// Requests the shadow scored and compared.
     pub compared: u64,
     /// Output values compared (rows × shared outputs).
@@ -290,7 +290,16 @@ pub struct ShadowUsage {
 impl ShadowLedger {
     pub(crate) fn new(model: &str, version: &Version) -> Self {
         ShadowLedger {
-            inner: Mutex::new(ShadowUsage { model: model.into(), version: version.to_string(), ..Default::default() }),
+            inner: Mutex::new(ShadowUsage {
+                model: model.into(),
+                version: version.clone(),
+                compared: 0,
+                values: 0,
+                max_abs_diff: 0.0,
+                over_tolerance: 0,
+                errors: BTreeMap::new(),
+                dropped: 0,
+            }),
             seen: AtomicU64::new(0),
         }
     }
@@ -358,12 +367,12 @@ pub struct Ledger {
 }
 
 /// One version's wall-time histogram in a usage file.
-#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct SavedWall {
     /// The model.
     pub model: String,
     /// The version.
-    pub version: String,
+    pub version: Version,
     /// (wall time in ns, calls) pairs, at the histogram's precision.
     pub recorded: Vec<[u64; 2]>,
 }
@@ -420,34 +429,23 @@ impl Ledger {
     pub fn walls(&self) -> Vec<SavedWall> {
         lock(&self.versions)
             .iter()
-            .map(|((m, v), l)| SavedWall { model: m.clone(), version: v.to_string(), recorded: l.recorded() })
+            .map(|((m, v), l)| SavedWall { model: m.clone(), version: v.clone(), recorded: l.recorded() })
             .collect()
     }
 
     /// Adds the figures an earlier process saved (its usage file), so that
     /// usage accumulates across restarts. Versions that are not loaded now
-    /// keep their figures. Entries whose version is not semver are skipped
-    /// and named in the returned list.
-    pub fn absorb(&self, usage: &UsageReport, walls: &[SavedWall]) -> Vec<String> {
-        let mut skipped = Vec::new();
+    /// keep their figures.
+    pub fn absorb(&self, usage: &UsageReport, walls: &[SavedWall]) {
         for u in &usage.versions {
-            let Ok(version) = Version::parse(&u.version) else {
-                skipped.push(format!("{} {}", u.model, u.version));
-                continue;
-            };
             let recorded =
                 walls.iter().find(|w| w.model == u.model && w.version == u.version).map_or(&[][..], |w| &w.recorded);
-            self.version(&u.model, &version).absorb(u, recorded);
+            self.version(&u.model, &u.version).absorb(u, recorded);
         }
         for s in &usage.shadows {
-            let Ok(version) = Version::parse(&s.version) else {
-                skipped.push(format!("shadow {} {}", s.model, s.version));
-                continue;
-            };
-            self.shadow(&s.model, &version).absorb(s);
+            self.shadow(&s.model, &s.version).absorb(s);
         }
         add_counts(&mut lock(&self.rejected_before), &usage.rejected);
-        skipped
     }
 }
 
@@ -467,7 +465,7 @@ mod tests {
         let (report, walls) = (first.report(), first.walls());
 
         let second = Ledger::default();
-        assert!(second.absorb(&report, &walls).is_empty());
+        second.absorb(&report, &walls);
         for us in 51..=100u64 {
             second.version("m", &v).record_ok(&Usage { rows: 1, wall: Duration::from_micros(us), ..Usage::default() });
         }

@@ -186,11 +186,11 @@ fn family(
 }
 
 fn version_labels(u: &VersionUsage) -> Labels {
-    labels(&[("model", &u.model), ("version", &u.version)])
+    labels(&[("model", &u.model), ("version", &u.version.to_string())])
 }
 
 fn shadow_labels(s: &ShadowUsage) -> Labels {
-    labels(&[("model", &s.model), ("version", &s.version)])
+    labels(&[("model", &s.model), ("version", &s.version.to_string())])
 }
 
 /// One sample per item and key of a count map, the key as label `key`.
@@ -363,7 +363,7 @@ mod tests {
         let usage = UsageReport {
             versions: vec![VersionUsage {
                 model: "a\"b\\c\nd".into(),
-                version: "1.0.0".into(),
+                version: semver::Version::new(1, 0, 0),
                 calls: 3,
                 rows: 5,
                 in_flight: 0,

@@ -77,6 +77,9 @@ pub struct RegistryOptions {
     pub per_version: BTreeMap<(String, Version), ModelOptions>,
     /// Which artifacts may load.
     pub trust: TrustPolicy,
+    /// Largest artifact file read, in bytes; larger ones are refused
+    /// without being read. Default [`DEFAULT_SIZE_CAP`](paddock_host::artifact::DEFAULT_SIZE_CAP).
+    pub size_cap: u64,
     /// Refuse artifacts that carry no checks. Off by default.
     pub require_checks: bool,
     /// Where the host keeps its state (code cache, usage file).
@@ -104,6 +107,7 @@ impl Default for RegistryOptions {
             per_model: BTreeMap::new(),
             per_version: BTreeMap::new(),
             trust: TrustPolicy::default(),
+            size_cap: paddock_host::artifact::DEFAULT_SIZE_CAP,
             require_checks: false,
             state_dir: None,
             code_cache: true,

@@ -165,7 +165,7 @@ fn gate_files(
             }
         };
         let options = limits.resolve(shared.options.model_options(&model, &version), &model, &version);
-        let (bytes, vouch) = match gate::read_artifact(&f.path, options.limits.artifact_bytes) {
+        let (bytes, vouch) = match gate::read_artifact(&f.path, shared.options.size_cap) {
             Ok(read) => read,
             Err(refusal) => {
                 next.statuses.push(refused_status(f, Some(&(model, version)), None, refusal));
@@ -339,7 +339,7 @@ fn keep_routed(routes: &Routes, removed: Versions, next: &mut Next, report: &mut
     for s in &mut next.statuses {
         let served = !matches!(s.state, ArtifactState::Refused { .. });
         if let (Some(m), Some(v), true) = (&s.model, &s.version, served)
-            && let Some(users) = Version::parse(v).ok().and_then(|v| uses.get(m.as_str())?.get(&v).cloned())
+            && let Some(users) = uses.get(m.as_str()).and_then(|u| u.get(v)).cloned()
         {
             s.used_by = users;
         }

@@ -230,7 +230,8 @@ pub struct ArtifactStatus {
     /// The model, when the path names one.
     pub model: Option<String>,
     /// The version, when the path names one.
-    pub version: Option<String>,
+    #[cfg_attr(feature = "http", schema(value_type = Option<String>))]
+    pub version: Option<Version>,
     /// The digest of the file's bytes, when it could be read.
     pub digest: Option<Digest>,
     /// What happened to it.
@@ -422,7 +423,8 @@ pub(super) fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactSt
     ArtifactStatus {
         path: loaded.rel.clone(),
         model: Some(contract.name.clone()),
-        version: Some(contract.version.clone()),
+        // The gate checked that the contract's version is the path's.
+        version: Version::parse(&contract.version).ok(),
         digest: Some(loaded.model.digest()),
         state,
         used_by: Vec::new(),
@@ -445,7 +447,7 @@ pub(super) fn refused_status(
     ArtifactStatus {
         path: f.rel.clone(),
         model: id.map(|(m, _)| m.clone()),
-        version: id.map(|(_, v)| v.to_string()),
+        version: id.map(|(_, v)| v.clone()),
         digest,
         state: ArtifactState::Refused { refusal },
         used_by: Vec::new(),

@@ -119,11 +119,7 @@ pub(crate) fn merge(state_dir: &Path, ledger: &Ledger) {
         }
     };
     match serde_json::from_slice::<SavedUsage>(&bytes) {
-        Ok(saved) => {
-            for skipped in ledger.absorb(&saved.usage, &saved.walls) {
-                tracing::warn!(file = %path.display(), entry = %skipped, "usage entry with a version that is not semver; skipped");
-            }
-        }
+        Ok(saved) => ledger.absorb(&saved.usage, &saved.walls),
         Err(e) => {
             let aside = path.with_extension("json.unreadable");
             let moved = std::fs::rename(&path, &aside);

@@ -44,6 +44,7 @@ use axum::extract::{Query, State};
 use axum::http::{HeaderMap, HeaderValue, StatusCode, header};
 use axum::response::{IntoResponse, Response};
 use axum::routing::{get, post};
+use semver::Version;
 use serde::{Deserialize, Serialize};
 use sha2::{Digest as _, Sha256};
 use tokio::sync::Semaphore;
@@ -358,7 +359,8 @@ pub struct CatalogueEntry {
     /// Whether the routes serve it.
     pub routed: bool,
     /// The version its default route serves, when it is routed.
-    pub default_version: Option<String>,
+    #[schema(value_type = Option<String>)]
+    pub default_version: Option<Version>,
     /// Its artifacts.
     pub versions: Vec<ArtifactStatus>,
 }
@@ -376,7 +378,7 @@ pub(crate) async fn catalogue(State(app): State<Arc<App>>) -> Response {
         match entries.iter_mut().find(|e| e.name == name) {
             Some(e) => e.versions.push(a),
             None => {
-                let default_version = routes.model(&name).map(|r| r.default_version().to_string());
+                let default_version = routes.model(&name).map(|r| r.default_version().clone());
                 entries.push(CatalogueEntry {
                     routed: default_version.is_some(),
                     default_version,
@@ -463,7 +465,7 @@ pub(crate) async fn contract(
             format!("model {model} has no version {version} loaded (loaded: {})", list.join(", ")),
         );
         b.error.details.insert("loaded".into(), list.into());
-        b.error.version = Some(version.to_string());
+        b.error.version = Some(version.clone());
         b
     };
     b.error.model = Some(model);

@@ -5,6 +5,7 @@
 use std::collections::BTreeMap;
 
 use jiff::Timestamp;
+use semver::Version;
 use serde::ser::SerializeMap;
 use serde::{Deserialize, Serialize, Serializer};
 
@@ -97,7 +98,8 @@ pub struct EstimateAnswer {
     /// The model.
     pub model: String,
     /// The version that answered (semver).
-    pub version: String,
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub version: Version,
     /// Its artifact's digest.
     pub digest: Digest,
     /// The route that picked it: `default`, a rule's name, or `canary`.
@@ -151,7 +153,7 @@ impl EstimateAnswer {
         EstimateAnswer {
             id,
             model: answer.model,
-            version: answer.version.to_string(),
+            version: answer.version,
             digest: answer.digest,
             route: answer.reason.route().to_owned(),
             reason: answer.reason,
@@ -189,7 +191,8 @@ pub struct ErrorDetail {
     pub model: Option<String>,
     /// The version the request was routed to.
     #[serde(skip_serializing_if = "Option::is_none")]
-    pub version: Option<String>,
+    #[cfg_attr(feature = "http", schema(value_type = Option<String>))]
+    pub version: Option<Version>,
     /// The route that picked it.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub route: Option<String>,
@@ -243,11 +246,11 @@ impl ErrorBody {
             }
             RequestError::NotLoaded { model, version } => {
                 body.error.model = Some(model);
-                body.error.version = Some(version.to_string());
+                body.error.version = Some(version);
             }
             RequestError::Score { model, version, reason, error } => {
                 body.error.model = Some(model);
-                body.error.version = Some(version.to_string());
+                body.error.version = Some(version);
                 body.error.route = Some(reason.route().to_owned());
                 body.error.limit = error.limit().map(|l| l.name().to_owned());
                 body.error.message = error.to_string();
