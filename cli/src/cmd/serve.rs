@@ -28,6 +28,11 @@ pub struct Args {
     /// Requests scored at once per model [default: the number of cores].
     #[arg(long, value_name = "N")]
     concurrency: Option<usize>,
+    /// Sandbox calls running at once across every model [default: the
+    /// number of cores; more than that and calls miss their wall-clock
+    /// deadlines while descheduled].
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u64).range(1..=4096))]
+    score_threads: Option<u64>,
     /// Requests waiting per model beyond those; more get 503 + Retry-After.
     #[arg(long, default_value_t = 256, value_name = "N")]
     queue: usize,
@@ -67,6 +72,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let options = ServeOptions {
         max_body_bytes: args.max_body_kib << 10,
         concurrency: args.concurrency.unwrap_or(defaults.concurrency),
+        score_threads: args.score_threads.map_or(defaults.score_threads, |n| n as usize),
         queue: args.queue,
         admin_token: admin_token(args.admin_token_file.as_ref())?,
         ..defaults

@@ -26,10 +26,11 @@
 //!
 //! Sandbox calls never run on the async workers that accept connections:
 //! each runs on a blocking thread, at most [`ServeOptions::score_threads`]
-//! at once for the whole server, and each model has its own concurrency
-//! limit drawn from those and a bounded queue. A model that spins until its
-//! deadline on every call holds only its own permits: other models, health
-//! and metrics answer as before. A name no model has is answered 404
+//! at once for the whole server (by default the number of cores), and each
+//! model has its own concurrency limit drawn from those and a bounded queue.
+//! A model that spins until its deadline on every call holds only its own
+//! permits: health and metrics answer as before, and with a concurrency
+//! below `score_threads` so do the other models. A name no model has is answered 404
 //! before anything is kept for it.
 
 use std::collections::HashMap;
@@ -63,11 +64,19 @@ pub struct ServeOptions {
     /// Largest request body, in bytes. Default 1 MiB.
     pub max_body_bytes: usize,
     /// Requests scored at once per model. Default: the number of cores.
-    /// Capped at `score_threads`.
+    /// Capped at `score_threads`. Set it below `score_threads` to keep
+    /// threads for the other models while one spins until its deadline:
+    /// by default one model may take them all, and the others wait (up to
+    /// that model's deadline) rather than fail.
     pub concurrency: usize,
     /// Sandbox calls running at once across every model, each on a thread
     /// of its own (tokio's blocking pool), never on the async workers.
-    /// Default: four per core, at least 4.
+    /// Default: the number of cores, so that calls do not take each other's
+    /// cores and miss their wall-clock deadlines
+    /// ([`Limits::deadline`](paddock_host::Limits::deadline)). Feature
+    /// lookups run on these threads too (they wait on the network while
+    /// holding one): a store whose plan looks features up over the network
+    /// may want more.
     pub score_threads: usize,
     /// Requests waiting per model beyond those; more get 503. Default 256.
     pub queue: usize,
@@ -81,13 +90,18 @@ impl Default for ServeOptions {
     fn default() -> Self {
         ServeOptions {
             max_body_bytes: 1 << 20,
-            concurrency: std::thread::available_parallelism().map_or(2, |n| n.get()),
-            score_threads: std::thread::available_parallelism().map_or(2, |n| n.get()).saturating_mul(4).max(4),
+            concurrency: cores(),
+            score_threads: cores(),
             queue: 256,
             retry_after_secs: 1,
             admin_token: None,
         }
     }
+}
+
+/// The cores this process may use (2 when that cannot be known).
+fn cores() -> usize {
+    std::thread::available_parallelism().map_or(2, |n| n.get())
 }
 
 pub(crate) struct App {
@@ -657,4 +671,20 @@ async fn method_not_allowed(State(app): State<Arc<App>>, method: axum::http::Met
             format!("{method} is not allowed on this route; the API is described at /openapi.json"),
         ),
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// More scoring threads than cores make calls miss wall-clock deadlines
+    /// while descheduled; the default pool is the cores (issue: four per
+    /// core before).
+    #[test]
+    fn scoring_threads_do_not_outnumber_the_cores_by_default() {
+        let cores = std::thread::available_parallelism().unwrap().get();
+        let options = ServeOptions::default();
+        assert_eq!(options.score_threads, cores);
+        assert!(options.concurrency <= options.score_threads);
+    }
 }
