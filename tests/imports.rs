@@ -211,7 +211,7 @@ fn refusals_name_the_tree_and_node() {
     );
     let err = import(&graph, Format::SklearnOnnx, "onnx-mlp.onnx", None).unwrap_err().to_string();
     assert!(
-        err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX graph (--format onnx-graph --manifest FILE;"),
+        err.contains("(no tree ensemble or linear model) is not supported; pack it as an ONNX graph with a manifest (`InputKind::OnnxGraph`;"),
         "{err}"
     );
 

@@ -9,6 +9,7 @@ const SETTINGS: &[(&str, &str)] = &[
     ("`TrustPolicy::pinned`", "`--pin DIGEST`"),
     ("`Columns::id`", "`--id NAME`"),
     ("`Columns::ignore`", "`--ignore NAME`"),
+    ("`InputKind::OnnxGraph`", "`--format onnx-graph --manifest FILE`"),
 ];
 
 /// `text` with every setting it names replaced by its flag.
@@ -24,7 +25,7 @@ mod tests {
     fn every_setting_is_named_by_a_library_message() {
         let root = std::path::Path::new(env!("CARGO_MANIFEST_DIR")).parent().unwrap();
         let mut sources = String::new();
-        for dir in ["host/src", "serve/src"] {
+        for dir in ["host/src", "serve/src", "import/src"] {
             for entry in walk(&root.join(dir)) {
                 sources.push_str(&std::fs::read_to_string(entry).unwrap());
             }

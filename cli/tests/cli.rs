@@ -781,6 +781,13 @@ fn pack_takes_an_onnx_model_with_its_manifest_and_names_what_is_wrong() {
     let missing = paddock(&["pack", onnx, "--out", out], None);
     assert!(!missing.status.success());
     assert!(text(&missing.stderr).contains("needs its manifest (--manifest FILE)"), "{}", text(&missing.stderr));
+    // Told it is a scikit-learn export, the importer says how to pack a
+    // graph; the command line shows the flags, not the library's name.
+    let forced = paddock(&["pack", onnx, "--format", "sklearn-onnx", "--out", out], None);
+    assert!(!forced.status.success());
+    let err = text(&forced.stderr);
+    assert!(err.contains("pack it as an ONNX graph with a manifest (`--format onnx-graph --manifest FILE`;"), "{err}");
+    assert!(!err.contains("InputKind"), "{err}");
 
     let wrong = tmp("wrong.toml");
     std::fs::write(

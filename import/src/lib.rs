@@ -128,7 +128,7 @@ pub fn looks_like(bytes: &[u8]) -> &'static str {
         "JSON, but not an XGBoost model (no `learner` object)"
     } else if head.contains(&0) {
         if head.windows(8).any(|w| w == b"ai.onnx." || w == b"ir_versi") || head.starts_with(b"\x08") {
-            "an ONNX graph (pack it as `MODEL.onnx` with --manifest)"
+            "an ONNX graph (pack it as `MODEL.onnx` with a manifest: `InputKind::OnnxGraph`)"
         } else {
             "a binary file (XGBoost's UBJSON or a pickle? save the model as JSON: `save_model(\"m.json\")`)"
         }

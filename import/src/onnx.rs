@@ -279,7 +279,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             return Err(blame.unsupported(
                 "graph",
                 format!("a graph of {} (no tree ensemble or linear model)", ops.join(", ")),
-                "pack it as an ONNX graph (--format onnx-graph --manifest FILE; tract runs it), or export a scikit-learn tree ensemble or linear model",
+                "pack it as an ONNX graph with a manifest (`InputKind::OnnxGraph`; tract runs it), or export a scikit-learn tree ensemble or linear model",
             ));
         }
         _ => {
