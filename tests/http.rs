@@ -211,7 +211,7 @@ fn a_body_over_the_limit_is_413() {
     assert_eq!(r.json()["error"]["limit"], "body_bytes");
     let message = r.json()["error"]["message"].as_str().unwrap().to_owned();
     assert!(
-        message.contains("split the rows over several requests") && message.contains("--max-body-kib"),
+        message.contains("split the rows over several requests") && message.contains("limit of 1024 bytes"),
         "{message}"
     );
 }

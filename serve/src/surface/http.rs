@@ -264,8 +264,8 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, bo
                 let mut b = ErrorBody::new(
                     "too_large",
                     format!(
-                        "the request body is over the limit of {limit} bytes: split the rows over several requests, \
-                         or start the server with a larger --max-body-kib"
+                        "the request body is over the server's limit of {limit} bytes: split the rows over several \
+                         requests"
                     ),
                 );
                 b.error.limit = Some("body_bytes".into());
