@@ -46,6 +46,8 @@
 
 pub mod features;
 pub mod registry;
+#[cfg(feature = "shared")]
+pub mod shared;
 pub mod surface;
 
 pub use registry::{Answer, Registry, RegistryError, RegistryOptions, Request, RequestContext, RequestError, Status};

@@ -404,6 +404,18 @@ impl Plan {
         if problems.is_empty() { Ok(Plan { sources, models }) } else { Err(fail(problems)) }
     }
 
+    /// The table files the plan reads, as it names them joined to the
+    /// `dir` it was parsed with.
+    pub fn table_paths(&self) -> Vec<&Path> {
+        self.sources
+            .values()
+            .filter_map(|s| match s {
+                Source::Table { path, .. } => Some(path.as_path()),
+                _ => None,
+            })
+            .collect()
+    }
+
     /// Holds a version's contract to the plan: every feature it declares is
     /// in the contract, and every required feature of the contract comes
     /// from somewhere with no fallback to absent. Returns the problems.

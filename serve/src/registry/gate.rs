@@ -9,11 +9,13 @@ use semver::Version;
 use sha2::{Digest as _, Sha256};
 
 use super::status::Refusal;
-use super::{Shared, layout, ledger};
+use super::{RegistryOptions, Shared, layout, ledger};
 use paddock_host::artifact::Artifact;
 use paddock_host::artifact::checks::CheckReport;
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::{Admission, Vouch};
+use paddock_host::sandbox::Runtime;
+use paddock_host::sandbox::codecache::CodeCache;
 use paddock_host::sandbox::model::{LoadError, Model, ModelOptions};
 
 /// A fingerprint of an artifact's bytes and its vouch: unchanged files are
@@ -39,29 +41,7 @@ pub(super) fn gate(
     vouch: Option<&[u8]>,
     chosen: &ModelOptions,
 ) -> Result<Loaded, Refusal> {
-    let digest = Digest::of(&bytes);
-    let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
-    let admission = shared.options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
-    let artifact = Artifact::from_bytes(bytes, shared.options.size_cap).map_err(|e| Refusal::Parse(Arc::new(e)))?;
-    if !artifact.carries_checks() && shared.options.require_checks {
-        return Err(Refusal::NoChecks);
-    }
-    // Loading parses and runs the checks the artifact carries (once).
-    let options = ModelOptions { skip_carried_checks: false, ..chosen.clone() };
-    let loaded = match &shared.cache {
-        Some(cache) => Model::load_cached(&shared.runtime, artifact, options, cache),
-        None => Model::load_with(&shared.runtime, artifact, options),
-    }
-    .map_err(|e| match e {
-        LoadError::ChecksUnreadable(e) => Refusal::Parse(Arc::new(e)),
-        LoadError::ChecksDidNotRun(e) => Refusal::ChecksDidNotRun(e),
-        LoadError::ChecksFailed { report } => Refusal::ChecksFailed {
-            failed: report.cases - report.passed,
-            cases: report.cases,
-            first: report.failures.first().cloned(),
-        },
-        e => Refusal::Load(Arc::new(e)),
-    })?;
+    let (loaded, admission) = admit(&shared.runtime, &shared.options, shared.cache.as_ref(), bytes, vouch, chosen)?;
     let contract = loaded.contract();
     if contract.name != model || Version::parse(&contract.version).ok().as_ref() != Some(version) {
         return Err(Refusal::Identity {
@@ -79,6 +59,93 @@ pub(super) fn gate(
         admission,
         checks: report,
     })
+}
+
+/// Trust → parse → compile, start, contract → checks: every step of the
+/// gate but the identity, which depends on where the bytes sit.
+fn admit(
+    runtime: &Runtime,
+    options: &RegistryOptions,
+    cache: Option<&CodeCache>,
+    bytes: Vec<u8>,
+    vouch: Option<&[u8]>,
+    chosen: &ModelOptions,
+) -> Result<(Model, Admission), Refusal> {
+    let digest = Digest::of(&bytes);
+    let vouch = vouch.map(Vouch::from_bytes).transpose().map_err(|e| Refusal::VouchText(Arc::new(e)))?;
+    let admission = options.trust.admit(digest, vouch.as_ref()).map_err(|e| Refusal::Trust(Arc::new(e)))?;
+    let artifact = Artifact::from_bytes(bytes, options.size_cap).map_err(|e| Refusal::Parse(Arc::new(e)))?;
+    if !artifact.carries_checks() && options.require_checks {
+        return Err(Refusal::NoChecks);
+    }
+    // Loading parses and runs the checks the artifact carries (once).
+    let chosen = ModelOptions { skip_carried_checks: false, ..chosen.clone() };
+    let loaded = match cache {
+        Some(cache) => Model::load_cached(runtime, artifact, chosen, cache),
+        None => Model::load_with(runtime, artifact, chosen),
+    }
+    .map_err(|e| match e {
+        LoadError::ChecksUnreadable(e) => Refusal::Parse(Arc::new(e)),
+        LoadError::ChecksDidNotRun(e) => Refusal::ChecksDidNotRun(e),
+        LoadError::ChecksFailed { report } => Refusal::ChecksFailed {
+            failed: report.cases - report.passed,
+            cases: report.cases,
+            first: report.failures.first().cloned(),
+        },
+        e => Refusal::Load(Arc::new(e)),
+    })?;
+    Ok((loaded, admission))
+}
+
+/// A version that passed the gate before it was put in any store.
+#[derive(Clone, Debug)]
+#[non_exhaustive]
+pub struct Passed {
+    /// The model its contract names.
+    pub model: String,
+    /// The version its contract declares.
+    pub version: Version,
+    /// The digest of its bytes.
+    pub digest: Digest,
+    /// Why the trust policy admitted it.
+    pub admission: Admission,
+    /// Its carried checks, run (`None`: it carries none).
+    pub checks: Option<CheckReport>,
+}
+
+/// Runs an artifact through the gate a host runs (trust under
+/// `options.trust`, size cap, load under the options its model and version
+/// would get, contract, carried checks, `require_checks`), outside any
+/// store: what a publisher checks before anything reaches the hosts. The
+/// model and version are the ones its contract declares.
+///
+/// # Errors
+/// The [`Refusal`] a host's gate would report.
+pub fn check_version(
+    runtime: &Runtime,
+    bytes: Vec<u8>,
+    vouch: Option<&[u8]>,
+    options: &RegistryOptions,
+) -> Result<Passed, Refusal> {
+    let digest = Digest::of(&bytes);
+    // The options of the model and version are known only once the contract
+    // is read: load under the store-wide ones, then again only if the
+    // model's own differ.
+    let (loaded, admission) = admit(runtime, options, None, bytes.clone(), vouch, &options.model)?;
+    let contract = loaded.contract();
+    let version = Version::parse(&contract.version).map_err(|_| Refusal::Identity {
+        name: contract.name.clone(),
+        version: contract.version.clone(),
+        path: PathBuf::new(),
+    })?;
+    let model = contract.name.clone();
+    let chosen = options.model_options(&model, &version);
+    let loaded = if *chosen == options.model {
+        loaded
+    } else {
+        admit(runtime, options, None, bytes, vouch, chosen)?.0
+    };
+    Ok(Passed { model, version, digest, admission, checks: loaded.carried_checks().cloned() })
 }
 
 /// [`fingerprint`], also over the options the version loads with.

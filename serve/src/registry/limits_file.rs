@@ -111,6 +111,10 @@ impl StoreLimits {
 
     /// `base` (the code's options for this version) with the file's model
     /// entry, then its version entry, applied.
+    pub(crate) fn check_text(text: &str) -> Result<(), Vec<String>> {
+        Self::parse(text, &ModelOptions::default()).map(|_| ())
+    }
+
     pub(crate) fn resolve(&self, base: &ModelOptions, model: &str, version: &Version) -> ModelOptions {
         let mut options = base.clone();
         if let Some(entry) = self.models.get(model) {

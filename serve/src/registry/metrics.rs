@@ -386,6 +386,7 @@ mod tests {
             limits: crate::registry::LimitsState::Missing,
             features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
+            mirror: None,
         };
         let c = crate::features::SourceCounts::default();
         c.lookup(crate::features::Outcome::Found);

@@ -20,9 +20,10 @@
 //! operator's job.
 
 mod gate;
+pub use gate::{Passed, check_version};
 pub mod layout;
 pub mod ledger;
-mod limits_file;
+pub(crate) mod limits_file;
 pub mod metrics;
 mod reload;
 pub mod routes;
@@ -58,8 +59,8 @@ pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use limits_file::LIMITS_FILE;
 pub use routes::{Clock, ManualClock, Reason, RequestContext, Routes, RoutesError, SystemClock};
 pub use status::{
-    ArtifactState, ArtifactStatus, FeaturesState, GateStep, LimitsState, Refusal, RefusedFile, ReloadReport,
-    RoutesState, ServerStatus, Status, TableStatus,
+    ArtifactState, ArtifactStatus, FeaturesState, GateStep, LimitsState, MirrorState, Refusal, RefusedFile,
+    ReloadReport, RoutesState, ServerStatus, Status, SyncProblem, TableStatus,
 };
 pub use usage_file::{SavedUsage, usage_path};
 pub use watch::Watcher;
@@ -509,6 +510,8 @@ struct Shared {
     lock: Option<usage_file::StateLock>,
     /// Dropping it stops the flush thread.
     flush_stop: Mutex<Option<std::sync::mpsc::Sender<()>>>,
+    /// Set when the store is a shared store's mirror.
+    mirror: Mutex<Option<MirrorState>>,
 }
 
 impl Drop for Shared {
@@ -568,6 +571,7 @@ impl Registry {
                 limits: LimitsState::Missing,
                 features: FeaturesState::Missing,
                 unrouted: Vec::new(),
+                mirror: None,
             },
         };
         let registry = Registry {
@@ -584,6 +588,7 @@ impl Registry {
                 reloads: AtomicU64::new(0),
                 lock,
                 flush_stop: Mutex::new(None),
+                mirror: Mutex::new(None),
             }),
         };
         if let Some(every) = registry.inner.options.usage_flush {
@@ -771,7 +776,15 @@ impl Registry {
 
     /// What is served and what was refused.
     pub fn status(&self) -> Status {
-        self.inner.current.load().status.clone()
+        let mut status = self.inner.current.load().status.clone();
+        status.mirror = self.inner.mirror.lock().unwrap_or_else(|e| e.into_inner()).clone();
+        status
+    }
+
+    /// Records how the mirror this registry serves stands (what
+    /// [`crate::shared`] calls as it syncs); [`Registry::status`] reports it.
+    pub fn set_mirror_state(&self, state: MirrorState) {
+        *self.inner.mirror.lock().unwrap_or_else(|e| e.into_inner()) = Some(state);
     }
 
     /// Counts a request a surface refused before asking the registry

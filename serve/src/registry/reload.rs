@@ -546,6 +546,8 @@ fn swap(
         limits: next.limits,
         features: features_state,
         unrouted,
+        // Filled in by `Registry::status`.
+        mirror: None,
     };
     let versions = next.versions;
     let shadows = routes

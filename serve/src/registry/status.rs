@@ -366,6 +366,64 @@ pub struct Status {
     pub features: FeaturesState,
     /// Models whose versions are loaded but which no route serves.
     pub unrouted: Vec<String>,
+    /// When the store is the mirror of a shared store: how far it has
+    /// caught up ([`crate::shared`]).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub mirror: Option<MirrorState>,
+}
+
+/// How a host's mirror of a shared store stands.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[non_exhaustive]
+pub struct MirrorState {
+    /// The shared store: its server and name, never credentials.
+    pub source: String,
+    /// The store revision this host has applied (0: none yet).
+    pub revision: u64,
+    /// The store's latest revision, as last seen.
+    pub latest: u64,
+    /// The store revision of the routes the mirror holds (`None`: no routes).
+    pub routes_revision: Option<u64>,
+    /// Whether the host is connected to the store's server now.
+    pub connected: bool,
+    /// When the mirror last caught up with the store (RFC 3339).
+    pub synced_at: Option<String>,
+    /// Since when it may be behind: it lost the server, or has not reached
+    /// it since it started (RFC 3339). `None` while it is up to date.
+    pub stale_since: Option<String>,
+    /// Entries whose objects were refused before the gate (digest
+    /// mismatch, over the size cap, missing), one per entry.
+    pub problems: Vec<SyncProblem>,
+}
+
+impl MirrorState {
+    /// A mirror of `source` that has applied nothing yet.
+    pub fn new(source: String) -> Self {
+        MirrorState {
+            source,
+            revision: 0,
+            latest: 0,
+            routes_revision: None,
+            connected: false,
+            synced_at: None,
+            stale_since: None,
+            problems: Vec::new(),
+        }
+    }
+}
+
+/// One entry of a shared store a mirror could not take.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize, serde::Deserialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[non_exhaustive]
+pub struct SyncProblem {
+    /// The entry's key (`version.charge-minutes.1.2.0`, `routes`).
+    pub key: String,
+    /// The store revision of the entry.
+    pub revision: u64,
+    /// Why it was not taken.
+    pub reason: String,
 }
 
 impl Status {
