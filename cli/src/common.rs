@@ -8,7 +8,9 @@ use paddock_host::{
     Admission, Artifact, Isolation, Limits, Model, ModelOptions, Runtime, RuntimeConfig, TrustPolicy, Vouch,
     WasiPolicy, sandbox::wasi,
 };
-use paddock_serve::{Registry, RegistryOptions};
+use paddock_serve::RegistryOptions;
+
+use crate::place::{self, NatsArgs, Opened, Place};
 
 /// What every command that loads one artifact takes: the file, `--json`,
 /// and how to load it.
@@ -181,12 +183,19 @@ impl LoadArgs {
 /// What every command about a store takes.
 #[derive(clap::Args, Clone, Debug)]
 pub struct StoreArgs {
-    /// The store: `<model>/<version>.wasm` files and `routes.toml`.
-    #[arg(long, value_name = "DIR")]
-    pub store: PathBuf,
-    /// Where the host keeps its state (code cache, usage file) [default: STORE/.paddock].
+    /// The store: a directory of `<model>/<version>.wasm` files and
+    /// `routes.toml`, or a shared store's address, nats://HOST:PORT/NAME.
+    #[arg(long, value_name = "DIR|ADDRESS", value_parser = Place::parse)]
+    pub store: Place,
+    /// Where the host keeps its state (code cache, usage file; a shared store's mirror)
+    /// [default: STORE/.paddock for a directory; a shared store needs one].
     #[arg(long, value_name = "DIR")]
     pub state: Option<PathBuf>,
+    /// For a shared store: this host's name in its list of hosts [default: HOSTNAME-PID].
+    #[arg(long, value_name = "NAME")]
+    pub host_name: Option<String>,
+    #[command(flatten)]
+    pub nats: NatsArgs,
     /// Refuse artifacts that carry no checks.
     #[arg(long)]
     pub require_checks: bool,
@@ -217,21 +226,20 @@ impl StoreArgs {
     }
 
     /// Opens the store to serve it: every artifact through the gate, then
-    /// the routes; takes the state directory and keeps its usage file.
-    pub fn open(&self) -> Result<Registry> {
-        self.open_with(self.options()?)
+    /// the routes; takes the state directory and keeps its usage file. A
+    /// shared store is served from this host's mirror of it.
+    pub fn open(&self) -> Result<Opened> {
+        let runtime = self.load.runtime()?;
+        place::open(&self.store, &runtime, self.options()?, &self.nats, self.host_name.as_deref(), false)
     }
 
     /// Opens the store to look at it: no usage file, no lock, so it works
-    /// beside a host serving the same store.
-    pub fn open_to_look(&self) -> Result<Registry> {
-        self.open_with(RegistryOptions { usage_flush: None, ..self.options()? })
-    }
-
-    fn open_with(&self, options: RegistryOptions) -> Result<Registry> {
+    /// beside a host serving the same store (a shared store: through a
+    /// scratch mirror unless `--state` names one).
+    pub fn open_to_look(&self) -> Result<Opened> {
         let runtime = self.load.runtime()?;
-        Registry::open(&runtime, &self.store, options)
-            .with_context(|| format!("opening the store {}", self.store.display()))
+        let options = RegistryOptions { usage_flush: None, ..self.options()? };
+        place::open(&self.store, &runtime, options, &self.nats, self.host_name.as_deref(), true)
     }
 }
 

@@ -26,6 +26,7 @@ macro_rules! out {
 mod cmd;
 mod common;
 mod flags;
+mod place;
 
 use std::process::ExitCode;
 
@@ -55,6 +56,13 @@ enum Command {
     Vouch(cmd::vouch::Args),
     Admit(cmd::admit::Args),
     Work(cmd::work::Args),
+    Publish(cmd::publish::Args),
+    Withdraw(cmd::withdraw::Args),
+    Show(cmd::show::Args),
+    Revise(cmd::revise::Args),
+    History(cmd::history::Args),
+    Restore(cmd::restore::Args),
+    Hosts(cmd::hosts::Args),
 }
 
 /// What a command that ran reports back to `main`.
@@ -94,6 +102,13 @@ fn main() -> ExitCode {
         Command::Vouch(a) => cmd::vouch::run(a),
         Command::Admit(a) => cmd::admit::run(a),
         Command::Work(a) => cmd::work::run(a),
+        Command::Publish(a) => cmd::publish::run(a),
+        Command::Withdraw(a) => cmd::withdraw::run(a),
+        Command::Show(a) => cmd::show::run(a),
+        Command::Revise(a) => cmd::revise::run(a),
+        Command::History(a) => cmd::history::run(a),
+        Command::Restore(a) => cmd::restore::run(a),
+        Command::Hosts(a) => cmd::hosts::run(a),
     };
     match result {
         Ok(Outcome::Ok) => ExitCode::SUCCESS,

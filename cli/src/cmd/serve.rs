@@ -61,13 +61,16 @@ fn admin_token(file: Option<&PathBuf>) -> Result<Option<String>> {
 
 /// Opens the store, watches it, and serves until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
-    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
-    let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the requests in flight")?;
-    let registry = args.store.open()?;
+    // Opened before the signals are taken: a host still waiting for a
+    // shared store it has no mirror of stops at the first Ctrl-C.
+    let mut opened = args.store.open()?;
+    let registry = opened.registry.clone();
     for line in served_lines(&registry.status()) {
         eprintln!("{line}");
     }
-    let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
+    opened.keep_current(Duration::from_secs(args.rescan_secs.max(1)))?;
+    let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
+    let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the requests in flight")?;
     let defaults = ServeOptions::default();
     let options = ServeOptions {
         max_body_bytes: args.max_body_kib << 10,
@@ -90,7 +93,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         http::serve(listener, router, stop).await?;
         anyhow::Ok(())
     })?;
-    drop(watch);
+    opened.stop();
     let saved = registry.save_usage()?;
     eprintln!("stopped; usage written to {}", saved.display());
     Ok(Outcome::Ok)

@@ -23,8 +23,8 @@ pub struct Args {
 
 /// Opens the store and prints its status.
 pub fn run(args: Args) -> Result<Outcome> {
-    let registry = args.store.open_to_look()?;
-    let status = registry.status();
+    let opened = args.store.open_to_look()?;
+    let status = opened.registry.status();
     let refused = status
         .problems()
         .any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))

@@ -23,11 +23,12 @@ pub struct Args {
 
 /// Runs the stream until stdin ends; exit 1 if any line failed.
 pub fn run(args: Args) -> Result<Outcome> {
-    let registry = args.store.open()?;
+    let opened = args.store.open()?;
+    let registry = &opened.registry;
     let stdin = BufReader::with_capacity(64 << 10, std::io::stdin().lock());
     let stdout = BufWriter::new(std::io::stdout().lock());
     let options = StreamOptions { max_line_bytes: args.max_line_kib << 10 };
-    let summary = stream::run(&registry, stdin, stdout, options)?;
+    let summary = stream::run(registry, stdin, stdout, options)?;
     registry.save_usage()?;
     eprintln!("{} lines: {} answered, {} failed", summary.lines, summary.answered, summary.failed);
     Ok(if summary.failed > 0 { Outcome::Failed } else { Outcome::Ok })

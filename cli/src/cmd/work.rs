@@ -71,10 +71,12 @@ pub struct Args {
 
 /// Opens the store, watches it, and works until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
+    // Opened before the signals are taken, as `serve` does.
+    let mut opened = args.store.open()?;
+    let registry = opened.registry.clone();
+    opened.keep_current(Duration::from_secs(args.rescan_secs.max(1)))?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
     let stop = crate::common::shutdown_signal(&runtime, "stopping: finishing the events in hand")?;
-    let registry = args.store.open()?;
-    let watch = registry.watch(Duration::from_millis(200), Duration::from_secs(args.rescan_secs.max(1)))?;
     let defaults = WorkerOptions::default();
     let options = WorkerOptions {
         url: args.nats,
@@ -111,7 +113,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         worker::run(registry.clone(), options, counts.clone(), stop).await.with_context(|| format!("working on {url}"))
     })?;
     drop(runtime);
-    drop(watch);
+    opened.stop();
     let saved = registry.save_usage()?;
     let s = counts.summary();
     eprintln!(

@@ -140,11 +140,7 @@ pub fn check_version(
     })?;
     let model = contract.name.clone();
     let chosen = options.model_options(&model, &version);
-    let loaded = if *chosen == options.model {
-        loaded
-    } else {
-        admit(runtime, options, None, bytes, vouch, chosen)?.0
-    };
+    let loaded = if *chosen == options.model { loaded } else { admit(runtime, options, None, bytes, vouch, chosen)?.0 };
     Ok(Passed { model, version, digest, admission, checks: loaded.carried_checks().cloned() })
 }
 

@@ -219,7 +219,11 @@ mod tests {
             assert!(e.contains(says), "{text}: {e}");
             assert!(!e.contains(":p@"), "{e}");
         }
-        let creds = Credentials { user: Some(("ops".into(), "s3cret".into())), token: Some("t0k".into()), ..Default::default() };
+        let creds = Credentials {
+            user: Some(("ops".into(), "s3cret".into())),
+            token: Some("t0k".into()),
+            ..Default::default()
+        };
         let shown = format!("{creds:?}");
         assert!(!shown.contains("s3cret") && !shown.contains("t0k"), "{shown}");
     }

@@ -27,8 +27,8 @@ use tokio::io::AsyncReadExt as _;
 
 use super::publish::relative_inside;
 use super::{
-    Credentials, FileEntry, Key, SharedError, SharedStore, StoreAddress, TableRecord, VersionRecord,
-    artifact_object, presence, table_object,
+    Credentials, FileEntry, Key, SharedError, SharedStore, StoreAddress, TableRecord, VersionRecord, artifact_object,
+    presence, table_object,
 };
 use crate::registry::{MirrorState, Registry, RegistryOptions, SyncProblem};
 use paddock_host::artifact::digest::Digest;
@@ -57,7 +57,11 @@ pub struct MirrorOptions {
 
 impl Default for MirrorOptions {
     fn default() -> Self {
-        MirrorOptions { host: presence::default_host_name(), heartbeat: Duration::from_secs(2), retry: Duration::from_secs(1) }
+        MirrorOptions {
+            host: presence::default_host_name(),
+            heartbeat: Duration::from_secs(2),
+            retry: Duration::from_secs(1),
+        }
     }
 }
 
@@ -198,9 +202,9 @@ impl Mirror {
             })
             .map_err(|e| MirrorError::Thread(e.to_string()))?;
         let mut handle = Mirror { stop: Some(stop_tx), thread: Some(thread) };
-        let state = ready_rx.recv().map_err(|_| {
-            MirrorError::Thread("it stopped before the mirror was ready (see the log)".into())
-        })?;
+        let state = ready_rx
+            .recv()
+            .map_err(|_| MirrorError::Thread("it stopped before the mirror was ready (see the log)".into()))?;
         let registry = Registry::open(runtime, &dir, options)?;
         registry.set_mirror_state(state);
         if registry_tx.send(registry.clone()).is_err() {
@@ -479,11 +483,7 @@ impl Follower {
         if file == FileEntry::Routes {
             self.state.routes_revision = (entry.operation == kv::Operation::Put).then_some(entry.revision);
         }
-        if entry.operation == kv::Operation::Put {
-            write(&path, &entry.value)
-        } else {
-            remove(&path)
-        }
+        if entry.operation == kv::Operation::Put { write(&path, &entry.value) } else { remove(&path) }
     }
 
     async fn apply_version(&self, store: &SharedStore, path: &Path, entry: &kv::Entry) -> Result<bool, String> {

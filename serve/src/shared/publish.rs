@@ -10,8 +10,8 @@ use jiff::Timestamp;
 use semver::Version;
 
 use super::{
-    FileEntry, SharedError, SharedStore, TableRecord, VersionRecord, artifact_object, key_safe,
-    table_key, table_object, text_of, version_key,
+    FileEntry, SharedError, SharedStore, TableRecord, VersionRecord, artifact_object, key_safe, table_key,
+    table_object, text_of, version_key,
 };
 use crate::features::Plan;
 use crate::registry::{FEATURES_FILE, Passed, RegistryOptions, Routes, check_version};
@@ -65,10 +65,12 @@ impl SharedStore {
         let size = bytes.len() as u64;
         let passed = {
             let (runtime, options, vouch, bytes) = (runtime.clone(), options.clone(), vouch.clone(), bytes.clone());
-            tokio::task::spawn_blocking(move || check_version(&runtime, bytes, vouch.as_deref().map(str::as_bytes), &options))
-                .await
-                .map_err(|e| SharedError::js("checking the artifact", e))?
-                .map_err(|refusal| SharedError::Refused { refusal: Box::new(refusal) })?
+            tokio::task::spawn_blocking(move || {
+                check_version(&runtime, bytes, vouch.as_deref().map(str::as_bytes), &options)
+            })
+            .await
+            .map_err(|e| SharedError::js("checking the artifact", e))?
+            .map_err(|refusal| SharedError::Refused { refusal: Box::new(refusal) })?
         };
         if !key_safe(&passed.model) {
             return Err(SharedError::BadName { name: passed.model.clone() });
@@ -227,7 +229,8 @@ impl SharedStore {
                 for table in plan.table_paths() {
                     let table = table.to_string_lossy();
                     let key = table_key(&table);
-                    let found = self.entries.get(&key).await.map_err(|e| SharedError::js(format!("reading {key}"), e))?;
+                    let found =
+                        self.entries.get(&key).await.map_err(|e| SharedError::js(format!("reading {key}"), e))?;
                     if found.is_none() {
                         return Err(SharedError::Text {
                             entry,
@@ -287,7 +290,8 @@ impl SharedStore {
             let e = e.map_err(|e| SharedError::js(format!("reading the history of {entry}"), e))?;
             out.push(Revision {
                 revision: e.revision,
-                at: e.created.to_string(),
+                at: Timestamp::from_nanosecond(e.created.unix_timestamp_nanos())
+                    .map_or_else(|_| e.created.to_string(), |t| t.to_string()),
                 text: (e.operation == kv::Operation::Put).then(|| text_of(&e.value)),
             });
             if e.delta == 0 {
@@ -318,16 +322,13 @@ impl SharedStore {
         };
         self.put_file(entry, &text_of(&old.value), based_on).await
     }
-
 }
 
 /// Whether a path is relative and stays inside the directory it is
 /// relative to.
 pub(crate) fn relative_inside(path: &str) -> bool {
     let p = Path::new(path);
-    !path.is_empty()
-        && p.components().all(|c| matches!(c, std::path::Component::Normal(_)))
-        && !path.contains('\\')
+    !path.is_empty() && p.components().all(|c| matches!(c, std::path::Component::Normal(_))) && !path.contains('\\')
 }
 
 /// The revision a change is based on, read from the header line
