@@ -406,8 +406,11 @@ impl SharedStore {
     /// # Errors
     /// [`SharedError::JetStream`] when the server does not answer.
     pub async fn latest_revision(&self) -> Result<u64, SharedError> {
-        let status = self.entries.status().await.map_err(|e| SharedError::js("reading the store's revision", e))?;
-        Ok(status.info.state.last_sequence)
+        // Asked afresh: the bucket's own `status()` answers from a copy
+        // made when it was opened.
+        let mut stream = self.entries.stream.clone();
+        let info = stream.info().await.map_err(|e| SharedError::js("reading the store's revision", e))?;
+        Ok(info.state.last_sequence)
     }
 
     /// The published versions, by model, with their records.
@@ -415,11 +418,8 @@ impl SharedStore {
     /// # Errors
     /// [`SharedError::JetStream`] when the keys cannot be listed or read.
     pub async fn versions(&self) -> Result<Vec<(String, Version, VersionRecord)>, SharedError> {
-        use futures_util::StreamExt as _;
-        let mut keys = self.entries.keys().await.map_err(|e| SharedError::js("listing the store's entries", e))?;
         let mut out = Vec::new();
-        while let Some(key) = keys.next().await {
-            let key = key.map_err(|e| SharedError::js("listing the store's entries", e))?;
+        for key in keys_of(&self.entries, "version.").await? {
             let Some(Key::Version(model, version)) = Key::parse(&key) else { continue };
             if let Some(record) = self.version_record(&model, &version).await? {
                 out.push((model, version, record));
@@ -452,6 +452,25 @@ impl SharedStore {
             self.entries.entry(entry.key()).await.map_err(|e| SharedError::js(format!("reading {entry}"), e))?;
         Ok(found.filter(|e| e.operation == kv::Operation::Put).map(|e| (e.revision, text_of(&e.value))))
     }
+}
+
+/// The keys of a bucket starting with `prefix` (deleted ones too), read
+/// from the stream's subjects: no consumer is made, so listing often costs
+/// the server nothing it must clean up.
+pub(crate) async fn keys_of(bucket: &kv::Store, prefix: &str) -> Result<Vec<String>, SharedError> {
+    use futures_util::StreamExt as _;
+    let what = || format!("listing the keys of {}", bucket.name);
+    let filter = format!("{}{prefix}>", bucket.prefix);
+    let mut subjects = bucket.stream.info_with_subjects(&filter).await.map_err(|e| SharedError::js(what(), e))?;
+    let mut keys = Vec::new();
+    while let Some(s) = subjects.next().await {
+        let (subject, _) = s.map_err(|e| SharedError::js(what(), e))?;
+        if let Some(key) = subject.strip_prefix(bucket.prefix.as_str()) {
+            keys.push(key.to_owned());
+        }
+    }
+    keys.sort();
+    Ok(keys)
 }
 
 /// An entry's value as text (lossy: entries are written as UTF-8).

@@ -4,7 +4,6 @@
 //! with what is wrong with each.
 
 use async_nats::jetstream::kv;
-use futures_util::StreamExt as _;
 use jiff::Timestamp;
 use serde::{Deserialize, Serialize};
 
@@ -144,11 +143,7 @@ impl SharedStore {
     /// [`SharedError::JetStream`].
     pub async fn hosts(&self) -> Result<(u64, Vec<HostReport>), SharedError> {
         let latest = self.latest_revision().await?;
-        let mut keys = self.hosts.keys().await.map_err(|e| SharedError::js("listing the hosts", e))?;
-        let mut names = Vec::new();
-        while let Some(k) = keys.next().await {
-            names.push(k.map_err(|e| SharedError::js("listing the hosts", e))?);
-        }
+        let names = super::keys_of(&self.hosts, "").await?;
         let now = Timestamp::now();
         let mut out = Vec::new();
         for name in names {
