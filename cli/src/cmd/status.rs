@@ -30,7 +30,8 @@ pub fn run(args: Args) -> Result<Outcome> {
         .any(|a| matches!(a.state, ArtifactState::Refused { .. } | ArtifactState::KeptAfterRefusal { .. }))
         || matches!(status.routes, RoutesState::Refused { .. } | RoutesState::PartlyTaken { .. })
         || matches!(status.features, FeaturesState::Refused { .. })
-        || matches!(status.limits, LimitsState::Refused { .. });
+        || matches!(status.limits, LimitsState::Refused { .. })
+        || status.mirror.as_ref().is_some_and(|m| !m.problems.is_empty());
     if args.json {
         print_json(&status)?;
     } else {
@@ -67,7 +68,27 @@ pub fn run(args: Args) -> Result<Outcome> {
                 ]
             })
             .collect();
-        outln!("store {} (generation {})\n", status.store.display(), status.generation)?;
+        match &status.mirror {
+            None => outln!("store {} (generation {})\n", status.store.display(), status.generation)?,
+            Some(m) => {
+                let state = match (&m.stale_since, m.connected) {
+                    (None, _) => "up to date".to_owned(),
+                    (Some(since), true) => format!("catching up since {since}"),
+                    (Some(since), false) => format!("out of reach, stale since {since}"),
+                };
+                outln!(
+                    "store {} at revision {} of {} ({state}; generation {})",
+                    m.source,
+                    m.revision,
+                    m.latest,
+                    status.generation
+                )?;
+                for p in &m.problems {
+                    outln!("  not taken: {} (revision {}): {}", p.key, p.revision, p.reason)?;
+                }
+                outln!()?;
+            }
+        }
         out!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows))?;
         match &status.routes {
             RoutesState::Accepted => outln!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE)?,

@@ -42,7 +42,7 @@ use prometheus_client::metrics::counter::ConstCounter;
 use prometheus_client::metrics::gauge::ConstGauge;
 
 use super::ledger::{ShadowUsage, UsageReport, VersionUsage, WALL_BUCKETS};
-use super::{ArtifactState, Status};
+use super::{ArtifactState, MirrorState, Status};
 use crate::features::SourceUsage;
 use crate::features::counts::LATENCY_BUCKETS;
 
@@ -78,7 +78,15 @@ pub fn render(usage: UsageReport, status: &Status, sources: Vec<SourceUsage>, ow
         *artifacts.entry(state).or_default() += 1;
     }
     let mut registry = prometheus_client::registry::Registry::with_prefix("paddock");
-    registry.register_collector(Box::new(Exposition { usage, sources, generation: status.generation, artifacts, own }));
+    let mirror = status.mirror.clone();
+    registry.register_collector(Box::new(Exposition {
+        usage,
+        sources,
+        generation: status.generation,
+        artifacts,
+        mirror,
+        own,
+    }));
     let mut out = String::new();
     prometheus_client::encoding::text::encode(&mut out, &registry).expect("writing to a String cannot fail");
     out
@@ -91,6 +99,7 @@ struct Exposition {
     sources: Vec<SourceUsage>,
     generation: u64,
     artifacts: BTreeMap<&'static str, u64>,
+    mirror: Option<MirrorState>,
     own: Vec<SurfaceFamily>,
 }
 
@@ -145,6 +154,7 @@ fn family(
     match &samples {
         Samples::Counter(s) if s.len() == 1 && s[0].0.is_empty() => return ConstCounter::new(s[0].1).encode(metric),
         Samples::Gauge(s) if s.len() == 1 && s[0].0.is_empty() => return ConstGauge::new(s[0].1 as i64).encode(metric),
+        Samples::GaugeFloat(s) if s.len() == 1 && s[0].0.is_empty() => return ConstGauge::new(s[0].1).encode(metric),
         _ => {}
     }
     let one =
@@ -269,12 +279,45 @@ impl Collector for Exposition {
         )?;
         let states = self.artifacts.iter().map(|(s, n)| (labels(&[("state", s)]), *n)).collect();
         family(&mut e, "artifacts", "Artifacts in the store, by state.", Samples::Gauge(states))?;
+        if let Some(m) = &self.mirror {
+            mirror_families(&mut e, m)?;
+        }
         for f in &self.own {
             let sample = vec![(Vec::new(), f.value)];
             family(&mut e, f.name, f.help, if f.counter { Samples::Counter(sample) } else { Samples::Gauge(sample) })?;
         }
         Ok(())
     }
+}
+
+/// A shared store's mirror: how far it has caught up.
+fn mirror_families(e: &mut DescriptorEncoder<'_>, m: &MirrorState) -> Result<(), std::fmt::Error> {
+    let one = |v: u64| Samples::Gauge(vec![(Vec::new(), v)]);
+    family(e, "store_revision", "The shared store's revision this host's mirror has applied.", one(m.revision))?;
+    family(e, "store_latest_revision", "The shared store's latest revision, as last seen.", one(m.latest))?;
+    family(
+        e,
+        "store_connected",
+        "1 while the host is connected to the shared store's server.",
+        one(u64::from(m.connected)),
+    )?;
+    let stale = m
+        .stale_since
+        .as_deref()
+        .and_then(|s| s.parse::<jiff::Timestamp>().ok())
+        .map_or(0.0, |t| jiff::Timestamp::now().duration_since(t).as_secs_f64().max(0.0));
+    family(
+        e,
+        "store_stale_seconds",
+        "Seconds since the mirror may have fallen behind the shared store (0 while up to date).",
+        Samples::GaugeFloat(vec![(Vec::new(), stale)]),
+    )?;
+    family(
+        e,
+        "store_sync_problems",
+        "Entries of the shared store the mirror refused (digest mismatch, over the size cap, missing object).",
+        one(m.problems.len() as u64),
+    )
 }
 
 impl Exposition {
@@ -419,5 +462,32 @@ mod tests {
         assert!(text.ends_with("paddock_test_things 3\n# EOF\n"), "the surface's own families come last: {text}");
         // Every family is declared once, before its samples.
         assert_eq!(text.matches("# TYPE paddock_calls counter").count(), 1);
+    }
+
+    #[test]
+    fn a_mirror_says_how_far_it_has_caught_up() {
+        let mut mirror = MirrorState::new("nats://127.0.0.1:4222/ev".into());
+        (mirror.revision, mirror.latest, mirror.connected) = (5, 7, true);
+        let status = Status {
+            store: "s".into(),
+            generation: 2,
+            since: String::new(),
+            artifacts: vec![],
+            routes: crate::registry::RoutesState::Missing,
+            limits: crate::registry::LimitsState::Missing,
+            features: crate::registry::FeaturesState::Missing,
+            unrouted: vec![],
+            mirror: Some(mirror),
+        };
+        let text = render(UsageReport::default(), &status, vec![], vec![]);
+        for line in [
+            "paddock_store_revision 5\n",
+            "paddock_store_latest_revision 7\n",
+            "paddock_store_connected 1\n",
+            "paddock_store_stale_seconds 0.0\n",
+            "paddock_store_sync_problems 0\n",
+        ] {
+            assert!(text.contains(line), "{line} in {text}");
+        }
     }
 }
