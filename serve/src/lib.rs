@@ -12,7 +12,9 @@
 //! - [`features`]: a row's missing features looked up by the request's keys
 //!   in the tables and Redis sources a store's features plan names;
 //! - [`surface`]: the JSON wire shapes, NDJSON streams, the HTTP API
-//!   (feature `http`) and NATS JetStream workers (feature `workers`).
+//!   (feature `http`) and NATS JetStream workers (feature `workers`);
+//! - `shared` (feature `shared`): a store kept in NATS JetStream, published
+//!   to once and followed by every host through a mirror of its own.
 //!
 //! ```no_run
 //! use paddock_host::{Row, Runtime};
@@ -27,18 +29,21 @@
 //! # Ok(()) }
 //! ```
 //!
-//! Cargo features (both on by default):
+//! Cargo features (all on by default):
 //! - `http`: the HTTP surface ([`surface::http`], `paddock serve`): axum
 //!   and utoipa, and `paddock-host/openapi`;
 //! - `workers`: NATS JetStream workers ([`surface::worker`], `paddock work`):
-//!   async-nats.
+//!   async-nats;
+//! - `shared`: a store kept in NATS JetStream and followed by every host
+//!   ([`shared`]): async-nats.
 //!
 //! With `default-features = false` the crate is the registry, the feature
 //! sources (tables from Parquet/Arrow/CSV, Redis, on tokio) and the NDJSON
 //! stream: no HTTP server, no NATS client.
 //!
-//! What it is not: a deployment tool or a feature store. It never writes
-//! models into the store it serves, and it computes no feature: it reads
+//! What it is not: a deployment tool or a feature store. A host never
+//! writes models into the store it serves (a publisher does, through
+//! `shared::publish`), and it computes no feature: it reads
 //! what a batch job or another service wrote. A service that only loads
 //! and scores one model needs `paddock-host` alone.
 

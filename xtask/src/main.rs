@@ -184,6 +184,8 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     steps.done("HTTP API against schemathesis and the OpenMetrics parser");
     readme_walk(root, &tools)?;
     steps.done("the README's notebook-to-store walk, per toolkit");
+    shared_walk(root, &tools)?;
+    steps.done("docs/shared-store.md's walk from one laptop to many hosts");
     steps.report();
     Ok(())
 }
@@ -560,6 +562,15 @@ fn readme_walk(root: &Path, tools: &Tools) -> Result<()> {
     let mut walk = Command::new("python3");
     // A toolkit's warning (scikit-learn's "X does not have valid feature names") fails the walk.
     walk.args(["-W", "error::UserWarning"]).arg(root.join("tests/docs/readme_walk.py")).arg(&tools.paddock);
+    walk.current_dir(root);
+    run(walk)
+}
+
+/// docs/shared-store.md's walk, run as written against a NATS server of
+/// its own (`tests/docs/shared_walk.py`).
+fn shared_walk(root: &Path, tools: &Tools) -> Result<()> {
+    let mut walk = Command::new("python3");
+    walk.arg(root.join("tests/docs/shared_walk.py")).arg(&tools.paddock);
     walk.current_dir(root);
     run(walk)
 }

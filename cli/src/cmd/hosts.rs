@@ -21,6 +21,15 @@ pub struct Args {
     json: bool,
 }
 
+/// `model v1 v2; other v1`.
+fn serving(served: &[paddock_serve::shared::presence::Served]) -> String {
+    let mut by: std::collections::BTreeMap<&str, Vec<&str>> = std::collections::BTreeMap::new();
+    for s in served {
+        by.entry(s.model.as_str()).or_default().push(s.version.as_str());
+    }
+    by.iter().map(|(m, vs)| format!("{m} {}", vs.join(" "))).collect::<Vec<_>>().join("; ")
+}
+
 /// Lists the hosts.
 pub fn run(args: Args) -> Result<Outcome> {
     let (runtime, store) = args.shared.connect(false)?;
@@ -39,7 +48,7 @@ pub fn run(args: Args) -> Result<Outcome> {
                     p.host.clone(),
                     format!("{}/{latest}", p.revision),
                     p.generation.to_string(),
-                    p.serving.iter().map(|s| format!("{} {}", s.model, s.version)).collect::<Vec<_>>().join(", "),
+                    serving(&p.serving),
                     if h.flags.is_empty() { "ok".into() } else { h.flags.join("; ") },
                 ]
             })

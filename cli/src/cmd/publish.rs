@@ -4,7 +4,7 @@
 use std::path::PathBuf;
 
 use anyhow::{Context, Result};
-use paddock_host::Vouch;
+use paddock_host::{Admission, Vouch};
 use paddock_serve::RegistryOptions;
 
 use crate::Outcome;
@@ -61,11 +61,16 @@ pub fn run(args: Args) -> Result<Outcome> {
         )?;
     } else {
         outln!(
-            "published {} {} ({}; {checks}; {:?}) to {} at revision {}",
+            "published {} {} ({}; {checks}; {}) to {} at revision {}",
             p.model,
             p.version,
             p.digest,
-            p.admission,
+            match &p.admission {
+                Admission::Vouch { name, .. } => format!("vouched for by {name}"),
+                Admission::Pin => "pinned".to_owned(),
+                Admission::OpenPolicy => "no vouch asked for".to_owned(),
+                _ => "admitted".to_owned(),
+            },
             store.address(),
             published.revision
         )?;
