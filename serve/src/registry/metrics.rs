@@ -420,17 +420,7 @@ mod tests {
             shadows: vec![],
             rejected: BTreeMap::new(),
         };
-        let status = Status {
-            store: "s".into(),
-            generation: 7,
-            since: String::new(),
-            artifacts: vec![],
-            routes: crate::registry::RoutesState::Missing,
-            limits: crate::registry::LimitsState::Missing,
-            features: crate::registry::FeaturesState::Missing,
-            unrouted: vec![],
-            mirror: None,
-        };
+        let status = empty_status(7, None);
         let c = crate::features::SourceCounts::default();
         c.lookup(crate::features::Outcome::Found);
         c.round_trip(crate::features::counts::Ended::TimedOut, std::time::Duration::from_millis(3));
@@ -464,21 +454,26 @@ mod tests {
         assert_eq!(text.matches("# TYPE paddock_calls counter").count(), 1);
     }
 
-    #[test]
-    fn a_mirror_says_how_far_it_has_caught_up() {
-        let mut mirror = MirrorState::new("nats://127.0.0.1:4222/ev".into());
-        (mirror.revision, mirror.latest, mirror.connected) = (5, 7, true);
-        let status = Status {
+    /// The status of a store with nothing in it.
+    fn empty_status(generation: u64, mirror: Option<MirrorState>) -> Status {
+        Status {
             store: "s".into(),
-            generation: 2,
+            generation,
             since: String::new(),
             artifacts: vec![],
             routes: crate::registry::RoutesState::Missing,
             limits: crate::registry::LimitsState::Missing,
             features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
-            mirror: Some(mirror),
-        };
+            mirror,
+        }
+    }
+
+    #[test]
+    fn a_mirror_says_how_far_it_has_caught_up() {
+        let mut mirror = MirrorState::new("nats://127.0.0.1:4222/ev".into());
+        (mirror.revision, mirror.latest, mirror.connected) = (5, 7, true);
+        let status = empty_status(2, Some(mirror));
         let text = render(UsageReport::default(), &status, vec![], vec![]);
         for line in [
             "paddock_store_revision 5\n",
