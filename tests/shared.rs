@@ -367,3 +367,35 @@ fn hosts_catch_up_after_the_server_went_away_and_serve_their_mirror_meanwhile() 
     });
     drop(mirror);
 }
+
+/// A Python guest (about 18 MiB, componentize-py) is published once and
+/// served by three hosts, each answering as the same artifact loaded on
+/// its own does.
+#[test]
+fn a_python_guest_is_published_once_and_served_by_every_host() {
+    let w = world();
+    let artifact = paddock_tests::foreign_artifact("charge-taper-py");
+    assert!(artifact.bytes().len() > 16 << 20, "{} bytes", artifact.bytes().len());
+    let wasi = paddock_host::ModelOptions { wasi: Some(paddock_host::WasiPolicy::default()), ..Default::default() };
+    let options = RegistryOptions { model: wasi.clone(), ..RegistryOptions::default() };
+    let published = w.rt.block_on(w.store.publish(&w.wasm, artifact.bytes().to_vec(), None, &options, "test")).unwrap();
+    assert_eq!(
+        (published.passed.model.as_str(), published.passed.version.to_string().as_str()),
+        ("charge-taper", "1.0.0")
+    );
+    let text = "[models.charge-taper]\ndefault = \"1.0.0\"\n";
+    w.rt.block_on(w.store.put_file(FileEntry::Routes, text, None)).unwrap();
+    let row =
+        Row::new().with("charger_kw", 11.0).with("battery_kwh", 64.0).with("soc_start", 0.2).with("soc_target", 0.9);
+    let expected =
+        paddock_tests::load_foreign(&w.wasm, "charge-taper-py", wasi).unwrap().score(&[row.clone()]).unwrap();
+    let dirs: Vec<_> = (0..3).map(|_| tempfile::tempdir().unwrap()).collect();
+    for (i, d) in dirs.iter().enumerate() {
+        let (reg, _mirror) = host_of(&w.wasm, &w.address, d.path(), &format!("py-{i}"), options.clone());
+        let context = RequestContext::new();
+        let rows = [row.clone()];
+        let answer = reg.score(&Request::new("charge-taper", &context, &rows)).unwrap();
+        assert_eq!(answer.rows().next().unwrap().unwrap(), expected.values_at(0), "host {i}");
+        assert_eq!(std::fs::read(d.path().join("mirror/charge-taper/1.0.0.wasm")).unwrap(), artifact.bytes());
+    }
+}
