@@ -387,8 +387,10 @@ fn a_python_guest_is_published_once_and_served_by_every_host() {
     w.rt.block_on(w.store.put_file(FileEntry::Routes, text, None)).unwrap();
     let row =
         Row::new().with("charger_kw", 11.0).with("battery_kwh", 64.0).with("soc_start", 0.2).with("soc_target", 0.9);
-    let expected =
-        paddock_tests::load_foreign(&w.wasm, "charge-taper-py", wasi).unwrap().score(&[row.clone()]).unwrap();
+    let expected = paddock_tests::load_foreign(&w.wasm, "charge-taper-py", wasi)
+        .unwrap()
+        .score(std::slice::from_ref(&row))
+        .unwrap();
     let dirs: Vec<_> = (0..3).map(|_| tempfile::tempdir().unwrap()).collect();
     for (i, d) in dirs.iter().enumerate() {
         let (reg, _mirror) = host_of(&w.wasm, &w.address, d.path(), &format!("py-{i}"), options.clone());
