@@ -19,6 +19,7 @@ use serde::Serialize;
 
 use crate::Outcome;
 use crate::common::{print_json, text_table};
+use crate::place::{NatsArgs, Place};
 
 /// The demo plug-ins (invented data).
 const PLUGINS: &str = include_str!("../demo/plugins.csv");
@@ -31,10 +32,14 @@ const ZONE: &str = "Europe/Oslo";
 /// Serve the demo store and score the built-in EV-charging plug-ins.
 #[derive(clap::Args)]
 pub struct Args {
-    /// The demo store [default: target/paddock/store of the paddock clone
-    /// this binary was built in, as `cargo xtask demo` assembles it].
-    #[arg(long, value_name = "DIR")]
-    store: Option<PathBuf>,
+    /// The demo store: a directory, or a shared store the demo store was
+    /// published to (nats://HOST:PORT/NAME) [default: target/paddock/store of
+    /// the paddock clone this binary was built in, as `cargo xtask demo`
+    /// assembles it].
+    #[arg(long, value_name = "DIR|ADDRESS", value_parser = Place::parse)]
+    store: Option<Place>,
+    #[command(flatten)]
+    nats: NatsArgs,
     /// Print the results as JSON.
     #[arg(long)]
     json: bool,
@@ -80,7 +85,12 @@ fn routed_model(
 /// The store to serve: the one given, else the demo store of the clone
 /// this binary was built in (found from its own path, so the demo runs from
 /// any directory), else the current directory's.
-fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
+fn demo_store(given: Option<Place>) -> Result<Place> {
+    let given = match given {
+        Some(Place::Shared(address)) => return Ok(Place::Shared(address)),
+        Some(Place::Dir(dir)) => Some(dir),
+        None => None,
+    };
     let has_routes = |p: &std::path::Path| p.join(paddock_serve::registry::ROUTES_FILE).exists();
     if let Some(store) = given {
         anyhow::ensure!(
@@ -88,14 +98,14 @@ fn demo_store(given: Option<PathBuf>) -> Result<PathBuf> {
             "{} is not a store with routes: run `cargo xtask demo` in a paddock clone to build the demo store there",
             store.display()
         );
-        return Ok(store);
+        return Ok(Place::Dir(store));
     }
     // The binary lives in <clone>/target/<profile>/paddock.
     let beside_binary =
         std::env::current_exe().ok().and_then(|exe| Some(exe.parent()?.parent()?.join("paddock/store")));
     let candidates: Vec<PathBuf> = beside_binary.into_iter().chain([PathBuf::from("target/paddock/store")]).collect();
     match candidates.iter().find(|c| has_routes(c)) {
-        Some(found) => Ok(found.clone()),
+        Some(found) => Ok(Place::Dir(found.clone())),
         None => anyhow::bail!(
             "the demo store is not built yet: run `cargo xtask demo` in the paddock clone (it builds the store into target/paddock/store), or pass --store DIR"
         ),
@@ -109,13 +119,15 @@ pub fn run(args: Args) -> Result<Outcome> {
     // The demo shows this run's figures: it keeps no usage file (and so
     // also runs beside a host serving the same store).
     let options = paddock_serve::RegistryOptions { usage_flush: None, ..paddock_serve::RegistryOptions::default() };
-    let registry = Registry::open(&runtime, &store, options)?;
+    // A shared store is followed through a scratch mirror for this run.
+    let opened = crate::place::open(&store, &runtime, options, &args.nats, None, true)?;
+    let registry = &opened.registry;
     let refused: Vec<String> = registry.status().problems().map(|a| a.path.display().to_string()).collect();
     anyhow::ensure!(
         refused.is_empty(),
         "the demo store has refused artifacts: {} (see `paddock status --store {}`)",
         refused.join(", "),
-        store.display()
+        store
     );
     let zone = TimeZone::get(ZONE)?;
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
@@ -136,14 +148,14 @@ pub fn run(args: Args) -> Result<Outcome> {
         let context: paddock_serve::RequestContext =
             ["site", "region", "member"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
-        let minutes_model = routed_model(&registry, "charge-minutes", &context, at)?;
+        let minutes_model = routed_model(registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
         let m = registry.score(&Request::new("charge-minutes", &context, &rows).at(Some(at)))?;
         let minutes = m.estimates.values_at(0)[0];
         cells.insert("expected_minutes".into(), minutes.to_string());
         cells.insert("plugin_hour".into(), local.hour().to_string());
         cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
-        let overstay_model = routed_model(&registry, "overstay-risk", &context, at)?;
+        let overstay_model = routed_model(registry, "overstay-risk", &context, at)?;
         let rows = [row_for(&overstay_model, &cells)];
         // Site occupancy and the member's overstay rate are not in the
         // plug-in event: they are looked up by key (the store's features.toml).
@@ -190,7 +202,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         })
         .collect();
     outln!("EV-charging co-op demo: estimates at plug-in (models trained on simulated sessions; demo only)")?;
-    outln!("times in {ZONE}; store {}\n", store.display())?;
+    outln!("times in {ZONE}; store {}\n", store)?;
     out!(
         "{}",
         text_table(&["site", "region", "plug-in", "charging", "answered by", "overstay risk", "answered by"], &rows)
@@ -218,9 +230,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     let status = registry.status();
     outln!(
-        "{} versions loaded, each in its own sandbox; `paddock serve --store {}` serves the same store over HTTP",
+        "{} versions loaded, each in its own sandbox; `paddock serve --store {store}{}` serves the same store over HTTP",
         status.artifacts.len(),
-        store.display()
+        if matches!(store, Place::Shared(_)) { " --state DIR" } else { "" }
     )?;
     Ok(Outcome::Ok)
 }
