@@ -255,7 +255,6 @@ struct Cut {
     ns: String,
     outside: String,
     host_ip: std::net::Ipv4Addr,
-    ns_ip: std::net::Ipv4Addr,
 }
 
 fn ip(args: &[&str]) {
@@ -271,7 +270,7 @@ impl Cut {
         let (a, b) = (100 + (id >> 8) % 100, (id % 64) * 4);
         let host_ip = std::net::Ipv4Addr::new(10, a as u8, 7, b as u8 + 1);
         let ns_ip = std::net::Ipv4Addr::new(10, a as u8, 7, b as u8 + 2);
-        let cut = Cut { ns: format!("pdk-{tag}"), outside: format!("pdkh{tag}"), host_ip, ns_ip };
+        let cut = Cut { ns: format!("pdk-{tag}"), outside: format!("pdkh{tag}"), host_ip };
         let inside = format!("pdkn{tag}");
         ip(&["netns", "add", &cut.ns]);
         ip(&["link", "add", &cut.outside, "type", "veth", "peer", "name", &inside]);
