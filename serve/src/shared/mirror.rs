@@ -175,6 +175,8 @@ impl Mirror {
             options: mirror,
             state: MirrorState::new(address.to_string()),
             problems: BTreeMap::new(),
+            retries: BTreeMap::new(),
+            beats: 0,
             dirty: false,
         };
         let had_mirror = marker.is_some();
@@ -233,6 +235,12 @@ struct Follower {
     options: MirrorOptions,
     state: MirrorState,
     problems: BTreeMap<String, SyncProblem>,
+    /// When each refused entry is tried again: every heartbeat at first,
+    /// then half as often after each failure (at most every 32 beats), so
+    /// a tampered 18 MiB object is not fetched every two seconds.
+    retries: BTreeMap<String, (u32, u64)>,
+    /// Heartbeats so far.
+    beats: u64,
     /// The mirror changed since the registry last reloaded it.
     dirty: bool,
 }
@@ -467,10 +475,13 @@ impl Follower {
             Ok(changed) => {
                 self.dirty |= changed;
                 self.problems.remove(&key);
+                self.retries.remove(&key);
             }
             Err(reason) => {
                 tracing::warn!(store = %self.address, key = %key, revision, reason = %reason,
                     "refused a change from the shared store; what was there before stays");
+                let failures = self.retries.get(&key).map_or(0, |(f, _)| f + 1);
+                self.retries.insert(key.clone(), (failures, self.beats + (1u64 << failures.min(5))));
                 self.problems.insert(key.clone(), SyncProblem { key, revision, reason });
             }
         }
@@ -565,7 +576,10 @@ impl Follower {
     /// Tries again the entries whose objects were refused (an object that
     /// was missing may have arrived).
     async fn retry_problems(&mut self, store: &SharedStore, registry: &Registry) {
-        let keys: Vec<String> = self.problems.keys().cloned().collect();
+        self.beats += 1;
+        let due: Vec<String> =
+            self.retries.iter().filter(|(_, (_, at))| *at <= self.beats).map(|(k, _)| k.clone()).collect();
+        let keys: Vec<String> = due.into_iter().filter(|k| self.problems.contains_key(k)).collect();
         if keys.is_empty() {
             return;
         }

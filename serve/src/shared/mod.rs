@@ -157,6 +157,11 @@ impl Key {
         }
         if let Some(rest) = key.strip_prefix("version.") {
             let (model, version) = rest.split_once('.')?;
+            // A model name becomes a directory of the mirror: nothing but
+            // what a publisher may write (no `/`, no `..`).
+            if !key_safe(model) {
+                return None;
+            }
             let version = Version::parse(&version.replace('_', "+")).ok()?;
             return Some(Key::Version(model.to_owned(), version));
         }
@@ -482,5 +487,26 @@ impl Refusal {
     /// The gate step's name, as the status reports it.
     fn step_name(&self) -> String {
         serde_json::to_value(self.step()).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn keys_read_back_to_what_wrote_them_and_nothing_else_becomes_a_path() {
+        let v = Version::parse("1.2.0-rc.1+build.7").unwrap();
+        let key = version_key("charge-minutes", &v);
+        assert_eq!(key, "version.charge-minutes.1.2.0-rc.1_build.7");
+        assert_eq!(Key::parse(&key), Some(Key::Version("charge-minutes".into(), v)));
+        assert_eq!(Key::parse("routes"), Some(Key::File(FileEntry::Routes)));
+        assert_eq!(Key::parse("table.tables/sites.csv"), Some(Key::Table("tables/sites.csv".into())));
+        // A model that would leave the mirror's directory, or a version that is not semver: ignored.
+        for key in
+            ["version.../x.1.0.0", "version.a/b.1.0.0", "version.m.1.0", "version.m.x", "version..1.0.0", "other"]
+        {
+            assert_eq!(Key::parse(key), None, "{key}");
+        }
     }
 }
