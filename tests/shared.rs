@@ -401,3 +401,68 @@ fn a_python_guest_is_published_once_and_served_by_every_host() {
         assert_eq!(std::fs::read(d.path().join("mirror/charge-taper/1.0.0.wasm")).unwrap(), artifact.bytes());
     }
 }
+
+/// A host whose own trust policy admits only 1.0.0 (pinned) refuses 2.0.0
+/// when it is published and routed: it serves 1.0.0 on, reports the
+/// refusal, and the list of hosts shows it; a host without the policy
+/// serves 2.0.0. An entry whose object never arrived (an upload that did
+/// not finish) is refused naming the object, and taken once it arrives.
+#[test]
+fn a_host_refusing_a_version_by_its_own_trust_policy_serves_the_previous_one_and_says_so() {
+    let w = world();
+    let v1 = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
+    w.publish_bytes(v1.clone()).unwrap();
+    w.route("1.0.0");
+    let strict_dir = tempfile::tempdir().unwrap();
+    let trust = paddock_host::TrustPolicy { trusted: vec![], pinned: vec![Digest::of(&v1)], required: true };
+    let (strict, _m1) = host_of(
+        &w.wasm,
+        &w.address,
+        strict_dir.path(),
+        "strict",
+        RegistryOptions { trust, ..RegistryOptions::default() },
+    );
+    let open_dir = tempfile::tempdir().unwrap();
+    let (open, _m2) = w.host(open_dir.path(), "open");
+    w.publish("2.0.0", 2.0).unwrap();
+    w.route("2.0.0");
+    wait_until("the open host serves 2.0.0", LONG, EVERY, || serves(&open, "2.0.0"));
+    let latest = w.latest();
+    wait_until("the strict host has looked at 2.0.0", LONG, EVERY, || {
+        reg_revision(&strict) == Some(latest) && !matches!(strict.status().routes, RoutesState::Accepted)
+    });
+    assert!(serves(&strict, "1.0.0"), "{:?}", ask(&strict));
+    let refused = strict.status().artifacts.into_iter().find(|a| a.path == Path::new("m/2.0.0.wasm")).unwrap();
+    assert!(matches!(refused.state, paddock_serve::registry::ArtifactState::Refused { .. }), "{refused:?}");
+    wait_until("the list shows the strict host's refusal", LONG, EVERY, || {
+        let (_, list) = w.rt.block_on(w.store.hosts()).unwrap();
+        list.iter().any(|h| h.presence.host == "strict" && h.flags.iter().any(|f| f == "refused 1"))
+            && list.iter().any(|h| h.presence.host == "open" && h.flags.is_empty())
+    });
+
+    // An entry whose object is not there: named, then taken when it comes.
+    let v3 = line_artifact("m", "3.0.0", 3.0, 0.0, Some(true));
+    let object = format!("artifact/{}", Digest::of(&v3).hex());
+    let (entries, files) = w.rt.block_on(async {
+        let js = async_nats::jetstream::new(async_nats::connect(w.nats.url()).await.unwrap());
+        (js.get_key_value("paddock-ev").await.unwrap(), js.get_object_store("paddock-ev-files").await.unwrap())
+    });
+    let record = serde_json::json!({
+        "digest": Digest::of(&v3), "bytes": v3.len(), "published": "2026-12-05T00:00:00Z", "by": "an interrupted upload"
+    });
+    w.rt.block_on(entries.put("version.m.3.0.0", serde_json::to_vec(&record).unwrap().into())).unwrap();
+    wait_until("the open host names the missing object", LONG, EVERY, || {
+        open.status()
+            .mirror
+            .is_some_and(|m| m.problems.iter().any(|p| p.key == "version.m.3.0.0" && p.reason.contains(&object)))
+    });
+    w.rt.block_on(files.put(object.as_str(), &mut v3.as_slice())).unwrap();
+    wait_until("the open host takes it once it is whole", LONG, EVERY, || {
+        open.status().mirror.is_some_and(|m| m.problems.is_empty())
+            && open_dir.path().join("mirror/m/3.0.0.wasm").exists()
+    });
+}
+
+fn reg_revision(reg: &Registry) -> Option<u64> {
+    reg.status().mirror.map(|m| m.revision)
+}
