@@ -615,3 +615,55 @@ fn estimates_are_scored_from_keys_and_say_what_was_looked_up() {
         serde_json::json!([[], [{"feature": "x", "source": "sites", "key": "west-9", "outcome": "missing"}]])
     );
 }
+
+/// A request waiting on its Redis lookups holds no scoring thread: with
+/// one scoring thread and the Redis server frozen (SIGSTOP), a request for
+/// `m` waits on its lookup (the server says one request is gathering, no
+/// thread busy) while `n`, which looks nothing up, is answered; once
+/// Redis goes on, `m` is answered from its lookup.
+#[test]
+fn a_request_waiting_on_its_lookups_holds_no_scoring_thread() {
+    let redis = paddock_tests::RedisServer::start();
+    redis.cmd(&["HSET", "site:a", "x", "3"]);
+    let dir = tempfile::tempdir().unwrap();
+    let plan = format!(
+        "[sources.live]\nredis = \"{}\"\nbudget_ms = 30000\n[models.m]\nkeys = [\"site\"]\n\
+         [models.m.features]\nx = {{ source = \"live\", key = \"site:{{site}}\", field = \"x\", missing = \"fail\" }}\n",
+        redis.url()
+    );
+    write_atomically(&dir.path().join("features.toml"), plan.as_bytes());
+    // `m` looks `x` up; `n` (the same line) looks nothing up. Deadlines past
+    // the lookup's budget (a plan whose budget exceeds them is refused).
+    put(dir.path(), "m", "1.0.0", &line_artifact("m", "1.0.0", 2.0, 1.0, None));
+    put(dir.path(), "n", "1.0.0", &line_artifact("n", "1.0.0", 2.0, 1.0, None));
+    write_atomically(
+        &dir.path().join("routes.toml"),
+        b"[models.m]\ndefault = \"1.0.0\"\n[models.n]\ndefault = \"1.0.0\"\n",
+    );
+    let limits = Limits { deadline: Duration::from_secs(60), ..Limits::default() };
+    let options =
+        RegistryOptions { model: ModelOptions { limits, ..ModelOptions::default() }, ..RegistryOptions::default() };
+    let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), options).unwrap();
+    let options = ServeOptions { score_threads: 1, concurrency: 1, ..ServeOptions::default() };
+    let s = Server::start(registry, options);
+    // Connected and answering first.
+    let r = estimate(&s, "m", r#"{"context": {"site": "a"}, "row": {}}"#);
+    assert_eq!((r.status, r.json()["estimates"][0]["y"].as_f64()), (200, Some(7.0)), "{}", r.body);
+
+    redis.pause();
+    let url = estimate_url(&s);
+    let waiting = std::thread::spawn(move || {
+        call("POST", &url, Some(&with_model("m", r#"{"context": {"site": "a"}, "row": {}}"#)), None)
+    });
+    wait_for(&s, "paddock_serve_gathering", 1.0);
+    assert_eq!(metric(&s, "paddock_serve_score_threads_busy"), 0.0);
+    let r = estimate(&s, "n", r#"{"rows": [{"x": 1}]}"#);
+    assert_eq!((r.status, r.json()["estimates"][0]["y"].as_f64()), (200, Some(3.0)), "{}", r.body);
+    // Still waiting on Redis all along.
+    assert_eq!(metric(&s, "paddock_serve_gathering"), 1.0);
+    assert!(!waiting.is_finished());
+    redis.resume();
+    let r = waiting.join().unwrap();
+    assert_eq!((r.status, r.json()["estimates"][0]["y"].as_f64()), (200, Some(7.0)), "{}", r.body);
+    assert_eq!(metric(&s, "paddock_serve_gathering"), 0.0);
+}

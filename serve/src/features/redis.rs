@@ -164,9 +164,31 @@ impl RedisSource {
 
     /// Sends the pipeline of [`RedisSource::fetch`] and returns at once:
     /// several sources are read at the same time, each within its budget.
+    /// [`Pending::wait`] blocks the calling thread until the answer.
     pub fn send(&self, asks: &[(String, Vec<String>)]) -> Pending<'_> {
+        let (tx, rx) = std::sync::mpsc::sync_channel(1);
+        match self.dispatch(asks, Reply::Blocking(tx)) {
+            Ok(sent) => Pending { source: self, state: State::Sent { rx, sent } },
+            Err(done) => Pending { source: self, state: State::Done(done) },
+        }
+    }
+
+    /// As [`RedisSource::send`], for a caller on an async runtime:
+    /// [`Awaited::wait`] awaits the answer without holding a thread.
+    pub fn send_async(&self, asks: &[(String, Vec<String>)]) -> Awaited<'_> {
+        let (tx, rx) = tokio::sync::oneshot::channel();
+        match self.dispatch(asks, Reply::Async(tx)) {
+            Ok(sent) => Awaited { source: self, state: AsyncState::Sent { rx, sent } },
+            Err(done) => Awaited { source: self, state: AsyncState::Done(done) },
+        }
+    }
+
+    /// Starts the read on the source's runtime, its answer to go to
+    /// `reply`; the time it was sent, or the answer already known (nothing
+    /// to ask, or the breaker open).
+    fn dispatch(&self, asks: &[(String, Vec<String>)], reply: Reply) -> Result<Instant, Result<Replies, Trouble>> {
         if asks.is_empty() {
-            return Pending { source: self, state: State::Done(Ok(Vec::new())) };
+            return Err(Ok(Vec::new()));
         }
         {
             let breaker = self.breaker.lock().unwrap_or_else(|e| e.into_inner());
@@ -174,10 +196,7 @@ impl RedisSource {
                 let now = Instant::now();
                 if now < until {
                     self.counts.skipped();
-                    return Pending {
-                        source: self,
-                        state: State::Done(Err(Trouble::Paused { retry_in_ms: (until - now).as_millis() })),
-                    };
+                    return Err(Err(Trouble::Paused { retry_in_ms: (until - now).as_millis() }));
                 }
             }
         }
@@ -188,7 +207,6 @@ impl RedisSource {
         let connection = self.connection.lock().unwrap_or_else(|e| e.into_inner()).clone();
         let client = self.client.clone();
         let budget = self.budget;
-        let (tx, rx) = std::sync::mpsc::sync_channel(1);
         let sent = Instant::now();
         let Some(runtime) = &self.runtime else { unreachable!("the runtime lives as long as the source") };
         runtime.spawn(async move {
@@ -208,9 +226,31 @@ impl RedisSource {
                 Ok::<_, redis::RedisError>((c, values))
             })
             .await;
-            let _ = tx.send(read);
+            reply.send(read);
         });
-        Pending { source: self, state: State::Sent { rx, sent } }
+        Ok(sent)
+    }
+
+    /// The outcome of an answer (or of none within the budget).
+    fn outcome(&self, answered: Option<Answered>) -> Result<(MultiplexedConnection, Replies), Failed> {
+        let budget = self.budget;
+        match answered {
+            Some(Ok(Ok((c, values)))) => Ok((c, values)),
+            Some(Ok(Err(e))) => Err((
+                Trouble::Failed(e.to_string()),
+                e.is_io_error() || e.is_connection_dropped() || e.is_connection_refusal(),
+            )),
+            // A connection that kept a read past its budget is dropped: the
+            // next read starts a new one, and reads never pile up on a
+            // server that stopped answering.
+            Some(Err(_)) | None => Err((Trouble::Timeout { budget_ms: budget.as_millis() }, true)),
+        }
+    }
+
+    /// How long a waiter waits for an answer sent at `sent`: the budget,
+    /// and a little for the runtime's own scheduling.
+    fn left(&self, sent: Instant) -> Duration {
+        (self.budget + Duration::from_millis(20)).saturating_sub(sent.elapsed())
     }
 
     fn settle(
@@ -247,6 +287,22 @@ impl RedisSource {
 type Answered =
     Result<Result<(MultiplexedConnection, Vec<Vec<Option<String>>>), redis::RedisError>, tokio::time::error::Elapsed>;
 
+/// Where a read's answer goes: a thread blocked on it, or a task awaiting it.
+enum Reply {
+    Blocking(std::sync::mpsc::SyncSender<Answered>),
+    Async(tokio::sync::oneshot::Sender<Answered>),
+}
+
+impl Reply {
+    fn send(self, answered: Answered) {
+        // A waiter that gave up is gone: nothing to tell.
+        match self {
+            Reply::Blocking(tx) => drop(tx.send(answered)),
+            Reply::Async(tx) => drop(tx.send(answered)),
+        }
+    }
+}
+
 /// A pipeline sent by [`RedisSource::send`], not yet waited for.
 pub struct Pending<'a> {
     source: &'a RedisSource,
@@ -256,6 +312,33 @@ pub struct Pending<'a> {
 enum State {
     Done(Result<Vec<Vec<Option<String>>>, Trouble>),
     Sent { rx: std::sync::mpsc::Receiver<Answered>, sent: Instant },
+}
+
+/// A pipeline sent by [`RedisSource::send_async`], not yet awaited.
+pub struct Awaited<'a> {
+    source: &'a RedisSource,
+    state: AsyncState,
+}
+
+enum AsyncState {
+    Done(Result<Vec<Vec<Option<String>>>, Trouble>),
+    Sent { rx: tokio::sync::oneshot::Receiver<Answered>, sent: Instant },
+}
+
+impl Awaited<'_> {
+    /// The answer, awaited at most the source's budget from when it was
+    /// sent; the task waits, no thread does.
+    ///
+    /// # Errors
+    /// As [`RedisSource::fetch`].
+    pub async fn wait(self) -> Result<Vec<Vec<Option<String>>>, Trouble> {
+        let (rx, sent) = match self.state {
+            AsyncState::Done(r) => return r,
+            AsyncState::Sent { rx, sent } => (rx, sent),
+        };
+        let answered = tokio::time::timeout(self.source.left(sent), rx).await.ok().and_then(Result::ok);
+        self.source.settle(self.source.outcome(answered), sent.elapsed())
+    }
 }
 
 impl Pending<'_> {
@@ -269,20 +352,8 @@ impl Pending<'_> {
             State::Done(r) => return r,
             State::Sent { rx, sent } => (rx, sent),
         };
-        let budget = self.source.budget;
-        let left = (budget + Duration::from_millis(20)).saturating_sub(sent.elapsed());
-        let outcome = match rx.recv_timeout(left) {
-            Ok(Ok(Ok((c, values)))) => Ok((c, values)),
-            Ok(Ok(Err(e))) => Err((
-                Trouble::Failed(e.to_string()),
-                e.is_io_error() || e.is_connection_dropped() || e.is_connection_refusal(),
-            )),
-            // A connection that kept a read past its budget is dropped: the
-            // next read starts a new one, and reads never pile up on a
-            // server that stopped answering.
-            Ok(Err(_)) | Err(_) => Err((Trouble::Timeout { budget_ms: budget.as_millis() }, true)),
-        };
-        self.source.settle(outcome, sent.elapsed())
+        let answered = rx.recv_timeout(self.source.left(sent)).ok();
+        self.source.settle(self.source.outcome(answered), sent.elapsed())
     }
 }
 

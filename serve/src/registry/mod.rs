@@ -376,32 +376,42 @@ struct Gathered {
 }
 
 fn gather(plan: &VersionPlan, request: &Request<'_>, now: Timestamp) -> Gathered {
-    let now = now.as_millisecond() as f64 / 1000.0;
-    let mut g = Gathered {
-        rows: Vec::with_capacity(request.rows.len()),
-        numbers: Vec::new(),
-        problems: Vec::new(),
-        lookups: Vec::new(),
-    };
-    for (i, result) in plan.gather_rows(request.context, request.rows, now, request.lookups).into_iter().enumerate() {
-        match result {
-            Ok((row, fetched)) => {
-                g.rows.push(row);
-                g.numbers.push(i + 1);
-                g.lookups.push(fetched);
-            }
-            Err(e) => {
-                let (feature, value) = e.place();
-                g.problems.push(if matches!(e, GatherError::Unavailable { .. }) {
-                    RowError::unavailable(i + 1, feature, e.to_string())
-                } else {
-                    RowError::lookup(i + 1, feature, &value, e.to_string())
-                });
-                g.lookups.push(Vec::new());
+    let seconds = now.as_millisecond() as f64 / 1000.0;
+    Gathered::of(plan.gather_rows(request.context, request.rows, seconds, request.lookups), request.rows.len())
+}
+
+/// As [`gather`], awaiting the sources.
+async fn gather_async(plan: &VersionPlan, request: &Request<'_>, now: Timestamp) -> Gathered {
+    let seconds = now.as_millisecond() as f64 / 1000.0;
+    let rows = plan.gather_rows_async(request.context, request.rows, seconds, request.lookups).await;
+    Gathered::of(rows, request.rows.len())
+}
+
+impl Gathered {
+    /// The rows completed and the problems of those that could not be.
+    fn of(results: Vec<Result<(Row, Vec<Fetched>), GatherError>>, rows: usize) -> Gathered {
+        let mut g =
+            Gathered { rows: Vec::with_capacity(rows), numbers: Vec::new(), problems: Vec::new(), lookups: Vec::new() };
+        for (i, result) in results.into_iter().enumerate() {
+            match result {
+                Ok((row, fetched)) => {
+                    g.rows.push(row);
+                    g.numbers.push(i + 1);
+                    g.lookups.push(fetched);
+                }
+                Err(e) => {
+                    let (feature, value) = e.place();
+                    g.problems.push(if matches!(e, GatherError::Unavailable { .. }) {
+                        RowError::unavailable(i + 1, feature, e.to_string())
+                    } else {
+                        RowError::lookup(i + 1, feature, &value, e.to_string())
+                    });
+                    g.lookups.push(Vec::new());
+                }
             }
         }
+        g
     }
-    g
 }
 
 impl Gathered {
@@ -426,6 +436,19 @@ impl Gathered {
             Err(ScoreError::InvalidRows { errors }) => Err(ScoreError::InvalidRows { errors: merge(errors) }),
             Err(e) => Err(e.renumber(number)),
         }
+    }
+}
+
+/// A request routed and its features gathered ([`Registry::prepare`]),
+/// ready to score on a thread that may block ([`Registry::score_prepared`]).
+pub struct Prepared {
+    routed: Routed,
+    gathered: Option<Gathered>,
+}
+
+impl std::fmt::Debug for Prepared {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Prepared").field("version", &self.routed.version).finish_non_exhaustive()
     }
 }
 
@@ -648,6 +671,42 @@ impl Registry {
         let started = Instant::now();
         let result = score_rows(&routed.served, request, gathered.as_ref());
         self.account(request, routed, gathered, result, started)
+    }
+
+    /// The first half of [`Registry::score`], for a caller on an async
+    /// runtime: picks the version and gathers the request's features,
+    /// awaiting the sources without holding a thread. Score the result with
+    /// [`Registry::score_prepared`] on a thread that may block.
+    ///
+    /// # Errors
+    /// As [`Registry::score`] before scoring: the model is unknown, not
+    /// routed, or its version not loaded.
+    pub async fn prepare(&self, request: &Request<'_>) -> Result<Prepared, RequestError> {
+        let routed = self.pick(request)?;
+        let gathered = match routed.plan.as_deref() {
+            Some(plan) => Some(gather_async(plan, request, routed.at).await),
+            None => None,
+        };
+        Ok(Prepared { routed, gathered })
+    }
+
+    /// The second half of [`Registry::score`]: scores a request
+    /// [`Registry::prepare`] made ready (the same request).
+    ///
+    /// # Errors
+    /// As [`Registry::score`].
+    pub fn score_prepared(&self, request: &Request<'_>, prepared: Prepared) -> Result<Answer, RequestError> {
+        let Prepared { routed, gathered } = prepared;
+        let started = Instant::now();
+        let result = score_rows(&routed.served, request, gathered.as_ref());
+        self.account(request, routed, gathered, result, started)
+    }
+
+    /// Whether requests for `model` look features up (its served versions
+    /// have a features plan): what a surface asks before it lets a request
+    /// wait on its sources.
+    pub fn looks_up(&self, model: &str) -> bool {
+        self.inner.current.load().features.plans.get(model).is_some_and(|v| !v.is_empty())
     }
 
     /// Picks the version a request goes to, and what scoring it needs,

@@ -109,6 +109,8 @@ pub(crate) struct App {
     options: ServeOptions,
     /// Sandbox calls running across every model.
     pool: Arc<Semaphore>,
+    /// Requests waiting on their feature lookups now.
+    gathering: AtomicUsize,
     /// One gate per model that was routed when a request named it: bounded
     /// by the store, never by what clients send.
     gates: RwLock<HashMap<String, Arc<Gate>>>,
@@ -145,7 +147,15 @@ pub fn router(registry: Registry, options: ServeOptions) -> Router {
     let token_digest = options.admin_token.as_ref().map(|t| Sha256::digest(t.as_bytes()).into());
     let pool = Arc::new(Semaphore::new(options.score_threads.max(1)));
     let document = bytes::Bytes::from(super::openapi::document());
-    let app = Arc::new(App { registry, options, pool, gates: RwLock::default(), token_digest, document });
+    let app = Arc::new(App {
+        registry,
+        options,
+        pool,
+        gathering: AtomicUsize::new(0),
+        gates: RwLock::default(),
+        token_digest,
+        document,
+    });
     Router::new()
         .route("/estimate", post(estimate))
         .route("/catalogue", get(catalogue))
@@ -304,6 +314,29 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, bo
     }
 
     let gate = app.gate(&model);
+    // Lookups wait on their sources here, on the async worker, before a
+    // scoring thread is taken; meanwhile the request counts against the
+    // model's queue, so the requests waiting stay bounded.
+    let prepared = if app.registry.looks_up(&model) {
+        if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
+            gate.waiting.fetch_sub(1, Ordering::SeqCst);
+            app.registry.count_rejected("overloaded");
+            return overloaded(
+                &app,
+                format!("model {model} has {} requests waiting; try again later", app.options.queue),
+            );
+        }
+        app.gathering.fetch_add(1, Ordering::SeqCst);
+        let prepared = app.registry.prepare(&request.request(&rows, at)).await;
+        app.gathering.fetch_sub(1, Ordering::SeqCst);
+        gate.waiting.fetch_sub(1, Ordering::SeqCst);
+        match prepared {
+            Ok(p) => Some(p),
+            Err(e) => return answer_error(e),
+        }
+    } else {
+        None
+    };
     let _permit = match gate.permits.try_acquire() {
         Ok(p) => p,
         Err(_) => {
@@ -331,7 +364,12 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, bo
     let call = tokio::task::spawn_blocking(move || {
         let _thread = thread;
         let id = request.id.take();
-        registry.score(&request.request(&rows, at)).map(|a| EstimateAnswer::new(a, id))
+        let request = request.request(&rows, at);
+        match prepared {
+            Some(prepared) => registry.score_prepared(&request, prepared),
+            None => registry.score(&request),
+        }
+        .map(|a| EstimateAnswer::new(a, id))
     });
     match call.await {
         Ok(Ok(answer)) => json(StatusCode::OK, &answer),
@@ -601,6 +639,12 @@ pub(crate) async fn metrics_text(State(app): State<Arc<App>>) -> Response {
             help: "Scoring threads running a sandbox call now.",
             counter: false,
             value: busy as u64,
+        },
+        metrics::SurfaceFamily {
+            name: "serve_gathering",
+            help: "Requests waiting on their feature lookups now, holding no scoring thread.",
+            counter: false,
+            value: app.gathering.load(Ordering::SeqCst) as u64,
         },
     ];
     let text = metrics::render(app.registry.usage(), &app.registry.status(), app.registry.source_usage(), own);

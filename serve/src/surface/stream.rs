@@ -115,20 +115,62 @@ pub(crate) fn answer(
     registry: &Registry,
     bytes: &[u8],
 ) -> (Option<serde_json::Value>, Result<EstimateAnswer, ErrorBody>) {
+    let (id, parsed) = parse(bytes);
+    (id, parsed.and_then(|line| line.answer(registry, None)))
+}
+
+/// A request line read: the request, its rows and its time.
+pub(crate) struct Parsed {
+    line: EstimateRequest,
+    rows: Vec<paddock_host::contract::rows::Row>,
+    at: Option<jiff::Timestamp>,
+}
+
+/// Reads a request line: its `id` (when it gave one, even if the rest is
+/// wrong) and the request, or why it is not one.
+pub(crate) fn parse(bytes: &[u8]) -> (Option<serde_json::Value>, Result<Parsed, ErrorBody>) {
     let mut line: EstimateRequest = match serde_json::from_slice(bytes) {
         Ok(l) => l,
         Err(e) => {
-            // Echo the id if the line is JSON with one, even when the rest is wrong.
             let id = serde_json::from_slice::<serde_json::Value>(bytes).ok().and_then(|v| v.get("id").cloned());
             return (id, Err(ErrorBody::bad_request(format!("not a request line: {e}"))));
         }
     };
     let id = line.id.take();
-    let result = line.take_rows().and_then(|(rows, at)| {
-        // The id is on the output line already, not repeated in the answer.
-        registry.score(&line.request(&rows, at)).map(|a| EstimateAnswer::new(a, None)).map_err(ErrorBody::from_request)
-    });
-    (id, result)
+    (id, line.take_rows().map(|(rows, at)| Parsed { line, rows, at }))
+}
+
+impl Parsed {
+    /// The model asked for.
+    pub(crate) fn model(&self) -> &str {
+        &self.line.model
+    }
+
+    /// Routes the request and gathers its features, awaiting the sources
+    /// ([`Registry::prepare`]).
+    pub(crate) async fn prepare(
+        &self,
+        registry: &Registry,
+    ) -> Result<crate::registry::Prepared, crate::registry::RequestError> {
+        registry.prepare(&self.line.request(&self.rows, self.at)).await
+    }
+
+    /// Scores it (what `prepared` made ready, when given) into an answer
+    /// without the id: the output line carries it.
+    pub(crate) fn answer(
+        &self,
+        registry: &Registry,
+        prepared: Option<Result<crate::registry::Prepared, crate::registry::RequestError>>,
+    ) -> Result<EstimateAnswer, ErrorBody> {
+        let request = self.line.request(&self.rows, self.at);
+        match prepared {
+            None => registry.score(&request),
+            Some(Ok(prepared)) => registry.score_prepared(&request, prepared),
+            Some(Err(e)) => Err(e),
+        }
+        .map(|a| EstimateAnswer::new(a, None))
+        .map_err(ErrorBody::from_request)
+    }
 }
 
 /// Reads one line (without its newline) into `buf`, keeping at most `max`

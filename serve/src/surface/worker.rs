@@ -379,11 +379,20 @@ async fn handle(
     if deliveries > 1 {
         counts.redelivered.fetch_add(1, Ordering::Relaxed);
     }
-    let payload = message.payload.clone();
+    let (id, parsed) = super::stream::parse(&message.payload);
+    // Lookups are awaited here, before a scoring thread is taken.
+    let prepared = match &parsed {
+        Ok(p) if registry.looks_up(p.model()) => Some(p.prepare(registry).await),
+        _ => None,
+    };
     let verdict = {
         let _thread = scoring.clone().acquire_owned().await.expect("the semaphore is never closed");
         let registry = registry.clone();
-        tokio::task::spawn_blocking(move || judge(&registry, &payload, sequence)).await
+        tokio::task::spawn_blocking(move || {
+            let result = parsed.and_then(|p| p.answer(&registry, prepared));
+            judge(id, result, sequence)
+        })
+        .await
     };
     let (event, verdict) = match verdict {
         Ok(v) => v,
@@ -453,9 +462,12 @@ async fn handle(
     }
 }
 
-/// Scores one event: its id, and what to do with it.
-fn judge(registry: &Registry, payload: &[u8], sequence: u64) -> (String, Verdict) {
-    let (id, result) = super::stream::answer(registry, payload);
+/// What to do with one event, given its answer: its id, and the verdict.
+fn judge(
+    id: Option<serde_json::Value>,
+    result: Result<super::wire::EstimateAnswer, ErrorBody>,
+    sequence: u64,
+) -> (String, Verdict) {
     let event = match &id {
         Some(serde_json::Value::String(s)) => s.clone(),
         Some(v) => v.to_string(),
