@@ -74,9 +74,8 @@ pub struct ServeOptions {
     /// Default: the number of cores, so that calls do not take each other's
     /// cores and miss their wall-clock deadlines
     /// ([`Limits::deadline`](paddock_host::Limits::deadline)). Feature
-    /// lookups run on these threads too (they wait on the network while
-    /// holding one): a store whose plan looks features up over the network
-    /// may want more.
+    /// lookups are awaited before a thread is taken: a thread is held only
+    /// while the sandbox runs.
     pub score_threads: usize,
     /// Requests waiting per model beyond those; more get 503. Default 256.
     pub queue: usize,
