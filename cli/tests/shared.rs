@@ -29,10 +29,18 @@ fn ok(out: &Output) -> String {
     String::from_utf8_lossy(&out.stdout).into_owned()
 }
 
-/// A host process whose first line of stdout names its address.
+/// A host process whose first line of stdout names its address; killed
+/// when dropped, so a failing test leaves no host behind.
 struct Host {
     child: Child,
     address: String,
+}
+
+impl Drop for Host {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
 }
 
 fn start(args: &[&str], prefix: &str) -> Host {
@@ -341,6 +349,7 @@ fn a_host_cut_off_from_the_server_serves_what_it_has_and_catches_up_when_the_lin
     let mut first = String::new();
     std::io::BufReader::new(far.stdout.take().unwrap()).read_line(&mut first).unwrap();
     let far_base = first.trim().strip_prefix("listening on ").unwrap().to_owned();
+    let mut far = Host { child: far, address: far_base.clone() };
     let body = r#"{"model": "m", "rows": [{"x": 1}]}"#;
     let far_version = || {
         let answer = cut.ask(&format!("{far_base}/estimate"), Some(body))?;
@@ -392,7 +401,7 @@ fn a_host_cut_off_from_the_server_serves_what_it_has_and_catches_up_when_the_lin
         all_current(&store, 2)
     });
     assert!(terminate(&mut a.child), "the near host stops cleanly");
-    assert!(terminate(&mut far), "the far host stops cleanly");
+    assert!(terminate(&mut far.child), "the far host stops cleanly");
 }
 
 /// A server that asks for a user and password: the credentials come from
