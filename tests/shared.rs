@@ -377,7 +377,10 @@ fn a_python_guest_is_published_once_and_served_by_every_host() {
     let artifact = paddock_tests::foreign_artifact("charge-taper-py");
     assert!(artifact.bytes().len() > 16 << 20, "{} bytes", artifact.bytes().len());
     let wasi = paddock_host::ModelOptions { wasi: Some(paddock_host::WasiPolicy::default()), ..Default::default() };
-    let options = RegistryOptions { model: wasi.clone(), ..RegistryOptions::default() };
+    // One code cache for the publisher and the hosts, as hosts on one
+    // machine may share (the one the other tests' Python loads use).
+    let cache = paddock_tests::root().join("target/paddock/test-code-cache");
+    let options = RegistryOptions { model: wasi.clone(), code_cache_dir: Some(cache), ..RegistryOptions::default() };
     let published = w.rt.block_on(w.store.publish(&w.wasm, artifact.bytes().to_vec(), None, &options, "test")).unwrap();
     assert_eq!(
         (published.passed.model.as_str(), published.passed.version.to_string().as_str()),

@@ -131,7 +131,10 @@ pub fn check_version(
     // The options of the model and version are known only once the contract
     // is read: load under the store-wide ones, then again only if the
     // model's own differ.
-    let (loaded, admission) = admit(runtime, options, None, bytes.clone(), vouch, &options.model)?;
+    // A shared code cache, when one is named: the hosts then find the code
+    // the publisher compiled.
+    let cache = options.code_cache_dir.as_deref().filter(|_| options.code_cache).and_then(|d| CodeCache::open(d).ok());
+    let (loaded, admission) = admit(runtime, options, cache.as_ref(), bytes.clone(), vouch, &options.model)?;
     let contract = loaded.contract();
     let version = Version::parse(&contract.version).map_err(|_| Refusal::Identity {
         name: contract.name.clone(),
@@ -140,7 +143,11 @@ pub fn check_version(
     })?;
     let model = contract.name.clone();
     let chosen = options.model_options(&model, &version);
-    let loaded = if *chosen == options.model { loaded } else { admit(runtime, options, None, bytes, vouch, chosen)?.0 };
+    let loaded = if *chosen == options.model {
+        loaded
+    } else {
+        admit(runtime, options, cache.as_ref(), bytes, vouch, chosen)?.0
+    };
     Ok(Passed { model, version, digest, admission, checks: loaded.carried_checks().cloned() })
 }
 

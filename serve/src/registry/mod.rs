@@ -88,6 +88,11 @@ pub struct RegistryOptions {
     pub state_dir: Option<PathBuf>,
     /// Keep compiled code on disk under the state directory. On by default.
     pub code_cache: bool,
+    /// Where compiled code is kept, when not `STATE/code`: hosts on one
+    /// machine (several servers, a server and its workers, a publisher)
+    /// may share one directory and compile each artifact once. Entries are
+    /// replaced by rename and checked when read, so sharing is safe.
+    pub code_cache_dir: Option<PathBuf>,
     /// The clock for requests that carry no timestamp.
     pub clock: Arc<dyn Clock>,
     /// Shadow requests waiting at most; more are dropped (and counted).
@@ -112,6 +117,7 @@ impl Default for RegistryOptions {
             require_checks: false,
             state_dir: None,
             code_cache: true,
+            code_cache_dir: None,
             clock: Arc::new(SystemClock),
             shadow_queue: 1024,
             usage_flush: Some(Duration::from_secs(10)),
@@ -573,7 +579,11 @@ impl Registry {
             Some(_) => Some(usage_file::StateLock::take(&state_dir)?),
             None => None,
         };
-        let cache = if options.code_cache { Some(CodeCache::open(&state_dir.join("code"))?) } else { None };
+        let cache = match (&options.code_cache_dir, options.code_cache) {
+            (_, false) => None,
+            (Some(dir), true) => Some(CodeCache::open(dir)?),
+            (None, true) => Some(CodeCache::open(&state_dir.join("code"))?),
+        };
         let ledger = ledger::Ledger::default();
         if lock.is_some() {
             usage_file::refuse_foreign(&state_dir, &dir)?;
