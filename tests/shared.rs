@@ -16,7 +16,7 @@ use paddock_serve::registry::RoutesState;
 use paddock_serve::shared::mirror::{Mirror, MirrorOptions};
 use paddock_serve::shared::{Credentials, FileEntry, SharedError, SharedStore, StoreAddress};
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{NatsServer, came_true, line_artifact, wait_until};
+use paddock_tests::{NatsServer, came_true, line_artifact, padded, wait_until};
 
 const LONG: Duration = Duration::from_secs(60);
 const EVERY: Duration = Duration::from_millis(20);
@@ -229,28 +229,6 @@ fn a_version_is_immutable_checked_before_publishing_and_kept_while_routed() {
     // Withdrawn, its version still names its bytes: other bytes stay refused.
     let e = w.publish_bytes(line_artifact("m", "1.2.0", 9.0, 0.0, Some(true))).unwrap_err();
     assert!(matches!(e, SharedError::VersionExists { .. }), "{e}");
-}
-
-/// An artifact with a custom section of `pad` bytes appended (ignored by
-/// every reader): the same model, larger.
-fn padded(mut bytes: Vec<u8>, pad: usize) -> Vec<u8> {
-    let name = b"padding";
-    let mut body = vec![name.len() as u8];
-    body.extend_from_slice(name);
-    body.extend(std::iter::repeat_n(0u8, pad));
-    bytes.push(0); // custom section
-    let mut n = body.len();
-    loop {
-        let byte = (n & 0x7f) as u8;
-        n >>= 7;
-        if n == 0 {
-            bytes.push(byte);
-            break;
-        }
-        bytes.push(byte | 0x80);
-    }
-    bytes.extend(body);
-    bytes
 }
 
 #[test]

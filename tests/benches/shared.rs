@@ -31,30 +31,14 @@ use paddock_serve::registry::Watcher;
 use paddock_serve::shared::mirror::{Mirror, MirrorOptions};
 use paddock_serve::shared::{Credentials, FileEntry, SharedStore, StoreAddress};
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{NatsServer, line_artifact, root, write_atomically};
+use paddock_tests::{NatsServer, line_artifact, padded, root, write_atomically};
 
 /// An artifact of about `size` bytes: the line `y = k·x` as `m` at
 /// `version`, with an ignored custom section making up the rest.
 fn release(version: &str, k: f64, size: usize) -> Vec<u8> {
-    let mut bytes = line_artifact("m", version, k, 0.0, Some(true));
+    let bytes = line_artifact("m", version, k, 0.0, Some(true));
     let pad = size.saturating_sub(bytes.len() + 16);
-    let name = b"padding";
-    let body_len = 1 + name.len() + pad;
-    bytes.push(0);
-    let mut n = body_len;
-    loop {
-        let b = (n & 0x7f) as u8;
-        n >>= 7;
-        if n == 0 {
-            bytes.push(b);
-            break;
-        }
-        bytes.push(b | 0x80);
-    }
-    bytes.push(name.len() as u8);
-    bytes.extend_from_slice(name);
-    bytes.resize(bytes.len() + pad, 0);
-    bytes
+    padded(bytes, pad)
 }
 
 /// The version answering `m` for x = 1, with its answer (which must be k).

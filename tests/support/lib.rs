@@ -533,3 +533,25 @@ fn kill(child: &mut Option<std::process::Child>) {
         let _ = c.wait();
     }
 }
+
+/// An artifact with a custom section of `pad` bytes appended (ignored by
+/// every reader): the same model, larger.
+pub fn padded(mut bytes: Vec<u8>, pad: usize) -> Vec<u8> {
+    let name = b"padding";
+    let mut body = vec![name.len() as u8];
+    body.extend_from_slice(name);
+    body.extend(std::iter::repeat_n(0u8, pad));
+    bytes.push(0); // custom section
+    let mut n = body.len();
+    loop {
+        let byte = (n & 0x7f) as u8;
+        n >>= 7;
+        if n == 0 {
+            bytes.push(byte);
+            break;
+        }
+        bytes.push(byte | 0x80);
+    }
+    bytes.extend(body);
+    bytes
+}

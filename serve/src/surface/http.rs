@@ -194,6 +194,37 @@ fn error(status: StatusCode, body: ErrorBody) -> Response {
     json(status, &body)
 }
 
+/// One count held (a place in a model's queue, a request gathering),
+/// given back when dropped: also when the client hangs up mid-wait and
+/// the request's future is dropped.
+struct Held<'a>(&'a AtomicUsize);
+
+impl<'a> Held<'a> {
+    fn take(count: &'a AtomicUsize) -> Held<'a> {
+        count.fetch_add(1, Ordering::SeqCst);
+        Held(count)
+    }
+}
+
+impl Drop for Held<'_> {
+    fn drop(&mut self) {
+        self.0.fetch_sub(1, Ordering::SeqCst);
+    }
+}
+
+/// A place in `model`'s queue, or the 503 when it is full.
+fn queue<'a>(app: &App, gate: &'a Gate, model: &str) -> Result<Held<'a>, Response> {
+    if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
+        gate.waiting.fetch_sub(1, Ordering::SeqCst);
+        app.registry.count_rejected("overloaded");
+        return Err(overloaded(
+            app,
+            format!("model {model} has {} requests waiting; try again later", app.options.queue),
+        ));
+    }
+    Ok(Held(&gate.waiting))
+}
+
 fn overloaded(app: &App, message: String) -> Response {
     let mut r = error(StatusCode::SERVICE_UNAVAILABLE, ErrorBody::new("overloaded", message));
     r.headers_mut().insert(header::RETRY_AFTER, HeaderValue::from(app.options.retry_after_secs));
@@ -317,18 +348,13 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, bo
     // scoring thread is taken; meanwhile the request counts against the
     // model's queue, so the requests waiting stay bounded.
     let prepared = if app.registry.looks_up(&model) {
-        if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
-            gate.waiting.fetch_sub(1, Ordering::SeqCst);
-            app.registry.count_rejected("overloaded");
-            return overloaded(
-                &app,
-                format!("model {model} has {} requests waiting; try again later", app.options.queue),
-            );
-        }
-        app.gathering.fetch_add(1, Ordering::SeqCst);
+        let queued = match queue(&app, &gate, &model) {
+            Ok(q) => q,
+            Err(r) => return r,
+        };
+        let gathering = Held::take(&app.gathering);
         let prepared = app.registry.prepare(&request.request(&rows, at)).await;
-        app.gathering.fetch_sub(1, Ordering::SeqCst);
-        gate.waiting.fetch_sub(1, Ordering::SeqCst);
+        drop((gathering, queued));
         match prepared {
             Ok(p) => Some(p),
             Err(e) => return answer_error(e),
@@ -339,16 +365,12 @@ pub(crate) async fn estimate(State(app): State<Arc<App>>, headers: HeaderMap, bo
     let _permit = match gate.permits.try_acquire() {
         Ok(p) => p,
         Err(_) => {
-            if gate.waiting.fetch_add(1, Ordering::SeqCst) >= app.options.queue {
-                gate.waiting.fetch_sub(1, Ordering::SeqCst);
-                app.registry.count_rejected("overloaded");
-                return overloaded(
-                    &app,
-                    format!("model {model} has {} requests waiting; try again later", app.options.queue),
-                );
-            }
+            let queued = match queue(&app, &gate, &model) {
+                Ok(q) => q,
+                Err(r) => return r,
+            };
             let permit = gate.permits.acquire().await;
-            gate.waiting.fetch_sub(1, Ordering::SeqCst);
+            drop(queued);
             match permit {
                 Ok(p) => p,
                 Err(_) => return overloaded(&app, "the server is shutting down".into()),
