@@ -89,6 +89,16 @@ fn write(dir: &Path, name: &str, bytes: &[u8]) -> PathBuf {
     p
 }
 
+/// Publishes `m` 1.0.0 (y = x) to `store` and routes it by default;
+/// returns 2.0.0 (y = 2x), written beside it for the test to publish.
+fn first_release(d: &Path, store: &str) -> PathBuf {
+    let v1 = write(d, "m-1.0.0.wasm", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
+    ok(&paddock(&["publish", v1.to_str().unwrap(), "--store", store]));
+    let routes = write(d, "routes.toml", b"[models.m]\ndefault = \"1.0.0\"\n");
+    ok(&paddock(&["revise", "routes", routes.to_str().unwrap(), "--store", store]));
+    write(d, "m-2.0.0.wasm", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)))
+}
+
 /// Every host of the list at the store's latest revision, none flagged.
 fn all_current(store: &str, hosts: usize) -> bool {
     let out = paddock(&["hosts", "--store", store, "--json"]);
@@ -107,11 +117,7 @@ fn three_servers_and_two_workers_follow_one_store_through_a_release_and_a_rollba
     let store = format!("{}/ev", nats.url());
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    let v1 = write(d, "m-1.0.0.wasm", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
-    let v2 = write(d, "m-2.0.0.wasm", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
-    ok(&paddock(&["publish", v1.to_str().unwrap(), "--store", &store]));
-    let routes = write(d, "routes.toml", b"[models.m]\ndefault = \"1.0.0\"\n");
-    ok(&paddock(&["revise", "routes", routes.to_str().unwrap(), "--store", &store]));
+    let v2 = first_release(d, &store);
 
     let state = |name: &str| d.join(name).to_str().unwrap().to_owned();
     let mut servers: Vec<Host> = (0..3)
@@ -326,11 +332,7 @@ fn a_host_cut_off_from_the_server_serves_what_it_has_and_catches_up_when_the_lin
     let store = format!("{}/ev", nats.url());
     let dir = tempfile::tempdir().unwrap();
     let d = dir.path();
-    let v1 = write(d, "m-1.0.0.wasm", &line_artifact("m", "1.0.0", 1.0, 0.0, Some(true)));
-    let v2 = write(d, "m-2.0.0.wasm", &line_artifact("m", "2.0.0", 2.0, 0.0, Some(true)));
-    ok(&paddock(&["publish", v1.to_str().unwrap(), "--store", &store]));
-    let routes = write(d, "routes.toml", b"[models.m]\ndefault = \"1.0.0\"\n");
-    ok(&paddock(&["revise", "routes", routes.to_str().unwrap(), "--store", &store]));
+    let v2 = first_release(d, &store);
 
     let state = |name: &str| d.join(name).to_str().unwrap().to_owned();
     let (sa, sb) = (state("a"), state("b"));
