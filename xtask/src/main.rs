@@ -124,15 +124,13 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     deps(root)?;
     steps.done("fmt, library dependencies, module cycles");
     // The guests build in a target directory of their own, much of it one
-    // long single-threaded link (the ONNX evaluator): it runs beside clippy.
+    // long single-threaded link (the ONNX evaluator): it runs beside the
+    // host's build. Clippy is not a step of its own: every native build of
+    // the workspace's crates goes through clippy's driver (see
+    // [`cargo_linted`]), so lints are checked while the code compiles.
     let guests = build_guests(root, &GUESTS)?;
-    let mut clippy = cargo(root);
-    clippy.args(["clippy", "--quiet", "--workspace", "--all-targets", "--exclude", "paddock-model-onnx"]);
-    clippy.args(["--", "-D", "warnings"]);
-    run(clippy)?;
-    steps.done("clippy (the guests building beside it)");
     let tools = finish_build(root, guests)?;
-    steps.done("build: the rest of the guests, paddock, demo training and store");
+    steps.done("build, linted by clippy: guests, paddock, demo training and store");
     let pmml_python = packages.finish()?;
     steps.done("PyPI and npm packages (waited for)");
     foreign_guests(root, &tools)?;
@@ -162,7 +160,7 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     steps.done("test binaries");
     // The crates' doc examples (the embedder's paths in the crate docs)
     // compile and run; built with the workspace's features, as the tests.
-    let mut doc = cargo(root);
+    let mut doc = cargo_linted(root);
     doc.args(["test", "--quiet", "--doc", "--workspace", "--exclude", "paddock-model-onnx"]);
     run(doc)?;
     steps.done("doc examples");
@@ -170,7 +168,7 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     // workspace, as the tests were, so that they share every dependency
     // the tests built (`cargo run -p paddock-examples` alone resolves other
     // features and rebuilt wasmtime: 171 s on a clean clone).
-    let mut build = cargo(root);
+    let mut build = cargo_linted(root);
     build.args(["build", "--quiet", "--workspace", "--exclude", "paddock-model-onnx", "--examples"]);
     run(build)?;
     let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);
@@ -224,6 +222,22 @@ impl Steps {
 fn cargo(root: &Path) -> Command {
     let mut cmd = Command::new(std::env::var("CARGO").unwrap_or_else(|_| "cargo".into()));
     cmd.current_dir(root);
+    cmd
+}
+
+/// `cargo` for a native build of the workspace's own crates, compiled by
+/// clippy's driver with warnings denied (what `cargo clippy -- -D warnings`
+/// sets up, on a build that also generates code): the lints cost a little
+/// on top of the build instead of a second, check-only build of every
+/// dependency (about ten minutes of CI on two cores). Dependencies are
+/// compiled by rustc as usual. Every native build xtask starts goes through
+/// here, so that they share their artifacts; a plain `cargo build` or
+/// `cargo nextest` afterwards recompiles the workspace's crates (not the
+/// dependencies) once.
+fn cargo_linted(root: &Path) -> Command {
+    let mut cmd = cargo(root);
+    cmd.env("RUSTC_WORKSPACE_WRAPPER", "clippy-driver");
+    cmd.env("CLIPPY_ARGS", "-D__CLIPPY_HACKERY__warnings__CLIPPY_HACKERY__");
     cmd
 }
 
@@ -332,7 +346,7 @@ struct Tools {
 }
 
 fn tools(root: &Path) -> Result<Tools> {
-    let mut cmd = cargo(root);
+    let mut cmd = cargo_linted(root);
     cmd.args(["build", "--quiet", "-p", "paddock-cli", "-p", "paddock-train-demo", "--bins"]);
     run(cmd)?;
     let target = std::env::var_os("CARGO_TARGET_DIR").map_or_else(|| root.join("target"), PathBuf::from);

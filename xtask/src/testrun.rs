@@ -12,7 +12,7 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result, bail};
 
-use crate::cargo;
+use crate::cargo_linted;
 
 /// One test binary, as cargo built it.
 struct Binary {
@@ -25,12 +25,14 @@ struct Binary {
 
 /// Builds the test binaries with `cargo test --no-run ARGS` and returns them.
 fn build(root: &Path, args: &[&str]) -> Result<Vec<Binary>> {
-    let mut cmd = cargo(root);
+    let mut cmd = cargo_linted(root);
     cmd.args(["test", "--no-run", "--message-format=json-render-diagnostics"]).args(args);
-    cmd.stdout(Stdio::piped());
-    let out = cmd.output().with_context(|| format!("starting {cmd:?}"))?;
+    // Only stdout is taken (the JSON messages): cargo's progress and its
+    // rendered errors go to stderr, where CI's log shows them.
+    cmd.stdout(Stdio::piped()).stderr(Stdio::inherit());
+    let out = cmd.spawn().and_then(|child| child.wait_with_output()).with_context(|| format!("starting {cmd:?}"))?;
     if !out.status.success() {
-        bail!("{cmd:?} failed with {}", out.status);
+        bail!("{cmd:?} failed with {} (cargo's errors are printed above)", out.status);
     }
     let mut binaries = Vec::new();
     for line in String::from_utf8_lossy(&out.stdout).lines() {
