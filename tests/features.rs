@@ -205,3 +205,124 @@ fn the_stream_scores_from_keys() {
     let problem = second["problems"][0].to_string();
     assert!(problem.contains("nothing in source `sites` under key `nowhere`"), "{}", lines[1]);
 }
+
+/// The reference cells (tests/cells/export.py, from the H3 library's own
+/// Python binding, PyPI `h3` 4.5.0; `cargo xtask test` writes them).
+fn reference_cells() -> serde_json::Value {
+    let path = paddock_tests::root().join("target/paddock/cells/cells.json");
+    let text = std::fs::read_to_string(&path).unwrap_or_else(|e| {
+        panic!("{}: {e}: `python3 tests/cells/export.py target/paddock/cells` writes it (needs h3)", path.display())
+    });
+    serde_json::from_str(&text).unwrap()
+}
+
+/// A plan whose feature `fR` is keyed by the cell at resolution R of the
+/// request's `lat` and `lon`, for every resolution.
+fn cell_plan() -> paddock_serve::features::Plan {
+    let mut text = String::from(
+        "[sources.cells]\ntable = \"cells.csv\"\nkey = \"cell\"\n[models.m]\nkeys = [\"lat\", \"lon\"]\n[models.m.features]\n",
+    );
+    for r in 0..16 {
+        text.push_str(&format!("f{r} = {{ source = \"cells\", key = \"{{h3(lat, lon, {r})}}\", field = \"x\" }}\n"));
+    }
+    paddock_serve::features::Plan::parse(&text, "features.toml", Path::new(".")).unwrap()
+}
+
+fn position(lat: f64, lon: f64) -> std::collections::BTreeMap<String, String> {
+    // Rust writes the shortest text that reads back to the same double.
+    [("lat".to_owned(), lat.to_string()), ("lon".to_owned(), lon.to_string())].into()
+}
+
+/// Keys computed from a position are the H3 library's cells: every
+/// resolution, at the poles, on both sides of the antimeridian, at and
+/// beside every pentagon's centre, and 2 000 positions spread over the
+/// sphere; and the cells within k rings are the library's grid disk.
+#[test]
+fn grid_cells_are_the_h3_librarys() {
+    use paddock_serve::features::Supply;
+    let reference = reference_cells();
+    let plan = cell_plan();
+    let model = &plan.models["m"];
+    let template = |r: usize| match &model.features[&format!("f{r}")] {
+        Supply::Lookup(l) => l.key.clone(),
+        _ => unreachable!(),
+    };
+    let templates: Vec<_> = (0..16).map(template).collect();
+    let cases = reference["cases"].as_array().unwrap();
+    let (mut cells, mut disks) = (0, 0);
+    let mut buf = String::new();
+    for case in cases {
+        let (lat, lon) = (case["lat"].as_f64().unwrap(), case["lon"].as_f64().unwrap());
+        let keys = position(lat, lon);
+        for (r, want) in case["cells"].as_array().unwrap().iter().enumerate() {
+            assert_eq!(templates[r].render(&keys, &mut buf).unwrap(), want.as_str().unwrap(), "({lat}, {lon}) at {r}");
+            cells += 1;
+        }
+        if let Some(disk) = case.get("disk") {
+            let (r, k) = (disk["resolution"].as_u64().unwrap() as usize, disk["k"].as_u64().unwrap() as u32);
+            let mut got = Vec::new();
+            templates[r].render_around(&keys, k, &mut got).unwrap();
+            assert_eq!(got[0], case["cells"][r].as_str().unwrap(), "the cell itself comes first");
+            got.sort();
+            let want: Vec<&str> = disk["cells"].as_array().unwrap().iter().map(|c| c.as_str().unwrap()).collect();
+            assert_eq!(got, want, "({lat}, {lon}) at {r}, {k} rings");
+            disks += 1;
+        }
+    }
+    assert!(cells >= 2000 * 16 && disks >= 50, "{cells} cells, {disks} disks checked");
+}
+
+/// The demo's kind of lookup: a table keyed by cell, read at the cell a
+/// request's position falls in and the ring around it, combined by mean
+/// (the cells and their ring from the H3 library); a position that places
+/// no cell falls back, and says why.
+#[test]
+fn a_lookup_keyed_by_a_cell_reads_the_cells_around_a_position() {
+    let reference = reference_cells();
+    let case =
+        reference["cases"].as_array().unwrap().iter().find(|c| c.get("disk").is_some_and(|d| d["k"] == 1)).unwrap();
+    let r = case["disk"]["resolution"].as_u64().unwrap();
+    let ring: Vec<&str> = case["disk"]["cells"].as_array().unwrap().iter().map(|c| c.as_str().unwrap()).collect();
+    let center = case["cells"][r as usize].as_str().unwrap();
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    write_atomically(
+        &artifact_path(store, "m", &Version::new(1, 0, 0)),
+        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
+    );
+    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    // x = 10 at the centre, 1..6 around it (all but one neighbour: it is missing).
+    let mut table = format!("cell,x\n{center},10\n");
+    let mut around = 0.0;
+    for (i, cell) in ring.iter().filter(|c| **c != center).enumerate().skip(1) {
+        table.push_str(&format!("{cell},{i}\n"));
+        around += i as f64;
+    }
+    write_atomically(&store.join("cells.csv"), table.as_bytes());
+    let plan = format!(
+        "[sources.cells]\ntable = \"cells.csv\"\nkey = \"cell\"\n[models.m]\nkeys = [\"lat\", \"lon\"]\n[models.m.features]\n\
+         x = {{ source = \"cells\", key = \"{{h3(lat, lon, {r})}}\", field = \"x\", around = 1, combine = \"mean\", missing = {{ default = 0.5 }} }}\n"
+    );
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    let reg = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions::default()).unwrap();
+    assert!(matches!(reg.status().features, FeaturesState::Accepted { .. }), "{:?}", reg.status().features);
+    let ask = |lat: &str, lon: &str| {
+        let context: RequestContext = [("lat".to_owned(), lat.to_owned()), ("lon".to_owned(), lon.to_owned())].into();
+        let a = reg.score(&Request::new("m", &context, &[Row::new()]).every_lookup()).unwrap();
+        (a.rows().next().unwrap().unwrap()[0], a.lookups[0][0].clone())
+    };
+    let (lat, lon) = (case["lat"].as_f64().unwrap(), case["lon"].as_f64().unwrap());
+    let (y, fetched) = ask(&lat.to_string(), &lon.to_string());
+    let mean = (10.0 + around) / 6.0;
+    assert_eq!(y, 2.0 * mean + 1.0, "{fetched:?}");
+    assert_eq!((fetched.outcome, fetched.key.as_str()), (Outcome::Found, format!("{center} (and 6 around)").as_str()));
+    // Positions that place nothing: the default, and why.
+    for (lat, lon, why) in [
+        ("91", "0", "h3(lat, lon, R): lat 91 is outside -90 to 90 degrees"),
+        ("10", "east", "h3(lat, lon, R): lon `east` is not a number"),
+    ] {
+        let (y, fetched) = ask(lat, lon);
+        assert_eq!((y, fetched.outcome), (2.0, Outcome::Missing));
+        assert_eq!(fetched.key, format!("(no key: {})", why.replace('R', &r.to_string())));
+    }
+}

@@ -143,13 +143,14 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
         (Path::new("python3"), "tests/sklearn/export.py", "target/paddock/sklearn"),
         (Path::new("python3"), "tests/imports/export.py", "target/paddock/imports"),
         (Path::new("python3"), "tests/tables/export.py", "target/paddock/tables"),
+        (Path::new("python3"), "tests/cells/export.py", "target/paddock/cells"),
         (pmml_python.as_path(), "tests/pmml/export.py", "target/paddock/pmml"),
     ] {
         let mut export = Command::new(python);
         export.arg(root.join(script)).arg(root.join(out));
         run(export)?;
     }
-    steps.done("reference exports (scikit-learn, XGBoost, LightGBM, pyarrow, nyoka)");
+    steps.done("reference exports (scikit-learn, XGBoost, LightGBM, pyarrow, h3, nyoka)");
     // The ONNX evaluator is a guest: built for wasm32 above, and tested
     // through the sandbox (tests/sklearn.rs); compiling tract natively
     // as well would only cost minutes.

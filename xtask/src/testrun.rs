@@ -89,7 +89,7 @@ const ORDER: [&str; 13] = [
     "paddock-tests/imports",
     "paddock-tests/http",
     "paddock-tests/workers",
-    "paddock-tests/redis",
+    "paddock-tests/sources",
 ];
 
 /// Binaries that wait for others: these compile and prime the same Python

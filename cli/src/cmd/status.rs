@@ -148,10 +148,19 @@ pub fn run(args: Args) -> Result<Outcome> {
                 }
                 let rows: Vec<Vec<String>> = servers
                     .iter()
-                    .map(|s| vec![s.source.clone(), s.url.clone(), format!("{} ms", s.budget_ms)])
+                    .map(|s| {
+                        let kind = serde_json::to_value(s.kind).ok().and_then(|k| k.as_str().map(str::to_owned));
+                        vec![
+                            s.source.clone(),
+                            kind.unwrap_or_default(),
+                            s.url.clone(),
+                            format!("{} ms", s.budget_ms),
+                            s.unchecked.as_ref().map_or_else(|| "checked".to_owned(), |u| format!("not checked: {u}")),
+                        ]
+                    })
                     .collect();
                 if !rows.is_empty() {
-                    out!("{}", text_table(&["source", "redis", "budget"], &rows))?;
+                    out!("{}", text_table(&["source", "server", "url", "budget", "query"], &rows))?;
                 }
             }
             FeaturesState::Refused { problems } => {

@@ -119,6 +119,8 @@ pub enum SourceKind {
     Table,
     /// A Redis server.
     Redis,
+    /// A PostgreSQL server.
+    Postgres,
 }
 
 /// A source's counters, read at one moment.

@@ -15,10 +15,14 @@
 //! What it is not: a feature store. It reads what a batch job wrote; it
 //! computes nothing.
 
+pub mod breaker;
+pub mod cell;
 pub mod counts;
 pub mod plan;
+pub mod postgres;
 pub mod problem;
 pub mod redis;
+pub mod remote;
 pub mod table;
 
 use std::collections::BTreeMap;
@@ -28,9 +32,11 @@ use semver::Version;
 use serde::Serialize;
 
 pub use counts::{SourceCounts, SourceKind, SourceUsage};
-pub use plan::{Fallback, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use plan::{Around, Fallback, KeyError, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use postgres::{PostgresSettings, PostgresSource, PostgresSourceError};
 pub use problem::{PlanProblem, Unusable};
-pub use redis::{RedisSource, RedisSourceError, Trouble};
+pub use redis::{RedisSource, RedisSourceError};
+pub use remote::{Got, Trouble};
 pub use table::{Cell, Table, TableError};
 
 use paddock_host::contract::rows::{Row, Value};
@@ -40,8 +46,60 @@ use paddock_host::contract::{Contract, Domain};
 #[derive(Clone, Debug, Default)]
 pub struct Sources {
     tables: BTreeMap<String, Arc<Table>>,
-    redis: BTreeMap<String, Arc<RedisSource>>,
+    servers: BTreeMap<String, Remote>,
     counts: BTreeMap<String, Arc<SourceCounts>>,
+}
+
+/// A source on a server, read over the network within a budget.
+#[derive(Clone, Debug)]
+#[non_exhaustive]
+pub enum Remote {
+    /// A Redis server.
+    Redis(Arc<RedisSource>),
+    /// A PostgreSQL server.
+    Postgres(Arc<PostgresSource>),
+}
+
+impl Remote {
+    /// How long a request may wait for it.
+    pub fn budget(&self) -> std::time::Duration {
+        match self {
+            Remote::Redis(r) => r.budget(),
+            Remote::Postgres(p) => p.budget(),
+        }
+    }
+
+    /// The server's URL without its password.
+    pub fn shown_url(&self) -> String {
+        match self {
+            Remote::Redis(r) => r.shown_url(),
+            Remote::Postgres(p) => p.shown_url(),
+        }
+    }
+
+    /// What kind of source it is.
+    pub fn kind(&self) -> SourceKind {
+        match self {
+            Remote::Redis(_) => SourceKind::Redis,
+            Remote::Postgres(_) => SourceKind::Postgres,
+        }
+    }
+
+    /// Sends a read; a thread waits for its answer.
+    fn send(&self, asks: &remote::Asks) -> remote::Pending {
+        match self {
+            Remote::Redis(r) => r.send(asks),
+            Remote::Postgres(p) => p.send(asks),
+        }
+    }
+
+    /// Sends a read; a task awaits its answer.
+    fn send_async(&self, asks: &remote::Asks) -> remote::Awaited {
+        match self {
+            Remote::Redis(r) => r.send_async(asks),
+            Remote::Postgres(p) => p.send_async(asks),
+        }
+    }
 }
 
 impl Sources {
@@ -66,24 +124,30 @@ impl Sources {
                 },
                 Source::Redis { url, budget, .. } => match RedisSource::new(url, *budget, counts) {
                     Ok(r) => {
-                        sources.redis.insert(name.clone(), Arc::new(r));
+                        sources.servers.insert(name.clone(), Remote::Redis(Arc::new(r)));
                     }
                     Err(error) => problems.push(PlanProblem::Redis { source_name: name.clone(), error }),
+                },
+                Source::Postgres(settings) => match PostgresSource::new(settings.clone(), counts) {
+                    Ok(p) => {
+                        sources.servers.insert(name.clone(), Remote::Postgres(Arc::new(p)));
+                    }
+                    Err(error) => problems.push(PlanProblem::Postgres { source_name: name.clone(), error }),
                 },
             }
         }
         Unusable::unless(problems, sources)
     }
 
-    /// Sources from tables already read and Redis sources already made,
+    /// Sources from tables already read and server sources already made,
     /// by source name, counting into `counts` (by source name; a source
     /// with no counters there gets new ones).
     pub fn from_parts(
         tables: BTreeMap<String, Arc<Table>>,
-        redis: BTreeMap<String, Arc<RedisSource>>,
+        servers: BTreeMap<String, Remote>,
         counts: BTreeMap<String, Arc<SourceCounts>>,
     ) -> Sources {
-        Sources { tables, redis, counts }
+        Sources { tables, servers, counts }
     }
 
     /// The counters of a source, made on first use.
@@ -93,7 +157,7 @@ impl Sources {
 
     /// Every source's counters now.
     pub fn usage(&self) -> Vec<SourceUsage> {
-        let kind = |name: &str| if self.redis.contains_key(name) { SourceKind::Redis } else { SourceKind::Table };
+        let kind = |name: &str| self.servers.get(name).map_or(SourceKind::Table, Remote::kind);
         self.counts.iter().map(|(name, c)| c.report(name, kind(name))).collect()
     }
 
@@ -102,9 +166,9 @@ impl Sources {
         self.tables.get(name)
     }
 
-    /// The Redis source of a name.
-    pub fn redis(&self, name: &str) -> Option<&Arc<RedisSource>> {
-        self.redis.get(name)
+    /// The server source of a name.
+    pub fn server(&self, name: &str) -> Option<&Remote> {
+        self.servers.get(name)
     }
 }
 
@@ -112,7 +176,7 @@ impl Sources {
 #[derive(Clone, Debug)]
 enum Via {
     Table { table: Arc<Table>, column: usize },
-    Redis { source: Arc<RedisSource>, updated: Option<String> },
+    Remote { source: Remote, updated: Option<String> },
 }
 
 /// One looked-up feature, ready.
@@ -232,6 +296,15 @@ pub enum GatherError {
         /// What happened.
         trouble: String,
     },
+    /// A feature whose fallback is to fail is keyed by a position that
+    /// places no cell (missing, not a number, out of range).
+    #[error("feature `{feature}`: {problem}")]
+    NoPlace {
+        /// The feature.
+        feature: String,
+        /// What is wrong with the position.
+        problem: String,
+    },
     /// The source's value does not fit the feature.
     #[error("feature `{feature}`: source `{from}` has `{value}` under key `{key}`, not {wanted}")]
     WrongKind {
@@ -253,9 +326,9 @@ impl GatherError {
     pub fn place(&self) -> (&str, String) {
         match self {
             GatherError::NoKey { key, .. } => (key, "absent".to_owned()),
-            GatherError::Missing { feature, .. } | GatherError::Unavailable { feature, .. } => {
-                (feature, "absent".to_owned())
-            }
+            GatherError::Missing { feature, .. }
+            | GatherError::Unavailable { feature, .. }
+            | GatherError::NoPlace { feature, .. } => (feature, "absent".to_owned()),
             GatherError::WrongKind { feature, value, .. } => (feature, value.clone()),
         }
     }
@@ -299,22 +372,29 @@ impl VersionPlan {
                     continue;
                 };
                 Via::Table { table: Arc::clone(table), column }
-            } else if let Some(redis) = sources.redis(&lookup.source) {
-                if redis.budget() > deadline {
+            } else if let Some(server) = sources.server(&lookup.source) {
+                if server.budget() > deadline {
                     problems.push(PlanProblem::Budget {
                         model: model.to_owned(),
                         version: version.clone(),
                         feature: feature.clone(),
                         source_name: lookup.source.clone(),
-                        budget_ms: redis.budget().as_millis(),
+                        budget_ms: server.budget().as_millis(),
                         deadline_ms: deadline.as_millis(),
                     });
                 }
+                if let Remote::Postgres(p) = server
+                    && let Some(described) = p.described()
+                {
+                    let place = (model, version, feature.as_str(), lookup.source.as_str());
+                    problems.extend(column_problem(place, described, &lookup.field, &f.domain));
+                }
                 let updated = match plan.sources.get(&lookup.source) {
                     Some(Source::Redis { updated, .. }) => updated.clone(),
+                    Some(Source::Postgres(settings)) => settings.updated.clone(),
                     _ => None,
                 };
-                Via::Redis { source: Arc::clone(redis), updated }
+                Via::Remote { source: server.clone(), updated }
             } else {
                 problems.push(PlanProblem::NotLoaded {
                     model: model.to_owned(),
@@ -324,6 +404,21 @@ impl VersionPlan {
                 });
                 continue;
             };
+            if let Some(around) = lookup.around {
+                let fits = match (&f.domain, around.combine) {
+                    (Domain::Real(_), _) => true,
+                    (Domain::Whole(_), combine) => combine != cell::Combine::Mean,
+                    _ => false,
+                };
+                if !fits {
+                    problems.push(PlanProblem::Combine {
+                        model: model.to_owned(),
+                        version: version.clone(),
+                        feature: feature.clone(),
+                        domain: f.domain.to_string(),
+                    });
+                }
+            }
             if let Fallback::Default(v) = &lookup.missing
                 && let Some(problem) = misfit(v, &f.domain)
             {
@@ -388,9 +483,9 @@ impl VersionPlan {
         // Every source asked at once; the request waits for the slowest,
         // each within its own budget.
         let pending: Vec<_> =
-            batches.iter().map(|(name, batch)| self.redis_source(name).map(|s| s.send(&batch.asks))).collect();
+            batches.iter().map(|(name, batch)| self.server(name).map(|s| s.send(&batch.asks))).collect();
         for (batch, pending) in batches.values_mut().zip(pending) {
-            batch.answer = pending.map(redis::Pending::wait);
+            batch.answer = pending.map(remote::Pending::wait);
         }
         self.finish(prepared, &batches, now, report)
     }
@@ -407,7 +502,7 @@ impl VersionPlan {
     ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
         let (prepared, mut batches) = self.reads(context, rows);
         let pending: Vec<_> =
-            batches.iter().map(|(name, batch)| self.redis_source(name).map(|s| s.send_async(&batch.asks))).collect();
+            batches.iter().map(|(name, batch)| self.server(name).map(|s| s.send_async(&batch.asks))).collect();
         // Each was sent already: awaiting them in turn waits for the slowest.
         let mut answers = Vec::with_capacity(pending.len());
         for p in pending {
@@ -422,8 +517,8 @@ impl VersionPlan {
         self.finish(prepared, &batches, now, report)
     }
 
-    /// Each row's keys and the row without them, and one batch of HMGETs
-    /// per Redis source: each key once, with every field any row needs of it.
+    /// Each row's keys and the row without them, and one batch of reads
+    /// per server source: each key once, with every field any row needs of it.
     #[allow(clippy::type_complexity)]
     fn reads<'c>(
         &self,
@@ -433,26 +528,38 @@ impl VersionPlan {
         let prepared: Vec<(std::borrow::Cow<'_, BTreeMap<String, String>>, Row)> =
             rows.iter().map(|r| self.split(context, r)).collect();
         let mut buf = String::new();
+        let mut ring = Vec::new();
         let mut batches: BTreeMap<&str, Batch> = BTreeMap::new();
         for step in &self.steps {
-            let Via::Redis { updated, .. } = &step.via else { continue };
+            let Via::Remote { updated, .. } = &step.via else { continue };
             let batch = batches.entry(step.source.as_str()).or_default();
             for (keys, row) in &prepared {
                 if carries(row, &step.feature) {
                     continue;
                 }
-                if let Ok(key) = step.lookup.key.render(keys, &mut buf) {
-                    batch.ask(key, &step.lookup.field, updated.as_deref());
+                match step.lookup.around {
+                    None => {
+                        if let Ok(key) = step.lookup.key.render(keys, &mut buf) {
+                            batch.ask(key, &step.lookup.field, updated.as_deref());
+                        }
+                    }
+                    Some(around) => {
+                        if step.lookup.key.render_around(keys, around.rings, &mut ring).is_ok() {
+                            for key in &ring {
+                                batch.ask(key, &step.lookup.field, updated.as_deref());
+                            }
+                        }
+                    }
                 }
             }
         }
         (prepared, batches)
     }
 
-    /// The Redis source a step of the plan names `name`.
-    fn redis_source(&self, name: &str) -> Option<&Arc<RedisSource>> {
+    /// The server source a step of the plan names `name`.
+    fn server(&self, name: &str) -> Option<&Remote> {
         self.steps.iter().find_map(|s| match &s.via {
-            Via::Redis { source, .. } if s.source == name => Some(source),
+            Via::Remote { source, .. } if s.source == name => Some(source),
             _ => None,
         })
     }
@@ -517,7 +624,7 @@ impl VersionPlan {
         scratch: &mut Scratch,
         report: Lookups,
     ) -> Result<(Row, Vec<Fetched>), GatherError> {
-        let Scratch { key: buf, probed_key, probed } = scratch;
+        let Scratch { key: buf, probed_key, probed, ring } = scratch;
         *probed = None;
         let mut out = row;
         let mut fetched = Vec::new();
@@ -541,16 +648,24 @@ impl VersionPlan {
             }
             // No key: nothing can be found; the feature falls back, or the
             // row fails naming the key when its fallback is to fail.
+            let mut unrendered = None;
             let key = match step.lookup.key.render(keys, buf) {
                 Ok(key) => Some(key),
-                Err(k) if step.lookup.missing == Fallback::Fail => {
+                Err(e) if step.lookup.missing == Fallback::Fail => {
                     step.counts.lookup(Outcome::Missing);
-                    return Err(GatherError::NoKey { key: k.to_owned(), keys: self.keys.clone() });
+                    return Err(match e {
+                        KeyError::NoKey(key) => GatherError::NoKey { key, keys: self.keys.clone() },
+                        e => GatherError::NoPlace { feature: step.feature.clone(), problem: e.to_string() },
+                    });
                 }
-                Err(_) => None,
+                Err(e) => {
+                    unrendered = Some(e);
+                    None
+                }
             };
             let read = match (key, &step.via) {
                 (None, _) => Read::Found(None),
+                (Some(_), _) if step.lookup.around.is_some() => read_around(step, keys, batches, ring, now)?,
                 (Some(key), Via::Table { table, column }) => {
                     let id = Arc::as_ptr(table);
                     let at = match probed {
@@ -565,10 +680,11 @@ impl VersionPlan {
                     };
                     Read::Found(at.map(|at| table.at(at, *column)))
                 }
-                (Some(key), Via::Redis { .. }) => read_redis(step, key, batches),
+                (Some(key), Via::Remote { .. }) => read_remote(step, key, batches),
             };
             let (outcome, cell, age, trouble) = match read {
                 Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
+                Read::Stale(age) => (Outcome::Stale, None, age, None),
                 Read::Found(found) => {
                     let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
                     let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
@@ -580,7 +696,14 @@ impl VersionPlan {
                 }
             };
             step.counts.lookup(outcome);
-            let shown = || key.map_or_else(|| format!("(no key for {})", step.lookup.key.text()), str::to_owned);
+            let shown = || match (key, &unrendered) {
+                (Some(key), _) if step.lookup.around.is_some() => format!("{key} (and {} around)", ring.len() - 1),
+                (Some(key), _) => key.to_owned(),
+                (None, Some(KeyError::Unplaced { .. })) => {
+                    format!("(no key: {})", unrendered.as_ref().map(ToString::to_string).unwrap_or_default())
+                }
+                (None, _) => format!("(no key for {})", step.lookup.key.text()),
+            };
             let value = match cell {
                 Some(cell) => Some(value_of(cell, step, key.unwrap_or_default())?),
                 None => None,
@@ -624,6 +747,8 @@ struct Scratch {
     /// The key last probed in a table, and which table and row it found.
     probed_key: String,
     probed: Option<(*const Table, Option<usize>)>,
+    /// The keys of the cells around a position.
+    ring: Vec<String>,
 }
 
 /// Whether the row gives the feature itself.
@@ -631,12 +756,12 @@ fn carries(row: &Row, feature: &str) -> bool {
     row.fields().iter().any(|(n, v)| n == feature && *v != Value::Absent)
 }
 
-/// The HMGETs of one Redis source for one request, and their answer.
+/// The reads of one server source for one request, and their answer.
 #[derive(Default)]
 struct Batch {
     index: std::collections::HashMap<String, usize>,
     asks: Vec<(String, Vec<String>)>,
-    answer: Option<Result<Vec<Vec<Option<String>>>, Trouble>>,
+    answer: Option<remote::Outcome>,
 }
 
 impl Batch {
@@ -658,34 +783,103 @@ impl Batch {
     }
 
     /// The value of `field` under `key`, if asked for and answered.
-    fn value(&self, key: &str, field: &str) -> Option<&str> {
+    fn value(&self, key: &str, field: &str) -> Option<&Got> {
         let at = *self.index.get(key)?;
         let position = self.asks[at].1.iter().position(|f| f == field)?;
         let Some(Ok(values)) = &self.answer else { return None };
-        values.get(at)?.get(position)?.as_deref()
+        values.get(at)?.get(position)?.as_ref()
     }
 }
 
 /// What a lookup read: the cell and when its row was computed, or trouble.
 enum Read<'a> {
     Found(Option<(Cell<'a>, Option<f64>)>),
+    /// Values were found, each older than allowed (the age of the youngest).
+    Stale(Option<f64>),
     Unavailable(Trouble),
 }
 
-/// A Redis lookup's value, from its source's answer to the request.
-fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
+/// One key of a step read from its table, or from its server's answer.
+fn read_one<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
+    match &step.via {
+        Via::Table { table, column } => Read::Found(table.row(key).map(|at| table.at(at, *column))),
+        Via::Remote { .. } => read_remote(step, key, batches),
+    }
+}
+
+/// A lookup of the cells around a position: the fresh values found,
+/// combined (numbers only), aged as the oldest of them.
+fn read_around<'a>(
+    step: &'a Step,
+    keys: &BTreeMap<String, String>,
+    batches: &'a BTreeMap<&str, Batch>,
+    ring: &mut Vec<String>,
+    now: f64,
+) -> Result<Read<'a>, GatherError> {
+    let Some(around) = step.lookup.around else { return Ok(Read::Found(None)) };
+    if step.lookup.key.render_around(keys, around.rings, ring).is_err() {
+        return Ok(Read::Found(None));
+    }
+    let mut values = Vec::with_capacity(ring.len());
+    let (mut oldest, mut youngest_stale): (Option<f64>, Option<f64>) = (None, None);
+    for key in ring.iter() {
+        let (cell, updated) = match read_one(step, key, batches) {
+            Read::Unavailable(t) => return Ok(Read::Unavailable(t)),
+            Read::Found(Some(found)) => found,
+            Read::Found(None) | Read::Stale(_) => continue,
+        };
+        let age = updated.map(|t| now - t);
+        if matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max) {
+            youngest_stale = match (youngest_stale, age) {
+                (Some(y), Some(a)) => Some(y.min(a)),
+                (y, a) => y.or(a),
+            };
+            continue;
+        }
+        let number = match cell {
+            Cell::Absent => continue,
+            Cell::Number(n) => n,
+            Cell::Text(t) => t.parse::<f64>().map_err(|_| GatherError::WrongKind {
+                feature: step.feature.clone(),
+                from: step.source.clone(),
+                key: key.clone(),
+                value: t.to_owned(),
+                wanted: "a number",
+            })?,
+        };
+        values.push(number);
+        oldest = match (oldest, age) {
+            (Some(o), Some(a)) => Some(o.max(a)),
+            (o, a) => o.or(a),
+        };
+    }
+    Ok(match around.combine.apply(&values) {
+        Some(v) => Read::Found(Some((Cell::Number(v), oldest.map(|a| now - a)))),
+        None if youngest_stale.is_some() => Read::Stale(youngest_stale),
+        None => Read::Found(None),
+    })
+}
+
+/// A server lookup's value, from its source's answer to the request.
+fn read_remote<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>) -> Read<'a> {
     match &step.via {
         Via::Table { .. } => Read::Found(None),
-        Via::Redis { updated, .. } => {
+        Via::Remote { updated, .. } => {
             let Some(batch) = batches.get(step.source.as_str()) else { return Read::Found(None) };
             if let Some(Err(t)) = &batch.answer {
                 return Read::Unavailable(t.clone());
             }
-            let cell = batch.value(key, &step.lookup.field).map_or(Cell::Absent, Cell::Text);
-            let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|t| {
-                t.parse::<f64>()
+            let cell = match batch.value(key, &step.lookup.field) {
+                Some(Got::Number(n)) => Cell::Number(*n),
+                Some(Got::Text(t)) => Cell::Text(t),
+                None => Cell::Absent,
+            };
+            let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|got| match got {
+                Got::Number(n) => Some(*n),
+                Got::Text(t) => t
+                    .parse::<f64>()
                     .ok()
-                    .or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
+                    .or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0)),
             });
             // A key with none of the fields asked is not there.
             let present = batch.index.get(key).is_some_and(|&at| match &batch.answer {
@@ -695,6 +889,35 @@ fn read_redis<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>)
             Read::Found(present.then_some((cell, when)))
         }
     }
+}
+
+/// A PostgreSQL lookup's column, held to the query's description: it is
+/// returned, and of a type that holds the feature.
+fn column_problem(
+    (model, version, feature, source): (&str, &Version, &str, &str),
+    described: &postgres::Described,
+    column: &str,
+    domain: &Domain,
+) -> Option<PlanProblem> {
+    let Some(ty) = described.column(column) else {
+        return Some(PlanProblem::NoColumn {
+            model: model.to_owned(),
+            version: version.clone(),
+            feature: feature.to_owned(),
+            source_name: source.to_owned(),
+            column: column.to_owned(),
+            columns: described.names().map(str::to_owned).collect(),
+        });
+    };
+    postgres::misfit(ty, domain).map(|wanted| PlanProblem::ColumnType {
+        model: model.to_owned(),
+        version: version.clone(),
+        feature: feature.to_owned(),
+        source_name: source.to_owned(),
+        column: column.to_owned(),
+        type_name: ty.name().to_owned(),
+        wanted,
+    })
 }
 
 /// Why a default does not fit a feature's domain, if it does not.

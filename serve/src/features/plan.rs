@@ -6,6 +6,15 @@
 //! budget_ms = 5                     # how long a request waits for it (default 10)
 //! updated = "updated_at"            # optional: the field saying when the hash was computed
 //!
+//! [sources.stats]                   # a PostgreSQL table or view: one query, every key at once
+//! postgres = "postgresql://paddock@db.example/features?sslmode=require"
+//! query = "SELECT site, occupancy, updated_at FROM site_stats WHERE site = ANY($1)"
+//! key = "site"                      # the column each row's key is in
+//! updated = "updated_at"            # optional: a timestamp column
+//! budget_ms = 10                    # as for Redis
+//! connections = 4                   # the pool's size (default 4)
+//! password_env = "STATS_PASSWORD"   # optional: where the password is, if not in the URL (default PGPASSWORD)
+//!
 //! [sources.sites]                   # an embedded table a batch job writes
 //! table = "tables/sites.csv"        # CSV or NDJSON; relative to the file
 //! key = "site"                      # the column rows are found by
@@ -41,6 +50,8 @@ use serde::Deserialize;
 use paddock_host::contract::Contract;
 use paddock_host::contract::rows::Value;
 
+use super::cell::{self, CellKey, Combine, Unplaced};
+use super::postgres::PostgresSettings;
 use super::problem::PlanProblem;
 
 /// A parsed features file.
@@ -74,6 +85,8 @@ pub enum Source {
         /// The hash field saying when it was computed (RFC 3339 or Unix seconds).
         updated: Option<String>,
     },
+    /// A PostgreSQL server, read with one query per request.
+    Postgres(PostgresSettings),
 }
 
 /// One model's plan.
@@ -117,6 +130,18 @@ pub struct Lookup {
     pub max_age: Option<f64>,
     /// What a missing or stale value becomes.
     pub missing: Fallback,
+    /// For a key with a grid cell: the cells around it read too, and how
+    /// their values combine.
+    pub around: Option<Around>,
+}
+
+/// A lookup of a cell and the cells within some rings of it.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Around {
+    /// How many rings (1 reads 7 cells, 2 reads 19).
+    pub rings: u32,
+    /// How the values found combine.
+    pub combine: Combine,
 }
 
 /// What a missing or stale value becomes.
@@ -142,6 +167,24 @@ pub struct Template {
 enum Part {
     Text(String),
     Key(String),
+    Cell(CellKey),
+}
+
+/// Why a template made no key for a request.
+#[derive(Clone, Debug, PartialEq, thiserror::Error)]
+#[non_exhaustive]
+pub enum KeyError {
+    /// The request lacks a key the template uses.
+    #[error("no key `{0}`")]
+    NoKey(String),
+    /// The position of a cell hole placed no cell.
+    #[error("{hole}: {why}")]
+    Unplaced {
+        /// The hole, as written (`h3(lat, lon, 8)`).
+        hole: String,
+        /// Why.
+        why: Unplaced,
+    },
 }
 
 impl Template {
@@ -154,13 +197,16 @@ impl Template {
             }
             let close = rest[open..].find('}').ok_or_else(|| format!("key `{text}`: a `{{` with no `}}`"))? + open;
             let name = &rest[open + 1..close];
-            if !keys.iter().any(|k| k == name) {
+            if let Some(args) = name.strip_prefix("h3(").and_then(|a| a.strip_suffix(')')) {
+                parts.push(Part::Cell(CellKey::parse(args, keys).map_err(|e| format!("key `{text}`: {e}"))?));
+            } else if keys.iter().any(|k| k == name) {
+                parts.push(Part::Key(name.to_owned()));
+            } else {
                 return Err(format!(
-                    "key `{text}` uses `{{{name}}}`, which is not one of the model's keys ({})",
+                    "key `{text}` uses `{{{name}}}`, which is not one of the model's keys ({}) nor a cell `{{h3(LAT, LON, RESOLUTION)}}`",
                     keys.join(", ")
                 ));
             }
-            parts.push(Part::Key(name.to_owned()));
             rest = &rest[close + 1..];
         }
         if rest.contains('}') {
@@ -169,10 +215,65 @@ impl Template {
         if !rest.is_empty() {
             parts.push(Part::Text(rest.to_owned()));
         }
-        if !parts.iter().any(|p| matches!(p, Part::Key(_))) {
+        if !parts.iter().any(|p| matches!(p, Part::Key(_) | Part::Cell(_))) {
             return Err(format!("key `{text}` uses none of the model's keys: every request would read one row"));
         }
+        if parts.iter().filter(|p| matches!(p, Part::Cell(_))).count() > 1 {
+            return Err(format!("key `{text}`: one cell per key"));
+        }
         Ok(Template { text: text.to_owned(), parts })
+    }
+
+    /// Whether the template has a cell hole.
+    pub fn has_cell(&self) -> bool {
+        self.parts.iter().any(|p| matches!(p, Part::Cell(_)))
+    }
+
+    /// The keys of the cell a request's position falls in and of every
+    /// cell within `rings` of it (the cell first), into `out`; with no
+    /// cell hole, the one key.
+    ///
+    /// # Errors
+    /// [`KeyError`]: a key missing, or a position that places no cell.
+    pub fn render_around(
+        &self,
+        keys: &BTreeMap<String, String>,
+        rings: u32,
+        out: &mut Vec<String>,
+    ) -> Result<(), KeyError> {
+        out.clear();
+        let Some(hole) = self.parts.iter().find_map(|p| match p {
+            Part::Cell(c) => Some(c),
+            _ => None,
+        }) else {
+            let mut buf = String::new();
+            out.push(self.render(keys, &mut buf)?.to_owned());
+            return Ok(());
+        };
+        let center = hole.cell(keys).map_err(|why| KeyError::Unplaced { hole: hole.text(), why })?;
+        for cell in cell::around(center, rings) {
+            out.push(self.write(keys, Some(cell))?);
+        }
+        Ok(())
+    }
+
+    /// The template written out, the cell hole (if any) as `cell`.
+    fn write(&self, keys: &BTreeMap<String, String>, cell: Option<h3o::CellIndex>) -> Result<String, KeyError> {
+        let mut text = String::new();
+        for p in &self.parts {
+            match p {
+                Part::Text(t) => text.push_str(t),
+                Part::Key(k) => text.push_str(keys.get(k).ok_or_else(|| KeyError::NoKey(k.clone()))?),
+                Part::Cell(c) => {
+                    let cell = match cell {
+                        Some(cell) => cell,
+                        None => c.cell(keys).map_err(|why| KeyError::Unplaced { hole: c.text(), why })?,
+                    };
+                    text.push_str(&cell.to_string());
+                }
+            }
+        }
+        Ok(text)
     }
 
     /// The template as written (`ev:{vehicle}`).
@@ -181,20 +282,30 @@ impl Template {
     }
 
     /// The key for a request's keys: the key itself when the template is
-    /// just `{key}` (no allocation), else written into `buf`. `None` when
-    /// the request lacks a key the template uses (the key's name).
-    pub fn render<'a>(&self, keys: &'a BTreeMap<String, String>, buf: &'a mut String) -> Result<&'a str, &str> {
-        if let [Part::Key(k)] = &self.parts[..] {
-            return keys.get(k).map(String::as_str).ok_or(k.as_str());
-        }
-        buf.clear();
-        for p in &self.parts {
-            match p {
-                Part::Text(t) => buf.push_str(t),
-                Part::Key(k) => buf.push_str(keys.get(k).ok_or(k.as_str())?),
+    /// just `{key}` (no allocation), else written into `buf`.
+    ///
+    /// # Errors
+    /// [`KeyError`]: the request lacks a key the template uses, or its
+    /// position places no cell.
+    pub fn render<'a>(&self, keys: &'a BTreeMap<String, String>, buf: &'a mut String) -> Result<&'a str, KeyError> {
+        match &self.parts[..] {
+            [Part::Key(k)] => keys.get(k).map(String::as_str).ok_or_else(|| KeyError::NoKey(k.clone())),
+            parts if !parts.iter().any(|p| matches!(p, Part::Cell(_))) => {
+                buf.clear();
+                for p in parts {
+                    match p {
+                        Part::Text(t) => buf.push_str(t),
+                        Part::Key(k) => buf.push_str(keys.get(k).ok_or_else(|| KeyError::NoKey(k.clone()))?),
+                        Part::Cell(_) => {}
+                    }
+                }
+                Ok(buf.as_str())
+            }
+            _ => {
+                *buf = self.write(keys, None)?;
+                Ok(buf.as_str())
             }
         }
-        Ok(buf.as_str())
     }
 }
 
@@ -224,8 +335,60 @@ struct RawSource {
     table: Option<PathBuf>,
     key: Option<String>,
     redis: Option<String>,
+    postgres: Option<String>,
+    query: Option<String>,
+    connections: Option<usize>,
+    password_env: Option<String>,
     budget_ms: Option<u64>,
     updated: Option<String>,
+}
+
+/// A Redis or PostgreSQL source's budget, in milliseconds.
+fn budget(name: &str, ms: Option<u64>) -> Result<std::time::Duration, String> {
+    match ms.unwrap_or(10) {
+        ms @ 1..=60_000 => Ok(std::time::Duration::from_millis(ms)),
+        ms => Err(format!("sources.{name}: budget_ms = {ms}: give 1 to 60000")),
+    }
+}
+
+impl RawSource {
+    /// A PostgreSQL source's settings, or what is wrong with them.
+    fn postgres(self, name: &str, url: String) -> Result<Source, Vec<String>> {
+        let mut problems = Vec::new();
+        if self.table.is_some() || self.redis.is_some() {
+            problems.push(format!("sources.{name}: one of `table`, `redis` or `postgres`, not several"));
+        }
+        let query = self.query.unwrap_or_else(|| {
+            problems.push(format!(
+                "sources.{name}: no `query` (the SELECT that reads every key at once, e.g. `... WHERE site = ANY($1)`)"
+            ));
+            String::new()
+        });
+        let key = self.key.unwrap_or_else(|| {
+            problems.push(format!("sources.{name}: no `key` (the column the query returns each row's key in)"));
+            String::new()
+        });
+        let connections = match self.connections.unwrap_or(4) {
+            n @ 1..=64 => n,
+            n => {
+                problems.push(format!("sources.{name}: connections = {n}: give 1 to 64"));
+                1
+            }
+        };
+        let budget = budget(name, self.budget_ms).map_err(|e| problems.push(e)).unwrap_or_default();
+        if !problems.is_empty() {
+            return Err(problems);
+        }
+        Ok(Source::Postgres(PostgresSettings {
+            url,
+            query,
+            key,
+            updated: self.updated,
+            budget,
+            connections,
+            password_variable: self.password_env,
+        }))
+    }
 }
 
 #[derive(Deserialize)]
@@ -260,6 +423,28 @@ struct RawLookup {
     field: String,
     max_age: Option<String>,
     missing: Option<RawFallback>,
+    around: Option<u32>,
+    combine: Option<String>,
+}
+
+/// The most rings a lookup may read around a cell (4 rings: 61 cells).
+const MAX_RINGS: u32 = 4;
+
+/// A lookup's `around` and `combine`, or what is wrong with them.
+fn around(l: &RawLookup, key: Option<&Template>) -> Result<Option<Around>, String> {
+    let combine = l.combine.as_deref().map(Combine::parse).transpose()?;
+    match (l.around, combine) {
+        (None, None) => Ok(None),
+        (None, Some(_)) => Err("`combine` needs `around` (the rings of cells around the position to read)".into()),
+        (Some(_), None) => Err("`around` needs `combine` (\"mean\", \"max\", \"min\" or \"sum\")".into()),
+        (Some(rings), Some(_)) if !(1..=MAX_RINGS).contains(&rings) => {
+            Err(format!("around = {rings}: give 1 to {MAX_RINGS} rings"))
+        }
+        (Some(_), Some(_)) if key.is_some_and(|k| !k.has_cell()) => {
+            Err("`around` reads the cells around a position: the key needs a cell, as in `{h3(lat, lon, 8)}`".into())
+        }
+        (Some(rings), Some(combine)) => Ok(Some(Around { rings, combine })),
+    }
 }
 
 #[derive(Deserialize)]
@@ -297,23 +482,33 @@ impl Plan {
         let mut problems = Vec::new();
         let mut sources = BTreeMap::new();
         let declared: Vec<String> = raw.sources.keys().cloned().collect();
-        for (name, s) in raw.sources {
+        for (name, mut s) in raw.sources {
+            if let Some(url) = s.postgres.take() {
+                match s.postgres(&name, url) {
+                    Ok(source) => drop(sources.insert(name, source)),
+                    Err(found) => problems.extend(found),
+                }
+                continue;
+            }
+            if s.query.is_some() || s.connections.is_some() || s.password_env.is_some() {
+                problems.push(format!(
+                    "sources.{name}: `query`, `connections` and `password_env` belong to a `postgres` source"
+                ));
+            }
             match (s.table, s.key, s.redis) {
-                (Some(_), _, Some(_)) => problems.push(format!("sources.{name}: `table` or `redis`, not both")),
-                (None, _, Some(url)) => match s.budget_ms.unwrap_or(10) {
-                    ms @ 1..=60_000 => {
-                        sources.insert(
-                            name,
-                            Source::Redis { url, budget: std::time::Duration::from_millis(ms), updated: s.updated },
-                        );
-                    }
-                    ms => problems.push(format!("sources.{name}: budget_ms = {ms}: give 1 to 60000")),
+                (Some(_), _, Some(_)) => {
+                    problems.push(format!("sources.{name}: one of `table`, `redis` or `postgres`, not several"))
+                }
+                (None, _, Some(url)) => match budget(&name, s.budget_ms) {
+                    Ok(budget) => drop(sources.insert(name, Source::Redis { url, budget, updated: s.updated })),
+                    Err(e) => problems.push(e),
                 },
                 (Some(path), Some(key), None) => {
                     sources.insert(name, Source::Table { path: dir.join(path), key, updated: s.updated });
                 }
-                (None, _, None) => problems
-                    .push(format!("sources.{name}: no `table` (the file to read) or `redis` (the server's URL)")),
+                (None, _, None) => problems.push(format!(
+                    "sources.{name}: no `table` (the file to read), `redis` or `postgres` (the server's URL)"
+                )),
                 (Some(_), None, None) => {
                     problems.push(format!("sources.{name}: no `key` (the column rows are found by)"))
                 }
@@ -340,6 +535,7 @@ impl Plan {
                             let key = Template::parse(&l.key, &m.keys)
                                 .map_err(|e| problems.push(format!("{place}: {e}")))
                                 .ok();
+                            let ring = around(&l, key.as_ref()).map_err(|e| problems.push(format!("{place}: {e}")));
                             let max_age = l
                                 .max_age
                                 .as_deref()
@@ -372,10 +568,17 @@ impl Plan {
                                     }
                                 },
                             };
-                            if let (Some(key), Some(missing)) = (key, missing) {
+                            if let (Some(key), Some(missing), Ok(around)) = (key, missing, ring) {
                                 features.insert(
                                     feature,
-                                    Supply::Lookup(Lookup { source: l.source, key, field: l.field, max_age, missing }),
+                                    Supply::Lookup(Lookup {
+                                        source: l.source,
+                                        key,
+                                        field: l.field,
+                                        max_age,
+                                        missing,
+                                        around,
+                                    }),
                                 );
                             }
                         }
@@ -502,6 +705,55 @@ charger_kw = "request"
     }
 
     #[test]
+    fn a_postgres_source_and_a_cell_keyed_lookup_read() {
+        let text = "[sources.stats]\npostgres = \"postgresql://u@db/f\"\nquery = \"SELECT site, x FROM t WHERE site = ANY($1)\"\nkey = \"site\"\nconnections = 2\n\
+            [models.m]\nkeys = [\"lat\", \"lon\"]\n[models.m.features]\n\
+            x = { source = \"stats\", key = \"grid:{h3(lat, lon, 7)}\", field = \"x\", around = 2, combine = \"max\" }\n";
+        let plan = Plan::parse(text, "features.toml", Path::new(".")).unwrap();
+        let Source::Postgres(settings) = &plan.sources["stats"] else { panic!("{:?}", plan.sources) };
+        assert_eq!((settings.connections, settings.budget.as_millis(), settings.key.as_str()), (2, 10, "site"));
+        let Supply::Lookup(x) = &plan.models["m"].features["x"] else { panic!() };
+        assert_eq!(x.around, Some(Around { rings: 2, combine: Combine::Max }));
+        let keys: BTreeMap<String, String> = [("lat".into(), "48.85".into()), ("lon".into(), "2.35".into())].into();
+        let mut ring = Vec::new();
+        x.key.render_around(&keys, 2, &mut ring).unwrap();
+        assert_eq!(ring.len(), 19, "two rings: 1 + 6 + 12 cells");
+        assert!(ring.iter().all(|k| k.starts_with("grid:87") && k.len() == 20), "{ring:?}");
+        let bad = |lookup: &str| {
+            let text = format!(
+                "[sources.t]\ntable = \"t.csv\"\nkey = \"k\"\n[models.m]\nkeys = [\"lat\", \"lon\", \"site\"]\n[models.m.features]\nx = {{ source = \"t\", field = \"x\", {lookup} }}\n"
+            );
+            Plan::parse(&text, "f.toml", Path::new(".")).unwrap_err().problems
+        };
+        assert_eq!(
+            bad("key = \"{site}\", around = 1, combine = \"mean\""),
+            [
+                "models.m.features.x: `around` reads the cells around a position: the key needs a cell, as in `{h3(lat, lon, 8)}`"
+            ]
+        );
+        assert_eq!(
+            bad("key = \"{h3(lat, lon, 7)}\", around = 1"),
+            ["models.m.features.x: `around` needs `combine` (\"mean\", \"max\", \"min\" or \"sum\")"]
+        );
+        assert_eq!(
+            bad("key = \"{h3(lat, lon, 7)}\", around = 9, combine = \"sum\""),
+            ["models.m.features.x: around = 9: give 1 to 4 rings"]
+        );
+        assert_eq!(
+            bad("key = \"{h3(lat, lon, 16)}\""),
+            ["models.m.features.x: key `{h3(lat, lon, 16)}`: h3(lat, lon, 16): resolution `16` is not 0 to 15"]
+        );
+        let err = Plan::parse("[sources.p]\npostgres = \"postgresql://h/d\"\n", "f.toml", Path::new(".")).unwrap_err();
+        assert_eq!(
+            err.problems,
+            [
+                "sources.p: no `query` (the SELECT that reads every key at once, e.g. `... WHERE site = ANY($1)`)",
+                "sources.p: no `key` (the column the query returns each row's key in)"
+            ]
+        );
+    }
+
+    #[test]
     fn every_problem_is_named_at_once() {
         let bad = PLAN
             .replace(
@@ -514,7 +766,7 @@ charger_kw = "request"
             err.problems,
             [
                 "models.charge-minutes.features.avg_minutes_7d: source `weather` is not declared under [sources]",
-                "models.charge-minutes.features.avg_minutes_7d: key `{region}` uses `{region}`, which is not one of the model's keys (site, vehicle)",
+                "models.charge-minutes.features.avg_minutes_7d: key `{region}` uses `{region}`, which is not one of the model's keys (site, vehicle) nor a cell `{h3(LAT, LON, RESOLUTION)}`",
                 "models.charge-minutes.features.avg_minutes_7d: max_age `a week` is not a duration like 90s, 15m, 26h or 7d",
                 "models.charge-minutes.features.occupancy: missing = `guess`: say \"absent\", \"fail\" or { default = VALUE }",
             ]
@@ -527,7 +779,10 @@ charger_kw = "request"
         let err = Plan::parse("[sources.live]\nredis = \"redis://127.0.0.1/\"\nbudget_ms = 0\n[sources.both]\nredis = \"redis://h/\"\ntable = \"t.csv\"\n", "f.toml", Path::new(".")).unwrap_err();
         assert_eq!(
             err.problems,
-            ["sources.both: `table` or `redis`, not both", "sources.live: budget_ms = 0: give 1 to 60000"]
+            [
+                "sources.both: one of `table`, `redis` or `postgres`, not several",
+                "sources.live: budget_ms = 0: give 1 to 60000"
+            ]
         );
     }
 }

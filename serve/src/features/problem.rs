@@ -4,6 +4,7 @@
 
 use semver::Version;
 
+use super::postgres::PostgresSourceError;
 use super::redis::RedisSourceError;
 use super::table::TableError;
 
@@ -21,6 +22,49 @@ pub enum PlanProblem {
         source_name: String,
         /// What went wrong.
         error: RedisSourceError,
+    },
+    /// A PostgreSQL source could not be made, or its query was refused.
+    #[error("sources.{source_name}: {error}")]
+    Postgres {
+        /// The source's name in the plan.
+        source_name: String,
+        /// What went wrong.
+        error: PostgresSourceError,
+    },
+    /// A lookup reads a column whose type cannot hold its feature.
+    #[error(
+        "{model} {version}: feature `{feature}`: source `{source_name}` returns column `{column}` of type {type_name}, not {wanted}"
+    )]
+    ColumnType {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature looked up.
+        feature: String,
+        /// The PostgreSQL source.
+        source_name: String,
+        /// The column.
+        column: String,
+        /// Its type, as PostgreSQL names it.
+        type_name: String,
+        /// What the feature needs.
+        wanted: &'static str,
+    },
+    /// A lookup combines the values around a cell into a feature that
+    /// cannot hold the result (a label, a flag, or a mean of whole numbers).
+    #[error(
+        "{model} {version}: feature `{feature}` ({domain}) cannot take values combined around a cell: only numbers combine (a mean only into a real feature)"
+    )]
+    Combine {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The feature.
+        feature: String,
+        /// Its domain, as the contract writes it.
+        domain: String,
     },
     /// The plan sources a feature the version's contract does not have.
     #[error("{model} {version}: the plan sources `{feature}`, which its contract does not have")]
@@ -56,7 +100,7 @@ pub enum PlanProblem {
         /// The required feature.
         feature: String,
     },
-    /// A lookup names a column its table does not have.
+    /// A lookup names a column its table (or query) does not have.
     #[error("{model} {version}: feature `{feature}`: source `{source_name}` has no column `{column}` (it has {})", columns.join(", "))]
     NoColumn {
         /// The model.
@@ -72,7 +116,7 @@ pub enum PlanProblem {
         /// The columns the table has.
         columns: Vec<String>,
     },
-    /// A Redis source's budget is longer than the version's deadline per call.
+    /// A server source's budget is longer than the version's deadline per call.
     #[error(
         "{model} {version}: feature `{feature}`: source `{source_name}` has a budget of {budget_ms} ms, longer than the version's deadline of {deadline_ms} ms: a lookup must fit inside the call's time"
     )]

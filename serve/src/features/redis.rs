@@ -11,33 +11,33 @@
 //!
 //! Faults never hang a request: a read that does not answer within the
 //! source's budget is abandoned with its connection, and each failure
-//! opens a circuit breaker for a growing pause (100 ms doubling to 5 s)
-//! during which reads fail at once; the first read after the pause tries
-//! again on a new connection. Rows then follow each feature's fallback.
-//! While the breaker is open no read is sent, so a server that stops
-//! answering holds at most the reads sent before the first one gave up.
+//! opens the source's [breaker](super::breaker); the first read after its
+//! pause tries again on a new connection. Rows then follow each feature's
+//! fallback.
 
 use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use redis::aio::MultiplexedConnection;
 
+use super::breaker::Breaker;
 use super::counts::{Ended, SourceCounts};
-
-/// Longest pause of the circuit breaker.
-const MAX_PAUSE: Duration = Duration::from_secs(5);
-/// First pause after a failure.
-const FIRST_PAUSE: Duration = Duration::from_millis(100);
+use super::remote::{Asks, Awaited, Got, Outcome, Pending, Reply, Trouble};
 
 /// A Redis server read as a feature source.
 pub struct RedisSource {
     url: String,
-    client: redis::Client,
     budget: Duration,
     /// Taken only when dropped.
     runtime: Option<tokio::runtime::Runtime>,
+    inner: Arc<Inner>,
+}
+
+/// What a read settles when it ends, on the source's runtime.
+struct Inner {
+    client: redis::Client,
     connection: Mutex<Option<MultiplexedConnection>>,
-    breaker: Mutex<Breaker>,
+    breaker: Breaker,
     counts: Arc<SourceCounts>,
 }
 
@@ -57,40 +57,6 @@ impl std::fmt::Debug for RedisSource {
         f.debug_struct("RedisSource").field("url", &self.shown_url()).field("budget", &self.budget).finish()
     }
 }
-
-#[derive(Debug, Default)]
-struct Breaker {
-    failures: u32,
-    open_until: Option<Instant>,
-}
-
-/// Why a read got nothing.
-#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
-#[non_exhaustive]
-pub enum Trouble {
-    /// No answer within the source's budget.
-    #[error("no answer within {budget_ms} ms")]
-    Timeout {
-        /// The budget.
-        budget_ms: u128,
-    },
-    /// The server could not be reached, or answered with an error.
-    #[error("{0}")]
-    Failed(String),
-    /// The breaker is open after a failure: not tried.
-    #[error("not tried for {retry_in_ms} ms more after a failure")]
-    Paused {
-        /// Until the next try.
-        retry_in_ms: u128,
-    },
-}
-
-/// A round trip that failed: what went wrong, and whether the connection
-/// must be remade.
-type Failed = (Trouble, bool);
-
-/// One answer per key: the fields read, `None` where a key has no such field.
-type Replies = Vec<Vec<Option<String>>>;
 
 /// Why a Redis source could not be made.
 #[derive(Debug, thiserror::Error)]
@@ -119,22 +85,15 @@ impl RedisSource {
     /// [`RedisSourceError::Runtime`] when the source's runtime cannot start.
     pub fn new(url: &str, budget: Duration, counts: Arc<SourceCounts>) -> Result<RedisSource, RedisSourceError> {
         let client = redis::Client::open(url)
-            .map_err(|e| RedisSourceError::NotAUrl { url: url.to_owned(), problem: e.to_string() })?;
+            .map_err(|e| RedisSourceError::NotAUrl { url: shown_url(url), problem: e.to_string() })?;
         let runtime = tokio::runtime::Builder::new_multi_thread()
             .worker_threads(1)
             .thread_name("paddock-redis")
             .enable_all()
             .build()
             .map_err(RedisSourceError::Runtime)?;
-        Ok(RedisSource {
-            url: url.to_owned(),
-            client,
-            budget,
-            runtime: Some(runtime),
-            connection: Mutex::new(None),
-            breaker: Mutex::new(Breaker::default()),
-            counts,
-        })
+        let inner = Inner { client, connection: Mutex::new(None), breaker: Breaker::default(), counts };
+        Ok(RedisSource { url: url.to_owned(), budget, runtime: Some(runtime), inner: Arc::new(inner) })
     }
 
     /// The server's URL.
@@ -158,58 +117,60 @@ impl RedisSource {
     ///
     /// # Errors
     /// [`Trouble`]: no answer within the budget, a failure, or the breaker open.
-    pub fn fetch(&self, asks: &[(String, Vec<String>)]) -> Result<Vec<Vec<Option<String>>>, Trouble> {
+    pub fn fetch(&self, asks: &Asks) -> Outcome {
         self.send(asks).wait()
     }
 
     /// Sends the pipeline of [`RedisSource::fetch`] and returns at once:
     /// several sources are read at the same time, each within its budget.
     /// [`Pending::wait`] blocks the calling thread until the answer.
-    pub fn send(&self, asks: &[(String, Vec<String>)]) -> Pending<'_> {
-        let (tx, rx) = std::sync::mpsc::sync_channel(1);
-        match self.dispatch(asks, Reply::Blocking(tx)) {
-            Ok(sent) => Pending { source: self, state: State::Sent { rx, sent } },
-            Err(done) => Pending { source: self, state: State::Done(done) },
+    pub fn send(&self, asks: &Asks) -> Pending {
+        if let Some(known) = self.known(asks) {
+            return Pending::done(known);
         }
+        let (reply, pending) = Pending::new(self.budget);
+        self.dispatch(asks, reply);
+        pending
     }
 
     /// As [`RedisSource::send`], for a caller on an async runtime:
     /// [`Awaited::wait`] awaits the answer without holding a thread.
-    pub fn send_async(&self, asks: &[(String, Vec<String>)]) -> Awaited<'_> {
-        let (tx, rx) = tokio::sync::oneshot::channel();
-        match self.dispatch(asks, Reply::Async(tx)) {
-            Ok(sent) => Awaited { source: self, state: AsyncState::Sent { rx, sent } },
-            Err(done) => Awaited { source: self, state: AsyncState::Done(done) },
+    pub fn send_async(&self, asks: &Asks) -> Awaited {
+        if let Some(known) = self.known(asks) {
+            return Awaited::done(known);
         }
+        let (reply, awaited) = Awaited::new(self.budget);
+        self.dispatch(asks, reply);
+        awaited
     }
 
-    /// Starts the read on the source's runtime, its answer to go to
-    /// `reply`; the time it was sent, or the answer already known (nothing
-    /// to ask, or the breaker open).
-    fn dispatch(&self, asks: &[(String, Vec<String>)], reply: Reply) -> Result<Instant, Result<Replies, Trouble>> {
+    /// The answer when it is known without asking: nothing to ask, or the
+    /// breaker open.
+    fn known(&self, asks: &Asks) -> Option<Outcome> {
         if asks.is_empty() {
-            return Err(Ok(Vec::new()));
+            return Some(Ok(Vec::new()));
         }
-        {
-            let breaker = self.breaker.lock().unwrap_or_else(|e| e.into_inner());
-            if let Some(until) = breaker.open_until {
-                let now = Instant::now();
-                if now < until {
-                    self.counts.skipped();
-                    return Err(Err(Trouble::Paused { retry_in_ms: (until - now).as_millis() }));
-                }
-            }
+        if let Err(t) = self.inner.breaker.admit() {
+            self.inner.counts.skipped();
+            return Some(Err(t));
         }
+        None
+    }
+
+    /// Starts the read on the source's runtime, which settles it and hands
+    /// the answer to `reply`.
+    fn dispatch(&self, asks: &Asks, reply: Reply) {
         let mut pipe = redis::pipe();
         for (key, fields) in asks {
             pipe.cmd("HMGET").arg(key).arg(fields);
         }
-        let connection = self.connection.lock().unwrap_or_else(|e| e.into_inner()).clone();
-        let client = self.client.clone();
+        let inner = Arc::clone(&self.inner);
+        let connection = inner.connection.lock().unwrap_or_else(|e| e.into_inner()).clone();
         let budget = self.budget;
         let sent = Instant::now();
         let Some(runtime) = &self.runtime else { unreachable!("the runtime lives as long as the source") };
         runtime.spawn(async move {
+            let client = inner.client.clone();
             let read = tokio::time::timeout(budget, async move {
                 let mut c = match connection {
                     Some(c) => c,
@@ -226,134 +187,48 @@ impl RedisSource {
                 Ok::<_, redis::RedisError>((c, values))
             })
             .await;
-            reply.send(read);
+            reply.send(inner.settle(read, sent.elapsed(), budget));
         });
-        Ok(sent)
     }
+}
 
-    /// The outcome of an answer (or of none within the budget).
-    fn outcome(&self, answered: Option<Answered>) -> Result<(MultiplexedConnection, Replies), Failed> {
-        let budget = self.budget;
-        match answered {
-            Some(Ok(Ok((c, values)))) => Ok((c, values)),
-            Some(Ok(Err(e))) => Err((
-                Trouble::Failed(e.to_string()),
-                e.is_io_error() || e.is_connection_dropped() || e.is_connection_refusal(),
-            )),
-            // A connection that kept a read past its budget is dropped: the
-            // next read starts a new one, and reads never pile up on a
-            // server that stopped answering.
-            Some(Err(_)) | None => Err((Trouble::Timeout { budget_ms: budget.as_millis() }, true)),
-        }
-    }
+/// A pipeline's answer, with the connection that carried it.
+type Answer = (MultiplexedConnection, Vec<Vec<Option<String>>>);
 
-    /// How long a waiter waits for an answer sent at `sent`: the budget,
-    /// and a little for the runtime's own scheduling.
-    fn left(&self, sent: Instant) -> Duration {
-        (self.budget + Duration::from_millis(20)).saturating_sub(sent.elapsed())
-    }
-
+impl Inner {
+    /// Counts the read, keeps or drops its connection, moves the breaker.
     fn settle(
         &self,
-        outcome: Result<(MultiplexedConnection, Replies), Failed>,
+        read: Result<Result<Answer, redis::RedisError>, tokio::time::error::Elapsed>,
         took: Duration,
-    ) -> Result<Vec<Vec<Option<String>>>, Trouble> {
-        let ended = match &outcome {
-            Ok(_) => Ended::Answered,
-            Err((Trouble::Timeout { .. }, _)) => Ended::TimedOut,
-            Err(_) => Ended::Failed,
-        };
-        self.counts.round_trip(ended, took);
-        let mut breaker = self.breaker.lock().unwrap_or_else(|e| e.into_inner());
-        match outcome {
-            Ok((c, values)) => {
+        budget: Duration,
+    ) -> Outcome {
+        // A connection that failed, or kept a read past its budget, is
+        // dropped: the next read starts a new one, and reads never pile up
+        // on a server that stopped answering.
+        let (ended, outcome) = match read {
+            Ok(Ok((c, values))) => {
                 *self.connection.lock().unwrap_or_else(|e| e.into_inner()) = Some(c);
-                *breaker = Breaker::default();
-                Ok(values)
+                let values = values.into_iter().map(|v| v.into_iter().map(|f| f.map(Got::Text)).collect()).collect();
+                (Ended::Answered, Ok(values))
             }
-            Err((trouble, lost)) => {
-                if lost {
+            Ok(Err(e)) => {
+                if e.is_io_error() || e.is_connection_dropped() || e.is_connection_refusal() {
                     *self.connection.lock().unwrap_or_else(|e| e.into_inner()) = None;
                 }
-                breaker.failures = breaker.failures.saturating_add(1);
-                let pause = FIRST_PAUSE.saturating_mul(1 << breaker.failures.min(16).saturating_sub(1)).min(MAX_PAUSE);
-                breaker.open_until = Some(Instant::now() + pause);
-                Err(trouble)
+                (Ended::Failed, Err(Trouble::Failed(e.to_string())))
             }
-        }
-    }
-}
-
-type Answered =
-    Result<Result<(MultiplexedConnection, Vec<Vec<Option<String>>>), redis::RedisError>, tokio::time::error::Elapsed>;
-
-/// Where a read's answer goes: a thread blocked on it, or a task awaiting it.
-enum Reply {
-    Blocking(std::sync::mpsc::SyncSender<Answered>),
-    Async(tokio::sync::oneshot::Sender<Answered>),
-}
-
-impl Reply {
-    fn send(self, answered: Answered) {
-        // A waiter that gave up is gone: nothing to tell.
-        match self {
-            Reply::Blocking(tx) => drop(tx.send(answered)),
-            Reply::Async(tx) => drop(tx.send(answered)),
-        }
-    }
-}
-
-/// A pipeline sent by [`RedisSource::send`], not yet waited for.
-pub struct Pending<'a> {
-    source: &'a RedisSource,
-    state: State,
-}
-
-enum State {
-    Done(Result<Vec<Vec<Option<String>>>, Trouble>),
-    Sent { rx: std::sync::mpsc::Receiver<Answered>, sent: Instant },
-}
-
-/// A pipeline sent by [`RedisSource::send_async`], not yet awaited.
-pub struct Awaited<'a> {
-    source: &'a RedisSource,
-    state: AsyncState,
-}
-
-enum AsyncState {
-    Done(Result<Vec<Vec<Option<String>>>, Trouble>),
-    Sent { rx: tokio::sync::oneshot::Receiver<Answered>, sent: Instant },
-}
-
-impl Awaited<'_> {
-    /// The answer, awaited at most the source's budget from when it was
-    /// sent; the task waits, no thread does.
-    ///
-    /// # Errors
-    /// As [`RedisSource::fetch`].
-    pub async fn wait(self) -> Result<Vec<Vec<Option<String>>>, Trouble> {
-        let (rx, sent) = match self.state {
-            AsyncState::Done(r) => return r,
-            AsyncState::Sent { rx, sent } => (rx, sent),
+            Err(_) => {
+                *self.connection.lock().unwrap_or_else(|e| e.into_inner()) = None;
+                (Ended::TimedOut, Err(Trouble::Timeout { budget_ms: budget.as_millis() }))
+            }
         };
-        let answered = tokio::time::timeout(self.source.left(sent), rx).await.ok().and_then(Result::ok);
-        self.source.settle(self.source.outcome(answered), sent.elapsed())
-    }
-}
-
-impl Pending<'_> {
-    /// The answer, waited for at most the source's budget from when it was
-    /// sent (and a little for the runtime's own scheduling).
-    ///
-    /// # Errors
-    /// As [`RedisSource::fetch`].
-    pub fn wait(self) -> Result<Vec<Vec<Option<String>>>, Trouble> {
-        let (rx, sent) = match self.state {
-            State::Done(r) => return r,
-            State::Sent { rx, sent } => (rx, sent),
-        };
-        let answered = rx.recv_timeout(self.source.left(sent)).ok();
-        self.source.settle(self.source.outcome(answered), sent.elapsed())
+        self.counts.round_trip(ended, took);
+        match &outcome {
+            Ok(_) => self.breaker.answered(),
+            Err(_) => self.breaker.failed(),
+        }
+        outcome
     }
 }
 

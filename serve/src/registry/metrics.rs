@@ -365,7 +365,7 @@ impl Exposition {
         }
         family(e, "lookups", "Features of rows looked up in a source, by outcome.", Samples::Counter(lookups))?;
         let servers: Vec<&SourceUsage> =
-            self.sources.iter().filter(|s| s.kind == crate::features::SourceKind::Redis).collect();
+            self.sources.iter().filter(|s| s.kind != crate::features::SourceKind::Table).collect();
         type Count = (&'static str, &'static str, fn(&SourceUsage) -> u64);
         let counters: [Count; 4] = [
             ("source_round_trips", "Round trips to a feature server.", |s| s.round_trips),

@@ -21,7 +21,10 @@ use super::status::{
     ServerStatus, Status, TableStatus, loaded_status, refused_status,
 };
 use super::{FeatureSet, Registry, RegistryError, ShadowPlan, Shared, Snapshot};
-use crate::features::{Plan, RedisSource, Source, SourceCounts, Sources, Table, VersionPlan};
+use crate::features::{
+    Plan, PostgresSettings, PostgresSource, RedisSource, Remote, Source, SourceCounts, SourceKind, Sources, Table,
+    VersionPlan,
+};
 use paddock_host::artifact::digest::Digest;
 
 /// Loaded versions, by model and version.
@@ -44,6 +47,8 @@ pub(super) struct LastSeen {
     tables: HashMap<PathBuf, (TableStamp, Arc<Table>)>,
     /// Redis sources made, by name, URL and budget.
     redis: HashMap<(String, String, std::time::Duration), Arc<RedisSource>>,
+    /// PostgreSQL sources made, by name and settings.
+    postgres: HashMap<(String, PostgresSettings), Arc<PostgresSource>>,
     /// Each source's counters, by name: they outlive reloads.
     counts: BTreeMap<String, Arc<SourceCounts>>,
 }
@@ -422,8 +427,9 @@ fn build_features(
     let mut tables = BTreeMap::new();
     let mut statuses = Vec::new();
     let mut kept = HashMap::new();
-    let mut redis = BTreeMap::new();
+    let mut remotes = BTreeMap::new();
     let mut kept_redis = HashMap::new();
+    let mut kept_postgres = HashMap::new();
     let mut servers = Vec::new();
     let counts: BTreeMap<String, Arc<SourceCounts>> = plan
         .sources
@@ -444,11 +450,38 @@ fn build_features(
                     Ok(r) => {
                         servers.push(ServerStatus {
                             source: name.clone(),
+                            kind: SourceKind::Redis,
                             url: r.shown_url(),
                             budget_ms: u64::try_from(budget.as_millis()).unwrap_or(u64::MAX),
+                            unchecked: None,
                         });
                         kept_redis.insert(id, r.clone());
-                        redis.insert(name.clone(), r);
+                        remotes.insert(name.clone(), Remote::Redis(r));
+                    }
+                    Err(e) => problems.push(format!("{FEATURES_FILE}: sources.{name}: {e}")),
+                }
+                continue;
+            }
+            Source::Postgres(settings) => {
+                // Its pool (and the statements each connection prepared)
+                // lives on across reloads while its settings stay; a source
+                // not checked at load is made again, to check it now.
+                let id = (name.clone(), settings.clone());
+                let made = match last_seen.postgres.get(&id) {
+                    Some(p) if p.described().is_some() => Ok(p.clone()),
+                    _ => PostgresSource::new(settings.clone(), counts[name].clone()).map(Arc::new),
+                };
+                match made {
+                    Ok(p) => {
+                        servers.push(ServerStatus {
+                            source: name.clone(),
+                            kind: SourceKind::Postgres,
+                            url: p.shown_url(),
+                            budget_ms: u64::try_from(settings.budget.as_millis()).unwrap_or(u64::MAX),
+                            unchecked: p.unchecked().map(str::to_owned),
+                        });
+                        kept_postgres.insert(id, p.clone());
+                        remotes.insert(name.clone(), Remote::Postgres(p));
                     }
                     Err(e) => problems.push(format!("{FEATURES_FILE}: sources.{name}: {e}")),
                 }
@@ -482,11 +515,12 @@ fn build_features(
     }
     last_seen.tables = kept;
     last_seen.redis = kept_redis;
+    last_seen.postgres = kept_postgres;
     if !problems.is_empty() {
         return Err(problems);
     }
     last_seen.counts = counts.clone();
-    let sources = Sources::from_parts(tables, redis, counts);
+    let sources = Sources::from_parts(tables, remotes, counts);
     let mut set = FeatureSet::default();
     for model in plan.models.keys() {
         for (version, loaded) in versions.get(model).into_iter().flatten() {

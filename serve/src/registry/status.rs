@@ -304,7 +304,7 @@ pub enum FeaturesState {
     Accepted {
         /// Each table loaded.
         tables: Vec<TableStatus>,
-        /// Each Redis source.
+        /// Each server source (Redis, PostgreSQL).
         #[serde(default)]
         servers: Vec<ServerStatus>,
     },
@@ -316,16 +316,23 @@ pub enum FeaturesState {
     },
 }
 
-/// One Redis source serving.
+/// One server source serving.
 #[derive(Clone, Debug, PartialEq, Serialize)]
 #[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
 pub struct ServerStatus {
     /// The source's name in the features file.
     pub source: String,
+    /// What kind of server.
+    pub kind: crate::features::SourceKind,
     /// The server's URL, its password (if any) hidden.
     pub url: String,
     /// The time each request gives it, in milliseconds.
     pub budget_ms: u64,
+    /// What could not be checked when the plan loaded, and why (a
+    /// PostgreSQL server that could not be reached: its columns' types
+    /// are then checked as values are read).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unchecked: Option<String>,
 }
 
 /// One embedded table serving.

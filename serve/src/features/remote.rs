@@ -1,0 +1,143 @@
+//! What reading a server source takes, whichever the server (Redis,
+//! PostgreSQL): the shape of an answer, why a read got nothing, and
+//! waiting for an answer from a thread or from a task.
+//!
+//! A source runs its reads on a small runtime of its own and settles each
+//! one there (its counters, its breaker, its connection) before handing
+//! the answer over, so a caller that stops waiting changes nothing. A
+//! caller waits at most the source's budget from when the read was sent,
+//! and a little for the runtime's own scheduling.
+
+use std::time::{Duration, Instant};
+
+/// A value a server answered with.
+#[derive(Clone, Debug, PartialEq)]
+pub enum Got {
+    /// A number (a numeric column, a timestamp as Unix seconds, a boolean as 0 or 1).
+    Number(f64),
+    /// Text (a Redis field, a text column).
+    Text(String),
+}
+
+/// One answer per key asked: the fields' values in the order asked,
+/// `None` where the key has no such field or the value is null.
+pub type Replies = Vec<Vec<Option<Got>>>;
+
+/// The keys a request reads from one source, each with the fields it needs.
+pub type Asks = [(String, Vec<String>)];
+
+/// Why a read got nothing.
+#[derive(Clone, Debug, PartialEq, Eq, thiserror::Error)]
+#[non_exhaustive]
+pub enum Trouble {
+    /// No answer within the source's budget.
+    #[error("no answer within {budget_ms} ms")]
+    Timeout {
+        /// The budget.
+        budget_ms: u128,
+    },
+    /// The server could not be reached, or answered with an error.
+    #[error("{0}")]
+    Failed(String),
+    /// The breaker is open after a failure: not tried.
+    #[error("not tried for {retry_in_ms} ms more after a failure")]
+    Paused {
+        /// Until the next try.
+        retry_in_ms: u128,
+    },
+}
+
+/// A read's outcome, as the source settled it.
+pub type Outcome = Result<Replies, Trouble>;
+
+/// Where a read's answer goes: a thread blocked on it, or a task awaiting it.
+pub enum Reply {
+    /// A thread waiting in [`Pending::wait`].
+    Blocking(std::sync::mpsc::SyncSender<Outcome>),
+    /// A task awaiting [`Awaited::wait`].
+    Async(tokio::sync::oneshot::Sender<Outcome>),
+}
+
+impl Reply {
+    /// Hands the answer over; a waiter that gave up is gone: nothing to tell.
+    pub fn send(self, outcome: Outcome) {
+        match self {
+            Reply::Blocking(tx) => drop(tx.send(outcome)),
+            Reply::Async(tx) => drop(tx.send(outcome)),
+        }
+    }
+}
+
+/// The extra a waiter gives the source's runtime to schedule the read's end.
+const SLACK: Duration = Duration::from_millis(20);
+
+/// When a waiter gives up on a read sent now with `budget`.
+fn give_up_at(budget: Duration) -> Instant {
+    Instant::now() + budget + SLACK
+}
+
+/// A read sent, its answer to be waited for by a thread.
+pub struct Pending {
+    state: Result<(std::sync::mpsc::Receiver<Outcome>, Instant, Duration), Outcome>,
+}
+
+impl Pending {
+    /// An answer known without asking (nothing to ask, the breaker open).
+    pub fn done(outcome: Outcome) -> Pending {
+        Pending { state: Err(outcome) }
+    }
+
+    /// The reply channel for a read sent now with `budget`, and its pending answer.
+    pub fn new(budget: Duration) -> (Reply, Pending) {
+        let (tx, rx) = std::sync::mpsc::sync_channel(1);
+        (Reply::Blocking(tx), Pending { state: Ok((rx, give_up_at(budget), budget)) })
+    }
+
+    /// The answer, blocking the calling thread.
+    ///
+    /// # Errors
+    /// The source's [`Trouble`], or [`Trouble::Timeout`] when no answer
+    /// came in time.
+    pub fn wait(self) -> Outcome {
+        match self.state {
+            Err(outcome) => outcome,
+            Ok((rx, until, budget)) => rx
+                .recv_timeout(until.saturating_duration_since(Instant::now()))
+                .unwrap_or(Err(Trouble::Timeout { budget_ms: budget.as_millis() })),
+        }
+    }
+}
+
+/// A read sent, its answer to be awaited by a task.
+pub struct Awaited {
+    state: Result<(tokio::sync::oneshot::Receiver<Outcome>, Instant, Duration), Outcome>,
+}
+
+impl Awaited {
+    /// An answer known without asking (nothing to ask, the breaker open).
+    pub fn done(outcome: Outcome) -> Awaited {
+        Awaited { state: Err(outcome) }
+    }
+
+    /// The reply channel for a read sent now with `budget`, and its awaited answer.
+    pub fn new(budget: Duration) -> (Reply, Awaited) {
+        let (tx, rx) = tokio::sync::oneshot::channel();
+        (Reply::Async(tx), Awaited { state: Ok((rx, give_up_at(budget), budget)) })
+    }
+
+    /// The answer, awaited: the task waits, no thread does.
+    ///
+    /// # Errors
+    /// As [`Pending::wait`].
+    pub async fn wait(self) -> Outcome {
+        match self.state {
+            Err(outcome) => outcome,
+            Ok((rx, until, budget)) => {
+                match tokio::time::timeout(until.saturating_duration_since(Instant::now()), rx).await {
+                    Ok(Ok(outcome)) => outcome,
+                    _ => Err(Trouble::Timeout { budget_ms: budget.as_millis() }),
+                }
+            }
+        }
+    }
+}
