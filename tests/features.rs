@@ -10,10 +10,9 @@ use std::sync::atomic::{AtomicBool, Ordering};
 
 use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
-use paddock_serve::registry::{FeaturesState, artifact_path};
+use paddock_serve::registry::FeaturesState;
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{line_artifact, write_atomically};
-use semver::Version;
+use paddock_tests::write_atomically;
 
 const PLAN: &str = r#"
 [sources.sites]
@@ -32,11 +31,7 @@ x = { source = "sites", key = "{site}", field = "x", missing = "fail" }
 fn store(scale: f64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(
-        &artifact_path(store, "m", &Version::new(1, 0, 0)),
-        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
-    );
-    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    paddock_tests::line_store(store);
     write_table(store, scale);
     write_atomically(&store.join("features.toml"), PLAN.as_bytes());
     let options = RegistryOptions { usage_flush: None, ..RegistryOptions::default() };
@@ -286,11 +281,7 @@ fn a_lookup_keyed_by_a_cell_reads_the_cells_around_a_position() {
     let center = case["cells"][r as usize].as_str().unwrap();
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(
-        &artifact_path(store, "m", &Version::new(1, 0, 0)),
-        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
-    );
-    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    paddock_tests::line_store(store);
     // x = 10 at the centre, 1..6 around it (all but one neighbour: it is missing).
     let mut table = format!("cell,x\n{center},10\n");
     let mut around = 0.0;

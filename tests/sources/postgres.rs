@@ -14,9 +14,9 @@ use paddock_host::contract::rows::Value;
 use paddock_host::contract::{Bounds, Contract, Domain, Feature, Output};
 use paddock_host::{Row, Runtime};
 use paddock_serve::features::{Outcome, Plan, PlanProblem, Sources, VersionPlan};
-use paddock_serve::registry::{FeaturesState, artifact_path};
+use paddock_serve::registry::FeaturesState;
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{PostgresServer as Server, line_artifact, unhurried, write_atomically};
+use paddock_tests::{PostgresServer as Server, unhurried, write_atomically};
 use semver::Version;
 
 const STATS: &str = "CREATE TABLE site_stats (
@@ -230,11 +230,7 @@ fn keys_are_parameters_never_sql() {
 fn store(server: &Server, query: &str, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(
-        &artifact_path(store, "m", &Version::new(1, 0, 0)),
-        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
-    );
-    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    paddock_tests::line_store(store);
     let text = format!(
         "[sources.grid]\npostgres = \"{}\"\nquery = \"{query}\"\nkey = \"site\"\nbudget_ms = {budget_ms}\nconnections = 2\n\
          [models.m]\nkeys = [\"site\"]\n[models.m.features]\nx = {{ source = \"grid\", key = \"{{site}}\", field = \"x\", missing = {missing} }}\n",

@@ -8,20 +8,15 @@ use std::time::Duration;
 
 use paddock_host::{Row, Runtime};
 use paddock_serve::features::Outcome;
-use paddock_serve::registry::{FeaturesState, artifact_path};
+use paddock_serve::registry::FeaturesState;
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{RedisServer as Server, line_artifact, unhurried, write_atomically};
-use semver::Version;
+use paddock_tests::{RedisServer as Server, unhurried, write_atomically};
 
 /// A store serving `m` with `x` from Redis, `missing` its fallback.
 fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(
-        &artifact_path(store, "m", &Version::new(1, 0, 0)),
-        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
-    );
-    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    paddock_tests::line_store(store);
     plan(store, server, missing, budget_ms);
     // Minute-long deadlines: a busy machine must not make a lookup late.
     let options = RegistryOptions { usage_flush: None, model: unhurried(), ..RegistryOptions::default() };
@@ -144,14 +139,17 @@ fn a_slow_redis_hits_the_budget() {
     // The server blocks for 6 s on one connection; the test waits until it
     // is blocked (another client's PING gets no answer in a second), not
     // for a time.
+    // The probe connects first: connecting while the server sleeps would
+    // wait out the sleep, and every PING after it would answer.
+    let mut probe = server.connection().unwrap();
+    probe.set_read_timeout(Some(Duration::from_secs(1))).unwrap();
     let url = server.url();
     let sleeper = std::thread::spawn(move || {
         let mut c = redis::Client::open(url).unwrap().get_connection().unwrap();
         redis::cmd("DEBUG").arg("SLEEP").arg("6").query::<()>(&mut c).unwrap();
     });
-    let mut probe = server.connection().unwrap();
-    probe.set_read_timeout(Some(Duration::from_secs(1))).unwrap();
-    while redis::cmd("PING").query::<String>(&mut probe).is_ok() {}
+    while !sleeper.is_finished() && redis::cmd("PING").query::<String>(&mut probe).is_ok() {}
+    assert!(!sleeper.is_finished(), "the server never blocked");
     let timeouts = reg.source_usage()[0].timeouts;
     assert_eq!(ask(&reg, "a"), (2.0, Outcome::Unavailable));
     assert_eq!(reg.source_usage()[0].timeouts, timeouts + 1, "{:?}", reg.source_usage());
@@ -165,11 +163,7 @@ fn a_budget_past_the_deadline_is_refused() {
     let server = Server::unstarted();
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
-    write_atomically(
-        &artifact_path(store, "m", &Version::new(1, 0, 0)),
-        &line_artifact("m", "1.0.0", 2.0, 1.0, Some(true)),
-    );
-    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    paddock_tests::line_store(store);
     plan(store, &server, "\"fail\"", 80);
     let registry = Registry::open(
         &Runtime::new().unwrap(),

@@ -36,7 +36,7 @@ pub use plan::{Around, Fallback, KeyError, Lookup, ModelPlan, Plan, PlanError, S
 pub use postgres::{PostgresSettings, PostgresSource, PostgresSourceError};
 pub use problem::{PlanProblem, Unusable};
 pub use redis::{RedisSource, RedisSourceError};
-pub use remote::{Got, Trouble};
+pub use remote::{Got, ServerRead, Trouble};
 pub use table::{Cell, Table, TableError};
 
 use paddock_host::contract::rows::{Row, Value};

@@ -46,7 +46,7 @@ use tokio_postgres_rustls::MakeRustlsConnect;
 use super::breaker::Breaker;
 use super::counts::{Ended, SourceCounts};
 use super::redis::shown_url;
-use super::remote::{Asks, Awaited, Got, Outcome, Pending, Reply, Trouble};
+use super::remote::{Asks, Got, Reply, ServerRead, Trouble};
 use paddock_host::contract::Domain;
 
 /// How long loading a plan waits to prepare the query.
@@ -342,11 +342,6 @@ impl PostgresSource {
         &self.settings
     }
 
-    /// The budget of each read.
-    pub fn budget(&self) -> Duration {
-        self.settings.budget
-    }
-
     /// The query's columns, when the server described them at load.
     pub fn described(&self) -> Option<&Described> {
         self.described.as_ref()
@@ -357,48 +352,22 @@ impl PostgresSource {
     pub fn unchecked(&self) -> Option<&str> {
         self.unchecked.as_deref()
     }
+}
 
-    /// Reads the `fields` of each `key` with one query: for each
-    /// (key, fields), the columns' values in order (`None` for a key not
-    /// found, or a null).
-    ///
-    /// # Errors
-    /// [`Trouble`]: no answer within the budget, a failure, or the breaker open.
-    pub fn fetch(&self, asks: &Asks) -> Outcome {
-        self.send(asks).wait()
+impl ServerRead for PostgresSource {
+    fn budget(&self) -> Duration {
+        self.settings.budget
     }
 
-    /// Sends the query of [`PostgresSource::fetch`] and returns at once.
-    pub fn send(&self, asks: &Asks) -> Pending {
-        if let Some(known) = self.known(asks) {
-            return Pending::done(known);
-        }
-        let (reply, pending) = Pending::new(self.settings.budget);
-        self.dispatch(asks, reply);
-        pending
+    fn breaker(&self) -> &Breaker {
+        &self.inner.breaker
     }
 
-    /// As [`PostgresSource::send`], for a caller on an async runtime.
-    pub fn send_async(&self, asks: &Asks) -> Awaited {
-        if let Some(known) = self.known(asks) {
-            return Awaited::done(known);
-        }
-        let (reply, awaited) = Awaited::new(self.settings.budget);
-        self.dispatch(asks, reply);
-        awaited
+    fn counts(&self) -> &SourceCounts {
+        &self.inner.counts
     }
 
-    fn known(&self, asks: &Asks) -> Option<Outcome> {
-        if asks.is_empty() {
-            return Some(Ok(Vec::new()));
-        }
-        if let Err(t) = self.inner.breaker.admit() {
-            self.inner.counts.skipped();
-            return Some(Err(t));
-        }
-        None
-    }
-
+    /// One query, every key in its array parameter.
     fn dispatch(&self, asks: &Asks, reply: Reply) {
         let inner = Arc::clone(&self.inner);
         let asks = asks.to_vec();

@@ -22,7 +22,7 @@ use redis::aio::MultiplexedConnection;
 
 use super::breaker::Breaker;
 use super::counts::{Ended, SourceCounts};
-use super::remote::{Asks, Awaited, Got, Outcome, Pending, Reply, Trouble};
+use super::remote::{Asks, Got, Outcome, Reply, ServerRead, Trouble};
 
 /// A Redis server read as a feature source.
 pub struct RedisSource {
@@ -105,60 +105,22 @@ impl RedisSource {
     pub fn shown_url(&self) -> String {
         shown_url(&self.url)
     }
+}
 
-    /// The budget of each read.
-    pub fn budget(&self) -> Duration {
+impl ServerRead for RedisSource {
+    fn budget(&self) -> Duration {
         self.budget
     }
 
-    /// Reads `fields` of each hash `key` in one pipeline: for each
-    /// (key, fields), the fields' values in order (`None` for a field or
-    /// key that is not there).
-    ///
-    /// # Errors
-    /// [`Trouble`]: no answer within the budget, a failure, or the breaker open.
-    pub fn fetch(&self, asks: &Asks) -> Outcome {
-        self.send(asks).wait()
+    fn breaker(&self) -> &Breaker {
+        &self.inner.breaker
     }
 
-    /// Sends the pipeline of [`RedisSource::fetch`] and returns at once:
-    /// several sources are read at the same time, each within its budget.
-    /// [`Pending::wait`] blocks the calling thread until the answer.
-    pub fn send(&self, asks: &Asks) -> Pending {
-        if let Some(known) = self.known(asks) {
-            return Pending::done(known);
-        }
-        let (reply, pending) = Pending::new(self.budget);
-        self.dispatch(asks, reply);
-        pending
+    fn counts(&self) -> &SourceCounts {
+        &self.inner.counts
     }
 
-    /// As [`RedisSource::send`], for a caller on an async runtime:
-    /// [`Awaited::wait`] awaits the answer without holding a thread.
-    pub fn send_async(&self, asks: &Asks) -> Awaited {
-        if let Some(known) = self.known(asks) {
-            return Awaited::done(known);
-        }
-        let (reply, awaited) = Awaited::new(self.budget);
-        self.dispatch(asks, reply);
-        awaited
-    }
-
-    /// The answer when it is known without asking: nothing to ask, or the
-    /// breaker open.
-    fn known(&self, asks: &Asks) -> Option<Outcome> {
-        if asks.is_empty() {
-            return Some(Ok(Vec::new()));
-        }
-        if let Err(t) = self.inner.breaker.admit() {
-            self.inner.counts.skipped();
-            return Some(Err(t));
-        }
-        None
-    }
-
-    /// Starts the read on the source's runtime, which settles it and hands
-    /// the answer to `reply`.
+    /// One pipeline of `HMGET`s, one round trip.
     fn dispatch(&self, asks: &Asks, reply: Reply) {
         let mut pipe = redis::pipe();
         for (key, fields) in asks {

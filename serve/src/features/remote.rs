@@ -10,6 +10,9 @@
 
 use std::time::{Duration, Instant};
 
+use super::breaker::Breaker;
+use super::counts::SourceCounts;
+
 /// A value a server answered with.
 #[derive(Clone, Debug, PartialEq)]
 pub enum Got {
@@ -140,4 +143,67 @@ impl Awaited {
             }
         }
     }
+}
+
+/// A source on a server, read within a budget: each kind says how a read
+/// starts ([`ServerRead::dispatch`]); sending, and the answers known
+/// without asking, are the same for all.
+pub trait ServerRead {
+    /// How long a request may wait for it.
+    fn budget(&self) -> Duration;
+
+    /// Its breaker.
+    fn breaker(&self) -> &Breaker;
+
+    /// Its counters.
+    fn counts(&self) -> &SourceCounts;
+
+    /// Starts the read on the source's runtime, which settles it (counts,
+    /// breaker, connection) and hands the answer to `reply`.
+    fn dispatch(&self, asks: &Asks, reply: Reply);
+
+    /// Reads the `fields` of each key: for each (key, fields), the values
+    /// in order (`None` for a key or field not there).
+    ///
+    /// # Errors
+    /// [`Trouble`]: no answer within the budget, a failure, or the breaker open.
+    fn fetch(&self, asks: &Asks) -> Outcome {
+        self.send(asks).wait()
+    }
+
+    /// Sends the read and returns at once: several sources are read at the
+    /// same time, each within its budget. [`Pending::wait`] blocks the
+    /// calling thread until the answer.
+    fn send(&self, asks: &Asks) -> Pending {
+        if let Some(known) = known(self, asks) {
+            return Pending::done(known);
+        }
+        let (reply, pending) = Pending::new(self.budget());
+        self.dispatch(asks, reply);
+        pending
+    }
+
+    /// As [`ServerRead::send`], for a caller on an async runtime:
+    /// [`Awaited::wait`] awaits the answer without holding a thread.
+    fn send_async(&self, asks: &Asks) -> Awaited {
+        if let Some(known) = known(self, asks) {
+            return Awaited::done(known);
+        }
+        let (reply, awaited) = Awaited::new(self.budget());
+        self.dispatch(asks, reply);
+        awaited
+    }
+}
+
+/// The answer when it is known without asking: nothing to ask, or the
+/// breaker open.
+fn known<S: ServerRead + ?Sized>(source: &S, asks: &Asks) -> Option<Outcome> {
+    if asks.is_empty() {
+        return Some(Ok(Vec::new()));
+    }
+    if let Err(t) = source.breaker().admit() {
+        source.counts().skipped();
+        return Some(Err(t));
+    }
+    None
 }
