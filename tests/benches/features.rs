@@ -2,19 +2,22 @@
 //!
 //! One model, `m`: a linear model over 8 features, of which a request
 //! carries 2 and the features plan looks up 6 by the request's `site` key
-//! (10 000 sites). Three stores serve it, measured in the same run, in
+//! (10 000 sites). Four stores serve it, measured in the same run, in
 //! interleaved rounds:
 //! - `assembled`: no features file; the request carries all 8 features
 //!   (the baseline: scoring the assembled row);
 //! - `table`: the 6 from an embedded CSV table;
 //! - `redis`: the 6 from Redis hashes on a `redis-server` this bench starts
-//!   on loopback (one `HMGET` pipeline per request).
+//!   on loopback (one `HMGET` pipeline per request);
+//! - `postgres`: the 6 from a PostgreSQL table on a server this bench
+//!   starts on loopback (one prepared query per request, keys as an array).
 //!
 //! At 1 row per request (the context names the site) and 64 rows (each
 //! row names its own). Each request is timed alone; the figures are the
 //! p50 and p99 per request, and what each source adds over `assembled` at
 //! the same percentile. Writes target/paddock/bench-features.md and prints
-//! it. Needs `cargo xtask build` (the linear guest) and `redis-server`.
+//! it. Needs `cargo xtask build` (the linear guest), `redis-server` and
+//! PostgreSQL's programs.
 
 use std::fmt::Write as _;
 use std::hint::black_box;
@@ -25,7 +28,7 @@ use paddock_guest::{LinearParams, Link, Packaged, encode_params};
 use paddock_host::{Row, Runtime};
 use paddock_serve::registry::artifact_path;
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
-use paddock_tests::{RedisServer, guest, open_contract, root, write_atomically};
+use paddock_tests::{PostgresServer, RedisServer, guest, open_contract, root, write_atomically};
 use semver::Version;
 
 const SITES: usize = 10_000;
@@ -93,7 +96,8 @@ fn main() {
     let full = std::env::args().any(|a| a == "--bench");
     let (rounds, singles_per_round, batches_per_round) = if full { (20, 2_000, 100) } else { (1, 20, 2) };
     let now = jiff::Timestamp::now().as_second();
-    let dirs: Vec<tempfile::TempDir> = (0..3).map(|_| tempfile::tempdir().unwrap()).collect();
+    let names = ["assembled", "table", "redis", "postgres"];
+    let dirs: Vec<tempfile::TempDir> = names.iter().map(|_| tempfile::tempdir().unwrap()).collect();
     // The table, and the same values in Redis.
     let mut csv = String::from("site,f2,f3,f4,f5,f6,f7,updated_at\n");
     for s in 0..SITES {
@@ -124,6 +128,13 @@ fn main() {
         }
         pipe.query::<()>(&mut c).unwrap();
     }
+    let postgres = PostgresServer::start();
+    postgres.execute(&format!(
+        "CREATE TABLE sites (site text PRIMARY KEY, f2 float8, f3 float8, f4 float8, f5 float8, f6 float8, f7 float8, updated_at timestamptz);
+         INSERT INTO sites SELECT 's' || s, {}, to_timestamp({now}) FROM generate_series(0, {}) s;",
+        (2..8).map(|f| format!("((s * 7 + {f} * 13) % 101)::float8 / 10")).collect::<Vec<_>>().join(", "),
+        SITES - 1
+    ));
     store(dirs[0].path(), None);
     store(
         dirs[1].path(),
@@ -136,8 +147,18 @@ fn main() {
             "site:{site}",
         )),
     );
+    store(
+        dirs[3].path(),
+        Some(plan(
+            &format!(
+                "[sources.sites]\npostgres = \"{}\"\nquery = \"SELECT * FROM sites WHERE site = ANY($1)\"\nkey = \"site\"\nbudget_ms = 20\nupdated = \"updated_at\"",
+                postgres.url()
+            ),
+            "{site}",
+        )),
+    );
     let registries: Vec<Registry> = dirs.iter().map(|d| open(d.path())).collect();
-    let names = ["assembled", "table", "redis"];
+    let stores = names.len();
 
     // Requests: per store, 1 row and 64 rows, cycling over the sites.
     let assembled = |s: usize| {
@@ -152,8 +173,8 @@ fn main() {
     let one_row =
         |store: usize, s: usize| if store == 0 { assembled(s) } else { Row::new().with("f0", 1.5).with("f1", 2.5) };
     let singles: Vec<Vec<Vec<Row>>> =
-        (0..3).map(|store| (0..SITES).map(|s| vec![one_row(store, s)]).collect()).collect();
-    let batches: Vec<Vec<Vec<Row>>> = (0..3)
+        (0..stores).map(|store| (0..SITES).map(|s| vec![one_row(store, s)]).collect()).collect();
+    let batches: Vec<Vec<Vec<Row>>> = (0..stores)
         .map(|store| {
             (0..SITES / 64)
                 .map(|b| (0..64).map(|i| if store == 0 { assembled(b * 64 + i) } else { keyed(b * 64 + i) }).collect())
@@ -163,7 +184,7 @@ fn main() {
 
     // Every store answers the same.
     for s in [0, 17, SITES - 1] {
-        let ys: Vec<f64> = (0..3)
+        let ys: Vec<f64> = (0..stores)
             .map(|k| {
                 registries[k].score(&Request::new("m", &contexts[s], &singles[k][s])).unwrap().estimates.values_at(0)[0]
             })
@@ -173,9 +194,9 @@ fn main() {
 
     let emptiness = RequestContext::new();
     let (mut single_times, mut batch_times): (Vec<Vec<u64>>, Vec<Vec<u64>>) =
-        (vec![Vec::new(); 3], vec![Vec::new(); 3]);
+        (vec![Vec::new(); stores], vec![Vec::new(); stores]);
     for round in 0..rounds {
-        for k in 0..3 {
+        for k in 0..stores {
             for i in 0..singles_per_round {
                 let s = (round * singles_per_round + i) % SITES;
                 let t = Instant::now();
@@ -191,18 +212,22 @@ fn main() {
             }
         }
     }
-    let usage = registries[2].source_usage();
-    let trips = usage.iter().map(|u| u.round_trips).sum::<u64>();
-    let fallbacks: u64 =
-        usage.iter().flat_map(|u| u.lookups.iter()).filter(|(o, _)| *o != "found").map(|(_, n)| n).sum();
-    assert_eq!(fallbacks, 0, "every Redis lookup found its value: {usage:?}");
+    let mut trips = 0;
+    for server in [2, 3] {
+        let usage = registries[server].source_usage();
+        trips = usage.iter().map(|u| u.round_trips).sum::<u64>();
+        let fallbacks: u64 =
+            usage.iter().flat_map(|u| u.lookups.iter()).filter(|(o, _)| *o != "found").map(|(_, n)| n).sum();
+        assert_eq!(fallbacks, 0, "every {} lookup found its value: {usage:?}", names[server]);
+        assert_eq!(trips as usize, rounds * (singles_per_round + batches_per_round) + 3, "one round trip per request");
+    }
 
     let mut out = String::new();
     let _ = writeln!(out, "| source | rows per request | p50 per request | p99 per request | p50 added | p99 added |");
     let _ = writeln!(out, "|---|---|---|---|---|---|");
     for (label, times) in [("1", &mut single_times), ("64", &mut batch_times)] {
         let p: Vec<(f64, f64)> = times.iter_mut().map(|t| percentiles(t)).collect();
-        for k in 0..3 {
+        for k in 0..stores {
             let added = if k == 0 {
                 ("—".to_owned(), "—".to_owned())
             } else {
@@ -219,13 +244,12 @@ fn main() {
             );
         }
     }
-    assert_eq!(trips as usize, rounds * (singles_per_round + batches_per_round) + 3, "one round trip per request");
     if !full {
         return;
     }
     let _ = writeln!(
         out,
-        "\n{} single-row and {} 64-row requests per source; Redis round trips: {trips} for {} requests (one per request).",
+        "\n{} single-row and {} 64-row requests per source; round trips to Redis, and to PostgreSQL: {trips} each for {} requests (one per request).",
         rounds * singles_per_round,
         rounds * batches_per_round,
         rounds * (singles_per_round + batches_per_round) + 3

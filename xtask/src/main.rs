@@ -419,7 +419,7 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
     std::fs::copy(&routes, store.join("routes.toml")).with_context(|| format!("copying {}", routes.display()))?;
     // The features plan and the tables the trainer wrote.
     std::fs::create_dir_all(store.join("tables"))?;
-    for table in ["sites.csv", "members.csv"] {
+    for table in ["sites.csv", "members.csv", "grid.csv"] {
         let from = trained.join("tables").join(table);
         std::fs::copy(&from, store.join("tables").join(table))
             .with_context(|| format!("copying {}", from.display()))?;

@@ -144,9 +144,10 @@ pub fn run(args: Args) -> Result<Outcome> {
         let hour_of_week = i64::from(local.weekday().to_monday_zero_offset()) * 24 + i64::from(local.hour());
         cells.insert("hour_of_week".into(), hour_of_week.to_string());
         // The keys: routes read the site and region; the overstay model's
-        // site and member features are looked up by site and member.
+        // site and member features are looked up by site and member, and
+        // the grid's load by the cell the plug-in's position falls in.
         let context: paddock_serve::RequestContext =
-            ["site", "region", "member"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
+            ["site", "region", "member", "lat", "lon"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
         let minutes_model = routed_model(registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
@@ -222,7 +223,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let count = |o| looked_up.get(&o).copied().unwrap_or(0);
         use paddock_serve::features::Outcome;
         outln!(
-            "overstay-risk read site occupancy and member overstay rate by key from the store's feature sources: {} found, {} missing (members not known yet: the feature is absent), {} stale",
+            "overstay-risk read site occupancy, member overstay rate and the grid's load around the plug-in's position (H3 cells) from the store's feature sources: {} found, {} missing (members not known yet, a site outside the grid operator's figures: the feature is absent), {} stale",
             count(Outcome::Found),
             count(Outcome::Missing),
             count(Outcome::Stale)

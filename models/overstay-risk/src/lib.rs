@@ -27,6 +27,9 @@ pub fn contract() -> Contract {
                 .about("Share of the site's bays in use at plug-in"),
             Feature::flag("weekend").about("Plug-in on Saturday or Sunday"),
             Feature::flag("fleet").about("Vehicle belongs to a fleet account"),
+            Feature::real("grid_load", Bounds::between(0.0, 1.0)).unit("fraction").optional().about(
+                "Mean share of the local grid's capacity in use around the site (its grid cell and the ring about it)",
+            ),
         ],
         outputs: vec![
             Output::new("overstay_probability", Bounds::between(0.0, 1.0))

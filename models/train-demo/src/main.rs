@@ -65,7 +65,8 @@ fn main() -> Result<()> {
 /// The tables the demo's features are looked up in, as a nightly job of
 /// the co-op would write them (invented values: demo only): each site's
 /// share of bays in use, each member's share of past sessions that
-/// overstayed. Members who joined lately are not in the table yet.
+/// overstayed, and the local grid's load by H3 cell around the sites.
+/// Members who joined lately are not in the table yet.
 fn feature_tables(dir: &Path) -> Result<()> {
     const UPDATED: &str = "2026-11-30T02:00:00+01:00";
     let sites = [
@@ -94,7 +95,38 @@ fn feature_tables(dir: &Path) -> Result<()> {
     for (member, rate) in members {
         csv.push_str(&format!("{member},{rate},{UPDATED}\n"));
     }
-    std::fs::write(dir.join("members.csv"), csv).context("writing tables/members.csv")
+    std::fs::write(dir.join("members.csv"), csv).context("writing tables/members.csv")?;
+    grid_table(dir, UPDATED)
+}
+
+/// The grid operator's load figures (invented: demo only), per H3 cell at
+/// resolution 8, for the cell of each site and the ring around it: the
+/// share of the local grid's capacity in use. Station Road lies outside
+/// the operator's figures, so its lookup finds nothing.
+fn grid_table(dir: &Path, updated: &str) -> Result<()> {
+    use h3o::{LatLng, Resolution};
+    // Positions (degrees) as the plug-in events carry them (cli/src/demo/plugins.csv;
+    // Station Road, at 59.872, 10.810, is not among them).
+    let sites = [
+        ("Harbour Lot", 59.9075, 10.7380, 0.55),
+        ("Market Hall", 59.9139, 10.7522, 0.81),
+        ("Depot North", 59.9490, 10.7680, 0.34),
+        ("Library Green", 59.9210, 10.7345, 0.62),
+    ];
+    let mut loads = std::collections::BTreeMap::new();
+    for (site, lat, lon, base) in sites {
+        let at = LatLng::new(lat, lon).with_context(|| format!("{site}'s position"))?;
+        let ring: Vec<h3o::CellIndex> = at.to_cell(Resolution::Eight).grid_disk(1);
+        for (i, cell) in ring.into_iter().enumerate() {
+            let load: f64 = base + 0.02 * (i as f64 - 3.0);
+            loads.entry(cell.to_string()).or_insert((load * 100.0).round() / 100.0);
+        }
+    }
+    let mut csv = String::from("cell,load,updated_at\n");
+    for (cell, load) in loads {
+        csv.push_str(&format!("{cell},{load},{updated}\n"));
+    }
+    std::fs::write(dir.join("grid.csv"), csv).context("writing tables/grid.csv")
 }
 
 /// The demo store's versions. Every one is trained on the same invented
@@ -165,11 +197,12 @@ fn fit_minutes(train: &[Session], settings: &boost::Settings, contract: &Contrac
 }
 
 fn train_overstay(train: &[Session], minutes: &Trained<Trees>) -> Result<Trained<Linear>> {
-    let raw: Vec<[f64; 6]> =
+    let raw: Vec<[f64; 7]> =
         train.iter().map(|s| s.overstay_features(predict(minutes, &s.minutes_features()))).collect();
-    // Mean imputation for the optional member rate, then standardise so the
-    // optimiser behaves; the scaling is folded back into the coefficients.
-    let k = 6;
+    // Mean imputation for the optional member rate and grid load, then
+    // standardise so the optimiser behaves; the scaling is folded back into
+    // the coefficients.
+    let k = 7;
     let mean: Vec<f64> = (0..k)
         .map(|j| {
             let v: Vec<f64> = raw.iter().map(|r| r[j]).filter(|v| !v.is_nan()).collect();
@@ -221,6 +254,7 @@ fn overstay_row(s: &Session, minutes: &Trained<Trees>) -> Row {
         .with("site_occupancy", s.site_occupancy)
         .with("weekend", s.hour_of_week >= 120)
         .with("fleet", s.fleet)
+        .with("grid_load", opt(s.grid_load))
 }
 
 fn record(

@@ -24,6 +24,9 @@ pub struct Session {
     /// Member's past overstay share; `None` for new members.
     pub member_overstay_rate: Option<f64>,
     pub site_occupancy: f64,
+    /// Share of the local grid's capacity in use around the site; absent
+    /// when the grid operator's figures have no cell there.
+    pub grid_load: Option<f64>,
     /// Whether the car stayed plugged in past full.
     pub overstayed: bool,
 }
@@ -57,6 +60,7 @@ pub fn session(rng: &mut impl Rng) -> Session {
     let minutes = ((bulk + taper) * 60.0 * noise + 2.0).min(2880.0);
     let member_overstay_rate = (!rng.random_bool(0.25)).then(|| rng.random_range(0.0f64..0.6));
     let site_occupancy = rng.random_range(0.0..1.0);
+    let grid_load = (!rng.random_bool(0.1)).then(|| rng.random_range(0.1f64..0.95));
     let hour = hour_of_week % 24;
     let weekend = hour_of_week >= 120;
     let logit = -2.6
@@ -64,6 +68,7 @@ pub fn session(rng: &mut impl Rng) -> Session {
         + if (17..=23).contains(&hour) { 0.9 } else { 0.0 }
         + 3.0 * member_overstay_rate.unwrap_or(0.15)
         + 1.2 * site_occupancy
+        + 0.9 * grid_load.unwrap_or(0.5)
         - if fleet { 0.8 } else { 0.0 }
         + if weekend { 0.4 } else { 0.0 };
     let overstayed = rng.random_bool(1.0 / (1.0 + (-logit).exp()));
@@ -79,6 +84,7 @@ pub fn session(rng: &mut impl Rng) -> Session {
         minutes,
         member_overstay_rate: member_overstay_rate.map(|r| (r * 100.0).round() / 100.0),
         site_occupancy: (site_occupancy * 100.0).round() / 100.0,
+        grid_load: grid_load.map(|g| (g * 100.0).round() / 100.0),
         overstayed,
     }
 }
@@ -100,7 +106,7 @@ impl Session {
 
     /// Dense features for `overstay-risk`, in its contract order, given the
     /// expected minutes.
-    pub fn overstay_features(&self, expected_minutes: f64) -> [f64; 6] {
+    pub fn overstay_features(&self, expected_minutes: f64) -> [f64; 7] {
         [
             expected_minutes,
             (self.hour_of_week % 24) as f64,
@@ -108,6 +114,7 @@ impl Session {
             self.site_occupancy,
             f64::from(u8::from(self.hour_of_week >= 120)),
             f64::from(u8::from(self.fleet)),
+            self.grid_load.unwrap_or(f64::NAN),
         ]
     }
 }
