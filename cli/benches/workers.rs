@@ -20,6 +20,10 @@
 //! written to its stdin while its answers are read (throughput, timed the
 //! same way), then one line at a time, each answer awaited (latency).
 //!
+//! With lookups: the same worker case on events that carry only a `site`
+//! key, `x` read from a Redis hash (`site:s{i}`, a `redis-server` this
+//! bench starts on loopback), against the same events with `x` carried.
+//!
 //! `cargo bench -p paddock-cli --bench workers` writes
 //! target/paddock/bench-workers.md and prints it; under `cargo test` one
 //! small round checks that every case runs and answers every event right.
@@ -34,7 +38,8 @@ use std::time::{Duration, Instant};
 use async_nats::jetstream;
 use futures_util::StreamExt;
 use paddock_tests::{
-    NatsServer, line_event, line_store, metrics_address, publish_line_events, root, terminate, work_process,
+    NatsServer, RedisServer, line_event, line_store, metrics_address, publish_events, root, terminate, work_process,
+    write_atomically,
 };
 
 const BIN: &str = env!("CARGO_BIN_EXE_paddock");
@@ -64,9 +69,20 @@ struct Measured {
     latency: Option<(Duration, Duration)>,
 }
 
+/// The event `e-{i}` carrying only its site, `s{i}`: `x` is looked up.
+fn keyed_event(i: usize) -> String {
+    format!(r#"{{"id": "e-{i}", "model": "m", "context": {{"site": "s{i}"}}, "row": {{}}}}"#)
+}
+
 /// Events/s through `workers` processes, then (with one worker) the
-/// latency of `pings` events one at a time.
-async fn through_workers(store: &Path, workers: usize, events: usize, pings: usize) -> Measured {
+/// latency of `pings` events one at a time; `event(i)` is the i-th event.
+async fn through_workers(
+    store: &Path,
+    workers: usize,
+    events: usize,
+    pings: usize,
+    event: fn(usize) -> String,
+) -> Measured {
     let server = NatsServer::start();
     let client = async_nats::ConnectOptions::new()
         .subscription_capacity(2 * events)
@@ -82,7 +98,7 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     .await
     .expect("the events stream is made");
     let mut answers = client.subscribe("paddock.answers").await.expect("subscribes");
-    publish_line_events(&js, "paddock.events", 0..events).await;
+    publish_events(&js, "paddock.events", 0..events, event).await;
     let state = tempfile::tempdir().expect("a state directory");
     let mut children: Vec<_> = (0..workers)
         .map(|k| {
@@ -121,7 +137,7 @@ async fn through_workers(store: &Path, workers: usize, events: usize, pings: usi
     let mut times = Vec::with_capacity(pings);
     for i in events..events + pings {
         let t = Instant::now();
-        js.publish("paddock.events", line_event(i).into()).await.expect("publishes");
+        js.publish("paddock.events", event(i).into()).await.expect("publishes");
         let m = tokio::time::timeout(Duration::from_secs(60), answers.next())
             .await
             .expect("the answer comes")
@@ -193,8 +209,27 @@ fn main() {
         tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().expect("a runtime");
 
     let stream = through_stream(dir.path(), events, pings);
-    let one = runtime.block_on(through_workers(dir.path(), 1, events, pings));
-    let two = runtime.block_on(through_workers(dir.path(), 2, events, 0));
+    let one = runtime.block_on(through_workers(dir.path(), 1, events, pings, line_event));
+    let two = runtime.block_on(through_workers(dir.path(), 2, events, 0, line_event));
+    // The same store with `x` in Redis, and events that carry only the key.
+    let redis = RedisServer::start();
+    {
+        let mut c = redis.connection().expect("connects");
+        let mut pipe = redis::pipe();
+        for i in 0..events + pings {
+            pipe.cmd("HSET").arg(format!("site:s{i}")).arg("x").arg(i).ignore();
+        }
+        pipe.query::<()>(&mut c).expect("the hashes are written");
+    }
+    let looked_up = tempfile::tempdir().expect("a store directory");
+    line_store(looked_up.path());
+    let plan = format!(
+        "[sources.live]\nredis = \"{}\"\nbudget_ms = 20\n[models.m]\nkeys = [\"site\"]\n[models.m.features]\n\
+         x = {{ source = \"live\", key = \"site:{{site}}\", field = \"x\", missing = \"fail\" }}\n",
+        redis.url()
+    );
+    write_atomically(&looked_up.path().join("features.toml"), plan.as_bytes());
+    let one_redis = runtime.block_on(through_workers(looked_up.path(), 1, events, pings, keyed_event));
 
     let ms = |d: Duration| format!("{:.2} ms", d.as_secs_f64() * 1e3);
     let mut out = String::new();
@@ -204,6 +239,7 @@ fn main() {
         ("`paddock stream` (baseline)", &stream),
         ("`paddock work`, 1 worker", &one),
         ("`paddock work`, 2 workers", &two),
+        ("`paddock work`, 1 worker, `x` from Redis", &one_redis),
     ] {
         let (p50, p99) = m.latency.map_or(("—".to_owned(), "—".to_owned()), |(a, b)| (ms(a), ms(b)));
         let _ = writeln!(
@@ -214,6 +250,11 @@ fn main() {
         );
     }
     let _ = writeln!(out, "\n{events} events per throughput case; {pings} events one at a time for latency.");
+    let _ = writeln!(
+        out,
+        "With `x` looked up in Redis, one worker carries {:.2}× the events/s of the same worker with `x` in the event.",
+        one_redis.events_per_second / one.events_per_second
+    );
     if !full {
         return;
     }

@@ -214,9 +214,20 @@ pub fn line_event(i: usize) -> String {
 /// Publishes [`line_event`] for each i of `range` to `subject`, awaiting
 /// the server's acks a thousand at a time.
 pub async fn publish_line_events(js: &async_nats::jetstream::Context, subject: &str, range: std::ops::Range<usize>) {
+    publish_events(js, subject, range, line_event).await;
+}
+
+/// Publishes `event(i)` for each i of `range` to `subject`, awaiting the
+/// server's acks a thousand at a time.
+pub async fn publish_events(
+    js: &async_nats::jetstream::Context,
+    subject: &str,
+    range: std::ops::Range<usize>,
+    event: impl Fn(usize) -> String,
+) {
     let mut confirms = Vec::with_capacity(1000);
     for i in range {
-        confirms.push(js.publish(subject.to_owned(), line_event(i).into()).await.expect("publishes"));
+        confirms.push(js.publish(subject.to_owned(), event(i).into()).await.expect("publishes"));
         if confirms.len() == 1000 {
             for c in confirms.drain(..) {
                 c.await.expect("the server stores the event");
