@@ -1130,3 +1130,44 @@ fn serve_says_at_start_what_it_serves_and_what_it_refused() {
     assert!(err.contains("refused overstay-risk/9.9.9.wasm: "), "{err}");
     assert!(err.contains("see GET /store or `paddock status` for every artifact"), "{err}");
 }
+
+/// A PostgreSQL source's password read from the environment variable its
+/// plan names: without it the server refuses the login, and `status` says
+/// the query could not be checked and why; with it the query is prepared
+/// and checked. The password shows nowhere (a PostgreSQL cluster of our
+/// own, `initdb` in a temporary directory).
+#[test]
+fn a_postgres_password_comes_from_the_environment_and_never_shows() {
+    let server = paddock_tests::PostgresServer::start();
+    server.execute("CREATE TABLE grid (site text PRIMARY KEY, x float8); INSERT INTO grid VALUES ('a', 3);");
+    let dir = tempfile::tempdir().unwrap();
+    paddock_tests::line_store(dir.path());
+    let plan = format!(
+        "[sources.grid]\npostgres = \"{}\"\nquery = \"SELECT site, x FROM grid WHERE site = ANY($1)\"\nkey = \"site\"\npassword_env = \"GRID_DB_PASSWORD\"\n\
+         [models.m]\nkeys = [\"site\"]\n[models.m.features]\nx = {{ source = \"grid\", key = \"{{site}}\", field = \"x\", missing = \"fail\" }}\n",
+        server.url_without_password()
+    );
+    std::fs::write(dir.path().join("features.toml"), plan).unwrap();
+    let status = |password: Option<&str>| {
+        let mut cmd = Command::new(env!("CARGO_BIN_EXE_paddock"));
+        cmd.args(["status", "--json", "--store"])
+            .arg(dir.path())
+            .env_remove("GRID_DB_PASSWORD")
+            .env_remove("PGPASSWORD");
+        if let Some(p) = password {
+            cmd.env("GRID_DB_PASSWORD", p);
+        }
+        let out = cmd.output().unwrap();
+        let shown = format!("{}{}", text(&out.stdout), text(&out.stderr));
+        assert!(!shown.contains(paddock_tests::PostgresServer::PASSWORD), "{shown}");
+        let status: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap_or_else(|e| panic!("{e}: {shown}"));
+        status["features"]["servers"][0].clone()
+    };
+    let without = status(None);
+    assert_eq!(without["kind"], "postgres", "{without}");
+    let why = without["unchecked"].as_str().unwrap_or_else(|| panic!("checked without a password? {without}"));
+    assert!(why.contains("password"), "{why}");
+    let with = status(Some(paddock_tests::PostgresServer::PASSWORD));
+    assert_eq!(with["unchecked"], serde_json::Value::Null, "{with}");
+    assert_eq!(with["url"].as_str().unwrap(), server.url_without_password());
+}

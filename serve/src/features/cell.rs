@@ -122,7 +122,7 @@ pub fn around(cell: CellIndex, rings: u32) -> Vec<CellIndex> {
 /// How the values found around a cell become one.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 #[non_exhaustive]
-pub enum Combine {
+pub enum Aggregate {
     /// Their mean.
     Mean,
     /// The largest.
@@ -133,17 +133,17 @@ pub enum Combine {
     Sum,
 }
 
-impl Combine {
+impl Aggregate {
     /// Reads `mean`, `max`, `min` or `sum`.
     ///
     /// # Errors
     /// A message naming the word and the choices.
-    pub fn parse(word: &str) -> Result<Combine, String> {
+    pub fn parse(word: &str) -> Result<Aggregate, String> {
         match word {
-            "mean" => Ok(Combine::Mean),
-            "max" => Ok(Combine::Max),
-            "min" => Ok(Combine::Min),
-            "sum" => Ok(Combine::Sum),
+            "mean" => Ok(Aggregate::Mean),
+            "max" => Ok(Aggregate::Max),
+            "min" => Ok(Aggregate::Min),
+            "sum" => Ok(Aggregate::Sum),
             other => Err(format!("combine = `{other}`: say \"mean\", \"max\", \"min\" or \"sum\"")),
         }
     }
@@ -154,10 +154,10 @@ impl Combine {
             return None;
         }
         Some(match self {
-            Combine::Mean => values.iter().sum::<f64>() / values.len() as f64,
-            Combine::Max => values.iter().copied().fold(f64::NEG_INFINITY, f64::max),
-            Combine::Min => values.iter().copied().fold(f64::INFINITY, f64::min),
-            Combine::Sum => values.iter().sum(),
+            Aggregate::Mean => values.iter().sum::<f64>() / values.len() as f64,
+            Aggregate::Max => values.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+            Aggregate::Min => values.iter().copied().fold(f64::INFINITY, f64::min),
+            Aggregate::Sum => values.iter().sum(),
         })
     }
 }
@@ -198,11 +198,11 @@ mod tests {
     #[test]
     fn combining_follows_its_word() {
         let v = [1.0, 4.0, 2.5];
-        assert_eq!(Combine::parse("mean").unwrap().apply(&v), Some(2.5));
-        assert_eq!(Combine::parse("max").unwrap().apply(&v), Some(4.0));
-        assert_eq!(Combine::parse("min").unwrap().apply(&v), Some(1.0));
-        assert_eq!(Combine::parse("sum").unwrap().apply(&v), Some(7.5));
-        assert_eq!(Combine::Mean.apply(&[]), None);
-        assert!(Combine::parse("median").is_err());
+        assert_eq!(Aggregate::parse("mean").unwrap().apply(&v), Some(2.5));
+        assert_eq!(Aggregate::parse("max").unwrap().apply(&v), Some(4.0));
+        assert_eq!(Aggregate::parse("min").unwrap().apply(&v), Some(1.0));
+        assert_eq!(Aggregate::parse("sum").unwrap().apply(&v), Some(7.5));
+        assert_eq!(Aggregate::Mean.apply(&[]), None);
+        assert!(Aggregate::parse("median").is_err());
     }
 }

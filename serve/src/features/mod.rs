@@ -407,7 +407,7 @@ impl VersionPlan {
             if let Some(around) = lookup.around {
                 let fits = match (&f.domain, around.combine) {
                     (Domain::Real(_), _) => true,
-                    (Domain::Whole(_), combine) => combine != cell::Combine::Mean,
+                    (Domain::Whole(_), combine) => combine != cell::Aggregate::Mean,
                     _ => false,
                 };
                 if !fits {
@@ -761,7 +761,7 @@ fn carries(row: &Row, feature: &str) -> bool {
 struct Batch {
     index: std::collections::HashMap<String, usize>,
     asks: Vec<(String, Vec<String>)>,
-    answer: Option<remote::Outcome>,
+    answer: Option<remote::Settled>,
 }
 
 impl Batch {

@@ -50,7 +50,7 @@ use serde::Deserialize;
 use paddock_host::contract::Contract;
 use paddock_host::contract::rows::Value;
 
-use super::cell::{self, CellKey, Combine, Unplaced};
+use super::cell::{self, Aggregate, CellKey, Unplaced};
 use super::postgres::PostgresSettings;
 use super::problem::PlanProblem;
 
@@ -141,7 +141,7 @@ pub struct Around {
     /// How many rings (1 reads 7 cells, 2 reads 19).
     pub rings: u32,
     /// How the values found combine.
-    pub combine: Combine,
+    pub combine: Aggregate,
 }
 
 /// What a missing or stale value becomes.
@@ -432,7 +432,7 @@ const MAX_RINGS: u32 = 4;
 
 /// A lookup's `around` and `combine`, or what is wrong with them.
 fn around(l: &RawLookup, key: Option<&Template>) -> Result<Option<Around>, String> {
-    let combine = l.combine.as_deref().map(Combine::parse).transpose()?;
+    let combine = l.combine.as_deref().map(Aggregate::parse).transpose()?;
     match (l.around, combine) {
         (None, None) => Ok(None),
         (None, Some(_)) => Err("`combine` needs `around` (the rings of cells around the position to read)".into()),
@@ -713,7 +713,7 @@ charger_kw = "request"
         let Source::Postgres(settings) = &plan.sources["stats"] else { panic!("{:?}", plan.sources) };
         assert_eq!((settings.connections, settings.budget.as_millis(), settings.key.as_str()), (2, 10, "site"));
         let Supply::Lookup(x) = &plan.models["m"].features["x"] else { panic!() };
-        assert_eq!(x.around, Some(Around { rings: 2, combine: Combine::Max }));
+        assert_eq!(x.around, Some(Around { rings: 2, combine: Aggregate::Max }));
         let keys: BTreeMap<String, String> = [("lat".into(), "48.85".into()), ("lon".into(), "2.35".into())].into();
         let mut ring = Vec::new();
         x.key.render_around(&keys, 2, &mut ring).unwrap();

@@ -408,7 +408,7 @@ impl From<tokio_postgres::Error> for Failure {
     fn from(e: tokio_postgres::Error) -> Failure {
         match e.as_db_error() {
             Some(_) => Failure::Failed(refused(&e).to_string()),
-            None => Failure::Lost(e.to_string()),
+            None => Failure::Lost(chain(&e)),
         }
     }
 }
@@ -419,11 +419,11 @@ impl Inner {
     /// could not be reached; the inner: it refused the query, or the query
     /// does not take an array of keys.
     async fn describe(&self) -> Result<Result<Described, PostgresSourceError>, String> {
-        let client = self.pool.get().await.map_err(|e| e.to_string())?;
+        let client = self.pool.get().await.map_err(|e| chain(&e))?;
         let statement = match client.prepare_cached(&self.query).await {
             Ok(s) => s,
             Err(e) if e.as_db_error().is_some() => return Ok(Err(refused(&e))),
-            Err(e) => return Err(e.to_string()),
+            Err(e) => return Err(chain(&e)),
         };
         if let Err(e) = KeyArray::of(statement.params()) {
             return Ok(Err(e));
@@ -438,7 +438,7 @@ impl Inner {
         let left = || deadline.saturating_duration_since(Instant::now());
         let client = match tokio::time::timeout(left(), self.pool.get()).await {
             Ok(Ok(c)) => c,
-            Ok(Err(e)) => return Err(Failure::Failed(e.to_string())),
+            Ok(Err(e)) => return Err(Failure::Failed(chain(&e))),
             Err(_) => return Err(Failure::Late),
         };
         let query = async {
@@ -531,6 +531,22 @@ fn key_text(row: &tokio_postgres::Row, at: usize) -> Result<Option<String>, toki
     })
 }
 
+/// An error and each cause under it, `: `-joined (the client's errors keep
+/// the why — "password missing", "connection refused" — in their causes).
+fn chain(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut cause = e.source();
+    while let Some(c) = cause {
+        let said = c.to_string();
+        if !text.contains(&said) {
+            text.push_str(": ");
+            text.push_str(&said);
+        }
+        cause = c.source();
+    }
+    text
+}
+
 /// What the server said when it refused the query, and where.
 fn refused(e: &tokio_postgres::Error) -> PostgresSourceError {
     let problem = match e.as_db_error() {
@@ -544,7 +560,7 @@ fn refused(e: &tokio_postgres::Error) -> PostgresSourceError {
             }
             text
         }
-        None => e.to_string(),
+        None => chain(e),
     };
     PostgresSourceError::Refused { problem }
 }

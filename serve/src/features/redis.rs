@@ -22,7 +22,7 @@ use redis::aio::MultiplexedConnection;
 
 use super::breaker::Breaker;
 use super::counts::{Ended, SourceCounts};
-use super::remote::{Asks, Got, Outcome, Reply, ServerRead, Trouble};
+use super::remote::{Asks, Got, Reply, ServerRead, Settled, Trouble};
 
 /// A Redis server read as a feature source.
 pub struct RedisSource {
@@ -164,7 +164,7 @@ impl Inner {
         read: Result<Result<Answer, redis::RedisError>, tokio::time::error::Elapsed>,
         took: Duration,
         budget: Duration,
-    ) -> Outcome {
+    ) -> Settled {
         // A connection that failed, or kept a read past its budget, is
         // dropped: the next read starts a new one, and reads never pile up
         // on a server that stopped answering.
@@ -199,10 +199,10 @@ pub fn shown_url(url: &str) -> String {
     let Some((scheme, rest)) = url.split_once("://") else { return url.to_owned() };
     let (authority, path) = rest.split_at(rest.find('/').unwrap_or(rest.len()));
     match authority.rsplit_once('@') {
-        Some((user, host)) => {
-            let user = user.split_once(':').map_or(user, |(u, _)| u);
-            format!("{scheme}://{user}:***@{host}{path}")
-        }
+        Some((user, host)) => match user.split_once(':') {
+            Some((user, _)) => format!("{scheme}://{user}:***@{host}{path}"),
+            None => url.to_owned(),
+        },
         None => url.to_owned(),
     }
 }
@@ -219,5 +219,6 @@ mod tests {
         );
         assert_eq!(shown_url("redis://:s3cret@127.0.0.1/"), "redis://:***@127.0.0.1/");
         assert_eq!(shown_url("redis://127.0.0.1:6379/"), "redis://127.0.0.1:6379/");
+        assert_eq!(shown_url("postgresql://paddock@db:5432/f"), "postgresql://paddock@db:5432/f");
     }
 }

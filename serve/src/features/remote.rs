@@ -51,19 +51,19 @@ pub enum Trouble {
 }
 
 /// A read's outcome, as the source settled it.
-pub type Outcome = Result<Replies, Trouble>;
+pub type Settled = Result<Replies, Trouble>;
 
 /// Where a read's answer goes: a thread blocked on it, or a task awaiting it.
 pub enum Reply {
     /// A thread waiting in [`Pending::wait`].
-    Blocking(std::sync::mpsc::SyncSender<Outcome>),
+    Blocking(std::sync::mpsc::SyncSender<Settled>),
     /// A task awaiting [`Awaited::wait`].
-    Async(tokio::sync::oneshot::Sender<Outcome>),
+    Async(tokio::sync::oneshot::Sender<Settled>),
 }
 
 impl Reply {
     /// Hands the answer over; a waiter that gave up is gone: nothing to tell.
-    pub fn send(self, outcome: Outcome) {
+    pub fn send(self, outcome: Settled) {
         match self {
             Reply::Blocking(tx) => drop(tx.send(outcome)),
             Reply::Async(tx) => drop(tx.send(outcome)),
@@ -81,12 +81,12 @@ fn give_up_at(budget: Duration) -> Instant {
 
 /// A read sent, its answer to be waited for by a thread.
 pub struct Pending {
-    state: Result<(std::sync::mpsc::Receiver<Outcome>, Instant, Duration), Outcome>,
+    state: Result<(std::sync::mpsc::Receiver<Settled>, Instant, Duration), Settled>,
 }
 
 impl Pending {
     /// An answer known without asking (nothing to ask, the breaker open).
-    pub fn done(outcome: Outcome) -> Pending {
+    pub fn done(outcome: Settled) -> Pending {
         Pending { state: Err(outcome) }
     }
 
@@ -101,7 +101,7 @@ impl Pending {
     /// # Errors
     /// The source's [`Trouble`], or [`Trouble::Timeout`] when no answer
     /// came in time.
-    pub fn wait(self) -> Outcome {
+    pub fn wait(self) -> Settled {
         match self.state {
             Err(outcome) => outcome,
             Ok((rx, until, budget)) => rx
@@ -113,12 +113,12 @@ impl Pending {
 
 /// A read sent, its answer to be awaited by a task.
 pub struct Awaited {
-    state: Result<(tokio::sync::oneshot::Receiver<Outcome>, Instant, Duration), Outcome>,
+    state: Result<(tokio::sync::oneshot::Receiver<Settled>, Instant, Duration), Settled>,
 }
 
 impl Awaited {
     /// An answer known without asking (nothing to ask, the breaker open).
-    pub fn done(outcome: Outcome) -> Awaited {
+    pub fn done(outcome: Settled) -> Awaited {
         Awaited { state: Err(outcome) }
     }
 
@@ -132,7 +132,7 @@ impl Awaited {
     ///
     /// # Errors
     /// As [`Pending::wait`].
-    pub async fn wait(self) -> Outcome {
+    pub async fn wait(self) -> Settled {
         match self.state {
             Err(outcome) => outcome,
             Ok((rx, until, budget)) => {
@@ -167,7 +167,7 @@ pub trait ServerRead {
     ///
     /// # Errors
     /// [`Trouble`]: no answer within the budget, a failure, or the breaker open.
-    fn fetch(&self, asks: &Asks) -> Outcome {
+    fn fetch(&self, asks: &Asks) -> Settled {
         self.send(asks).wait()
     }
 
@@ -197,7 +197,7 @@ pub trait ServerRead {
 
 /// The answer when it is known without asking: nothing to ask, or the
 /// breaker open.
-fn known<S: ServerRead + ?Sized>(source: &S, asks: &Asks) -> Option<Outcome> {
+fn known<S: ServerRead + ?Sized>(source: &S, asks: &Asks) -> Option<Settled> {
     if asks.is_empty() {
         return Some(Ok(Vec::new()));
     }
