@@ -22,8 +22,11 @@ fn reference() -> Value {
     serde_json::from_slice(&text).unwrap()
 }
 
+/// The WASI policy's defaults, and a minute-long deadline: a call to a
+/// Python or JavaScript guest on a machine busy with other builds must
+/// not be late.
 fn wasi() -> ModelOptions {
-    ModelOptions { wasi: Some(WasiPolicy::default()), ..ModelOptions::default() }
+    ModelOptions { wasi: Some(WasiPolicy::default()), ..paddock_tests::unhurried() }
 }
 
 fn rows(r: &Value) -> Vec<Row> {

@@ -44,8 +44,10 @@ fn x(v: f64) -> Vec<Row> {
     vec![Row::new().with("x", v)]
 }
 
+/// The options of a case, with a minute-long deadline: a busy machine must
+/// not make a guest's call late.
 fn options(isolation: Isolation, priming: Priming) -> ModelOptions {
-    ModelOptions { isolation, priming, ..ModelOptions::default() }
+    ModelOptions { isolation, priming, ..paddock_tests::unhurried() }
 }
 
 /// Fresh per call, primed (the default for that isolation): every call
