@@ -91,12 +91,13 @@ fn main() -> Result<()> {
         }
         "test" => test(&root, &rest),
         "deps" => deps(&root),
+        "fuzz-build" => build_fuzz_targets(&root).map(drop),
         "fuzz" => {
             let seconds: u64 = rest.first().map(|s| s.parse()).transpose().context("fuzz SECONDS")?.unwrap_or(30);
             fuzz(&root, seconds)
         }
         _ => {
-            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz> [args for the final command]");
+            eprintln!("usage: cargo xtask <build|demo|guests|test|deps|fuzz|fuzz-build> [args for the final command]");
             if task == "help" { Ok(()) } else { bail!("unknown task `{task}`") }
         }
     }
