@@ -19,6 +19,8 @@ use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 use paddock_tests::{PostgresServer as Server, unhurried, write_atomically};
 use semver::Version;
 
+use super::{ask, assert_resumes};
+
 const STATS: &str = "CREATE TABLE site_stats (
     site text PRIMARY KEY, avg_minutes numeric, occupancy integer, fast_share double precision,
     busy boolean, plug text, bay char(6), updated_at timestamptz);
@@ -245,14 +247,6 @@ fn store(server: &Server, query: &str, missing: &str, budget_ms: u64) -> (tempfi
 
 const GRID: &str = "SELECT site, x FROM grid WHERE site = ANY($1)";
 
-/// Scores one row for `site`: its value, or NaN when it got none, and what x did.
-fn ask(reg: &Registry, site: &str) -> (f64, Outcome) {
-    let context: RequestContext = [("site".to_owned(), site.to_owned())].into();
-    let a = reg.score(&Request::new("m", &context, &[Row::new()]).every_lookup()).unwrap_or_else(|e| panic!("{e}"));
-    let value = a.rows().next().unwrap().map_or(f64::NAN, |r| r[0]);
-    (value, a.lookups[0].first().map_or(Outcome::Found, |f| f.outcome))
-}
-
 /// The batch job's way: a new table written beside the live one, then
 /// swapped in by renaming, in one transaction, while requests of 40 rows
 /// run. Each request sees one generation whole, and never one older than
@@ -306,13 +300,7 @@ fn a_stopped_server_falls_back_and_is_read_again_when_it_returns() {
     }
     server.restart();
     server.execute("UPDATE grid SET x = 4");
-    let mut answers = Vec::new();
-    let resumed = paddock_tests::came_true(Duration::from_secs(60), Duration::from_millis(10), || {
-        let got = ask(&reg, "a");
-        answers.push(got.1);
-        got == (9.0, Outcome::Found)
-    });
-    assert!(resumed, "reads did not resume: {:?}", &answers[answers.len().saturating_sub(5)..]);
+    assert_resumes(&reg);
     let usage = reg.source_usage();
     assert!(usage[0].errors + usage[0].skipped >= 20, "{:?}", usage[0]);
 }

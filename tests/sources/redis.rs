@@ -12,6 +12,8 @@ use paddock_serve::registry::FeaturesState;
 use paddock_serve::{Registry, RegistryOptions, Request, RequestContext};
 use paddock_tests::{RedisServer as Server, unhurried, write_atomically};
 
+use super::{ask, assert_resumes};
+
 /// A store serving `m` with `x` from Redis, `missing` its fallback.
 fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
@@ -32,17 +34,6 @@ fn plan(store: &Path, server: &Server, missing: &str, budget_ms: u64) {
         server.url()
     );
     write_atomically(&store.join("features.toml"), text.as_bytes());
-}
-
-fn site(s: &str) -> RequestContext {
-    [("site".to_owned(), s.to_owned())].into()
-}
-
-/// Scores one row for `site`: its value, or NaN when it got none, and what x did.
-fn ask(reg: &Registry, s: &str) -> (f64, Outcome) {
-    let a = reg.score(&Request::new("m", &site(s), &[Row::new()]).every_lookup()).unwrap_or_else(|e| panic!("{e}"));
-    let value = a.rows().next().unwrap().map_or(f64::NAN, |r| r[0]);
-    (value, a.lookups[0].first().map_or(Outcome::Found, |f| f.outcome))
 }
 
 #[test]
@@ -118,14 +109,7 @@ fn a_stopped_redis_falls_back_and_is_read_again_when_it_returns() {
     }
     server.restart();
     server.cmd(&["HSET", "site:a", "x", "4"]);
-    // The breaker's pause ends, the source reconnects: asked until then.
-    let mut answers = Vec::new();
-    let resumed = paddock_tests::came_true(Duration::from_secs(60), Duration::from_millis(10), || {
-        let got = ask(&reg, "a");
-        answers.push(got.1);
-        got == (9.0, Outcome::Found)
-    });
-    assert!(resumed, "reads did not resume: {:?}", &answers[answers.len().saturating_sub(5)..]);
+    assert_resumes(&reg);
 }
 
 /// A Redis busy past the source's budget (`DEBUG SLEEP`): the request
