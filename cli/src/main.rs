@@ -23,6 +23,13 @@ macro_rules! out {
     }};
 }
 
+/// The binary's allocator: `serve`, `stream` and `work` allocate and free
+/// on many threads at once, where glibc's arenas lock (profiled under
+/// `scripts/http_load.py lookups`). The library leaves the choice to its
+/// embedder.
+#[global_allocator]
+static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
+
 mod cmd;
 mod common;
 mod flags;
