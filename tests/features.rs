@@ -100,6 +100,25 @@ fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
     );
 }
 
+/// Rows that share a key take what the row before them read under it; a
+/// row under another key reads its own, and a key that finds nothing fails
+/// each of its rows, whatever the rows around it.
+#[test]
+fn rows_sharing_keys_each_get_their_own_keys_value() {
+    let (_dir, reg) = store(1.0);
+    let sites = ["s1", "s1", "s2", "s2", "s1", "nowhere", "nowhere", "s3", "s3"];
+    let rows: Vec<Row> = sites.iter().map(|s| Row::new().with("site", *s)).collect();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap();
+    assert_eq!(a.scored, vec![1, 2, 3, 4, 5, 8, 9]);
+    for (k, &n) in a.scored.iter().enumerate() {
+        let i: f64 = sites[n - 1][1..].parse().unwrap();
+        assert_eq!(a.estimates.values_at(k)[0], 2.0 * i + 1.0, "row {n}");
+    }
+    let problems: Vec<String> = a.problems.iter().map(ToString::to_string).collect();
+    assert_eq!(problems.len(), 2, "{problems:?}");
+    assert!(problems[0].starts_with("row 6,") && problems[1].starts_with("row 7,"), "{problems:?}");
+}
+
 /// Requests scoring 64 rows (one per site) run while the table is replaced
 /// again and again: each answer is wholly the old table's (x = i) or the
 /// new one's (x = 2i), never a mix.

@@ -165,3 +165,46 @@ fn a_budget_past_the_deadline_is_refused() {
         ]
     );
 }
+
+/// Sources on one server share its connections: one for the reads of
+/// plain threads, one per async runtime that reads (counted by Redis's own
+/// `total_connections_received`, each count taken on a connection of its
+/// own). A runtime that stops leaves its connection behind; the next
+/// runtime reads on one of its own.
+#[test]
+fn sources_on_one_server_share_a_connection_per_runtime() {
+    use paddock_serve::features::{Got, RedisSource, ServerRead, SourceCounts};
+    let server = Server::start();
+    server.cmd(&["HSET", "site:a", "x", "3"]);
+    server.cmd(&["HSET", "member:m", "rate", "0.25"]);
+    let budget = Duration::from_secs(60);
+    let sites = RedisSource::new(&server.url(), budget, std::sync::Arc::new(SourceCounts::default())).unwrap();
+    let members = RedisSource::new(&server.url(), budget, std::sync::Arc::new(SourceCounts::default())).unwrap();
+    let site = [("site:a".to_owned(), vec!["x".to_owned()])];
+    let member = [("member:m".to_owned(), vec!["rate".to_owned()])];
+    let read = |s: &RedisSource, asks: &[(String, Vec<String>)]| s.fetch(asks).unwrap();
+    let opened = || server.stat("total_connections_received");
+    let c0 = opened();
+    for _ in 0..3 {
+        assert_eq!(read(&sites, &site), vec![vec![Some(Got::Text("3".into()))]]);
+        assert_eq!(read(&members, &member), vec![vec![Some(Got::Text("0.25".into()))]]);
+    }
+    let c1 = opened();
+    assert_eq!(c1 - c0, 2, "one connection for both sources' blocking reads (and the count's own)");
+    let on_runtime = |c: &mut dyn FnMut() -> u64| {
+        let runtime = tokio::runtime::Builder::new_multi_thread().worker_threads(2).enable_all().build().unwrap();
+        runtime.block_on(async {
+            for _ in 0..3 {
+                let (a, b) = (sites.send_async(&site), members.send_async(&member));
+                assert_eq!(a.wait().await.unwrap(), vec![vec![Some(Got::Text("3".into()))]]);
+                assert_eq!(b.wait().await.unwrap(), vec![vec![Some(Got::Text("0.25".into()))]]);
+            }
+        });
+        c()
+    };
+    let c2 = on_runtime(&mut || opened());
+    assert_eq!(c2 - c1, 2, "one more connection for the runtime's reads");
+    let c3 = on_runtime(&mut || opened());
+    assert_eq!(c3 - c2, 2, "a new runtime reads on a connection of its own");
+    assert_eq!(read(&sites, &site), vec![vec![Some(Got::Text("3".into()))]], "blocking reads carry on");
+}

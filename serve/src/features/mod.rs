@@ -485,7 +485,7 @@ impl VersionPlan {
         let pending: Vec<_> =
             batches.iter().map(|(name, batch)| self.server(name).map(|s| s.send(&batch.asks))).collect();
         for (batch, pending) in batches.values_mut().zip(pending) {
-            batch.answer = pending.map(remote::Pending::wait);
+            batch.settle(pending.map(remote::Pending::wait));
         }
         self.finish(prepared, &batches, now, report)
     }
@@ -501,18 +501,19 @@ impl VersionPlan {
         report: Lookups,
     ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
         let (prepared, mut batches) = self.reads(context, rows);
-        let pending: Vec<_> =
-            batches.iter().map(|(name, batch)| self.server(name).map(|s| s.send_async(&batch.asks))).collect();
-        // Each was sent already: awaiting them in turn waits for the slowest.
-        let mut answers = Vec::with_capacity(pending.len());
-        for p in pending {
-            answers.push(match p {
-                Some(p) => Some(p.wait().await),
-                None => None,
-            });
-        }
+        // Every source read at once; the request waits for the slowest.
+        let answers = futures_util::future::join_all(batches.iter().map(|(name, batch)| {
+            let awaited = self.server(name).map(|s| s.send_async(&batch.asks));
+            async move {
+                match awaited {
+                    Some(a) => Some(a.wait().await),
+                    None => None,
+                }
+            }
+        }))
+        .await;
         for (batch, answer) in batches.values_mut().zip(answers) {
-            batch.answer = answer;
+            batch.settle(answer);
         }
         self.finish(prepared, &batches, now, report)
     }
@@ -574,6 +575,9 @@ impl VersionPlan {
     ) -> Vec<Result<(Row, Vec<Fetched>), GatherError>> {
         // The scratch buffers live on the thread: a request allocates none.
         SCRATCH.with_borrow_mut(|scratch| {
+            // What a row read is remembered within this request only.
+            scratch.memo.clear();
+            scratch.memo.resize_with(self.steps.len(), || None);
             prepared.into_iter().map(|(keys, row)| self.complete(&keys, row, now, batches, scratch, report)).collect()
         })
     }
@@ -624,12 +628,12 @@ impl VersionPlan {
         scratch: &mut Scratch,
         report: Lookups,
     ) -> Result<(Row, Vec<Fetched>), GatherError> {
-        let Scratch { key: buf, probed_key, probed, ring } = scratch;
+        let Scratch { key: buf, probed_key, probed, ring, memo } = scratch;
         *probed = None;
         let mut out = row;
         let mut fetched = Vec::new();
         let all = report == Lookups::All;
-        for step in &self.steps {
+        for (index, step) in self.steps.iter().enumerate() {
             // Each step sets only its own feature, so `out` still shows
             // what the row itself carried for this one.
             if carries(&out, &step.feature) {
@@ -663,36 +667,29 @@ impl VersionPlan {
                     None
                 }
             };
-            let read = match (key, &step.via) {
-                (None, _) => Read::Found(None),
-                (Some(_), _) if step.lookup.around.is_some() => read_around(step, keys, batches, ring, now)?,
-                (Some(key), Via::Table { table, column }) => {
-                    let id = Arc::as_ptr(table);
-                    let at = match probed {
-                        Some((t, at)) if *t == id && probed_key == key => *at,
-                        _ => {
-                            let at = table.row(key);
-                            probed_key.clear();
-                            probed_key.push_str(key);
-                            *probed = Some((id, at));
-                            at
-                        }
-                    };
-                    Read::Found(at.map(|at| table.at(at, *column)))
-                }
-                (Some(key), Via::Remote { .. }) => read_remote(step, key, batches),
+            // A row under the key the row before read for this step: the
+            // same answer (rows of a request often share their keys).
+            let remembered = match (key, &memo[index]) {
+                (Some(key), Some(m)) if step.lookup.around.is_none() && m.key == key => Some(m),
+                _ => None,
             };
-            let (outcome, cell, age, trouble) = match read {
-                Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
-                Read::Stale(age) => (Outcome::Stale, None, age, None),
-                Read::Found(found) => {
-                    let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
-                    let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
-                    match found {
-                        Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(cell), age, None),
-                        Some((Cell::Absent, _)) | None => (Outcome::Missing, None, age, None),
-                        Some(_) => (Outcome::Stale, None, age, None),
-                    }
+            let (outcome, value, age, trouble) = match remembered {
+                Some(m) => (m.outcome, m.value.clone(), m.age, m.trouble.clone()),
+                None => {
+                    let read = self.read_step(step, key, keys, batches, (probed_key, probed, ring), now)?;
+                    let value = match read.1 {
+                        Some(cell) => Some(value_of(cell, step, key.unwrap_or_default())?),
+                        None => None,
+                    };
+                    let (outcome, age, trouble) = (read.0, read.2, read.3);
+                    memo[index] = key.filter(|_| step.lookup.around.is_none()).map(|key| Memo {
+                        key: key.to_owned(),
+                        outcome,
+                        value: value.clone(),
+                        age,
+                        trouble: trouble.clone(),
+                    });
+                    (outcome, value, age, trouble)
                 }
             };
             step.counts.lookup(outcome);
@@ -703,10 +700,6 @@ impl VersionPlan {
                     format!("(no key: {})", unrendered.as_ref().map(ToString::to_string).unwrap_or_default())
                 }
                 (None, _) => format!("(no key for {})", step.lookup.key.text()),
-            };
-            let value = match cell {
-                Some(cell) => Some(value_of(cell, step, key.unwrap_or_default())?),
-                None => None,
             };
             let value = match (value, &step.lookup.missing) {
                 (Some(v), _) => v,
@@ -733,6 +726,53 @@ impl VersionPlan {
         }
         Ok((out, fetched))
     }
+
+    /// What one step reads under `key` (`None`: the row has no key for
+    /// it): the outcome, the cell found, its age, and why the source gave
+    /// nothing.
+    #[allow(clippy::type_complexity)]
+    fn read_step<'a>(
+        &self,
+        step: &'a Step,
+        key: Option<&str>,
+        keys: &BTreeMap<String, String>,
+        batches: &'a BTreeMap<&str, Batch>,
+        (probed_key, probed, ring): (&mut String, &mut Option<(*const Table, Option<usize>)>, &mut Vec<String>),
+        now: f64,
+    ) -> Result<(Outcome, Option<Cell<'a>>, Option<f64>, Option<Trouble>), GatherError> {
+        let read = match (key, &step.via) {
+            (None, _) => Read::Found(None),
+            (Some(_), _) if step.lookup.around.is_some() => read_around(step, keys, batches, ring, now)?,
+            (Some(key), Via::Table { table, column }) => {
+                let id = Arc::as_ptr(table);
+                let at = match probed {
+                    Some((t, at)) if *t == id && probed_key == key => *at,
+                    _ => {
+                        let at = table.row(key);
+                        probed_key.clear();
+                        probed_key.push_str(key);
+                        *probed = Some((id, at));
+                        at
+                    }
+                };
+                Read::Found(at.map(|at| table.at(at, *column)))
+            }
+            (Some(key), Via::Remote { .. }) => read_remote(step, key, batches),
+        };
+        Ok(match read {
+            Read::Unavailable(t) => (Outcome::Unavailable, None, None, Some(t)),
+            Read::Stale(age) => (Outcome::Stale, None, age, None),
+            Read::Found(found) => {
+                let age = found.and_then(|(_, updated)| updated).map(|t| now - t);
+                let stale = matches!((age, step.lookup.max_age), (Some(a), Some(max)) if a > max);
+                match found {
+                    Some((cell, _)) if cell != Cell::Absent && !stale => (Outcome::Found, Some(cell), age, None),
+                    Some((Cell::Absent, _)) | None => (Outcome::Missing, None, age, None),
+                    Some(_) => (Outcome::Stale, None, age, None),
+                }
+            }
+        })
+    }
 }
 
 thread_local! {
@@ -749,6 +789,18 @@ struct Scratch {
     probed: Option<(*const Table, Option<usize>)>,
     /// The keys of the cells around a position.
     ring: Vec<String>,
+    /// Per step of the plan, what the last row read and under which key.
+    memo: Vec<Option<Memo>>,
+}
+
+/// What a step read under a key, before its fallback: the next row under
+/// the same key takes it as it is.
+struct Memo {
+    key: String,
+    outcome: Outcome,
+    value: Option<Value>,
+    age: Option<f64>,
+    trouble: Option<Trouble>,
 }
 
 /// Whether the row gives the feature itself.
@@ -759,15 +811,23 @@ fn carries(row: &Row, feature: &str) -> bool {
 /// The reads of one server source for one request, and their answer.
 #[derive(Default)]
 struct Batch {
-    index: std::collections::HashMap<String, usize>,
+    index: std::collections::HashMap<String, usize, foldhash::fast::RandomState>,
     asks: Vec<(String, Vec<String>)>,
+    /// The source's column or field saying when a row was computed.
+    updated: Option<String>,
     answer: Option<remote::Settled>,
+    /// The key last found (its place in `asks`): rows of a request often
+    /// share their keys, and a compare is cheaper than a hash.
+    last: std::sync::atomic::AtomicUsize,
 }
 
 impl Batch {
     fn ask(&mut self, key: &str, field: &str, updated: Option<&str>) {
-        let at = match self.index.get(key) {
-            Some(&at) => at,
+        if self.updated.is_none() {
+            self.updated = updated.map(str::to_owned);
+        }
+        let at = match self.find(key) {
+            Some(at) => at,
             None => {
                 self.asks.push((key.to_owned(), Vec::new()));
                 self.index.insert(key.to_owned(), self.asks.len() - 1);
@@ -782,12 +842,38 @@ impl Batch {
         }
     }
 
-    /// The value of `field` under `key`, if asked for and answered.
-    fn value(&self, key: &str, field: &str) -> Option<&Got> {
+    /// Takes the server's answer, each `updated` value read as a time once,
+    /// whatever the number of rows that share its key.
+    fn settle(&mut self, answer: Option<remote::Settled>) {
+        self.answer = answer;
+        let (Some(updated), Some(Ok(values))) = (&self.updated, &mut self.answer) else { return };
+        for ((_, fields), values) in self.asks.iter().zip(values.iter_mut()) {
+            let Some(at) = fields.iter().position(|f| f == updated) else { continue };
+            let Some(got) = values.get_mut(at) else { continue };
+            if let Some(n) = got.as_ref().and_then(|g| if let Got::Text(t) = g { time_of(t) } else { None }) {
+                *got = Some(Got::Number(n));
+            }
+        }
+    }
+
+    /// Where `key` is in `asks`, if asked for.
+    fn find(&self, key: &str) -> Option<usize> {
+        use std::sync::atomic::Ordering::Relaxed;
+        let last = self.last.load(Relaxed);
+        if self.asks.get(last).is_some_and(|(k, _)| k == key) {
+            return Some(last);
+        }
         let at = *self.index.get(key)?;
-        let position = self.asks[at].1.iter().position(|f| f == field)?;
+        self.last.store(at, Relaxed);
+        Some(at)
+    }
+
+    /// The fields asked of `key` and the server's values for them, in
+    /// the same order, if asked for and answered.
+    fn answered(&self, key: &str) -> Option<(&[String], &[Option<Got>])> {
+        let at = self.find(key)?;
         let Some(Ok(values)) = &self.answer else { return None };
-        values.get(at)?.get(position)?.as_ref()
+        Some((&self.asks[at].1, values.get(at)?))
     }
 }
 
@@ -869,26 +955,33 @@ fn read_remote<'a>(step: &'a Step, key: &str, batches: &'a BTreeMap<&str, Batch>
             if let Some(Err(t)) = &batch.answer {
                 return Read::Unavailable(t.clone());
             }
-            let cell = match batch.value(key, &step.lookup.field) {
+            let Some((fields, values)) = batch.answered(key) else { return Read::Found(None) };
+            // A key with none of the fields asked is not there.
+            if values.iter().all(Option::is_none) {
+                return Read::Found(None);
+            }
+            let pick = |f: &str| values.get(fields.iter().position(|g| g == f)?)?.as_ref();
+            let cell = match pick(&step.lookup.field) {
                 Some(Got::Number(n)) => Cell::Number(*n),
                 Some(Got::Text(t)) => Cell::Text(t),
                 None => Cell::Absent,
             };
-            let when = updated.as_deref().and_then(|u| batch.value(key, u)).and_then(|got| match got {
+            // Read as a time when the answer was taken (`Batch::settle`).
+            let when = updated.as_deref().and_then(pick).and_then(|got| match got {
                 Got::Number(n) => Some(*n),
-                Got::Text(t) => t
-                    .parse::<f64>()
-                    .ok()
-                    .or_else(|| t.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0)),
+                Got::Text(_) => None,
             });
-            // A key with none of the fields asked is not there.
-            let present = batch.index.get(key).is_some_and(|&at| match &batch.answer {
-                Some(Ok(values)) => values.get(at).is_some_and(|v| v.iter().any(Option::is_some)),
-                _ => false,
-            });
-            Read::Found(present.then_some((cell, when)))
+            Read::Found(Some((cell, when)))
         }
     }
+}
+
+/// When a row was computed, from the text a server holds: Unix seconds,
+/// or an RFC 3339 timestamp.
+fn time_of(text: &str) -> Option<f64> {
+    text.parse::<f64>()
+        .ok()
+        .or_else(|| text.parse::<jiff::Timestamp>().ok().map(|ts| ts.as_millisecond() as f64 / 1000.0))
 }
 
 /// A PostgreSQL lookup's column, held to the query's description: it is

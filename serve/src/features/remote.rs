@@ -2,8 +2,8 @@
 //! PostgreSQL): the shape of an answer, why a read got nothing, and
 //! waiting for an answer from a thread or from a task.
 //!
-//! A source runs its reads on a small runtime of its own and settles each
-//! one there (its counters, its breaker, its connection) before handing
+//! A source runs its reads on a small runtime of its own (or, for an async
+//! caller, on the caller's runtime) and settles each one there (its counters, its breaker, its connection) before handing
 //! the answer over, so a caller that stops waiting changes nothing. A
 //! caller waits at most the source's budget from when the read was sent,
 //! and a little for the runtime's own scheduling.
@@ -111,21 +111,39 @@ impl Pending {
     }
 }
 
+/// A read run within the awaiting task; it keeps its own budget.
+pub type ReadHere = std::pin::Pin<Box<dyn std::future::Future<Output = Settled> + Send>>;
+
 /// A read sent, its answer to be awaited by a task.
 pub struct Awaited {
-    state: Result<(tokio::sync::oneshot::Receiver<Settled>, Instant, Duration), Settled>,
+    state: AwaitedState,
+}
+
+/// Where an awaited answer comes from.
+enum AwaitedState {
+    /// Known without asking.
+    Done(Settled),
+    /// From the source's runtime, given up on at the instant.
+    Sent(tokio::sync::oneshot::Receiver<Settled>, Instant, Duration),
+    /// From a read the awaiting task runs itself.
+    Here(ReadHere),
 }
 
 impl Awaited {
     /// An answer known without asking (nothing to ask, the breaker open).
     pub fn done(outcome: Settled) -> Awaited {
-        Awaited { state: Err(outcome) }
+        Awaited { state: AwaitedState::Done(outcome) }
     }
 
     /// The reply channel for a read sent now with `budget`, and its awaited answer.
     pub fn new(budget: Duration) -> (Reply, Awaited) {
         let (tx, rx) = tokio::sync::oneshot::channel();
-        (Reply::Async(tx), Awaited { state: Ok((rx, give_up_at(budget), budget)) })
+        (Reply::Async(tx), Awaited { state: AwaitedState::Sent(rx, give_up_at(budget), budget) })
+    }
+
+    /// The answer of a read the awaiting task runs itself.
+    pub fn here(read: ReadHere) -> Awaited {
+        Awaited { state: AwaitedState::Here(read) }
     }
 
     /// The answer, awaited: the task waits, no thread does.
@@ -134,13 +152,14 @@ impl Awaited {
     /// As [`Pending::wait`].
     pub async fn wait(self) -> Settled {
         match self.state {
-            Err(outcome) => outcome,
-            Ok((rx, until, budget)) => {
+            AwaitedState::Done(outcome) => outcome,
+            AwaitedState::Sent(rx, until, budget) => {
                 match tokio::time::timeout(until.saturating_duration_since(Instant::now()), rx).await {
                     Ok(Ok(outcome)) => outcome,
                     _ => Err(Trouble::Timeout { budget_ms: budget.as_millis() }),
                 }
             }
+            AwaitedState::Here(read) => read.await,
         }
     }
 }
@@ -161,6 +180,13 @@ pub trait ServerRead {
     /// Starts the read on the source's runtime, which settles it (counts,
     /// breaker, connection) and hands the answer to `reply`.
     fn dispatch(&self, asks: &Asks, reply: Reply);
+
+    /// The read as a future for a caller on an async runtime to await in
+    /// its own task, settling as [`ServerRead::dispatch`] does; `None`
+    /// (the default) sends it to the source's runtime instead.
+    fn read_here(&self, _asks: &Asks) -> Option<ReadHere> {
+        None
+    }
 
     /// Reads the `fields` of each key: for each (key, fields), the values
     /// in order (`None` for a key or field not there).
@@ -188,6 +214,9 @@ pub trait ServerRead {
     fn send_async(&self, asks: &Asks) -> Awaited {
         if let Some(known) = known(self, asks) {
             return Awaited::done(known);
+        }
+        if let Some(read) = self.read_here(asks) {
+            return Awaited::here(read);
         }
         let (reply, awaited) = Awaited::new(self.budget());
         self.dispatch(asks, reply);
