@@ -403,3 +403,127 @@ fn a_lightgbm_model_from_a_dataframe_takes_its_category_labels() {
     assert!(report.ok(), "{report:?}");
     assert_eq!((report.cases, report.max_abs_error), (442, 0.0));
 }
+
+/// How far apart two doubles are, in units in the last place.
+fn ulps(a: f64, b: f64) -> u64 {
+    if a == b {
+        return 0;
+    }
+    let key = |v: f64| {
+        let bits = v.to_bits() as i64;
+        if bits < 0 { i64::MIN - bits } else { bits }
+    };
+    key(a).abs_diff(key(b))
+}
+
+/// The toolkit's contributions of one case (tests/imports/export.py): its
+/// rows (absent cells NaN), its per-row contributions, and their source.
+fn contributions_reference(name: &str) -> (paddock_guest::ndarray::Array2<f64>, Vec<Vec<f64>>, String) {
+    let path = dir().join(format!("{name}.contrib.json"));
+    let text = std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+    let doc: serde_json::Value = serde_json::from_slice(&text).unwrap();
+    let x: Vec<Vec<f64>> = doc["x"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| r.as_array().unwrap().iter().map(|v| v.as_f64().unwrap_or(f64::NAN)).collect())
+        .collect();
+    let contrib: Vec<Vec<f64>> = doc["contrib"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|r| r.as_array().unwrap().iter().map(|v| v.as_f64().unwrap()).collect())
+        .collect();
+    let width = x[0].len();
+    let rows = paddock_guest::ndarray::Array2::from_shape_vec((x.len(), width), x.concat()).unwrap();
+    (rows, contrib, doc["source"].as_str().unwrap().to_owned())
+}
+
+/// Per-row contributions from imported covers, natively, against the
+/// toolkits' own (outside reference: LightGBM 4.7 `pred_contrib=True`,
+/// XGBoost 3.2 `pred_contribs=True`, on every row of each case; the cases
+/// of `imported_models_give_the_toolkits_predictions_bit_for_bit` but the
+/// one trained without absent values).
+///
+/// - LightGBM computes the same algorithm in double precision: within 4
+///   units in the last place (the baseline's leaves are summed in another
+///   order). Its random forest's contributions add up to its trees' total,
+///   which its `predict` divides by their number (measured on this case:
+///   the sum of a row's contributions is 60 times its prediction); ours add
+///   up to the prediction, so the reference is divided by the tree count.
+/// - XGBoost computes in single precision: each tree's terms are rounded
+///   to float32 at every step and summed in float32 over the trees, so a
+///   contribution may be off by about one float32 rounding (2⁻²⁴ relative)
+///   per tree. Bound: trees per output × 2⁻²⁴ × the largest magnitude in
+///   the row's contributions.
+#[test]
+fn contributions_are_the_toolkits_own() {
+    use paddock_guest::Trees;
+    let mut summary = Vec::new();
+    for name in CASES.iter().filter(|n| **n != "lgb-diabetes-missing-none") {
+        let (path, bytes, _) = case(name);
+        let format = Format::recognise(&bytes).unwrap();
+        let imported = import(&bytes, format, &path.file_name().unwrap().to_string_lossy(), None).unwrap();
+        let EstimatorParams::Trees(params) = imported.estimator else { panic!("{name}: not trees") };
+        let covers = imported.covers.unwrap_or_else(|| panic!("{name}: the file records no covers"));
+        let outputs = params.base.len();
+        let per_output = (params.trees.len() / outputs) as f64;
+        let forest = params.combine == Combine::Mean;
+        let single = params.arithmetic == paddock_guest::Precision::Single;
+        // The margin: the same trees, no link.
+        let margins =
+            Trees::new(paddock_guest::TreesParams { link: paddock_guest::OutputLink::Identity, ..params.clone() })
+                .unwrap();
+        let trees = Trees::new(params).unwrap().with_covers(&covers).unwrap();
+        let (rows, want, source) = contributions_reference(name);
+        let mut got = paddock_guest::ndarray::Array2::zeros((rows.nrows(), want[0].len()));
+        trees.contributions(rows.view(), got.view_mut()).unwrap();
+        let mut margin = paddock_guest::ndarray::Array2::from_elem((rows.nrows(), outputs), f64::NAN);
+        paddock_guest::Evaluate::evaluate(&margins, rows.view(), margin.view_mut());
+        // Baseline and contributions add up to the margin our own scoring
+        // computes: to rounding in double precision (1e-12 relative per
+        // tree), to float32 rounding per tree where the toolkit sums in float32.
+        let blocks = want[0].len() / outputs;
+        for i in 0..rows.nrows() {
+            for k in 0..outputs {
+                let block = got.row(i).to_vec()[k * blocks..(k + 1) * blocks].to_vec();
+                let sum: f64 = block.iter().sum();
+                let largest = block.iter().fold(0f64, |m, v| m.max(v.abs())).max(margin[[i, k]].abs());
+                let bound = per_output * largest * if single { 2f64.powi(-24) } else { 1e-12 };
+                assert!(
+                    (sum - margin[[i, k]]).abs() <= bound,
+                    "{name} row {} output {k}: contributions add up to {sum:e}, the margin is {:e}",
+                    i + 1,
+                    margin[[i, k]]
+                );
+            }
+        }
+        let (mut worst_ulps, mut worst_share) = (0u64, 0f64);
+        for (i, w) in want.iter().enumerate() {
+            let largest = w.iter().fold(0f64, |m, v| m.max(v.abs()));
+            for (j, &v) in w.iter().enumerate() {
+                let (g, v) = (got[[i, j]], if forest { v / per_output } else { v });
+                if name.starts_with("lgb") {
+                    let u = ulps(g, v);
+                    worst_ulps = worst_ulps.max(u);
+                    assert!(u <= 4, "{name} row {} column {j}: paddock {g:e}, {source} {v:e}: {u} ULP apart", i + 1);
+                } else {
+                    let bound = per_output * 2f64.powi(-24) * largest;
+                    worst_share = worst_share.max((g - v).abs() / bound);
+                    assert!(
+                        (g - v).abs() <= bound,
+                        "{name} row {} column {j}: paddock {g:e}, {source} {v:e}: {:e} apart, bound {bound:e}",
+                        i + 1,
+                        (g - v).abs()
+                    );
+                }
+            }
+        }
+        summary.push(if name.starts_with("lgb") {
+            format!("{name}: worst {worst_ulps} ULP ({source})")
+        } else {
+            format!("{name}: worst {:.0} % of the float32 bound ({source})", worst_share * 100.0)
+        });
+    }
+    eprintln!("contributions:\n  {}", summary.join("\n  "));
+}

@@ -68,6 +68,7 @@
 #![deny(missing_docs)]
 
 mod contract;
+mod contributions;
 mod exp;
 mod generic;
 mod lanes;

@@ -235,6 +235,18 @@ pub struct Trees {
     vectors: Vec<f64>,
     /// Trees feeding each output (the divisor of [`Combine::Mean`]).
     counts: Vec<f64>,
+    /// What contributions need, once [`Trees::with_covers`] gave it.
+    explain: Option<Explain>,
+}
+
+/// Each node's cover (aligned with the flattened nodes), each tree's
+/// expected value per output over its training rows (`outputs` per tree;
+/// `None` for an output the tree does not feed), and the deepest tree's depth.
+#[derive(Clone, Debug)]
+struct Explain {
+    covers: Vec<f64>,
+    expected: Vec<Option<f64>>,
+    depth: usize,
 }
 
 impl Trees {
@@ -323,7 +335,172 @@ impl Trees {
             words,
             vectors: params.vectors,
             counts,
+            explain: None,
         }
+    }
+
+    /// The ensemble with each node's *cover* — the training rows (or the
+    /// hessian) that reached it, as the toolkit recorded — so it can give
+    /// per-row contributions ([`Trees::contributions`]). `covers` holds
+    /// one list per tree, one number per node in the params' node order.
+    ///
+    /// # Errors
+    /// When the lists do not match the trees and their nodes, a cover is
+    /// negative or not finite, or a split's cover is zero. The message
+    /// names tree and node.
+    pub fn with_covers(mut self, covers: &[Vec<f64>]) -> Result<Trees, String> {
+        if covers.len() != self.roots.len() {
+            return Err(format!("covers: {} lists for {} trees", covers.len(), self.roots.len()));
+        }
+        let mut flat = Vec::with_capacity(self.nodes.len());
+        for (t, (list, &(root, _))) in covers.iter().zip(&self.roots).enumerate() {
+            let end = self.roots.get(t + 1).map_or(self.nodes.len(), |&(next, _)| next);
+            if list.len() != end - root {
+                return Err(format!("covers: tree {t} has {} nodes but {} covers", end - root, list.len()));
+            }
+            for (i, &c) in list.iter().enumerate() {
+                let split = !is_leaf(self.nodes[root + i].kind);
+                if !c.is_finite() || c < 0.0 || (split && c == 0.0) {
+                    return Err(format!("covers: tree {t} node {i} has cover {c}"));
+                }
+            }
+            flat.extend_from_slice(list);
+        }
+        let outputs = self.base.len();
+        let mut explain = Explain { covers: flat, expected: Vec::with_capacity(self.roots.len() * outputs), depth: 0 };
+        for &(root, k) in &self.roots {
+            let (expected, depth) = self.expected_and_depth(root, k, &explain.covers);
+            explain.expected.extend(expected);
+            explain.depth = explain.depth.max(depth);
+        }
+        self.explain = Some(explain);
+        Ok(self)
+    }
+
+    /// Whether the ensemble carries covers and so can give contributions.
+    pub fn explains(&self) -> bool {
+        self.explain.is_some()
+    }
+
+    /// Per-row contributions: for each row of `rows`, per output, one
+    /// number per feature (contract order) and then the baseline; they
+    /// sum to the output's combined value before the link (its margin).
+    /// `out` has one row per row and `outputs × (features + 1)` columns,
+    /// output by output.
+    ///
+    /// # Errors
+    /// When the ensemble carries no covers, or `out` has the wrong shape.
+    pub fn contributions(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) -> Result<(), String> {
+        let Some(explain) = &self.explain else {
+            return Err("these trees carry no covers: contributions need each node's cover".into());
+        };
+        let blocks = self.features + 1;
+        let width = self.base.len() * blocks;
+        if out.ncols() != width || out.nrows() != rows.nrows() || rows.ncols() != self.features {
+            return Err(format!(
+                "contributions: {} rows of {} features into {}×{}, expected {}×{width}",
+                rows.nrows(),
+                rows.ncols(),
+                out.nrows(),
+                out.ncols(),
+                rows.nrows()
+            ));
+        }
+        let mut row = vec![0.0; self.features];
+        let mut phi = vec![0.0; width];
+        for (x, mut o) in rows.outer_iter().zip(out.outer_iter_mut()) {
+            for (r, &v) in row.iter_mut().zip(x.iter()) {
+                *r = if self.inputs == Precision::Single { f64::from(v as f32) } else { v };
+            }
+            phi.iter_mut().for_each(|v| *v = 0.0);
+            let mut walk = crate::contributions::Walk::new(&row, &mut phi, explain.depth);
+            let outputs = self.base.len();
+            for (t, &(root, k)) in self.roots.iter().enumerate() {
+                for (j, e) in explain.expected[t * outputs..(t + 1) * outputs].iter().enumerate() {
+                    if let Some(e) = e {
+                        walk.phi[j * blocks + self.features] += e;
+                    }
+                }
+                self.contribute_tree(&mut walk, root, k);
+            }
+            for (k, base) in self.base.iter().enumerate() {
+                let block = &mut phi[k * blocks..(k + 1) * blocks];
+                // A forest's trees are averaged: so are their contributions.
+                if self.combine == Combine::Mean {
+                    block.iter_mut().for_each(|v| *v /= self.counts[k]);
+                }
+                block[self.features] += base;
+            }
+            for (o, p) in o.iter_mut().zip(&phi) {
+                *o = *p;
+            }
+        }
+        Ok(())
+    }
+
+    /// A tree's expected value over its training rows per output (each
+    /// leaf's value weighed by its share of the root's cover, leaves in
+    /// node order; `None` for outputs it does not feed) and its depth (a
+    /// lone leaf: 0). `output` is the output of its single-value leaves.
+    fn expected_and_depth(&self, root: usize, output: usize, covers: &[f64]) -> (Vec<Option<f64>>, usize) {
+        let total = covers[root];
+        let mut expected = vec![None; self.base.len()];
+        let mut depth = 0;
+        let mut stack = vec![(root, 0usize)];
+        let mut leaves = Vec::new();
+        while let Some((n, d)) = stack.pop() {
+            let node = &self.nodes[n];
+            if is_leaf(node.kind) {
+                leaves.push(n);
+                depth = depth.max(d);
+            } else {
+                stack.push((node.right as usize, d + 1));
+                stack.push((node.left as usize, d + 1));
+            }
+        }
+        leaves.sort_unstable();
+        for n in leaves {
+            for (k, value) in self.leaf_values(n, output) {
+                // A lone leaf is its tree's value, whatever its cover.
+                let share = if n == root { value } else { (covers[n] / total) * value };
+                *expected[k].get_or_insert(0.0) += share;
+            }
+        }
+        (expected, depth)
+    }
+
+    /// The split a row meets at node `n` (feature, the child it takes, the
+    /// other child), or `None` at a leaf.
+    pub(crate) fn split_of(&self, n: usize, row: &[f64]) -> Option<(i64, usize, usize)> {
+        let node = &self.nodes[n];
+        if is_leaf(node.kind) {
+            return None;
+        }
+        let hot = if self.less_or_equal { self.child::<true>(node, row) } else { self.child::<false>(node, row) };
+        let cold = if hot == node.left { node.right } else { node.left };
+        Some((i64::from(node.feature), hot as usize, cold as usize))
+    }
+
+    /// Node `n`'s cover.
+    pub(crate) fn cover(&self, n: usize) -> f64 {
+        self.explain.as_ref().map_or(0.0, |e| e.covers[n])
+    }
+
+    /// Features per row.
+    pub(crate) fn features(&self) -> usize {
+        self.features
+    }
+
+    /// What leaf `n` adds, output by output: (output, value); `output` is
+    /// its tree's, for a single-value leaf.
+    pub(crate) fn leaf_values(&self, n: usize, output: usize) -> impl Iterator<Item = (usize, f64)> + '_ {
+        let node = &self.nodes[n];
+        let (first, count, single) =
+            if node.kind == LEAF { (0, 1, Some(node.threshold)) } else { (node.start as usize, self.base.len(), None) };
+        (0..count).map(move |j| match single {
+            Some(v) => (output, v),
+            None => (j, self.vectors[first + j]),
+        })
     }
 
     /// The leaf one tree sends a row to.
@@ -840,5 +1017,51 @@ mod tests {
             ..TreesParams::boosted(1, 0.0, SplitRule::LessOrEqual, vec![tree(0), tree(2)])
         };
         assert_eq!(score(params, array![[0.0]]).row(0).to_vec(), vec![0.75, 0.25]);
+    }
+
+    /// A stump on x (left leaf 1 with three training rows, right leaf 5
+    /// with one) and a second feature it never reads: the expected value
+    /// is (3·1 + 1·5) / 4 = 2, so a row going left owes −1 to x, nothing to
+    /// the other feature (the Shapley value of one player, f(x) − E f, by hand).
+    #[test]
+    fn a_stumps_contributions_are_its_leaf_less_its_expected_value() {
+        let stump = Tree {
+            output: 0,
+            nodes: vec![
+                Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right },
+                Node::Leaf { value: 1.0 },
+                Node::Leaf { value: 5.0 },
+            ],
+        };
+        let params = TreesParams::boosted(2, 10.0, SplitRule::Less, vec![stump]);
+        let trees = Trees::new(params).unwrap().with_covers(&[vec![4.0, 3.0, 1.0]]).unwrap();
+        let mut out = ndarray::Array2::zeros((2, 3));
+        trees.contributions(array![[0.0, 7.0], [f64::NAN, 7.0]].view(), out.view_mut()).unwrap();
+        assert_eq!(out.row(0).to_vec(), vec![-1.0, 0.0, 12.0]);
+        // Absent goes right: 5 − 2.
+        assert_eq!(out.row(1).to_vec(), vec![3.0, 0.0, 12.0]);
+    }
+
+    #[test]
+    fn covers_that_do_not_fit_are_refused_naming_tree_and_node() {
+        let stump = || Tree {
+            output: 0,
+            nodes: vec![
+                Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right },
+                Node::Leaf { value: 1.0 },
+                Node::Leaf { value: 5.0 },
+            ],
+        };
+        let trees = || Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![stump(), stump()])).unwrap();
+        let err = |covers: &[Vec<f64>]| trees().with_covers(covers).unwrap_err();
+        assert_eq!(err(&[vec![4.0, 3.0, 1.0]]), "covers: 1 lists for 2 trees");
+        assert_eq!(err(&[vec![4.0, 3.0, 1.0], vec![4.0, 3.0]]), "covers: tree 1 has 3 nodes but 2 covers");
+        assert_eq!(err(&[vec![4.0, 3.0, 1.0], vec![0.0, 0.0, 0.0]]), "covers: tree 1 node 0 has cover 0");
+        assert_eq!(err(&[vec![4.0, f64::NAN, 1.0], vec![4.0, 3.0, 1.0]]), "covers: tree 0 node 1 has cover NaN");
+        let mut out = ndarray::Array2::zeros((1, 2));
+        assert_eq!(
+            trees().contributions(array![[0.0]].view(), out.view_mut()).unwrap_err(),
+            "these trees carry no covers: contributions need each node's cover"
+        );
     }
 }

@@ -113,8 +113,15 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     let average = header.lines.iter().any(|(_, k, _)| *k == "average_output");
     let mut sets: Vec<Vec<u32>> = Vec::new();
     let mut trees = Vec::with_capacity(blocks.len());
+    // Each node's training-row count, where the file records them all.
+    let mut covers = Some(Vec::with_capacity(blocks.len()));
     for (t, block) in blocks.iter().enumerate() {
-        trees.push(Tree { output: (t % per_iteration) as u32, nodes: read_tree(&r, block, t, features, &mut sets)? });
+        let (nodes, counts) = read_tree(&r, block, t, features, &mut sets)?;
+        trees.push(Tree { output: (t % per_iteration) as u32, nodes });
+        covers = covers.zip(counts).map(|(mut all, c)| {
+            all.push(c);
+            all
+        });
     }
     if trees.is_empty() {
         return Err(r.malformed("trees", "the model has no trees"));
@@ -155,7 +162,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         estimator: format!("{} trees", params.trees.len()),
         contract: Vec::new(),
     };
-    Ok(draft.finish(EstimatorParams::Trees(params), origin))
+    let mut imported = draft.finish(EstimatorParams::Trees(params), origin);
+    imported.covers = covers;
+    Ok(imported)
 }
 
 /// The outputs an objective gives, and the task in words.
@@ -369,13 +378,15 @@ fn split_blocks(text: &str) -> (Block<'_>, Vec<Block<'_>>) {
     (header, trees)
 }
 
+/// A tree's nodes, and each node's training-row count in the same order
+/// (`internal_count`, `leaf_count`) when the file has both.
 fn read_tree(
     r: &Blame<'_>,
     block: &Block<'_>,
     t: usize,
     features: usize,
     sets: &mut Vec<Vec<u32>>,
-) -> Result<Vec<Node>, ImportError> {
+) -> Result<(Vec<Node>, Option<Vec<f64>>), ImportError> {
     let leaves: usize = block.number(r, "num_leaves")?;
     if leaves == 0 || leaves > 1 << 24 {
         return Err(r.malformed(&block.name, format!("num_leaves {leaves}")));
@@ -392,10 +403,15 @@ fn read_tree(
     let values: Vec<f64> = block.list(r, "leaf_value", leaves)?;
     let rules = NodeRules { blame: r, features };
     let leaf = |j: usize| rules.leaf(&format!("tree {t} leaf {j}"), values[j]);
+    let leaf_count: Option<Vec<f64>> =
+        block.get("leaf_count").map(|_| block.list(r, "leaf_count", leaves)).transpose()?;
     if leaves == 1 {
-        return Ok(vec![leaf(0)?]);
+        return Ok((vec![leaf(0)?], leaf_count));
     }
     let inner = leaves - 1;
+    let internal_count: Option<Vec<f64>> =
+        block.get("internal_count").map(|_| block.list(r, "internal_count", inner)).transpose()?;
+    let mut covers = Vec::with_capacity(inner + leaves);
     let feature: Vec<i64> = block.list(r, "split_feature", inner)?;
     let threshold: Vec<f64> = block.list(r, "threshold", inner)?;
     let decision: Vec<u8> = block.list(r, "decision_type", inner)?;
@@ -428,6 +444,11 @@ fn read_tree(
         inner + leaves,
         |id| {
             let i = id as usize;
+            covers.push(if i >= inner {
+                leaf_count.as_ref().map_or(f64::NAN, |c| c[i - inner])
+            } else {
+                internal_count.as_ref().map_or(f64::NAN, |c| c[i])
+            });
             if i >= inner {
                 return leaf(i - inner);
             }
@@ -492,5 +513,6 @@ fn read_tree(
         || r.malformed(&block.name, "a node is reached twice: the children do not form a tree"),
     )?;
     sets.extend(new_sets);
-    Ok(nodes)
+    let recorded = leaf_count.is_some() && internal_count.is_some();
+    Ok((nodes, recorded.then_some(covers)))
 }

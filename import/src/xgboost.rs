@@ -118,7 +118,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     };
     let model = gbtree_model(&r, learner)?;
     let head = Head::read(&r, learner)?;
-    let trees = read_trees(&r, model, &head)?;
+    let (trees, covers) = read_trees(&r, model, &head)?;
     let params = TreesParams {
         features: head.features as u32,
         base: head.base.clone(),
@@ -150,7 +150,9 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         estimator: format!("{} trees", params.trees.len()),
         contract: Vec::new(),
     };
-    Ok(draft.finish(EstimatorParams::Trees(params), origin))
+    let mut imported = draft.finish(EstimatorParams::Trees(params), origin);
+    imported.covers = covers;
+    Ok(imported)
 }
 
 /// The booster's model, refusing boosters other than `gbtree`.
@@ -272,12 +274,18 @@ fn base_margins(
 }
 
 /// Every tree, each feeding the class `tree_info` names.
-fn read_trees(r: &Blame<'_>, model: &Value, head: &Head) -> Result<Vec<Tree>, ImportError> {
+/// Each tree's node covers, in the params' node order.
+type Covers = Vec<Vec<f64>>;
+
+/// The trees, and each node's `sum_hessian` in the params' node order
+/// when every tree records it.
+fn read_trees(r: &Blame<'_>, model: &Value, head: &Head) -> Result<(Vec<Tree>, Option<Covers>), ImportError> {
     let model_path = "learner.gradient_booster.model";
     let trees_json = r.array(model, model_path, "trees")?;
     let tree_info = r.ints(model, model_path, "tree_info")?;
     same_lengths(r, model_path, ("trees", trees_json.len()), &[("tree_info", tree_info.len())])?;
     let mut trees = Vec::with_capacity(trees_json.len());
+    let mut covers = Some(Vec::with_capacity(trees_json.len()));
     for (t, (tree, &class)) in trees_json.iter().zip(&tree_info).enumerate() {
         if class < 0 || class as usize >= head.classes {
             return Err(r.malformed(
@@ -285,9 +293,14 @@ fn read_trees(r: &Blame<'_>, model: &Value, head: &Head) -> Result<Vec<Tree>, Im
                 format!("class {class} but the model has {} outputs", head.classes),
             ));
         }
-        trees.push(Tree { output: class as u32, nodes: read_tree(r, tree, t, head.features)? });
+        let (nodes, hessians) = read_tree(r, tree, t, head.features)?;
+        trees.push(Tree { output: class as u32, nodes });
+        covers = covers.zip(hessians).map(|(mut all, h)| {
+            all.push(h);
+            all
+        });
     }
-    Ok(trees)
+    Ok((trees, covers))
 }
 
 /// The features: names from `feature_names`, domains from `feature_types`.
@@ -379,7 +392,14 @@ fn feature_types(r: &Blame<'_>, learner: &Value, features: usize) -> Result<Vec<
     }
 }
 
-fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<Vec<Node>, ImportError> {
+/// A tree's nodes, and each node's `sum_hessian` in the same order when
+/// the tree records it.
+fn read_tree(
+    r: &Blame<'_>,
+    tree: &Value,
+    t: usize,
+    features: usize,
+) -> Result<(Vec<Node>, Option<Vec<f64>>), ImportError> {
     let path = format!("learner.gradient_booster.model.trees[{t}]");
     if let Some(size) = tree.get("tree_param").and_then(|p| p.get("size_leaf_vector")).and_then(Value::as_str)
         && size != "1"
@@ -417,7 +437,12 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
     }
     let cycle = || r.malformed(&path, "a node is reached twice: the children do not form a tree");
     let rules = NodeRules { blame: r, features };
-    flatten(
+    let hessian = match tree.get("sum_hessian") {
+        Some(_) => Some(r.floats(tree, &path, "sum_hessian")?).filter(|h| h.len() == n),
+        None => None,
+    };
+    let mut covers = Vec::with_capacity(n);
+    let nodes = flatten(
         0,
         n,
         |id| {
@@ -426,6 +451,7 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
             if i >= n {
                 return Err(r.malformed(&path, format!("a child points at node {i} but the tree has {n}")));
             }
+            covers.push(hessian.as_ref().map_or(f64::NAN, |h| f64::from(h[i])));
             if left[i] == -1 {
                 return rules.leaf(&place, f64::from(cond[i]));
             }
@@ -446,5 +472,6 @@ fn read_tree(r: &Blame<'_>, tree: &Value, t: usize, features: usize) -> Result<V
             rules.split(&place, (index[i], f64::from(cond[i])), (child(left[i])?, child(right[i])?), missing)
         },
         cycle,
-    )
+    )?;
+    Ok((nodes, hessian.map(|_| covers)))
 }
