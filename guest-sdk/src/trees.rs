@@ -1025,15 +1025,7 @@ mod tests {
     /// the other feature (the Shapley value of one player, f(x) − E f, by hand).
     #[test]
     fn a_stumps_contributions_are_its_leaf_less_its_expected_value() {
-        let stump = Tree {
-            output: 0,
-            nodes: vec![
-                Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right },
-                Node::Leaf { value: 1.0 },
-                Node::Leaf { value: 5.0 },
-            ],
-        };
-        let params = TreesParams::boosted(2, 10.0, SplitRule::Less, vec![stump]);
+        let params = TreesParams::boosted(2, 10.0, SplitRule::Less, vec![stump(0, 0, 0.5, 1.0, 5.0, Branch::Right)]);
         let trees = Trees::new(params).unwrap().with_covers(&[vec![4.0, 3.0, 1.0]]).unwrap();
         let mut out = ndarray::Array2::zeros((2, 3));
         trees.contributions(array![[0.0, 7.0], [f64::NAN, 7.0]].view(), out.view_mut()).unwrap();
@@ -1044,15 +1036,15 @@ mod tests {
 
     #[test]
     fn covers_that_do_not_fit_are_refused_naming_tree_and_node() {
-        let stump = || Tree {
-            output: 0,
-            nodes: vec![
-                Node::Split { feature: 0, threshold: 0.5, left: 1, right: 2, missing: Branch::Right },
-                Node::Leaf { value: 1.0 },
-                Node::Leaf { value: 5.0 },
-            ],
+        let trees = || {
+            Trees::new(TreesParams::boosted(
+                1,
+                0.0,
+                SplitRule::Less,
+                vec![stump(0, 0, 0.5, 1.0, 5.0, Branch::Right); 2],
+            ))
+            .unwrap()
         };
-        let trees = || Trees::new(TreesParams::boosted(1, 0.0, SplitRule::Less, vec![stump(), stump()])).unwrap();
         let err = |covers: &[Vec<f64>]| trees().with_covers(covers).unwrap_err();
         assert_eq!(err(&[vec![4.0, 3.0, 1.0]]), "covers: 1 lists for 2 trees");
         assert_eq!(err(&[vec![4.0, 3.0, 1.0], vec![4.0, 3.0]]), "covers: tree 1 has 3 nodes but 2 covers");
