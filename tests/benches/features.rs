@@ -74,7 +74,9 @@ fn open(dir: &Path) -> Registry {
     let registry = Registry::open(
         &Runtime::new().unwrap(),
         dir,
-        RegistryOptions { usage_flush: None, ..RegistryOptions::default() },
+        // Minute-long deadlines and budgets: a read is timed, never cut
+        // short, however busy the machine (in `cargo test` mode beside others).
+        RegistryOptions { usage_flush: None, model: paddock_tests::unhurried(), ..RegistryOptions::default() },
     )
     .unwrap();
     assert!(
@@ -143,7 +145,7 @@ fn main() {
     store(
         dirs[2].path(),
         Some(plan(
-            &format!("[sources.sites]\nredis = \"{}\"\nbudget_ms = 20\nupdated = \"updated_at\"", server.url()),
+            &format!("[sources.sites]\nredis = \"{}\"\nbudget_ms = 30000\nupdated = \"updated_at\"", server.url()),
             "site:{site}",
         )),
     );
@@ -151,7 +153,7 @@ fn main() {
         dirs[3].path(),
         Some(plan(
             &format!(
-                "[sources.sites]\npostgres = \"{}\"\nquery = \"SELECT * FROM sites WHERE site = ANY($1)\"\nkey = \"site\"\nbudget_ms = 20\nupdated = \"updated_at\"",
+                "[sources.sites]\npostgres = \"{}\"\nquery = \"SELECT * FROM sites WHERE site = ANY($1)\"\nkey = \"site\"\nbudget_ms = 30000\nupdated = \"updated_at\"",
                 postgres.url()
             ),
             "{site}",
