@@ -465,7 +465,7 @@ fn contributions_are_the_toolkits_own() {
         let format = Format::recognise(&bytes).unwrap();
         let imported = import(&bytes, format, &path.file_name().unwrap().to_string_lossy(), None).unwrap();
         let EstimatorParams::Trees(params) = imported.estimator else { panic!("{name}: not trees") };
-        let covers = imported.covers.unwrap_or_else(|| panic!("{name}: the file records no covers"));
+        assert!(!params.covers.is_empty(), "{name}: the file records no covers");
         let outputs = params.base.len();
         let per_output = (params.trees.len() / outputs) as f64;
         let forest = params.combine == Combine::Mean;
@@ -474,7 +474,7 @@ fn contributions_are_the_toolkits_own() {
         let margins =
             Trees::new(paddock_guest::TreesParams { link: paddock_guest::OutputLink::Identity, ..params.clone() })
                 .unwrap();
-        let trees = Trees::new(params).unwrap().with_covers(&covers).unwrap();
+        let trees = Trees::new(params).unwrap();
         let (rows, want, source) = contributions_reference(name);
         let mut got = paddock_guest::ndarray::Array2::zeros((rows.nrows(), want[0].len()));
         trees.contributions(rows.view(), got.view_mut()).unwrap();
@@ -526,4 +526,68 @@ fn contributions_are_the_toolkits_own() {
         });
     }
     eprintln!("contributions:\n  {}", summary.join("\n  "));
+}
+
+/// In the sandbox, an imported model's contributions are the native ones
+/// bit for bit (the same guest code, compiled twice), each row's margin is
+/// the one scoring computes, and the host's check that they add up passes.
+/// Rows as the checks file gives them, encoded by the model's contract.
+#[test]
+fn contributions_in_the_sandbox_are_the_native_ones_bit_for_bit() {
+    use paddock_guest::{Evaluate, Trees, ndarray::Array2};
+    let runtime = Runtime::new().unwrap();
+    for name in ["lgb-wine-categorical", "lgb-diabetes-forest", "xgb-iris-softmax", "lgb-cancer-binary"] {
+        let (path, bytes, checks) = case(name);
+        let model = imported_model(&runtime, &path, &bytes);
+        let imported = import(&bytes, Format::recognise(&bytes).unwrap(), name, None).unwrap();
+        let EstimatorParams::Trees(params) = imported.estimator else { panic!("{name}: not trees") };
+        let trees = Trees::new(params).unwrap();
+        let rows: Vec<_> = checks.cases.iter().map(|c| c.row.clone()).collect();
+        let mut cells = Vec::new();
+        for (i, row) in rows.iter().enumerate() {
+            model.schema().encode_row(i + 1, row, &mut cells).unwrap();
+        }
+        let (features, outputs) = (model.contract().features.len(), model.contract().outputs.len());
+        let cells = Array2::from_shape_vec((rows.len(), features), cells).unwrap();
+        let mut native = Array2::from_elem((rows.len(), outputs * (features + 2)), f64::NAN);
+        trees.explain(cells.view(), native.view_mut()).unwrap();
+        let sandboxed = model.explain(&rows).unwrap_or_else(|e| panic!("{name}: {e}"));
+        assert_eq!(sandboxed.row_count(), rows.len());
+        let scores = model.score(&rows).unwrap();
+        for i in 0..rows.len() {
+            for k in 0..outputs {
+                let a = sandboxed.of(i, k);
+                let at = k * (features + 2);
+                let want = native.row(i).to_vec();
+                let got: Vec<f64> = a.features.iter().copied().chain([a.baseline, a.margin]).collect();
+                assert!(
+                    got.iter().zip(&want[at..at + features + 2]).all(|(g, w)| g.to_bits() == w.to_bits()),
+                    "{name} row {} output {k}: sandbox {got:?}, native {:?}",
+                    i + 1,
+                    &want[at..at + features + 2]
+                );
+                // The margin through the model's link is its score.
+                let link = sandboxed.scale(k);
+                let value = scores.values_at(i)[k];
+                if link == paddock_host::ContributionScale::Output {
+                    assert_eq!(a.margin.to_bits(), value.to_bits(), "{name} row {} output {k}", i + 1);
+                }
+            }
+        }
+    }
+}
+
+/// A model that cannot explain says why, in a typed error: trees imported
+/// without covers (scikit-learn through skl2onnx), a linear model's guest.
+#[test]
+fn a_model_without_covers_declines_naming_why() {
+    let runtime = Runtime::new().unwrap();
+    let path = dir().join("skl-diabetes-forest.onnx");
+    let bytes =
+        std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+    let model = imported_model(&runtime, &path, &bytes);
+    let checks = Checks::from_json(&std::fs::read(dir().join("skl-diabetes-forest.checks.json")).unwrap()).unwrap();
+    let err = model.explain(&[checks.cases[0].row.clone()]).unwrap_err();
+    assert!(matches!(err, paddock_host::ExplainError::Declined { .. }), "{err:?}");
+    assert!(err.to_string().ends_with("these trees carry no covers: contributions need each node's cover"), "{err}");
 }

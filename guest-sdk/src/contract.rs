@@ -1,6 +1,6 @@
 //! The contract types, generated from `wit/estimator.wit`, plus builders.
 
-pub use crate::bindings::{Bounds, Contract, Domain, Fault, Feature, Output};
+pub use crate::bindings::{Bounds, Contract, Contributions, Domain, Fault, Feature, MarginLink, Output};
 
 impl Bounds {
     /// No limit on either side.

@@ -4,7 +4,7 @@
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize, de::DeserializeOwned};
 
-use crate::{Contract, Estimator, Fault};
+use crate::{Contract, Estimator, Fault, MarginLink};
 
 /// A built-in estimator: built from params, evaluates dense rows.
 pub trait Evaluate: Sized + 'static {
@@ -25,6 +25,17 @@ pub trait Evaluate: Sized + 'static {
 
     /// Evaluates `rows` (rows × features) into `out` (rows × outputs).
     fn evaluate(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>);
+
+    /// Per-row contributions with their margins, laid out as
+    /// [`Estimator::contributions`] says; returns each output's link.
+    ///
+    /// # Errors
+    /// A message saying why the estimator cannot explain (the default:
+    /// it gives no contributions).
+    fn explain(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, String> {
+        let _ = (rows, out);
+        Err("this estimator gives no contributions".into())
+    }
 }
 
 /// The params of a [`Generic`] model: its contract and its estimator's params.
@@ -87,6 +98,10 @@ impl<E: Evaluate> Estimator for Generic<E> {
     fn score(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<(), Fault> {
         self.estimator.evaluate(rows, out);
         Ok(())
+    }
+
+    fn contributions(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, Fault> {
+        self.estimator.explain(rows, out).map_err(Fault::Rejected)
     }
 }
 
@@ -156,5 +171,9 @@ impl<M: Declared> Estimator for Fixed<M> {
     fn score(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<(), Fault> {
         self.estimator.evaluate(rows, out);
         Ok(())
+    }
+
+    fn contributions(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, Fault> {
+        self.estimator.explain(rows, out).map_err(Fault::Rejected)
     }
 }

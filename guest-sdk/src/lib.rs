@@ -81,7 +81,7 @@ mod trees;
 #[doc(hidden)]
 pub mod glue;
 
-pub use contract::{Bounds, Contract, Domain, Fault, Feature, Output};
+pub use contract::{Bounds, Contract, Contributions, Domain, Fault, Feature, MarginLink, Output};
 pub use generic::{Declared, Evaluate, Fixed, Generic, Packaged, build_for};
 pub use linear::{Linear, LinearParams, Link};
 pub use params::{decode_params, encode_params};
@@ -103,7 +103,7 @@ pub use ndarray;
 pub mod bindings {
     wit_bindgen::generate!({
         path: "../wit",
-        world: "estimator",
+        world: "explaining-estimator",
         pub_export_macro: true,
         export_macro_name: "export_estimator",
         default_bindings_module: "paddock_guest::bindings",
@@ -140,6 +140,24 @@ pub trait Estimator: Sized + 'static {
     /// [`Fault::Rejected`] when valid rows cannot be scored by this model,
     /// [`Fault::Failed`] when the model itself failed.
     fn score(&self, rows: ndarray::ArrayView2<'_, f64>, out: ndarray::ArrayViewMut2<'_, f64>) -> Result<(), Fault>;
+
+    /// Per-row contributions: `out` has one row per request row and, per
+    /// output, one column per feature, then the baseline, then the margin
+    /// (the output before its link), filled with NaN on entry. Returns
+    /// each output's link. The baseline and the features' values must add
+    /// up to the margin; the host checks.
+    ///
+    /// # Errors
+    /// [`Fault::Rejected`] saying why when the model cannot explain (the
+    /// default: it gives no contributions).
+    fn contributions(
+        &self,
+        rows: ndarray::ArrayView2<'_, f64>,
+        out: ndarray::ArrayViewMut2<'_, f64>,
+    ) -> Result<Vec<MarginLink>, Fault> {
+        let _ = (rows, out);
+        Err(Fault::Rejected("this model gives no contributions".into()))
+    }
 }
 
 /// Exports a type implementing [`Estimator`] as the model of this crate.
@@ -168,6 +186,12 @@ macro_rules! export {
                     cells: ::std::vec::Vec<f64>,
                 ) -> ::std::result::Result<::std::vec::Vec<f64>, $crate::Fault> {
                     SLOT.with(|slot| slot.score(rows, &cells))
+                }
+                fn contributions(
+                    rows: u32,
+                    cells: ::std::vec::Vec<f64>,
+                ) -> ::std::result::Result<$crate::Contributions, $crate::bindings::ExplainFault> {
+                    SLOT.with(|slot| slot.contributions(rows, &cells))
                 }
             }
     $crate::bindings::export_estimator!(PaddockExports with_types_in $crate::bindings);

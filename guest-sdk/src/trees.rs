@@ -6,6 +6,7 @@
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize};
 
+use crate::MarginLink;
 use crate::exp;
 use crate::generic::Evaluate;
 
@@ -159,6 +160,11 @@ pub struct TreesParams {
     pub sets: Vec<Vec<u32>>,
     /// Values of [`Node::Leaves`] leaves, one per output each.
     pub vectors: Vec<f64>,
+    /// Each tree's node covers, one list per tree and one number per node
+    /// in node order — the training rows (or hessian) that reached each
+    /// node, as the toolkit recorded — or none. Per-row contributions
+    /// need them ([`Trees::with_covers`]); scoring does not read them.
+    pub covers: Vec<Vec<f64>>,
 }
 
 impl TreesParams {
@@ -176,6 +182,7 @@ impl TreesParams {
             link: OutputLink::Identity,
             sets: Vec::new(),
             vectors: Vec::new(),
+            covers: Vec::new(),
         }
     }
 }
@@ -256,11 +263,14 @@ impl Trees {
     /// When there is no output, a tree is empty or names an unknown output,
     /// a split names an unknown feature, set or a child that is not after it
     /// in the tree, a tree mixes [`Node::Leaf`] and [`Node::Leaves`], the
-    /// link is softmax over one output, or a number is not finite. The
-    /// message names tree and node.
-    pub fn new(params: TreesParams) -> Result<Self, String> {
+    /// link is softmax over one output, a number is not finite, or covers
+    /// are given that do not fit ([`Trees::with_covers`]). The message
+    /// names tree and node.
+    pub fn new(mut params: TreesParams) -> Result<Self, String> {
         validate(&params)?;
-        Ok(Trees::flatten(params))
+        let covers = std::mem::take(&mut params.covers);
+        let trees = Trees::flatten(params);
+        if covers.is_empty() { Ok(trees) } else { trees.with_covers(&covers) }
     }
 
     /// Lays valid params out for evaluation: every tree's nodes in one
@@ -758,6 +768,50 @@ impl Evaluate for Trees {
     }
 
     fn evaluate(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) {
+        self.margins(rows, out.view_mut());
+        if self.link == OutputLink::Identity {
+            return;
+        }
+        for mut o in out.outer_iter_mut() {
+            match o.as_slice_mut() {
+                Some(values) => self.apply_link(values),
+                None => {
+                    let mut values = o.to_vec();
+                    self.apply_link(&mut values);
+                    o.iter_mut().zip(values).for_each(|(v, w)| *v = w);
+                }
+            }
+        }
+    }
+
+    fn explain(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, String> {
+        let (n, outputs, blocks) = (rows.nrows(), self.base.len(), self.features + 1);
+        let mut phi = ndarray::Array2::zeros((n, outputs * blocks));
+        self.contributions(rows, phi.view_mut())?;
+        let mut margin = ndarray::Array2::from_elem((n, outputs), f64::NAN);
+        self.margins(rows, margin.view_mut());
+        for r in 0..n {
+            for k in 0..outputs {
+                for j in 0..blocks {
+                    out[[r, k * (blocks + 1) + j]] = phi[[r, k * blocks + j]];
+                }
+                out[[r, k * (blocks + 1) + blocks]] = margin[[r, k]];
+            }
+        }
+        let link = match self.link {
+            OutputLink::Identity => MarginLink::Identity,
+            OutputLink::Logistic { .. } => MarginLink::Logistic,
+            OutputLink::Exp => MarginLink::Exp,
+            OutputLink::Softmax => MarginLink::Softmax,
+        };
+        Ok(vec![link; outputs])
+    }
+}
+
+impl Trees {
+    /// Each row's combined values before the link (its margins), into
+    /// `out` (rows × outputs), as scoring computes them.
+    pub fn margins(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) {
         let single = self.arithmetic == Precision::Single;
         let n = rows.nrows();
         // The cells as one row-major slice, rounded to f32 first if asked.
@@ -794,16 +848,6 @@ impl Evaluate for Trees {
                     } else {
                         self.base[k] + *v / count
                     };
-                }
-            }
-            if self.link != OutputLink::Identity {
-                match o.as_slice_mut() {
-                    Some(values) => self.apply_link(values),
-                    None => {
-                        let mut values = o.to_vec();
-                        self.apply_link(&mut values);
-                        o.iter_mut().zip(values).for_each(|(v, w)| *v = w);
-                    }
                 }
             }
         }

@@ -84,6 +84,7 @@ pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};
 pub use limits::{LimitHit, Limits, LimitsError, SettingProblem};
 pub use sandbox::codecache::{CacheError, CodeCache, CodeSource};
+pub use sandbox::explain::{ADDS_UP_WITHIN, Attribution, ContributionScale, ExplainError, Explanation};
 pub use sandbox::model::{
     Estimates, Isolation, LoadError, Model, ModelOptions, OptionsError, Priming, ScoreError, Scored, Usage,
 };

@@ -108,7 +108,6 @@ impl ContractDraft {
     /// list replaced by this contract's provenance.
     pub fn finish(self, estimator: EstimatorParams, origin: Origin) -> Imported {
         Imported {
-            covers: None,
             contract: Contract {
                 name: String::new(),
                 version: String::new(),

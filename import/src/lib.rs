@@ -146,10 +146,6 @@ pub struct Imported {
     pub estimator: EstimatorParams,
     /// Where the params and each part of the contract came from.
     pub origin: Origin,
-    /// Each tree's node covers (training rows or hessian that reached each
-    /// node, in the params' node order), where the file records them: what
-    /// per-row contributions need.
-    pub covers: Option<Vec<Vec<f64>>>,
 }
 
 /// The built-in estimator an imported model runs on.

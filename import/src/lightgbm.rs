@@ -142,6 +142,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         },
         sets,
         vectors: Vec::new(),
+        covers: covers.unwrap_or_default(),
     };
     let name = objective.split_ascii_whitespace().next().unwrap_or("");
     let (outs, task_text) = outputs(task, name, per_iteration);
@@ -162,9 +163,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         estimator: format!("{} trees", params.trees.len()),
         contract: Vec::new(),
     };
-    let mut imported = draft.finish(EstimatorParams::Trees(params), origin);
-    imported.covers = covers;
-    Ok(imported)
+    Ok(draft.finish(EstimatorParams::Trees(params), origin))
 }
 
 /// The outputs an objective gives, and the task in words.

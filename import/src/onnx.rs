@@ -453,6 +453,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         link,
         sets: Vec::new(),
         vectors,
+        covers: Vec::new(),
     };
     finish(
         g,

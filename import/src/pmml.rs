@@ -1215,7 +1215,6 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     });
     let kind = format!("{} ({})", tag(model_node), model_node.attribute("functionName").unwrap_or(""));
     Ok(Imported {
-        covers: None,
         contract: Contract { name: model_node.attribute("modelName").unwrap_or("").to_owned(), version: String::new(), about: String::new(), features, outputs },
         estimator: EstimatorParams::Program(params),
         origin: Origin {

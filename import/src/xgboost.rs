@@ -135,6 +135,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         },
         sets: Vec::new(),
         vectors: Vec::new(),
+        covers: covers.unwrap_or_default(),
     };
     let (outputs, task_text) = outputs(head.task, head.classes, &head.objective);
     let mut draft = contract_features(&r, learner, head.features)?;
@@ -150,9 +151,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
         estimator: format!("{} trees", params.trees.len()),
         contract: Vec::new(),
     };
-    let mut imported = draft.finish(EstimatorParams::Trees(params), origin);
-    imported.covers = covers;
-    Ok(imported)
+    Ok(draft.finish(EstimatorParams::Trees(params), origin))
 }
 
 /// The booster's model, refusing boosters other than `gbtree`.

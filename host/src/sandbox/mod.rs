@@ -8,6 +8,7 @@
 //! which is dropped (never reused) after a trap or a limit hit.
 
 pub mod codecache;
+pub mod explain;
 pub mod model;
 pub mod pool;
 pub mod prime;
@@ -23,7 +24,7 @@ use serde::Serialize;
 use wasmtime::component::Linker;
 use wasmtime::{Config, Engine, InstanceAllocationStrategy, PoolingAllocationConfig, ResourceLimiter, Store, Trap};
 
-use crate::bindings::{Estimator, EstimatorPre};
+use crate::bindings::{Estimator, EstimatorPre, explaining};
 use crate::contract::{Contract, Fault};
 use crate::limits::{LimitHit, Limits, SettingProblem};
 use crate::tool_error::ToolError;
@@ -63,6 +64,9 @@ pub fn wasmtime_version() -> &'static str {
 
 /// What a guest's `score` returned, and the fuel the call used (when fuel is on).
 type GuestAnswer = (Result<Vec<f64>, Fault>, Option<u64>);
+
+/// What a guest's `contributions` returned.
+pub(crate) type GuestExplanation = Result<explaining::Contributions, Fault>;
 
 /// Bytes of each instance slot's memory kept resident between instances.
 const KEEP_RESIDENT: usize = 1 << 20;
@@ -459,6 +463,8 @@ impl ResourceLimiter for State {
 pub(crate) struct Instance {
     store: Store<State>,
     api: Estimator,
+    /// The component's `contributions` export (paddock:model 0.2.0), if it has one.
+    contributions: Option<wasmtime::component::Func>,
     /// Names the model in what it prints (WASI only).
     who: Arc<str>,
 }
@@ -524,8 +530,8 @@ impl Instance {
         let mut store = init_store(runtime, limits, wasi);
         let started = Self::init(&mut store, runtime, pre, init, describe);
         drain(&store, who);
-        let (api, contract) = started?;
-        Ok((Instance { store, api, who: who.clone() }, contract))
+        let (api, contributions, contract) = started?;
+        Ok((Instance { store, api, contributions, who: who.clone() }, contract))
     }
 
     /// The start-up calls of [`Instance::start`], on an armed store.
@@ -535,9 +541,12 @@ impl Instance {
         pre: &EstimatorPre<State>,
         init: Option<&[u8]>,
         describe: bool,
-    ) -> Result<(Estimator, Option<Contract>), StartError> {
+    ) -> Result<(Estimator, Option<wasmtime::component::Func>, Option<Contract>), StartError> {
         let fail = |stage, store: &Store<State>, e| StartError::Sandbox { stage, error: classify(e, runtime, store) };
-        let api = pre.instantiate(&mut *store).map_err(|e| fail(StartStep::Instantiate, store, e))?;
+        let instance =
+            pre.instance_pre().instantiate(&mut *store).map_err(|e| fail(StartStep::Instantiate, store, e))?;
+        let api = Estimator::new(&mut *store, &instance).map_err(|e| fail(StartStep::Instantiate, store, e))?;
+        let contributions = instance.get_func(&mut *store, "contributions");
         if let Some(params) = init {
             match api.call_init(&mut *store, params) {
                 Ok(Ok(())) => {}
@@ -549,7 +558,7 @@ impl Instance {
             true => Some(api.call_describe(&mut *store).map_err(|e| fail(StartStep::Describe, store, e))?),
             false => None,
         };
-        Ok((api, contract))
+        Ok((api, contributions, contract))
     }
 
     /// Calls `describe()` again under the init deadline.
@@ -578,6 +587,32 @@ impl Instance {
         let answer = answer.map_err(|e| classify(e, runtime, &self.store))?;
         let used = budget.map(|b| b.saturating_sub(self.store.get_fuel().unwrap_or(0)));
         Ok((answer, used))
+    }
+
+    /// Calls `contributions(rows, cells)` under the call limits, when the
+    /// component exports it (`None` when it does not).
+    pub(crate) fn contributions(
+        &mut self,
+        runtime: &Runtime,
+        limits: &Limits,
+        rows: u32,
+        cells: &[f64],
+    ) -> Option<Result<GuestExplanation, SandboxError>> {
+        let func = self.contributions?;
+        type Answer = (Result<explaining::Contributions, explaining::ExplainFault>,);
+        let typed = match func.typed::<(u32, &[f64]), Answer>(&self.store) {
+            Ok(t) => t,
+            Err(e) => return Some(Err(classify(e, runtime, &self.store))),
+        };
+        arm(&mut self.store, runtime, limits.deadline, limits.fuel);
+        let answer = typed.call(&mut self.store, (rows, cells)).map(|(a,)| a);
+        drain(&self.store, &self.who);
+        Some(answer.map_err(|e| classify(e, runtime, &self.store)).map(|a| {
+            a.map_err(|f| match f {
+                explaining::ExplainFault::Rejected(m) => Fault::Rejected(m),
+                explaining::ExplainFault::Failed(m) => Fault::Failed(m),
+            })
+        }))
     }
 
     /// Names the model in what it prints from now on.

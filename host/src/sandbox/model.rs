@@ -13,6 +13,7 @@ use crate::contract::schema::{OutputFault, Schema};
 use crate::contract::{Contract, ContractError, Fault};
 use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::sandbox::codecache::{self, CodeCache, CodeSource};
+use crate::sandbox::explain::{ExplainError, Explanation};
 use crate::sandbox::pool::Pool;
 use crate::sandbox::prime::{self, PrimeError, PrimeState};
 use crate::sandbox::wasi::{self, Carry, WasiPolicy, WasiStart};
@@ -708,6 +709,48 @@ impl Model {
         self.give_back(instance);
         let usage = Usage { rows, wall: started.elapsed(), fuel, fresh_instance: fresh, peak_memory_bytes };
         Ok(Estimates { values, outputs: inner.schema.outputs(), usage })
+    }
+
+    /// Per-row contributions for `rows`: for each row and output, how
+    /// much each feature moved the output's margin away from the model's
+    /// baseline, checked to add up to the margin before they are returned.
+    /// Costs nothing unless called: scoring never computes them.
+    ///
+    /// # Errors
+    /// [`ExplainError::Score`] for what stops [`Model::score`] (rows that
+    /// break the contract, too many rows, a limit hit, a trap, a failure);
+    /// [`ExplainError::NoExport`] when the component has no
+    /// `contributions` export; [`ExplainError::Declined`] when the model
+    /// says it cannot explain (trees without covers); [`ExplainError::Malformed`]
+    /// or [`ExplainError::DoesNotAddUp`] when its answer is wrong.
+    pub fn explain(&self, rows: &[Row]) -> Result<Explanation, ExplainError> {
+        let (cells, problems) = self.encode(rows, None).map_err(ExplainError::Score)?;
+        if !problems.is_empty() {
+            return Err(ExplainError::Score(ScoreError::InvalidRows { errors: problems }));
+        }
+        let inner = &*self.inner;
+        let contract = inner.schema.contract();
+        let started = quanta::Instant::now();
+        let (mut instance, fresh) = self.take().map_err(ExplainError::Score)?;
+        let answer = match instance.contributions(&inner.runtime, &inner.options.limits, rows.len() as u32, &cells) {
+            None => {
+                self.give_back(instance);
+                return Err(ExplainError::NoExport { model: contract.name.clone() });
+            }
+            Some(Err(e)) => return Err(ExplainError::Score(ScoreError::Sandbox(e))),
+            Some(Ok(Err(Fault::Rejected(why)))) => {
+                self.give_back(instance);
+                return Err(ExplainError::Declined { model: contract.name.clone(), why });
+            }
+            Some(Ok(Err(fault))) => return Err(ExplainError::Score(ScoreError::Fault(fault))),
+            Some(Ok(Ok(answer))) => answer,
+        };
+        let peak_memory_bytes = instance.peak_memory();
+        self.give_back(instance);
+        let usage =
+            Usage { rows: rows.len(), wall: started.elapsed(), fuel: None, fresh_instance: fresh, peak_memory_bytes };
+        let shape = (rows.len(), contract.features.len(), contract.outputs.len());
+        Explanation::checked(answer, shape, |k| contract.outputs[k].name.clone(), usage)
     }
 
     fn check_row_count(&self, rows: usize) -> Result<(), ScoreError> {
