@@ -591,3 +591,62 @@ fn a_model_without_covers_declines_naming_why() {
     assert!(matches!(err, paddock_host::ExplainError::Declined { .. }), "{err:?}");
     assert!(err.to_string().ends_with("these trees carry no covers: contributions need each node's cover"), "{err}");
 }
+
+/// A linear model's contributions are weight × value per feature and the
+/// intercept as the baseline (the uncentred form), against NumPy computing
+/// the same from scikit-learn's own `coef_` and `intercept_` (outside
+/// reference; tests/imports/export.py). skl2onnx stores the coefficients
+/// as float32 and the importer reads the inputs as float32 too, so each
+/// contribution may be off by two float32 roundings: 2⁻²³ of its size.
+/// In the sandbox the answer is the native one, bit for bit.
+#[test]
+fn linear_contributions_are_weight_times_value() {
+    use paddock_guest::{Evaluate, Linear, ndarray::Array2};
+    let runtime = Runtime::new().unwrap();
+    for name in ["skl-diabetes-linear", "skl-diabetes-ridge", "skl-cancer-logistic"] {
+        let path = dir().join(format!("{name}.onnx"));
+        let bytes =
+            std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+        let imported = import(&bytes, Format::SklearnOnnx, name, None).unwrap();
+        let EstimatorParams::Linear(params) = imported.estimator.clone() else { panic!("{name}: not linear") };
+        let linear = Linear::new(params).unwrap();
+        let (rows, want, source) = contributions_reference(name);
+        let f = rows.ncols();
+        let mut got = Array2::from_elem((rows.nrows(), f + 2), f64::NAN);
+        linear.explain(rows.view(), got.view_mut()).unwrap();
+        let mut worst = 0f64;
+        for (i, w) in want.iter().enumerate() {
+            for (j, &v) in w.iter().enumerate() {
+                let g = got[[i, j]];
+                let bound = 2f64.powi(-23) * v.abs();
+                worst = worst.max((g - v).abs() / bound.max(f64::MIN_POSITIVE));
+                assert!((g - v).abs() <= bound, "{name} row {} column {j}: paddock {g:e}, {source} {v:e}", i + 1);
+            }
+        }
+        eprintln!("{name}: worst {:.0} % of the float32 bound ({source})", worst * 100.0);
+        // In the sandbox: the same bits.
+        let model = load(&runtime, &guest(imported.guest()), &imported.params(), unhurried());
+        let named: Vec<paddock_host::Row> = (0..rows.nrows())
+            .map(|i| {
+                model
+                    .contract()
+                    .features
+                    .iter()
+                    .enumerate()
+                    .map(|(j, feat)| (feat.name.clone(), rows[[i, j]]))
+                    .collect()
+            })
+            .collect();
+        let explained = model.explain(&named).unwrap();
+        for i in 0..rows.nrows() {
+            let a = explained.of(i, 0);
+            let sandboxed: Vec<f64> = a.features.iter().copied().chain([a.baseline, a.margin]).collect();
+            assert!(
+                sandboxed.iter().zip(got.row(i)).all(|(s, n)| s.to_bits() == n.to_bits()),
+                "{name} row {}: sandbox {sandboxed:?}, native {:?}",
+                i + 1,
+                got.row(i)
+            );
+        }
+    }
+}

@@ -4,6 +4,7 @@
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize};
 
+use crate::MarginLink;
 use crate::exp;
 use crate::generic::Evaluate;
 use crate::lanes::F64x2;
@@ -91,15 +92,25 @@ impl Linear {
 
     /// One row's outputs.
     fn row(&self, x: &[f64], out: &mut [f64]) {
-        for ((o, &b), w) in out.iter_mut().zip(&self.intercepts).zip(self.weights.chunks_exact(self.features)) {
-            *o = match &self.impute {
-                None => x.iter().zip(w).fold(b, |acc, (x, w)| acc + w * x),
-                Some(fill) => {
-                    x.iter().zip(w).zip(fill).fold(b, |acc, ((x, w), f)| acc + w * if x.is_nan() { *f } else { *x })
-                }
-            };
-        }
+        self.margins(x, out);
         self.link(out);
+    }
+
+    /// One row's linear scores (margins), before the link.
+    fn margins(&self, x: &[f64], out: &mut [f64]) {
+        for ((o, &b), w) in out.iter_mut().zip(&self.intercepts).zip(self.weights.chunks_exact(self.features)) {
+            *o = x.iter().zip(w).enumerate().fold(b, |acc, (j, (x, w))| acc + w * self.input(j, *x));
+        }
+    }
+
+    /// Feature `j`'s value as the model reads it: an absent one imputed
+    /// when the model has imputation values.
+    #[inline(always)]
+    fn input(&self, j: usize, x: f64) -> f64 {
+        match &self.impute {
+            Some(fill) if x.is_nan() => fill[j],
+            _ => x,
+        }
     }
 
     /// Turns one row's linear scores into its outputs.
@@ -208,6 +219,36 @@ impl Evaluate for Linear {
                 }
             }
         }
+    }
+
+    /// Per output: each feature's weight × its value (imputed where the
+    /// model imputes), the intercept as the baseline, and the linear score.
+    /// The uncentred form, as XGBoost's linear booster reports it: the
+    /// baseline is the score of a row of zeros, not of an average row.
+    fn explain(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, String> {
+        let (f, m) = (self.features, self.outputs());
+        let mut margin = vec![0.0; m];
+        for (r, (x, mut o)) in rows.outer_iter().zip(out.outer_iter_mut()).enumerate() {
+            let x = x.to_vec();
+            if let Some(j) = x.iter().position(|v| v.is_nan()).filter(|_| self.impute.is_none()) {
+                return Err(format!("row {}: feature {j} is absent and the model imputes nothing", r + 1));
+            }
+            self.margins(&x, &mut margin);
+            for (k, w) in self.weights.chunks_exact(f).enumerate() {
+                let at = k * (f + 2);
+                for j in 0..f {
+                    o[at + j] = w[j] * self.input(j, x[j]);
+                }
+                o[at + f] = self.intercepts[k];
+                o[at + f + 1] = margin[k];
+            }
+        }
+        let link = match self.link {
+            Link::Identity => MarginLink::Identity,
+            Link::Logistic => MarginLink::Logistic,
+            Link::Softmax => MarginLink::Softmax,
+        };
+        Ok(vec![link; m])
     }
 }
 

@@ -140,13 +140,31 @@ x, y, names = data(load_diabetes, holes=(2, 5))
 hand_off(HistGradientBoostingRegressor(**HIST).fit(x, y), x, os.path.join(OUT, "skl-diabetes-hist"))
 x, y, names = data(load_diabetes)
 # Named columns: the helper writes overrides naming the ONNX file's x0, x1…
-hand_off(LinearRegression().fit(x, y), x, os.path.join(OUT, "skl-diabetes-linear"), names=names)
-hand_off(Ridge(alpha=0.5).fit(x, y), x, os.path.join(OUT, "skl-diabetes-ridge"))
+
+
+def linear_contributions(name, model, x):
+    """A linear model's contributions as NumPy computes them from the
+    toolkit's own coefficients: weight × value per feature, the intercept
+    as the baseline (for a binary classifier, class 1's score)."""
+    coef = numpy.atleast_2d(model.coef_)[-1]
+    intercept = numpy.atleast_1d(model.intercept_)[-1]
+    contrib = numpy.column_stack([x * coef, numpy.full(len(x), intercept)])
+    contributions(name, x, contrib, f"NumPy {numpy.__version__} from scikit-learn {sklearn.__version__}'s coef_ and intercept_")
+
+
+model = LinearRegression().fit(x, y)
+hand_off(model, x, os.path.join(OUT, "skl-diabetes-linear"), names=names)
+linear_contributions("skl-diabetes-linear", model, x)
+model = Ridge(alpha=0.5).fit(x, y)
+hand_off(model, x, os.path.join(OUT, "skl-diabetes-ridge"))
+linear_contributions("skl-diabetes-ridge", model, x)
 
 x, y, names = data(load_breast_cancer)
 hand_off(DecisionTreeClassifier(max_depth=5, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-tree"))
 hand_off(GradientBoostingClassifier(n_estimators=60, max_depth=3, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-boosted"))
-hand_off(LogisticRegression(max_iter=10000).fit(x, y), x, os.path.join(OUT, "skl-cancer-logistic"))
+model = LogisticRegression(max_iter=10000).fit(x, y)
+hand_off(model, x, os.path.join(OUT, "skl-cancer-logistic"))
+linear_contributions("skl-cancer-logistic", model, x)
 x, y, names = data(load_breast_cancer, holes=(0, 7, 20))
 hand_off(HistGradientBoostingClassifier(**HIST).fit(x, y), x, os.path.join(OUT, "skl-cancer-hist"))
 
