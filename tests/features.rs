@@ -100,6 +100,26 @@ fn each_row_may_carry_its_own_key_and_a_failed_lookup_names_its_row() {
     );
 }
 
+/// Contributions from the registry explain the rows as scored: the
+/// looked-up x of each site times the slope (y = 2x + 1, worked by hand),
+/// the intercept as baseline; rows that broke the contract have none.
+#[test]
+fn contributions_explain_the_rows_as_completed_by_the_plan() {
+    let (_dir, reg) = store(1.0);
+    let rows: Vec<Row> = ["s3", "nowhere", "s10"].iter().map(|s| Row::new().with("site", *s)).collect();
+    let a = reg.score(&Request::new("m", &RequestContext::new(), &rows).with_contributions()).unwrap();
+    assert_eq!(a.scored, vec![1, 3]);
+    let c = a.contributions.as_ref().expect("asked for");
+    assert_eq!(c.row_count(), 2);
+    for (k, x) in [3.0, 10.0].into_iter().enumerate() {
+        let why = c.of(k, 0);
+        assert_eq!((why.features, why.baseline, why.margin), (&[2.0 * x][..], 1.0, 2.0 * x + 1.0));
+        assert_eq!(a.estimates.values_at(k)[0], why.margin);
+    }
+    // Not asked: none computed.
+    assert!(reg.score(&Request::new("m", &RequestContext::new(), &rows)).unwrap().contributions.is_none());
+}
+
 /// Rows that share a key take what the row before them read under it; a
 /// row under another key reads its own, and a key that finds nothing fails
 /// each of its rows, whatever the rows around it.

@@ -58,6 +58,17 @@ struct Answer {
     overstay_probability: f64,
     overstay_version: String,
     overstay_reason: std::sync::Arc<paddock_serve::registry::Reason>,
+    /// Why that risk: the baseline and each feature's contribution, in
+    /// log-odds (the logistic model's margin).
+    overstay_why: Why,
+}
+
+/// An estimate's baseline and each feature's contribution to its margin.
+#[derive(Serialize)]
+struct Why {
+    scale: paddock_host::ContributionScale,
+    baseline: f64,
+    contributions: Vec<(String, f64)>,
 }
 
 /// Builds a model's row from named text cells, taking only its features.
@@ -160,7 +171,16 @@ pub fn run(args: Args) -> Result<Outcome> {
         let rows = [row_for(&overstay_model, &cells)];
         // Site occupancy and the member's overstay rate are not in the
         // plug-in event: they are looked up by key (the store's features.toml).
-        let o = registry.score(&Request::new("overstay-risk", &context, &rows).at(Some(at)).every_lookup())?;
+        let o = registry
+            .score(&Request::new("overstay-risk", &context, &rows).at(Some(at)).every_lookup().with_contributions())?;
+        let explained = o.contributions.as_ref().context("contributions were asked for")?;
+        let attribution = explained.of(0, 0);
+        let names = overstay_model.contract().features.iter().map(|f| f.name.clone());
+        let overstay_why = Why {
+            scale: explained.scale(0),
+            baseline: attribution.baseline,
+            contributions: names.zip(attribution.features.iter().copied()).collect(),
+        };
         for f in o.lookups.iter().flatten() {
             *looked_up.entry(f.outcome).or_insert(0) += 1;
         }
@@ -175,6 +195,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             overstay_probability: o.estimates.values_at(0)[0],
             overstay_version: o.version.to_string(),
             overstay_reason: o.reason.clone(),
+            overstay_why,
         });
     }
     registry.drain_shadows(Duration::from_secs(10));
@@ -208,6 +229,9 @@ pub fn run(args: Args) -> Result<Outcome> {
         "{}",
         text_table(&["site", "region", "plug-in", "charging", "answered by", "overstay risk", "answered by"], &rows)
     )?;
+    if let Some(first) = answers.first() {
+        outln!("\n{}", why_line(first))?;
+    }
     for s in &usage.shadows {
         outln!(
             "\nshadow {} {}: {} requests compared, largest difference {:.1} min, {} over the {} min tolerance",
@@ -236,4 +260,22 @@ pub fn run(args: Args) -> Result<Outcome> {
         if matches!(store, Place::Shared(_)) { " --state DIR" } else { "" }
     )?;
     Ok(Outcome::Ok)
+}
+
+/// Why the first plug-in's overstay risk is what it is: the features that
+/// moved it most, with their signs, in log-odds.
+fn why_line(a: &Answer) -> String {
+    let mut top: Vec<&(String, f64)> = a.overstay_why.contributions.iter().filter(|(_, v)| *v != 0.0).collect();
+    top.sort_by(|x, y| y.1.abs().total_cmp(&x.1.abs()));
+    let parts: Vec<String> = top.iter().take(4).map(|(name, v)| format!("{name} {v:+.2}")).collect();
+    format!(
+        "why {} at {} ({}) has a {:.0} % overstay risk, in log-odds: baseline {:+.2}, {} \
+         (contributions describe the model, not what causes an overstay)",
+        a.member,
+        a.site,
+        a.plugged_in,
+        a.overstay_probability * 100.0,
+        a.overstay_why.baseline,
+        parts.join(", ")
+    )
 }

@@ -49,6 +49,7 @@ use paddock_host::artifact::trust::TrustPolicy;
 use paddock_host::contract::rows::{Row, RowError};
 use paddock_host::sandbox::Runtime;
 use paddock_host::sandbox::codecache::{CacheError, CodeCache};
+use paddock_host::sandbox::explain::{ExplainError, Explanation};
 use paddock_host::sandbox::model::{Estimates, Model, ModelOptions, ScoreError, Scored};
 
 use gate::Loaded;
@@ -245,6 +246,19 @@ pub enum RequestError {
         /// What went wrong.
         error: ScoreError,
     },
+    /// The request asked for contributions and the chosen version gave
+    /// none: it cannot explain, or its explanation was at fault.
+    #[error("{model} {version} ({reason}): {error}")]
+    Explain {
+        /// The model.
+        model: String,
+        /// The version that was asked.
+        version: Version,
+        /// Why that version.
+        reason: Arc<Reason>,
+        /// Why there are no contributions.
+        error: ExplainError,
+    },
 }
 
 fn served_list(served: &[String]) -> String {
@@ -280,6 +294,11 @@ impl RequestError {
             RequestError::NotRouted { .. } => "not_routed",
             RequestError::NotLoaded { .. } => "not_loaded",
             RequestError::Score { error, .. } => error.kind(),
+            RequestError::Explain { error, .. } => match error {
+                ExplainError::Score(e) => e.kind(),
+                ExplainError::NoExport { .. } | ExplainError::Declined { .. } => "cannot_explain",
+                _ => "explanation_fault",
+            },
         }
     }
 }
@@ -298,13 +317,24 @@ pub struct Request<'a> {
     pub rows: &'a [Row],
     /// How much the answer says of the features looked up.
     pub lookups: Lookups,
+    /// Whether the answer carries each scored row's contributions.
+    pub contributions: bool,
 }
 
 impl<'a> Request<'a> {
     /// A request for `model`, routed and keyed by `context`, scoring `rows`
     /// now, its answer naming only the looked-up features that fell back.
     pub fn new(model: &'a str, context: &'a RequestContext, rows: &'a [Row]) -> Self {
-        Request { model, context, at: None, rows, lookups: Lookups::Fallbacks }
+        Request { model, context, at: None, rows, lookups: Lookups::Fallbacks, contributions: false }
+    }
+
+    /// The same request, its answer carrying each scored row's
+    /// contributions ([`Answer::contributions`]); a model that cannot
+    /// give them fails the request ([`RequestError::Explain`]).
+    #[must_use]
+    pub fn with_contributions(mut self) -> Self {
+        self.contributions = true;
+        self
     }
 
     /// The same request, happening at `at` (for time windows).
@@ -352,6 +382,10 @@ pub struct Answer {
     /// only those that fell back, as the request asked); empty when the
     /// model has no features plan.
     pub lookups: Vec<Vec<Fetched>>,
+    /// When the request asked: each scored row's contributions, in the
+    /// order of [`Answer::estimates`] (the surfaces write their own form).
+    #[serde(skip)]
+    pub contributions: Option<Explanation>,
 }
 
 impl Answer {
@@ -472,10 +506,19 @@ struct Routed {
     at: Timestamp,
 }
 
+/// What a request's scoring gave: the scored rows, and their
+/// contributions when it asked.
+type ScoredExplained = (Scored, Option<Result<Explanation, ExplainError>>);
+
 /// Scores the rows (as gathered, when the version has a features plan) on
 /// the served version, counting the call in flight, and numbers the result
-/// as the request numbered its rows.
-fn score_rows(served: &Loaded, request: &Request<'_>, gathered: Option<&Gathered>) -> Result<Scored, ScoreError> {
+/// as the request numbered its rows; when the request asks, explains the
+/// rows as scored (completed by the plan) on the same version.
+fn score_and_explain(
+    served: &Loaded,
+    request: &Request<'_>,
+    gathered: Option<&Gathered>,
+) -> Result<ScoredExplained, ScoreError> {
     let rows = gathered.map_or(request.rows, |g| &g.rows[..]);
     let in_flight = served.ledger.enter();
     let result = if rows.is_empty() && gathered.is_some() && !request.rows.is_empty() {
@@ -483,11 +526,20 @@ fn score_rows(served: &Loaded, request: &Request<'_>, gathered: Option<&Gathered
     } else {
         served.model.score_valid(rows)
     };
+    // The rows scored, as scored (completed by the plan where it has one).
+    let explained = match (&result, request.contributions) {
+        (Ok(scored), true) => {
+            let valid: Vec<Row> = scored.scored.iter().map(|&n| rows[n - 1].clone()).collect();
+            Some(served.model.explain(&valid))
+        }
+        _ => None,
+    };
     drop(in_flight);
-    match gathered {
+    let result = match gathered {
         None => result,
         Some(g) => g.renumber(result),
-    }
+    };
+    result.map(|scored| (scored, explained))
 }
 
 /// One immutable view of what is served.
@@ -679,7 +731,7 @@ impl Registry {
         let routed = self.pick(request)?;
         let gathered = routed.plan.as_deref().map(|plan| gather(plan, request, routed.at));
         let started = Instant::now();
-        let result = score_rows(&routed.served, request, gathered.as_ref());
+        let result = score_and_explain(&routed.served, request, gathered.as_ref());
         self.account(request, routed, gathered, result, started)
     }
 
@@ -708,7 +760,7 @@ impl Registry {
     pub fn score_prepared(&self, request: &Request<'_>, prepared: Prepared) -> Result<Answer, RequestError> {
         let Prepared { routed, gathered } = prepared;
         let started = Instant::now();
-        let result = score_rows(&routed.served, request, gathered.as_ref());
+        let result = score_and_explain(&routed.served, request, gathered.as_ref());
         self.account(request, routed, gathered, result, started)
     }
 
@@ -768,12 +820,12 @@ impl Registry {
         request: &Request<'_>,
         routed: Routed,
         gathered: Option<Gathered>,
-        result: Result<Scored, ScoreError>,
+        result: Result<ScoredExplained, ScoreError>,
         started: Instant,
     ) -> Result<Answer, RequestError> {
         let Routed { served, version, reason, generation, shadow, .. } = routed;
-        let scored = match result {
-            Ok(scored) => scored,
+        let (scored, explained) = match result {
+            Ok(done) => done,
             Err(error) => {
                 if error.is_request_fault() {
                     served.ledger.record_refused(request.rows.len(), error.kind());
@@ -798,6 +850,13 @@ impl Registry {
             let job = shadow::Job { served: served.clone(), shadow, rows, answer, tolerance, ledger };
             self.inner.shadows.submit(job);
         }
+        let contributions = match explained {
+            None => None,
+            Some(Ok(explanation)) => Some(explanation),
+            Some(Err(error)) => {
+                return Err(RequestError::Explain { model: request.model.to_owned(), version, reason, error });
+            }
+        };
         Ok(Answer {
             model: request.model.to_owned(),
             version,
@@ -810,6 +869,7 @@ impl Registry {
             scored: scored.scored,
             problems: scored.problems,
             lookups: gathered.map(|g| g.lookups).unwrap_or_default(),
+            contributions,
         })
     }
 

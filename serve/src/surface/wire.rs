@@ -258,6 +258,15 @@ impl ErrorBody {
                     body.error.rows = errors;
                 }
             }
+            RequestError::Explain { model, version, reason, error } => {
+                body.error.model = Some(model);
+                body.error.version = Some(version);
+                body.error.route = Some(reason.route().to_owned());
+                body.error.message = error.to_string();
+                if let paddock_host::ExplainError::Score(ScoreError::InvalidRows { errors }) = error {
+                    body.error.rows = errors;
+                }
+            }
         }
         body
     }
@@ -290,6 +299,13 @@ pub fn blame(e: &RequestError) -> Blame {
                 error: paddock_host::sandbox::SandboxError::Limit(_),
                 ..
             }) => Blame::Limit,
+            _ => Blame::Model,
+        },
+        // Asking a model for what it cannot give is the request's doing;
+        // an explanation that breaks its checks is the model's.
+        RequestError::Explain { error, .. } => match error {
+            paddock_host::ExplainError::Score(e) if e.is_request_fault() => Blame::Request,
+            paddock_host::ExplainError::NoExport { .. } | paddock_host::ExplainError::Declined { .. } => Blame::Request,
             _ => Blame::Model,
         },
     }
