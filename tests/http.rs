@@ -165,6 +165,33 @@ fn scoring_answers_with_estimates_version_route_and_usage() {
     assert!(v["digest"].as_str().unwrap().starts_with("sha256:"));
 }
 
+/// `"contributions": true` puts each scored row's contributions in the
+/// answer (y = 2x + 1: x contributes 2x on the baseline 1, by hand), `null`
+/// for a row that broke the contract; not asked, they are left out. A
+/// model without the export (the hand-written fixture) is 422
+/// `cannot_explain`, naming why.
+#[test]
+fn contributions_come_when_asked_and_a_model_that_cannot_explain_is_422() {
+    let dir = tempfile::tempdir().unwrap();
+    put(dir.path(), "m", "1.0.0", &line_artifact("m", "1.0.0", 2.0, 1.0, None));
+    put(dir.path(), "affine", "1.0.0", &paddock_host::pack(&fixture("affine.wat"), Some(&[0]), None).unwrap());
+    let routes = "[models.m]\ndefault = \"1.0.0\"\n[models.affine]\ndefault = \"1.0.0\"\n";
+    write_atomically(&dir.path().join("routes.toml"), routes.as_bytes());
+    let registry = Registry::open(&Runtime::new().unwrap(), dir.path(), RegistryOptions::default()).unwrap();
+    let s = Server::start(registry, ServeOptions::default());
+    let r = estimate(&s, "m", r#"{"rows": [{"x": 1}, {"x": "one"}, {"x": 2.5}], "contributions": true}"#);
+    assert_eq!(r.status, 200, "{}", r.body);
+    let why = |margin: f64, x: f64| serde_json::json!({"y": {"scale": "output", "baseline": 1.0, "margin": margin, "features": {"x": x}}});
+    assert_eq!(r.json()["contributions"], serde_json::json!([why(3.0, 2.0), null, why(6.0, 5.0)]));
+    let plain = estimate(&s, "m", r#"{"rows": [{"x": 1}]}"#).json();
+    assert!(plain.get("contributions").is_none(), "{plain}");
+    let r = estimate(&s, "affine", r#"{"row": {"x": 1}, "contributions": true}"#);
+    assert_eq!(r.status, 422, "{}", r.body);
+    let e = r.json();
+    assert_eq!(e["error"]["kind"], "cannot_explain", "{e}");
+    assert!(e["error"]["message"].as_str().unwrap().contains("no `contributions` export"), "{e}");
+}
+
 #[test]
 fn malformed_requests_are_400_naming_the_problem() {
     let dir = tempfile::tempdir().unwrap();

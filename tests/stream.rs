@@ -68,3 +68,20 @@ fn mixed_good_and_bad_lines_get_answers_in_order() {
     assert_eq!(lines[8]["answer"]["estimates"], serde_json::json!([{"y": 9.0}]));
     assert_eq!(kind(9), "bad_request");
 }
+
+/// A line asking for contributions gets them, from the version its route
+/// picked (2.0.0 in the north: y = 3x + 1, so x = 2 contributes 6 on the
+/// baseline 1, by hand).
+#[test]
+fn a_line_may_ask_for_contributions() {
+    let dir = tempfile::tempdir().unwrap();
+    let reg = registry(dir.path());
+    let input = r#"{"model": "m", "context": {"region": "north"}, "row": {"x": 2}, "contributions": true}"#;
+    let mut out = Vec::new();
+    stream::run(&reg, input.as_bytes(), &mut out, StreamOptions::default()).unwrap();
+    let line: serde_json::Value = serde_json::from_slice(&out).unwrap();
+    assert_eq!(
+        line["answer"]["contributions"],
+        serde_json::json!([{"y": {"scale": "output", "baseline": 1.0, "margin": 7.0, "features": {"x": 6.0}}}])
+    );
+}

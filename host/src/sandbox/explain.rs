@@ -63,6 +63,10 @@ pub struct Attribution<'a> {
 pub struct Explanation {
     features: usize,
     outputs: usize,
+    /// The contract's feature names, in order.
+    feature_names: Vec<String>,
+    /// The contract's output names, in order.
+    output_names: Vec<String>,
     scales: Vec<ContributionScale>,
     /// rows × outputs × (features + 2), row-major.
     values: Vec<f64>,
@@ -70,14 +74,15 @@ pub struct Explanation {
 }
 
 impl Explanation {
-    /// Checks a guest's answer for `rows` rows of `features` features and
-    /// `outputs` outputs (named for messages by `output_name`).
+    /// Checks a guest's answer for `rows` rows of the contract's features
+    /// and outputs.
     pub(crate) fn checked(
         answer: explaining::Contributions,
-        (rows, features, outputs): (usize, usize, usize),
-        output_name: impl Fn(usize) -> String,
+        rows: usize,
+        contract: &crate::contract::Contract,
         usage: Usage,
     ) -> Result<Explanation, ExplainError> {
+        let (features, outputs) = (contract.features.len(), contract.outputs.len());
         let width = outputs * (features + 2);
         if answer.values.len() != rows * width || answer.links.len() != outputs {
             return Err(ExplainError::Malformed {
@@ -93,6 +98,8 @@ impl Explanation {
         let explanation = Explanation {
             features,
             outputs,
+            feature_names: contract.features.iter().map(|f| f.name.clone()).collect(),
+            output_names: contract.outputs.iter().map(|o| o.name.clone()).collect(),
             scales: answer.links.into_iter().map(ContributionScale::from).collect(),
             values: answer.values,
             usage,
@@ -106,7 +113,7 @@ impl Explanation {
                 if !((sum - a.margin).abs() <= bound) {
                     return Err(ExplainError::DoesNotAddUp {
                         row: index + 1,
-                        output: output_name(output),
+                        output: explanation.output_names[output].clone(),
                         sum,
                         margin: a.margin,
                         bound,
@@ -143,6 +150,17 @@ impl Explanation {
             baseline: block[self.features],
             margin: block[self.features + 1],
         }
+    }
+
+    /// The features' names, in contract order (the order of
+    /// [`Attribution::features`]).
+    pub fn feature_names(&self) -> &[String] {
+        &self.feature_names
+    }
+
+    /// The outputs' names, in contract order.
+    pub fn output_names(&self) -> &[String] {
+        &self.output_names
     }
 
     /// What the call cost.
@@ -215,7 +233,27 @@ mod tests {
 
     fn check(values: Vec<f64>) -> Result<Explanation, ExplainError> {
         // Two rows, two features, one output: per row x₁, x₂, baseline, margin.
-        Explanation::checked(answer(values), (2, 2, 1), |_| "risk".into(), Usage::default())
+        let features = ["x1", "x2"].map(|n| crate::Feature {
+            name: n.into(),
+            domain: crate::Domain::Real(crate::Bounds { min: None, max: None }),
+            unit: None,
+            required: true,
+            about: String::new(),
+        });
+        let output = crate::Output {
+            name: "risk".into(),
+            unit: None,
+            bounds: crate::Bounds { min: None, max: None },
+            about: String::new(),
+        };
+        let contract = crate::Contract {
+            name: "m".into(),
+            version: "1.0.0".into(),
+            features: features.to_vec(),
+            outputs: vec![output],
+            about: String::new(),
+        };
+        Explanation::checked(answer(values), 2, &contract, Usage::default())
     }
 
     #[test]

@@ -749,8 +749,7 @@ impl Model {
         self.give_back(instance);
         let usage =
             Usage { rows: rows.len(), wall: started.elapsed(), fuel: None, fresh_instance: fresh, peak_memory_bytes };
-        let shape = (rows.len(), contract.features.len(), contract.outputs.len());
-        Explanation::checked(answer, shape, |k| contract.outputs[k].name.clone(), usage)
+        Explanation::checked(answer, rows.len(), contract, usage)
     }
 
     fn check_row_count(&self, rows: usize) -> Result<(), ScoreError> {

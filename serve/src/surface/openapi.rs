@@ -20,7 +20,9 @@ use utoipa::openapi::security::{Http, HttpAuthScheme, SecurityScheme};
 use utoipa::{Modify, OpenApi, ToSchema};
 
 use super::http;
-use super::wire::{ErrorBody, ErrorDetail, Estimate, EstimateAnswer, EstimateRequest};
+use super::wire::{
+    ErrorBody, ErrorDetail, Estimate, EstimateAnswer, EstimateRequest, OutputContributions, RowContributions,
+};
 use crate::registry::{
     ArtifactState, ArtifactStatus, GateStep, Reason, Refusal, RefusedFile, ReloadReport, RoutesState, Status,
 };
@@ -53,6 +55,9 @@ use paddock_host::contract::rows::{ContractRule, Row, RowError, Value as Feature
         EstimateRequest,
         EstimateAnswer,
         Estimate,
+        RowContributions,
+        OutputContributions,
+        paddock_host::ContributionScale,
         Row,
         FeatureValue,
         Digest,
@@ -136,6 +141,26 @@ paddock_host::described!(
         .description(Some("One row's estimates: output name → value, in the contract's output order."))
         .additional_properties(Some(AdditionalProperties::RefOr(object().schema_type(Type::Number).into())))
 );
+
+paddock_host::described!(
+    RowContributions,
+    "RowContributions",
+    object()
+        .schema_type(Type::Object)
+        .description(Some("One row's contributions: output name → its contributions, in the contract's output order."))
+        .additional_properties(Some(AdditionalProperties::RefOr(
+            utoipa::openapi::Ref::from_schema_name("OutputContributions").into()
+        )))
+);
+
+/// An output's contributions by feature.
+pub(crate) fn by_feature() -> utoipa::openapi::schema::Object {
+    object()
+        .schema_type(Type::Object)
+        .description(Some("Feature name → how much it moved the margin from the baseline, in contract order."))
+        .additional_properties(Some(AdditionalProperties::RefOr(object().schema_type(Type::Number).into())))
+        .build()
+}
 
 /// Bounds of a number: inclusive, `null` for an open side.
 #[derive(Serialize, Deserialize, ToSchema)]

@@ -13,6 +13,7 @@ use crate::features::Fetched;
 use crate::registry::{Answer, Lookups, Reason, Request, RequestContext, RequestError};
 use paddock_host::artifact::digest::Digest;
 use paddock_host::contract::rows::{Row, RowError};
+use paddock_host::sandbox::explain::Explanation;
 use paddock_host::sandbox::model::{ScoreError, Usage};
 
 /// A request for estimates, in the same shape on every surface: the body of
@@ -46,6 +47,12 @@ pub struct EstimateRequest {
     /// keys; a feature a row gives itself wins over its lookup.
     #[serde(default)]
     pub lookups: Lookups,
+    /// `true` to have the answer carry each scored row's contributions:
+    /// per output, the baseline and how much each feature moved the margin
+    /// from it (they describe the model, not the world). Off by default;
+    /// a model that cannot explain fails the request (`cannot_explain`).
+    #[serde(default)]
+    pub contributions: bool,
 }
 
 impl EstimateRequest {
@@ -70,8 +77,11 @@ impl EstimateRequest {
 
     /// The registry request for these rows.
     pub fn request<'a>(&'a self, rows: &'a [Row], at: Option<Timestamp>) -> Request<'a> {
-        let request = Request::new(&self.model, &self.context, rows).at(at);
-        if self.lookups == Lookups::All { request.every_lookup() } else { request }
+        let mut request = Request::new(&self.model, &self.context, rows).at(at);
+        if self.lookups == Lookups::All {
+            request = request.every_lookup();
+        }
+        if self.contributions { request.with_contributions() } else { request }
     }
 }
 
@@ -123,16 +133,41 @@ pub struct EstimateAnswer {
     /// for `"lookups": "all"`. Left out when the model looks nothing up.
     #[serde(skip_serializing_if = "Vec::is_empty")]
     pub lookups: Vec<Vec<Fetched>>,
+    /// When the request asked for them: per request row, in order, an
+    /// object of output name → its contributions, or `null` for a row that
+    /// broke the contract. Left out otherwise.
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    pub contributions: Vec<Option<RowContributions>>,
 }
 
-/// One row's outputs: output name → value, in contract order.
+/// One row's contributions: output name → [`OutputContributions`], in
+/// contract order.
+pub type RowContributions = Named<OutputContributions>;
+
+/// One output's contributions for one row.
+#[derive(Clone, Debug, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+pub struct OutputContributions {
+    /// What the margin is: `output` (no link), `log_odds`, `log` or
+    /// `class_logit`.
+    pub scale: paddock_host::ContributionScale,
+    /// The model's expected margin over its training rows.
+    pub baseline: f64,
+    /// The row's margin: the baseline plus every feature's contribution.
+    pub margin: f64,
+    /// Feature name → how much it moved the margin, in contract order.
+    #[cfg_attr(feature = "http", schema(schema_with = super::openapi::by_feature))]
+    pub features: Named,
+}
+
+/// Names and their values, written as a JSON object in order.
 #[derive(Clone, Debug)]
-pub struct Estimate {
+pub struct Named<T = f64> {
     names: std::sync::Arc<[String]>,
-    values: Vec<f64>,
+    values: Vec<T>,
 }
 
-impl Serialize for Estimate {
+impl<T: Serialize> Serialize for Named<T> {
     fn serialize<S: Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
         let mut m = s.serialize_map(Some(self.values.len()))?;
         for (k, v) in self.names.iter().zip(&self.values) {
@@ -142,14 +177,18 @@ impl Serialize for Estimate {
     }
 }
 
+/// One row's outputs: output name → value, in contract order.
+pub type Estimate = Named;
+
 impl EstimateAnswer {
     /// The wire form of an [`Answer`], echoing the request's `id`.
     pub fn new(answer: Answer, id: Option<serde_json::Value>) -> Self {
         let names = answer.outputs.clone();
         let estimates = answer
             .rows()
-            .map(|row| row.map(|values| Estimate { names: names.clone(), values: values.to_vec() }))
+            .map(|row| row.map(|values| Named { names: names.clone(), values: values.to_vec() }))
             .collect();
+        let contributions = answer.contributions.as_ref().map_or_else(Vec::new, |c| row_contributions(&answer, c));
         EstimateAnswer {
             id,
             model: answer.model,
@@ -162,8 +201,33 @@ impl EstimateAnswer {
             estimates,
             problems: answer.problems,
             lookups: answer.lookups,
+            contributions,
         }
     }
+}
+
+/// Per request row, its contributions, or `None` for a row not scored.
+fn row_contributions(answer: &Answer, explained: &Explanation) -> Vec<Option<RowContributions>> {
+    let features: std::sync::Arc<[String]> = explained.feature_names().into();
+    let outputs: std::sync::Arc<[String]> = explained.output_names().into();
+    let mut scored = answer.scored.iter().copied().enumerate().peekable();
+    (1..=answer.requested)
+        .map(|n| {
+            let (k, _) = scored.next_if(|&(_, m)| m == n)?;
+            let per_output = (0..outputs.len())
+                .map(|o| {
+                    let a = explained.of(k, o);
+                    OutputContributions {
+                        scale: explained.scale(o),
+                        baseline: a.baseline,
+                        margin: a.margin,
+                        features: Named { names: features.clone(), values: a.features.to_vec() },
+                    }
+                })
+                .collect();
+            Some(Named { names: outputs.clone(), values: per_output })
+        })
+        .collect()
 }
 
 /// An error, as every surface reports it: `{"error": {...}}`.
@@ -181,6 +245,7 @@ pub struct ErrorDetail {
     /// A stable name: `bad_request`, `unknown_model`, `not_routed`, `unknown_version`,
     /// `invalid_rows`, `shape`, `too_many_rows`, `too_large`, `limit`,
     /// `trap`, `fault`, `output`, `start`, `contract_changed`, `not_loaded`,
+    /// `cannot_explain`, `explanation_fault`,
     /// `overloaded`, `unauthorized`, `admin_disabled`, `not_ready`,
     /// `not_found`, `method_not_allowed`, `store`, `server`.
     pub kind: String,
