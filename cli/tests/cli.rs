@@ -148,6 +148,39 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
     assert!(text(&out.stdout).starts_with("{\"row\":1,\"overstay_probability\":"), "{}", text(&out.stdout));
 }
 
+/// `--contributions` adds each row's baseline and per-feature
+/// contributions; for the logistic overstay model they add up to the
+/// log-odds, so the logistic function of their sum is the probability. A
+/// model that cannot explain (the demo's trees carry no covers) is refused
+/// before any row is read.
+#[test]
+fn score_adds_contributions_when_asked() {
+    let a = artifact_path("overstay-risk");
+    let input = "{\"expected_minutes\": 120, \"plugin_hour\": 18, \"member_overstay_rate\": 0.3, \"site_occupancy\": 0.5, \"weekend\": false, \"fleet\": true}\n";
+    let out = paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json", "--contributions"], Some(input));
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let line: serde_json::Value = serde_json::from_str(text(&out.stdout).lines().next().unwrap()).unwrap();
+    let why = &line["contributions"]["overstay_probability"];
+    let features = why["features"].as_object().unwrap();
+    assert_eq!(features.keys().next().map(String::as_str), Some("expected_minutes"), "contract order: {why}");
+    let margin = why["baseline"].as_f64().unwrap() + features.values().map(|v| v.as_f64().unwrap()).sum::<f64>();
+    let p = line["overstay_probability"].as_f64().unwrap();
+    assert!((1.0 / (1.0 + (-margin).exp()) - p).abs() <= 1e-12, "{line}");
+    // CSV: a column per output's baseline and per feature.
+    let csv = "expected_minutes,plugin_hour,member_overstay_rate,site_occupancy,weekend,fleet\n120,18,0.3,0.5,false,true\n";
+    let out = paddock(&["score", a.to_str().unwrap(), "-", "--contributions"], Some(csv));
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let header = text(&out.stdout).lines().next().unwrap().to_owned();
+    assert!(
+        header.starts_with("row,overstay_probability,overstay_probability.baseline,overstay_probability.expected_minutes,"),
+        "{header}"
+    );
+    let trees = artifact_path("charge-minutes");
+    let out = paddock(&["score", trees.to_str().unwrap(), "-", "--contributions"], Some("x\n"));
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("these trees carry no covers"), "{}", text(&out.stderr));
+}
+
 #[test]
 fn a_file_error_names_the_file_and_says_the_cause_once() {
     let out = paddock(&["check", "/nonexistent/model.wasm"], None);

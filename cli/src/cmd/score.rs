@@ -57,6 +57,12 @@ pub struct Args {
     /// Same as --to ndjson (for programs reading the output).
     #[arg(long)]
     json: bool,
+    /// Add each row's contributions: per output, the baseline and how much
+    /// each feature moved the margin from it (CSV: columns
+    /// `OUTPUT.baseline` and `OUTPUT.FEATURE`; NDJSON: a `contributions`
+    /// object). They describe the model, not the world.
+    #[arg(long)]
+    contributions: bool,
     #[command(flatten)]
     limits: LoadArgs,
 }
@@ -66,11 +72,20 @@ struct Line {
     number: usize,
     id: Option<String>,
     result: Result<Vec<f64>, String>,
+    /// When asked: per output, the baseline and then each feature's
+    /// contribution.
+    why: Vec<f64>,
 }
 
 /// Reads, scores in batches, writes in input order.
 pub fn run(args: Args) -> Result<Outcome> {
     let (_runtime, model) = args.limits.load(&args.artifact)?;
+    if args.contributions {
+        // A model that cannot explain is known before any row is read.
+        if let Err(e) = model.explain_cells_unchecked(0, &[]) {
+            bail!("--contributions: {e}");
+        }
+    }
     let stdin = args.input.as_os_str() == "-";
     let format: RowFormat = match (args.from, stdin) {
         (Some(f), _) => f.into(),
@@ -102,13 +117,13 @@ pub fn run(args: Args) -> Result<Outcome> {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
         None => Box::new(io::stdout().lock()),
     };
-    let mut writer = Writer::new(out, to, &model, args.id.is_some())?;
+    let mut writer = Writer::new(out, to, &model, args.id.is_some(), args.contributions)?;
     let mut batch: Vec<Record> = Vec::with_capacity(args.batch as usize);
     let (mut scored, mut failed) = (0usize, 0usize);
     for record in records {
         batch.push(record);
         if batch.len() >= args.batch as usize {
-            for line in score_batch(&model, std::mem::take(&mut batch)) {
+            for line in score_batch(&model, std::mem::take(&mut batch), args.contributions) {
                 if line.result.is_ok() {
                     scored += 1
                 } else {
@@ -118,7 +133,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             }
         }
     }
-    for line in score_batch(&model, batch) {
+    for line in score_batch(&model, batch, args.contributions) {
         if line.result.is_ok() {
             scored += 1
         } else {
@@ -134,51 +149,94 @@ pub fn run(args: Args) -> Result<Outcome> {
 
 /// Scores the valid records of a batch in one call; if that call fails as
 /// a whole, scores them one by one so one bad row cannot sink the others.
-fn score_batch(model: &Model, records: Vec<Record>) -> Vec<Line> {
+/// With `explain`, adds the scored rows' contributions.
+fn score_batch(model: &Model, records: Vec<Record>, explain: bool) -> Vec<Line> {
+    let mut lines = records_cells(model, records);
+    score_lines(model, &mut lines);
+    if explain {
+        add_contributions(model, &mut lines);
+    }
+    lines.into_iter().map(|(line, _)| line).collect()
+}
+
+/// A batch's lines and, for each valid record, its cells (empty otherwise).
+fn records_cells(model: &Model, records: Vec<Record>) -> Vec<(Line, Vec<f64>)> {
     let schema = model.schema();
-    let mut cells = Vec::with_capacity(records.len() * schema.width());
-    let mut lines: Vec<Line> = Vec::with_capacity(records.len());
-    let mut valid = Vec::new();
-    for record in records {
-        let result = match &record.row {
-            Ok(row) => match schema.encode_row(record.number, row, &mut cells) {
-                Ok(()) => {
-                    valid.push(lines.len());
-                    Ok(Vec::new())
-                }
-                Err(problems) => Err(problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ")),
-            },
-            Err(e) => Err(format!("row {}: {e}", record.number)),
-        };
-        lines.push(Line { number: record.number, id: record.id, result });
+    records
+        .into_iter()
+        .map(|record| {
+            let mut cells = Vec::with_capacity(schema.width());
+            let result = match &record.row {
+                Ok(row) => match schema.encode_row(record.number, row, &mut cells) {
+                    Ok(()) => Ok(Vec::new()),
+                    Err(problems) => Err(problems.iter().map(ToString::to_string).collect::<Vec<_>>().join("; ")),
+                },
+                Err(e) => Err(format!("row {}: {e}", record.number)),
+            };
+            (Line { number: record.number, id: record.id, result, why: Vec::new() }, cells)
+        })
+        .collect()
+}
+
+/// Each scored line's contributions, from one call for the batch; when
+/// that call fails, each scored line fails with its error.
+fn add_contributions(model: &Model, lines: &mut [(Line, Vec<f64>)]) {
+    let scored: Vec<usize> = (0..lines.len()).filter(|&i| lines[i].0.result.is_ok()).collect();
+    if scored.is_empty() {
+        return;
     }
+    let cells: Vec<f64> = scored.iter().flat_map(|&i| lines[i].1.iter().copied()).collect();
+    match model.explain_cells_unchecked(scored.len(), &cells) {
+        Ok(explained) => {
+            for (r, &i) in scored.iter().enumerate() {
+                let outputs = explained.output_names().len();
+                lines[i].0.why = (0..outputs)
+                    .flat_map(|o| {
+                        let a = explained.of(r, o);
+                        std::iter::once(a.baseline).chain(a.features.iter().copied()).collect::<Vec<_>>()
+                    })
+                    .collect();
+            }
+        }
+        Err(e) => {
+            for &i in &scored {
+                lines[i].0.result = Err(format!("row {}: {e}", lines[i].0.number));
+            }
+        }
+    }
+}
+
+/// Scores a batch's valid lines in one call; if that call fails as a
+/// whole, one by one, so one bad row cannot sink the others.
+fn score_lines(model: &Model, lines: &mut [(Line, Vec<f64>)]) {
+    let valid: Vec<usize> = (0..lines.len()).filter(|&i| lines[i].0.result.is_ok()).collect();
     if valid.is_empty() {
-        return lines;
+        return;
     }
-    let width = schema.width();
-    let numbers: Vec<usize> = valid.iter().map(|&i| lines[i].number).collect();
+    let cells: Vec<f64> = valid.iter().flat_map(|&i| lines[i].1.iter().copied()).collect();
+    let numbers: Vec<usize> = valid.iter().map(|&i| lines[i].0.number).collect();
     match model.score_cells_unchecked(valid.len(), &cells) {
         Ok(estimates) => {
             for (r, &i) in valid.iter().enumerate() {
-                lines[i].result = Ok(estimates.values_at(r).to_vec());
+                lines[i].0.result = Ok(estimates.values_at(r).to_vec());
             }
         }
         Err(_) if valid.len() > 1 => {
-            for (r, &i) in valid.iter().enumerate() {
-                lines[i].result = model
-                    .score_cells_unchecked(1, &cells[r * width..(r + 1) * width])
+            for &i in &valid {
+                let (line, cells) = &mut lines[i];
+                line.result = model
+                    .score_cells_unchecked(1, cells)
                     .map(|e| e.values_at(0).to_vec())
-                    .map_err(|e| describe(lines[i].number, &e));
+                    .map_err(|e| describe(line.number, &e));
             }
         }
         Err(e) => {
             let e = e.renumber(|r| numbers.get(r - 1).copied().unwrap_or(r));
             for &i in &valid {
-                lines[i].result = Err(describe(lines[i].number, &e));
+                lines[i].0.result = Err(describe(lines[i].0.number, &e));
             }
         }
     }
-    lines
 }
 
 /// An error for one row, numbered as the file numbers it. Output faults
@@ -200,6 +258,28 @@ fn rows(n: usize) -> String {
 struct JsonLine<'a> {
     line: &'a Line,
     outputs: &'a [String],
+    features: &'a [String],
+}
+
+/// One output's contributions in an NDJSON line.
+#[derive(serde::Serialize)]
+struct JsonWhy<'a> {
+    baseline: f64,
+    features: JsonNamed<'a, f64>,
+}
+
+/// Names and values as one JSON object, in order.
+struct JsonNamed<'a, T>(&'a [String], &'a [T]);
+
+impl<T: serde::Serialize> serde::Serialize for JsonNamed<'_, T> {
+    fn serialize<S: serde::Serializer>(&self, s: S) -> Result<S::Ok, S::Error> {
+        use serde::ser::SerializeMap;
+        let mut m = s.serialize_map(Some(self.0.len()))?;
+        for (k, v) in self.0.iter().zip(self.1) {
+            m.serialize_entry(k, v)?;
+        }
+        m.end()
+    }
 }
 
 impl serde::Serialize for JsonLine<'_> {
@@ -214,6 +294,13 @@ impl serde::Serialize for JsonLine<'_> {
             Ok(values) => {
                 for (name, v) in self.outputs.iter().zip(values) {
                     m.serialize_entry(name, v)?;
+                }
+                if !self.line.why.is_empty() {
+                    let blocks = self.line.why.chunks_exact(self.features.len() + 1);
+                    let why: Vec<JsonWhy<'_>> = blocks
+                        .map(|b| JsonWhy { baseline: b[0], features: JsonNamed(self.features, &b[1..]) })
+                        .collect();
+                    m.serialize_entry("contributions", &JsonNamed(self.outputs, &why))?;
                 }
             }
             Err(e) => m.serialize_entry("error", e)?,
@@ -230,12 +317,18 @@ enum Sink {
 struct Writer {
     sink: Sink,
     outputs: Vec<String>,
+    /// The contract's features, when contributions are written.
+    features: Vec<String>,
     with_id: bool,
 }
 
 impl Writer {
-    fn new(out: Box<dyn Write>, format: RowFormat, model: &Model, with_id: bool) -> Result<Self> {
+    fn new(out: Box<dyn Write>, format: RowFormat, model: &Model, with_id: bool, why: bool) -> Result<Self> {
         let outputs: Vec<String> = model.contract().outputs.iter().map(|o| o.name.clone()).collect();
+        let features: Vec<String> = match why {
+            true => model.contract().features.iter().map(|f| f.name.clone()).collect(),
+            false => Vec::new(),
+        };
         let sink = match format {
             RowFormat::Csv => {
                 let mut csv = csv::Writer::from_writer(out);
@@ -244,13 +337,19 @@ impl Writer {
                     header.push("id".into());
                 }
                 header.extend(outputs.iter().cloned());
+                if why {
+                    for o in &outputs {
+                        header.push(format!("{o}.baseline"));
+                        header.extend(features.iter().map(|f| format!("{o}.{f}")));
+                    }
+                }
                 header.push("error".into());
                 csv.write_record(&header)?;
                 Sink::Csv(Box::new(csv))
             }
             RowFormat::Ndjson => Sink::Ndjson(BufWriter::new(out)),
         };
-        Ok(Writer { sink, outputs, with_id })
+        Ok(Writer { sink, outputs, features, with_id })
     }
 
     fn write(&mut self, line: &Line) -> Result<()> {
@@ -262,18 +361,19 @@ impl Writer {
                 }
                 match &line.result {
                     Ok(values) => {
-                        record.extend(values.iter().map(f64::to_string));
+                        record.extend(values.iter().chain(&line.why).map(f64::to_string));
                         record.push(String::new());
                     }
                     Err(e) => {
-                        record.extend(self.outputs.iter().map(|_| String::new()));
+                        let why = if self.features.is_empty() { 0 } else { self.features.len() + 1 };
+                        record.extend((0..self.outputs.len() * (1 + why)).map(|_| String::new()));
                         record.push(e.clone());
                     }
                 }
                 csv.write_record(&record)?;
             }
             Sink::Ndjson(out) => {
-                serde_json::to_writer(&mut *out, &JsonLine { line, outputs: &self.outputs })?;
+                serde_json::to_writer(&mut *out, &JsonLine { line, outputs: &self.outputs, features: &self.features })?;
                 out.write_all(b"\n")?;
             }
         }

@@ -728,11 +728,26 @@ impl Model {
         if !problems.is_empty() {
             return Err(ExplainError::Score(ScoreError::InvalidRows { errors: problems }));
         }
+        self.explain_cells_unchecked(rows.len(), &cells)
+    }
+
+    /// As [`Model::explain`], for rows already encoded as dense cells (see
+    /// [`Model::score_cells_unchecked`]: the row checks are skipped).
+    ///
+    /// # Errors
+    /// As [`Model::explain`]; [`ScoreError::Shape`] (in
+    /// [`ExplainError::Score`]) when `cells` is not `rows × features` long.
+    pub fn explain_cells_unchecked(&self, rows: usize, cells: &[f64]) -> Result<Explanation, ExplainError> {
         let inner = &*self.inner;
+        let width = inner.schema.width();
+        if cells.len() != rows * width {
+            return Err(ExplainError::Score(ScoreError::Shape { cells: cells.len(), rows, width }));
+        }
+        self.check_row_count(rows).map_err(ExplainError::Score)?;
         let contract = inner.schema.contract();
         let started = quanta::Instant::now();
         let (mut instance, fresh) = self.take().map_err(ExplainError::Score)?;
-        let answer = match instance.contributions(&inner.runtime, &inner.options.limits, rows.len() as u32, &cells) {
+        let answer = match instance.contributions(&inner.runtime, &inner.options.limits, rows as u32, cells) {
             None => {
                 self.give_back(instance);
                 return Err(ExplainError::NoExport { model: contract.name.clone() });
@@ -747,9 +762,8 @@ impl Model {
         };
         let peak_memory_bytes = instance.peak_memory();
         self.give_back(instance);
-        let usage =
-            Usage { rows: rows.len(), wall: started.elapsed(), fuel: None, fresh_instance: fresh, peak_memory_bytes };
-        Explanation::checked(answer, rows.len(), contract, usage)
+        let usage = Usage { rows, wall: started.elapsed(), fuel: None, fresh_instance: fresh, peak_memory_bytes };
+        Explanation::checked(answer, rows, contract, usage)
     }
 
     fn check_row_count(&self, rows: usize) -> Result<(), ScoreError> {
