@@ -153,14 +153,23 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
     for b in bad {
         js.publish(options.events.clone(), b.into()).await.unwrap().await.unwrap();
     }
+    // An event may ask for its contributions (y = 2x + 1: x = 3 gives 6 on the baseline 1).
+    let why = r#"{"id": "why", "model": "m", "row": {"x": 3}, "contributions": true}"#;
+    js.publish(options.events.clone(), why.into()).await.unwrap().await.unwrap();
 
     let mut seen: BTreeMap<String, f64> = BTreeMap::new();
-    while seen.len() < good {
+    while seen.len() < good + 1 {
         let m =
             tokio::time::timeout(Duration::from_secs(120), answers.next()).await.expect("answers keep coming").unwrap();
         let a: serde_json::Value = serde_json::from_slice(&m.payload).unwrap();
         let id = a["id"].as_str().unwrap().to_owned();
         let y = a["estimates"][0]["y"].as_f64().unwrap();
+        if id == "why" {
+            assert_eq!(a["contributions"][0]["y"]["features"]["x"], 6.0, "{a}");
+            assert_eq!(a["contributions"][0]["y"]["baseline"], 1.0, "{a}");
+        } else {
+            assert!(a.get("contributions").is_none(), "not asked: {a}");
+        }
         assert!(seen.insert(id.clone(), y).is_none(), "a second answer to {id}");
     }
     let mut letters = BTreeMap::new();
@@ -219,11 +228,11 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
             .into_iter()
             .collect()
     );
-    assert_eq!(summaries.iter().map(|s| s.answered).sum::<u64>(), good as u64, "{summaries:?}");
+    assert_eq!(summaries.iter().map(|s| s.answered).sum::<u64>(), good as u64 + 1, "{summaries:?}");
     assert_eq!(summaries.iter().map(|s| s.dead_lettered).sum::<u64>(), 3, "{summaries:?}");
     assert!(summaries.iter().all(|s| s.answered > 0), "both workers answered some: {summaries:?}");
     let mut answers_stream = js.get_stream(&options.answers_stream).await.unwrap();
-    assert_eq!(answers_stream.info().await.unwrap().state.messages, good as u64 + 3);
+    assert_eq!(answers_stream.info().await.unwrap().state.messages, good as u64 + 1 + 3);
 }
 
 /// A feature source that cannot be read, where the plan says the row must

@@ -157,7 +157,8 @@ fn score_reads_ndjson_from_stdin_and_writes_ndjson() {
 fn score_adds_contributions_when_asked() {
     let a = artifact_path("overstay-risk");
     let input = "{\"expected_minutes\": 120, \"plugin_hour\": 18, \"member_overstay_rate\": 0.3, \"site_occupancy\": 0.5, \"weekend\": false, \"fleet\": true}\n";
-    let out = paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json", "--contributions"], Some(input));
+    let out =
+        paddock(&["score", a.to_str().unwrap(), "-", "--from", "ndjson", "--json", "--contributions"], Some(input));
     assert!(out.status.success(), "{}", text(&out.stderr));
     let line: serde_json::Value = serde_json::from_str(text(&out.stdout).lines().next().unwrap()).unwrap();
     let why = &line["contributions"]["overstay_probability"];
@@ -167,12 +168,15 @@ fn score_adds_contributions_when_asked() {
     let p = line["overstay_probability"].as_f64().unwrap();
     assert!((1.0 / (1.0 + (-margin).exp()) - p).abs() <= 1e-12, "{line}");
     // CSV: a column per output's baseline and per feature.
-    let csv = "expected_minutes,plugin_hour,member_overstay_rate,site_occupancy,weekend,fleet\n120,18,0.3,0.5,false,true\n";
+    let csv =
+        "expected_minutes,plugin_hour,member_overstay_rate,site_occupancy,weekend,fleet\n120,18,0.3,0.5,false,true\n";
     let out = paddock(&["score", a.to_str().unwrap(), "-", "--contributions"], Some(csv));
     assert!(out.status.success(), "{}", text(&out.stderr));
     let header = text(&out.stdout).lines().next().unwrap().to_owned();
     assert!(
-        header.starts_with("row,overstay_probability,overstay_probability.baseline,overstay_probability.expected_minutes,"),
+        header.starts_with(
+            "row,overstay_probability,overstay_probability.baseline,overstay_probability.expected_minutes,"
+        ),
         "{header}"
     );
     let trees = artifact_path("charge-minutes");
