@@ -682,12 +682,13 @@ impl VersionPlan {
                         None => None,
                     };
                     let (outcome, age, trouble) = (read.0, read.2, read.3);
-                    memo[index] = key.filter(|_| step.lookup.around.is_none()).map(|key| Memo {
-                        key: key.to_owned(),
-                        outcome,
-                        value: value.clone(),
-                        age,
-                        trouble: trouble.clone(),
+                    // The previous row's key buffer is reused: rows under
+                    // many keys allocate no new one each.
+                    let mut kept = memo[index].take().map(|m| m.key).unwrap_or_default();
+                    memo[index] = key.filter(|_| step.lookup.around.is_none()).map(|key| {
+                        kept.clear();
+                        kept.push_str(key);
+                        Memo { key: kept, outcome, value: value.clone(), age, trouble: trouble.clone() }
                     });
                     (outcome, value, age, trouble)
                 }
