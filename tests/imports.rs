@@ -528,6 +528,81 @@ fn contributions_are_the_toolkits_own() {
     eprintln!("contributions:\n  {}", summary.join("\n  "));
 }
 
+/// scikit-learn's tree models through the notebook helper, which writes
+/// each node's cover (`tree_.weighted_n_node_samples`, a HistGradientBoosting
+/// node's `count`) into the ONNX file's hit rates: per-row contributions
+/// against the `shap` package's path-dependent tree explainer on the same
+/// fitted model (outside reference, PyPI `shap`; tests/imports/export.py),
+/// on every row (the forest fitted with holes and HistGradientBoosting's
+/// cases have absent cells, routed by each split's learned side).
+///
+/// Bound: the file keeps leaves in float32, `shap` reads scikit-learn's
+/// doubles. A contribution is a weighted sum, weights summing to 1, of
+/// differences between two averages of the tree's leaves, so rounding the
+/// leaves moves it by at most twice the largest leaf rounding of each tree
+/// summed: 2 × [`score_bound`] (HistGradientBoosting's leaves are written
+/// as doubles: only the order of sums differs, 10⁻¹² relative per tree).
+/// The baseline moves by one [`score_bound`]. Measured worst printed.
+#[test]
+fn scikit_learn_contributions_are_shaps() {
+    use paddock_guest::Trees;
+    let mut summary = Vec::new();
+    for name in [
+        "skl-diabetes-tree",
+        "skl-diabetes-forest",
+        "skl-diabetes-extra",
+        "skl-diabetes-boosted",
+        "skl-diabetes-hist",
+        "skl-cancer-tree",
+        "skl-cancer-boosted",
+        "skl-cancer-hist",
+        "skl-cancer-forest-missing",
+        "skl-iris-forest",
+        "skl-wine-extra",
+        "skl-wine-hist",
+    ] {
+        let path = dir().join(format!("{name}.onnx"));
+        let bytes =
+            std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+        let imported = import(&bytes, Format::SklearnOnnx, name, None).unwrap();
+        let EstimatorParams::Trees(params) = imported.estimator.clone() else { panic!("{name}: not trees") };
+        assert!(!params.covers.is_empty(), "{name}: no covers ({})", imported.origin.estimator);
+        let outputs = params.base.len();
+        let per_output = (params.trees.len() / outputs) as f64;
+        let trees = Trees::new(params).unwrap();
+        let (rows, want, source) = contributions_reference(name);
+        let mut got = paddock_guest::ndarray::Array2::zeros((rows.nrows(), want[0].len()));
+        trees.contributions(rows.view(), got.view_mut()).unwrap();
+        let blocks = rows.ncols() + 1;
+        let mut worst = 0f64;
+        for (i, w) in want.iter().enumerate() {
+            let eps = score_bound(&imported.estimator, rows.row(i).as_slice().unwrap());
+            let largest = w.iter().fold(0f64, |m, v| m.max(v.abs()));
+            for (j, &v) in w.iter().enumerate() {
+                let g = got[[i, j]];
+                let arithmetic = per_output * largest * 1e-12;
+                let rounding = if name.contains("hist") {
+                    0.0
+                } else if j % blocks == blocks - 1 {
+                    eps
+                } else {
+                    2.0 * eps
+                };
+                let bound = rounding + arithmetic;
+                worst = worst.max((g - v).abs() / bound);
+                assert!(
+                    (g - v).abs() <= bound,
+                    "{name} row {} column {j}: paddock {g:e}, {source} {v:e}: {:e} apart, bound {bound:e}",
+                    i + 1,
+                    (g - v).abs()
+                );
+            }
+        }
+        summary.push(format!("{name}: worst {:.1} % of the bound ({source})", worst * 100.0));
+    }
+    eprintln!("contributions:\n  {}", summary.join("\n  "));
+}
+
 /// In the sandbox, an imported model's contributions are the native ones
 /// bit for bit (the same guest code, compiled twice), each row's margin is
 /// the one scoring computes, and the host's check that they add up passes.
@@ -577,17 +652,32 @@ fn contributions_in_the_sandbox_are_the_native_ones_bit_for_bit() {
     }
 }
 
-/// A model that cannot explain says why, in a typed error: trees imported
-/// without covers (scikit-learn through skl2onnx), a linear model's guest.
+/// A model that cannot explain says why, in a typed error: a random forest
+/// as skl2onnx alone writes it (every node's hit rate 1.0, which are not
+/// covers) imports and scores, its import says why it has no covers, and
+/// asking it for contributions is declined naming the reason.
 #[test]
 fn a_model_without_covers_declines_naming_why() {
     let runtime = Runtime::new().unwrap();
-    let path = dir().join("skl-diabetes-forest.onnx");
+    let path = dir().join("refused-skl-forest-no-covers.onnx");
     let bytes =
         std::fs::read(&path).unwrap_or_else(|e| panic!("{}: {e} (run tests/imports/export.py)", path.display()));
+    let imported = import(&bytes, Format::SklearnOnnx, "refused-skl-forest-no-covers.onnx", None).unwrap();
+    assert!(
+        imported.origin.estimator.contains(
+            "no covers: nodes_hitrates are not node covers (tree 0's node 0 in walk order: 1, its children's 2)"
+        ),
+        "{}",
+        imported.origin.estimator
+    );
     let model = imported_model(&runtime, &path, &bytes);
-    let checks = Checks::from_json(&std::fs::read(dir().join("skl-diabetes-forest.checks.json")).unwrap()).unwrap();
-    let err = model.explain(&[checks.cases[0].row.clone()]).unwrap_err();
+    let checks =
+        Checks::from_json(&std::fs::read(dir().join("skl-cancer-forest-missing.checks.json")).unwrap()).unwrap();
+    let row = checks.cases[0].row.clone();
+    let scores = model.score(std::slice::from_ref(&row)).unwrap();
+    let want = checks.cases[0].expect["probability"];
+    assert!((scores.values_at(0)[0] - want).abs() < 1e-6, "scores as scikit-learn does");
+    let err = model.explain(&[row]).unwrap_err();
     assert!(matches!(err, paddock_host::ExplainError::Declined { .. }), "{err:?}");
     assert!(err.to_string().ends_with("these trees carry no covers: contributions need each node's cover"), "{err}");
 }

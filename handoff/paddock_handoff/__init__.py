@@ -258,6 +258,7 @@ def _sklearn(model, matrix, stem):
         _exact_hist(onx, model)
     else:
         _missing_routes(onx, model)
+    _covers(onx, model, hist)
     path = f"{stem}.onnx"
     with open(path, "wb") as f:
         f.write(onx.SerializeToString())
@@ -324,37 +325,96 @@ def _sklearn_trees(model):
     return None if any(t is None for t in trees) else trees
 
 
+def _tree_node(onx):
+    """The graph's tree ensemble node and its attributes by name, or None."""
+    node = next((n for n in onx.graph.node if n.op_type.startswith("TreeEnsemble")), None)
+    return (node, {a.name: a for a in node.attribute}) if node is not None else (None, None)
+
+
+def _file_nodes(onx, trees):
+    """The (tree, node) of the model's ``tree_`` for each node the file
+    lists, after checking that they are the model's (same feature at each
+    split, same leaves); None for a file laid out otherwise."""
+    from onnx import helper
+
+    node, attrs = _tree_node(onx)
+    if trees is None or node is None:
+        return None
+    value = lambda name: list(helper.get_attribute_value(attrs[name]))
+    modes = [m.decode() if isinstance(m, bytes) else m for m in value("nodes_modes")]
+    at = []
+    for t, n, f, mode in zip(value("nodes_treeids"), value("nodes_nodeids"), value("nodes_featureids"), modes):
+        if t >= len(trees) or n >= trees[t].node_count:
+            return None
+        tree = trees[t]
+        leaf = tree.children_left[n] == -1
+        if leaf != (mode == "LEAF") or (not leaf and (tree.feature[n] != f or mode != "BRANCH_LEQ")):
+            return None
+        at.append((tree, n))
+    return at
+
+
+def _replace(node, attrs, name, attribute):
+    if name in attrs:
+        node.attribute.remove(attrs[name])
+    node.attribute.append(attribute)
+
+
 def _missing_routes(onx, model):
     """scikit-learn's trees (≥ 1.3) send an absent value (NaN) down each
     split's ``missing_go_to_left`` side, whether or not they were fitted on
     missing values; skl2onnx 1.20 writes no such route
     (``nodes_missing_value_tracks_true`` all 0). Each split's route is
-    written from the model itself, after checking that the file's nodes
-    are the model's (same feature at each split, same leaves); a file laid
-    out otherwise is left as written, and paddock then requires every
+    written from the model itself (see ``_file_nodes``); a file laid out
+    otherwise is left as written, and paddock then requires every
     feature."""
     from onnx import helper
 
     trees = _sklearn_trees(model)
-    node = next((n for n in onx.graph.node if n.op_type.startswith("TreeEnsemble")), None)
-    if trees is None or node is None or not all(hasattr(t, "missing_go_to_left") for t in trees):
+    at = _file_nodes(onx, trees)
+    if at is None or not all(hasattr(t, "missing_go_to_left") for t in trees):
         return
-    attrs = {a.name: a for a in node.attribute}
-    value = lambda name: list(helper.get_attribute_value(attrs[name]))
-    tree_ids, node_ids = value("nodes_treeids"), value("nodes_nodeids")
-    features, modes = value("nodes_featureids"), [m.decode() if isinstance(m, bytes) else m for m in value("nodes_modes")]
-    routes = []
-    for t, n, f, mode in zip(tree_ids, node_ids, features, modes):
-        if t >= len(trees) or n >= trees[t].node_count:
+    routes = [0 if tree.children_left[n] == -1 else int(tree.missing_go_to_left[n]) for tree, n in at]
+    node, attrs = _tree_node(onx)
+    name = "nodes_missing_value_tracks_true"
+    _replace(node, attrs, name, helper.make_attribute(name, routes))
+
+
+def _covers(onx, model, hist):
+    """Each node's cover, the training weight that reached it, which
+    per-row contributions need (the path-dependent algorithm of Lundberg et
+    al.): scikit-learn's ``tree_.weighted_n_node_samples``, or each
+    HistGradientBoosting node's ``count``. skl2onnx writes 1.0 for every
+    node's hit rate (``nodes_hitrates``), the ONNX-ML attribute for how
+    often a node is reached; the covers are written there instead, as
+    doubles (``nodes_hitrates_as_tensor``). A file laid out otherwise is
+    left as written, and paddock then declines to explain it."""
+    from onnx import helper, numpy_helper
+
+    node, attrs = _tree_node(onx)
+    if node is None:
+        return
+    ids = zip(attrs["nodes_treeids"].ints, attrs["nodes_nodeids"].ints)
+    if hist:
+        trees = [p.nodes for stage in model._predictors for p in stage]
+        covers = [float(trees[t][n]["count"]) for t, n in ids]
+    else:
+        at = _file_nodes(onx, _sklearn_trees(model))
+        if at is None:
             return
-        tree = trees[t]
-        leaf = tree.children_left[n] == -1
-        if leaf != (mode == "LEAF") or (not leaf and (tree.feature[n] != f or mode != "BRANCH_LEQ")):
-            return
-        routes.append(0 if leaf else int(tree.missing_go_to_left[n]))
-    if "nodes_missing_value_tracks_true" in attrs:
-        node.attribute.remove(attrs["nodes_missing_value_tracks_true"])
-    node.attribute.append(helper.make_attribute("nodes_missing_value_tracks_true", routes))
+        covers = [float(tree.weighted_n_node_samples[n]) for tree, n in at]
+    name = "nodes_hitrates_as_tensor"
+    tensor = numpy_helper.from_array(numpy.asarray(covers, dtype=numpy.float64), name)
+    _replace(node, attrs, "nodes_hitrates", helper.make_attribute(name, tensor))
+    _ml_opset(onx, 3)
+
+
+def _ml_opset(onx, version):
+    """Raises the file's ai.onnx.ml opset to at least ``version`` (the
+    ``_as_tensor`` attributes are ai.onnx.ml 3's)."""
+    for opset in onx.opset_import:
+        if opset.domain == "ai.onnx.ml":
+            opset.version = max(opset.version, version)
 
 
 def _exact_hist(onx, model):
@@ -385,9 +445,7 @@ def _exact_hist(onx, model):
     exact(f"{prefix}_weights", [trees[t][n]["value"] for t, n in zip(attrs[f"{prefix}_treeids"].ints, attrs[f"{prefix}_nodeids"].ints)])
     if "base_values" in attrs:
         exact("base_values", numpy.ravel(model._baseline_prediction))
-    for opset in onx.opset_import:
-        if opset.domain == "ai.onnx.ml":
-            opset.version = max(opset.version, 3)
+    _ml_opset(onx, 3)
 
 
 class _plain_attributes:

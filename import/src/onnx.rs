@@ -414,11 +414,13 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
     let weights = leaves.by_leaf(blame, &place, list, outputs)?;
     let mut vectors = Vec::new();
     let mut params_trees = Vec::new();
+    let mut hitrates = Vec::new();
     for (&t, by_id) in &nodes.trees() {
         let only = if outputs == 1 { Some(0) } else { weights.tree_output.get(&t).copied().unwrap_or(Some(0)) };
         let walk = TreeWalk { g, nodes: &nodes, weights: &weights, outputs, only };
-        let tree_nodes = walk.flatten(t, by_id, &mut vectors)?;
+        let (tree_nodes, rates) = walk.flatten(t, by_id, &mut vectors)?;
         params_trees.push(Tree { output: only.unwrap_or(0) as u32, nodes: tree_nodes });
+        hitrates.push(rates);
     }
     if params_trees.is_empty() {
         return Err(bad("no trees".into()));
@@ -432,6 +434,13 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         "required: the file records no way for absent values"
     };
     let trees_count = params_trees.len();
+    let (covers, covers_text) = match covers(&params_trees, hitrates) {
+        Ok(c) => (c, "each node's cover from nodes_hitrates (contributions can be asked for)".to_owned()),
+        Err(why) => (
+            Vec::new(),
+            format!("no covers: {why}; contributions are declined (the notebook helper writes scikit-learn's covers)"),
+        ),
+    };
     let (kind, arithmetic) =
         if classifier { ("TreeEnsembleClassifier", "probabilities") } else { ("TreeEnsembleRegressor", "values") };
     let inputs_text = match g.precision {
@@ -453,7 +462,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         link,
         sets: Vec::new(),
         vectors,
-        covers: Vec::new(),
+        covers,
     };
     finish(
         g,
@@ -465,7 +474,7 @@ fn trees(g: &Graph<'_>, a: &Attributes<'_>) -> Result<Imported, ImportError> {
         format!(
             "as scikit-learn computes {arithmetic}: {inputs_text}; leaves (float32 in the file) summed in double precision in tree order"
         ),
-        format!("{trees_count} trees"),
+        format!("{trees_count} trees; {covers_text}"),
     )
 }
 
@@ -494,6 +503,9 @@ struct NodeArrays {
     true_ids: Vec<i64>,
     false_ids: Vec<i64>,
     tracks_true: Vec<i64>,
+    /// How often each node is reached (`nodes_hitrates`): empty when the
+    /// file has none.
+    hitrates: Vec<f64>,
 }
 
 impl NodeArrays {
@@ -512,6 +524,7 @@ impl NodeArrays {
             true_ids: a.ints("nodes_truenodeids"),
             false_ids: a.ints("nodes_falsenodeids"),
             tracks_true,
+            hitrates: a.numbers("nodes_hitrates")?.unwrap_or_default(),
             tree_ids,
         };
         same_lengths(
@@ -526,6 +539,7 @@ impl NodeArrays {
                 ("nodes_truenodeids", arrays.true_ids.len()),
                 ("nodes_falsenodeids", arrays.false_ids.len()),
                 ("nodes_missing_value_tracks_true", arrays.tracks_true.len()),
+                ("nodes_hitrates", if arrays.hitrates.is_empty() { n } else { arrays.hitrates.len() }),
             ],
         )?;
         Ok(arrays)
@@ -637,8 +651,16 @@ struct TreeWalk<'a> {
 }
 
 impl TreeWalk<'_> {
-    fn flatten(&self, t: i64, by_id: &BTreeMap<i64, usize>, vectors: &mut Vec<f64>) -> Result<Vec<Node>, ImportError> {
+    /// The tree's nodes, and each one's hit rate in the same order (NaN
+    /// where the file has none).
+    fn flatten(
+        &self,
+        t: i64,
+        by_id: &BTreeMap<i64, usize>,
+        vectors: &mut Vec<f64>,
+    ) -> Result<(Vec<Node>, Vec<f64>), ImportError> {
         let (blame, n) = (&self.g.blame, self.nodes);
+        let mut hitrates = Vec::with_capacity(by_id.len());
         let ids: Vec<i64> = by_id.keys().copied().collect();
         // The root is the node no other node names as a child.
         let children: std::collections::BTreeSet<i64> =
@@ -659,6 +681,7 @@ impl TreeWalk<'_> {
             ids.len(),
             |p| {
                 let i = by_id[&ids[p as usize]];
+                hitrates.push(n.hitrates.get(i).copied().unwrap_or(f64::NAN));
                 let at = format!("tree {t} node {}", n.node_ids[i]);
                 if n.modes[i] == "LEAF" {
                     let w = self.weights.by_leaf.get(&(t, n.node_ids[i])).cloned();
@@ -684,7 +707,37 @@ impl TreeWalk<'_> {
             },
             || blame.malformed(&format!("tree {t}"), "a node is reached twice: the children do not form a tree"),
         )
+        .map(|nodes| (nodes, hitrates))
     }
+}
+
+/// The trees' hit rates as node covers, if they are covers: every node's
+/// positive and every split's the sum of its children's (to 10⁻⁹, for
+/// sums of sample weights); otherwise why not, naming the first node that
+/// is not (skl2onnx writes 1.0 for every node).
+fn covers(trees: &[Tree], hitrates: Vec<Vec<f64>>) -> Result<Vec<Vec<f64>>, String> {
+    for (t, (tree, rates)) in trees.iter().zip(&hitrates).enumerate() {
+        for (i, node) in tree.nodes.iter().enumerate() {
+            let here = rates[i];
+            if here.is_nan() {
+                return Err("the file has no nodes_hitrates".into());
+            }
+            let children = match node {
+                Node::Split { left, right, .. }
+                | Node::SplitZeroAbsent { left, right, .. }
+                | Node::Member { left, right, .. } => Some(rates[*left as usize] + rates[*right as usize]),
+                Node::Leaf { .. } | Node::Leaves { .. } => None,
+            };
+            let consistent = here > 0.0 && children.is_none_or(|c| (here - c).abs() <= 1e-9 * here);
+            if !consistent {
+                let sum = children.map_or(String::new(), |c| format!(", its children's {c}"));
+                return Err(format!(
+                    "nodes_hitrates are not node covers (tree {t}'s node {i} in walk order: {here}{sum})"
+                ));
+            }
+        }
+    }
+    Ok(hitrates)
 }
 
 /// How far above 1 a tree ensemble's probability may come: 0 through a

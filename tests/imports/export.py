@@ -121,6 +121,29 @@ from skl2onnx.common.data_types import FloatTensorType  # noqa: E402
 from sklearn.ensemble import ExtraTreesRegressor, GradientBoostingRegressor, RandomForestRegressor  # noqa: E402
 from sklearn.tree import DecisionTreeRegressor  # noqa: E402
 
+
+
+def skl_trees(name, model, x):
+    """Hands off a fitted scikit-learn tree model and writes the `shap`
+    package's path-dependent tree contributions on every row (PyPI `shap`,
+    TreeExplainer(feature_perturbation="tree_path_dependent"), which reads
+    the covers from the fitted trees themselves). A binary classifier's
+    probability output is class 1's."""
+    import shap
+
+    hand_off(model, x, os.path.join(OUT, name))
+    explainer = shap.TreeExplainer(model, feature_perturbation="tree_path_dependent")
+    values = numpy.asarray(explainer.shap_values(x), dtype=numpy.float64)
+    expected = numpy.atleast_1d(numpy.asarray(explainer.expected_value, dtype=numpy.float64))
+    if values.ndim == 2:
+        values = values[:, :, None]
+    if values.shape[2] == 2 and len(expected) == 2:  # two probability columns: paddock gives class 1's
+        values, expected = values[:, :, 1:], expected[1:]
+    blocks = [numpy.column_stack([values[:, :, k], numpy.full(len(x), expected[k])]) for k in range(values.shape[2])]
+    contributions(name, x, numpy.hstack(blocks), f"shap {shap.__version__} TreeExplainer (tree_path_dependent) "
+                  f"of scikit-learn {sklearn.__version__} {type(model).__name__}")
+
+
 x, y, names = data(load_diabetes)
 for name, model in [
     ("skl-diabetes-tree", DecisionTreeRegressor(max_depth=6, random_state=0)),
@@ -128,7 +151,7 @@ for name, model in [
     ("skl-diabetes-extra", ExtraTreesRegressor(n_estimators=40, max_depth=8, random_state=0, n_jobs=1)),
     ("skl-diabetes-boosted", GradientBoostingRegressor(n_estimators=80, max_depth=3, random_state=0)),
 ]:
-    hand_off(model.fit(x, y), x, os.path.join(OUT, name))
+    skl_trees(name, model.fit(x, y), x)
 # HistGradientBoosting learns where absent values go: holes in the data.
 from sklearn.ensemble import (ExtraTreesClassifier, GradientBoostingClassifier, HistGradientBoostingClassifier,  # noqa: E402
                               HistGradientBoostingRegressor, RandomForestClassifier)
@@ -137,7 +160,7 @@ from sklearn.tree import DecisionTreeClassifier  # noqa: E402
 
 HIST = dict(max_iter=60, max_leaf_nodes=15, learning_rate=0.1, random_state=0)
 x, y, names = data(load_diabetes, holes=(2, 5))
-hand_off(HistGradientBoostingRegressor(**HIST).fit(x, y), x, os.path.join(OUT, "skl-diabetes-hist"))
+skl_trees("skl-diabetes-hist", HistGradientBoostingRegressor(**HIST).fit(x, y), x)
 x, y, names = data(load_diabetes)
 # Named columns: the helper writes overrides naming the ONNX file's x0, x1…
 
@@ -160,22 +183,23 @@ hand_off(model, x, os.path.join(OUT, "skl-diabetes-ridge"))
 linear_contributions("skl-diabetes-ridge", model, x)
 
 x, y, names = data(load_breast_cancer)
-hand_off(DecisionTreeClassifier(max_depth=5, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-tree"))
-hand_off(GradientBoostingClassifier(n_estimators=60, max_depth=3, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-cancer-boosted"))
+skl_trees("skl-cancer-tree", DecisionTreeClassifier(max_depth=5, random_state=0).fit(x, y), x)
+skl_trees("skl-cancer-boosted", GradientBoostingClassifier(n_estimators=60, max_depth=3, random_state=0).fit(x, y), x)
 model = LogisticRegression(max_iter=10000).fit(x, y)
 hand_off(model, x, os.path.join(OUT, "skl-cancer-logistic"))
 linear_contributions("skl-cancer-logistic", model, x)
 x, y, names = data(load_breast_cancer, holes=(0, 7, 20))
-hand_off(HistGradientBoostingClassifier(**HIST).fit(x, y), x, os.path.join(OUT, "skl-cancer-hist"))
+skl_trees("skl-cancer-hist", HistGradientBoostingClassifier(**HIST).fit(x, y), x)
 
 x, y, names = data(load_iris)
-hand_off(RandomForestClassifier(n_estimators=30, max_depth=5, random_state=0, n_jobs=1).fit(x, y), x, os.path.join(OUT, "skl-iris-forest"))
+skl_trees("skl-iris-forest", RandomForestClassifier(n_estimators=30, max_depth=5, random_state=0, n_jobs=1).fit(x, y), x)
+# shap 0.51 explains a binary GradientBoostingClassifier only: no reference for this one's contributions.
 hand_off(GradientBoostingClassifier(n_estimators=40, max_depth=2, random_state=0).fit(x, y), x, os.path.join(OUT, "skl-iris-boosted"))
 hand_off(LogisticRegression(max_iter=10000).fit(x, y), x, os.path.join(OUT, "skl-iris-logistic"))
 x, y, names = data(load_wine)
-hand_off(ExtraTreesClassifier(n_estimators=30, max_depth=6, random_state=0, n_jobs=1).fit(x, y), x, os.path.join(OUT, "skl-wine-extra"))
+skl_trees("skl-wine-extra", ExtraTreesClassifier(n_estimators=30, max_depth=6, random_state=0, n_jobs=1).fit(x, y), x)
 x, y, names = data(load_wine, holes=(1, 9))
-hand_off(HistGradientBoostingClassifier(**HIST).fit(x, y), x, os.path.join(OUT, "skl-wine-hist"))
+skl_trees("skl-wine-hist", HistGradientBoostingClassifier(**HIST).fit(x, y), x)
 
 # One-vs-rest probabilities, which the importer refuses naming the node.
 from sklearn.multiclass import OneVsRestClassifier  # noqa: E402
@@ -212,4 +236,8 @@ from sklearn.ensemble import RandomForestClassifier  # noqa: E402
 
 x, y, names = data(load_breast_cancer, holes=(0, 3))
 forest = RandomForestClassifier(n_estimators=20, max_depth=5, random_state=0, n_jobs=1).fit(x, y)
-hand_off(forest, x, os.path.join(OUT, "skl-cancer-forest-missing"))
+skl_trees("skl-cancer-forest-missing", forest, x)
+# The same forest as skl2onnx alone writes it: no covers (every hit rate 1.0).
+onx = to_onnx(forest, initial_types=[("X", FloatTensorType([None, x.shape[1]]))], options={"zipmap": False})
+with open(os.path.join(OUT, "refused-skl-forest-no-covers.onnx"), "wb") as f:
+    f.write(onx.SerializeToString())

@@ -64,13 +64,16 @@ fn is_root() -> bool {
 /// the last for Python 3.11) and LightGBM for fidelity, componentize-py to
 /// build the Python guests, pyarrow to write Parquet feature tables, and
 /// the NATS server (a current build, as a wheel) for the stream workers,
-/// pandas for the notebook helper's DataFrames, and h3 (the H3 library's
-/// own Python binding) as the reference for grid-cell keys.
-pub const PYTHON_PACKAGES: [&str; 12] = [
+/// pandas for the notebook helper's DataFrames, h3 (the H3 library's
+/// own Python binding) as the reference for grid-cell keys, and shap (its
+/// path-dependent tree explainer; 0.51 is the last for Python 3.11) as the
+/// reference for scikit-learn trees' contributions.
+pub const PYTHON_PACKAGES: [&str; 13] = [
     "schemathesis==4.32.5",
     "prometheus-client==0.26.0",
     "scikit-learn==1.9.1",
     "skl2onnx==1.20.0",
+    "shap==0.51.0",
     "onnx==1.23.2",
     "xgboost-cpu==3.2.0",
     "lightgbm==4.7.0",
