@@ -14,8 +14,6 @@
 //! What it is not: a statement about the world. The numbers say how the
 //! model arrived at its value, not what causes the outcome.
 
-use crate::trees::Trees;
-
 /// One step of the path from the root to a node: the feature split on, the
 /// share of cover that follows the path (`zero`), whether the row follows
 /// it (`one`), and the step's weight among the orderings of the path.
@@ -95,59 +93,124 @@ impl<'a> Walk<'a> {
     }
 }
 
-impl Trees {
-    /// Adds one tree's contributions for the walk's row: the tree rooted at
-    /// `root` (an index into the flattened nodes), its leaves' values added
-    /// to output `output`'s block (or every output's, for per-output
-    /// leaves).
-    pub(crate) fn contribute_tree(&self, walk: &mut Walk<'_>, root: usize, output: usize) {
-        walk.output = output;
-        self.recurse(walk, root, 0, 0, 1.0, 1.0, -1);
-    }
-
-    /// One node of Algorithm 2: the path so far is `walk.path[parent..parent + depth]`.
-    #[allow(clippy::too_many_arguments)]
-    fn recurse(
-        &self,
-        walk: &mut Walk<'_>,
-        node: usize,
-        parent: usize,
-        depth: usize,
-        zero: f64,
-        one: f64,
+/// What a row meets at a node of a tree being explained.
+pub(crate) enum Split<'a> {
+    /// A leaf.
+    Leaf,
+    /// A split on `feature`: the row goes to `hot`, `cold` is the other child.
+    Two {
+        /// The feature (contract index) the split reads.
         feature: i64,
-    ) {
-        let start = parent + depth;
-        walk.path.copy_within(parent..parent + depth, start);
-        let mut depth = depth;
-        extend(&mut walk.path[start..], depth, zero, one, feature);
-        match self.split_of(node, walk.row) {
-            None => {
-                let blocks = self.features() + 1;
-                for i in 1..=depth {
-                    let path = &walk.path[start..];
-                    let w = unwound_sum(path, depth, i);
-                    let step = path[i];
-                    for (k, value) in self.leaf_values(node, walk.output) {
-                        walk.phi[k * blocks + step.feature as usize] += w * (step.one - step.zero) * value;
-                    }
+        /// The child the row takes.
+        hot: usize,
+        /// The other child.
+        cold: usize,
+    },
+    /// A split on `feature` into `children`, tried in order; the row takes
+    /// `taken`, or stops at the node itself (`None`; no training row
+    /// stopped there), where the node's own value answers if `answers`,
+    /// else nothing does.
+    Many {
+        /// The feature (contract index) every child's condition reads.
+        feature: i64,
+        /// The children.
+        children: &'a [u32],
+        /// The child the row takes, if any.
+        taken: Option<usize>,
+        /// Whether the node answers when the row stops at it.
+        answers: bool,
+    },
+}
+
+/// A tree the path-dependent algorithm walks.
+pub(crate) trait PathTree {
+    /// Contributions per output block (features + 1 numbers each).
+    fn features(&self) -> usize;
+    /// Node `n`'s cover.
+    fn cover(&self, n: usize) -> f64;
+    /// What the row meets at node `n`.
+    fn split(&self, n: usize, row: &[f64]) -> Split<'_>;
+    /// What node `n` adds when it answers, output by output: (output,
+    /// value); `output` is the walk's.
+    fn values(&self, n: usize, output: usize) -> impl Iterator<Item = (usize, f64)> + '_;
+}
+
+/// Adds one tree's contributions for the walk's row: the tree rooted at
+/// `root`, its answering nodes' values added to output `output`'s block
+/// (or every output's, for per-output values).
+pub(crate) fn contribute_tree<T: PathTree>(tree: &T, walk: &mut Walk<'_>, root: usize, output: usize) {
+    walk.output = output;
+    recurse(tree, walk, (root, false), 0, 0, (1.0, 1.0), -1);
+}
+
+/// One node of Algorithm 2: the path so far is `walk.path[parent..parent +
+/// depth]`. `(node, stops)`: the node, and whether the row stops there (it
+/// answers as a leaf). `(zero, one)`: the step's fractions.
+fn recurse<T: PathTree>(
+    tree: &T,
+    walk: &mut Walk<'_>,
+    (node, stops): (usize, bool),
+    parent: usize,
+    depth: usize,
+    (zero, one): (f64, f64),
+    feature: i64,
+) {
+    let start = parent + depth;
+    walk.path.copy_within(parent..parent + depth, start);
+    let mut depth = depth;
+    extend(&mut walk.path[start..], depth, zero, one, feature);
+    let split = if stops { Split::Leaf } else { tree.split(node, walk.row) };
+    let split_feature = match split {
+        Split::Leaf => {
+            let blocks = tree.features() + 1;
+            for i in 1..=depth {
+                let path = &walk.path[start..];
+                let w = unwound_sum(path, depth, i);
+                let step = path[i];
+                for (k, value) in tree.values(node, walk.output) {
+                    walk.phi[k * blocks + step.feature as usize] += w * (step.one - step.zero) * value;
                 }
             }
-            Some((split_feature, hot, cold)) => {
-                let w = self.cover(node);
-                let hot_zero = self.cover(hot) / w;
-                let cold_zero = self.cover(cold) / w;
-                let (mut incoming_zero, mut incoming_one) = (1.0, 1.0);
-                let path = &mut walk.path[start..];
-                if let Some(index) = (0..=depth).find(|&i| path[i].feature == split_feature) {
-                    incoming_zero = path[index].zero;
-                    incoming_one = path[index].one;
-                    unwind(path, depth, index);
-                    depth -= 1;
+            return;
+        }
+        Split::Two { feature, .. } | Split::Many { feature, .. } => feature,
+    };
+    let w = tree.cover(node);
+    let (mut incoming_zero, mut incoming_one) = (1.0, 1.0);
+    let path = &mut walk.path[start..];
+    if let Some(index) = (0..=depth).find(|&i| path[i].feature == split_feature) {
+        incoming_zero = path[index].zero;
+        incoming_one = path[index].one;
+        unwind(path, depth, index);
+        depth -= 1;
+    }
+    let child = |walk: &mut Walk<'_>, c: (usize, bool), zero: f64, one: f64| {
+        recurse(tree, walk, c, start, depth + 1, (zero * incoming_zero, one), split_feature);
+    };
+    match split {
+        Split::Two { hot, cold, .. } => {
+            child(walk, (hot, false), tree.cover(hot) / w, incoming_one);
+            child(walk, (cold, false), tree.cover(cold) / w, 0.0);
+        }
+        Split::Many { children, taken, answers, .. } => {
+            // A branch with no share of the training rows that the row
+            // does not take either adds nothing (and would divide by zero).
+            let branch = |walk: &mut Walk<'_>, c: (usize, bool), zero: f64, one: f64| {
+                if zero * incoming_zero != 0.0 || one != 0.0 {
+                    child(walk, c, zero, one);
                 }
-                self.recurse(walk, hot, start, depth + 1, hot_zero * incoming_zero, incoming_one, split_feature);
-                self.recurse(walk, cold, start, depth + 1, cold_zero * incoming_zero, 0.0, split_feature);
+            };
+            for &c in children {
+                let (c, hot) = (c as usize, taken == Some(c as usize));
+                branch(walk, (c, false), tree.cover(c) / w, if hot { incoming_one } else { 0.0 });
+            }
+            if taken.is_none() && !answers && incoming_one != 0.0 {
+                // No prediction on a path the contributions weigh: none for the row.
+                walk.phi.iter_mut().for_each(|v| *v = f64::NAN);
+            } else if taken.is_none() {
+                branch(walk, (node, true), 0.0, incoming_one);
             }
         }
+        Split::Leaf => unreachable!("a leaf returned above"),
     }
 }

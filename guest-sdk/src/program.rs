@@ -18,8 +18,11 @@
 use ndarray::{ArrayView2, ArrayViewMut2};
 use serde::{Deserialize, Serialize};
 
+use crate::MarginLink;
 use crate::exp;
 use crate::generic::Evaluate;
+
+mod explain;
 
 /// Deepest nesting of models, predicates and expressions a program may have.
 pub const MAX_DEPTH: usize = 64;
@@ -345,6 +348,9 @@ pub struct TreeNode {
     pub children: Vec<u32>,
     /// Where [`WhenUnknown::DefaultChild`] goes.
     pub default_child: Option<u32>,
+    /// How many training records reached the node (PMML's `recordCount`;
+    /// NaN: not given). Only contributions read it.
+    pub cover: f64,
 }
 
 /// One table of a regression (PMML's `RegressionTable`).
@@ -739,7 +745,25 @@ impl Program {
         Ok(Program { params })
     }
 
+    /// Whether the program can give per-row contributions.
+    ///
+    /// # Errors
+    /// Why not, naming the PMML element that stands in the way.
+    pub fn explains(&self) -> Result<(), String> {
+        explain::explains(self)
+    }
+
     fn row(&self, x: &[f64], slots: &mut Vec<f64>, out: &mut [f64]) {
+        self.prepare(x, slots);
+        let p = predict(&self.params.model, slots);
+        for (o, e) in out.iter_mut().zip(&self.params.outputs) {
+            *o = p.emit(*e);
+        }
+    }
+
+    /// Fills `slots` with a row's prepared features and the derived fields
+    /// computed before the model.
+    fn prepare(&self, x: &[f64], slots: &mut Vec<f64>) {
         slots.clear();
         slots.resize(self.params.slots as usize, f64::NAN);
         for ((slot, &v), input) in slots.iter_mut().zip(x).zip(&self.params.inputs) {
@@ -754,10 +778,6 @@ impl Program {
         }
         for (slot, e) in &self.params.derived {
             slots[*slot as usize] = eval(e, slots);
-        }
-        let p = predict(&self.params.model, slots);
-        for (o, e) in out.iter_mut().zip(&self.params.outputs) {
-            *o = p.emit(*e);
         }
     }
 }
@@ -1022,34 +1042,47 @@ fn tree(nodes: &[TreeNode], unknown: WhenUnknown, last_when_no_child: bool, clas
         _ => return Prediction::none(classes),
     }
     let mut at = 0usize;
-    'walk: loop {
-        let node = &nodes[at];
-        if node.children.is_empty() {
-            return answer(at);
+    loop {
+        match choose(nodes, unknown, last_when_no_child, at, slots) {
+            Choice::Child(c) => at = c,
+            Choice::Stop => return answer(at),
+            Choice::Nothing => return Prediction::none(classes),
         }
-        for &c in &node.children {
-            match truth(&nodes[c as usize].predicate, slots) {
-                Truth::Yes => {
-                    at = c as usize;
-                    continue 'walk;
-                }
-                Truth::No => {}
-                Truth::Unknown => match unknown {
-                    WhenUnknown::NextChild => {}
-                    WhenUnknown::LastPrediction => return answer(at),
-                    WhenUnknown::NoPrediction => return Prediction::none(classes),
-                    WhenUnknown::DefaultChild => match node.default_child {
-                        Some(d) => {
-                            at = d as usize;
-                            continue 'walk;
-                        }
-                        None => return Prediction::none(classes),
-                    },
-                },
-            }
-        }
-        return if last_when_no_child { answer(at) } else { Prediction::none(classes) };
     }
+}
+
+/// Where a row goes from a tree node.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Choice {
+    /// On to this child.
+    Child(usize),
+    /// Nowhere: the node answers (a leaf, or a node that stops the walk).
+    Stop,
+    /// Nowhere, and there is no prediction.
+    Nothing,
+}
+
+/// The step a row takes from node `at`, as PMML's tree walk says.
+fn choose(nodes: &[TreeNode], unknown: WhenUnknown, last_when_no_child: bool, at: usize, slots: &[f64]) -> Choice {
+    let node = &nodes[at];
+    if node.children.is_empty() {
+        return Choice::Stop;
+    }
+    for &c in &node.children {
+        match truth(&nodes[c as usize].predicate, slots) {
+            Truth::Yes => return Choice::Child(c as usize),
+            Truth::No => {}
+            Truth::Unknown => match unknown {
+                WhenUnknown::NextChild => {}
+                WhenUnknown::LastPrediction => return Choice::Stop,
+                WhenUnknown::NoPrediction => return Choice::Nothing,
+                WhenUnknown::DefaultChild => {
+                    return node.default_child.map_or(Choice::Nothing, |d| Choice::Child(d as usize));
+                }
+            },
+        }
+    }
+    if last_when_no_child { Choice::Stop } else { Choice::Nothing }
 }
 
 fn ensemble(method: Ensemble, segments: &[Segment], classes: u32, slots: &mut Vec<f64>) -> Prediction {
@@ -1117,6 +1150,10 @@ impl Evaluate for Program {
 
     fn outputs(&self) -> usize {
         self.params.outputs.len()
+    }
+
+    fn explain(&self, rows: ArrayView2<'_, f64>, out: ArrayViewMut2<'_, f64>) -> Result<Vec<MarginLink>, String> {
+        explain::explain(self, rows, out)
     }
 
     fn evaluate(&self, rows: ArrayView2<'_, f64>, mut out: ArrayViewMut2<'_, f64>) {
@@ -1192,6 +1229,7 @@ mod tests {
     #[test]
     fn malformed_programs_are_refused_with_the_reason() {
         let leaf = |children: Vec<u32>| TreeNode {
+            cover: f64::NAN,
             predicate: Predicate::True,
             score: 1.0,
             probabilities: vec![],

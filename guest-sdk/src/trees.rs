@@ -431,7 +431,7 @@ impl Trees {
                         walk.phi[j * blocks + self.features] += e;
                     }
                 }
-                self.contribute_tree(&mut walk, root, k);
+                crate::contributions::contribute_tree(self, &mut walk, root, k);
             }
             for (k, base) in self.base.iter().enumerate() {
                 let block = &mut phi[k * blocks..(k + 1) * blocks];
@@ -479,31 +479,9 @@ impl Trees {
         (expected, depth)
     }
 
-    /// The split a row meets at node `n` (feature, the child it takes, the
-    /// other child), or `None` at a leaf.
-    pub(crate) fn split_of(&self, n: usize, row: &[f64]) -> Option<(i64, usize, usize)> {
-        let node = &self.nodes[n];
-        if is_leaf(node.kind) {
-            return None;
-        }
-        let hot = if self.less_or_equal { self.child::<true>(node, row) } else { self.child::<false>(node, row) };
-        let cold = if hot == node.left { node.right } else { node.left };
-        Some((i64::from(node.feature), hot as usize, cold as usize))
-    }
-
-    /// Node `n`'s cover.
-    pub(crate) fn cover(&self, n: usize) -> f64 {
-        self.explain.as_ref().map_or(0.0, |e| e.covers[n])
-    }
-
-    /// Features per row.
-    pub(crate) fn features(&self) -> usize {
-        self.features
-    }
-
     /// What leaf `n` adds, output by output: (output, value); `output` is
     /// its tree's, for a single-value leaf.
-    pub(crate) fn leaf_values(&self, n: usize, output: usize) -> impl Iterator<Item = (usize, f64)> + '_ {
+    fn leaf_values(&self, n: usize, output: usize) -> impl Iterator<Item = (usize, f64)> + '_ {
         let node = &self.nodes[n];
         let (first, count, single) =
             if node.kind == LEAF { (0, 1, Some(node.threshold)) } else { (node.start as usize, self.base.len(), None) };
@@ -805,6 +783,30 @@ impl Evaluate for Trees {
             OutputLink::Softmax => MarginLink::Softmax,
         };
         Ok(vec![link; outputs])
+    }
+}
+
+impl crate::contributions::PathTree for Trees {
+    fn features(&self) -> usize {
+        self.features
+    }
+
+    fn cover(&self, n: usize) -> f64 {
+        self.explain.as_ref().map_or(0.0, |e| e.covers[n])
+    }
+
+    fn split(&self, n: usize, row: &[f64]) -> crate::contributions::Split<'_> {
+        let node = &self.nodes[n];
+        if is_leaf(node.kind) {
+            return crate::contributions::Split::Leaf;
+        }
+        let hot = if self.less_or_equal { self.child::<true>(node, row) } else { self.child::<false>(node, row) };
+        let cold = if hot == node.left { node.right } else { node.left };
+        crate::contributions::Split::Two { feature: i64::from(node.feature), hot: hot as usize, cold: cold as usize }
+    }
+
+    fn values(&self, n: usize, output: usize) -> impl Iterator<Item = (usize, f64)> + '_ {
+        self.leaf_values(n, output)
     }
 }
 

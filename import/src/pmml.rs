@@ -860,6 +860,7 @@ impl<'a, 'input> Reader<'a, 'input> {
                 probabilities,
                 children: Vec::new(),
                 default_child: None,
+                cover: self.number(n, "recordCount", Some(f64::NAN))?,
             });
             ids.push(n.attribute("id").map(str::to_owned));
             defaults.push(n.attribute("defaultChild").map(|d| (d.to_owned(), n)));
@@ -1208,7 +1209,11 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
     }
     let params = ProgramParams { inputs, slots: reader.slots, derived, model, outputs: emits };
     // The program's own checks, so a document it cannot run fails here.
-    paddock_guest::Program::new(params.clone()).map_err(|e| reader.malformed(model_node, e))?;
+    let program = paddock_guest::Program::new(params.clone()).map_err(|e| reader.malformed(model_node, e))?;
+    let explains = match program.explains() {
+        Ok(()) => "contributions can be asked for".to_owned(),
+        Err(why) => format!("contributions are declined: {why}"),
+    };
     let application = child(root, "Header").and_then(|h| child(h, "Application"));
     let toolkit = application.map_or("(application not recorded)".to_owned(), |a| {
         format!("{} {}", a.attribute("name").unwrap_or(""), a.attribute("version").unwrap_or("")).trim().to_owned()
@@ -1223,7 +1228,7 @@ pub(crate) fn import(bytes: &[u8], file: &str) -> Result<Imported, ImportError> 
             toolkit: format!("{toolkit} (PMML {version})"),
             task: kind,
             arithmetic: "double precision; predicates three-valued (a comparison with an absent value is unknown), missing-value strategies as the document says".into(),
-            estimator: format!("scoring program: {} slots", reader.slots),
+            estimator: format!("scoring program: {} slots; {explains}", reader.slots),
             contract: sources,
         },
     })

@@ -70,6 +70,69 @@ def lost_to_rounding(model, x):
     return lost
 
 
+def split_otherwise(model, x):
+    """Rows that some split of some tree, on the row's path or not, decides
+    otherwise from nyoka's float32 text of its threshold than from the
+    double: contributions weigh every split, not only the path's."""
+    differ = set()
+    for tree in trees_of(model):
+        t = tree.tree_
+        for node in numpy.nonzero(t.children_left != -1)[0]:
+            value, threshold = x[:, t.feature[node]], t.threshold[node]
+            ours = numpy.float32(value).astype(numpy.float64) <= threshold
+            differ.update(numpy.nonzero(ours != (value <= float(str(numpy.float32(threshold)))))[0].tolist())
+    return differ
+
+
+def write_trees(stem, model, names, rows):
+    """The fitted trees as the `shap` package's tree dictionaries (children,
+    features, thresholds, leaf values — class fractions for a classifier —
+    and each node's cover), with the rows kept in the checks, for
+    tests/pmml/contributions.py: `shap` needs a newer numpy than this
+    environment's. The covers are `n_node_samples`, the counts nyoka writes
+    as each Node's recordCount (a bootstrapped forest's
+    `weighted_n_node_samples` count repeated rows again)."""
+    trees = trees_of(model)
+    if not trees:
+        return
+    differ = split_otherwise(model, rows)
+    rows = [r for i, r in enumerate(rows) if i not in differ]
+    scaling = 1.0 / len(trees)
+    dicts = []
+    for tree in trees:
+        t = tree.tree_
+        values = t.value.reshape(t.node_count, -1)
+        if values.shape[1] > 1:  # class counts → fractions, as predict_proba takes them
+            values = values / values.sum(axis=1, keepdims=True)
+        dicts.append({
+            "children_left": t.children_left.tolist(),
+            "children_right": t.children_right.tolist(),
+            "children_default": t.children_left.tolist(),
+            "features": t.feature.tolist(),
+            "thresholds": t.threshold.tolist(),
+            "values": (values * scaling).tolist(),
+            "node_sample_weight": t.n_node_samples.astype(float).tolist(),
+        })
+    with open(os.path.join(OUT, f"{stem}.trees.json"), "w") as f:
+        json.dump({"source": f"scikit-learn {sklearn.__version__} {type(model).__name__} ({len(differ)} more rows left "
+                             "out: a value between some threshold and nyoka's text of it)", "names": names,
+                   "classes": [str(c) for c in getattr(model, "classes_", [])], "trees": dicts,
+                   "rows": [list(map(float, r)) for r in rows]}, f)
+
+
+def write_terms(stem, pipeline, names, rows):
+    """A linear model's terms as NumPy computes them from scikit-learn's own
+    scaler and coefficients: weight × scaled value per feature, the
+    intercept as the baseline (tests/pmml.rs compares)."""
+    scaled = pipeline[:-1].transform(rows) if len(pipeline) > 1 else rows
+    model = pipeline.steps[-1][1]
+    terms = numpy.column_stack([scaled * model.coef_, numpy.full(len(rows), model.intercept_)])
+    with open(os.path.join(OUT, f"{stem}.contrib.json"), "w") as f:
+        json.dump({"source": f"NumPy {numpy.__version__} from scikit-learn {sklearn.__version__}'s "
+                             f"{type(pipeline[0]).__name__}.transform and {type(model).__name__}.coef_, intercept_",
+                   "names": names, "x": [list(map(float, r)) for r in rows], "contrib": terms.tolist()}, f)
+
+
 def export(stem, steps, data, target):
     x, y = data.data, data.target
     names = names_of(data)
@@ -98,6 +161,11 @@ def export(stem, steps, data, target):
     }
     with open(os.path.join(OUT, f"{stem}.checks.json"), "w") as f:
         json.dump(checks, f)
+    kept = numpy.array([row for r, row in enumerate(x) if r not in lost])
+    if "Boosting" not in type(model).__name__:  # a boosted model is a model chain, declined
+        write_trees(stem, model, names, kept)
+    if hasattr(model, "coef_") and not hasattr(model, "predict_proba"):
+        write_terms(stem, pipeline, names, kept)
     # The rows left out, with scikit-learn's answer: the document must answer otherwise.
     lost_cases = [{"row": dict(zip(names, map(float, x[r]))), "expect": dict(zip(outputs, map(float, predicted[r])))} for r in sorted(lost)]
     with open(os.path.join(OUT, f"{stem}.lost.json"), "w") as f:

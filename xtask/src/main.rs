@@ -139,19 +139,21 @@ fn test(root: &Path, rest: &[String]) -> Result<()> {
     // scikit-learn's reference models and predictions, for tests/sklearn.rs,
     // XGBoost's and LightGBM's, for tests/imports.rs, and pyarrow's
     // Parquet tables, for tests/tables.rs; PMML from nyoka, which needs the
-    // scikit-learn of its day, for tests/pmml.rs.
+    // scikit-learn of its day, for tests/pmml.rs, and shap's contributions
+    // of those documents' trees (shap needs today's numpy).
     for (python, script, out) in [
         (Path::new("python3"), "tests/sklearn/export.py", "target/paddock/sklearn"),
         (Path::new("python3"), "tests/imports/export.py", "target/paddock/imports"),
         (Path::new("python3"), "tests/tables/export.py", "target/paddock/tables"),
         (Path::new("python3"), "tests/cells/export.py", "target/paddock/cells"),
         (pmml_python.as_path(), "tests/pmml/export.py", "target/paddock/pmml"),
+        (Path::new("python3"), "tests/pmml/contributions.py", "target/paddock/pmml"),
     ] {
         let mut export = Command::new(python);
         export.arg(root.join(script)).arg(root.join(out));
         run(export)?;
     }
-    steps.done("reference exports (scikit-learn, XGBoost, LightGBM, pyarrow, h3, nyoka)");
+    steps.done("reference exports (scikit-learn, XGBoost, LightGBM, pyarrow, h3, nyoka, shap)");
     // The ONNX evaluator is a guest: built for wasm32 above, and tested
     // through the sandbox (tests/sklearn.rs); compiling tract natively
     // as well would only cost minutes.
