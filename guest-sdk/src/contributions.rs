@@ -26,11 +26,20 @@ struct Step {
 }
 
 /// Adds a step for `feature` at `depth`, reweighting the steps before it.
+///
+/// `one` is 0 or 1 (whether the row follows the path), so the toolkits'
+/// `one × weight` is the weight or nothing: skipping the product gives the
+/// same bits (weights are never negative zero) with fewer operations,
+/// which matters in the sandbox, where every float operation's result is
+/// checked for NaN.
 fn extend(path: &mut [Step], depth: usize, zero: f64, one: f64, feature: i64) {
+    debug_assert!(one == 0.0 || one == 1.0, "one fraction {one}");
     path[depth] = Step { feature, zero, one, weight: if depth == 0 { 1.0 } else { 0.0 } };
     let d1 = (depth + 1) as f64;
     for i in (0..depth).rev() {
-        path[i + 1].weight += one * path[i].weight * (i + 1) as f64 / d1;
+        if one != 0.0 {
+            path[i + 1].weight += path[i].weight * (i + 1) as f64 / d1;
+        }
         path[i].weight = zero * path[i].weight * (depth - i) as f64 / d1;
     }
 }
@@ -58,17 +67,30 @@ fn unwind(path: &mut [Step], depth: usize, index: usize) {
 
 /// The total weight of the path with step `index` left out.
 fn unwound_sum(path: &[Step], depth: usize, index: usize) -> f64 {
-    let Step { zero, one, .. } = path[index];
+    unwound_sums(path, depth, [index, index])[0]
+}
+
+/// [`unwound_sum`] for two steps at once, each with the very same
+/// operations in the same order (so the same bits): two independent chains
+/// of arithmetic in one loop keep the processor busy, and the ratio of
+/// orderings both use is worked out once.
+fn unwound_sums(path: &[Step], depth: usize, index: [usize; 2]) -> [f64; 2] {
+    let steps = [path[index[0]], path[index[1]]];
     let d1 = (depth + 1) as f64;
-    let mut next = path[depth].weight;
-    let mut total = 0.0;
+    let mut next = [path[depth].weight; 2];
+    let mut total = [0.0; 2];
     for i in (0..depth).rev() {
-        if one != 0.0 {
-            let part = next * d1 / ((i + 1) as f64 * one);
-            total += part;
-            next = path[i].weight - part * zero * ((depth - i) as f64 / d1);
-        } else {
-            total += (path[i].weight / zero) / ((depth - i) as f64 / d1);
+        let ratio = (depth - i) as f64 / d1;
+        for k in 0..2 {
+            let Step { zero, one, .. } = steps[k];
+            if one != 0.0 {
+                // `(i + 1) × one` is `i + 1`: one is 1 here.
+                let part = next[k] * d1 / (i + 1) as f64;
+                total[k] += part;
+                next[k] = path[i].weight - part * zero * ratio;
+            } else {
+                total[k] += (path[i].weight / zero) / ratio;
+            }
         }
     }
     total
@@ -163,13 +185,23 @@ fn recurse<T: PathTree>(
     let split_feature = match split {
         Split::Leaf => {
             let blocks = tree.features() + 1;
-            for i in 1..=depth {
-                let path = &walk.path[start..];
-                let w = unwound_sum(path, depth, i);
-                let step = path[i];
+            let add = |walk: &mut Walk<'_>, i: usize, w: f64| {
+                let step = walk.path[start + i];
                 for (k, value) in tree.values(node, walk.output) {
                     walk.phi[k * blocks + step.feature as usize] += w * (step.one - step.zero) * value;
                 }
+            };
+            // Two steps at a time; contributions added in the steps' order.
+            let mut i = 1;
+            while i < depth {
+                let w = unwound_sums(&walk.path[start..], depth, [i, i + 1]);
+                add(walk, i, w[0]);
+                add(walk, i + 1, w[1]);
+                i += 2;
+            }
+            if i == depth {
+                let w = unwound_sum(&walk.path[start..], depth, i);
+                add(walk, i, w);
             }
             return;
         }

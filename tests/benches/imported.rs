@@ -2,7 +2,10 @@
 //! XGBoost model scoring a batch of 1 024 rows in the sandbox, against the
 //! same params evaluated natively and against the toolkit's own
 //! single-threaded predict (timed by `scripts/bench_imports.py` in the
-//! same run), and the time to import and pack a 1 000-tree model.
+//! same run), and the time to import and pack a 1 000-tree model. Then the
+//! same batch explained (per-row contributions) in the sandbox, natively
+//! and by the toolkit's own contribution call, and scoring with the covers
+//! contributions need against scoring the same trees without them.
 //!
 //! `python3 scripts/bench_imports.py` trains the models (scikit-learn's
 //! Friedman #1 generator, 20 000 rows), times the toolkits, runs
@@ -27,14 +30,45 @@ fn read(path: &Path) -> Vec<u8> {
 
 /// Imports a model file and packs it with the trees guest.
 fn packed(path: &Path) -> (Vec<u8>, Trees, usize) {
+    let (imported, trees) = imported(path);
+    let count = trees.trees.len();
+    let native = Trees::new(trees).unwrap();
+    (paddock_host::pack(&guest("paddock-model-trees"), Some(&imported.params()), None).unwrap(), native, count)
+}
+
+fn imported(path: &Path) -> (paddock_import::Imported, paddock_guest::TreesParams) {
     let bytes = read(path);
     let format = Format::recognise(&bytes).expect("a model file");
     let imported = import(&bytes, format, &path.display().to_string(), None).unwrap();
-    let params = imported.params();
-    let EstimatorParams::Trees(trees) = imported.estimator else { panic!("{}: not a tree ensemble", path.display()) };
-    let count = trees.trees.len();
-    let native = Trees::new(trees).unwrap();
-    (paddock_host::pack(&guest("paddock-model-trees"), Some(&params), None).unwrap(), native, count)
+    let EstimatorParams::Trees(trees) = imported.estimator.clone() else {
+        panic!("{}: not a tree ensemble", path.display())
+    };
+    (imported, trees)
+}
+
+/// The same model packed without its covers: what scoring cost before
+/// models carried them.
+fn packed_without_covers(path: &Path) -> Vec<u8> {
+    let (mut imported, mut trees) = imported(path);
+    trees.covers.clear();
+    imported.estimator = EstimatorParams::Trees(trees);
+    paddock_host::pack(&guest("paddock-model-trees"), Some(&imported.params()), None).unwrap()
+}
+
+/// Loads an artifact with deadlines a whole batch's contributions fit in.
+fn loaded(runtime: &Runtime, artifact: Vec<u8>) -> Model {
+    let limits = paddock_host::Limits {
+        deadline: Duration::from_secs(60),
+        init_deadline: Duration::from_secs(60),
+        ..paddock_host::Limits::default()
+    };
+    let options = ModelOptions { limits, ..ModelOptions::default() };
+    Model::load_with(runtime, Artifact::from_bytes(artifact, u64::MAX).unwrap(), options).unwrap()
+}
+
+fn median(mut v: Vec<Duration>) -> Duration {
+    v.sort();
+    v[v.len() / 2]
 }
 
 struct Measured {
@@ -42,12 +76,27 @@ struct Measured {
     trees: usize,
     sandbox: Duration,
     native: Duration,
+    /// Scoring the same trees packed without covers, alternating with `sandbox`.
+    without_covers: Duration,
+    explained: Duration,
+    explained_native: Duration,
+    /// Explained in a runtime that leaves NaNs as the processor makes them.
+    explained_plain_nans: Duration,
 }
 
-fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usize, reps: usize) -> Measured {
+fn measure(
+    runtimes: [&Runtime; 2],
+    name: &str,
+    path: &Path,
+    cells: &[f64],
+    rows: usize,
+    reps: (usize, usize),
+) -> Measured {
+    let [runtime, plain] = runtimes;
     let (artifact, native, trees) = packed(path);
-    let model =
-        Model::load_with(runtime, Artifact::from_bytes(artifact, u64::MAX).unwrap(), ModelOptions::default()).unwrap();
+    let plain = loaded(plain, artifact.clone());
+    let model = loaded(runtime, artifact);
+    let bare = loaded(runtime, packed_without_covers(path));
     let features = model.contract().features.len();
     let outputs = model.contract().outputs.len();
     assert_eq!(cells.len(), rows * features, "{name}: rows do not fit the model");
@@ -59,21 +108,50 @@ fn measure(runtime: &Runtime, name: &str, path: &Path, cells: &[f64], rows: usiz
         in_sandbox.values().iter().zip(out.iter()).all(|(a, b)| a.to_bits() == b.to_bits()),
         "{name}: sandbox and native differ"
     );
-    // Alternating, so drift on a shared machine hits both alike.
-    let (mut sandbox, mut native_times) = (Vec::with_capacity(reps), Vec::with_capacity(reps));
-    for _ in 0..reps {
+    // Alternating, so drift on a shared machine hits all alike.
+    let (scoring, explaining) = reps;
+    let (mut sandbox, mut native_times, mut bare_times) = (Vec::new(), Vec::new(), Vec::new());
+    for _ in 0..scoring {
         sandbox.push(time(1, || model.score_cells_unchecked(rows, black_box(cells)).unwrap()));
         native_times.push(time(1, || {
             native.evaluate(ArrayView2::from_shape((rows, features), black_box(cells)).unwrap(), out.view_mut());
             out[[0, 0]]
         }));
+        bare_times.push(time(1, || bare.score_cells_unchecked(rows, black_box(cells)).unwrap()));
     }
-    let median = |mut v: Vec<Duration>| {
-        v.sort();
-        v[v.len() / 2]
-    };
-    let (sandbox, native) = (median(sandbox), median(native_times));
-    Measured { name: name.to_owned(), trees, sandbox, native }
+    // Contributions: the same numbers both ways, then timed.
+    let blocks = outputs * (features + 2);
+    let mut why = Array2::zeros((rows, blocks));
+    let view = ArrayView2::from_shape((rows, features), cells).unwrap();
+    native.explain(view, why.view_mut()).unwrap();
+    let sandboxed = model.explain_cells_unchecked(rows, cells).unwrap();
+    for i in 0..rows {
+        let a = sandboxed.of(i, 0);
+        let got: Vec<f64> = a.features.iter().copied().chain([a.baseline, a.margin]).collect();
+        assert!(
+            got.iter().zip(why.row(i)).all(|(g, w)| g.to_bits() == w.to_bits()),
+            "{name} row {}: sandbox and native contributions differ",
+            i + 1
+        );
+    }
+    let (mut explained, mut explained_native, mut explained_plain) = (Vec::new(), Vec::new(), Vec::new());
+    for _ in 0..explaining {
+        explained.push(time(1, || model.explain_cells_unchecked(rows, black_box(cells)).unwrap()));
+        explained_plain.push(time(1, || plain.explain_cells_unchecked(rows, black_box(cells)).unwrap()));
+        explained_native.push(time(1, || {
+            native.explain(ArrayView2::from_shape((rows, features), black_box(cells)).unwrap(), why.view_mut()).unwrap()
+        }));
+    }
+    Measured {
+        name: name.to_owned(),
+        trees,
+        sandbox: median(sandbox),
+        native: median(native_times),
+        without_covers: median(bare_times),
+        explained: median(explained),
+        explained_native: median(explained_native),
+        explained_plain_nans: median(explained_plain),
+    }
 }
 
 fn cells_of(value: &Value) -> (Vec<f64>, usize) {
@@ -86,6 +164,9 @@ fn cells_of(value: &Value) -> (Vec<f64>, usize) {
 fn main() {
     let full = std::env::args().any(|a| a == "--bench");
     let runtime = Runtime::new().unwrap();
+    let plain_nans =
+        Runtime::with_config(paddock_host::RuntimeConfig { canonical_nans: false, ..Default::default() }).unwrap();
+    let runtimes = [&runtime, &plain_nans];
     if !full {
         // Under `cargo test`: once, on a fidelity export's rows.
         let dir = root().join("target/paddock/imports");
@@ -98,18 +179,21 @@ fn main() {
             .iter()
             .flat_map(|c| order.iter().map(move |f| c["row"].get(f).and_then(Value::as_f64).unwrap_or(f64::NAN)))
             .collect();
-        let m = measure(&runtime, "lgb", &dir.join("lgb-diabetes-regression.txt"), &cells, cases.len(), 1);
-        eprintln!("imports bench runs: {} trees, sandbox {:?}, native {:?}", m.trees, m.sandbox, m.native);
+        let m = measure(runtimes, "lgb", &dir.join("lgb-diabetes-regression.txt"), &cells, cases.len(), (1, 1));
+        eprintln!(
+            "imports bench runs: {} trees, sandbox {:?}, native {:?}, explained {:?}",
+            m.trees, m.sandbox, m.native, m.explained
+        );
         return;
     }
     let dir: PathBuf = root().join("target/paddock/bench-imports");
     let rows: Value = serde_json::from_slice(&read(&dir.join("rows.json"))).unwrap();
     let (cells, n) = cells_of(&rows);
     let toolkit: Value = serde_json::from_slice(&read(&dir.join("toolkit.json"))).unwrap();
-    let reps = 101;
+    let reps = (101, 5);
     let results = [
-        measure(&runtime, "LightGBM", &dir.join("lgb-500.txt"), &cells, n, reps),
-        measure(&runtime, "XGBoost", &dir.join("xgb-300.json"), &cells, n, reps),
+        measure(runtimes, "LightGBM", &dir.join("lgb-500.txt"), &cells, n, reps),
+        measure(runtimes, "XGBoost", &dir.join("xgb-300.json"), &cells, n, reps),
     ];
     let pack_path = dir.join("lgb-1000.txt");
     let pack = time(5, || packed(&pack_path));
@@ -137,6 +221,29 @@ fn main() {
             m.native.as_secs_f64() / m.sandbox.as_secs_f64(),
             theirs,
             theirs / (m.sandbox.as_secs_f64() * 1e6),
+        ));
+    }
+    table.push(String::new());
+    table.push(format!(
+        "| model | explained in the sandbox, {n} rows | natively, same code | sandbox / native | toolkit's own contributions, 1 thread | paddock's speed vs the toolkit's | sandbox, NaNs not canonicalized | scoring with covers / without |"
+    ));
+    table.push("|---|---|---|---|---|---|---|---|".to_owned());
+    for m in &results {
+        let theirs = toolkit[m.name.as_str()]["contrib_ns"].as_f64().unwrap() / 1e3;
+        table.push(format!(
+            "| {} {} trees | {} µs | {} µs | {:.2}× native speed | {:.0} µs | {:.2}× | {} µs: {:.2}× native speed | {:.2} ({} vs {} µs) |",
+            m.name,
+            m.trees,
+            us(m.explained),
+            us(m.explained_native),
+            m.explained_native.as_secs_f64() / m.explained.as_secs_f64(),
+            theirs,
+            theirs / (m.explained.as_secs_f64() * 1e6),
+            us(m.explained_plain_nans),
+            m.explained_native.as_secs_f64() / m.explained_plain_nans.as_secs_f64(),
+            m.sandbox.as_secs_f64() / m.without_covers.as_secs_f64(),
+            us(m.sandbox),
+            us(m.without_covers),
         ));
     }
     table.push(String::new());
