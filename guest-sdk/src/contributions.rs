@@ -96,6 +96,21 @@ fn unwound_sums(path: &[Step], depth: usize, index: [usize; 2]) -> [f64; 2] {
     total
 }
 
+/// Checks that `rows` (rows × `features`) fit an output of `out`'s shape
+/// (rows × `width`).
+///
+/// # Errors
+/// Both shapes, when they do not fit.
+pub(crate) fn fits(rows: (usize, usize), out: (usize, usize), features: usize, width: usize) -> Result<(), String> {
+    if out.1 != width || out.0 != rows.0 || rows.1 != features {
+        return Err(format!(
+            "contributions: {} rows of {} features into {}×{}, expected {}×{width}",
+            rows.0, rows.1, out.0, out.1, rows.0
+        ));
+    }
+    Ok(())
+}
+
 /// What a walk adds to: the row, its contributions (one block of
 /// `features + 1` per output), and the path buffer every level shares.
 pub(crate) struct Walk<'a> {

@@ -406,16 +406,7 @@ impl Trees {
         };
         let blocks = self.features + 1;
         let width = self.base.len() * blocks;
-        if out.ncols() != width || out.nrows() != rows.nrows() || rows.ncols() != self.features {
-            return Err(format!(
-                "contributions: {} rows of {} features into {}×{}, expected {}×{width}",
-                rows.nrows(),
-                rows.ncols(),
-                out.nrows(),
-                out.ncols(),
-                rows.nrows()
-            ));
-        }
+        crate::contributions::fits(rows.dim(), out.dim(), self.features, width)?;
         let mut row = vec![0.0; self.features];
         let mut phi = vec![0.0; width];
         for (x, mut o) in rows.outer_iter().zip(out.outer_iter_mut()) {

@@ -203,6 +203,16 @@ fn main() {
             .unwrap()
     });
     let us = |d: Duration| format!("{:.0}", d.as_secs_f64() * 1e6);
+    // Sandbox, native, their ratio, the toolkit's time (µs) and paddock's speed against it.
+    let against = |sandbox: Duration, native: Duration, theirs: f64| {
+        format!(
+            "{} µs | {} µs | {:.2}× native speed | {theirs:.0} µs | {:.2}×",
+            us(sandbox),
+            us(native),
+            native.as_secs_f64() / sandbox.as_secs_f64(),
+            theirs / (sandbox.as_secs_f64() * 1e6)
+        )
+    };
     let mut table = vec![
         format!(
             "| model | trees | sandbox, {n} rows | native, same params | sandbox / native | toolkit's own predict, 1 thread | paddock's speed vs the toolkit's |"
@@ -212,15 +222,11 @@ fn main() {
     for m in &results {
         let theirs = toolkit[m.name.as_str()]["batch_ns"].as_f64().unwrap() / 1e3;
         table.push(format!(
-            "| {} {} | {} | {} µs | {} µs | {:.2}× native speed | {:.0} µs | {:.2}× |",
+            "| {} {} | {} | {} |",
             m.name,
             toolkit[m.name.as_str()]["version"].as_str().unwrap_or("?"),
             m.trees,
-            us(m.sandbox),
-            us(m.native),
-            m.native.as_secs_f64() / m.sandbox.as_secs_f64(),
-            theirs,
-            theirs / (m.sandbox.as_secs_f64() * 1e6),
+            against(m.sandbox, m.native, theirs),
         ));
     }
     table.push(String::new());
@@ -231,14 +237,10 @@ fn main() {
     for m in &results {
         let theirs = toolkit[m.name.as_str()]["contrib_ns"].as_f64().unwrap() / 1e3;
         table.push(format!(
-            "| {} {} trees | {} µs | {} µs | {:.2}× native speed | {:.0} µs | {:.2}× | {} µs: {:.2}× native speed | {:.2} ({} vs {} µs) |",
+            "| {} {} trees | {} | {} µs: {:.2}× native speed | {:.2} ({} vs {} µs) |",
             m.name,
             m.trees,
-            us(m.explained),
-            us(m.explained_native),
-            m.explained_native.as_secs_f64() / m.explained.as_secs_f64(),
-            theirs,
-            theirs / (m.explained.as_secs_f64() * 1e6),
+            against(m.explained, m.explained_native, theirs),
             us(m.explained_plain_nans),
             m.explained_native.as_secs_f64() / m.explained_plain_nans.as_secs_f64(),
             m.sandbox.as_secs_f64() / m.without_covers.as_secs_f64(),

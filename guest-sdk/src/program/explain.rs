@@ -150,16 +150,7 @@ pub(super) fn explain(
     let plan = plan(program, &sources)?;
     let (features, outputs) = (program.params.inputs.len(), program.params.outputs.len());
     let width = outputs * (features + 2);
-    if out.ncols() != width || out.nrows() != rows.nrows() || rows.ncols() != features {
-        return Err(format!(
-            "contributions: {} rows of {} features into {}×{}, expected {}×{width}",
-            rows.nrows(),
-            rows.ncols(),
-            out.nrows(),
-            out.ncols(),
-            rows.nrows()
-        ));
-    }
+    crate::contributions::fits(rows.dim(), out.dim(), features, width)?;
     let mut slots = Vec::with_capacity(program.params.slots as usize);
     let mut scores = vec![0.0; outputs];
     for (r, (x, mut o)) in rows.outer_iter().zip(out.outer_iter_mut()).enumerate() {
