@@ -103,12 +103,13 @@ fn imported_models_give_the_toolkits_predictions_bit_for_bit() {
 fn handed_off_checks_pass_and_the_origin_is_recorded() {
     let (path, bytes, checks) = case("lgb-wine-categorical");
     let imported = import(&bytes, Format::LightgbmText, "lgb-wine-categorical.txt", None).unwrap();
-    let artifact = paddock_host::pack_imported(
-        &guest("paddock-model-trees"),
-        Some(&imported.params()),
-        Some(&checks),
-        Some(&imported.origin.to_map()),
-    )
+    let artifact = paddock_host::pack_imported(paddock_host::Parts {
+        wasm: &guest("paddock-model-trees"),
+        params: Some(&imported.params()),
+        checks: Some(&checks),
+        origin: Some(&imported.origin.to_map()),
+        profile: None,
+    })
     .unwrap();
     let artifact = paddock_host::Artifact::from_bytes(artifact, u64::MAX).unwrap();
     let origin = paddock_import::Origin::from_map(artifact.origin().unwrap().unwrap()).unwrap();
@@ -737,6 +738,90 @@ fn linear_contributions_are_weight_times_value() {
                 i + 1,
                 got.row(i)
             );
+        }
+    }
+}
+
+/// The profile the notebook helper wrote from every training row of the
+/// diabetes data (tests/imports/export.py), and the model it profiles.
+fn profiled() -> (Vec<u8>, Vec<u8>, paddock_host::Profile) {
+    let bytes = std::fs::read(dir().join("lgb-diabetes-profiled.txt")).unwrap();
+    let imported = import(&bytes, Format::LightgbmText, "lgb-diabetes-profiled.txt", None).unwrap();
+    let text = std::fs::read(dir().join("lgb-diabetes-profiled.profile.json")).unwrap();
+    (guest(imported.guest()), imported.params(), paddock_host::Profile::from_json(&text).unwrap())
+}
+
+/// Packs with a profile and loads: the load's error, if any.
+fn pack_with_profile(runtime: &Runtime, profile: &paddock_host::Profile) -> Result<Model, String> {
+    let (wasm, params, _) = profiled();
+    let parts =
+        paddock_host::Parts { wasm: &wasm, params: Some(&params), profile: Some(profile), ..Default::default() };
+    let bytes = paddock_host::pack_imported(parts).unwrap();
+    let artifact = paddock_host::Artifact::from_bytes(bytes, u64::MAX).unwrap();
+    Model::load_with(runtime, artifact, unhurried()).map_err(|e| e.to_string())
+}
+
+/// A profile travels in the artifact and is checked against the contract
+/// at load: one naming a feature the contract lacks, with edges out of
+/// order or with shares that do not sum to 1 is refused, naming the field.
+#[test]
+fn a_training_profile_is_carried_and_checked_against_the_contract() {
+    let runtime = Runtime::new().unwrap();
+    let (_, _, profile) = profiled();
+    assert_eq!(profile.rows, 442);
+    let model = pack_with_profile(&runtime, &profile).unwrap();
+    assert_eq!(model.profile(), Some(&profile));
+    let bmi = &profile.features["bmi"];
+    let mut unknown = profile.clone();
+    unknown.features.insert("bmi_squared".into(), bmi.clone());
+    let mut unordered = profile.clone();
+    if let paddock_host::Bins::Edges(e) = &mut unordered.features.get_mut("bmi").unwrap().bins {
+        e.swap(2, 3);
+    }
+    let mut unsummed = profile.clone();
+    unsummed.outputs.get_mut("value").unwrap().shares[0] += 0.01;
+    for (bad, says) in [
+        (unknown, "the profile's feature `bmi_squared`: the contract has no such feature"),
+        (unordered, "the profile's feature `bmi`: edges are not increasing: edge 3"),
+        (unsummed, "the profile's output `value`: shares sum to 1.01"),
+    ] {
+        let err = pack_with_profile(&runtime, &bad).unwrap_err();
+        assert!(err.contains(says), "{err}");
+    }
+}
+
+/// Live rows binned by the profile's edges and their stability index,
+/// against NumPy on the same rows (outside reference: `numpy.searchsorted`
+/// for the bins, `numpy.sum` and `numpy.log` for the index;
+/// tests/imports/export.py): the counts equal, the index to 1e-12. Rows
+/// drawn with replacement from the training data stay below 0.1 on every
+/// feature; the same rows with `bmi` moved by one standard deviation put
+/// `bmi` above 0.25 and leave every other feature below 0.1.
+#[test]
+fn bin_counts_and_stability_indexes_are_numpys() {
+    let (_, _, profile) = profiled();
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(dir().join("drift.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    for case in doc["cases"].as_array().unwrap() {
+        let name = case["case"].as_str().unwrap();
+        let rows: Vec<Vec<Option<f64>>> = serde_json::from_value(case["rows"].clone()).unwrap();
+        for (j, feature) in names.iter().enumerate() {
+            let field = &profile.features[feature];
+            let mut counts = vec![0u64; field.bin_count()];
+            for row in &rows {
+                counts[field.bin_of(row[j].unwrap_or(f64::NAN))] += 1;
+            }
+            let want: Vec<u64> = serde_json::from_value(case["counts"][feature].clone()).unwrap();
+            assert_eq!(counts, want, "{name} {feature}: bin counts");
+            let index = paddock_host::drift::stability_index(&field.shares, &counts).unwrap();
+            let numpy = case["index"][feature].as_f64().unwrap();
+            assert!((index - numpy).abs() <= 1e-12, "{name} {feature}: {index} against NumPy's {numpy}");
+            let moved = (name == "bmi-shifted" && feature == "bmi") || (name == "s5-holes" && feature == "s5");
+            if moved {
+                assert!(index > 0.25, "{name} {feature}: {index}");
+            } else {
+                assert!(index < 0.1, "{name} {feature}: {index}");
+            }
         }
     }
 }

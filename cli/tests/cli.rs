@@ -365,6 +365,28 @@ fn pack_imports_a_lightgbm_model_from_the_cli() {
     assert!(shown.contains("feature alcohol_band name from feature_names in the file;"), "{shown}");
 }
 
+/// A training profile the notebook helper wrote (tests/imports/export.py)
+/// packs with `--profile`; inspect shows it, a line per feature, and audit
+/// says what it covers.
+#[test]
+fn pack_carries_a_training_profile_that_inspect_and_audit_show() {
+    let dir = root().join("target/paddock/imports");
+    let model = dir.join("lgb-diabetes-profiled.txt");
+    let profile = dir.join("lgb-diabetes-profiled.profile.json");
+    let out = tmp("profiled.wasm");
+    let o = paddock(
+        &["pack", model.to_str().unwrap(), "--profile", profile.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        None,
+    );
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let shown = inspected(&out);
+    assert!(shown.contains("training profile: 442 rows (paddock_handoff from 442 training rows;"), "{shown}");
+    assert!(shown.contains("\n feature bmi 10 bins, 0.0 % missing, -0.09028 to 0.1706, mean "), "{shown}");
+    assert!(shown.contains("\n output value 10 bins, 0.0 % missing, 53.74 to 320.0, mean 152.1 sd 64.95"), "{shown}");
+    let o = paddock(&["audit", out.to_str().unwrap()], None);
+    assert!(text(&o.stdout).contains("442 rows; 10 features, 1 outputs"), "{}", text(&o.stdout));
+}
+
 /// A PMML document packs onto the program guest; the checks are worked
 /// out by hand from the document (tests/pmml.rs shows the steps).
 #[test]

@@ -32,7 +32,7 @@ import numpy
 
 __all__ = ["hand_off", "HandedOff"]
 
-HandedOff = namedtuple("HandedOff", ["model", "checks", "cases", "overrides"])
+HandedOff = namedtuple("HandedOff", ["model", "checks", "cases", "overrides", "profile"])
 
 # XGBoost objectives by the output they give (paddock's importer uses the same).
 _XGB_VALUE = {"reg:squarederror", "reg:linear", "reg:absoluteerror", "reg:pseudohubererror",
@@ -48,7 +48,7 @@ _LGB_PROBABILITY = {"binary", "cross_entropy", "xentropy"}
 _LGB_CLASSES = {"multiclass", "softmax", "multiclassova", "multiclass_ova", "ova", "ovr"}
 
 
-def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, version=None):
+def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, version=None, training=None):
     """Saves ``model`` as its toolkit does and writes its predictions on
     ``rows`` as ``STEM.checks.json``.
 
@@ -68,14 +68,25 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, 
     model with names, ``STEM.toml`` is written too, paddock overrides
     naming the file's ``x0``, ``x1``… for ``paddock pack --overrides``.
 
+    ``training``, the rows the model was trained on (as ``rows`` are
+    given), adds ``STEM.profile.json``: how they and the model's
+    predictions on them were spread (see ``_profile``), which ``paddock
+    pack --profile`` carries so hosts can compare live inputs with it.
+
     ``STEM``'s folder is created when it does not exist.
 
     Returns ``HandedOff(model=path, checks=path, cases=count,
-    overrides=path or None)``.
+    overrides=path or None, profile=path or None)``.
     """
     kind = _toolkit(model)
     os.makedirs(os.path.dirname(stem) or ".", exist_ok=True)
+    given = names
     matrix, names, labels = _matrix(rows, names, _fitted_names(model, kind), _categories(model, kind))
+    checked = len(matrix)
+    if training is not None:
+        # Predicted in the same call as the checks' rows, then split off.
+        train, _, train_labels = _matrix(training, given, _fitted_names(model, kind), _categories(model, kind))
+        matrix = numpy.vstack([matrix, train])
     overrides = None
     if kind == "xgboost":
         path, outputs, values, source = _xgboost(model, matrix, names, stem)
@@ -99,6 +110,10 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, 
         names = names or _lgb_booster(model).feature_name()
     if overrides is None and (name or version):
         overrides = _overrides([], stem, name, version)
+    profile = None
+    if training is not None:
+        profile = _write_profile(stem, matrix[checked:], names, train_labels, outputs, values[checked:], source)
+        matrix, values = matrix[:checked], values[:checked]
     cases = []
     for r, (row, predicted) in enumerate(zip(matrix, values)):
         cells = {n: (labels[n][r] if n in labels else float(v)) for n, v in zip(names, row) if not math.isnan(v)}
@@ -112,7 +127,50 @@ def hand_off(model, rows, stem, *, tolerance=(0.0, 0.0), names=None, name=None, 
     checks_path = f"{stem}.checks.json"
     with open(checks_path, "w") as f:
         json.dump(checks, f)
-    return HandedOff(path, checks_path, len(cases), overrides)
+    return HandedOff(path, checks_path, len(cases), overrides, profile)
+
+
+def _write_profile(stem, matrix, names, labels, outputs, values, source):
+    """Writes ``STEM.profile.json``: per feature (by the checks' names) and
+    per output, fixed bins and each bin's share of the training rows. A
+    number's bin edges are the deciles of its values present
+    (``numpy.quantile``, repeated edges dropped); bin ``i`` holds the values
+    above edge ``i − 1`` and at most edge ``i`` (``numpy.searchsorted``,
+    side left). A label column gets one bin per label seen, one for labels
+    never seen (share 0 here) and, like numbers, one for missing values."""
+    total = len(matrix)
+    if total == 0:
+        raise ValueError("training has no rows: a profile needs some")
+
+    def numbers(column):
+        present = column[~numpy.isnan(column)]
+        if len(present) == 0:
+            edges = numpy.empty(0)
+        else:
+            edges = numpy.unique(numpy.quantile(present, numpy.arange(1, 10) / 10.0))
+        counts = numpy.bincount(numpy.searchsorted(edges, present, side="left"), minlength=len(edges) + 1)
+        shares = list(counts / total) + [float(total - len(present)) / total]
+        field = {"edges": [float(e) for e in edges], "shares": [float(v) for v in shares]}
+        if len(present):
+            field["summary"] = {"min": float(present.min()), "max": float(present.max()),
+                                "mean": float(present.mean()), "sd": float(present.std())}
+        return field
+
+    def texts(column):
+        seen = sorted({v for v in column if v is not None})
+        counts = [sum(1 for v in column if v == label) for label in seen]
+        missing = sum(1 for v in column if v is None)
+        return {"labels": seen, "shares": [c / total for c in counts] + [0.0, missing / total]}
+
+    features = {n: texts(labels[n]) if n in labels else numbers(matrix[:, j]) for j, n in enumerate(names)}
+    outputs = {o: numbers(numpy.asarray(values[:, k], dtype=numpy.float64)) for k, o in enumerate(outputs)}
+    doc = {"source": f"paddock_handoff from {total} training rows; outputs by {source} "
+                     f"(numpy {numpy.__version__}, Python {platform.python_version()})",
+           "rows": total, "features": features, "outputs": outputs}
+    path = f"{stem}.profile.json"
+    with open(path, "w") as f:
+        json.dump(doc, f)
+    return path
 
 
 def _toolkit(model):

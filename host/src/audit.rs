@@ -99,6 +99,9 @@ pub struct AuditReport {
     pub engine: EngineFacts,
     /// Its checks, run under those limits.
     pub probe: Option<Probe>,
+    /// What its training profile covers ("442 rows; 10 features, 1 output"),
+    /// or `None` when it carries none (drift is then unavailable).
+    pub profile: Option<String>,
     /// Everything that breaks the policy; empty means the artifact passes.
     pub violations: Vec<String>,
 }
@@ -123,6 +126,7 @@ pub fn audit(path: &Path, size_cap: u64, options: &ModelOptions, policy: &TrustP
         wasi_policy: options.wasi.clone(),
         wasi: Vec::new(),
         contract: None,
+        profile: None,
         size_cap,
         limits: options.limits.clone(),
         engine: EngineFacts {
@@ -194,6 +198,9 @@ pub fn audit(path: &Path, size_cap: u64, options: &ModelOptions, policy: &TrustP
             }
         };
     report.contract = Some(model.contract().clone());
+    report.profile = model
+        .profile()
+        .map(|p| format!("{} rows; {} features, {} outputs ({})", p.rows, p.features.len(), p.outputs.len(), p.source));
     probe(&mut report, &model);
     report
 }

@@ -69,6 +69,7 @@ pub mod atomic_file;
 pub mod audit;
 mod bindings;
 pub mod contract;
+pub mod drift;
 pub mod limits;
 #[cfg(feature = "openapi")]
 pub mod openapi;
@@ -77,8 +78,9 @@ pub mod tool_error;
 
 pub use artifact::checks::{CaseFailure, CheckReport, Checks, ChecksError, Tolerance};
 pub use artifact::digest::{Digest, DigestError};
+pub use artifact::profile::{Bins, FieldProfile, Profile, ProfileError, Summary};
 pub use artifact::trust::{Admission, TrustError, TrustPolicy, Vouch, Voucher, VouchingKey};
-pub use artifact::{Artifact, ArtifactError, DEFAULT_SIZE_CAP, pack, pack_imported};
+pub use artifact::{Artifact, ArtifactError, DEFAULT_SIZE_CAP, Parts, pack, pack_imported};
 pub use contract::rows::{ContractRule, Row, RowError, Value};
 pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};
@@ -89,7 +91,7 @@ pub use sandbox::model::{
     Estimates, Isolation, LoadError, Model, ModelOptions, OptionsError, Priming, ScoreError, Scored, Usage,
 };
 pub use sandbox::prime::PrimeState;
-pub use sandbox::verify::{PackError, Packed, Parts, pack_verified};
+pub use sandbox::verify::{PackError, Packed, pack_verified};
 pub use sandbox::wasi::WasiPolicy;
 pub use sandbox::{Allocator, Runtime, RuntimeConfig, RuntimeConfigError, RuntimeError, SandboxError};
 pub use tool_error::ToolError;

@@ -241,3 +241,48 @@ skl_trees("skl-cancer-forest-missing", forest, x)
 onx = to_onnx(forest, initial_types=[("X", FloatTensorType([None, x.shape[1]]))], options={"zipmap": False})
 with open(os.path.join(OUT, "refused-skl-forest-no-covers.onnx"), "wb") as f:
     f.write(onx.SerializeToString())
+
+# A training profile (the helper's, from every training row) and drift
+# references for tests/drift.rs: rows drawn with replacement from the same
+# diabetes data, the same with one feature moved by one standard deviation,
+# and with a feature's values missing in 30 % of the rows; per feature the
+# bin counts (numpy.searchsorted on the profile's edges) and the Population
+# Stability Index computed with NumPy from them.
+x, y, names = data(load_diabetes)
+model = lightgbm.LGBMRegressor(**LGB).fit(x, y, feature_name=names)
+profiled = hand_off(model, x[:40], os.path.join(OUT, "lgb-diabetes-profiled"), training=x)
+with open(profiled.profile) as f:
+    profile = json.load(f)
+EPS = 1e-4
+draw = numpy.random.default_rng(11)
+
+
+def numpy_drift(rows):
+    counts, index = {}, {}
+    for j, n in enumerate(names):
+        field = profile["features"][n]
+        edges = numpy.asarray(field["edges"], dtype=numpy.float64)
+        column = rows[:, j]
+        present = column[~numpy.isnan(column)]
+        c = numpy.bincount(numpy.searchsorted(edges, present, side="left"), minlength=len(edges) + 1)
+        c = numpy.append(c, len(column) - len(present))
+        live = numpy.maximum(c / c.sum(), EPS)
+        expected = numpy.maximum(numpy.asarray(field["shares"], dtype=numpy.float64), EPS)
+        counts[n] = c.tolist()
+        index[n] = float(numpy.sum((live - expected) * numpy.log(live / expected)))
+    return counts, index
+
+
+cases = []
+bootstrap = x[draw.integers(0, len(x), len(x))]
+shifted = bootstrap.copy()
+shifted[:, names.index("bmi")] += x[:, names.index("bmi")].std()
+holes = bootstrap.copy()
+holes[draw.random(len(holes)) < 0.3, names.index("s5")] = numpy.nan
+for case, rows in [("bootstrap", bootstrap), ("bmi-shifted", shifted), ("s5-holes", holes)]:
+    counts, index = numpy_drift(rows)
+    cases.append({"case": case, "rows": [[None if numpy.isnan(v) else float(v) for v in r] for r in rows],
+                  "counts": counts, "index": index})
+with open(os.path.join(OUT, "drift.json"), "w") as f:
+    json.dump({"source": f"NumPy {numpy.__version__}: bins by numpy.searchsorted, index by numpy.sum/log, "
+                         f"empty bins as {EPS}", "names": names, "cases": cases}, f)

@@ -117,6 +117,7 @@ fn text(r: &AuditReport) -> String {
             ),
         );
     }
+    line("profile", r.profile.clone().unwrap_or_else(|| "none: drift is unavailable".into()));
     if let Some(c) = &r.contract {
         out.push_str(&format!("\ncontract: {}\n", contract_text(c)));
     }

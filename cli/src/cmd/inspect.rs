@@ -4,7 +4,7 @@ use std::path::PathBuf;
 
 use anyhow::{Context, Result};
 use paddock_host::artifact::{Inventory, inspect_bytes};
-use paddock_host::{Artifact, Digest};
+use paddock_host::{Artifact, Bins, Digest, Profile};
 use paddock_import::Origin;
 use paddock_serve::surface::openapi::ContractDoc;
 use serde::Serialize;
@@ -31,6 +31,8 @@ struct Report {
     contract: Option<ContractDoc>,
     /// Where an imported model came from (`None` for one packed from WebAssembly).
     origin: Option<Origin>,
+    /// The training profile it carries, if any.
+    profile: Option<Profile>,
     load_error: Option<String>,
 }
 
@@ -39,8 +41,11 @@ pub fn run(args: Args) -> Result<Outcome> {
     let args = args.target;
     let bytes = std::fs::read(&args.artifact).with_context(|| format!("reading {}", args.artifact.display()))?;
     let inventory = inspect_bytes(&bytes).with_context(|| format!("in {}", args.artifact.display()))?;
-    let origin = Artifact::from_bytes(bytes.clone(), u64::MAX)
-        .and_then(|a| a.origin())
+    let artifact =
+        Artifact::from_bytes(bytes.clone(), u64::MAX).with_context(|| format!("in {}", args.artifact.display()))?;
+    let profile = artifact.profile().with_context(|| format!("in {}", args.artifact.display()))?;
+    let origin = artifact
+        .origin()
         .with_context(|| format!("in {}", args.artifact.display()))?
         .map(Origin::from_map)
         .transpose()
@@ -56,6 +61,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         inventory,
         contract: contract.as_ref().map(ContractDoc::from),
         origin,
+        profile,
         load_error,
     };
     if args.json {
@@ -92,5 +98,41 @@ pub fn run(args: Args) -> Result<Outcome> {
             outln!("    {:width$}  {}", s.part, s.from)?;
         }
     }
+    if let Some(p) = &report.profile {
+        print_profile(p)?;
+    }
     Ok(Outcome::Ok)
+}
+
+/// A number to four significant digits.
+fn short(v: f64) -> String {
+    if v == 0.0 || !v.is_finite() {
+        return v.to_string();
+    }
+    let digits = 3 - v.abs().log10().floor() as i32;
+    if (0..=8).contains(&digits) { format!("{v:.0$}", digits as usize) } else { format!("{v:.3e}") }
+}
+
+/// The training profile, a line per field: its bins, missing share and summary.
+fn print_profile(p: &Profile) -> Result<()> {
+    outln!(
+        "
+training profile: {} rows ({})",
+        p.rows,
+        p.source
+    )?;
+    let width = p.features.keys().chain(p.outputs.keys()).map(|n| n.chars().count()).max().unwrap_or(0);
+    for (kind, fields) in [("feature", &p.features), ("output", &p.outputs)] {
+        for (name, f) in fields {
+            let bins = match &f.bins {
+                Bins::Edges(e) => format!("{} bins", e.len() + 1),
+                Bins::Labels(l) => format!("{} labels", l.len()),
+            };
+            let summary = f.summary.map_or(String::new(), |s| {
+                format!(", {} to {}, mean {} sd {}", short(s.min), short(s.max), short(s.mean), short(s.sd))
+            });
+            outln!("  {kind:7} {name:width$}  {bins}, {:.1} % missing{summary}", f.missing_share() * 100.0)?;
+        }
+    }
+    Ok(())
 }

@@ -3,7 +3,7 @@
 use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result};
-use paddock_host::{Checks, PackError, Parts, pack_verified};
+use paddock_host::{Checks, PackError, Parts, Profile, pack_verified};
 use paddock_import::{Format, InputKind, Overrides, onnx_graph};
 
 use crate::Outcome;
@@ -52,6 +52,10 @@ pub struct Args {
     /// Checks to carry (JSON: example rows with recorded outputs).
     #[arg(long, value_name = "FILE")]
     checks: Option<PathBuf>,
+    /// A training profile to carry (JSON the notebook helper writes: how
+    /// the training rows were spread), for drift reports.
+    #[arg(long, value_name = "FILE")]
+    profile: Option<PathBuf>,
     /// Where to write the artifact.
     #[arg(long, short, value_name = "FILE")]
     out: PathBuf,
@@ -109,16 +113,26 @@ pub fn run(args: Args) -> Result<Outcome> {
         Some(p) => Some(Checks::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
         None => None,
     };
-    let (wasm, params, origin, checks) = match kind {
-        InputKind::Toolkit(format) => imported(&args, &input, &file, format, checks)?,
+    let profile = match &args.profile {
+        Some(p) => Some(Profile::from_json(&read(p)?).with_context(|| format!("in {}", p.display()))?),
+        None => None,
+    };
+    let (wasm, params, origin, (checks, profile)) = match kind {
+        InputKind::Toolkit(format) => imported(&args, &input, &file, format, (checks, profile))?,
         InputKind::OnnxGraph => {
             let (guest, params) = graph(&args, &input, &file)?;
-            (guest, Some(params), None, checks)
+            (guest, Some(params), None, (checks, profile))
         }
-        InputKind::WebAssembly => (input, args.params.as_deref().map(read).transpose()?, None, checks),
+        InputKind::WebAssembly => (input, args.params.as_deref().map(read).transpose()?, None, (checks, profile)),
         _ => anyhow::bail!("{file}: {} is not packed by this version", kind.described()),
     };
-    let parts = Parts { wasm: &wasm, params: params.as_deref(), checks: checks.as_ref(), origin: origin.as_ref() };
+    let parts = Parts {
+        wasm: &wasm,
+        params: params.as_deref(),
+        checks: checks.as_ref(),
+        origin: origin.as_ref(),
+        profile: profile.as_ref(),
+    };
     let load = LoadArgs { wasi: args.wasi.clone(), ..LoadArgs::default() };
     let runtime = if args.no_verify { None } else { Some(load.runtime()?) };
     let packed =
@@ -134,8 +148,12 @@ pub fn run(args: Args) -> Result<Outcome> {
     Ok(Outcome::Ok)
 }
 
-/// What goes into the artifact: the guest, its params, the importer's origin record, the checks.
-type Pieces = (Vec<u8>, Option<Vec<u8>>, Option<serde_json::Map<String, serde_json::Value>>, Option<Checks>);
+/// What goes into the artifact: the guest, its params, the importer's origin record, the checks
+/// and the profile.
+type Pieces = (Vec<u8>, Option<Vec<u8>>, Option<serde_json::Map<String, serde_json::Value>>, Carried);
+
+/// The checks and the training profile an artifact carries.
+type Carried = (Option<Checks>, Option<Profile>);
 
 /// Refuses the flags that do not belong to this kind of input, saying which kind takes them.
 fn refuse_flags(args: &Args, kind: InputKind, file: &str) -> Result<()> {
@@ -160,8 +178,9 @@ fn refuse_flags(args: &Args, kind: InputKind, file: &str) -> Result<()> {
 }
 
 /// A toolkit's model file imported with the overrides (and `--name`, `--version`), its checks
-/// renamed as the overrides rename the contract (the origin says so), on the guest it needs.
-fn imported(args: &Args, input: &[u8], file: &str, format: Format, checks: Option<Checks>) -> Result<Pieces> {
+/// and profile renamed as the overrides rename the contract (the origin says so), on the guest it
+/// needs.
+fn imported(args: &Args, input: &[u8], file: &str, format: Format, (checks, profile): Carried) -> Result<Pieces> {
     let mut overrides = match &args.overrides {
         Some(p) => Overrides::from_toml(&read_text(p)?).with_context(|| format!("in {}", p.display()))?,
         None => Overrides::default(),
@@ -170,10 +189,10 @@ fn imported(args: &Args, input: &[u8], file: &str, format: Format, checks: Optio
     overrides.version = args.model_version.clone().or(overrides.version);
     let mut imported = paddock_import::import(input, format, file, Some(&overrides))?;
     let (features, outputs) = (overrides.feature_renames(), overrides.output_renames());
-    if checks.is_some() && !(features.is_empty() && outputs.is_empty()) {
+    if (checks.is_some() || profile.is_some()) && !(features.is_empty() && outputs.is_empty()) {
         let pairs: Vec<String> = features.iter().chain(&outputs).map(|(a, b)| format!("{a} → {b}")).collect();
         imported.origin.contract.push(paddock_import::Provenance {
-            part: "checks".into(),
+            part: "checks and profile".into(),
             from: format!(
                 "recorded with the file's names, renamed as the overrides rename them ({})",
                 pairs.join(", ")
@@ -181,8 +200,9 @@ fn imported(args: &Args, input: &[u8], file: &str, format: Format, checks: Optio
         });
     }
     let checks = checks.map(|c| c.renamed(&features, &outputs));
+    let profile = profile.map(|p| p.renamed(&features, &outputs));
     let guest = evaluator(args, &Path::new(GUESTS).join(format!("{}.wasm", imported.guest())), imported.guest())?;
-    Ok((guest, Some(imported.params()), Some(imported.origin.to_map()), checks))
+    Ok((guest, Some(imported.params()), Some(imported.origin.to_map()), (checks, profile)))
 }
 
 /// An ONNX graph framed with its manifest (`--name` and `--version` over the manifest's), on the

@@ -7,6 +7,7 @@
 
 pub mod checks;
 pub mod digest;
+pub mod profile;
 pub mod trust;
 
 use std::fmt;
@@ -20,6 +21,7 @@ use serde::Serialize;
 use wasmparser::{ComponentTypeRef, Encoding, Parser, Payload, TypeBounds};
 
 use crate::artifact::checks::{Checks, ChecksError};
+use crate::artifact::profile::{Profile, ProfileError};
 use crate::limits::LimitHit;
 
 /// The size cap [`Artifact::read`] and [`Artifact::from_bytes`] are given
@@ -35,6 +37,9 @@ pub const CHECKS_SECTION: &str = "paddock-checks";
 /// (a JSON object an importer writes: the toolkit, its file, and where each
 /// part of the contract came from).
 pub const ORIGIN_SECTION: &str = "paddock-origin";
+/// Name of the custom section that carries the training profile (JSON, see
+/// [`Profile`]).
+pub const PROFILE_SECTION: &str = "paddock-profile";
 /// Every section name this crate owns starts with this.
 const OWN_PREFIX: &str = "paddock-";
 
@@ -93,6 +98,9 @@ pub enum ArtifactError {
     /// The origin section is not a JSON object.
     #[error("custom section `{ORIGIN_SECTION}` is not a JSON object: {0}")]
     Origin(serde_json::Error),
+    /// The profile section does not parse.
+    #[error("custom section `{PROFILE_SECTION}`: {0}")]
+    Profile(#[from] ProfileError),
 }
 
 /// A top-level custom section: its name and size.
@@ -112,6 +120,7 @@ pub struct Artifact {
     params: Option<Range<usize>>,
     checks: Option<Range<usize>>,
     origin: Option<Range<usize>>,
+    profile: Option<Range<usize>>,
     sections: Vec<SectionInfo>,
     imports: Vec<String>,
     exports: Vec<String>,
@@ -167,11 +176,13 @@ impl Artifact {
         let mut params = None;
         let mut checks = None;
         let mut origin = None;
+        let mut profile = None;
         for (name, range) in &shape.custom {
             let slot = match name.as_str() {
                 PARAMS_SECTION => &mut params,
                 CHECKS_SECTION => &mut checks,
                 ORIGIN_SECTION => &mut origin,
+                PROFILE_SECTION => &mut profile,
                 other if other.starts_with(OWN_PREFIX) => {
                     return Err(ArtifactError::UnknownSection { name: other.to_owned() });
                 }
@@ -191,6 +202,7 @@ impl Artifact {
             params,
             checks,
             origin,
+            profile,
             sections,
             imports: shape.imports,
             exports: shape.exports,
@@ -223,6 +235,15 @@ impl Artifact {
     /// Whether the artifact has a checks section (without parsing it).
     pub fn carries_checks(&self) -> bool {
         self.checks.is_some()
+    }
+
+    /// The training profile the artifact carries, if any (checked against
+    /// the contract when the model loads).
+    ///
+    /// # Errors
+    /// [`ArtifactError::Profile`] when the section does not parse.
+    pub fn profile(&self) -> Result<Option<Profile>, ArtifactError> {
+        Ok(self.profile.clone().map(|r| Profile::from_json(&self.bytes[r])).transpose()?)
     }
 
     /// Where an imported model came from, as its importer recorded it.
@@ -432,6 +453,21 @@ pub fn inspect_bytes(bytes: &[u8]) -> Result<Inventory, ArtifactError> {
 /// The contract every model implements, as WIT text.
 pub const WIT: &str = include_str!("../../../wit/estimator.wit");
 
+/// What goes into an artifact (see [`pack_imported`]).
+#[derive(Clone, Copy, Debug, Default)]
+pub struct Parts<'a> {
+    /// A component, a core module built for `wasm32-unknown-unknown`, or WebAssembly text.
+    pub wasm: &'a [u8],
+    /// The parameter blob the model decodes in `init`.
+    pub params: Option<&'a [u8]>,
+    /// The checks it carries.
+    pub checks: Option<&'a Checks>,
+    /// An importer's record of where the model came from.
+    pub origin: Option<&'a serde_json::Map<String, serde_json::Value>>,
+    /// The training profile it carries.
+    pub profile: Option<&'a Profile>,
+}
+
 /// Makes an artifact: takes a component as it is, or turns a core module
 /// built for `wasm32-unknown-unknown` into a component (embedding the
 /// `estimator` world first when the module does not carry its own component
@@ -444,20 +480,17 @@ pub const WIT: &str = include_str!("../../../wit/estimator.wit");
 /// bad input, [`ArtifactError::Componentize`] when the module's exports do
 /// not fit the world or it does not validate.
 pub fn pack(wasm: &[u8], params: Option<&[u8]>, checks: Option<&Checks>) -> Result<Vec<u8>, ArtifactError> {
-    pack_imported(wasm, params, checks, None)
+    pack_imported(Parts { wasm, params, checks, ..Parts::default() })
 }
 
-/// As [`pack`], also carrying an importer's record of where the model came
-/// from (see [`ORIGIN_SECTION`]; `paddock inspect` shows it).
+/// As [`pack`], with every part an artifact may carry: also an importer's
+/// record of where the model came from (see [`ORIGIN_SECTION`]; `paddock
+/// inspect` shows it) and a training profile ([`PROFILE_SECTION`]).
 ///
 /// # Errors
 /// As [`pack`].
-pub fn pack_imported(
-    wasm: &[u8],
-    params: Option<&[u8]>,
-    checks: Option<&Checks>,
-    origin: Option<&serde_json::Map<String, serde_json::Value>>,
-) -> Result<Vec<u8>, ArtifactError> {
+pub fn pack_imported(parts: Parts<'_>) -> Result<Vec<u8>, ArtifactError> {
+    let Parts { wasm, params, checks, origin, profile } = parts;
     let binary;
     let wasm = if wasm.starts_with(b"\0asm") {
         wasm
@@ -492,6 +525,9 @@ pub fn pack_imported(
     if let Some(origin) = origin {
         let json = serde_json::to_vec(origin).expect("a JSON map serializes");
         append_custom(&mut out, ORIGIN_SECTION, &json);
+    }
+    if let Some(profile) = profile {
+        append_custom(&mut out, PROFILE_SECTION, &profile.to_json());
     }
     Ok(out)
 }

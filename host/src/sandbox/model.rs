@@ -6,6 +6,7 @@ use std::time::Duration;
 
 use crate::artifact::checks::{CaseFailure, CheckReport, Checks};
 use crate::artifact::digest::Digest;
+use crate::artifact::profile::Profile;
 use crate::artifact::{Artifact, ArtifactError};
 use crate::bindings::EstimatorPre;
 use crate::contract::rows::{Row, RowError};
@@ -154,6 +155,10 @@ pub enum LoadError {
     /// The checks section the artifact carries cannot be read.
     #[error("the checks the artifact carries cannot be read: {0}")]
     ChecksUnreadable(ArtifactError),
+    /// The training profile the artifact carries does not parse, or does
+    /// not fit the model's contract (the field named).
+    #[error("the training profile the artifact carries: {0}")]
+    Profile(ArtifactError),
     /// The checks the artifact carries could not be scored at all (a trap
     /// or a limit hit).
     #[error("the checks the artifact carries could not run: {0}")]
@@ -425,6 +430,8 @@ struct Inner {
     who: Arc<str>,
     /// The report of the carried checks run at load, when they were.
     checks: std::sync::OnceLock<CheckReport>,
+    /// The training profile the artifact carries, checked against the contract.
+    profile: Option<Profile>,
 }
 
 impl std::fmt::Debug for Model {
@@ -528,6 +535,10 @@ impl Model {
             true => None,
             false => artifact.checks().map_err(LoadError::ChecksUnreadable)?,
         };
+        let profile = artifact.profile().map_err(LoadError::Profile)?;
+        if let Some(p) = &profile {
+            p.check(schema.contract()).map_err(|e| LoadError::Profile(e.into()))?;
+        }
         let model = Model {
             inner: Arc::new(Inner {
                 who,
@@ -541,6 +552,7 @@ impl Model {
                 wasi,
                 idle,
                 checks: std::sync::OnceLock::new(),
+                profile,
             }),
         };
         if let Some(checks) = carried {
@@ -552,6 +564,13 @@ impl Model {
             let _ = model.inner.checks.set(report);
         }
         Ok(model)
+    }
+
+    /// The training profile the artifact carries, checked against the
+    /// contract at load; `None` when it carries none (drift is then
+    /// unavailable, not zero).
+    pub fn profile(&self) -> Option<&Profile> {
+        self.inner.profile.as_ref()
     }
 
     /// The report of the checks the artifact carries, run when it was

@@ -7,23 +7,10 @@ use std::path::{Path, PathBuf};
 
 use serde::Serialize;
 
-use crate::artifact::checks::{CheckReport, Checks};
-use crate::artifact::{Artifact, ArtifactError, pack_imported};
+use crate::artifact::checks::CheckReport;
+use crate::artifact::{Artifact, ArtifactError, Parts, pack_imported};
 use crate::sandbox::Runtime;
 use crate::sandbox::model::{LoadError, Model, ModelOptions, ScoreError};
-
-/// What goes into an artifact (see [`pack_imported`]).
-#[derive(Clone, Copy, Debug, Default)]
-pub struct Parts<'a> {
-    /// A component, a core module built for `wasm32-unknown-unknown`, or WebAssembly text.
-    pub wasm: &'a [u8],
-    /// The parameter blob the model decodes in `init`.
-    pub params: Option<&'a [u8]>,
-    /// The checks it carries.
-    pub checks: Option<&'a Checks>,
-    /// An importer's record of where the model came from.
-    pub origin: Option<&'a serde_json::Map<String, serde_json::Value>>,
-}
 
 /// What [`pack_verified`] wrote and found.
 #[derive(Clone, Debug, PartialEq, Serialize)]
@@ -98,7 +85,7 @@ pub fn pack_verified(
     parts: Parts<'_>,
     verify: Option<(&Runtime, ModelOptions)>,
 ) -> Result<Packed, PackError> {
-    let bytes = pack_imported(parts.wasm, parts.params, parts.checks, parts.origin).map_err(PackError::Pack)?;
+    let bytes = pack_imported(parts).map_err(PackError::Pack)?;
     let artifact = Artifact::from_bytes(bytes, u64::MAX).map_err(PackError::Pack)?;
     let mut packed = Packed {
         artifact: out.to_owned(),
