@@ -825,3 +825,79 @@ fn bin_counts_and_stability_indexes_are_numpys() {
         }
     }
 }
+
+/// A host counts what it scores against the profile: rows drawn with
+/// replacement from the training data stay steady on every feature; the
+/// same rows with `bmi` moved by one standard deviation make `bmi` call for
+/// action and nothing else; with `s5` missing in 30 % of the rows, `s5`
+/// calls for action and the missing values are named. The live counts are
+/// NumPy's (tests/imports/export.py), so the indexes are too, to 1e-12.
+#[test]
+fn scored_rows_are_counted_against_the_profile() {
+    let runtime = Runtime::new().unwrap();
+    let (_, _, profile) = profiled();
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(dir().join("drift.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    for case in doc["cases"].as_array().unwrap() {
+        let name = case["case"].as_str().unwrap();
+        let model = pack_with_profile(&runtime, &profile).unwrap();
+        let report = model.drift().expect("a profile, counting on");
+        assert!(report.fields.iter().all(|f| f.count == 0 && f.level == paddock_host::DriftLevel::TooFew));
+        let rows: Vec<Vec<Option<f64>>> = serde_json::from_value(case["rows"].clone()).unwrap();
+        let rows: Vec<paddock_host::Row> =
+            rows.iter().map(|r| names.iter().zip(r).filter_map(|(n, v)| v.map(|v| (n.clone(), v))).collect()).collect();
+        for chunk in rows.chunks(64) {
+            model.score(chunk).unwrap();
+        }
+        let report = model.drift().unwrap();
+        for f in report.fields.iter().filter(|f| f.kind == "feature") {
+            let numpy = case["index"][&f.name].as_f64().unwrap();
+            let index = f.index.unwrap();
+            assert!((index - numpy).abs() <= 1e-12, "{name} {}: {index} against NumPy's {numpy}", f.name);
+            let moved = (name == "bmi-shifted" && f.name == "bmi") || (name == "s5-holes" && f.name == "s5");
+            let want = if moved { paddock_host::DriftLevel::Act } else { paddock_host::DriftLevel::Steady };
+            assert_eq!(f.level, want, "{name} {}: index {index}", f.name);
+            let named = f.notes.iter().any(|n| n.starts_with("missing values: "));
+            assert_eq!(named, name == "s5-holes" && f.name == "s5", "{name} {}: {:?}", f.name, f.notes);
+        }
+        let output = report.fields.iter().find(|f| f.kind == "output").unwrap();
+        assert_eq!(output.count, rows.len() as u64, "{name}: every prediction counted");
+    }
+}
+
+/// A label the training rows never had is named on its own: a profile
+/// whose `sex` saw only `sex_hi`, and live rows (the pandas case's checks)
+/// with `sex_lo` too, which the contract allows.
+#[test]
+fn labels_never_seen_in_training_are_named() {
+    let runtime = Runtime::new().unwrap();
+    let (path, bytes, checks) = case("lgb-diabetes-pandas");
+    let imported = import(&bytes, Format::LightgbmText, &path.display().to_string(), None).unwrap();
+    let field = paddock_host::FieldProfile {
+        bins: paddock_host::Bins::Labels(vec!["sex_hi".into()]),
+        shares: vec![1.0, 0.0, 0.0],
+        summary: None,
+    };
+    let profile = paddock_host::Profile {
+        source: "by hand: training saw one label".into(),
+        rows: 1,
+        features: [("sex".to_owned(), field)].into(),
+        outputs: Default::default(),
+    };
+    let wasm = guest(imported.guest());
+    let params = imported.params();
+    let parts =
+        paddock_host::Parts { wasm: &wasm, params: Some(&params), profile: Some(&profile), ..Default::default() };
+    let artifact = paddock_host::Artifact::from_bytes(paddock_host::pack_imported(parts).unwrap(), u64::MAX).unwrap();
+    let model = Model::load_with(&runtime, artifact, unhurried()).unwrap();
+    let rows: Vec<paddock_host::Row> = checks.cases.iter().map(|c| c.row.clone()).collect();
+    model.score(&rows).unwrap();
+    let sex = model.drift().unwrap().fields.into_iter().find(|f| f.name == "sex").unwrap();
+    let lo = rows
+        .iter()
+        .filter(|r| r.fields().iter().any(|(n, v)| n == "sex" && *v == paddock_host::Value::Label("sex_lo".into())))
+        .count();
+    let share = lo as f64 / rows.len() as f64 * 100.0;
+    assert!(lo > 0, "the rows have sex_lo");
+    assert_eq!(sex.notes, vec![format!("labels never seen in training: {share:.1} % of live values")]);
+}

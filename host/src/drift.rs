@@ -10,8 +10,87 @@
 //! changed, not that the model is wrong, and a low one does not prove it
 //! right.
 
+use std::sync::atomic::{AtomicU64, Ordering};
+use std::time::Duration;
+
+use serde::{Deserialize, Serialize};
+
+use crate::artifact::profile::{Bins, FieldProfile, Profile};
+use crate::contract::{Contract, Domain};
+
 /// The share an empty bin counts as, on either side.
 pub const EMPTY_BIN_SHARE: f64 = 1e-4;
+
+/// How live values are counted and judged: over a sliding window of
+/// `length`, kept as `slices` consecutive slices (the oldest dropped as a
+/// new one starts); an index is given once a field has `min_count` live
+/// values in the window; `watch` and `act` are the index's thresholds.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct DriftWindow {
+    /// How far back live values count.
+    pub length: Duration,
+    /// Slices the window is kept in (its resolution).
+    pub slices: u32,
+    /// Live values a field needs in the window before it gets an index.
+    pub min_count: u64,
+    /// The index from which a field is worth watching (0.1 by default: common practice).
+    pub watch: f64,
+    /// The index from which a field calls for action (0.25 by default: common practice).
+    pub act: f64,
+}
+
+impl Default for DriftWindow {
+    fn default() -> Self {
+        DriftWindow { length: Duration::from_secs(3600), slices: 12, min_count: 200, watch: 0.1, act: 0.25 }
+    }
+}
+
+/// How far a field has moved.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum DriftLevel {
+    /// Fewer live values than the window's `min_count`: no index yet.
+    TooFew,
+    /// Below the `watch` threshold.
+    Steady,
+    /// From `watch` up to `act`.
+    Watch,
+    /// From `act` up.
+    Act,
+}
+
+/// One field's live spread against its training profile.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct FieldDrift {
+    /// `feature` or `output`.
+    pub kind: &'static str,
+    /// Its name in the contract.
+    pub name: String,
+    /// Live values counted in the window.
+    pub count: u64,
+    /// The stability index, once there are enough live values.
+    pub index: Option<f64>,
+    /// What the index says, against the window's thresholds.
+    pub level: DriftLevel,
+    /// The bins' names, in order: `≤ edge`, `> edge`, a label, `unseen labels`, `missing`.
+    pub bins: Vec<String>,
+    /// Each bin's share of the training rows.
+    pub expected: Vec<f64>,
+    /// Each bin's share of the live values.
+    pub live: Vec<f64>,
+    /// Moves worth naming on their own: missing values far more common
+    /// than in training, labels never seen in training.
+    pub notes: Vec<String>,
+}
+
+/// A served model's inputs and outputs against its training profile.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct DriftReport {
+    /// How far back the counts go.
+    pub window: Duration,
+    /// Per profiled feature (contract order), then per profiled output.
+    pub fields: Vec<FieldDrift>,
+}
 
 /// The Population Stability Index of live bin counts against the expected
 /// shares of the same bins, or `None` when there are no live values (or
@@ -34,6 +113,215 @@ pub fn stability_index(expected: &[f64], live: &[u64]) -> Option<f64> {
     )
 }
 
+/// One profiled field as the counters see it.
+#[derive(Debug)]
+struct Watched {
+    kind: &'static str,
+    name: String,
+    /// Its column among the features (or the outputs).
+    column: usize,
+    profile: FieldProfile,
+    /// Where its bins start among each slice's counters.
+    offset: usize,
+    /// For a label feature: each contract label's bin.
+    labels: Option<Vec<usize>>,
+}
+
+impl Watched {
+    fn bin(&self, value: f64) -> usize {
+        match &self.labels {
+            Some(bins) if !value.is_nan() => bins.get(value as usize).copied().unwrap_or(bins.len()),
+            _ => self.profile.bin_of(value),
+        }
+    }
+}
+
+/// One slice of the window: which slice of time it holds, and its counts.
+#[derive(Debug)]
+struct Slice {
+    epoch: AtomicU64,
+    counts: Box<[AtomicU64]>,
+}
+
+/// Live counts of a model's values in its profile's bins over a sliding
+/// window. Counting takes relaxed atomic additions only: scoring threads
+/// never wait on each other. A slice is cleared by the first call that
+/// finds it holding an older slice of time; a count added by another
+/// thread during that clearing may be lost (a few values in a window).
+#[derive(Debug)]
+pub struct DriftWatch {
+    window: DriftWindow,
+    fields: Vec<Watched>,
+    bins: usize,
+    slices: Box<[Slice]>,
+    started: quanta::Instant,
+}
+
+impl DriftWatch {
+    /// Counters for `profile`'s fields of a model with `contract` (the
+    /// profile already checked against it, see [`Profile::check`]).
+    pub fn new(profile: &Profile, contract: &Contract, window: DriftWindow) -> DriftWatch {
+        let mut fields = Vec::new();
+        let mut bins = 0;
+        for (column, feature) in contract.features.iter().enumerate() {
+            let Some(profile) = profile.features.get(&feature.name) else { continue };
+            let labels = match (&feature.domain, &profile.bins) {
+                (Domain::Label(contract_labels), Bins::Labels(_)) => {
+                    Some(contract_labels.iter().map(|l| profile.bin_of_label(Some(l))).collect())
+                }
+                _ => None,
+            };
+            let offset = bins;
+            bins += profile.bin_count();
+            fields.push(Watched {
+                kind: "feature",
+                name: feature.name.clone(),
+                column,
+                profile: profile.clone(),
+                offset,
+                labels,
+            });
+        }
+        for (column, output) in contract.outputs.iter().enumerate() {
+            let Some(profile) = profile.outputs.get(&output.name) else { continue };
+            let offset = bins;
+            bins += profile.bin_count();
+            fields.push(Watched {
+                kind: "output",
+                name: output.name.clone(),
+                column,
+                profile: profile.clone(),
+                offset,
+                labels: None,
+            });
+        }
+        let slices = (0..window.slices.max(1))
+            .map(|_| Slice { epoch: AtomicU64::new(u64::MAX), counts: (0..bins).map(|_| AtomicU64::new(0)).collect() })
+            .collect();
+        DriftWatch { window, fields, bins, slices, started: quanta::Instant::now() }
+    }
+
+    /// The window it counts over.
+    pub fn window(&self) -> &DriftWindow {
+        &self.window
+    }
+
+    fn slice_length(&self) -> u64 {
+        (self.window.length.as_nanos() as u64 / u64::from(self.window.slices.max(1))).max(1)
+    }
+
+    fn epoch_now(&self) -> u64 {
+        self.started.elapsed().as_nanos() as u64 / self.slice_length()
+    }
+
+    /// Counts one call's rows: `cells` (rows × features, as the contract
+    /// encodes them) and `values` (rows × outputs).
+    pub fn record(&self, rows: usize, cells: &[f64], values: &[f64]) {
+        self.record_at(self.epoch_now(), rows, cells, values);
+    }
+
+    fn record_at(&self, epoch: u64, rows: usize, cells: &[f64], values: &[f64]) {
+        if self.fields.is_empty() || rows == 0 {
+            return;
+        }
+        let slice = &self.slices[(epoch % self.slices.len() as u64) as usize];
+        let seen = slice.epoch.load(Ordering::Acquire);
+        if seen != epoch && slice.epoch.compare_exchange(seen, epoch, Ordering::AcqRel, Ordering::Acquire).is_ok() {
+            slice.counts.iter().for_each(|c| c.store(0, Ordering::Relaxed));
+        }
+        let (width, outputs) = (cells.len() / rows, values.len() / rows);
+        // One call's counts gathered first, then one addition per bin used.
+        let mut local = vec![0u32; self.bins];
+        for r in 0..rows {
+            for f in &self.fields {
+                let v = if f.kind == "feature" { cells[r * width + f.column] } else { values[r * outputs + f.column] };
+                local[f.offset + f.bin(v)] += 1;
+            }
+        }
+        for (c, n) in slice.counts.iter().zip(local) {
+            if n > 0 {
+                c.fetch_add(u64::from(n), Ordering::Relaxed);
+            }
+        }
+    }
+
+    /// The window's counts against the profile, field by field.
+    pub fn report(&self) -> DriftReport {
+        self.report_at(self.epoch_now())
+    }
+
+    fn report_at(&self, epoch: u64) -> DriftReport {
+        let oldest = epoch.saturating_sub(self.slices.len() as u64 - 1);
+        let mut totals = vec![0u64; self.bins];
+        for slice in self.slices.iter() {
+            let e = slice.epoch.load(Ordering::Acquire);
+            if e != u64::MAX && e >= oldest && e <= epoch {
+                totals.iter_mut().zip(slice.counts.iter()).for_each(|(t, c)| *t += c.load(Ordering::Relaxed));
+            }
+        }
+        let fields =
+            self.fields.iter().map(|f| self.judge(f, &totals[f.offset..f.offset + f.profile.bin_count()])).collect();
+        DriftReport { window: self.window.length, fields }
+    }
+
+    fn judge(&self, f: &Watched, counts: &[u64]) -> FieldDrift {
+        let count: u64 = counts.iter().sum();
+        let live: Vec<f64> = counts.iter().map(|&n| if count == 0 { 0.0 } else { n as f64 / count as f64 }).collect();
+        let index = (count >= self.window.min_count).then(|| stability_index(&f.profile.shares, counts)).flatten();
+        let level = match index {
+            None => DriftLevel::TooFew,
+            Some(i) if i >= self.window.act => DriftLevel::Act,
+            Some(i) if i >= self.window.watch => DriftLevel::Watch,
+            Some(_) => DriftLevel::Steady,
+        };
+        let mut notes = Vec::new();
+        let missing = f.profile.missing_bin();
+        let (trained, now) = (f.profile.shares[missing], live[missing]);
+        // Worth naming: missing values at least twice as common as in
+        // training and 5 points more (a source failing over to absent).
+        if count > 0 && now >= 2.0 * trained && now - trained >= 0.05 {
+            notes.push(format!(
+                "missing values: {:.1} % live against {:.1} % in training",
+                now * 100.0,
+                trained * 100.0
+            ));
+        }
+        if let Bins::Labels(labels) = &f.profile.bins {
+            let unseen = live[labels.len()];
+            if unseen > 0.0 {
+                notes.push(format!("labels never seen in training: {:.1} % of live values", unseen * 100.0));
+            }
+        }
+        FieldDrift {
+            kind: f.kind,
+            name: f.name.clone(),
+            count,
+            index,
+            level,
+            bins: bin_names(&f.profile),
+            expected: f.profile.shares.clone(),
+            live,
+            notes,
+        }
+    }
+}
+
+/// Each bin's name: `≤ edge` (then `> edge` for the last), each label,
+/// `unseen labels`, `missing`.
+fn bin_names(profile: &FieldProfile) -> Vec<String> {
+    let mut names: Vec<String> = match &profile.bins {
+        Bins::Edges(edges) if edges.is_empty() => vec!["any".into()],
+        Bins::Edges(edges) => {
+            let mut n: Vec<String> = edges.iter().map(|e| format!("≤ {e}")).collect();
+            n.push(format!("> {}", edges[edges.len() - 1]));
+            n
+        }
+        Bins::Labels(labels) => labels.iter().cloned().chain(["unseen labels".to_owned()]).collect(),
+    };
+    names.push("missing".into());
+    names
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -45,5 +333,49 @@ mod tests {
         let moved = stability_index(&[0.25, 0.75], &[75, 25]).unwrap();
         assert!((moved - 3f64.ln()).abs() < 1e-15, "{moved}");
         assert_eq!(stability_index(&[0.5, 0.5], &[0, 0]), None);
+    }
+
+    fn watch() -> DriftWatch {
+        let field = FieldProfile { bins: Bins::Edges(vec![0.0]), shares: vec![0.5, 0.5, 0.0], summary: None };
+        let profile = Profile {
+            source: "test".into(),
+            rows: 2,
+            features: [("x".to_owned(), field)].into(),
+            outputs: Default::default(),
+        };
+        let contract = Contract {
+            name: "m".into(),
+            version: "1.0.0".into(),
+            about: String::new(),
+            features: vec![crate::contract::Feature {
+                name: "x".into(),
+                about: String::new(),
+                domain: Domain::Real(crate::contract::Bounds { min: None, max: None }),
+                unit: None,
+                required: false,
+            }],
+            outputs: vec![],
+        };
+        DriftWatch::new(&profile, &contract, DriftWindow { slices: 3, min_count: 4, ..DriftWindow::default() })
+    }
+
+    /// Slices of time come and go: counts older than the window drop out,
+    /// a slice reused for a later time starts from zero.
+    #[test]
+    fn counts_leave_the_window_slice_by_slice() {
+        let w = watch();
+        w.record_at(0, 4, &[-1.0, -1.0, 1.0, f64::NAN], &[]);
+        let r = w.report_at(0);
+        assert_eq!(r.fields[0].live, vec![0.5, 0.25, 0.25]);
+        assert_eq!(r.fields[0].notes, vec!["missing values: 25.0 % live against 0.0 % in training"]);
+        w.record_at(2, 4, &[1.0; 4], &[]);
+        assert_eq!(w.report_at(2).fields[0].count, 8);
+        // At slice 3, slice 0 has left the window (3 slices: 1, 2, 3).
+        assert_eq!(w.report_at(3).fields[0].count, 4);
+        // Slice 3 reuses slice 0's counters: they start from zero.
+        w.record_at(3, 4, &[-1.0; 4], &[]);
+        let r = w.report_at(3);
+        assert_eq!((r.fields[0].count, r.fields[0].live.clone()), (8, vec![0.5, 0.5, 0.0]));
+        assert_eq!((r.fields[0].index, r.fields[0].level), (Some(0.0), DriftLevel::Steady));
     }
 }

@@ -12,6 +12,7 @@ use crate::bindings::EstimatorPre;
 use crate::contract::rows::{Row, RowError};
 use crate::contract::schema::{OutputFault, Schema};
 use crate::contract::{Contract, ContractError, Fault};
+use crate::drift::{DriftReport, DriftWatch, DriftWindow};
 use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::sandbox::codecache::{self, CodeCache, CodeSource};
 use crate::sandbox::explain::{ExplainError, Explanation};
@@ -39,7 +40,7 @@ pub enum Isolation {
 }
 
 /// How to load a model.
-#[derive(Clone, Debug, Default, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize)]
 pub struct ModelOptions {
     /// The limits that bind it.
     pub limits: Limits,
@@ -57,6 +58,24 @@ pub struct ModelOptions {
     /// never scores. Skip them only where something else runs them (and
     /// reports each case), as the audit does.
     pub skip_carried_checks: bool,
+    /// Count live values against the training profile the artifact
+    /// carries, over this window ([`Model::drift`]); `None` counts nothing.
+    /// On by default (a default [`DriftWindow`]); an artifact without a profile
+    /// counts nothing either way.
+    pub drift: Option<DriftWindow>,
+}
+
+impl Default for ModelOptions {
+    fn default() -> Self {
+        ModelOptions {
+            limits: Limits::default(),
+            isolation: Isolation::default(),
+            wasi: None,
+            priming: Priming::default(),
+            skip_carried_checks: false,
+            drift: Some(DriftWindow::default()),
+        }
+    }
 }
 
 /// When to prime a model: snapshot it after `init(params)` at load so new
@@ -432,6 +451,8 @@ struct Inner {
     checks: std::sync::OnceLock<CheckReport>,
     /// The training profile the artifact carries, checked against the contract.
     profile: Option<Profile>,
+    /// Live counts against the profile, once the carried checks have run.
+    watch: std::sync::OnceLock<DriftWatch>,
 }
 
 impl std::fmt::Debug for Model {
@@ -553,6 +574,7 @@ impl Model {
                 idle,
                 checks: std::sync::OnceLock::new(),
                 profile,
+                watch: std::sync::OnceLock::new(),
             }),
         };
         if let Some(checks) = carried {
@@ -563,6 +585,10 @@ impl Model {
             // Set once, here, before the model is returned.
             let _ = model.inner.checks.set(report);
         }
+        // Counting starts after the checks: they are not live traffic.
+        if let (Some(profile), Some(window)) = (&model.inner.profile, &model.inner.options.drift) {
+            let _ = model.inner.watch.set(DriftWatch::new(profile, model.contract(), window.clone()));
+        }
         Ok(model)
     }
 
@@ -571,6 +597,14 @@ impl Model {
     /// unavailable, not zero).
     pub fn profile(&self) -> Option<&Profile> {
         self.inner.profile.as_ref()
+    }
+
+    /// How the live values scored since load (over the window of
+    /// [`ModelOptions::drift`]) compare with the training profile the
+    /// artifact carries; `None` when it carries none or counting is off:
+    /// drift is then unavailable, not zero.
+    pub fn drift(&self) -> Option<DriftReport> {
+        self.inner.watch.get().map(DriftWatch::report)
     }
 
     /// The report of the checks the artifact carries, run when it was
@@ -726,6 +760,9 @@ impl Model {
         }
         let peak_memory_bytes = instance.peak_memory();
         self.give_back(instance);
+        if let Some(watch) = inner.watch.get() {
+            watch.record(rows, cells, &values);
+        }
         let usage = Usage { rows, wall: started.elapsed(), fuel, fresh_instance: fresh, peak_memory_bytes };
         Ok(Estimates { values, outputs: inner.schema.outputs(), usage })
     }
