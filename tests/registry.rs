@@ -888,3 +888,51 @@ fn the_size_cap_is_one_registry_setting_applied_when_a_file_is_read() {
     assert_eq!(ask(&reg, "m", &RequestContext::new(), None, 5.0).2, 5.0);
     assert!(reg.status().artifacts.iter().all(|a| matches!(a.state, ArtifactState::Loaded)), "{:#?}", reg.status());
 }
+
+/// A served version whose artifact carries a training profile counts the
+/// rows it serves against it; the registry's status carries the report and
+/// `/metrics` the index, per model, version and field. The line's one
+/// feature `x` trained half at or below 0 and half above; twenty requests
+/// all above 0. By hand, with empty bins counted as 10⁻⁴: (10⁻⁴ − 0.5)·
+/// ln(10⁻⁴ / 0.5) + (1 − 0.5)·ln(1 / 0.5) + (10⁻⁴ − 10⁻⁴)·ln 1 ≈ 4.604.
+#[test]
+fn served_rows_are_counted_against_the_versions_profile() {
+    use paddock_host::{Bins, DriftWindow, FieldProfile, Profile};
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let line = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
+    let params = Artifact::from_bytes(line.clone(), u64::MAX).unwrap().params().to_vec();
+    let field = FieldProfile { bins: Bins::Edges(vec![0.0]), shares: vec![0.5, 0.5, 0.0], summary: None };
+    let profile = Profile {
+        source: "by hand".into(),
+        rows: 2,
+        features: [("x".to_owned(), field)].into(),
+        outputs: BTreeMap::new(),
+    };
+    let parts =
+        paddock_host::Parts { wasm: &line, params: Some(&params), profile: Some(&profile), ..Default::default() };
+    put(store, "m", "1.0.0", &paddock_host::pack_imported(parts).unwrap());
+    routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
+    let window = DriftWindow { min_count: 20, ..DriftWindow::default() };
+    let options = ModelOptions { drift: Some(window), ..paddock_tests::unhurried() };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, RegistryOptions { model: options, ..Default::default() })
+        .unwrap();
+    let drift = |reg: &Registry| reg.status().artifacts[0].drift.clone().expect("a profile");
+    assert_eq!(drift(&reg).summary(), "too few values");
+    for i in 0..20 {
+        ask(&reg, "m", &RequestContext::new(), None, 1.0 + f64::from(i));
+    }
+    let report = drift(&reg);
+    assert_eq!(report.summary(), "act: x", "{report:?}");
+    let e = 1e-4f64;
+    let by_hand = (e - 0.5) * (e / 0.5).ln() + 0.5 * 2f64.ln();
+    let index = report.fields[0].index.unwrap();
+    assert!((index - by_hand).abs() < 1e-12, "{index} against {by_hand}");
+    let text = paddock_serve::registry::metrics::render(reg.usage(), &reg.status(), reg.source_usage(), Vec::new());
+    let sample = format!("paddock_drift_index{{model=\"m\",version=\"1.0.0\",kind=\"feature\",field=\"x\"}} {index}");
+    assert!(text.contains(&sample), "{sample} not in\n{text}");
+    assert!(
+        text.contains("paddock_drift_values{model=\"m\",version=\"1.0.0\",kind=\"feature\",field=\"x\"} 20"),
+        "{text}"
+    );
+}

@@ -113,6 +113,32 @@ pub fn stability_index(expected: &[f64], live: &[u64]) -> Option<f64> {
     )
 }
 
+impl DriftReport {
+    /// One line: the fields at the highest level reached
+    /// (`act: bmi, s5`; `watch: age`; `steady`; `too few values`), then
+    /// any notes' fields (`missing values: s5`).
+    pub fn summary(&self) -> String {
+        let named = |level: DriftLevel| -> Vec<&str> {
+            self.fields.iter().filter(|f| f.level == level).map(|f| f.name.as_str()).collect()
+        };
+        let (act, watch) = (named(DriftLevel::Act), named(DriftLevel::Watch));
+        let mut line = if !act.is_empty() {
+            format!("act: {}", act.join(", "))
+        } else if !watch.is_empty() {
+            format!("watch: {}", watch.join(", "))
+        } else if self.fields.iter().any(|f| f.level == DriftLevel::Steady) {
+            "steady".to_owned()
+        } else {
+            "too few values".to_owned()
+        };
+        let noted: Vec<&str> = self.fields.iter().filter(|f| !f.notes.is_empty()).map(|f| f.name.as_str()).collect();
+        if !noted.is_empty() {
+            line.push_str(&format!("; see notes on {}", noted.join(", ")));
+        }
+        line
+    }
+}
+
 /// One profiled field as the counters see it.
 #[derive(Debug)]
 struct Watched {

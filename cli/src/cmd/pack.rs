@@ -191,8 +191,13 @@ fn imported(args: &Args, input: &[u8], file: &str, format: Format, (checks, prof
     let (features, outputs) = (overrides.feature_renames(), overrides.output_renames());
     if (checks.is_some() || profile.is_some()) && !(features.is_empty() && outputs.is_empty()) {
         let pairs: Vec<String> = features.iter().chain(&outputs).map(|(a, b)| format!("{a} → {b}")).collect();
+        let part = match (&checks, &profile) {
+            (Some(_), Some(_)) => "checks and profile",
+            (Some(_), None) => "checks",
+            _ => "profile",
+        };
         imported.origin.contract.push(paddock_import::Provenance {
-            part: "checks and profile".into(),
+            part: part.into(),
             from: format!(
                 "recorded with the file's names, renamed as the overrides rename them ({})",
                 pairs.join(", ")

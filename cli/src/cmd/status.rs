@@ -65,6 +65,11 @@ pub fn run(args: Args) -> Result<Outcome> {
                         Some(PrimeState::Unprimed { reason }) => format!("no: {reason}"),
                         _ => "-".into(),
                     },
+                    match (&a.drift, &a.state) {
+                        (Some(d), _) => d.summary(),
+                        (None, ArtifactState::Loaded) => "no profile".into(),
+                        (None, _) => "-".into(),
+                    },
                 ]
             })
             .collect();
@@ -89,7 +94,10 @@ pub fn run(args: Args) -> Result<Outcome> {
                 outln!()?;
             }
         }
-        out!("{}", text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed"], &rows))?;
+        out!(
+            "{}",
+            text_table(&["artifact", "digest", "state", "used by", "checks", "code", "primed", "drift"], &rows)
+        )?;
         match &status.routes {
             RoutesState::Accepted => outln!("\nroutes: {} accepted", paddock_serve::registry::ROUTES_FILE)?,
             RoutesState::Missing => {

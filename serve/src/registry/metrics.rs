@@ -86,6 +86,7 @@ pub fn render(usage: UsageReport, status: &Status, sources: Vec<SourceUsage>, ow
         artifacts,
         mirror,
         own,
+        drift: drift_samples(status),
     }));
     let mut out = String::new();
     prometheus_client::encoding::text::encode(&mut out, &registry).expect("writing to a String cannot fail");
@@ -101,6 +102,31 @@ struct Exposition {
     artifacts: BTreeMap<&'static str, u64>,
     mirror: Option<MirrorState>,
     own: Vec<SurfaceFamily>,
+    drift: DriftSamples,
+}
+
+/// Per served version and profiled field: the stability index (once there
+/// are enough live values) and the live values counted.
+#[derive(Debug, Default)]
+struct DriftSamples {
+    index: Vec<(Labels, f64)>,
+    values: Vec<(Labels, u64)>,
+}
+
+fn drift_samples(status: &Status) -> DriftSamples {
+    let mut out = DriftSamples::default();
+    for a in &status.artifacts {
+        let (Some(model), Some(version), Some(report)) = (&a.model, &a.version, &a.drift) else { continue };
+        for f in &report.fields {
+            let l =
+                labels(&[("model", model), ("version", &version.to_string()), ("kind", f.kind), ("field", &f.name)]);
+            if let Some(i) = f.index {
+                out.index.push((l.clone(), i));
+            }
+            out.values.push((l, f.count));
+        }
+    }
+    out
 }
 
 /// A label value, escaped as OpenMetrics 1.0 asks (its ABNF: backslash,
@@ -271,6 +297,18 @@ impl Collector for Exposition {
             Samples::Counter(rejected),
         )?;
         self.feature_sources(&mut e)?;
+        family(
+            &mut e,
+            "drift_index",
+            "Population Stability Index of a field's live values against the training profile, per served version.",
+            Samples::GaugeFloat(self.drift.index.clone()),
+        )?;
+        family(
+            &mut e,
+            "drift_values",
+            "Live values of a profiled field counted in the drift window.",
+            Samples::Gauge(self.drift.values.clone()),
+        )?;
         family(
             &mut e,
             "generation",

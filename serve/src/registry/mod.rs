@@ -905,8 +905,18 @@ impl Registry {
 
     /// What is served and what was refused.
     pub fn status(&self) -> Status {
-        let mut status = self.inner.current.load().status.clone();
+        let current = self.inner.current.load();
+        let mut status = current.status.clone();
         status.mirror = self.inner.mirror.lock().unwrap_or_else(|e| e.into_inner()).clone();
+        // Drift is counted live: read now, not when the version loaded.
+        for a in &mut status.artifacts {
+            if let (Some(model), Some(version)) = (&a.model, &a.version)
+                && let Some(loaded) = current.versions.get(model).and_then(|v| v.get(version))
+                && Some(loaded.model.digest()) == a.digest
+            {
+                a.drift = loaded.model.drift();
+            }
+        }
         status
     }
 

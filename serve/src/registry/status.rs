@@ -16,6 +16,7 @@ use paddock_host::artifact::ArtifactError;
 use paddock_host::artifact::checks::CaseFailure;
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::{Admission, TrustError, VouchTextError};
+use paddock_host::drift::DriftReport;
 use paddock_host::limits::LimitHit;
 use paddock_host::sandbox::codecache::CodeSource;
 use paddock_host::sandbox::model::{LoadError, ScoreError};
@@ -247,6 +248,11 @@ pub struct ArtifactStatus {
     pub code: Option<CodeSource>,
     /// Whether new instances start from a snapshot taken after `init`.
     pub primed: Option<PrimeState>,
+    /// Live inputs and outputs against the training profile the artifact
+    /// carries (`None`: it carries none, or the version is not loaded —
+    /// drift unavailable, not zero).
+    #[cfg_attr(feature = "http", schema(value_type = Option<Object>))]
+    pub drift: Option<DriftReport>,
 }
 
 /// Whether the store's limits file ([`super::LIMITS_FILE`]) was taken.
@@ -500,6 +506,7 @@ pub(super) fn loaded_status(loaded: &Loaded, state: ArtifactState) -> ArtifactSt
         }),
         code: Some(loaded.model.code_source().clone()),
         primed: Some(loaded.model.prime_state().clone()),
+        drift: loaded.model.drift(),
     }
 }
 
@@ -520,6 +527,7 @@ pub(super) fn refused_status(
         checks: None,
         code: None,
         primed: None,
+        drift: None,
     }
 }
 
