@@ -154,6 +154,44 @@ fn measure(
     }
 }
 
+/// What counting drift costs a warm call: the helper's profiled diabetes
+/// model (60 trees, 10 features; tests/imports/export.py) loaded twice from
+/// the same artifact, counting on and off, scoring the same typed rows
+/// alternately (median of `reps` per batch size). (rows, on, off) per size.
+fn drift_cost(runtime: &Runtime, reps: usize) -> Vec<(usize, Duration, Duration)> {
+    let dir = root().join("target/paddock/imports");
+    let bytes = read(&dir.join("lgb-diabetes-profiled.txt"));
+    let imported = import(&bytes, Format::LightgbmText, "lgb-diabetes-profiled.txt", None).unwrap();
+    let profile = paddock_host::Profile::from_json(&read(&dir.join("lgb-diabetes-profiled.profile.json"))).unwrap();
+    let wasm = guest(imported.guest());
+    let params = imported.params();
+    let parts = paddock_host::Parts { wasm: &wasm, params: Some(&params), profile: Some(&profile), ..Default::default() };
+    let artifact = Artifact::from_bytes(paddock_host::pack_imported(parts).unwrap(), u64::MAX).unwrap();
+    let on = Model::load_with(runtime, artifact.clone(), ModelOptions::default()).unwrap();
+    let off = Model::load_with(runtime, artifact, ModelOptions { drift: None, ..ModelOptions::default() }).unwrap();
+    let checks: Value = serde_json::from_slice(&read(&dir.join("lgb-diabetes-profiled.checks.json"))).unwrap();
+    let rows: Vec<paddock_host::Row> = checks["cases"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|c| paddock_host::Row::from_json(c["row"].clone()).unwrap())
+        .collect();
+    let batch: Vec<paddock_host::Row> = rows.iter().cycle().take(64).cloned().collect();
+    [(1, &rows[..1]), (64, &batch[..])]
+        .into_iter()
+        .map(|(n, rows)| {
+            let (mut with, mut without) = (Vec::with_capacity(reps), Vec::with_capacity(reps));
+            for _ in 0..reps {
+                with.push(time(1, || on.score(black_box(rows)).unwrap()));
+                without.push(time(1, || off.score(black_box(rows)).unwrap()));
+            }
+            assert!(on.drift().unwrap().fields.iter().all(|f| f.count > 0), "counting on counts");
+            assert!(off.drift().is_none(), "counting off counts nothing");
+            (n, median(with), median(without))
+        })
+        .collect()
+}
+
 fn cells_of(value: &Value) -> (Vec<f64>, usize) {
     let rows = value.as_array().unwrap();
     let cells =
@@ -184,6 +222,8 @@ fn main() {
             "imports bench runs: {} trees, sandbox {:?}, native {:?}, explained {:?}",
             m.trees, m.sandbox, m.native, m.explained
         );
+        let cost = drift_cost(&runtime, 1);
+        eprintln!("drift counting runs: {cost:?}");
         return;
     }
     let dir: PathBuf = root().join("target/paddock/bench-imports");
@@ -246,6 +286,21 @@ fn main() {
             m.sandbox.as_secs_f64() / m.without_covers.as_secs_f64(),
             us(m.sandbox),
             us(m.without_covers),
+        ));
+    }
+    table.push(String::new());
+    table.push(
+        "| drift counting: warm call, 60-tree profiled model (10 features, 1 output) | counting on | off | on / off |"
+            .to_owned(),
+    );
+    table.push("|---|---|---|---|".to_owned());
+    for (rows, on, off) in drift_cost(&runtime, 2001) {
+        table.push(format!(
+            "| {rows} row{} | {:.2} µs | {:.2} µs | {:.3} |",
+            if rows == 1 { "" } else { "s" },
+            on.as_secs_f64() * 1e6,
+            off.as_secs_f64() * 1e6,
+            on.as_secs_f64() / off.as_secs_f64()
         ));
     }
     table.push(String::new());
