@@ -139,13 +139,22 @@ impl DriftReport {
     }
 }
 
+/// Where a watched field's values are: a feature's column of the cells,
+/// or an output's column of the values.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Column {
+    Feature(usize),
+    Output(usize),
+}
+
 /// One profiled field as the counters see it.
 #[derive(Debug)]
 struct Watched {
     kind: &'static str,
     name: String,
-    /// Its column among the features (or the outputs).
-    column: usize,
+    column: Column,
+    /// A number's edges (empty for labels), read on every value.
+    edges: Box<[f64]>,
     profile: FieldProfile,
     /// Where its bins start among each slice's counters.
     offset: usize,
@@ -154,12 +163,35 @@ struct Watched {
 }
 
 impl Watched {
+    /// The bin of a value as the contract encodes it (a label as its
+    /// index): [`FieldProfile::bin_of`], counting the edges below the value
+    /// without a branch per edge.
+    #[inline]
     fn bin(&self, value: f64) -> usize {
+        if value.is_nan() {
+            return self.offset_missing();
+        }
         match &self.labels {
-            Some(bins) if !value.is_nan() => bins.get(value as usize).copied().unwrap_or(bins.len()),
-            _ => self.profile.bin_of(value),
+            Some(bins) => bins.get(value as usize).copied().unwrap_or(bins.len()),
+            None => self.edges.iter().map(|e| usize::from(*e < value)).sum(),
         }
     }
+
+    fn offset_missing(&self) -> usize {
+        self.profile.missing_bin()
+    }
+
+    fn value(&self, r: usize, cells: &[f64], width: usize, values: &[f64], outputs: usize) -> f64 {
+        match self.column {
+            Column::Feature(c) => cells[r * width + c],
+            Column::Output(c) => values[r * outputs + c],
+        }
+    }
+}
+
+thread_local! {
+    /// One call's counts, gathered before they are added to the window.
+    static SCRATCH: std::cell::RefCell<Vec<u32>> = const { std::cell::RefCell::new(Vec::new()) };
 }
 
 /// One slice of the window: which slice of time it holds, and its counts.
@@ -189,6 +221,20 @@ impl DriftWatch {
     pub fn new(profile: &Profile, contract: &Contract, window: DriftWindow) -> DriftWatch {
         let mut fields = Vec::new();
         let mut bins = 0;
+        let mut watch = |name: &str, column: Column, profile: &FieldProfile, labels: Option<Vec<usize>>| {
+            let kind = if matches!(column, Column::Feature(_)) { "feature" } else { "output" };
+            let (edges, offset) = (edges_of(profile), bins);
+            bins += profile.bin_count();
+            fields.push(Watched {
+                kind,
+                name: name.to_owned(),
+                column,
+                edges,
+                profile: profile.clone(),
+                offset,
+                labels,
+            });
+        };
         for (column, feature) in contract.features.iter().enumerate() {
             let Some(profile) = profile.features.get(&feature.name) else { continue };
             let labels = match (&feature.domain, &profile.bins) {
@@ -197,29 +243,12 @@ impl DriftWatch {
                 }
                 _ => None,
             };
-            let offset = bins;
-            bins += profile.bin_count();
-            fields.push(Watched {
-                kind: "feature",
-                name: feature.name.clone(),
-                column,
-                profile: profile.clone(),
-                offset,
-                labels,
-            });
+            watch(&feature.name, Column::Feature(column), profile, labels);
         }
         for (column, output) in contract.outputs.iter().enumerate() {
-            let Some(profile) = profile.outputs.get(&output.name) else { continue };
-            let offset = bins;
-            bins += profile.bin_count();
-            fields.push(Watched {
-                kind: "output",
-                name: output.name.clone(),
-                column,
-                profile: profile.clone(),
-                offset,
-                labels: None,
-            });
+            if let Some(profile) = profile.outputs.get(&output.name) {
+                watch(&output.name, Column::Output(column), profile, None);
+            }
         }
         let slices = (0..window.slices.max(1))
             .map(|_| Slice { epoch: AtomicU64::new(u64::MAX), counts: (0..bins).map(|_| AtomicU64::new(0)).collect() })
@@ -256,19 +285,34 @@ impl DriftWatch {
             slice.counts.iter().for_each(|c| c.store(0, Ordering::Relaxed));
         }
         let (width, outputs) = (cells.len() / rows, values.len() / rows);
-        // One call's counts gathered first, then one addition per bin used.
-        let mut local = vec![0u32; self.bins];
-        for r in 0..rows {
+        if rows == 1 {
             for f in &self.fields {
-                let v = if f.kind == "feature" { cells[r * width + f.column] } else { values[r * outputs + f.column] };
-                local[f.offset + f.bin(v)] += 1;
+                let bin = f.bin(f.value(0, cells, width, values, outputs));
+                slice.counts[f.offset + bin].fetch_add(1, Ordering::Relaxed);
             }
+            return;
         }
-        for (c, n) in slice.counts.iter().zip(local) {
-            if n > 0 {
-                c.fetch_add(u64::from(n), Ordering::Relaxed);
+        // A batch's counts gathered first, then one addition per bin used.
+        SCRATCH.with_borrow_mut(|local| {
+            local.clear();
+            local.resize(self.bins, 0);
+            // Field by field: one column read down the rows.
+            for f in &self.fields {
+                let (column, stride, at) = match f.column {
+                    Column::Feature(c) => (cells, width, c),
+                    Column::Output(c) => (values, outputs, c),
+                };
+                let counts = &mut local[f.offset..f.offset + f.profile.bin_count()];
+                for v in column.iter().skip(at).step_by(stride.max(1)).take(rows) {
+                    counts[f.bin(*v)] += 1;
+                }
             }
-        }
+            for (c, &n) in slice.counts.iter().zip(local.iter()) {
+                if n > 0 {
+                    c.fetch_add(u64::from(n), Ordering::Relaxed);
+                }
+            }
+        });
     }
 
     /// The window's counts against the profile, field by field.
@@ -329,6 +373,13 @@ impl DriftWatch {
             live,
             notes,
         }
+    }
+}
+
+fn edges_of(profile: &FieldProfile) -> Box<[f64]> {
+    match &profile.bins {
+        Bins::Edges(e) => e.clone().into_boxed_slice(),
+        Bins::Labels(_) => Box::new([]),
     }
 }
 

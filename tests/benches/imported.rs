@@ -165,7 +165,8 @@ fn drift_cost(runtime: &Runtime, reps: usize) -> Vec<(usize, Duration, Duration)
     let profile = paddock_host::Profile::from_json(&read(&dir.join("lgb-diabetes-profiled.profile.json"))).unwrap();
     let wasm = guest(imported.guest());
     let params = imported.params();
-    let parts = paddock_host::Parts { wasm: &wasm, params: Some(&params), profile: Some(&profile), ..Default::default() };
+    let parts =
+        paddock_host::Parts { wasm: &wasm, params: Some(&params), profile: Some(&profile), ..Default::default() };
     let artifact = Artifact::from_bytes(paddock_host::pack_imported(parts).unwrap(), u64::MAX).unwrap();
     let on = Model::load_with(runtime, artifact.clone(), ModelOptions::default()).unwrap();
     let off = Model::load_with(runtime, artifact, ModelOptions { drift: None, ..ModelOptions::default() }).unwrap();
