@@ -387,6 +387,46 @@ fn pack_carries_a_training_profile_that_inspect_and_audit_show() {
     assert!(text(&o.stdout).contains("442 rows; 10 features, 1 outputs"), "{}", text(&o.stdout));
 }
 
+/// `paddock score --drift` compares a file's rows with the artifact's
+/// training profile: the diabetes rows with `bmi` moved by one standard
+/// deviation (tests/imports/export.py) call for action on `bmi` alone, each
+/// bin's training and live shares drawn side by side. An artifact without
+/// a profile is refused before any row is read.
+#[test]
+fn score_compares_a_files_rows_with_the_training_profile() {
+    let dir = root().join("target/paddock/imports");
+    let out = tmp("drifted.wasm");
+    let (model, profile) = (dir.join("lgb-diabetes-profiled.txt"), dir.join("lgb-diabetes-profiled.profile.json"));
+    let o = paddock(
+        &["pack", model.to_str().unwrap(), "--profile", profile.to_str().unwrap(), "--out", out.to_str().unwrap()],
+        None,
+    );
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(dir.join("drift.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    let case = doc["cases"].as_array().unwrap().iter().find(|c| c["case"] == "bmi-shifted").unwrap();
+    let mut lines = String::new();
+    for row in case["rows"].as_array().unwrap() {
+        let object: serde_json::Map<String, serde_json::Value> =
+            names.iter().cloned().zip(row.as_array().unwrap().iter().cloned()).collect();
+        lines.push_str(&format!("{}\n", serde_json::Value::Object(object)));
+    }
+    let rows = tmp("shifted.ndjson");
+    std::fs::write(&rows, lines).unwrap();
+    let o = paddock(&["score", out.to_str().unwrap(), rows.to_str().unwrap(), "--drift"], None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let said = text(&o.stderr);
+    let acting: Vec<&str> = said.lines().filter(|l| l.ends_with("values)") && l.contains(", act (")).collect();
+    assert_eq!(acting.len(), 1, "{said}");
+    assert!(acting[0].starts_with("feature bmi: index "), "{said}");
+    assert!(said.contains(" | ") && said.contains('█'), "{said}");
+    let bare = tmp("bare.wasm");
+    let o = paddock(&["pack", model.to_str().unwrap(), "--out", bare.to_str().unwrap()], None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    let o = paddock(&["score", bare.to_str().unwrap(), rows.to_str().unwrap(), "--drift"], None);
+    assert!(!o.status.success() && text(&o.stderr).contains("carries no training profile"), "{}", text(&o.stderr));
+}
+
 /// A PMML document packs onto the program guest; the checks are worked
 /// out by hand from the document (tests/pmml.rs shows the steps).
 #[test]
