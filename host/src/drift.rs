@@ -169,7 +169,7 @@ impl Watched {
     #[inline]
     fn bin(&self, value: f64) -> usize {
         if value.is_nan() {
-            return self.offset_missing();
+            return self.profile.missing_bin();
         }
         match &self.labels {
             Some(bins) => bins.get(value as usize).copied().unwrap_or(bins.len()),
@@ -177,15 +177,14 @@ impl Watched {
         }
     }
 
-    fn offset_missing(&self) -> usize {
-        self.profile.missing_bin()
-    }
-
-    fn value(&self, r: usize, cells: &[f64], width: usize, values: &[f64], outputs: usize) -> f64 {
-        match self.column {
-            Column::Feature(c) => cells[r * width + c],
-            Column::Output(c) => values[r * outputs + c],
-        }
+    /// Its values in a call's `rows` (`cells`: rows × features, `values`:
+    /// rows × outputs), row by row.
+    fn values<'a>(&self, rows: usize, cells: &'a [f64], values: &'a [f64]) -> impl Iterator<Item = f64> + 'a {
+        let (column, at) = match self.column {
+            Column::Feature(c) => (cells, c),
+            Column::Output(c) => (values, c),
+        };
+        column.iter().skip(at).step_by((column.len() / rows).max(1)).take(rows).copied()
     }
 }
 
@@ -284,11 +283,11 @@ impl DriftWatch {
         if seen != epoch && slice.epoch.compare_exchange(seen, epoch, Ordering::AcqRel, Ordering::Acquire).is_ok() {
             slice.counts.iter().for_each(|c| c.store(0, Ordering::Relaxed));
         }
-        let (width, outputs) = (cells.len() / rows, values.len() / rows);
         if rows == 1 {
             for f in &self.fields {
-                let bin = f.bin(f.value(0, cells, width, values, outputs));
-                slice.counts[f.offset + bin].fetch_add(1, Ordering::Relaxed);
+                for v in f.values(rows, cells, values) {
+                    slice.counts[f.offset + f.bin(v)].fetch_add(1, Ordering::Relaxed);
+                }
             }
             return;
         }
@@ -298,13 +297,9 @@ impl DriftWatch {
             local.resize(self.bins, 0);
             // Field by field: one column read down the rows.
             for f in &self.fields {
-                let (column, stride, at) = match f.column {
-                    Column::Feature(c) => (cells, width, c),
-                    Column::Output(c) => (values, outputs, c),
-                };
                 let counts = &mut local[f.offset..f.offset + f.profile.bin_count()];
-                for v in column.iter().skip(at).step_by(stride.max(1)).take(rows) {
-                    counts[f.bin(*v)] += 1;
+                for v in f.values(rows, cells, values) {
+                    counts[f.bin(v)] += 1;
                 }
             }
             for (c, &n) in slice.counts.iter().zip(local.iter()) {
