@@ -356,3 +356,59 @@ fn a_lookup_keyed_by_a_cell_reads_the_cells_around_a_position() {
         assert_eq!(fetched.key, format!("(no key: {})", why.replace('R', &r.to_string())));
     }
 }
+
+/// A feature whose source has nothing for most keys gets its default from
+/// the plan: its live values move (every default lands in the profile's
+/// lowest bin), and the drift report says the plan's fallback moved them,
+/// by cause, rather than letting it look like the world moved. The line's
+/// profile of `x` is the table's own spread (quarters of 0‥63); sixteen
+/// requests find their site, forty-eight name one the table lacks.
+#[test]
+fn drift_from_a_plans_fallback_is_named_as_such() {
+    use paddock_host::{Bins, DriftLevel, DriftWindow, FallbackCounts, FieldProfile, ModelOptions, Profile};
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    let field = FieldProfile {
+        bins: Bins::Edges(vec![15.5, 31.5, 47.5]),
+        shares: vec![0.25; 4].into_iter().chain([0.0]).collect(),
+        summary: None,
+    };
+    let profile = Profile {
+        source: "the table".into(),
+        rows: 64,
+        features: [("x".to_owned(), field)].into(),
+        outputs: Default::default(),
+    };
+    let line = paddock_tests::line_artifact("m", "1.0.0", 2.0, 1.0, Some(true));
+    write_atomically(&store.join("m/1.0.0.wasm"), &paddock_tests::profiled(&line, &profile));
+    write_atomically(&store.join("routes.toml"), b"[models.m]\ndefault = \"1.0.0\"\n");
+    write_table(store, 1.0);
+    let plan = PLAN.replace("missing = \"fail\"", "missing = { default = 0.0 }");
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    let model = ModelOptions {
+        drift: Some(DriftWindow { min_count: 64, ..DriftWindow::default() }),
+        ..paddock_tests::unhurried()
+    };
+    let options = RegistryOptions { usage_flush: None, model, ..RegistryOptions::default() };
+    let reg = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    for i in 0..64 {
+        let s = if i % 4 == 0 { format!("s{i}") } else { format!("gone-{i}") };
+        let a = reg.score(&Request::new("m", &site(&s), &[Row::new()])).unwrap();
+        let expected = if i % 4 == 0 { 2.0 * f64::from(i) + 1.0 } else { 1.0 };
+        assert_eq!(a.estimates.values_at(0), [expected], "{s}: the table's x, or the default 0");
+    }
+    let report = reg.status().artifacts[0].drift.clone().expect("a profile");
+    let x = &report.fields[0];
+    assert_eq!(x.fallbacks, FallbackCounts { missing: 48, stale: 0, unavailable: 0 });
+    assert_eq!((x.count, x.level), (64, DriftLevel::Act), "{x:?}");
+    assert!(
+        x.notes.iter().any(|n| n.starts_with("features plan fallbacks: 75.0 % of live values (missing 75.0 %)")),
+        "{:?}",
+        x.notes
+    );
+    assert_eq!(report.summary(), "act: x; plan fallbacks on x; see notes on x");
+    let text = paddock_serve::registry::metrics::render(reg.usage(), &reg.status(), reg.source_usage(), Vec::new());
+    let sample =
+        "paddock_drift_fallbacks{model=\"m\",version=\"1.0.0\",kind=\"feature\",field=\"x\",cause=\"missing\"} 48";
+    assert!(text.contains(sample), "{sample} not in\n{text}");
+}

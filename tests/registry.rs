@@ -901,7 +901,6 @@ fn served_rows_are_counted_against_the_versions_profile() {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
     let line = line_artifact("m", "1.0.0", 1.0, 0.0, Some(true));
-    let params = Artifact::from_bytes(line.clone(), u64::MAX).unwrap().params().to_vec();
     let field = FieldProfile { bins: Bins::Edges(vec![0.0]), shares: vec![0.5, 0.5, 0.0], summary: None };
     let profile = Profile {
         source: "by hand".into(),
@@ -909,9 +908,7 @@ fn served_rows_are_counted_against_the_versions_profile() {
         features: [("x".to_owned(), field)].into(),
         outputs: BTreeMap::new(),
     };
-    let parts =
-        paddock_host::Parts { wasm: &line, params: Some(&params), profile: Some(&profile), ..Default::default() };
-    put(store, "m", "1.0.0", &paddock_host::pack_imported(parts).unwrap());
+    put(store, "m", "1.0.0", &paddock_tests::profiled(&line, &profile));
     routes(store, "[models.m]\ndefault = \"1.0.0\"\n");
     let window = DriftWindow { min_count: 20, ..DriftWindow::default() };
     let options = ModelOptions { drift: Some(window), ..paddock_tests::unhurried() };

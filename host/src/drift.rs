@@ -46,7 +46,7 @@ impl Default for DriftWindow {
 }
 
 /// How far a field has moved.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 #[serde(rename_all = "snake_case")]
 pub enum DriftLevel {
     /// Fewer live values than the window's `min_count`: no index yet.
@@ -59,11 +59,43 @@ pub enum DriftLevel {
     Act,
 }
 
+/// Why a features plan put a feature's fallback (absent, or its default)
+/// in place of a looked-up value.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
+#[non_exhaustive]
+pub enum FallbackCause {
+    /// The source has nothing under the key.
+    Missing,
+    /// The source's value is older than the plan allows.
+    Stale,
+    /// The source did not answer in time, failed, or is paused after failing.
+    Unavailable,
+}
+
+/// How many of a feature's live values in the window were the features
+/// plan's fallback rather than a looked-up value, by cause.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct FallbackCounts {
+    /// The source had nothing under the key.
+    pub missing: u64,
+    /// The source's value was too old.
+    pub stale: u64,
+    /// The source could not be read.
+    pub unavailable: u64,
+}
+
+impl FallbackCounts {
+    /// All of them.
+    pub fn total(&self) -> u64 {
+        self.missing + self.stale + self.unavailable
+    }
+}
+
 /// One field's live spread against its training profile.
-#[derive(Clone, Debug, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct FieldDrift {
     /// `feature` or `output`.
-    pub kind: &'static str,
+    pub kind: String,
     /// Its name in the contract.
     pub name: String,
     /// Live values counted in the window.
@@ -78,13 +110,19 @@ pub struct FieldDrift {
     pub expected: Vec<f64>,
     /// Each bin's share of the live values.
     pub live: Vec<f64>,
+    /// Of a feature's live values, those that were the features plan's
+    /// fallback (zero without a plan, and for outputs): a field that moved
+    /// because its source is down, not because the world did.
+    #[serde(default)]
+    pub fallbacks: FallbackCounts,
     /// Moves worth naming on their own: missing values far more common
-    /// than in training, labels never seen in training.
+    /// than in training, labels never seen in training, values that were
+    /// the features plan's fallback.
     pub notes: Vec<String>,
 }
 
 /// A served model's inputs and outputs against its training profile.
-#[derive(Clone, Debug, PartialEq, Serialize)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct DriftReport {
     /// How far back the counts go.
     pub window: Duration,
@@ -131,6 +169,11 @@ impl DriftReport {
         } else {
             "too few values".to_owned()
         };
+        let fell_back: Vec<&str> =
+            self.fields.iter().filter(|f| f.fallbacks.total() > 0).map(|f| f.name.as_str()).collect();
+        if !fell_back.is_empty() {
+            line.push_str(&format!("; plan fallbacks on {}", fell_back.join(", ")));
+        }
         let noted: Vec<&str> = self.fields.iter().filter(|f| !f.notes.is_empty()).map(|f| f.name.as_str()).collect();
         if !noted.is_empty() {
             line.push_str(&format!("; see notes on {}", noted.join(", ")));
@@ -198,6 +241,17 @@ thread_local! {
 struct Slice {
     epoch: AtomicU64,
     counts: Box<[AtomicU64]>,
+    /// Per watched field, its fallbacks by cause (missing, stale, unavailable).
+    fallbacks: Box<[AtomicU64]>,
+}
+
+/// A cause's place among a field's three fallback counters.
+fn cause_at(cause: FallbackCause) -> usize {
+    match cause {
+        FallbackCause::Missing => 0,
+        FallbackCause::Stale => 1,
+        FallbackCause::Unavailable => 2,
+    }
 }
 
 /// Live counts of a model's values in its profile's bins over a sliding
@@ -250,7 +304,11 @@ impl DriftWatch {
             }
         }
         let slices = (0..window.slices.max(1))
-            .map(|_| Slice { epoch: AtomicU64::new(u64::MAX), counts: (0..bins).map(|_| AtomicU64::new(0)).collect() })
+            .map(|_| Slice {
+                epoch: AtomicU64::new(u64::MAX),
+                counts: (0..bins).map(|_| AtomicU64::new(0)).collect(),
+                fallbacks: (0..3 * fields.len()).map(|_| AtomicU64::new(0)).collect(),
+            })
             .collect();
         DriftWatch { window, fields, bins, slices, started: quanta::Instant::now() }
     }
@@ -274,15 +332,36 @@ impl DriftWatch {
         self.record_at(self.epoch_now(), rows, cells, values);
     }
 
+    /// The slice that holds `epoch`, cleared first if it held an older one.
+    fn slice_at(&self, epoch: u64) -> &Slice {
+        let slice = &self.slices[(epoch % self.slices.len() as u64) as usize];
+        let seen = slice.epoch.load(Ordering::Acquire);
+        if seen != epoch && slice.epoch.compare_exchange(seen, epoch, Ordering::AcqRel, Ordering::Acquire).is_ok() {
+            slice.counts.iter().chain(slice.fallbacks.iter()).for_each(|c| c.store(0, Ordering::Relaxed));
+        }
+        slice
+    }
+
+    /// Counts `n` values of `feature` that were the features plan's
+    /// fallback for `cause` (they are counted in the bins too, when the
+    /// rows are scored). A feature the profile does not cover is ignored.
+    pub fn record_fallbacks(&self, feature: &str, cause: FallbackCause, n: u64) {
+        self.record_fallbacks_at(self.epoch_now(), feature, cause, n);
+    }
+
+    fn record_fallbacks_at(&self, epoch: u64, feature: &str, cause: FallbackCause, n: u64) {
+        let Some(at) = self.fields.iter().position(|f| matches!(f.column, Column::Feature(_)) && f.name == feature)
+        else {
+            return;
+        };
+        self.slice_at(epoch).fallbacks[3 * at + cause_at(cause)].fetch_add(n, Ordering::Relaxed);
+    }
+
     fn record_at(&self, epoch: u64, rows: usize, cells: &[f64], values: &[f64]) {
         if self.fields.is_empty() || rows == 0 {
             return;
         }
-        let slice = &self.slices[(epoch % self.slices.len() as u64) as usize];
-        let seen = slice.epoch.load(Ordering::Acquire);
-        if seen != epoch && slice.epoch.compare_exchange(seen, epoch, Ordering::AcqRel, Ordering::Acquire).is_ok() {
-            slice.counts.iter().for_each(|c| c.store(0, Ordering::Relaxed));
-        }
+        let slice = self.slice_at(epoch);
         if rows == 1 {
             for f in &self.fields {
                 for v in f.values(rows, cells, values) {
@@ -318,18 +397,34 @@ impl DriftWatch {
     fn report_at(&self, epoch: u64) -> DriftReport {
         let oldest = epoch.saturating_sub(self.slices.len() as u64 - 1);
         let mut totals = vec![0u64; self.bins];
+        let mut fallbacks = vec![0u64; 3 * self.fields.len()];
+        let add = |totals: &mut [u64], counts: &[AtomicU64]| {
+            totals.iter_mut().zip(counts).for_each(|(t, c)| *t += c.load(Ordering::Relaxed));
+        };
         for slice in self.slices.iter() {
             let e = slice.epoch.load(Ordering::Acquire);
             if e != u64::MAX && e >= oldest && e <= epoch {
-                totals.iter_mut().zip(slice.counts.iter()).for_each(|(t, c)| *t += c.load(Ordering::Relaxed));
+                add(&mut totals, &slice.counts);
+                add(&mut fallbacks, &slice.fallbacks);
             }
         }
-        let fields =
-            self.fields.iter().map(|f| self.judge(f, &totals[f.offset..f.offset + f.profile.bin_count()])).collect();
+        let fields = self
+            .fields
+            .iter()
+            .enumerate()
+            .map(|(i, f)| {
+                let fell_back = FallbackCounts {
+                    missing: fallbacks[3 * i],
+                    stale: fallbacks[3 * i + 1],
+                    unavailable: fallbacks[3 * i + 2],
+                };
+                self.judge(f, &totals[f.offset..f.offset + f.profile.bin_count()], fell_back)
+            })
+            .collect();
         DriftReport { window: self.window.length, fields }
     }
 
-    fn judge(&self, f: &Watched, counts: &[u64]) -> FieldDrift {
+    fn judge(&self, f: &Watched, counts: &[u64], fallbacks: FallbackCounts) -> FieldDrift {
         let count: u64 = counts.iter().sum();
         let live: Vec<f64> = counts.iter().map(|&n| if count == 0 { 0.0 } else { n as f64 / count as f64 }).collect();
         let index = (count >= self.window.min_count).then(|| stability_index(&f.profile.shares, counts)).flatten();
@@ -357,8 +452,11 @@ impl DriftWatch {
                 notes.push(format!("labels never seen in training: {:.1} % of live values", unseen * 100.0));
             }
         }
+        if fallbacks.total() > 0 {
+            notes.push(fallback_note(&fallbacks, count));
+        }
         FieldDrift {
-            kind: f.kind,
+            kind: f.kind.to_owned(),
             name: f.name.clone(),
             count,
             index,
@@ -366,9 +464,27 @@ impl DriftWatch {
             bins: bin_names(&f.profile),
             expected: f.profile.shares.clone(),
             live,
+            fallbacks,
             notes,
         }
     }
+}
+
+/// `features plan fallbacks: 48.0 % of live values (unavailable 40.0 %,
+/// missing 8.0 %): the source moved, not necessarily the world`.
+fn fallback_note(fallbacks: &FallbackCounts, count: u64) -> String {
+    let share = |n: u64| n as f64 * 100.0 / count.max(1) as f64;
+    let causes: Vec<String> =
+        [("unavailable", fallbacks.unavailable), ("missing", fallbacks.missing), ("stale", fallbacks.stale)]
+            .iter()
+            .filter(|(_, n)| *n > 0)
+            .map(|(cause, n)| format!("{cause} {:.1} %", share(*n)))
+            .collect();
+    format!(
+        "features plan fallbacks: {:.1} % of live values ({}): the source moved, not necessarily the world",
+        share(fallbacks.total()),
+        causes.join(", ")
+    )
 }
 
 fn edges_of(profile: &FieldProfile) -> Box<[f64]> {
@@ -449,5 +565,25 @@ mod tests {
         let r = w.report_at(3);
         assert_eq!((r.fields[0].count, r.fields[0].live.clone()), (8, vec![0.5, 0.5, 0.0]));
         assert_eq!((r.fields[0].index, r.fields[0].level), (Some(0.0), DriftLevel::Steady));
+    }
+
+    /// Fallbacks are counted beside the bins, by cause, leave the window
+    /// with their slice, and are named in the notes and the summary.
+    #[test]
+    fn fallbacks_are_counted_apart_and_named() {
+        let w = watch();
+        w.record_at(0, 4, &[f64::NAN; 4], &[]);
+        w.record_fallbacks_at(0, "x", FallbackCause::Unavailable, 3);
+        w.record_fallbacks_at(0, "x", FallbackCause::Missing, 1);
+        w.record_fallbacks_at(0, "not profiled", FallbackCause::Missing, 1);
+        let r = w.report_at(0);
+        assert_eq!(r.fields[0].fallbacks, FallbackCounts { missing: 1, stale: 0, unavailable: 3 });
+        assert_eq!(
+            r.fields[0].notes[1],
+            "features plan fallbacks: 100.0 % of live values (unavailable 75.0 %, missing 25.0 %): \
+             the source moved, not necessarily the world"
+        );
+        assert!(r.summary().contains("; plan fallbacks on x"), "{}", r.summary());
+        assert_eq!(w.report_at(3).fields[0].fallbacks.total(), 0);
     }
 }

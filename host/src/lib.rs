@@ -84,7 +84,7 @@ pub use artifact::{Artifact, ArtifactError, DEFAULT_SIZE_CAP, Parts, pack, pack_
 pub use contract::rows::{ContractRule, Row, RowError, Value};
 pub use contract::schema::{OutputFault, Schema};
 pub use contract::{Bounds, Contract, ContractError, Domain, Fault, Feature, Output};
-pub use drift::{DriftLevel, DriftReport, DriftWatch, DriftWindow, FieldDrift};
+pub use drift::{DriftLevel, DriftReport, DriftWatch, DriftWindow, FallbackCause, FallbackCounts, FieldDrift};
 pub use limits::{LimitHit, Limits, LimitsError, SettingProblem};
 pub use sandbox::codecache::{CacheError, CodeCache, CodeSource};
 pub use sandbox::explain::{ADDS_UP_WITHIN, Attribution, ContributionScale, ExplainError, Explanation};

@@ -199,6 +199,21 @@ pub fn line_artifact(name: &str, version: &str, slope: f64, intercept: f64, chec
     paddock_host::pack(&guest("paddock-model-linear"), Some(&blob), checks.as_ref()).expect("packs")
 }
 
+/// `artifact` packed again with `profile` as its training profile.
+pub fn profiled(artifact: &[u8], profile: &paddock_host::Profile) -> Vec<u8> {
+    let a = Artifact::from_bytes(artifact.to_vec(), u64::MAX).expect("an artifact");
+    let checks = a.checks().expect("its checks read");
+    // Our sections the bytes carry are dropped and written again.
+    let parts = paddock_host::Parts {
+        wasm: artifact,
+        params: Some(a.params()),
+        checks: checks.as_ref(),
+        profile: Some(profile),
+        ..Default::default()
+    };
+    paddock_host::pack_imported(parts).expect("packs")
+}
+
 /// A store serving the line `y = 2x + 1` as model `m` 1.0.0 (with honest
 /// checks), routed by default: the worker tests' and bench's model.
 pub fn line_store(dir: &std::path::Path) {

@@ -12,7 +12,7 @@ use crate::bindings::EstimatorPre;
 use crate::contract::rows::{Row, RowError};
 use crate::contract::schema::{OutputFault, Schema};
 use crate::contract::{Contract, ContractError, Fault};
-use crate::drift::{DriftReport, DriftWatch, DriftWindow};
+use crate::drift::{DriftReport, DriftWatch, DriftWindow, FallbackCause};
 use crate::limits::{LimitHit, Limits, LimitsError};
 use crate::sandbox::codecache::{self, CodeCache, CodeSource};
 use crate::sandbox::explain::{ExplainError, Explanation};
@@ -605,6 +605,16 @@ impl Model {
     /// drift is then unavailable, not zero.
     pub fn drift(&self) -> Option<DriftReport> {
         self.inner.watch.get().map(DriftWatch::report)
+    }
+
+    /// Counts `n` values of `feature` in rows about to be scored that were
+    /// a features plan's fallback for `cause`, so the drift report can tell
+    /// a source that is down from a world that moved
+    /// ([`DriftWatch::record_fallbacks`]); nothing when drift is not counted.
+    pub fn count_fallbacks(&self, feature: &str, cause: FallbackCause, n: u64) {
+        if let Some(watch) = self.inner.watch.get() {
+            watch.record_fallbacks(feature, cause, n);
+        }
     }
 
     /// The report of the checks the artifact carries, run when it was

@@ -240,6 +240,17 @@ impl Outcome {
             Outcome::Unavailable => "unavailable",
         }
     }
+
+    /// Why the plan's fallback took the value's place, or `None` when it
+    /// did not (the value came with the row, or was found).
+    pub fn fallback_cause(self) -> Option<paddock_host::FallbackCause> {
+        match self {
+            Outcome::FromRequest | Outcome::Found => None,
+            Outcome::Missing => Some(paddock_host::FallbackCause::Missing),
+            Outcome::Stale => Some(paddock_host::FallbackCause::Stale),
+            Outcome::Unavailable => Some(paddock_host::FallbackCause::Unavailable),
+        }
+    }
 }
 
 /// Where one feature of a row came from.

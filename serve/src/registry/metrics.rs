@@ -111,6 +111,8 @@ struct Exposition {
 struct DriftSamples {
     index: Vec<(Labels, f64)>,
     values: Vec<(Labels, u64)>,
+    /// Per feature and cause, its values that were the features plan's fallback.
+    fallbacks: Vec<(Labels, u64)>,
 }
 
 fn drift_samples(status: &Status) -> DriftSamples {
@@ -119,9 +121,17 @@ fn drift_samples(status: &Status) -> DriftSamples {
         let (Some(model), Some(version), Some(report)) = (&a.model, &a.version, &a.drift) else { continue };
         for f in &report.fields {
             let l =
-                labels(&[("model", model), ("version", &version.to_string()), ("kind", f.kind), ("field", &f.name)]);
+                labels(&[("model", model), ("version", &version.to_string()), ("kind", &f.kind), ("field", &f.name)]);
             if let Some(i) = f.index {
                 out.index.push((l.clone(), i));
+            }
+            let fb = &f.fallbacks;
+            for (cause, n) in [("missing", fb.missing), ("stale", fb.stale), ("unavailable", fb.unavailable)] {
+                if n > 0 {
+                    let mut with_cause = l.clone();
+                    with_cause.push(("cause", Escaped(cause.to_owned())));
+                    out.fallbacks.push((with_cause, n));
+                }
             }
             out.values.push((l, f.count));
         }
@@ -308,6 +318,12 @@ impl Collector for Exposition {
             "drift_values",
             "Live values of a profiled field counted in the drift window.",
             Samples::Gauge(self.drift.values.clone()),
+        )?;
+        family(
+            &mut e,
+            "drift_fallbacks",
+            "Live values of a feature in the drift window that were the features plan's fallback, by cause.",
+            Samples::Gauge(self.drift.fallbacks.clone()),
         )?;
         family(
             &mut e,

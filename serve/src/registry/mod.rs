@@ -44,6 +44,7 @@ use semver::Version;
 use serde::Serialize;
 
 use crate::features::{Fetched, GatherError, VersionPlan};
+use paddock_host::FallbackCause;
 use paddock_host::artifact::digest::Digest;
 use paddock_host::artifact::trust::TrustPolicy;
 use paddock_host::contract::rows::{Row, RowError};
@@ -455,6 +456,23 @@ impl Gathered {
 }
 
 impl Gathered {
+    /// Counts, for the model's drift report, the features of the `scored`
+    /// rows (numbered among the gathered rows, from 1) that were the plan's
+    /// fallback, by cause.
+    fn count_fallbacks(&self, model: &paddock_host::Model, scored: &[usize]) {
+        let mut counts: BTreeMap<(&str, FallbackCause), u64> = BTreeMap::new();
+        for &n in scored {
+            for fetched in self.lookups.get(n.wrapping_sub(1)).into_iter().flatten() {
+                if let Some(cause) = fetched.outcome.fallback_cause() {
+                    *counts.entry((fetched.feature.as_str(), cause)).or_default() += 1;
+                }
+            }
+        }
+        for ((feature, cause), n) in counts {
+            model.count_fallbacks(feature, cause, n);
+        }
+    }
+
     /// The scoring result with rows numbered as the request numbered them,
     /// and the lookup problems among the others.
     fn renumber(&self, result: Result<Scored, ScoreError>) -> Result<Scored, ScoreError> {
@@ -535,6 +553,9 @@ fn score_and_explain(
         _ => None,
     };
     drop(in_flight);
+    if let (Ok(scored), Some(g)) = (&result, gathered) {
+        g.count_fallbacks(&served.model, &scored.scored);
+    }
     let result = match gathered {
         None => result,
         Some(g) => g.renumber(result),
