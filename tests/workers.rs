@@ -193,10 +193,24 @@ async fn two_workers_answer_every_event_once_and_dead_letter_the_bad() {
         worker::metrics_router(registry.clone(), counts[0].clone()),
         std::future::pending(),
     ));
+    let store_url = url.replace("/metrics", "/store");
     let text =
         tokio::task::spawn_blocking(move || ureq::get(&url).call().unwrap().body_mut().read_to_string().unwrap())
             .await
             .unwrap();
+    // Beside it, the registry's status as the HTTP surface gives it (what
+    // `paddock drift` reads): the line carries no profile, so its drift is
+    // unavailable (null), not zero.
+    let status: serde_json::Value = serde_json::from_str(
+        &tokio::task::spawn_blocking(move || {
+            ureq::get(&store_url).call().unwrap().body_mut().read_to_string().unwrap()
+        })
+        .await
+        .unwrap(),
+    )
+    .unwrap();
+    let line = status["artifacts"].as_array().unwrap().iter().find(|a| a["model"] == "m").expect("m in the status");
+    assert_eq!((&line["state"], &line["drift"]), (&serde_json::json!("loaded"), &serde_json::Value::Null), "{line}");
     let s = &summaries[0];
     for line in [
         format!("paddock_worker_events_total {}\n", s.events),

@@ -208,13 +208,58 @@ pub struct StoreArgs {
     pub usage_every_secs: u64,
     #[command(flatten)]
     pub load: LoadArgs,
+    #[command(flatten)]
+    pub drift: DriftArgs,
+}
+
+/// How a host compares the values it scores with each version's training profile.
+#[derive(clap::Args, Clone, Debug)]
+pub struct DriftArgs {
+    /// How far back live values count towards drift, in minutes.
+    #[arg(long, default_value_t = 60, value_name = "MINUTES", value_parser = clap::value_parser!(u64).range(1..=10_080))]
+    pub drift_window_mins: u64,
+    /// Live values a field needs in the window before it gets an index.
+    #[arg(long, default_value_t = 200, value_name = "N")]
+    pub drift_min_values: u64,
+    /// Stability index from which a field is worth watching (common practice, not a standard).
+    #[arg(long, default_value_t = 0.1, value_name = "INDEX")]
+    pub drift_watch: f64,
+    /// Stability index from which a field calls for action (common practice, not a standard).
+    #[arg(long, default_value_t = 0.25, value_name = "INDEX")]
+    pub drift_act: f64,
+    /// Count nothing for drift.
+    #[arg(long, conflicts_with_all = ["drift_window_mins", "drift_min_values", "drift_watch", "drift_act"])]
+    pub no_drift: bool,
+}
+
+impl DriftArgs {
+    /// The drift window these flags describe, or `None` with `--no-drift`.
+    ///
+    /// # Errors
+    /// When `--drift-watch` is not below `--drift-act`, or either is not a positive number.
+    pub fn window(&self) -> Result<Option<paddock_host::DriftWindow>> {
+        if self.no_drift {
+            return Ok(None);
+        }
+        let (watch, act) = (self.drift_watch, self.drift_act);
+        if !(watch > 0.0 && watch < act && act.is_finite()) {
+            anyhow::bail!("--drift-watch ({watch}) must be above 0 and below --drift-act ({act})");
+        }
+        Ok(Some(paddock_host::DriftWindow {
+            length: std::time::Duration::from_secs(60 * self.drift_window_mins),
+            min_count: self.drift_min_values,
+            watch,
+            act,
+            ..paddock_host::DriftWindow::default()
+        }))
+    }
 }
 
 impl StoreArgs {
     /// The registry options these flags describe.
     pub fn options(&self) -> Result<RegistryOptions> {
         Ok(RegistryOptions {
-            model: self.load.options(),
+            model: paddock_host::ModelOptions { drift: self.drift.window()?, ..self.load.options() },
             trust: self.load.trust.policy()?,
             size_cap: self.load.size_cap(),
             require_checks: self.require_checks,

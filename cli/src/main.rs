@@ -30,6 +30,7 @@ macro_rules! out {
 #[global_allocator]
 static ALLOCATOR: mimalloc::MiMalloc = mimalloc::MiMalloc;
 
+mod bars;
 mod cmd;
 mod common;
 mod flags;
@@ -56,6 +57,7 @@ enum Command {
     Audit(cmd::audit::Args),
     Demo(cmd::demo::Args),
     Status(cmd::status::Args),
+    Drift(cmd::drift::Args),
     Serve(cmd::serve::Args),
     Stream(cmd::stream::Args),
     Usage(cmd::usage::Args),
@@ -102,6 +104,7 @@ fn main() -> ExitCode {
         Command::Audit(a) => cmd::audit::run(a),
         Command::Demo(a) => cmd::demo::run(a),
         Command::Status(a) => cmd::status::run(a),
+        Command::Drift(a) => cmd::drift::run(a),
         Command::Serve(a) => cmd::serve::run(a),
         Command::Stream(a) => cmd::stream::run(a),
         Command::Usage(a) => cmd::usage::run(a),

@@ -427,6 +427,63 @@ fn score_compares_a_files_rows_with_the_training_profile() {
     assert!(!o.status.success() && text(&o.stderr).contains("carries no training profile"), "{}", text(&o.stderr));
 }
 
+/// `paddock drift` asks a running host: a store serving the diabetes model
+/// with its training profile gets the `bmi`-shifted rows
+/// (tests/imports/export.py) one request each; the command names `bmi` as
+/// calling for action, alone, draws its bars, and exits 1. Before any
+/// request, nothing has enough values and it exits 0.
+#[test]
+fn drift_draws_a_running_hosts_counts() {
+    let dir = tempfile::tempdir().unwrap();
+    let (store, state) = (dir.path().join("store"), dir.path().join("state"));
+    let imports = root().join("target/paddock/imports");
+    let (model, profile) =
+        (imports.join("lgb-diabetes-profiled.txt"), imports.join("lgb-diabetes-profiled.profile.json"));
+    let out = store.join("diabetes/1.0.0.wasm");
+    std::fs::create_dir_all(out.parent().unwrap()).unwrap();
+    let o = paddock(
+        &[
+            "pack",
+            model.to_str().unwrap(),
+            "--profile",
+            profile.to_str().unwrap(),
+            "--name",
+            "diabetes",
+            "--version",
+            "1.0.0",
+            "--out",
+            out.to_str().unwrap(),
+        ],
+        None,
+    );
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    std::fs::write(store.join("routes.toml"), "[models.diabetes]\ndefault = \"1.0.0\"\n").unwrap();
+    let served = Served::start(&store, &state);
+    let o = paddock(&["drift", &served.base], None);
+    assert_eq!(o.status.code(), Some(0), "{}{}", text(&o.stdout), text(&o.stderr));
+    assert!(text(&o.stdout).starts_with("diabetes 1.0.0: too few values"), "{}", text(&o.stdout));
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(imports.join("drift.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    let case = doc["cases"].as_array().unwrap().iter().find(|c| c["case"] == "bmi-shifted").unwrap();
+    let agent = ureq::Agent::config_builder().http_status_as_error(false).build().new_agent();
+    for row in case["rows"].as_array().unwrap() {
+        let object: serde_json::Map<String, serde_json::Value> =
+            names.iter().cloned().zip(row.as_array().unwrap().iter().cloned()).collect();
+        let body = serde_json::json!({"model": "diabetes", "rows": [object]}).to_string();
+        let r = agent.post(&format!("{}/estimate", served.base)).header("content-type", "application/json").send(body);
+        assert_eq!(r.unwrap().status().as_u16(), 200);
+    }
+    let o = paddock(&["drift", &served.base], None);
+    let said = text(&o.stdout);
+    assert_eq!(o.status.code(), Some(1), "{said}{}", text(&o.stderr));
+    assert!(said.starts_with("diabetes 1.0.0: act: bmi\n"), "{said}");
+    let acting: Vec<&str> = said.lines().filter(|l| l.ends_with("values)") && l.contains(", act (")).collect();
+    assert_eq!(acting, [format!("feature bmi: index {}", &acting[0]["feature bmi: index ".len()..])], "{said}");
+    assert!(said.contains("(training | live, last 1 h)") && said.contains('█'), "{said}");
+    let o = paddock(&["drift", &served.base, "--model", "nothing-here"], None);
+    assert!(text(&o.stderr).contains("serves no model `nothing-here`"), "{}", text(&o.stderr));
+}
+
 /// A PMML document packs onto the program guest; the checks are worked
 /// out by hand from the document (tests/pmml.rs shows the steps).
 #[test]

@@ -500,14 +500,25 @@ fn bin_names(profile: &FieldProfile) -> Vec<String> {
     let mut names: Vec<String> = match &profile.bins {
         Bins::Edges(edges) if edges.is_empty() => vec!["any".into()],
         Bins::Edges(edges) => {
-            let mut n: Vec<String> = edges.iter().map(|e| format!("≤ {e}")).collect();
-            n.push(format!("> {}", edges[edges.len() - 1]));
+            let mut n: Vec<String> = edges.iter().map(|e| format!("≤ {}", four_figures(*e))).collect();
+            n.push(format!("> {}", four_figures(edges[edges.len() - 1])));
             n
         }
         Bins::Labels(labels) => labels.iter().cloned().chain(["unseen labels".to_owned()]).collect(),
     };
     names.push("missing".into());
     names
+}
+
+/// An edge for a bin's name, to four significant figures (`-0.05794`,
+/// `152.1`, `3`): the profile keeps the exact edge.
+fn four_figures(e: f64) -> String {
+    if e == 0.0 || !e.is_finite() {
+        return e.to_string();
+    }
+    let decimals = (3 - e.abs().log10().floor() as i32).clamp(0, 17) as usize;
+    let text = format!("{e:.decimals$}");
+    if text.contains('.') { text.trim_end_matches('0').trim_end_matches('.').to_owned() } else { text }
 }
 
 #[cfg(test)]
@@ -521,6 +532,12 @@ mod tests {
         let moved = stability_index(&[0.25, 0.75], &[75, 25]).unwrap();
         assert!((moved - 3f64.ln()).abs() < 1e-15, "{moved}");
         assert_eq!(stability_index(&[0.5, 0.5], &[0, 0]), None);
+    }
+
+    #[test]
+    fn bins_are_named_to_four_figures() {
+        let named: Vec<String> = [-0.05794093368208547, 152.13, 3.0, 0.0, 12345.6].map(four_figures).to_vec();
+        assert_eq!(named, ["-0.05794", "152.1", "3", "0", "12346"]);
     }
 
     fn watch() -> DriftWatch {

@@ -4,6 +4,7 @@ pub mod admit;
 pub mod audit;
 pub mod check;
 pub mod demo;
+pub mod drift;
 pub mod history;
 pub mod hosts;
 pub mod inspect;

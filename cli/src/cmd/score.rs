@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use anyhow::{Context, Result, bail};
 use indicatif::{ProgressBar, ProgressStyle};
 use paddock_host::contract::row_file::{self, Record, RowFormat};
-use paddock_host::{DriftLevel, DriftReport, DriftWindow, Model, ScoreError};
+use paddock_host::{DriftWindow, Model, ScoreError};
 
 use crate::Outcome;
 use crate::common::LoadArgs;
@@ -159,42 +159,9 @@ pub fn run(args: Args) -> Result<Outcome> {
     progress.finish_and_clear();
     eprintln!("{} scored, {} failed", rows(scored), rows(failed));
     if let Some(report) = args.drift.then(|| model.drift()).flatten() {
-        eprint!("{}", drift_text(&report));
+        eprint!("{}", crate::bars::drift_text(&report, "these rows"));
     }
     Ok(if failed == 0 { Outcome::Ok } else { Outcome::Failed })
-}
-
-/// A drift report for people: per field its index and level, any notes,
-/// then each bin's training and live shares as bars side by side.
-fn drift_text(report: &DriftReport) -> String {
-    const WIDTH: f64 = 30.0;
-    let bar = |share: f64| "█".repeat((share * WIDTH).round() as usize);
-    let mut out = String::from("\ndrift against the training profile (training | these rows):\n");
-    for f in &report.fields {
-        let index = f.index.map_or("-".to_owned(), |i| format!("{i:.3}"));
-        let level = match f.level {
-            DriftLevel::TooFew => "too few values",
-            DriftLevel::Steady => "steady",
-            DriftLevel::Watch => "watch",
-            DriftLevel::Act => "act",
-        };
-        out.push_str(&format!("\n{} {}: index {index}, {level} ({} values)\n", f.kind, f.name, f.count));
-        for note in &f.notes {
-            out.push_str(&format!("  note: {note}\n"));
-        }
-        let width = f.bins.iter().map(|b| b.chars().count()).max().unwrap_or(0);
-        for ((name, e), l) in f.bins.iter().zip(&f.expected).zip(&f.live) {
-            let pad = " ".repeat(width - name.chars().count());
-            out.push_str(&format!(
-                "  {name}{pad} {:>5.1} % {:<30} | {:>5.1} % {}\n",
-                e * 100.0,
-                bar(*e),
-                l * 100.0,
-                bar(*l)
-            ));
-        }
-    }
-    out
 }
 
 /// Scores the valid records of a batch in one call; if that call fails as

@@ -61,7 +61,9 @@ pub struct Args {
     name: Option<String>,
     /// Serve `GET /metrics` (OpenMetrics: this worker's events, answers,
     /// dead letters, redeliveries and the consumer's backlog, and per-model
-    /// scoring) on this address; the first line on stdout names it.
+    /// scoring and drift) and `GET /store` (the status as JSON, which
+    /// `paddock drift` reads) on this address; the first line on stdout
+    /// names it.
     #[arg(long, value_name = "ADDR")]
     metrics: Option<std::net::SocketAddr>,
     /// Seconds between rescans of the store (besides file-system events).

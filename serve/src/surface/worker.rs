@@ -207,12 +207,19 @@ impl WorkerCounts {
 }
 
 /// The worker's `GET /metrics`: the registry's families (per model
-/// version: calls, rows, errors, time, fuel; feature sources; artifacts)
-/// and the worker's own (`paddock_worker_*`), in the OpenMetrics text
-/// format. Serve it with [`super::http::serve`].
+/// version: calls, rows, errors, time, fuel; feature sources; artifacts;
+/// drift) and the worker's own (`paddock_worker_*`), in the OpenMetrics
+/// text format; and `GET /store`, the registry's status as JSON (each
+/// served version's drift report among it), as the HTTP surface serves it.
+/// Serve it with [`super::http::serve`].
 #[cfg(feature = "http")]
 pub fn metrics_router(registry: Registry, counts: Arc<WorkerCounts>) -> axum::Router {
     use axum::http::header;
+    let status = registry.clone();
+    let store = move || {
+        let body = serde_json::to_vec(&status.status()).unwrap_or_default();
+        ([(header::CONTENT_TYPE, "application/json")], body)
+    };
     let text = move || {
         let text = crate::registry::metrics::render(
             registry.usage(),
@@ -222,7 +229,9 @@ pub fn metrics_router(registry: Registry, counts: Arc<WorkerCounts>) -> axum::Ro
         );
         ([(header::CONTENT_TYPE, crate::registry::metrics::CONTENT_TYPE)], text)
     };
-    axum::Router::new().route("/metrics", axum::routing::get(move || std::future::ready(text())))
+    axum::Router::new()
+        .route("/metrics", axum::routing::get(move || std::future::ready(text())))
+        .route("/store", axum::routing::get(move || std::future::ready(store())))
 }
 
 /// A dead letter: the event as it came, and why it was not answered.
