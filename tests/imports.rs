@@ -790,6 +790,51 @@ fn a_training_profile_is_carried_and_checked_against_the_contract() {
     }
 }
 
+/// A profile made in Rust (`Profile::of_rows`, for trainers and embedders
+/// that are not notebooks) is the notebook helper's: from the same 442
+/// diabetes rows, and the model's own answers to them, the same edges
+/// (NumPy's linear deciles, to 1e-15 relative) and shares (exactly), and
+/// the same summaries to 1e-12 (NumPy sums pairwise).
+#[test]
+fn a_profile_made_in_rust_is_the_notebook_helpers() {
+    let runtime = Runtime::new().unwrap();
+    let (_, _, helper) = profiled();
+    let model = pack_with_profile(&runtime, &helper).unwrap();
+    let doc: serde_json::Value = serde_json::from_slice(&std::fs::read(dir().join("drift.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    let training: Vec<Vec<f64>> = serde_json::from_value(doc["training"].clone()).unwrap();
+    let rows: Vec<paddock_host::Row> =
+        training.iter().map(|r| names.iter().cloned().zip(r.iter().copied()).collect()).collect();
+    let contract = model.contract();
+    let order: Vec<usize> =
+        contract.features.iter().map(|f| names.iter().position(|n| *n == f.name).unwrap()).collect();
+    let cells: Vec<f64> = training.iter().flat_map(|r| order.iter().map(|&j| r[j])).collect();
+    let values = model.score(&rows).unwrap().values().to_vec();
+    let made = paddock_host::Profile::of_rows("rust", contract, training.len(), &cells, &values);
+    assert_eq!(made.rows, helper.rows);
+    for (kind, ours, theirs) in
+        [("feature", &made.features, &helper.features), ("output", &made.outputs, &helper.outputs)]
+    {
+        assert_eq!(ours.keys().collect::<Vec<_>>(), theirs.keys().collect::<Vec<_>>(), "{kind}s");
+        for (name, field) in ours {
+            let want = &theirs[name];
+            let (paddock_host::Bins::Edges(a), paddock_host::Bins::Edges(b)) = (&field.bins, &want.bins) else {
+                panic!("{kind} {name}: numbers")
+            };
+            assert_eq!(a.len(), b.len(), "{kind} {name}: {a:?} against {b:?}");
+            for (x, y) in a.iter().zip(b) {
+                assert!((x - y).abs() <= 1e-15 * y.abs(), "{kind} {name}: edge {x} against NumPy's {y}");
+            }
+            assert_eq!(field.shares, want.shares, "{kind} {name}: shares");
+            let (s, t) = (field.summary.unwrap(), want.summary.unwrap());
+            assert_eq!((s.min, s.max), (t.min, t.max), "{kind} {name}");
+            for (x, y) in [(s.mean, t.mean), (s.sd, t.sd)] {
+                assert!((x - y).abs() <= 1e-12 * y.abs().max(1.0), "{kind} {name}: {x} against NumPy's {y}");
+            }
+        }
+    }
+}
+
 /// Live rows binned by the profile's edges and their stability index,
 /// against NumPy on the same rows (outside reference: `numpy.searchsorted`
 /// for the bins, `numpy.sum` and `numpy.log` for the index;

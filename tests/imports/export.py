@@ -285,4 +285,5 @@ for case, rows in [("bootstrap", bootstrap), ("bmi-shifted", shifted), ("s5-hole
                   "counts": counts, "index": index})
 with open(os.path.join(OUT, "drift.json"), "w") as f:
     json.dump({"source": f"NumPy {numpy.__version__}: bins by numpy.searchsorted, index by numpy.sum/log, "
-                         f"empty bins as {EPS}", "names": names, "cases": cases}, f)
+                         f"empty bins as {EPS}", "names": names, "cases": cases,
+               "training": [[float(v) for v in r] for r in x]}, f)

@@ -158,7 +158,92 @@ impl Profile {
     }
 }
 
+/// Number of the deciles a number's edges are made of.
+const DECILES: usize = 9;
+
+impl Profile {
+    /// The profile of training rows as the contract encodes them — `cells`
+    /// (`rows` × features: numbers, a label as its index in the contract's
+    /// list, absent as NaN) — and of the model's answers to them, `values`
+    /// (`rows` × outputs), the way the notebook helper makes one: a
+    /// number's edges are the deciles of its values present (NumPy's
+    /// default, linear, quantiles; repeated edges dropped), a label feature
+    /// gets a bin per label the rows use. `source` says where the rows came
+    /// from.
+    ///
+    /// # Panics
+    /// When `cells` or `values` is not `rows` times the contract's width.
+    pub fn of_rows(source: &str, contract: &Contract, rows: usize, cells: &[f64], values: &[f64]) -> Profile {
+        let (features, outputs) = (contract.features.len(), contract.outputs.len());
+        assert_eq!((cells.len(), values.len()), (rows * features, rows * outputs), "rows × the contract's width");
+        fn column(data: &[f64], width: usize, j: usize) -> impl Iterator<Item = f64> + '_ {
+            data.iter().skip(j).step_by(width.max(1)).copied()
+        }
+        let features = contract
+            .features
+            .iter()
+            .enumerate()
+            .map(|(j, f)| {
+                let profile = match &f.domain {
+                    Domain::Label(labels) => FieldProfile::of_labels(
+                        column(cells, features, j).map(|v| (!v.is_nan()).then(|| labels[v as usize].as_str())),
+                    ),
+                    _ => FieldProfile::of_numbers(column(cells, features, j)),
+                };
+                (f.name.clone(), profile)
+            })
+            .collect();
+        let outputs = contract
+            .outputs
+            .iter()
+            .enumerate()
+            .map(|(k, o)| (o.name.clone(), FieldProfile::of_numbers(column(values, outputs, k))))
+            .collect();
+        Profile { source: source.to_owned(), rows: rows as u64, features, outputs }
+    }
+}
+
 impl FieldProfile {
+    /// A number's profile from its training values (NaN: missing).
+    pub fn of_numbers(values: impl Iterator<Item = f64>) -> FieldProfile {
+        let mut total = 0usize;
+        let mut present: Vec<f64> = values.inspect(|_| total += 1).filter(|v| !v.is_nan()).collect();
+        present.sort_by(f64::total_cmp);
+        let mut edges: Vec<f64> = (1..=DECILES).filter_map(|q| quantile(&present, q as f64 / 10.0)).collect();
+        edges.dedup();
+        let mut shares = vec![0.0; edges.len() + 2];
+        for v in &present {
+            shares[edges.partition_point(|e| e < v)] += 1.0;
+        }
+        shares[edges.len() + 1] = (total - present.len()) as f64;
+        shares.iter_mut().for_each(|s| *s /= total.max(1) as f64);
+        let summary = (!present.is_empty()).then(|| {
+            let n = present.len() as f64;
+            let mean = present.iter().sum::<f64>() / n;
+            let sd = (present.iter().map(|v| (v - mean).powi(2)).sum::<f64>() / n).sqrt();
+            Summary { min: present[0], max: present[present.len() - 1], mean, sd }
+        });
+        FieldProfile { bins: Bins::Edges(edges), shares, summary }
+    }
+
+    /// A label's profile from its training values (`None`: missing): a bin
+    /// per label seen, in sorted order, the unseen-label bin (share 0) and
+    /// the missing bin.
+    pub fn of_labels<'a>(values: impl Iterator<Item = Option<&'a str>>) -> FieldProfile {
+        let mut counts: BTreeMap<&str, usize> = BTreeMap::new();
+        let (mut total, mut missing) = (0usize, 0usize);
+        for v in values {
+            total += 1;
+            match v {
+                Some(label) => *counts.entry(label).or_default() += 1,
+                None => missing += 1,
+            }
+        }
+        let share = |n: usize| n as f64 / total.max(1) as f64;
+        let shares = counts.values().map(|&n| share(n)).chain([0.0, share(missing)]).collect();
+        FieldProfile { bins: Bins::Labels(counts.keys().map(|l| (*l).to_owned()).collect()), shares, summary: None }
+    }
+
     /// Bins for values: the value bins, the unseen-label bin for labels,
     /// and the missing bin.
     pub fn bin_count(&self) -> usize {
@@ -237,6 +322,19 @@ impl FieldProfile {
     }
 }
 
+/// The `q` quantile of sorted values as NumPy's default (`linear`) method
+/// computes it: at virtual index q·(n − 1), between its neighbours, the
+/// difference weighted from the nearer end as `numpy.lib._function_base_impl._lerp` does.
+fn quantile(sorted: &[f64], q: f64) -> Option<f64> {
+    let last = sorted.len().checked_sub(1)?;
+    let at = q * last as f64;
+    let below = (at.floor() as usize).min(last);
+    let above = (below + 1).min(last);
+    let (a, b, t) = (sorted[below], sorted[above], at - below as f64);
+    let step = b - a;
+    Some(if t >= 0.5 { b - step * (1.0 - t) } else { a + step * t })
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -255,6 +353,14 @@ mod tests {
             summary: None,
         };
         assert_eq!([Some("b"), Some("new"), None].map(|v| l.bin_of_label(v)), [1, 2, 3]);
+    }
+
+    #[test]
+    fn a_labels_profile_has_a_bin_per_label_seen() {
+        let f = FieldProfile::of_labels([Some("b"), Some("a"), None, Some("b")].into_iter());
+        assert_eq!(f.bins, Bins::Labels(vec!["a".into(), "b".into()]));
+        assert_eq!(f.shares, [0.25, 0.5, 0.0, 0.25]);
+        assert_eq!(f.check(), Ok(()));
     }
 
     #[test]
