@@ -584,10 +584,22 @@ fn demo_routes_each_plug_in_and_says_which_version_answered_and_why() {
     // Monday 00:20 in Oslo is still Sunday in UTC: the weekday version answers.
     assert!(line("Mon 00:20").contains("1.0.0 · default"), "{s}");
     assert!(line("shadow charge-minutes 2.0.0-rc.1").contains("10 requests compared"), "{s}");
+    // Weekday plug-ins with bigger batteries than the weekday version
+    // trained on: its drift report names that feature alone, with its bars.
+    assert!(line("drift: 400 weekday plug-ins").ends_with("its drift report says act: battery_kwh"), "{s}");
+    let features: Vec<&str> = s.lines().filter(|l| l.starts_with("feature ") && !l.contains(": index")).collect();
+    assert_eq!(features.len(), 8, "{s}");
+    assert!(features.iter().all(|l| l.contains("battery_kwh") || l.ends_with("steady")), "{s}");
+    assert!(line("feature battery_kwh   ").ends_with("act"), "{s}");
+    assert!(line("feature battery_kwh: index ").ends_with("act (407 values)"), "{s}");
 
     let out = paddock(&["demo", "--store", store.to_str().unwrap(), "--json"], None);
     let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
     assert_eq!(v["answers"].as_array().unwrap().len(), 10);
+    let acting: Vec<&serde_json::Value> =
+        v["drift"]["report"]["fields"].as_array().unwrap().iter().filter(|f| f["level"] == "act").collect();
+    assert_eq!(acting.len(), 1, "{}", v["drift"]);
+    assert_eq!((&acting[0]["kind"], &acting[0]["name"]), (&"feature".into(), &"battery_kwh".into()));
     // Machine-readable fields carry names, not prose with backticks.
     let canary =
         v["answers"].as_array().unwrap().iter().find(|a| a["minutes_reason"]["picked_by"] == "canary").unwrap();

@@ -397,8 +397,9 @@ fn finish_build(root: &Path, guest_build: GuestBuild<'_>) -> Result<Tools> {
     Ok(tools)
 }
 
-/// Packs the demo store's versions (params carrying their own contract) with
-/// the generic guests, and copies its routes file.
+/// Packs the demo store's versions (params carrying their own contract,
+/// checks and training profile) with the generic guests, and copies its
+/// routes file.
 fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: &Path) -> Result<()> {
     for (model, guest) in [("charge-minutes", "paddock-model-trees"), ("overstay-risk", "paddock-model-linear")] {
         let dir = store.join(model);
@@ -414,6 +415,7 @@ fn demo_store(root: &Path, tools: &Tools, guests: &Path, trained: &Path, store: 
             pack.arg(guests.join(format!("{guest}.wasm")));
             pack.arg("--params").arg(trained.join(model).join(format!("{version}.params")));
             pack.arg("--checks").arg(trained.join(model).join(format!("{version}.checks.json")));
+            pack.arg("--profile").arg(trained.join(model).join(format!("{version}.profile.json")));
             pack.arg("--out").arg(dir.join(format!("{version}.wasm")));
             run(pack)?;
         }

@@ -4,7 +4,9 @@
 //! session charges, and its estimate feeds `overstay-risk`. Each answer
 //! says which version produced it and why (the weekend rule, the north
 //! region's rule, the 10 % canary by site…); a candidate version runs in
-//! the shadow of every `charge-minutes` request.
+//! the shadow of every `charge-minutes` request. Then simulated plug-ins
+//! with bigger batteries than the model trained on show the host's drift
+//! report naming that one feature.
 
 use std::collections::HashMap;
 use std::path::PathBuf;
@@ -144,6 +146,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     let mut reader = csv::Reader::from_reader(PLUGINS.as_bytes());
     let header = reader.headers()?.clone();
     let mut answers = Vec::new();
+    let mut first: Option<(paddock_serve::RequestContext, Timestamp)> = None;
     let mut looked_up: std::collections::BTreeMap<paddock_serve::features::Outcome, usize> =
         std::collections::BTreeMap::new();
     for record in reader.records() {
@@ -160,6 +163,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let context: paddock_serve::RequestContext =
             ["site", "region", "member", "lat", "lon"].iter().map(|k| ((*k).to_owned(), cells[*k].clone())).collect();
 
+        first.get_or_insert_with(|| (context.clone(), at));
         let minutes_model = routed_model(registry, "charge-minutes", &context, at)?;
         let rows = [row_for(&minutes_model, &cells)];
         let m = registry.score(&Request::new("charge-minutes", &context, &rows).at(Some(at)))?;
@@ -200,13 +204,18 @@ pub fn run(args: Args) -> Result<Outcome> {
     }
     registry.drain_shadows(Duration::from_secs(10));
     let usage = registry.usage();
+    let drift = match &first {
+        Some((context, at)) => drifted(registry, context, *at)?,
+        None => None,
+    };
     if args.json {
         #[derive(Serialize)]
         struct Demo<'a> {
             answers: &'a [Answer],
             usage: &'a paddock_serve::registry::UsageReport,
+            drift: Option<&'a Drifted>,
         }
-        print_json(&Demo { answers: &answers, usage: &usage })?;
+        print_json(&Demo { answers: &answers, usage: &usage, drift: drift.as_ref() })?;
         return Ok(Outcome::Ok);
     }
     let rows: Vec<Vec<String>> = answers
@@ -253,6 +262,9 @@ pub fn run(args: Args) -> Result<Outcome> {
             count(Outcome::Stale)
         )?;
     }
+    if let Some(d) = &drift {
+        outln!("\n{}", drift_part(d))?;
+    }
     let status = registry.status();
     outln!(
         "{} versions loaded, each in its own sandbox; `paddock serve --store {store}{}` serves the same store over HTTP",
@@ -260,6 +272,86 @@ pub fn run(args: Args) -> Result<Outcome> {
         if matches!(store, Place::Shared(_)) { " --state DIR" } else { "" }
     )?;
     Ok(Outcome::Ok)
+}
+
+/// Simulated plug-ins scored on a version, and its drift report after them.
+#[derive(Serialize)]
+struct Drifted {
+    model: String,
+    version: String,
+    plugins: usize,
+    moved: &'static str,
+    by: f64,
+    report: paddock_host::DriftReport,
+}
+
+/// Weekday plug-ins simulated as the training sessions were, but in a
+/// world where every car's battery is 25 kWh bigger, scored on the first
+/// plug-in's `charge-minutes` version (the weekday one); its drift report
+/// after them. `None` when the
+/// version carries no profile.
+fn drifted(registry: &Registry, context: &paddock_serve::RequestContext, at: Timestamp) -> Result<Option<Drifted>> {
+    use rand::SeedableRng;
+    const PLUGINS: usize = 400;
+    let (moved, by) = ("battery_kwh", 25.0);
+    let model = routed_model(registry, "charge-minutes", context, at)?;
+    if model.profile().is_none() {
+        return Ok(None);
+    }
+    let world = paddock_demo_sessions::World::TRAINING.bigger_batteries(by);
+    let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(2027);
+    // The first plug-in is on a weekday: its version learnt from weekday
+    // sessions alone, so weekday plug-ins are what it should see.
+    let rows: Vec<Row> = std::iter::repeat_with(|| paddock_demo_sessions::session_in(&world, &mut rng))
+        .filter(|s| s.hour_of_week < 120)
+        .take(PLUGINS)
+        .map(|s| model.schema().decode_row(&s.minutes_features()))
+        .collect();
+    for chunk in rows.chunks(50) {
+        model.score(chunk)?;
+    }
+    Ok(model.drift().map(|report| Drifted {
+        model: model.contract().name.clone(),
+        version: model.contract().version.clone(),
+        plugins: PLUGINS,
+        moved,
+        by,
+        report,
+    }))
+}
+
+/// The drift part: each field's index and level, then the bars of those
+/// that call for action.
+fn drift_part(d: &Drifted) -> String {
+    let rows: Vec<Vec<String>> = d
+        .report
+        .fields
+        .iter()
+        .map(|f| {
+            vec![
+                format!("{} {}", f.kind, f.name),
+                f.index.map_or("-".into(), |i| format!("{i:.3}")),
+                serde_json::to_value(f.level).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default(),
+            ]
+        })
+        .collect();
+    let acting = paddock_host::DriftReport {
+        window: d.report.window,
+        fields: d.report.fields.iter().filter(|f| f.level == paddock_host::DriftLevel::Act).cloned().collect(),
+    };
+    format!(
+        "drift: {} weekday plug-ins simulated as {} {}'s training sessions were, but with every {} {} kWh bigger \
+         (members' cars getting bigger batteries; invented, demo only), scored on it; its drift report says {}\n\n{}{}\n\
+         (a high index says the inputs changed, not that the model is wrong; `paddock drift HOST` shows a running host's)",
+        d.plugins,
+        d.model,
+        d.version,
+        d.moved,
+        d.by,
+        d.report.summary(),
+        text_table(&["field", "stability index", "level"], &rows),
+        crate::bars::drift_text(&acting, "simulated plug-ins"),
+    )
 }
 
 /// Why the first plug-in's overstay risk is what it is: the features that

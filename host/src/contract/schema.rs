@@ -166,6 +166,30 @@ impl Schema {
         }
     }
 
+    /// The row whose cells these are, the inverse of
+    /// [`Schema::encode_row`]: a number, a whole number, a label by its
+    /// index, a flag as 0 or 1; NaN (or a label index the contract does not
+    /// have) leaves the feature out. Extra cells are ignored.
+    pub fn decode_row(&self, cells: &[f64]) -> Row {
+        let mut row = Row::with_capacity(self.width());
+        for (feature, &cell) in self.contract().features.iter().zip(cells) {
+            if cell.is_nan() {
+                continue;
+            }
+            let value = match &feature.domain {
+                Domain::Real(_) => Value::Number(cell),
+                Domain::Whole(_) => Value::Integer(cell as i64),
+                Domain::Label(labels) => match labels.get(cell as usize) {
+                    Some(label) if cell >= 0.0 && cell.fract() == 0.0 => Value::Label(label.clone()),
+                    _ => continue,
+                },
+                Domain::Flag => Value::Flag(cell != 0.0),
+            };
+            row.set(&feature.name, value);
+        }
+        row
+    }
+
     /// Reads a feature value from text (a CSV cell) according to the
     /// feature's domain. An empty cell is absent. The value is checked later
     /// by [`Schema::encode_row`]; text that is not of the domain's kind is
@@ -349,6 +373,16 @@ mod tests {
         assert_eq!(&cells[..4], &[11.0, 7.0, 1.0, 1.0]);
         assert_eq!(&cells[4..7], &[11.0, 7.0, 1.0]);
         assert!(cells[7].is_nan());
+    }
+
+    #[test]
+    fn decoding_cells_gives_the_row_back() {
+        let s = schema();
+        for row in [good().with("fleet", true), good()] {
+            let mut cells = vec![];
+            s.encode_row(1, &row, &mut cells).unwrap();
+            assert_eq!(s.decode_row(&cells), row);
+        }
     }
 
     #[test]

@@ -7,7 +7,8 @@
 //!
 //! writes `OUT_DIR/charge-minutes.params`, `OUT_DIR/charge-minutes.checks.json`,
 //! `OUT_DIR/overstay-risk.params`, `OUT_DIR/overstay-risk.checks.json`, and
-//! the versions of the demo store under `OUT_DIR/store/<model>/<version>.*`,
+//! the versions of the demo store under `OUT_DIR/store/<model>/<version>.*`
+//! (params, checks and the training profile of each),
 //! and the tables its features are looked up in (`OUT_DIR/store/tables/`)
 //! (params carrying their contract, for the generic `trees` and `linear`
 //! guests; see `routes.toml` beside this crate for how they are routed).
@@ -17,7 +18,6 @@
 //! passes them computes what this program computed.
 
 mod boost;
-mod simulate;
 
 use std::path::{Path, PathBuf};
 
@@ -25,12 +25,13 @@ use anyhow::{Context, Result};
 use paddock_guest::ndarray::Array2;
 use paddock_guest::{Contract, Evaluate, Linear, LinearParams, Link, Packaged, Trees, encode_params};
 use paddock_host::artifact::checks::{Case, Checks, Tolerance};
-use paddock_host::{Row, Value};
+use paddock_host::{Profile, Row, Value};
 use rand::SeedableRng;
 use smartcore::linalg::basic::arrays::Array;
 use smartcore::linalg::basic::matrix::DenseMatrix;
 use smartcore::linear::logistic_regression::LogisticRegression;
 
+use paddock_demo_sessions as simulate;
 use simulate::Session;
 
 const TRAIN: usize = 20_000;
@@ -152,8 +153,15 @@ fn store_versions(dir: &Path, train: &[Session], held_out: &[Session], served_mi
         contract.version = version.into();
         let trained = fit_minutes(sessions, &settings, &contract)?;
         let checks = record(held_out, source, minutes_row, |s| predict(&trained, &s.minutes_features()));
+        let profile = profile_of(
+            sessions,
+            &contract,
+            |s| s.minutes_features().to_vec(),
+            |s| predict(&trained, &s.minutes_features()),
+        )?;
         let packaged = Packaged { contract, params: trained.1 };
         write(&dir.join("charge-minutes"), version, &encode_params(&packaged), &checks)?;
+        write_profile(&dir.join("charge-minutes"), version, &profile)?;
     }
     let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
     let north: Vec<Session> = (0..TRAIN).map(|_| simulate::session(&mut rng)).collect();
@@ -167,8 +175,15 @@ fn store_versions(dir: &Path, train: &[Session], held_out: &[Session], served_mi
             |s| overstay_row(s, served_minutes),
             |s| predict(&trained, &s.overstay_features(predict(served_minutes, &s.minutes_features()))),
         );
+        let profile = profile_of(
+            sessions,
+            &contract,
+            |s| s.overstay_features(predict(served_minutes, &s.minutes_features())).to_vec(),
+            |s| predict(&trained, &s.overstay_features(predict(served_minutes, &s.minutes_features()))),
+        )?;
         let packaged = Packaged { contract, params: trained.1 };
         write(&dir.join("overstay-risk"), version, &encode_params(&packaged), &checks)?;
+        write_profile(&dir.join("overstay-risk"), version, &profile)?;
     }
     Ok(())
 }
@@ -188,10 +203,14 @@ fn train_minutes(train: &[Session]) -> Result<Trained<Trees>> {
     fit_minutes(train, &settings, &charge_minutes::contract())
 }
 
+/// Boosted trees fitted to the logarithm of the minutes, read through the
+/// exponential: an estimate is never negative, as the contract's bounds
+/// promise, however far a plug-in is from the training sessions.
 fn fit_minutes(train: &[Session], settings: &boost::Settings, contract: &Contract) -> Result<Trained<Trees>> {
     let x: Vec<Vec<f64>> = train.iter().map(|s| s.minutes_features().to_vec()).collect();
-    let y: Vec<f64> = train.iter().map(|s| s.minutes).collect();
-    let params = boost::fit(&x, &y, 8, settings);
+    let y: Vec<f64> = train.iter().map(|s| s.minutes.ln()).collect();
+    let mut params = boost::fit(&x, &y, 8, settings);
+    params.link = paddock_guest::OutputLink::Exp;
     let trees = paddock_guest::build_for::<Trees>(contract, params.clone()).map_err(anyhow::Error::msg)?;
     Ok((trees, params))
 }
@@ -282,6 +301,29 @@ fn record(
             })
             .collect(),
     }
+}
+
+/// The training profile of `sessions` as `contract`'s features (`cells`)
+/// and the trained model's answers (`answer`): what `paddock pack
+/// --profile` carries so hosts can tell when live plug-ins stop looking
+/// like these.
+fn profile_of(
+    sessions: &[Session],
+    contract: &Contract,
+    cells: impl Fn(&Session) -> Vec<f64>,
+    answer: impl Fn(&Session) -> f64,
+) -> Result<Profile> {
+    // The guest's contract and the host's are the same WIT record, bound twice.
+    let contract: paddock_host::Contract = serde_json::from_value(serde_json::to_value(contract)?)?;
+    let cells: Vec<f64> = sessions.iter().flat_map(&cells).collect();
+    let values: Vec<f64> = sessions.iter().map(answer).collect();
+    let source = format!("paddock-train-demo: {} simulated training sessions (demo only)", sessions.len());
+    Ok(Profile::of_rows(&source, &contract, sessions.len(), &cells, &values))
+}
+
+fn write_profile(dir: &Path, name: &str, profile: &Profile) -> Result<()> {
+    let p = dir.join(format!("{name}.profile.json"));
+    std::fs::write(&p, profile.to_json()).with_context(|| format!("writing {}", p.display()))
 }
 
 fn write(dir: &Path, name: &str, params: &[u8], checks: &Checks) -> Result<()> {

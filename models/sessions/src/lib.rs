@@ -2,6 +2,10 @@
 //! follows the physics loosely (energy over power, slower when cold, slower
 //! above 80 %) so the demo models have something plausible to learn. Its
 //! numbers are not measurements and must not drive real decisions.
+//!
+//! The trainer (`paddock-train-demo`) draws its training sessions here; the
+//! demo (`paddock demo`) draws plug-ins from a world where the members'
+//! cars got bigger batteries, to show drift.
 
 use rand::Rng;
 use rand_distr::{Distribution, Normal};
@@ -9,20 +13,27 @@ use rand_distr::{Distribution, Normal};
 /// One simulated plug-in and how it went.
 #[derive(Clone, Debug)]
 pub struct Session {
+    /// Rated power of the charger (kW).
     pub charger_kw: f64,
+    /// Usable battery capacity (kWh).
     pub battery_kwh: f64,
+    /// State of charge at plug-in (fraction).
     pub soc_start: f64,
+    /// State of charge the driver asked for (fraction).
     pub soc_target: f64,
     /// `None` when the site has no temperature sensor.
     pub ambient_c: Option<f64>,
+    /// Hours since Monday 00:00 local time at plug-in.
     pub hour_of_week: i64,
     /// Index into `charge_minutes::CONNECTORS`.
     pub connector: usize,
+    /// Whether the car belongs to a fleet account.
     pub fleet: bool,
     /// Minutes until charging stopped.
     pub minutes: f64,
     /// Member's past overstay share; `None` for new members.
     pub member_overstay_rate: Option<f64>,
+    /// Share of the site's bays in use at plug-in.
     pub site_occupancy: f64,
     /// Share of the local grid's capacity in use around the site; absent
     /// when the grid operator's figures have no cell there.
@@ -31,8 +42,31 @@ pub struct Session {
     pub overstayed: bool,
 }
 
-/// Draws one session.
+/// Where sessions are drawn: the cars' usable battery sizes (kWh), one of
+/// which each car has, give or take 5 %.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct World {
+    /// The battery sizes, equally likely.
+    pub batteries: [f64; 5],
+}
+
+impl World {
+    /// The world the demo models were trained in.
+    pub const TRAINING: World = World { batteries: [40.0, 58.0, 64.0, 77.0, 100.0] };
+
+    /// This world with every battery `kwh` bigger.
+    pub fn bigger_batteries(self, kwh: f64) -> World {
+        World { batteries: self.batteries.map(|b| b + kwh) }
+    }
+}
+
+/// Draws one session in the training world.
 pub fn session(rng: &mut impl Rng) -> Session {
+    session_in(&World::TRAINING, rng)
+}
+
+/// Draws one session in `world`.
+pub fn session_in(world: &World, rng: &mut impl Rng) -> Session {
     let normal = |m: f64, s: f64| Normal::new(m, s).expect("valid normal");
     let (charger_kw, connector): (f64, usize) = match rng.random_range(0..10) {
         0..=2 => (7.4, 0),
@@ -41,7 +75,7 @@ pub fn session(rng: &mut impl Rng) -> Session {
         7 | 8 => (50.0, 1),
         _ => (150.0, if rng.random_bool(0.2) { 2 } else { 1 }),
     };
-    let battery_kwh = [40.0, 58.0, 64.0, 77.0, 100.0][rng.random_range(0..5)] * rng.random_range(0.95..1.05);
+    let battery_kwh = world.batteries[rng.random_range(0..5)] * rng.random_range(0.95..1.05);
     let fleet = rng.random_bool(0.15);
     let soc_start: f64 = rng.random_range(0.05..0.7);
     let soc_target: f64 = if fleet || rng.random_bool(0.2) { 1.0 } else { rng.random_range(soc_start + 0.1..0.95) };
