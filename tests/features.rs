@@ -412,3 +412,164 @@ fn drift_from_a_plans_fallback_is_named_as_such() {
         "paddock_drift_fallbacks{model=\"m\",version=\"1.0.0\",kind=\"feature\",field=\"x\",cause=\"missing\"} 48";
     assert!(text.contains(sample), "{sample} not in\n{text}");
 }
+
+/// The plan with `site` written as a hash in captured traffic.
+fn capturing_store(capture: paddock_serve::registry::CaptureOptions) -> (tempfile::TempDir, Registry) {
+    let dir = tempfile::tempdir().unwrap();
+    let store = dir.path();
+    paddock_tests::line_store(store);
+    write_table(store, 1.0);
+    let plan = format!("{PLAN}\n[models.m.private]\nsite = \"hash\"\n");
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    let options = RegistryOptions { usage_flush: None, capture: Some(capture), ..RegistryOptions::default() };
+    let registry = Registry::open(&Runtime::new().unwrap(), store, options).unwrap();
+    (dir, registry)
+}
+
+/// Every line of every closed capture file in `dir`, oldest file first.
+fn captured_lines(dir: &Path) -> Vec<serde_json::Value> {
+    use std::io::BufRead;
+    let mut files: Vec<_> = std::fs::read_dir(dir)
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| p.to_str().unwrap().ends_with(".ndjson.gz"))
+        .collect();
+    files.sort();
+    files
+        .iter()
+        .flat_map(|f| {
+            let reader = std::io::BufReader::new(flate2::read::GzDecoder::new(std::fs::File::open(f).unwrap()));
+            reader.lines().map(|l| serde_json::from_str(&l.unwrap()).unwrap()).collect::<Vec<_>>()
+        })
+        .collect()
+}
+
+/// Captured lines are estimate requests (`paddock stream` and `POST
+/// /estimate` take them as they are) with the answer beside them: the rows
+/// as scored — completed by the plan, `x` from the table — each row's
+/// values as the registry answered, a private key hashed (the same site,
+/// the same hash; never the site itself). Files close at their size and
+/// only the newest are kept.
+#[test]
+fn captured_traffic_reads_back_as_requests_with_their_answers() {
+    let capture = tempfile::tempdir().unwrap();
+    let options = paddock_serve::registry::CaptureOptions {
+        share: 1.0,
+        file_bytes: 4000,
+        keep_files: 100,
+        ..paddock_serve::registry::CaptureOptions::new(capture.path())
+    };
+    let (_dir, reg) = capturing_store(options);
+    let mut answers = Vec::new();
+    for i in 0..120 {
+        let rows = [Row::new(), Row::new().with("x", 0.5)];
+        let a = reg.score(&Request::new("m", &site(&format!("s{}", i % 8)), &rows)).unwrap();
+        answers.push([a.estimates.values_at(0)[0], a.estimates.values_at(1)[0]]);
+    }
+    assert!(reg.rotate_capture(std::time::Duration::from_secs(60)), "the file closes");
+    let counts = reg.status().capture.unwrap().counts;
+    assert_eq!((counts.sampled, counts.written, counts.dropped_queue_full), (120, 120, 0), "{counts:?}");
+    assert!(counts.files > 2, "{counts:?}: lines of about 300 bytes, files of 4000");
+    let lines = captured_lines(capture.path());
+    assert_eq!(lines.len(), 120);
+    let mut hashes = std::collections::BTreeMap::new();
+    for (i, (line, answer)) in lines.iter().zip(&answers).enumerate() {
+        let request: paddock_serve::surface::wire::EstimateRequest = serde_json::from_value(line.clone()).unwrap();
+        assert_eq!(request.model, "m");
+        let rows = request.rows.as_ref().unwrap();
+        let looked_up = (i % 8) as f64;
+        assert_eq!(rows.len(), 2);
+        assert_eq!(line["rows"][0]["x"].as_f64(), Some(looked_up), "row 1 as scored: {line}");
+        assert_eq!(line["rows"][1]["x"].as_f64(), Some(0.5), "row 2 carried its own: {line}");
+        let values: Vec<f64> =
+            line["captured"]["answers"].as_array().unwrap().iter().map(|a| a[0].as_f64().unwrap()).collect();
+        assert_eq!(values, answer, "{line}");
+        assert_eq!(line["captured"]["version"], "1.0.0");
+        assert_eq!(line["captured"]["outputs"], serde_json::json!(["y"]));
+        assert_eq!(line["captured"]["private"], serde_json::json!({"site": "hashed"}));
+        let hashed = request.context["site"].clone();
+        assert!(hashed.starts_with("sha256:") && hashed.len() == 39, "{hashed}");
+        assert_eq!(hashes.entry(i % 8).or_insert_with(|| hashed.clone()), &hashed, "one site, one hash");
+    }
+    assert_eq!(hashes.values().collect::<std::collections::BTreeSet<_>>().len(), 8, "eight sites, eight hashes");
+    // Only the newest files are kept.
+    let options = paddock_serve::registry::CaptureOptions {
+        share: 1.0,
+        file_bytes: 1000,
+        keep_files: 2,
+        ..paddock_serve::registry::CaptureOptions::new(capture.path().join("kept"))
+    };
+    let (_dir, reg) = capturing_store(options);
+    for i in 0..40 {
+        reg.score(&Request::new("m", &site(&format!("s{i}")), &[Row::new()])).unwrap();
+    }
+    assert!(reg.rotate_capture(std::time::Duration::from_secs(60)));
+    let counts = reg.status().capture.unwrap().counts;
+    assert!(counts.files > 2, "{counts:?}");
+    let kept = captured_lines(&capture.path().join("kept"));
+    assert!(!kept.is_empty() && kept.len() < 40, "{} lines kept of 40", kept.len());
+    assert_eq!(kept.last().unwrap()["rows"][0]["x"].as_f64(), Some(39.0), "the newest lines are the ones kept");
+}
+
+/// A full disk: the capture file is the system's always-full device
+/// (`/dev/full`, every write fails with "no space left"). Every request is
+/// answered; the lines are counted lost, none written.
+#[test]
+fn a_full_disk_loses_captured_lines_and_fails_no_request() {
+    let capture = tempfile::tempdir().unwrap();
+    let options = paddock_serve::registry::CaptureOptions {
+        share: 1.0,
+        ..paddock_serve::registry::CaptureOptions::new(capture.path())
+    };
+    let (_dir, reg) = capturing_store(options);
+    std::os::unix::fs::symlink("/dev/full", capture.path().join(paddock_serve::registry::capture::PARTIAL_FILE))
+        .unwrap();
+    for i in 0..50 {
+        let a = reg.score(&Request::new("m", &site(&format!("s{i}")), &[Row::new()])).unwrap();
+        assert_eq!(a.estimates.values_at(0), [2.0 * f64::from(i) + 1.0]);
+    }
+    assert!(reg.rotate_capture(std::time::Duration::from_secs(60)));
+    let counts = reg.status().capture.unwrap().counts;
+    assert_eq!((counts.sampled, counts.written, counts.lost_write_failed), (50, 0, 50), "{counts:?}");
+    let text = paddock_serve::registry::metrics::render(reg.usage(), &reg.status(), reg.source_usage(), Vec::new());
+    assert!(text.contains("paddock_capture_lines_total{outcome=\"lost_write_failed\"} 50\n"), "{text}");
+}
+
+/// A disk that does not take writes at all: the capture file is a named
+/// pipe nobody reads, so the writing thread waits on it. Requests go on
+/// being answered; the queue fills and the lines past it are dropped and
+/// counted. Once something reads the pipe, what was queued is written.
+#[test]
+fn a_stuck_disk_drops_captured_lines_and_holds_up_no_request() {
+    let capture = tempfile::tempdir().unwrap();
+    let queue = 16;
+    let options = paddock_serve::registry::CaptureOptions {
+        share: 1.0,
+        queue,
+        ..paddock_serve::registry::CaptureOptions::new(capture.path())
+    };
+    let (_dir, reg) = capturing_store(options);
+    let pipe = capture.path().join(paddock_serve::registry::capture::PARTIAL_FILE);
+    assert!(std::process::Command::new("mkfifo").arg(&pipe).status().unwrap().success());
+    let requests: u32 = 100;
+    for i in 0..requests {
+        let a = reg.score(&Request::new("m", &site(&format!("s{}", i % 64)), &[Row::new()])).unwrap();
+        assert_eq!(a.estimates.values_at(0), [2.0 * f64::from(i % 64) + 1.0]);
+    }
+    let counts = reg.status().capture.unwrap().counts;
+    // The writer holds at most one line while it waits; the queue the next.
+    assert_eq!(counts.sampled, u64::from(requests));
+    assert!(counts.dropped_queue_full >= u64::from(requests) - queue as u64 - 1, "{counts:?}");
+    // A reader: the writer goes on, and what it kept is in the pipe.
+    let reader = std::thread::spawn(move || {
+        let mut bytes = Vec::new();
+        std::io::Read::read_to_end(&mut std::fs::File::open(pipe).unwrap(), &mut bytes).unwrap();
+        bytes
+    });
+    assert!(reg.rotate_capture(std::time::Duration::from_secs(60)));
+    let bytes = reader.join().unwrap();
+    let text = std::io::read_to_string(flate2::read::GzDecoder::new(&bytes[..])).unwrap();
+    let counts = reg.status().capture.unwrap().counts;
+    assert_eq!(text.lines().count() as u64, counts.written, "{counts:?}");
+    assert_eq!(counts.written + counts.dropped_queue_full, u64::from(requests), "{counts:?}");
+}

@@ -32,7 +32,7 @@ use semver::Version;
 use serde::Serialize;
 
 pub use counts::{SourceCounts, SourceKind, SourceUsage};
-pub use plan::{Around, Fallback, KeyError, Lookup, ModelPlan, Plan, PlanError, Source, Supply, Template};
+pub use plan::{Around, Fallback, KeyError, Lookup, ModelPlan, Plan, PlanError, Privacy, Source, Supply, Template};
 pub use postgres::{PostgresSettings, PostgresSource, PostgresSourceError};
 pub use problem::{PlanProblem, Unusable};
 pub use redis::{RedisSource, RedisSourceError};
@@ -195,6 +195,7 @@ struct Step {
 pub struct VersionPlan {
     steps: Vec<Step>,
     keys: Vec<String>,
+    private: Arc<BTreeMap<String, Privacy>>,
 }
 
 /// How much of what was looked up is reported per row.
@@ -450,12 +451,18 @@ impl VersionPlan {
                 counts,
             });
         }
-        Unusable::unless(problems, Some(VersionPlan { steps, keys: m.keys.clone() }))
+        let private = Arc::new(m.private.clone());
+        Unusable::unless(problems, Some(VersionPlan { steps, keys: m.keys.clone(), private }))
     }
 
     /// The keys a request carries for this model.
     pub fn keys(&self) -> &[String] {
         &self.keys
+    }
+
+    /// The keys and features captured traffic must not hold as they are.
+    pub fn private(&self) -> &Arc<BTreeMap<String, Privacy>> {
+        &self.private
     }
 
     /// Completes `row` with the features the plan looks up, at `now`

@@ -30,6 +30,10 @@
 //!
 //! [models.charge-minutes.versions."2.0.0".features]
 //! # a version reading other features has a table of its own
+//!
+//! [models.charge-minutes.private]    # what captured traffic must not hold
+//! vehicle = "hash"                  # a key or feature written as a salted hash
+//! lat = "drop"                      # or left out
 //! ```
 //!
 //! `missing` says what a row gets when the key is not there, the cell is
@@ -98,6 +102,19 @@ pub struct ModelPlan {
     pub features: BTreeMap<String, Supply>,
     /// Versions with features of their own: their table replaces `features`.
     pub versions: BTreeMap<Version, BTreeMap<String, Supply>>,
+    /// Keys and features that captured traffic must not hold as they are.
+    pub private: BTreeMap<String, Privacy>,
+}
+
+/// What capture does with a private key or feature before writing.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[non_exhaustive]
+pub enum Privacy {
+    /// Left out of the captured line.
+    Drop,
+    /// Written as a salted hash of its value (equal values, equal hashes,
+    /// for the life of the host; the salt is never written).
+    Hash,
 }
 
 impl ModelPlan {
@@ -400,6 +417,8 @@ struct RawModel {
     features: BTreeMap<String, RawFrom>,
     #[serde(default)]
     versions: BTreeMap<String, RawVersion>,
+    #[serde(default)]
+    private: BTreeMap<String, String>,
 }
 
 #[derive(Deserialize)]
@@ -602,7 +621,17 @@ impl Plan {
                 }
             }
             problems.extend(bad_versions);
-            models.insert(model, ModelPlan { keys: m.keys, features, versions });
+            let mut private = BTreeMap::new();
+            for (name, what) in m.private {
+                match what.as_str() {
+                    "drop" => drop(private.insert(name, Privacy::Drop)),
+                    "hash" => drop(private.insert(name, Privacy::Hash)),
+                    other => {
+                        problems.push(format!("models.{model}.private.{name}: say \"drop\" or \"hash\", not `{other}`"))
+                    }
+                }
+            }
+            models.insert(model, ModelPlan { keys: m.keys, features, versions, private });
         }
         if problems.is_empty() { Ok(Plan { sources, models }) } else { Err(fail(problems)) }
     }

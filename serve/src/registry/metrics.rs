@@ -85,6 +85,7 @@ pub fn render(usage: UsageReport, status: &Status, sources: Vec<SourceUsage>, ow
         generation: status.generation,
         artifacts,
         mirror,
+        capture: status.capture.as_ref().map(|c| c.counts.clone()),
         own,
         drift: drift_samples(status),
     }));
@@ -101,6 +102,7 @@ struct Exposition {
     generation: u64,
     artifacts: BTreeMap<&'static str, u64>,
     mirror: Option<MirrorState>,
+    capture: Option<super::CaptureCounts>,
     own: Vec<SurfaceFamily>,
     drift: DriftSamples,
 }
@@ -336,6 +338,21 @@ impl Collector for Exposition {
         if let Some(m) = &self.mirror {
             mirror_families(&mut e, m)?;
         }
+        if let Some(c) = &self.capture {
+            let outcomes = [
+                ("written", c.written),
+                ("dropped_queue_full", c.dropped_queue_full),
+                ("dropped_too_long", c.dropped_too_long),
+                ("lost_write_failed", c.lost_write_failed),
+            ];
+            let samples = outcomes.iter().map(|(o, n)| (labels(&[("outcome", o)]), *n)).collect();
+            family(
+                &mut e,
+                "capture_lines",
+                "Requests sampled for capture, by what became of their line.",
+                Samples::Counter(samples),
+            )?;
+        }
         for f in &self.own {
             let sample = vec![(Vec::new(), f.value)];
             family(&mut e, f.name, f.help, if f.counter { Samples::Counter(sample) } else { Samples::Gauge(sample) })?;
@@ -520,6 +537,7 @@ mod tests {
             features: crate::registry::FeaturesState::Missing,
             unrouted: vec![],
             mirror,
+            capture: None,
         }
     }
 

@@ -19,6 +19,7 @@
 //! artifacts and routes there (atomically: write, then rename) is the
 //! operator's job.
 
+pub mod capture;
 mod gate;
 pub use gate::{Passed, check_version};
 pub mod layout;
@@ -61,8 +62,8 @@ pub use ledger::{SavedWall, ShadowUsage, UsageReport, VersionUsage, Wall};
 pub use limits_file::LIMITS_FILE;
 pub use routes::{Clock, ManualClock, Reason, RequestContext, Routes, RoutesError, SystemClock};
 pub use status::{
-    ArtifactState, ArtifactStatus, FeaturesState, GateStep, LimitsState, MirrorState, Refusal, RefusedFile,
-    ReloadReport, RoutesState, ServerStatus, Status, SyncProblem, TableStatus,
+    ArtifactState, ArtifactStatus, CaptureState, FeaturesState, GateStep, LimitsState, MirrorState, Refusal,
+    RefusedFile, ReloadReport, RoutesState, ServerStatus, Status, SyncProblem, TableStatus,
 };
 pub use usage_file::{SavedUsage, usage_path};
 pub use watch::Watcher;
@@ -106,6 +107,9 @@ pub struct RegistryOptions {
     /// it is refused. `None`: no usage file, no lock (a read-only look at a
     /// store, as `paddock status` takes). Default 10 s.
     pub usage_flush: Option<Duration>,
+    /// Capture a sample of the answered requests, with their answers, to
+    /// files ([`capture`]). Off (`None`) by default.
+    pub capture: Option<CaptureOptions>,
 }
 
 impl Default for RegistryOptions {
@@ -123,6 +127,7 @@ impl Default for RegistryOptions {
             clock: Arc::new(SystemClock),
             shadow_queue: 1024,
             usage_flush: Some(Duration::from_secs(10)),
+            capture: None,
         }
     }
 }
@@ -190,6 +195,9 @@ pub enum RegistryError {
         /// What the system said.
         cause: std::io::Error,
     },
+    /// Capture cannot start: its share, its directory, or its thread.
+    #[error(transparent)]
+    Capture(#[from] CaptureError),
     /// The directory watcher cannot start.
     #[error("cannot watch {path}: {reason}")]
     Watch {
@@ -354,6 +362,7 @@ impl<'a> Request<'a> {
 }
 
 pub use crate::features::Lookups;
+pub use capture::{CaptureCounts, CaptureError, CaptureOptions};
 
 /// Estimates, and which version produced them and why.
 #[derive(Clone, Debug, Serialize)]
@@ -563,6 +572,43 @@ fn score_and_explain(
     result.map(|scored| (scored, explained))
 }
 
+/// A sampled request's line for capture: every request row, completed by
+/// the plan where it was, and each one's values or none.
+fn taken(
+    request: &Request<'_>,
+    at: Timestamp,
+    version: &Version,
+    served: &Loaded,
+    gathered: Option<&Gathered>,
+    plan: Option<&VersionPlan>,
+    scored: &Scored,
+) -> capture::Taken {
+    let mut rows = request.rows.to_vec();
+    if let Some(g) = gathered {
+        for (row, &n) in g.rows.iter().zip(&g.numbers) {
+            rows[n - 1] = row.clone();
+        }
+    }
+    // The scored rows are numbered as the request numbered them.
+    let mut answers = vec![None; request.rows.len()];
+    for (k, &n) in scored.scored.iter().enumerate() {
+        if let Some(slot) = answers.get_mut(n.wrapping_sub(1)) {
+            *slot = Some(scored.estimates.values_at(k).to_vec());
+        }
+    }
+    capture::Taken {
+        model: request.model.to_owned(),
+        context: request.context.clone(),
+        at,
+        rows,
+        version: version.clone(),
+        digest: served.model.digest(),
+        outputs: served.outputs.clone(),
+        answers,
+        private: plan.map(|p| p.private().clone()),
+    }
+}
+
 /// One immutable view of what is served.
 struct Snapshot {
     generation: u64,
@@ -614,6 +660,8 @@ struct Shared {
     flush_stop: Mutex<Option<std::sync::mpsc::Sender<()>>>,
     /// Set when the store is a shared store's mirror.
     mirror: Mutex<Option<MirrorState>>,
+    /// Captured traffic, when on.
+    capture: Option<capture::Capture>,
 }
 
 impl Drop for Shared {
@@ -657,6 +705,7 @@ impl Registry {
             (Some(dir), true) => Some(CodeCache::open(dir)?),
             (None, true) => Some(CodeCache::open(&state_dir.join("code"))?),
         };
+        let capture = options.capture.clone().map(capture::Capture::start).transpose()?;
         let ledger = ledger::Ledger::default();
         if lock.is_some() {
             usage_file::refuse_foreign(&state_dir, &dir)?;
@@ -678,6 +727,7 @@ impl Registry {
                 features: FeaturesState::Missing,
                 unrouted: Vec::new(),
                 mirror: None,
+                capture: None,
             },
         };
         let registry = Registry {
@@ -695,6 +745,7 @@ impl Registry {
                 lock,
                 flush_stop: Mutex::new(None),
                 mirror: Mutex::new(None),
+                capture,
             }),
         };
         if let Some(every) = registry.inner.options.usage_flush {
@@ -844,7 +895,7 @@ impl Registry {
         result: Result<ScoredExplained, ScoreError>,
         started: Instant,
     ) -> Result<Answer, RequestError> {
-        let Routed { served, version, reason, generation, shadow, .. } = routed;
+        let Routed { served, version, reason, generation, shadow, plan, at } = routed;
         let (scored, explained) = match result {
             Ok(done) => done,
             Err(error) => {
@@ -878,6 +929,11 @@ impl Registry {
                 return Err(RequestError::Explain { model: request.model.to_owned(), version, reason, error });
             }
         };
+        if let Some(capture) = &self.inner.capture
+            && capture.samples()
+        {
+            capture.offer(taken(request, at, &version, &served, gathered.as_ref(), plan.as_deref(), &scored));
+        }
         Ok(Answer {
             model: request.model.to_owned(),
             version,
@@ -938,7 +994,20 @@ impl Registry {
                 a.drift = loaded.model.drift();
             }
         }
+        status.capture = self.inner.capture.as_ref().map(|c| CaptureState {
+            dir: self.inner.options.capture.as_ref().map(|o| o.dir.clone()).unwrap_or_default(),
+            share: self.inner.options.capture.as_ref().map_or(0.0, |o| o.share),
+            counts: c.counts(),
+        });
         status
+    }
+
+    /// Closes the capture file being written once every line queued before
+    /// is in it, so what was captured so far can be read (a host does this
+    /// as it stops); waits at most `timeout`. Says whether it was done;
+    /// `false` too when capture is off.
+    pub fn rotate_capture(&self, timeout: Duration) -> bool {
+        self.inner.capture.as_ref().is_some_and(|c| c.rotate(timeout))
     }
 
     /// Records how the mirror this registry serves stands (what

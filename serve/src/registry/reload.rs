@@ -582,6 +582,7 @@ fn swap(
         unrouted,
         // Filled in by `Registry::status`.
         mirror: None,
+        capture: None,
     };
     let versions = next.versions;
     let shadows = routes

@@ -383,6 +383,24 @@ pub struct Status {
     /// caught up ([`crate::shared`]).
     #[serde(skip_serializing_if = "Option::is_none")]
     pub mirror: Option<MirrorState>,
+    /// When the host captures traffic: where, how much, and what became
+    /// of what it sampled ([`crate::registry::capture`]).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub capture: Option<CaptureState>,
+}
+
+/// How a host's capture of traffic stands.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+#[cfg_attr(feature = "http", derive(utoipa::ToSchema))]
+#[non_exhaustive]
+pub struct CaptureState {
+    /// The directory the files go to.
+    #[cfg_attr(feature = "http", schema(value_type = String))]
+    pub dir: PathBuf,
+    /// The share of answered requests sampled.
+    pub share: f64,
+    /// What became of them.
+    pub counts: super::capture::CaptureCounts,
 }
 
 /// How a host's mirror of a shared store stands.

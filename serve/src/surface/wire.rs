@@ -53,6 +53,12 @@ pub struct EstimateRequest {
     /// a model that cannot explain fails the request (`cannot_explain`).
     #[serde(default)]
     pub contributions: bool,
+    /// What a host answered when it captured this request (a line of a
+    /// capture file: the version, its outputs and each row's values); read
+    /// by a replay, ignored when scoring.
+    #[serde(default)]
+    #[cfg_attr(feature = "http", schema(value_type = Option<Object>))]
+    pub captured: Option<serde_json::Value>,
 }
 
 impl EstimateRequest {
