@@ -212,6 +212,76 @@ pub struct StoreArgs {
     pub drift: DriftArgs,
 }
 
+/// `input` as its bytes were before compression when `path` ends in `.gz`
+/// (every gzip member, as `gzip -d` reads them), else as it is.
+pub fn decompressed(path: &std::path::Path, input: Box<dyn std::io::Read>) -> Box<dyn std::io::Read> {
+    if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("gz")) {
+        Box::new(flate2::read::MultiGzDecoder::new(input))
+    } else {
+        input
+    }
+}
+
+/// Whether a host captures a sample of its traffic, and how.
+#[derive(clap::Args, Clone, Debug)]
+pub struct CaptureArgs {
+    /// Capture a sample of answered requests, each with its answer, into
+    /// this directory (gzip NDJSON files that `paddock replay`, `stream`
+    /// and `score --from requests` read); keys and features the features
+    /// plan marks private are dropped or hashed first. Off by default.
+    #[arg(long, value_name = "DIR")]
+    pub capture_dir: Option<PathBuf>,
+    /// The share of answered requests captured.
+    #[arg(long, default_value_t = 0.01, value_name = "SHARE", requires = "capture_dir")]
+    pub capture_share: f64,
+    /// Close a capture file once it holds this many MiB of lines (before compression).
+    #[arg(long, default_value_t = 64, value_name = "MIB", requires = "capture_dir",
+          value_parser = clap::value_parser!(u64).range(1..=4096))]
+    pub capture_file_mib: u64,
+    /// Closed capture files kept; the oldest beyond are deleted.
+    #[arg(long, default_value_t = 48, value_name = "N", requires = "capture_dir",
+          value_parser = clap::value_parser!(u64).range(1..=100_000))]
+    pub capture_keep: u64,
+}
+
+impl CaptureArgs {
+    /// The capture these flags describe, or `None` without `--capture-dir`.
+    ///
+    /// # Errors
+    /// When the share is not above 0 and at most 1.
+    pub fn options(&self) -> Result<Option<paddock_serve::registry::CaptureOptions>> {
+        let Some(dir) = &self.capture_dir else { return Ok(None) };
+        let share = self.capture_share;
+        if !(share > 0.0 && share <= 1.0) {
+            anyhow::bail!("--capture-share {share}: give a share above 0 and at most 1");
+        }
+        Ok(Some(paddock_serve::registry::CaptureOptions {
+            share,
+            file_bytes: self.capture_file_mib << 20,
+            keep_files: self.capture_keep as usize,
+            ..paddock_serve::registry::CaptureOptions::new(dir)
+        }))
+    }
+}
+
+/// As a host stops: closes the capture file being written and says what
+/// was captured.
+pub fn finish_capture(registry: &paddock_serve::Registry) {
+    let Some(state) = registry.status().capture else { return };
+    let closed = registry.rotate_capture(std::time::Duration::from_secs(10));
+    let c = registry.status().capture.map_or(state.counts, |s| s.counts);
+    eprintln!(
+        "capture: {} sampled, {} written to {}{}, {} dropped (queue full), {} too long, {} lost to failed writes",
+        c.sampled,
+        c.written,
+        state.dir.display(),
+        if closed { "" } else { " (the last file could not be closed in time)" },
+        c.dropped_queue_full,
+        c.dropped_too_long,
+        c.lost_write_failed
+    );
+}
+
 /// How a host compares the values it scores with each version's training profile.
 #[derive(clap::Args, Clone, Debug)]
 pub struct DriftArgs {
@@ -274,8 +344,14 @@ impl StoreArgs {
     /// the routes; takes the state directory and keeps its usage file. A
     /// shared store is served from this host's mirror of it.
     pub fn open(&self) -> Result<Opened> {
+        self.open_capturing(None)
+    }
+
+    /// As [`StoreArgs::open`], capturing traffic as `capture` says.
+    pub fn open_capturing(&self, capture: Option<paddock_serve::registry::CaptureOptions>) -> Result<Opened> {
         let runtime = self.load.runtime()?;
-        place::open(&self.store, &runtime, self.options()?, &self.nats, self.host_name.as_deref(), false)
+        let options = RegistryOptions { capture, ..self.options()? };
+        place::open(&self.store, &runtime, options, &self.nats, self.host_name.as_deref(), false)
     }
 
     /// Opens the store to look at it: no usage file, no lock, so it works

@@ -484,6 +484,107 @@ fn drift_draws_a_running_hosts_counts() {
     assert!(text(&o.stderr).contains("serves no model `nothing-here`"), "{}", text(&o.stderr));
 }
 
+/// Packs a LightGBM diabetes model of tests/imports/export.py as `diabetes`
+/// `version` into `out`, with `extra` flags.
+fn pack_diabetes(file: &str, version: &str, out: &Path, extra: &[&str]) {
+    let imports = root().join("target/paddock/imports");
+    let model = imports.join(file);
+    let mut args = vec!["pack", model.to_str().unwrap(), "--name", "diabetes", "--version", version];
+    args.extend(extra);
+    args.extend(["--out", out.to_str().unwrap()]);
+    std::fs::create_dir_all(out.parent().unwrap()).unwrap();
+    let o = paddock(&args, None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+}
+
+/// Traffic a host captured, replayed: against the artifact that answered
+/// it, nothing changes; against the model retrained with 20 more trees,
+/// the differences are LightGBM's own (its `predict` of both models on the
+/// same 442 diabetes rows, tests/imports/export.py): the largest absolute
+/// difference and NumPy's quantiles of the differences, to 1e-9, and the
+/// `--max-abs-diff` bound fails the replay (exit 1). A candidate whose
+/// contract takes `sex` as a label refuses every row, naming the feature.
+#[test]
+fn replay_compares_a_candidate_with_what_the_host_answered() {
+    let dir = tempfile::tempdir().unwrap();
+    let (store, captured) = (dir.path().join("store"), dir.path().join("captured"));
+    let profile = root().join("target/paddock/imports/lgb-diabetes-profiled.profile.json");
+    let served = store.join("diabetes/1.0.0.wasm");
+    pack_diabetes("lgb-diabetes-profiled.txt", "1.0.0", &served, &["--profile", profile.to_str().unwrap()]);
+    std::fs::write(store.join("routes.toml"), "[models.diabetes]\ndefault = \"1.0.0\"\n").unwrap();
+    let doc: serde_json::Value =
+        serde_json::from_slice(&std::fs::read(root().join("target/paddock/imports/replay.json")).unwrap()).unwrap();
+    let names: Vec<String> = serde_json::from_value(doc["names"].clone()).unwrap();
+    let rows: Vec<Vec<f64>> = serde_json::from_value(doc["rows"].clone()).unwrap();
+    {
+        let capture = paddock_serve::registry::CaptureOptions {
+            share: 1.0,
+            ..paddock_serve::registry::CaptureOptions::new(&captured)
+        };
+        let options =
+            paddock_serve::RegistryOptions { usage_flush: None, capture: Some(capture), ..Default::default() };
+        let registry = paddock_serve::Registry::open(&paddock_host::Runtime::new().unwrap(), &store, options).unwrap();
+        let rows: Vec<paddock_host::Row> =
+            rows.iter().map(|r| names.iter().cloned().zip(r.iter().copied()).collect()).collect();
+        let context = paddock_serve::RequestContext::new();
+        for chunk in rows.chunks(10) {
+            registry.score(&paddock_serve::Request::new("diabetes", &context, chunk)).unwrap();
+        }
+        assert!(registry.rotate_capture(std::time::Duration::from_secs(60)));
+    }
+    let replay = |candidate: &Path, extra: &[&str]| {
+        let mut args = vec!["replay", candidate.to_str().unwrap(), captured.to_str().unwrap(), "--json"];
+        args.extend(extra);
+        let o = paddock(&args, None);
+        let report: serde_json::Value =
+            serde_json::from_slice(&o.stdout).unwrap_or_else(|e| panic!("{e}: {}{}", text(&o.stdout), text(&o.stderr)));
+        (o.status.code(), report)
+    };
+    let (code, same) = replay(&served, &["--max-abs-diff", "0"]);
+    let value = &same["report"]["outputs"][0];
+    assert_eq!((code, &value["compared"], &value["changed"]), (Some(0), &442.into(), &0.into()), "{same}");
+    assert_eq!(same["report"]["drift"]["fields"].as_array().unwrap().last().unwrap()["kind"], "output");
+
+    // `paddock score` reads the capture files as they are: every row scored again.
+    let file = std::fs::read_dir(&captured).unwrap().next().unwrap().unwrap().path();
+    let o = paddock(&["score", served.to_str().unwrap(), file.to_str().unwrap()], None);
+    assert!(o.status.success(), "{}", text(&o.stderr));
+    assert_eq!(text(&o.stdout).lines().count(), 442, "{}", text(&o.stderr));
+    assert!(text(&o.stderr).contains("442 rows scored, 0 rows failed"), "{}", text(&o.stderr));
+
+    let retrained = dir.path().join("retrained.wasm");
+    pack_diabetes("lgb-diabetes-retrained.txt", "1.1.0", &retrained, &[]);
+    let (code, moved) = replay(&retrained, &["--max-abs-diff", "0", "--tolerance", "1e-9"]);
+    assert_eq!(code, Some(1), "the bound is crossed: {moved}");
+    assert!(moved["crossed"][0].as_str().unwrap().starts_with("--max-abs-diff 0: value moved by "), "{moved}");
+    let toolkit: Vec<f64> = {
+        let (a, b): (Vec<f64>, Vec<f64>) = (
+            serde_json::from_value(doc["original"].clone()).unwrap(),
+            serde_json::from_value(doc["retrained"].clone()).unwrap(),
+        );
+        a.iter().zip(&b).map(|(a, b)| b - a).collect()
+    };
+    let value = &moved["report"]["outputs"][0];
+    let changed = toolkit.iter().filter(|d| d.abs() > 1e-9).count();
+    assert_eq!((&value["compared"], value["changed"].as_u64()), (&442.into(), Some(changed as u64)), "{value}");
+    let largest = toolkit.iter().copied().max_by(|a, b| a.abs().total_cmp(&b.abs())).unwrap();
+    let ours = value["largest_absolute"]["difference"].as_f64().unwrap();
+    assert!((ours - largest).abs() < 1e-9, "{ours} against LightGBM's {largest}");
+    let numpy: Vec<f64> = serde_json::from_value(doc["quantiles"].clone()).unwrap();
+    for (pair, want) in value["quantiles"].as_array().unwrap().iter().zip(&numpy) {
+        let got = pair[1].as_f64().unwrap();
+        assert!((got - want).abs() < 1e-9, "quantile {}: {got} against NumPy's {want}", pair[0]);
+    }
+
+    let other = dir.path().join("labels.wasm");
+    let overrides = root().join("target/paddock/imports/lgb-diabetes-pandas.toml");
+    pack_diabetes("lgb-diabetes-pandas.txt", "2.0.0", &other, &["--overrides", overrides.to_str().unwrap()]);
+    let (code, refused) = replay(&other, &["--max-refused", "0"]);
+    assert_eq!((code, &refused["report"]["now_refused_count"]), (Some(1), &442.into()), "{refused}");
+    let why = refused["report"]["now_refused"][0]["why"].as_str().unwrap();
+    assert!(why.contains("feature `sex`"), "{why}");
+}
+
 /// A PMML document packs onto the program guest; the checks are worked
 /// out by hand from the document (tests/pmml.rs shows the steps).
 #[test]

@@ -14,7 +14,9 @@
 //! - [`surface`]: the JSON wire shapes, NDJSON streams, the HTTP API
 //!   (feature `http`) and NATS JetStream workers (feature `workers`);
 //! - `shared` (feature `shared`): a store kept in NATS JetStream, published
-//!   to once and followed by every host through a mirror of its own.
+//!   to once and followed by every host through a mirror of its own;
+//! - [`replay`]: traffic a host captured, scored again by a candidate and
+//!   compared with what the host answered.
 //!
 //! ```no_run
 //! use paddock_host::{Row, Runtime};
@@ -51,6 +53,7 @@
 
 pub mod features;
 pub mod registry;
+pub mod replay;
 #[cfg(feature = "shared")]
 pub mod shared;
 pub mod surface;

@@ -287,3 +287,17 @@ with open(os.path.join(OUT, "drift.json"), "w") as f:
     json.dump({"source": f"NumPy {numpy.__version__}: bins by numpy.searchsorted, index by numpy.sum/log, "
                          f"empty bins as {EPS}", "names": names, "cases": cases,
                "training": [[float(v) for v in r] for r in x]}, f)
+
+# Replay references for tests/cli.rs: the diabetes model above retrained
+# with 20 more trees, and both models' own predictions (LightGBM's
+# predict) on every training row: a replay of captured traffic against the
+# retrained model must find these differences.
+retrained = lightgbm.LGBMRegressor(**{**LGB, "n_estimators": LGB["n_estimators"] + 20}).fit(x, y, feature_name=names)
+hand_off(retrained, x[:40], os.path.join(OUT, "lgb-diabetes-retrained"))
+with open(os.path.join(OUT, "replay.json"), "w") as f:
+    json.dump({"source": f"LightGBM {lightgbm.__version__} predict on the 442 diabetes rows",
+               "names": names, "rows": [[float(v) for v in r] for r in x],
+               "original": [float(v) for v in model.predict(x)],
+               "retrained": [float(v) for v in retrained.predict(x)],
+               "quantiles": [float(v) for v in numpy.quantile(retrained.predict(x) - model.predict(x),
+                                                              [0, 0.01, 0.1, 0.25, 0.5, 0.75, 0.9, 0.99, 1])]}, f)

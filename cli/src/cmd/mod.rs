@@ -10,6 +10,7 @@ pub mod hosts;
 pub mod inspect;
 pub mod pack;
 pub mod publish;
+pub mod replay;
 pub mod restore;
 pub mod revise;
 pub mod score;

@@ -16,6 +16,8 @@ use crate::common::LoadArgs;
 enum FormatArg {
     Csv,
     Ndjson,
+    /// Estimate requests, one per line (a host's capture files).
+    Requests,
 }
 
 impl From<FormatArg> for RowFormat {
@@ -23,6 +25,7 @@ impl From<FormatArg> for RowFormat {
         match f {
             FormatArg::Csv => RowFormat::Csv,
             FormatArg::Ndjson => RowFormat::Ndjson,
+            FormatArg::Requests => RowFormat::Requests,
         }
     }
 }
@@ -33,13 +36,14 @@ impl From<FormatArg> for RowFormat {
 pub struct Args {
     /// The artifact.
     artifact: PathBuf,
-    /// Rows to score: a .csv or .ndjson file, or `-` for stdin.
+    /// Rows to score: a .csv, .ndjson or .requests.ndjson file (a host's
+    /// capture), each may be gzip-compressed (.gz), or `-` for stdin.
     #[arg(default_value = "-")]
     input: PathBuf,
     /// Input format [default: from the extension; csv for stdin].
     #[arg(long, value_enum)]
     from: Option<FormatArg>,
-    /// Output format [default: the input's].
+    /// Output format [default: the input's; NDJSON for requests].
     #[arg(long, value_enum)]
     to: Option<FormatArg>,
     /// Write results here instead of stdout.
@@ -106,10 +110,20 @@ pub fn run(args: Args) -> Result<Outcome> {
         (None, true) => RowFormat::Csv,
         (None, false) => match RowFormat::from_path(&args.input) {
             Some(f) => f,
-            None => bail!("cannot tell the format of {}: use --from csv or --from ndjson", args.input.display()),
+            None => bail!(
+                "cannot tell the format of {}: use --from csv, --from ndjson or --from requests",
+                args.input.display()
+            ),
         },
     };
-    let to: RowFormat = if args.json { RowFormat::Ndjson } else { args.to.map_or(format, RowFormat::from) };
+    let to: RowFormat = match (args.json, args.to, format) {
+        (true, _, _) | (false, None, RowFormat::Requests) => RowFormat::Ndjson,
+        (false, Some(to), _) => to.into(),
+        (false, None, from) => from,
+    };
+    if to == RowFormat::Requests {
+        bail!("--to requests: results are written as CSV or NDJSON");
+    }
     let (input, progress): (Box<dyn Read>, ProgressBar) = if stdin {
         (Box::new(io::stdin().lock()), ProgressBar::hidden())
     } else {
@@ -120,7 +134,7 @@ pub fn run(args: Args) -> Result<Outcome> {
             ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}")
                 .unwrap_or_else(|_| ProgressStyle::default_bar()),
         );
-        (Box::new(bar.wrap_read(file)), bar)
+        (crate::common::decompressed(&args.input, Box::new(bar.wrap_read(file))), bar)
     };
     // The header is checked before any output is created.
     let schema = model.schema();
@@ -131,7 +145,9 @@ pub fn run(args: Args) -> Result<Outcome> {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
         None => Box::new(io::stdout().lock()),
     };
-    let mut writer = Writer::new(out, to, &model, args.id.is_some(), args.contributions)?;
+    // A request's id (if it has one) names its rows.
+    let with_id = args.id.is_some() || format == RowFormat::Requests;
+    let mut writer = Writer::new(out, to, &model, with_id, args.contributions)?;
     let mut batch: Vec<Record> = Vec::with_capacity(args.batch as usize);
     let (mut scored, mut failed) = (0usize, 0usize);
     for record in records {
@@ -364,7 +380,7 @@ impl Writer {
                 csv.write_record(&header)?;
                 Sink::Csv(Box::new(csv))
             }
-            RowFormat::Ndjson => Sink::Ndjson(BufWriter::new(out)),
+            RowFormat::Ndjson | RowFormat::Requests => Sink::Ndjson(BufWriter::new(out)),
         };
         Ok(Writer { sink, outputs, features, with_id })
     }

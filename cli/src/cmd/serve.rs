@@ -18,6 +18,8 @@ use crate::common::StoreArgs;
 pub struct Args {
     #[command(flatten)]
     store: StoreArgs,
+    #[command(flatten)]
+    capture: crate::common::CaptureArgs,
     /// Address to listen on; port 0 picks a free one. Loopback by default:
     /// put a proxy in front before exposing it.
     #[arg(long, default_value = "127.0.0.1:7340", value_name = "ADDR")]
@@ -63,7 +65,7 @@ fn admin_token(file: Option<&PathBuf>) -> Result<Option<String>> {
 pub fn run(args: Args) -> Result<Outcome> {
     // Opened before the signals are taken: a host still waiting for a
     // shared store it has no mirror of stops at the first Ctrl-C.
-    let mut opened = args.store.open()?;
+    let mut opened = args.store.open_capturing(args.capture.options()?)?;
     let registry = opened.registry.clone();
     for line in served_lines(&registry.status()) {
         eprintln!("{line}");
@@ -94,6 +96,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         anyhow::Ok(())
     })?;
     opened.stop();
+    crate::common::finish_capture(&registry);
     let saved = registry.save_usage()?;
     eprintln!("stopped; usage written to {}", saved.display());
     Ok(Outcome::Ok)

@@ -19,6 +19,8 @@ use crate::common::StoreArgs;
 pub struct Args {
     #[command(flatten)]
     store: StoreArgs,
+    #[command(flatten)]
+    capture: crate::common::CaptureArgs,
     /// The NATS server (several: comma-separated).
     #[arg(long, default_value = "nats://127.0.0.1:4222", value_name = "URL")]
     nats: String,
@@ -74,7 +76,7 @@ pub struct Args {
 /// Opens the store, watches it, and works until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
     // Opened before the signals are taken, as `serve` does.
-    let mut opened = args.store.open()?;
+    let mut opened = args.store.open_capturing(args.capture.options()?)?;
     let registry = opened.registry.clone();
     opened.keep_current(Duration::from_secs(args.rescan_secs.max(1)))?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
@@ -116,6 +118,7 @@ pub fn run(args: Args) -> Result<Outcome> {
     })?;
     drop(runtime);
     opened.stop();
+    crate::common::finish_capture(&registry);
     let saved = registry.save_usage()?;
     let s = counts.summary();
     eprintln!(

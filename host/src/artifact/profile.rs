@@ -322,10 +322,12 @@ impl FieldProfile {
     }
 }
 
-/// The `q` quantile of sorted values as NumPy's default (`linear`) method
-/// computes it: at virtual index q·(n − 1), between its neighbours, the
-/// difference weighted from the nearer end as `numpy.lib._function_base_impl._lerp` does.
-fn quantile(sorted: &[f64], q: f64) -> Option<f64> {
+/// The `q` quantile (0 to 1) of values sorted in increasing order, as
+/// NumPy's default (`linear`) method computes it: at virtual index
+/// q·(n − 1), between its neighbours, the difference weighted from the
+/// nearer end as `numpy.lib._function_base_impl._lerp` does. `None` for no
+/// values.
+pub fn quantile(sorted: &[f64], q: f64) -> Option<f64> {
     let last = sorted.len().checked_sub(1)?;
     let at = q * last as f64;
     let below = (at.floor() as usize).min(last);

@@ -1,6 +1,9 @@
-//! Rows from files: CSV (a header of feature names) or NDJSON (one JSON
-//! object per line). Each record is read on its own, so a bad record is
-//! reported with its number and the rest carry on.
+//! Rows from files: CSV (a header of feature names), NDJSON (one JSON
+//! object per line), or estimate requests (one request per line, as a
+//! host's capture writes them: each of its rows a record). Each record is
+//! read on its own, so a bad record is reported with its number and the
+//! rest carry on; a file that cannot be read further (a compressed file cut
+//! short) ends with one record saying so.
 
 use std::io::{BufRead, BufReader, Read};
 use std::path::Path;
@@ -15,12 +18,24 @@ pub enum RowFormat {
     Csv,
     /// One JSON object per line.
     Ndjson,
+    /// One estimate request per line (`row` or `rows`, with any other
+    /// field: `model`, `context`, `captured`…), as `POST /estimate` takes
+    /// it and a host's capture writes it; each row is a record, the
+    /// request's `id` its id.
+    Requests,
 }
 
 impl RowFormat {
-    /// Guesses the format from a file extension (`.csv`, `.ndjson`, `.jsonl`, `.json`).
+    /// Guesses the format from a file's name, a `.gz` ending aside:
+    /// `.csv`; `.requests.ndjson` (a capture file); `.ndjson`, `.jsonl`,
+    /// `.json`.
     pub fn from_path(path: &Path) -> Option<RowFormat> {
-        match path.extension()?.to_str()?.to_ascii_lowercase().as_str() {
+        let name = path.file_name()?.to_str()?.to_ascii_lowercase();
+        let name = name.strip_suffix(".gz").unwrap_or(&name);
+        if name.ends_with(".requests.ndjson") {
+            return Some(RowFormat::Requests);
+        }
+        match Path::new(name).extension()?.to_str()? {
             "csv" => Some(RowFormat::Csv),
             "ndjson" | "jsonl" | "json" => Some(RowFormat::Ndjson),
             _ => None,
@@ -68,6 +83,9 @@ pub enum RecordError {
     /// An NDJSON line that is JSON but not a row.
     #[error(transparent)]
     Row(#[from] RowJsonError),
+    /// A request line with neither `row` (an object) nor `rows` (a list).
+    #[error("not an estimate request: it has neither `row` (one row) nor `rows` (a list)")]
+    NotARequest,
 }
 
 /// Which columns (CSV) or keys (NDJSON) are not features.
@@ -133,7 +151,61 @@ pub fn records<'a, R: Read + 'a>(
     Ok(match format {
         RowFormat::Csv => Box::new(csv_records(input, schema, columns)?),
         RowFormat::Ndjson => Box::new(ndjson_records(input, columns)),
+        RowFormat::Requests => Box::new(request_records(input)),
     })
+}
+
+/// The lines of `input`, numbered from 1, blank ones skipped; a line that
+/// cannot be read ends them (after it is given, as the error).
+fn numbered_lines<R: Read>(input: R) -> impl Iterator<Item = (usize, std::io::Result<String>)> {
+    let mut ended = false;
+    BufReader::new(input).lines().enumerate().map_while(move |(i, line)| {
+        if ended {
+            return None;
+        }
+        ended = line.is_err();
+        Some((i + 1, line))
+    })
+}
+
+fn request_records<'a, R: Read + 'a>(input: R) -> impl Iterator<Item = Record> + 'a {
+    let mut number = 0usize;
+    numbered_lines(input).flat_map(move |(line_number, line)| {
+        request_rows(line_number, line)
+            .into_iter()
+            .map(|(id, row)| {
+                number += 1;
+                Record { number, id, row }
+            })
+            .collect::<Vec<_>>()
+    })
+}
+
+/// The rows of one request line, each with its id (the request's, and
+/// `#k` for the k-th of several); none for a blank line.
+fn request_rows(line_number: usize, line: std::io::Result<String>) -> Vec<(Option<String>, Result<Row, RecordError>)> {
+    let line = match line {
+        Ok(l) if l.trim().is_empty() => return Vec::new(),
+        Ok(l) => l,
+        Err(e) => return vec![(None, Err(RecordError::Unreadable(format!("line {line_number}: {e}"))))],
+    };
+    let value: serde_json::Value = match serde_json::from_str(&line) {
+        Ok(v) => v,
+        Err(e) => return vec![(None, Err(RecordError::NotJson(e.to_string())))],
+    };
+    let id = value.get("id").filter(|v| !v.is_null()).map(|v| match v {
+        serde_json::Value::String(s) => s.clone(),
+        other => other.to_string(),
+    });
+    let row = |v: &serde_json::Value| Row::from_json(v.clone()).map_err(RecordError::from);
+    match (value.get("row"), value.get("rows")) {
+        (Some(r), None) => vec![(id, row(r))],
+        (None, Some(serde_json::Value::Array(rows))) if rows.len() == 1 => vec![(id, row(&rows[0]))],
+        (None, Some(serde_json::Value::Array(rows))) => {
+            rows.iter().enumerate().map(|(k, r)| (id.as_ref().map(|i| format!("{i}#{}", k + 1)), row(r))).collect()
+        }
+        _ => vec![(id, Err(RecordError::NotARequest))],
+    }
 }
 
 fn csv_records<'a, R: Read + 'a>(
@@ -205,8 +277,7 @@ fn csv_problem(e: csv::Error) -> RecordError {
 
 fn ndjson_records<'a, R: Read + 'a>(input: R, columns: Columns<'a>) -> impl Iterator<Item = Record> + 'a {
     let id = columns.id;
-    BufReader::new(input).lines().enumerate().filter_map(move |(i, line)| {
-        let number = i + 1;
+    numbered_lines(input).filter_map(move |(number, line)| {
         let line = match line {
             Ok(l) => l,
             Err(e) => return Some(Record { number, id: None, row: Err(RecordError::Unreadable(e.to_string())) }),
@@ -320,5 +391,52 @@ mod tests {
         assert!(matches!(got[1].row.as_ref().unwrap_err(), RecordError::NotJson(_)));
         assert_eq!(got[2].row.as_ref().unwrap_err(), &RecordError::Row(RowJsonError::NotAnObject { kind: "an array" }));
         assert_eq!(got[2].row.as_ref().unwrap_err().to_string(), "a row must be a JSON object, not an array");
+    }
+
+    #[test]
+    fn request_lines_give_each_row_with_its_requests_id() {
+        let s = schema();
+        let input = concat!(
+            "{\"id\": \"a\", \"model\": \"t\", \"row\": {\"kw\": 1}, \"captured\": {\"answers\": [[2]]}}\n",
+            "\n",
+            "{\"model\": \"t\", \"rows\": [{\"kw\": 2}, {\"kw\": 3}], \"id\": 9}\n",
+            "{\"model\": \"t\"}\n",
+        );
+        let got: Vec<Record> =
+            records(input.as_bytes(), RowFormat::Requests, &s, Columns::default()).unwrap().collect();
+        let ids: Vec<Option<&str>> = got.iter().map(|r| r.id.as_deref()).collect();
+        assert_eq!(ids, [Some("a"), Some("9#1"), Some("9#2"), None]);
+        assert_eq!(got.iter().map(|r| r.number).collect::<Vec<_>>(), [1, 2, 3, 4]);
+        assert_eq!(got[2].row.as_ref().unwrap().fields(), &[("kw".to_owned(), Value::Integer(3))]);
+        assert_eq!(got[3].row.as_ref().unwrap_err(), &RecordError::NotARequest);
+        for (name, format) in [
+            ("capture-1.requests.ndjson.gz", RowFormat::Requests),
+            ("rows.ndjson.gz", RowFormat::Ndjson),
+            ("rows.CSV", RowFormat::Csv),
+        ] {
+            assert_eq!(RowFormat::from_path(Path::new(name)), Some(format), "{name}");
+        }
+    }
+
+    /// A reader that fails after its first line, as a compressed file cut
+    /// short does: the failure is one record, and the file ends there.
+    #[test]
+    fn a_file_that_cannot_be_read_further_ends_with_one_error() {
+        struct CutShort(bool);
+        impl Read for CutShort {
+            fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+                if std::mem::replace(&mut self.0, true) {
+                    return Err(std::io::Error::new(std::io::ErrorKind::UnexpectedEof, "cut short"));
+                }
+                let line = b"{\"kw\": 1}\n";
+                buf[..line.len()].copy_from_slice(line);
+                Ok(line.len())
+            }
+        }
+        let s = schema();
+        let got: Vec<Record> = records(CutShort(false), RowFormat::Ndjson, &s, Columns::default()).unwrap().collect();
+        assert_eq!(got.len(), 2);
+        assert!(got[0].row.is_ok());
+        assert!(matches!(got[1].row.as_ref().unwrap_err(), RecordError::Unreadable(e) if e.contains("cut short")));
     }
 }

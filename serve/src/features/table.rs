@@ -153,7 +153,10 @@ impl Table {
             let (names, rows) = parquet_rows(bytes, &file)?;
             return Table::from_rows(names, rows, &file, key, updated);
         }
-        let format = RowFormat::from_path(path).ok_or_else(|| TableError::Format {
+        // A table is CSV or NDJSON as written (not compressed, not requests).
+        let compressed = path.extension().is_some_and(|e| e.eq_ignore_ascii_case("gz"));
+        let format = RowFormat::from_path(path).filter(|f| !compressed && *f != RowFormat::Requests);
+        let format = format.ok_or_else(|| TableError::Format {
             file: file.clone(),
             extension: path.extension().map(|e| e.to_string_lossy().into_owned()).unwrap_or_default(),
         })?;
@@ -180,6 +183,7 @@ impl Table {
             problem,
         };
         let (names, rows) = match format {
+            RowFormat::Requests => return Err(cell_error(0, None, "estimate requests are not a table".into())),
             RowFormat::Csv => {
                 let mut reader = csv::ReaderBuilder::new().flexible(false).from_reader(bytes);
                 let names: Vec<String> = reader

@@ -16,8 +16,9 @@
 //! (`[models.NAME.private]`): dropped, or written as a salted SHA-256 whose
 //! salt lives only in the host's memory.
 //!
-//! Files: `current.ndjson.gz.partial` while being written; closed (the gzip
-//! stream finished) and renamed `capture-<UTC time>-<number>.ndjson.gz`
+//! Files: `current.requests.ndjson.gz.partial` while being written; closed
+//! (the gzip stream finished) and renamed
+//! `capture-<UTC time>-<number>.requests.ndjson.gz`
 //! once it holds `file_bytes` of lines, on [`Capture::rotate`], and when
 //! the host stops; the oldest closed files beyond `keep_files` are deleted.
 
@@ -43,7 +44,7 @@ use super::routes::RequestContext;
 use crate::features::Privacy;
 
 /// The file being written.
-pub const PARTIAL_FILE: &str = "current.ndjson.gz.partial";
+pub const PARTIAL_FILE: &str = "current.requests.ndjson.gz.partial";
 
 /// How a host captures traffic.
 #[derive(Clone, Debug, PartialEq)]
@@ -253,10 +254,10 @@ fn spread(n: u64) -> u64 {
     z ^ (z >> 31)
 }
 
-/// A closed file's name: `capture-20261205T194100Z-000003.ndjson.gz`.
+/// A closed file's name: `capture-20261205T194100123Z-000003.requests.ndjson.gz`.
 fn closed_name(dir: &Path, number: u64, suffix: &str) -> PathBuf {
     let now = Timestamp::now().strftime("%Y%m%dT%H%M%S%.fZ").to_string().replace('.', "");
-    dir.join(format!("capture-{now}-{number:06}{suffix}.ndjson.gz"))
+    dir.join(format!("capture-{now}-{number:06}{suffix}.requests.ndjson.gz"))
 }
 
 /// The file being written.
