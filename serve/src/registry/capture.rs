@@ -43,6 +43,9 @@ use sha2::{Digest as _, Sha256};
 use super::routes::RequestContext;
 use crate::features::Privacy;
 
+/// How often what was written reaches the file system (a crash loses at most this much).
+const FLUSH_EVERY: Duration = Duration::from_secs(1);
+
 /// The file being written.
 pub const PARTIAL_FILE: &str = "current.requests.ndjson.gz.partial";
 
@@ -280,15 +283,26 @@ struct Writer {
 
 impl Writer {
     fn run(mut self, rx: Receiver<Message>) {
+        let mut flushed = std::time::Instant::now();
         loop {
-            match rx.recv_timeout(Duration::from_secs(1)) {
-                Ok(Message::Line(taken)) => self.write(&taken),
+            match rx.recv_timeout(FLUSH_EVERY) {
+                Ok(Message::Line(taken)) => {
+                    self.write(&taken);
+                    // Under steady traffic too, lines reach the file system every second.
+                    if flushed.elapsed() >= FLUSH_EVERY {
+                        self.flush();
+                        flushed = std::time::Instant::now();
+                    }
+                }
                 Ok(Message::Rotate(ack)) => {
                     self.close();
                     let _ = ack.send(());
                 }
                 // Idle: what is written so far reaches the file system.
-                Err(RecvTimeoutError::Timeout) => self.flush(),
+                Err(RecvTimeoutError::Timeout) => {
+                    self.flush();
+                    flushed = std::time::Instant::now();
+                }
                 Err(RecvTimeoutError::Disconnected) => {
                     self.close();
                     return;
