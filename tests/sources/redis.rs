@@ -16,9 +16,23 @@ use super::{ask, assert_resumes};
 
 /// A store serving `m` with `x` from Redis, `missing` its fallback.
 fn store(server: &Server, missing: &str, budget_ms: u64) -> (tempfile::TempDir, Registry) {
+    store_with(server, missing, budget_ms, None)
+}
+
+/// As [`store`], the line packed with `profile` when one is given.
+fn store_with(
+    server: &Server,
+    missing: &str,
+    budget_ms: u64,
+    profile: Option<&paddock_host::Profile>,
+) -> (tempfile::TempDir, Registry) {
     let dir = tempfile::tempdir().unwrap();
     let store = dir.path();
     paddock_tests::line_store(store);
+    if let Some(profile) = profile {
+        let line = paddock_tests::line_artifact("m", "1.0.0", 2.0, 1.0, Some(true));
+        write_atomically(&store.join("m/1.0.0.wasm"), &paddock_tests::profiled(&line, profile));
+    }
     plan(store, server, missing, budget_ms);
     // Minute-long deadlines: a busy machine must not make a lookup late.
     let options = RegistryOptions { usage_flush: None, model: unhurried(), ..RegistryOptions::default() };
@@ -96,17 +110,32 @@ fn present_missing_and_stale_keys_follow_each_policy() {
 }
 
 /// Redis stopped mid-run: requests answer by the fallback (none hangs on
-/// the dead socket), and reads resume by themselves once it is back.
+/// the dead socket), and reads resume by themselves once it is back. The
+/// drift report counts the defaults as the source's being down, not as the
+/// world moving: the model's profile of `x` has it between 1 and 5 most
+/// of the time; the default 0.5 lands below.
 #[test]
 fn a_stopped_redis_falls_back_and_is_read_again_when_it_returns() {
+    use paddock_host::{Bins, FallbackCounts, FieldProfile, Profile};
     let mut server = Server::start();
     server.cmd(&["HSET", "site:a", "x", "3"]);
-    let (_dir, reg) = store(&server, "{ default = 0.5 }", 1000);
+    let field = FieldProfile { bins: Bins::Edges(vec![1.0, 5.0]), shares: vec![0.1, 0.8, 0.1, 0.0], summary: None };
+    let profile = Profile {
+        source: "by hand".into(),
+        rows: 10,
+        features: [("x".to_owned(), field)].into(),
+        outputs: Default::default(),
+    };
+    let (_dir, reg) = store_with(&server, "{ default = 0.5 }", 1000, Some(&profile));
     assert_eq!(ask(&reg, "a"), (7.0, Outcome::Found));
     server.stop();
     for _ in 0..20 {
         assert_eq!(ask(&reg, "a"), (2.0, Outcome::Unavailable), "down: the default");
     }
+    let drift = reg.status().artifacts[0].drift.clone().expect("a profile");
+    assert_eq!(drift.fields[0].fallbacks, FallbackCounts { missing: 0, stale: 0, unavailable: 20 }, "{drift:?}");
+    let named = "features plan fallbacks: 95.2 % of live values (unavailable 95.2 %)";
+    assert!(drift.fields[0].notes.iter().any(|n| n.starts_with(named)), "{:?}", drift.fields[0].notes);
     server.restart();
     server.cmd(&["HSET", "site:a", "x", "4"]);
     assert_resumes(&reg);
