@@ -201,6 +201,22 @@ fn a_bad_table_or_plan_is_refused_whole_and_the_previous_keeps_serving() {
         ]
     );
     assert_eq!(ask(&reg), 7.0);
+    // A private name that is neither a key nor a feature (a misspelt key
+    // would leave the key in captured traffic as it is), and a word that
+    // is neither "drop" nor "hash".
+    let plan = format!("{PLAN}\n[models.m.private]\nsiet = \"hash\"\nx = \"blur\"\n");
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    reg.reload().unwrap();
+    let FeaturesState::Refused { problems } = reg.status().features else { panic!("{:?}", reg.status().features) };
+    assert_eq!(problems, ["features.toml: models.m.private.x: say \"drop\" or \"hash\", not `blur`"]);
+    let plan = format!("{PLAN}\n[models.m.private]\nsiet = \"hash\"\n");
+    write_atomically(&store.join("features.toml"), plan.as_bytes());
+    reg.reload().unwrap();
+    let FeaturesState::Refused { problems } = reg.status().features else { panic!("{:?}", reg.status().features) };
+    assert_eq!(
+        problems,
+        ["m 1.0.0: `private` names `siet`, which is neither a key of the model (site) nor a feature of its contract"]
+    );
     // Mended: served again, and a file that does not parse names its place.
     write_atomically(&store.join("features.toml"), b"[models.m\n");
     reg.reload().unwrap();

@@ -664,6 +664,16 @@ impl Plan {
                 });
             }
         }
+        for name in plan.private.keys() {
+            if !plan.keys.contains(name) && !contract.features.iter().any(|f| &f.name == name) {
+                problems.push(PlanProblem::UnknownPrivate {
+                    model: model.to_owned(),
+                    version: version.clone(),
+                    name: name.clone(),
+                    keys: plan.keys.clone(),
+                });
+            }
+        }
         for f in contract.features.iter().filter(|f| f.required) {
             match features.get(&f.name) {
                 None => problems.push(PlanProblem::Unsourced {

@@ -76,6 +76,23 @@ pub enum PlanProblem {
         /// The feature the plan names.
         feature: String,
     },
+    /// The plan marks private a name that is neither one of the model's
+    /// keys nor a feature of the version's contract: capture would write
+    /// what it meant as it is.
+    #[error(
+        "{model} {version}: `private` names `{name}`, which is neither a key of the model ({}) nor a feature of its contract",
+        keys.join(", ")
+    )]
+    UnknownPrivate {
+        /// The model.
+        model: String,
+        /// The version.
+        version: Version,
+        /// The name marked private.
+        name: String,
+        /// The model's keys.
+        keys: Vec<String>,
+    },
     /// A required feature of the contract comes from nowhere.
     #[error(
         "{model} {version}: required feature `{feature}` has no source (say `{feature} = \"request\"` if the row carries it)"
