@@ -593,7 +593,8 @@ def capture(seconds, rounds=3):
         f"Target (issue 31): capture at 1 % adds no measurable latency at p99 — its median p99 {one:.2f} ms "
         f"{'lies within' if within else 'is above'} the spread of the runs with capture off "
         f"({min(p99['off']):.2f}–{max(p99['off']):.2f} ms): {'met' if within else 'not met'}. The last 1 % run sampled "
-        f"{c.get('sampled', 0):,} requests, wrote {c.get('written', 0):,} lines, dropped {c.get('dropped_queue_full', 0):,}.",
+        f"{c.get('sampled', 0):,} requests, wrote {c.get('written', 0):,} lines by the end of its load (the rest as it stopped), dropped "
+        f"{c.get('dropped_queue_full', 0):,}.",
     ])
 
 
