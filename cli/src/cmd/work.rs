@@ -43,7 +43,7 @@ pub struct Args {
     #[arg(long, default_value = "PADDOCK_ANSWERS", value_name = "NAME")]
     answers_stream: String,
     /// Events this worker handles at once.
-    #[arg(long, default_value_t = 64, value_name = "N")]
+    #[arg(long, default_value_t = 256, value_name = "N")]
     in_flight: usize,
     /// Events delivered and not acked, over all workers (the consumer's limit).
     #[arg(long, default_value_t = 1024, value_name = "N")]

@@ -101,8 +101,8 @@ impl Default for WorkerOptions {
             max_ack_pending: 1024,
             max_deliver: 5,
             ack_wait: Duration::from_secs(30),
-            in_flight: 64,
-            batch: 64,
+            in_flight: 256,
+            batch: 128,
             threads,
             retry_after: Duration::from_millis(500),
             name: format!("pid-{}", std::process::id()),
@@ -260,8 +260,15 @@ enum Verdict {
 }
 
 /// Connects, makes the streams and the durable consumer, and opens the
-/// message stream `run` pulls from.
-async fn connect(options: &WorkerOptions) -> Result<(jetstream::Context, consumer::pull::Stream), WorkerError> {
+/// message stream [`run`] pulls from (public so a benchmark can hold a bare
+/// consumer to the same settings).
+///
+/// # Errors
+/// [`WorkerError`] when the server cannot be reached, or the streams or
+/// the consumer cannot be made.
+pub async fn open_consumer(
+    options: &WorkerOptions,
+) -> Result<(jetstream::Context, consumer::pull::Stream), WorkerError> {
     let client = async_nats::ConnectOptions::new()
         .name("paddock worker")
         .connect(options.url.as_str())
@@ -325,150 +332,223 @@ pub async fn run(
     let mut shutdown = std::pin::pin!(shutdown);
     // Told to stop while still connecting or making the streams: nothing is
     // in hand yet, so stop at once.
-    let setup = connect(&options);
-    let (js, mut messages) = tokio::select! {
+    let setup = open_consumer(&options);
+    let (js, messages) = tokio::select! {
         () = &mut shutdown => return Ok(()),
         ready = setup => ready?,
     };
     let in_flight = Arc::new(Semaphore::new(options.in_flight));
     let scoring = Arc::new(Semaphore::new(options.threads.max(1)));
     let options = Arc::new(options);
+    // The events already delivered, up to a batch at a time: one thread hop
+    // to score them, their answers' publishes under way together.
+    let mut batches = messages.ready_chunks(options.batch.clamp(1, options.in_flight.max(1)));
     loop {
-        let permit = tokio::select! {
+        let batch = tokio::select! {
             () = &mut shutdown => break,
-            p = in_flight.clone().acquire_owned() => p.expect("the semaphore is never closed"),
+            b = batches.next() => b,
         };
-        let message = tokio::select! {
-            () = &mut shutdown => break,
-            m = messages.next() => m,
-        };
-        let message = match message {
-            None => break,
-            Some(Ok(m)) => m,
-            Some(Err(e)) => {
+        let Some(batch) = batch else { break };
+        let mut taken = Vec::with_capacity(batch.len());
+        for m in batch {
+            match m {
+                Ok(m) => taken.push(m),
                 // Missed heartbeats and the like while the server is away:
-                // the stream goes on once it is back. A short pause keeps a
-                // lasting fault from spinning.
-                tracing::warn!(error = %e, "pulling events");
-                tokio::select! {
-                    () = &mut shutdown => break,
-                    () = tokio::time::sleep(Duration::from_millis(100)) => continue,
-                }
+                // the stream goes on once it is back.
+                Err(e) => tracing::warn!(error = %e, "pulling events"),
+            }
+        }
+        if taken.is_empty() {
+            // A short pause keeps a lasting fault from spinning.
+            tokio::select! {
+                () = &mut shutdown => break,
+                () = tokio::time::sleep(Duration::from_millis(100)) => continue,
+            }
+        }
+        // Bounded: a batch waits for room among the events under way (one
+        // not started before a stop comes back, unacked, to another worker).
+        let permits = tokio::select! {
+            () = &mut shutdown => break,
+            p = in_flight.clone().acquire_many_owned(u32::try_from(taken.len()).unwrap_or(u32::MAX)) => {
+                p.expect("the semaphore is never closed")
             }
         };
         let (registry, js, options, counts, scoring) =
             (registry.clone(), js.clone(), options.clone(), counts.clone(), scoring.clone());
         tokio::spawn(async move {
-            handle(&registry, &js, &options, &counts, &scoring, message).await;
-            drop(permit);
+            handle(&registry, &js, &options, &counts, &scoring, taken).await;
+            drop(permits);
         });
     }
-    drop(messages);
+    drop(batches);
     // Finish what is in hand: every permit back means every event acked or left to come back.
     let _all = in_flight.acquire_many(u32::try_from(options.in_flight).unwrap_or(u32::MAX)).await;
     Ok(())
 }
 
+/// One event taken: its message, how often it came, and its request.
+struct Event {
+    message: jetstream::Message,
+    deliveries: i64,
+    sequence: u64,
+}
+
+/// Handles a batch of events: gathers each one's features (awaited, no
+/// thread held), scores them all on one blocking thread, publishes every
+/// answer or dead letter, and acks each event once its publish is
+/// confirmed.
 async fn handle(
     registry: &Registry,
     js: &jetstream::Context,
     options: &WorkerOptions,
     counts: &WorkerCounts,
     scoring: &Arc<Semaphore>,
-    message: jetstream::Message,
+    messages: Vec<jetstream::Message>,
 ) {
-    counts.events.fetch_add(1, Ordering::Relaxed);
-    let (deliveries, sequence) = match message.info() {
-        Ok(i) => {
-            counts.pending.store(i.pending, Ordering::Relaxed);
-            (i.delivered, i.stream_sequence)
+    let mut events = Vec::with_capacity(messages.len());
+    let mut requests = Vec::with_capacity(messages.len());
+    for message in messages {
+        counts.events.fetch_add(1, Ordering::Relaxed);
+        let (deliveries, sequence) = match message.info() {
+            Ok(i) => {
+                counts.pending.store(i.pending, Ordering::Relaxed);
+                (i.delivered, i.stream_sequence)
+            }
+            Err(_) => (1, 0),
+        };
+        if deliveries > 1 {
+            counts.redelivered.fetch_add(1, Ordering::Relaxed);
         }
-        Err(_) => (1, 0),
-    };
-    if deliveries > 1 {
-        counts.redelivered.fetch_add(1, Ordering::Relaxed);
+        requests.push(super::stream::parse(&message.payload));
+        events.push(Event { message, deliveries, sequence });
     }
-    let (id, parsed) = super::stream::parse(&message.payload);
-    // Lookups are awaited here, before a scoring thread is taken.
-    let prepared = match &parsed {
-        Ok(p) if registry.looks_up(p.model()) => Some(p.prepare(registry).await),
-        _ => None,
+    // Lookups are awaited here, together, before a scoring thread is taken.
+    let looks_up =
+        |parsed: &Result<super::stream::Parsed, ErrorBody>| parsed.as_ref().is_ok_and(|p| registry.looks_up(p.model()));
+    let prepared = if requests.iter().any(|(_, parsed)| looks_up(parsed)) {
+        futures_util::future::join_all(requests.iter().map(|(_, parsed)| async move {
+            match parsed {
+                Ok(p) if registry.looks_up(p.model()) => Some(p.prepare(registry).await),
+                _ => None,
+            }
+        }))
+        .await
+    } else {
+        requests.iter().map(|_| None).collect()
     };
-    let verdict = {
+    let sequences: Vec<u64> = events.iter().map(|e| e.sequence).collect();
+    let verdicts = {
         let _thread = scoring.clone().acquire_owned().await.expect("the semaphore is never closed");
         let registry = registry.clone();
         tokio::task::spawn_blocking(move || {
-            let result = parsed.and_then(|p| p.answer(&registry, prepared));
-            judge(id, result, sequence)
+            requests
+                .into_iter()
+                .zip(prepared)
+                .zip(sequences)
+                .map(|(((id, parsed), prepared), sequence)| {
+                    let result = parsed.and_then(|p| p.answer(&registry, prepared));
+                    judge(id, result, sequence)
+                })
+                .collect::<Vec<_>>()
         })
         .await
     };
-    let (event, verdict) = match verdict {
+    let verdicts = match verdicts {
         Ok(v) => v,
-        Err(e) => {
-            (format!("seq-{sequence}"), Verdict::Retry(ErrorBody::new("server", format!("scoring stopped: {e}"))))
-        }
+        Err(e) => events
+            .iter()
+            .map(|ev| {
+                let why = ErrorBody::new("server", format!("scoring stopped: {e}"));
+                (format!("seq-{}", ev.sequence), Verdict::Retry(why))
+            })
+            .collect(),
     };
+    // Every publish sent before any confirmation is awaited.
+    let subjects =
+        (async_nats::Subject::from(options.answers.as_str()), async_nats::Subject::from(options.dead_letters.as_str()));
+    let mut sent = Vec::with_capacity(events.len());
+    for (event, (name, verdict)) in events.into_iter().zip(verdicts) {
+        if let Some(publish) = publish(js, options, &subjects, counts, &event, &name, verdict).await {
+            sent.push((event, name, publish));
+        }
+    }
+    // Each event acked as soon as its own publish is confirmed.
+    let acks = sent.into_iter().map(|(event, name, (dead, publish))| async move {
+        let confirmed = match publish {
+            Ok(confirm) => confirm.await.map_err(|e| e.to_string()),
+            Err(e) => Err(e),
+        };
+        match confirmed {
+            Ok(ack) => {
+                if dead {
+                    counts.dead_lettered.fetch_add(1, Ordering::Relaxed);
+                } else {
+                    counts.answered.fetch_add(1, Ordering::Relaxed);
+                    if ack.duplicate {
+                        counts.duplicates.fetch_add(1, Ordering::Relaxed);
+                    }
+                }
+                if let Err(e) = event.message.ack().await {
+                    // The event comes back; its answer is a duplicate then.
+                    tracing::warn!(event = %name, error = %e, "ack not sent");
+                }
+            }
+            Err(e) => {
+                tracing::warn!(event = %name, error = %e, "publish not confirmed; the event comes back");
+                counts.retried.fetch_add(1, Ordering::Relaxed);
+                let _ = event.message.ack_with(AckKind::Nak(Some(options.retry_after))).await;
+            }
+        }
+    });
+    futures_util::future::join_all(acks).await;
+}
+
+/// A publish under way: whether it is a dead letter, and its confirmation.
+type Sent = (bool, Result<jetstream::context::PublishAckFuture, String>);
+
+/// Sends an event's answer or dead letter (not awaiting its confirmation),
+/// or naks an event to come back; `None` when there is nothing to confirm.
+async fn publish(
+    js: &jetstream::Context,
+    options: &WorkerOptions,
+    (answers, dead_letters): &(async_nats::Subject, async_nats::Subject),
+    counts: &WorkerCounts,
+    event: &Event,
+    name: &str,
+    verdict: Verdict,
+) -> Option<Sent> {
+    let message = &event.message;
     let dead = |error: &ErrorBody| {
         let letter = DeadLetter {
-            event: &event,
+            event: name,
             subject: message.subject.as_str(),
-            deliveries,
+            deliveries: event.deliveries,
             error: &error.error,
             payload: serde_json::from_slice(&message.payload)
                 .unwrap_or_else(|_| String::from_utf8_lossy(&message.payload).into_owned().into()),
         };
         serde_json::to_vec(&letter).unwrap_or_default()
     };
-    let (subject, body, id) = match &verdict {
-        Verdict::Answer(body) => (&options.answers, body.clone(), event.clone()),
-        Verdict::Dead(error) => (&options.dead_letters, dead(error), format!("dead:{event}")),
-        Verdict::Retry(error) if deliveries >= options.max_deliver => {
-            let mut error = error.clone();
-            error.error.message = format!("gave up after {deliveries} deliveries: {}", error.error.message);
-            (&options.dead_letters, dead(&error), format!("dead:{event}"))
+    let (subject, body, id) = match verdict {
+        Verdict::Answer(body) => (answers, body, name.to_owned()),
+        Verdict::Dead(error) => (dead_letters, dead(&error), format!("dead:{name}")),
+        Verdict::Retry(mut error) if event.deliveries >= options.max_deliver => {
+            error.error.message = format!("gave up after {} deliveries: {}", event.deliveries, error.error.message);
+            (dead_letters, dead(&error), format!("dead:{name}"))
         }
         Verdict::Retry(error) => {
-            tracing::warn!(event = %event, deliveries, error = %error.error.message, "event left to come back");
+            tracing::warn!(event = %name, deliveries = event.deliveries, error = %error.error.message, "event left to come back");
             counts.retried.fetch_add(1, Ordering::Relaxed);
             let _ = message.ack_with(AckKind::Nak(Some(options.retry_after))).await;
-            return;
+            return None;
         }
     };
-    let published = match js
-        .send_publish(
-            subject.clone(),
-            jetstream::message::PublishMessage::build()
-                .payload(body.into())
-                .message_id(&id)
-                .header(WORKER_HEADER, options.name.as_str()),
-        )
-        .await
-    {
-        Ok(confirm) => confirm.await.map_err(|e| e.to_string()),
-        Err(e) => Err(e.to_string()),
-    };
-    match published {
-        Ok(ack) => {
-            if subject == &options.answers {
-                counts.answered.fetch_add(1, Ordering::Relaxed);
-                if ack.duplicate {
-                    counts.duplicates.fetch_add(1, Ordering::Relaxed);
-                }
-            } else {
-                counts.dead_lettered.fetch_add(1, Ordering::Relaxed);
-            }
-            if let Err(e) = message.ack().await {
-                // The event comes back; its answer is a duplicate then.
-                tracing::warn!(event = %event, error = %e, "ack not sent");
-            }
-        }
-        Err(e) => {
-            tracing::warn!(event = %event, error = %e, "publish not confirmed; the event comes back");
-            counts.retried.fetch_add(1, Ordering::Relaxed);
-            let _ = message.ack_with(AckKind::Nak(Some(options.retry_after))).await;
-        }
-    }
+    let built = jetstream::message::PublishMessage::build()
+        .payload(body.into())
+        .message_id(&id)
+        .header(WORKER_HEADER, options.name.as_str());
+    let sent = js.send_publish(subject.clone(), built).await.map_err(|e| e.to_string());
+    Some((subject != answers, sent))
 }
 
 /// What to do with one event, given its answer: its id, and the verdict.
