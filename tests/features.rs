@@ -553,8 +553,10 @@ fn a_full_disk_loses_captured_lines_and_fails_no_request() {
 
 /// A disk that does not take writes at all: the capture file is a named
 /// pipe nobody reads, so the writing thread waits on it. Requests go on
-/// being answered; the queue fills and the lines past it are dropped and
-/// counted. Once something reads the pipe, what was queued is written.
+/// being answered; the queue fills — here its bytes bind first: 2 000
+/// bytes hold five of these lines (about 350 bytes each, as estimated) —
+/// and the lines past it are dropped and counted. Once something reads
+/// the pipe, what was queued is written.
 #[test]
 fn a_stuck_disk_drops_captured_lines_and_holds_up_no_request() {
     let capture = tempfile::tempdir().unwrap();
@@ -562,6 +564,7 @@ fn a_stuck_disk_drops_captured_lines_and_holds_up_no_request() {
     let options = paddock_serve::registry::CaptureOptions {
         share: 1.0,
         queue,
+        queue_bytes: 2_000,
         ..paddock_serve::registry::CaptureOptions::new(capture.path())
     };
     let (_dir, reg) = capturing_store(options);
@@ -588,4 +591,21 @@ fn a_stuck_disk_drops_captured_lines_and_holds_up_no_request() {
     let counts = reg.status().capture.unwrap().counts;
     assert_eq!(text.lines().count() as u64, counts.written, "{counts:?}");
     assert_eq!(counts.written + counts.dropped_queue_full, u64::from(requests), "{counts:?}");
+    assert!(counts.written <= 6, "five lines queued and one in the writer's hands at most: {counts:?}");
+}
+
+/// A line longer than the limit is dropped and counted, before it is queued.
+#[test]
+fn a_captured_line_past_its_limit_is_dropped_and_counted() {
+    let capture = tempfile::tempdir().unwrap();
+    let options = paddock_serve::registry::CaptureOptions {
+        share: 1.0,
+        line_bytes: 200,
+        ..paddock_serve::registry::CaptureOptions::new(capture.path())
+    };
+    let (_dir, reg) = capturing_store(options);
+    reg.score(&Request::new("m", &site("s1"), &[Row::new()])).unwrap();
+    assert!(reg.rotate_capture(std::time::Duration::from_secs(60)));
+    let counts = reg.status().capture.unwrap().counts;
+    assert_eq!((counts.sampled, counts.dropped_too_long, counts.written), (1, 1, 0), "{counts:?}");
 }

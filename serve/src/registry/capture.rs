@@ -4,9 +4,9 @@
 //! Off unless [`super::RegistryOptions::capture`] names a directory. A
 //! sampled request hands a copy of its rows (as scored: completed by the
 //! features plan) and its answer to a bounded queue and returns; one thread
-//! writes. When the queue is full the line is dropped and counted, so a
-//! slow or full disk never slows or fails a request, and memory stays
-//! bounded (the queue's length times the largest line).
+//! writes. When the queue is full — in lines, or in the bytes its lines
+//! hold — the line is dropped and counted, so a slow or full disk never
+//! slows or fails a request, and memory stays bounded.
 //!
 //! Each line is an estimate request as `POST /estimate` and `paddock
 //! stream` take it (`model`, `context`, `at`, `rows`), plus a `captured`
@@ -62,13 +62,17 @@ pub struct CaptureOptions {
     pub keep_files: usize,
     /// Lines waiting to be written at most; more are dropped (and counted).
     pub queue: usize,
+    /// Bytes the waiting lines may hold at most (as estimated before they
+    /// are written); a line that would pass it is dropped (and counted).
+    pub queue_bytes: u64,
     /// The longest line written; a longer one is dropped (and counted).
     pub line_bytes: usize,
 }
 
 impl CaptureOptions {
     /// Capture 1 % of requests into `dir`, in files of 64 MiB of lines,
-    /// keeping 48, with a queue of 1024 lines of at most 1 MiB.
+    /// keeping 48, with a queue of 1024 lines holding at most 64 MiB, each
+    /// line at most 1 MiB.
     pub fn new(dir: impl Into<PathBuf>) -> CaptureOptions {
         CaptureOptions {
             dir: dir.into(),
@@ -76,6 +80,7 @@ impl CaptureOptions {
             file_bytes: 64 << 20,
             keep_files: 48,
             queue: 1024,
+            queue_bytes: 64 << 20,
             line_bytes: 1 << 20,
         }
     }
@@ -157,6 +162,26 @@ pub(crate) struct Taken {
     /// Per request row, its values, or `None` when it got none.
     pub answers: Vec<Option<Vec<f64>>>,
     pub private: Option<Arc<BTreeMap<String, Privacy>>>,
+    /// What [`Taken::estimated_bytes`] said when it was queued.
+    pub queued_bytes: u64,
+}
+
+impl Taken {
+    /// About the bytes its line will take: every key and value of its
+    /// context and rows, and its answers, at their written length or more.
+    fn estimated_bytes(&self) -> u64 {
+        let value = |v: &Value| match v {
+            Value::Label(text) => text.len() + 2,
+            _ => 24,
+        };
+        let context: usize = self.context.iter().map(|(k, v)| k.len() + v.len() + 6).sum();
+        let rows: usize = self.rows.iter().flat_map(|r| r.fields()).map(|(k, v)| k.len() + 4 + value(v)).sum::<usize>()
+            + 2 * self.rows.len();
+        let answers: usize = self.answers.iter().map(|a| a.as_ref().map_or(5, |v| 25 * v.len() + 2)).sum();
+        let outputs: usize = self.outputs.iter().map(|o| o.len() + 3).sum();
+        let private: usize = self.private.as_deref().map_or(0, |p| p.keys().map(|k| k.len() + 12).sum());
+        (256 + self.model.len() + context + rows + answers + outputs + private) as u64
+    }
 }
 
 enum Message {
@@ -171,6 +196,10 @@ pub(crate) struct Capture {
     /// A request is sampled when the hash of its number is below this.
     threshold: u64,
     counters: Arc<Counters>,
+    /// Bytes the queued lines hold (estimated), and the most they may.
+    queued: Arc<AtomicU64>,
+    queue_bytes: u64,
+    line_bytes: usize,
 }
 
 impl Capture {
@@ -191,12 +220,23 @@ impl Capture {
         let threshold = if options.share >= 1.0 { u64::MAX } else { (options.share * u64::MAX as f64) as u64 };
         let mut salt = [0u8; 16];
         getrandom::fill(&mut salt).map_err(|e| CaptureError::Thread(std::io::Error::other(e.to_string())))?;
-        let writer = Writer { options, counters: counters.clone(), salt, open: None, closed: 0 };
+        let queued = Arc::new(AtomicU64::new(0));
+        let (queue_bytes, line_bytes) = (options.queue_bytes, options.line_bytes);
+        let writer =
+            Writer { options, counters: counters.clone(), queued: queued.clone(), salt, open: None, closed: 0 };
         std::thread::Builder::new()
             .name("paddock-capture".into())
             .spawn(move || writer.run(rx))
             .map_err(CaptureError::Thread)?;
-        Ok(Capture { queue: Mutex::new(Some(tx)), next: AtomicU64::new(0), threshold, counters })
+        Ok(Capture {
+            queue: Mutex::new(Some(tx)),
+            next: AtomicU64::new(0),
+            threshold,
+            counters,
+            queued,
+            queue_bytes,
+            line_bytes,
+        })
     }
 
     /// Whether the next request is sampled (counted when it is).
@@ -209,11 +249,24 @@ impl Capture {
         sampled
     }
 
-    /// Queues a sampled request's line, or counts it dropped when the queue is full.
-    pub(crate) fn offer(&self, taken: Taken) {
+    /// Queues a sampled request's line, or counts it dropped: too long,
+    /// or the queue full (in lines or bytes).
+    pub(crate) fn offer(&self, mut taken: Taken) {
+        let bytes = taken.estimated_bytes();
+        if bytes > self.line_bytes as u64 {
+            self.counters.dropped_too_long.fetch_add(1, Ordering::Relaxed);
+            return;
+        }
+        if self.queued.fetch_add(bytes, Ordering::Relaxed) + bytes > self.queue_bytes {
+            self.queued.fetch_sub(bytes, Ordering::Relaxed);
+            self.counters.dropped_queue_full.fetch_add(1, Ordering::Relaxed);
+            return;
+        }
+        taken.queued_bytes = bytes;
         let queue = self.queue.lock().unwrap_or_else(|e| e.into_inner());
         let sent = queue.as_ref().is_some_and(|tx| tx.try_send(Message::Line(Box::new(taken))).is_ok());
         if !sent {
+            self.queued.fetch_sub(bytes, Ordering::Relaxed);
             self.counters.dropped_queue_full.fetch_add(1, Ordering::Relaxed);
         }
     }
@@ -276,6 +329,8 @@ struct Open {
 struct Writer {
     options: CaptureOptions,
     counters: Arc<Counters>,
+    /// The capture's count of queued bytes, given back as lines are taken.
+    queued: Arc<AtomicU64>,
     salt: [u8; 16],
     open: Option<Open>,
     closed: u64,
@@ -287,6 +342,7 @@ impl Writer {
         loop {
             match rx.recv_timeout(FLUSH_EVERY) {
                 Ok(Message::Line(taken)) => {
+                    self.queued.fetch_sub(taken.queued_bytes, Ordering::Relaxed);
                     self.write(&taken);
                     // Under steady traffic too, lines reach the file system every second.
                     if flushed.elapsed() >= FLUSH_EVERY {
@@ -502,4 +558,44 @@ struct Captured<'a> {
     /// Each private name of the plan: `dropped` or `hashed`.
     #[serde(skip_serializing_if = "BTreeMap::is_empty")]
     private: BTreeMap<&'a str, &'static str>,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The estimate a line is queued by is never below the line written,
+    /// so the byte bound holds: labels, numbers, flags, absent answers,
+    /// private names.
+    #[test]
+    fn a_lines_estimate_is_at_least_its_length() {
+        let row = Row::new()
+            .with("charger_kw", -1.234_567_890_123_456_7e-300)
+            .with("plug", "ccs2 \"quoted\"")
+            .with("fleet", true)
+            .with("hour", i64::MIN);
+        let taken = Taken {
+            model: "charge-minutes".into(),
+            context: [("site".to_owned(), "north-1".to_owned())].into(),
+            at: Timestamp::now(),
+            rows: vec![row.clone(), row],
+            version: Version::new(1, 2, 3),
+            digest: Digest::of(b"x"),
+            outputs: Arc::from(vec!["minutes".to_owned(), "p".to_owned()]),
+            answers: vec![Some(vec![-1.234_567_890_123_456_7e-300, 2.0]), None],
+            private: Some(Arc::new([("site".to_owned(), Privacy::Hash)].into())),
+            queued_bytes: 0,
+        };
+        let dir = tempfile::tempdir().unwrap();
+        let writer = Writer {
+            options: CaptureOptions::new(dir.path()),
+            counters: Arc::default(),
+            queued: Arc::default(),
+            salt: [7; 16],
+            open: None,
+            closed: 0,
+        };
+        let written = serde_json::to_vec(&writer.line(&taken)).unwrap().len() as u64;
+        assert!(taken.estimated_bytes() >= written, "{} < {written}", taken.estimated_bytes());
+    }
 }

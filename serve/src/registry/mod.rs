@@ -606,6 +606,7 @@ fn taken(
         outputs: served.outputs.clone(),
         answers,
         private: plan.map(|p| p.private().clone()),
+        queued_bytes: 0,
     }
 }
 
