@@ -131,6 +131,12 @@ s6,7.4,40,0.5,1.0,20,150,type2,no
         let minutes: f64 = lines[good].split(',').nth(2).unwrap().parse().unwrap();
         assert!((0.0..=2880.0).contains(&minutes) && minutes > 1.0, "{}", lines[good]);
     }
+    // Batches of two on three threads: the same lines, in the same order.
+    let args = ["score", a.to_str().unwrap(), input.to_str().unwrap(), "--id", "session", "--batch", "2"];
+    let one = paddock(&[&args[..], &["--threads", "1"]].concat(), None);
+    let three = paddock(&[&args[..], &["--threads", "3"]].concat(), None);
+    assert_eq!(text(&three.stdout), text(&one.stdout));
+    assert_eq!(text(&three.stdout), text(&out.stdout));
 }
 
 #[test]

@@ -58,6 +58,10 @@ pub struct Args {
     /// Rows per call into the sandbox.
     #[arg(long, default_value_t = 512, value_parser = clap::value_parser!(u32).range(1..=65_536))]
     batch: u32,
+    /// Batches scored at once, each on a thread of its own; the output keeps
+    /// the input's order [default: the number of cores].
+    #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..=1024))]
+    threads: Option<u32>,
     /// Same as --to ndjson (for programs reading the output).
     #[arg(long)]
     json: bool,
@@ -131,7 +135,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let len = file.metadata().map(|m| m.len()).unwrap_or(0);
         let bar = if len > 1 << 20 { ProgressBar::new(len) } else { ProgressBar::hidden() };
         bar.set_style(
-            ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {eta}")
+            ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {msg} {eta} left")
                 .unwrap_or_else(|_| ProgressStyle::default_bar()),
         );
         (crate::common::decompressed(&args.input, Box::new(bar.wrap_read(file))), bar)
@@ -148,28 +152,33 @@ pub fn run(args: Args) -> Result<Outcome> {
     // A request's id (if it has one) names its rows.
     let with_id = args.id.is_some() || format == RowFormat::Requests;
     let mut writer = Writer::new(out, to, &model, with_id, args.contributions)?;
-    let mut batch: Vec<Record> = Vec::with_capacity(args.batch as usize);
+    let threads =
+        args.threads.map_or_else(|| std::thread::available_parallelism().map_or(1, usize::from), |n| n as usize);
+    let (batch, explain) = (args.batch as usize, args.contributions);
     let (mut scored, mut failed) = (0usize, 0usize);
-    for record in records {
-        batch.push(record);
-        if batch.len() >= args.batch as usize {
-            for line in score_batch(&model, std::mem::take(&mut batch), args.contributions) {
-                if line.result.is_ok() {
-                    scored += 1
-                } else {
-                    failed += 1
-                }
-                writer.write(&line)?;
+    let mut records = records.peekable();
+    // A round: up to `threads` batches read, scored side by side, written in order.
+    while records.peek().is_some() {
+        let round: Vec<Vec<Record>> =
+            (0..threads).map(|_| records.by_ref().take(batch).collect::<Vec<_>>()).filter(|b| !b.is_empty()).collect();
+        let lines: Vec<Vec<Line>> = std::thread::scope(|scope| {
+            let model = &model;
+            let running: Vec<_> =
+                round.into_iter().map(|b| scope.spawn(move || score_batch(model, b, explain))).collect();
+            running.into_iter().map(|h| h.join().unwrap_or_else(|e| std::panic::resume_unwind(e))).collect()
+        });
+        for line in lines.into_iter().flatten() {
+            if line.result.is_ok() {
+                scored += 1
+            } else {
+                failed += 1
             }
+            writer.write(&line)?;
         }
-    }
-    for line in score_batch(&model, batch, args.contributions) {
-        if line.result.is_ok() {
-            scored += 1
-        } else {
-            failed += 1
-        }
-        writer.write(&line)?;
+        progress.set_message(format!(
+            "{:.0} rows/s",
+            (scored + failed) as f64 / progress.elapsed().as_secs_f64().max(1e-3)
+        ));
     }
     writer.finish()?;
     progress.finish_and_clear();
