@@ -275,8 +275,8 @@ impl Capture {
     /// it, waiting at most `timeout`; says whether it was done.
     pub(crate) fn rotate(&self, timeout: Duration) -> bool {
         let (ack, done) = sync_channel(1);
-        let queue = self.queue.lock().unwrap_or_else(|e| e.into_inner());
-        let Some(tx) = queue.as_ref() else { return false };
+        // A sender of its own: requests offering lines never wait on this.
+        let Some(tx) = self.queue.lock().unwrap_or_else(|e| e.into_inner()).clone() else { return false };
         // Waits for room in the queue no longer than `timeout` either.
         let deadline = std::time::Instant::now() + timeout;
         let mut message = Message::Rotate(ack);
@@ -291,7 +291,6 @@ impl Capture {
                 Err(TrySendError::Full(_)) => return false,
             }
         }
-        drop(queue);
         done.recv_timeout(deadline.saturating_duration_since(std::time::Instant::now())).is_ok()
     }
 
