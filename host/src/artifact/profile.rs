@@ -165,7 +165,8 @@ impl Profile {
     /// The profile of training rows as the contract encodes them — `cells`
     /// (`rows` × features: numbers, a label as its index in the contract's
     /// list, absent as NaN) — and of the model's answers to them, `values`
-    /// (`rows` × outputs), the way the notebook helper makes one: a
+    /// (`rows` × outputs; a label index the contract does not have counts
+    /// as missing), the way the notebook helper makes one: a
     /// number's edges are the deciles of its values present (NumPy's
     /// default, linear, quantiles; repeated edges dropped), a label feature
     /// gets a bin per label the rows use. `source` says where the rows came
@@ -186,7 +187,8 @@ impl Profile {
             .map(|(j, f)| {
                 let profile = match &f.domain {
                     Domain::Label(labels) => FieldProfile::of_labels(
-                        column(cells, features, j).map(|v| (!v.is_nan()).then(|| labels[v as usize].as_str())),
+                        column(cells, features, j)
+                            .map(|v| labels.get(v as usize).filter(|_| v >= 0.0).map(String::as_str)),
                     ),
                     _ => FieldProfile::of_numbers(column(cells, features, j)),
                 };
