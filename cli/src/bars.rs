@@ -1,7 +1,7 @@
 //! Drift reports drawn for people: each field's index, level and notes,
 //! then its training and live shares bin by bin as bars side by side.
 
-use paddock_host::{DriftLevel, DriftReport};
+use paddock_host::DriftReport;
 
 /// A drift report for people (`live` names what was counted): per field its index and level, any notes,
 /// then each bin's training and live shares as bars side by side.
@@ -11,13 +11,7 @@ pub fn drift_text(report: &DriftReport, live: &str) -> String {
     let mut out = format!("\ndrift against the training profile (training | {live}):\n");
     for f in &report.fields {
         let index = f.index.map_or("-".to_owned(), |i| format!("{i:.3}"));
-        let level = match f.level {
-            DriftLevel::TooFew => "too few values",
-            DriftLevel::Steady => "steady",
-            DriftLevel::Watch => "watch",
-            DriftLevel::Act => "act",
-        };
-        out.push_str(&format!("\n{} {}: index {index}, {level} ({} values)\n", f.kind, f.name, f.count));
+        out.push_str(&format!("\n{} {}: index {index}, {} ({} values)\n", f.kind, f.name, f.level, f.count));
         for note in &f.notes {
             out.push_str(&format!("  note: {note}\n"));
         }

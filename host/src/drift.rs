@@ -59,6 +59,18 @@ pub enum DriftLevel {
     Act,
 }
 
+impl std::fmt::Display for DriftLevel {
+    /// In words: `too few values`, `steady`, `watch`, `act`.
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(match self {
+            DriftLevel::TooFew => "too few values",
+            DriftLevel::Steady => "steady",
+            DriftLevel::Watch => "watch",
+            DriftLevel::Act => "act",
+        })
+    }
+}
+
 /// Why a features plan put a feature's fallback (absent, or its default)
 /// in place of a looked-up value.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord, Hash)]
@@ -88,6 +100,16 @@ impl FallbackCounts {
     /// All of them.
     pub fn total(&self) -> u64 {
         self.missing + self.stale + self.unavailable
+    }
+
+    /// Each cause's name and count: unavailable, missing, stale.
+    pub fn by_cause(&self) -> [(&'static str, u64); 3] {
+        [("unavailable", self.unavailable), ("missing", self.missing), ("stale", self.stale)]
+    }
+
+    /// The counts kept in a field's three counters (see [`cause_at`]).
+    fn from_counters(c: &[u64]) -> FallbackCounts {
+        FallbackCounts { missing: c[0], stale: c[1], unavailable: c[2] }
     }
 }
 
@@ -413,11 +435,7 @@ impl DriftWatch {
             .iter()
             .enumerate()
             .map(|(i, f)| {
-                let fell_back = FallbackCounts {
-                    missing: fallbacks[3 * i],
-                    stale: fallbacks[3 * i + 1],
-                    unavailable: fallbacks[3 * i + 2],
-                };
+                let fell_back = FallbackCounts::from_counters(&fallbacks[3 * i..3 * i + 3]);
                 self.judge(f, &totals[f.offset..f.offset + f.profile.bin_count()], fell_back)
             })
             .collect();
@@ -474,12 +492,12 @@ impl DriftWatch {
 /// missing 8.0 %): the source moved, not necessarily the world`.
 fn fallback_note(fallbacks: &FallbackCounts, count: u64) -> String {
     let share = |n: u64| n as f64 * 100.0 / count.max(1) as f64;
-    let causes: Vec<String> =
-        [("unavailable", fallbacks.unavailable), ("missing", fallbacks.missing), ("stale", fallbacks.stale)]
-            .iter()
-            .filter(|(_, n)| *n > 0)
-            .map(|(cause, n)| format!("{cause} {:.1} %", share(*n)))
-            .collect();
+    let causes: Vec<String> = fallbacks
+        .by_cause()
+        .iter()
+        .filter(|(_, n)| *n > 0)
+        .map(|(cause, n)| format!("{cause} {:.1} %", share(*n)))
+        .collect();
     format!(
         "features plan fallbacks: {:.1} % of live values ({}): the source moved, not necessarily the world",
         share(fallbacks.total()),

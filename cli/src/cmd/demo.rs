@@ -331,7 +331,7 @@ fn drift_part(d: &Drifted) -> String {
             vec![
                 format!("{} {}", f.kind, f.name),
                 f.index.map_or("-".into(), |i| format!("{i:.3}")),
-                serde_json::to_value(f.level).ok().and_then(|v| v.as_str().map(str::to_owned)).unwrap_or_default(),
+                f.level.to_string(),
             ]
         })
         .collect();

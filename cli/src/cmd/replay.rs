@@ -6,7 +6,7 @@ use std::io::BufRead;
 use std::path::PathBuf;
 
 use anyhow::{Context, Result, bail};
-use paddock_host::{DriftLevel, DriftWindow};
+use paddock_host::DriftWindow;
 use paddock_serve::replay::{Largest, Replay, ReplayReport};
 
 use crate::Outcome;
@@ -236,16 +236,10 @@ fn report_text(r: &ReplayReport, name: &str, files: usize) -> String {
         None => out.push_str("the candidate carries no training profile: no output drift\n"),
         Some(d) => {
             for f in d.fields.iter().filter(|f| f.kind == "output") {
-                let level = match f.level {
-                    DriftLevel::TooFew => "too few values",
-                    DriftLevel::Steady => "steady",
-                    DriftLevel::Watch => "watch",
-                    DriftLevel::Act => "act",
-                };
                 let index = f.index.map_or("-".to_owned(), |i| format!("{i:.4}"));
                 out.push_str(&format!(
-                    "output {} against the candidate's training profile: index {index}, {level}\n",
-                    f.name
+                    "output {} against the candidate's training profile: index {index}, {}\n",
+                    f.name, f.level
                 ));
             }
         }

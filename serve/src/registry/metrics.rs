@@ -127,8 +127,7 @@ fn drift_samples(status: &Status) -> DriftSamples {
             if let Some(i) = f.index {
                 out.index.push((l.clone(), i));
             }
-            let fb = &f.fallbacks;
-            for (cause, n) in [("missing", fb.missing), ("stale", fb.stale), ("unavailable", fb.unavailable)] {
+            for (cause, n) in f.fallbacks.by_cause() {
                 if n > 0 {
                     let mut with_cause = l.clone();
                     with_cause.push(("cause", Escaped(cause.to_owned())));
