@@ -26,9 +26,9 @@ use std::collections::BTreeMap;
 use std::fs::File;
 use std::io::{BufWriter, Write};
 use std::path::{Path, PathBuf};
+use std::sync::Arc;
 use std::sync::atomic::{AtomicU64, Ordering};
 use std::sync::mpsc::{Receiver, RecvTimeoutError, SyncSender, TrySendError, sync_channel};
-use std::sync::{Arc, Mutex};
 use std::time::Duration;
 
 use flate2::Compression;
@@ -191,7 +191,10 @@ enum Message {
 
 /// A host's capture: the sampling, the queue and the writing thread.
 pub(crate) struct Capture {
-    queue: Mutex<Option<SyncSender<Message>>>,
+    queue: SyncSender<Message>,
+    /// Where the files go, and the share sampled (for the status).
+    dir: PathBuf,
+    share: f64,
     next: AtomicU64,
     /// A request is sampled when the hash of its number is below this.
     threshold: u64,
@@ -222,6 +225,7 @@ impl Capture {
         getrandom::fill(&mut salt).map_err(|e| CaptureError::Thread(std::io::Error::other(e.to_string())))?;
         let queued = Arc::new(AtomicU64::new(0));
         let (queue_bytes, line_bytes) = (options.queue_bytes, options.line_bytes);
+        let (dir, share) = (options.dir.clone(), options.share);
         let writer =
             Writer { options, counters: counters.clone(), queued: queued.clone(), salt, open: None, closed: 0 };
         std::thread::Builder::new()
@@ -229,7 +233,9 @@ impl Capture {
             .spawn(move || writer.run(rx))
             .map_err(CaptureError::Thread)?;
         Ok(Capture {
-            queue: Mutex::new(Some(tx)),
+            queue: tx,
+            dir,
+            share,
             next: AtomicU64::new(0),
             threshold,
             counters,
@@ -263,9 +269,7 @@ impl Capture {
             return;
         }
         taken.queued_bytes = bytes;
-        let queue = self.queue.lock().unwrap_or_else(|e| e.into_inner());
-        let sent = queue.as_ref().is_some_and(|tx| tx.try_send(Message::Line(Box::new(taken))).is_ok());
-        if !sent {
+        if self.queue.try_send(Message::Line(Box::new(taken))).is_err() {
             self.queued.fetch_sub(bytes, Ordering::Relaxed);
             self.counters.dropped_queue_full.fetch_add(1, Ordering::Relaxed);
         }
@@ -275,13 +279,11 @@ impl Capture {
     /// it, waiting at most `timeout`; says whether it was done.
     pub(crate) fn rotate(&self, timeout: Duration) -> bool {
         let (ack, done) = sync_channel(1);
-        // A sender of its own: requests offering lines never wait on this.
-        let Some(tx) = self.queue.lock().unwrap_or_else(|e| e.into_inner()).clone() else { return false };
         // Waits for room in the queue no longer than `timeout` either.
         let deadline = std::time::Instant::now() + timeout;
         let mut message = Message::Rotate(ack);
         loop {
-            match tx.try_send(message) {
+            match self.queue.try_send(message) {
                 Ok(()) => break,
                 Err(TrySendError::Disconnected(_)) => return false,
                 Err(TrySendError::Full(m)) if std::time::Instant::now() < deadline => {
@@ -294,9 +296,10 @@ impl Capture {
         done.recv_timeout(deadline.saturating_duration_since(std::time::Instant::now())).is_ok()
     }
 
-    /// What became of the sampled requests so far.
-    pub(crate) fn counts(&self) -> CaptureCounts {
-        self.counters.read()
+    /// Where it writes, how much it samples, and what became of the
+    /// sampled requests so far.
+    pub(crate) fn state(&self) -> super::CaptureState {
+        super::CaptureState { dir: self.dir.clone(), share: self.share, counts: self.counters.read() }
     }
 }
 

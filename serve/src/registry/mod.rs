@@ -995,11 +995,7 @@ impl Registry {
                 a.drift = loaded.model.drift();
             }
         }
-        status.capture = self.inner.capture.as_ref().map(|c| CaptureState {
-            dir: self.inner.options.capture.as_ref().map(|o| o.dir.clone()).unwrap_or_default(),
-            share: self.inner.options.capture.as_ref().map_or(0.0, |o| o.share),
-            counts: c.counts(),
-        });
+        status.capture = self.inner.capture.as_ref().map(capture::Capture::state);
         status
     }
 
