@@ -386,7 +386,7 @@ pub async fn run(
     Ok(())
 }
 
-/// One event taken: its message, how often it came, and its request.
+/// One event taken: its message, how often it came, and its place in the stream.
 struct Event {
     message: jetstream::Message,
     deliveries: i64,
@@ -423,18 +423,18 @@ async fn handle(
         events.push(Event { message, deliveries, sequence });
     }
     // Lookups are awaited here, together, before a scoring thread is taken.
-    let looks_up =
-        |parsed: &Result<super::stream::Parsed, ErrorBody>| parsed.as_ref().is_ok_and(|p| registry.looks_up(p.model()));
-    let prepared = if requests.iter().any(|(_, parsed)| looks_up(parsed)) {
-        futures_util::future::join_all(requests.iter().map(|(_, parsed)| async move {
-            match parsed {
-                Ok(p) if registry.looks_up(p.model()) => Some(p.prepare(registry).await),
-                _ => None,
+    let looking_up: Vec<Option<&super::stream::Parsed>> =
+        requests.iter().map(|(_, parsed)| parsed.as_ref().ok().filter(|p| registry.looks_up(p.model()))).collect();
+    let prepared = if looking_up.iter().any(Option::is_some) {
+        let each = looking_up.into_iter().map(|p| async move {
+            match p {
+                Some(p) => Some(p.prepare(registry).await),
+                None => None,
             }
-        }))
-        .await
+        });
+        futures_util::future::join_all(each).await
     } else {
-        requests.iter().map(|_| None).collect()
+        looking_up.into_iter().map(|_| None).collect()
     };
     let sequences: Vec<u64> = events.iter().map(|e| e.sequence).collect();
     let verdicts = {
