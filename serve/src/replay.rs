@@ -18,10 +18,11 @@
 use std::collections::BTreeMap;
 
 use paddock_host::artifact::profile::quantile;
-use paddock_host::contract::rows::Row;
 use paddock_host::drift::DriftReport;
 use paddock_host::sandbox::model::{Model, ScoreError};
 use serde::{Deserialize, Serialize};
+
+use crate::surface::wire::EstimateRequest;
 
 /// The quantiles of the differences a report gives.
 pub const QUANTILES: [f64; 9] = [0.0, 0.01, 0.1, 0.25, 0.5, 0.75, 0.9, 0.99, 1.0];
@@ -29,17 +30,8 @@ pub const QUANTILES: [f64; 9] = [0.0, 0.01, 0.1, 0.25, 0.5, 0.75, 0.9, 0.99, 1.0
 /// Problems kept in full per kind; the rest are counted.
 const KEPT: usize = 10;
 
-/// A capture line, as replay reads it.
-#[derive(Deserialize)]
-struct Line {
-    model: String,
-    #[serde(default)]
-    row: Option<Row>,
-    #[serde(default)]
-    rows: Option<Vec<Row>>,
-    captured: Option<Captured>,
-}
-
+/// What a capture line's `captured` holds, as replay reads it (a value
+/// the host wrote as NaN reads as `null`).
 #[derive(Deserialize)]
 struct Captured {
     outputs: Vec<String>,
@@ -207,17 +199,16 @@ impl Replay {
     }
 
     fn replay(&mut self, place: &str, text: &str) -> Result<(), LineError> {
-        let line: Line = serde_json::from_str(text).map_err(|e| LineError::NotCaptured(e.to_string()))?;
+        // A capture line is an estimate request with its answers beside it.
+        let not_captured = |e: String| LineError::NotCaptured(e);
+        let mut line: EstimateRequest = serde_json::from_str(text).map_err(|e| not_captured(e.to_string()))?;
         if line.model != self.name {
             self.report.other_models += 1;
             return Ok(());
         }
-        let captured = line.captured.ok_or_else(|| LineError::NotCaptured("no `captured` answers".into()))?;
-        let rows = match (line.row, line.rows) {
-            (Some(row), None) => vec![row],
-            (None, Some(rows)) => rows,
-            _ => return Err(LineError::NotCaptured("neither `row` nor `rows`".into())),
-        };
+        let captured = line.captured.take().ok_or_else(|| not_captured("no `captured` answers".into()))?;
+        let captured: Captured = serde_json::from_value(captured).map_err(|e| not_captured(e.to_string()))?;
+        let (rows, _) = line.take_rows().map_err(|e| not_captured(e.error.message))?;
         if captured.answers.len() != rows.len() {
             return Err(LineError::NotCaptured(format!(
                 "{} rows but {} captured answers",
