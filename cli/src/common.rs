@@ -245,22 +245,16 @@ pub struct CaptureArgs {
 }
 
 impl CaptureArgs {
-    /// The capture these flags describe, or `None` without `--capture-dir`.
-    ///
-    /// # Errors
-    /// When the share is not above 0 and at most 1.
-    pub fn options(&self) -> Result<Option<paddock_serve::registry::CaptureOptions>> {
-        let Some(dir) = &self.capture_dir else { return Ok(None) };
-        let share = self.capture_share;
-        if !(share > 0.0 && share <= 1.0) {
-            anyhow::bail!("--capture-share {share}: give a share above 0 and at most 1");
-        }
-        Ok(Some(paddock_serve::registry::CaptureOptions {
-            share,
+    /// The capture these flags describe, or `None` without `--capture-dir`
+    /// (the registry refuses a share outside (0, 1] as it opens).
+    pub fn options(&self) -> Option<paddock_serve::registry::CaptureOptions> {
+        let dir = self.capture_dir.as_ref()?;
+        Some(paddock_serve::registry::CaptureOptions {
+            share: self.capture_share,
             file_bytes: self.capture_file_mib << 20,
             keep_files: self.capture_keep as usize,
             ..paddock_serve::registry::CaptureOptions::new(dir)
-        }))
+        })
     }
 }
 

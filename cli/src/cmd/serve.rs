@@ -65,7 +65,7 @@ fn admin_token(file: Option<&PathBuf>) -> Result<Option<String>> {
 pub fn run(args: Args) -> Result<Outcome> {
     // Opened before the signals are taken: a host still waiting for a
     // shared store it has no mirror of stops at the first Ctrl-C.
-    let mut opened = args.store.open_capturing(args.capture.options()?)?;
+    let mut opened = args.store.open_capturing(args.capture.options())?;
     let registry = opened.registry.clone();
     for line in served_lines(&registry.status()) {
         eprintln!("{line}");

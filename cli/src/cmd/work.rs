@@ -76,7 +76,7 @@ pub struct Args {
 /// Opens the store, watches it, and works until told to stop.
 pub fn run(args: Args) -> Result<Outcome> {
     // Opened before the signals are taken, as `serve` does.
-    let mut opened = args.store.open_capturing(args.capture.options()?)?;
+    let mut opened = args.store.open_capturing(args.capture.options())?;
     let registry = opened.registry.clone();
     opened.keep_current(Duration::from_secs(args.rescan_secs.max(1)))?;
     let runtime = tokio::runtime::Builder::new_multi_thread().enable_all().build()?;
