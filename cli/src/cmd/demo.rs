@@ -170,7 +170,7 @@ pub fn run(args: Args) -> Result<Outcome> {
         let minutes = m.estimates.values_at(0)[0];
         cells.insert("expected_minutes".into(), minutes.to_string());
         cells.insert("plugin_hour".into(), local.hour().to_string());
-        cells.insert("weekend".into(), (hour_of_week >= 120).to_string());
+        cells.insert("weekend".into(), paddock_demo_sessions::weekend(hour_of_week).to_string());
         let overstay_model = routed_model(registry, "overstay-risk", &context, at)?;
         let rows = [row_for(&overstay_model, &cells)];
         // Site occupancy and the member's overstay rate are not in the
@@ -288,8 +288,7 @@ struct Drifted {
 /// Weekday plug-ins simulated as the training sessions were, but in a
 /// world where every car's battery is 25 kWh bigger, scored on the first
 /// plug-in's `charge-minutes` version (the weekday one); its drift report
-/// after them. `None` when the
-/// version carries no profile.
+/// after them. `None` when the version carries no profile.
 fn drifted(registry: &Registry, context: &paddock_serve::RequestContext, at: Timestamp) -> Result<Option<Drifted>> {
     use rand::SeedableRng;
     const PLUGINS: usize = 400;
@@ -303,7 +302,7 @@ fn drifted(registry: &Registry, context: &paddock_serve::RequestContext, at: Tim
     // The first plug-in is on a weekday: its version learnt from weekday
     // sessions alone, so weekday plug-ins are what it should see.
     let rows: Vec<Row> = std::iter::repeat_with(|| paddock_demo_sessions::session_in(&world, &mut rng))
-        .filter(|s| s.hour_of_week < 120)
+        .filter(|s| !paddock_demo_sessions::weekend(s.hour_of_week))
         .take(PLUGINS)
         .map(|s| model.schema().decode_row(&s.minutes_features()))
         .collect();

@@ -60,6 +60,11 @@ impl World {
     }
 }
 
+/// Whether an hour of the week (0 = Monday 00:00) falls on Saturday or Sunday.
+pub fn weekend(hour_of_week: i64) -> bool {
+    hour_of_week >= 120
+}
+
 /// Draws one session in the training world.
 pub fn session(rng: &mut impl Rng) -> Session {
     session_in(&World::TRAINING, rng)
@@ -96,7 +101,7 @@ pub fn session_in(world: &World, rng: &mut impl Rng) -> Session {
     let site_occupancy = rng.random_range(0.0..1.0);
     let grid_load = (!rng.random_bool(0.1)).then(|| rng.random_range(0.1f64..0.95));
     let hour = hour_of_week % 24;
-    let weekend = hour_of_week >= 120;
+    let weekend = weekend(hour_of_week);
     let logit = -2.6
         + 0.004 * minutes
         + if (17..=23).contains(&hour) { 0.9 } else { 0.0 }
@@ -146,7 +151,7 @@ impl Session {
             (self.hour_of_week % 24) as f64,
             self.member_overstay_rate.unwrap_or(f64::NAN),
             self.site_occupancy,
-            f64::from(u8::from(self.hour_of_week >= 120)),
+            f64::from(u8::from(weekend(self.hour_of_week))),
             f64::from(u8::from(self.fleet)),
             self.grid_load.unwrap_or(f64::NAN),
         ]

@@ -139,8 +139,8 @@ fn grid_table(dir: &Path, updated: &str) -> Result<()> {
 ///   simulated sample that stands in for the north region's data.
 fn store_versions(dir: &Path, train: &[Session], held_out: &[Session], served_minutes: &Trained<Trees>) -> Result<()> {
     let base = boost::Settings { trees: 80, depth: 5, learning_rate: 0.15, min_leaf: 20, bins: 64, lambda: 1.0 };
-    let weekday: Vec<Session> = train.iter().filter(|s| s.hour_of_week < 120).cloned().collect();
-    let weekend: Vec<Session> = train.iter().filter(|s| s.hour_of_week >= 120).cloned().collect();
+    let weekday: Vec<Session> = train.iter().filter(|s| !simulate::weekend(s.hour_of_week)).cloned().collect();
+    let weekend: Vec<Session> = train.iter().filter(|s| simulate::weekend(s.hour_of_week)).cloned().collect();
     let minutes_versions = [
         ("1.0.0", weekday.as_slice(), base.clone()),
         ("1.1.0", weekend.as_slice(), base.clone()),
@@ -271,7 +271,7 @@ fn overstay_row(s: &Session, minutes: &Trained<Trees>) -> Row {
         .with("plugin_hour", s.hour_of_week % 24)
         .with("member_overstay_rate", opt(s.member_overstay_rate))
         .with("site_occupancy", s.site_occupancy)
-        .with("weekend", s.hour_of_week >= 120)
+        .with("weekend", simulate::weekend(s.hour_of_week))
         .with("fleet", s.fleet)
         .with("grid_load", opt(s.grid_load))
 }
