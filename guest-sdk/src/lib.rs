@@ -72,6 +72,7 @@ mod contributions;
 mod exp;
 mod generic;
 mod lanes;
+mod layout;
 mod linear;
 mod params;
 mod program;
