@@ -2,17 +2,22 @@
 //! row's value, one comparison and no test of its own for absent values or
 //! for having reached a leaf.
 //!
-//! Two layouts, chosen per tree:
+//! Two layouts, chosen per tree, in one array of slots:
 //! - **by levels**, for trees no deeper than [`DEEPEST_LEVELLED`] (those
 //!   that toolkits grow depth by depth are all like this): every path made
 //!   as long as the deepest, slot `s`'s children at `2s + 1` and `2s + 2`,
-//!   so a row takes exactly `depth` steps. A leaf above the last level
-//!   becomes a split that sends every row left (threshold NaN: no value is
-//!   at or above it) down to a copy of its value at the bottom.
+//!   so a row takes exactly `depth` steps and the walk computes the next
+//!   slot rather than loading it. A leaf above the last level becomes a
+//!   split that sends every row left (threshold NaN: no value is at or
+//!   above it) down to a copy of its value at the bottom.
 //! - **siblings side by side**, for deeper trees (those grown leaf by
 //!   leaf): nodes breadth first, a split's right child right after its
-//!   left; a leaf is its own left child with a NaN threshold, so a row that
-//!   reached it stays there, and a group of rows stops when no row moved.
+//!   left.
+//!
+//! In both a leaf is a slot of its own, its own left child with a NaN
+//! threshold, so a row that reached it stays there: a group of walks stops
+//! when no walk moved. Rows in groups of [`LANES`] walk a tree together;
+//! a row left over walks [`LANES`] trees at once.
 //!
 //! Absent values: a row is read twice over ([`Doubled`]: its values with NaN
 //! as −∞, then with NaN as +∞), and each split reads the copy that sends an
@@ -33,33 +38,41 @@ const DEEPEST_LEVELLED: u32 = 8;
 /// sandbox; more spill registers).
 pub(crate) const LANES: usize = 8;
 
-/// Where one tree sits in a [`Layout`].
-#[derive(Clone, Copy, Debug)]
-pub(crate) enum Laid {
-    /// `2^depth` slots from `at`.
-    Levels { depth: u32, at: usize },
-    /// `len` nodes from `at`; `depth` steps reach every leaf.
-    Siblings { depth: u32, at: usize, len: usize },
+/// Where one tree sits in a [`Layout`]: its slots from `at`, `depth`
+/// steps reaching every leaf.
+#[derive(Clone, Copy, Debug, Default)]
+pub(crate) struct Laid {
+    at: usize,
+    depth: u32,
+    /// Laid out by levels: `2·2^depth` slots (the splits', then the bottom
+    /// level's leaves, then one unused); else siblings side by side.
+    levels: bool,
 }
 
-/// The laid-out trees of an ensemble, end to end, each from its `at` in
-/// the slot arrays and `leaves`: by levels, the splits' slots, then the
-/// bottom level's leaves in order; side by side, each node at its place
-/// (a leaf's value at its own place in `leaves`).
+/// The laid-out trees of an ensemble, end to end. A slot is a split (which
+/// value of the doubled row it reads, the threshold it compares that with,
+/// and where its left child is, its right child next to it) or a leaf (a
+/// NaN threshold, itself as its left child, and its value in `leaves`).
 #[derive(Clone, Debug, Default)]
 pub(crate) struct Layout {
     /// Values per row: a split reads feature `f` as `f` when absent values
     /// go left, as `features + f` when they go right.
     features: usize,
-    /// Per slot: which value of the doubled row a split reads, the
-    /// threshold it compares that with, and (siblings side by side only)
-    /// where its left child is, its right child next to it.
     reads: Vec<u32>,
     thresholds: Vec<f64>,
+    /// Absolute slot indices.
     lefts: Vec<u32>,
     leaves: Vec<f64>,
     /// `leaves` rounded to `f32`, for sums kept in single precision.
     leaves_single: Vec<f32>,
+}
+
+impl Laid {
+    /// Whether the tree is laid out by levels (else siblings side by side).
+    #[cfg(test)]
+    pub(crate) fn by_levels(&self) -> bool {
+        self.levels
+    }
 }
 
 impl Layout {
@@ -70,18 +83,20 @@ impl Layout {
 
     /// Lays `tree` out, or `None` when it has a node other than a numeric
     /// split with a finite threshold or a single-value leaf, or a node with
-    /// two parents. The tree must be valid (children after their parent
-    /// and within the tree, features below `features`).
+    /// two parents, or the layout would pass 2³² slots. The tree must be
+    /// valid (children after their parent and within the tree, features
+    /// below `features`).
     pub(crate) fn lay(&mut self, tree: &Tree) -> Option<Laid> {
         let depth = depth(tree)?;
-        let at = self.reads.len();
+        if self.reads.len() + 2 * tree.nodes.len().max(1 << DEEPEST_LEVELLED) > u32::MAX as usize {
+            return None;
+        }
         let laid = if depth <= DEEPEST_LEVELLED { self.levels(tree, depth) } else { self.siblings(tree, depth) };
-        self.leaves.resize(self.reads.len(), 0.0);
-        self.leaves_single.extend(self.leaves[at..].iter().map(|&v| v as f32));
+        self.leaves_single.extend(self.leaves[laid.at..].iter().map(|&v| v as f32));
         Some(laid)
     }
 
-    /// The value of leaf slot `slot` (as [`Layout::walk`] names it).
+    /// The value of leaf slot `slot` (as the walks name it).
     pub(crate) fn leaf(&self, slot: usize) -> f64 {
         self.leaves[slot]
     }
@@ -92,31 +107,43 @@ impl Layout {
     }
 
     /// Adds a slot: a split on `feature` whose absent values go `missing`
-    /// and whose left child is at `left`.
-    fn push(&mut self, feature: u32, threshold: f64, missing: Branch, left: u32) {
+    /// and whose left child is slot `left`.
+    fn push_split(&mut self, feature: u32, threshold: f64, missing: Branch, left: usize) {
         let absent_right = if missing == Branch::Right { self.features } else { 0 };
         self.reads.push((absent_right + feature as usize) as u32);
         self.thresholds.push(threshold);
-        self.lefts.push(left);
+        self.lefts.push(left as u32);
+        self.leaves.push(0.0);
+    }
+
+    /// Adds a leaf slot of value `value`.
+    fn push_leaf(&mut self, value: f64) {
+        let me = self.reads.len() as u32;
+        self.reads.push(0);
+        self.thresholds.push(f64::NAN);
+        self.lefts.push(me);
+        self.leaves.push(value);
     }
 
     fn levels(&mut self, tree: &Tree, depth: u32) -> Laid {
         let at = self.reads.len();
         let width = 1usize << depth;
-        // Every slot all-left (threshold NaN) until a split fills it.
-        self.reads.resize(at + width, 0);
-        self.thresholds.resize(at + width, f64::NAN);
-        self.lefts.resize(at + width, 0);
-        self.leaves.resize(at + width, 0.0);
+        // Every split slot all-left (threshold NaN) until a split fills it;
+        // the bottom level's slots leaves of value 0 until a leaf fills one.
+        for slot in 0..width - 1 {
+            self.push_split(0, f64::NAN, Branch::Left, at + 2 * slot + 1);
+        }
+        for _ in 0..=width {
+            self.push_leaf(0.0);
+        }
         // (node, slot, level): fill each slot from the node that sits there.
         let mut stack = vec![(0usize, 0usize, 0u32)];
         while let Some((n, slot, level)) = stack.pop() {
             match tree.nodes[n] {
-                // Leaves sit in the slots past the splits': slot − (width − 1).
-                Node::Leaf { value } if level == depth => self.leaves[at + slot + 1 - width] = value,
+                Node::Leaf { value } if level == depth => self.leaves[at + slot] = value,
                 // The slot stays all-left: every row goes on to this leaf again.
                 Node::Leaf { .. } => stack.push((n, 2 * slot + 1, level + 1)),
-                Node::Split { feature, threshold, left, right, missing } => {
+                Node::Split { feature, threshold, missing, left, right } => {
                     let absent_right = if missing == Branch::Right { self.features } else { 0 };
                     self.reads[at + slot] = (absent_right + feature as usize) as u32;
                     self.thresholds[at + slot] = threshold;
@@ -126,7 +153,7 @@ impl Layout {
                 _ => unreachable!("depth() admits numeric splits and single-value leaves only"),
             }
         }
-        Laid::Levels { depth, at }
+        Laid { at, depth, levels: true }
     }
 
     fn siblings(&mut self, tree: &Tree, depth: u32) -> Laid {
@@ -134,54 +161,41 @@ impl Layout {
         // Breadth first: the children of the i-th split placed are the
         // (2i+1)-th and (2i+2)-th nodes placed after the root.
         let mut queue = std::collections::VecDeque::from([0usize]);
-        let mut free = 1u32;
+        let mut free = at + 1;
         while let Some(n) = queue.pop_front() {
-            let me = (self.reads.len() - at) as u32;
             match tree.nodes[n] {
-                Node::Leaf { value } => {
-                    self.push(0, f64::NAN, Branch::Left, me);
-                    self.leaves.resize(self.reads.len() - 1, 0.0);
-                    self.leaves.push(value);
-                }
+                Node::Leaf { value } => self.push_leaf(value),
                 Node::Split { feature, threshold, left, right, missing } => {
-                    self.push(feature, threshold, missing, free);
+                    self.push_split(feature, threshold, missing, free);
                     free += 2;
                     queue.extend([left as usize, right as usize]);
                 }
                 _ => unreachable!("depth() admits numeric splits and single-value leaves only"),
             }
         }
-        Laid::Siblings { depth, at, len: self.reads.len() - at }
+        Laid { at, depth, levels: false }
     }
 
-    /// Calls `add(r, slot)` with the leaf slot each row of `rows` reaches
-    /// in tree `laid` (for [`Layout::leaf`]), rows in order. `LE`: left
-    /// when `value <= threshold`, else when `value < threshold`.
+    /// Calls `add(r, slot)` with the leaf slot each row of `rows`' groups
+    /// reaches in tree `laid` (for [`Layout::leaf`]), rows in order; the
+    /// rows left over are [`Layout::walk_trees`]'. `LE`: left when
+    /// `value <= threshold`, else when `value < threshold`.
     #[inline]
     pub(crate) fn walk<const LE: bool>(&self, laid: Laid, rows: &Doubled, add: impl FnMut(usize, usize)) {
-        match laid {
-            Laid::Siblings { depth, at, len } => {
-                let tree = Slots {
-                    reads: &self.reads[at..at + len],
-                    thresholds: &self.thresholds[at..at + len],
-                    lefts: &self.lefts[at..at + len],
-                };
-                self.walk_siblings::<LE>(depth, tree, at, rows, add)
-            }
-            Laid::Levels { depth, at } => {
-                // One copy of the walk per depth: the slot indices are
-                // masked to a size the compiler knows.
-                macro_rules! by_depth {
-                    ($($d:literal)*) => {
-                        match depth {
-                            $($d => self.walk_levels::<LE, { 1 << $d }>(at, rows, add),)*
-                            deeper => unreachable!("a tree laid out by levels with depth {deeper}"),
-                        }
-                    };
-                }
-                by_depth!(0 1 2 3 4 5 6 7 8);
-            }
+        if !laid.levels {
+            return self.walk_siblings::<LE>(laid, rows, add);
         }
+        // One copy of the walk per depth: the slot indices are masked to a
+        // size the compiler knows.
+        macro_rules! by_depth {
+            ($($d:literal)*) => {
+                match laid.depth {
+                    $($d => self.walk_levels::<LE, { 1 << $d }>(laid.at, rows, add),)*
+                    deeper => unreachable!("a tree laid out by levels with depth {deeper}"),
+                }
+            };
+        }
+        by_depth!(0 1 2 3 4 5 6 7 8);
     }
 
     #[inline(always)]
@@ -194,44 +208,31 @@ impl Layout {
         let reads: &[u32; W] = self.reads[at..at + W].try_into().expect("W slots from `at`");
         let thresholds: &[f64; W] = self.thresholds[at..at + W].try_into().expect("W slots from `at`");
         let levels = W.trailing_zeros();
-        // After the last level a slot is in W−1 ..= 2W−2: leaf slot − (W−1).
-        let leaf = |s: usize| at + ((s + 1 - W) & (W - 1));
         for (first, group) in rows.groups() {
             let mut s = [0usize; LANES];
             for _ in 0..levels {
                 for (j, s) in s.iter_mut().enumerate() {
-                    *s = level_step::<LE, W>(reads, thresholds, *s, |read| group.value(read, j));
+                    let slot = *s & (W - 1);
+                    let right = goes_right::<LE>(group.value(reads[slot] as usize, j), thresholds[slot]);
+                    *s = 2 * slot + 1 + usize::from(right);
                 }
             }
             for (j, &s) in s.iter().enumerate() {
-                add(first + j, leaf(s));
+                // After the last level a slot is a leaf's: W−1 ..= 2W−2.
+                add(first + j, at + s);
             }
-        }
-        for (r, x) in rows.rest() {
-            let mut s = 0;
-            for _ in 0..levels {
-                s = level_step::<LE, W>(reads, thresholds, s, |read| x[read]);
-            }
-            add(r, leaf(s));
         }
     }
 
     #[inline(always)]
-    fn walk_siblings<const LE: bool>(
-        &self,
-        depth: u32,
-        tree: Slots<'_>,
-        at: usize,
-        rows: &Doubled,
-        mut add: impl FnMut(usize, usize),
-    ) {
-        let last = tree.reads.len() - 1;
+    fn walk_siblings<const LE: bool>(&self, laid: Laid, rows: &Doubled, mut add: impl FnMut(usize, usize)) {
+        let slots = self.slots();
         for (first, group) in rows.groups() {
-            let mut s = [0usize; LANES];
-            for _ in 0..depth {
+            let mut s = [laid.at; LANES];
+            for _ in 0..laid.depth {
                 let mut moved = false;
                 for (j, s) in s.iter_mut().enumerate() {
-                    let to = sibling_step::<LE>(tree, *s, |read| group.value(read, j));
+                    let to = slots.step::<LE>(*s, |read| group.value(read, j));
                     moved |= to != *s;
                     *s = to;
                 }
@@ -240,33 +241,44 @@ impl Layout {
                 }
             }
             for (j, &s) in s.iter().enumerate() {
-                add(first + j, at + s.min(last));
+                add(first + j, s);
             }
         }
-        for (r, x) in rows.rest() {
-            let mut s = 0;
-            for _ in 0..depth {
-                s = sibling_step::<LE>(tree, s, |read| x[read]);
+    }
+
+    /// Walks one doubled row `x` through up to [`LANES`] trees at once
+    /// (their walks do not depend on each other), and calls `add(i, slot)`
+    /// with the leaf slot reached in `trees[i]`, in order.
+    #[inline]
+    pub(crate) fn walk_trees<const LE: bool>(&self, trees: &[Laid], x: &[f64], mut add: impl FnMut(usize, usize)) {
+        let Some(last) = trees.last() else { return };
+        let mut s: [usize; LANES] = std::array::from_fn(|i| trees.get(i).unwrap_or(last).at);
+        let depth = trees.iter().map(|t| t.depth).max().unwrap_or(0);
+        let slots = self.slots();
+        for _ in 0..depth {
+            let mut moved = false;
+            for s in s.iter_mut() {
+                let to = slots.step::<LE>(*s, |read| x[read.min(x.len() - 1)]);
+                moved |= to != *s;
+                *s = to;
             }
-            add(r, at + s.min(last));
+            if !moved {
+                break;
+            }
         }
+        for (i, &s) in s.iter().take(trees.len()).enumerate() {
+            add(i, s);
+        }
+    }
+
+    /// The slots, as a walk steps through them.
+    fn slots(&self) -> Slots<'_> {
+        let len = self.reads.len();
+        Slots { reads: &self.reads[..len], thresholds: &self.thresholds[..len], lefts: &self.lefts[..len] }
     }
 }
 
-/// The slot after slot `s` of a tree laid out by levels, for a row whose
-/// values `value(read)` gives.
-#[inline(always)]
-fn level_step<const LE: bool, const W: usize>(
-    reads: &[u32; W],
-    thresholds: &[f64; W],
-    s: usize,
-    value: impl Fn(usize) -> f64,
-) -> usize {
-    let s = s & (W - 1);
-    2 * s + 1 + usize::from(goes_right::<LE>(value(reads[s] as usize), thresholds[s]))
-}
-
-/// One tree's slots, laid out siblings side by side.
+/// Every slot of a [`Layout`], the three arrays of one length.
 #[derive(Clone, Copy)]
 struct Slots<'a> {
     reads: &'a [u32],
@@ -274,14 +286,15 @@ struct Slots<'a> {
     lefts: &'a [u32],
 }
 
-/// The place after place `s` of a tree laid out siblings side by side, for
-/// a row whose values `value(read)` gives. Places are below the tree's
-/// length by construction; clamped all the same, so the compiler sees no
-/// index out of range (no branch).
-#[inline(always)]
-fn sibling_step<const LE: bool>(tree: Slots<'_>, s: usize, value: impl Fn(usize) -> f64) -> usize {
-    let s = s.min(tree.reads.len() - 1).min(tree.thresholds.len() - 1).min(tree.lefts.len() - 1);
-    tree.lefts[s] as usize + usize::from(goes_right::<LE>(value(tree.reads[s] as usize), tree.thresholds[s]))
+impl Slots<'_> {
+    /// The slot after slot `s` for a row whose values `value(read)` gives.
+    /// Slots are within the layout by construction; clamped all the same,
+    /// so the compiler sees no index out of range (no branch).
+    #[inline(always)]
+    fn step<const LE: bool>(self, s: usize, value: impl Fn(usize) -> f64) -> usize {
+        let s = s.min(self.reads.len() - 1);
+        self.lefts[s] as usize + usize::from(goes_right::<LE>(value(self.reads[s] as usize), self.thresholds[s]))
+    }
 }
 
 /// Whether a value goes right at a split (NaN thresholds send every value
@@ -302,7 +315,7 @@ pub(crate) struct Doubled {
     groups: Vec<[f64; LANES]>,
     rest: Vec<f64>,
     /// Rows in the groups.
-    grouped: usize,
+    pub(crate) grouped: usize,
 }
 
 /// One group of [`LANES`] doubled rows.
@@ -350,8 +363,8 @@ impl Doubled {
         self.groups.chunks_exact(self.width).enumerate().map(|(g, group)| (g * LANES, Group(group)))
     }
 
-    /// Each row left over, with its index.
-    fn rest(&self) -> impl Iterator<Item = (usize, &[f64])> {
+    /// Each row left over (fewer than [`LANES`]), with its index.
+    pub(crate) fn rest(&self) -> impl Iterator<Item = (usize, &[f64])> {
         self.rest.chunks_exact(self.width).enumerate().map(|(r, x)| (self.grouped + r, x))
     }
 }

@@ -9,7 +9,7 @@ use serde::{Deserialize, Serialize};
 use crate::MarginLink;
 use crate::exp;
 use crate::generic::Evaluate;
-use crate::layout::{Doubled, Laid, Layout};
+use crate::layout::{Doubled, LANES as LANES_OF_TREES, Laid, Layout};
 
 /// How a split compares a feature with its threshold to go left.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
@@ -566,45 +566,79 @@ impl Trees {
     /// values; row-major, one per output), tree by tree in order.
     fn accumulate<S: Sum, const LE: bool>(&self, cells: &[f64], rows: usize, sums: &mut [S]) {
         let (f, outputs) = (self.features, self.base.len());
-        // Tree by tree over the rows: each tree stays in cache while it runs.
-        let laid_rows = self.laid.iter().any(Option::is_some).then(|| Doubled::new(cells, f, rows));
+        let doubled = self.laid.iter().any(Option::is_some).then(|| Doubled::new(cells, f, rows));
+        // Rows in groups go tree by tree: each tree stays in cache while
+        // it runs, and a group's rows walk it together.
+        let grouped = doubled.as_ref().map_or(rows, |d| d.grouped);
         for (&(root, k), laid) in self.roots.iter().zip(&self.laid) {
-            if let (Some(laid), Some(laid_rows)) = (*laid, &laid_rows) {
-                self.layout.walk::<LE>(laid, laid_rows, |r, slot| {
+            match (*laid, &doubled) {
+                (Some(laid), Some(doubled)) => self.layout.walk::<LE>(laid, doubled, |r, slot| {
                     let sum = &mut sums[r * outputs + k];
                     *sum = sum.plus(S::leaf(&self.layout, slot));
+                }),
+                _ => self.walk_nodes::<S, LE>(root, k, &cells[..grouped * f], &mut sums[..grouped * outputs]),
+            }
+        }
+        // The rows left over go one by one, through several trees at once.
+        for (r, x) in doubled.iter().flat_map(Doubled::rest) {
+            let sums = &mut sums[r * outputs..][..outputs];
+            let mut t = 0;
+            while t < self.roots.len() {
+                // The laid-out trees from `t` on, up to one per lane.
+                let mut run = [Laid::default(); LANES_OF_TREES];
+                let mut n = 0;
+                for (slot, laid) in run.iter_mut().zip(self.laid[t..].iter().map_while(|l| *l)) {
+                    *slot = laid;
+                    n += 1;
+                }
+                let run = &run[..n];
+                if run.is_empty() {
+                    let (root, k) = self.roots[t];
+                    self.walk_nodes::<S, LE>(root, k, &cells[r * f..][..f], sums);
+                    t += 1;
+                    continue;
+                }
+                self.layout.walk_trees::<LE>(run, x, |i, slot| {
+                    let k = self.roots[t + i].1;
+                    sums[k] = sums[k].plus(S::leaf(&self.layout, slot));
                 });
-                continue;
+                t += run.len();
             }
-            // Four rows walk a tree together: their steps do not depend on
-            // each other, so the processor overlaps them, and in the sandbox
-            // one loop turn (one interruption check) moves four walks.
-            // Leaves step to themselves, so a walk that has ended waits for
-            // the others.
-            let mut r = 0;
-            while r + LANES <= rows {
-                let x: [&[f64]; LANES] = std::array::from_fn(|j| &cells[(r + j) * f..(r + j + 1) * f]);
-                let mut at = [root; LANES];
-                loop {
-                    let mut ended = true;
-                    for j in 0..LANES {
-                        let n = &self.nodes[at[j]];
-                        ended &= is_leaf(n.kind);
-                        at[j] = self.child::<LE>(n, x[j]) as usize;
-                    }
-                    if ended {
-                        break;
-                    }
+        }
+    }
+
+    /// Adds tree `root`'s leaves (`k` its output) to the sums of `cells`'
+    /// rows, walking node by node.
+    fn walk_nodes<S: Sum, const LE: bool>(&self, root: usize, k: usize, cells: &[f64], sums: &mut [S]) {
+        let (f, outputs) = (self.features, self.base.len());
+        let rows = sums.len() / outputs;
+        // Four rows walk a tree together: their steps do not depend on
+        // each other, so the processor overlaps them, and in the sandbox
+        // one loop turn (one interruption check) moves four walks. Leaves
+        // step to themselves, so a walk that has ended waits for the others.
+        let mut r = 0;
+        while r + LANES <= rows {
+            let x: [&[f64]; LANES] = std::array::from_fn(|j| &cells[(r + j) * f..(r + j + 1) * f]);
+            let mut at = [root; LANES];
+            loop {
+                let mut ended = true;
+                for j in 0..LANES {
+                    let n = &self.nodes[at[j]];
+                    ended &= is_leaf(n.kind);
+                    at[j] = self.child::<LE>(n, x[j]) as usize;
                 }
-                for (j, &leaf) in at.iter().enumerate() {
-                    self.add_leaf(&self.nodes[leaf], k, &mut sums[(r + j) * outputs..][..outputs]);
+                if ended {
+                    break;
                 }
-                r += LANES;
             }
-            for r in r..rows {
-                let leaf = self.leaf::<LE>(root, &cells[r * f..(r + 1) * f]);
-                self.add_leaf(leaf, k, &mut sums[r * outputs..][..outputs]);
+            for (j, &leaf) in at.iter().enumerate() {
+                self.add_leaf(&self.nodes[leaf], k, &mut sums[(r + j) * outputs..][..outputs]);
             }
+            r += LANES;
+        }
+        for r in r..rows {
+            let leaf = self.leaf::<LE>(root, &cells[r * f..(r + 1) * f]);
+            self.add_leaf(leaf, k, &mut sums[r * outputs..][..outputs]);
         }
     }
 
@@ -1204,12 +1238,14 @@ mod tests {
         let cuts = [-2.5, -1.0, 0.0, 0.1, 0.5, 1.0, 3.25, 1e30];
         let values = [f64::NAN, f64::NEG_INFINITY, f64::INFINITY, -2.5, 0.0, 0.1, 0.10000001, 1.0, 7.0, -1e31];
         let features = 5u32;
-        let trees: Vec<Tree> = [1usize, 2, 3, 8, 31, 64, 255, 500]
+        let mut trees: Vec<Tree> = [1usize, 2, 3, 8, 31, 64, 255, 500]
             .iter()
             .flat_map(|&leaves| {
                 [random_tree(&mut next, features, leaves, &cuts), random_tree(&mut next, features, leaves, &cuts)]
             })
             .collect();
+        // Walked node by node among the laid-out ones: an infinite threshold.
+        trees.insert(5, stump(0, 2, f64::INFINITY, 0.25, 0.75, Branch::Right));
         let rows = 8 * 3 + 5;
         let cells: Vec<f64> =
             (0..rows * features as usize).map(|_| values[(next() % values.len() as u64) as usize]).collect();
@@ -1222,8 +1258,11 @@ mod tests {
                     ..TreesParams::boosted(features, 0.5, split, trees.clone())
                 };
                 let laid = Trees::new(params.clone()).unwrap();
-                assert!(laid.laid.iter().all(Option::is_some), "every tree here can be laid out");
-                assert!(laid.laid.iter().any(|l| matches!(l, Some(crate::layout::Laid::Siblings { .. }))));
+                assert_eq!(laid.laid.iter().filter(|l| l.is_none()).count(), 1, "all trees but one laid out");
+                assert!(
+                    laid.laid.iter().flatten().any(|l| !l.by_levels()),
+                    "some trees are deeper than a level layout"
+                );
                 let mut walked = Trees::new(params).unwrap();
                 walked.laid.fill(None);
                 for n in [rows.nrows(), 8, 1] {
