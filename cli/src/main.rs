@@ -34,6 +34,7 @@ mod bars;
 mod cmd;
 mod common;
 mod flags;
+mod parquet_out;
 mod place;
 
 use std::process::ExitCode;

@@ -16,7 +16,9 @@
 //! - `shared` (feature `shared`): a store kept in NATS JetStream, published
 //!   to once and followed by every host through a mirror of its own;
 //! - [`replay`]: traffic a host captured, scored again by a candidate and
-//!   compared with what the host answered.
+//!   compared with what the host answered;
+//! - [`parquet`]: Parquet files read as a model's rows, a batch at a time
+//!   (batch scoring's input).
 //!
 //! ```no_run
 //! use paddock_host::{Row, Runtime};
@@ -52,6 +54,7 @@
 #![deny(missing_docs)]
 
 pub mod features;
+pub mod parquet;
 pub mod registry;
 pub mod replay;
 #[cfg(feature = "shared")]

@@ -1,8 +1,9 @@
-//! `paddock score`: score rows from a CSV or NDJSON file (or stdin).
+//! `paddock score`: score rows from a CSV, NDJSON or Parquet file (or
+//! stdin), batches side by side on every core, results in input order.
 
 use std::fs::File;
 use std::io::{self, BufWriter, Read, Write};
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use anyhow::{Context, Result, bail};
 use indicatif::{ProgressBar, ProgressStyle};
@@ -11,21 +12,38 @@ use paddock_host::{DriftWindow, Model, ScoreError};
 
 use crate::Outcome;
 use crate::common::LoadArgs;
+use crate::parquet_out::ParquetOut;
 
-#[derive(clap::ValueEnum, Clone, Copy, Debug)]
+#[derive(clap::ValueEnum, Clone, Copy, Debug, PartialEq, Eq)]
 enum FormatArg {
     Csv,
     Ndjson,
     /// Estimate requests, one per line (a host's capture files).
     Requests,
+    /// Apache Parquet, read and written a batch at a time.
+    Parquet,
 }
 
-impl From<FormatArg> for RowFormat {
-    fn from(f: FormatArg) -> RowFormat {
-        match f {
-            FormatArg::Csv => RowFormat::Csv,
-            FormatArg::Ndjson => RowFormat::Ndjson,
-            FormatArg::Requests => RowFormat::Requests,
+impl FormatArg {
+    /// The format a file's name says, if any.
+    fn of_path(path: &Path) -> Option<FormatArg> {
+        if path.extension().is_some_and(|e| e.eq_ignore_ascii_case("parquet")) {
+            return Some(FormatArg::Parquet);
+        }
+        Some(match RowFormat::from_path(path)? {
+            RowFormat::Csv => FormatArg::Csv,
+            RowFormat::Ndjson => FormatArg::Ndjson,
+            RowFormat::Requests => FormatArg::Requests,
+        })
+    }
+
+    /// The text format read by the host's row reader (`None`: Parquet).
+    fn rows(self) -> Option<RowFormat> {
+        match self {
+            FormatArg::Csv => Some(RowFormat::Csv),
+            FormatArg::Ndjson => Some(RowFormat::Ndjson),
+            FormatArg::Requests => Some(RowFormat::Requests),
+            FormatArg::Parquet => None,
         }
     }
 }
@@ -37,7 +55,8 @@ pub struct Args {
     /// The artifact.
     artifact: PathBuf,
     /// Rows to score: a .csv, .ndjson or .requests.ndjson file (a host's
-    /// capture), each may be gzip-compressed (.gz), or `-` for stdin.
+    /// capture), each may be gzip-compressed (.gz), a .parquet file, or `-`
+    /// for stdin (CSV, NDJSON or requests).
     #[arg(default_value = "-")]
     input: PathBuf,
     /// Input format [default: from the extension; csv for stdin].
@@ -62,7 +81,8 @@ pub struct Args {
     /// the input's order [default: the number of cores].
     #[arg(long, value_name = "N", value_parser = clap::value_parser!(u32).range(1..=1024))]
     threads: Option<u32>,
-    /// Same as --to ndjson (for programs reading the output).
+    /// Same as --to ndjson (for programs reading the output); no progress
+    /// bar.
     #[arg(long)]
     json: bool,
     /// Add each row's contributions: per output, the baseline and how much
@@ -79,6 +99,11 @@ pub struct Args {
     drift: bool,
     #[command(flatten)]
     limits: LoadArgs,
+}
+
+/// A progress bar's style from `template`.
+fn style(template: &str) -> ProgressStyle {
+    ProgressStyle::with_template(template).unwrap_or_else(|_| ProgressStyle::default_bar())
 }
 
 /// One output line.
@@ -109,48 +134,62 @@ pub fn run(args: Args) -> Result<Outcome> {
         }
     }
     let stdin = args.input.as_os_str() == "-";
-    let format: RowFormat = match (args.from, stdin) {
-        (Some(f), _) => f.into(),
-        (None, true) => RowFormat::Csv,
-        (None, false) => match RowFormat::from_path(&args.input) {
+    let format = match (args.from, stdin) {
+        (Some(f), _) => f,
+        (None, true) => FormatArg::Csv,
+        (None, false) => match FormatArg::of_path(&args.input) {
             Some(f) => f,
             None => bail!(
-                "cannot tell the format of {}: use --from csv, --from ndjson or --from requests",
+                "cannot tell the format of {}: use --from csv, --from ndjson, --from requests or --from parquet",
                 args.input.display()
             ),
         },
     };
-    let to: RowFormat = match (args.json, args.to, format) {
-        (true, _, _) | (false, None, RowFormat::Requests) => RowFormat::Ndjson,
-        (false, Some(to), _) => to.into(),
+    if stdin && format == FormatArg::Parquet {
+        bail!("--from parquet: Parquet is read from a file (its footer comes first), not from stdin");
+    }
+    let to = match (args.json, args.to, format) {
+        (true, _, _) | (false, None, FormatArg::Requests) => FormatArg::Ndjson,
+        (false, Some(to), _) => to,
         (false, None, from) => from,
     };
-    if to == RowFormat::Requests {
-        bail!("--to requests: results are written as CSV or NDJSON");
+    if to == FormatArg::Requests {
+        bail!("--to requests: results are written as CSV, NDJSON or Parquet");
     }
-    let (input, progress): (Box<dyn Read>, ProgressBar) = if stdin {
-        (Box::new(io::stdin().lock()), ProgressBar::hidden())
-    } else {
-        let file = File::open(&args.input).with_context(|| format!("opening {}", args.input.display()))?;
-        let len = file.metadata().map(|m| m.len()).unwrap_or(0);
-        let bar = if len > 1 << 20 { ProgressBar::new(len) } else { ProgressBar::hidden() };
-        bar.set_style(
-            ProgressStyle::with_template("{bar:40} {bytes}/{total_bytes} {msg} {eta} left")
-                .unwrap_or_else(|_| ProgressStyle::default_bar()),
-        );
-        (crate::common::decompressed(&args.input, Box::new(bar.wrap_read(file))), bar)
-    };
-    // The header is checked before any output is created.
+    // Quiet when standard error is not a terminal (indicatif's own rule)
+    // or the output is for a program.
+    let visible = |bar: ProgressBar| if args.json { ProgressBar::hidden() } else { bar };
+    // The header (or the Parquet schema) is checked before any output is created.
     let schema = model.schema();
     let columns = row_file::Columns { id: args.id.as_deref(), ignore: &args.ignore };
-    let records = row_file::records(input, format, schema, columns)
-        .with_context(|| format!("reading {}", args.input.display()))?;
-    let out: Box<dyn Write> = match &args.out {
+    let reading = || format!("reading {}", args.input.display());
+    let (records, progress): (Box<dyn Iterator<Item = Record>>, ProgressBar) = match format.rows() {
+        None => {
+            let file = File::open(&args.input).with_context(|| format!("opening {}", args.input.display()))?;
+            let records = paddock_serve::parquet::records(file, schema, columns).with_context(reading)?;
+            let bar = visible(ProgressBar::new(records.total()));
+            bar.set_style(style("{bar:40} {pos}/{len} rows, {msg}, {eta} left"));
+            (Box::new(records), bar)
+        }
+        Some(rows) => {
+            let (input, bar): (Box<dyn Read>, ProgressBar) = if stdin {
+                (Box::new(io::stdin().lock()), ProgressBar::hidden())
+            } else {
+                let file = File::open(&args.input).with_context(|| format!("opening {}", args.input.display()))?;
+                let len = file.metadata().map(|m| m.len()).unwrap_or(0);
+                let bar = visible(if len > 1 << 20 { ProgressBar::new(len) } else { ProgressBar::hidden() });
+                bar.set_style(style("{bar:40} {bytes}/{total_bytes}, {msg}, {eta} left"));
+                (crate::common::decompressed(&args.input, Box::new(bar.wrap_read(file))), bar)
+            };
+            (row_file::records(input, rows, schema, columns).with_context(reading)?, bar)
+        }
+    };
+    let out: Box<dyn Write + Send> = match &args.out {
         Some(p) => Box::new(File::create(p).with_context(|| format!("creating {}", p.display()))?),
-        None => Box::new(io::stdout().lock()),
+        None => Box::new(io::stdout()),
     };
     // A request's id (if it has one) names its rows.
-    let with_id = args.id.is_some() || format == RowFormat::Requests;
+    let with_id = args.id.is_some() || format == FormatArg::Requests;
     let mut writer = Writer::new(out, to, &model, with_id, args.contributions)?;
     let threads =
         args.threads.map_or_else(|| std::thread::available_parallelism().map_or(1, usize::from), |n| n as usize);
@@ -174,6 +213,9 @@ pub fn run(args: Args) -> Result<Outcome> {
                 failed += 1
             }
             writer.write(&line)?;
+        }
+        if format == FormatArg::Parquet {
+            progress.set_position((scored + failed) as u64);
         }
         progress.set_message(format!(
             "{:.0} rows/s",
@@ -352,8 +394,9 @@ impl serde::Serialize for JsonLine<'_> {
 }
 
 enum Sink {
-    Csv(Box<csv::Writer<Box<dyn Write>>>),
-    Ndjson(BufWriter<Box<dyn Write>>),
+    Csv(Box<csv::Writer<Box<dyn Write + Send>>>),
+    Ndjson(BufWriter<Box<dyn Write + Send>>),
+    Parquet(Box<ParquetOut>),
 }
 
 struct Writer {
@@ -365,31 +408,37 @@ struct Writer {
 }
 
 impl Writer {
-    fn new(out: Box<dyn Write>, format: RowFormat, model: &Model, with_id: bool, why: bool) -> Result<Self> {
+    fn new(out: Box<dyn Write + Send>, format: FormatArg, model: &Model, with_id: bool, why: bool) -> Result<Self> {
         let outputs: Vec<String> = model.contract().outputs.iter().map(|o| o.name.clone()).collect();
         let features: Vec<String> = match why {
             true => model.contract().features.iter().map(|f| f.name.clone()).collect(),
             false => Vec::new(),
         };
+        // Contribution columns: per output, its baseline then each feature.
+        let why_columns: Vec<String> = match why {
+            true => outputs
+                .iter()
+                .flat_map(|o| {
+                    std::iter::once(format!("{o}.baseline")).chain(features.iter().map(move |f| format!("{o}.{f}")))
+                })
+                .collect(),
+            false => Vec::new(),
+        };
         let sink = match format {
-            RowFormat::Csv => {
+            FormatArg::Csv => {
                 let mut csv = csv::Writer::from_writer(out);
                 let mut header = vec!["row".to_owned()];
                 if with_id {
                     header.push("id".into());
                 }
                 header.extend(outputs.iter().cloned());
-                if why {
-                    for o in &outputs {
-                        header.push(format!("{o}.baseline"));
-                        header.extend(features.iter().map(|f| format!("{o}.{f}")));
-                    }
-                }
+                header.extend(why_columns);
                 header.push("error".into());
                 csv.write_record(&header)?;
                 Sink::Csv(Box::new(csv))
             }
-            RowFormat::Ndjson | RowFormat::Requests => Sink::Ndjson(BufWriter::new(out)),
+            FormatArg::Parquet => Sink::Parquet(Box::new(ParquetOut::new(out, with_id, &outputs, &why_columns)?)),
+            FormatArg::Ndjson | FormatArg::Requests => Sink::Ndjson(BufWriter::new(out)),
         };
         Ok(Writer { sink, outputs, features, with_id })
     }
@@ -418,6 +467,18 @@ impl Writer {
                 serde_json::to_writer(&mut *out, &JsonLine { line, outputs: &self.outputs, features: &self.features })?;
                 out.write_all(b"\n")?;
             }
+            Sink::Parquet(out) => {
+                let values: Vec<f64>;
+                let result = match &line.result {
+                    Ok(outputs) if line.why.is_empty() => Ok(&outputs[..]),
+                    Ok(outputs) => {
+                        values = outputs.iter().chain(&line.why).copied().collect();
+                        Ok(&values[..])
+                    }
+                    Err(e) => Err(e.as_str()),
+                };
+                out.push(line.number, line.id.as_deref(), result)?;
+            }
         }
         Ok(())
     }
@@ -426,6 +487,7 @@ impl Writer {
         match self.sink {
             Sink::Csv(mut csv) => csv.flush()?,
             Sink::Ndjson(mut out) => out.flush()?,
+            Sink::Parquet(out) => out.finish()?,
         }
         Ok(())
     }

@@ -15,6 +15,8 @@ use jiff::Timestamp;
 
 use paddock_host::contract::row_file::RowFormat;
 
+use crate::parquet::{Raw, format_number};
+
 /// One cell, as a lookup sees it.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub enum Cell<'a> {
@@ -122,13 +124,6 @@ fn place(row: usize, column: Option<&str>) -> String {
 
 /// Rows a table may hold.
 pub const MAX_ROWS: usize = 50_000_000;
-
-/// Cells as read, before columns are typed.
-enum Raw {
-    Number(f64),
-    Text(String),
-    Absent,
-}
 
 impl Table {
     /// Reads a table file: its format from its extension, rows keyed by
@@ -420,7 +415,7 @@ fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>
         let first = rows.len();
         rows.extend((0..batch.num_rows()).map(|_| Vec::with_capacity(names.len())));
         for (c, array) in batch.columns().iter().enumerate() {
-            let cells = parquet_cells(array.as_ref()).map_err(|problem| TableError::Cell {
+            let cells = crate::parquet::cells(array.as_ref()).map_err(|problem| TableError::Cell {
                 file: file.to_owned(),
                 row: first + 1,
                 column: Some(names[c].clone()),
@@ -437,79 +432,10 @@ fn parquet_rows(bytes: Vec<u8>, file: &str) -> Result<(Vec<String>, Vec<Vec<Raw>
     Ok((names, rows))
 }
 
-/// One Parquet column's cells.
-fn parquet_cells(array: &dyn arrow_array::Array) -> Result<Vec<Raw>, String> {
-    use arrow_array::cast::AsArray;
-    use arrow_array::types::{
-        Date32Type, Decimal128Type, Float32Type, Float64Type, Int8Type, Int16Type, Int32Type, Int64Type,
-        TimestampMicrosecondType, TimestampMillisecondType, TimestampNanosecondType, TimestampSecondType, UInt8Type,
-        UInt16Type, UInt32Type, UInt64Type,
-    };
-    use arrow_schema::{DataType, TimeUnit};
-    fn numbers<T: arrow_array::ArrowPrimitiveType>(
-        array: &dyn arrow_array::Array,
-        f: impl Fn(T::Native) -> f64,
-    ) -> Vec<Raw> {
-        array.as_primitive::<T>().iter().map(|v| v.map_or(Raw::Absent, |v| Raw::Number(f(v)))).collect()
-    }
-    let texts = |it: &mut dyn Iterator<Item = Option<&str>>| {
-        it.map(|v| v.map_or(Raw::Absent, |t| Raw::Text(t.to_owned()))).collect()
-    };
-    Ok(match array.data_type() {
-        DataType::Null => (0..array.len()).map(|_| Raw::Absent).collect(),
-        DataType::Float64 => numbers::<Float64Type>(array, |v| v),
-        DataType::Float32 => numbers::<Float32Type>(array, f64::from),
-        DataType::Int8 => numbers::<Int8Type>(array, f64::from),
-        DataType::Int16 => numbers::<Int16Type>(array, f64::from),
-        DataType::Int32 => numbers::<Int32Type>(array, f64::from),
-        DataType::Int64 => numbers::<Int64Type>(array, |v| v as f64),
-        DataType::UInt8 => numbers::<UInt8Type>(array, f64::from),
-        DataType::UInt16 => numbers::<UInt16Type>(array, f64::from),
-        DataType::UInt32 => numbers::<UInt32Type>(array, f64::from),
-        DataType::UInt64 => numbers::<UInt64Type>(array, |v| v as f64),
-        DataType::Decimal128(_, scale) => {
-            let scale = 10f64.powi(i32::from(*scale));
-            numbers::<Decimal128Type>(array, |v| v as f64 / scale)
-        }
-        DataType::Timestamp(TimeUnit::Second, _) => numbers::<TimestampSecondType>(array, |v| v as f64),
-        DataType::Timestamp(TimeUnit::Millisecond, _) => numbers::<TimestampMillisecondType>(array, |v| v as f64 / 1e3),
-        DataType::Timestamp(TimeUnit::Microsecond, _) => numbers::<TimestampMicrosecondType>(array, |v| v as f64 / 1e6),
-        DataType::Timestamp(TimeUnit::Nanosecond, _) => numbers::<TimestampNanosecondType>(array, |v| v as f64 / 1e9),
-        DataType::Date32 => numbers::<Date32Type>(array, |d| f64::from(d) * 86_400.0),
-        DataType::Boolean => {
-            array.as_boolean().iter().map(|v| v.map_or(Raw::Absent, |b| Raw::Text(b.to_string()))).collect()
-        }
-        DataType::Utf8 => texts(&mut array.as_string::<i32>().iter()),
-        DataType::LargeUtf8 => texts(&mut array.as_string::<i64>().iter()),
-        DataType::Utf8View => texts(&mut array.as_string_view().iter()),
-        DataType::Dictionary(..) => {
-            let dictionary = array.as_any_dictionary();
-            let values = parquet_cells(dictionary.values().as_ref())?;
-            let keys = dictionary.keys();
-            dictionary
-                .normalized_keys()
-                .into_iter()
-                .enumerate()
-                .map(|(i, k)| match (keys.is_null(i), values.get(k)) {
-                    (false, Some(Raw::Number(n))) => Raw::Number(*n),
-                    (false, Some(Raw::Text(t))) => Raw::Text(t.clone()),
-                    _ => Raw::Absent,
-                })
-                .collect()
-        }
-        other => return Err(format!("a column of type {other}, not numbers, text, booleans, timestamps or dates")),
-    })
-}
-
 /// A row's cell `c`, absent past its end.
 fn raw_cell(row: &[Raw], c: usize) -> &Raw {
     static ABSENT: Raw = Raw::Absent;
     row.get(c).unwrap_or(&ABSENT)
-}
-
-/// A number as a key: whole numbers without a fraction (`42`, not `42.0`).
-fn format_number(n: f64) -> String {
-    if n.fract() == 0.0 && n.abs() < 1e15 { format!("{}", n as i64) } else { n.to_string() }
 }
 
 #[cfg(test)]
