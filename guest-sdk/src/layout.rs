@@ -3,8 +3,9 @@
 //! for having reached a leaf.
 //!
 //! Two layouts, chosen per tree, in one array of slots:
-//! - **by levels**, for trees no deeper than [`DEEPEST_LEVELLED`] (those
-//!   that toolkits grow depth by depth are all like this): every path made
+//! - **by levels**, for trees no deeper than [`DEEPEST_LEVELLED`] and not
+//!   too sparse ([`MOST_PADDING`]; those that toolkits grow depth by depth
+//!   are all like this): every path made
 //!   as long as the deepest, slot `s`'s children at `2s + 1` and `2s + 2`,
 //!   so a row takes exactly `depth` steps and the walk computes the next
 //!   slot rather than loading it. A leaf above the last level becomes a
@@ -32,6 +33,10 @@ use crate::trees::{Branch, Node, Tree};
 /// The deepest tree laid out by levels (2⁸ slots): the padding doubles
 /// with every level.
 const DEEPEST_LEVELLED: u32 = 8;
+
+/// A tree is laid out by levels only when its bottom level has at most
+/// this many slots per node it has: memory stays a few times the params'.
+const MOST_PADDING: usize = 8;
 
 /// Rows that walk a tree together: their steps do not depend on each
 /// other, so the processor overlaps them (eight measured best in the
@@ -91,7 +96,10 @@ impl Layout {
         if self.reads.len() + 2 * tree.nodes.len().max(1 << DEEPEST_LEVELLED) > u32::MAX as usize {
             return None;
         }
-        let laid = if depth <= DEEPEST_LEVELLED { self.levels(tree, depth) } else { self.siblings(tree, depth) };
+        // By levels only where the padding stays within a few times the
+        // tree's own nodes (a long thin tree would be mostly padding).
+        let levelled = depth <= DEEPEST_LEVELLED && (1usize << depth) <= MOST_PADDING * tree.nodes.len();
+        let laid = if levelled { self.levels(tree, depth) } else { self.siblings(tree, depth) };
         self.leaves_single.extend(self.leaves[laid.at..].iter().map(|&v| v as f32));
         Some(laid)
     }

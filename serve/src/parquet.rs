@@ -15,7 +15,7 @@ use std::fs::File;
 
 use arrow_array::Array;
 use paddock_host::contract::Domain;
-use paddock_host::contract::row_file::{Columns, Record, RecordError, RowFileError};
+use paddock_host::contract::row_file::{self, Columns, Record, RecordError, RowFileError};
 use paddock_host::contract::rows::{Row, Value};
 use paddock_host::contract::schema::Schema;
 use parquet::arrow::arrow_reader::{ParquetRecordBatchReader, ParquetRecordBatchReaderBuilder};
@@ -152,31 +152,8 @@ pub fn records<'a>(file: File, schema: &'a Schema, columns: Columns<'_>) -> Resu
             return Err(ParquetRowsError::ColumnType { column: field.name().clone(), problem });
         }
     }
-    let id_at = match columns.id {
-        Some(column) => Some(
-            header
-                .iter()
-                .position(|h| h == column)
-                .ok_or_else(|| RowFileError::MissingId { column: column.to_owned(), header: header.clone() })?,
-        ),
-        None => None,
-    };
-    let unknown: Vec<String> = header
-        .iter()
-        .enumerate()
-        .filter(|(i, h)| Some(*i) != id_at && !columns.ignore.contains(h) && schema.feature_index(h).is_none())
-        .map(|(_, h)| h.clone())
-        .collect();
-    if !unknown.is_empty() {
-        let c = schema.contract();
-        let model = format!("{} {}", c.name, c.version);
-        return Err(RowFileError::UnknownColumns { columns: unknown, model }.into());
-    }
-    let features = header
-        .iter()
-        .enumerate()
-        .map(|(i, h)| (Some(i) != id_at && !columns.ignore.contains(h)).then(|| h.clone()))
-        .collect();
+    let (id_at, keep) = row_file::place_columns(&header, schema, columns)?;
+    let features = header.into_iter().zip(keep).map(|(h, keep)| keep.then_some(h)).collect();
     let total = u64::try_from(builder.metadata().file_metadata().num_rows()).unwrap_or(0);
     let reader = builder.build().map_err(|e| ParquetRowsError::NotParquet(e.to_string()))?;
     Ok(Records { reader, schema, features, id_at, pending: Vec::new(), read: 0, ended: false, total })

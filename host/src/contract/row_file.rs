@@ -208,6 +208,44 @@ fn request_rows(line_number: usize, line: std::io::Result<String>) -> Vec<(Optio
     }
 }
 
+/// Where a file's columns go, from its header: the id column's position
+/// (when `columns.id` names one), and per column whether it is a feature
+/// (neither the id nor ignored). Shared by every format with a header of
+/// column names (CSV here; Parquet in `paddock-serve`).
+///
+/// # Errors
+/// [`RowFileError::MissingId`] when the id column is not in the header;
+/// [`RowFileError::UnknownColumns`] for columns that are neither features,
+/// the id, nor ignored.
+pub fn place_columns(
+    header: &[String],
+    schema: &Schema,
+    columns: Columns<'_>,
+) -> Result<(Option<usize>, Vec<bool>), RowFileError> {
+    let id_at = match columns.id {
+        Some(column) => Some(
+            header
+                .iter()
+                .position(|h| h == column)
+                .ok_or_else(|| RowFileError::MissingId { column: column.to_owned(), header: header.to_vec() })?,
+        ),
+        None => None,
+    };
+    let keep: Vec<bool> =
+        header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
+    let unknown: Vec<String> = header
+        .iter()
+        .zip(&keep)
+        .filter(|(h, keep)| **keep && schema.feature_index(h).is_none())
+        .map(|(h, _)| h.clone())
+        .collect();
+    if !unknown.is_empty() {
+        let c = schema.contract();
+        return Err(RowFileError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
+    }
+    Ok((id_at, keep))
+}
+
 fn csv_records<'a, R: Read + 'a>(
     input: R,
     schema: &'a Schema,
@@ -218,28 +256,7 @@ fn csv_records<'a, R: Read + 'a>(
         .headers()
         .map(|h| h.iter().map(str::to_owned).collect())
         .map_err(|e| RowFileError::Header(e.to_string()))?;
-    let id = columns.id;
-    let id_at = match id {
-        Some(column) => Some(
-            header
-                .iter()
-                .position(|h| h == column)
-                .ok_or_else(|| RowFileError::MissingId { column: column.to_owned(), header: header.clone() })?,
-        ),
-        None => None,
-    };
-    let unknown: Vec<String> = header
-        .iter()
-        .enumerate()
-        .filter(|(i, h)| Some(*i) != id_at && !columns.ignore.contains(h) && schema.feature_index(h).is_none())
-        .map(|(_, h)| h.clone())
-        .collect();
-    if !unknown.is_empty() {
-        let c = schema.contract();
-        return Err(RowFileError::UnknownColumns { columns: unknown, model: format!("{} {}", c.name, c.version) });
-    }
-    let keep: Vec<bool> =
-        header.iter().enumerate().map(|(i, h)| Some(i) != id_at && !columns.ignore.contains(h)).collect();
+    let (id_at, keep) = place_columns(&header, schema, columns)?;
     let mut records = reader.into_records().enumerate();
     Ok(std::iter::from_fn(move || {
         let (i, result) = records.next()?;
