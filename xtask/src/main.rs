@@ -667,10 +667,31 @@ fn fuzz(root: &Path, seconds: u64) -> Result<()> {
             .with_context(|| format!("copying tests/pmml/{doc}"))?;
     }
     let targets = build_fuzz_targets(root)?;
+    // The targets run side by side, each for the same time, each into a
+    // log of its own (printed whole if it fails, its final stats if not).
+    let mut running = Vec::new();
     for (target, seed) in [("artifact", &artifact_seeds), ("rows", &row_seeds), ("import", &import_seeds)] {
+        let log_path = root.join(format!("target/fuzz-{target}.log"));
+        let log = std::fs::File::create(&log_path).with_context(|| format!("creating {}", log_path.display()))?;
         let mut c = Command::new(targets.join(target));
         c.arg(seed).args([&format!("-max_total_time={seconds}"), "-max_len=262144", "-print_final_stats=1"]);
-        run(c)?;
+        c.stdout(log.try_clone()?).stderr(log);
+        running.push((target, log_path, c.spawn().with_context(|| format!("starting the {target} fuzz target"))?));
+    }
+    let mut failed = Vec::new();
+    for (target, log_path, mut child) in running {
+        let status = child.wait().with_context(|| format!("waiting for the {target} fuzz target"))?;
+        let log = std::fs::read_to_string(&log_path).unwrap_or_default();
+        if status.success() {
+            let stats: Vec<&str> = log.lines().filter(|l| l.starts_with("stat::")).collect();
+            eprintln!("xtask: fuzz target {target}: {}", stats.join(", "));
+        } else {
+            eprintln!("{log}");
+            failed.push(format!("{target} ({status}, log {})", log_path.display()));
+        }
+    }
+    if !failed.is_empty() {
+        bail!("fuzz targets failed: {}", failed.join(", "));
     }
     Ok(())
 }
