@@ -124,6 +124,9 @@ pub struct Records<'a> {
     schema: &'a Schema,
     /// Per file column: the feature it fills, or none (the id, ignored).
     features: Vec<Option<String>>,
+    /// Per file column: whether its feature takes labels (a number there
+    /// reads as its text), looked up once.
+    labelled: Vec<bool>,
     id_at: Option<usize>,
     /// The current batch's records, in reverse (taken from the end).
     pending: Vec<Record>,
@@ -153,10 +156,12 @@ pub fn records<'a>(file: File, schema: &'a Schema, columns: Columns<'_>) -> Resu
         }
     }
     let (id_at, keep) = row_file::place_columns(&header, schema, columns)?;
-    let features = header.into_iter().zip(keep).map(|(h, keep)| keep.then_some(h)).collect();
+    let features: Vec<Option<String>> = header.into_iter().zip(keep).map(|(h, keep)| keep.then_some(h)).collect();
+    let domain = |name: &str| schema.feature_index(name).map(|i| &schema.contract().features[i].domain);
+    let labelled = features.iter().map(|f| matches!(f.as_deref().and_then(domain), Some(Domain::Label(_)))).collect();
     let total = u64::try_from(builder.metadata().file_metadata().num_rows()).unwrap_or(0);
     let reader = builder.build().map_err(|e| ParquetRowsError::NotParquet(e.to_string()))?;
-    Ok(Records { reader, schema, features, id_at, pending: Vec::new(), read: 0, ended: false, total })
+    Ok(Records { reader, schema, features, labelled, id_at, pending: Vec::new(), read: 0, ended: false, total })
 }
 
 impl Records<'_> {
@@ -199,7 +204,7 @@ impl Records<'_> {
                         Raw::Absent => None,
                     };
                 } else if let Some(feature) = &self.features[c] {
-                    row.insert(feature.clone(), self.value(feature, cell));
+                    row.insert(feature.clone(), self.value(feature, self.labelled[c], cell));
                 }
             }
             records.push(Record { number, id, row: Ok(row) });
@@ -209,18 +214,14 @@ impl Records<'_> {
         true
     }
 
-    /// A cell as the value of `feature`: a number of a labelled feature
+    /// A cell as the value of `feature`: a number of a `labelled` feature
     /// reads as its text, as a CSV cell would.
-    fn value(&self, feature: &str, cell: Raw) -> Value {
+    fn value(&self, feature: &str, labelled: bool, cell: Raw) -> Value {
         match cell {
             Raw::Absent => Value::Absent,
             Raw::Text(t) => self.schema.value_from_text(feature, &t),
-            Raw::Number(n) => {
-                match self.schema.feature_index(feature).map(|i| &self.schema.contract().features[i].domain) {
-                    Some(Domain::Label(_)) => self.schema.value_from_text(feature, &format_number(n)),
-                    _ => Value::Number(n),
-                }
-            }
+            Raw::Number(n) if labelled => self.schema.value_from_text(feature, &format_number(n)),
+            Raw::Number(n) => Value::Number(n),
         }
     }
 
